@@ -1,0 +1,89 @@
+"""Statistics of the adjustment: small pure functions, one formula each.
+
+Notation: v residuals, σ a priori standard deviations (σ₀ = 1 a priori),
+P = diag(1/σ²), Qxx the cofactor matrix of the unknowns, r redundancy.
+References: Baarda (1968), *A Testing Procedure for Use in Geodetic
+Networks*, Netherlands Geodetic Commission, New Series 2(5) for the w-test and
+minimal detectable bias; Pope (1976), NOAA Technical Report NOS 65 NGS 1 for
+the tau distribution.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import scipy.stats
+
+
+def redundancy_numbers(design: np.ndarray, sigmas: np.ndarray, qxx: np.ndarray) -> np.ndarray:
+    """r_i = (Qvv·P)_ii = 1 − a_i·Qxx·a_iᵀ / σ_i²."""
+    if design.shape[1] == 0:
+        return np.ones(design.shape[0])
+    explained = np.einsum("ij,jk,ik->i", design, qxx, design) / sigmas**2
+    # rounding can push a fully controlled or uncontrolled row past [0, 1]
+    return np.clip(1.0 - explained, 0.0, 1.0)
+
+
+def weighted_square_sum(residuals: np.ndarray, sigmas: np.ndarray) -> float:
+    """vᵀPv."""
+    return float(np.sum((residuals / sigmas) ** 2))
+
+
+def variance_factor(vtpv: float, redundancy: int) -> float | None:
+    """σ̂₀² = vᵀPv / r; None when r = 0."""
+    return vtpv / redundancy if redundancy > 0 else None
+
+
+def chi_square_bounds(redundancy: int, alpha: float) -> tuple[float, float]:
+    """Two-sided χ² acceptance region (χ²_{α/2}(r), χ²_{1−α/2}(r)) for vᵀPv."""
+    return (
+        float(scipy.stats.chi2.ppf(alpha / 2.0, redundancy)),
+        float(scipy.stats.chi2.ppf(1.0 - alpha / 2.0, redundancy)),
+    )
+
+
+def normal_critical_value(alpha: float) -> float:
+    """Two-sided critical value z_{1−α/2} of the standard normal distribution."""
+    return float(scipy.stats.norm.ppf(1.0 - alpha / 2.0))
+
+
+def non_centrality(alpha: float, power: float) -> float:
+    """λ₀ = (z_{1−α/2} + z_{power})², Baarda's approximation for the MDB."""
+    return (normal_critical_value(alpha) + float(scipy.stats.norm.ppf(power))) ** 2
+
+
+def w_statistics(residuals: np.ndarray, sigmas: np.ndarray, redundancy: np.ndarray) -> np.ndarray:
+    """w_i = v_i / (σ_i·√r_i), Baarda's standardized residual (a priori σ₀ = 1)."""
+    return residuals / (sigmas * np.sqrt(redundancy))
+
+
+def minimal_detectable_bias(sigmas: np.ndarray, redundancy: np.ndarray, lambda0: float) -> np.ndarray:
+    """∇_i = σ_i·√(λ₀ / r_i)."""
+    return sigmas * np.sqrt(lambda0 / redundancy)
+
+
+def ellipse_factor(confidence: float, redundancy: int) -> float:
+    """Scale from the standard ellipse to the confidence ellipse.
+
+    √(2·F(confidence; 2, r)) when σ₀² is estimated on r degrees of freedom,
+    √χ²(confidence; 2) (2.4477 at 95 %) when r = 0 and the a priori σ₀ is used.
+    """
+    if redundancy <= 0:
+        return math.sqrt(float(scipy.stats.chi2.ppf(confidence, 2)))
+    return math.sqrt(2.0 * float(scipy.stats.f.ppf(confidence, 2, redundancy)))
+
+
+def standard_ellipse(covariance: np.ndarray) -> tuple[float, float, float]:
+    """Semi-axes and azimuth of the major axis (degrees in [0, 180)) of a 2×2 (E, N) covariance.
+
+    λ = (σ_E² + σ_N²)/2 ± √(((σ_N² − σ_E²)/2)² + σ_EN²);  tan 2t = 2σ_EN / (σ_N² − σ_E²),
+    t clockwise from grid north.
+    """
+    see, sen, snn = float(covariance[0, 0]), float(covariance[0, 1]), float(covariance[1, 1])
+    mean = 0.5 * (see + snn)
+    radius = math.hypot(0.5 * (snn - see), sen)
+    major = math.sqrt(max(mean + radius, 0.0))
+    minor = math.sqrt(max(mean - radius, 0.0))
+    azimuth = math.degrees(0.5 * math.atan2(2.0 * sen, snn - see)) % 180.0
+    return major, minor, azimuth

@@ -1,0 +1,238 @@
+"""Units: the only place where a unit factor or an angle convention is written down.
+
+Everything inside the numerical core is SI: lengths in metres, angles in
+radians.  Input is converted once by the parser and output once by
+``result.py``.
+
+Sources for the factors:
+
+* international foot = 0.3048 m exactly, and the US survey foot =
+  1200/3937 m (NIST and NOAA/NGS, 85 FR 62698, 2020);
+* 400 gon to the circle (ISO 80000-3).
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass
+
+#: Metres per length unit accepted in a field book.
+LENGTH_FACTORS: dict[str, float] = {
+    "mm": 1e-3,
+    "cm": 1e-2,
+    "m": 1.0,
+    "km": 1e3,
+    "ft": 0.3048,
+    "usft": 1200.0 / 3937.0,
+}
+
+#: Units a field book may declare for coordinates and observed lengths.
+FILE_LENGTH_UNITS = ("m", "ft", "usft")
+#: Units a field book may declare for observed angles.
+FILE_ANGLE_UNITS = ("dms", "deg", "gon")
+
+RAD_PER_DEG = math.pi / 180.0
+RAD_PER_GON = math.pi / 200.0
+ARCSEC_PER_RAD = 180.0 * 3600.0 / math.pi
+RAD_PER_ARCSEC = 1.0 / ARCSEC_PER_RAD
+RAD_PER_MGON = RAD_PER_GON / 1000.0
+TWO_PI = 2.0 * math.pi
+
+_NUMBER = r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?"
+_NUMBER_RE = re.compile(rf"^{_NUMBER}$")
+_DMS_RE = re.compile(r"^(-)?(\d+):(\d+):(\d+(?:\.\d*)?)$")
+
+
+class UnitError(ValueError):
+    """A value or unit could not be read; the message is a sentence for the user."""
+
+
+def parse_number(text: str) -> float:
+    """Read a plain decimal number; ``nan``, ``inf`` and commas are refused."""
+    if not _NUMBER_RE.match(text):
+        if text.lower().lstrip("+-") in {"nan", "inf", "infinity"}:
+            raise UnitError(f"'{text}' is not a finite number")
+        raise UnitError(f"'{text}' is not a number (use a point as the decimal separator)")
+    value = float(text)
+    if not math.isfinite(value):
+        raise UnitError(f"'{text}' is too large to be a number")
+    return value
+
+
+def parse_length(text: str) -> float:
+    """Read a length that carries its unit (``420m``, ``0.42km``, ``3.5ft``) into metres."""
+    match = re.match(rf"^({_NUMBER})([a-zA-Z]+)$", text)
+    if not match:
+        parse_number(text)  # a bare number gets the more useful message below
+        raise UnitError(f"'{text}' needs a length unit, e.g. {text}m")
+    unit = match.group(2).lower()
+    if unit not in LENGTH_FACTORS:
+        raise UnitError(f"'{match.group(2)}' is not a length unit (use mm, cm, m, km, ft or usft)")
+    return parse_number(match.group(1)) * LENGTH_FACTORS[unit]
+
+
+def parse_angle(text: str, unit: str) -> float:
+    """Read an angle in the file's unit, or with its own ``deg``/``gon`` suffix, into radians."""
+    lowered = text.lower()
+    for suffix, factor in (("deg", RAD_PER_DEG), ("gon", RAD_PER_GON)):
+        if lowered.endswith(suffix) and len(lowered) > len(suffix):
+            return parse_number(text[: -len(suffix)]) * factor
+    if unit == "dms":
+        return parse_dms(text)
+    if unit == "deg":
+        return parse_number(text) * RAD_PER_DEG
+    if unit == "gon":
+        return parse_number(text) * RAD_PER_GON
+    raise ValueError(f"unknown angle unit {unit!r}")
+
+
+def parse_dms(text: str) -> float:
+    """Read ``D:M:S`` (whole degrees, minutes < 60, seconds < 60) into radians."""
+    match = _DMS_RE.match(text)
+    if not match:
+        if _NUMBER_RE.match(text):
+            raise UnitError(
+                f"'{text}' is not in D:M:S; write it as degrees:minutes:seconds "
+                "or add a unit suffix (deg or gon)"
+            )
+        raise UnitError(f"'{text}' is not an angle in D:M:S (e.g. 87:14:31.5)")
+    sign, degrees, minutes, seconds = match.groups()
+    if int(minutes) >= 60:
+        raise UnitError(f"'{text}': minutes must be below 60")
+    if float(seconds) >= 60.0:
+        raise UnitError(f"'{text}': seconds must be below 60")
+    value = (int(degrees) + int(minutes) / 60.0 + float(seconds) / 3600.0) * RAD_PER_DEG
+    return -value if sign else value
+
+
+def wrap_2pi(angle_rad: float) -> float:
+    """Reduce an angle to [0, 2π)."""
+    reduced = math.fmod(angle_rad, TWO_PI)
+    if reduced < 0.0:
+        reduced += TWO_PI
+    # fmod of a tiny negative value can round up to exactly 2π
+    return 0.0 if reduced >= TWO_PI else reduced
+
+
+def wrap_pi(angle_rad: float) -> float:
+    """Reduce an angle to (−π, π]."""
+    reduced = math.remainder(angle_rad, TWO_PI)
+    return math.pi if reduced == -math.pi else reduced
+
+
+def format_dms(angle_deg: float, decimals: int = 1) -> str:
+    """Format decimal degrees as ``D:MM:SS.s``, carrying rounded seconds into minutes."""
+    sign = "-" if angle_deg < 0 else ""
+    scale = 10**decimals
+    total = round(abs(angle_deg) * 3600.0 * scale)
+    whole_seconds, fraction = divmod(total, scale)
+    minutes_total, seconds = divmod(whole_seconds, 60)
+    degrees, minutes = divmod(minutes_total, 60)
+    if total == 0:
+        sign = ""
+    frac = f".{fraction:0{decimals}d}" if decimals > 0 else ""
+    return f"{sign}{degrees}:{minutes:02d}:{seconds:02d}{frac}"
+
+
+@dataclass(frozen=True, slots=True)
+class Quantity:
+    """A standard deviation or allowance as written, in SI parts.
+
+    ``constant`` is metres (or radians when ``angular``); ``ppm`` applies to a
+    distance; ``per_sqrtkm`` and ``per_setup`` are metres for leveling.  How
+    the parts combine (quadrature for a standard deviation, linearly for an
+    allowance) is decided by the caller.
+    """
+
+    constant: float = 0.0
+    ppm: float = 0.0
+    per_sqrtkm: float = 0.0
+    per_setup: float = 0.0
+    angular: bool = False
+
+    def sigma_distance(self, distance_m: float) -> float:
+        """σ = √(a² + (b·D·10⁻⁶)²) for ``a + b ppm``."""
+        return math.hypot(self.constant, self.ppm * 1e-6 * distance_m)
+
+    def sigma_level(self, length_km: float | None, setups: int | None) -> float:
+        """σ = √(c² + k²·L + s²·K) for ``c + k/sqrtkm`` or ``c + s/setup``."""
+        variance = self.constant**2
+        if self.per_sqrtkm:
+            variance += self.per_sqrtkm**2 * (length_km or 0.0)
+        if self.per_setup:
+            variance += self.per_setup**2 * (setups or 0)
+        return math.sqrt(variance)
+
+    def allowance_level(self, length_km: float | None, setups: int | None) -> float | None:
+        """Allowed misclosure c + k·√L + s·√K (parts added linearly); None if a part lacks data."""
+        if (self.per_sqrtkm and length_km is None) or (self.per_setup and setups is None):
+            return None
+        return (
+            self.constant
+            + self.per_sqrtkm * math.sqrt(length_km or 0.0)
+            + self.per_setup * math.sqrt(setups or 0)
+        )
+
+    def allowance_distance(self, distance_m: float) -> float:
+        """Allowance a + b·D·10⁻⁶ (parts added linearly, as published standards state them)."""
+        return self.constant + self.ppm * 1e-6 * distance_m
+
+
+_TERM_RE = re.compile(rf"({_NUMBER})([a-zA-Z/]+)")
+
+
+def parse_quantity(text: str) -> Quantity:
+    """Read ``2mm+2ppm``, ``1.0mm/sqrtkm``, ``0.5mm+0.4mm/setup``, ``1.5sec`` or ``0.3mgon``.
+
+    Each term is a number with its unit, terms joined by ``+``.  Raises
+    ``UnitError`` with a sentence naming the bad part.
+    """
+    if not text:
+        raise UnitError("a value is missing")
+    parts: dict[str, float] = {"constant": 0.0, "ppm": 0.0, "per_sqrtkm": 0.0, "per_setup": 0.0}
+    angular: bool | None = None
+    position = 0
+    while position < len(text):
+        match = _TERM_RE.match(text, position)
+        if not match:
+            rest = text[position:]
+            if _NUMBER_RE.match(rest):
+                raise UnitError(f"'{text}' needs a unit, e.g. {rest}mm or {rest}sec")
+            raise UnitError(f"'{text}' is not a quantity with units (e.g. 2mm+2ppm, 1.5sec)")
+        number = parse_number(match.group(1))
+        unit = match.group(2).lower()
+        if unit == "ppm":
+            key, factor, is_angle = "ppm", 1.0, False
+        elif unit == "sec":
+            key, factor, is_angle = "constant", RAD_PER_ARCSEC, True
+        elif unit == "mgon":
+            key, factor, is_angle = "constant", RAD_PER_MGON, True
+        elif unit in LENGTH_FACTORS:
+            key, factor, is_angle = "constant", LENGTH_FACTORS[unit], False
+        elif "/" in unit and unit.split("/", 1)[0] in LENGTH_FACTORS:
+            base, per = unit.split("/", 1)
+            if per == "sqrtkm":
+                key = "per_sqrtkm"
+            elif per == "setup":
+                key = "per_setup"
+            else:
+                raise UnitError(f"'{match.group(2)}': use /sqrtkm or /setup after a length")
+            factor, is_angle = LENGTH_FACTORS[base], False
+        else:
+            raise UnitError(
+                f"'{match.group(2)}' is not a unit here "
+                "(use mm, cm, m, km, ft, usft, ppm, sec, mgon, mm/sqrtkm or mm/setup)"
+            )
+        if angular is not None and angular != is_angle:
+            raise UnitError(f"'{text}' mixes angular and length units")
+        angular = is_angle
+        parts[key] += number * factor
+        position = match.end()
+        if position < len(text):
+            if text[position] != "+":
+                raise UnitError(f"'{text}': join the parts with '+'")
+            position += 1
+            if position == len(text):
+                raise UnitError(f"'{text}' ends with '+'")
+    return Quantity(angular=bool(angular), **parts)
