@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import math
 from collections import defaultdict
+from collections.abc import Callable
 
 import numpy as np
 
@@ -40,10 +41,28 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
     used = [o for o in network.used if o.kind in HORIZONTAL_KINDS]
     needed = {n for o in used for n in _names(o)}
     known = {n: p for n, p in given.items() if n in needed and not math.isnan(p[0])}
-    propagator = _Propagator(used, known)
-    if not known:
-        propagator.arbitrary_datum()
-    propagator.run()
+    _Propagator(used, known).run()
+    # Control that is not tied together directly (no backsight between held points)
+    # stalls the propagation: build the figure in a local frame from one station,
+    # then move it onto the control by a similarity transformation.
+    for _ in range(10):
+        if not needed - set(known):
+            break
+        local = _Propagator(used, {})
+        local.arbitrary_datum(_seed(used, set(known)))
+        local.run()
+        common = [n for n in local.known if n in known]
+        if not known:
+            known.update(local.known)
+        elif len(common) >= 2:
+            transform = _similarity(
+                [local.known[n] for n in common], [known[n] for n in common]
+            )
+            for name, position in local.known.items():
+                known.setdefault(name, transform(position))
+        else:
+            break
+        _Propagator(used, known).run()
     missing = sorted(needed - set(known))
     if missing:
         shown = ", ".join(missing[:12]) + (f" and {len(missing) - 12} more" if len(missing) > 12 else "")
@@ -54,6 +73,38 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
             missing,
         )
     return {n: known[n] for n in needed}
+
+
+def _seed(used: list[Observation], known: set[str]) -> tuple[str, str]:
+    """A station to start a local frame from: one with a distance, preferring unplaced ones."""
+    measured = {frozenset((o.from_point, o.to)) for o in used if o.kind == "distance"}
+    links = [
+        ((o.at or o.from_point), o.to)
+        for o in used
+        if o.kind in ("direction", "angle", "distance")
+    ]
+    links.sort(key=lambda link: (frozenset(link) not in measured, link[0] in known and link[1] in known))
+    return links[0]
+
+
+def _similarity(
+    source: list[Position], target: list[Position]
+) -> Callable[[Position], Position]:
+    """Least-squares 2D similarity (shift, rotation, scale) taking ``source`` onto ``target``."""
+    src = np.array(source)
+    dst = np.array(target)
+    src_mean, dst_mean = src.mean(axis=0), dst.mean(axis=0)
+    a, b = src - src_mean, dst - dst_mean
+    # complex-number form: dst = z·src, z = Σ conj(src)·dst / Σ |src|²
+    zs = a[:, 0] + 1j * a[:, 1]
+    zd = b[:, 0] + 1j * b[:, 1]
+    z = complex(np.sum(np.conj(zs) * zd) / np.sum(np.abs(zs) ** 2))
+
+    def apply(p: Position) -> Position:
+        w = z * complex(p[0] - src_mean[0], p[1] - src_mean[1])
+        return float(w.real + dst_mean[0]), float(w.imag + dst_mean[1])
+
+    return apply
 
 
 def _names(o: Observation) -> tuple[str, ...]:
@@ -81,12 +132,10 @@ class _Propagator:
             names = _names(o)
             station = o.at or o.from_point
             self.linked |= {(station, n) for n in names if n != station}
-        first = used[0]
-        self.first_link = ((first.at or first.from_point), first.to)
 
-    def arbitrary_datum(self) -> None:
-        """No coordinates given: first station at the origin, its first neighbour due north."""
-        station, neighbour = self.first_link
+    def arbitrary_datum(self, link: tuple[str, str]) -> None:
+        """A local frame: ``link[0]`` at the origin, ``link[1]`` due north of it."""
+        station, neighbour = link
         self.known[station] = (0.0, 0.0)
         self._set_azimuth(station, neighbour, 0.0)
 
@@ -265,7 +314,7 @@ def _resect(targets: list[tuple[Position, float]]) -> Position | None:
             if np.any(s2 < 1e-12):
                 break
             misfit = np.remainder(directions + x[2] - np.arctan2(d_e, d_n) + np.pi, 2 * np.pi) - np.pi
-            jac = np.column_stack([-d_n / s2, d_e / s2, -np.ones(len(s2))])
+            jac = np.column_stack([d_n / s2, -d_e / s2, np.ones(len(s2))])
             step, *_ = np.linalg.lstsq(jac, -misfit, rcond=None)
             x += step
             if np.max(np.abs(step[:2])) < 1e-6:

@@ -63,6 +63,11 @@ class Network:
     free_datum: tuple[str, ...] = ()  # "translation", "rotation": removed by inner constraints
 
     @property
+    def datum_defect(self) -> int:
+        """Number of datum parameters the inner constraints remove (0 with control)."""
+        return 2 * ("translation" in self.free_datum) + ("rotation" in self.free_datum)
+
+    @property
     def horizontal(self) -> bool:
         """True when eastings and northings are adjusted."""
         return self.dimension in (2, 3)

@@ -269,7 +269,7 @@ def build_result(
     per_m = 1.0 / LENGTH_FACTORS[fb.length_unit]
     n_rows = solution.design.shape[0]
     n_unknowns = len(network.parameters)
-    redundancy = n_rows - n_unknowns
+    redundancy = n_rows - n_unknowns + network.datum_defect
 
     r_i = st.redundancy_numbers(solution.design, solution.sigmas, solution.qxx)
     vtpv = st.weighted_square_sum(solution.residuals, solution.sigmas)
