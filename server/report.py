@@ -1,0 +1,661 @@
+"""Presentation of an adjustment result: rows of formatted figures, laid out as HTML, text or CSV.
+
+Nothing here computes a figure.  Every number comes from the frozen
+``AdjustmentResult`` and is only rounded for display:
+
+* lengths (coordinates, heights, height differences, residuals, standard
+  deviations, ellipse axes) to 4 decimals in the file's unit (0.1 mm in metres);
+  the length of a leveling route, a sum of booked section lengths, to 1 decimal;
+* angle values in D:M:S when the field book uses ``dms``, else in decimal
+  degrees (the unit of the result contract);
+* angular residuals, standard deviations and MDBs in arc-seconds to 0.1″;
+* w-statistics and redundancy numbers to 2 decimals.
+
+The row helpers (``rows``, ``point_rows``, ``observation_rows``,
+``misclosure_rows`` …) are shared by the HTML report, the text summary and
+the web pages, so every output shows the same figures the same way.
+"""
+
+from __future__ import annotations
+
+import base64
+import csv
+import hashlib
+import io
+from collections.abc import Iterable
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+
+import jinja2
+from markupsafe import Markup
+
+from . import __version__
+from .result import AdjustmentResult, ObservationResult, PointResult
+from .units import format_dms
+
+#: Folder of the report templates and of the CSS that is inlined into the report.
+TEMPLATE_DIR = Path(__file__).resolve().parents[1] / "templates" / "report"
+REPORT_CSS = TEMPLATE_DIR / "report.css"
+
+#: Shown where a figure does not apply.
+NOT_APPLICABLE = "—"
+
+LENGTH_DECIMALS = {"m": 4, "ft": 4, "usft": 4}
+LENGTH_LABELS = {"m": "m", "ft": "ft", "usft": "US ft"}
+ANGLE_LABELS = {"dms": "D:M:S", "deg": "decimal degrees", "gon": "decimal degrees"}
+ARCSEC = "″"
+DIMENSION_LABELS = {
+    1: "1D — heights",
+    2: "2D — horizontal positions",
+    3: "3D — positions and heights",
+}
+COMPONENT_LABELS = {"en": "position", "h": "height", "enh": "position and height"}
+
+#: Characters that make a spreadsheet treat a text cell as a formula.
+_FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+# --------------------------------------------------------------------------------------
+# number formatting
+
+
+def _fixed(value: float, decimals: int) -> str:
+    """A float with a fixed number of decimals, never printing "-0.000"."""
+    text = f"{value:.{decimals}f}"
+    if text.startswith("-") and not text.strip("-0."):
+        text = text[1:]
+    return text
+
+
+def fmt_length(value: float | None, unit: str, *, blank: str = NOT_APPLICABLE) -> str:
+    """A length in the file's unit to 0.1 mm (4 decimals)."""
+    return blank if value is None else _fixed(value, LENGTH_DECIMALS.get(unit, 4))
+
+
+def fmt_route_length(value: float | None, *, blank: str = NOT_APPLICABLE) -> str:
+    """The length of a leveling route (a sum of ``len=``) to 0.1 of the unit."""
+    return blank if value is None else _fixed(value, 1)
+
+
+def fmt_angle(value_deg: float | None, angle_unit: str, *, blank: str = NOT_APPLICABLE) -> str:
+    """An angle value: D:M:S for dms field books, else decimal degrees to 6 decimals."""
+    if value_deg is None:
+        return blank
+    if angle_unit == "dms":
+        return format_dms(value_deg, 1)
+    return _fixed(value_deg, 6)
+
+
+def fmt_arcsec(value: float | None, *, blank: str = NOT_APPLICABLE) -> str:
+    """Arc-seconds to 0.1″."""
+    return blank if value is None else _fixed(value, 1)
+
+
+def fmt_w(value: float | None, *, blank: str = NOT_APPLICABLE) -> str:
+    """A w-statistic to 2 decimals."""
+    return blank if value is None else _fixed(value, 2)
+
+
+def fmt_ratio(value: float | None, decimals: int = 2, *, blank: str = NOT_APPLICABLE) -> str:
+    """A dimensionless figure (redundancy number, test statistic) to ``decimals``."""
+    return blank if value is None else _fixed(value, decimals)
+
+
+def fmt_azimuth(value_deg: float | None, angle_unit: str, *, blank: str = NOT_APPLICABLE) -> str:
+    """An ellipse azimuth: D:M:S to whole seconds for dms files, else degrees to 2 decimals."""
+    if value_deg is None:
+        return blank
+    return format_dms(value_deg, 0) if angle_unit == "dms" else _fixed(value_deg, 2)
+
+
+def fmt_percent(value: float | None) -> str:
+    """A probability as a percentage (0.95 → "95%")."""
+    return NOT_APPLICABLE if value is None else f"{value * 100:g}%"
+
+
+def length_label(unit: str) -> str:
+    """How a length unit is written in headings."""
+    return LENGTH_LABELS.get(unit, unit)
+
+
+def angle_label(unit: str) -> str:
+    """How angle values are written in headings (decimal degrees for gon files, as in the JSON)."""
+    return ANGLE_LABELS.get(unit, unit)
+
+
+# --------------------------------------------------------------------------------------
+# rows
+
+
+@dataclass(frozen=True, slots=True)
+class Verdict:
+    """The global test in words a surveyor reads at a glance; ``state`` drives the banner."""
+
+    state: str  # "pass", "warn", "fail" or "none"
+    headline: str
+    notes: tuple[str, ...]
+    flagged: int
+    exceeded: int
+
+    @property
+    def detail(self) -> str:
+        """The notes as one paragraph."""
+        return " ".join(self.notes)
+
+
+@dataclass(frozen=True, slots=True)
+class PointRow:
+    """One point, every figure formatted."""
+
+    name: str
+    east: str
+    north: str
+    height: str
+    sd_east: str
+    sd_north: str
+    sd_height: str
+    role: str
+    semi_major: str
+    semi_minor: str
+    azimuth: str
+    in_use: bool
+
+
+@dataclass(frozen=True, slots=True)
+class ObservationRow:
+    """One observation, every figure formatted; ``w_raw`` only serves client-side sorting."""
+
+    line: int
+    kind: str
+    stations: str
+    marks: tuple[str, ...]
+    separator: str
+    observed: str
+    adjusted: str
+    residual: str
+    sd: str
+    redundancy: str
+    w: str
+    mdb: str
+    flagged: bool
+    ignored: bool
+    uncontrolled: bool
+    status: str
+    angular: bool
+    w_raw: float | None
+    residual_raw: float | None
+    redundancy_raw: float | None
+    note: str
+
+
+@dataclass(frozen=True, slots=True)
+class MisclosureRow:
+    """One leveling loop or run, formatted."""
+
+    kind: str
+    route: str
+    marks: tuple[str, ...]
+    misclosure: str
+    length: str
+    allowed: str
+    exceeds: bool
+    status: str
+
+
+def verdict(result: AdjustmentResult) -> Verdict:
+    """The summary sentence of the global test, with the counts of flags and exceeded loops."""
+    s = result.summary
+    flagged = [o.line for o in result.observations if o.flagged]
+    exceeded = sum(1 for m in result.misclosures if m.exceeds)
+    test = s.global_test
+    notes: list[str] = []
+    if test is not None:
+        notes.append(
+            f"Global test (χ², α = {test.alpha:g}): vᵀPv = {fmt_ratio(test.statistic)}, "
+            f"accepted between {fmt_ratio(test.lower)} and {fmt_ratio(test.upper)} "
+            f"for {s.redundancy} degrees of freedom."
+        )
+    if flagged:
+        lines = ", ".join(str(line) for line in flagged[:12]) + (" …" if len(flagged) > 12 else "")
+        noun = "observation" if len(flagged) == 1 else "observations"
+        notes.append(
+            f"{len(flagged)} {noun} flagged by the w-test (|w| > {fmt_w(s.critical_w)}): "
+            f"line{'s' if len(flagged) > 1 else ''} {lines}."
+        )
+    if exceeded:
+        noun = "misclosure exceeds" if exceeded == 1 else "misclosures exceed"
+        notes.append(f"{exceeded} {noun} the allowance.")
+    detail = tuple(notes)
+    if not s.converged:
+        return Verdict("fail", "Not converged: the iterations did not settle — do not use these "
+                       "results", detail, len(flagged), exceeded)
+    if test is None:
+        return Verdict("none", "Not tested: there are no redundant observations, so a blunder "
+                       "cannot be detected", detail, len(flagged), exceeded)
+    if test.passed:
+        state = "warn" if flagged or exceeded else "pass"
+        headline = "Passes: the residuals agree with the a priori standard deviations"
+        if flagged:
+            headline += " — but check the flagged observations"
+        return Verdict(state, headline, detail, len(flagged), exceeded)
+    if test.statistic > test.upper:
+        headline = "Fails: residuals too large — look for blunders"
+    else:
+        headline = ("Fails: residuals smaller than expected — the a priori standard deviations "
+                    "may be too pessimistic")
+    return Verdict("fail", headline, detail, len(flagged), exceeded)
+
+
+def rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:
+    """The summary as (label, value, unit) rows."""
+    s = result.summary
+    test = s.global_test
+    out = [
+        ("Network", DIMENSION_LABELS.get(s.dimension, str(s.dimension)), ""),
+        ("Points", str(s.points), ""),
+        ("Observations", str(s.observations), ""),
+        ("Used in the adjustment", str(s.used_observations), ""),
+        ("Unknowns", str(s.unknowns), ""),
+        ("Redundancy (degrees of freedom)", str(s.redundancy), ""),
+        ("Iterations", f"{s.iterations} ({'converged' if s.converged else 'NOT converged'})", ""),
+        ("Variance factor σ̂₀²", fmt_ratio(s.variance_factor, 3), ""),
+    ]
+    if test is not None:
+        out += [
+            ("Global test statistic vᵀPv", fmt_ratio(test.statistic), ""),
+            ("Acceptance region", f"{fmt_ratio(test.lower)} to {fmt_ratio(test.upper)}", ""),
+            ("Global test", "passed" if test.passed else "failed", ""),
+        ]
+    return out
+
+
+def settings_rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:
+    """The test settings in force, as far as the result records them."""
+    s = result.summary
+    out: list[tuple[str, str, str]] = []
+    if s.global_test is not None:
+        out.append(("Significance of the global test α", f"{s.global_test.alpha:g}", ""))
+    out.append(("Critical value of the w-test", f"|w| > {fmt_w(s.critical_w)}", ""))
+    out.append(("Non-centrality for the MDB λ₀", fmt_ratio(s.lambda0), ""))
+    confidence = next((p.ellipse.confidence for p in result.points if p.ellipse), None)
+    if confidence is not None:
+        out.append(("Confidence of ellipses", fmt_percent(confidence), ""))
+    return out
+
+
+def units_rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:
+    """The units in which the report's figures are given."""
+    unit = length_label(result.length_unit)
+    out = [("Lengths", unit, "")]
+    if any(o.angular for o in result.observations):
+        out.append(("Angles", angle_label(result.angle_unit), ""))
+        out.append(("Angular residuals, sd and MDB", "arc-seconds (″)", ""))
+    return out
+
+
+def datum_rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:
+    """Which points carry the datum: held fixed, or weighted control."""
+    fixed = [p for p in result.points if p.fixed]
+    weighted = [p for p in result.points if p.weighted]
+    out = [(p.name, "held fixed", COMPONENT_LABELS.get(p.fixed, p.fixed)) for p in fixed]
+    out += [(p.name, "weighted control", COMPONENT_LABELS.get(p.weighted, p.weighted))
+            for p in weighted]
+    return out
+
+
+def _role(point: PointResult) -> str:
+    parts = []
+    if point.fixed:
+        parts.append(f"fixed {COMPONENT_LABELS.get(point.fixed, point.fixed)}")
+    if point.weighted:
+        parts.append(f"weighted {COMPONENT_LABELS.get(point.weighted, point.weighted)}")
+    if not point.in_use:
+        parts.append("not observed")
+    return ", ".join(parts) if parts else "adjusted"
+
+
+def point_rows(result: AdjustmentResult) -> list[PointRow]:
+    """Adjusted points in file order."""
+    unit = result.length_unit
+    out = []
+    for p in result.points:
+        e = p.ellipse
+        out.append(PointRow(
+            name=p.name,
+            east=fmt_length(p.east, unit),
+            north=fmt_length(p.north, unit),
+            height=fmt_length(p.height, unit),
+            sd_east=fmt_length(p.sd_east, unit),
+            sd_north=fmt_length(p.sd_north, unit),
+            sd_height=fmt_length(p.sd_height, unit),
+            role=_role(p),
+            semi_major=fmt_length(e.semi_major if e else None, unit),
+            semi_minor=fmt_length(e.semi_minor if e else None, unit),
+            azimuth=fmt_azimuth(e.azimuth if e else None, result.angle_unit),
+            in_use=p.in_use,
+        ))
+    return out
+
+
+def stations(o: ObservationResult) -> str:
+    """The marks of an observation: FROM → TO, or BACK – AT – FORE for an angle."""
+    if o.kind == "angle" and o.at is not None:
+        return f"{o.from_point} – {o.at} – {o.to}"
+    return f"{o.from_point} → {o.to}"
+
+
+def _marks(o: ObservationResult) -> tuple[str, ...]:
+    if o.kind == "angle" and o.at is not None:
+        return (o.from_point, o.at, o.to)
+    return (o.from_point, o.to)
+
+
+def _status(o: ObservationResult, uncontrolled: bool) -> str:
+    if o.flagged:
+        return "flagged"
+    if o.ignored:
+        return "ignored"
+    if uncontrolled:
+        return "uncontrolled"
+    return ""
+
+
+def observation_rows(result: AdjustmentResult) -> list[ObservationRow]:
+    """Observations in file order, each with its residual and test figures formatted."""
+    unit, angle_unit = result.length_unit, result.angle_unit
+    out = []
+    for o in result.observations:
+        if o.angular:
+            value = fmt_angle(o.observed, angle_unit)
+            adjusted = fmt_angle(o.adjusted, angle_unit)
+            residual, sd, mdb = fmt_arcsec(o.residual), fmt_arcsec(o.sd), fmt_arcsec(o.mdb)
+        else:
+            value = fmt_length(o.observed, unit)
+            adjusted = fmt_length(o.adjusted, unit)
+            residual = fmt_length(o.residual, unit)
+            sd, mdb = fmt_length(o.sd, unit), fmt_length(o.mdb, unit)
+        uncontrolled = not o.ignored and o.redundancy is not None and o.w is None
+        out.append(ObservationRow(
+            line=o.line,
+            kind=o.kind,
+            stations=stations(o),
+            marks=_marks(o),
+            separator=" – " if o.kind == "angle" and o.at is not None else " → ",
+            observed=value,
+            adjusted=adjusted,
+            residual=residual,
+            sd=sd,
+            redundancy=fmt_ratio(o.redundancy),
+            w=fmt_w(o.w),
+            mdb=mdb,
+            flagged=o.flagged,
+            ignored=o.ignored,
+            uncontrolled=uncontrolled,
+            status=_status(o, uncontrolled),
+            angular=o.angular,
+            w_raw=o.w,
+            residual_raw=o.residual,
+            redundancy_raw=o.redundancy,
+            note=o.note,
+        ))
+    return out
+
+
+def misclosure_rows(result: AdjustmentResult) -> list[MisclosureRow]:
+    """Loops and runs with their misclosure against the allowance."""
+    unit = result.length_unit
+    out = []
+    for m in result.misclosures:
+        if m.allowed is None:
+            status = "no allowance set"
+        else:
+            status = "exceeds" if m.exceeds else "within"
+        out.append(MisclosureRow(
+            kind=m.kind,
+            route=" → ".join(m.points),
+            marks=tuple(m.points),
+            misclosure=fmt_length(m.misclosure, unit),
+            length=fmt_route_length(m.length),
+            allowed=fmt_length(m.allowed, unit),
+            exceeds=m.exceeds,
+            status=status,
+        ))
+    return out
+
+
+@dataclass(frozen=True, slots=True)
+class Columns:
+    """Which point columns apply, and the unit headings of the observation columns."""
+
+    positions: bool
+    heights: bool
+    ellipses: bool
+    values_unit: str
+    small_unit: str
+    mixed: bool
+
+
+def columns(result: AdjustmentResult) -> Columns:
+    """Decide which columns to show; a mixed table labels angular cells with ″."""
+    unit = length_label(result.length_unit)
+    angular = any(o.angular for o in result.observations)
+    linear = any(not o.angular for o in result.observations)
+    mixed = angular and linear
+    if mixed:
+        values_unit, small_unit = f"{unit} / {angle_label(result.angle_unit)}", f"{unit} / {ARCSEC}"
+    elif angular:
+        values_unit, small_unit = angle_label(result.angle_unit), ARCSEC
+    else:
+        values_unit, small_unit = unit, unit
+    return Columns(
+        positions=any(p.east is not None or p.north is not None for p in result.points),
+        heights=any(p.height is not None for p in result.points),
+        ellipses=any(p.ellipse is not None for p in result.points),
+        values_unit=values_unit,
+        small_unit=small_unit,
+        mixed=mixed,
+    )
+
+
+def context(result: AdjustmentResult) -> dict[str, object]:
+    """Everything the report and the results page lay out."""
+    return {
+        "result": result,
+        "verdict": verdict(result),
+        "summary_rows": rows(result),
+        "settings_rows": settings_rows(result),
+        "units_rows": units_rows(result),
+        "datum_rows": datum_rows(result),
+        "point_rows": point_rows(result),
+        "observation_rows": observation_rows(result),
+        "misclosure_rows": misclosure_rows(result),
+        "columns": columns(result),
+        "length_unit": length_label(result.length_unit),
+        "variance_factor": fmt_ratio(result.summary.variance_factor, 3),
+        "critical_w": fmt_w(result.summary.critical_w),
+        "arcsec": ARCSEC,
+        "version": __version__,
+    }
+
+
+# --------------------------------------------------------------------------------------
+# HTML
+
+
+_environment: jinja2.Environment | None = None
+
+
+def _env() -> jinja2.Environment:
+    global _environment
+    if _environment is None:
+        _environment = jinja2.Environment(
+            loader=jinja2.FileSystemLoader(TEMPLATE_DIR),
+            autoescape=True,
+            undefined=jinja2.StrictUndefined,
+            trim_blocks=True,
+            lstrip_blocks=True,
+        )
+    return _environment
+
+
+def report_css() -> str:
+    """The report's style sheet, read at render time so the file can be edited without a restart."""
+    css = REPORT_CSS.read_text(encoding="utf-8")
+    if "</" in css:
+        raise ValueError(f"{REPORT_CSS} must not contain '</'; it is inlined in a <style> element")
+    return css
+
+
+def style_hash(css: str | None = None) -> str:
+    """The CSP source expression (``'sha256-…'``) that allows the report's inline style."""
+    digest = hashlib.sha256((css if css is not None else report_css()).encode("utf-8")).digest()
+    return f"'sha256-{base64.b64encode(digest).decode('ascii')}'"
+
+
+def _generated_text(generated: datetime | None) -> str:
+    moment = generated if generated is not None else datetime.now(UTC)
+    if moment.tzinfo is None:
+        return moment.strftime("%Y-%m-%d %H:%M")
+    return moment.astimezone(UTC).strftime("%Y-%m-%d %H:%M UTC")
+
+
+def report_html(result: AdjustmentResult, *, generated: datetime | None = None) -> str:
+    """A self-contained printable HTML report (inline CSS, no scripts, no external resources)."""
+    data = context(result)
+    # The CSS is our own file, never user input; Markup keeps autoescape off its '>' selectors.
+    data["css"] = Markup(report_css())
+    data["generated"] = _generated_text(generated)
+    return _env().get_template("report.html").render(data)
+
+
+# --------------------------------------------------------------------------------------
+# CSV
+
+
+def safe_cell(text: str) -> str:
+    """A text cell that a spreadsheet will not run as a formula (leading apostrophe)."""
+    return "'" + text if text.startswith(_FORMULA_STARTS) else text
+
+
+def _number(value: float | None, decimals: int) -> str:
+    return "" if value is None else _fixed(value, decimals)
+
+
+POINT_CSV_HEADER = (
+    "name", "east", "north", "height", "sd_east", "sd_north", "sd_height",
+    "fixed", "weighted", "semi_major", "semi_minor", "azimuth",
+)
+
+
+def points_csv(result: AdjustmentResult) -> str:
+    """Adjusted points as CSV; text cells are guarded against formula injection, numbers are not."""
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\r\n")
+    writer.writerow(POINT_CSV_HEADER)
+    places = LENGTH_DECIMALS.get(result.length_unit, 4)
+    for p in result.points:
+        e = p.ellipse
+        writer.writerow([
+            safe_cell(p.name),
+            _number(p.east, places),
+            _number(p.north, places),
+            _number(p.height, places),
+            _number(p.sd_east, places),
+            _number(p.sd_north, places),
+            _number(p.sd_height, places),
+            safe_cell(p.fixed),
+            safe_cell(p.weighted),
+            _number(e.semi_major if e else None, places),
+            _number(e.semi_minor if e else None, places),
+            _number(e.azimuth if e else None, 4),
+        ])
+    return buffer.getvalue()
+
+
+# --------------------------------------------------------------------------------------
+# plain text
+
+
+def _table(header: Iterable[str], body: list[list[str]], right: set[int]) -> list[str]:
+    head = list(header)
+    widths = [len(h) for h in head]
+    for row in body:
+        widths = [max(w, len(c)) for w, c in zip(widths, row, strict=True)]
+
+    def line(cells: list[str]) -> str:
+        parts = [c.rjust(w) if i in right else c.ljust(w)
+                 for i, (c, w) in enumerate(zip(cells, widths, strict=True))]
+        return "  ".join(parts).rstrip()
+
+    return [line(head), line(["-" * w for w in widths])] + [line(r) for r in body]
+
+
+def report_text(result: AdjustmentResult) -> str:
+    """A compact plain-text summary for the terminal."""
+    v = verdict(result)
+    s = result.summary
+    cols = columns(result)
+    unit = length_label(result.length_unit)
+    title = result.title or result.source or "field book"
+    out = [f"Stationfit {__version__} — {title}"]
+    out.append(f"SHA-256 of the field book: {result.text_sha256}")
+    out.append("")
+    head, _, rest = v.headline.partition(": ")
+    out.append(f"{head.upper()}: {rest}")
+    out += list(v.notes)
+    out.append(
+        f"{s.points} points, {s.used_observations} of {s.observations} observations used, "
+        f"{s.unknowns} unknowns, redundancy {s.redundancy}, "
+        f"variance factor {fmt_ratio(s.variance_factor, 3)}"
+    )
+
+    header = ["point"]
+    right = set()
+    if cols.positions:
+        header += [f"east {unit}", f"north {unit}", "sd E", "sd N"]
+    if cols.heights:
+        header += [f"height {unit}", "sd H"]
+    if cols.ellipses:
+        header += ["ellipse a", "b", "az"]
+    header.append("datum")
+    right = set(range(1, len(header) - 1))
+    body = []
+    for p in point_rows(result):
+        row = [p.name]
+        if cols.positions:
+            row += [p.east, p.north, p.sd_east, p.sd_north]
+        if cols.heights:
+            row += [p.height, p.sd_height]
+        if cols.ellipses:
+            row += [p.semi_major, p.semi_minor, p.azimuth]
+        row.append(p.role)
+        body.append(row)
+    out += ["", "Points"] + _table(header, body, right)
+
+    exceeded = [m for m in misclosure_rows(result) if m.exceeds]
+    if exceeded:
+        out += ["", "Misclosures over the allowance"]
+        out += _table(["kind", "route", f"misclosure {unit}", "allowed"],
+                      [[m.kind, m.route, m.misclosure, m.allowed] for m in exceeded], {2, 3})
+
+    # the largest |w| first: that is the observation to suspect first
+    flagged = sorted((o for o in observation_rows(result) if o.flagged),
+                     key=lambda o: -abs(o.w_raw or 0.0))
+    out += ["", f"Flagged observations (|w| > {fmt_w(s.critical_w)}, largest first)"]
+    if flagged:
+        out += _table(
+            ["line", "kind", "marks", "residual", "w", "MDB"],
+            [[str(o.line), o.kind, o.stations,
+              o.residual + (ARCSEC if o.angular else f" {unit}"), o.w,
+              o.mdb + (ARCSEC if o.angular else f" {unit}")] for o in flagged],
+            {0, 3, 4, 5},
+        )
+    else:
+        out.append("none")
+
+    if result.warnings:
+        out += ["", "Warnings"]
+        out += [f"{i}. {w}" for i, w in enumerate(result.warnings, start=1)]
+    out += ["", f"CAUTION: {result.caution}", ""]
+    return "\n".join(out)

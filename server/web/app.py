@@ -1,0 +1,288 @@
+"""The web application: app factory, security headers, upload limit and error pages."""
+
+from __future__ import annotations
+
+import logging
+from datetime import datetime
+from pathlib import Path
+from typing import Any
+
+import jinja2
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import HTMLResponse, JSONResponse, Response
+from fastapi.staticfiles import StaticFiles
+from fastapi.templating import Jinja2Templates
+from starlette.datastructures import Headers, MutableHeaders
+from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+from .. import __version__
+from ..errors import FieldbookError, NetworkError, SurveyError
+from ..result import CAUTION
+from ..settings import DEFAULT_MAX_UPLOAD_BYTES
+from ..storage import Store, error_record
+
+logger = logging.getLogger("stationfit.web")
+
+#: The checkout's top folder: templates, static files and demos come from here, never a request.
+REPO_ROOT = Path(__file__).resolve().parents[2]
+TEMPLATE_DIR = REPO_ROOT / "templates"
+STATIC_DIR = REPO_ROOT / "static"
+DEMO_DIR = REPO_ROOT / "demo_projects"
+DATABASE_NAME = "stationfit.sqlite3"
+
+CONTENT_SECURITY_POLICY = (
+    "default-src 'none'; script-src 'self'; style-src 'self'; img-src 'self' data:; "
+    "font-src 'self'; connect-src 'self'; form-action 'self'; base-uri 'none'; "
+    "frame-ancestors 'none'"
+)
+SECURITY_HEADERS = {
+    "Content-Security-Policy": CONTENT_SECURITY_POLICY,
+    "X-Content-Type-Options": "nosniff",
+    "Referrer-Policy": "no-referrer",
+    "X-Frame-Options": "DENY",
+    "Cross-Origin-Opener-Policy": "same-origin",
+    "Permissions-Policy": "camera=(), microphone=(), geolocation=()",
+}
+
+
+def is_api(path: str) -> bool:
+    """True for the JSON API, whose errors are JSON rather than pages."""
+    return path == "/api" or path.startswith("/api/")
+
+
+def _when(value: str) -> str:
+    """An ISO timestamp as 'YYYY-MM-DD HH:MM UTC'."""
+    try:
+        return datetime.fromisoformat(value).strftime("%Y-%m-%d %H:%M UTC")
+    except ValueError:
+        return value
+
+
+def _sentence(value: str) -> str:
+    """Capitalise the first letter and end with a full stop."""
+    text = value.strip()
+    if not text:
+        return text
+    text = text[0].upper() + text[1:]
+    return text if text.endswith((".", "!", "?")) else text + "."
+
+
+def make_templates() -> Jinja2Templates:
+    """Jinja2 templates over ``templates/`` with autoescape on and strict undefined names."""
+    env = jinja2.Environment(
+        loader=jinja2.FileSystemLoader(TEMPLATE_DIR),
+        autoescape=True,
+        undefined=jinja2.StrictUndefined,
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
+    env.globals.update(caution=CAUTION, version=__version__)
+    env.filters["when"] = _when
+    env.filters["sentence"] = _sentence
+    return Jinja2Templates(env=env)
+
+
+# --------------------------------------------------------------------------------------
+# middleware
+
+
+class SecurityHeadersMiddleware:
+    """Add the security headers to every response (a response may set its own stricter CSP)."""
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+
+        async def send_with_headers(message: Message) -> None:
+            if message["type"] == "http.response.start":
+                headers = MutableHeaders(scope=message)
+                for key, value in SECURITY_HEADERS.items():
+                    if key not in headers:
+                        headers[key] = value
+            await send(message)
+
+        await self.app(scope, receive, send_with_headers)
+
+
+class _BodyTooLarge(Exception):
+    """Raised inside the app when the request body passes the limit."""
+
+
+class UploadLimitMiddleware:
+    """Refuse bodies over the limit with 413: by Content-Length up front, then by counting."""
+
+    def __init__(self, app: ASGIApp, max_bytes: int, templates: Jinja2Templates) -> None:
+        self.app = app
+        self.max_bytes = max_bytes
+        self.templates = templates
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        declared = Headers(scope=scope).get("content-length")
+        if declared is not None:
+            try:
+                too_big = int(declared) > self.max_bytes
+            except ValueError:
+                too_big = False
+            if too_big:
+                await self._refuse(scope, receive, send)
+                return
+
+        received = 0
+        exceeded = False
+
+        async def counting_receive() -> Message:
+            nonlocal received, exceeded
+            message = await receive()
+            if message["type"] == "http.request":
+                received += len(message.get("body", b""))
+                if received > self.max_bytes:
+                    exceeded = True
+                    raise _BodyTooLarge
+            return message
+
+        async def guarded_send(message: Message) -> None:
+            # Once the limit is passed, whatever the app answers is replaced by the 413 below.
+            if not exceeded:
+                await send(message)
+
+        try:
+            await self.app(scope, counting_receive, guarded_send)
+        except Exception:
+            if not exceeded:
+                raise
+        if exceeded:
+            await self._refuse(scope, receive, send)
+
+    async def _refuse(self, scope: Scope, receive: Receive, send: Send) -> None:
+        limit = _megabytes(self.max_bytes)
+        message = (f"The upload is larger than the limit of {limit}. Split the field book, "
+                   "or ask the administrator to raise the limit.")
+        response: Response
+        if is_api(scope.get("path", "")):
+            response = JSONResponse({"error": message}, status_code=413)
+        else:
+            response = _error_page(self.templates, scope, 413, "Upload too large", message)
+        response.headers["Connection"] = "close"
+        await response(scope, receive, send)
+
+
+def _megabytes(size: int) -> str:
+    return f"{size / (1024 * 1024):g} MB" if size >= 1024 * 1024 else f"{size} bytes"
+
+
+# --------------------------------------------------------------------------------------
+# error pages
+
+
+def _error_page(
+    templates: Jinja2Templates,
+    scope: Scope,
+    status: int,
+    heading: str,
+    message: str,
+    **extra: Any,
+) -> HTMLResponse:
+    request = Request(scope)
+    context = {"status": status, "heading": heading, "message": message, "issues": [],
+               "points": [], **extra}
+    return templates.TemplateResponse(request, "error.html", context, status_code=status)
+
+
+def survey_error_payload(exc: SurveyError) -> dict[str, Any]:
+    """The JSON body for an input error: line-numbered ``errors`` or ``error`` with ``points``."""
+    record = error_record(exc)
+    if isinstance(exc, FieldbookError):
+        return {"error": record["message"], "errors": record["issues"]}
+    if isinstance(exc, NetworkError):
+        return {"error": exc.message, "points": list(exc.points)}
+    return {"error": str(exc)}
+
+
+def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
+    """Errors as JSON under /api and as friendly pages elsewhere; never a traceback."""
+
+    @app.exception_handler(SurveyError)
+    async def survey_error(request: Request, exc: SurveyError) -> Response:
+        """A field book or network problem: 422 with what to fix."""
+        if is_api(request.url.path):
+            return JSONResponse(survey_error_payload(exc), status_code=422)
+        payload = survey_error_payload(exc)
+        return _error_page(templates, request.scope, 422, "The field book could not be adjusted",
+                           payload["error"], issues=payload.get("errors", []),
+                           points=payload.get("points", []))
+
+    @app.exception_handler(StarletteHTTPException)
+    async def http_error(request: Request, exc: StarletteHTTPException) -> Response:
+        """404, 405, 400 and friends."""
+        detail = str(exc.detail) if exc.detail else "Request refused"
+        if is_api(request.url.path):
+            return JSONResponse({"error": detail}, status_code=exc.status_code,
+                                headers=getattr(exc, "headers", None))
+        heading = "Not found" if exc.status_code == 404 else f"Request refused ({exc.status_code})"
+        return _error_page(templates, request.scope, exc.status_code, heading, detail)
+
+    @app.exception_handler(RequestValidationError)
+    async def validation_error(request: Request, exc: RequestValidationError) -> Response:
+        """A malformed request (not a field book problem)."""
+        message = "The request is not in the expected form."
+        if is_api(request.url.path):
+            return JSONResponse({"error": message}, status_code=422)
+        return _error_page(templates, request.scope, 400, "Bad request", message)
+
+    @app.exception_handler(Exception)
+    async def server_error(request: Request, exc: Exception) -> Response:
+        """The generic 500: logged on the server, never shown to the user."""
+        logger.error("unhandled error on %s %s", request.method, request.url.path, exc_info=exc)
+        message = ("Something went wrong on the server. Your field book was not changed; "
+                   "please try again, and report the problem if it persists.")
+        response: Response
+        if is_api(request.url.path):
+            response = JSONResponse({"error": "internal server error"}, status_code=500)
+        else:
+            response = _error_page(templates, request.scope, 500, "Server error", message)
+        # This handler runs outside the middleware stack, so add the headers here too.
+        for key, value in SECURITY_HEADERS.items():
+            response.headers.setdefault(key, value)
+        return response
+
+
+# --------------------------------------------------------------------------------------
+# factory
+
+
+def create_app(
+    data_dir: Path,
+    *,
+    max_upload_bytes: int = DEFAULT_MAX_UPLOAD_BYTES,
+    demo_dir: Path | None = None,
+) -> FastAPI:
+    """Build the web application storing projects under ``data_dir``."""
+    from . import routes
+
+    app = FastAPI(
+        title="Stationfit",
+        version=__version__,
+        docs_url=None,
+        redoc_url=None,
+        openapi_url="/api/openapi.json",
+    )
+    templates = make_templates()
+    app.state.store = Store(Path(data_dir) / DATABASE_NAME)
+    app.state.templates = templates
+    app.state.max_upload_bytes = max_upload_bytes
+    app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
+    app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
+    app.include_router(routes.router)
+    _install_handlers(app, templates)
+    app.add_middleware(UploadLimitMiddleware, max_bytes=max_upload_bytes, templates=templates)
+    app.add_middleware(SecurityHeadersMiddleware)
+    return app

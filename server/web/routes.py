@@ -1,0 +1,399 @@
+"""Routes: read the request, call the pipeline or the store, render.  No figures computed here."""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from fastapi import APIRouter, HTTPException, Request
+from fastapi.responses import (
+    HTMLResponse,
+    JSONResponse,
+    PlainTextResponse,
+    RedirectResponse,
+    Response,
+)
+from fastapi.templating import Jinja2Templates
+from starlette.concurrency import run_in_threadpool
+from starlette.datastructures import UploadFile
+
+from .. import report
+from ..errors import SurveyError
+from ..pipeline import adjust_fieldbook
+from ..result import AdjustmentResult
+from ..storage import Project, Run, Store
+from .app import survey_error_payload
+
+router = APIRouter()
+
+_UNSAFE_FILENAME = re.compile(r"[^A-Za-z0-9._-]+")
+_LINE_BREAK = re.compile(r"\r\n|\r|\n")
+_MAX_NAME = 200
+
+
+# --------------------------------------------------------------------------------------
+# helpers
+
+
+@dataclass(frozen=True, slots=True)
+class Upload:
+    """A field book as received: raw bytes, the client's file name and an optional project name."""
+
+    data: bytes
+    filename: str
+    name: str
+
+
+def _store(request: Request) -> Store:
+    return request.app.state.store  # type: ignore[no-any-return]
+
+
+def _templates(request: Request) -> Jinja2Templates:
+    return request.app.state.templates  # type: ignore[no-any-return]
+
+
+def _render(
+    request: Request, name: str, context: dict[str, Any], status: int = 200
+) -> HTMLResponse:
+    return _templates(request).TemplateResponse(request, name, context, status_code=status)
+
+
+def _clean_filename(filename: str | None) -> str:
+    """The last path component of a client file name, without control characters."""
+    base = re.split(r"[\\/]", filename or "")[-1]
+    return "".join(ch for ch in base if ch.isprintable())[:_MAX_NAME]
+
+
+def _download_name(project: Project, suffix: str) -> str:
+    """A file name safe for Content-Disposition, from the upload's name."""
+    stem = Path(project.filename).stem if project.filename else project.name
+    safe = _UNSAFE_FILENAME.sub("_", stem).strip("._-")[:60]
+    return f"{safe or 'stationfit'}{suffix}"
+
+
+def _attachment(content: str | bytes, media_type: str, filename: str) -> Response:
+    return Response(content, media_type=media_type,
+                    headers={"Content-Disposition": f'attachment; filename="{filename}"'})
+
+
+async def _read_upload(request: Request, *, with_text: bool) -> Upload | None:
+    """The ``fieldbook`` multipart field (file or text); the web form may paste into ``text``."""
+    limit = request.app.state.max_upload_bytes
+    async with request.form(max_files=2, max_fields=8, max_part_size=limit) as form:
+        item = form.get("fieldbook")
+        data, filename = b"", ""
+        if isinstance(item, UploadFile):
+            data, filename = await item.read(), _clean_filename(item.filename)
+        elif isinstance(item, str):
+            data = item.encode("utf-8")
+        pasted = form.get("text") if with_text else None
+        if not data and isinstance(pasted, str) and pasted.strip():
+            data, filename = pasted.encode("utf-8"), ""
+        name = form.get("name")
+        name = name.strip()[:_MAX_NAME] if isinstance(name, str) else ""
+    if not data and not filename:
+        return None
+    return Upload(data=data, filename=filename, name=name)
+
+
+def _submit(
+    store: Store, upload: Upload
+) -> tuple[str, AdjustmentResult | None, SurveyError | None]:
+    """Adjust, then store the project and its run (failed runs too); the upload is always kept."""
+    source = upload.filename or "pasted.fieldbook"
+    try:
+        result = adjust_fieldbook(upload.data, source=source)
+    except SurveyError as exc:
+        project_id = store.create_project(upload.name, upload.filename, upload.data)
+        store.add_run(project_id, error=exc)
+        return project_id, None, exc
+    except Exception:
+        # keep the upload, then let the generic 500 page answer
+        store.create_project(upload.name, upload.filename, upload.data)
+        raise
+    project_id = store.create_project(upload.name or result.title, upload.filename, upload.data)
+    store.add_run(project_id, result=result)
+    return project_id, result, None
+
+
+def _project_or_404(store: Store, project_id: str) -> Project:
+    project = store.get_project(project_id)
+    if project is None:
+        raise HTTPException(status_code=404, detail="There is no project with this id.")
+    return project
+
+
+def _result_of(project: Project, run: Run | None) -> AdjustmentResult | None:
+    """The stored result object; adjusted again only if it was stored by an incompatible version."""
+    if run is None or not run.finished:
+        return None
+    result = run.result()
+    if result is None:
+        try:
+            result = adjust_fieldbook(project.fieldbook, source=project.filename)
+        except SurveyError:
+            return None
+    return result
+
+
+def _finished_result(store: Store, project_id: str) -> tuple[Project, AdjustmentResult]:
+    project = _project_or_404(store, project_id)
+    result = _result_of(project, store.latest_run(project_id))
+    if result is None:
+        raise HTTPException(status_code=404, detail="This project has no adjustment result.")
+    return project, result
+
+
+def display_name(name: str, filename: str, title: str = "") -> str:
+    """What a project is called on the pages."""
+    return name or title or filename or "Untitled field book"
+
+
+def _issues_with_text(project: Project, issues: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Field book errors with the text of their line, for the error list."""
+    lines = _LINE_BREAK.split(project.text)
+    out = []
+    for issue in issues:
+        number = issue.get("line", 0)
+        text = lines[number - 1] if isinstance(number, int) and 0 < number <= len(lines) else ""
+        out.append({**issue, "text": text[:300]})
+    return out
+
+
+def _demos(request: Request) -> dict[str, Path]:
+    """Demo field books by name, from the listing of the configured folder."""
+    folder: Path = request.app.state.demo_dir
+    if not folder.is_dir():
+        return {}
+    return {p.stem: p for p in sorted(folder.glob("*.fieldbook")) if p.is_file()}
+
+
+def _list_verdict(run: Run | None) -> tuple[str, str]:
+    """(state, words) for a project's latest run in the list."""
+    if run is None:
+        return "none", "Not adjusted"
+    if not run.finished or run.summary is None:
+        return "fail", "Could not adjust"
+    summary = run.summary
+    test = summary.get("global_test")
+    if not summary.get("converged", True):
+        return "fail", "Not converged"
+    if test is None:
+        return "none", "Not tested (no redundancy)"
+    flagged = summary.get("flagged", 0)
+    if test.get("passed"):
+        return ("warn", f"Passes, {flagged} flagged") if flagged else ("pass", "Passes")
+    return "fail", f"Fails, {flagged} flagged" if flagged else "Fails"
+
+
+def _project_json(project_id: str, name: str, filename: str, created: str, sha256: str,
+                  run: Run | None) -> dict[str, Any]:
+    return {
+        "id": project_id,
+        "name": name,
+        "filename": filename,
+        "created": created,
+        "sha256": sha256,
+        "status": None if run is None else run.status,
+    }
+
+
+def _run_payload(run: Run | None) -> dict[str, Any]:
+    """``result`` (the contract JSON or null) plus the error of a failed run."""
+    if run is None:
+        return {"result": None}
+    if run.finished:
+        return {"result": run.result_json}
+    error = run.error or {}
+    payload: dict[str, Any] = {"result": None, "error": error.get("message", "")}
+    if "issues" in error:
+        payload["errors"] = error["issues"]
+    if "points" in error:
+        payload["points"] = error["points"]
+    return payload
+
+
+# --------------------------------------------------------------------------------------
+# pages
+
+
+@router.get("/", response_class=HTMLResponse)
+def upload_page(request: Request) -> HTMLResponse:
+    """The upload form and the demo projects."""
+    return _render(request, "index.html", {"demos": list(_demos(request)), "problem": "",
+                                           "limit": request.app.state.max_upload_bytes})
+
+
+@router.post("/projects")
+async def create_project(request: Request) -> Response:
+    """Store an uploaded field book, adjust it and show the results."""
+    upload = await _read_upload(request, with_text=True)
+    if upload is None:
+        return _render(request, "index.html", {
+            "demos": list(_demos(request)),
+            "problem": "Choose a field book file or paste its text, then press Adjust.",
+            "limit": request.app.state.max_upload_bytes,
+        }, status=400)
+    project_id, _, _ = await run_in_threadpool(_submit, _store(request), upload)
+    return RedirectResponse(f"/projects/{project_id}", status_code=303)
+
+
+@router.get("/projects", response_class=HTMLResponse)
+def project_list(request: Request) -> HTMLResponse:
+    """Every stored project with its latest verdict."""
+    items = []
+    for p in _store(request).list_projects():
+        summary = (p.latest.summary or {}) if p.latest else {}
+        state, words = _list_verdict(p.latest)
+        items.append({"id": p.id, "name": display_name(p.name, p.filename), "filename": p.filename,
+                      "created": p.created, "points": summary.get("points"),
+                      "observations": summary.get("observations"), "state": state,
+                      "verdict": words})
+    return _render(request, "projects.html", {"projects": items})
+
+
+@router.get("/projects/{project_id}", response_class=HTMLResponse)
+def project_page(request: Request, project_id: str) -> HTMLResponse:
+    """The results of a project's latest adjustment, or what stopped it."""
+    store = _store(request)
+    project = _project_or_404(store, project_id)
+    run = store.latest_run(project_id)
+    result = _result_of(project, run)
+    context: dict[str, Any] = {
+        "project": project,
+        "run": run,
+        "name": display_name(project.name, project.filename, result.title if result else ""),
+        "error": None,
+        "issues": [],
+    }
+    if result is not None:
+        context.update(report.context(result))
+    elif run is not None and run.error is not None:
+        context["error"] = run.error
+        context["issues"] = _issues_with_text(project, run.error.get("issues", []))
+    return _render(request, "results.html", context)
+
+
+@router.get("/projects/{project_id}/report.html")
+def project_report(project_id: str, request: Request) -> Response:
+    """The printable report, as a download; its inline style is allowed by hash only."""
+    project, result = _finished_result(_store(request), project_id)
+    css = report.report_css()
+    response = _attachment(report.report_html(result), "text/html; charset=utf-8",
+                           _download_name(project, "-report.html"))
+    response.headers["Content-Security-Policy"] = (
+        f"default-src 'none'; style-src {report.style_hash(css)}; base-uri 'none'; "
+        "form-action 'none'; frame-ancestors 'none'"
+    )
+    return response
+
+
+@router.get("/projects/{project_id}/points.csv")
+def project_points_csv(project_id: str, request: Request) -> Response:
+    """The adjusted points as CSV."""
+    project, result = _finished_result(_store(request), project_id)
+    return _attachment(report.points_csv(result), "text/csv; charset=utf-8",
+                       _download_name(project, "-points.csv"))
+
+
+@router.get("/projects/{project_id}/result.json")
+def project_result_json(project_id: str, request: Request) -> Response:
+    """The contract JSON of the latest finished run."""
+    store = _store(request)
+    project = _project_or_404(store, project_id)
+    run = store.latest_run(project_id)
+    if run is None or run.result_json is None:
+        raise HTTPException(status_code=404, detail="This project has no adjustment result.")
+    response = JSONResponse(run.result_json)
+    response.headers["Content-Disposition"] = (
+        f'attachment; filename="{_download_name(project, "-result.json")}"'
+    )
+    return response
+
+
+@router.get("/projects/{project_id}/fieldbook")
+def project_fieldbook(project_id: str, request: Request) -> Response:
+    """The field book exactly as uploaded."""
+    project = _project_or_404(_store(request), project_id)
+    return _attachment(project.fieldbook, "text/plain; charset=utf-8",
+                       _download_name(project, ".fieldbook"))
+
+
+@router.get("/demos/{name}")
+def demo_text(name: str, request: Request) -> PlainTextResponse:
+    """A demo field book as plain text (looked up by name, never by path)."""
+    path = _demos(request).get(name)
+    if path is None:
+        raise HTTPException(status_code=404, detail="There is no demo project of that name.")
+    return PlainTextResponse(path.read_bytes(), headers={"Cache-Control": "no-cache"})
+
+
+@router.post("/demos/{name}")
+async def demo_open(name: str, request: Request) -> Response:
+    """Store a demo as a new project, adjust it and show the results."""
+    path = _demos(request).get(name)
+    if path is None:
+        raise HTTPException(status_code=404, detail="There is no demo project of that name.")
+    upload = Upload(data=path.read_bytes(), filename=path.name, name="")
+    project_id, _, _ = await run_in_threadpool(_submit, _store(request), upload)
+    return RedirectResponse(f"/projects/{project_id}", status_code=303)
+
+
+# --------------------------------------------------------------------------------------
+# JSON API (shared/spec/result.md)
+
+
+_MISSING_FIELD = {"error": "send the field book in the multipart field 'fieldbook'"}
+
+
+@router.post("/api/adjust")
+async def api_adjust(request: Request) -> JSONResponse:
+    """Adjust without storing: the result JSON, or 422 with what to fix."""
+    upload = await _read_upload(request, with_text=False)
+    if upload is None:
+        return JSONResponse(_MISSING_FIELD, status_code=422)
+    result = await run_in_threadpool(
+        adjust_fieldbook, upload.data, source=upload.filename or "upload.fieldbook"
+    )
+    return JSONResponse(result.to_json_dict())
+
+
+@router.post("/api/projects")
+async def api_create_project(request: Request) -> JSONResponse:
+    """Store and adjust: ``{"id", "result"}``, with ``result`` null and the error when it failed."""
+    upload = await _read_upload(request, with_text=False)
+    if upload is None:
+        return JSONResponse(_MISSING_FIELD, status_code=422)
+    project_id, result, error = await run_in_threadpool(_submit, _store(request), upload)
+    body: dict[str, Any] = {"id": project_id,
+                            "result": None if result is None else result.to_json_dict()}
+    if error is not None:
+        body.update(survey_error_payload(error))
+    return JSONResponse(body, status_code=201,
+                        headers={"Location": f"/api/projects/{project_id}"})
+
+
+@router.get("/api/projects")
+def api_projects(request: Request) -> JSONResponse:
+    """Every stored project with the summary of its latest run."""
+    projects = []
+    for p in _store(request).list_projects():
+        item = _project_json(p.id, p.name, p.filename, p.created, p.sha256, p.latest)
+        item["summary"] = p.latest.summary if p.latest else None
+        projects.append(item)
+    return JSONResponse({"projects": projects})
+
+
+@router.get("/api/projects/{project_id}")
+def api_project(project_id: str, request: Request) -> JSONResponse:
+    """One project with its latest result."""
+    store = _store(request)
+    project = _project_or_404(store, project_id)
+    run = store.latest_run(project_id)
+    body = _project_json(project.id, project.name, project.filename, project.created,
+                         project.sha256, run)
+    body.update(_run_payload(run))
+    return JSONResponse(body)
+

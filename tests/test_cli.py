@@ -1,0 +1,83 @@
+"""The command line: exit statuses, stdout/stderr split and the JSON contract's keys."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMOS = sorted((ROOT / "demo_projects").glob("*.fieldbook"))
+
+
+def run(*args: str, cwd: Path = ROOT) -> subprocess.CompletedProcess[str]:
+    return subprocess.run(
+        [sys.executable, "-m", "server", *args], cwd=cwd, capture_output=True, text=True, timeout=120
+    )
+
+
+@pytest.mark.parametrize("demo", DEMOS, ids=lambda p: p.stem)
+def test_every_demo_adjusts_with_json_on_stdout_alone(demo):
+    proc = run("adjust", str(demo), "--json")
+    assert proc.returncode == 0, proc.stderr
+    data = json.loads(proc.stdout)  # nothing but the JSON object on stdout
+    assert set(data) >= {"format", "units", "summary", "points", "observations",
+                         "misclosures", "relative", "warnings", "caution"}
+    assert set(data["summary"]) >= {"dimension", "points", "observations", "used_observations",
+                                    "unknowns", "redundancy", "iterations", "converged",
+                                    "variance_factor", "global_test"}
+    for obs in data["observations"]:
+        assert set(obs) >= {"line", "kind", "from", "at", "to", "observed", "adjusted", "residual",
+                            "sd", "redundancy", "w", "mdb", "flagged", "ignored"}
+    for point in data["points"]:
+        assert set(point) >= {"name", "east", "north", "height", "sd_east", "sd_north",
+                              "sd_height", "fixed", "weighted", "ellipse"}
+    assert "licensed" in data["caution"]
+
+
+def test_field_book_errors_exit_2_with_file_and_line(tmp_path):
+    book = tmp_path / "bad.fieldbook"
+    book.write_text("defaults level=1mm\npoint A height=1 fix\nlevl A B 0.5\nlevel A B nan\n")
+    proc = run("adjust", str(book), "--json")
+    assert proc.returncode == 2
+    assert proc.stdout == ""
+    lines = proc.stderr.strip().splitlines()
+    assert any(line.startswith(f"{book}:3:") and "level" in line for line in lines)
+    assert any(line.startswith(f"{book}:4:") for line in lines)
+    assert "Traceback" not in proc.stderr
+
+
+def test_network_that_cannot_be_adjusted_exits_3_naming_points(tmp_path):
+    book = tmp_path / "nodatum.fieldbook"
+    book.write_text("defaults level=1mm\nlevel P Q +1.0\nlevel Q P -1.0\n")
+    proc = run("adjust", str(book))
+    assert proc.returncode == 3
+    assert "P" in proc.stderr and "Q" in proc.stderr and "datum" in proc.stderr
+    assert "Traceback" not in proc.stderr
+
+
+def test_unreadable_file_is_reported_without_traceback(tmp_path):
+    proc = run("adjust", str(tmp_path / "missing.fieldbook"))
+    assert proc.returncode not in (0, 2, 3)
+    assert "cannot read" in proc.stderr and "Traceback" not in proc.stderr
+
+
+def test_numerical_core_imports_without_the_web_stack():
+    """The core (parser to result) must not need FastAPI or Jinja2."""
+    code = (
+        "import sys\n"
+        "class Block:\n"
+        "    def find_spec(self, name, path=None, target=None):\n"
+        "        if name.split('.')[0] in ('fastapi', 'jinja2', 'starlette', 'uvicorn'):\n"
+        "            raise ImportError('blocked ' + name)\n"
+        "sys.meta_path.insert(0, Block())\n"
+        "from server.pipeline import adjust_fieldbook\n"
+        "r = adjust_fieldbook('defaults level=1mm\\npoint A height=0 fix\\nlevel A B 1\\nlevel A B 1.001\\n')\n"
+        "print(r.summary.redundancy)\n"
+    )
+    proc = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.strip() == "1"

@@ -1,0 +1,183 @@
+"""The project store: field books kept byte for byte, runs kept with their results or errors."""
+
+from __future__ import annotations
+
+import hashlib
+import sqlite3
+import threading
+from contextlib import closing
+from pathlib import Path
+
+import pytest
+
+from server.errors import FieldbookError, NetworkError
+from server.pipeline import adjust_fieldbook
+from server.storage import Store, is_valid_id
+
+DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"
+
+
+def _query(db: Path, sql: str) -> tuple | None:
+    """Run one statement on a separate raw connection, closed afterwards."""
+    with closing(sqlite3.connect(db)) as raw:
+        row = raw.execute(sql).fetchone()
+        raw.commit()
+        return row
+
+
+@pytest.fixture
+def db(tmp_path: Path) -> Path:
+    return tmp_path / "data" / "stationfit.sqlite3"
+
+
+@pytest.fixture(scope="module")
+def blunder_bytes() -> bytes:
+    return (DEMOS / "leveling_blunder.fieldbook").read_bytes()
+
+
+def test_project_and_result_survive_reopening_the_store(db, blunder_bytes):
+    result = adjust_fieldbook(blunder_bytes, source="leveling_blunder.fieldbook")
+    store = Store(db)
+    project_id = store.create_project("Kestrel Ridge", "leveling_blunder.fieldbook", blunder_bytes)
+    store.add_run(project_id, result=result)
+    del store
+
+    reopened = Store(db)
+    project = reopened.get_project(project_id)
+    assert project is not None
+    assert project.fieldbook == blunder_bytes
+    assert project.sha256 == hashlib.sha256(blunder_bytes).hexdigest() == result.text_sha256
+    assert (project.name, project.filename) == ("Kestrel Ridge", "leveling_blunder.fieldbook")
+    run = reopened.latest_run(project_id)
+    assert run is not None and run.finished
+    # the API serves the contract JSON unchanged; the pages rebuild the very same result object
+    assert run.result_json == result.to_json_dict()
+    assert run.result() == result
+
+
+def test_failed_run_keeps_line_numbers_and_the_upload(db):
+    text = b"defaults level=1mm\nlevel A B\nlevle A B 1.0\n"
+    with pytest.raises(FieldbookError) as caught:
+        adjust_fieldbook(text)
+    store = Store(db)
+    project_id = store.create_project("", "bad.fieldbook", text)
+    store.add_run(project_id, error=caught.value)
+    run = Store(db).latest_run(project_id)
+    assert run is not None and run.status == "failed" and run.result_json is None
+    assert run.error["kind"] == "fieldbook"
+    assert [issue["line"] for issue in run.error["issues"]] == [2, 3]
+    assert run.result() is None
+    assert Store(db).get_project(project_id).fieldbook == text
+
+
+def test_network_error_keeps_the_point_names(db):
+    store = Store(db)
+    project_id = store.create_project("", "", "defaults level=1mm\nlevel A B 1.0\n")
+    store.add_run(project_id, error=NetworkError("no height datum", ["A", "B"]))
+    error = store.latest_run(project_id).error
+    assert error == {"kind": "network", "message": "no height datum", "points": ["A", "B"]}
+
+
+def test_bytes_that_are_not_utf8_are_stored_unchanged(db):
+    raw = b"title \"caf\xe9\"\r\nlevel A B 1.0\r\n"
+    store = Store(db)
+    project = store.get_project(store.create_project("latin-1", "old.fieldbook", raw))
+    assert project.fieldbook == raw
+    assert "\ufffd" in project.text  # shown with a replacement character, stored exactly
+
+
+def test_runs_are_kept_in_order_and_latest_is_newest(db, blunder_bytes):
+    store = Store(db)
+    project_id = store.create_project("p", "f.fieldbook", blunder_bytes)
+    first = store.add_run(project_id, error="stopped")
+    second = store.add_run(project_id, result=adjust_fieldbook(blunder_bytes))
+    assert [r.id for r in store.runs(project_id)] == [first, second]
+    assert store.latest_run(project_id).id == second
+    (listing,) = store.list_projects()
+    assert listing.latest is not None and listing.latest.id == second
+    assert listing.latest.summary["global_test"]["passed"] is False
+    assert listing.latest.summary["flagged"] == 1  # line 38 of the blunder demo
+
+
+def test_list_is_newest_first(db):
+    store = Store(db)
+    ids = [store.create_project(f"p{i}", "", "x") for i in range(3)]
+    assert [p.id for p in store.list_projects()] == ids[::-1]
+    assert all(p.latest is None for p in store.list_projects())
+
+
+def test_delete_removes_the_project_and_its_runs(db):
+    store = Store(db)
+    project_id = store.create_project("p", "", "x")
+    store.add_run(project_id, error="stopped")
+    assert store.delete_project(project_id) is True
+    assert store.get_project(project_id) is None
+    assert store.latest_run(project_id) is None
+    assert store.delete_project(project_id) is False
+    assert _query(db, "SELECT COUNT(*) FROM runs") == (0,)
+
+
+def test_a_run_needs_an_existing_project_and_leaves_nothing_behind_on_failure(db):
+    store = Store(db)
+    with pytest.raises(sqlite3.IntegrityError):
+        store.add_run("0" * 32, error="orphan")
+    assert _query(db, "SELECT COUNT(*) FROM runs") == (0,)
+
+
+def test_a_run_is_either_a_result_or_an_error(db):
+    store = Store(db)
+    project_id = store.create_project("p", "", "x")
+    with pytest.raises(ValueError):
+        store.add_run(project_id)
+
+
+@pytest.mark.parametrize(
+    "bad", ["", "../../etc/passwd", "1 OR 1=1", "ABCDEF" * 6, "g" * 32, "0" * 31, "0" * 33]
+)
+def test_malformed_ids_are_refused_without_touching_the_database(db, bad):
+    store = Store(db)
+    assert not is_valid_id(bad)
+    assert store.get_project(bad) is None
+    assert store.latest_run(bad) is None
+    assert store.delete_project(bad) is False
+
+
+def test_ids_are_unguessable_hex(db):
+    store = Store(db)
+    ids = {store.create_project("p", "", "x") for _ in range(20)}
+    assert len(ids) == 20 and all(is_valid_id(i) for i in ids)
+
+
+def test_database_is_in_wal_mode(db):
+    Store(db)
+    assert _query(db, "PRAGMA journal_mode") == ("wal",)
+
+
+def test_concurrent_writers_from_threads_lose_nothing(db):
+    store = Store(db)
+    errors: list[BaseException] = []
+
+    def work(n: int) -> None:
+        try:
+            for i in range(10):
+                project_id = store.create_project(f"t{n}-{i}", "", f"level A B {i}")
+                store.add_run(project_id, error=f"run {n}-{i}")
+        except BaseException as exc:  # noqa: BLE001 - collected and asserted below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=work, args=(n,)) for n in range(8)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert errors == []
+    listings = store.list_projects()
+    assert len(listings) == 80
+    assert all(p.latest is not None and p.latest.status == "failed" for p in listings)
+
+
+def test_newer_schema_is_refused(db):
+    Store(db)
+    _query(db, "PRAGMA user_version = 99")
+    with pytest.raises(RuntimeError, match="newer"):
+        Store(db)
