@@ -274,13 +274,14 @@ def settings_rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:
     """The test settings in force, as far as the result records them."""
     s = result.summary
     out: list[tuple[str, str, str]] = []
-    if s.global_test is not None:
-        out.append(("Significance of the global test α", f"{s.global_test.alpha:g}", ""))
+    out.append(("Significance of the global test α", f"{s.alpha:g}", ""))
+    out.append(("Significance of each observation's test α₀", f"{s.snooping:g}", ""))
     out.append(("Critical value of the w-test", f"|w| > {fmt_w(s.critical_w)}", ""))
+    out.append(("Power for the minimal detectable bias β₀", fmt_percent(s.power), ""))
     out.append(("Non-centrality for the MDB λ₀", fmt_ratio(s.lambda0), ""))
-    confidence = next((p.ellipse.confidence for p in result.points if p.ellipse), None)
-    if confidence is not None:
-        out.append(("Confidence of ellipses", fmt_percent(confidence), ""))
+    if result.summary.dimension != 1:
+        out.append(("Confidence of ellipses", fmt_percent(s.confidence), ""))
+        out.append(("Ellipse scale factor", fmt_ratio(s.ellipse_factor), ""))
     return out
 
 

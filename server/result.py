@@ -69,6 +69,10 @@ class Summary:
     critical_w: float
     lambda0: float
     ellipse_factor: float
+    alpha: float
+    snooping: float
+    power: float
+    confidence: float
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -164,7 +168,17 @@ class AdjustmentResult:
         s = self.summary
         return {
             "format": 1,
+            "title": self.title,
             "units": {"length": self.length_unit, "angle_residual": "arcsec"},
+            "settings": {
+                "alpha": s.alpha,
+                "snooping": s.snooping,
+                "power": s.power,
+                "confidence": s.confidence,
+                "critical_w": s.critical_w,
+                "lambda0": s.lambda0,
+                "ellipse_factor": s.ellipse_factor,
+            },
             "summary": {
                 "dimension": s.dimension,
                 "points": s.points,
@@ -314,6 +328,10 @@ def build_result(
         critical_w=critical,
         lambda0=lambda0,
         ellipse_factor=factor,
+        alpha=tests.alpha,
+        snooping=tests.snooping,
+        power=tests.power,
+        confidence=tests.confidence,
     )
     return AdjustmentResult(
         title=fb.title,

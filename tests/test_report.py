@@ -45,6 +45,7 @@ def _summary(**changes: object) -> Summary:
         iterations=2, converged=True, variance_factor=1.1,
         global_test=GlobalTest(statistic=3.3, lower=0.2, upper=9.3, alpha=0.05, passed=True),
         critical_w=3.2905, lambda0=17.075, ellipse_factor=2.45,
+        alpha=0.05, snooping=0.001, power=0.80, confidence=0.95,
     )
     return dataclasses.replace(base, **changes)
 
