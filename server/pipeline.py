@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from .adjust import adjust
 from .fieldbook import parse_fieldbook
+from .fieldbook_model import Fieldbook
 from .misclosures import leveling_misclosures
 from .network import build_network
 from .result import AdjustmentResult, build_result
@@ -22,9 +23,16 @@ def adjust_fieldbook(text: str | bytes, *, source: str = "") -> AdjustmentResult
     NetworkError
         The network cannot be adjusted (the message names the points).
     """
-    fieldbook = parse_fieldbook(text, source=source)
+    return adjust_parsed(parse_fieldbook(text, source=source))
+
+
+def adjust_parsed(fieldbook: Fieldbook) -> AdjustmentResult:
+    """Adjust an already parsed field book (re-runs with edited observations start here).
+
+    Raises ``NetworkError`` when the network cannot be adjusted.
+    """
     network = build_network(fieldbook)
-    warnings = [issue.format(source) for issue in fieldbook.warnings]
+    warnings = [issue.format(fieldbook.source) for issue in fieldbook.warnings]
     warnings += list(network.warnings)
     misclosures = leveling_misclosures(fieldbook) if network.vertical else ()
     solution = adjust(network)

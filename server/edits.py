@@ -1,0 +1,167 @@
+"""A surveyor's decisions written back into the field book text.
+
+Leaving an observation out, bringing it back or changing its standard
+deviation edits only that observation's own line, so every line keeps its
+number: the flag ``ignore`` is added or removed, ``sd=`` is set, and the
+reason with its date is appended to the line's comment.  The original text
+is never changed in place; ``apply_edits`` returns a new text that parses to
+the field book the surveyor decided on.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+from .errors import FieldbookError, SurveyError
+from .fieldbook import parse_fieldbook
+from .units import UnitError, parse_quantity
+
+ACTIONS = ("exclude", "include", "sd")
+_REASON_LIMIT = 300
+_CONTROL = re.compile(r"[\x00-\x1f\x7f\u2028\u2029]+")
+_DATE = re.compile(r"^\d{4}-\d{2}-\d{2}$")
+#: Tokens before the first option or flag: the keyword and its positional values;
+#: a direction inside a round is written ``TO VALUE`` with no keyword.
+_LEADING_TOKENS = {
+    "level": 4, "distance": 4, "angle": 5, "azimuth": 4, "slope": 4, "zenith": 4, "direction": 2,
+}
+
+
+class EditError(SurveyError):
+    """An edit cannot be applied; the message says which line and why."""
+
+
+@dataclass(frozen=True, slots=True)
+class ObservationEdit:
+    """One decision about the observation on ``line``.
+
+    ``action`` is "exclude" (leave out), "include" (bring back) or "sd"
+    (use ``sd``, a quantity with units such as ``3mm`` or ``2.5sec``).
+    """
+
+    line: int
+    action: str
+    reason: str
+    date: str
+    sd: str | None = None
+
+    def describe(self) -> str:
+        """The decision in words, as written into the field book comment."""
+        if self.action == "exclude":
+            return "left out"
+        if self.action == "include":
+            return "brought back"
+        return f"sd set to {self.sd}"
+
+
+def clean_reason(reason: str) -> str:
+    """One line of plain text: control characters and line breaks become spaces."""
+    return _CONTROL.sub(" ", reason).strip()[:_REASON_LIMIT]
+
+
+def validate_edit(edit: ObservationEdit) -> None:
+    """Refuse an edit that is incomplete or malformed, naming the problem."""
+    if edit.action not in ACTIONS:
+        raise EditError(f"line {edit.line}: unknown decision {edit.action!r}")
+    if not clean_reason(edit.reason):
+        raise EditError(f"line {edit.line}: every decision needs a reason")
+    if not _DATE.match(edit.date):
+        raise EditError(f"line {edit.line}: the date must be written YYYY-MM-DD")
+    if edit.action == "sd":
+        text = (edit.sd or "").strip()
+        if not text or any(c.isspace() for c in text):
+            raise EditError(f"line {edit.line}: give the standard deviation with its unit, e.g. 3mm")
+        try:
+            quantity = parse_quantity(text)
+        except UnitError as exc:
+            raise EditError(f"line {edit.line}: {exc}") from None
+        if min(quantity.constant, quantity.ppm, quantity.per_sqrtkm, quantity.per_setup) < 0 or not any(
+            (quantity.constant, quantity.ppm, quantity.per_sqrtkm, quantity.per_setup)
+        ):
+            raise EditError(f"line {edit.line}: a standard deviation must be positive")
+
+
+def apply_edits(text: str, edits: Sequence[ObservationEdit], *, source: str = "") -> str:
+    """The field book text with ``edits`` written into their lines (in order).
+
+    Raises ``EditError`` when an edit names a line that holds no
+    observation, or when the edited file no longer reads (e.g. an angular
+    standard deviation given to a distance).
+    """
+    fieldbook = parse_fieldbook(text, source=source)
+    observation_lines = {o.line: o for o in fieldbook.observations}
+    lines = text.splitlines(keepends=True)
+    for edit in edits:
+        validate_edit(edit)
+        obs = observation_lines.get(edit.line)
+        if obs is None or not 1 <= edit.line <= len(lines):
+            raise EditError(f"line {edit.line} holds no observation that can be edited")
+        lines[edit.line - 1] = _edit_line(lines[edit.line - 1], edit, _LEADING_TOKENS[obs.kind])
+    edited = "".join(lines)
+    try:
+        parse_fieldbook(edited, source=source)
+    except FieldbookError as exc:
+        raise EditError("the edited field book no longer reads: " + str(exc)) from None
+    return edited
+
+
+def _edit_line(line: str, edit: ObservationEdit, first_option: int) -> str:
+    body = line.rstrip("\r\n")
+    ending = line[len(body):]
+    code, comment = _split_comment(body)
+    spans = _token_spans(code)
+    tokens = [code[a:b] for a, b in spans]
+    keep = list(range(len(tokens)))
+    if edit.action in ("exclude", "include"):
+        keep = [k for k in keep if k < first_option or tokens[k].lower() != "ignore"]
+    if edit.action == "sd":
+        keep = [k for k in keep if k < first_option or not tokens[k].lower().startswith("sd=")]
+    new_tokens = [tokens[k] for k in keep]
+    if edit.action == "exclude":
+        new_tokens.append("ignore")
+    elif edit.action == "sd":
+        new_tokens.append(f"sd={edit.sd}")
+    indent = code[: spans[0][0]] if spans else ""
+    note = f"{edit.date} {edit.describe()}: {clean_reason(edit.reason)}"
+    comment = f"{comment}; {note}" if comment else f"# {note}"
+    return f"{indent}{' '.join(new_tokens)}  {comment}{ending}"
+
+
+def _split_comment(body: str) -> tuple[str, str]:
+    """Split a line at the first ``#`` outside double quotes."""
+    quoted = escaped = False
+    for k, char in enumerate(body):
+        if escaped:
+            escaped = False
+        elif char == "\\" and quoted:
+            escaped = True
+        elif char == '"':
+            quoted = not quoted
+        elif char == "#" and not quoted:
+            return body[:k].rstrip(), body[k:].rstrip()
+    return body.rstrip(), ""
+
+
+def _token_spans(code: str) -> list[tuple[int, int]]:
+    """Start and end of each white-space separated token; quoted strings stay whole."""
+    spans: list[tuple[int, int]] = []
+    k, n = 0, len(code)
+    while k < n:
+        if code[k] in " \t":
+            k += 1
+            continue
+        start, quoted, escaped = k, False, False
+        while k < n and (quoted or code[k] not in " \t"):
+            char = code[k]
+            if escaped:
+                escaped = False
+            elif char == "\\" and quoted:
+                escaped = True
+            elif char == '"':
+                quoted = not quoted
+            k += 1
+        spans.append((start, k))
+    return spans
+

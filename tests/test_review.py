@@ -1,0 +1,179 @@
+"""The blunder review tools: edits written into the field book, snooping, robust reweighting, tau."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from server.edits import EditError, ObservationEdit, apply_edits
+from server.fieldbook import parse_fieldbook
+from server.pipeline import adjust_fieldbook
+from server.robust import huber_weight, robust_adjustment
+from server.snooping import propose_snooping
+from server.tau_test import tau_critical, tau_test
+from tests.synthetic import grid_network
+
+TODAY = "2026-12-02"
+
+
+def leveling_with_blunders(blunders: dict[tuple[int, int], float], seed: int = 21) -> str:
+    """Ten marks, every pair with |i − j| ≤ 3 levelled once (good redundancy), 1 mm σ."""
+    rng = np.random.default_rng(seed)
+    heights = 100 + rng.uniform(-4, 4, 10)
+    lines = ["defaults level=1.0mm", f"point M0 height={heights[0]:.4f} fix"]
+    for i in range(10):
+        for j in range(i + 1, min(i + 4, 10)):
+            dh = heights[j] - heights[i] + rng.normal(0, 0.001) + blunders.get((i, j), 0.0)
+            lines.append(f"level M{i} M{j} {dh:+.5f}")
+    return "\n".join(lines) + "\n"
+
+
+def _line_of(text: str, start: str) -> int:
+    return next(k for k, line in enumerate(text.splitlines(), 1) if line.startswith(start))
+
+
+TWO_BLUNDERS = {(2, 4): 0.015, (6, 7): -0.012}
+
+
+def test_snooping_sequence_finds_both_injected_blunders():
+    text = leveling_with_blunders(TWO_BLUNDERS)
+    plan = propose_snooping(parse_fieldbook(text))
+    expected = {_line_of(text, "level M2 M4"), _line_of(text, "level M6 M7")}
+    assert {step.line for step in plan.steps} == expected
+    assert plan.steps[-1].flagged_after == 0
+    assert plan.steps[-1].global_test_passed_after
+    assert "no observation is flagged" in plan.stopped
+
+
+def test_robust_adjustment_suspects_the_same_two():
+    text = leveling_with_blunders(TWO_BLUNDERS)
+    robust = robust_adjustment(parse_fieldbook(text))
+    expected = {_line_of(text, "level M2 M4"), _line_of(text, "level M6 M7")}
+    assert set(robust.suspects) == expected
+    assert robust.converged
+    lowest = {o.line for o in robust.down_weighted[:2]}
+    assert lowest == expected
+    # the estimated blunders come out close to their injected size (|u|·σ·√r ≈ |v| ≈ 15 and 12 mm)
+    by_line = {o.line: o for o in robust.observations}
+    assert abs(by_line[_line_of(text, "level M2 M4")].u) > 10
+
+
+def test_clean_network_needs_no_snooping_and_keeps_full_weights():
+    text = leveling_with_blunders({})
+    assert propose_snooping(parse_fieldbook(text)).steps == ()
+    robust = robust_adjustment(parse_fieldbook(text))
+    assert robust.suspects == ()
+    assert min(o.weight for o in robust.observations) > 0.4
+
+
+def test_huber_weight_function():
+    """Huber (1964): full weight inside ±k, k/|u| outside."""
+    assert huber_weight(1.0) == 1.0
+    assert huber_weight(-1.5) == 1.0
+    assert huber_weight(3.0) == pytest.approx(0.5)
+    assert huber_weight(-6.0, k=2.0) == pytest.approx(1 / 3)
+
+
+# Pope (1976) tau critical values, Bonferroni α_i = α/n with α = 0.05
+# (computed with scipy from the tau distribution; shared/references.md §4).
+POPE = [(3, 6, 1.7176), (5, 10, 2.1057), (10, 20, 2.5619), (20, 40, 2.9325)]
+
+
+@pytest.mark.parametrize(("r", "n", "critical"), POPE)
+def test_tau_critical_values(r, n, critical):
+    assert tau_critical(0.05, n, r) == pytest.approx(critical, abs=5e-5)
+
+
+def test_tau_is_bounded_by_root_r_and_flags_the_blunder():
+    text = leveling_with_blunders({(3, 5): 0.02})
+    result = adjust_fieldbook(text)
+    test = tau_test(result)
+    assert test is not None
+    assert all(abs(o.tau) <= math.sqrt(test.redundancy) + 1e-9 for o in test.observations)
+    assert test.flagged_lines[0] == _line_of(text, "level M3 M5")
+
+
+# -- edits written into the field book ------------------------------------------------------
+
+BOOK = """fieldbook 1
+defaults level=1.0mm/sqrtkm
+point A height=50.0000 fix
+level A B  +1.2000 len=0.40km   # first run
+level B C  +0.8000 len=0.60km
+level C D  -0.7000 len=0.50km note="rod #2"
+level D A  -1.2880 len=0.50km
+level A C  +2.0130 len=0.90km ignore
+"""
+
+
+def test_exclude_include_and_sd_keep_line_numbers_and_comment_the_reason():
+    edits = [
+        ObservationEdit(line=5, action="exclude", reason="bubble off level", date=TODAY),
+        ObservationEdit(line=8, action="include", reason="re-checked the booking", date=TODAY),
+        ObservationEdit(line=4, action="sd", sd="0.8mm/sqrtkm", reason="digital level", date=TODAY),
+    ]
+    edited = apply_edits(BOOK, edits)
+    assert len(edited.splitlines()) == len(BOOK.splitlines())
+    lines = edited.splitlines()
+    assert lines[4].split("#")[0].split()[-1] == "ignore"
+    assert "2026-12-02 left out: bubble off level" in lines[4]
+    assert " ignore" not in lines[7].split("#")[0]
+    assert "brought back: re-checked the booking" in lines[7]
+    assert "sd=0.8mm/sqrtkm" in lines[3] and "# first run; 2026-12-02 sd set to" in lines[3]
+    # the '#' inside the quoted note is not a comment
+    assert 'note="rod #2"' in lines[5]
+    fieldbook = parse_fieldbook(edited)
+    by_line = {o.line: o for o in fieldbook.observations}
+    assert by_line[5].ignored and not by_line[8].ignored
+    assert by_line[4].sigma.per_sqrtkm == pytest.approx(0.0008)
+
+
+def test_round_trip_exclude_download_reupload_gives_the_same_result():
+    """upload → exclude → re-run → download edited field book → re-upload: identical result."""
+    text = leveling_with_blunders(TWO_BLUNDERS)
+    blunder = _line_of(text, "level M2 M4")
+    first = parse_fieldbook(text)
+    from server.pipeline import adjust_parsed
+    from server.snooping import with_ignored
+
+    rerun = adjust_parsed(with_ignored(first, {blunder}))
+    edited = apply_edits(text, [ObservationEdit(blunder, "exclude", "staff misread", TODAY)])
+    again = adjust_fieldbook(edited)
+    assert again.summary.variance_factor == pytest.approx(rerun.summary.variance_factor, rel=1e-12)
+    for a, b in zip(again.points, rerun.points):
+        assert a.height == pytest.approx(b.height, abs=1e-12)
+
+
+def test_direction_inside_a_round_can_be_left_out():
+    net = grid_network(np.random.default_rng(1), size=3)
+    line = next(k for k, l in enumerate(net.text.splitlines(), 1) if l.startswith("  P"))
+    edited = apply_edits(net.text, [ObservationEdit(line, "exclude", "wrong target", TODAY)])
+    obs = next(o for o in parse_fieldbook(edited).observations if o.line == line)
+    assert obs.kind == "direction" and obs.ignored
+
+
+@pytest.mark.parametrize(
+    ("edit", "message"),
+    [
+        (ObservationEdit(3, "exclude", "why", TODAY), "holds no observation"),
+        (ObservationEdit(5, "exclude", "   ", TODAY), "needs a reason"),
+        (ObservationEdit(5, "sd", "ok", TODAY, sd="3"), "unit"),
+        (ObservationEdit(5, "sd", "ok", TODAY, sd="2sec"), "no longer reads"),
+        (ObservationEdit(5, "sd", "ok", TODAY, sd="-1mm"), "positive"),
+        (ObservationEdit(5, "drop", "ok", TODAY), "unknown decision"),
+    ],
+)
+def test_bad_edits_are_refused_with_a_reason(edit, message):
+    with pytest.raises(EditError) as caught:
+        apply_edits(BOOK, [edit])
+    assert message in str(caught.value)
+
+
+def test_reason_cannot_inject_a_new_line():
+    edited = apply_edits(
+        BOOK, [ObservationEdit(5, "exclude", "x\nlevel A Z +9.0 len=1km", TODAY)]
+    )
+    assert len(edited.splitlines()) == len(BOOK.splitlines())
+    assert all(o.to != "Z" for o in parse_fieldbook(edited).observations)
