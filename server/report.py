@@ -83,7 +83,7 @@ def fmt_angle(value_deg: float | None, angle_unit: str, *, blank: str = NOT_APPL
     if value_deg is None:
         return blank
     if angle_unit == "dms":
-        return format_dms(value_deg, 1)
+        return format_dms(value_deg, 1, wrap=True)
     return _fixed(value_deg, 6)
 
 

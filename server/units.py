@@ -39,9 +39,11 @@ RAD_PER_ARCSEC = 1.0 / ARCSEC_PER_RAD
 RAD_PER_MGON = RAD_PER_GON / 1000.0
 TWO_PI = 2.0 * math.pi
 
-_NUMBER = r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?"
+# ASCII digits only: \d would also accept other scripts' digits, which float() reads
+_NUMBER = r"[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?"
 _NUMBER_RE = re.compile(rf"^{_NUMBER}$")
-_DMS_RE = re.compile(r"^(-)?(\d+):(\d+):(\d+(?:\.\d*)?)$")
+_LENGTH_RE = re.compile(rf"^({_NUMBER})([a-zA-Z]+)$")
+_DMS_RE = re.compile(r"^(-)?([0-9]{1,6}):([0-9]{1,6}):([0-9]{1,6}(?:\.[0-9]*)?)$")
 
 
 class UnitError(ValueError):
@@ -62,7 +64,7 @@ def parse_number(text: str) -> float:
 
 def parse_length(text: str) -> float:
     """Read a length that carries its unit (``420m``, ``0.42km``, ``3.5ft``) into metres."""
-    match = re.match(rf"^({_NUMBER})([a-zA-Z]+)$", text)
+    match = _LENGTH_RE.match(text)
     if not match:
         parse_number(text)  # a bare number gets the more useful message below
         raise UnitError(f"'{text}' needs a length unit, e.g. {text}m")
@@ -121,15 +123,20 @@ def wrap_pi(angle_rad: float) -> float:
     return math.pi if reduced == -math.pi else reduced
 
 
-def format_dms(angle_deg: float, decimals: int = 1) -> str:
-    """Format decimal degrees as ``D:MM:SS.s``, carrying rounded seconds into minutes."""
+def format_dms(angle_deg: float, decimals: int = 1, *, wrap: bool = False) -> str:
+    """Format decimal degrees as ``D:MM:SS.s``, carrying rounded seconds into minutes.
+
+    With ``wrap``, an angle that rounds up to a full circle is written 0:00:00.
+    """
     sign = "-" if angle_deg < 0 else ""
     scale = 10**decimals
     total = round(abs(angle_deg) * 3600.0 * scale)
     whole_seconds, fraction = divmod(total, scale)
     minutes_total, seconds = divmod(whole_seconds, 60)
     degrees, minutes = divmod(minutes_total, 60)
-    if total == 0:
+    if wrap and degrees >= 360 and sign == "":
+        degrees -= 360
+    if total == 0 or (degrees, minutes, seconds, fraction) == (0, 0, 0, 0):
         sign = ""
     frac = f".{fraction:0{decimals}d}" if decimals > 0 else ""
     return f"{sign}{degrees}:{minutes:02d}:{seconds:02d}{frac}"
