@@ -253,3 +253,46 @@ def test_relative_ellipse_to_a_fixed_point_equals_the_absolute_ellipse():
     assert rel.azimuth == pytest.approx(ell.azimuth, abs=1e-6)
     # pairs of two fixed points are left out
     assert not any({r.from_point, r.to_point} <= set(net.fixed) for r in result.relative)
+
+
+def test_centering_enters_direction_and_distance_sigmas():
+    """Centering c adds 2c² to a distance and 2c²/D² to a direction (contract formulas)."""
+    text = """
+    defaults direction=1sec distance=2mm+2ppm centering=1.5mm
+    point A east=0 north=0 fix
+    point B east=0 north=250 fix
+    directions A
+      B 0:00:00
+      C 90:00:00
+    end
+    distance A C 250.000
+    directions B
+      A 0:00:00
+      C 315:00:00
+    end
+    """
+    result = adjust_fieldbook(text)
+    by_line = {(o.kind, o.from_point, o.to): o for o in result.observations}
+    d = by_line[("distance", "A", "C")]
+    assert d.sd == pytest.approx(math.sqrt(0.002**2 + (2e-6 * 250) ** 2 + 2 * 0.0015**2), rel=1e-9)
+    direction = by_line[("direction", "A", "C")]
+    c_rad = 0.0015 / 250.0  # distance A–C from the adjusted coordinates ≈ 250 m
+    expected = math.sqrt(1.0**2 + 2 * (c_rad * 206264.806) ** 2)
+    assert direction.sd == pytest.approx(expected, rel=1e-4)
+
+
+def test_weighted_control_moves_within_its_standard_deviation():
+    """Weighted horizontal control counts in the redundancy and adjusts."""
+    rng = np.random.default_rng(14)
+    net = grid_network(rng, size=3, fixed=("P0_0",))
+    e, n = net.truth["P2_2"]
+    text = net.text + f"point P2_2 east={e + 0.004:.4f} north={n:.4f} sd=5mm\n"
+    result = adjust_fieldbook(text)
+    p = _points(result)["P2_2"]
+    assert p.weighted == "en" and p.fixed == ""
+    assert 0 < p.sd_east < 0.005
+    assert abs(p.east - e) < 0.004  # pulled back toward the observations
+    # holding it instead removes two unknowns; weighting adds two control observations
+    held = adjust_fieldbook(net.text + f"point P2_2 east={e + 0.004:.4f} north={n:.4f} fix\n")
+    assert result.summary.redundancy == held.summary.redundancy
+    assert result.summary.unknowns == held.summary.unknowns + 2
