@@ -19,7 +19,7 @@ from fastapi.templating import Jinja2Templates
 from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import UploadFile
 
-from .. import report
+from .. import plot, report
 from ..errors import SurveyError
 from ..pipeline import adjust_fieldbook
 from ..result import AdjustmentResult
@@ -270,6 +270,7 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
     }
     if result is not None:
         context.update(report.context(result))
+        context["network_plot"] = plot.network_plot_data(result)
     elif run is not None and run.error is not None:
         context["error"] = run.error
         context["issues"] = _issues_with_text(project, run.error.get("issues", []))
