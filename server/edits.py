@@ -22,6 +22,9 @@ ACTIONS = ("exclude", "include", "sd")
 _REASON_LIMIT = 300
 _CONTROL = re.compile(r"[\x00-\x1f\x7f\u2028\u2029]+")
 _DATE = re.compile(r"^\d{4}-\d{2}-\d{2}$")
+#: A line with its ending, split as the parser splits (LF, CRLF or CR; not str.splitlines,
+#: which also breaks at form feeds and U+2028 and would shift every later line number).
+_LINE = re.compile(r"[^\r\n]*(?:\r\n|\r|\n)|[^\r\n]+\Z")
 #: Tokens before the first option or flag: the keyword and its positional values;
 #: a direction inside a round is written ``TO VALUE`` with no keyword.
 _LEADING_TOKENS = {
@@ -92,7 +95,7 @@ def apply_edits(text: str, edits: Sequence[ObservationEdit], *, source: str = ""
     """
     fieldbook = parse_fieldbook(text, source=source)
     observation_lines = {o.line: o for o in fieldbook.observations}
-    lines = text.splitlines(keepends=True)
+    lines = _LINE.findall(text)
     for edit in edits:
         validate_edit(edit)
         obs = observation_lines.get(edit.line)

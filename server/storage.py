@@ -10,6 +10,12 @@ A finished run keeps three JSON documents: the contract JSON
 (``AdjustmentResult.to_json_dict()``), which the API serves unchanged; a full
 dump of the result object, from which the pages and reports are rebuilt
 without adjusting again; and a small summary for project lists.
+
+Every run also keeps its settings (``{"edits": [...]}``: the surveyor's
+decisions in force, each a JSON object).  A re-run is stored as ``running``
+first and finished in one later transaction, so a run interrupted by a crash
+stays marked as not finished and never touches the runs before it.
+Decisions queued for the next re-run are kept in ``pending_edits``.
 """
 
 from __future__ import annotations
@@ -18,6 +24,7 @@ import dataclasses
 import hashlib
 import json
 import re
+import secrets
 import sqlite3
 import uuid
 from collections.abc import Iterator
@@ -39,31 +46,62 @@ from .result import (
     Summary,
 )
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 _ID_RE = re.compile(r"^[0-9a-f]{32}$")
+#: Settings of a run made without any decision (an upload as it is).
+NO_EDITS: dict[str, Any] = {"edits": []}
 
-_SCHEMA = """
-CREATE TABLE IF NOT EXISTS projects (
-    id        TEXT PRIMARY KEY,
-    name      TEXT NOT NULL,
-    filename  TEXT NOT NULL,
-    created   TEXT NOT NULL,
-    fieldbook BLOB NOT NULL,
-    sha256    TEXT NOT NULL
-);
-CREATE TABLE IF NOT EXISTS runs (
+_RUNS_TABLE = """
+CREATE TABLE {name} (
     id         INTEGER PRIMARY KEY AUTOINCREMENT,
     project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
     created    TEXT NOT NULL,
-    status     TEXT NOT NULL CHECK (status IN ('finished', 'failed')),
+    status     TEXT NOT NULL CHECK (status IN ('running', 'finished', 'failed')),
     result     TEXT,
     detail     TEXT,
     summary    TEXT,
     error      TEXT,
+    settings   TEXT NOT NULL DEFAULT '{{"edits": []}}',
     CHECK ((status = 'finished') = (result IS NOT NULL))
-);
-CREATE INDEX IF NOT EXISTS runs_by_project ON runs(project_id, id);
-"""
+)"""
+
+#: Statements creating the current schema in an empty database.
+_SCHEMA = (
+    """CREATE TABLE projects (
+    id         TEXT PRIMARY KEY,
+    name       TEXT NOT NULL,
+    filename   TEXT NOT NULL,
+    created    TEXT NOT NULL,
+    fieldbook  BLOB NOT NULL,
+    sha256     TEXT NOT NULL,
+    form_token TEXT NOT NULL DEFAULT ''
+)""",
+    _RUNS_TABLE.format(name="runs"),
+    "CREATE INDEX runs_by_project ON runs(project_id, id)",
+    """CREATE TABLE pending_edits (
+    id         INTEGER PRIMARY KEY AUTOINCREMENT,
+    project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
+    created    TEXT NOT NULL,
+    edit       TEXT NOT NULL
+)""",
+    "CREATE INDEX pending_by_project ON pending_edits(project_id, id)",
+)
+
+#: Statements bringing a schema-1 database (no settings, no tokens, no pending edits) to 2.
+_MIGRATE_1_TO_2 = (
+    "ALTER TABLE projects ADD COLUMN form_token TEXT NOT NULL DEFAULT ''",
+    "UPDATE projects SET form_token = lower(hex(randomblob(16)))",
+    _RUNS_TABLE.format(name="runs_v2"),
+    (
+        "INSERT INTO runs_v2 (id, project_id, created, status, result, detail, summary, error) "
+        "SELECT id, project_id, created, status, result, detail, summary, error FROM runs"
+    ),
+    "DROP TABLE runs",
+    "ALTER TABLE runs_v2 RENAME TO runs",
+    "CREATE INDEX runs_by_project ON runs(project_id, id)",
+    _SCHEMA[3],
+    _SCHEMA[4],
+)
 
 
 def is_valid_id(value: str) -> bool:
@@ -91,11 +129,18 @@ class Run:
     error: dict[str, Any] | None
     detail: dict[str, Any] | None = None
     summary: dict[str, Any] | None = None
+    settings: dict[str, Any] | None = None
 
     @property
     def finished(self) -> bool:
         """True when the adjustment produced a result."""
         return self.status == "finished"
+
+    @property
+    def edits(self) -> list[dict[str, Any]]:
+        """The decisions in force for this run (JSON objects, in the order they were made)."""
+        edits = (self.settings or {}).get("edits", [])
+        return list(edits) if isinstance(edits, list) else []
 
     def result(self) -> AdjustmentResult | None:
         """The stored result object, or None if it is missing or from an incompatible version."""
@@ -117,6 +162,7 @@ class Project:
     created: str
     sha256: str
     fieldbook: bytes
+    form_token: str = ""
 
     @property
     def text(self) -> str:
@@ -134,6 +180,16 @@ class ProjectListing:
     created: str
     sha256: str
     latest: Run | None
+
+
+@dataclass(frozen=True, slots=True)
+class PendingEdit:
+    """A decision queued for the next re-run of a project."""
+
+    id: int
+    project_id: str
+    created: str
+    edit: dict[str, Any]
 
 
 def error_record(error: BaseException | str) -> dict[str, Any]:
@@ -161,17 +217,33 @@ class Store:
         connection = self._connect()
         try:
             connection.execute("PRAGMA journal_mode=WAL")
-            (version,) = connection.execute("PRAGMA user_version").fetchone()
-            if version > SCHEMA_VERSION:
-                raise RuntimeError(
-                    f"{self.path} was written by a newer Stationfit (schema {version}); "
-                    "upgrade before opening it"
-                )
-            connection.executescript(
-                f"BEGIN IMMEDIATE;{_SCHEMA}PRAGMA user_version = {SCHEMA_VERSION};COMMIT;"
-            )
+            connection.execute("BEGIN IMMEDIATE")
+            try:
+                self._create_or_upgrade(connection)
+            except BaseException:
+                connection.execute("ROLLBACK")
+                raise
+            connection.execute("COMMIT")
         finally:
             connection.close()
+
+    def _create_or_upgrade(self, db: sqlite3.Connection) -> None:
+        """Create the schema, or bring an older one up to date (inside the caller's transaction)."""
+        (version,) = db.execute("PRAGMA user_version").fetchone()
+        if version > SCHEMA_VERSION:
+            raise RuntimeError(
+                f"{self.path} was written by a newer Stationfit (schema {version}); "
+                "upgrade before opening it"
+            )
+        if version == SCHEMA_VERSION:
+            return
+        has_projects = db.execute(
+            "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'projects'"
+        ).fetchone()
+        statements = _MIGRATE_1_TO_2 if has_projects else _SCHEMA
+        for statement in statements:
+            db.execute(statement)
+        db.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
 
     # -- connections -----------------------------------------------------------------
 
@@ -212,9 +284,10 @@ class Store:
         project_id = uuid.uuid4().hex
         with self._write() as db:
             db.execute(
-                "INSERT INTO projects (id, name, filename, created, fieldbook, sha256) "
-                "VALUES (?, ?, ?, ?, ?, ?)",
-                (project_id, name, filename, _now(), raw, hashlib.sha256(raw).hexdigest()),
+                "INSERT INTO projects (id, name, filename, created, fieldbook, sha256, form_token) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?)",
+                (project_id, name, filename, _now(), raw, hashlib.sha256(raw).hexdigest(),
+                 secrets.token_hex(16)),
             )
         return project_id
 
@@ -224,13 +297,14 @@ class Store:
             return None
         with self._read() as db:
             row = db.execute(
-                "SELECT id, name, filename, created, sha256, fieldbook FROM projects WHERE id = ?",
+                "SELECT id, name, filename, created, sha256, fieldbook, form_token "
+                "FROM projects WHERE id = ?",
                 (project_id,),
             ).fetchone()
         if row is None:
             return None
         return Project(id=row[0], name=row[1], filename=row[2], created=row[3], sha256=row[4],
-                       fieldbook=bytes(row[5]))
+                       fieldbook=bytes(row[5]), form_token=row[6])
 
     def list_projects(self) -> list[ProjectListing]:
         """All projects, newest first, with their latest run's summary (no field books, no results)."""
@@ -239,7 +313,7 @@ class Store:
                 "SELECT p.id, p.name, p.filename, p.created, p.sha256, "
                 "r.id, r.created, r.status, r.summary, r.error "
                 "FROM projects p LEFT JOIN runs r ON r.id = "
-                "(SELECT MAX(id) FROM runs WHERE project_id = p.id) "
+                "(SELECT MAX(id) FROM runs WHERE project_id = p.id AND status != 'running') "
                 "ORDER BY p.created DESC, p.rowid DESC"
             ).fetchall()
         listings = []
@@ -267,47 +341,82 @@ class Store:
         project_id: str,
         result: AdjustmentResult | None = None,
         error: BaseException | str | None = None,
+        *,
+        settings: dict[str, Any] | None = None,
     ) -> int:
         """Record an adjustment: finished with ``result``, or failed with ``error``."""
-        if (result is None) == (error is None):
-            raise ValueError("give exactly one of result and error")
-        if result is not None:
-            status = "finished"
-            contract = result.to_json_dict()
-            result_text = json.dumps(contract)
-            detail_text = json.dumps(dataclasses.asdict(result))
-            summary = dict(contract["summary"])  # type: ignore[call-overload]
-            summary["flagged"] = sum(1 for o in result.observations if o.flagged)
-            summary_text = json.dumps(summary)
-            error_text = None
-        else:
-            assert error is not None
-            status, result_text, detail_text, summary_text = "failed", None, None, None
-            error_text = json.dumps(error_record(error))
+        outcome = _outcome(result, error)
         with self._write() as db:
             cursor = db.execute(
-                "INSERT INTO runs (project_id, created, status, result, detail, summary, error) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?)",
-                (project_id, _now(), status, result_text, detail_text, summary_text, error_text),
+                "INSERT INTO runs (project_id, created, status, result, detail, summary, error, "
+                "settings) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                (project_id, _now(), *outcome, json.dumps(settings or NO_EDITS)),
             )
         assert cursor.lastrowid is not None
         return cursor.lastrowid
 
-    def latest_run(self, project_id: str) -> Run | None:
-        """The most recent run of a project (with the full result dump), or None."""
+    def start_run(self, project_id: str, settings: dict[str, Any]) -> int:
+        """Record a run as ``running`` before adjusting; ``finish_run`` completes it."""
+        with self._write() as db:
+            cursor = db.execute(
+                "INSERT INTO runs (project_id, created, status, settings) "
+                "VALUES (?, ?, 'running', ?)",
+                (project_id, _now(), json.dumps(settings)),
+            )
+        assert cursor.lastrowid is not None
+        return cursor.lastrowid
+
+    def finish_run(
+        self,
+        run_id: int,
+        result: AdjustmentResult | None = None,
+        error: BaseException | str | None = None,
+        *,
+        consumed: tuple[int, ...] = (),
+    ) -> None:
+        """Complete a running run and drop the pending decisions it used, in one transaction."""
+        outcome = _outcome(result, error)
+        with self._write() as db:
+            cursor = db.execute(
+                "UPDATE runs SET status = ?, result = ?, detail = ?, summary = ?, error = ? "
+                "WHERE id = ? AND status = 'running'",
+                (*outcome, run_id),
+            )
+            if cursor.rowcount != 1:
+                raise ValueError(f"run {run_id} is not running")
+            for edit_id in consumed:
+                db.execute(
+                    "DELETE FROM pending_edits WHERE id = ? AND project_id = "
+                    "(SELECT project_id FROM runs WHERE id = ?)",
+                    (edit_id, run_id),
+                )
+
+    def latest_run(self, project_id: str, *, finished: bool = False) -> Run | None:
+        """The most recent completed run (or finished one) with its full result dump, or None.
+
+        A run still marked ``running`` (in progress, or interrupted) is never the latest.
+        """
+        if not is_valid_id(project_id):
+            return None
+        status = "status = 'finished'" if finished else "status != 'running'"
+        with self._read() as db:
+            row = db.execute(
+                f"SELECT {_RUN_COLUMNS} FROM runs WHERE project_id = ? AND {status} "
+                "ORDER BY id DESC LIMIT 1",
+                (project_id,),
+            ).fetchone()
+        return None if row is None else _run(row)
+
+    def run(self, project_id: str, run_id: int) -> Run | None:
+        """One run of a project with its full result dump, or None."""
         if not is_valid_id(project_id):
             return None
         with self._read() as db:
             row = db.execute(
-                "SELECT id, project_id, created, status, result, error, detail, summary "
-                "FROM runs WHERE project_id = ? ORDER BY id DESC LIMIT 1",
-                (project_id,),
+                f"SELECT {_RUN_COLUMNS} FROM runs WHERE project_id = ? AND id = ?",
+                (project_id, run_id),
             ).fetchone()
-        if row is None:
-            return None
-        return Run(id=row[0], project_id=row[1], created=row[2], status=row[3],
-                   result_json=_loads(row[4]), error=_loads(row[5]), detail=_loads(row[6]),
-                   summary=_loads(row[7]))
+        return None if row is None else _run(row)
 
     def runs(self, project_id: str) -> list[Run]:
         """Every run of a project, oldest first (without the full result dumps)."""
@@ -315,13 +424,75 @@ class Store:
             return []
         with self._read() as db:
             rows = db.execute(
-                "SELECT id, project_id, created, status, result, error, summary FROM runs "
-                "WHERE project_id = ? ORDER BY id",
+                "SELECT id, project_id, created, status, result, error, summary, settings "
+                "FROM runs WHERE project_id = ? ORDER BY id",
                 (project_id,),
             ).fetchall()
         return [Run(id=r[0], project_id=r[1], created=r[2], status=r[3],
-                    result_json=_loads(r[4]), error=_loads(r[5]), summary=_loads(r[6]))
+                    result_json=_loads(r[4]), error=_loads(r[5]), summary=_loads(r[6]),
+                    settings=_loads(r[7]))
                 for r in rows]
+
+    # -- decisions waiting for a re-run ---------------------------------------------
+
+    def add_pending_edit(self, project_id: str, edit: dict[str, Any]) -> int:
+        """Queue a decision (a JSON object) for the project's next re-run."""
+        with self._write() as db:
+            cursor = db.execute(
+                "INSERT INTO pending_edits (project_id, created, edit) VALUES (?, ?, ?)",
+                (project_id, _now(), json.dumps(edit)),
+            )
+        assert cursor.lastrowid is not None
+        return cursor.lastrowid
+
+    def pending_edits(self, project_id: str) -> list[PendingEdit]:
+        """The project's queued decisions, oldest first."""
+        if not is_valid_id(project_id):
+            return []
+        with self._read() as db:
+            rows = db.execute(
+                "SELECT id, project_id, created, edit FROM pending_edits "
+                "WHERE project_id = ? ORDER BY id",
+                (project_id,),
+            ).fetchall()
+        return [PendingEdit(id=r[0], project_id=r[1], created=r[2], edit=json.loads(r[3]))
+                for r in rows]
+
+    def remove_pending_edit(self, project_id: str, edit_id: int) -> bool:
+        """Withdraw one queued decision; True if it was there."""
+        if not is_valid_id(project_id):
+            return False
+        with self._write() as db:
+            cursor = db.execute(
+                "DELETE FROM pending_edits WHERE id = ? AND project_id = ?", (edit_id, project_id)
+            )
+        return cursor.rowcount > 0
+
+
+_RUN_COLUMNS = "id, project_id, created, status, result, error, detail, summary, settings"
+
+
+def _run(row: tuple[Any, ...]) -> Run:
+    """A ``Run`` from a row selected with ``_RUN_COLUMNS``."""
+    return Run(id=row[0], project_id=row[1], created=row[2], status=row[3],
+               result_json=_loads(row[4]), error=_loads(row[5]), detail=_loads(row[6]),
+               summary=_loads(row[7]), settings=_loads(row[8]))
+
+
+def _outcome(
+    result: AdjustmentResult | None, error: BaseException | str | None
+) -> tuple[str, str | None, str | None, str | None, str | None]:
+    """(status, result, detail, summary, error) columns of a finished or failed run."""
+    if (result is None) == (error is None):
+        raise ValueError("give exactly one of result and error")
+    if result is None:
+        assert error is not None
+        return "failed", None, None, None, json.dumps(error_record(error))
+    contract = result.to_json_dict()
+    summary = dict(contract["summary"])  # type: ignore[call-overload]
+    summary["flagged"] = sum(1 for o in result.observations if o.flagged)
+    return ("finished", json.dumps(contract), json.dumps(dataclasses.asdict(result)),
+            json.dumps(summary), None)
 
 
 def _loads(text: str | None) -> dict[str, Any] | None:

@@ -177,3 +177,13 @@ def test_reason_cannot_inject_a_new_line():
     )
     assert len(edited.splitlines()) == len(BOOK.splitlines())
     assert all(o.to != "Z" for o in parse_fieldbook(edited).observations)
+
+
+def test_form_feed_in_a_comment_does_not_shift_the_edited_line():
+    """Regression (found 2026-12-02): apply_edits split lines with str.splitlines, which also
+    breaks at form feeds and U+2028, so the decision landed on the wrong line."""
+    book = BOOK.replace("# first run", "# first run\f page 2\u2028 of the booking")
+    edited = apply_edits(book, [ObservationEdit(5, "exclude", "bubble off level", TODAY)])
+    by_line = {o.line: o for o in parse_fieldbook(edited).observations}
+    assert by_line[5].ignored and not by_line[4].ignored
+    assert edited.split("\n")[4].startswith("level B C +0.8000 len=0.60km ignore")

@@ -181,3 +181,127 @@ def test_newer_schema_is_refused(db):
     _query(db, "PRAGMA user_version = 99")
     with pytest.raises(RuntimeError, match="newer"):
         Store(db)
+
+
+# -- runs with settings, running runs, queued decisions, schema upgrade ---------------------
+
+EXCLUDE_38 = {"line": 38, "action": "exclude", "reason": "rod misread", "date": "2026-12-02"}
+
+
+def test_a_run_keeps_its_settings(db, blunder_bytes):
+    store = Store(db)
+    project_id = store.create_project("p", "f.fieldbook", blunder_bytes)
+    upload = store.add_run(project_id, result=adjust_fieldbook(blunder_bytes))
+    rerun = store.add_run(project_id, error="stopped", settings={"edits": [EXCLUDE_38]})
+    reopened = Store(db)
+    assert reopened.run(project_id, upload).edits == []  # an upload runs the book as it is
+    assert reopened.run(project_id, rerun).edits == [EXCLUDE_38]
+    assert [r.edits for r in reopened.runs(project_id)] == [[], [EXCLUDE_38]]
+    assert reopened.run("0" * 32, rerun) is None  # a run is found only under its own project
+
+
+def test_a_run_is_stored_running_then_finished_with_its_queued_decisions_in_one_go(
+    db, blunder_bytes
+):
+    store = Store(db)
+    project_id = store.create_project("p", "f.fieldbook", blunder_bytes)
+    first = store.add_run(project_id, result=adjust_fieldbook(blunder_bytes))
+    queued = store.add_pending_edit(project_id, EXCLUDE_38)
+    run_id = store.start_run(project_id, {"edits": [EXCLUDE_38]})
+    assert store.run(project_id, run_id).status == "running"
+    assert store.latest_run(project_id).id == first  # a running run is never "the latest"
+    assert store.list_projects()[0].latest.id == first
+    store.finish_run(run_id, error=NetworkError("no height datum", ["KR-107"]), consumed=())
+    assert [p.id for p in store.pending_edits(project_id)] == [queued]  # kept after a failure
+    assert store.latest_run(project_id).id == run_id
+    assert store.latest_run(project_id, finished=True).id == first
+    with pytest.raises(ValueError, match="not running"):
+        store.finish_run(run_id, error="again")
+
+    second = store.start_run(project_id, {"edits": [EXCLUDE_38]})
+    store.finish_run(second, result=adjust_fieldbook(blunder_bytes), consumed=(queued,))
+    assert store.pending_edits(project_id) == []
+    assert store.latest_run(project_id, finished=True).id == second
+
+
+def test_an_interrupted_run_stays_running_and_the_earlier_runs_are_intact(db, blunder_bytes):
+    result = adjust_fieldbook(blunder_bytes)
+    store = Store(db)
+    project_id = store.create_project("p", "f.fieldbook", blunder_bytes)
+    first = store.add_run(project_id, result=result)
+    store.add_pending_edit(project_id, EXCLUDE_38)
+    interrupted = store.start_run(project_id, {"edits": [EXCLUDE_38]})
+    del store  # the service stops before finishing
+
+    reopened = Store(db)
+    assert [(r.id, r.status) for r in reopened.runs(project_id)] == [
+        (first, "finished"), (interrupted, "running")]
+    assert reopened.latest_run(project_id).result() == result
+    assert len(reopened.pending_edits(project_id)) == 1  # the decision is not lost either
+
+
+def test_a_failed_finish_changes_nothing(db, blunder_bytes):
+    store = Store(db)
+    project_id = store.create_project("p", "f.fieldbook", blunder_bytes)
+    queued = store.add_pending_edit(project_id, EXCLUDE_38)
+    run_id = store.start_run(project_id, {"edits": [EXCLUDE_38]})
+    with pytest.raises(ValueError):
+        store.finish_run(run_id, result=None, error=None, consumed=(queued,))
+    assert store.run(project_id, run_id).status == "running"
+    assert [p.id for p in store.pending_edits(project_id)] == [queued]
+
+
+def test_queued_decisions_are_listed_withdrawn_and_deleted_with_the_project(db):
+    store = Store(db)
+    project_id = store.create_project("p", "", "x")
+    other = store.create_project("q", "", "x")
+    first = store.add_pending_edit(project_id, EXCLUDE_38)
+    second = store.add_pending_edit(project_id, {**EXCLUDE_38, "line": 12})
+    assert [(p.id, p.edit["line"]) for p in store.pending_edits(project_id)] == [
+        (first, 38), (second, 12)]
+    assert store.remove_pending_edit(other, first) is False  # not another project's decision
+    assert store.remove_pending_edit(project_id, first) is True
+    assert [p.id for p in store.pending_edits(project_id)] == [second]
+    store.delete_project(project_id)
+    assert _query(db, "SELECT COUNT(*) FROM pending_edits") == (0,)
+
+
+def test_every_project_gets_its_own_form_token(db):
+    store = Store(db)
+    tokens = {store.get_project(store.create_project("p", "", "x")).form_token for _ in range(5)}
+    assert len(tokens) == 5 and all(len(t) == 32 for t in tokens)
+
+
+SCHEMA_1 = """
+CREATE TABLE projects (id TEXT PRIMARY KEY, name TEXT NOT NULL, filename TEXT NOT NULL,
+    created TEXT NOT NULL, fieldbook BLOB NOT NULL, sha256 TEXT NOT NULL);
+CREATE TABLE runs (id INTEGER PRIMARY KEY AUTOINCREMENT,
+    project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
+    created TEXT NOT NULL, status TEXT NOT NULL CHECK (status IN ('finished', 'failed')),
+    result TEXT, detail TEXT, summary TEXT, error TEXT,
+    CHECK ((status = 'finished') = (result IS NOT NULL)));
+CREATE INDEX runs_by_project ON runs(project_id, id);
+PRAGMA user_version = 1;
+"""
+
+
+def test_a_database_of_schema_1_is_upgraded_keeping_projects_and_runs(db):
+    db.parent.mkdir(parents=True)
+    with closing(sqlite3.connect(db)) as raw:
+        raw.executescript(SCHEMA_1)
+        raw.execute("INSERT INTO projects VALUES ('" + "a" * 32 + "', 'old', 'old.fieldbook', "
+                    "'2026-01-01T00:00:00+00:00', x'6c6576656c', 'h')")
+        raw.execute("INSERT INTO runs (project_id, created, status, error) VALUES "
+                    "('" + "a" * 32 + "', '2026-01-01T00:00:00+00:00', 'failed', "
+                    "'{\"kind\": \"other\", \"message\": \"stopped\"}')")
+        raw.commit()
+    store = Store(db)
+    assert _query(db, "PRAGMA user_version") == (2,)
+    project = store.get_project("a" * 32)
+    assert project.fieldbook == b"level" and len(project.form_token) == 32
+    (run,) = store.runs("a" * 32)
+    assert run.status == "failed" and run.error["message"] == "stopped" and run.edits == []
+    new = store.start_run("a" * 32, {"edits": []})  # the new status is allowed after the upgrade
+    assert new > run.id
+    Store(db)  # opening again leaves it as it is
+    assert [r.id for r in Store(db).runs("a" * 32)] == [run.id, new]

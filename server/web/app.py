@@ -266,7 +266,7 @@ def create_app(
     demo_dir: Path | None = None,
 ) -> FastAPI:
     """Build the web application storing projects under ``data_dir``."""
-    from . import routes
+    from . import review_routes, routes
 
     app = FastAPI(
         title="Stationfit",
@@ -282,6 +282,7 @@ def create_app(
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
     app.include_router(routes.router)
+    app.include_router(review_routes.router)
     _install_handlers(app, templates)
     app.add_middleware(UploadLimitMiddleware, max_bytes=max_upload_bytes, templates=templates)
     app.add_middleware(SecurityHeadersMiddleware)

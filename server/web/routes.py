@@ -396,5 +396,7 @@ def api_project(project_id: str, request: Request) -> JSONResponse:
     body = _project_json(project.id, project.name, project.filename, project.created,
                          project.sha256, run)
     body.update(_run_payload(run))
+    body["runs"] = [{"id": r.id, "created": r.created, "status": r.status,
+                     "edits": r.edits, "summary": r.summary} for r in store.runs(project_id)]
     return JSONResponse(body)
 
