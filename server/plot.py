@@ -250,33 +250,76 @@ def _overlap(a: Sequence[float], b: Sequence[float]) -> float:
     return w * h if w > 0 and h > 0 else 0.0
 
 
+class _Grid:
+    """A uniform bucket grid over canvas pixels: which items' boxes may touch a box."""
+
+    def __init__(self, cell: float) -> None:
+        self.cell = cell
+        self.buckets: dict[tuple[int, int], list[int]] = {}
+
+    def _cells(self, box: Sequence[float]) -> list[tuple[int, int]]:
+        c = self.cell
+        x0, y0, x1, y1 = (int(math.floor(v / c)) for v in box)
+        return [(x, y) for x in range(x0, x1 + 1) for y in range(y0, y1 + 1)]
+
+    def add(self, item: int, box: Sequence[float]) -> None:
+        for key in self._cells(box):
+            self.buckets.setdefault(key, []).append(item)
+
+    def near(self, box: Sequence[float]) -> set[int]:
+        found: set[int] = set()
+        for key in self._cells(box):
+            found.update(self.buckets.get(key, ()))
+        return found
+
+
 def _label_cost(i: int, rank: int, box: tuple[float, ...], px: list[tuple[float, float]],
-                segments: list[tuple[int, int]], placed: list[tuple[float, ...]]) -> float:
+                segments: list[tuple[int, int]], placed: list[tuple[float, ...]],
+                grids: tuple[_Grid, _Grid, _Grid]) -> float:
     """Badness of a label box of point ``i``: lines crossed, symbols and labels covered."""
+    segment_grid, symbol_grid, label_grid = grids
     total = rank * 0.5  # the order of preference breaks ties
-    for a, b in segments:
+    for k in segment_grid.near(box):
+        a, b = segments[k]
         if _segment_hits_box(*px[a], *px[b], box):
             total += 20.0 if i in (a, b) else 8.0
-    for j, (x, y) in enumerate(px):
+    for j in symbol_grid.near(box):
+        x, y = px[j]
         symbol = (x - _SYMBOL_RADIUS_PX, y - _SYMBOL_RADIUS_PX,
                   x + _SYMBOL_RADIUS_PX, y + _SYMBOL_RADIUS_PX)
         if j != i and _overlap(box, symbol):
             total += 40.0
-    return total + sum(_overlap(box, other) for other in placed) * 0.5
+    return total + sum(_overlap(box, placed[k]) for k in label_grid.near(box)) * 0.5
 
 
 def _place_labels(
     names: list[str], px: list[tuple[float, float]], segments: list[tuple[int, int]]
 ) -> list[dict[str, Any]]:
     """For each point the label side that crosses the fewest lines, symbols and labels."""
+    # bucket grids keep this near-linear in the number of points and lines
+    cell = max(_LABEL_HEIGHT_PX * 3, 1.0)
+    segment_grid, symbol_grid, label_grid = _Grid(cell), _Grid(cell), _Grid(cell)
+    for k, (a, b) in enumerate(segments):
+        (x1, y1), (x2, y2) = px[a], px[b]
+        segment_grid.add(k, (min(x1, x2), min(y1, y2), max(x1, x2), max(y1, y2)))
+    for j, (x, y) in enumerate(px):
+        symbol_grid.add(j, (x - _SYMBOL_RADIUS_PX, y - _SYMBOL_RADIUS_PX,
+                            x + _SYMBOL_RADIUS_PX, y + _SYMBOL_RADIUS_PX))
+    grids = (segment_grid, symbol_grid, label_grid)
     placed: list[tuple[float, ...]] = []
     out: list[dict[str, Any]] = []
     for i, name in enumerate(names):
         width = _LABEL_CHAR_PX * len(name) + 2
         boxes = [_label_box(*px[i], direction, width) for direction in _LABEL_DIRECTIONS]
-        rank = min(range(len(boxes)),
-                   key=lambda r: _label_cost(i, r, boxes[r], px, segments, placed))
+        rank, best = 0, math.inf
+        for r, candidate in enumerate(boxes):
+            if r * 0.5 >= best:
+                break  # no later side can beat a side already found (its tie-break is higher)
+            cost = _label_cost(i, r, candidate, px, segments, placed, grids)
+            if cost < best:
+                rank, best = r, cost
         box = boxes[rank]
+        label_grid.add(len(placed), box)
         placed.append(box)
         dx = math.sin(math.radians(_LABEL_DIRECTIONS[rank]))
         anchor = "start" if dx > 0.3 else ("end" if dx < -0.3 else "middle")
