@@ -8,11 +8,11 @@ plain sentences, never as a traceback.
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 from pathlib import Path
 
 from .errors import FieldbookError, NetworkError
+from .json_output import dumps_indented
 
 EXIT_OK, EXIT_FIELDBOOK, EXIT_NETWORK, EXIT_USAGE = 0, 2, 3, 64
 
@@ -46,41 +46,82 @@ def _adjust(args: argparse.Namespace) -> int:
     except OSError as exc:
         print(f"{path}: cannot read the file: {exc.strerror or exc}", file=sys.stderr)
         return EXIT_USAGE
+    progress = _TerminalProgress(sys.stderr) if sys.stderr.isatty() else None
     try:
-        result = adjust_fieldbook(data, source=str(path))
+        result = adjust_fieldbook(data, source=str(path), progress=progress)
     except FieldbookError as exc:
+        _clear(progress)
         print(str(exc), file=sys.stderr)
         return EXIT_FIELDBOOK
     except NetworkError as exc:
+        _clear(progress)
         print(f"{path}: the network cannot be adjusted: {exc}", file=sys.stderr)
         return EXIT_NETWORK
+    _clear(progress)
     if args.pdf is not None:
-        print(f"{path}: PDF reports are not available yet; use --report FILE.html", file=sys.stderr)
-        return EXIT_NETWORK
-    from . import report
+        from .report_pdf import report_pdf
 
+        args.pdf.write_bytes(report_pdf(result))
     if args.report is not None:
+        from . import report
+
         args.report.write_text(report.report_html(result), encoding="utf-8")
     if args.csv is not None:
+        from . import report
+
         args.csv.write_text(report.points_csv(result), encoding="utf-8", newline="")
     if args.json:
-        json.dump(result.to_json_dict(), sys.stdout, indent=2, allow_nan=False)
+        # the same text as json.dump(..., indent=2), written faster for large networks
+        sys.stdout.write(dumps_indented(result.to_json_dict()))
         sys.stdout.write("\n")
     else:
+        from . import report
+
         sys.stdout.write(report.report_text(result))
     return EXIT_OK
+
+
+class _TerminalProgress:
+    """Shows the stage of a long adjustment on one line of the terminal (stderr only)."""
+
+    #: Say nothing for adjustments that finish sooner than this (seconds).
+    QUIET_FOR = 1.0
+
+    def __init__(self, stream) -> None:
+        import time
+
+        self._clock = time.monotonic
+        self._start = self._clock()
+        self._stream = stream
+        self.shown = False
+
+    def __call__(self, stage: str, step: int) -> None:
+        elapsed = self._clock() - self._start
+        if elapsed < self.QUIET_FOR:
+            return
+        what = f"iteration {step}" if stage == "iteration" else stage
+        self._stream.write(f"\rStationfit: {what}… ({elapsed:.0f} s)\033[K")
+        self._stream.flush()
+        self.shown = True
+
+
+def _clear(progress: _TerminalProgress | None) -> None:
+    if progress is not None and progress.shown:
+        progress._stream.write("\r\033[K")
+        progress._stream.flush()
 
 
 def _serve(host: str, port: int, data: Path | None) -> int:
     import uvicorn
 
     from .settings import default_data_dir
-    from .web.app import create_app
+    from .web.app import create_app, serve_allowed_hosts
 
     data_dir = data if data is not None else default_data_dir()
     data_dir.mkdir(parents=True, exist_ok=True)
     print(f"Stationfit: projects are stored in {data_dir}; open http://{host}:{port}/", file=sys.stderr)
-    uvicorn.run(create_app(data_dir), host=host, port=port, log_level="warning")
+    app = create_app(data_dir, allowed_hosts=serve_allowed_hosts(host))
+    uvicorn.run(app, host=host, port=port, log_level="warning")
     return EXIT_OK
 
 

@@ -41,14 +41,15 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
     used = [o for o in network.used if o.kind in HORIZONTAL_KINDS]
     needed = {n for o in used for n in _names(o)}
     known = {n: p for n, p in given.items() if n in needed and not math.isnan(p[0])}
-    _Propagator(used, known).run()
+    tables = _Tables(used)  # what the observations say, read once for every propagation
+    _Propagator(tables, known).run()
     # Control that is not tied together directly (no backsight between held points)
     # stalls the propagation: build the figure in a local frame from one station,
     # then move it onto the control by a similarity transformation.
     for _ in range(10):
         if not needed - set(known):
             break
-        local = _Propagator(used, {})
+        local = _Propagator(tables, {})
         local.arbitrary_datum(_seed(used, set(known)))
         local.run()
         common = [n for n in local.known if n in known]
@@ -62,7 +63,7 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
                 known.setdefault(name, transform(position))
         else:
             break
-        _Propagator(used, known).run()
+        _Propagator(tables, known).run()
     missing = sorted(needed - set(known))
     if missing:
         shown = ", ".join(missing[:12]) + (f" and {len(missing) - 12} more" if len(missing) > 12 else "")
@@ -111,11 +112,10 @@ def _names(o: Observation) -> tuple[str, ...]:
     return (o.from_point, o.to) if o.at is None else (o.from_point, o.at, o.to)
 
 
-class _Propagator:
-    """Breadth of facts (azimuths, distances, orientations) grown until every point is placed."""
+class _Tables:
+    """The observations sorted for propagation: distances by pair, rounds, angles, azimuths, links."""
 
-    def __init__(self, used: list[Observation], known: dict[str, Position]) -> None:
-        self.known = known
+    def __init__(self, used: list[Observation]) -> None:
         self.distances: dict[frozenset[str], list[float]] = defaultdict(list)
         self.rounds: dict[int, list[Observation]] = defaultdict(list)
         self.angles = [o for o in used if o.kind == "angle"]
@@ -125,13 +125,30 @@ class _Propagator:
                 self.distances[frozenset((o.from_point, o.to))].append(o.value)
             elif o.kind == "direction" and o.round_line is not None:
                 self.rounds[o.round_line].append(o)
+        linked: set[tuple[str, str]] = set()
+        for o in used:
+            station = o.at or o.from_point
+            for n in _names(o):
+                if n != station:
+                    linked.add((station, n))
+        self.linked = linked
+
+
+class _Propagator:
+    """Breadth of facts (azimuths, distances, orientations) grown until every point is placed."""
+
+    def __init__(self, tables: _Tables, known: dict[str, Position]) -> None:
+        self.known = known
+        self.distances = tables.distances
+        self.rounds = tables.rounds
+        self.angles = tables.angles
+        self.azimuth_obs = tables.azimuth_obs
         self.azimuths: dict[tuple[str, str], float] = {}
         self.orientations: dict[int, float] = {}
-        self.linked: set[tuple[str, str]] = set()
-        for o in used:
-            names = _names(o)
-            station = o.at or o.from_point
-            self.linked |= {(station, n) for n in names if n != station}
+        # links whose azimuth is not known yet: each is looked at until it is
+        self.unlearned = list(tables.linked)
+        self.unoriented = dict(tables.rounds)  # rounds not yet oriented, in file order
+        self.open_angles = list(tables.angles)
 
     def arbitrary_datum(self, link: tuple[str, str]) -> None:
         """A local frame: ``link[0]`` at the origin, ``link[1]`` due north of it."""
@@ -157,13 +174,22 @@ class _Propagator:
             self.azimuths[(j, i)] = (value + math.pi) % (2 * math.pi)
 
     def _learn_azimuths(self) -> None:
-        for i, j in self.linked:
-            if i in self.known and j in self.known and (i, j) not in self.azimuths:
-                (ei, ni), (ej, nj) = self.known[i], self.known[j]
+        known, azimuths = self.known, self.azimuths
+        still: list[tuple[str, str]] = []
+        for link in self.unlearned:
+            if link in azimuths:
+                continue
+            i, j = link
+            if i in known and j in known:
+                (ei, ni), (ej, nj) = known[i], known[j]
                 self._set_azimuth(i, j, math.atan2(ej - ei, nj - ni))
+            else:
+                still.append(link)
+        self.unlearned = still
         for o in self.azimuth_obs:
             self._set_azimuth(o.from_point, o.to, o.value)
-        for line, directions in self.rounds.items():
+        done: list[int] = []
+        for line, directions in self.unoriented.items():
             if line not in self.orientations:
                 for d in directions:
                     if (d.from_point, d.to) in self.azimuths:
@@ -172,13 +198,20 @@ class _Propagator:
             if line in self.orientations:
                 for d in directions:
                     self._set_azimuth(d.from_point, d.to, self.orientations[line] + d.value)
-        for o in self.angles:
+                done.append(line)  # every azimuth of the round is known from now on
+        for line in done:
+            del self.unoriented[line]
+        open_angles = []
+        for o in self.open_angles:
             assert o.at is not None
             back, fore = (o.at, o.from_point), (o.at, o.to)
             if back in self.azimuths:
                 self._set_azimuth(*fore, self.azimuths[back] + o.value)
             elif fore in self.azimuths:
                 self._set_azimuth(*back, self.azimuths[fore] - o.value)
+            else:
+                open_angles.append(o)
+        self.open_angles = open_angles  # an angle with both azimuths known has no more to say
 
     def _place_polar(self) -> None:
         for (i, j), azimuth in list(self.azimuths.items()):

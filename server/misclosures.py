@@ -121,6 +121,10 @@ def _cycle_basis(
             if len(chosen) == dimension:
                 break
             take(cycle)
+    if not chosen:
+        # each spanning-tree cycle holds its own non-tree section, so together they are
+        # independent and complete: no elimination needed
+        return _fundamental_cycles(edges, adjacency)[:dimension]
     if len(chosen) < dimension:
         for cycle in _fundamental_cycles(edges, adjacency):
             if len(chosen) == dimension:
@@ -216,17 +220,27 @@ def _fundamental_cycles(
 
 
 def _walk(cycle: list[int], edges: list[_Edge], start: str) -> tuple[list[str], float]:
-    """Walk a simple cycle from ``start``: the marks in order and the summed rise."""
-    remaining = list(cycle)
+    """Walk a simple cycle from ``start``: the marks in order and the summed rise.
+
+    At each mark the walk leaves by the first cycle section (in the cycle's
+    own order) that touches it and is not yet used.
+    """
+    at_mark: dict[str, list[tuple[int, int]]] = {}  # mark → (position in cycle, section)
+    for position, k in enumerate(cycle):
+        e = edges[k]
+        at_mark.setdefault(e.start, []).append((position, k))
+        if e.end != e.start:
+            at_mark.setdefault(e.end, []).append((position, k))
+    used = [False] * len(cycle)
     node, marks, rise = start, [start], 0.0
-    while remaining:
-        for position, k in enumerate(remaining):
-            e = edges[k]
-            if node in (e.start, e.end):
+    for _ in range(len(cycle)):
+        for position, k in at_mark.get(node, ()):
+            if not used[position]:
                 break
         else:  # not a simple cycle through start; cannot happen for basis cycles
             raise RuntimeError("cycle walk lost its way")
-        remaining.pop(position)
+        used[position] = True
+        e = edges[k]
         forward = e.start == node
         rise += e.rise if forward else -e.rise
         node = e.end if forward else e.start

@@ -118,6 +118,7 @@ def build_network(fieldbook: Fieldbook) -> Network:
     if any(o.kind == "level" for o in used):
         warnings += _check_height_datum(points, used)
     if any(o.kind in HORIZONTAL_KINDS for o in used):
+        _check_coincident(points, used)
         free_datum, more = _check_horizontal_datum(points, used)
         warnings += more
     return Network(
@@ -168,6 +169,38 @@ def _collect_points(fieldbook: Fieldbook, used: tuple[Observation, ...]) -> tupl
     return tuple(points)
 
 
+#: Two marks closer than this (metres) are taken as the same position.
+COINCIDENT_M = 1e-6
+
+
+def _check_coincident(points: tuple[NetworkPoint, ...], used: tuple[Observation, ...]) -> None:
+    """Refuse a horizontal observation between two points given the same position.
+
+    Directions and partial derivatives between coincident marks are undefined,
+    so the adjustment could not even start; the surveyor must correct the
+    coordinates (usually a copied line) or leave out the approximate ones.
+    """
+    given: dict[str, tuple[float, float]] = {
+        p.name: (p.east, p.north) for p in points if p.east is not None and p.north is not None
+    }
+    for obs in used:
+        if obs.kind not in HORIZONTAL_KINDS:
+            continue
+        station = obs.at if obs.kind == "angle" else obs.from_point
+        for a, b in ((station, obs.to), (station, obs.from_point)):
+            if a is None or a == b or a not in given or b not in given:
+                continue
+            (ea, na), (eb, nb) = given[a], given[b]
+            if abs(ea - eb) <= COINCIDENT_M and abs(na - nb) <= COINCIDENT_M:
+                raise NetworkError(
+                    f"points {a} and {b} are given the same position (east {ea:.4f}, north "
+                    f"{na:.4f} m) but the {obs.kind} on line {obs.line} joins them; two marks "
+                    "an instrument sees apart need different coordinates: correct the "
+                    "coordinates, or leave out the approximate ones of the new point",
+                    [a, b],
+                )
+
+
 def _observed_names(obs: Observation) -> tuple[str, ...]:
     names = [obs.from_point]
     if obs.at is not None and obs.at != obs.from_point:
@@ -189,9 +222,12 @@ def _parameters(
         if p.name in vertical_points and "h" not in p.fixed:
             params.append(Parameter(HEIGHT, p.name))
     rounds = sorted({o.round_line for o in used if o.kind == "direction" and o.round_line})
+    first_at: dict[int, str | None] = {}  # station of each round (one pass, not one per round)
+    for o in used:
+        if o.round_line is not None:
+            first_at.setdefault(o.round_line, o.at)
     for line in rounds:
-        at = next(o.at for o in used if o.round_line == line)
-        params.append(Parameter("O", at, round_line=line))
+        params.append(Parameter("O", first_at[line], round_line=line))
     del dimension  # the kinds of the used observations decide the unknowns
     return tuple(params)
 

@@ -281,11 +281,11 @@ def build_result(
     fb = network.fieldbook
     tests = fb.tests
     per_m = 1.0 / LENGTH_FACTORS[fb.length_unit]
-    n_rows = solution.design.shape[0]
+    n_rows = len(solution.sigmas)
     n_unknowns = len(network.parameters)
     redundancy = n_rows - n_unknowns + network.datum_defect
 
-    r_i = st.redundancy_numbers(solution.design, solution.sigmas, solution.qxx)
+    r_i = st.redundancy_numbers(solution.adjusted_cofactor, solution.sigmas)
     vtpv = st.weighted_square_sum(solution.residuals, solution.sigmas)
     variance = st.variance_factor(vtpv, redundancy)
     global_test = None
@@ -367,35 +367,68 @@ def _observation_results(
     per_m: float,
     warnings: list[str],
 ) -> tuple[ObservationResult, ...]:
-    row_of = {id(obs): row for row, obs in enumerate(network.used)}
+    used = network.used
+    n_used = len(used)
+    # every figure of the used rows at once, then one object per observation
+    angular = np.array([obs.kind in ANGULAR_KINDS for obs in used], dtype=bool)
+    wrapped = angular & np.array([obs.kind != "zenith" for obs in used], dtype=bool)
+    observed_si = np.array([obs.value for obs in used], dtype=float)
+    adjusted_si = np.array(solution.adjusted[:n_used], dtype=float)
+    adjusted_si[wrapped] = _wrap_2pi(adjusted_si[wrapped])
+    residual_si = np.asarray(solution.residuals[:n_used], dtype=float)
+    sd_si = np.asarray(solution.sigmas[:n_used], dtype=float)
+    redundancy = np.asarray(r_i[:n_used], dtype=float)
+    controlled = redundancy >= UNCONTROLLED
+    safe = np.where(controlled, redundancy, 1.0)
+    w_all = residual_si / (sd_si * np.sqrt(safe))
+    mdb_si = sd_si * np.sqrt(lambda0 / safe)
+    small = np.where(angular, ARCSEC_PER_RAD, per_m)
+    # math.degrees multiplies by 180/π; so does this, for the same last bit
+    observed = np.where(angular, observed_si * _DEG_PER_RAD, observed_si * per_m).tolist()
+    adjusted = np.where(angular, adjusted_si * _DEG_PER_RAD, adjusted_si * per_m).tolist()
+    residual = (residual_si * small).tolist()
+    sd = (sd_si * small).tolist()
+    w_list = np.where(controlled, w_all, np.nan).tolist()
+    mdb = np.where(controlled, mdb_si * small, np.nan).tolist()
+    flagged = (controlled & (np.abs(w_all) > critical)).tolist()
+    redundancy_list = redundancy.tolist()
+    controlled_list = controlled.tolist()
+
+    row_of = {id(obs): row for row, obs in enumerate(used)}
     results = []
     uncontrolled: list[str] = []
     for obs in network.fieldbook.observations:
-        angular = obs.kind in ANGULAR_KINDS
-        to_value = math.degrees if angular else (lambda x: x * per_m)
-        to_small = (lambda x: x * ARCSEC_PER_RAD) if angular else (lambda x: x * per_m)
         row = row_of.get(id(obs))
-        if row is None:
-            adjusted_si = _evaluate(obs, solution)
-            residual_si = None if adjusted_si is None else _difference(obs, adjusted_si)
-            sd_si = _sigma_of_ignored(obs, solution)
-            redundancy = w = mdb = None
-            flagged = False
-        else:
-            adjusted_si = float(solution.adjusted[row])
-            residual_si = float(solution.residuals[row])
-            sd_si = float(solution.sigmas[row])
-            redundancy = float(r_i[row])
-            if redundancy < UNCONTROLLED:
-                w = mdb = None
-                flagged = False
+        if row is not None:
+            if not controlled_list[row]:
                 uncontrolled.append(f"line {obs.line} ({obs.kind} {obs.from_point}–{obs.to})")
-            else:
-                w = residual_si / (sd_si * math.sqrt(redundancy))
-                mdb = sd_si * math.sqrt(lambda0 / redundancy)
-                flagged = abs(w) > critical
-        if adjusted_si is not None and angular and obs.kind != "zenith":
-            adjusted_si = wrap_2pi(adjusted_si)
+            results.append(
+                ObservationResult(
+                    line=obs.line,
+                    kind=obs.kind,
+                    from_point=obs.from_point,
+                    at=obs.at,
+                    to=obs.to,
+                    observed=observed[row],
+                    adjusted=adjusted[row],
+                    residual=residual[row],
+                    sd=sd[row],
+                    redundancy=redundancy_list[row],
+                    w=w_list[row] if controlled_list[row] else None,
+                    mdb=mdb[row] if controlled_list[row] else None,
+                    flagged=flagged[row],
+                    ignored=obs.ignored,
+                    note=obs.note,
+                )
+            )
+            continue
+        is_angle = obs.kind in ANGULAR_KINDS
+        to_value = math.degrees if is_angle else (lambda x: x * per_m)
+        to_small = (lambda x: x * ARCSEC_PER_RAD) if is_angle else (lambda x: x * per_m)
+        value_si = _evaluate(obs, solution)
+        residual_one = None if value_si is None else _difference(obs, value_si)
+        if value_si is not None and is_angle and obs.kind != "zenith":
+            value_si = wrap_2pi(value_si)
         results.append(
             ObservationResult(
                 line=obs.line,
@@ -404,13 +437,13 @@ def _observation_results(
                 at=obs.at,
                 to=obs.to,
                 observed=to_value(obs.value),
-                adjusted=None if adjusted_si is None else to_value(adjusted_si),
-                residual=None if residual_si is None else to_small(residual_si),
-                sd=to_small(sd_si),
-                redundancy=redundancy,
-                w=None if w is None else float(w),
-                mdb=None if mdb is None else to_small(mdb),
-                flagged=flagged,
+                adjusted=None if value_si is None else to_value(value_si),
+                residual=None if residual_one is None else to_small(residual_one),
+                sd=to_small(_sigma_of_ignored(obs, solution)),
+                redundancy=None,
+                w=None,
+                mdb=None,
+                flagged=False,
                 ignored=obs.ignored,
                 note=obs.note,
             )
@@ -422,6 +455,16 @@ def _observation_results(
             f"cannot be detected: {shown}"
         )
     return tuple(results)
+
+
+_DEG_PER_RAD = 180.0 / math.pi
+
+
+def _wrap_2pi(angle_rad: np.ndarray) -> np.ndarray:
+    """``units.wrap_2pi`` for an array: reduce to [0, 2π)."""
+    reduced = np.fmod(angle_rad, 2.0 * math.pi)
+    reduced = np.where(reduced < 0.0, reduced + 2.0 * math.pi, reduced)
+    return np.where(reduced >= 2.0 * math.pi, 0.0, reduced)
 
 
 def _difference(obs: Observation, adjusted: float) -> float:
@@ -462,51 +505,59 @@ def _point_results(
     per_m: float,
 ) -> tuple[PointResult, ...]:
     column = {(p.point, p.kind): k for k, p in enumerate(network.parameters)}
-    qxx = solution.qxx
+    n_unknowns = len(network.parameters)
+    # the elements of Qxx the points need, fetched at once: the diagonal and each E–N pair
+    q_diagonal = solution.covariance_entries(np.arange(n_unknowns), np.arange(n_unknowns))
+    sd_all = (np.sqrt(np.maximum(variance * q_diagonal, 0.0)) * per_m).tolist()
+    en_points = [
+        (p.name, column[(p.name, "E")], column[(p.name, "N")])
+        for p in network.points
+        if (p.name, "E") in column and (p.name, "N") in column
+    ]
+    ke_all = np.array([ke for _, ke, _ in en_points], dtype=np.int64)
+    kn_all = np.array([kn for _, _, kn in en_points], dtype=np.int64)
+    q_en = solution.covariance_entries(ke_all, kn_all)
+    major, minor, azimuth = st.standard_ellipses(
+        variance * q_diagonal[ke_all], variance * q_en, variance * q_diagonal[kn_all]
+    )
+    ellipses = {
+        name: Ellipse(semi_major=a, semi_minor=b, azimuth=t, confidence=confidence)
+        for (name, _, _), a, b, t in zip(
+            en_points, (major * factor * per_m).tolist(), (minor * factor * per_m).tolist(),
+            azimuth.tolist(),
+        )
+    }
     results = []
+    horizontal, vertical = network.horizontal, network.vertical
+    coordinates = solution.coordinates
+    absent = (math.nan,) * 3
     for p in network.points:
-        east, north, height = solution.coordinates.get(p.name, (math.nan,) * 3)
-        values = {"E": east, "N": north, "H": height}
-        given = {"E": p.east, "N": p.north, "H": p.height}
-        out: dict[str, float | None] = {}
-        sds: dict[str, float | None] = {}
-        for comp in ("E", "N", "H"):
+        adjusted = coordinates.get(p.name, absent)
+        out: list[float | None] = [None, None, None]
+        sds: list[float | None] = [None, None, None]
+        for index, comp, original in ((0, "E", p.east), (1, "N", p.north), (2, "H", p.height)):
             k = column.get((p.name, comp))
-            in_dimension = (comp == "H" and network.vertical) or (comp != "H" and network.horizontal)
-            value = values[comp]
             if k is not None:
-                out[comp] = float(value) * per_m
-                sds[comp] = math.sqrt(max(variance * qxx[k, k], 0.0)) * per_m
+                out[index] = float(adjusted[index]) * per_m
+                sds[index] = sd_all[k]
             else:
-                original = given[comp]
-                out[comp] = None if original is None else original * per_m
-                fixed_here = in_dimension and original is not None and (
-                    ("h" in p.fixed) if comp == "H" else ("en" in p.fixed)
-                )
-                sds[comp] = 0.0 if fixed_here else None
-        ellipse = None
-        ke, kn = column.get((p.name, "E")), column.get((p.name, "N"))
-        if ke is not None and kn is not None:
-            cov = variance * qxx[np.ix_([ke, kn], [ke, kn])]
-            major, minor, azimuth = st.standard_ellipse(cov)
-            ellipse = Ellipse(
-                semi_major=major * factor * per_m,
-                semi_minor=minor * factor * per_m,
-                azimuth=azimuth,
-                confidence=confidence,
-            )
+                out[index] = None if original is None else original * per_m
+                if original is not None and (
+                    ("h" in p.fixed and vertical) if index == 2 else ("en" in p.fixed and horizontal)
+                ):
+                    sds[index] = 0.0
         results.append(
             PointResult(
                 name=p.name,
-                east=out["E"],
-                north=out["N"],
-                height=out["H"],
-                sd_east=sds["E"],
-                sd_north=sds["N"],
-                sd_height=sds["H"],
+                east=out[0],
+                north=out[1],
+                height=out[2],
+                sd_east=sds[0],
+                sd_north=sds[1],
+                sd_height=sds[2],
                 fixed=p.fixed,
                 weighted=p.weighted,
-                ellipse=ellipse,
+                ellipse=ellipses.get(p.name),
                 in_use=p.in_use,
             )
         )
@@ -540,43 +591,64 @@ def _relative_results(
     """Relative confidence ellipses: Σ_Δ = Σ_ii + Σ_jj − Σ_ij − Σ_ji over (E, N)."""
     column = {(p.point, p.kind): k for k, p in enumerate(network.parameters)}
     tolerance = network.fieldbook.relative_tolerance
-    qxx = solution.qxx
-    results = []
+    # each pair's unknowns (E_a, N_a, E_b, N_b), −1 where held; signs of the difference b − a
+    pairs = []
     for a, b in _joined_pairs(network):
-        # the difference b − a as a combination of the unknowns (fixed parts contribute nothing)
-        weights: list[tuple[int, int, float]] = []
-        for axis, comp in enumerate(("E", "N")):
-            for name, sign in ((b, 1.0), (a, -1.0)):
-                k = column.get((name, comp))
-                if k is not None:
-                    weights.append((axis, k, sign))
-        if not weights:
-            continue  # both ends held fixed
-        jacobian = np.zeros((2, len(network.parameters)))
-        for axis, k, sign in weights:
-            jacobian[axis, k] += sign
-        used_columns = sorted({k for _, k, _ in weights})
-        block = jacobian[:, used_columns]
-        cov = variance * block @ qxx[np.ix_(used_columns, used_columns)] @ block.T
-        major, minor, azimuth = st.standard_ellipse(cov)
-        (ea, na, _), (eb, nb, _) = solution.coordinates[a], solution.coordinates[b]
-        distance_m = math.hypot(eb - ea, nb - na)
-        unit = np.array([eb - ea, nb - na]) / distance_m if distance_m else np.zeros(2)
-        sd_distance = math.sqrt(max(float(unit @ cov @ unit), 0.0))
-        semi_major = major * factor * per_m
-        allowed = None if tolerance is None else tolerance.allowance_distance(distance_m) * per_m
+        ends = [column.get((a, "E"), -1), column.get((a, "N"), -1),
+                column.get((b, "E"), -1), column.get((b, "N"), -1)]
+        if max(ends) >= 0:  # else both ends held fixed
+            pairs.append((a, b, ends))
+    unknowns = np.array([ends for _, _, ends in pairs], dtype=np.int64).reshape(-1, 4)
+    sign = np.array([-1.0, -1.0, 1.0, 1.0])
+    # Σ_Δ over (E, N) from the 4×4 block of the pair's unknowns, held ones contributing nothing
+    first, second = np.meshgrid(np.arange(4), np.arange(4), indexing="ij")
+    rows = unknowns[:, first.ravel()]
+    cols = unknowns[:, second.ravel()]
+    valid = (rows >= 0) & (cols >= 0)
+    block = np.zeros(rows.shape)
+    block[valid] = solution.covariance_entries(rows[valid], cols[valid])
+    block = block.reshape(-1, 4, 4) * (sign[:, None] * sign[None, :])
+    axis_of = np.array([0, 1, 0, 1])  # E, N, E, N
+    covariances = np.zeros((len(pairs), 2, 2))
+    for s_ in range(4):
+        for t_ in range(4):
+            covariances[:, axis_of[s_], axis_of[t_]] += block[:, s_, t_]
+    cov = variance * covariances
+    major, minor, azimuth = st.standard_ellipses(cov[:, 0, 0], cov[:, 0, 1], cov[:, 1, 1])
+    coordinates = solution.coordinates
+    ends_a = np.array([coordinates[a][:2] for a, _, _ in pairs], dtype=float).reshape(-1, 2)
+    ends_b = np.array([coordinates[b][:2] for _, b, _ in pairs], dtype=float).reshape(-1, 2)
+    d_east, d_north = ends_b[:, 0] - ends_a[:, 0], ends_b[:, 1] - ends_a[:, 1]
+    distance_m = np.hypot(d_east, d_north)
+    length = np.where(distance_m > 0.0, distance_m, 1.0)
+    u_east = np.where(distance_m > 0.0, d_east / length, 0.0)
+    u_north = np.where(distance_m > 0.0, d_north / length, 0.0)
+    along = u_east * (cov[:, 0, 0] * u_east + cov[:, 0, 1] * u_north) + u_north * (
+        cov[:, 1, 0] * u_east + cov[:, 1, 1] * u_north
+    )
+    sd_distance = (np.sqrt(np.maximum(along, 0.0)) * per_m).tolist()
+    semi_major = (major * factor * per_m).tolist()
+    semi_minor = (minor * factor * per_m).tolist()
+    azimuths = azimuth.tolist()
+    if tolerance is None:
+        allowed: list[float | None] = [None] * len(pairs)
+    else:
+        allowed = ((tolerance.constant + tolerance.ppm * 1e-6 * distance_m) * per_m).tolist()
+    results = []
+    for k, ((a, b, _), distance) in enumerate(zip(pairs, (distance_m * per_m).tolist())):
+        allow = allowed[k]
         results.append(
             RelativeResult(
                 from_point=a,
                 to_point=b,
-                distance=distance_m * per_m,
-                semi_major=semi_major,
-                semi_minor=minor * factor * per_m,
-                azimuth=azimuth,
+                distance=distance,
+                semi_major=semi_major[k],
+                semi_minor=semi_minor[k],
+                azimuth=azimuths[k],
                 confidence=confidence,
-                allowed=allowed,
-                passed=None if allowed is None else bool(semi_major <= allowed),
-                sd_distance=sd_distance * per_m,
+                allowed=allow,
+                passed=None if allow is None else bool(semi_major[k] <= allow),
+                sd_distance=sd_distance[k],
             )
         )
     return tuple(results)

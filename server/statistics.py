@@ -13,14 +13,16 @@ from __future__ import annotations
 import math
 
 import numpy as np
-import scipy.stats
+import scipy.special
+
+# The quantiles below call the same special functions as scipy.stats' chi2, norm and f
+# distributions (identical numbers) without importing scipy.stats, which costs about
+# half a second at every start of the command line.
 
 
-def redundancy_numbers(design: np.ndarray, sigmas: np.ndarray, qxx: np.ndarray) -> np.ndarray:
-    """r_i = (Qvv·P)_ii = 1 − a_i·Qxx·a_iᵀ / σ_i²."""
-    if design.shape[1] == 0:
-        return np.ones(design.shape[0])
-    explained = np.einsum("ij,jk,ik->i", design, qxx, design) / sigmas**2
+def redundancy_numbers(adjusted_cofactor: np.ndarray, sigmas: np.ndarray) -> np.ndarray:
+    """r_i = (Qvv·P)_ii = 1 − (A·Qxx·Aᵀ)_ii / σ_i², from the engine's (A·Qxx·Aᵀ)_ii."""
+    explained = adjusted_cofactor / sigmas**2
     # rounding can push a fully controlled or uncontrolled row past [0, 1]
     return np.clip(1.0 - explained, 0.0, 1.0)
 
@@ -38,19 +40,19 @@ def variance_factor(vtpv: float, redundancy: int) -> float | None:
 def chi_square_bounds(redundancy: int, alpha: float) -> tuple[float, float]:
     """Two-sided χ² acceptance region (χ²_{α/2}(r), χ²_{1−α/2}(r)) for vᵀPv."""
     return (
-        float(scipy.stats.chi2.ppf(alpha / 2.0, redundancy)),
-        float(scipy.stats.chi2.ppf(1.0 - alpha / 2.0, redundancy)),
+        _chi2_ppf(alpha / 2.0, redundancy),
+        _chi2_ppf(1.0 - alpha / 2.0, redundancy),
     )
 
 
 def normal_critical_value(alpha: float) -> float:
     """Two-sided critical value z_{1−α/2} of the standard normal distribution."""
-    return float(scipy.stats.norm.ppf(1.0 - alpha / 2.0))
+    return float(scipy.special.ndtri(1.0 - alpha / 2.0))
 
 
 def non_centrality(alpha: float, power: float) -> float:
     """λ₀ = (z_{1−α/2} + z_{power})², Baarda's approximation for the MDB."""
-    return (normal_critical_value(alpha) + float(scipy.stats.norm.ppf(power))) ** 2
+    return (normal_critical_value(alpha) + float(scipy.special.ndtri(power))) ** 2
 
 
 def w_statistics(residuals: np.ndarray, sigmas: np.ndarray, redundancy: np.ndarray) -> np.ndarray:
@@ -70,8 +72,8 @@ def ellipse_factor(confidence: float, redundancy: int) -> float:
     √χ²(confidence; 2) (2.4477 at 95 %) when r = 0 and the a priori σ₀ is used.
     """
     if redundancy <= 0:
-        return math.sqrt(float(scipy.stats.chi2.ppf(confidence, 2)))
-    return math.sqrt(2.0 * float(scipy.stats.f.ppf(confidence, 2, redundancy)))
+        return math.sqrt(_chi2_ppf(confidence, 2))
+    return math.sqrt(2.0 * float(scipy.special.fdtri(2, redundancy, confidence)))
 
 
 def standard_ellipse(covariance: np.ndarray) -> tuple[float, float, float]:
@@ -86,4 +88,21 @@ def standard_ellipse(covariance: np.ndarray) -> tuple[float, float, float]:
     major = math.sqrt(max(mean + radius, 0.0))
     minor = math.sqrt(max(mean - radius, 0.0))
     azimuth = math.degrees(0.5 * math.atan2(2.0 * sen, snn - see)) % 180.0
+    return major, minor, azimuth
+
+
+def _chi2_ppf(q: float, degrees: int) -> float:
+    """χ² quantile: 2·P⁻¹(k/2, q), P the regularized lower incomplete gamma function."""
+    return float(2.0 * scipy.special.gammaincinv(degrees / 2.0, q))
+
+
+def standard_ellipses(
+    var_east: np.ndarray, cov_en: np.ndarray, var_north: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``standard_ellipse`` for many 2×2 covariances at once (same formulas)."""
+    mean = 0.5 * (var_east + var_north)
+    radius = np.hypot(0.5 * (var_north - var_east), cov_en)
+    major = np.sqrt(np.maximum(mean + radius, 0.0))
+    minor = np.sqrt(np.maximum(mean - radius, 0.0))
+    azimuth = np.mod(0.5 * np.arctan2(2.0 * cov_en, var_north - var_east) * (180.0 / math.pi), 180.0)
     return major, minor, azimuth

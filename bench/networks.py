@@ -1,0 +1,142 @@
+"""Synthetic field books for the benchmark: invented networks of a chosen size.
+
+Two families, both written as ordinary field book text with normally
+distributed observation errors of exactly the a priori standard deviations:
+
+* ``leveling(marks)``: a regional leveling network.  Junction benchmarks on a
+  square grid about 10 km apart are joined by level lines along the grid,
+  each line a chain of marks about 1 km apart (sections with ``len=``), so
+  the network is a mesh of loops of roughly 40 km; one junction in 25 is held
+  fixed, which also gives runs between fixed benchmarks.
+* ``horizontal(points)``: a triangulated control network.  Points on a
+  jittered square grid 300 m apart; every point carries a directions round
+  to its six triangle neighbours and distances along the triangle edges
+  (each measured once); a sparse set of points (one in 400, at least four)
+  is held fixed.
+
+The generators are deterministic for a given seed.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+LEVEL_SD_MM_PER_SQRTKM = 1.0
+DIRECTION_SD_SEC = 1.0
+DISTANCE_SD = (2.0, 2.0)  # mm, ppm
+
+
+def leveling(marks: int, *, seed: int = 1, section_km: float = 1.0, per_line: int = 9) -> str:
+    """A leveling network of about ``marks`` marks (junctions plus line marks)."""
+    rng = np.random.default_rng(seed)
+    junctions = max(2, round(math.sqrt(marks / (2 * per_line + 1))))
+    names: dict[tuple[int, int], str] = {}
+    heights: dict[str, float] = {}
+
+    def height_at(x_km: float, y_km: float) -> float:
+        return 200.0 + 80.0 * math.sin(x_km / 37.0) * math.cos(y_km / 23.0) + 0.4 * x_km
+
+    lines = [
+        "fieldbook 1",
+        f'title "benchmark leveling, {marks} marks"',
+        "units length=m",
+        "tolerance misclosure=4mm/sqrtkm",
+        f"defaults level={LEVEL_SD_MM_PER_SQRTKM}mm/sqrtkm",
+    ]
+    spacing = section_km * (per_line + 1)
+    for i in range(junctions):
+        for j in range(junctions):
+            name = f"J{i}_{j}"
+            names[(i, j)] = name
+            heights[name] = height_at(j * spacing, i * spacing)
+            if i % 5 == 0 and j % 5 == 0:
+                lines.append(f"point {name} height={heights[name]:.5f} fix")
+    sd_km = LEVEL_SD_MM_PER_SQRTKM * 1e-3
+
+    def run_line(start: str, end: str, x0: float, y0: float, dx: float, dy: float, label: str) -> None:
+        previous = start
+        for k in range(1, per_line + 2):
+            if k <= per_line:
+                mark = f"{label}_{k}"
+                x, y = x0 + dx * k, y0 + dy * k
+                heights[mark] = height_at(x, y) + rng.normal(0.0, 0.5)
+            else:
+                mark = end
+            length = section_km * rng.uniform(0.7, 1.3)
+            dh = heights[mark] - heights[previous] + rng.normal(0.0, sd_km * math.sqrt(length))
+            lines.append(f"level {previous} {mark} {dh:+.5f} len={length:.3f}km")
+            previous = mark
+
+    for i in range(junctions):
+        for j in range(junctions):
+            x, y = j * spacing, i * spacing
+            if j + 1 < junctions:
+                run_line(names[(i, j)], names[(i, j + 1)], x, y, section_km, 0.0, f"E{i}_{j}")
+            if i + 1 < junctions:
+                run_line(names[(i, j)], names[(i + 1, j)], x, y, 0.0, section_km, f"N{i}_{j}")
+    return "\n".join(lines) + "\n"
+
+
+def horizontal(
+    points: int, *, seed: int = 1, spacing: float = 300.0, fixed_every: int = 400, sparse: bool = False
+) -> str:
+    """A triangulated 2D network of about ``points`` points.
+
+    ``sparse``: a lighter survey, as in an everyday project: rounds to the four
+    grid neighbours and distances along the grid, about six observations per point.
+    """
+    rng = np.random.default_rng(seed)
+    size = max(3, round(math.sqrt(points)))
+    east = (np.arange(size)[None, :] + rng.uniform(-0.2, 0.2, (size, size))) * spacing + 500000.0
+    north = (np.arange(size)[:, None] + rng.uniform(-0.2, 0.2, (size, size))) * spacing + 200000.0
+    name = [[f"P{i}_{j}" for j in range(size)] for i in range(size)]
+    lines = [
+        "fieldbook 1",
+        f'title "benchmark horizontal network, {size * size} points"',
+        "units length=m angle=dms",
+        "tolerance relative=2cm+50ppm",
+        (
+            f"defaults direction={DIRECTION_SD_SEC}sec "
+            f"distance={DISTANCE_SD[0]}mm+{DISTANCE_SD[1]}ppm centering=0mm"
+        ),
+    ]
+    # held points: a regular sprinkle, always including the four corners
+    step = max(2, round(math.sqrt(fixed_every)))
+    held = {(i, j) for i in range(0, size, step) for j in range(0, size, step)}
+    held |= {(0, 0), (0, size - 1), (size - 1, 0), (size - 1, size - 1)}
+    for i, j in sorted(held):
+        lines.append(f"point {name[i][j]} east={east[i, j]:.4f} north={north[i, j]:.4f} fix")
+    offsets = ((0, 1), (1, 0), (1, 1), (0, -1), (-1, 0), (-1, -1))
+    if sparse:
+        offsets = ((0, 1), (1, 0), (0, -1), (-1, 0))
+    sd_dir = math.radians(DIRECTION_SD_SEC / 3600.0)
+    for i in range(size):
+        for j in range(size):
+            targets = [
+                (i + di, j + dj) for di, dj in offsets if 0 <= i + di < size and 0 <= j + dj < size
+            ]
+            orientation = rng.uniform(0.0, 2.0 * math.pi)
+            lines.append(f"directions {name[i][j]}")
+            for ti, tj in targets:
+                azimuth = math.atan2(east[ti, tj] - east[i, j], north[ti, tj] - north[i, j])
+                value = math.degrees(azimuth - orientation + rng.normal(0.0, sd_dir)) % 360.0
+                lines.append(f"  {name[ti][tj]} {_dms(value)}")
+            lines.append("end")
+            for ti, tj in targets:
+                if (ti, tj) < (i, j):
+                    continue  # each triangle edge measured once, from its lower end
+                d = math.hypot(east[ti, tj] - east[i, j], north[ti, tj] - north[i, j])
+                sd = math.hypot(DISTANCE_SD[0] * 1e-3, DISTANCE_SD[1] * 1e-6 * d)
+                lines.append(f"distance {name[i][j]} {name[ti][tj]} {d + rng.normal(0.0, sd):.4f}")
+    return "\n".join(lines) + "\n"
+
+
+def _dms(degrees: float) -> str:
+    """D:MM:SS.ss with the seconds rounded and carried."""
+    total = round(degrees * 360000.0)
+    whole, hundredths = divmod(total, 100)
+    minutes, seconds = divmod(whole, 60)
+    d, m = divmod(minutes, 60)
+    return f"{d % 360}:{m:02d}:{seconds:02d}.{hundredths:02d}"

@@ -1,0 +1,379 @@
+"""Compiled loops of the sparse engine (numba, cached on disk after the first run).
+
+Four small kernels whose loops cannot be written as whole-array numpy
+operations without materialising far more than they compute:
+
+* ``normal_pattern``: the sparsity pattern of N = AᵀPA (a symbolic product)
+  and, for every product term w_r·a_rs·a_rt, the position in N's data it adds
+  to, so that each iteration only refills the numbers (``fill_normal``);
+* ``row_quadratic``: a_r·Q·a_rᵀ for every row, with Q given on N's pattern;
+* ``selected_inverse``: the elements of Z = (L·D·Lᵀ)⁻¹ on the pattern of L by
+  the Takahashi recurrences (Takahashi, Fagan and Chen 1973; Erisman and
+  Tinney, *Comm. ACM* 18(3), 1975)::
+
+      Z_ij = −Σ_{k∈S_j} Z_ik·L_kj            (i ∈ S_j)
+      Z_jj = 1/d_j − Σ_{k∈S_j} L_kj·Z_kj
+
+  for j = n−1 … 0, with S_j the rows of column j of L below the diagonal.
+  Every Z_ik needed lies on the pattern of L (the filled graph is chordal), so
+  the recurrences never leave it;
+* ``lookup``: positions of (row, column) pairs in a CSC pattern.
+
+A pure-Python loop over 100 000 columns costs seconds before any arithmetic
+(measured: about 10 µs per column for the slicing alone), which is why these
+are compiled.  Matrices are CSC with sorted row indices; int64 indices and
+float64 values throughout, so each kernel is compiled for one signature.
+Without numba the same functions run as plain Python (correct, slow).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+try:  # numba is a declared dependency; the fallback keeps the module importable
+    from numba import njit
+except ImportError:  # pragma: no cover - exercised only where numba is missing
+
+    def njit(*args, **kwargs):  # type: ignore[no-redef]
+        if args and callable(args[0]):
+            return args[0]
+        return lambda function: function
+
+
+@njit(cache=True, nogil=True)
+def normal_pattern(n, row_ptr, slot_col):  # pragma: no cover - compiled
+    """Pattern of AᵀA (CSC, sorted) and the data position of every slot pair.
+
+    Row r of A has slots row_ptr[r] … row_ptr[r+1]−1 with columns slot_col.
+    The pair (s, t) of row r (both slot numbers) is term number
+    pair_ptr[r] + (s − row_ptr[r])·k_r + (t − row_ptr[r]), k_r the row's
+    slot count; ``targets`` gives its position in N's data (N_{col(s), col(t)}).
+    """
+    m = row_ptr.shape[0] - 1
+    nnz_a = slot_col.shape[0]
+    # A by columns: for each column the slots that hold it
+    counts = np.zeros(n + 1, np.int64)
+    for q in range(nnz_a):
+        counts[slot_col[q] + 1] += 1
+    col_ptr = np.cumsum(counts)
+    col_slot = np.empty(nnz_a, np.int64)
+    col_row = np.empty(nnz_a, np.int64)
+    fill = col_ptr[:-1].copy()
+    for r in range(m):
+        for q in range(row_ptr[r], row_ptr[r + 1]):
+            c = slot_col[q]
+            col_slot[fill[c]] = q
+            col_row[fill[c]] = r
+            fill[c] += 1
+    pair_ptr = np.zeros(m + 1, np.int64)
+    for r in range(m):
+        k = row_ptr[r + 1] - row_ptr[r]
+        pair_ptr[r + 1] = pair_ptr[r] + k * k
+    targets = np.empty(pair_ptr[m], np.int64)
+    indptr = np.zeros(n + 1, np.int64)
+    indices = np.empty(pair_ptr[m], np.int64)  # upper bound, trimmed below
+    mark = np.full(n, -1, np.int64)
+    position = np.zeros(n, np.int64)
+    buffer = np.empty(n, np.int64)
+    nnz = 0
+    for j in range(n):
+        found = 0
+        for q in range(col_ptr[j], col_ptr[j + 1]):
+            r = col_row[q]
+            for s in range(row_ptr[r], row_ptr[r + 1]):
+                i = slot_col[s]
+                if mark[i] != j:
+                    mark[i] = j
+                    buffer[found] = i
+                    found += 1
+        rows = np.sort(buffer[:found])
+        for p in range(found):
+            indices[nnz + p] = rows[p]
+            position[rows[p]] = nnz + p
+        for q in range(col_ptr[j], col_ptr[j + 1]):
+            r = col_row[q]
+            t = col_slot[q]
+            start = row_ptr[r]
+            k = row_ptr[r + 1] - start
+            for s in range(start, row_ptr[r + 1]):
+                targets[pair_ptr[r] + (s - start) * k + (t - start)] = position[slot_col[s]]
+        nnz += found
+        indptr[j + 1] = nnz
+    return indptr, indices[:nnz].copy(), pair_ptr, targets
+
+
+@njit(cache=True, nogil=True)
+def fill_normal(nnz, row_ptr, slot_val, weights, pair_ptr, targets):  # pragma: no cover
+    """N's data: Σ_r w_r·a_rs·a_rt, each term added to its fixed position.
+
+    The term of a pair and of its mirror is the same product, so N is
+    symmetric to the last bit.
+    """
+    data = np.zeros(nnz, np.float64)
+    m = row_ptr.shape[0] - 1
+    for r in range(m):
+        start = row_ptr[r]
+        k = row_ptr[r + 1] - start
+        base = pair_ptr[r]
+        w = weights[r]
+        for a in range(k):
+            wa = w * slot_val[start + a]
+            data[targets[base + a * k + a]] += wa * slot_val[start + a]
+            for b in range(a + 1, k):
+                term = wa * slot_val[start + b]
+                data[targets[base + a * k + b]] += term
+                data[targets[base + b * k + a]] += term
+    return data
+
+
+@njit(cache=True, nogil=True)
+def row_quadratic(row_ptr, slot_val, pair_ptr, targets, q_data):  # pragma: no cover
+    """a_r·Q·a_rᵀ for every row r, with Q's elements on N's pattern in ``q_data``."""
+    m = row_ptr.shape[0] - 1
+    out = np.zeros(m, np.float64)
+    for r in range(m):
+        start = row_ptr[r]
+        k = row_ptr[r + 1] - start
+        base = pair_ptr[r]
+        total = 0.0
+        for a in range(k):
+            for b in range(k):
+                total += slot_val[start + a] * slot_val[start + b] * q_data[targets[base + a * k + b]]
+        out[r] = total
+    return out
+
+
+@njit(cache=True, nogil=True)
+def supernodes(indptr, indices):  # pragma: no cover - compiled
+    """Start columns of the supernodes of L (columns sharing one structure below them).
+
+    Column j joins column j+1's supernode when its first row below the
+    diagonal is j+1 and it holds exactly one row more: on a filled pattern
+    the two structures below the block are then equal.
+    """
+    n = indptr.shape[0] - 1
+    starts = np.empty(n + 1, np.int64)
+    count = 0
+    for j in range(n):
+        if j == 0:
+            starts[count] = 0
+            count += 1
+            continue
+        previous = j - 1
+        size_previous = indptr[j] - indptr[previous]
+        size_here = indptr[j + 1] - indptr[j]
+        joined = size_previous == size_here + 1 and size_previous >= 2
+        if joined and indices[indptr[previous] + 1] != j:
+            joined = False
+        if not joined:
+            starts[count] = j
+            count += 1
+    starts[count] = n
+    return starts[: count + 1].copy()
+
+
+@njit(cache=True, nogil=True)
+def selected_inverse(indptr, indices, lower, pivots):  # pragma: no cover - compiled
+    """Z = (L·D·Lᵀ)⁻¹ on the pattern of L (unit lower, diagonal stored first per column).
+
+    Blocked by supernodes: for a supernode J with rows R below it,
+    Y = L_RJ·L_JJ⁻¹, Z_RJ = −Z_RR·Y and Z_JJ = L_JJ⁻ᵀ·D_J⁻¹·L_JJ⁻¹ − Yᵀ·Z_RJ,
+    Z_RR gathered from the supernodes already done (the product is the BLAS
+    call that carries most of the work).
+    """
+    n = indptr.shape[0] - 1
+    z = np.zeros(lower.shape[0], np.float64)
+    starts = supernodes(indptr, indices)
+    column_supernode = np.empty(n, np.int64)
+    for s in range(starts.shape[0] - 1):
+        column_supernode[starts[s]:starts[s + 1]] = s
+    for s in range(starts.shape[0] - 2, -1, -1):
+        j0 = starts[s]
+        j1 = starts[s + 1]
+        width = j1 - j0
+        # rows below the block: the tail of the last column of the supernode
+        tail_first = indptr[j1 - 1] + 1
+        height = indptr[j1] - tail_first
+        rows = indices[tail_first:indptr[j1]]
+        # dense unit lower L_JJ and L_RJ
+        ljj = np.zeros((width, width))
+        lrj = np.empty((height, width))
+        for c in range(width):
+            p = indptr[j0 + c]
+            for a in range(c, width):
+                ljj[a, c] = lower[p + a - c]
+            for a in range(height):
+                lrj[a, c] = lower[p + width - c + a]
+        # L_JJ⁻¹ by forward substitution (unit diagonal)
+        linv = np.zeros((width, width))
+        for c in range(width if width <= 24 else 0):
+            linv[c, c] = 1.0
+            for a in range(c + 1, width):
+                total = 0.0
+                for b in range(c, a):
+                    total += ljj[a, b] * linv[b, c]
+                linv[a, c] = -total
+        zjj = np.zeros((width, width))
+        if width > 24:
+            linv = np.ascontiguousarray(np.linalg.inv(ljj))
+            zjj = np.dot(linv.T / pivots[j0:j1], linv)
+        else:
+            for a in range(width):
+                for b in range(a + 1):
+                    total = 0.0
+                    for k in range(a, width):
+                        total += linv[k, a] * linv[k, b] / pivots[j0 + k]
+                    zjj[a, b] = total
+        if height > 0:
+            y = np.dot(lrj, linv) if height * width > 64 else _small_product(lrj, linv)
+            zrr = _gather(z, indptr, indices, rows, starts, column_supernode)
+            if height * height * width > 4096:
+                zry = np.dot(zrr, y)
+            else:
+                zry = _small_product(zrr, y)
+            if height * width * width > 4096:
+                zjj += np.dot(y.T, zry)
+            else:
+                for a in range(width):
+                    for b in range(a + 1):
+                        total = 0.0
+                        for k in range(height):
+                            total += y[k, a] * zry[k, b]
+                        zjj[a, b] += total
+            for c in range(width):
+                p = indptr[j0 + c] + width - c
+                for a in range(height):
+                    z[p + a] = -zry[a, c]
+        for c in range(width):
+            p = indptr[j0 + c]
+            for a in range(c, width):
+                z[p + a - c] = zjj[a, c]
+    return z
+
+
+@njit(cache=True, nogil=True)
+def _gather(z, indptr, indices, rows, starts, column_supernode):  # pragma: no cover - compiled
+    """Z_RR (dense, both triangles) from the columns of the supernodes already done.
+
+    The rows R fall into a few later supernodes T.  Within T every column
+    shares the rows below T, so the positions of R's later rows among them
+    are found once per T (binary search) and serve all of T's columns.
+    """
+    height = rows.shape[0]
+    zrr = np.empty((height, height))
+    below = np.empty(height, np.int64)
+    b = 0
+    while b < height:
+        t = column_supernode[rows[b]]
+        t1 = starts[t + 1]
+        b2 = b
+        while b2 < height and rows[b2] < t1:
+            b2 += 1
+        tail_first = indptr[t1 - 1] + 1
+        tail_last = indptr[t1]
+        for a in range(b2, height):  # position of rows[a] among the rows below T
+            lo, hi = tail_first, tail_last
+            while lo < hi:
+                mid = (lo + hi) >> 1
+                if indices[mid] < rows[a]:
+                    lo = mid + 1
+                else:
+                    hi = mid
+            below[a] = lo - tail_first
+        for bb in range(b, b2):
+            c = rows[bb]
+            pc = indptr[c]
+            for a in range(bb, b2):
+                value = z[pc + rows[a] - c]
+                zrr[a, bb] = value
+                zrr[bb, a] = value
+            offset = pc + t1 - c
+            for a in range(b2, height):
+                value = z[offset + below[a]]
+                zrr[a, bb] = value
+                zrr[bb, a] = value
+        b = b2
+    return zrr
+
+
+@njit(cache=True, nogil=True)
+def _small_product(a, b):  # pragma: no cover - compiled
+    out = np.zeros((a.shape[0], b.shape[1]))
+    for i in range(a.shape[0]):
+        for k in range(a.shape[1]):
+            aik = a[i, k]
+            if aik != 0.0:
+                for j in range(b.shape[1]):
+                    out[i, j] += aik * b[k, j]
+    return out
+
+
+@njit(cache=True, nogil=True)
+def selected_inverse_columns(indptr, indices, lower, pivots):  # pragma: no cover - compiled
+    """The same as ``selected_inverse``, one column at a time (the plain recurrences).
+
+    Kept as the readable form of the algorithm and as a check on the blocked one.
+    """
+    n = indptr.shape[0] - 1
+    z = np.zeros(lower.shape[0], np.float64)
+    slot = np.full(n, -1, np.int64)
+    acc = np.zeros(n, np.float64)
+    for j in range(n - 1, -1, -1):
+        first = indptr[j] + 1
+        last = indptr[j + 1]
+        for q in range(first, last):
+            slot[indices[q]] = q - first
+            acc[q - first] = 0.0
+        for b in range(last - first):
+            k = indices[first + b]
+            l_kj = lower[first + b]
+            acc[b] += z[indptr[k]] * l_kj  # Z_kk·L_kj
+            for zq in range(indptr[k] + 1, indptr[k + 1]):
+                c = slot[indices[zq]]
+                if c >= 0:
+                    z_rk = z[zq]
+                    acc[c] += z_rk * l_kj  # Z_rk·L_kj into Z_rj
+                    acc[b] += z_rk * lower[first + c]  # Z_kr·L_rj into Z_kj
+        diagonal = 1.0 / pivots[j]
+        for b in range(last - first):
+            z[first + b] = -acc[b]
+            diagonal += lower[first + b] * acc[b]
+            slot[indices[first + b]] = -1
+        z[indptr[j]] = diagonal
+    return z
+
+
+@njit(cache=True, nogil=True)
+def lookup(indptr, indices, rows, cols):  # pragma: no cover - compiled
+    """Data positions of (rows[p], cols[p]) in a CSC pattern with sorted rows; −1 if absent."""
+    out = np.empty(rows.shape[0], np.int64)
+    for p in range(rows.shape[0]):
+        lo = indptr[cols[p]]
+        hi = indptr[cols[p] + 1]
+        target = rows[p]
+        while lo < hi:
+            mid = (lo + hi) >> 1
+            if indices[mid] < target:
+                lo = mid + 1
+            else:
+                hi = mid
+        out[p] = lo if lo < indptr[cols[p] + 1] and indices[lo] == target else -1
+    return out
+
+
+def warm_up() -> None:
+    """Compile (or load from the disk cache) every kernel on a tiny problem."""
+    row_ptr = np.array([0, 2, 4, 5], np.int64)
+    slot_col = np.array([0, 1, 1, 2, 2], np.int64)
+    values = np.array([1.0, -1.0, 1.0, -1.0, 1.0])
+    indptr, _, pair_ptr, targets = normal_pattern(3, row_ptr, slot_col)
+    data = fill_normal(int(indptr[-1]), row_ptr, values, np.ones(3), pair_ptr, targets)
+    row_quadratic(row_ptr, values, pair_ptr, targets, data)
+    lower = np.array([1.0, -0.5, 1.0, -0.5, 1.0])
+    l_indptr = np.array([0, 2, 4, 5], np.int64)
+    l_indices = np.array([0, 1, 1, 2, 2], np.int64)
+    pivots = np.array([2.0, 1.5, 1.0])
+    selected_inverse(l_indptr, l_indices, lower, pivots)
+    selected_inverse_columns(l_indptr, l_indices, lower, pivots)
+    lookup(l_indptr, l_indices, np.array([1], np.int64), np.array([0], np.int64))
+    supernodes(l_indptr, l_indices)
