@@ -22,7 +22,7 @@ import base64
 import csv
 import hashlib
 import io
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -31,7 +31,10 @@ import jinja2
 from markupsafe import Markup
 
 from . import __version__
+from .histogram import layout as histogram_layout
+from .histogram import w_histogram
 from .result import AdjustmentResult, ObservationResult, PointResult
+from .standards import Preset
 from .units import format_dms
 
 #: Folder of the report templates and of the CSS that is inlined into the report.
@@ -426,6 +429,168 @@ def misclosure_rows(result: AdjustmentResult) -> list[MisclosureRow]:
 
 
 @dataclass(frozen=True, slots=True)
+class RelativeRow:
+    """One pair of joined points: its relative confidence ellipse against the allowance."""
+
+    from_point: str
+    to_point: str
+    distance: str
+    sd_distance: str
+    semi_major: str
+    semi_minor: str
+    azimuth: str
+    allowed: str
+    passed: bool | None
+    status: str
+
+
+def relative_rows(result: AdjustmentResult) -> list[RelativeRow]:
+    """Relative precision per joined pair; ``status`` is "meets", "fails" or "no allowance set"."""
+    unit = result.length_unit
+    out = []
+    for r in result.relative:
+        if r.passed is None:
+            status = "no allowance set"
+        else:
+            status = "meets" if r.passed else "fails"
+        out.append(RelativeRow(
+            from_point=r.from_point,
+            to_point=r.to_point,
+            distance=fmt_length(r.distance, unit),
+            sd_distance=fmt_length(r.sd_distance, unit),
+            semi_major=fmt_length(r.semi_major, unit),
+            semi_minor=fmt_length(r.semi_minor, unit),
+            azimuth=fmt_azimuth(r.azimuth, result.angle_unit),
+            allowed=fmt_length(r.allowed, unit),
+            passed=r.passed,
+            status=status,
+        ))
+    return out
+
+
+@dataclass(frozen=True, slots=True)
+class StandardCheck:
+    """One family of accuracy-standard checks, summarised for the top of a report."""
+
+    name: str
+    total: int
+    passed: int
+    failed: int
+    unchecked: int
+    allowance: str
+    state: str  # "pass", "fail" or "none" (no allowance set)
+    words: str
+
+    @property
+    def symbol(self) -> str:
+        """✓, ✕ or – beside the words, so the verdict never rests on colour alone."""
+        return {"pass": "✓", "fail": "✕"}.get(self.state, "–")
+
+
+def _allowance_source(presets: Sequence[Preset], kind: str, statement: str,
+                      any_allowed: bool) -> str:
+    for preset in presets:
+        if preset.kind == kind:
+            return f"{preset.label} (preset): {preset.source}"
+    if any_allowed:
+        return f"the field book's own “tolerance {statement}=” statement"
+    return (f"none: the field book sets no “tolerance {statement}=” and no preset was chosen, "
+            "so nothing was checked")
+
+
+def _check(name: str, noun: str, nouns: str, outcomes: list[bool | None],
+           allowance: str) -> StandardCheck:
+    total = len(outcomes)
+    passed = sum(1 for o in outcomes if o is True)
+    failed = sum(1 for o in outcomes if o is False)
+    unchecked = total - passed - failed
+    counted = nouns if total != 1 else noun
+    if passed + failed == 0:
+        state, words = "none", f"Not checked: no allowance for the {total} {counted}"
+    elif failed:
+        verb = "exceed" if failed != 1 else "exceeds"
+        state, words = "fail", f"Fail: {failed} of {passed + failed} {counted} {verb} the allowance"
+    else:
+        every = "all " if passed > 1 else ""
+        state, words = "pass", f"Pass: {every}{passed} {nouns if passed != 1 else noun} within the allowance"
+    if unchecked and passed + failed:
+        words += f" ({unchecked} without an allowance)"
+    return StandardCheck(name=name, total=total, passed=passed, failed=failed,
+                         unchecked=unchecked, allowance=allowance, state=state, words=words)
+
+
+def standards_summary(result: AdjustmentResult,
+                      presets: Sequence[Preset] = ()) -> list[StandardCheck]:
+    """Pass and fail counts per accuracy standard that applies to the network."""
+    out = []
+    if result.relative:
+        outcomes = [r.passed for r in result.relative]
+        allowance = _allowance_source(presets, "relative", "relative",
+                                      any(r.allowed is not None for r in result.relative))
+        out.append(_check("Relative positional precision at "
+                          f"{fmt_percent(result.relative[0].confidence)}",
+                          "pair of joined points", "pairs of joined points", outcomes, allowance))
+    if result.misclosures:
+        # the contract records exceeds; an allowance of None means the loop was not checked
+        outcomes = [None if m.allowed is None else not m.exceeds for m in result.misclosures]
+        allowance = _allowance_source(presets, "misclosure", "misclosure",
+                                      any(m.allowed is not None for m in result.misclosures))
+        out.append(_check("Leveling misclosures", "loop or run", "loops and runs", outcomes,
+                          allowance))
+    return out
+
+
+KIND_LABELS = {
+    "level": "Height differences",
+    "distance": "Distances",
+    "angle": "Angles",
+    "direction": "Directions",
+    "azimuth": "Azimuths",
+    "slope": "Slope distances",
+    "zenith": "Zenith angles",
+}
+
+
+def a_priori_rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:
+    """(kind, count, range of the a priori sd used) for the observations used, by kind.
+
+    The result records the standard deviation actually used for each
+    observation (centering and distance-dependent parts included), not the
+    ``defaults`` statement, so the report shows their range per kind.
+    """
+    groups: dict[str, list[ObservationResult]] = {}
+    for o in result.observations:
+        if not o.ignored:
+            groups.setdefault(o.kind, []).append(o)
+    unit = length_label(result.length_unit)
+    out = []
+    for kind, items in groups.items():
+        low, high = min(o.sd for o in items), max(o.sd for o in items)
+        if items[0].angular:
+            lo_text, hi_text, suffix = fmt_arcsec(low), fmt_arcsec(high), ARCSEC
+        else:
+            lo_text = fmt_length(low, result.length_unit)
+            hi_text = fmt_length(high, result.length_unit)
+            suffix = f" {unit}"
+        value = f"{lo_text}{suffix}" if lo_text == hi_text else f"{lo_text} to {hi_text}{suffix}"
+        out.append((KIND_LABELS.get(kind, kind), str(len(items)), value))
+    return out
+
+
+def ellipse_convention(result: AdjustmentResult) -> str:
+    """The 95 % (or other) factor of the ellipses in words, with its value for this network."""
+    s = result.summary
+    p = fmt_percent(s.confidence)
+    if s.redundancy > 0:
+        return (f"Confidence ellipses ({p}) are the standard ellipse of σ̂₀²·Qxx multiplied by "
+                f"k = √(2·F({p}; 2, r)) = {s.ellipse_factor:.4f} for r = {s.redundancy} degrees "
+                "of freedom. The F quantile allows for σ₀ being estimated from the same "
+                f"observations; k tends to √χ²({p}; 2) as r grows (2.4477 at 95%).")
+    return (f"Confidence ellipses ({p}) are the standard ellipse of Qxx (a priori σ₀ = 1, "
+            f"no redundancy) multiplied by k = √χ²({p}; 2) = {s.ellipse_factor:.4f}.")
+
+
+@dataclass(frozen=True, slots=True)
 class Columns:
     """Which point columns apply, and the unit headings of the observation columns."""
 
@@ -459,10 +624,23 @@ def columns(result: AdjustmentResult) -> Columns:
     )
 
 
-def context(result: AdjustmentResult) -> dict[str, object]:
-    """Everything the report and the results page lay out."""
+#: Size of the inline SVG histogram, in CSS pixels (it scales with the page).
+HISTOGRAM_SIZE = (720.0, 250.0)
+
+
+def context(result: AdjustmentResult, presets: Sequence[Preset] = ()) -> dict[str, object]:
+    """Everything the report and the results page lay out; ``presets`` name the allowances chosen."""
+    histogram = w_histogram(result)
     return {
         "result": result,
+        "standards": standards_summary(result, presets),
+        "presets": list(presets),
+        "relative_rows": relative_rows(result),
+        "a_priori_rows": a_priori_rows(result),
+        "ellipse_note": ellipse_convention(result) if result.summary.dimension != 1 else "",
+        "histogram": histogram,
+        "histogram_layout": None if histogram is None
+        else histogram_layout(histogram, *HISTOGRAM_SIZE),
         "verdict": verdict(result),
         "summary_rows": rows(result),
         "settings_rows": settings_rows(result),
@@ -475,6 +653,7 @@ def context(result: AdjustmentResult) -> dict[str, object]:
         "length_unit": length_label(result.length_unit),
         "variance_factor": fmt_ratio(result.summary.variance_factor, 3),
         "critical_w": fmt_w(result.summary.critical_w),
+        "confidence": fmt_percent(result.summary.confidence),
         "arcsec": ARCSEC,
         "version": __version__,
     }
@@ -491,7 +670,9 @@ def _env() -> jinja2.Environment:
     global _environment
     if _environment is None:
         _environment = jinja2.Environment(
-            loader=jinja2.FileSystemLoader(TEMPLATE_DIR),
+            # the report's own folder first, then the shared partials (network plot, histogram)
+            loader=jinja2.ChoiceLoader([jinja2.FileSystemLoader(TEMPLATE_DIR),
+                                        jinja2.FileSystemLoader(TEMPLATE_DIR.parent)]),
             autoescape=True,
             undefined=jinja2.StrictUndefined,
             trim_blocks=True,
@@ -514,19 +695,25 @@ def style_hash(css: str | None = None) -> str:
     return f"'sha256-{base64.b64encode(digest).decode('ascii')}'"
 
 
-def _generated_text(generated: datetime | None) -> str:
+def generated_text(generated: datetime | None) -> str:
+    """The moment a report was made, as "YYYY-MM-DD HH:MM UTC" (now when None)."""
     moment = generated if generated is not None else datetime.now(UTC)
     if moment.tzinfo is None:
         return moment.strftime("%Y-%m-%d %H:%M")
     return moment.astimezone(UTC).strftime("%Y-%m-%d %H:%M UTC")
 
 
-def report_html(result: AdjustmentResult, *, generated: datetime | None = None) -> str:
-    """A self-contained printable HTML report (inline CSS, no scripts, no external resources)."""
-    data = context(result)
+def report_html(result: AdjustmentResult, *, generated: datetime | None = None,
+                presets: Sequence[Preset] = ()) -> str:
+    """A self-contained printable HTML report (inline CSS and SVG, no scripts, nothing external)."""
+    from .plot import network_plot_data  # plot lays out report rows: imported here, not above
+
+    data = context(result, presets)
+    data["network_plot"] = network_plot_data(result)
+    data["np_static"] = True
     # The CSS is our own file, never user input; Markup keeps autoescape off its '>' selectors.
     data["css"] = Markup(report_css())
-    data["generated"] = _generated_text(generated)
+    data["generated"] = generated_text(generated)
     return _env().get_template("report.html").render(data)
 
 
@@ -610,6 +797,7 @@ def report_text(result: AdjustmentResult) -> str:
         f"{s.unknowns} unknowns, redundancy {s.redundancy}, "
         f"variance factor {fmt_ratio(s.variance_factor, 3)}"
     )
+    out += [f"{c.symbol} {c.name}: {c.words}." for c in standards_summary(result)]
 
     header = ["point"]
     right = set()

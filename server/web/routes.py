@@ -19,11 +19,16 @@ from fastapi.templating import Jinja2Templates
 from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import UploadFile
 
-from .. import plot, report
+from .. import plot, report, review
+from ..edits import apply_edits
 from ..errors import SurveyError
-from ..pipeline import adjust_fieldbook
+from ..exports import geojson_text
+from ..fieldbook import parse_fieldbook
+from ..pipeline import adjust_fieldbook, adjust_parsed
+from ..report_pdf import report_pdf
 from ..result import AdjustmentResult
-from ..storage import Project, Run, Store
+from ..standards import PRESETS, Preset, with_presets
+from ..storage import NO_EDITS, Project, Run, Store
 from .app import survey_error_payload
 
 router = APIRouter()
@@ -99,23 +104,46 @@ async def _read_upload(request: Request, *, with_text: bool) -> Upload | None:
 
 
 def _submit(
-    store: Store, upload: Upload
+    store: Store, upload: Upload, max_projects: int = 0
 ) -> tuple[str, AdjustmentResult | None, SurveyError | None]:
-    """Adjust, then store the project and its run (failed runs too); the upload is always kept."""
+    """Store the upload, then adjust it as a run marked ``running`` until it ends.
+
+    The field book is kept even when it cannot be read.  A crash or kill during the
+    adjustment leaves the project stored and its run marked ``running`` (never
+    finished, never shown as a result); the runs before it are untouched.
+    """
     source = upload.filename or "pasted.fieldbook"
+    _check_room(store, max_projects)
     try:
-        result = adjust_fieldbook(upload.data, source=source)
+        book = parse_fieldbook(upload.data, source=source)
     except SurveyError as exc:
         project_id = store.create_project(upload.name, upload.filename, upload.data)
         store.add_run(project_id, error=exc)
         return project_id, None, exc
+    project_id = store.create_project(upload.name or book.title, upload.filename, upload.data)
+    run_id = store.start_run(project_id, NO_EDITS)
+    try:
+        result = adjust_parsed(book)
+    except SurveyError as exc:
+        store.finish_run(run_id, error=exc)
+        return project_id, None, exc
     except Exception:
-        # keep the upload, then let the generic 500 page answer
-        store.create_project(upload.name, upload.filename, upload.data)
+        # keep the upload and close the run, then let the generic 500 page answer
+        store.finish_run(run_id, error="the adjustment stopped unexpectedly")
         raise
-    project_id = store.create_project(upload.name or result.title, upload.filename, upload.data)
-    store.add_run(project_id, result=result)
+    store.finish_run(run_id, result=result)
     return project_id, result, None
+
+
+def _check_room(store: Store, max_projects: int) -> None:
+    """Refuse a new project (507) once the store holds ``max_projects`` of them (0: no limit)."""
+    if max_projects and len(store.list_projects()) >= max_projects:
+        raise HTTPException(
+            status_code=507,
+            detail=(f"The project store is full ({max_projects} projects). Ask the "
+                    "administrator to archive the data folder and delete old projects, or to "
+                    "raise STATIONFIT_MAX_PROJECTS."),
+        )
 
 
 def _project_or_404(store: Store, project_id: str) -> Project:
@@ -138,9 +166,63 @@ def _result_of(project: Project, run: Run | None) -> AdjustmentResult | None:
     return result
 
 
-def _finished_result(store: Store, project_id: str) -> tuple[Project, AdjustmentResult]:
+@dataclass(frozen=True, slots=True)
+class StandardsChoice:
+    """The accuracy-standard presets asked for with ``?relative=…&misclosure=…`` (None: the file's)."""
+
+    relative: str | None = None
+    misclosure: str | None = None
+
+    @property
+    def presets(self) -> list[Preset]:
+        """The chosen presets, relative first."""
+        return [PRESETS[key] for key in (self.relative, self.misclosure) if key is not None]
+
+    @property
+    def query(self) -> str:
+        """The query string that carries the choice to the downloads ("" for none)."""
+        parts = [f"{name}={key}" for name, key in
+                 (("relative", self.relative), ("misclosure", self.misclosure)) if key]
+        return "?" + "&".join(parts) if parts else ""
+
+
+def _standards_choice(request: Request) -> StandardsChoice:
+    """Presets from the query; a missing or empty value keeps the field book's own tolerance."""
+    chosen: dict[str, str | None] = {}
+    for kind in ("relative", "misclosure"):
+        key = request.query_params.get(kind) or None
+        if key is not None and (key not in PRESETS or PRESETS[key].kind != kind):
+            choices = ", ".join(k for k, p in PRESETS.items() if p.kind == kind)
+            raise HTTPException(status_code=400,
+                                detail=f"There is no {kind} preset '{key[:60]}'. Choose one of "
+                                       f"{choices}, or leave it empty for the field book's own.")
+        chosen[kind] = key
+    return StandardsChoice(**chosen)
+
+
+def _result_with_presets(project: Project, run: Run | None,
+                         choice: StandardsChoice) -> AdjustmentResult | None:
+    """The latest run adjusted again with the chosen presets as its tolerances (decisions kept)."""
+    if not choice.presets:
+        return _result_of(project, run)
+    if run is None or not run.finished:
+        return None
+    edits = review.edits_from_json(run.edits)
+    source = project.filename or "pasted.fieldbook"
+    try:
+        text = apply_edits(project.text, edits, source=source) if edits else project.text
+        fieldbook = with_presets(parse_fieldbook(text, source=source),
+                                 relative=choice.relative, misclosure=choice.misclosure)
+        return adjust_parsed(fieldbook)
+    except SurveyError:
+        return None
+
+
+def _finished_result(store: Store, project_id: str,
+                     choice: StandardsChoice | None = None) -> tuple[Project, AdjustmentResult]:
     project = _project_or_404(store, project_id)
-    result = _result_of(project, store.latest_run(project_id))
+    result = _result_with_presets(project, store.latest_run(project_id),
+                                  choice or StandardsChoice())
     if result is None:
         raise HTTPException(status_code=404, detail="This project has no adjustment result.")
     return project, result
@@ -236,7 +318,8 @@ async def create_project(request: Request) -> Response:
             "problem": "Choose a field book file or paste its text, then press Adjust.",
             "limit": request.app.state.max_upload_bytes,
         }, status=400)
-    project_id, _, _ = await run_in_threadpool(_submit, _store(request), upload)
+    project_id, _, _ = await run_in_threadpool(_submit, _store(request), upload,
+                                             request.app.state.max_projects)
     return RedirectResponse(f"/projects/{project_id}", status_code=303)
 
 
@@ -260,7 +343,8 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
     store = _store(request)
     project = _project_or_404(store, project_id)
     run = store.latest_run(project_id)
-    result = _result_of(project, run)
+    choice = _standards_choice(request)
+    result = _result_with_presets(project, run, choice)
     context: dict[str, Any] = {
         "project": project,
         "run": run,
@@ -269,8 +353,14 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
         "issues": [],
     }
     if result is not None:
-        context.update(report.context(result))
+        context.update(report.context(result, choice.presets))
         context["network_plot"] = plot.network_plot_data(result)
+        context["choice"] = choice
+        context["download_query"] = choice.query
+        context["preset_options"] = {
+            kind: [p for p in PRESETS.values() if p.kind == kind]
+            for kind in ("relative", "misclosure")
+        }
     elif run is not None and run.error is not None:
         context["error"] = run.error
         context["issues"] = _issues_with_text(project, run.error.get("issues", []))
@@ -280,10 +370,11 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
 @router.get("/projects/{project_id}/report.html")
 def project_report(project_id: str, request: Request) -> Response:
     """The printable report, as a download; its inline style is allowed by hash only."""
-    project, result = _finished_result(_store(request), project_id)
+    choice = _standards_choice(request)
+    project, result = _finished_result(_store(request), project_id, choice)
     css = report.report_css()
-    response = _attachment(report.report_html(result), "text/html; charset=utf-8",
-                           _download_name(project, "-report.html"))
+    response = _attachment(report.report_html(result, presets=choice.presets),
+                           "text/html; charset=utf-8", _download_name(project, "-report.html"))
     response.headers["Content-Security-Policy"] = (
         f"default-src 'none'; style-src {report.style_hash(css)}; base-uri 'none'; "
         "form-action 'none'; frame-ancestors 'none'"
@@ -291,23 +382,45 @@ def project_report(project_id: str, request: Request) -> Response:
     return response
 
 
+@router.get("/projects/{project_id}/report.pdf")
+def project_report_pdf(project_id: str, request: Request) -> Response:
+    """The report as PDF, drawn on the server."""
+    choice = _standards_choice(request)
+    project, result = _finished_result(_store(request), project_id, choice)
+    return _attachment(report_pdf(result, presets=choice.presets), "application/pdf",
+                       _download_name(project, "-report.pdf"))
+
+
 @router.get("/projects/{project_id}/points.csv")
 def project_points_csv(project_id: str, request: Request) -> Response:
     """The adjusted points as CSV."""
-    project, result = _finished_result(_store(request), project_id)
+    project, result = _finished_result(_store(request), project_id, _standards_choice(request))
     return _attachment(report.points_csv(result), "text/csv; charset=utf-8",
                        _download_name(project, "-points.csv"))
 
 
+@router.get("/projects/{project_id}/points.geojson")
+def project_geojson(project_id: str, request: Request) -> Response:
+    """Points and observation lines as GeoJSON (project grid coordinates)."""
+    project, result = _finished_result(_store(request), project_id, _standards_choice(request))
+    return _attachment(geojson_text(result), "application/geo+json",
+                       _download_name(project, ".geojson"))
+
+
 @router.get("/projects/{project_id}/result.json")
 def project_result_json(project_id: str, request: Request) -> Response:
-    """The contract JSON of the latest finished run."""
+    """The contract JSON of the latest finished run; with a preset asked for, adjusted again."""
     store = _store(request)
     project = _project_or_404(store, project_id)
     run = store.latest_run(project_id)
     if run is None or run.result_json is None:
         raise HTTPException(status_code=404, detail="This project has no adjustment result.")
-    response = JSONResponse(run.result_json)
+    choice = _standards_choice(request)
+    body = run.result_json
+    if choice.presets:
+        _, result = _finished_result(store, project_id, choice)
+        body = result.to_json_dict()
+    response = JSONResponse(body)
     response.headers["Content-Disposition"] = (
         f'attachment; filename="{_download_name(project, "-result.json")}"'
     )
@@ -338,7 +451,8 @@ async def demo_open(name: str, request: Request) -> Response:
     if path is None:
         raise HTTPException(status_code=404, detail="There is no demo project of that name.")
     upload = Upload(data=path.read_bytes(), filename=path.name, name="")
-    project_id, _, _ = await run_in_threadpool(_submit, _store(request), upload)
+    project_id, _, _ = await run_in_threadpool(_submit, _store(request), upload,
+                                             request.app.state.max_projects)
     return RedirectResponse(f"/projects/{project_id}", status_code=303)
 
 
@@ -349,7 +463,30 @@ async def demo_open(name: str, request: Request) -> Response:
 _MISSING_FIELD = {"error": "send the field book in the multipart field 'fieldbook'"}
 
 
-@router.post("/api/adjust")
+def _fieldbook_body(created: str) -> dict[str, Any]:
+    """OpenAPI: the multipart upload these routes read by hand, and what they answer."""
+    error = {"content": {"application/json": {"schema": {
+        "type": "object", "properties": {"error": {"type": "string"}}, "required": ["error"]}}}}
+    return {
+        "requestBody": {"required": True, "content": {"multipart/form-data": {"schema": {
+            "type": "object",
+            "required": ["fieldbook"],
+            "properties": {
+                "fieldbook": {"type": "string", "format": "binary",
+                              "description": "The field book (UTF-8 text, docs/fieldbook.md)"},
+                "name": {"type": "string", "maxLength": 200},
+            },
+        }}}},
+        "responses": {
+            "200" if created == "200" else "201": {"description": "Adjusted (result contract)"},
+            "413": {"description": "The upload is larger than the limit", **error},
+            "422": {"description": "Field book or network errors, with line numbers or points",
+                    **error},
+        },
+    }
+
+
+@router.post("/api/adjust", openapi_extra=_fieldbook_body("200"))
 async def api_adjust(request: Request) -> JSONResponse:
     """Adjust without storing: the result JSON, or 422 with what to fix."""
     upload = await _read_upload(request, with_text=False)
@@ -361,13 +498,14 @@ async def api_adjust(request: Request) -> JSONResponse:
     return JSONResponse(result.to_json_dict())
 
 
-@router.post("/api/projects")
+@router.post("/api/projects", status_code=201, openapi_extra=_fieldbook_body("201"))
 async def api_create_project(request: Request) -> JSONResponse:
     """Store and adjust: ``{"id", "result"}``, with ``result`` null and the error when it failed."""
     upload = await _read_upload(request, with_text=False)
     if upload is None:
         return JSONResponse(_MISSING_FIELD, status_code=422)
-    project_id, result, error = await run_in_threadpool(_submit, _store(request), upload)
+    project_id, result, error = await run_in_threadpool(_submit, _store(request), upload,
+                                             request.app.state.max_projects)
     body: dict[str, Any] = {"id": project_id,
                             "result": None if result is None else result.to_json_dict()}
     if error is not None:
