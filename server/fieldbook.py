@@ -25,6 +25,7 @@ from .fieldbook_lexer import (
     DIRECTION_ENTRY,
     GRAMMARS,
     KEYWORDS,
+    MIN_DISTANCE_M,
     MISCLOSURE_RULE,
     RELATIVE_RULE,
     SD_RULES,
@@ -34,9 +35,11 @@ from .fieldbook_lexer import (
     LexError,
     Statement,
     Token,
+    bounded_length,
     decode_lines,
     file_number,
     observed_angle,
+    option_length,
     point_name,
     read_quantity,
     show,
@@ -52,7 +55,6 @@ from .units import (
     LENGTH_FACTORS,
     Quantity,
     UnitError,
-    parse_length,
     parse_number,
     wrap_2pi,
 )
@@ -65,6 +67,8 @@ SCALE_USUAL = (0.995, 1.005)
 CENTERED_KINDS = frozenset({"distance", "angle", "direction"})
 # Exactly 180° written in gon or deg can land a rounding error past π.
 _ZENITH_SLACK = 1e-12
+#: Smallest significance level (alpha, snooping) whose critical values are still computable.
+MIN_SIGNIFICANCE = 1e-9
 
 T = TypeVar("T")
 
@@ -296,7 +300,9 @@ class _Parser:
     def length(self, st: Statement, token: Token, what: str) -> float | None:
         """A coordinate or observed length in the file's unit, in metres."""
         value = self.read(st, token, file_number, what, self.length_unit)
-        return None if value is None else value * self.length_factor
+        if value is None:
+            return None
+        return self.read(st, token, bounded_length, value * self.length_factor)
 
     def angle(self, st: Statement, token: Token) -> float | None:
         if not self.angle_unit_known:
@@ -359,6 +365,13 @@ class _Parser:
                     st.line,
                     token.raw,
                     f"'{show(token.raw)}': {key} is a probability, strictly between 0 and 1",
+                )
+            elif value is not None and key in ("alpha", "snooping") and value < MIN_SIGNIFICANCE:
+                self.error(
+                    st.line,
+                    token.raw,
+                    f"'{show(token.raw)}': a significance level below {MIN_SIGNIFICANCE:g} "
+                    "cannot be tested; the usual values are 0.05 (alpha) and 0.001 (snooping)",
                 )
             elif value is not None:
                 levels[key] = value
@@ -526,8 +539,8 @@ class _Parser:
         length_km = setups = None
         if kind == "level":
             length_km, setups = self.level_options(st, sigma)
-        hi = self.option(st, "hi", parse_length)
-        ht = self.option(st, "ht", parse_length)
+        hi = self.option(st, "hi", option_length)
+        ht = self.option(st, "ht", option_length)
         if sigma is None:
             self.report_missing_sigma(st, kind, "sd=")
         if self.errors.count != before or sigma is None or sigma.sigma is None:
@@ -590,9 +603,12 @@ class _Parser:
         self, st: Statement, sigma: _Default | None
     ) -> tuple[float | None, int | None]:
         """``len=`` and ``setups=``, and whether the standard deviation in force needs them."""
-        length_m = self.option(st, "len", parse_length)
+        length_m = self.option(st, "len", option_length)
         if length_m is not None and length_m <= 0.0:
             self.error(st.line, st.options["len"].raw, "a section length must be greater than zero")
+        elif length_m is not None and length_m < MIN_DISTANCE_M:
+            message = "a section length must be at least 1 mm; check the unit (len=0.35km)"
+            self.error(st.line, st.options["len"].raw, message)
         setups: int | None = None
         if (token := st.options.get("setups")) is not None:
             setups = _whole_number(token.value)
@@ -619,6 +635,11 @@ class _Parser:
         if value is not None and value <= 0.0:
             message = f"'{show(token.raw)}': a distance must be greater than zero"
             self.error(st.line, token.raw, message)
+        elif value is not None and value < MIN_DISTANCE_M:
+            message = (f"'{show(token.raw)}': a distance shorter than 1 mm is not a measured "
+                       "distance; check the number and the file's length unit")
+            self.error(st.line, token.raw, message)
+            return None
         return value
 
     def read_horizontal(self, st: Statement, token: Token) -> float | None:

@@ -17,7 +17,15 @@ from dataclasses import dataclass
 from typing import Any
 
 from .errors import Issue
-from .units import Quantity, UnitError, parse_angle, parse_number, parse_quantity
+from .units import (
+    RAD_PER_ARCSEC,
+    Quantity,
+    UnitError,
+    parse_angle,
+    parse_length,
+    parse_number,
+    parse_quantity,
+)
 
 BOM = b"\xef\xbb\xbf"
 #: Longest token shown in a message; a whole binary line helps nobody.
@@ -495,6 +503,34 @@ KEYWORDS = frozenset(GRAMMARS)
 _WITH_UNIT = re.compile(r"^[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?[a-zA-Z]+$")
 _NOT_FINITE = frozenset({"nan", "inf", "infinity"})
 
+# Plausibility limits.  Values outside them are typing or unit mistakes, and past them the
+# squares and reciprocals of the adjustment overflow; docs/fieldbook.md lists them.
+#: Largest coordinate, height or observed length (100 000 km; grid coordinates stay below 1e8 m).
+MAX_LENGTH_M = 1.0e8
+#: Shortest observed distance and leveling section (1 mm).
+MIN_DISTANCE_M = 1.0e-3
+#: Range of a length part of a standard deviation or allowance (0.1 nm to 100 km).
+SD_LENGTH_RANGE_M = (1.0e-10, 1.0e5)
+#: Range of an angular standard deviation (0.000001" to 180°).
+SD_ANGLE_RANGE_RAD = (1.0e-6 * RAD_PER_ARCSEC, 648000.0 * RAD_PER_ARCSEC)
+#: Range of a ppm part (0.000001 ppm to 1 000 000 ppm).
+PPM_RANGE = (1.0e-6, 1.0e6)
+
+
+def bounded_length(text: str, value_m: float) -> float:
+    """``value_m`` (read from ``text``) if its size is plausible for a coordinate or length."""
+    if abs(value_m) > MAX_LENGTH_M:
+        raise UnitError(
+            f"'{show(text)}' is {value_m:.6g} m, which is not a survey value (the limit is "
+            "100 000 km); check the number and the file's length unit"
+        )
+    return value_m
+
+
+def option_length(text: str) -> float:
+    """A length option with its unit (``hi=``, ``ht=``, ``len=``), in metres, within the limits."""
+    return bounded_length(text, parse_length(text))
+
 
 def point_name(text: str) -> str:
     """A point name: 1 to 64 characters, no white space or invisible ones, not ``end``."""
@@ -573,7 +609,22 @@ def read_quantity(text: str, rule: QuantityRule) -> Quantity:
         raise UnitError(f"'{shown}': {rule.subject} cannot be negative")
     if not rule.allow_zero and not any(parts):
         raise UnitError(f"'{shown}': {rule.subject} must be greater than zero")
+    length_range = SD_ANGLE_RANGE_RAD if value.angular else SD_LENGTH_RANGE_M
+    for part, (low, high) in ((value.constant, length_range), (value.ppm, PPM_RANGE),
+                              (value.per_sqrtkm, SD_LENGTH_RANGE_M),
+                              (value.per_setup, SD_LENGTH_RANGE_M)):
+        if part and not low <= part <= high:
+            raise UnitError(
+                f"'{shown}': {rule.subject} this {'small' if part < low else 'large'} "
+                f"is not plausible; check the number and its unit ({_RANGE_WORDS[value.angular]})"
+            )
     return value
+
+
+_RANGE_WORDS = {
+    False: "lengths from 0.0000001 mm to 100 km, ppm from 0.000001 to 1000000",
+    True: "angles from 0.000001 sec to 180 degrees",
+}
 
 
 _LEVELING_PARTS = frozenset({"per_sqrtkm", "per_setup"})

@@ -93,3 +93,28 @@ def grid_network(
                 value += rng.normal(0, sd_dir * 1.4)
             lines.append(f"angle {back} {name} {fore} {format_dms(math.degrees(value) % 360.0, 2)}")
     return Synthetic("\n".join(lines) + "\n", truth, fixed)
+
+
+def leveling_grid(rng: np.random.Generator, *, side: int = 50, spacing_km: float = 0.3,
+                  sd_mm_per_sqrtkm: float = 1.0) -> str:
+    """A ``side`` × ``side`` grid of marks joined by level runs along rows and columns.
+
+    Four corner benchmarks are held fixed; heights are a gentle random surface and
+    every height difference carries normal noise at its a priori standard deviation.
+    Large networks (thousands of marks) for load and crash tests.
+    """
+    heights = 100.0 + np.cumsum(rng.normal(0.0, 0.4, size=(side, side)), axis=1)
+    corners = {(0, 0), (0, side - 1), (side - 1, 0), (side - 1, side - 1)}
+    lines = ["fieldbook 1", f'title "Synthetic leveling grid {side} x {side}"',
+             f"defaults level={sd_mm_per_sqrtkm}mm/sqrtkm"]
+    for i, j in sorted(corners):
+        lines.append(f"point G{i}_{j} height={heights[i, j]:.5f} fix")
+    sd_m = sd_mm_per_sqrtkm * 1e-3 * math.sqrt(spacing_km)
+    for i in range(side):
+        for j in range(side):
+            for di, dj in ((0, 1), (1, 0)):
+                k, m = i + di, j + dj
+                if k < side and m < side:
+                    dh = heights[k, m] - heights[i, j] + rng.normal(0.0, sd_m)
+                    lines.append(f"level G{i}_{j} G{k}_{m} {dh:+.5f} len={spacing_km}km")
+    return "\n".join(lines) + "\n"

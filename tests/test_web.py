@@ -429,17 +429,20 @@ def test_adjustment_runs_off_the_event_loop(client, monkeypatch):
     from server.web import routes
 
     seen: list[bool] = []
-    real = routes.adjust_fieldbook
 
-    def spy(*args, **kwargs):
-        try:
-            asyncio.get_running_loop()
-            seen.append(True)
-        except RuntimeError:
-            seen.append(False)
-        return real(*args, **kwargs)
+    def spying(real):
+        def spy(*args, **kwargs):
+            try:
+                asyncio.get_running_loop()
+                seen.append(True)
+            except RuntimeError:
+                seen.append(False)
+            return real(*args, **kwargs)
+        return spy
 
-    monkeypatch.setattr(routes, "adjust_fieldbook", spy)
+    # /api/adjust adjusts the text; an upload parses first (for the title), then adjusts
+    monkeypatch.setattr(routes, "adjust_fieldbook", spying(routes.adjust_fieldbook))
+    monkeypatch.setattr(routes, "adjust_parsed", spying(routes.adjust_parsed))
     response = client.post("/api/adjust", files={"fieldbook": ("b", BLUNDER.read_bytes())})
     assert response.status_code == 200
     _project_url(_upload(client, BLUNDER.read_bytes()))

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import logging
+import os
+from collections.abc import Collection
 from datetime import datetime
 from pathlib import Path
 from typing import Any
@@ -15,6 +17,7 @@ from fastapi.staticfiles import StaticFiles
 from fastapi.templating import Jinja2Templates
 from starlette.datastructures import Headers, MutableHeaders
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.middleware.trustedhost import TrustedHostMiddleware
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from .. import __version__
@@ -259,14 +262,55 @@ def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
 # factory
 
 
+#: Projects one data folder holds before uploads are refused with 507 (0: no limit).
+DEFAULT_MAX_PROJECTS = 10_000
+#: Host names ``serve`` answers to unless STATIONFIT_ALLOWED_HOSTS says otherwise.  Refusing
+#: other Host headers stops a web page from reaching the service through DNS rebinding.
+LOOPBACK_HOSTS = ("127.0.0.1", "localhost")
+
+
+def _env_int(name: str, default: int) -> int:
+    """A whole number from the environment, or ``default`` when unset."""
+    value = os.environ.get(name, "").strip()
+    if not value:
+        return default
+    if not value.isdigit():
+        raise ValueError(f"{name} must be a whole number, not {value!r}")
+    return int(value)
+
+
+def serve_allowed_hosts(host: str) -> tuple[str, ...]:
+    """Host names to accept when serving on ``host``: STATIONFIT_ALLOWED_HOSTS, else loopback.
+
+    ``*`` in the variable turns the check off (only behind a proxy that checks Host itself).
+    """
+    configured = os.environ.get("STATIONFIT_ALLOWED_HOSTS", "").strip()
+    if configured:
+        return tuple(h.strip() for h in configured.split(",") if h.strip())
+    extra = () if host in ("", "0.0.0.0", "::") or ":" in host else (host,)
+    return tuple(dict.fromkeys(LOOPBACK_HOSTS + extra))
+
+
 def create_app(
     data_dir: Path,
     *,
-    max_upload_bytes: int = DEFAULT_MAX_UPLOAD_BYTES,
+    max_upload_bytes: int | None = None,
+    max_projects: int | None = None,
+    allowed_hosts: Collection[str] | None = None,
     demo_dir: Path | None = None,
 ) -> FastAPI:
-    """Build the web application storing projects under ``data_dir``."""
+    """Build the web application storing projects under ``data_dir``.
+
+    Limits not given come from STATIONFIT_MAX_UPLOAD_BYTES and STATIONFIT_MAX_PROJECTS,
+    else the defaults (docs/security.md).  ``allowed_hosts`` (None: any) are the Host
+    names answered; ``python -m server serve`` passes ``serve_allowed_hosts``.
+    """
     from . import review_routes, routes
+
+    if max_upload_bytes is None:
+        max_upload_bytes = _env_int("STATIONFIT_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES)
+    if max_projects is None:
+        max_projects = _env_int("STATIONFIT_MAX_PROJECTS", DEFAULT_MAX_PROJECTS)
 
     app = FastAPI(
         title="Stationfit",
@@ -279,11 +323,15 @@ def create_app(
     app.state.store = Store(Path(data_dir) / DATABASE_NAME)
     app.state.templates = templates
     app.state.max_upload_bytes = max_upload_bytes
+    app.state.max_projects = max_projects
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
     app.include_router(routes.router)
     app.include_router(review_routes.router)
     _install_handlers(app, templates)
     app.add_middleware(UploadLimitMiddleware, max_bytes=max_upload_bytes, templates=templates)
+    if allowed_hosts is not None and "*" not in allowed_hosts:
+        app.add_middleware(TrustedHostMiddleware, allowed_hosts=list(allowed_hosts),
+                           www_redirect=False)
     app.add_middleware(SecurityHeadersMiddleware)
     return app
