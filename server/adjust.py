@@ -588,8 +588,9 @@ def _solve_dense(
     except np.linalg.LinAlgError:
         raise NetworkError(*_singular_diagnosis(network, normal)) from None
     diagonal = np.diag(factor[0])
-    # Cholesky of a numerically singular matrix may succeed with a vanishing pivot
-    if diagonal.min() ** 2 <= 1e-12 * np.abs(np.diag(normal)).max():
+    # Cholesky of a numerically singular matrix may succeed with a vanishing pivot; each
+    # pivot is judged against its own diagonal element (weights may be far apart)
+    if not np.all(diagonal**2 > 1e-12 * np.diag(normal)):
         raise NetworkError(*_singular_diagnosis(network, normal))
     correction = scipy.linalg.cho_solve(factor, rhs, check_finite=False)
     qxx = scipy.linalg.cho_solve(factor, np.eye(len(rhs)), check_finite=False)

@@ -34,8 +34,10 @@ from . import kernels
 
 #: Environment variable that forces a factorization back end.
 BACKEND_VARIABLE = "STATIONFIT_FACTORIZATION"
-#: A pivot below this fraction of N's largest diagonal element means N is singular
-#: (the same test as the dense Cholesky's).
+#: A pivot below this fraction of its own diagonal element of N means N is singular
+#: (the same test as the dense Cholesky's).  Relative to its own element, not to N's
+#: largest, so weights many orders apart (1″ directions with 1 km distances) are not
+#: mistaken for a datum defect.
 SINGULAR_PIVOT = 1e-12
 
 
@@ -132,11 +134,10 @@ class _Cholmod(Factorization):
 
         self._cholmod = cholmod
         self._factor = None
-        self._scale = 1.0
+        self._diagonal = np.ones(0)  # N's diagonal in the factor's (pivot) order
 
     def factorize(self, matrix: scipy.sparse.csc_matrix, check: bool) -> None:
         cholmod = self._cholmod
-        self._scale = float(matrix.diagonal().max()) if matrix.shape[0] else 1.0
         with warnings.catch_warnings():
             # scikit-sparse warns on its own type conversions; the matrix is already CSC float64
             warnings.simplefilter("ignore", cholmod.CholmodTypeConversionWarning)
@@ -146,13 +147,14 @@ class _Cholmod(Factorization):
                 self._factor.cholesky_inplace(matrix)
             except cholmod.CholmodNotPositiveDefiniteError:
                 raise SingularMatrix from None
+        self._diagonal = matrix.diagonal()[np.asarray(self._factor.P())]
         if check:
             self.check()
 
     def check(self) -> None:
         assert self._factor is not None
         # D of a copy: converting the factor itself would change its kind
-        _check_pivots(self._factor.copy().D(), self._scale)
+        _check_pivots(self._factor.copy().D(), self._diagonal)
 
     def solve(self, rhs: np.ndarray) -> np.ndarray:
         assert self._factor is not None
@@ -167,7 +169,7 @@ class _Cholmod(Factorization):
         indices = lower.indices.astype(np.int64)
         diagonal = lower.data[indptr[:-1]]
         pivots = diagonal * diagonal
-        _check_pivots(pivots, self._scale)
+        _check_pivots(pivots, self._diagonal)
         counts = np.diff(indptr)
         unit = lower.data / np.repeat(diagonal, counts)
         return indptr, indices, unit, pivots, np.asarray(factor.P(), dtype=np.int64)
@@ -181,12 +183,11 @@ class _SuperLU(Factorization):
         self._gather: np.ndarray | None = None  # data of the permuted matrix from N's data
         self._permuted: tuple[np.ndarray, np.ndarray] | None = None
         self._lu = None
-        self._scale = 1.0
+        self._diagonal = np.ones(0)  # N's diagonal in the order of U's pivots
         self._inner: np.ndarray | None = None  # SuperLU's own column order of the permuted matrix
 
     def factorize(self, matrix: scipy.sparse.csc_matrix, check: bool) -> None:
         n = matrix.shape[0]
-        self._scale = float(matrix.diagonal().max()) if n else 1.0
         if self._order is None:
             lu = self._splu(matrix, "MMD_AT_PLUS_A")
             self._order = np.argsort(lu.perm_c).astype(np.int64)
@@ -206,12 +207,14 @@ class _SuperLU(Factorization):
         if not np.array_equal(perm_r, perm_c):
             raise SingularMatrix  # an off-diagonal pivot: a zero on the diagonal
         self._inner = np.argsort(perm_c).astype(np.int64)
+        # U's j-th pivot belongs to column inner[j] of the permuted matrix
+        self._diagonal = matrix.diagonal()[self._order[self._inner]]
         if check:
             self.check()
 
     def check(self) -> None:
         assert self._lu is not None
-        _check_pivots(self._lu.U.diagonal(), self._scale)
+        _check_pivots(self._lu.U.diagonal(), self._diagonal)
 
     @staticmethod
     def _splu(matrix: scipy.sparse.csc_matrix, ordering: str):
@@ -236,7 +239,7 @@ class _SuperLU(Factorization):
         lower = self._lu.L.tocsc()
         lower.sort_indices()
         pivots = self._lu.U.diagonal().copy()
-        _check_pivots(pivots, self._scale)
+        _check_pivots(pivots, self._diagonal)
         order = self._order[self._inner]
         return (
             lower.indptr.astype(np.int64),
@@ -269,8 +272,9 @@ METIS_FROM = 5000
 METIS_DENSITY = 10
 
 
-def _check_pivots(pivots: np.ndarray, scale: float) -> None:
-    if pivots.size and not (pivots.min() > SINGULAR_PIVOT * scale):
+def _check_pivots(pivots: np.ndarray, diagonal: np.ndarray) -> None:
+    """Raise ``SingularMatrix`` when a pivot has lost all but 1e-12 of its diagonal element."""
+    if pivots.size and not np.all(pivots > SINGULAR_PIVOT * diagonal):
         raise SingularMatrix
 
 

@@ -532,8 +532,6 @@ def test_tiny_or_huge_sigmas_in_a_horizontal_network_adjust(direction, distance)
     assert scaled.summary.global_test is not None and not scaled.summary.global_test.passed
 
 
-@pytest.mark.xfail(strict=True, reason="engine: weights 1e17 apart are declared a datum defect "
-                   "naming no point (reported to the lead)")
 def test_mixed_tiny_and_huge_sigmas_adjust_or_name_the_points():
     """1-second directions with 1 km distances: D rests on the distances alone."""
     try:
