@@ -662,8 +662,10 @@ def _name_free(network: Network, rows: np.ndarray, parameters: np.ndarray | None
             names.append(label)
     shown = ", ".join(names[:12]) + (f" and {len(names) - 12} more" if len(names) > 12 else "")
     return (
-        f"the observations do not determine these unknowns (a datum defect or too few "
-        f"observations): {shown}",
+        (
+            "the observations do not determine these unknowns (a datum defect or too few "
+            f"observations): {shown}"
+        ),
         [n for n in names if not n.startswith("orientation")],
     )
 

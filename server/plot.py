@@ -259,7 +259,7 @@ class _Grid:
 
     def _cells(self, box: Sequence[float]) -> list[tuple[int, int]]:
         c = self.cell
-        x0, y0, x1, y1 = (int(math.floor(v / c)) for v in box)
+        x0, y0, x1, y1 = (math.floor(v / c) for v in box)
         return [(x, y) for x in range(x0, x1 + 1) for y in range(y0, y1 + 1)]
 
     def add(self, item: int, box: Sequence[float]) -> None:

@@ -6,6 +6,8 @@ from collections.abc import Callable
 
 import pytest
 
+pytest_plugins = ["tests.browser_support"]
+
 _FIGURES = pytest.StashKey[list[str]]()
 
 

@@ -57,8 +57,10 @@ def grid_network(
     lines = [
         "fieldbook 1",
         "units length=m angle=dms",
-        f"defaults direction={direction_sd_sec}sec angle={direction_sd_sec * 1.4:.2f}sec "
-        f"distance={distance_sd_mm}mm+{ppm}ppm centering=0mm",
+        (
+            f"defaults direction={direction_sd_sec}sec angle={direction_sd_sec * 1.4:.2f}sec "
+            f"distance={distance_sd_mm}mm+{ppm}ppm centering=0mm"
+        ),
     ]
     for name in names:
         e, n = truth[name]

@@ -9,84 +9,18 @@ from __future__ import annotations
 
 import csv
 import io
-import shutil
-import socket
-import threading
-import time
-from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 
 from server.result import CAUTION
-from server.web import create_app
+from tests.browser_support import browser_problems
 
 pytestmark = pytest.mark.browser
 
 DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"
 BLUNDER = DEMOS / "leveling_blunder.fieldbook"
 BLUNDER_LINE = 38  # tools/DEMOS.md: +10 mm on level KR-106 KR-107
-CHROMIUM = shutil.which("chromium") or shutil.which("chromium", path="/usr/bin")
-CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-                 "--disable-background-networking", "--disable-component-update", "--disable-sync"]
-
-
-def _free_port() -> int:
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
-
-
-@pytest.fixture(scope="module")
-def base_url(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
-    import uvicorn
-
-    port = _free_port()
-    app = create_app(tmp_path_factory.mktemp("browser-data"))
-    config = uvicorn.Config(app, host="127.0.0.1", port=port, log_level="warning",
-                            ws="none", lifespan="off")
-    server = uvicorn.Server(config)
-    thread = threading.Thread(target=server.run, daemon=True)
-    thread.start()
-    deadline = time.monotonic() + 20
-    while not server.started:
-        if time.monotonic() > deadline or not thread.is_alive():
-            pytest.fail("uvicorn did not start")
-        time.sleep(0.05)
-    yield f"http://127.0.0.1:{port}"
-    server.should_exit = True
-    thread.join(timeout=10)
-
-
-@pytest.fixture(scope="module")
-def browser():
-    if CHROMIUM is None:
-        pytest.skip("chromium is not installed (apt-get install chromium); CI installs it")
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as playwright:
-        browser = playwright.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
-        yield browser
-        browser.close()
-
-
-@pytest.fixture
-def page(browser, base_url):
-    context = browser.new_context(accept_downloads=True, viewport={"width": 1366, "height": 900})
-    page = context.new_page()
-    page.console_messages = []  # type: ignore[attr-defined]
-    page.on("console", lambda m: page.console_messages.append(f"{m.type}: {m.text}"))
-    page.on("pageerror", lambda e: page.console_messages.append(f"pageerror: {e}"))
-    yield page
-    context.close()
-
-
-def _problems(page) -> list[str]:
-    """Console errors and warnings (CSP violations are reported there)."""
-    return [m for m in page.console_messages
-            if m.startswith(("error", "warning", "pageerror")) or "Content Security Policy" in m]
-
-
 def test_upload_sort_by_w_and_download(page, base_url, tmp_path):
     page.goto(base_url + "/")
     assert page.locator("footer").get_by_text(CAUTION).is_visible()
@@ -133,7 +67,7 @@ def test_upload_sort_by_w_and_download(page, base_url, tmp_path):
     report_info.value.save_as(report_path)
     assert CAUTION in report_path.read_text()
 
-    assert _problems(page) == []
+    assert browser_problems(page) == []
 
 
 def test_report_renders_under_its_own_csp(page, base_url, tmp_path):
@@ -150,7 +84,7 @@ def test_report_renders_under_its_own_csp(page, base_url, tmp_path):
     border = page.locator("h2").first.evaluate("e => getComputedStyle(e).borderBottomStyle")
     assert border == "solid"  # the inline stylesheet applied
     assert page.locator(".verdict-fail").is_visible()
-    assert _problems(page) == []
+    assert browser_problems(page) == []
 
 
 def test_field_book_errors_in_the_browser(page, base_url):
@@ -163,7 +97,7 @@ def test_field_book_errors_in_the_browser(page, base_url):
     assert "Line 3" in issues.first.inner_text()
     assert "levle A B 1.0" in issues.first.inner_text()
     assert page.locator("footer").get_by_text(CAUTION).is_visible()
-    assert _problems(page) == []
+    assert browser_problems(page) == []
 
 
 def test_results_page_screenshot(page, base_url):
@@ -174,4 +108,4 @@ def test_results_page_screenshot(page, base_url):
     page.wait_for_url(f"{base_url}/projects/*")
     page.screenshot(path="/tmp/stationfit-results.png")
     assert page.locator(".verdict-fail").is_visible()
-    assert _problems(page) == []
+    assert browser_problems(page) == []

@@ -4,14 +4,13 @@ Uses the uvicorn server, system chromium and console watch of tests/test_browser
 skipped only when chromium is not installed.
 """
 
-# ruff: noqa: F811  (the fixtures imported from tests/test_browser.py are parameters here)
 from __future__ import annotations
 
 import re
 
 import pytest
 
-from tests.test_browser import _problems, base_url, browser, page  # noqa: F401  (fixtures)
+from tests.browser_support import browser_problems
 
 pytestmark = pytest.mark.browser
 
@@ -112,7 +111,7 @@ def test_control_network_plot_panel_exaggeration_and_zoom(page, base_url):
     page.get_by_role("button", name="Fit").click()
     assert _view_box(page)[2] == pytest.approx(view_before[2], rel=1e-6)
 
-    assert _problems(page) == []
+    assert browser_problems(page) == []
 
 
 def test_direction_blunder_line_is_flagged_and_opens_from_the_keyboard(page, base_url):
@@ -145,4 +144,4 @@ def test_direction_blunder_line_is_flagged_and_opens_from_the_keyboard(page, bas
     assert row.is_visible()
 
     page.locator("#network-plot").screenshot(path="/tmp/plot-browser-blunder.png")
-    assert _problems(page) == []
+    assert browser_problems(page) == []

@@ -8,14 +8,10 @@ chromium is not installed; CI installs it.
 from __future__ import annotations
 
 import re
-import threading
-import time
-from collections.abc import Iterator
 
 import pytest
 
-from server.web import create_app
-from tests.test_browser import CHROMIUM, CHROMIUM_ARGS, _free_port, _problems
+from tests.browser_support import browser_problems
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
 
 pytestmark = pytest.mark.browser
@@ -23,50 +19,6 @@ pytestmark = pytest.mark.browser
 TEXT = leveling_with_blunders(TWO_BLUNDERS)
 FIRST = next(k for k, line in enumerate(TEXT.splitlines(), 1) if line.startswith("level M2 M4"))
 SECOND = next(k for k, line in enumerate(TEXT.splitlines(), 1) if line.startswith("level M6 M7"))
-
-
-@pytest.fixture(scope="module")
-def base_url(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
-    import uvicorn
-
-    port = _free_port()
-    app = create_app(tmp_path_factory.mktemp("review-browser-data"))
-    config = uvicorn.Config(app, host="127.0.0.1", port=port, log_level="warning",
-                            ws="none", lifespan="off")
-    server = uvicorn.Server(config)
-    thread = threading.Thread(target=server.run, daemon=True)
-    thread.start()
-    deadline = time.monotonic() + 20
-    while not server.started:
-        if time.monotonic() > deadline or not thread.is_alive():
-            pytest.fail("uvicorn did not start")
-        time.sleep(0.05)
-    yield f"http://127.0.0.1:{port}"
-    server.should_exit = True
-    thread.join(timeout=10)
-
-
-@pytest.fixture(scope="module")
-def browser():
-    if CHROMIUM is None:
-        pytest.skip("chromium is not installed (apt-get install chromium); CI installs it")
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as playwright:
-        browser = playwright.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
-        yield browser
-        browser.close()
-
-
-@pytest.fixture
-def page(browser, base_url):
-    context = browser.new_context(accept_downloads=True, viewport={"width": 1366, "height": 900})
-    page = context.new_page()
-    page.console_messages = []  # type: ignore[attr-defined]
-    page.on("console", lambda m: page.console_messages.append(f"{m.type}: {m.text}"))
-    page.on("pageerror", lambda e: page.console_messages.append(f"pageerror: {e}"))
-    yield page
-    context.close()
 
 
 def _upload(page, base_url: str, tmp_path) -> None:
@@ -145,7 +97,7 @@ def test_two_blunders_found_decided_rerun_compared_and_downloaded(page, base_url
     report_info.value.save_as(report_path)
     assert "Passes" in report_path.read_text()
 
-    assert _problems(page) == []
+    assert browser_problems(page) == []
 
 
 def test_delete_from_the_project_list_after_confirming(page, base_url, tmp_path):
@@ -159,4 +111,4 @@ def test_delete_from_the_project_list_after_confirming(page, base_url, tmp_path)
     assert page.url == base_url + "/projects"
     assert page.locator(f"a[href='{project_url[len(base_url):]}']").count() == 0
     assert page.goto(project_url).status == 404
-    assert [m for m in _problems(page) if "404" not in m] == []
+    assert [m for m in browser_problems(page) if "404" not in m] == []

@@ -14,16 +14,11 @@ against uvicorn on 127.0.0.1.
 from __future__ import annotations
 
 import re
-import threading
-import time
-from collections.abc import Iterator
 from pathlib import Path
 
 import httpx
 import pytest
 
-from server.web import create_app
-from tests.test_browser import CHROMIUM, CHROMIUM_ARGS, _free_port
 from tests.test_web_security import HOSTILE_BOOK, HOSTILE_PLOT, SCRIPT
 
 pytestmark = pytest.mark.browser
@@ -34,39 +29,6 @@ window.__csp = [];
 document.addEventListener('securitypolicyviolation',
     e => window.__csp.push(e.violatedDirective + ' ' + e.blockedURI));
 """
-
-
-@pytest.fixture(scope="module")
-def base_url(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
-    import uvicorn
-
-    port = _free_port()
-    app = create_app(tmp_path_factory.mktemp("xss-data"))
-    config = uvicorn.Config(app, host="127.0.0.1", port=port, log_level="warning",
-                            ws="none", lifespan="off")
-    server = uvicorn.Server(config)
-    thread = threading.Thread(target=server.run, daemon=True)
-    thread.start()
-    deadline = time.monotonic() + 20
-    while not server.started:
-        if time.monotonic() > deadline or not thread.is_alive():
-            pytest.fail("uvicorn did not start")
-        time.sleep(0.05)
-    yield f"http://127.0.0.1:{port}"
-    server.should_exit = True
-    thread.join(timeout=10)
-
-
-@pytest.fixture(scope="module")
-def browser():
-    if CHROMIUM is None:
-        pytest.skip("chromium is not installed (apt-get install chromium); CI installs it")
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as playwright:
-        browser = playwright.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
-        yield browser
-        browser.close()
 
 
 @pytest.fixture(scope="module")

@@ -66,7 +66,7 @@ def test_matches_scipy_least_squares(seed):
     rng = np.random.default_rng(seed)
     net = grid_network(rng, size=4)
     result = adjust_fieldbook(net.text)
-    fb, names, rounds, col, ocol, obs, sigma, residuals = _reference_solution(net.text)
+    _, names, rounds, col, ocol, obs, sigma, residuals = _reference_solution(net.text)
     # start scipy 5 m and 0.5° away from the truth, independent of the engine's start values
     x0 = np.zeros(2 * len(names) + len(rounds))
     for n in names:

@@ -19,18 +19,13 @@ from pathlib import Path
 import httpx
 import pytest
 
+from tests.browser_support import free_port
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
 
 REPO = Path(__file__).resolve().parents[1]
 TEXT = leveling_with_blunders(TWO_BLUNDERS)
 FIRST = next(k for k, line in enumerate(TEXT.splitlines(), 1) if line.startswith("level M2 M4"))
 SECOND = next(k for k, line in enumerate(TEXT.splitlines(), 1) if line.startswith("level M6 M7"))
-
-
-def _free_port() -> int:
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
 
 
 @contextmanager
@@ -70,7 +65,7 @@ def _token(html: str) -> str:
 
 def test_projects_runs_and_decisions_survive_a_restart_of_the_service(tmp_path):
     data, log = tmp_path / "data", tmp_path / "service.log"
-    port = _free_port()
+    port = free_port()
     with serving(data, port, log) as client:
         created = client.post("/api/projects", files={"fieldbook": ("two.fieldbook",
                                                                     TEXT.encode())})
@@ -87,7 +82,7 @@ def test_projects_runs_and_decisions_survive_a_restart_of_the_service(tmp_path):
         before = client.get(f"/api/projects/{project}").json()
     assert len(before["runs"]) == 2
 
-    with serving(data, _free_port(), log) as client:  # a new process, another port
+    with serving(data, free_port(), log) as client:  # a new process, another port
         after = client.get(f"/api/projects/{project}")
         assert after.status_code == 200
         body = after.json()
