@@ -25,6 +25,7 @@ from ..errors import FieldbookError, NetworkError, SurveyError
 from ..result import CAUTION
 from ..settings import DEFAULT_MAX_UPLOAD_BYTES
 from ..storage import Store, error_record
+from .jobs import Jobs
 
 logger = logging.getLogger("stationfit.web")
 
@@ -324,6 +325,7 @@ def create_app(
     app.state.templates = templates
     app.state.max_upload_bytes = max_upload_bytes
     app.state.max_projects = max_projects
+    app.state.jobs = Jobs()
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
     app.include_router(routes.router)

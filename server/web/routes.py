@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import re
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -24,6 +25,7 @@ from ..edits import apply_edits
 from ..errors import SurveyError
 from ..exports import geojson_text
 from ..fieldbook import parse_fieldbook
+from ..fieldbook_model import Fieldbook
 from ..pipeline import adjust_fieldbook, adjust_parsed
 from ..report_pdf import report_pdf
 from ..result import AdjustmentResult
@@ -36,6 +38,8 @@ router = APIRouter()
 _UNSAFE_FILENAME = re.compile(r"[^A-Za-z0-9._-]+")
 _LINE_BREAK = re.compile(r"\r\n|\r|\n")
 _MAX_NAME = 200
+#: Seconds an upload from the browser waits for its adjustment before showing progress instead.
+_WAIT_FOR_SMALL_JOBS = 2.0
 
 
 # --------------------------------------------------------------------------------------
@@ -112,6 +116,17 @@ def _submit(
     adjustment leaves the project stored and its run marked ``running`` (never
     finished, never shown as a result); the runs before it are untouched.
     """
+    project_id, book, run_id, error = _store_upload(store, upload, max_projects)
+    if book is None or run_id is None:
+        return project_id, None, error
+    result, error = _adjust_run(store, run_id, book)
+    return project_id, result, error
+
+
+def _store_upload(
+    store: Store, upload: Upload, max_projects: int = 0
+) -> tuple[str, Fieldbook | None, int | None, SurveyError | None]:
+    """Store the upload and open its run; a field book that does not read gets a failed run."""
     source = upload.filename or "pasted.fieldbook"
     _check_room(store, max_projects)
     try:
@@ -119,20 +134,40 @@ def _submit(
     except SurveyError as exc:
         project_id = store.create_project(upload.name, upload.filename, upload.data)
         store.add_run(project_id, error=exc)
-        return project_id, None, exc
+        return project_id, None, None, exc
     project_id = store.create_project(upload.name or book.title, upload.filename, upload.data)
-    run_id = store.start_run(project_id, NO_EDITS)
+    return project_id, book, store.start_run(project_id, NO_EDITS), None
+
+
+def _adjust_run(
+    store: Store, run_id: int, book: Fieldbook, progress: Callable[[str, int], None] | None = None
+) -> tuple[AdjustmentResult | None, SurveyError | None]:
+    """Adjust a stored run's field book and finish the run with its result or error."""
     try:
-        result = adjust_parsed(book)
+        result = adjust_parsed(book, progress=progress)
     except SurveyError as exc:
         store.finish_run(run_id, error=exc)
-        return project_id, None, exc
+        return None, exc
     except Exception:
         # keep the upload and close the run, then let the generic 500 page answer
         store.finish_run(run_id, error="the adjustment stopped unexpectedly")
         raise
     store.finish_run(run_id, result=result)
-    return project_id, result, None
+    return result, None
+
+
+async def _submit_in_background(request: Request, upload: Upload) -> str:
+    """Store and start adjusting; wait briefly so small jobs open straight on their results."""
+    store = _store(request)
+    project_id, book, run_id, _ = await run_in_threadpool(
+        _store_upload, store, upload, request.app.state.max_projects
+    )
+    if book is not None and run_id is not None:
+        job = request.app.state.jobs.start(
+            run_id, lambda progress: _adjust_run(store, run_id, book, progress)
+        )
+        await run_in_threadpool(job.done.wait, _WAIT_FOR_SMALL_JOBS)
+    return project_id
 
 
 def _check_room(store: Store, max_projects: int) -> None:
@@ -318,8 +353,7 @@ async def create_project(request: Request) -> Response:
             "problem": "Choose a field book file or paste its text, then press Adjust.",
             "limit": request.app.state.max_upload_bytes,
         }, status=400)
-    project_id, _, _ = await run_in_threadpool(_submit, _store(request), upload,
-                                             request.app.state.max_projects)
+    project_id = await _submit_in_background(request, upload)
     return RedirectResponse(f"/projects/{project_id}", status_code=303)
 
 
@@ -342,6 +376,17 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
     """The results of a project's latest adjustment, or what stopped it."""
     store = _store(request)
     project = _project_or_404(store, project_id)
+    runs = store.runs(project_id)
+    newest = runs[-1] if runs else None
+    interrupted = None
+    if newest is not None and newest.status == "running":
+        job = request.app.state.jobs.get(newest.id)
+        if job is not None:
+            return _render(request, "progress.html", {
+                "project": project, "run": newest, "job": job,
+                "name": display_name(project.name, project.filename),
+            })
+        interrupted = newest  # the service stopped before this run finished
     run = store.latest_run(project_id)
     choice = _standards_choice(request)
     result = _result_with_presets(project, run, choice)
@@ -351,6 +396,7 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
         "name": display_name(project.name, project.filename, result.title if result else ""),
         "error": None,
         "issues": [],
+        "interrupted": interrupted,
     }
     if result is not None:
         context.update(report.context(result, choice.presets))
@@ -451,8 +497,7 @@ async def demo_open(name: str, request: Request) -> Response:
     if path is None:
         raise HTTPException(status_code=404, detail="There is no demo project of that name.")
     upload = Upload(data=path.read_bytes(), filename=path.name, name="")
-    project_id, _, _ = await run_in_threadpool(_submit, _store(request), upload,
-                                             request.app.state.max_projects)
+    project_id = await _submit_in_background(request, upload)
     return RedirectResponse(f"/projects/{project_id}", status_code=303)
 
 
