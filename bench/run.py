@@ -173,6 +173,13 @@ def _timed_factorizations(log: list[float]):
 
 def _in_process(text: str, dense_max: int) -> dict[str, object]:
     """Stage times, iterations, the factorization floor and the dense solver, in this process."""
+    from server.pipeline import paused_gc
+
+    with paused_gc():  # as adjust_fieldbook runs them
+        return _stages(text, dense_max)
+
+
+def _stages(text: str, dense_max: int) -> dict[str, object]:
     from server import adjust as engine
     from server import kernels, sparse
     from server.fieldbook import parse_fieldbook

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import re
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import TypeVar
@@ -25,6 +26,7 @@ from .fieldbook_lexer import (
     DIRECTION_ENTRY,
     GRAMMARS,
     KEYWORDS,
+    MAX_LENGTH_M,
     MIN_DISTANCE_M,
     MISCLOSURE_RULE,
     RELATIVE_RULE,
@@ -118,7 +120,7 @@ def parse_fieldbook(text: str | bytes, *, source: str = "") -> Fieldbook:
     foreign = sniff_foreign(raw, lines, KEYWORDS)
     if foreign is not None:
         raise FieldbookError([foreign], source)
-    parser = _Parser()
+    parser = _Parser(fast=_FAST_LINES)
     parser.run(lines, bad_lines)
     if parser.errors.count:
         raise FieldbookError(parser.errors.result(), source)
@@ -151,7 +153,8 @@ class _Round:
 class _Parser:
     """What is in force while reading (units, defaults, scale, a round) and what was read."""
 
-    def __init__(self) -> None:
+    def __init__(self, fast: bool = False) -> None:
+        self.fast = fast
         self.errors = IssueLog("errors")
         self.warnings = IssueLog("warnings")
         self.binder = Binder(GRAMMARS, self.errors)
@@ -176,10 +179,13 @@ class _Parser:
     # ---- driving
 
     def run(self, lines: list[str], bad_lines: dict[int, tuple[str, str]]) -> None:
+        fast = self.fast_line if self.fast else None
         for index, text in enumerate(lines):
             number = index + 1
             if index in bad_lines:
                 self.error(number, *bad_lines[index])
+            elif fast is not None and fast(number, text):
+                pass  # a plain, well-formed observation line, read without tokens
             else:
                 try:
                     tokens = tokenize(text)
@@ -219,6 +225,104 @@ class _Parser:
 
     def error(self, line: int, token: str, message: str) -> None:
         self.errors.add(line, token, message)
+
+    # ---- the fast path: the common well-formed observation lines
+
+    def fast_line(self, line: int, text: str) -> bool:
+        """Read a plain ``level``/``distance`` line or a direction of a round, if it is one.
+
+        True when the line was taken (its observation appended); False, with
+        nothing changed, whenever anything is unusual, so that the careful
+        path reads the line and reports exactly what it always reports.  Only
+        lines the careful path would accept without a word are taken here, and
+        they give the same ``Observation`` (``tests/test_fast_paths.py``).
+        """
+        if self.round is not None:
+            match = _FAST_DIRECTION.match(text)
+            return match is not None and self.fast_direction(line, *match.groups())
+        if self.body_line is None:
+            return False
+        match = _FAST_OBSERVATION.match(text)
+        if match is None:
+            return False
+        kind, from_point, to, value_text, length_text, length_unit = match.groups()
+        if from_point == to or from_point.lower() == "end" or to.lower() == "end":
+            return False
+        default = self.defaults.get(kind)
+        if default is None or default.sigma is None:
+            return False
+        sigma = default.sigma
+        # as units.parse_number, file_number and bounded_length read them (the pattern
+        # has checked the spelling of the numbers)
+        number = float(value_text)
+        if not math.isfinite(number):
+            return False
+        value = number * self.length_factor
+        if abs(value) > MAX_LENGTH_M:
+            return False
+        length_km = None
+        if kind == "level":
+            if sigma.per_setup:
+                return False  # needs setups=
+            if length_text is None:
+                if sigma.per_sqrtkm:
+                    return False
+            else:
+                factor = LENGTH_FACTORS.get(length_unit.lower())
+                number = float(length_text)
+                if factor is None or not math.isfinite(number):
+                    return False
+                length_m = number * factor  # as units.parse_length and option_length
+                if abs(length_m) > MAX_LENGTH_M or length_m <= 0.0 or length_m < MIN_DISTANCE_M:
+                    return False
+                length_km = length_m / 1000.0
+            scale = 1.0
+            centering = 0.0
+        else:
+            if length_text is not None or value <= 0.0 or value < MIN_DISTANCE_M:
+                return False
+            scale = self.scale
+            centering = self.centering
+        self.observations.append(
+            Observation(
+                line, kind, from_point, None, to, value * scale, sigma, centering, scale, length_km
+            )
+        )
+        self.statements += 1
+        return True
+
+    def fast_direction(self, line: int, to: str, value_text: str) -> bool:
+        """``TO D:M:S`` inside a round with its standard deviation in force (see ``fast_line``)."""
+        round_ = self.round
+        assert round_ is not None
+        at = round_.at
+        if at is None or to == at or to.lower() in GRAMMARS or not self.angle_unit_known:
+            return False
+        sigma = round_.sigma or self.defaults.get("direction")
+        if sigma is None or sigma.sigma is None:
+            return False
+        try:
+            value = wrap_2pi(observed_angle(value_text, self.angle_unit))
+        except UnitError:
+            return False
+        round_.lines.append(line)
+        self.observations.append(
+            Observation(
+                line=line,
+                kind="direction",
+                from_point=at,
+                at=at,
+                to=to,
+                value=value,
+                sigma=sigma.sigma,
+                centering=self.centering,
+                round_line=round_.line,
+                ignored=round_.ignored,
+                note=round_.note,
+            )
+        )
+        self.statements += 1
+        return True
 
     def statement(self, line: int, tokens: list[Token]) -> None:
         first = tokens[0]
@@ -728,6 +832,22 @@ class _Parser:
 
 
 # --------------------------------------------------------------------------- tables
+
+#: Read the common observation lines without tokens (``_Parser.fast_line``); the tests
+#: compare both paths, and switching this off gives the careful path alone.
+_FAST_LINES = True
+# A point name the careful path accepts without a word: printable ASCII, no space, '"', '#'
+# or '='; a value or option value: no space, '"' or '#'; then at most a comment.
+_NAME = r"([!$-<>-~]{1,64})"
+_VALUE = r'([^ \t#"=]+)'
+_TAIL = r"[ \t]*(?:#.*)?\Z"
+_NUMBER = r"([+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?)"  # as units._NUMBER
+_FAST_OBSERVATION = re.compile(
+    rf"[ \t]*(level|distance)[ \t]+{_NAME}[ \t]+{_NAME}[ \t]+{_NUMBER}"
+    rf"(?:[ \t]+len={_NUMBER}([a-zA-Z]+))?{_TAIL}",
+    re.DOTALL,
+)
+_FAST_DIRECTION = re.compile(rf"[ \t]*{_NAME}[ \t]+{_VALUE}{_TAIL}", re.DOTALL)
 
 _KEYS = {"en": "east= and north=", "h": "height="}
 _NAMES = {"en": "horizontal position", "h": "height"}

@@ -20,6 +20,7 @@ arbitrary datum that the inner constraints later remove.
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections import defaultdict
 from collections.abc import Callable
@@ -125,12 +126,14 @@ class _Tables:
                 self.distances[frozenset((o.from_point, o.to))].append(o.value)
             elif o.kind == "direction" and o.round_line is not None:
                 self.rounds[o.round_line].append(o)
-        linked: set[tuple[str, str]] = set()
+        # a dict, not a set: file order makes the start values (and so the last bits of
+        # the results) the same on every run, whatever the string hash seed
+        linked: dict[tuple[str, str], None] = {}
         for o in used:
             station = o.at or o.from_point
             for n in _names(o):
                 if n != station:
-                    linked.add((station, n))
+                    linked[(station, n)] = None
         self.linked = linked
 
 
@@ -149,6 +152,9 @@ class _Propagator:
         self.unlearned = list(tables.linked)
         self.unoriented = dict(tables.rounds)  # rounds not yet oriented, in file order
         self.open_angles = list(tables.angles)
+        # azimuths _place_polar still looks at, and how many of self.azimuths it has seen
+        self._polar_pending: list[tuple[tuple[str, str], float]] = []
+        self._polar_seen = 0
 
     def arbitrary_datum(self, link: tuple[str, str]) -> None:
         """A local frame: ``link[0]`` at the origin, ``link[1]`` due north of it."""
@@ -214,13 +220,21 @@ class _Propagator:
         self.open_angles = open_angles  # an angle with both azimuths known has no more to say
 
     def _place_polar(self) -> None:
-        for (i, j), azimuth in list(self.azimuths.items()):
-            if i in self.known and j not in self.known:
-                lengths = self.distances.get(frozenset((i, j)))
+        # The azimuths in the order learned, less those toward a point already placed:
+        # those can never place anything again (a known point stays known and an azimuth,
+        # once learned, never changes), so each pass looks only at the rest.
+        known, distances = self.known, self.distances
+        pending = [entry for entry in self._polar_pending if entry[0][1] not in known]
+        pending += itertools.islice(self.azimuths.items(), self._polar_seen, None)
+        self._polar_seen = len(self.azimuths)
+        for (i, j), azimuth in pending:
+            if i in known and j not in known:
+                lengths = distances.get(frozenset((i, j)))
                 if lengths:
                     d = sum(lengths) / len(lengths)
-                    e, n = self.known[i]
-                    self.known[j] = (e + d * math.sin(azimuth), n + d * math.cos(azimuth))
+                    e, n = known[i]
+                    known[j] = (e + d * math.sin(azimuth), n + d * math.cos(azimuth))
+        self._polar_pending = pending
 
     def _rays_to(self) -> dict[str, list[tuple[Position, float]]]:
         rays: dict[str, list[tuple[Position, float]]] = defaultdict(list)

@@ -12,9 +12,12 @@ strings are spelled exactly as ``json.dumps`` spells them
 
 from __future__ import annotations
 
+import gc
 import json
+import math
 from collections.abc import Iterator
 from itertools import chain
+from operator import itemgetter
 
 _INDENT = "  "
 _SCALARS = (str, int, float, bool, type(None))
@@ -22,7 +25,16 @@ _SCALARS = (str, int, float, bool, type(None))
 
 def dumps_indented(obj: object) -> str:
     """``json.dumps(obj, indent=2, allow_nan=False)``, computed faster."""
-    return "".join(_chunks(obj, 0))
+    # No cyclic garbage collection while the text is made: full collections would
+    # walk every object of a large result again and again (see pipeline.paused_gc).
+    was_enabled = gc.isenabled()
+    if was_enabled:
+        gc.disable()
+    try:
+        return "".join(_chunks(obj, 0))
+    finally:
+        if was_enabled:
+            gc.enable()
 
 
 def _is_flat(values) -> bool:
@@ -55,6 +67,96 @@ def _records(items, level: int) -> str:
         boundary, "\n" + list_indent + "},\n" + list_indent + "{\n" + item_indent
     )
     return "[\n" + list_indent + "{\n" + item_indent + body + "\n" + list_indent + "}\n" + outer + "]"
+
+
+_encode_str = json.encoder.encode_basestring_ascii  # what json.dumps uses (ensure_ascii)
+_NONE = type(None)
+_SPELL = {
+    str: _encode_str,
+    int: int.__repr__,
+    float: float.__repr__,
+    bool: {True: "true", False: "false"}.__getitem__,
+    _NONE: lambda value: "null",
+}
+
+
+def _spelled(column: list, kinds: set[type], level: int) -> list[str] | None:
+    """Every value of one column as JSON text, or None if one is not a plain scalar.
+
+    A column of dicts (or None) that are records themselves, as the ellipse of
+    a point, is spelled as records whose braces sit at ``level``; a column of
+    lists as the general path spells them.
+    """
+    if list in kinds or tuple in kinds:
+        # as the marks of a misclosure: each list as the general path writes it
+        if not kinds <= {list, tuple, _NONE}:
+            return None
+        return ["null" if v is None else "".join(_chunks(v, level)) for v in column]
+    if dict in kinds:
+        if not kinds <= {dict, _NONE}:
+            return None
+        records = [v for v in column if v is not None]
+        texts = _record_texts(records, level)
+        if texts is None:
+            return None
+        if len(records) == len(column):
+            return texts
+        spelled = iter(texts)
+        return ["null" if v is None else next(spelled) for v in column]
+    if not kinds <= _SPELL.keys():
+        return None
+    if float in kinds and not all(
+        map(math.isfinite, column if len(kinds) == 1 else [v for v in column if type(v) is float])
+    ):
+        return None  # the standard path raises its own error for NaN and infinity
+    if len(kinds) == 1:
+        (kind,) = kinds
+        if kind is _NONE:
+            return ["null"] * len(column)
+        return list(map(_SPELL[kind], column))
+    spell = _SPELL
+    return [spell[type(v)](v) for v in column]
+
+
+def _columns(items, level: int) -> str | None:
+    """A list of dicts sharing one key order, spelled column by column.
+
+    Each column's scalars are spelled by the functions the C encoder uses
+    (``float.__repr__``, ``int.__repr__``, ``encode_basestring_ascii``), and the
+    records are laid out by one format string, so the text is what
+    ``json.dumps(indent=2)`` writes (``tests/test_fast_paths.py`` compares them).
+    None, for the general path, when the dicts differ in keys or hold lists.
+    """
+    texts = _record_texts(items, level + 1)
+    if texts is None:
+        return None
+    list_indent = _INDENT * (level + 1)
+    return "[\n" + list_indent + (",\n" + list_indent).join(texts) + "\n" + _INDENT * level + "]"
+
+
+def _record_texts(items, level: int) -> list[str] | None:
+    """The text of each dict, its braces at ``level``; None unless all share their keys."""
+    if not items:
+        return []
+    if set(map(type, items)) != {dict}:
+        return None
+    keys = tuple(items[0])
+    if len(keys) < 2 or not all(type(key) is str for key in keys):
+        return None
+    if not all(map(keys.__eq__, map(tuple, items))):
+        return None
+    columns = []
+    for column in zip(*map(itemgetter(*keys), items)):
+        spelled = _spelled(column, set(map(type, column)), level + 1)
+        if spelled is None:
+            return None
+        columns.append(spelled)
+    item_indent = _INDENT * (level + 1)
+    fields = (",\n" + item_indent).join(
+        _encode_str(key).replace("%", "%%") + ": %s" for key in keys
+    )
+    record = "{\n" + item_indent + fields + "\n" + _INDENT * level + "}"
+    return [record % values for values in zip(*columns)]
 
 
 _encoders: dict[int, json.JSONEncoder] = {}
@@ -97,6 +199,9 @@ def _chunks(obj: object, level: int) -> Iterator[str]:
         if _is_flat(obj):
             text = _flat_encoder(level).encode(list(obj))
             yield "[" + inner + text[1:-1] + "\n" + _INDENT * level + "]"
+            return
+        if type(obj[0]) is dict and (text := _columns(obj, level)) is not None:
+            yield text
             return
         if _flat_records(obj):
             yield _records(obj, level)

@@ -15,6 +15,7 @@ from __future__ import annotations
 import heapq
 import math
 from dataclasses import dataclass
+from itertools import repeat
 
 from .fieldbook_model import Fieldbook
 from .units import Quantity
@@ -41,13 +42,18 @@ class Misclosure:
         return self.allowed is not None and abs(self.misclosure) > self.allowed
 
 
-@dataclass(frozen=True, slots=True)
-class _Edge:
-    start: str
-    end: str
-    rise: float  # height change from start to end
-    length_km: float | None
-    setups: int | None
+@dataclass(slots=True)
+class _Edges:
+    """The sections (and datum links) as parallel lists, indexed by edge number."""
+
+    start: list[str]
+    end: list[str]
+    rise: list[float]  # height change from start to end
+    length_km: list[float | None]
+    setups: list[int | None]
+
+    def __len__(self) -> int:
+        return len(self.start)
 
 
 def leveling_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
@@ -55,25 +61,38 @@ def leveling_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
     sections = [o for o in fieldbook.observations if o.kind == "level" and not o.ignored]
     if not sections:
         return ()
-    edges = [_Edge(o.from_point, o.to, o.value, o.length_km, o.setups) for o in sections]
+    edges = _Edges(
+        [o.from_point for o in sections],
+        [o.to for o in sections],
+        [o.value for o in sections],
+        [o.length_km for o in sections],
+        [o.setups for o in sections],
+    )
     fixed = [
         p for p in fieldbook.points if "h" in p.fixed and p.height is not None
     ]
     if len(fixed) >= 2:
-        edges += [_Edge(_DATUM, p.name, p.height or 0.0, 0.0, 0) for p in fixed]
+        for p in fixed:
+            edges.start.append(_DATUM)
+            edges.end.append(p.name)
+            edges.rise.append(p.height or 0.0)
+            edges.length_km.append(0.0)
+            edges.setups.append(0)
     adjacency: dict[str, list[tuple[int, str]]] = {}
-    for k, e in enumerate(edges):
-        adjacency.setdefault(e.start, []).append((k, e.end))
-        adjacency.setdefault(e.end, []).append((k, e.start))
+    for k, (start, end) in enumerate(zip(edges.start, edges.end)):
+        adjacency.setdefault(start, []).append((k, end))
+        adjacency.setdefault(end, []).append((k, start))
     use_length = all(o.length_km is not None for o in sections)
-    weights = [
-        (e.length_km if use_length else (0.0 if _DATUM in (e.start, e.end) else 1.0)) or 0.0
-        for e in edges
-    ]
+    if use_length:
+        weights = [length or 0.0 for length in edges.length_km]
+    else:
+        weights = [
+            0.0 if _DATUM in (start, end) else 1.0 for start, end in zip(edges.start, edges.end)
+        ]
     cycles = _cycle_basis(edges, adjacency, weights)
     order = _first_appearance(fieldbook)
     results = [_describe(cycle, edges, order, fieldbook.misclosure_tolerance) for cycle in cycles]
-    results.sort(key=lambda m: (m.kind != "run", min(order.get(p, 0) for p in m.points)))
+    results.sort(key=lambda m: (m.kind != "run", min(map(order.get, m.points, repeat(0)))))
     return tuple(results)
 
 
@@ -88,10 +107,11 @@ def _first_appearance(fieldbook: Fieldbook) -> dict[str, int]:
 
 
 def _cycle_basis(
-    edges: list[_Edge], adjacency: dict[str, list[tuple[int, str]]], weights: list[float]
+    edges: _Edges, adjacency: dict[str, list[tuple[int, str]]], weights: list[float]
 ) -> list[list[int]]:
     """Independent simple cycles, each as the list of its edge indices."""
-    dimension = len(edges) - len(adjacency) + _count_parts(adjacency)
+    forest = _spanning_forest(adjacency)
+    dimension = len(edges) - len(adjacency) + forest[2]
     if dimension <= 0:
         return []
     basis: dict[int, int] = {}  # pivot bit → reduced mask (GF(2) elimination)
@@ -111,8 +131,8 @@ def _cycle_basis(
 
     if len(edges) <= _CANDIDATE_LIMIT:
         candidates = []
-        for k, e in enumerate(edges):
-            path = _shortest_path(adjacency, weights, e.end, e.start, excluded=k)
+        for k, (start, end) in enumerate(zip(edges.start, edges.end)):
+            path = _shortest_path(adjacency, weights, end, start, excluded=k)
             if path is not None:
                 cycle = [k, *path]
                 candidates.append((sum(weights[j] for j in cycle), len(cycle), k, cycle))
@@ -124,30 +144,13 @@ def _cycle_basis(
     if not chosen:
         # each spanning-tree cycle holds its own non-tree section, so together they are
         # independent and complete: no elimination needed
-        return _fundamental_cycles(edges, adjacency)[:dimension]
+        return _fundamental_cycles(edges, forest)[:dimension]
     if len(chosen) < dimension:
-        for cycle in _fundamental_cycles(edges, adjacency):
+        for cycle in _fundamental_cycles(edges, forest):
             if len(chosen) == dimension:
                 break
             take(cycle)
     return chosen
-
-
-def _count_parts(adjacency: dict[str, list[tuple[int, str]]]) -> int:
-    seen: set[str] = set()
-    parts = 0
-    for start in adjacency:
-        if start in seen:
-            continue
-        parts += 1
-        stack = [start]
-        seen.add(start)
-        while stack:
-            for _, nxt in adjacency[stack.pop()]:
-                if nxt not in seen:
-                    seen.add(nxt)
-                    stack.append(nxt)
-    return parts
 
 
 def _shortest_path(
@@ -185,54 +188,66 @@ def _shortest_path(
     return path
 
 
-def _fundamental_cycles(
-    edges: list[_Edge], adjacency: dict[str, list[tuple[int, str]]]
-) -> list[list[int]]:
-    """Cycles closed by each non-tree edge of a breadth-first spanning forest."""
+_Forest = tuple[dict[str, "tuple[str, int] | None"], dict[str, int], int]
+
+
+def _spanning_forest(adjacency: dict[str, list[tuple[int, str]]]) -> _Forest:
+    """A breadth-first spanning forest: each mark's (parent, section), its depth, and the
+    number of trees (connected parts)."""
     parent: dict[str, tuple[str, int] | None] = {}
     depth: dict[str, int] = {}
+    parts = 0
     for root in adjacency:
         if root in parent:
             continue
+        parts += 1
         parent[root], depth[root] = None, 0
         queue = [root]
         for node in queue:
+            below = depth[node] + 1
             for k, nxt in adjacency[node]:
                 if nxt not in parent:
-                    parent[nxt], depth[nxt] = (node, k), depth[node] + 1
+                    parent[nxt], depth[nxt] = (node, k), below
                     queue.append(nxt)
+    return parent, depth, parts
+
+
+def _fundamental_cycles(edges: _Edges, forest: _Forest) -> list[list[int]]:
+    """Cycles closed by each non-tree edge of a breadth-first spanning forest."""
+    parent, depth, _ = forest
     tree = {link[1] for link in parent.values() if link is not None}
     cycles = []
-    for k, e in enumerate(edges):
+    for k, (a, b) in enumerate(zip(edges.start, edges.end)):
         if k in tree:
             continue
         cycle = [k]
-        a, b = e.start, e.end
+        append = cycle.append
+        depth_a, depth_b = depth[a], depth[b]
         while a != b:  # climb from the deeper end until both meet
-            if depth[a] < depth[b]:
-                a, b = b, a
+            if depth_a < depth_b:
+                a, b, depth_a, depth_b = b, a, depth_b, depth_a
             link = parent[a]
             assert link is not None
-            cycle.append(link[1])
-            a = link[0]
+            a, k_up = link
+            depth_a -= 1  # a parent is one level up
+            append(k_up)
         cycles.append(cycle)
     return cycles
 
 
-def _walk(cycle: list[int], edges: list[_Edge], start: str) -> tuple[list[str], float]:
+def _walk(
+    cycle: list[int], edges: _Edges, start_mark: str, at_mark: dict[str, list[tuple[int, int]]]
+) -> tuple[list[str], float]:
     """Walk a simple cycle from ``start``: the marks in order and the summed rise.
 
     At each mark the walk leaves by the first cycle section (in the cycle's
-    own order) that touches it and is not yet used.
+    own order) that touches it and is not yet used.  ``at_mark`` lists, for
+    every mark of the cycle, its (position in the cycle, section) in that order.
     """
-    at_mark: dict[str, list[tuple[int, int]]] = {}  # mark → (position in cycle, section)
-    for position, k in enumerate(cycle):
-        e = edges[k]
-        at_mark.setdefault(e.start, []).append((position, k))
-        if e.end != e.start:
-            at_mark.setdefault(e.end, []).append((position, k))
+    starts, ends, rises = edges.start, edges.end, edges.rise
     used = [False] * len(cycle)
-    node, marks, rise = start, [start], 0.0
+    node, marks, rise = start_mark, [start_mark], 0.0
+    append = marks.append
     for _ in range(len(cycle)):
         for position, k in at_mark.get(node, ()):
             if not used[position]:
@@ -240,31 +255,55 @@ def _walk(cycle: list[int], edges: list[_Edge], start: str) -> tuple[list[str], 
         else:  # not a simple cycle through start; cannot happen for basis cycles
             raise RuntimeError("cycle walk lost its way")
         used[position] = True
-        e = edges[k]
-        forward = e.start == node
-        rise += e.rise if forward else -e.rise
-        node = e.end if forward else e.start
-        marks.append(node)
+        if starts[k] == node:
+            rise += rises[k]
+            node = ends[k]
+        else:
+            rise += -rises[k]
+            node = starts[k]
+        append(node)
     return marks, rise
 
 
+def _marks_of(cycle: list[int], edges: _Edges) -> dict[str, list[tuple[int, int]]]:
+    """Every mark of a cycle with its (position in the cycle, section), in cycle order."""
+    starts, ends = edges.start, edges.end
+    at_mark: dict[str, list[tuple[int, int]]] = {}
+    for position, k in enumerate(cycle):
+        start, end = starts[k], ends[k]
+        here = at_mark.get(start)
+        if here is None:
+            at_mark[start] = [(position, k)]
+        else:
+            here.append((position, k))
+        if end != start:
+            here = at_mark.get(end)
+            if here is None:
+                at_mark[end] = [(position, k)]
+            else:
+                here.append((position, k))
+    return at_mark
+
+
 def _describe(
-    cycle: list[int], edges: list[_Edge], order: dict[str, int], tolerance: Quantity | None
+    cycle: list[int], edges: _Edges, order: dict[str, int], tolerance: Quantity | None
 ) -> Misclosure:
-    nodes = {edges[k].start for k in cycle} | {edges[k].end for k in cycle}
-    if _DATUM in nodes:
-        marks, rise = _walk(cycle, edges, _DATUM)
+    at_mark = _marks_of(cycle, edges)  # its keys are the marks of the cycle
+    if _DATUM in at_mark:
+        marks, rise = _walk(cycle, edges, _DATUM, at_mark)
         marks = marks[1:-1]  # a run from one fixed benchmark to another
         kind = "run"
+        starts, ends = edges.start, edges.end
+        sections = [k for k in cycle if starts[k] != _DATUM and ends[k] != _DATUM]
     else:
-        first = min(nodes, key=lambda n: order.get(n, 0))
-        marks, rise = _walk(cycle, edges, first)
+        first = min(at_mark, key=lambda n: order.get(n, 0))
+        marks, rise = _walk(cycle, edges, first, at_mark)
         kind = "loop"
-    sections = [edges[k] for k in cycle if _DATUM not in (edges[k].start, edges[k].end)]
-    lengths = [s.length_km for s in sections]
-    setups = [s.setups for s in sections]
-    length_km = None if any(v is None for v in lengths) else sum(v or 0.0 for v in lengths)
-    total_setups = None if any(v is None for v in setups) else sum(v or 0 for v in setups)
+        sections = cycle
+    lengths = [edges.length_km[k] for k in sections]
+    setups = [edges.setups[k] for k in sections]
+    length_km = None if None in lengths else sum(v or 0.0 for v in lengths)
+    total_setups = None if None in setups else sum(v or 0 for v in setups)
     allowed = tolerance.allowance_level(length_km, total_setups) if tolerance else None
     return Misclosure(
         kind=kind,

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from collections import defaultdict
 from dataclasses import dataclass
+from itertools import pairwise
 
 from .errors import NetworkError
 from .fieldbook_model import (
@@ -135,14 +136,13 @@ def build_network(fieldbook: Fieldbook) -> Network:
 def _collect_points(fieldbook: Fieldbook, used: tuple[Observation, ...]) -> tuple[NetworkPoint, ...]:
     """Every point in order of first appearance (declared or observed)."""
     declared: dict[str, PointStatement] = {p.name: p for p in fieldbook.points}
-    events: list[tuple[int, int, str]] = [(p.line, 0, p.name) for p in fieldbook.points]
-    for obs in fieldbook.observations:
-        for order, name in enumerate(_observed_names(obs)):
-            events.append((obs.line, order + 1, name))
-    touched = {name for obs in used for name in _observed_names(obs)}
-    ordered: dict[str, None] = {}
-    for _, _, name in sorted(events):
-        ordered.setdefault(name)
+    ordered = _first_appearance(fieldbook)
+    touched: set[str] = set()
+    for obs in used:
+        touched.add(obs.from_point)
+        touched.add(obs.to)
+        if obs.at is not None:
+            touched.add(obs.at)
     points = []
     for name in ordered:
         stmt = declared.get(name)
@@ -167,6 +167,42 @@ def _collect_points(fieldbook: Fieldbook, used: tuple[Observation, ...]) -> tupl
                 )
             )
     return tuple(points)
+
+
+def _first_appearance(fieldbook: Fieldbook) -> dict[str, None]:
+    """Point names ordered by (line, place on the line): declarations and observations merged.
+
+    Parsed field books list both in line order, one statement a line, so one
+    merge does; anything else (equal or unordered lines) is sorted as events.
+    """
+    points, observations = fieldbook.points, fieldbook.observations
+    point_lines = [p.line for p in points]
+    obs_lines = [o.line for o in observations]
+    ordered: dict[str, None] = {}
+    if _increasing(point_lines) and _increasing(obs_lines) and not set(point_lines) & set(obs_lines):
+        i, count = 0, len(points)
+        for obs, line in zip(observations, obs_lines):
+            while i < count and point_lines[i] < line:
+                ordered.setdefault(points[i].name)
+                i += 1
+            ordered.setdefault(obs.from_point)
+            if obs.at is not None:
+                ordered.setdefault(obs.at)
+            ordered.setdefault(obs.to)
+        for p in points[i:]:
+            ordered.setdefault(p.name)
+        return ordered
+    events: list[tuple[int, int, str]] = [(p.line, 0, p.name) for p in points]
+    for obs in observations:
+        for order, name in enumerate(_observed_names(obs)):
+            events.append((obs.line, order + 1, name))
+    for _, _, name in sorted(events):
+        ordered.setdefault(name)
+    return ordered
+
+
+def _increasing(values: list[int]) -> bool:
+    return all(a < b for a, b in pairwise(values))
 
 
 #: Two marks closer than this (metres) are taken as the same position.
@@ -213,8 +249,17 @@ def _parameters(
     points: tuple[NetworkPoint, ...], used: tuple[Observation, ...], dimension: int
 ) -> tuple[Parameter, ...]:
     """Unknowns in point order (E, N, H), then one orientation per direction round."""
-    horizontal_points = {n for o in used if o.kind in HORIZONTAL_KINDS for n in _observed_names(o)}
-    vertical_points = {n for o in used if o.kind == "level" for n in _observed_names(o)}
+    horizontal_points: set[str] = set()
+    vertical_points: set[str] = set()
+    for o in used:
+        names = vertical_points if o.kind == "level" else (
+            horizontal_points if o.kind in HORIZONTAL_KINDS else None
+        )
+        if names is not None:
+            names.add(o.from_point)
+            names.add(o.to)
+            if o.at is not None:
+                names.add(o.at)
     params: list[Parameter] = []
     for p in points:
         if p.name in horizontal_points and "en" not in p.fixed:
@@ -242,6 +287,14 @@ def _graph(used: tuple[Observation, ...], kinds: frozenset[str]) -> dict[str, se
     graph: dict[str, set[str]] = defaultdict(set)
     for obs in used:
         if obs.kind in kinds:
+            a, b = obs.from_point, obs.to
+            if obs.at is None or obs.at == a:
+                if a != b:
+                    graph[a].add(b)
+                    graph[b].add(a)
+                else:
+                    graph[a].update(())  # the point is in the graph, with no neighbour
+                continue
             names = _observed_names(obs)
             for a in names:
                 graph[a].update(n for n in names if n != a)

@@ -531,12 +531,18 @@ def _point_results(
     horizontal, vertical = network.horizontal, network.vertical
     coordinates = solution.coordinates
     absent = (math.nan,) * 3
+    # the unknown of each component by point name (one lookup by name, not by pair)
+    by_component: tuple[dict[str, int], ...] = ({}, {}, {})
+    component_index = {"E": 0, "N": 1, "H": 2}
+    for (name, comp), k in column.items():
+        if comp in component_index:
+            by_component[component_index[comp]][name] = k
     for p in network.points:
         adjusted = coordinates.get(p.name, absent)
         out: list[float | None] = [None, None, None]
         sds: list[float | None] = [None, None, None]
-        for index, comp, original in ((0, "E", p.east), (1, "N", p.north), (2, "H", p.height)):
-            k = column.get((p.name, comp))
+        for index, original in ((0, p.east), (1, p.north), (2, p.height)):
+            k = by_component[index].get(p.name)
             if k is not None:
                 out[index] = float(adjusted[index]) * per_m
                 sds[index] = sd_all[k]
@@ -566,7 +572,7 @@ def _point_results(
 
 def _joined_pairs(network: Network) -> list[tuple[str, str]]:
     """Point pairs joined by a used horizontal observation, first-seen order, no repeats."""
-    pairs: dict[frozenset[str], tuple[str, str]] = {}
+    pairs: dict[tuple[str, str], tuple[str, str]] = {}
     for obs in network.used:
         if obs.kind == "angle":
             assert obs.at is not None
@@ -575,8 +581,9 @@ def _joined_pairs(network: Network) -> list[tuple[str, str]]:
             candidates = [(obs.from_point, obs.to)]
         else:
             continue
-        for pair in candidates:
-            pairs.setdefault(frozenset(pair), pair)
+        for a, b in candidates:
+            # the unordered pair as its key (as a frozenset would be, made faster)
+            pairs.setdefault((a, b) if a <= b else (b, a), (a, b))
     return list(pairs.values())
 
 
@@ -592,10 +599,11 @@ def _relative_results(
     column = {(p.point, p.kind): k for k, p in enumerate(network.parameters)}
     tolerance = network.fieldbook.relative_tolerance
     # each pair's unknowns (E_a, N_a, E_b, N_b), −1 where held; signs of the difference b − a
+    east = {name: k for (name, kind), k in column.items() if kind == "E"}
+    north = {name: k for (name, kind), k in column.items() if kind == "N"}
     pairs = []
     for a, b in _joined_pairs(network):
-        ends = [column.get((a, "E"), -1), column.get((a, "N"), -1),
-                column.get((b, "E"), -1), column.get((b, "N"), -1)]
+        ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
         if max(ends) >= 0:  # else both ends held fixed
             pairs.append((a, b, ends))
     unknowns = np.array([ends for _, _, ends in pairs], dtype=np.int64).reshape(-1, 4)

@@ -1,0 +1,288 @@
+"""The fast paths give exactly what the careful paths give.
+
+* The parser reads common well-formed observation lines (``level``,
+  ``distance``, a direction of a round) without tokens
+  (``fieldbook._Parser.fast_line``) and hands everything else to the careful
+  path: both must give equal ``Fieldbook`` objects, or equal issues.
+* ``json_output`` spells lists of flat records column by column: the text
+  must be ``json.dumps(..., indent=2)`` byte for byte.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import sys
+from pathlib import Path
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from server import fieldbook as fieldbook_module
+from server.errors import FieldbookError
+from server.fieldbook import parse_fieldbook
+from server.json_output import dumps_indented
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO_TEXTS = {p.name: p.read_text(encoding="utf-8") for p in sorted((ROOT / "demo_projects").glob("*.fieldbook"))}
+sys.path.insert(0, str(ROOT / "bench"))
+import networks  # bench/networks.py: the benchmark's field books
+
+
+def _outcome(text: str, fast: bool, monkeypatch: pytest.MonkeyPatch):
+    monkeypatch.setattr(fieldbook_module, "_FAST_LINES", fast)
+    try:
+        return parse_fieldbook(text, source="book.fieldbook")
+    except FieldbookError as exc:
+        return ("error", exc.issues, str(exc))
+
+
+def assert_same(text: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    careful = _outcome(text, False, monkeypatch)
+    fast = _outcome(text, True, monkeypatch)
+    assert fast == careful
+
+
+def _tokenized_lines(text: str, monkeypatch: pytest.MonkeyPatch) -> int:
+    """How many lines the careful path had to tokenize."""
+    calls = []
+    original = fieldbook_module.tokenize
+
+    def counting(line: str):
+        if line.strip():
+            calls.append(line)
+        return original(line)
+
+    monkeypatch.setattr(fieldbook_module, "tokenize", counting)
+    monkeypatch.setattr(fieldbook_module, "_FAST_LINES", True)
+    parse_fieldbook(text)
+    return len(calls)
+
+
+LEVELING = """fieldbook 1
+units length=m
+defaults level=1.0mm/sqrtkm
+point A height=100 fix
+level A B +1.2345 len=0.5km
+level B C -0.5 len=420m   # a comment
+\tlevel C A -0.7340 len=0.3km
+"""
+HORIZONTAL = """fieldbook 1
+units length=m angle=dms
+defaults direction=1sec distance=2mm+2ppm centering=1mm
+scale factor=0.9996
+point A east=1000 north=1000 fix
+point B east=1100 north=1000 fix
+directions A
+  B 90:00:00
+  C 45:00:00.5
+end
+directions C sd=2sec ignore note="weak"
+  A 225:00:00
+  B 315:00:00#mark
+end
+distance A C 141.42
+distance B C 100.0
+"""
+
+
+@pytest.mark.parametrize("text", [LEVELING, HORIZONTAL], ids=["leveling", "horizontal"])
+def test_the_fast_path_reads_the_plain_lines(text, monkeypatch):
+    assert_same(text, monkeypatch)
+    observations = len(parse_fieldbook(text).observations)
+    lines = sum(1 for line in text.splitlines() if line.strip())
+    # only the statements that are not plain observations went through the tokenizer
+    assert _tokenized_lines(text, monkeypatch) == lines - observations
+
+
+@pytest.mark.parametrize("name", sorted(DEMO_TEXTS))
+def test_demo_projects_parse_alike(name, monkeypatch):
+    assert_same(DEMO_TEXTS[name], monkeypatch)
+
+
+def test_benchmark_networks_parse_alike(monkeypatch):
+    assert_same(networks.leveling(1_000), monkeypatch)
+    assert_same(networks.horizontal(200, sparse=True, fixed_every=50), monkeypatch)
+
+
+_BASE = """fieldbook 1
+defaults level=1mm/sqrtkm distance=2mm+2ppm direction=1sec
+point A height=10 east=0 north=0 fix
+"""
+
+
+@pytest.mark.parametrize(
+    "line",
+    [
+        "distance A B 0.0001", "distance A B 0", "distance A B -5", "distance A B 1e9",
+        "distance A B 12m", "distance A A 10", "distance A end 10", "distance A B 10 len=1km",
+        "level A B 1 len=0.0005m", "level A B 1 len=0km", "level A B 1", "level A B 1 len=5",
+        "level A B 1e9 len=1km", "level A B nan len=1km", "level A B 1 len=1km#x",
+        "level A B\t1\tlen=1km", "LEVEL A B 1 len=1km", "level A B 1 len=1KM",
+        "level A " + "B" * 65 + " 1 len=1km", "level A B\u200b 1 len=1km",
+    ],
+)
+def test_edge_lines_parse_alike(line, monkeypatch):
+    assert_same(_BASE + line + "\n", monkeypatch)
+
+
+@pytest.mark.parametrize(
+    "entry", ["B 12:00:00", "A 12:00:00", "end 1:00:00", "Point 1:00:00", "B 12:60:00",
+              "B 361:00:00", "B -1:00:00", "B 12", "B 12:00:00 x", "B 12:00:00#c", "B\t1:2:3"]
+)
+@pytest.mark.parametrize("header", ["", "units angle=gon\n", "units angle=oops\n"])
+def test_edge_directions_parse_alike(entry, header, monkeypatch):
+    text = _BASE.replace("fieldbook 1\n", "fieldbook 1\n" + header)
+    assert_same(text + "directions A\n  " + entry + "\n  C 1:00:00\nend\n", monkeypatch)
+
+
+# Lines near the fast path's edges: every one must give what the careful path gives.
+_NAMES = st.sampled_from(
+    ["A", "B", "P1", "end", "END", "level", "a=b", "x#y", '"q"', "Ünï", "B\u200b", "N" * 65,
+     "N" * 64, "-1", "C.2", "dir/1"]
+)
+_NUMBERS = st.sampled_from(
+    ["1.5", "+0.7421", "-2", "0", "0.0001", "1e3", "1e9", "nan", "inf", "1,5", "12m", ".5",
+     "5.", "1e400", "90:00:00", "359:59:59.9", "360:00:00", "12:60:00", "12:00:60", "-1:00:00",
+     "100gon", "45deg", "400.0", "", "x"]
+)
+_LENGTHS = st.sampled_from(
+    ["", " len=0.5km", " len=420m", " len=0km", " len=0.0005m", " len=1e9km", " len=5",
+     " len=3ft", " LEN=1km", " len=", " setups=3", " sd=2mm", " ignore", " note=\"x\"",
+     " len=1km len=2km", " len=1km#c", "  # comment", "\t", " hi=1m"]
+)
+_SPACE = st.sampled_from([" ", "  ", "\t", " \t"])
+_LEAD = st.sampled_from(["", " ", "  ", "\t"])
+
+
+@st.composite
+def _observation_line(draw) -> str:
+    kind = draw(st.sampled_from(["level", "distance", "Level", "angle", "azimuth"]))
+    names = draw(st.lists(_NAMES, min_size=2, max_size=3))
+    sep = draw(_SPACE)
+    return draw(_LEAD) + sep.join([kind, *names, draw(_NUMBERS)]) + draw(_LENGTHS)
+
+
+@st.composite
+def _direction_line(draw) -> str:
+    sep = draw(_SPACE)
+    parts = [draw(_NAMES), draw(_NUMBERS)]
+    return draw(_LEAD) + sep.join(parts) + draw(st.sampled_from(["", " sd=1sec", " ignore", "#c", " x"]))
+
+
+_HEADERS = st.sampled_from(
+    ["units length=m angle=dms", "units length=ft angle=gon", "units length=usft angle=deg",
+     "units angle=bogus", "units length=m"]
+)
+_DEFAULTS = st.sampled_from(
+    ["defaults level=1mm/sqrtkm distance=2mm+2ppm direction=1sec",
+     "defaults level=0.5mm/setup", "defaults level=1mm distance=3mm centering=0.5mm",
+     "defaults level=1mm/sqrtkm+0.2mm/setup", "defaults distance=2cm direction=-1sec",
+     "defaults level=2", ""]
+)
+
+
+@st.composite
+def _book(draw) -> str:
+    lines = ["fieldbook 1", draw(_HEADERS), draw(_DEFAULTS)]
+    if draw(st.booleans()):
+        lines.append("scale factor=" + draw(st.sampled_from(["0.9996", "1.02", "1.5"])))
+    lines.append("point A height=10 east=0 north=0 fix")
+    for _ in range(draw(st.integers(1, 6))):
+        if draw(st.booleans()):
+            lines.append(draw(_observation_line()))
+        else:
+            at = draw(_NAMES)
+            options = draw(st.sampled_from(["", " sd=1sec", " sd=bad", " ignore note=\"n\""]))
+            lines.append(f"directions {at}{options}")
+            lines += draw(st.lists(_direction_line(), max_size=4))
+            if draw(st.integers(0, 5)):
+                lines.append("end")
+    if draw(st.booleans()):
+        # an observation before the body starts, and a header after it
+        lines.insert(1, draw(_observation_line()))
+    return "\n".join(lines) + "\n"
+
+
+@settings(max_examples=400, deadline=None, derandomize=True, database=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
+@given(_book())
+def test_fast_and_careful_paths_agree_on_edge_lines(monkeypatch, text):
+    assert_same(text, monkeypatch)
+
+
+# --------------------------------------------------------------------------- JSON
+
+_SCALAR = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.integers(-(10**20), 10**20),
+    st.floats(allow_nan=False, allow_infinity=False),
+    st.text(max_size=8),
+)
+_KEYS = st.lists(st.text(max_size=6), min_size=2, max_size=6, unique=True)
+
+
+@st.composite
+def _records(draw):
+    keys = draw(_KEYS)
+    # per column: one kind for every record, or anything at all
+    kinds = {
+        key: draw(st.sampled_from(["float", "float-or-none", "str", "int", "any", "record-or-none", "list"]))
+        for key in keys
+    }
+    makers = {
+        "float": st.floats(allow_nan=False, allow_infinity=False),
+        "float-or-none": st.one_of(st.none(), st.floats(allow_nan=False, allow_infinity=False)),
+        "str": st.text(max_size=8),
+        "int": st.integers(-(10**20), 10**20),
+        "any": _SCALAR,
+        # as the marks of a misclosure: a list of scalars (or None, or a nested list)
+        "list": st.one_of(st.none(), st.lists(_SCALAR, max_size=3),
+                          st.lists(st.lists(_SCALAR, max_size=2), max_size=2)),
+        # as the ellipse of a point: a small record, or None
+        "record-or-none": st.one_of(
+            st.none(),
+            st.fixed_dictionaries({"semi_major": st.floats(allow_nan=False, allow_infinity=False),
+                                   "azimuth": _SCALAR}),
+            st.dictionaries(st.text(max_size=3), _SCALAR, max_size=2),
+        ),
+    }
+    count = draw(st.integers(1, 6))
+    records = [{key: draw(makers[kinds[key]]) for key in keys} for _ in range(count)]
+    if draw(st.integers(0, 4)) == 0 and count > 1:
+        # a record whose keys come in another order, or differ
+        last = records[-1]
+        records[-1] = dict(reversed(list(last.items()))) if draw(st.booleans()) else {**last, "extra%s": 1}
+    if draw(st.integers(0, 4)) == 0:
+        records[0][keys[0]] = [1.5, "x", None]  # a container: the general path
+    return records
+
+
+@settings(max_examples=300, deadline=None, derandomize=True, database=None)
+@given(_records(), st.integers(0, 2))
+def test_records_are_spelled_as_json_dumps_spells_them(records, depth):
+    document: object = records
+    for _ in range(depth):
+        document = {"level": document, "n": 1}
+    assert dumps_indented(document) == json.dumps(document, indent=2)
+
+
+@pytest.mark.parametrize("bad", [math.nan, math.inf, -math.inf])
+def test_non_finite_values_in_records_are_refused_as_json_dumps_refuses_them(bad):
+    records = [{"a": 1.0, "b": "x"}, {"a": bad, "b": "y"}]
+    with pytest.raises(ValueError) as expected:
+        json.dumps(records, indent=2, allow_nan=False)
+    with pytest.raises(ValueError) as ours:
+        dumps_indented(records)
+    # the C encoder's sentence (json.dumps with indent adds the value to it)
+    assert str(ours.value) == "Out of range float values are not JSON compliant"
+    assert str(expected.value).startswith(str(ours.value))
+
+
+def test_a_benchmark_result_is_written_as_json_dumps_writes_it():
+    from server.pipeline import adjust_fieldbook
+
+    result = adjust_fieldbook(networks.leveling(1_000)).to_json_dict()
+    assert dumps_indented(result) == json.dumps(result, indent=2)
