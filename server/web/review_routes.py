@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import hmac
 from collections import OrderedDict
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import date
 from typing import Any
@@ -178,32 +179,32 @@ def _cached(request: Request, key: tuple[Any, ...], compute: Any) -> Any:
     return value
 
 
-def _robust(request: Request, state: ReviewState) -> RobustResult | str:
+def _proposal(request: Request, state: ReviewState, kind: str,
+              propose: Callable[..., Any], failure: str) -> Any:
+    """A proposal computed from the reviewed run's field book, cached per run."""
     assert state.base is not None and state.result is not None
     result = state.result
 
-    def compute() -> RobustResult | str:
+    def compute() -> Any:
         try:
             fieldbook = parse_fieldbook(state.text, source=state.project.filename)
-            return robust_adjustment(fieldbook, first=result)
+            return propose(fieldbook, first=result)
         except SurveyError as exc:
-            return f"The robust adjustment could not be computed: {exc}"
+            return f"{failure}: {exc}"
 
-    return _cached(request, ("robust", state.base.id), compute)  # type: ignore[no-any-return]
+    return _cached(request, (kind, state.base.id), compute)
+
+
+def _robust(request: Request, state: ReviewState) -> RobustResult | str:
+    """The robust second opinion, or why it could not be computed."""
+    return _proposal(request, state, "robust", robust_adjustment,  # type: ignore[no-any-return]
+                     "The robust adjustment could not be computed")
 
 
 def _snooping(request: Request, state: ReviewState) -> SnoopingPlan | str:
-    assert state.base is not None and state.result is not None
-    result = state.result
-
-    def compute() -> SnoopingPlan | str:
-        try:
-            fieldbook = parse_fieldbook(state.text, source=state.project.filename)
-            return propose_snooping(fieldbook, first=result)
-        except SurveyError as exc:
-            return f"No sequence could be proposed: {exc}"
-
-    return _cached(request, ("snooping", state.base.id), compute)  # type: ignore[no-any-return]
+    """The proposed snooping sequence, or why none could be proposed."""
+    return _proposal(request, state, "snooping", propose_snooping,  # type: ignore[no-any-return]
+                     "No sequence could be proposed")
 
 
 def _review_context(
