@@ -13,6 +13,7 @@ Everything produced is SI (metres, radians).  Problems are collected as
 
 from __future__ import annotations
 
+import difflib
 import hashlib
 import math
 import re
@@ -51,6 +52,7 @@ from .fieldbook_lexer import (
     tokenize,
 )
 from .fieldbook_model import DirectionRound, Fieldbook, Observation, PointStatement, TestLevels
+from .point_names import near_miss_warnings
 from .units import (
     FILE_ANGLE_UNITS,
     FILE_LENGTH_UNITS,
@@ -124,6 +126,8 @@ def parse_fieldbook(text: str | bytes, *, source: str = "") -> Fieldbook:
     parser.run(lines, bad_lines)
     if parser.errors.count:
         raise FieldbookError(parser.errors.result(), source)
+    for issue in near_miss_warnings(parser.points, parser.observations):
+        parser.warnings.add(issue.line, issue.token, issue.message)
     return parser.fieldbook(source, digest)
 
 
@@ -191,6 +195,8 @@ class _Parser:
                     tokens = tokenize(text)
                 except LexError as exc:
                     self.error(number, exc.token, f"'{show(exc.token)}': {exc.message}")
+                    if _DEFAULTS_LINE.match(text):
+                        self.defaults_unread(number, _KEY_WORDS.findall(text))
                 else:
                     if not tokens:
                         continue
@@ -362,6 +368,8 @@ class _Parser:
         elif word == "directions":
             # Still swallow the round's lines, so they are not read as unknown statements.
             self.round = _Round(line, None, None, flawed=True)
+        if word == "defaults" and (st is None or st.flawed):
+            self.defaults_unread(line, [t.key or t.value for t in tokens[1:]])
 
     def placement_allows(self, line: int, word: str, raw: str, grammar: Grammar) -> bool:
         """Header statements once and before the body; ``fieldbook`` first of all."""
@@ -498,6 +506,22 @@ class _Parser:
             else:
                 # A wrong default stays as None so its observations do not repeat the error.
                 self.defaults[key] = _Default(sigma, token.value, st.line)
+
+    def defaults_unread(self, line: int, words: list[str]) -> None:
+        """Kinds a wrong ``defaults`` line meant to set, marked as reported (see ``set_defaults``).
+
+        The line's own error is the root cause; the observations after it would otherwise
+        each say that they have no standard deviation.  A misspelt kind counts as the kind
+        it is closest to.
+        """
+        for word in words:
+            word = word.lower()
+            kind = word if word in _SD_KINDS else next(
+                iter(difflib.get_close_matches(word, _SD_KINDS, n=1, cutoff=0.75)), None
+            )
+            default = self.defaults.get(kind) if kind else None
+            if kind and (default is None or default.line != line):
+                self.defaults[kind] = _Default(None, word, line)
 
     def set_scale(self, st: Statement) -> None:
         token = st.options.get("factor")
@@ -848,6 +872,12 @@ _FAST_OBSERVATION = re.compile(
     re.DOTALL,
 )
 _FAST_DIRECTION = re.compile(rf"[ \t]*{_NAME}[ \t]+{_VALUE}{_TAIL}", re.DOTALL)
+
+#: Kinds that take a default standard deviation (``centering`` is not one).
+_SD_KINDS = tuple(kind for kind in SD_RULES if kind != "centering")
+# A line that a 'defaults' statement starts, and the words of it that may name a kind.
+_DEFAULTS_LINE = re.compile(r"[ \t]*defaults(?:[ \t]|\Z)", re.IGNORECASE)
+_KEY_WORDS = re.compile(r"([A-Za-z]+)=")
 
 _KEYS = {"en": "east= and north=", "h": "height="}
 _NAMES = {"en": "horizontal position", "h": "height"}

@@ -21,6 +21,7 @@ from .units import (
     RAD_PER_ARCSEC,
     Quantity,
     UnitError,
+    angle_in_sec,
     parse_angle,
     parse_length,
     parse_number,
@@ -172,17 +173,43 @@ def _tokenize_quoted(text: str, position: int) -> list[Token]:
         else:
             plain = _PLAIN.match(text, position)
             word = plain.group() if plain else ""
-            if position + len(word) < end and text[position + len(word)] == '"':
+            after = position + len(word) + 1  # just past a quote that follows the word
+            if after <= end and text[after - 1] == '"' and _SECONDS_MARK.match(word) and (
+                after == end or text[after] in " \t#"
+            ):
+                # 'angle=5"': seconds marked as on a field sheet.  Read it as a value so that
+                # its reader can say to write 5sec, and the rest of the line still counts.
+                tokens.extend(_split_plain(word + '"'))
+                position = after
+            elif position + len(word) < end and text[position + len(word)] == '"':
+                if (dms := _marked_dms(word + '"')) is not None:
+                    raise LexError(word + '"', f"write angles as D:M:S, e.g. {dms}")
                 if word and not (word.endswith("=") and word.count("=") == 1):
                     raise LexError(
                         _word_at(text, position),
                         'a double quote can only start a text value, as in note="..."',
                     )
                 raise LexError(text[position:], 'this quote is never closed; end the text with "')
-            tokens.extend(_split_plain(word))
-            position += len(word)
+            else:
+                tokens.extend(_split_plain(word))
+                position += len(word)
         position = _SPACE.match(text, position).end()  # type: ignore[union-attr]
     return tokens
+
+
+# An option value ending in a digit, just before a '"' (seconds of arc on a field sheet).
+_SECONDS_MARK = re.compile(r"[^ \t#\"=]+=[0-9.eE+-]*[0-9.]\Z")
+_MARKED_DMS = re.compile(r"([+-]?[0-9]{1,3})°([0-9]{1,2})['′]([0-9]{1,2}(?:\.[0-9]*)?)[\"″]\Z")
+
+
+def _marked_dms(word: str) -> str | None:
+    """``12:34:56`` for ``12°34'56"``; None for anything else."""
+    match = _MARKED_DMS.match(word)
+    if match is None:
+        return None
+    degrees, minutes, seconds = match.groups()
+    whole, point, fraction = seconds.partition(".")
+    return f"{degrees}:{minutes.zfill(2)}:{whole.zfill(2)}{point}{fraction}"
 
 
 def _word_at(text: str, start: int) -> str:
@@ -587,8 +614,16 @@ class QuantityRule:
 
 def read_quantity(text: str, rule: QuantityRule) -> Quantity:
     """A quantity with units, checked against what ``rule`` allows."""
-    value = parse_quantity(text)
     shown = show(text)
+    try:
+        value = parse_quantity(text)
+    except UnitError:
+        if rule.angular and (written := angle_in_sec(text)) is not None:
+            raise UnitError(
+                f"'{shown}': write {written} for {rule.subject} (sec for seconds of arc, "
+                "or mgon)"
+            ) from None
+        raise
     if value.angular != rule.angular:
         written = "an angle" if value.angular else "a length"
         noun = "an angle" if rule.angular else "a length"

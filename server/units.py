@@ -93,6 +93,9 @@ def parse_dms(text: str) -> float:
     """Read ``D:M:S`` (whole degrees, minutes < 60, seconds < 60) into radians."""
     match = _DMS_RE.match(text)
     if not match:
+        if (packed := packed_dms(text)) is not None:
+            meaning = f"if it means {_spoken(packed)}, " if "." in text else ""
+            raise UnitError(f"'{text}' is not in D:M:S; {meaning}write {packed}")
         if _NUMBER_RE.match(text):
             raise UnitError(
                 f"'{text}' is not in D:M:S; write it as degrees:minutes:seconds "
@@ -106,6 +109,30 @@ def parse_dms(text: str) -> float:
         raise UnitError(f"'{text}': seconds must be below 60")
     value = (int(degrees) + int(minutes) / 60.0 + float(seconds) / 3600.0) * RAD_PER_DEG
     return -value if sign else value
+
+
+# A calculator's D.MMSS (291.1650 = 291°16'50"), or whole degrees: at least two decimals,
+# so that a decimal-degree value such as 12.5 is not read as minutes.
+_PACKED_DMS_RE = re.compile(r"^(-)?([0-9]{1,3})(?:\.([0-9]{2,}))?$")
+
+
+def packed_dms(text: str) -> str | None:
+    """``291:16:50`` for ``291.1650`` (D.MMSS) and ``90:00:00`` for ``90``; None if not one."""
+    match = _PACKED_DMS_RE.match(text)
+    if not match:
+        return None
+    sign, degrees, decimals = match.groups()
+    decimals = decimals or "0000"
+    minutes, seconds, fraction = decimals[:2], decimals[2:4].ljust(2, "0"), decimals[4:]
+    if int(degrees) > 360 or int(minutes) >= 60 or int(seconds) >= 60:
+        return None
+    return f"{sign or ''}{int(degrees)}:{minutes}:{seconds}{'.' + fraction if fraction else ''}"
+
+
+def _spoken(dms: str) -> str:
+    """``291:16:50`` as ``291° 16′ 50″`` for a message."""
+    degrees, minutes, seconds = dms.split(":")
+    return f"{degrees}° {minutes}′ {seconds}″"
 
 
 def wrap_2pi(angle_rad: float) -> float:
@@ -187,6 +214,28 @@ class Quantity:
 
 
 _TERM_RE = re.compile(rf"({_NUMBER})([a-zA-Z/]+)")
+#: Ways of marking an angle that are not units of a standard deviation, in arc-seconds.
+_ANGLE_MARKS = {
+    '"': 1.0, "''": 1.0, "″": 1.0, "s": 1.0, "secs": 1.0, "arcsec": 1.0,
+    "'": 60.0, "′": 60.0, "min": 60.0, "°": 3600.0, "deg": 3600.0,
+}
+_MARKED_RE = re.compile(rf"^({_NUMBER})(\"|''|″|'|′|°|[a-zA-Z]+)$")
+
+
+def angle_in_sec(text: str) -> str | None:
+    """``5sec`` for ``5"``, ``5''``, ``5″`` or ``5s``, ``300sec`` for ``5'``; None otherwise.
+
+    Standard deviations are written ``5sec``; the marks of a field sheet are not units.
+    ``cc`` (centesimal seconds, 0.1 mgon each) becomes mgon.
+    """
+    match = _MARKED_RE.match(text)
+    if match is None:
+        return None
+    number, mark = match.groups()
+    if mark.lower() == "cc":
+        return f"{float(number) / 10.0:g}mgon"
+    factor = _ANGLE_MARKS.get(mark.lower())
+    return None if factor is None else f"{float(number) * factor:g}sec"
 
 
 def parse_quantity(text: str) -> Quantity:
