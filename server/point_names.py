@@ -34,6 +34,7 @@ from .fieldbook_model import Observation, PointStatement
 _SEPARATORS = str.maketrans("", "", "-_.:/")
 #: Look-alike characters a hand or an eye confuses with a digit (and back).
 _LOOK_ALIKE = {"o": "0", "0": "o", "i": "1", "l": "1", "1": "il"}
+_SAME_LOOK = str.maketrans("oil", "011")
 #: Names listed in one hint at most.
 _MAX_CHOICES = 3
 
@@ -54,10 +55,13 @@ def near_miss_warnings(
     if not once:
         return []
     index = _index(points)
+    # Every slip keeps the set of characters (look-alikes counted as one): a cheap
+    # necessary test that spares the variants of nearly every name of a large file.
+    signatures = {_signature(key) for key in index}
     matches: dict[str, list[PointStatement]] = {}
     for name in once:
-        found = _lookup(name, index)
-        if found:
+        key = _key(name)
+        if _signature(key) in signatures and (found := _lookup(name, key, index)):
             matches[name] = found
     if not matches:
         return []
@@ -91,6 +95,10 @@ def _key(name: str) -> str:
     return name.casefold().translate(_SEPARATORS)
 
 
+def _signature(key: str) -> frozenset[str]:
+    return frozenset(key.translate(_SAME_LOOK))
+
+
 def _index(points: Sequence[PointStatement]) -> dict[str, list[PointStatement]]:
     """Declared points by their key, and by their key with one doubled letter made single."""
     index: dict[str, list[PointStatement]] = {}
@@ -120,9 +128,9 @@ def _variants(key: str) -> Iterator[str]:
             yield key[:i] + other + key[i + 1:]
 
 
-def _lookup(name: str, index: dict[str, list[PointStatement]]) -> list[PointStatement]:
+def _lookup(name: str, key: str, index: dict[str, list[PointStatement]]) -> list[PointStatement]:
     found: dict[str, PointStatement] = {}
-    for variant in _variants(_key(name)):
+    for variant in _variants(key):
         for point in index.get(variant, ()):
             if point.name != name:
                 found.setdefault(point.name, point)

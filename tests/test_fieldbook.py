@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import re
 
 import pytest
 from hypothesis import given, settings
@@ -1057,3 +1058,159 @@ def test_a_large_file_keeps_every_observation() -> None:
     first_line = len(ALL_DEFAULTS.splitlines()) + 1
     assert book.observations[0].line == first_line
     assert book.observations[-1].line == first_line + 49_999
+
+
+# --------------------------------------------------------------------------- messages that lead to the fix
+
+
+@pytest.mark.parametrize(
+    ("sd", "written"),
+    [('5"', "5sec"), ("5''", "5sec"), ("5″", "5sec"), ("1.5s", "1.5sec"), ("5'", "300sec"),
+     ("0.001deg", "3.6sec"), ("3cc", "0.3mgon")],
+)
+def test_an_angle_marked_as_on_a_field_sheet_is_written_in_sec_for_the_user(
+    sd: str, written: str
+) -> None:
+    # 1' = 60", 1° = 3600", 1 cc (centesimal second) = 0.0001 gon = 0.1 mgon: definitions.
+    issue = only_issue(f"defaults angle={sd} distance=2mm\nangle A B C 1:00:00\ndistance A B 10\n")
+    assert (issue.line, issue.token) == (1, f"angle={sd}")
+    assert f"write {written}" in issue.message
+
+
+def test_a_seconds_mark_on_a_distance_is_not_turned_into_sec() -> None:
+    issue = only_issue('defaults distance=5"\ndistance A B 10\n')
+    assert issue.line == 1
+    assert "sec" not in issue.message.replace("1.5sec", "")
+
+
+def test_one_wrong_defaults_value_is_reported_once_and_the_rest_of_its_line_still_counts() -> None:
+    text = ('defaults angle=5" distance=2mm\n'
+            "angle A B C 60:00:00\nangle B C A 60:00:00\nangle C A B 60:00:00\n"
+            "distance A B 94.34\n")
+    issue = only_issue(text)
+    assert (issue.line, issue.token) == (1, 'angle=5"')
+    assert "5sec" in issue.message
+    # the fix suggested is accepted, and distance=2mm on the same line was read all along
+    book = parse(text.replace('5"', "5sec"))
+    assert [o.sigma.constant for o in book.observations[:3]] == [pytest.approx(5 * ARCSEC)] * 3
+    assert book.observations[3].sigma.constant == pytest.approx(0.002)
+
+
+@pytest.mark.parametrize(
+    "defaults_line",
+    [
+        "defaults angel=5sec",  # a misspelt kind
+        "defaults angle 5sec",  # no '='
+        'defaults angle=5sec note="no end',  # a line that cannot be split into tokens
+        "defaults angle=5",  # no unit
+    ],
+)
+def test_a_broken_defaults_line_is_the_only_error_for_the_kinds_it_meant_to_set(
+    defaults_line: str,
+) -> None:
+    issue = only_issue(f"{defaults_line}\n" + "angle A B C 1:00:00\n" * 4)
+    assert issue.line == 1
+
+
+def test_a_kind_the_broken_defaults_line_did_not_name_is_still_reported() -> None:
+    issues = issues_of("defaults angel=5sec\nangle A B C 1:00:00\ndistance A B 10\n")
+    assert [i.line for i in issues] == [1, 3]
+    assert "no standard deviation for this distance" in issues[1].message
+
+
+@pytest.mark.parametrize(
+    ("text", "dms", "degrees"),
+    [
+        ("291.1650", "291:16:50", 291 + 16 / 60 + 50 / 3600),
+        ("87.143155", "87:14:31.55", 87 + 14 / 60 + 31.55 / 3600),
+        ("-5.0730", "-5:07:30", -(5 + 7 / 60 + 30 / 3600)),
+        ("90", "90:00:00", 90.0),
+    ],
+)
+def test_a_decimal_number_in_a_dms_file_is_offered_as_d_m_s(
+    text: str, dms: str, degrees: float
+) -> None:
+    issue = only_issue(ALL_DEFAULTS + f"azimuth A B {text}\n")
+    assert (issue.line, issue.token) == (2, text)
+    assert f"write {dms}" in issue.message
+    assert "deg" not in issue.message
+    # the suggestion is the angle that D.MMSS means (degrees + minutes/60 + seconds/3600)
+    assert single(f"azimuth A B {dms}\n").value == pytest.approx(
+        math.radians(degrees) % (2 * math.pi), abs=1e-12)
+
+
+@pytest.mark.parametrize("text", ["12.5", "291.7650", "291.1575", "400.1010", "1e2"])
+def test_a_number_that_cannot_be_d_mm_ss_gets_no_d_m_s_guess(text: str) -> None:
+    issue = only_issue(ALL_DEFAULTS + f"azimuth A B {text}\n")
+    assert "is not in D:M:S" in issue.message
+    assert not re.search(r"\d+:\d\d:\d\d", issue.message)
+
+
+def test_an_angle_with_degree_minute_and_second_marks_is_offered_as_d_m_s() -> None:
+    issue = only_issue(ALL_DEFAULTS + "azimuth A B 12°34'5.5\"\n")
+    assert issue.line == 2
+    assert "12:34:05.5" in issue.message
+
+
+LEVEL_RUN = """\
+defaults level=1mm/sqrtkm
+point BM-21 height=100.000 fix
+point BM-30 height=101.000 fix
+level BM-21 TP1 +0.400 len=0.3km
+level TP1 TP2 +0.300 len=0.3km
+level TP2 BM-30 +0.301 len=0.3km
+"""
+
+
+def _near_misses(book: Fieldbook) -> list[Issue]:
+    return [w for w in book.warnings if "did you mean" in w.message]
+
+
+@pytest.mark.parametrize(
+    ("name", "meant"),
+    [("BM-12", "BM-21"), ("bm-21", "BM-21"), ("BM21", "BM-21"), ("BM_21", "BM-21"),
+     ("BMM-21", "BM-21"), ("BM-3O", "BM-30"), ("BM-2l", "BM-21")],
+)
+def test_a_point_named_once_like_a_declared_one_gets_a_did_you_mean(name: str, meant: str) -> None:
+    book = parse(LEVEL_RUN + f"level TP2 {name} +0.500 len=0.2km\n")
+    (warning,) = _near_misses(book)
+    assert (warning.line, warning.token) == (7, name)
+    assert f"did you mean '{meant}'" in warning.message
+    assert len(book.observations) == 4  # a warning: the observation is kept
+
+
+def test_every_close_declared_name_is_offered() -> None:
+    book = parse(LEVEL_RUN.replace("BM-30", "BM12") + "level TP2 BM-12 +0.500 len=0.2km\n")
+    (warning,) = _near_misses(book)
+    assert "'BM-21' (declared on line 2) or 'BM12' (declared on line 3)" in warning.message
+
+
+@pytest.mark.parametrize(
+    "extra",
+    [
+        # a turning point read forward and back is named twice, however close its name is
+        "level TP2 BM-12 +0.500 len=0.2km\nlevel BM-12 BM-30 -0.199 len=0.2km\n",
+        # another number of a series, not a slip
+        "level TP2 BM-22 +0.500 len=0.2km\n",
+        "level TP2 BM-210 +0.500 len=0.2km\n",
+        # far from any declared name
+        "level TP2 NEW-7 +0.500 len=0.2km\n",
+    ],
+)
+def test_no_did_you_mean_for_turning_points_series_numbers_and_unrelated_names(
+    extra: str,
+) -> None:
+    assert _near_misses(parse(LEVEL_RUN + extra)) == []
+
+
+def test_the_turning_points_of_a_run_get_no_warning_even_with_names_like_declared_ones() -> None:
+    text = LEVEL_RUN.replace("TP1", "BM-12").replace("TP2", "BM-03")
+    assert parse(text).warnings == ()
+
+
+def test_the_did_you_mean_warning_reaches_the_result() -> None:
+    from server.pipeline import adjust_fieldbook
+
+    result = adjust_fieldbook(LEVEL_RUN + "level TP2 BM-12 +0.500 len=0.2km\n", source="run.fb")
+    assert any(w.startswith("run.fb:7: point BM-12") and "did you mean 'BM-21'" in w
+               for w in result.warnings)
