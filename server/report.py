@@ -695,6 +695,20 @@ def style_hash(css: str | None = None) -> str:
     return f"'sha256-{base64.b64encode(digest).decode('ascii')}'"
 
 
+def source_name(source: str) -> str:
+    """The field book's file name without its folders: a report leaves the office."""
+    return source.replace("\\", "/").rsplit("/", 1)[-1]
+
+
+def report_warnings(result: AdjustmentResult) -> list[str]:
+    """The warnings as a report prints them: ``FILE:LINE:`` without the folders of FILE."""
+    name = source_name(result.source)
+    if name == result.source:
+        return list(result.warnings)
+    prefix = f"{result.source}:"
+    return [f"{name}:{w[len(prefix):]}" if w.startswith(prefix) else w for w in result.warnings]
+
+
 def generated_text(generated: datetime | None) -> str:
     """The moment a report was made, as "YYYY-MM-DD HH:MM UTC" (now when None)."""
     moment = generated if generated is not None else datetime.now(UTC)
@@ -714,6 +728,8 @@ def report_html(result: AdjustmentResult, *, generated: datetime | None = None,
     # The CSS is our own file, never user input; Markup keeps autoescape off its '>' selectors.
     data["css"] = Markup(report_css())
     data["generated"] = generated_text(generated)
+    data["source_name"] = source_name(result.source)
+    data["report_warnings"] = report_warnings(result)
     return _env().get_template("report.html").render(data)
 
 

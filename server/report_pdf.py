@@ -164,11 +164,11 @@ def _heading(text: str, styles: Styles) -> list[Flowable]:
 
 def _title_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles,
                  width: float, generated: str) -> list[Flowable]:
-    title = result.title or result.source or "Untitled field book"
+    title = result.title or report.source_name(result.source) or "Untitled field book"
     facts = [
         ("Generated", generated),
         ("Software", f"Stationfit {__version__}"),
-        ("Field book", result.source or "—"),
+        ("Field book", report.source_name(result.source) or "—"),
         ("Network", report.DIMENSION_LABELS.get(result.summary.dimension, "")),
     ]
     facts += [(label, value) for label, value, _ in data["units_rows"]]
@@ -418,7 +418,7 @@ def _warnings_block(result: AdjustmentResult, styles: Styles) -> list[Flowable]:
     if not result.warnings:
         return []
     out = _heading("Warnings", styles)
-    for i, warning in enumerate(result.warnings, start=1):
+    for i, warning in enumerate(report.report_warnings(result), start=1):
         out.append(styles.markup(f"<b>{i}.</b> {styles.text(warning)}", styles.small))
         out.append(Spacer(1, 2))
     return out
@@ -494,7 +494,7 @@ def report_pdf(result: AdjustmentResult, *, generated: datetime | None = None,
     styles = make_styles(fonts)
     data = report.context(result, presets)
     when = report.generated_text(generated)
-    title = result.title or result.source or "Untitled field book"
+    title = result.title or report.source_name(result.source) or "Untitled field book"
     size = PAGE_SIZES[page_size]
     width = size[0] - 2 * MARGIN_X
     buffer = io.BytesIO()

@@ -130,6 +130,9 @@ class Run:
     detail: dict[str, Any] | None = None
     summary: dict[str, Any] | None = None
     settings: dict[str, Any] | None = None
+    #: The run's place among its project's runs (1, 2, …): what "Run #" shows.  ``id`` is
+    #: unique across projects and stays the run's address in URLs and the API.
+    number: int = 0
 
     @property
     def finished(self) -> bool:
@@ -311,7 +314,8 @@ class Store:
         with self._read() as db:
             rows = db.execute(
                 "SELECT p.id, p.name, p.filename, p.created, p.sha256, "
-                "r.id, r.created, r.status, r.summary, r.error "
+                "r.id, r.created, r.status, r.summary, r.error, "
+                "(SELECT COUNT(*) FROM runs n WHERE n.project_id = p.id AND n.id <= r.id) "
                 "FROM projects p LEFT JOIN runs r ON r.id = "
                 "(SELECT MAX(id) FROM runs WHERE project_id = p.id AND status != 'running') "
                 "ORDER BY p.created DESC, p.rowid DESC"
@@ -321,7 +325,8 @@ class Store:
             latest = None
             if row[5] is not None:
                 latest = Run(id=row[5], project_id=row[0], created=row[6], status=row[7],
-                             result_json=None, error=_loads(row[9]), summary=_loads(row[8]))
+                             result_json=None, error=_loads(row[9]), summary=_loads(row[8]),
+                             number=row[10])
             listings.append(ProjectListing(id=row[0], name=row[1], filename=row[2],
                                            created=row[3], sha256=row[4], latest=latest))
         return listings
@@ -430,8 +435,8 @@ class Store:
             ).fetchall()
         return [Run(id=r[0], project_id=r[1], created=r[2], status=r[3],
                     result_json=_loads(r[4]), error=_loads(r[5]), summary=_loads(r[6]),
-                    settings=_loads(r[7]))
-                for r in rows]
+                    settings=_loads(r[7]), number=number)
+                for number, r in enumerate(rows, start=1)]
 
     # -- decisions waiting for a re-run ---------------------------------------------
 
@@ -469,14 +474,17 @@ class Store:
         return cursor.rowcount > 0
 
 
-_RUN_COLUMNS = "id, project_id, created, status, result, error, detail, summary, settings"
+_RUN_COLUMNS = (
+    "id, project_id, created, status, result, error, detail, summary, settings, "
+    "(SELECT COUNT(*) FROM runs n WHERE n.project_id = runs.project_id AND n.id <= runs.id)"
+)
 
 
 def _run(row: tuple[Any, ...]) -> Run:
     """A ``Run`` from a row selected with ``_RUN_COLUMNS``."""
     return Run(id=row[0], project_id=row[1], created=row[2], status=row[3],
                result_json=_loads(row[4]), error=_loads(row[5]), detail=_loads(row[6]),
-               summary=_loads(row[7]), settings=_loads(row[8]))
+               summary=_loads(row[7]), settings=_loads(row[8]), number=row[9])
 
 
 def _outcome(

@@ -66,3 +66,17 @@ def test_a_run_the_service_did_not_finish_is_called_interrupted(app):
     assert page.status_code == 200
     assert "was interrupted" in page.text
     assert "Adjusting" not in page.text
+
+
+def test_an_interrupted_run_is_named_by_its_number_in_the_project(app):
+    store = app.state.store
+    earlier = store.create_project("earlier", "a.fieldbook", BLUNDER.read_bytes())
+    for _ in range(3):
+        store.add_run(earlier, error="the adjustment stopped unexpectedly")
+    project = store.create_project("crashed", "b.fieldbook", BLUNDER.read_bytes())
+    run_id = store.start_run(project, NO_EDITS)
+    assert run_id == 4
+    with TestClient(app) as client:
+        page = client.get(f"/projects/{project}")
+    assert "Run #1 was interrupted" in page.text
+    assert "#4" not in page.text

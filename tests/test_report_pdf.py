@@ -312,3 +312,36 @@ def test_ellipses_are_drawn_along_their_azimuth(directions):
         # the local y axis (the semi-major axis) maps to (c, d): east = sin az, north = cos az
         assert (c, d) == pytest.approx((math.sin(azimuth), math.cos(azimuth)), abs=1e-9)
         assert group.contents[0].ry >= group.contents[0].rx
+
+
+def test_the_report_names_the_field_book_by_its_file_name_not_its_folders(tmp_path):
+    """A report leaves the office: the surveyor's folders are nobody else's business."""
+    from server.report import report_html
+
+    folder = tmp_path / "jobs" / "client-private"
+    folder.mkdir(parents=True)
+    path = folder / "spur.fieldbook"
+    # a point named once like a declared one gives a warning, which names the file and line
+    path.write_text("defaults level=1mm/sqrtkm\npoint BM-21 height=100 fix\n"
+                    "point BM-30 height=101 fix\nlevel BM-21 TP1 +0.5 len=0.3km\n"
+                    "level TP1 BM-30 +0.5 len=0.3km\nlevel TP1 BM-12 +0.2 len=0.1km\n")
+    result = adjust_fieldbook(path.read_bytes(), source=str(path))
+    assert any(w.startswith(f"{path}:6:") for w in result.warnings)  # the JSON keeps it whole
+    text = " ".join(_pages(report_pdf(result, generated=WHEN)))
+    html = report_html(result, generated=WHEN)
+    for document in (text, html):
+        assert "client-private" not in document and str(tmp_path) not in document
+        assert "spur.fieldbook:6: point BM-12" in document
+    assert "Field book spur.fieldbook" in text
+    assert "<dd>spur.fieldbook</dd>" in html
+
+
+@pytest.mark.parametrize(
+    ("source", "name"),
+    [("/home/ann/jobs/a.fieldbook", "a.fieldbook"), (r"C:\Users\ann\b.fieldbook", "b.fieldbook"),
+     ("c.fieldbook", "c.fieldbook"), ("", "")],
+)
+def test_source_name_drops_the_folders_of_either_kind_of_path(source, name):
+    from server.report import source_name
+
+    assert source_name(source) == name

@@ -451,3 +451,29 @@ def test_review_routes_of_unknown_projects_are_404(client, project_id):
         assert client.get(f"/projects/{project_id}{path}").status_code == 404, path
     for path in ("/edits", "/runs", "/delete", "/confirm-delete"):
         assert client.post(f"/projects/{project_id}{path}").status_code == 404, path
+
+
+def test_runs_are_numbered_within_their_project_not_by_the_store(client, project):
+    """Run ids count every run in the store; a surveyor reads run 1, 2, 3 of this project."""
+    _decide(client, project, FIRST)
+    _rerun(client, project)
+    other = client.post("/projects", files={"fieldbook": ("other.fieldbook", TEXT.encode())},
+                        follow_redirects=False).headers["location"].rsplit("/", 1)[1]
+    _decide(client, project, SECOND)
+    _rerun(client, project)
+    runs = _api(client, project)["runs"]
+    assert [r["number"] for r in runs] == [1, 2, 3]
+    assert [r["id"] for r in runs] == [1, 2, 4]  # the other project's upload took id 3
+    (only,) = _api(client, other)["runs"]
+    assert (only["id"], only["number"]) == (3, 1)
+
+    other_review = _text(client.get(f"/projects/{other}/review").text)
+    assert "Run under review #1," in other_review and "#3" not in other_review
+    assert "run #1" in other_review
+    compare = client.get(f"/projects/{project}/compare").text
+    assert "Run A · #2" in compare and "Run B · #3" in compare and "#4" not in compare
+    # the picker shows numbers and sends ids
+    assert re.search(r'<option value="4" selected>#3 · ', compare)
+    assert client.get(f"/projects/{project}/compare?a=1&b=4").status_code == 200
+    assert client.get(f"/api/projects/{project}/runs/4").json()["number"] == 3
+    assert "Run under review #3," in _text(client.get(f"/projects/{project}/review").text)

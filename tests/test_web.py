@@ -163,7 +163,7 @@ def test_field_book_errors_are_listed_with_line_numbers_and_the_upload_is_kept(c
     assert client.get(f"{url}/fieldbook").content == raw
     assert client.get(f"{url}/report.html").status_code == 404  # nothing to report
     listed = client.get("/projects").text
-    assert "Could not adjust" in listed
+    assert "Upload failed: field book errors" in listed
 
 
 def test_non_utf8_upload_gets_the_line_numbered_message(client):
@@ -455,3 +455,80 @@ def test_projects_persist_across_app_restarts(tmp_path):
     with TestClient(create_app(tmp_path)) as second:
         html = second.get(url).text
         assert "is-flagged" in _row_of_line(html, BLUNDER_LINE)
+
+
+# ---------------------------------------------------------------------------------------
+# a field book that cannot be adjusted: no result wording, marked in the list
+
+BAD_DEFAULTS = b"""fieldbook 1
+defaults angle=5" distance=2mm
+point A east=0 north=0 fix
+point B east=100 north=0 fix
+angle A C B 60:00:00
+distance A C 94.34
+"""
+
+
+def test_a_failed_upload_says_nothing_was_adjusted_and_shows_no_result_wording(client):
+    page = client.get(_project_url(_upload(client, BAD_DEFAULTS, "bad.fieldbook"))).text
+    text = re.sub(r"\s+", " ", re.sub(r"<[^>]+>", " ", page))
+    assert "nothing was adjusted" in text
+    assert "Adjusted" not in text  # no adjustment time: the run never adjusted anything
+    assert re.search(r"Checked \d{4}-\d\d-\d\d \d\d:\d\d UTC, not adjusted", text)
+    assert CAUTION not in text and "These results" not in text
+    # the root cause once, with the value to write
+    assert text.count("Line ") == 1 and "write 5sec" in text
+
+
+def test_failed_uploads_are_marked_in_the_projects_list(client):
+    _project_url(_upload(client, BLUNDER.read_bytes(), "good.fieldbook"))
+    bad = _project_url(_upload(client, BAD_DEFAULTS, "bad.fieldbook"))
+    html = client.get("/projects").text
+    rows = re.findall(r"<tr[^>]*>.*?</tr>", html.split("<tbody>")[1], re.DOTALL)
+    (failed,) = [r for r in rows if "bad.fieldbook" in r]
+    (good,) = [r for r in rows if "good.fieldbook" in r]
+    assert "data-failed" in failed and "Upload failed: field book errors" in failed
+    assert f'href="{bad}">Errors</a>' in failed and f"{bad}/review" not in failed
+    assert "data-failed" not in good and "Upload failed" not in good
+
+
+def test_an_upload_the_network_cannot_adjust_is_marked_as_failed_too(client):
+    text = b"defaults distance=2mm\npoint A east=0 north=0 fix\ndistance A B 10\n"
+    url = _project_url(_upload(client, text, "loose.fieldbook"))
+    assert "Adjusted" not in client.get(url).text
+    assert "Upload failed: the network cannot be adjusted" in client.get("/projects").text
+
+
+# ---------------------------------------------------------------------------------------
+# compression
+
+
+def test_a_large_page_is_sent_gzip_compressed_when_the_browser_accepts_it(client):
+    import gzip
+
+    url = _project_url(_upload(client, BLUNDER.read_bytes()))
+    plain = client.get(f"{url}/review", headers={"Accept-Encoding": "identity"})
+    packed = client.get(f"{url}/review", headers={"Accept-Encoding": "gzip, deflate"})
+    assert plain.status_code == packed.status_code == 200
+    assert "content-encoding" not in plain.headers
+    assert packed.headers["content-encoding"] == "gzip"
+    assert "Accept-Encoding" in packed.headers["vary"]
+    assert len(plain.content) > 50_000
+    # what went over the wire is gzip of the very page, at a fraction of its size
+    assert packed.num_bytes_downloaded < len(plain.content) / 5
+    assert packed.content == plain.content
+    # the security headers survive the compression
+    assert packed.headers["content-security-policy"] == plain.headers["content-security-policy"]
+    # the bytes on the wire are a gzip stream of the page
+    with client.stream("GET", f"{url}/review", headers={"Accept-Encoding": "gzip"}) as response:
+        raw = b"".join(response.iter_raw())
+    assert raw[:2] == b"\x1f\x8b" and gzip.decompress(raw) == plain.content
+
+
+def test_small_responses_and_pdfs_are_sent_as_they_are(client):
+    url = _project_url(_upload(client, BLUNDER.read_bytes()))
+    small = client.get("/static/favicon.svg", headers={"Accept-Encoding": "gzip"})
+    assert small.status_code == 200 and len(small.content) < 1024
+    assert "content-encoding" not in small.headers
+    pdf = client.get(f"{url}/report.pdf", headers={"Accept-Encoding": "gzip"})
+    assert pdf.content.startswith(b"%PDF-") and "content-encoding" not in pdf.headers

@@ -556,7 +556,8 @@ def api_run(request: Request, project_id: str, run_id: int) -> JSONResponse:
     run = store.run(project.id, run_id)
     if run is None:
         raise HTTPException(status_code=404, detail="This project has no run with this number.")
-    body: dict[str, Any] = {"id": run.id, "created": run.created, "status": run.status,
+    body: dict[str, Any] = {"id": run.id, "number": run.number, "created": run.created,
+                            "status": run.status,
                             "settings": run.settings or {"edits": []},
                             "result": run.result_json}
     if run.error is not None:

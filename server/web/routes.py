@@ -292,7 +292,7 @@ def _list_verdict(run: Run | None) -> tuple[str, str]:
     if run is None:
         return "none", "Not adjusted"
     if not run.finished or run.summary is None:
-        return "fail", "Could not adjust"
+        return "fail", _failure_words(run)
     summary = run.summary
     test = summary.get("global_test")
     if not summary.get("converged", True):
@@ -303,6 +303,14 @@ def _list_verdict(run: Run | None) -> tuple[str, str]:
     if test.get("passed"):
         return ("warn", f"Passes, {flagged} flagged") if flagged else ("pass", "Passes")
     return "fail", f"Fails, {flagged} flagged" if flagged else "Fails"
+
+
+def _failure_words(run: Run) -> str:
+    """What the list says of a run that stopped: an upload that failed, or a later re-run."""
+    kind = (run.error or {}).get("kind")
+    what = {"fieldbook": "field book errors", "network": "the network cannot be adjusted"}
+    head = "Upload failed" if run.number <= 1 else "Re-run failed"
+    return f"{head}: {what[kind]}" if kind in what else head
 
 
 def _project_json(project_id: str, name: str, filename: str, created: str, sha256: str,
@@ -367,7 +375,7 @@ def project_list(request: Request) -> HTMLResponse:
         items.append({"id": p.id, "name": display_name(p.name, p.filename), "filename": p.filename,
                       "created": p.created, "points": summary.get("points"),
                       "observations": summary.get("observations"), "state": state,
-                      "verdict": words})
+                      "verdict": words, "failed": p.latest is not None and not p.latest.finished})
     return _render(request, "projects.html", {"projects": items})
 
 
@@ -579,7 +587,7 @@ def api_project(project_id: str, request: Request) -> JSONResponse:
     body = _project_json(project.id, project.name, project.filename, project.created,
                          project.sha256, run)
     body.update(_run_payload(run))
-    body["runs"] = [{"id": r.id, "created": r.created, "status": r.status,
+    body["runs"] = [{"id": r.id, "number": r.number, "created": r.created, "status": r.status,
                      "edits": r.edits, "summary": r.summary} for r in store.runs(project_id)]
     return JSONResponse(body)
 
