@@ -96,8 +96,16 @@ def test_field_book_errors_in_the_browser(page, base_url):
     assert issues.count() == 1
     assert "Line 3" in issues.first.inner_text()
     assert "levle A B 1.0" in issues.first.inner_text()
-    assert page.locator("footer").get_by_text(CAUTION).is_visible()
+    # nothing was adjusted: no adjustment time and no caution about results
+    assert page.get_by_text(CAUTION).count() == 0
+    assert "Adjusted" not in page.locator("dl.meta").inner_text()
     assert browser_problems(page) == []
+    page.get_by_role("link", name="Projects").first.click()
+    row = page.locator("tr.row-failed")
+    assert row.count() == 1
+    assert "Upload failed: field book errors" in row.inner_text()
+    row.get_by_role("link", name="Errors").click()
+    assert page.locator("ol.issues li").count() == 1
 
 
 def test_results_page_screenshot(page, base_url):
