@@ -6,9 +6,10 @@ import re
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Annotated, Any
 
 from fastapi import APIRouter, HTTPException, Request
+from fastapi import Path as PathParameter
 from fastapi.responses import (
     HTMLResponse,
     JSONResponse,
@@ -179,6 +180,14 @@ def _check_room(store: Store, max_projects: int) -> None:
                     "administrator to archive the data folder and delete old projects, or to "
                     "raise STATIONFIT_MAX_PROJECTS."),
         )
+
+
+#: The largest row id SQLite stores (a signed 64-bit integer).
+SQLITE_MAX_ROWID = 2**63 - 1
+#: A run or decision number in a URL: a whole number SQLite can hold.  Anything else in
+#: its place names nothing, and the app's validation handler answers 404 (not a 500 from
+#: the database's integer overflow).
+RowId = Annotated[int, PathParameter(ge=1, le=SQLITE_MAX_ROWID)]
 
 
 def _project_or_404(store: Store, project_id: str) -> Project:
