@@ -114,6 +114,7 @@ def test_caution_hash_and_page_number_on_every_page(which, request):
     pdf = request.getfixturevalue(which)
     result = request.getfixturevalue(which.removesuffix("_pdf"))
     pages = _pages(pdf)
+    assert len(pages) >= 2 and all(pages), "every page has text to check"
     for number, text in enumerate(pages, start=1):
         assert CAUTION in text, f"page {number} lacks the caution"
         assert f"Page {number} of {len(pages)}" in text, number

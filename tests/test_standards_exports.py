@@ -75,12 +75,30 @@ def test_relative_precision_hand_computed_two_point_case():
 
 
 def test_preset_applies_to_the_relative_check():
+    """2 cm + 50 ppm of the corner-to-corner distance (docs/references.md, ALTA/NSPS)."""
     fb = with_presets(parse_fieldbook((DEMOS / "control_network.fieldbook").read_text()),
                       relative="alta-nsps-2026")
     result = adjust_parsed(fb)
+    assert len(result.relative) >= 10, "the demo's joined pairs are all checked"
     for r in result.relative:
         assert r.allowed == pytest.approx(0.02 + 50e-6 * r.distance, rel=1e-9)
         assert r.passed == (r.semi_major <= r.allowed)
+    assert all(r.passed for r in result.relative)  # a sound control network meets it
+
+
+def test_preset_fails_a_pair_whose_ellipse_is_over_the_allowance():
+    """A 400 m line fixed only by a 10" azimuth: the semi-major 2.4477 × 19.4 mm = 47.5 mm
+    is over 2 cm + 50 ppm × 400 m = 40.0 mm, so the pair fails."""
+    text = """
+    defaults distance=5mm azimuth=10sec
+    point A east=1000 north=1000 fix
+    distance A P 400.000
+    azimuth A P 90:00:00
+    """
+    (rel,) = adjust_parsed(with_presets(parse_fieldbook(text), relative="alta-nsps-2026")).relative
+    assert rel.allowed == pytest.approx(0.0400, abs=1e-9)
+    assert rel.semi_major == pytest.approx(0.0475, abs=5e-5)
+    assert rel.passed is False
 
 
 def test_unknown_preset_is_refused_with_choices():
