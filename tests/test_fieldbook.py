@@ -2,7 +2,8 @@
 
 Unit factors are checked against their definitions, not against the code:
 the international foot is 0.3048 m exactly and the US survey foot 1200/3937 m
-(NIST and NOAA/NGS, 85 FR 62698, 2020); 1 gon = π/200 rad (ISO 80000-3).
+(NIST and NOAA/NGS, 85 FR 62698, 2020); 1 gon = π/200 rad (ISO 80000-3); sources and
+their status in docs/references.md "Units".
 """
 
 from __future__ import annotations

@@ -195,7 +195,8 @@ def test_relative_precision_table_says_meets_or_fails(network, network_pdf):
 
 
 def test_preset_is_named_with_its_source_and_status(blunder):
-    """A preset recalled from memory says so in the deliverable (shared/references.md §3)."""
+    """A preset recalled from memory says so in the deliverable
+    (docs/references.md "FGCC 1984 leveling allowances")."""
     preset = PRESETS["fgcc-1984-first-order-class-I"]
     path = DEMOS / "leveling_blunder.fieldbook"
     fieldbook = with_presets(parse_fieldbook(path.read_bytes(), source=path.name),

@@ -511,7 +511,7 @@ async def demo_open(name: str, request: Request) -> Response:
 
 
 # --------------------------------------------------------------------------------------
-# JSON API (shared/spec/result.md)
+# JSON API (the result JSON of to_json_dict; keys keep their meaning, new keys may be added)
 
 
 _MISSING_FIELD = {"error": "send the field book in the multipart field 'fieldbook'"}
