@@ -123,7 +123,7 @@ def parse_fieldbook(text: str | bytes, *, source: str = "") -> Fieldbook:
     parser = _Parser(fast=_FAST_LINES)
     parser.run(lines, bad_lines)
     if parser.errors.count:
-        raise FieldbookError(parser.errors.result(), source)
+        raise FieldbookError(parser.errors.result(), source, count=parser.errors.count)
     return parser.fieldbook(source, digest)
 
 

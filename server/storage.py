@@ -197,8 +197,8 @@ def error_record(error: BaseException | str) -> dict[str, Any]:
     if isinstance(error, FieldbookError):
         return {
             "kind": "fieldbook",
-            "message": f"the field book has {len(error.issues)} "
-            f"error{'s' if len(error.issues) != 1 else ''}",
+            "message": error.headline,
+            "count": error.count,
             "issues": [
                 {"line": i.line, "token": i.token, "message": i.message} for i in error.issues
             ],

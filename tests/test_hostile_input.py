@@ -566,6 +566,20 @@ def test_only_ignored_observations_is_a_network_error_that_says_so():
         adjust_fieldbook("defaults level=1mm\npoint A height=10 fix\nlevel A B 1 ignore\n")
 
 
+def test_headline_gives_the_true_count_of_100_000_errors():
+    """Only the first 50 errors are listed, but the headline counts all of them."""
+    text = "defaults level=1mm\n" + "level A\n" * 100_000
+    with pytest.raises(FieldbookError) as caught:
+        parse_fieldbook(text)
+    error = caught.value
+    assert error.count == 100_000
+    assert error.headline == "the field book has 100,000 errors"
+    assert len(error.issues) == 51  # 50 listed and the line saying how many more there are
+    assert error.issues[-1].message.startswith("99950 more errors from this line on")
+    few = pytest.raises(FieldbookError, parse_fieldbook, "level A\n").value
+    assert (few.count, few.headline) == (1, "the field book has 1 error")
+
+
 def test_empty_file_is_a_field_book_error_on_line_one():
     with pytest.raises(FieldbookError) as info:
         adjust_fieldbook(b"")

@@ -431,6 +431,22 @@ def test_project_count_limit_refuses_new_projects_but_keeps_the_old(tmp_path):
         assert client.post("/api/adjust", files={"fieldbook": ("c", BLUNDER)}).status_code == 200
 
 
+def test_error_headline_counts_every_error_not_only_the_listed(client):
+    """100 000 bad lines: 50 are listed, and the headline says 100,000 (not 51)."""
+    book = b"defaults level=1mm\n" + b"level A\n" * 100_000
+    api = client.post("/api/adjust", files={"fieldbook": ("many.fieldbook", book)})
+    assert api.status_code == 422
+    body = api.json()
+    assert body["error"] == "the field book has 100,000 errors"
+    assert body["error_count"] == 100_000 and len(body["errors"]) == 51
+    page = client.post("/projects", files={"fieldbook": ("many.fieldbook", book)})
+    assert "The field book has 100,000 errors." in page.text, page.text[:2000]
+    assert "51 errors" not in page.text
+    stored = client.get("/api/projects").json()["projects"][0]
+    assert client.get(f"/api/projects/{stored['id']}").json()["error"] == (
+        "the field book has 100,000 errors")
+
+
 def test_limits_come_from_the_environment(tmp_path, monkeypatch):
     monkeypatch.setenv("STATIONFIT_MAX_PROJECTS", "1")
     monkeypatch.setenv("STATIONFIT_MAX_UPLOAD_BYTES", str(len(BLUNDER) - 1))

@@ -230,7 +230,8 @@ def survey_error_payload(exc: SurveyError) -> dict[str, Any]:
     """The JSON body for an input error: line-numbered ``errors`` or ``error`` with ``points``."""
     record = error_record(exc)
     if isinstance(exc, FieldbookError):
-        return {"error": record["message"], "errors": record["issues"]}
+        return {"error": record["message"], "errors": record["issues"],
+                "error_count": record["count"]}
     if isinstance(exc, NetworkError):
         return {"error": exc.message, "points": list(exc.points)}
     return {"error": str(exc)}
