@@ -208,6 +208,10 @@ def error_record(error: BaseException | str) -> dict[str, Any]:
     return {"kind": "other", "message": str(error)}
 
 
+class RunGone(LookupError):
+    """The run to finish no longer exists: its project was deleted while it was adjusted."""
+
+
 class Store:
     """Projects and runs in one SQLite file (WAL mode, one connection per call)."""
 
@@ -383,6 +387,8 @@ class Store:
                 (*outcome, run_id),
             )
             if cursor.rowcount != 1:
+                if db.execute("SELECT 1 FROM runs WHERE id = ?", (run_id,)).fetchone() is None:
+                    raise RunGone(f"run {run_id} no longer exists; its project was deleted")
                 raise ValueError(f"run {run_id} is not running")
             for edit_id in consumed:
                 db.execute(

@@ -24,7 +24,7 @@ from .. import __version__
 from ..errors import FieldbookError, NetworkError, SurveyError
 from ..result import CAUTION
 from ..settings import DEFAULT_MAX_UPLOAD_BYTES
-from ..storage import Store, error_record
+from ..storage import RunGone, Store, error_record
 from .jobs import Jobs
 
 logger = logging.getLogger("stationfit.web")
@@ -249,6 +249,14 @@ def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
         return _error_page(templates, request.scope, 422, "The field book could not be adjusted",
                            payload["error"], issues=payload.get("errors", []),
                            points=payload.get("points", []))
+
+    @app.exception_handler(RunGone)
+    async def run_gone(request: Request, exc: RunGone) -> Response:
+        """The project was deleted while this request adjusted it: nothing is left to show."""
+        message = "This project was deleted while it was being adjusted."
+        if is_api(request.url.path):
+            return JSONResponse({"error": message}, status_code=404)
+        return _error_page(templates, request.scope, 404, "Not found", message)
 
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request: Request, exc: StarletteHTTPException) -> Response:
