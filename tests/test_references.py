@@ -50,3 +50,20 @@ def test_nothing_points_outside_the_repository():
                  for n, line in enumerate(p.read_text(encoding="utf-8").splitlines(), 1)
                  if outside.search(line) and p != Path(__file__)]
     assert offenders == []
+
+
+def test_property_tests_run_under_the_profile_docs_security_describes():
+    """docs/security.md: derandomized by default, fresh examples with HYPOTHESIS_PROFILE=random;
+    no test may pin its own randomness and so override the profile."""
+    from hypothesis import settings
+
+    from tests.hypothesis_profiles import RANDOM_FACTOR, chosen, examples
+
+    docs = (ROOT / "docs" / "security.md").read_text(encoding="utf-8")
+    assert "HYPOTHESIS_PROFILE=random" in docs and "derandomized" in docs
+    assert settings.default.derandomize is (chosen() == "ci")
+    assert settings.default.database is None
+    assert examples(10) == (10 if chosen() == "ci" else 10 * RANDOM_FACTOR)
+    pinned = [p.name for p in (ROOT / "tests").glob("test_*.py")
+              if p.name != Path(__file__).name and "derandomize=" in p.read_text(encoding="utf-8")]
+    assert pinned == []
