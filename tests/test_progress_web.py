@@ -84,8 +84,8 @@ def test_a_project_deleted_while_it_adjusts_leaves_no_traceback(app, monkeypatch
     monkeypatch.setattr(threading, "excepthook", lambda args: escaped.append(args.exc_value))
     caplog.set_level(logging.INFO, logger="stationfit.web")
     with TestClient(app) as client:
-        posted = client.post("/projects", files={"fieldbook": ("b.fieldbook", BLUNDER.read_bytes())},
-                             follow_redirects=False)
+        posted = client.post("/projects", follow_redirects=False,
+                             files={"fieldbook": ("b.fieldbook", BLUNDER.read_bytes())})
         project = posted.headers["location"].rsplit("/", 1)[-1]
         assert started.wait(20)
         confirm = client.post(f"/projects/{project}/confirm-delete").text

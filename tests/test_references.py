@@ -1,7 +1,8 @@
 """The outside values the tests use are written down in the repository, with their sources.
 
 Every citation of a section of docs/references.md (the file's name, then the section's
-title in double quotes) in the tests and the code names a section that exists, and nothing points at files a clone of the repository does not have.
+title in double quotes) in the tests and the code names a section that exists, and
+nothing points at files a clone of the repository does not have.
 """
 
 from __future__ import annotations
