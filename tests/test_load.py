@@ -41,10 +41,12 @@ REQUESTS = 200
 DEADLINE_S = 240.0  # the whole burst; each request also has its own timeout
 REQUEST_TIMEOUT_S = 60.0
 P95_LIMIT_S = 10.0  # two cores shared by 8 clients: generous, yet far from a hang
-# docs/security.md promises these medians; measured 13-75 ms (pages) and 30-80 ms (all) on
-# the 2-core machine while other test runs shared it, so each limit keeps a margin.
-PAGE_MEDIAN_LIMIT_S = 0.100
+# docs/security.md promises these medians; measured 13-75 ms (pages), 30-105 ms (all requests)
+# and 9-34 ms (home page during a large adjustment) on the 2-core machine while other test runs
+# shared it, so each limit keeps a margin of about two.
+PAGE_MEDIAN_LIMIT_S = 0.150
 ALL_MEDIAN_LIMIT_S = 0.200
+BUSY_PAGE_MEDIAN_LIMIT_S = 0.100
 PAGE_KINDS = ("page", "list", "project page")
 
 
@@ -294,5 +296,5 @@ def test_a_large_adjustment_does_not_block_page_loads(tmp_path: Path,
         f"max {1000 * max(during):.0f} ms"
     )
     assert len(during) >= 3, "the adjustment ended before the pages could be timed"
-    assert statistics.median(during) < PAGE_MEDIAN_LIMIT_S  # measured 9-34 ms
+    assert statistics.median(during) < BUSY_PAGE_MEDIAN_LIMIT_S
     assert max(during) < 2.0

@@ -443,8 +443,9 @@ def test_error_headline_counts_every_error_not_only_the_listed(client):
     assert "The field book has 100,000 errors." in page.text, page.text[:2000]
     assert "51 errors" not in page.text
     stored = client.get("/api/projects").json()["projects"][0]
-    assert client.get(f"/api/projects/{stored['id']}").json()["error"] == (
-        "the field book has 100,000 errors")
+    project = client.get(f"/api/projects/{stored['id']}").json()
+    assert project["error"] == "the field book has 100,000 errors"
+    assert project["error_count"] == 100_000
 
 
 def test_limits_come_from_the_environment(tmp_path, monkeypatch):

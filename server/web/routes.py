@@ -336,6 +336,8 @@ def _run_payload(run: Run | None) -> dict[str, Any]:
     payload: dict[str, Any] = {"result": None, "error": error.get("message", "")}
     if "issues" in error:
         payload["errors"] = error["issues"]
+    if "count" in error:  # stored since the count was kept; older failed runs lack it
+        payload["error_count"] = error["count"]
     if "points" in error:
         payload["points"] = error["points"]
     return payload
