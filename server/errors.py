@@ -30,10 +30,19 @@ class SurveyError(Exception):
 class FieldbookError(SurveyError):
     """The field book has errors; every one found is in ``issues`` (exit status 2)."""
 
-    def __init__(self, issues: tuple[Issue, ...] | list[Issue], source: str = "") -> None:
+    def __init__(
+        self, issues: tuple[Issue, ...] | list[Issue], source: str = "", count: int | None = None
+    ) -> None:
         self.issues = tuple(issues)
         self.source = source
+        #: Errors found in the file: more than ``issues`` lists once the list is capped.
+        self.count = len(self.issues) if count is None else count
         super().__init__(str(self))
+
+    @property
+    def headline(self) -> str:
+        """"the field book has N errors" with the true N, not the length of the capped list."""
+        return f"the field book has {self.count:,} error{'' if self.count == 1 else 's'}"
 
     def __str__(self) -> str:
         return "\n".join(issue.format(self.source) for issue in self.issues)

@@ -1,7 +1,7 @@
 """Field book text → ``Fieldbook``: every statement checked, every problem reported at once.
 
-The contract is ``shared/spec/fieldbook.md``; what it leaves open is written
-down for users in ``docs/fieldbook.md``.  Tokens, grammars and single values
+The format, and what the parser decides where a line could be read two ways, is
+written down for users in ``docs/fieldbook.md``.  Tokens, grammars and single values
 are read in ``fieldbook_lexer.py``; this module gives statements their
 meaning: one small handler per statement, found through the ``_HANDLERS``
 table, and a parser object holding what is in force (units, defaults, scale,
@@ -125,7 +125,7 @@ def parse_fieldbook(text: str | bytes, *, source: str = "") -> Fieldbook:
     parser = _Parser(fast=_FAST_LINES)
     parser.run(lines, bad_lines)
     if parser.errors.count:
-        raise FieldbookError(parser.errors.result(), source)
+        raise FieldbookError(parser.errors.result(), source, count=parser.errors.count)
     for issue in near_miss_warnings(parser.points, parser.observations):
         parser.warnings.add(issue.line, issue.token, issue.message)
     return parser.fieldbook(source, digest)

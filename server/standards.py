@@ -16,7 +16,7 @@ Two families, each constant named with its published source:
   Geodetic Control Committee, §3.5: section (forward − backward) and loop
   constants per order and class.  **These constants are recalled from
   memory and not yet checked against a copy of the document** (see
-  ``shared/references.md`` §3); the preset names say so.
+  ``docs/references.md``, "FGCC 1984 leveling allowances"); the preset names say so.
 
 A preset becomes the field book's ``tolerance`` for one run; a tolerance
 written in the field book itself is always shown as such.

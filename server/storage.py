@@ -200,8 +200,8 @@ def error_record(error: BaseException | str) -> dict[str, Any]:
     if isinstance(error, FieldbookError):
         return {
             "kind": "fieldbook",
-            "message": f"the field book has {len(error.issues)} "
-            f"error{'s' if len(error.issues) != 1 else ''}",
+            "message": error.headline,
+            "count": error.count,
             "issues": [
                 {"line": i.line, "token": i.token, "message": i.message} for i in error.issues
             ],
@@ -209,6 +209,10 @@ def error_record(error: BaseException | str) -> dict[str, Any]:
     if isinstance(error, NetworkError):
         return {"kind": "network", "message": error.message, "points": list(error.points)}
     return {"kind": "other", "message": str(error)}
+
+
+class RunGone(LookupError):
+    """The run to finish no longer exists: its project was deleted while it was adjusted."""
 
 
 class Store:
@@ -388,6 +392,8 @@ class Store:
                 (*outcome, run_id),
             )
             if cursor.rowcount != 1:
+                if db.execute("SELECT 1 FROM runs WHERE id = ?", (run_id,)).fetchone() is None:
+                    raise RunGone(f"run {run_id} no longer exists; its project was deleted")
                 raise ValueError(f"run {run_id} is not running")
             for edit_id in consumed:
                 db.execute(

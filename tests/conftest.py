@@ -1,10 +1,15 @@
-"""Shared pytest hooks: the reliability tests' figures, printed after the run."""
+"""Shared pytest hooks: the Hypothesis profile (tests/hypothesis_profiles.py) and the
+reliability tests' figures, printed after the run."""
 
 from __future__ import annotations
 
 from collections.abc import Callable
 
 import pytest
+
+from tests import hypothesis_profiles
+
+hypothesis_profiles.load()
 
 pytest_plugins = ["tests.browser_support"]
 

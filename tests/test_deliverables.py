@@ -1,6 +1,6 @@
 """What the surveyor hands on: standards checks, the HTML report's plots, exports and downloads.
 
-Published check values name their source (shared/references.md); the FGCC
+Published check values name their source (docs/references.md); the FGCC
 leveling constants are recalled from memory and the tests say so.
 """
 
@@ -81,7 +81,7 @@ def _open_demo(client, name: str) -> str:
 def test_relative_precision_two_point_case_against_the_alta_allowance(sigma_arcsec, passes):
     """Worked by hand: with no redundancy the relative ellipse A–P has semi-axes D·σ_t across
     and σ_d along the line, times √χ²(95 %; 2) = 2.4477 (FGDC-STD-007.3-1998 App. 3-A, quoted in
-    shared/references.md §0 row 2). ALTA/NSPS 2026 §3.E allows 2 cm + 50 ppm·D = 0.0400 m at
+    docs/references.md "95 % factors"). ALTA/NSPS 2026 §3.E allows 2 cm + 50 ppm·D = 0.0400 m at
     400 m. σ_t = 10″: a = 2.4477 · 19.39 mm = 47.5 mm, fails; σ_t = 5″: 23.7 mm, meets."""
     fieldbook = parse_fieldbook(TWO_POINTS.format(sigma=sigma_arcsec))
     preset = PRESETS["alta-nsps-2026"]
@@ -138,7 +138,8 @@ def test_presets_name_their_published_sources_and_status():
 
 
 def test_fgcc_section_and_loop_constants_as_recalled():
-    """FGCC 1984 §3.5, from memory (shared/references.md §3): sections 3/4/6/8/12 mm·√D,
+    """FGCC 1984 §3.5, from memory (docs/references.md "FGCC 1984 leveling allowances"):
+    sections 3/4/6/8/12 mm·√D,
     loops 4/5/6/8/12 mm·√E; a 3rd-order 10 km line allows 37.95 mm (computed)."""
     assert [FGCC_1984_LEVELING[k] for k in (
         "first-order-class-I", "first-order-class-II", "second-order-class-I",

@@ -23,6 +23,7 @@ from server import fieldbook as fieldbook_module
 from server.errors import FieldbookError
 from server.fieldbook import parse_fieldbook
 from server.json_output import dumps_indented
+from tests.hypothesis_profiles import examples
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO_TEXTS = {p.name: p.read_text(encoding="utf-8") for p in sorted((ROOT / "demo_projects").glob("*.fieldbook"))}
@@ -205,7 +206,7 @@ def _book(draw) -> str:
     return "\n".join(lines) + "\n"
 
 
-@settings(max_examples=400, deadline=None, derandomize=True, database=None,
+@settings(max_examples=examples(400),
           suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
 @given(_book())
 def test_fast_and_careful_paths_agree_on_edge_lines(monkeypatch, text):
@@ -260,7 +261,7 @@ def _records(draw):
     return records
 
 
-@settings(max_examples=300, deadline=None, derandomize=True, database=None)
+@settings(max_examples=examples(300))
 @given(_records(), st.integers(0, 2))
 def test_records_are_spelled_as_json_dumps_spells_them(records, depth):
     document: object = records

@@ -2,7 +2,8 @@
 
 Unit factors are checked against their definitions, not against the code:
 the international foot is 0.3048 m exactly and the US survey foot 1200/3937 m
-(NIST and NOAA/NGS, 85 FR 62698, 2020); 1 gon = π/200 rad (ISO 80000-3).
+(NIST and NOAA/NGS, 85 FR 62698, 2020); 1 gon = π/200 rad (ISO 80000-3); sources and
+their status in docs/references.md "Units".
 """
 
 from __future__ import annotations
@@ -18,6 +19,7 @@ from hypothesis import strategies as st
 from server.errors import FieldbookError, Issue
 from server.fieldbook import parse_fieldbook
 from server.fieldbook_model import Fieldbook, Observation
+from tests.hypothesis_profiles import examples
 
 FOOT_M = 0.3048
 US_FOOT_M = 1200.0 / 3937.0
@@ -1007,7 +1009,7 @@ LINES = st.lists(
 )
 
 
-@settings(max_examples=300, deadline=None, database=None)
+@settings(max_examples=examples(300))
 @given(LINES)
 def test_any_statement_soup_gives_a_field_book_or_line_numbered_errors(lines: list[str]) -> None:
     """Never a stack trace: every input ends as a Fieldbook or a FieldbookError."""
@@ -1023,7 +1025,7 @@ def test_any_statement_soup_gives_a_field_book_or_line_numbered_errors(lines: li
         assert all(0.0 <= o.value < 2 * math.pi for o in book.observations if o.kind == "angle")
 
 
-@settings(max_examples=200, deadline=None, database=None)
+@settings(max_examples=examples(200))
 @given(st.binary(max_size=300))
 def test_arbitrary_bytes_never_crash(raw: bytes) -> None:
     try:
@@ -1032,7 +1034,7 @@ def test_arbitrary_bytes_never_crash(raw: bytes) -> None:
         assert error.issues
 
 
-@settings(max_examples=200, deadline=None, database=None)
+@settings(max_examples=examples(200))
 @given(st.integers(0, 359), st.integers(0, 59), st.integers(0, 599_999), st.booleans())
 def test_dms_matches_its_definition(
     degrees: int, minutes: int, centi_micro: int, negative: bool

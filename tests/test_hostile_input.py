@@ -10,8 +10,9 @@ sentence, or a ``NetworkError`` with a sentence.  Anything else (a
 error) is a bug the surveyor would meet as a server error.
 
 The named tests below pin down the degenerate networks a surveyor really
-uploads, each with the message it must get.  Hypothesis runs derandomized and
-without an example database, so CI sees the same examples on every run.
+uploads, each with the message it must get.  Hypothesis runs under the profile of
+tests/hypothesis_profiles.py: the same examples on every run by default, fresh random
+ones with ``HYPOTHESIS_PROFILE=random``.
 """
 
 from __future__ import annotations
@@ -31,6 +32,7 @@ from server.errors import FieldbookError, NetworkError
 from server.fieldbook import parse_fieldbook
 from server.pipeline import adjust_fieldbook
 from server.result import AdjustmentResult
+from tests.hypothesis_profiles import examples
 
 DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"
 DEMO_TEXTS = {p.name: p.read_text(encoding="utf-8") for p in sorted(DEMOS.glob("*.fieldbook"))}
@@ -284,9 +286,9 @@ def numeric_extremes(draw: st.DrawFn) -> str:
     return text[:spot.start()] + value + text[spot.end():]
 
 
-FAST = settings(max_examples=500, deadline=None, derandomize=True, database=None,
+FAST = settings(max_examples=examples(500),
                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
-SLOW = settings(FAST, max_examples=300)
+SLOW = settings(FAST, max_examples=examples(300))
 
 
 @FAST
@@ -562,6 +564,20 @@ def test_no_observations_is_a_network_error_that_says_so():
 def test_only_ignored_observations_is_a_network_error_that_says_so():
     with pytest.raises(NetworkError, match="ignore"):
         adjust_fieldbook("defaults level=1mm\npoint A height=10 fix\nlevel A B 1 ignore\n")
+
+
+def test_headline_gives_the_true_count_of_100_000_errors():
+    """Only the first 50 errors are listed, but the headline counts all of them."""
+    text = "defaults level=1mm\n" + "level A\n" * 100_000
+    with pytest.raises(FieldbookError) as caught:
+        parse_fieldbook(text)
+    error = caught.value
+    assert error.count == 100_000
+    assert error.headline == "the field book has 100,000 errors"
+    assert len(error.issues) == 51  # 50 listed and the line saying how many more there are
+    assert error.issues[-1].message.startswith("99950 more errors from this line on")
+    few = pytest.raises(FieldbookError, parse_fieldbook, "level A\n").value
+    assert (few.count, few.headline) == (1, "the field book has 1 error")
 
 
 def test_empty_file_is_a_field_book_error_on_line_one():

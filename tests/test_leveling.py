@@ -3,7 +3,8 @@
 Closed forms are the standard results of a single loop, a run between two
 fixed benchmarks, a weighted mean and repeated measurements (any adjustment
 text, e.g. Ghilani, *Adjustment Computations*, 6th ed., Wiley 2017; recalled
-from memory, and re-derived in each docstring).
+from memory, and re-derived in each docstring; docs/references.md "Closed forms of small
+networks").
 """
 
 from __future__ import annotations

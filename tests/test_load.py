@@ -41,6 +41,13 @@ REQUESTS = 200
 DEADLINE_S = 240.0  # the whole burst; each request also has its own timeout
 REQUEST_TIMEOUT_S = 60.0
 P95_LIMIT_S = 10.0  # two cores shared by 8 clients: generous, yet far from a hang
+# docs/security.md promises these medians; measured 13-75 ms (pages), 30-105 ms (all requests)
+# and 9-34 ms (home page during a large adjustment) on the 2-core machine while other test runs
+# shared it, so each limit keeps a margin of about two.
+PAGE_MEDIAN_LIMIT_S = 0.150
+ALL_MEDIAN_LIMIT_S = 0.200
+BUSY_PAGE_MEDIAN_LIMIT_S = 0.100
+PAGE_KINDS = ("page", "list", "project page")
 
 
 @dataclass(frozen=True)
@@ -216,12 +223,14 @@ def test_burst_of_concurrent_users_loses_nothing(service: ServiceProcess, tmp_pa
     integrity = integrity_check(service.database)
 
     every = [s for values in tally.latencies.values() for s in values]
+    pages = [s for kind in PAGE_KINDS for s in tally.latencies.get(kind, [])]
     figures = {
         "clients": CLIENTS, "requests": tally.done, "failures": len(tally.failures),
         "projects_created": len(tally.created), "projects_stored": len(listed),
         "projects_lost": len(lost), "integrity_check": integrity,
         "seconds": round(elapsed, 2),
         "p50_ms": round(1000 * _percentile(every, 50), 1),
+        "page_p50_ms": round(1000 * _percentile(pages, 50), 1),
         "p95_ms": round(1000 * _percentile(every, 95), 1),
         "max_ms": round(1000 * max(every, default=0.0), 1),
         "by_kind": {k: {"n": len(v), "p50_ms": round(1000 * _percentile(v, 50), 1),
@@ -232,7 +241,8 @@ def test_burst_of_concurrent_users_loses_nothing(service: ServiceProcess, tmp_pa
     report_figure(
         f"load: {figures['requests']} requests from {CLIENTS} clients in {figures['seconds']} s, "
         f"{figures['failures']} failures, {figures['projects_created']} projects created, "
-        f"{figures['projects_lost']} lost, p50 {figures['p50_ms']} ms, "
+        f"{figures['projects_lost']} lost, p50 {figures['p50_ms']} ms "
+        f"(pages {figures['page_p50_ms']} ms), "
         f"p95 {figures['p95_ms']} ms, max {figures['max_ms']} ms, integrity {integrity}"
     )
     print(json.dumps(figures, indent=2))
@@ -243,6 +253,9 @@ def test_burst_of_concurrent_users_loses_nothing(service: ServiceProcess, tmp_pa
     assert len(listed) == len(tally.created) >= 16
     assert integrity == "ok"
     assert figures["p95_ms"] < 1000 * P95_LIMIT_S
+    assert len(pages) >= 20, "too few page loads in the burst to take a median"
+    assert statistics.median(pages) < PAGE_MEDIAN_LIMIT_S, figures
+    assert statistics.median(every) < ALL_MEDIAN_LIMIT_S, figures
 
 
 def test_a_large_adjustment_does_not_block_page_loads(tmp_path: Path,
@@ -283,5 +296,5 @@ def test_a_large_adjustment_does_not_block_page_loads(tmp_path: Path,
         f"max {1000 * max(during):.0f} ms"
     )
     assert len(during) >= 3, "the adjustment ended before the pages could be timed"
-    assert statistics.median(during) < 0.5
+    assert statistics.median(during) < BUSY_PAGE_MEDIAN_LIMIT_S
     assert max(during) < 2.0

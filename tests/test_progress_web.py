@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 import re
 import threading
 import warnings
@@ -10,7 +11,7 @@ from pathlib import Path
 import pytest
 
 from server.pipeline import adjust_parsed
-from server.storage import NO_EDITS
+from server.storage import NO_EDITS, RunGone
 from server.web import create_app, routes
 
 with warnings.catch_warnings():
@@ -80,3 +81,63 @@ def test_an_interrupted_run_is_named_by_its_number_in_the_project(app):
         page = client.get(f"/projects/{project}")
     assert "Run #1 was interrupted" in page.text
     assert "#4" not in page.text
+
+
+def test_a_project_deleted_while_it_adjusts_leaves_no_traceback(app, monkeypatch, caplog):
+    """The result of a deleted project is dropped with one line in the log, not a traceback."""
+    started, release = threading.Event(), threading.Event()
+    escaped: list[BaseException] = []
+
+    def slow(book, *, progress=None):
+        started.set()
+        assert release.wait(20), "the test never released the adjustment"
+        return adjust_parsed(book, progress=progress)
+
+    monkeypatch.setattr(routes, "adjust_parsed", slow)
+    monkeypatch.setattr(routes, "_WAIT_FOR_SMALL_JOBS", 0.05)
+    monkeypatch.setattr(threading, "excepthook", lambda args: escaped.append(args.exc_value))
+    caplog.set_level(logging.INFO, logger="stationfit.web")
+    with TestClient(app) as client:
+        posted = client.post("/projects", follow_redirects=False,
+                             files={"fieldbook": ("b.fieldbook", BLUNDER.read_bytes())})
+        project = posted.headers["location"].rsplit("/", 1)[-1]
+        assert started.wait(20)
+        confirm = client.post(f"/projects/{project}/confirm-delete").text
+        token = re.search(r'name="token" value="([0-9a-f]{32})"', confirm).group(1)
+        deleted = client.post(f"/projects/{project}/delete", data={"token": token},
+                              follow_redirects=False)
+        assert deleted.status_code == 303
+        (job,) = list(app.state.jobs._jobs.values())
+        release.set()
+        assert job.done.wait(20)
+        assert client.get(f"/projects/{project}").status_code == 404
+    assert escaped == []
+    assert not [r for r in caplog.records if r.levelno >= logging.WARNING], caplog.text
+    assert not [r for r in caplog.records if r.exc_info], caplog.text
+    assert any("deleted during the adjustment" in r.getMessage() for r in caplog.records)
+
+
+def test_a_run_of_a_deleted_project_cannot_be_finished_and_says_why(app):
+    store = app.state.store
+    project = store.create_project("gone", "b.fieldbook", BLUNDER.read_bytes())
+    run = store.start_run(project, NO_EDITS)
+    store.delete_project(project)
+    with pytest.raises(RunGone, match="deleted"):
+        store.finish_run(run, error="never mind")
+
+
+
+def test_an_api_upload_deleted_while_it_adjusts_is_not_found_not_a_server_error(app, monkeypatch):
+    store = app.state.store
+
+    def deleted_meanwhile(book, *, progress=None):
+        for listing in store.list_projects():
+            store.delete_project(listing.id)
+        return adjust_parsed(book, progress=progress)
+
+    monkeypatch.setattr(routes, "adjust_parsed", deleted_meanwhile)
+    with TestClient(app, raise_server_exceptions=False) as client:
+        answer = client.post("/api/projects",
+                             files={"fieldbook": ("b.fieldbook", BLUNDER.read_bytes())})
+    assert answer.status_code == 404
+    assert answer.json() == {"error": "This project was deleted while it was being adjusted."}

@@ -6,6 +6,7 @@ import math
 
 import numpy as np
 import pytest
+import scipy.stats
 
 from server.edits import EditError, ObservationEdit, apply_edits
 from server.fieldbook import parse_fieldbook
@@ -76,14 +77,79 @@ def test_huber_weight_function():
     assert huber_weight(-6.0, k=2.0) == pytest.approx(1 / 3)
 
 
-# Pope (1976) tau critical values, Bonferroni α_i = α/n with α = 0.05
-# (computed with scipy from the tau distribution; shared/references.md §4).
+# Pope (1976) tau critical values, Bonferroni α_i = α/n with α = 0.05.  These four are
+# computed, not published (docs/references.md, "Pope's tau"): a regression guard only.  The
+# checks that follow compare the code with a published table and with the distribution
+# reached by two routes other than the code's Student-t formula.
 POPE = [(3, 6, 1.7176), (5, 10, 2.1057), (10, 20, 2.5619), (20, 40, 2.9325)]
 
 
 @pytest.mark.parametrize(("r", "n", "critical"), POPE)
 def test_tau_critical_values(r, n, critical):
     assert tau_critical(0.05, n, r) == pytest.approx(critical, abs=5e-5)
+
+
+# Published critical values of Grubbs' statistic G = max|x_i − x̄|/s at α = 0.05 (two-sided),
+# by sample size n: Harvey, *Analytical Chemistry 2.1*, Appendix 7 "Critical Values for
+# Grubbs' Test" (docs/references.md, "Grubbs' table").  For the mean of n equally weighted
+# observations (r = n − 1, q_vv = (n − 1)/n) Pope's τ_i is G_i·√(n/(n − 1)), so the table is
+# also a published table of τ critical values for that network.
+GRUBBS_005 = {4: 1.481, 5: 1.715, 6: 1.887, 8: 2.126, 10: 2.290, 12: 2.412, 14: 2.507}
+
+
+def _mean_network(n: int, seed: int = 5) -> tuple[str, np.ndarray]:
+    """One mark levelled once from each of n benchmarks, 1 mm each: its height is the mean."""
+    rng = np.random.default_rng(seed)
+    heights = 100 + rng.uniform(-3, 3, n)
+    readings = 5.0 - heights + rng.normal(0, 0.001, n)  # true height of P: 105 - 100 = 5 above
+    lines = ["defaults level=1.0mm"]
+    lines += [f"point B{i} height={h:.4f} fix" for i, h in enumerate(heights)]
+    lines += [f"level B{i} P {dh + 100:+.5f}" for i, dh in enumerate(readings)]
+    derived = np.round(heights, 4) + np.round(readings + 100, 5)  # each reading's height of P
+    return "\n".join(lines) + "\n", derived
+
+
+@pytest.mark.parametrize(("n", "published"), sorted(GRUBBS_005.items()))
+def test_tau_of_a_mean_agrees_with_the_published_grubbs_table(n, published):
+    text, derived = _mean_network(n)
+    result = adjust_fieldbook(text)
+    test = tau_test(result, alpha=0.05)
+    assert test is not None and test.redundancy == n - 1 and test.tested == n
+    # the critical value: the published G (three decimals) times √(n/(n − 1))
+    assert test.critical * math.sqrt((n - 1) / n) == pytest.approx(published, abs=1e-3)
+    # each τ is Grubbs' G_i of the derived heights, computed here from its definition
+    grubbs = np.abs(derived - derived.mean()) / derived.std(ddof=1)
+    by_line = {o.line: abs(o.tau) for o in test.observations}
+    first = min(by_line)
+    taus = np.array([by_line[first + i] for i in range(n)])
+    assert np.allclose(taus * math.sqrt((n - 1) / n), grubbs, atol=1e-6)
+
+
+@pytest.mark.parametrize(("r", "n"), [(r, n) for r, n, _ in POPE])
+def test_tau_critical_value_by_the_beta_relation(r, n):
+    """τ²/r follows Beta(1/2, (r − 1)/2) (docs/references.md, "Pope's tau"): the tail beyond
+    τ_crit must be exactly the per-observation level α/n.  A route through the Beta
+    distribution, not the Student-t quantile the code uses."""
+    critical = tau_critical(0.05, n, r)
+    tail = scipy.stats.beta.sf(critical**2 / r, 0.5, (r - 1) / 2)
+    assert tail == pytest.approx(0.05 / n, rel=1e-9)
+
+
+def test_tau_critical_value_by_monte_carlo_of_a_network():
+    """Simulate the residuals of a 20-observation, 10-unknown network with normal errors and
+    compute τ_i = v_i/(σ̂₀·√q_vv,ii) from its definition: the share of |τ| beyond the code's
+    critical value is α/n = 0.0025 (the counts' standard error is about 1.5 %)."""
+    rng = np.random.default_rng(1976)
+    n, u = 20, 10
+    design = rng.normal(size=(n, u))
+    projector = np.eye(n) - design @ np.linalg.solve(design.T @ design, design.T)
+    errors = rng.normal(size=(200_000, n))
+    residuals = errors @ projector  # the projector is symmetric
+    sigma0 = np.sqrt((residuals**2).sum(axis=1, keepdims=True) / (n - u))
+    tau = residuals / (sigma0 * np.sqrt(np.diag(projector)))
+    assert np.abs(tau).max() <= math.sqrt(n - u) + 1e-9  # |τ| ≤ √r always
+    share = float((np.abs(tau) > tau_critical(0.05, n, n - u)).mean())
+    assert share == pytest.approx(0.05 / n, rel=0.06)
 
 
 def test_tau_is_bounded_by_root_r_and_flags_the_blunder():

@@ -24,7 +24,7 @@ DEMOS = Path(__file__).resolve().parent.parent / "demo_projects"
 def test_alta_nsps_allowance_values():
     """ALTA/NSPS (2026, §3.E): 2 cm + 50 ppm at 95 %.  100 m → 0.0250 m; 1000 m → 0.0700 m;
     in feet 0.07 ft + 50 ppm: 200 ft → 0.080 ft, 1000 ft → 0.120 ft (arithmetic of the
-    published allowance, shared/references.md §0 row 5)."""
+    published allowance, docs/references.md "ALTA/NSPS relative positional precision")."""
     metric = PRESETS["alta-nsps-2026"].quantity("m")
     assert metric.allowance_distance(100.0) == pytest.approx(0.0250, abs=1e-12)
     assert metric.allowance_distance(1000.0) == pytest.approx(0.0700, abs=1e-12)
@@ -35,7 +35,8 @@ def test_alta_nsps_allowance_values():
 
 
 def test_fgcc_leveling_constants_as_recalled():
-    """FGCC 1984 §3.5 loop constants 4/5/6/8/12 mm·√E — from memory (shared/references.md §3);
+    """FGCC 1984 §3.5 loop constants 4/5/6/8/12 mm·√E — from memory
+    (docs/references.md "FGCC 1984 leveling allowances");
     a 1st-I 20 km loop allows 17.89 mm (computed)."""
     loops = [FGCC_1984_LEVELING[k][1] for k in (
         "first-order-class-I", "first-order-class-II", "second-order-class-I",
@@ -48,7 +49,7 @@ def test_fgcc_leveling_constants_as_recalled():
 
 def test_published_95_percent_factors_match_scipy():
     """1D 1.9600 and 2D 2.4477 at 95 % (FGDC-STD-007.3-1998 App. 3-A, quoted in
-    shared/references.md §0 rows 1–2) equal the normal and chi-square quantiles."""
+    docs/references.md "95 % factors") equal the normal and chi-square quantiles."""
     assert scipy.stats.norm.ppf(0.975) == pytest.approx(1.9600, abs=5e-5)
     assert math.sqrt(scipy.stats.chi2.ppf(0.95, 2)) == pytest.approx(2.4477, abs=5e-5)
     assert math.sqrt(-2 * math.log(0.05)) == pytest.approx(2.4477, abs=5e-5)
@@ -75,12 +76,31 @@ def test_relative_precision_hand_computed_two_point_case():
 
 
 def test_preset_applies_to_the_relative_check():
+    """2 cm + 50 ppm of the corner-to-corner distance (docs/references.md,
+    "ALTA/NSPS relative positional precision")."""
     fb = with_presets(parse_fieldbook((DEMOS / "control_network.fieldbook").read_text()),
                       relative="alta-nsps-2026")
     result = adjust_parsed(fb)
+    assert len(result.relative) >= 10, "the demo's joined pairs are all checked"
     for r in result.relative:
         assert r.allowed == pytest.approx(0.02 + 50e-6 * r.distance, rel=1e-9)
         assert r.passed == (r.semi_major <= r.allowed)
+    assert all(r.passed for r in result.relative)  # a sound control network meets it
+
+
+def test_preset_fails_a_pair_whose_ellipse_is_over_the_allowance():
+    """A 400 m line fixed only by a 10" azimuth: the semi-major 2.4477 × 19.4 mm = 47.5 mm
+    is over 2 cm + 50 ppm × 400 m = 40.0 mm, so the pair fails."""
+    text = """
+    defaults distance=5mm azimuth=10sec
+    point A east=1000 north=1000 fix
+    distance A P 400.000
+    azimuth A P 90:00:00
+    """
+    (rel,) = adjust_parsed(with_presets(parse_fieldbook(text), relative="alta-nsps-2026")).relative
+    assert rel.allowed == pytest.approx(0.0400, abs=1e-9)
+    assert rel.semi_major == pytest.approx(0.0475, abs=5e-5)
+    assert rel.passed is False
 
 
 def test_unknown_preset_is_refused_with_choices():

@@ -13,7 +13,8 @@ from server.pipeline import adjust_fieldbook
 
 # Two-sided 5 % chi-square bounds.  Published: NIST/SEMATECH e-Handbook of
 # Statistical Methods, §1.3.6.7.4, "Critical Values of the Chi-Square
-# Distribution" (r = 5 and 10 from the table; r = 20 upper computed).
+# Distribution" (r = 5 and 10 from the table; r = 20 upper computed; docs/references.md
+# "Chi-square bounds of the global test").
 NIST_CHI_SQUARE = [
     (5, 0.831, 12.833),
     (10, 3.247, 20.483),

@@ -102,7 +102,7 @@ def test_quantities_in_si():
     lev = parse_quantity("0.5mm+1.0mm/sqrtkm")
     assert lev.sigma_level(4.0, None) == pytest.approx(math.sqrt(0.0005**2 + 0.001**2 * 4))
     # an allowance adds its parts linearly: 2 cm + 50 ppm at 100 m is 2.5 cm
-    # (ALTA/NSPS relative positional precision allowance, shared/references.md §2)
+    # (docs/references.md "ALTA/NSPS relative positional precision")
     assert parse_quantity("2cm+50ppm").allowance_distance(100.0) == pytest.approx(0.025)
     assert parse_quantity("1.5sec").constant * ARCSEC_PER_RAD == pytest.approx(1.5)
     assert parse_quantity("0.07ft+50ppm").constant == pytest.approx(0.021336)

@@ -248,7 +248,7 @@ def test_csv_keeps_negative_heights_numeric(client):
 
 
 # ---------------------------------------------------------------------------------------
-# JSON API (shared/spec/result.md)
+# JSON API (the result JSON of to_json_dict; keys keep their meaning, new keys may be added)
 
 
 def test_api_adjust_returns_the_contract(client):

@@ -31,6 +31,7 @@ from hypothesis.errors import Unsatisfiable
 
 from server.web import create_app
 from server.web.app import DATABASE_NAME, SECURITY_HEADERS, serve_allowed_hosts
+from tests.hypothesis_profiles import examples
 
 with warnings.catch_warnings():
     # starlette's test client prefers httpx2 and warns when it finds only httpx
@@ -73,7 +74,8 @@ distance B <b>C</b> 300.0021
 distance {SCRIPT} D 300.0020
 distance <b>C</b> D 300.0008
 """.encode()
-EXAMPLES_PER_OPERATION = 10
+EXAMPLES_PER_OPERATION = examples(10)
+NUMBERED_EXAMPLES = examples(60)
 RAW_MARKUP = [SCRIPT, "<script>alert(2)</script>", "<img src=x", "<svg onload", "<iframe",
               "<b>", "</title><script>", "alert(7)</script>"]
 
@@ -117,27 +119,40 @@ def _assert_security_headers(response, where: str) -> None:
 def test_openapi_operations_never_answer_5xx(tmp_path):
     """Every documented operation, with generated paths, queries and bodies: never a 5xx.
 
-    Valid (positive) and invalid (negative) requests per operation, derandomized; the
-    schemathesis pytest plugin is not used (it does not load under this pytest).
+    Valid (positive) and invalid (negative) requests per operation, with the examples fixed
+    by the Hypothesis profile (tests/conftest.py).  Half of the cases get the id of a real
+    stored project in place of the generated one, so that the other path parameters (run
+    numbers) reach the database instead of stopping at "no such project"; the schemathesis
+    pytest plugin is not used (it does not load under this pytest).
     """
     app = create_app(tmp_path / "data", max_upload_bytes=64 * 1024)
+    with TestClient(app) as seed:
+        real_project = _create(seed, BLUNDER, "leveling_blunder.fieldbook")
     schema = schemathesis.openapi.from_asgi("/api/openapi.json", app)
     operations = [result.ok() for result in schema.get_all_operations()]
     assert len(operations) >= 20
     statuses: Counter[int] = Counter()
+    reached: Counter[str] = Counter()
     for operation in operations:
+        # a number in the path gets more examples, so that the out-of-range ones come up
+        numbered = re.search(r"\{(run|edit)_id\}", operation.path) is not None
         for mode in (GenerationMode.POSITIVE, GenerationMode.NEGATIVE):
 
-            @settings(max_examples=EXAMPLES_PER_OPERATION, deadline=None, derandomize=True,
-                      database=None, suppress_health_check=list(HealthCheck))
-            @given(case=operation.as_strategy(generation_mode=mode))
-            def run(case) -> None:
+            @settings(max_examples=NUMBERED_EXAMPLES if numbered else EXAMPLES_PER_OPERATION,
+                      suppress_health_check=list(HealthCheck))
+            @given(case=operation.as_strategy(generation_mode=mode), real=st.booleans())
+            def run(case, real) -> None:
+                parameters = case.path_parameters or {}
+                if real and "project_id" in parameters:
+                    parameters["project_id"] = real_project
                 with warnings.catch_warnings():
                     warnings.simplefilter("ignore", DeprecationWarning)
                     response = case.call()
                 # run() is called at once, inside this iteration of the loop
                 where = f"{case.method} {case.formatted_path} ({mode.value})"  # noqa: B023
                 statuses[response.status_code] += 1
+                if real_project in case.formatted_path:
+                    reached[case.path] += 1
                 assert response.status_code < 500, (where, response.status_code,
                                                      response.text[:500])
                 _assert_security_headers(response, where)
@@ -148,8 +163,53 @@ def test_openapi_operations_never_answer_5xx(tmp_path):
                 run()
             except Unsatisfiable:
                 continue  # nothing invalid to send (an operation without parameters)
-    assert sum(statuses.values()) >= 10 * len(operations)
+    assert sum(statuses.values()) >= EXAMPLES_PER_OPERATION * len(operations)
     assert statuses[201] >= 1 and statuses[200] >= 1  # some uploads were valid enough to store
+    # the real project was used on the run route, so its run numbers met the database
+    assert reached["/api/projects/{project_id}/runs/{run_id}"] >= 1, reached
+    assert len(reached) >= 5, reached
+
+
+def test_ids_beyond_the_database_integer_range_are_not_found(client):
+    """Run and decision numbers SQLite cannot hold name nothing: 404, never a 500."""
+    project_id = _create(client, BLUNDER, "leveling_blunder.fieldbook")
+    review = client.get(f"/projects/{project_id}/review").text
+    token = re.search(r'name="token" value="([0-9a-f]{32})"', review).group(1)
+    huge = ["99999999999999999999999", str(2**63), str(2**64), "0", "-1", "1e3", "not-a-number"]
+    for number in huge:
+        api = client.get(f"/api/projects/{project_id}/runs/{number}")
+        assert api.status_code == 404, (number, api.status_code)
+        assert api.headers["content-type"].startswith("application/json")
+        assert "error" in api.json()
+        undo = client.post(f"/projects/{project_id}/edits/{number}/undo",
+                           data={"token": token}, follow_redirects=False)
+        assert undo.status_code == 404, (number, undo.status_code)
+        assert "Not found" in undo.text
+    # the largest id SQLite stores is a valid number that names no run
+    assert client.get(f"/api/projects/{project_id}/runs/{2**63 - 1}").status_code == 404
+    first = client.get(f"/api/projects/{project_id}").json()["runs"][0]["id"]
+    assert client.get(f"/api/projects/{project_id}/runs/{first}").json()["status"] == "finished"
+
+
+def test_head_is_answered_wherever_get_is(client):
+    """HEAD gives GET's status and headers without the body, on pages, downloads and the API."""
+    project_id = _create(client, BLUNDER, "leveling_blunder.fieldbook")
+    paths = client.get("/api/openapi.json").json()["paths"]
+    gets = [p for p, ops in paths.items() if "get" in ops]
+    urls = [p.replace("{project_id}", project_id).replace("{name}", "leveling_blunder")
+            .replace("{run_id}", "1") for p in gets]
+    urls += ["/static/app.js", "/projects/" + "f" * 32, "/no/such/page"]
+    assert len(urls) >= 13
+    for url in urls:
+        get, head = client.get(url), client.head(url)
+        assert head.status_code == get.status_code != 405, (url, head.status_code)
+        assert head.content == b"", url
+        assert head.headers.get("content-type") == get.headers.get("content-type"), url
+        if not url.endswith(".pdf"):  # a PDF carries the time it was drawn
+            assert head.headers.get("content-length") == get.headers.get("content-length"), url
+        _assert_security_headers(head, "HEAD " + url)
+    # a route that only takes POST still refuses HEAD, as it refuses GET
+    assert client.head("/api/adjust").status_code == client.get("/api/adjust").status_code == 405
 
 
 def test_openapi_documents_the_upload_of_the_api(client):
@@ -212,7 +272,7 @@ def _inside(path: str, roots: list[Path]) -> bool:
     return any(resolved == root or root in resolved.parents for root in roots)
 
 
-@settings(max_examples=120, deadline=None, derandomize=True, database=None,
+@settings(max_examples=examples(120),
           suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(route=st.sampled_from(ROUTES),
        pieces=st.lists(st.sampled_from(TRAVERSALS), min_size=1, max_size=4),
@@ -342,7 +402,7 @@ def test_security_headers_on_every_route_and_error(client, tmp_path):
     errors = [client.get("/projects/" + "f" * 32), client.get("/no/such/page"),
               client.get("/api/adjust"), client.post("/projects", data={"x": "1" * 10}),
               client.get(f"/api/projects/{project_id}/runs/not-a-number")]
-    assert [r.status_code for r in errors] == [404, 404, 405, 400, 422]
+    assert [r.status_code for r in errors] == [404, 404, 405, 400, 404]
     for response in errors:
         _assert_security_headers(response, str(response.url))
     with TestClient(create_app(tmp_path / "small", max_upload_bytes=100)) as small:
@@ -369,6 +429,23 @@ def test_project_count_limit_refuses_new_projects_but_keeps_the_old(tmp_path):
         assert listed == {first, second}
         # adjusting without storing is still allowed
         assert client.post("/api/adjust", files={"fieldbook": ("c", BLUNDER)}).status_code == 200
+
+
+def test_error_headline_counts_every_error_not_only_the_listed(client):
+    """100 000 bad lines: 50 are listed, and the headline says 100,000 (not 51)."""
+    book = b"defaults level=1mm\n" + b"level A\n" * 100_000
+    api = client.post("/api/adjust", files={"fieldbook": ("many.fieldbook", book)})
+    assert api.status_code == 422
+    body = api.json()
+    assert body["error"] == "the field book has 100,000 errors"
+    assert body["error_count"] == 100_000 and len(body["errors"]) == 51
+    page = client.post("/projects", files={"fieldbook": ("many.fieldbook", book)})
+    assert "The field book has 100,000 errors." in page.text, page.text[:2000]
+    assert "51 errors" not in page.text
+    stored = client.get("/api/projects").json()["projects"][0]
+    project = client.get(f"/api/projects/{stored['id']}").json()
+    assert project["error"] == "the field book has 100,000 errors"
+    assert project["error_count"] == 100_000
 
 
 def test_limits_come_from_the_environment(tmp_path, monkeypatch):

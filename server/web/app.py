@@ -25,7 +25,7 @@ from .. import __version__
 from ..errors import FieldbookError, NetworkError, SurveyError
 from ..result import CAUTION
 from ..settings import DEFAULT_MAX_UPLOAD_BYTES
-from ..storage import Store, error_record
+from ..storage import RunGone, Store, error_record
 from .jobs import Jobs
 
 logger = logging.getLogger("stationfit.web")
@@ -113,6 +113,31 @@ class SecurityHeadersMiddleware:
             await send(message)
 
         await self.app(scope, receive, send_with_headers)
+
+
+class HeadAsGetMiddleware:
+    """Answer HEAD wherever GET is answered: the GET response's status and headers, no body.
+
+    FastAPI routes declared with GET do not accept HEAD by themselves; one middleware
+    covers every page, download and API read instead of a second method on each route.
+    """
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http" or scope["method"] != "HEAD":
+            await self.app(scope, receive, send)
+            return
+
+        async def send_headers_only(message: Message) -> None:
+            if message["type"] == "http.response.body":
+                if message.get("more_body", False):
+                    return  # the body's parts are dropped; the last one ends the response
+                message = {"type": "http.response.body", "body": b"", "more_body": False}
+            await send(message)
+
+        await self.app({**scope, "method": "GET"}, receive, send_headers_only)
 
 
 class _BodyTooLarge(Exception):
@@ -206,7 +231,8 @@ def survey_error_payload(exc: SurveyError) -> dict[str, Any]:
     """The JSON body for an input error: line-numbered ``errors`` or ``error`` with ``points``."""
     record = error_record(exc)
     if isinstance(exc, FieldbookError):
-        return {"error": record["message"], "errors": record["issues"]}
+        return {"error": record["message"], "errors": record["issues"],
+                "error_count": record["count"]}
     if isinstance(exc, NetworkError):
         return {"error": exc.message, "points": list(exc.points)}
     return {"error": str(exc)}
@@ -225,6 +251,14 @@ def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
                            payload["error"], issues=payload.get("errors", []),
                            points=payload.get("points", []))
 
+    @app.exception_handler(RunGone)
+    async def run_gone(request: Request, exc: RunGone) -> Response:
+        """The project was deleted while this request adjusted it: nothing is left to show."""
+        message = "This project was deleted while it was being adjusted."
+        if is_api(request.url.path):
+            return JSONResponse({"error": message}, status_code=404)
+        return _error_page(templates, request.scope, 404, "Not found", message)
+
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request: Request, exc: StarletteHTTPException) -> Response:
         """404, 405, 400 and friends."""
@@ -237,7 +271,12 @@ def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
 
     @app.exception_handler(RequestValidationError)
     async def validation_error(request: Request, exc: RequestValidationError) -> Response:
-        """A malformed request (not a field book problem)."""
+        """A malformed request (not a field book problem); a malformed path names nothing: 404."""
+        if any(error.get("loc", ("",))[0] == "path" for error in exc.errors()):
+            detail = "There is nothing at this address."
+            if is_api(request.url.path):
+                return JSONResponse({"error": detail}, status_code=404)
+            return _error_page(templates, request.scope, 404, "Not found", detail)
         message = "The request is not in the expected form."
         if is_api(request.url.path):
             return JSONResponse({"error": message}, status_code=422)
@@ -347,4 +386,5 @@ def create_app(
         app.add_middleware(TrustedHostMiddleware, allowed_hosts=list(allowed_hosts),
                            www_redirect=False)
     app.add_middleware(SecurityHeadersMiddleware)
+    app.add_middleware(HeadAsGetMiddleware)
     return app

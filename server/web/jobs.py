@@ -10,10 +10,15 @@ was interrupted (the service stopped before it finished).
 
 from __future__ import annotations
 
+import logging
 import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
+
+from ..storage import RunGone
+
+logger = logging.getLogger("stationfit.web")
 
 #: Stage names of the pipeline in words for the progress page.
 STAGE_WORDS = {
@@ -70,6 +75,12 @@ class Jobs:
         def target() -> None:
             try:
                 work(job.progress)
+            except RunGone:
+                # Deleting a project while it adjusts is allowed: the result has nowhere to go.
+                logger.info("run %s: its project was deleted during the adjustment; "
+                            "the result was dropped", run_id)
+            except Exception:
+                logger.exception("run %s: the background adjustment failed", run_id)
             finally:
                 with self._lock:
                     self._jobs.pop(run_id, None)

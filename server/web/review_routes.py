@@ -34,7 +34,7 @@ from ..robust import HUBER_K, RobustResult, robust_adjustment
 from ..snooping import SnoopingPlan, propose_snooping
 from ..storage import PendingEdit, Project, Run, Store
 from ..tau_test import tau_test
-from .routes import _attachment, _download_name, _project_or_404, display_name
+from .routes import RowId, _attachment, _download_name, _project_or_404, display_name
 
 router = APIRouter()
 
@@ -383,7 +383,7 @@ async def queue_edit(request: Request, project_id: str) -> Response:
 
 
 @router.post("/projects/{project_id}/edits/{edit_id}/undo")
-async def undo_edit(request: Request, project_id: str, edit_id: int) -> Response:
+async def undo_edit(request: Request, project_id: str, edit_id: RowId) -> Response:
     """Withdraw a queued decision."""
     store = _store(request)
     project = _project_or_404(store, project_id)
@@ -549,7 +549,7 @@ async def delete_project(request: Request, project_id: str) -> Response:
 
 
 @router.get("/api/projects/{project_id}/runs/{run_id}")
-def api_run(request: Request, project_id: str, run_id: int) -> JSONResponse:
+def api_run(request: Request, project_id: str, run_id: RowId) -> JSONResponse:
     """One run: its settings (the decisions in force) and its result or error."""
     store = _store(request)
     project = _project_or_404(store, project_id)

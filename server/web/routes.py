@@ -6,9 +6,10 @@ import re
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Annotated, Any
 
 from fastapi import APIRouter, HTTPException, Request
+from fastapi import Path as PathParameter
 from fastapi.responses import (
     HTMLResponse,
     JSONResponse,
@@ -181,6 +182,14 @@ def _check_room(store: Store, max_projects: int) -> None:
         )
 
 
+#: The largest row id SQLite stores (a signed 64-bit integer).
+SQLITE_MAX_ROWID = 2**63 - 1
+#: A run or decision number in a URL: a whole number SQLite can hold.  Anything else in
+#: its place names nothing, and the app's validation handler answers 404 (not a 500 from
+#: the database's integer overflow).
+RowId = Annotated[int, PathParameter(ge=1, le=SQLITE_MAX_ROWID)]
+
+
 def _project_or_404(store: Store, project_id: str) -> Project:
     project = store.get_project(project_id)
     if project is None:
@@ -335,6 +344,8 @@ def _run_payload(run: Run | None) -> dict[str, Any]:
     payload: dict[str, Any] = {"result": None, "error": error.get("message", "")}
     if "issues" in error:
         payload["errors"] = error["issues"]
+    if "count" in error:  # stored since the count was kept; older failed runs lack it
+        payload["error_count"] = error["count"]
     if "points" in error:
         payload["points"] = error["points"]
     return payload
@@ -510,7 +521,7 @@ async def demo_open(name: str, request: Request) -> Response:
 
 
 # --------------------------------------------------------------------------------------
-# JSON API (shared/spec/result.md)
+# JSON API (the result JSON of to_json_dict; keys keep their meaning, new keys may be added)
 
 
 _MISSING_FIELD = {"error": "send the field book in the multipart field 'fieldbook'"}
