@@ -249,7 +249,7 @@ def test_undo_withdraws_a_queued_decision(client, project):
         ({"action": "sd", "sd": "3"}, "needs a unit, e.g. 3mm"),
         ({"action": "sd", "sd": "2sec"}, "no longer reads"),
         ({"action": "include"}, "is already used in the adjustment"),
-        ({"action": "drop"}, "choose leave out, bring back or change sd"),
+        ({"action": "drop"}, "choose leave out, bring back, change sd or correct the value"),
     ],
 )
 def test_invalid_decisions_are_refused_beside_the_observation(client, project, extra, message):
