@@ -412,8 +412,8 @@ def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> li
             w_cell = Paragraph(f"<b>{styles.text(o.w)}</b>", styles.cell_right)
         rows.append([str(o.line), o.kind,
                      Paragraph(marks, styles.cell_muted if o.ignored else styles.cell),
-                     booked, o.observed, o.adjusted, o.residual + sfx, o.sd + sfx, o.redundancy, w_cell,
-                     o.mdb + sfx, test])
+                     booked, o.observed, o.adjusted, o.residual + sfx, o.sd + sfx, o.redundancy,
+                     w_cell, o.mdb + sfx, test])
         states.append("bad" if o.flagged else ("muted" if o.ignored else ""))
     note = ("Booked: the value as written in the field book, with the reduction that turned it "
             "into the value used beneath it (× the scale factor for a distance)."

@@ -139,6 +139,7 @@ def test_a_misbooked_value_corrected_in_the_review_and_compared(page, base_url, 
     cells = row.locator("td").all_inner_texts()
     assert cells[2:4] == [f"{float(booked):.4f}", f"{float(right):.4f}"]
     assert page.locator(f"#flags-cleared tr[data-line='{FIRST}']").is_visible()
-    assert f"Correct the value from {booked} to {right}" in page.locator("#made-heading + ol").inner_text()
+    made = page.locator("#made-heading + ol").inner_text()
+    assert f"Correct the value from {booked} to {right}" in made
     page.screenshot(path="/tmp/review-correct-compare.png", full_page=True)
     assert browser_problems(page) == []

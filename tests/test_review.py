@@ -294,7 +294,8 @@ def test_correcting_to_the_same_value_or_a_distance_with_a_unit_is_refused():
     with pytest.raises(EditError, match="the value is already"):
         apply_edits(text, [ObservationEdit(10, "correct", "why", TODAY, value=booked["A"])])
     line = _line_of(text, "distance P A")
-    with pytest.raises(EditError, match=r"line \d+: the corrected value does not read: .*leave out the unit"):
+    refused = r"line \d+: the corrected value does not read: .*leave out the unit"
+    with pytest.raises(EditError, match=refused):
         apply_edits(text, [ObservationEdit(line, "correct", "why", TODAY, value="500.0m")])
 
 

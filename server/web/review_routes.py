@@ -365,7 +365,7 @@ async def queue_edit(request: Request, project_id: str) -> Response:
         message = f"line {line}: choose leave out, bring back, change sd or correct the value"
     elif len(values["sd"]) > review.MAX_SD_CHARS:
         message = f"line {line}: the standard deviation is too long"
-    elif len(values["value"]) > MAX_VALUE_CHARS:
+    elif action == "correct" and len(values["value"]) > MAX_VALUE_CHARS:
         message = f"line {line}: the corrected value is too long"
     else:
         left_out = review.ignored_after(state.result, state.pending_edits).get(line)
