@@ -1,9 +1,11 @@
 """A surveyor's decisions written back into the field book text.
 
-Leaving an observation out, bringing it back or changing its standard
-deviation edits only that observation's own line, so every line keeps its
-number: the flag ``ignore`` is added or removed, ``sd=`` is set, and the
-reason with its date is appended to the line's comment.  The original text
+Leaving an observation out, bringing it back, changing its standard
+deviation or correcting a misbooked value edits only that observation's own
+line, so every line keeps its number: the flag ``ignore`` is added or
+removed, ``sd=`` is set, or the value is replaced, and the reason with its
+date is appended to the line's comment (a correction keeps the value it
+replaced there: ``# corrected from 291:16:40 on 2026-12-03: reason``).  The original text
 is never changed in place; ``apply_edits`` returns a new text that parses to
 the field book the surveyor decided on.
 """
@@ -18,7 +20,11 @@ from .errors import FieldbookError, SurveyError
 from .fieldbook import parse_fieldbook
 from .units import UnitError, parse_quantity
 
-ACTIONS = ("exclude", "include", "sd")
+ACTIONS = ("exclude", "include", "sd", "correct")
+#: Longest corrected value accepted (characters); no booked value is longer.
+MAX_VALUE_CHARS = 40
+#: Characters a value cannot contain: they would end it, start a comment or make an option.
+_NOT_IN_VALUE = re.compile(r'[\s#"=]')
 _REASON_LIMIT = 300
 _CONTROL = re.compile(r"[\x00-\x1f\x7f\u2028\u2029]+")
 _DATE = re.compile(r"^\d{4}-\d{2}-\d{2}$")
@@ -40,8 +46,11 @@ class EditError(SurveyError):
 class ObservationEdit:
     """One decision about the observation on ``line``.
 
-    ``action`` is "exclude" (leave out), "include" (bring back) or "sd"
-    (use ``sd``, a quantity with units such as ``3mm`` or ``2.5sec``).
+    ``action`` is "exclude" (leave out), "include" (bring back), "sd"
+    (use ``sd``, a quantity with units such as ``3mm`` or ``2.5sec``) or
+    "correct" (replace the booked value by ``value``, written as the field
+    book writes it; ``previous`` is the value it replaces, recorded when the
+    decision is made so the review trail can show both).
     """
 
     line: int
@@ -49,6 +58,8 @@ class ObservationEdit:
     reason: str
     date: str
     sd: str | None = None
+    value: str | None = None
+    previous: str | None = None
 
     def describe(self) -> str:
         """The decision in words, as written into the field book comment."""
@@ -56,6 +67,8 @@ class ObservationEdit:
             return "left out"
         if self.action == "include":
             return "brought back"
+        if self.action == "correct":
+            return f"value corrected to {self.value}"
         return f"sd set to {self.sd}"
 
 
@@ -84,6 +97,16 @@ def validate_edit(edit: ObservationEdit) -> None:
             (quantity.constant, quantity.ppm, quantity.per_sqrtkm, quantity.per_setup)
         ):
             raise EditError(f"line {edit.line}: a standard deviation must be positive")
+    if edit.action == "correct":
+        text = (edit.value or "").strip()
+        if not text:
+            raise EditError(f"line {edit.line}: type the corrected value as the field book "
+                            "writes it (D:M:S such as 291:16:50 for angles in a dms file)")
+        if len(text) > MAX_VALUE_CHARS:
+            raise EditError(f"line {edit.line}: the corrected value is too long")
+        if _NOT_IN_VALUE.search(text):
+            raise EditError(f"line {edit.line}: the corrected value must be one number or angle, "
+                            "without spaces, quotes, '#' or '='")
 
 
 def apply_edits(text: str, edits: Sequence[ObservationEdit], *, source: str = "") -> str:
@@ -106,8 +129,37 @@ def apply_edits(text: str, edits: Sequence[ObservationEdit], *, source: str = ""
     try:
         parse_fieldbook(edited, source=source)
     except FieldbookError as exc:
+        corrected = {e.line for e in edits if e.action == "correct"}
+        for issue in exc.issues:
+            if issue.line in corrected:  # the corrected value itself: say so, plainly
+                raise EditError(f"line {issue.line}: the corrected value does not read: "
+                                f"{issue.message}") from None
         raise EditError("the edited field book no longer reads: " + str(exc)) from None
     return edited
+
+
+def booked_value(text: str, line: int, *, source: str = "") -> str:
+    """The value token of the observation on ``line``, as written (for the review trail)."""
+    fieldbook = parse_fieldbook(text, source=source)
+    obs = next((o for o in fieldbook.observations if o.line == line), None)
+    lines = _LINE.findall(text)
+    if obs is None or not 1 <= line <= len(lines):
+        raise EditError(f"line {line} holds no observation that can be edited")
+    value = value_token(lines[line - 1], obs.kind)
+    if not value:
+        raise EditError(f"line {line}: its value could not be found")
+    return value
+
+
+def value_token(line_text: str, kind: str) -> str:
+    """The value as written on an observation's line of kind ``kind``; "" if there is none."""
+    code, _ = _split_comment(line_text.rstrip("\r\n"))
+    spans = _token_spans(code)
+    index = _LEADING_TOKENS.get(kind, 0) - 1
+    if not 0 <= index < len(spans):
+        return ""
+    start, end = spans[index]
+    return code[start:end]
 
 
 def _edit_line(line: str, edit: ObservationEdit, first_option: int) -> str:
@@ -115,6 +167,8 @@ def _edit_line(line: str, edit: ObservationEdit, first_option: int) -> str:
     ending = line[len(body):]
     code, comment = _split_comment(body)
     spans = _token_spans(code)
+    if edit.action == "correct":
+        return _correct_line(code, comment, ending, spans, edit, first_option - 1)
     tokens = [code[a:b] for a, b in spans]
     keep = list(range(len(tokens)))
     if edit.action in ("exclude", "include"):
@@ -130,6 +184,20 @@ def _edit_line(line: str, edit: ObservationEdit, first_option: int) -> str:
     note = f"{edit.date} {edit.describe()}: {clean_reason(edit.reason)}"
     comment = f"{comment}; {note}" if comment else f"# {note}"
     return f"{indent}{' '.join(new_tokens)}  {comment}{ending}"
+
+
+def _correct_line(code: str, comment: str, ending: str, spans: list[tuple[int, int]],
+                  edit: ObservationEdit, index: int) -> str:
+    """The value token replaced in place (the surveyor's spacing kept), the old one commented."""
+    if len(spans) <= index:
+        raise EditError(f"line {edit.line}: its value could not be found")
+    start, end = spans[index]
+    old, new = code[start:end], (edit.value or "").strip()
+    if new == old:
+        raise EditError(f"line {edit.line}: the value is already {old}")
+    note = f"corrected from {old} on {edit.date}: {clean_reason(edit.reason)}"
+    comment = f"{comment}; {note}" if comment else f"# {note}"
+    return f"{code[:start]}{new}{code[end:]}  {comment}{ending}"
 
 
 def _split_comment(body: str) -> tuple[str, str]:

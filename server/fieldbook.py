@@ -291,7 +291,8 @@ class _Parser:
             centering = self.centering
         self.observations.append(
             Observation(
-                line, kind, from_point, None, to, value * scale, sigma, centering, scale, length_km
+                line, kind, from_point, None, to, value * scale, sigma, centering, scale, length_km,
+                booked=value,
             )
         )
         self.statements += 1
@@ -308,9 +309,10 @@ class _Parser:
         if sigma is None or sigma.sigma is None:
             return False
         try:
-            value = wrap_2pi(observed_angle(value_text, self.angle_unit))
+            booked = observed_angle(value_text, self.angle_unit)
         except UnitError:
             return False
+        value = wrap_2pi(booked)
         round_.lines.append(line)
         self.observations.append(
             Observation(
@@ -325,6 +327,7 @@ class _Parser:
                 round_line=round_.line,
                 ignored=round_.ignored,
                 note=round_.note,
+                booked=booked,
             )
         )
         self.statements += 1
@@ -662,7 +665,9 @@ class _Parser:
         *point_tokens, value_token = st.values
         names = [self.read(st, token, point_name) for token in point_tokens]
         self.check_distinct(st, kind, names)
-        value = _VALUE_READERS[kind](self, st, value_token)
+        booked = _VALUE_READERS[kind](self, st, value_token)
+        # horizontal angles are used in [0, 2π); the booked value keeps what was written
+        value = wrap_2pi(booked) if booked is not None and kind in _WRAPPED_KINDS else booked
         sigma = self.sigma(st, kind)
         length_km = setups = None
         if kind == "level":
@@ -693,6 +698,7 @@ class _Parser:
                 target_height=ht,
                 ignored="ignore" in st.flags,
                 note=st.text("note"),
+                booked=booked,
             )
         )
 
@@ -770,10 +776,6 @@ class _Parser:
             return None
         return value
 
-    def read_horizontal(self, st: Statement, token: Token) -> float | None:
-        value = self.angle(st, token)
-        return None if value is None else wrap_2pi(value)
-
     def read_zenith(self, st: Statement, token: Token) -> float | None:
         value = self.angle(st, token)
         if value is None or -_ZENITH_SLACK <= value <= math.pi + _ZENITH_SLACK:
@@ -803,7 +805,8 @@ class _Parser:
         if to is not None and to == round_.at:
             message = f"direction from {to} to itself: TO must differ from AT"
             self.error(line, st.values[0].raw, message)
-        value = self.read_horizontal(st, st.values[1])
+        booked = self.angle(st, st.values[1])
+        value = None if booked is None else wrap_2pi(booked)
         own = self.sigma(st, "direction") if "sd" in st.options else None
         sigma = own or round_.sigma or self.defaults.get("direction")
         if sigma is None and not (round_.sd_missing_reported or round_.flawed):
@@ -826,6 +829,7 @@ class _Parser:
                 round_line=round_.line,
                 ignored=round_.ignored or "ignore" in st.flags,
                 note=st.text("note") or round_.note,
+                booked=booked,
             )
         )
 
@@ -886,12 +890,14 @@ _LEVEL_PARTS = (
     ("per_setup", "setups", "per-setup", "the number of setups, e.g. setups=4"),
 )
 
+#: Kinds whose value the adjustment uses in [0, 2π) (the booked value is kept as written).
+_WRAPPED_KINDS = frozenset({"angle", "azimuth"})
 _VALUE_READERS: dict[str, Callable[[_Parser, Statement, Token], float | None]] = {
     "level": _Parser.read_level,
     "distance": _Parser.read_distance,
     "slope": _Parser.read_distance,
-    "angle": _Parser.read_horizontal,
-    "azimuth": _Parser.read_horizontal,
+    "angle": _Parser.angle,
+    "azimuth": _Parser.angle,
     "zenith": _Parser.read_zenith,
 }
 #: What each statement does, by keyword (its syntax is ``GRAMMARS`` in the lexer).

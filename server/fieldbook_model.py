@@ -59,6 +59,8 @@ class Observation:
     multiplied by ``scale``) or radians (horizontal angles in [0, 2π)).
     ``sigma`` is the instrument standard deviation in force (own ``sd=`` or
     the default for the kind); ``centering`` the centering σ in metres.
+    ``booked`` is the value as written, in SI but before any reduction (no
+    scale factor, angles not yet brought into [0, 2π)); None means ``value``.
     """
 
     line: int
@@ -77,6 +79,7 @@ class Observation:
     round_line: int | None = None
     ignored: bool = False
     note: str = ""
+    booked: float | None = None
 
 
 @dataclass(frozen=True, slots=True)

@@ -146,6 +146,8 @@ def _point_detail(row: report.PointRow, point: PointResult, unit: str,
                   confidence: str) -> list[list[str]]:
     """(label, value) rows for the side panel, every value formatted by ``report``."""
     out = [["Role", row.role], ["East", f"{row.east} {unit}"], ["North", f"{row.north} {unit}"]]
+    if row.note:
+        out.insert(1, ["Note", row.note])
     if point.height is not None:
         out.append(["Height", f"{row.height} {unit}"])
     out += [["sd East", f"{row.sd_east} {unit}"], ["sd North", f"{row.sd_north} {unit}"]]
@@ -169,6 +171,9 @@ def _observation_detail(row: report.ObservationRow, unit: str) -> dict[str, Any]
         "marks": row.stations,
         "observed": row.observed + observed_suffix if row.observed != report.NOT_APPLICABLE
         else row.observed,
+        "booked": row.booked + observed_suffix if row.booked != report.NOT_APPLICABLE
+        else row.booked,
+        "reduction": row.reduction,
         "residual": row.residual + suffix if row.residual != report.NOT_APPLICABLE
         else row.residual,
         "w": row.w,

@@ -90,6 +90,46 @@ def fmt_angle(value_deg: float | None, angle_unit: str, *, blank: str = NOT_APPL
     return _fixed(value_deg, 6)
 
 
+def fmt_booked_angle(value_deg: float | None, angle_unit: str) -> str:
+    """A booked angle as written: like ``fmt_angle`` but never brought into [0°, 360°)."""
+    if value_deg is None:
+        return NOT_APPLICABLE
+    if angle_unit == "dms":
+        return format_dms(value_deg, 1)
+    return _fixed(value_deg, 6)
+
+
+def fmt_scale(factor: float) -> str:
+    """A scale factor with the digits it was given to (at most 10 significant)."""
+    return f"{factor:.10g}"
+
+
+def reduction_text(o: ObservationResult) -> str:
+    """What turned the booked value into the value used: "× k" for a scaled distance,
+    "± n·360°" for an angle booked outside one turn, else "—" (used as booked)."""
+    if o.scale_factor is not None and o.scale_factor != 1.0:
+        return f"× {fmt_scale(o.scale_factor)}"
+    if o.angular and o.kind != "zenith" and o.booked is not None:
+        turns = round((o.observed - o.booked) / 360.0)
+        if turns:
+            return f"{'+' if turns > 0 else '−'} {abs(turns) * 360}°"
+    return NOT_APPLICABLE
+
+
+def reductions_note(result: AdjustmentResult) -> str:
+    """One sentence naming the scale factors applied to distances, or "" when none was."""
+    factors = sorted({o.scale_factor for o in result.observations
+                      if o.scale_factor is not None and o.scale_factor != 1.0})
+    if not factors:
+        return ""
+    listed = ", ".join(fmt_scale(f) for f in factors)
+    noun = "factor" if len(factors) == 1 else "factors"
+    count = sum(1 for o in result.observations
+                if o.scale_factor is not None and o.scale_factor != 1.0)
+    return (f"{count} booked distance{'s' if count != 1 else ''} reduced by the scale {noun} "
+            f"{listed} (used = booked × factor).")
+
+
 def fmt_arcsec(value: float | None, *, blank: str = NOT_APPLICABLE) -> str:
     """Arc-seconds to 0.1″."""
     return blank if value is None else _fixed(value, 1)
@@ -163,6 +203,7 @@ class PointRow:
     semi_minor: str
     azimuth: str
     in_use: bool
+    note: str = ""
 
 
 @dataclass(frozen=True, slots=True)
@@ -190,6 +231,8 @@ class ObservationRow:
     residual_raw: float | None
     redundancy_raw: float | None
     note: str
+    booked: str = NOT_APPLICABLE
+    reduction: str = NOT_APPLICABLE
 
 
 @dataclass(frozen=True, slots=True)
@@ -338,6 +381,7 @@ def point_rows(result: AdjustmentResult) -> list[PointRow]:
             semi_minor=fmt_length(e.semi_minor if e else None, unit),
             azimuth=fmt_azimuth(e.azimuth if e else None, result.angle_unit),
             in_use=p.in_use,
+            note=p.note,
         ))
     return out
 
@@ -372,10 +416,12 @@ def observation_rows(result: AdjustmentResult) -> list[ObservationRow]:
     for o in result.observations:
         if o.angular:
             value = fmt_angle(o.observed, angle_unit)
+            booked = fmt_booked_angle(o.booked, angle_unit)
             adjusted = fmt_angle(o.adjusted, angle_unit)
             residual, sd, mdb = fmt_arcsec(o.residual), fmt_arcsec(o.sd), fmt_arcsec(o.mdb)
         else:
             value = fmt_length(o.observed, unit)
+            booked = fmt_length(o.booked, unit)
             adjusted = fmt_length(o.adjusted, unit)
             residual = fmt_length(o.residual, unit)
             sd, mdb = fmt_length(o.sd, unit), fmt_length(o.mdb, unit)
@@ -402,6 +448,8 @@ def observation_rows(result: AdjustmentResult) -> list[ObservationRow]:
             residual_raw=o.residual,
             redundancy_raw=o.redundancy,
             note=o.note,
+            booked=booked,
+            reduction=reduction_text(o),
         ))
     return out
 
@@ -647,6 +695,8 @@ def context(result: AdjustmentResult, presets: Sequence[Preset] = ()) -> dict[st
         "units_rows": units_rows(result),
         "datum_rows": datum_rows(result),
         "point_rows": point_rows(result),
+        "point_notes": any(p.note for p in result.points),
+        "reductions_note": reductions_note(result),
         "observation_rows": observation_rows(result),
         "misclosure_rows": misclosure_rows(result),
         "columns": columns(result),
@@ -748,7 +798,7 @@ def _number(value: float | None, decimals: int) -> str:
 
 POINT_CSV_HEADER = (
     "name", "east", "north", "height", "sd_east", "sd_north", "sd_height",
-    "fixed", "weighted", "semi_major", "semi_minor", "azimuth",
+    "fixed", "weighted", "semi_major", "semi_minor", "azimuth", "note",
 )
 
 
@@ -773,6 +823,7 @@ def points_csv(result: AdjustmentResult) -> str:
             _number(e.semi_major if e else None, places),
             _number(e.semi_minor if e else None, places),
             _number(e.azimuth if e else None, 4),
+            safe_cell(p.note),
         ])
     return buffer.getvalue()
 
@@ -814,6 +865,8 @@ def report_text(result: AdjustmentResult) -> str:
         f"variance factor {fmt_ratio(s.variance_factor, 3)}"
     )
     out += [f"{c.symbol} {c.name}: {c.words}." for c in standards_summary(result)]
+    if reduced := reductions_note(result):
+        out.append(reduced)
 
     header = ["point"]
     right = set()
@@ -825,6 +878,9 @@ def report_text(result: AdjustmentResult) -> str:
         header += ["ellipse a", "b", "az"]
     header.append("datum")
     right = set(range(1, len(header) - 1))
+    notes = any(p.note for p in result.points)
+    if notes:
+        header.append("note")
     body = []
     for p in point_rows(result):
         row = [p.name]
@@ -835,6 +891,8 @@ def report_text(result: AdjustmentResult) -> str:
         if cols.ellipses:
             row += [p.semi_major, p.semi_minor, p.azimuth]
         row.append(p.role)
+        if notes:
+            row.append(p.note)
         body.append(row)
     out += ["", "Points"] + _table(header, body, right)
 
@@ -850,11 +908,11 @@ def report_text(result: AdjustmentResult) -> str:
     out += ["", f"Flagged observations (|w| > {fmt_w(s.critical_w)}, largest first)"]
     if flagged:
         out += _table(
-            ["line", "kind", "marks", "residual", "w", "MDB"],
-            [[str(o.line), o.kind, o.stations,
+            ["line", "kind", "marks", "booked", "reduction", "used", "residual", "w", "MDB"],
+            [[str(o.line), o.kind, o.stations, o.booked, o.reduction, o.observed,
               o.residual + (ARCSEC if o.angular else f" {unit}"), o.w,
               o.mdb + (ARCSEC if o.angular else f" {unit}")] for o in flagged],
-            {0, 3, 4, 5},
+            {0, 3, 4, 5, 6, 7, 8},
         )
     else:
         out.append("none")

@@ -254,7 +254,7 @@ def _points_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles
     if cols.ellipses:
         columns += [Column(f"Ellipse a ({data['confidence']})", 44, True),
                     Column("b", 34, True), Column("Azimuth a", 44, True)]
-    columns.append(Column("Datum", None))
+    columns.append(Column("Datum / note" if data["point_notes"] else "Datum", None))
     rows, states = [], []
     for p in data["point_rows"]:
         row: list[Any] = [Paragraph(styles.text(p.name), styles.cell_bold)]
@@ -264,7 +264,10 @@ def _points_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles
             row += [p.height, p.sd_height]
         if cols.ellipses:
             row += [p.semi_major, p.semi_minor, p.azimuth]
-        row.append(Paragraph(styles.text(p.role), styles.cell))
+        role = styles.text(p.role)
+        if p.note:  # the monument's description under its role
+            role += f'<br/><font color="{hex_colour(MUTED)}">{styles.text(p.note)}</font>'
+        row.append(Paragraph(role, styles.cell))
         rows.append(row)
         states.append("" if p.in_use else "muted")
     note = (f"Coordinates and standard deviations in {unit}; standard deviations are a "
@@ -376,7 +379,8 @@ def _histogram_block(data: dict[str, Any], styles: Styles, width: float) -> list
 def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> list[Flowable]:
     cols = data["columns"]
     columns = [Column("Line", 22, True), Column("Kind", 38), Column("Marks", None, widest=400),
-               Column(f"Observed\n({cols.values_unit})", 58, True), Column("Adjusted", 58, True),
+               Column(f"Booked\n({cols.values_unit})", 58, True), Column("Used", 58, True),
+               Column("Adjusted", 58, True),
                Column(f"Residual\n({cols.small_unit})", 44, True),
                Column(f"sd\n({cols.small_unit})", 36, True), Column("r", 24, True),
                Column("w", 30, True), Column(f"MDB\n({cols.small_unit})", 40, True),
@@ -397,15 +401,24 @@ def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> li
             test = Paragraph("uncontrolled", styles.cell)
         else:
             test = Paragraph("ok", styles.cell_muted)
+        # the reduction under the booked value, where there is one (the page is too narrow for
+        # a column of its own beside the test figures)
+        booked: Any = o.booked
+        if o.reduction != report.NOT_APPLICABLE:
+            booked = Paragraph(f"{styles.text(o.booked)}<br/>{styles.text(o.reduction)}",
+                               styles.cell_right)
         w_cell: Any = o.w
         if o.flagged:
             w_cell = Paragraph(f"<b>{styles.text(o.w)}</b>", styles.cell_right)
         rows.append([str(o.line), o.kind,
                      Paragraph(marks, styles.cell_muted if o.ignored else styles.cell),
-                     o.observed, o.adjusted, o.residual + sfx, o.sd + sfx, o.redundancy, w_cell,
-                     o.mdb + sfx, test])
+                     booked, o.observed, o.adjusted, o.residual + sfx, o.sd + sfx, o.redundancy,
+                     w_cell, o.mdb + sfx, test])
         states.append("bad" if o.flagged else ("muted" if o.ignored else ""))
-    note = ("Residual = adjusted − observed. r: redundancy number. w: standardized residual, "
+    note = ("Booked: the value as written in the field book, with the reduction that turned it "
+            "into the value used beneath it (× the scale factor for a distance)."
+            + (f" {data['reductions_note']}" if data["reductions_note"] else "")
+            + " Residual = adjusted − used. r: redundancy number. w: standardized residual, "
             f"flagged when |w| > {data['critical_w']}. MDB: minimal detectable bias."
             + (" Angular figures are marked ″ (arc-seconds); the others are in "
                f"{data['length_unit']}." if cols.mixed else ""))

@@ -91,6 +91,7 @@ class PointResult:
     weighted: str
     ellipse: Ellipse | None
     in_use: bool = True
+    note: str = ""
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -112,6 +113,11 @@ class ObservationResult:
     flagged: bool
     ignored: bool
     note: str = ""
+    #: The value as written (length units or decimal degrees) before any reduction; None
+    #: only in results stored before it was recorded.
+    booked: float | None = None
+    #: The scale factor applied to a booked distance (1.0 when none); None for other kinds.
+    scale_factor: float | None = None
 
     @property
     def angular(self) -> bool:
@@ -211,6 +217,7 @@ class AdjustmentResult:
                     "sd_height": p.sd_height,
                     "fixed": p.fixed,
                     "weighted": p.weighted,
+                    "note": p.note,
                     "ellipse": None
                     if p.ellipse is None
                     else {
@@ -230,6 +237,8 @@ class AdjustmentResult:
                     "at": o.at,
                     "to": o.to,
                     "observed": o.observed,
+                    "booked": o.booked,
+                    "scale_factor": o.scale_factor,
                     "adjusted": o.adjusted,
                     "residual": o.residual,
                     "sd": o.sd,
@@ -374,6 +383,7 @@ def _observation_results(
     angular = np.array([obs.kind in ANGULAR_KINDS for obs in used], dtype=bool)
     wrapped = angular & np.array([obs.kind != "zenith" for obs in used], dtype=bool)
     observed_si = np.array([obs.value for obs in used], dtype=float)
+    booked_si = np.array([_booked_si(obs) for obs in used], dtype=float)
     adjusted_si = np.array(solution.adjusted[:n_used], dtype=float)
     adjusted_si[wrapped] = _wrap_2pi(adjusted_si[wrapped])
     residual_si = np.asarray(solution.residuals[:n_used], dtype=float)
@@ -386,6 +396,7 @@ def _observation_results(
     small = np.where(angular, ARCSEC_PER_RAD, per_m)
     # math.degrees multiplies by 180/π; so does this, for the same last bit
     observed = np.where(angular, observed_si * _DEG_PER_RAD, observed_si * per_m).tolist()
+    booked = np.where(angular, booked_si * _DEG_PER_RAD, booked_si * per_m).tolist()
     adjusted = np.where(angular, adjusted_si * _DEG_PER_RAD, adjusted_si * per_m).tolist()
     residual = (residual_si * small).tolist()
     sd = (sd_si * small).tolist()
@@ -420,6 +431,8 @@ def _observation_results(
                     flagged=flagged[row],
                     ignored=obs.ignored,
                     note=obs.note,
+                    booked=booked[row],
+                    scale_factor=_scale_factor(obs),
                 )
             )
             continue
@@ -447,6 +460,8 @@ def _observation_results(
                 flagged=False,
                 ignored=obs.ignored,
                 note=obs.note,
+                booked=to_value(_booked_si(obs)),
+                scale_factor=_scale_factor(obs),
             )
         )
     if uncontrolled:
@@ -459,6 +474,18 @@ def _observation_results(
 
 
 _DEG_PER_RAD = 180.0 / math.pi
+
+
+def _booked_si(obs: Observation) -> float:
+    """The value as written, in SI, before the scale factor and the reduction into [0, 2π)."""
+    if obs.booked is not None:
+        return obs.booked
+    return obs.value / obs.scale if obs.scale else obs.value
+
+
+def _scale_factor(obs: Observation) -> float | None:
+    """The scale factor a distance was multiplied by; None where no scale applies."""
+    return obs.scale if obs.kind == "distance" else None
 
 
 def _wrap_2pi(angle_rad: np.ndarray) -> np.ndarray:
@@ -566,6 +593,7 @@ def _point_results(
                 weighted=p.weighted,
                 ellipse=ellipses.get(p.name),
                 in_use=p.in_use,
+                note=p.note,
             )
         )
     return tuple(results)

@@ -17,7 +17,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from .edits import ACTIONS, EditError, ObservationEdit
+from .edits import ACTIONS, EditError, ObservationEdit, value_token
 from .report import (
     NOT_APPLICABLE,
     ObservationRow,
@@ -56,6 +56,10 @@ def edit_to_json(edit: ObservationEdit) -> dict[str, Any]:
                             "date": edit.date}
     if edit.sd is not None:
         data["sd"] = edit.sd
+    if edit.value is not None:
+        data["value"] = edit.value
+    if edit.previous is not None:
+        data["previous"] = edit.previous
     return data
 
 
@@ -65,13 +69,15 @@ def edit_from_json(data: Any) -> ObservationEdit:
         raise EditError("a stored decision is not readable")
     line, action = data.get("line"), data.get("action")
     reason, date, sd = data.get("reason"), data.get("date"), data.get("sd")
+    value, previous = data.get("value"), data.get("previous")
     if not isinstance(line, int) or isinstance(line, bool) or action not in ACTIONS:
         raise EditError("a stored decision is not readable")
     if not isinstance(reason, str) or not isinstance(date, str):
         raise EditError(f"line {line}: a stored decision is not readable")
-    if sd is not None and not isinstance(sd, str):
+    if any(v is not None and not isinstance(v, str) for v in (sd, value, previous)):
         raise EditError(f"line {line}: a stored decision is not readable")
-    return ObservationEdit(line=line, action=action, reason=reason, date=date, sd=sd)
+    return ObservationEdit(line=line, action=action, reason=reason, date=date, sd=sd,
+                           value=value, previous=previous)
 
 
 def edits_from_json(items: Iterable[Any]) -> list[ObservationEdit]:
@@ -105,14 +111,25 @@ def decision_rows(
         out.append(DecisionRow(
             line=edit.line,
             action=edit.action,
-            words={"exclude": "Leave out", "include": "Bring back"}.get(
-                edit.action, f"Change sd to {edit.sd}"),
+            words=decision_words(edit),
             reason=edit.reason,
             date=edit.date,
             stations=f"{obs.kind} {stations(obs)}" if obs is not None else "",
             edit_id=ids[k] if ids is not None else None,
         ))
     return out
+
+
+def decision_words(edit: ObservationEdit) -> str:
+    """A decision as a short phrase for the review trail."""
+    if edit.action == "exclude":
+        return "Leave out"
+    if edit.action == "include":
+        return "Bring back"
+    if edit.action == "correct":
+        before = f"from {edit.previous} " if edit.previous else ""
+        return f"Correct the value {before}to {edit.value}"
+    return f"Change sd to {edit.sd}"
 
 
 def ignored_after(result: AdjustmentResult, edits: Iterable[ObservationEdit]) -> dict[int, bool]:
@@ -141,6 +158,8 @@ class ReviewRow:
     tau: str
     tau_flagged: bool
     source: str
+    #: The value as the line writes it (what a correction replaces).
+    value: str = ""
 
     @property
     def line(self) -> int:
@@ -162,6 +181,7 @@ def review_rows(
             tau=fmt_w(t.tau if t is not None else None),
             tau_flagged=bool(t is not None and t.flagged),
             source=source.strip()[:MAX_SOURCE_CHARS],
+            value=value_token(source, figures.kind),
         ))
     flagged = sorted((r for r in rows if r.figures.flagged),
                      key=lambda r: (-abs(r.figures.w_raw or 0.0), r.line))
@@ -269,6 +289,18 @@ class FlagChange:
 
 
 @dataclass(frozen=True, slots=True)
+class CorrectedValue:
+    """An observation whose booked value differs between run A and run B (a correction)."""
+
+    line: int
+    observation: str
+    booked_a: str
+    booked_b: str
+    residual_a: str
+    residual_b: str
+
+
+@dataclass(frozen=True, slots=True)
 class PointShift:
     """How far a point moved from run A to run B (B − A), formatted in the shift unit."""
 
@@ -313,6 +345,24 @@ class Comparison:
     positions: bool
     heights: bool
     fixed_points: int
+    corrected: tuple[CorrectedValue, ...] = ()
+
+
+def _corrected(a: AdjustmentResult, b: AdjustmentResult) -> tuple[CorrectedValue, ...]:
+    """Booked values that changed from A to B, each with its residual before and after."""
+    rows_a = {r.line: r for r in observation_rows(a)}
+    out = []
+    for row in observation_rows(b):
+        before = rows_a.get(row.line)
+        if before is None or before.booked == row.booked:
+            continue
+        sfx = "″" if row.angular else f" {length_label(b.length_unit)}"
+        out.append(CorrectedValue(
+            line=row.line, observation=f"{row.kind} {row.stations}",
+            booked_a=before.booked, booked_b=row.booked,
+            residual_a=before.residual + sfx, residual_b=row.residual + sfx,
+        ))
+    return tuple(out)
 
 
 def shift_unit(length_unit: str) -> tuple[str, float]:
@@ -423,6 +473,7 @@ def compare(a: AdjustmentResult, b: AdjustmentResult) -> Comparison:
         positions="e" in held and any(p.east is not None for p in b.points),
         heights="h" in held and any(p.height is not None for p in b.points),
         fixed_points=fixed,
+        corrected=_corrected(a, b),
     )
 
 

@@ -220,12 +220,13 @@
       lineButton.addEventListener("click", function () { locate(o.line); });
       head.appendChild(lineButton);
       item.appendChild(head);
-      item.appendChild(facts([
-        ["Marks", o.marks],
-        ["Observed", o.observed],
+      var values = [["Marks", o.marks], ["Booked", o.booked]];
+      if (o.reduction && o.reduction !== "\u2014") { values.push(["Reduction", o.reduction]); }
+      item.appendChild(facts(values.concat([
+        ["Used", o.observed],
         ["Residual", o.residual],
         ["w", o.w]
-      ]));
+      ])));
       if (o.flagged) {
         item.appendChild(element("span", "flag", "\u2691 Flagged"));
       } else if (o.ignored) {

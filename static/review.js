@@ -2,23 +2,28 @@
 (function () {
   "use strict";
 
+  // a decision that needs a value: typing the value chooses it, choosing it focuses the value
+  function pair(form, inputClass, action) {
+    var input = form.querySelector("input." + inputClass);
+    var choice = form.querySelector("input[type=radio][value=" + action + "]");
+    if (!input || !choice) { return null; }
+    input.addEventListener("input", function () {
+      if (input.value.trim() !== "") { choice.checked = true; }
+    });
+    choice.addEventListener("change", function () {
+      if (choice.checked) { input.focus(); }
+    });
+    return choice;
+  }
+
   function wire(form) {
-    var sd = form.querySelector("input.sd-input");
-    var sdChoice = form.querySelector("input[type=radio][value=sd]");
+    var choices = [pair(form, "sd-input", "sd"), pair(form, "value-input", "correct")];
     var reason = form.querySelector("input[name=reason]");
-    if (!sd || !sdChoice) { return; }
-    // typing a standard deviation means "change sd"
-    sd.addEventListener("input", function () {
-      if (sd.value.trim() !== "") { sdChoice.checked = true; }
-    });
-    // choosing "change sd" puts the cursor where the value goes
-    sdChoice.addEventListener("change", function () {
-      if (sdChoice.checked) { sd.focus(); }
-    });
     var details = form.closest("details");
     if (details && reason) {
       details.addEventListener("toggle", function () {
-        if (details.open && !sdChoice.checked) { reason.focus(); }
+        var typing = choices.some(function (c) { return c && c.checked; });
+        if (details.open && !typing) { reason.focus(); }
       });
     }
   }

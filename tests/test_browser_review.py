@@ -112,3 +112,34 @@ def test_delete_from_the_project_list_after_confirming(page, base_url, tmp_path)
     assert page.locator(f"a[href='{project_url[len(base_url):]}']").count() == 0
     assert page.goto(project_url).status == 404
     assert [m for m in browser_problems(page) if "404" not in m] == []
+
+
+def test_a_misbooked_value_corrected_in_the_review_and_compared(page, base_url, tmp_path):
+    _upload(page, base_url, tmp_path)
+    _click_and_wait(page, page.get_by_role("link", name=re.compile(r"^Review observations")))
+    worst = page.locator(f"#line-{FIRST}")
+    booked = TEXT.splitlines()[FIRST - 1].split()[3]
+    right = f"{float(booked) - 0.015:+.5f}"  # the injected blunder is +15 mm
+    worst.locator("summary").click()
+    value = worst.get_by_label(re.compile(r"^Corrected value for line"))
+    assert value.get_attribute("placeholder") == booked  # the value it replaces
+    value.fill(right)  # typing a value chooses "correct the value" (static/review.js)
+    assert worst.get_by_label("Correct the value to").is_checked()
+    worst.get_by_label(re.compile(r"^Reason")).fill("rod read 15 mm high")
+    worst.screenshot(path="/tmp/review-correct-form.png")
+    _click_and_wait(page, worst.get_by_role("button", name="Queue decision"))
+    assert (f"Queued: correct the value from {booked} to {right}"
+            in page.locator(f"#line-{FIRST}").inner_text())
+    assert "rod read 15 mm high" in page.locator("#decisions").inner_text()
+
+    _click_and_wait(page, page.get_by_role("button", name="Re-run with 1 new decision").first)
+    assert "/compare?" in page.url
+    row = page.locator(f"#corrected tr[data-line='{FIRST}']")
+    assert row.is_visible()
+    cells = row.locator("td").all_inner_texts()
+    assert cells[2:4] == [f"{float(booked):.4f}", f"{float(right):.4f}"]
+    assert page.locator(f"#flags-cleared tr[data-line='{FIRST}']").is_visible()
+    made = page.locator("#made-heading + ol").inner_text()
+    assert f"Correct the value from {booked} to {right}" in made
+    page.screenshot(path="/tmp/review-correct-compare.png", full_page=True)
+    assert browser_problems(page) == []

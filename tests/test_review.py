@@ -253,3 +253,126 @@ def test_form_feed_in_a_comment_does_not_shift_the_edited_line():
     by_line = {o.line: o for o in parse_fieldbook(edited).observations}
     assert by_line[5].ignored and not by_line[4].ignored
     assert edited.split("\n")[4].startswith("level B C +0.8000 len=0.60km ignore")
+
+
+# ---------------------------------------------------------------------------------------
+# correcting a misbooked value
+
+
+def _round_book(misbooked_b: str | None = None) -> tuple[str, dict[str, str]]:
+    """Four held corners and a free mark P at (400, 300) m; a round at P booked from the
+    coordinates (azimuths computed here with atan2, reference direction to A)."""
+    corners = {"A": (0.0, 0.0), "B": (1000.0, 0.0), "C": (1000.0, 1000.0), "D": (0.0, 1000.0)}
+    p = (400.0, 300.0)
+
+    def azimuth(to):
+        e, n = corners[to][0] - p[0], corners[to][1] - p[1]
+        return math.degrees(math.atan2(e, n)) % 360.0
+
+    def dms(deg):
+        tenths = round(deg * 36000)
+        d, rest = divmod(tenths, 36000)
+        m, s = divmod(rest, 600)
+        return f"{d}:{m:02d}:{s // 10:02d}.{s % 10}"
+
+    booked = {t: dms((azimuth(t) - azimuth("A")) % 360.0) for t in corners}
+    if misbooked_b is not None:
+        booked["B"] = misbooked_b
+    lines = ["fieldbook 1", "units angle=dms", "defaults direction=1sec distance=2mm centering=0mm"]
+    lines += [f"point {k} east={e:.3f} north={n:.3f} fix" for k, (e, n) in corners.items()]
+    lines += ["point P east=401 north=299", "directions P"]
+    lines += [f"  {t} {booked[t]}" + ("  # second face" if t == "C" else "") for t in corners]
+    lines += ["end"]
+    lines += [f"distance P {t} {math.dist(p, xy):.4f}" for t, xy in corners.items()]
+    return "\n".join(lines) + "\n", booked
+
+
+def test_a_misbooked_minute_in_a_round_is_corrected_in_place_and_the_original_kept():
+    good, true_values = _round_book()
+    right = true_values["B"]
+    d, m, s = right.split(":")
+    wrong = f"{d}:{int(m) + 1:02d}:{s}" if int(m) < 59 else f"{d}:{int(m) - 1:02d}:{s}"
+    text, _ = _round_book(wrong)
+    line_b = _line_of(text, "  B ")
+    before = adjust_fieldbook(text)
+    assert any(o.flagged for o in before.observations)  # a minute is a blunder at 1″ σ
+    edit = ObservationEdit(line_b, "correct", "minute misread from the field sheet", TODAY,
+                           value=right)
+    edited = apply_edits(text, [edit])
+    assert len(edited.splitlines()) == len(text.splitlines())
+    new_line = edited.splitlines()[line_b - 1]
+    assert new_line == (f"  B {right}  # corrected from {wrong} on {TODAY}: "
+                        "minute misread from the field sheet")
+    # every other line is untouched
+    assert [l for k, l in enumerate(edited.splitlines()) if k != line_b - 1] == [
+        l for k, l in enumerate(text.splitlines()) if k != line_b - 1]
+    after = adjust_fieldbook(edited)
+    obs = {o.line: o for o in after.observations}
+    d_, m_, s_ = right.split(":")
+    assert obs[line_b].booked == pytest.approx(int(d_) + int(m_) / 60 + float(s_) / 3600, abs=1e-12)
+    assert not any(o.flagged for o in after.observations)
+    # the booked values were rounded to 0.1″ from the true geometry: residuals stay below 0.2″
+    assert max(abs(o.residual) for o in after.observations if o.kind == "direction") < 0.2
+    p = next(pt for pt in after.points if pt.name == "P")
+    assert (p.east, p.north) == (pytest.approx(400.0, abs=2e-4), pytest.approx(300.0, abs=2e-4))
+
+
+def test_a_correction_joins_an_existing_comment_and_other_decisions_on_the_line():
+    text, booked = _round_book()
+    line_c = _line_of(text, "  C ")
+    edits = [ObservationEdit(line_c, "sd", "old theodolite", TODAY, sd="2sec"),
+             ObservationEdit(line_c, "correct", "booked twice", TODAY, value="45:00:00.0")]
+    line = apply_edits(text, edits).splitlines()[line_c - 1]
+    assert line.startswith("  C 45:00:00.0 sd=2sec  # second face; ")
+    assert line.endswith(f"; corrected from {booked['C']} on {TODAY}: booked twice")
+    assert f"{TODAY} sd set to 2sec: old theodolite" in line
+
+
+def test_a_leveling_value_is_corrected_with_its_sign_and_options_kept():
+    edited = apply_edits(BOOK, [ObservationEdit(5, "correct", "rod read 0.81", TODAY,
+                                                value="+0.8100")])
+    assert edited.splitlines()[4] == (
+        f"level B C  +0.8100 len=0.60km  # corrected from +0.8000 on {TODAY}: rod read 0.81")
+    obs = {o.line: o for o in parse_fieldbook(edited).observations}
+    assert obs[5].value == pytest.approx(0.81) and obs[5].length_km == pytest.approx(0.6)
+
+
+@pytest.mark.parametrize(
+    ("value", "message"),
+    [
+        ("291.1650", "line 10: the corrected value does not read: '291.1650'"),
+        ("12:75:00", "minutes must be below 60"),
+        ("12 34 56", "without spaces"),
+        ("1#2", "without spaces, quotes, '#' or '='"),
+        ("", "type the corrected value"),
+        ("x" * 41, "too long"),
+    ],
+)
+def test_a_malformed_correction_is_refused_with_a_clear_message(value, message):
+    text, _ = _round_book()
+    with pytest.raises(EditError) as caught:
+        apply_edits(text, [ObservationEdit(10, "correct", "why", TODAY, value=value)])
+    assert message in str(caught.value).lower()
+
+
+def test_correcting_to_the_same_value_or_a_distance_with_a_unit_is_refused():
+    text, booked = _round_book()
+    with pytest.raises(EditError, match="the value is already"):
+        apply_edits(text, [ObservationEdit(10, "correct", "why", TODAY, value=booked["A"])])
+    line = _line_of(text, "distance P A")
+    refused = r"line \d+: the corrected value does not read: .*leave out the unit"
+    with pytest.raises(EditError, match=refused):
+        apply_edits(text, [ObservationEdit(line, "correct", "why", TODAY, value="500.0m")])
+
+
+def test_a_correction_survives_storage_as_json_and_reads_in_words():
+    from server.edits import booked_value
+    from server.review import decision_words, edit_from_json, edit_to_json
+
+    edit = ObservationEdit(5, "correct", "rod", TODAY, value="+0.8100",
+                           previous=booked_value(BOOK, 5))
+    assert edit.previous == "+0.8000"
+    assert edit_from_json(edit_to_json(edit)) == edit
+    assert decision_words(edit) == "Correct the value from +0.8000 to +0.8100"
+    with pytest.raises(EditError):
+        edit_from_json({**edit_to_json(edit), "value": 0.81})

@@ -7,6 +7,7 @@ every test checks what a surveyor would check on the screen or in the file.
 
 from __future__ import annotations
 
+from html import unescape
 import re
 import warnings
 from pathlib import Path
@@ -249,7 +250,7 @@ def test_undo_withdraws_a_queued_decision(client, project):
         ({"action": "sd", "sd": "3"}, "needs a unit, e.g. 3mm"),
         ({"action": "sd", "sd": "2sec"}, "no longer reads"),
         ({"action": "include"}, "is already used in the adjustment"),
-        ({"action": "drop"}, "choose leave out, bring back or change sd"),
+        ({"action": "drop"}, "choose leave out, bring back, change sd or correct the value"),
     ],
 )
 def test_invalid_decisions_are_refused_beside_the_observation(client, project, extra, message):
@@ -477,3 +478,82 @@ def test_runs_are_numbered_within_their_project_not_by_the_store(client, project
     assert client.get(f"/projects/{project}/compare?a=1&b=4").status_code == 200
     assert client.get(f"/api/projects/{project}/runs/4").json()["number"] == 3
     assert "Run under review #3," in _text(client.get(f"/projects/{project}/review").text)
+
+
+# ---------------------------------------------------------------------------------------
+# correcting a misbooked value
+
+
+def _booked(line: int) -> str:
+    return TEXT.splitlines()[line - 1].split()[3]
+
+
+def test_correcting_a_misbooked_value_reruns_with_it_and_keeps_the_review_trail(client, project):
+    booked = _booked(FIRST)
+    right = f"{float(booked) - 0.015:+.5f}"  # the blunder injected on this line is +15 mm
+    review = client.get(f"/projects/{project}/review").text
+    assert f'placeholder="{booked}"' in _observation_block(review, FIRST)  # what is replaced
+    queued = _decide(client, project, FIRST, action="correct", value=right,
+                     reason="rod read 15 mm high")
+    assert queued.status_code == 303
+    review = client.get(f"/projects/{project}/review").text
+    assert (f"Queued: correct the value from {booked} to {right}"
+            in _text(_observation_block(review, FIRST)))
+
+    rerun = _rerun(client, project)
+    assert rerun.status_code == 303
+    body = _api(client, project)
+    edit = body["runs"][-1]["edits"][0]
+    assert {k: edit[k] for k in ("line", "action", "value", "previous", "reason")} == {
+        "line": FIRST, "action": "correct", "value": right, "previous": booked,
+        "reason": "rod read 15 mm high"}
+    observation = next(o for o in body["result"]["observations"] if o["line"] == FIRST)
+    assert observation["booked"] == float(right) and not observation["ignored"]
+    assert not observation["flagged"]
+    assert abs(observation["residual"]) < 0.004  # 1 mm levelling noise, not 15 mm
+
+    compare = client.get(rerun.headers["location"]).text
+    corrected = _text(re.search(r'id="corrected".*?</section>', compare, re.DOTALL).group(0))
+    assert f"{float(booked):.4f} {float(right):.4f}" in corrected
+    assert f"Correct the value from {booked} to {right}" in _text(compare)
+    assert "rod read 15 mm high" in compare and edit["date"] in compare
+
+    # the trail on the review page, and the original kept in the edited field book
+    review = _text(client.get(f"/projects/{project}/review").text)
+    assert f"Correct the value from {booked} to {right} level M2 → M4 rod read 15 mm high" in review
+    line = client.get(f"/projects/{project}/fieldbook/edited").text.splitlines()[FIRST - 1]
+    assert line == (f"level M2 M4 {right}  # corrected from {booked} on {edit['date']}: "
+                    "rod read 15 mm high")
+    assert client.get(f"/projects/{project}/fieldbook").content == TEXT.encode()
+
+
+@pytest.mark.parametrize(
+    ("value", "message"),
+    [
+        ("1.2.3", "the corrected value does not read: '1.2.3' is not a number"),
+        ("0.5m", "leave out the unit"),
+        ("", "type the corrected value"),
+        ("1 2", "without spaces"),
+        ("9" * 60, "too long"),
+    ],
+)
+def test_a_malformed_correction_is_refused_beside_the_observation(client, project, value,
+                                                                  message):
+    response = _decide(client, project, FIRST, action="correct", value=value, reason="misread")
+    assert response.status_code == 422
+    block = _observation_block(response.text, FIRST)
+    assert "field-error" in block and message in unescape(_text(block))
+    assert "<details class=\"decide\" open>" in block
+    assert 'value="correct" checked' in block  # the choice is kept for the second try
+    assert "Queued: " not in _text(client.get(f"/projects/{project}/review").text)
+
+
+def test_a_queued_correction_can_be_undone_and_needs_the_form_token(client, project):
+    data = {"line": str(FIRST), "action": "correct", "value": "+1.00000", "reason": "x"}
+    assert client.post(f"/projects/{project}/edits", data=data).status_code == 403
+    assert _decide(client, project, FIRST, action="correct", value="+1.00000").status_code == 303
+    review = client.get(f"/projects/{project}/review").text
+    undo = re.search(rf'action="(/projects/{project}/edits/\d+/undo)"', review).group(1)
+    assert client.post(undo, data={"token": _token(review)},
+                       follow_redirects=False).status_code == 303
+    assert "Queued: " not in _text(client.get(f"/projects/{project}/review").text)

@@ -10,6 +10,7 @@ token and is refused when the browser says it came from another site.
 
 from __future__ import annotations
 
+import dataclasses
 import hmac
 from collections import OrderedDict
 from collections.abc import Callable
@@ -24,7 +25,15 @@ from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import FormData
 
 from .. import review
-from ..edits import ACTIONS, EditError, ObservationEdit, apply_edits, clean_reason
+from ..edits import (
+    ACTIONS,
+    MAX_VALUE_CHARS,
+    EditError,
+    ObservationEdit,
+    apply_edits,
+    booked_value,
+    clean_reason,
+)
 from ..errors import SurveyError
 from ..fieldbook import parse_fieldbook
 from ..pipeline import adjust_fieldbook
@@ -347,15 +356,17 @@ async def queue_edit(request: Request, project_id: str) -> Response:
         raise HTTPException(status_code=400, detail="The decision does not name a line.")
     action = _text(form, "action", 20)
     values = {"action": action, "reason": _text(form, "reason", 1000),
-              "sd": _text(form, "sd", 200).strip()}
+              "sd": _text(form, "sd", 200).strip(), "value": _text(form, "value", 200).strip()}
     state = await run_in_threadpool(_load_state, store, project)
     message = ""
     if state.result is None:
         message = "This project has no adjusted run to decide on."
     elif action not in ACTIONS:
-        message = f"line {line}: choose leave out, bring back or change sd"
+        message = f"line {line}: choose leave out, bring back, change sd or correct the value"
     elif len(values["sd"]) > review.MAX_SD_CHARS:
         message = f"line {line}: the standard deviation is too long"
+    elif action == "correct" and len(values["value"]) > MAX_VALUE_CHARS:
+        message = f"line {line}: the corrected value is too long"
     else:
         left_out = review.ignored_after(state.result, state.pending_edits).get(line)
         if action == "exclude" and left_out:
@@ -363,7 +374,15 @@ async def queue_edit(request: Request, project_id: str) -> Response:
         elif action == "include" and left_out is False:
             message = f"line {line} is already used in the adjustment"
     edit = ObservationEdit(line=line, action=action, reason=clean_reason(values["reason"]),
-                           date=_today(), sd=values["sd"] if action == "sd" else None)
+                           date=_today(), sd=values["sd"] if action == "sd" else None,
+                           value=values["value"] if action == "correct" else None)
+    if not message and action == "correct":
+        # the value it replaces, as the line reads once the earlier decisions are written in
+        try:
+            previous = await run_in_threadpool(_value_now, project, state, line)
+            edit = dataclasses.replace(edit, previous=previous)
+        except SurveyError as exc:
+            message = str(exc)
     if not message:
         try:
             await run_in_threadpool(apply_edits, project.text,
@@ -394,6 +413,13 @@ async def undo_edit(request: Request, project_id: str, edit_id: RowId) -> Respon
     rejected = _rejected([v for v in form.getlist("reject") if isinstance(v, str)])
     return RedirectResponse(_review_url(project.id, suggest=suggest, rejected=rejected,
                                         anchor="decisions"), status_code=303)
+
+
+def _value_now(project: Project, state: ReviewState, line: int) -> str:
+    """The value on ``line`` with every decision in force and queued written in."""
+    text = apply_edits(project.text, [*state.in_force, *state.pending_edits],
+                       source=project.filename)
+    return booked_value(text, line, source=project.filename)
 
 
 def _rerun(store: Store, state: ReviewState) -> tuple[int | None, str]:
