@@ -140,6 +140,8 @@ class Verdict:
     notes: tuple[str, ...]
     flagged: int
     exceeded: int
+    #: used observations with a redundancy number below 0.001: no test can see a blunder in them
+    unchecked: int = 0
 
     @property
     def detail(self) -> str:
@@ -229,25 +231,57 @@ def verdict(result: AdjustmentResult) -> Verdict:
     if exceeded:
         noun = "misclosure exceeds" if exceeded == 1 else "misclosures exceed"
         notes.append(f"{exceeded} {noun} the allowance.")
+    unchecked = unchecked_observations(result)
+    if unchecked:
+        notes.append(unchecked_note(result, unchecked))
     detail = tuple(notes)
     if not s.converged:
         return Verdict("fail", "Not converged: the iterations did not settle — do not use these "
-                       "results", detail, len(flagged), exceeded)
+                       "results", detail, len(flagged), exceeded, len(unchecked))
     if test is None:
         return Verdict("none", "Not tested: there are no redundant observations, so a blunder "
-                       "cannot be detected", detail, len(flagged), exceeded)
+                       "cannot be detected", detail, len(flagged), exceeded, len(unchecked))
     if test.passed:
-        state = "warn" if flagged or exceeded else "pass"
+        state = "warn" if flagged or exceeded or unchecked else "pass"
         headline = "Passes: the residuals agree with the a priori standard deviations"
+        if unchecked:
+            headline = f"Passes, but {_count(len(unchecked))} can no longer be checked"
         if flagged:
             headline += " — but check the flagged observations"
-        return Verdict(state, headline, detail, len(flagged), exceeded)
+        return Verdict(state, headline, detail, len(flagged), exceeded, len(unchecked))
     if test.statistic > test.upper:
         headline = "Fails: residuals too large — look for blunders"
     else:
         headline = ("Fails: residuals smaller than expected — the a priori standard deviations "
                     "may be too pessimistic")
-    return Verdict("fail", headline, detail, len(flagged), exceeded)
+    return Verdict("fail", headline, detail, len(flagged), exceeded, len(unchecked))
+
+
+def unchecked_observations(result: AdjustmentResult) -> list[ObservationResult]:
+    """Used observations that no test can check (redundancy number below 0.001, w null)."""
+    return [o for o in result.observations if not o.ignored and o.redundancy is not None and o.w is None]
+
+
+def _count(n: int) -> str:
+    return f"{n} observation" if n == 1 else f"{n} observations"
+
+
+def unchecked_note(result: AdjustmentResult, unchecked: list[ObservationResult]) -> str:
+    """Names the unchecked observations (and the left-out ones that made them so)."""
+    shown = ", ".join(f"line {o.line} ({o.kind} {stations(o)})" for o in unchecked[:12])
+    if len(unchecked) > 12:
+        shown += f" and {len(unchecked) - 12} more"
+    left_out = [o.line for o in result.observations if o.ignored]
+    cause = ""
+    if left_out:
+        lines = ", ".join(str(line) for line in left_out[:12]) + (" …" if len(left_out) > 12 else "")
+        cause = f"With line{'s' if len(left_out) > 1 else ''} {lines} left out,"
+    verb = "is" if len(unchecked) == 1 else "are"
+    return (
+        f"{cause}{' t' if cause else 'T'}he following {verb} no longer checked by any other "
+        f"observation (redundancy number below 0.001): a blunder in {'it' if len(unchecked) == 1 else 'them'} "
+        f"would go unseen — {shown}."
+    )
 
 
 def rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:

@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from . import separability
 from . import statistics as st
 from .adjust import Solution
 from .fieldbook_model import ANGULAR_KINDS, Observation
@@ -111,6 +112,10 @@ class ObservationResult:
     flagged: bool
     ignored: bool
     note: str = ""
+    #: −residual/redundancy: the blunder that alone would explain the residual (None without w)
+    estimated_bias: float | None = None
+    #: lines of the used observations whose w-test has |ρ| ≥ 0.99 with this one's
+    inseparable: tuple[int, ...] = ()
 
     @property
     def angular(self) -> bool:
@@ -235,6 +240,8 @@ class AdjustmentResult:
                     "redundancy": o.redundancy,
                     "w": o.w,
                     "mdb": o.mdb,
+                    "estimated_bias": o.estimated_bias,
+                    "inseparable": list(o.inseparable),
                     "flagged": o.flagged,
                     "ignored": o.ignored,
                 }
@@ -390,7 +397,10 @@ def _observation_results(
     sd = (sd_si * small).tolist()
     w_list = np.where(controlled, w_all, np.nan).tolist()
     mdb = np.where(controlled, mdb_si * small, np.nan).tolist()
-    flagged = (controlled & (np.abs(w_all) > critical)).tolist()
+    flagged_rows = controlled & (np.abs(w_all) > critical)
+    flagged = flagged_rows.tolist()
+    bias = np.where(controlled, -residual_si / safe * small, np.nan).tolist()
+    partners = _inseparable_lines(network, solution, r_i, controlled, flagged_rows)
     redundancy_list = redundancy.tolist()
     controlled_list = controlled.tolist()
 
@@ -419,6 +429,8 @@ def _observation_results(
                     flagged=flagged[row],
                     ignored=obs.ignored,
                     note=obs.note,
+                    estimated_bias=bias[row] if controlled_list[row] else None,
+                    inseparable=partners[row],
                 )
             )
             continue
@@ -458,6 +470,26 @@ def _observation_results(
 
 
 _DEG_PER_RAD = 180.0 / math.pi
+
+
+def _inseparable_lines(
+    network: Network, solution: Solution, r_i: np.ndarray, controlled: np.ndarray, flagged: np.ndarray
+) -> list[tuple[int, ...]]:
+    """For each used row, the lines whose w-test is the same test as its own (|ρ| ≥ 0.99)."""
+    used = network.used
+    n_used = len(used)
+    candidates = np.flatnonzero(controlled)
+    if solution.hat is None or candidates.size < 2:
+        return [()] * n_used
+    rows = separability.correlated_rows(
+        solution.hat, np.asarray(solution.sigmas, dtype=float), np.asarray(r_i, dtype=float),
+        candidates, np.flatnonzero(flagged).tolist(),
+    )
+    lines = [obs.line for obs in used]
+    return [
+        tuple(dict.fromkeys(lines[j] for j in rows[i] if lines[j] != lines[i])) if rows[i] else ()
+        for i in range(n_used)
+    ]
 
 
 def _wrap_2pi(angle_rad: np.ndarray) -> np.ndarray:

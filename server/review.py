@@ -313,6 +313,8 @@ class Comparison:
     positions: bool
     heights: bool
     fixed_points: int
+    #: observations checked in A that no test can check in B (redundancy number below 0.001)
+    unchecked: tuple[FlagChange, ...] = ()
 
 
 def shift_unit(length_unit: str) -> tuple[str, float]:
@@ -358,6 +360,8 @@ def _w_text(obs: ObservationResult | None) -> str:
         return "not in this run"
     if obs.ignored:
         return "left out"
+    if obs.w is None and obs.redundancy is not None:
+        return "uncontrolled"
     return fmt_w(obs.w)
 
 
@@ -367,6 +371,10 @@ def compare(a: AdjustmentResult, b: AdjustmentResult) -> Comparison:
     obs_b = {o.line: o for o in b.observations}
     flagged_a = {line for line, o in obs_a.items() if o.flagged}
     flagged_b = {line for line, o in obs_b.items() if o.flagged}
+    # a flag that went away because nothing checks the observation any more is not cleared
+    unchecked_b = {line for line, o in obs_b.items()
+                   if not o.ignored and o.redundancy is not None and o.w is None
+                   and not (line in obs_a and obs_a[line].w is None)}
 
     def change(line: int) -> FlagChange:
         obs = obs_b.get(line) or obs_a[line]
@@ -414,7 +422,7 @@ def compare(a: AdjustmentResult, b: AdjustmentResult) -> Comparison:
     return Comparison(
         a=_run_figures(a),
         b=_run_figures(b),
-        cleared=tuple(change(line) for line in sorted(flagged_a - flagged_b)),
+        cleared=tuple(change(line) for line in sorted(flagged_a - flagged_b - unchecked_b)),
         appeared=tuple(change(line) for line in sorted(flagged_b - flagged_a)),
         still=tuple(change(line) for line in sorted(flagged_a & flagged_b)),
         shifts=tuple(shifts),
@@ -423,6 +431,7 @@ def compare(a: AdjustmentResult, b: AdjustmentResult) -> Comparison:
         positions="e" in held and any(p.east is not None for p in b.points),
         heights="h" in held and any(p.height is not None for p in b.points),
         fixed_points=fixed,
+        unchecked=tuple(change(line) for line in sorted(unchecked_b)),
     )
 
 
