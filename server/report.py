@@ -192,6 +192,19 @@ class ObservationRow:
     residual_raw: float | None
     redundancy_raw: float | None
     note: str
+    #: −v/r formatted like the residual: the blunder that alone would explain it
+    estimated_bias: str = NOT_APPLICABLE
+    #: lines whose w-test is the same test as this one's (|ρ| ≥ 0.99)
+    inseparable: tuple[int, ...] = ()
+
+    @property
+    def inseparable_text(self) -> str:
+        """'same test as lines 7, 9' or ''."""
+        if not self.inseparable:
+            return ""
+        lines = ", ".join(str(line) for line in self.inseparable[:8])
+        more = f" and {len(self.inseparable) - 8} more" if len(self.inseparable) > 8 else ""
+        return f"same test as line{'s' if len(self.inseparable) > 1 else ''} {lines}{more}"
 
 
 @dataclass(frozen=True, slots=True)
@@ -245,7 +258,8 @@ def verdict(result: AdjustmentResult) -> Verdict:
         state = "warn" if flagged or exceeded or unchecked else "pass"
         headline = "Passes: the residuals agree with the a priori standard deviations"
         if unchecked:
-            headline = f"Passes, but {_count(len(unchecked))} can no longer be checked"
+            headline = (f"Passes, but {_count(len(unchecked))} can no longer be checked: a blunder "
+                        f"in {'it' if len(unchecked) == 1 else 'them'} would go unseen")
         if flagged:
             headline += " — but check the flagged observations"
         return Verdict(state, headline, detail, len(flagged), exceeded, len(unchecked))
@@ -408,11 +422,13 @@ def observation_rows(result: AdjustmentResult) -> list[ObservationRow]:
             value = fmt_angle(o.observed, angle_unit)
             adjusted = fmt_angle(o.adjusted, angle_unit)
             residual, sd, mdb = fmt_arcsec(o.residual), fmt_arcsec(o.sd), fmt_arcsec(o.mdb)
+            bias = fmt_arcsec(o.estimated_bias)
         else:
             value = fmt_length(o.observed, unit)
             adjusted = fmt_length(o.adjusted, unit)
             residual = fmt_length(o.residual, unit)
             sd, mdb = fmt_length(o.sd, unit), fmt_length(o.mdb, unit)
+            bias = fmt_length(o.estimated_bias, unit)
         uncontrolled = not o.ignored and o.redundancy is not None and o.w is None
         out.append(ObservationRow(
             line=o.line,
@@ -436,6 +452,8 @@ def observation_rows(result: AdjustmentResult) -> list[ObservationRow]:
             residual_raw=o.residual,
             redundancy_raw=o.redundancy,
             note=o.note,
+            estimated_bias=bias,
+            inseparable=o.inseparable,
         ))
     return out
 
@@ -868,11 +886,13 @@ def report_text(result: AdjustmentResult) -> str:
     out += ["", f"Flagged observations (|w| > {fmt_w(s.critical_w)}, largest first)"]
     if flagged:
         out += _table(
-            ["line", "kind", "marks", "residual", "w", "MDB"],
+            ["line", "kind", "marks", "residual", "w", "est. bias", "MDB", "same test as"],
             [[str(o.line), o.kind, o.stations,
               o.residual + (ARCSEC if o.angular else f" {unit}"), o.w,
-              o.mdb + (ARCSEC if o.angular else f" {unit}")] for o in flagged],
-            {0, 3, 4, 5},
+              o.estimated_bias + (ARCSEC if o.angular else f" {unit}"),
+              o.mdb + (ARCSEC if o.angular else f" {unit}"),
+              ", ".join(map(str, o.inseparable)) or "-"] for o in flagged],
+            {0, 3, 4, 5, 6},
         )
     else:
         out.append("none")

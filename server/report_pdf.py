@@ -379,7 +379,8 @@ def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> li
                Column(f"Observed\n({cols.values_unit})", 58, True), Column("Adjusted", 58, True),
                Column(f"Residual\n({cols.small_unit})", 44, True),
                Column(f"sd\n({cols.small_unit})", 36, True), Column("r", 24, True),
-               Column("w", 30, True), Column(f"MDB\n({cols.small_unit})", 40, True),
+               Column("w", 30, True), Column(f"Est. bias\n({cols.small_unit})", 40, True),
+               Column(f"MDB\n({cols.small_unit})", 40, True),
                Column("Test", 46)]
     rows, states = [], []
     arcsec = data["arcsec"]
@@ -397,16 +398,21 @@ def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> li
             test = Paragraph("uncontrolled", styles.cell)
         else:
             test = Paragraph("ok", styles.cell_muted)
+        if o.inseparable:
+            test = [test, Paragraph(styles.text(o.inseparable_text), styles.cell_muted)]
         w_cell: Any = o.w
         if o.flagged:
             w_cell = Paragraph(f"<b>{styles.text(o.w)}</b>", styles.cell_right)
         rows.append([str(o.line), o.kind,
                      Paragraph(marks, styles.cell_muted if o.ignored else styles.cell),
                      o.observed, o.adjusted, o.residual + sfx, o.sd + sfx, o.redundancy, w_cell,
+                     o.estimated_bias + (sfx if o.estimated_bias != report.NOT_APPLICABLE else ""),
                      o.mdb + sfx, test])
         states.append("bad" if o.flagged else ("muted" if o.ignored else ""))
     note = ("Residual = adjusted − observed. r: redundancy number. w: standardized residual, "
-            f"flagged when |w| > {data['critical_w']}. MDB: minimal detectable bias."
+            f"flagged when |w| > {data['critical_w']}. Est. bias: −v/r, the blunder that alone "
+            "would explain the residual. \u201cSame test as\u201d: w-tests correlated at |ρ| ≥ 0.99, "
+            "which the data cannot tell apart. MDB: minimal detectable bias."
             + (" Angular figures are marked ″ (arc-seconds); the others are in "
                f"{data['length_unit']}." if cols.mixed else ""))
     return [*_heading("Observations", styles),
