@@ -485,11 +485,9 @@ def _inseparable_lines(
         solution.hat, np.asarray(solution.sigmas, dtype=float), np.asarray(r_i, dtype=float),
         candidates, np.flatnonzero(flagged).tolist(),
     )
-    lines = [obs.line for obs in used]
-    return [
-        tuple(dict.fromkeys(lines[j] for j in rows[i] if lines[j] != lines[i])) if rows[i] else ()
-        for i in range(n_used)
-    ]
+    # each used row has its own line (a round's directions too), so rows map to lines one to one
+    line_of = [obs.line for obs in used].__getitem__
+    return [tuple(map(line_of, partners)) if partners else () for partners in rows[:n_used]]
 
 
 def _wrap_2pi(angle_rad: np.ndarray) -> np.ndarray:
