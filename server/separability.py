@@ -64,7 +64,7 @@ THRESHOLD = 0.99
 #: Networks with at most this many rows (observations and weighted control) get R in full.
 DENSE_ROWS = 2000
 #: Simulated noise vectors for the |ρ| = 1 groups of large networks.
-SAMPLES = 16
+SAMPLES = 8
 #: Two normalized signatures closer than this in every sample are the same test.
 SAME_SIGNATURE = 1e-6
 #: Signatures are sorted on this many samples rounded to this grid (see ``_simulated_groups``).

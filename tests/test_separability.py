@@ -325,3 +325,28 @@ def test_review_compare_projects_and_reports_never_show_a_false_pass(tmp_path):
         pages = pypdf.PdfReader(io.BytesIO(pdf.content)).pages
         first = re.sub(r"\s+", " ", pages[0].extract_text())
         assert "can no longer be checked" in first and "line 8" in first
+
+
+# ---------------------------------------------------------------------------------
+# every engine path gives the same ρ (free networks by their minimal-datum factor)
+
+
+@pytest.mark.parametrize("name", ["leveling", "2D held control", "2D free network",
+                                  "2D free network with an azimuth", "2D weighted control"])
+def test_sparse_and_free_datum_paths_give_the_dense_correlations(name):
+    from server import adjust as engine
+    from server.network import build_network
+    from server.sparse import cholmod_available
+    from tests.test_sparse import NETWORKS
+
+    network = build_network(parse_fieldbook(NETWORKS[name]))
+    dense = engine.adjust(network, method="dense")
+    r = 1.0 - np.asarray(dense.adjusted_cofactor) / np.asarray(dense.sigmas) ** 2
+    rows = np.arange(0, len(r), max(1, len(r) // 7))
+    # reference: P^½·A·Qxx·Aᵀ·P^½ from the dense solution's full Qxx (the bordered system)
+    expected = separability.correlation_rows(dense.hat, np.asarray(dense.sigmas), r, rows)
+    assert np.allclose(np.abs(expected[np.arange(rows.size), rows]), 1.0)
+    for backend in ["superlu"] + (["cholmod"] if cholmod_available() else []):
+        sparse_solution = engine.adjust(network, method="sparse", factorization=backend)
+        got = separability.correlation_rows(sparse_solution.hat, np.asarray(sparse_solution.sigmas), r, rows)
+        np.testing.assert_allclose(got, expected, atol=1e-7)
