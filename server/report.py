@@ -241,6 +241,7 @@ def verdict(result: AdjustmentResult) -> Verdict:
             f"{len(flagged)} {noun} flagged by the w-test (|w| > {fmt_w(s.critical_w)}): "
             f"line{'s' if len(flagged) > 1 else ''} {lines}."
         )
+    notes += _inseparable_notes(result)
     if exceeded:
         noun = "misclosure exceeds" if exceeded == 1 else "misclosures exceed"
         notes.append(f"{exceeded} {noun} the allowance.")
@@ -269,6 +270,21 @@ def verdict(result: AdjustmentResult) -> Verdict:
         headline = ("Fails: residuals smaller than expected — the a priori standard deviations "
                     "may be too pessimistic")
     return Verdict("fail", headline, detail, len(flagged), exceeded, len(unchecked))
+
+
+def _inseparable_notes(result: AdjustmentResult) -> list[str]:
+    """One note per group of flagged observations whose w-tests are the same test."""
+    groups: dict[tuple[int, ...], None] = {}
+    for o in result.observations:
+        if o.flagged and o.inseparable:
+            groups.setdefault(tuple(sorted({o.line, *o.inseparable})), None)
+    notes = []
+    for group in list(groups)[:5]:
+        shown = ", ".join(map(str, group[:-1])) + f" and {group[-1]}" if len(group) <= 12 else (
+            ", ".join(map(str, group[:12])) + f" and {len(group) - 12} more")
+        notes.append(f"Lines {shown} are tested by the same check: the data cannot tell which of "
+                     "them is wrong (re-observe them, or check the field notes).")
+    return notes
 
 
 def unchecked_observations(result: AdjustmentResult) -> list[ObservationResult]:

@@ -296,6 +296,7 @@ class RunFigures:
     redundancy: int
     used: int
     flagged: int
+    unchecked: int = 0
 
 
 @dataclass(frozen=True, slots=True)
@@ -338,12 +339,16 @@ def _difference(a: float | None, b: float | None) -> float | None:
 def _run_figures(result: AdjustmentResult) -> RunFigures:
     s = result.summary
     test = s.global_test
+    v = verdict(result)
     if test is None:
         state, words = "none", "Not tested"
+    elif test.passed and v.unchecked:
+        # a pass with observations nothing checks any more is never shown as a plain pass
+        state, words = "warn", f"! Passes, {v.unchecked} unchecked"
     else:
         state, words = ("pass", "✓ Passes") if test.passed else ("fail", "✕ Fails")
     return RunFigures(
-        verdict=verdict(result),
+        verdict=v,
         test_state=state,
         test_words=words,
         variance_factor=fmt_ratio(s.variance_factor, 3),
@@ -352,6 +357,7 @@ def _run_figures(result: AdjustmentResult) -> RunFigures:
         redundancy=s.redundancy,
         used=s.used_observations,
         flagged=sum(1 for o in result.observations if o.flagged),
+        unchecked=v.unchecked,
     )
 
 

@@ -74,7 +74,9 @@ def test_snooping_names_the_chain_and_proposes_no_removal():
         assert f"line {line}" in plan.stopped
     assert "cannot tell which" in plan.stopped
     assert "re-observe" in plan.stopped.lower()
-    assert verdict(adjust_parsed(fieldbook)).state == "fail"
+    v = verdict(adjust_parsed(fieldbook))
+    assert v.state == "fail"
+    assert "Lines 8, 9 and 10 are tested by the same check" in " ".join(v.notes)
 
 
 def test_robust_reweighting_warns_when_its_choice_is_arbitrary():
@@ -310,6 +312,7 @@ def test_review_compare_projects_and_reports_never_show_a_false_pass(tmp_path):
         lost = re.search(r'id="flags-unchecked".*?</div>', compare, re.DOTALL).group(0)
         assert 'data-line="8"' in lost and 'data-line="9"' in lost
         assert "2 observations can no longer be checked" in plain(compare)
+        assert "Passes, 2 unchecked" in plain(compare) and "✓ Passes" not in plain(compare)
 
         listing = plain(client.get("/projects").text)
         assert "Passes, but 2 observations can no longer be checked" in listing
