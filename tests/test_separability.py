@@ -353,3 +353,58 @@ def test_sparse_and_free_datum_paths_give_the_dense_correlations(name):
         sparse_solution = engine.adjust(network, method="sparse", factorization=backend)
         got = separability.correlation_rows(sparse_solution.hat, np.asarray(sparse_solution.sigmas), r, rows)
         np.testing.assert_allclose(got, expected, atol=1e-7)
+
+
+def _junction_grid(side: int, per_line: int, blunder_m: float) -> tuple[str, int]:
+    """Junctions on a grid joined by lines of ``per_line`` marks (sections in series), a
+    weak tie on one line (nearly, not exactly, in series) and a blunder on that line."""
+    rng = np.random.default_rng(7)
+    out = ["fieldbook 1", "units length=m", "tests snooping=0.001", "defaults level=1mm/sqrtkm"]
+    height = {}
+    for i in range(side):
+        for j in range(side):
+            height[f"J{i}_{j}"] = 100.0 + rng.normal(0, 3)
+            if (i, j) in ((0, 0), (side - 1, side - 1)):
+                out.append(f"point J{i}_{j} height={height[f'J{i}_{j}']:.5f} fix")
+    blunder_line = 0
+    for i in range(side):
+        for j in range(side):
+            for di, dj in ((0, 1), (1, 0)):
+                if i + di >= side or j + dj >= side:
+                    continue
+                start, end = f"J{i}_{j}", f"J{i + di}_{j + dj}"
+                previous = start
+                for k in range(1, per_line + 2):
+                    mark = f"L{i}_{j}_{di}{dj}_{k}" if k <= per_line else end
+                    height.setdefault(mark, height[start] + rng.normal(0, 1))
+                    dh = height[mark] - height[previous] + rng.normal(0, 5e-4)
+                    if (i, j, di, dj, k) == (1, 1, 0, 1, 2):
+                        dh += blunder_m
+                        blunder_line = len(out) + 1
+                    out.append(f"level {previous} {mark} {dh:+.5f} len=0.5km")
+                    previous = mark
+    tie = f"L1_1_01_3"
+    out.append(f"level {tie} J0_0 {height['J0_0'] - height[tie]:+.5f} sd=30mm")
+    return "\n".join(out) + "\n", blunder_line
+
+
+def test_large_network_lists_agree_with_the_dense_computation(monkeypatch):
+    text, blunder_line = _junction_grid(side=13, per_line=6, blunder_m=0.012)
+    large = adjust_fieldbook(text)
+    assert len(large.observations) > separability.DENSE_ROWS
+    monkeypatch.setattr(separability, "DENSE_ROWS", 10**6)
+    dense = adjust_fieldbook(text)
+    worst = max((o for o in large.observations if o.flagged), key=lambda o: abs(o.w))
+    assert worst.line in {blunder_line, *next(o for o in large.observations
+                                             if o.line == blunder_line).inseparable}
+    # the flagged line's group: its own four sections, and the weakly tied one at 0.99 ≤ |ρ| < 1
+    assert len(worst.inseparable) >= 6
+    by_line = {o.line: o for o in dense.observations}
+    for o in large.observations:
+        if o.flagged:
+            assert o.inseparable == by_line[o.line].inseparable  # exact rows for flagged
+        else:
+            # unflagged: the |ρ| = 1 groups, which the dense lists contain
+            assert set(o.inseparable) <= set(by_line[o.line].inseparable)
+    same = sum(o.inseparable == by_line[o.line].inseparable for o in large.observations)
+    assert same >= 0.95 * len(large.observations)
