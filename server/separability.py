@@ -17,8 +17,8 @@ run with no other redundancy.  A blunder in either then gives both the same
 How the pairs are found (``correlated_rows``):
 
 * Small networks (at most ``DENSE_ROWS`` rows): R in full, from
-  A·Qxx·Aᵀ applied to P^½ (one block solve with the factor), every pair
-  exact.
+  A·Qxx·Aᵀ applied to P^½ (block solves with the factor, ``BLOCK`` columns
+  at a time, so no n×n array is held), every pair exact.
 * Larger networks: no n×n matrix.  Two exact parts:
 
   1. *Simulated residuals* find every |ρ| = 1 group among all observations.
@@ -103,7 +103,9 @@ def correlated_rows(
     root_p = 1.0 / sigmas
     pairs: list[tuple[np.ndarray, np.ndarray]] = []
     if n <= dense_rows:
-        pairs.append(_pairs(hat, root_p, redundancy, candidates, candidates, threshold))
+        # every row exact, in blocks so that no n×n array is held
+        for start in range(0, candidates.size, BLOCK):
+            pairs.append(_pairs(hat, root_p, redundancy, candidates[start:start + BLOCK], candidates, threshold))
     else:
         _simulated_groups(hat, root_p, redundancy, candidates, out)
         exact = _representatives(exact_rows, candidates, out, n)
