@@ -32,9 +32,9 @@ How the pairs are found (``correlated_rows``):
      rounding cannot split a group) brings identical ones next to each other,
      and neighbours equal to ``SAME_SIGNATURE`` in every sample are joined.
      Measured on the 100k-mark benchmark leveling, members of a group agree to
-     1e-13.  A false join needs two different
-     vectors to agree in all k random coordinates, which does not happen in
-     floating point.  This is O(k·(solve + n log n)).
+     1e-13.  A false join needs two different vectors to agree in all k
+     random coordinates, which does not happen in floating point.  This is
+     O(k·(solve + n log n)).
   2. Every flagged observation (the only ones the review acts on) gets its
      whole row of ρ exactly: A·Qxx·a_iᵀ for the flagged rows, solved in
      blocks of ``BLOCK`` right-hand sides.  So a flagged observation's list
@@ -45,8 +45,9 @@ How the pairs are found (``correlated_rows``):
 
   What the large-network path does not search is a pair of two unflagged
   observations with 0.99 ≤ |ρ| < 1 (nearly, but not exactly, the same
-  test); the dense path and the flagged rows cover the cases the review
-  and the snooping suggestion use.
+  test, as two series chains joined by a much weaker tie): their lists
+  hold their |ρ| = 1 partners only.  Flagged observations, which the
+  verdict, the review and the snooping suggestion act on, are exact.
 
 The numbers need only ``hat(B) = A·Qxx·Aᵀ·B`` from the engine
 (``adjust.Solution.hat``), which is datum-invariant, so a free network's
