@@ -91,7 +91,14 @@ def _spelled(column: list, kinds: set[type], level: int) -> list[str] | None:
         # as the marks of a misclosure: each list as the general path writes it
         if not kinds <= {list, tuple, _NONE}:
             return None
-        return [_spelled_list(v, level) for v in column]
+        lists = [v for v in column if v]
+        if set(map(type, chain.from_iterable(lists))) <= {int}:
+            # lists of plain ints (the lines of an observation's group): spelled directly
+            inner = "\n" + _INDENT * (level + 1)
+            head, sep, tail = "[" + inner, "," + inner, "\n" + _INDENT * level + "]"
+            return ["null" if v is None else head + sep.join(map(int.__repr__, v)) + tail if v else "[]"
+                    for v in column]
+        return ["null" if v is None else "".join(_chunks(v, level)) for v in column]
     if dict in kinds:
         if not kinds <= {dict, _NONE}:
             return None
@@ -116,16 +123,6 @@ def _spelled(column: list, kinds: set[type], level: int) -> list[str] | None:
         return list(map(_SPELL[kind], column))
     spell = _SPELL
     return [spell[type(v)](v) for v in column]
-
-
-def _spelled_list(value, level: int) -> str:
-    """One list as the general path writes it; a list of plain ints (lines) spelled directly."""
-    if value is None:
-        return "null"
-    if value and all(type(v) is int for v in value):
-        inner = "\n" + _INDENT * (level + 1)
-        return "[" + inner + ("," + inner).join(map(int.__repr__, value)) + "\n" + _INDENT * level + "]"
-    return "".join(_chunks(value, level))
 
 
 def _columns(items, level: int) -> str | None:

@@ -408,3 +408,16 @@ def test_large_network_lists_agree_with_the_dense_computation(monkeypatch):
             assert set(o.inseparable) <= set(by_line[o.line].inseparable)
     same = sum(o.inseparable == by_line[o.line].inseparable for o in large.observations)
     assert same >= 0.95 * len(large.observations)
+
+
+def test_json_text_of_the_new_keys_is_what_the_standard_library_writes():
+    import json
+
+    from server.json_output import dumps_indented
+
+    result = adjust_fieldbook(CHAIN_AND_LOOP)
+    data = result.to_json_dict()
+    assert dumps_indented(data) == json.dumps(data, indent=2)
+    # a column mixing empty lists, null and lists of lines
+    rows = [{"a": 1, "inseparable": v} for v in ([], [3, 4], None, [12])]
+    assert dumps_indented({"x": rows}) == json.dumps({"x": rows}, indent=2)
