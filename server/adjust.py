@@ -111,6 +111,8 @@ class Solution:
     status: int
     cofactor: object  # DenseCofactor or sparse.Cofactor (or its free-datum form)
     method: str = "dense"  # "dense", "cholmod" or "superlu"
+    #: hat(B) = A·Qxx·Aᵀ·B for a block B of rows × k (``separability.py``); None if not kept
+    hat: Callable[[np.ndarray], np.ndarray] | None = None
 
     @property
     def converged(self) -> bool:
@@ -243,6 +245,7 @@ def _iterate(
         status=status,
         cofactor=cofactor,
         method=engine.name,
+        hat=engine.hat(evaluation) if n_unknowns else None,
     )
 
 
@@ -409,6 +412,9 @@ class _Engine:
     def statistics(self, evaluation) -> tuple[object, np.ndarray]:  # pragma: no cover
         raise NotImplementedError
 
+    def hat(self, evaluation) -> Callable[[np.ndarray], np.ndarray]:  # pragma: no cover
+        raise NotImplementedError
+
 
 class _DenseEngine(_Engine):
     """Full N, Cholesky and full Qxx; the bordered system for a free network."""
@@ -439,6 +445,10 @@ class _DenseEngine(_Engine):
         explained = np.einsum("ij,jk,ik->i", design, self.qxx, design) if self.n else np.zeros(len(design))
         self.qxx.flags.writeable = False
         return DenseCofactor(self.qxx), explained
+
+    def hat(self, evaluation) -> Callable[[np.ndarray], np.ndarray]:
+        design, qxx = self._design(evaluation), self.qxx
+        return lambda block: design @ (qxx @ (design.T @ block))
 
 
 class _SparseEngine(_Engine):
@@ -510,6 +520,19 @@ class _SparseEngine(_Engine):
         assert self._datum is not None
         g, h = self._datum
         return _FreeDatumCofactor(cofactor, self.factorization, self.factor_column, g, h), explained
+
+    def hat(self, evaluation) -> Callable[[np.ndarray], np.ndarray]:
+        """A·N⁻¹·Aᵀ·B with the last factor.  In a free network the minimal-datum factor
+        gives the same product as the inner-constraint Qxx (A·H = 0)."""
+        design = self.assembly.design_matrix(evaluation.slot_val, self.kept.size)
+        solve = self.factorization.solve
+
+        def apply(block: np.ndarray) -> np.ndarray:
+            if self.kept.size == 0:
+                return np.zeros_like(block)
+            return design @ solve(np.ascontiguousarray(design.T @ block))
+
+        return apply
 
     def _diagnosis(self, matrix) -> tuple[str, list[str]]:
         parameters = self.kept

@@ -91,6 +91,13 @@ def _spelled(column: list, kinds: set[type], level: int) -> list[str] | None:
         # as the marks of a misclosure: each list as the general path writes it
         if not kinds <= {list, tuple, _NONE}:
             return None
+        lists = [v for v in column if v]
+        if set(map(type, chain.from_iterable(lists))) <= {int}:
+            # lists of plain ints (the lines of an observation's group): spelled directly
+            inner = "\n" + _INDENT * (level + 1)
+            head, sep, tail = "[" + inner, "," + inner, "\n" + _INDENT * level + "]"
+            return ["null" if v is None else head + sep.join(map(int.__repr__, v)) + tail if v else "[]"
+                    for v in column]
         return ["null" if v is None else "".join(_chunks(v, level)) for v in column]
     if dict in kinds:
         if not kinds <= {dict, _NONE}:

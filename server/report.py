@@ -180,6 +180,8 @@ class Verdict:
     notes: tuple[str, ...]
     flagged: int
     exceeded: int
+    #: used observations with a redundancy number below 0.001: no test can see a blunder in them
+    unchecked: int = 0
 
     @property
     def detail(self) -> str:
@@ -233,6 +235,19 @@ class ObservationRow:
     note: str
     booked: str = NOT_APPLICABLE
     reduction: str = NOT_APPLICABLE
+    #: −v/r formatted like the residual: the blunder that alone would explain it
+    estimated_bias: str = NOT_APPLICABLE
+    #: lines whose w-test is the same test as this one's (|ρ| ≥ 0.99)
+    inseparable: tuple[int, ...] = ()
+
+    @property
+    def inseparable_text(self) -> str:
+        """'same test as lines 7, 9' or ''."""
+        if not self.inseparable:
+            return ""
+        lines = ", ".join(str(line) for line in self.inseparable[:8])
+        more = f" and {len(self.inseparable) - 8} more" if len(self.inseparable) > 8 else ""
+        return f"same test as line{'s' if len(self.inseparable) > 1 else ''} {lines}{more}"
 
 
 @dataclass(frozen=True, slots=True)
@@ -269,28 +284,77 @@ def verdict(result: AdjustmentResult) -> Verdict:
             f"{len(flagged)} {noun} flagged by the w-test (|w| > {fmt_w(s.critical_w)}): "
             f"line{'s' if len(flagged) > 1 else ''} {lines}."
         )
+    notes += _inseparable_notes(result)
     if exceeded:
         noun = "misclosure exceeds" if exceeded == 1 else "misclosures exceed"
         notes.append(f"{exceeded} {noun} the allowance.")
+    unchecked = unchecked_observations(result)
+    if unchecked:
+        notes.append(unchecked_note(result, unchecked))
     detail = tuple(notes)
     if not s.converged:
         return Verdict("fail", "Not converged: the iterations did not settle — do not use these "
-                       "results", detail, len(flagged), exceeded)
+                       "results", detail, len(flagged), exceeded, len(unchecked))
     if test is None:
         return Verdict("none", "Not tested: there are no redundant observations, so a blunder "
-                       "cannot be detected", detail, len(flagged), exceeded)
+                       "cannot be detected", detail, len(flagged), exceeded, len(unchecked))
     if test.passed:
-        state = "warn" if flagged or exceeded else "pass"
+        state = "warn" if flagged or exceeded or unchecked else "pass"
         headline = "Passes: the residuals agree with the a priori standard deviations"
+        if unchecked:
+            headline = (f"Passes, but {_count(len(unchecked))} can no longer be checked: a blunder "
+                        f"in {'it' if len(unchecked) == 1 else 'them'} would go unseen")
         if flagged:
             headline += " — but check the flagged observations"
-        return Verdict(state, headline, detail, len(flagged), exceeded)
+        return Verdict(state, headline, detail, len(flagged), exceeded, len(unchecked))
     if test.statistic > test.upper:
         headline = "Fails: residuals too large — look for blunders"
     else:
         headline = ("Fails: residuals smaller than expected — the a priori standard deviations "
                     "may be too pessimistic")
-    return Verdict("fail", headline, detail, len(flagged), exceeded)
+    return Verdict("fail", headline, detail, len(flagged), exceeded, len(unchecked))
+
+
+def _inseparable_notes(result: AdjustmentResult) -> list[str]:
+    """One note per group of flagged observations whose w-tests are the same test."""
+    groups: dict[tuple[int, ...], None] = {}
+    for o in result.observations:
+        if o.flagged and o.inseparable:
+            groups.setdefault(tuple(sorted({o.line, *o.inseparable})), None)
+    notes = []
+    for group in list(groups)[:5]:
+        shown = ", ".join(map(str, group[:-1])) + f" and {group[-1]}" if len(group) <= 12 else (
+            ", ".join(map(str, group[:12])) + f" and {len(group) - 12} more")
+        notes.append(f"Lines {shown} are tested by the same check: the data cannot tell which of "
+                     "them is wrong (re-observe them, or check the field notes).")
+    return notes
+
+
+def unchecked_observations(result: AdjustmentResult) -> list[ObservationResult]:
+    """Used observations that no test can check (redundancy number below 0.001, w null)."""
+    return [o for o in result.observations if not o.ignored and o.redundancy is not None and o.w is None]
+
+
+def _count(n: int) -> str:
+    return f"{n} observation" if n == 1 else f"{n} observations"
+
+
+def unchecked_note(result: AdjustmentResult, unchecked: list[ObservationResult]) -> str:
+    """Names the unchecked observations (and the left-out ones that made them so)."""
+    shown = ", ".join(f"line {o.line} ({o.kind} {stations(o)})" for o in unchecked[:12])
+    if len(unchecked) > 12:
+        shown += f" and {len(unchecked) - 12} more"
+    left_out = [o.line for o in result.observations if o.ignored]
+    cause = ""
+    if left_out:
+        lines = ", ".join(str(line) for line in left_out[:12]) + (" …" if len(left_out) > 12 else "")
+        cause = f"With line{'s' if len(left_out) > 1 else ''} {lines} left out,"
+    verb = "is" if len(unchecked) == 1 else "are"
+    return (
+        f"{cause}{' t' if cause else 'T'}he following {verb} no longer checked by any other "
+        f"observation (redundancy number below 0.001): a blunder in {'it' if len(unchecked) == 1 else 'them'} "
+        f"would go unseen — {shown}."
+    )
 
 
 def rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:
@@ -419,12 +483,14 @@ def observation_rows(result: AdjustmentResult) -> list[ObservationRow]:
             booked = fmt_booked_angle(o.booked, angle_unit)
             adjusted = fmt_angle(o.adjusted, angle_unit)
             residual, sd, mdb = fmt_arcsec(o.residual), fmt_arcsec(o.sd), fmt_arcsec(o.mdb)
+            bias = fmt_arcsec(o.estimated_bias)
         else:
             value = fmt_length(o.observed, unit)
             booked = fmt_length(o.booked, unit)
             adjusted = fmt_length(o.adjusted, unit)
             residual = fmt_length(o.residual, unit)
             sd, mdb = fmt_length(o.sd, unit), fmt_length(o.mdb, unit)
+            bias = fmt_length(o.estimated_bias, unit)
         uncontrolled = not o.ignored and o.redundancy is not None and o.w is None
         out.append(ObservationRow(
             line=o.line,
@@ -450,6 +516,8 @@ def observation_rows(result: AdjustmentResult) -> list[ObservationRow]:
             note=o.note,
             booked=booked,
             reduction=reduction_text(o),
+            estimated_bias=bias,
+            inseparable=o.inseparable,
         ))
     return out
 
@@ -908,11 +976,14 @@ def report_text(result: AdjustmentResult) -> str:
     out += ["", f"Flagged observations (|w| > {fmt_w(s.critical_w)}, largest first)"]
     if flagged:
         out += _table(
-            ["line", "kind", "marks", "booked", "reduction", "used", "residual", "w", "MDB"],
+            ["line", "kind", "marks", "booked", "reduction", "used", "residual", "w",
+             "est. bias", "MDB", "same test as"],
             [[str(o.line), o.kind, o.stations, o.booked, o.reduction, o.observed,
               o.residual + (ARCSEC if o.angular else f" {unit}"), o.w,
-              o.mdb + (ARCSEC if o.angular else f" {unit}")] for o in flagged],
-            {0, 3, 4, 5, 6, 7, 8},
+              o.estimated_bias + (ARCSEC if o.angular else f" {unit}"),
+              o.mdb + (ARCSEC if o.angular else f" {unit}"),
+              ", ".join(map(str, o.inseparable)) or "-"] for o in flagged],
+            {0, 3, 4, 5, 6, 7, 8, 9},
         )
     else:
         out.append("none")

@@ -383,7 +383,8 @@ def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> li
                Column("Adjusted", 58, True),
                Column(f"Residual\n({cols.small_unit})", 44, True),
                Column(f"sd\n({cols.small_unit})", 36, True), Column("r", 24, True),
-               Column("w", 30, True), Column(f"MDB\n({cols.small_unit})", 40, True),
+               Column("w", 30, True), Column(f"Est. bias\n({cols.small_unit})", 40, True),
+               Column(f"MDB\n({cols.small_unit})", 40, True),
                Column("Test", 46)]
     rows, states = [], []
     arcsec = data["arcsec"]
@@ -407,19 +408,25 @@ def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> li
         if o.reduction != report.NOT_APPLICABLE:
             booked = Paragraph(f"{styles.text(o.booked)}<br/>{styles.text(o.reduction)}",
                                styles.cell_right)
+        if o.inseparable:
+            test = [test, Paragraph(styles.text(o.inseparable_text), styles.cell_muted)]
         w_cell: Any = o.w
         if o.flagged:
             w_cell = Paragraph(f"<b>{styles.text(o.w)}</b>", styles.cell_right)
         rows.append([str(o.line), o.kind,
                      Paragraph(marks, styles.cell_muted if o.ignored else styles.cell),
                      booked, o.observed, o.adjusted, o.residual + sfx, o.sd + sfx, o.redundancy,
-                     w_cell, o.mdb + sfx, test])
+                     w_cell,
+                     o.estimated_bias + (sfx if o.estimated_bias != report.NOT_APPLICABLE else ""),
+                     o.mdb + sfx, test])
         states.append("bad" if o.flagged else ("muted" if o.ignored else ""))
     note = ("Booked: the value as written in the field book, with the reduction that turned it "
             "into the value used beneath it (× the scale factor for a distance)."
             + (f" {data['reductions_note']}" if data["reductions_note"] else "")
             + " Residual = adjusted − used. r: redundancy number. w: standardized residual, "
-            f"flagged when |w| > {data['critical_w']}. MDB: minimal detectable bias."
+            f"flagged when |w| > {data['critical_w']}. Est. bias: −v/r, the blunder that alone "
+            "would explain the residual. \u201cSame test as\u201d: w-tests correlated at "
+            "|ρ| ≥ 0.99, which the data cannot tell apart. MDB: minimal detectable bias."
             + (" Angular figures are marked ″ (arc-seconds); the others are in "
                f"{data['length_unit']}." if cols.mixed else ""))
     return [*_heading("Observations", styles),

@@ -14,6 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from . import separability
 from . import statistics as st
 from .adjust import Solution
 from .fieldbook_model import ANGULAR_KINDS, Observation
@@ -118,6 +119,12 @@ class ObservationResult:
     booked: float | None = None
     #: The scale factor applied to a booked distance (1.0 when none); None for other kinds.
     scale_factor: float | None = None
+
+
+    #: −residual/redundancy: the blunder that alone would explain the residual (None without w)
+    estimated_bias: float | None = None
+    #: lines of the used observations whose w-test has |ρ| ≥ 0.99 with this one's
+    inseparable: tuple[int, ...] = ()
 
     @property
     def angular(self) -> bool:
@@ -245,6 +252,8 @@ class AdjustmentResult:
                     "redundancy": o.redundancy,
                     "w": o.w,
                     "mdb": o.mdb,
+                    "estimated_bias": o.estimated_bias,
+                    "inseparable": list(o.inseparable),
                     "flagged": o.flagged,
                     "ignored": o.ignored,
                 }
@@ -402,7 +411,10 @@ def _observation_results(
     sd = (sd_si * small).tolist()
     w_list = np.where(controlled, w_all, np.nan).tolist()
     mdb = np.where(controlled, mdb_si * small, np.nan).tolist()
-    flagged = (controlled & (np.abs(w_all) > critical)).tolist()
+    flagged_rows = controlled & (np.abs(w_all) > critical)
+    flagged = flagged_rows.tolist()
+    bias = np.where(controlled, -residual_si / safe * small, np.nan).tolist()
+    partners = _inseparable_lines(network, solution, r_i, controlled, flagged_rows)
     redundancy_list = redundancy.tolist()
     controlled_list = controlled.tolist()
 
@@ -433,6 +445,10 @@ def _observation_results(
                     note=obs.note,
                     booked=booked[row],
                     scale_factor=_scale_factor(obs),
+
+
+                    estimated_bias=bias[row] if controlled_list[row] else None,
+                    inseparable=partners[row],
                 )
             )
             continue
@@ -486,6 +502,24 @@ def _booked_si(obs: Observation) -> float:
 def _scale_factor(obs: Observation) -> float | None:
     """The scale factor a distance was multiplied by; None where no scale applies."""
     return obs.scale if obs.kind == "distance" else None
+
+
+def _inseparable_lines(
+    network: Network, solution: Solution, r_i: np.ndarray, controlled: np.ndarray, flagged: np.ndarray
+) -> list[tuple[int, ...]]:
+    """For each used row, the lines whose w-test is the same test as its own (|ρ| ≥ 0.99)."""
+    used = network.used
+    n_used = len(used)
+    candidates = np.flatnonzero(controlled)
+    if solution.hat is None or candidates.size < 2:
+        return [()] * n_used
+    rows = separability.correlated_rows(
+        solution.hat, np.asarray(solution.sigmas, dtype=float), np.asarray(r_i, dtype=float),
+        candidates, np.flatnonzero(flagged).tolist(),
+    )
+    # each used row has its own line (a round's directions too), so rows map to lines one to one
+    line_of = [obs.line for obs in used].__getitem__
+    return [tuple(map(line_of, partners)) if partners else () for partners in rows[:n_used]]
 
 
 def _wrap_2pi(angle_rad: np.ndarray) -> np.ndarray:

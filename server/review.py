@@ -328,6 +328,7 @@ class RunFigures:
     redundancy: int
     used: int
     flagged: int
+    unchecked: int = 0
 
 
 @dataclass(frozen=True, slots=True)
@@ -365,6 +366,10 @@ def _corrected(a: AdjustmentResult, b: AdjustmentResult) -> tuple[CorrectedValue
     return tuple(out)
 
 
+    #: observations checked in A that no test can check in B (redundancy number below 0.001)
+    unchecked: tuple[FlagChange, ...] = ()
+
+
 def shift_unit(length_unit: str) -> tuple[str, float]:
     """The unit shifts are shown in and its factor from the file's unit: mm for metres."""
     if length_unit == "m":
@@ -386,12 +391,16 @@ def _difference(a: float | None, b: float | None) -> float | None:
 def _run_figures(result: AdjustmentResult) -> RunFigures:
     s = result.summary
     test = s.global_test
+    v = verdict(result)
     if test is None:
         state, words = "none", "Not tested"
+    elif test.passed and v.unchecked:
+        # a pass with observations nothing checks any more is never shown as a plain pass
+        state, words = "warn", f"! Passes, {v.unchecked} unchecked"
     else:
         state, words = ("pass", "✓ Passes") if test.passed else ("fail", "✕ Fails")
     return RunFigures(
-        verdict=verdict(result),
+        verdict=v,
         test_state=state,
         test_words=words,
         variance_factor=fmt_ratio(s.variance_factor, 3),
@@ -400,6 +409,7 @@ def _run_figures(result: AdjustmentResult) -> RunFigures:
         redundancy=s.redundancy,
         used=s.used_observations,
         flagged=sum(1 for o in result.observations if o.flagged),
+        unchecked=v.unchecked,
     )
 
 
@@ -408,6 +418,8 @@ def _w_text(obs: ObservationResult | None) -> str:
         return "not in this run"
     if obs.ignored:
         return "left out"
+    if obs.w is None and obs.redundancy is not None:
+        return "uncontrolled"
     return fmt_w(obs.w)
 
 
@@ -417,6 +429,10 @@ def compare(a: AdjustmentResult, b: AdjustmentResult) -> Comparison:
     obs_b = {o.line: o for o in b.observations}
     flagged_a = {line for line, o in obs_a.items() if o.flagged}
     flagged_b = {line for line, o in obs_b.items() if o.flagged}
+    # a flag that went away because nothing checks the observation any more is not cleared
+    unchecked_b = {line for line, o in obs_b.items()
+                   if not o.ignored and o.redundancy is not None and o.w is None
+                   and not (line in obs_a and obs_a[line].w is None)}
 
     def change(line: int) -> FlagChange:
         obs = obs_b.get(line) or obs_a[line]
@@ -464,7 +480,7 @@ def compare(a: AdjustmentResult, b: AdjustmentResult) -> Comparison:
     return Comparison(
         a=_run_figures(a),
         b=_run_figures(b),
-        cleared=tuple(change(line) for line in sorted(flagged_a - flagged_b)),
+        cleared=tuple(change(line) for line in sorted(flagged_a - flagged_b - unchecked_b)),
         appeared=tuple(change(line) for line in sorted(flagged_b - flagged_a)),
         still=tuple(change(line) for line in sorted(flagged_a & flagged_b)),
         shifts=tuple(shifts),
@@ -474,6 +490,9 @@ def compare(a: AdjustmentResult, b: AdjustmentResult) -> Comparison:
         heights="h" in held and any(p.height is not None for p in b.points),
         fixed_points=fixed,
         corrected=_corrected(a, b),
+
+
+        unchecked=tuple(change(line) for line in sorted(unchecked_b)),
     )
 
 

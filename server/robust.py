@@ -11,6 +11,11 @@ Several blunders at once can hide one another from the w-test (the
 largest spreads into its neighbours); down-weighting all large residuals
 together often separates them.  Observations whose final |u| exceeds the
 w-test's critical value are reported as suspects.  Nothing is removed.
+
+When the observation it down-weights most has w-tests inseparable from
+others' (``inseparable``, |ρ| ≥ 0.99 in the ordinary adjustment), the
+choice among them is arbitrary: ``inseparable_warning`` then names the
+group and says the data cannot tell which is wrong.
 """
 
 from __future__ import annotations
@@ -22,6 +27,7 @@ from dataclasses import dataclass
 from .fieldbook_model import Fieldbook, Observation
 from .pipeline import adjust_parsed
 from .result import AdjustmentResult
+from .snooping import describe
 from .units import Quantity
 
 HUBER_K = 1.5
@@ -49,6 +55,9 @@ class RobustResult:
     critical: float
     observations: tuple[RobustObservation, ...]
     result: AdjustmentResult
+    #: set when the most down-weighted observation cannot be told apart from others
+    inseparable_warning: str = ""
+    inseparable: tuple[int, ...] = ()
 
     @property
     def suspects(self) -> tuple[int, ...]:
@@ -115,6 +124,7 @@ def robust_adjustment(
             continue
         u = o.residual / (sd_original[o.line] * math.sqrt(o.redundancy))
         final.append(RobustObservation(o.line, weights[o.line], u, abs(u) > critical))
+    warning, group = _inseparable_warning(base, final)
     return RobustResult(
         k=k,
         iterations=iterations,
@@ -122,4 +132,24 @@ def robust_adjustment(
         critical=critical,
         observations=tuple(final),
         result=result,
+        inseparable_warning=warning,
+        inseparable=group,
+    )
+
+
+def _inseparable_warning(base: AdjustmentResult, final: list[RobustObservation]) -> tuple[str, tuple[int, ...]]:
+    """The warning for a most down-weighted observation whose w-test others share."""
+    lowest = min((o for o in final if o.weight < 1.0), key=lambda o: o.weight, default=None)
+    if lowest is None:
+        return "", ()
+    by_line = {o.line: o for o in base.observations}
+    first = by_line.get(lowest.line)
+    if first is None or not first.inseparable:
+        return "", ()
+    group = tuple(sorted({lowest.line, *first.inseparable}))
+    return (
+        f"the most down-weighted observation, line {lowest.line}, cannot be told apart from the "
+        f"others of its group: {describe(base, group)} are tested by the same check, so the data "
+        "cannot tell which of them is wrong. Re-observe them, or check the field notes",
+        group,
     )

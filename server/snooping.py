@@ -4,6 +4,14 @@ The sequence is Baarda's: adjust, take the flagged observation with the
 largest |w|, leave it out, adjust again, until no observation is flagged.
 Each step is returned for the surveyor to accept or reject; the field book
 is not changed.
+
+The sequence stops, without a step, when the worst flagged observation's
+w-test is the same test as other observations' (its ``inseparable`` list,
+|ρ| ≥ 0.99): sections in series between two benchmarks, the sides of a
+single loop.  Their |w| are then equal and leaving out the "largest" one
+is a coin toss that hides the blunder instead of finding it (the others
+become uncontrolled and stop being flagged).  The plan names the whole group
+and says the data cannot tell which is wrong.
 """
 
 from __future__ import annotations
@@ -41,6 +49,8 @@ class SnoopingPlan:
 
     steps: tuple[SnoopingStep, ...]
     stopped: str
+    #: lines of a group of observations the data cannot tell apart, when that stopped the plan
+    inseparable: tuple[int, ...] = ()
 
 
 def with_ignored(fieldbook: Fieldbook, lines: set[int]) -> Fieldbook:
@@ -68,6 +78,9 @@ def propose_snooping(fieldbook: Fieldbook, first: AdjustmentResult | None = None
                 "look for a systematic problem (units, a priori standard deviations, control)",
             )
         worst = max(flagged, key=lambda o: abs(o.w or 0.0))
+        if worst.inseparable:
+            group = (worst.line, *worst.inseparable)
+            return SnoopingPlan(tuple(steps), inseparable_message(result, group), tuple(sorted(group)))
         try:
             after = adjust_parsed(with_ignored(fieldbook, removed | {worst.line}))
         except NetworkError as exc:
@@ -93,3 +106,25 @@ def propose_snooping(fieldbook: Fieldbook, first: AdjustmentResult | None = None
             )
         )
         result = after
+
+
+def describe(result: AdjustmentResult, lines: tuple[int, ...]) -> str:
+    """'line 7 (level A → B), line 8 (…) and line 9 (…)', in file order."""
+    by_line = {o.line: o for o in result.observations}
+    parts = []
+    for line in sorted(set(lines)):
+        o = by_line.get(line)
+        marks = f"{o.from_point} – {o.at} – {o.to}" if o and o.kind == "angle" and o.at else (
+            f"{o.from_point} → {o.to}" if o else "")
+        parts.append(f"line {line} ({o.kind} {marks})" if o else f"line {line}")
+    return parts[0] if len(parts) == 1 else ", ".join(parts[:-1]) + " and " + parts[-1]
+
+
+def inseparable_message(result: AdjustmentResult, group: tuple[int, ...]) -> str:
+    """Why no single observation of ``group`` is proposed, and what to do instead."""
+    return (
+        f"{describe(result, group)} are tested by the same check (their w-tests are correlated "
+        "at |ρ| ≥ 0.99): the data cannot tell which of them is wrong. Leaving one out would only "
+        "hide the blunder and leave the others unchecked. Re-observe these sections, or check "
+        "the field notes for a booking error; no removal is proposed"
+    )

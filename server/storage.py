@@ -505,6 +505,10 @@ def _outcome(
     contract = result.to_json_dict()
     summary = dict(contract["summary"])  # type: ignore[call-overload]
     summary["flagged"] = sum(1 for o in result.observations if o.flagged)
+    # used observations no test can check (w null): the list never shows them as a plain pass
+    summary["uncontrolled"] = sum(
+        1 for o in result.observations if not o.ignored and o.redundancy is not None and o.w is None
+    )
     return ("finished", json.dumps(contract), json.dumps(dataclasses.asdict(result)),
             json.dumps(summary), None)
 
@@ -526,7 +530,10 @@ def _result_from_detail(data: dict[str, Any]) -> AdjustmentResult:
         **data,
         "summary": Summary(**summary),
         "points": points,
-        "observations": tuple(ObservationResult(**o) for o in data["observations"]),
+        "observations": tuple(
+            ObservationResult(**{**o, "inseparable": tuple(o.get("inseparable", ()))})
+            for o in data["observations"]
+        ),
         "misclosures": tuple(
             MisclosureResult(**{**m, "points": tuple(m["points"])}) for m in data["misclosures"]
         ),

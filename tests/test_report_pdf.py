@@ -166,7 +166,8 @@ def test_every_point_and_observation_is_listed(network, network_pdf):
 
 def test_observation_table_repeats_its_header_on_every_page_it_runs_onto(network, network_pdf):
     pages = _pages(network_pdf)
-    header = "Line Kind Marks Booked (m / D:M:S) Used Adjusted Residual (m / ″) sd (m / ″) r w MDB"
+    header = ("Line Kind Marks Booked (m / D:M:S) Used Adjusted Residual (m / ″) sd (m / ″) r w "
+              "Est. bias (m / ″) MDB")
     with_rows = [i for i, text in enumerate(pages)
                  if re.search(r" \d{2,3} (distance|direction|angle|azimuth) [A-Z]", text)]
     assert len(with_rows) >= 3  # 166 observations do not fit on fewer pages
@@ -181,8 +182,9 @@ def test_flagged_observations_are_marked_in_words(directions, directions_pdf):
     assert flagged
     assert text.count("⚑ flagged") == len(flagged)
     worst = max(flagged, key=lambda o: abs(o.w))
+    # the estimated bias −v/r stands beside w
     assert f"{worst.residual:.1f}″ {worst.sd:.1f}″ {worst.redundancy:.2f} {worst.w:.2f} " \
-           f"{worst.mdb:.1f}″ ⚑ flagged" in text
+           f"{-worst.residual / worst.redundancy:.1f}″ {worst.mdb:.1f}″ ⚑ flagged" in text
 
 
 def test_relative_precision_table_says_meets_or_fails(network, network_pdf):

@@ -309,8 +309,14 @@ def _list_verdict(run: Run | None) -> tuple[str, str]:
     if test is None:
         return "none", "Not tested (no redundancy)"
     flagged = summary.get("flagged", 0)
+    unchecked = summary.get("uncontrolled", 0)
     if test.get("passed"):
-        return ("warn", f"Passes, {flagged} flagged") if flagged else ("pass", "Passes")
+        if flagged:
+            return "warn", f"Passes, {flagged} flagged"
+        if unchecked:
+            noun = "observation" if unchecked == 1 else "observations"
+            return "warn", f"Passes, but {unchecked} {noun} can no longer be checked"
+        return "pass", "Passes"
     return "fail", f"Fails, {flagged} flagged" if flagged else "Fails"
 
 

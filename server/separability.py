@@ -1,0 +1,213 @@
+"""Which w-tests are (nearly) the same test: observations the data cannot tell apart.
+
+With uncorrelated observations, P = diag(1/σ²), the w-tests of observations
+i and j are correlated by
+
+    ρ_ij = (P·Qvv·P)_ij / √((P·Qvv·P)_ii·(P·Qvv·P)_jj) = R_ij / √(r_i·r_j),
+
+where R = I − P^½·A·Qxx·Aᵀ·P^½ is the projector onto the residual space
+(R_ii = r_i, the redundancy number).  R_ij is the cosine-like overlap of the
+two observations' residual vectors, so |ρ_ij| = 1 exactly when every check
+the network offers on i is also a check on j with a fixed ratio: sections in
+series in a leveling line, the sides of a single loop, the two halves of a
+run with no other redundancy.  A blunder in either then gives both the same
+|w|, and leaving out the "largest" one is a coin toss.  An observation's
+``inseparable`` list holds the lines whose |ρ| is at least 0.99.
+
+How the pairs are found (``correlated_rows``):
+
+* Small networks (at most ``DENSE_ROWS`` rows): R in full, from
+  A·Qxx·Aᵀ applied to P^½ (block solves with the factor, ``BLOCK`` columns
+  at a time, so no n×n array is held), every pair exact.
+* Larger networks: no n×n matrix.  Two exact parts:
+
+  1. *Simulated residuals* find every |ρ| = 1 group among all observations.
+     k = ``SAMPLES`` vectors of unit white noise g are "adjusted" with the
+     factor already in hand (one solve with k right-hand sides), giving
+     y = R·g.  Cov(y) = R·Rᵀ = R, so y_i/√r_i over the k samples is a
+     vector whose cosine with y_j/√r_j estimates ρ_ij; when |ρ_ij| = 1 the
+     two vectors are identical up to sign in every sample (they are the same
+     linear function of g), whatever k.  Sorting the sign-normalized vectors
+     on a few rounded coordinates (twice, the grid shifted by half a cell, so
+     rounding cannot split a group) brings identical ones next to each other,
+     and neighbours equal to ``SAME_SIGNATURE`` in every sample are joined.
+     Measured on the 100k-mark benchmark leveling, members of a group agree to
+     1e-13.  A false join needs two different vectors to agree in all k
+     random coordinates, which does not happen in floating point.  This is
+     O(k·(solve + n log n)).
+  2. Every flagged observation (the only ones the review acts on) gets its
+     whole row of ρ exactly: A·Qxx·a_iᵀ for the flagged rows, solved in
+     blocks of ``BLOCK`` right-hand sides.  So a flagged observation's list
+     is complete at 0.99, not only at 1.  One solve serves a whole |ρ| = 1
+     group (its members' columns of R are parallel, so their rows of ρ are
+     equal up to sign): a blunder flags its whole series chain, and the
+     chain costs one right-hand side.
+
+  What the large-network path does not search is a pair of two unflagged
+  observations with 0.99 ≤ |ρ| < 1 (nearly, but not exactly, the same
+  test, as two series chains joined by a much weaker tie): their lists
+  hold their |ρ| = 1 partners only.  Flagged observations, which the
+  verdict, the review and the snooping suggestion act on, are exact.
+
+The numbers need only ``hat(B) = A·Qxx·Aᵀ·B`` from the engine
+(``adjust.Solution.hat``), which is datum-invariant, so a free network's
+minimal-datum factor serves as well as the inner-constraint Qxx.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+
+import numpy as np
+
+#: |ρ| at or above this makes two w-tests inseparable (contract value).
+THRESHOLD = 0.99
+#: Networks with at most this many rows (observations and weighted control) get R in full.
+DENSE_ROWS = 2000
+#: Simulated noise vectors for the |ρ| = 1 groups of large networks.
+SAMPLES = 8
+#: Two normalized signatures closer than this in every sample are the same test.
+SAME_SIGNATURE = 1e-6
+#: Signatures are sorted on this many samples rounded to this grid (see ``_simulated_groups``).
+KEY_COLUMNS = 4
+GRID = 1e-5
+#: Right-hand sides per block solve for the exact rows of flagged observations.
+BLOCK = 256
+#: Above this many flagged observations only the |ρ| = 1 groups are searched for the rest.
+MAX_EXACT_ROWS = 4096
+
+Hat = Callable[[np.ndarray], np.ndarray]
+
+
+def correlated_rows(
+    hat: Hat,
+    sigmas: np.ndarray,
+    redundancy: np.ndarray,
+    candidates: np.ndarray,
+    exact_rows: Sequence[int],
+    *,
+    dense_rows: int = DENSE_ROWS,
+    threshold: float = THRESHOLD,
+) -> list[tuple[int, ...]]:
+    """For each row, the other rows in ``candidates`` whose w-test has |ρ| ≥ threshold.
+
+    ``sigmas`` and ``redundancy`` cover every row of A (control rows too);
+    ``candidates`` are the rows that have a w-test (controlled field
+    observations); ``exact_rows`` (a subset) get their whole row exactly.
+    Each tuple is in ascending order; rows outside ``candidates`` get ().
+    """
+    n = sigmas.shape[0]
+    out: list[tuple[int, ...]] = [()] * n
+    candidates = np.asarray(candidates, dtype=np.int64)
+    if candidates.size < 2:
+        return out
+    root_p = 1.0 / sigmas
+    pairs: list[tuple[np.ndarray, np.ndarray]] = []
+    if n <= dense_rows:
+        # every row exact, in blocks so that no n×n array is held
+        for start in range(0, candidates.size, BLOCK):
+            pairs.append(_pairs(hat, root_p, redundancy, candidates[start:start + BLOCK], candidates, threshold))
+    else:
+        _simulated_groups(hat, root_p, redundancy, candidates, out)
+        exact = _representatives(exact_rows, candidates, out, n)
+        for start in range(0, exact.size, BLOCK):
+            pairs.append(_pairs(hat, root_p, redundancy, exact[start:start + BLOCK], candidates, threshold))
+    groups = list(out)
+    extra: dict[int, set[int]] = {}
+    for first, second in pairs:
+        for a, b in zip(first.tolist(), second.tolist()):
+            # the members of a's |ρ| = 1 group have a's row of ρ up to sign
+            for c in (a, *groups[a]):
+                if c != b:
+                    extra.setdefault(c, set()).add(b)
+                    extra.setdefault(b, set()).add(c)
+    for a, others in extra.items():
+        out[a] = tuple(sorted(others.union(out[a])))
+    return out
+
+
+def _representatives(exact_rows: Sequence[int], candidates: np.ndarray, groups, n: int) -> np.ndarray:
+    """The rows to solve for exactly: one per |ρ| = 1 group, since its members share
+    their column of R up to scale; at most ``MAX_EXACT_ROWS``."""
+    member = np.zeros(n, bool)
+    member[candidates] = True
+    covered: set[int] = set()
+    chosen: list[int] = []
+    for i in exact_rows:
+        if member[i] and i not in covered:
+            chosen.append(i)
+            covered.add(i)
+            covered.update(groups[i])
+    return np.array(chosen[:MAX_EXACT_ROWS], dtype=np.int64)
+
+
+def correlation_rows(hat: Hat, sigmas: np.ndarray, redundancy: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """ρ[rows[k], j] for every row j: the exact correlations of a few w-tests with all others.
+
+    Column i of R is e_i − P^½·A·Qxx·Aᵀ·P^½·e_i; rows with r = 0 give 0.
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    n = sigmas.shape[0]
+    root_p = 1.0 / sigmas
+    unit = np.zeros((n, rows.size))
+    unit[rows, np.arange(rows.size)] = root_p[rows]
+    r_columns = -root_p[:, None] * hat(unit)
+    r_columns[rows, np.arange(rows.size)] += 1.0
+    scale = np.sqrt(np.maximum(redundancy, 0.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rho = r_columns / scale[:, None] / scale[rows][None, :]
+    return np.nan_to_num(rho, nan=0.0, posinf=0.0, neginf=0.0).T
+
+
+def _pairs(hat: Hat, root_p, redundancy, rows, candidates, threshold) -> tuple[np.ndarray, np.ndarray]:
+    """(row, candidate) pairs with |ρ| ≥ threshold, ρ computed exactly for ``rows``.
+
+    The test |R_ij| ≥ threshold·√(r_i·r_j) is ρ's without dividing by a vanishing r.
+    """
+    unit = np.zeros((root_p.shape[0], rows.size))
+    unit[rows, np.arange(rows.size)] = root_p[rows]
+    r_columns = (root_p[:, None] * hat(unit))[candidates]  # −R off the diagonal
+    scale = np.sqrt(np.maximum(redundancy, 0.0))
+    bound = threshold * scale[candidates][:, None] * scale[rows][None, :]
+    second, first = np.nonzero(np.abs(r_columns) >= bound)
+    return rows[first], candidates[second]
+
+
+def _simulated_groups(hat: Hat, root_p, redundancy, candidates, out) -> None:
+    """Join rows whose simulated standardized residuals agree in every sample (|ρ| = 1).
+
+    The signatures are sorted on a few coordinates rounded to ``GRID``; members of a
+    group round alike unless they straddle a grid line, so a second pass on a grid
+    shifted by half a cell catches those.  Neighbours in either order that agree to
+    ``SAME_SIGNATURE`` in all samples are linked, and the linked sets are the groups.
+    """
+    import scipy.sparse
+    from scipy.sparse.csgraph import connected_components
+
+    n = root_p.shape[0]
+    noise = np.random.default_rng(20260).standard_normal((n, SAMPLES))
+    residual = noise - root_p[:, None] * hat(root_p[:, None] * noise)  # R·g
+    signature = residual[candidates] / np.sqrt(redundancy[candidates])[:, None]
+    signature *= np.where(signature[:, :1] < 0.0, -1.0, 1.0)
+    first, second = [], []
+    for shift in (0.0, 0.5):
+        keys = np.floor(signature[:, :KEY_COLUMNS] / GRID + shift).astype(np.int64)
+        order = np.lexsort(keys.T[::-1])
+        ranked = signature[order]
+        same = np.flatnonzero(np.all(np.abs(np.diff(ranked, axis=0)) <= SAME_SIGNATURE, axis=1))
+        first.append(order[same])
+        second.append(order[same + 1])
+    a, b = np.concatenate(first), np.concatenate(second)
+    if a.size == 0:
+        return
+    m = candidates.size
+    links = scipy.sparse.coo_matrix((np.ones(a.size), (a, b)), shape=(m, m))
+    _, label = connected_components(links, directed=False)
+    grouped = np.flatnonzero(np.bincount(label)[label] >= 2)
+    grouped = grouped[np.argsort(label[grouped], kind="stable")]
+    bounds = [0, *(np.flatnonzero(np.diff(label[grouped])) + 1).tolist(), grouped.size]
+    members = candidates[grouped].tolist()
+    for start, end in zip(bounds[:-1], bounds[1:]):
+        group = tuple(sorted(members[start:end]))
+        for k, row in enumerate(group):
+            out[row] = group[:k] + group[k + 1:]
