@@ -894,6 +894,13 @@ def report_text(result: AdjustmentResult) -> str:
         row.append(p.role)
         body.append(row)
     out += ["", "Points"] + _table(header, body, right)
+    heights = relative_height_rows(result)
+    if heights:
+        rows_h = [[h.from_point, h.to_point, h.height_difference, h.sd,
+                   h.half_width + (" (held)" if h.held else "")] for h in heights]
+        out += ["", "Relative precision of height differences (relative lines)"] + _table(
+            ["from", "to", f"ΔH {unit}", "sd ΔH", f"± {fmt_percent(result.summary.confidence)}"],
+            rows_h, {2, 3, 4})
 
     exceeded = [m for m in misclosure_rows(result) if m.exceeds]
     if exceeded:
