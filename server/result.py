@@ -9,6 +9,7 @@ object feeds the command line, the JSON API, the web pages and the reports;
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -690,7 +691,7 @@ def _relative_results(
     factor: float,
     confidence: float,
     per_m: float,
-    requested: list[tuple[str, str]] = (),  # type: ignore[assignment]
+    requested: Sequence[tuple[str, str]] = (),
 ) -> tuple[RelativeResult, ...]:
     """Relative confidence ellipses: Σ_Δ = Σ_ii + Σ_jj − Σ_ij − Σ_ji over (E, N).
 
@@ -798,26 +799,29 @@ def _relative_height_results(
     column = {p.point: k for k, p in enumerate(network.parameters) if p.kind == "H"}
     scale = st.interval_factor(confidence, redundancy)
     coordinates = solution.coordinates
+    # (H_a, H_b) unknowns per pair, −1 where held; one fetch of every needed element of Qxx
+    ends = np.array([[column.get(a, -1), column.get(b, -1)] for a, b in pairs], dtype=np.int64)
+    sign = np.array([-1.0, 1.0])
+    rows = np.repeat(ends, 2, axis=1)  # a a b b
+    cols = np.tile(ends, (1, 2))  # a b a b
+    valid = (rows >= 0) & (cols >= 0)
+    q = np.zeros(rows.shape)
+    q[valid] = solution.covariance_entries(rows[valid], cols[valid])
+    weights = np.repeat(sign, 2) * np.tile(sign, 2)  # + − − +
+    variances = variance * (q * weights).sum(axis=1)
+    sds = (np.sqrt(np.maximum(variances, 0.0)) * per_m).tolist()
+    held = (ends < 0).all(axis=1).tolist()
     results = []
-    for a, b in pairs:
-        ends = [column.get(a, -1), column.get(b, -1)]
-        signs = np.array([-1.0, 1.0])
-        kept = [k for k, c in enumerate(ends) if c >= 0]
-        q = 0.0
-        if kept:
-            block = solution.covariance_block([ends[k] for k in kept])
-            s_ = signs[kept]
-            q = float(s_ @ block @ s_)
-        sd = math.sqrt(max(variance * q, 0.0)) * per_m
+    for k, (a, b) in enumerate(pairs):
         results.append(
             RelativeHeightResult(
                 from_point=a,
                 to_point=b,
                 height_difference=(coordinates[b][2] - coordinates[a][2]) * per_m,
-                sd=sd,
-                half_width=sd * scale,
+                sd=sds[k],
+                half_width=sds[k] * scale,
                 confidence=confidence,
-                held=not kept,
+                held=held[k],
             )
         )
     return tuple(results)

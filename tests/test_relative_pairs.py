@@ -196,8 +196,11 @@ def test_banner_on_failure_says_how_many_of_which_pairs():
     assert check.words == "Fail: 12 of 12 pairs exceed the allowance (8 joined pairs and 4 requested pairs checked)"
 
 
-def test_leveling_pair_gives_the_sd_of_the_height_difference():
-    """Two new marks on different lines, never levelled to each other."""
+@pytest.mark.parametrize("path", ["dense", "sparse"])
+def test_leveling_pair_gives_the_sd_of_the_height_difference(path, monkeypatch):
+    """Two new marks between two benchmarks; ΔH(N1, N2) carries their correlation."""
+    if path == "sparse":
+        monkeypatch.setattr(engine, "DENSE_LIMIT", 0)
     text = (
         "fieldbook 1\n"
         "defaults level=1.0mm/sqrtkm\n"
