@@ -298,3 +298,26 @@ def test_relative_is_a_body_statement_so_a_header_after_it_is_refused():
     with pytest.raises(FieldbookError) as caught:
         parse_fieldbook(text)
     assert any("must come before the first point or observation" in i.message for i in caught.value.issues)
+
+
+def test_joint_network_pair_with_a_height_only_point_is_named_in_a_warning():
+    """A turning point only levelled has no position: no horizontal ellipse can be given."""
+    text = (
+        "defaults distance=2mm level=1mm/sqrtkm direction=2sec\n"
+        "point A east=0 north=0 height=10 fix\n"
+        "point B east=100 north=0 height=11 fix\n"
+        "directions A\n  B 0:00:00\n  C 45:00:00\nend\n"
+        "directions B\n  A 0:00:00\n  C 315:00:00\nend\n"
+        "distance A C 70.7107\n"
+        "level A TP +0.5 len=0.1km\n"
+        "level TP B +0.5 len=0.1km\n"
+        "relative C TP\n"
+        "relative C A\n"
+    )
+    result = adjust_fieldbook(text)
+    assert result.summary.dimension == 3
+    assert [(r.from_point, r.to_point, r.requested) for r in result.relative] == [
+        ("A", "C", True), ("B", "C", False)]
+    assert result.relative_heights == ()
+    assert any(w.startswith("line 15: relative C TP is not reported: TP has no adjusted "
+                            "horizontal position") for w in result.warnings)
