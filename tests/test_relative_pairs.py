@@ -321,3 +321,27 @@ def test_joint_network_pair_with_a_height_only_point_is_named_in_a_warning():
     assert result.relative_heights == ()
     assert any(w.startswith("line 15: relative C TP is not reported: TP has no adjusted "
                             "horizontal position") for w in result.warnings)
+
+
+def test_a_relative_decision_appends_lines_keeping_every_line_number_and_the_line_ends():
+    from server.edits import EditError, ObservationEdit, apply_edits
+
+    text = boundary_text("relative K1 K2").replace("\n", "\r\n")  # CRLF, no final line end
+    edit = ObservationEdit(line=0, action="relative", reason="adjacent\ncorners", date="2026-12-03",
+                           pairs=(("K2", "K1"), ("K2", "K3")))
+    edited = apply_edits(text, [edit])
+    assert edited.startswith(text + "\r\n")  # K2–K1 is already asked for: not repeated
+    assert edited[len(text) + 2:] == (
+        "relative K2 K3  # 2026-12-03 relative precision asked for: adjacent corners\r\n")
+    assert [(p.first, p.second) for p in parse_fieldbook(edited).relative_pairs] == [
+        ("K1", "K2"), ("K2", "K3")]
+    for pairs, words in (((), "at least one pair"), ((("K1", "K1"),), "same point twice"),
+                         ((("K1", "K 2"),), "cannot be written"),
+                         (tuple(("K1", f"P{k}") for k in range(201)), "at most 200")):
+        bad = ObservationEdit(line=0, action="relative", reason="r", date="2026-12-03", pairs=pairs)
+        with pytest.raises(EditError, match=words):
+            apply_edits(text, [bad])
+    unknown = ObservationEdit(line=0, action="relative", reason="r", date="2026-12-03",
+                              pairs=(("K1", "K33"),))
+    with pytest.raises(EditError, match="line 31: relative: point K33 .*did you mean .K3.?"):
+        apply_edits(text, [unknown])
