@@ -139,3 +139,27 @@ def test_counts_are_bounded():
         requested_pairs(names, many, "", "", [])
     # the same pair written both ways counts once
     assert requested_pairs(names, ["P1 P2", "P2 P1"], "P1", "P2", []) == [("P1", "P2")]
+
+
+def test_a_leveling_project_gets_the_sd_of_the_height_difference(client):
+    text = (
+        "defaults level=1.0mm/sqrtkm\n"
+        "point BM-A height=50.0000 fix\npoint BM-B height=52.0000 fix\n"
+        "level BM-A N1 +0.8123 len=0.8km\nlevel N1 BM-B +1.1890 len=0.6km\n"
+        "level BM-A N2 +1.4002 len=1.1km\nlevel N2 BM-B +0.5985 len=0.9km\n"
+    )
+    project = _upload(client, text, "heights.fieldbook")
+    picker = _picker(client.get(f"/projects/{project}").text)
+    assert "standard deviation of its height difference" in picker
+    assert _ask(client, project, **{"from": "N1", "to": "N2"}).status_code == 303
+    assert _rerun(client, project).status_code == 303
+    data = client.get(f"/projects/{project}/result.json").json()
+    (pair,) = data["relative_heights"]
+    assert (pair["from"], pair["to"]) == ("N1", "N2")
+    # N1 and N2 lie on separate lines between the benchmarks: uncorrelated, so
+    # σ(ΔH)² = σ(N1)² + σ(N2)²
+    points = {p["name"]: p for p in data["points"]}
+    assert pair["sd"] == pytest.approx((points["N1"]["sd_height"] ** 2
+                                        + points["N2"]["sd_height"] ** 2) ** 0.5, rel=1e-9)
+    page = client.get(f"/projects/{project}").text
+    assert 'id="relative-heights"' in page
