@@ -5,7 +5,9 @@ deviation or correcting a misbooked value edits only that observation's own
 line, so every line keeps its number: the flag ``ignore`` is added or
 removed, ``sd=`` is set, or the value is replaced, and the reason with its
 date is appended to the line's comment (a correction keeps the value it
-replaced there: ``# corrected from 291:16:40 on 2026-12-03: reason``).  The original text
+replaced there: ``# corrected from 291:16:40 on 2026-12-03: reason``).  Asking
+for the relative precision of point pairs adds ``relative A B`` lines at the
+end of the file (after every numbered line, so no number moves).  The original text
 is never changed in place; ``apply_edits`` returns a new text that parses to
 the field book the surveyor decided on.
 """
@@ -20,17 +22,22 @@ from .errors import FieldbookError, SurveyError
 from .fieldbook import parse_fieldbook
 from .units import UnitError, parse_quantity
 
-ACTIONS = ("exclude", "include", "sd", "correct")
+ACTIONS = ("exclude", "include", "sd", "correct", "relative")
 #: Longest corrected value accepted (characters); no booked value is longer.
 MAX_VALUE_CHARS = 40
 #: Characters a value cannot contain: they would end it, start a comment or make an option.
 _NOT_IN_VALUE = re.compile(r'[\s#"=]')
+#: Most pairs one "relative" decision may ask for (every pair costs a few solves).
+MAX_PAIRS = 200
+#: A name the format accepts that can be written back on a line: no white space, '#', '"', '='.
+_PAIR_NAME = re.compile(r'[^\s#"=]{1,64}\Z')
 _REASON_LIMIT = 300
 _CONTROL = re.compile(r"[\x00-\x1f\x7f\u2028\u2029]+")
 _DATE = re.compile(r"^\d{4}-\d{2}-\d{2}$")
 #: A line with its ending, split as the parser splits (LF, CRLF or CR; not str.splitlines,
 #: which also breaks at form feeds and U+2028 and would shift every later line number).
 _LINE = re.compile(r"[^\r\n]*(?:\r\n|\r|\n)|[^\r\n]+\Z")
+_ENDING = re.compile(r"\r\n|\r|\n")
 #: Tokens before the first option or flag: the keyword and its positional values;
 #: a direction inside a round is written ``TO VALUE`` with no keyword.
 _LEADING_TOKENS = {
@@ -50,7 +57,9 @@ class ObservationEdit:
     (use ``sd``, a quantity with units such as ``3mm`` or ``2.5sec``) or
     "correct" (replace the booked value by ``value``, written as the field
     book writes it; ``previous`` is the value it replaces, recorded when the
-    decision is made so the review trail can show both).
+    decision is made so the review trail can show both) or "relative" (report
+    the relative precision of ``pairs``; ``line`` is 0, the lines are added at
+    the end of the file).
     """
 
     line: int
@@ -60,6 +69,7 @@ class ObservationEdit:
     sd: str | None = None
     value: str | None = None
     previous: str | None = None
+    pairs: tuple[tuple[str, str], ...] = ()
 
     def describe(self) -> str:
         """The decision in words, as written into the field book comment."""
@@ -69,6 +79,8 @@ class ObservationEdit:
             return "brought back"
         if self.action == "correct":
             return f"value corrected to {self.value}"
+        if self.action == "relative":
+            return "relative precision asked for"
         return f"sd set to {self.sd}"
 
 
@@ -85,6 +97,8 @@ def validate_edit(edit: ObservationEdit) -> None:
         raise EditError(f"line {edit.line}: every decision needs a reason")
     if not _DATE.match(edit.date):
         raise EditError(f"line {edit.line}: the date must be written YYYY-MM-DD")
+    if edit.action == "relative":
+        _validate_pairs(edit.pairs)
     if edit.action == "sd":
         text = (edit.sd or "").strip()
         if not text or any(c.isspace() for c in text):
@@ -119,13 +133,24 @@ def apply_edits(text: str, edits: Sequence[ObservationEdit], *, source: str = ""
     fieldbook = parse_fieldbook(text, source=source)
     observation_lines = {o.line: o for o in fieldbook.observations}
     lines = _LINE.findall(text)
+    asked = {frozenset((p.first, p.second)) for p in fieldbook.relative_pairs}
+    added: list[str] = []
     for edit in edits:
         validate_edit(edit)
+        if edit.action == "relative":
+            added += _relative_lines(edit, asked)
+            continue
         obs = observation_lines.get(edit.line)
         if obs is None or not 1 <= edit.line <= len(lines):
             raise EditError(f"line {edit.line} holds no observation that can be edited")
         lines[edit.line - 1] = _edit_line(lines[edit.line - 1], edit, _LEADING_TOKENS[obs.kind])
     edited = "".join(lines)
+    if added:
+        ending = _ENDING.search(text)
+        newline = ending.group() if ending else "\n"
+        if edited and not edited.endswith(("\n", "\r")):
+            edited += newline
+        edited += "".join(line + newline for line in added)
     try:
         parse_fieldbook(edited, source=source)
     except FieldbookError as exc:
@@ -160,6 +185,32 @@ def value_token(line_text: str, kind: str) -> str:
         return ""
     start, end = spans[index]
     return code[start:end]
+
+
+def _validate_pairs(pairs: Sequence[tuple[str, str]]) -> None:
+    if not pairs:
+        raise EditError("choose at least one pair of points")
+    if len(pairs) > MAX_PAIRS:
+        raise EditError(f"{len(pairs)} pairs at once is too many; ask for at most {MAX_PAIRS}")
+    for pair in pairs:
+        if len(pair) != 2 or not all(
+            isinstance(n, str) and _PAIR_NAME.match(n) and n.isprintable() for n in pair
+        ):
+            raise EditError("a pair names a point that cannot be written in a field book")
+        if pair[0] == pair[1]:
+            raise EditError(f"the pair {pair[0]}–{pair[1]} names the same point twice")
+
+
+def _relative_lines(edit: ObservationEdit, asked: set[frozenset[str]]) -> list[str]:
+    """``relative A B  # DATE relative precision asked for: REASON`` for each new pair."""
+    out = []
+    note = f"# {edit.date} {edit.describe()}: {clean_reason(edit.reason)}"
+    for a, b in edit.pairs:
+        key = frozenset((a, b))
+        if key not in asked:
+            asked.add(key)
+            out.append(f"relative {a} {b}  {note}")
+    return out
 
 
 def _edit_line(line: str, edit: ObservationEdit, first_option: int) -> str:

@@ -51,7 +51,14 @@ from .fieldbook_lexer import (
     to_bytes,
     tokenize,
 )
-from .fieldbook_model import DirectionRound, Fieldbook, Observation, PointStatement, TestLevels
+from .fieldbook_model import (
+    DirectionRound,
+    Fieldbook,
+    Observation,
+    PointStatement,
+    RelativePair,
+    TestLevels,
+)
 from .point_names import near_miss_warnings
 from .units import (
     FILE_ANGLE_UNITS,
@@ -179,6 +186,7 @@ class _Parser:
         self.observations: list[Observation] = []
         self.rounds: list[DirectionRound] = []
         self.round: _Round | None = None
+        self.relative_pairs: list[RelativePair] = []
 
     # ---- driving
 
@@ -211,6 +219,8 @@ class _Parser:
                 "add 'end' after its last direction",
             )
             self.close_round()
+        if self.relative_pairs:
+            self.check_relative_names()
 
     def fieldbook(self, source: str, digest: str) -> Fieldbook:
         return Fieldbook(
@@ -225,6 +235,7 @@ class _Parser:
             points=tuple(self.points),
             observations=tuple(self.observations),
             rounds=tuple(self.rounds),
+            relative_pairs=tuple(self.relative_pairs),
             warnings=self.warnings.result(),
             text_sha256=digest,
         )
@@ -855,6 +866,51 @@ class _Parser:
         if round_.at is not None:
             self.rounds.append(DirectionRound(line, round_.at, tuple(round_.lines)))
 
+    # ---- relative precision asked for
+
+    def relative_pair(self, st: Statement) -> None:
+        """``relative A B``: the names are checked once the whole file is read."""
+        first, second = (self.read(st, token, point_name) for token in st.values)
+        if first is None or second is None:
+            return
+        if first == second:
+            message = f"relative from {first} to itself: name two different points"
+            self.error(st.line, st.values[1].raw, message)
+            return
+        key = frozenset((first, second))
+        for earlier in self.relative_pairs:
+            if frozenset((earlier.first, earlier.second)) == key:
+                self.warnings.add(
+                    st.line,
+                    st.word,
+                    f"the pair {first}–{second} is already asked for on line {earlier.line}; "
+                    "it is reported once",
+                )
+                return
+        self.relative_pairs.append(RelativePair(st.line, first, second))
+
+    def check_relative_names(self) -> None:
+        """Both points of a pair must be named elsewhere in the file (declared or observed)."""
+        known: set[str] = set(self.point_lines)
+        for obs in self.observations:
+            known.add(obs.from_point)
+            known.add(obs.to)
+            if obs.at is not None:
+                known.add(obs.at)
+        kept = []
+        for pair in self.relative_pairs:
+            missing = [name for name in (pair.first, pair.second) if name not in known]
+            for name in missing:
+                self.error(
+                    pair.line,
+                    name,
+                    f"relative: point {name} is not in this field book (no point line or "
+                    f"observation names it){_similar_name(name, known)}",
+                )
+            if not missing:
+                kept.append(pair)
+        self.relative_pairs = kept
+
     def end_without_round(self, st: Statement) -> None:
         self.error(st.line, st.word, "'end' closes a directions round, but no round is open")
 
@@ -914,8 +970,22 @@ _HANDLERS: dict[str, Callable[[_Parser, Statement], None]] = {
         ("level", "distance", "angle", "azimuth", "slope", "zenith"), _Parser.observation
     ),
     "directions": _Parser.directions,
+    "relative": _Parser.relative_pair,
     "end": _Parser.end_without_round,
 }
+
+
+def _similar_name(name: str, known: set[str]) -> str:
+    """``"; did you mean 'X'?"`` for the closest point name of the file, or ``""``.
+
+    Point names are case-sensitive, so a name differing only in case is the
+    first guess; otherwise the closest by spelling.
+    """
+    same_case = [k for k in known if k.lower() == name.lower()]
+    if same_case:
+        return f"; did you mean '{min(same_case)}'?"
+    matches = difflib.get_close_matches(name, sorted(known), n=1, cutoff=0.6)
+    return f"; did you mean '{matches[0]}'?" if matches else ""
 
 
 def _whole_number(text: str) -> int | None:

@@ -511,6 +511,7 @@ GRAMMARS: dict[str, Grammar] = {
         options=frozenset({"sd", "note"}),
         flags=frozenset({"ignore"}),
     ),
+    "relative": Grammar("relative", "body", ("the first point A", "the second point B")),
     "end": Grammar("end", "end", hint="nothing"),
 }
 #: A line inside a ``directions`` round.

@@ -92,6 +92,15 @@ class DirectionRound:
 
 
 @dataclass(frozen=True, slots=True)
+class RelativePair:
+    """A ``relative A B`` line: report the relative precision of A and B, joined or not."""
+
+    line: int
+    first: str
+    second: str
+
+
+@dataclass(frozen=True, slots=True)
 class Fieldbook:
     """Everything a field book says, in file order."""
 
@@ -106,5 +115,6 @@ class Fieldbook:
     points: tuple[PointStatement, ...] = ()
     observations: tuple[Observation, ...] = ()
     rounds: tuple[DirectionRound, ...] = ()
+    relative_pairs: tuple[RelativePair, ...] = ()
     warnings: tuple[Issue, ...] = ()
     text_sha256: str = ""

@@ -23,7 +23,7 @@ import csv
 import hashlib
 import io
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from pathlib import Path
 
@@ -33,7 +33,7 @@ from markupsafe import Markup
 from . import __version__
 from .histogram import layout as histogram_layout
 from .histogram import w_histogram
-from .result import AdjustmentResult, ObservationResult, PointResult
+from .result import AdjustmentResult, ObservationResult, PointResult, RelativeResult
 from .standards import Preset
 from .units import format_dms
 
@@ -558,14 +558,17 @@ class RelativeRow:
     allowed: str
     passed: bool | None
     status: str
+    origin: str = "joined"  # "joined" (by an observation) or "requested" (a relative line)
 
 
 def relative_rows(result: AdjustmentResult) -> list[RelativeRow]:
-    """Relative precision per joined pair; ``status`` is "meets", "fails" or "no allowance set"."""
+    """Relative precision per pair; ``status`` is "meets", "fails", "held points" or "no allowance set"."""
     unit = result.length_unit
     out = []
     for r in result.relative:
-        if r.passed is None:
+        if r.held:
+            status = "held points, not checked"
+        elif r.passed is None:
             status = "no allowance set"
         else:
             status = "meets" if r.passed else "fails"
@@ -580,8 +583,37 @@ def relative_rows(result: AdjustmentResult) -> list[RelativeRow]:
             allowed=fmt_length(r.allowed, unit),
             passed=r.passed,
             status=status,
+            origin="requested" if r.requested else "joined",
         ))
     return out
+
+
+@dataclass(frozen=True, slots=True)
+class RelativeHeightRow:
+    """A requested pair in a height network: the sd of its height difference."""
+
+    from_point: str
+    to_point: str
+    height_difference: str
+    sd: str
+    half_width: str
+    held: bool
+
+
+def relative_height_rows(result: AdjustmentResult) -> list[RelativeHeightRow]:
+    """The ``relative A B`` pairs of a height network, formatted."""
+    unit = result.length_unit
+    return [
+        RelativeHeightRow(
+            from_point=h.from_point,
+            to_point=h.to_point,
+            height_difference=fmt_length(h.height_difference, unit),
+            sd=fmt_length(h.sd, unit),
+            half_width=fmt_length(h.half_width, unit),
+            held=h.held,
+        )
+        for h in result.relative_heights
+    ]
 
 
 @dataclass(frozen=True, slots=True)
@@ -635,6 +667,45 @@ def _check(name: str, noun: str, nouns: str, outcomes: list[bool | None],
                          unchecked=unchecked, allowance=allowance, state=state, words=words)
 
 
+def pairs_checked(relative: Sequence[RelativeResult]) -> str:
+    """Which pairs a relative-precision figure covers, e.g. "12 joined pairs and 3 requested pairs".
+
+    Requested pairs (``relative A B`` lines) are counted as requested even when
+    an observation also joins them; pairs of two held points are left out.
+    """
+    live = [r for r in relative if not r.held]
+    requested = sum(1 for r in live if r.requested)
+    joined = len(live) - requested
+    parts = [f"{n} {word} pair{'s' if n != 1 else ''}"
+             for n, word in ((joined, "joined"), (requested, "requested")) if n]
+    return " and ".join(parts) or "no pairs"
+
+
+def _relative_check(check: StandardCheck, relative: Sequence[RelativeResult]) -> StandardCheck:
+    """Say which pairs were checked: only joined and requested pairs ever are.
+
+    A plain "all pairs" would claim adjacent corners that no observation joins;
+    the words name the two families and that every other pair went unchecked.
+    """
+    held = sum(1 for r in relative if r.held)
+    which = pairs_checked(relative)
+    if check.state == "none":
+        words = f"Not checked: no allowance for the {which}"
+    elif check.state == "fail":
+        verb = "exceed" if check.failed != 1 else "exceeds"
+        total = check.passed + check.failed
+        words = (f"Fail: {check.failed} of {total} pair{'s' if total != 1 else ''} {verb} "
+                 f"the allowance ({which} checked)")
+    else:
+        words = (f"Pass: {which} within the allowance; pairs neither joined by an observation "
+                 "nor requested with “relative A B” were not checked")
+    if held:
+        words += f"; {held} pair{'s' if held != 1 else ''} of held points not checked"
+    elif check.unchecked and check.state != "none":
+        words += f" ({check.unchecked} without an allowance)"
+    return replace(check, words=words)
+
+
 def standards_summary(result: AdjustmentResult,
                       presets: Sequence[Preset] = ()) -> list[StandardCheck]:
     """Pass and fail counts per accuracy standard that applies to the network."""
@@ -643,9 +714,10 @@ def standards_summary(result: AdjustmentResult,
         outcomes = [r.passed for r in result.relative]
         allowance = _allowance_source(presets, "relative", "relative",
                                       any(r.allowed is not None for r in result.relative))
-        out.append(_check("Relative positional precision at "
-                          f"{fmt_percent(result.relative[0].confidence)}",
-                          "pair of joined points", "pairs of joined points", outcomes, allowance))
+        check = _check("Relative positional precision at "
+                       f"{fmt_percent(result.relative[0].confidence)}",
+                       "pair of joined points", "pairs of joined points", outcomes, allowance)
+        out.append(_relative_check(check, result.relative))
     if result.misclosures:
         # the contract records exceeds; an allowance of None means the loop was not checked
         outcomes = [None if m.allowed is None else not m.exceeds for m in result.misclosures]
@@ -752,6 +824,7 @@ def context(result: AdjustmentResult, presets: Sequence[Preset] = ()) -> dict[st
         "standards": standards_summary(result, presets),
         "presets": list(presets),
         "relative_rows": relative_rows(result),
+        "relative_height_rows": relative_height_rows(result),
         "a_priori_rows": a_priori_rows(result),
         "ellipse_note": ellipse_convention(result) if result.summary.dimension != 1 else "",
         "histogram": histogram,
@@ -963,6 +1036,13 @@ def report_text(result: AdjustmentResult) -> str:
             row.append(p.note)
         body.append(row)
     out += ["", "Points"] + _table(header, body, right)
+    heights = relative_height_rows(result)
+    if heights:
+        rows_h = [[h.from_point, h.to_point, h.height_difference, h.sd,
+                   h.half_width + (" (held)" if h.held else "")] for h in heights]
+        out += ["", "Relative precision of height differences (relative lines)"] + _table(
+            ["from", "to", f"ΔH {unit}", "sd ΔH", f"± {fmt_percent(result.summary.confidence)}"],
+            rows_h, {2, 3, 4})
 
     exceeded = [m for m in misclosure_rows(result) if m.exceeds]
     if exceeded:

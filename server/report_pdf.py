@@ -295,7 +295,8 @@ def _relative_block(data: dict[str, Any], styles: Styles, width: float) -> list[
     unit = data["length_unit"]
     # without an allowance the last two columns would only repeat "no allowance set"
     checked = any(r.passed is not None for r in data["relative_rows"])
-    columns = [Column("From", None), Column("To", None), Column(f"Distance ({unit})", 54, True),
+    columns = [Column("From", None), Column("To", None), Column("Pair", 44),
+               Column(f"Distance ({unit})", 54, True),
                Column("sd distance", 40, True),
                Column(f"Ellipse a ({data['confidence']})", 46, True),
                Column("b", 36, True), Column("Azimuth a", 44, True)]
@@ -304,7 +305,7 @@ def _relative_block(data: dict[str, Any], styles: Styles, width: float) -> list[
     rows, states = [], []
     for r in data["relative_rows"]:
         row = [Paragraph(styles.text(r.from_point), styles.cell_bold),
-               Paragraph(styles.text(r.to_point), styles.cell),
+               Paragraph(styles.text(r.to_point), styles.cell), r.origin,
                r.distance, r.sd_distance, r.semi_major, r.semi_minor, r.azimuth]
         if checked:
             row += [r.allowed, _check_cell(styles, r.passed, "meets", "fails", r.status)]
@@ -316,7 +317,9 @@ def _relative_block(data: dict[str, Any], styles: Styles, width: float) -> list[
             "Semi-major axis a of the relative confidence ellipse between the two points, from "
             "the full covariance of their coordinate difference. No allowance was set (no "
             "“tolerance relative=” in the field book and no preset), so no pair was checked.")
-    return [*_heading("Relative precision between joined points", styles),
+    note += (" “Joined” pairs share an observation; “requested” pairs were named in a "
+             "“relative A B” line. No other pair is checked.")
+    return [*_heading("Relative precision between point pairs", styles),
             data_table(styles, columns, rows, width, row_states=states),
             styles.para(note, styles.note)]
 
@@ -461,7 +464,8 @@ def _notes_block(result: AdjustmentResult, data: dict[str, Any], presets: Sequen
         notes.append(data["ellipse_note"])
     if result.relative:
         notes.append("Relative precision: the semi-major axis of the relative confidence ellipse "
-                     "of each pair of points joined by an observation, compared with an allowance "
+                     "of each pair of points joined by an observation or named in a “relative A B” "
+                     "line (no other pair is checked), compared with an allowance "
                      "of a fixed part plus parts per million of the distance between them, the "
                      "parts added.")
     for preset in presets:

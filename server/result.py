@@ -10,6 +10,7 @@ may be added.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -158,6 +159,23 @@ class RelativeResult:
     allowed: float | None
     passed: bool | None
     sd_distance: float
+    #: asked for by a ``relative A B`` line (joined or not)
+    requested: bool = False
+    #: both points held fixed: their relative position comes from the control (zero ellipse)
+    held: bool = False
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class RelativeHeightResult:
+    """A ``relative A B`` pair in a height network: the precision of H(B) − H(A)."""
+
+    from_point: str
+    to_point: str
+    height_difference: float
+    sd: float
+    half_width: float
+    confidence: float
+    held: bool = False
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -176,6 +194,7 @@ class AdjustmentResult:
     relative: tuple[RelativeResult, ...]
     warnings: tuple[str, ...]
     caution: str = CAUTION
+    relative_heights: tuple[RelativeHeightResult, ...] = ()
 
     def to_json_dict(self) -> dict[str, object]:
         """The JSON object of the result contract."""
@@ -282,8 +301,22 @@ class AdjustmentResult:
                     "allowed": r.allowed,
                     "passed": r.passed,
                     "sd_distance": r.sd_distance,
+                    "requested": r.requested,
+                    "held": r.held,
                 }
                 for r in self.relative
+            ],
+            "relative_heights": [
+                {
+                    "from": h.from_point,
+                    "to": h.to_point,
+                    "height_difference": h.height_difference,
+                    "sd": h.sd,
+                    "half_width": h.half_width,
+                    "confidence": h.confidence,
+                    "held": h.held,
+                }
+                for h in self.relative_heights
             ],
             "warnings": list(self.warnings),
             "caution": self.caution,
@@ -352,6 +385,13 @@ def build_result(
         power=tests.power,
         confidence=tests.confidence,
     )
+    horizontal_pairs, height_pairs = _requested_pairs(network, solution, warnings)
+    relative = _relative_results(
+        network, solution, scale_variance, factor, tests.confidence, per_m, horizontal_pairs
+    )
+    relative_heights = _relative_height_results(
+        network, solution, scale_variance, tests.confidence, redundancy, per_m, height_pairs
+    )
     return AdjustmentResult(
         title=fb.title,
         source=fb.source,
@@ -372,7 +412,8 @@ def build_result(
             )
             for m in misclosures
         ),
-        relative=_relative_results(network, solution, scale_variance, factor, tests.confidence, per_m),
+        relative=relative,
+        relative_heights=relative_heights,
         warnings=tuple(warnings),
     )
 
@@ -650,6 +691,62 @@ def _joined_pairs(network: Network) -> list[tuple[str, str]]:
     return list(pairs.values())
 
 
+def _requested_pairs(
+    network: Network, solution: Solution, warnings: list[str]
+) -> tuple[list[tuple[str, str]], list[tuple[str, str]]]:
+    """The ``relative A B`` pairs split into horizontal and height pairs.
+
+    A pair is horizontal when the network adjusts positions and both points
+    have one (estimated or held); otherwise a height pair when the network
+    adjusts heights and both have one.  A pair with a point that no used
+    observation ties to the survey is left out with a warning: the survey
+    says nothing about where that point lies relative to the other.
+    """
+    requests = network.fieldbook.relative_pairs
+    if not requests:
+        return [], []
+    column = {(p.point, p.kind) for p in network.parameters}
+    by_name = {p.name: p for p in network.points}
+
+    def has(name: str, kind: str, held: str) -> bool:
+        point = by_name.get(name)
+        return (name, kind) in column or (point is not None and held in point.fixed)
+
+    horizontal, heights = [], []
+    for pair in requests:
+        a, b = pair.first, pair.second
+        loose = [n for n in (a, b) if n not in by_name or not by_name[n].in_use]
+        if loose:
+            warnings.append(
+                f"line {pair.line}: relative {a} {b} is not reported: {loose[0]} is not tied to "
+                "the survey by any used observation, so their relative precision is undetermined"
+            )
+        elif network.horizontal and has(a, "E", "en") and has(b, "E", "en"):
+            horizontal.append((a, b))
+        elif network.vertical and has(a, "H", "h") and has(b, "H", "h"):
+            heights.append((a, b))
+        else:
+            what = "horizontal position" if network.horizontal else "height"
+            lacking = a if not (has(a, "E", "en") or has(a, "H", "h")) else b
+            warnings.append(
+                f"line {pair.line}: relative {a} {b} is not reported: {lacking} has no adjusted "
+                f"{what} in this adjustment"
+            )
+    held = [
+        f"{a}–{b}"
+        for pairs, kinds in ((horizontal, "EN"), (heights, "H"))
+        for a, b in pairs
+        if not any((n, k) in column for n in (a, b) for k in kinds)
+    ]
+    if held:
+        warnings.append(
+            "relative pairs of two held points (their relative position comes from the control, "
+            "not from this survey; reported with zero precision figures and not checked against "
+            f"the allowance): {', '.join(held)}"
+        )
+    return horizontal, heights
+
+
 def _relative_results(
     network: Network,
     solution: Solution,
@@ -657,19 +754,36 @@ def _relative_results(
     factor: float,
     confidence: float,
     per_m: float,
+    requested: Sequence[tuple[str, str]] = (),
 ) -> tuple[RelativeResult, ...]:
-    """Relative confidence ellipses: Σ_Δ = Σ_ii + Σ_jj − Σ_ij − Σ_ji over (E, N)."""
+    """Relative confidence ellipses: Σ_Δ = Σ_ii + Σ_jj − Σ_ij − Σ_ji over (E, N).
+
+    Pairs joined by a used observation (two held points left out), then the
+    ``relative`` pairs not joined; a requested pair that is also joined keeps
+    its place and is marked requested.  Covariances of unjoined pairs come
+    from ``Solution.covariance_entries`` like the others (off the factor's
+    pattern they are solved for).
+    """
     column = {(p.point, p.kind): k for k, p in enumerate(network.parameters)}
     tolerance = network.fieldbook.relative_tolerance
     # each pair's unknowns (E_a, N_a, E_b, N_b), −1 where held; signs of the difference b − a
     east = {name: k for (name, kind), k in column.items() if kind == "E"}
     north = {name: k for (name, kind), k in column.items() if kind == "N"}
+    asked = {(a, b) if a <= b else (b, a) for a, b in requested}
     pairs = []
+    seen = set()
     for a, b in _joined_pairs(network):
         ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
-        if max(ends) >= 0:  # else both ends held fixed
-            pairs.append((a, b, ends))
-    unknowns = np.array([ends for _, _, ends in pairs], dtype=np.int64).reshape(-1, 4)
+        key = (a, b) if a <= b else (b, a)
+        if max(ends) >= 0 or key in asked:  # else both ends held fixed
+            pairs.append((a, b, ends, key in asked))
+            seen.add(key)
+    for a, b in requested:
+        if ((a, b) if a <= b else (b, a)) not in seen:
+            ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
+            pairs.append((a, b, ends, True))
+    unknowns = np.array([ends for _, _, ends, _ in pairs], dtype=np.int64).reshape(-1, 4)
+    held = (unknowns < 0).all(axis=1).tolist()
     sign = np.array([-1.0, -1.0, 1.0, 1.0])
     # Σ_Δ over (E, N) from the 4×4 block of the pair's unknowns, held ones contributing nothing
     first, second = np.meshgrid(np.arange(4), np.arange(4), indexing="ij")
@@ -687,8 +801,8 @@ def _relative_results(
     cov = variance * covariances
     major, minor, azimuth = st.standard_ellipses(cov[:, 0, 0], cov[:, 0, 1], cov[:, 1, 1])
     coordinates = solution.coordinates
-    ends_a = np.array([coordinates[a][:2] for a, _, _ in pairs], dtype=float).reshape(-1, 2)
-    ends_b = np.array([coordinates[b][:2] for _, b, _ in pairs], dtype=float).reshape(-1, 2)
+    ends_a = np.array([coordinates[a][:2] for a, _, _, _ in pairs], dtype=float).reshape(-1, 2)
+    ends_b = np.array([coordinates[b][:2] for _, b, _, _ in pairs], dtype=float).reshape(-1, 2)
     d_east, d_north = ends_b[:, 0] - ends_a[:, 0], ends_b[:, 1] - ends_a[:, 1]
     distance_m = np.hypot(d_east, d_north)
     length = np.where(distance_m > 0.0, distance_m, 1.0)
@@ -706,8 +820,10 @@ def _relative_results(
     else:
         allowed = ((tolerance.constant + tolerance.ppm * 1e-6 * distance_m) * per_m).tolist()
     results = []
-    for k, ((a, b, _), distance) in enumerate(zip(pairs, (distance_m * per_m).tolist())):
-        allow = allowed[k]
+    for k, ((a, b, _, asked_for), distance) in enumerate(
+        zip(pairs, (distance_m * per_m).tolist())
+    ):
+        allow = None if held[k] else allowed[k]
         results.append(
             RelativeResult(
                 from_point=a,
@@ -720,6 +836,55 @@ def _relative_results(
                 allowed=allow,
                 passed=None if allow is None else bool(semi_major[k] <= allow),
                 sd_distance=sd_distance[k],
+                requested=asked_for,
+                held=held[k],
+            )
+        )
+    return tuple(results)
+
+
+def _relative_height_results(
+    network: Network,
+    solution: Solution,
+    variance: float,
+    confidence: float,
+    redundancy: int,
+    per_m: float,
+    pairs: list[tuple[str, str]],
+) -> tuple[RelativeHeightResult, ...]:
+    """σ of H(B) − H(A) from Q_aa + Q_bb − 2·Q_ab (held heights contribute nothing).
+
+    ``half_width`` is the confidence half-interval: σ times √F(confidence; 1, r)
+    (Student's t) when σ₀² is estimated, else the normal quantile.
+    """
+    if not pairs:
+        return ()
+    column = {p.point: k for k, p in enumerate(network.parameters) if p.kind == "H"}
+    scale = st.interval_factor(confidence, redundancy)
+    coordinates = solution.coordinates
+    # (H_a, H_b) unknowns per pair, −1 where held; one fetch of every needed element of Qxx
+    ends = np.array([[column.get(a, -1), column.get(b, -1)] for a, b in pairs], dtype=np.int64)
+    sign = np.array([-1.0, 1.0])
+    rows = np.repeat(ends, 2, axis=1)  # a a b b
+    cols = np.tile(ends, (1, 2))  # a b a b
+    valid = (rows >= 0) & (cols >= 0)
+    q = np.zeros(rows.shape)
+    q[valid] = solution.covariance_entries(rows[valid], cols[valid])
+    weights = np.repeat(sign, 2) * np.tile(sign, 2)  # + − − +
+    variances = variance * (q * weights).sum(axis=1)
+    sds = (np.sqrt(np.maximum(variances, 0.0)) * per_m).tolist()
+    held = (ends < 0).all(axis=1).tolist()
+    results = []
+    for k, (a, b) in enumerate(pairs):
+        results.append(
+            RelativeHeightResult(
+                from_point=a,
+                to_point=b,
+                height_difference=(coordinates[b][2] - coordinates[a][2]) * per_m,
+                sd=sds[k],
+                half_width=sds[k] * scale,
+                confidence=confidence,
+                held=held[k],
             )
         )
     return tuple(results)

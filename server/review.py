@@ -60,6 +60,8 @@ def edit_to_json(edit: ObservationEdit) -> dict[str, Any]:
         data["value"] = edit.value
     if edit.previous is not None:
         data["previous"] = edit.previous
+    if edit.pairs:
+        data["pairs"] = [list(pair) for pair in edit.pairs]
     return data
 
 
@@ -76,8 +78,13 @@ def edit_from_json(data: Any) -> ObservationEdit:
         raise EditError(f"line {line}: a stored decision is not readable")
     if any(v is not None and not isinstance(v, str) for v in (sd, value, previous)):
         raise EditError(f"line {line}: a stored decision is not readable")
+    pairs = data.get("pairs", [])
+    if not isinstance(pairs, list) or not all(
+        isinstance(p, list) and len(p) == 2 and all(isinstance(n, str) for n in p) for p in pairs
+    ):
+        raise EditError("a stored decision on relative precision is not readable")
     return ObservationEdit(line=line, action=action, reason=reason, date=date, sd=sd,
-                           value=value, previous=previous)
+                           value=value, previous=previous, pairs=tuple((a, b) for a, b in pairs))
 
 
 def edits_from_json(items: Iterable[Any]) -> list[ObservationEdit]:
@@ -114,7 +121,8 @@ def decision_rows(
             words=decision_words(edit),
             reason=edit.reason,
             date=edit.date,
-            stations=f"{obs.kind} {stations(obs)}" if obs is not None else "",
+            stations=_pairs_text(edit.pairs) if edit.action == "relative"
+            else f"{obs.kind} {stations(obs)}" if obs is not None else "",
             edit_id=ids[k] if ids is not None else None,
         ))
     return out
@@ -129,7 +137,16 @@ def decision_words(edit: ObservationEdit) -> str:
     if edit.action == "correct":
         before = f"from {edit.previous} " if edit.previous else ""
         return f"Correct the value {before}to {edit.value}"
+    if edit.action == "relative":
+        count = len(edit.pairs)
+        return f"Report the relative precision of {count} pair{'s' if count != 1 else ''}"
     return f"Change sd to {edit.sd}"
+
+
+def _pairs_text(pairs: Sequence[tuple[str, str]], shown: int = 8) -> str:
+    """``K1–K2, K2–K3 and 4 more``: the pairs of a decision, briefly."""
+    text = ", ".join(f"{a}–{b}" for a, b in pairs[:shown])
+    return text + (f" and {len(pairs) - shown} more" if len(pairs) > shown else "")
 
 
 def ignored_after(result: AdjustmentResult, edits: Iterable[ObservationEdit]) -> dict[int, bool]:

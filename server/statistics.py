@@ -76,6 +76,18 @@ def ellipse_factor(confidence: float, redundancy: int) -> float:
     return math.sqrt(2.0 * float(scipy.special.fdtri(2, redundancy, confidence)))
 
 
+def interval_factor(confidence: float, redundancy: int) -> float:
+    """Scale from a standard deviation to a two-sided confidence half-interval of one quantity.
+
+    √F(confidence; 1, r) (Student's t quantile at (1 + confidence)/2) when σ₀²
+    is estimated on r degrees of freedom, the normal quantile (1.960 at 95 %)
+    when r = 0; the one-dimensional counterpart of ``ellipse_factor``.
+    """
+    if redundancy <= 0:
+        return math.sqrt(_chi2_ppf(confidence, 1))
+    return math.sqrt(float(scipy.special.fdtri(1, redundancy, confidence)))
+
+
 def standard_ellipse(covariance: np.ndarray) -> tuple[float, float, float]:
     """Semi-axes and azimuth of the major axis (degrees in [0, 180)) of a 2×2 (E, N) covariance.
 

@@ -42,6 +42,7 @@ from .result import (
     MisclosureResult,
     ObservationResult,
     PointResult,
+    RelativeHeightResult,
     RelativeResult,
     Summary,
 )
@@ -538,5 +539,8 @@ def _result_from_detail(data: dict[str, Any]) -> AdjustmentResult:
             MisclosureResult(**{**m, "points": tuple(m["points"])}) for m in data["misclosures"]
         ),
         "relative": tuple(RelativeResult(**r) for r in data["relative"]),
+        "relative_heights": tuple(
+            RelativeHeightResult(**h) for h in data.get("relative_heights", ())
+        ),
         "warnings": tuple(data["warnings"]),
     })

@@ -95,8 +95,10 @@ def test_relative_precision_two_point_case_against_the_alta_allowance(sigma_arcs
     (check,) = standards_summary(result, [preset])
     assert check.allowance.startswith("ALTA/NSPS relative positional precision (preset)")
     assert check.state == ("pass" if passes else "fail")
-    assert check.words == ("Pass: 1 pair of joined points within the allowance" if passes
-                           else "Fail: 1 of 1 pair of joined points exceeds the allowance")
+    assert check.words == (
+        "Pass: 1 joined pair within the allowance; pairs neither joined by an observation nor "
+        "requested with “relative A B” were not checked" if passes
+        else "Fail: 1 of 1 pair exceeds the allowance (1 joined pair checked)")
 
 
 def test_ellipse_factor_convention_both_branches(network):
@@ -248,7 +250,7 @@ def test_html_report_puts_the_standards_summary_first_with_symbol_and_word(blund
 def test_html_report_lists_relative_precision_per_pair(network):
     html = report.report_html(network)
     assert html.count("✓ meets") == sum(r.passed is True for r in network.relative)
-    assert "Pass: all 64 pairs of joined points within the allowance" in html
+    assert "Pass: 64 joined pairs within the allowance; pairs neither joined" in html
     assert html.count(CAUTION) == 2
 
 

@@ -189,10 +189,10 @@ def test_flagged_observations_are_marked_in_words(directions, directions_pdf):
 
 def test_relative_precision_table_says_meets_or_fails(network, network_pdf):
     text = " ".join(_pages(network_pdf))
-    assert "Relative precision between joined points" in text
+    assert "Relative precision between point pairs" in text
     assert text.count("✓ meets") == sum(r.passed is True for r in network.relative)
     first = network.relative[0]
-    assert (f"{first.from_point} {first.to_point} {first.distance:.4f} {first.sd_distance:.4f} "
+    assert (f"{first.from_point} {first.to_point} joined {first.distance:.4f} {first.sd_distance:.4f} "
             f"{first.semi_major:.4f}") in text
 
 

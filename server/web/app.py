@@ -353,7 +353,7 @@ def create_app(
     else the defaults (docs/security.md).  ``allowed_hosts`` (None: any) are the Host
     names answered; ``python -m server serve`` passes ``serve_allowed_hosts``.
     """
-    from . import review_routes, routes
+    from . import relative_routes, review_routes, routes
 
     if max_upload_bytes is None:
         max_upload_bytes = _env_int("STATIONFIT_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES)
@@ -377,6 +377,7 @@ def create_app(
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
     app.include_router(routes.router)
     app.include_router(review_routes.router)
+    app.include_router(relative_routes.router)
     _install_handlers(app, templates)
     app.add_middleware(UploadLimitMiddleware, max_bytes=max_upload_bytes, templates=templates)
     # Pages, JSON and CSV compress to a tenth or less when the browser accepts gzip.
