@@ -27,19 +27,40 @@ _CANDIDATE_LIMIT = 3000
 
 @dataclass(frozen=True, slots=True)
 class Misclosure:
-    """One loop or run; lengths in metres (``length`` None when a section has no len=)."""
+    """One loop, run or traverse; lengths in metres (``length`` None when a section has no len=).
 
-    kind: str  # "loop" or "run"
+    A traverse (``traverse.py``) also carries its angular misclosure and allowance in
+    radians, its number of angle stations, the east/north parts of the linear
+    misclosure and the N of the required precision 1 : N.
+    """
+
+    kind: str  # "loop", "run" or "traverse"
     points: tuple[str, ...]
     misclosure: float
     length: float | None
     setups: int | None
     allowed: float | None
+    angular: float | None = None
+    angular_allowed: float | None = None
+    angle_stations: int | None = None
+    misclosure_east: float | None = None
+    misclosure_north: float | None = None
+    ratio_allowed: float | None = None
 
     @property
     def exceeds(self) -> bool:
-        """|misclosure| above the allowance (False when no allowance applies)."""
-        return self.allowed is not None and abs(self.misclosure) > self.allowed
+        """|misclosure| (or the angular one) above its allowance (False when none applies)."""
+        if self.allowed is not None and abs(self.misclosure) > self.allowed:
+            return True
+        return (self.angular is not None and self.angular_allowed is not None
+                and abs(self.angular) > self.angular_allowed)
+
+    @property
+    def ratio(self) -> float | None:
+        """N of a traverse's precision 1 : N (None for a loop or run, or a zero misclosure)."""
+        if self.kind != "traverse" or not self.misclosure or self.length is None:
+            return None
+        return self.length / abs(self.misclosure)
 
 
 @dataclass(slots=True)
