@@ -32,8 +32,11 @@ from .fieldbook_model import Fieldbook, Observation, TraverseTolerance
 from .misclosures import Misclosure
 from .units import UnitError, parse_quantity, wrap_2pi, wrap_pi
 
-#: How many station visits one search may make before it gives up (keeps big networks fast).
+#: How many station visits one search may make before it gives up, and all searches
+#: together per station of the network (keeps big networks fast: a route not found
+#: within them is not reported).
 _SEARCH_BUDGET = 20_000
+_TOTAL_BUDGET_PER_STATION = 50
 
 
 def parse_angular_allowance(text: str) -> float:
@@ -109,11 +112,13 @@ class _Graph:
             for name in (o.from_point, o.at, o.to):
                 if name is not None:
                     self.order.setdefault(name, len(self.order))
+        # a round gives the angle between any two of its directions; looked up when needed
+        self.rounds_at: dict[str, list[dict[str, float]]] = {}
         for members in rounds.values():
-            for i, back in enumerate(members):
-                for fore in members[i + 1:]:
-                    if back.to != fore.to:
-                        self._angle(back.to, back.from_point, fore.to, wrap_2pi(fore.value - back.value))
+            readings: dict[str, float] = {}
+            for o in members:
+                readings.setdefault(o.to, o.value)
+            self.rounds_at.setdefault(members[0].from_point, []).append(readings)
         self.legs = {pair: sum(values) / len(values) for pair, values in sums.items() if len(pair) == 2}
         self.neighbours: dict[str, list[str]] = {}
         for pair in self.legs:
@@ -125,6 +130,16 @@ class _Graph:
             for p in fieldbook.points
             if "en" in p.fixed and p.east is not None and p.north is not None
         }
+
+    def angle(self, back: str, at: str, fore: str) -> float | None:
+        """The clockwise angle from back to fore at a station: an angle line, else a round."""
+        value = self.angles.get((back, at, fore))
+        if value is not None or back == fore:
+            return value
+        for readings in self.rounds_at.get(at, ()):
+            if back in readings and fore in readings:
+                return wrap_2pi(readings[fore] - readings[back])
+        return None
 
     def _angle(self, back: str, at: str, fore: str, value: float) -> None:
         # the first observation of an angle stands for it; the reverse is its explement
@@ -139,7 +154,7 @@ class _Graph:
     def start_azimuth(self, start: str, first: str) -> tuple[float, bool] | None:
         """Azimuth of the first leg and whether an angle gave it (it then counts as a station)."""
         for back in sorted(self.fixed, key=lambda n: self.order.get(n, 0)):
-            angle = self.angles.get((back, start, first))
+            angle = self.angle(back, start, first)
             if back != start and angle is not None and self.fixed[back] != self.fixed[start]:
                 return wrap_2pi(self.bearing(start, back) + angle), True
         observed = self.azimuths.get((start, first))
@@ -148,7 +163,7 @@ class _Graph:
     def closing_azimuth(self, last: str, end: str) -> tuple[float, float | None] | None:
         """(Angle at the end to a fixed foresight or None, known azimuth it should give)."""
         for fore in sorted(self.fixed, key=lambda n: self.order.get(n, 0)):
-            angle = self.angles.get((last, end, fore))
+            angle = self.angle(last, end, fore)
             if fore != end and angle is not None and self.fixed[fore] != self.fixed[end]:
                 return angle, self.bearing(end, fore)
         observed = self.azimuths.get((last, end))
@@ -161,6 +176,7 @@ def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
     if not graph.legs:
         return ()
     tolerance = fieldbook.traverse_tolerance
+    total = [_SEARCH_BUDGET + _TOTAL_BUDGET_PER_STATION * len(graph.neighbours)]
     used_legs: set[frozenset[str]] = set()
     covered: set[str] = set()
     found: list[Misclosure] = []
@@ -171,7 +187,7 @@ def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
             oriented = graph.start_azimuth(start, first)
             if oriented is None:
                 continue
-            path = _search(graph, [start, first], lambda node, path: node in graph.fixed)
+            path = _search(graph, [start, first], lambda node, path: node in graph.fixed, total)
             if path is None:
                 continue
             found.append(_link(graph, path, oriented, tolerance))
@@ -186,7 +202,8 @@ def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
             path = _search(
                 graph, [start, first],
                 lambda node, path: node == start and len(path) > 3
-                and (path[-2], start, path[1]) in graph.angles,
+                and graph.angle(path[-2], start, path[1]) is not None,
+                total,
                 avoid=covered,
             )
             if path is not None:
@@ -197,20 +214,22 @@ def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
     return tuple(found)
 
 
-def _search(graph: _Graph, path: list[str], done, avoid: set[str] = frozenset()) -> list[str] | None:
+def _search(graph: _Graph, path: list[str], done, total: list[int],
+            avoid: set[str] = frozenset()) -> list[str] | None:
     """Depth-first walk along angle chains, next stations in file order; the first end wins."""
-    budget = [_SEARCH_BUDGET]
+    budget = [min(_SEARCH_BUDGET, total[0])]
     on_path = set(path)
 
     def walk() -> bool:
         budget[0] -= 1
+        total[0] -= 1
         back, here = path[-2], path[-1]
         if here != path[0] and done(here, path) and len(path) > 2:
             return True
         for fore in graph.neighbours.get(here, ()):
             if budget[0] <= 0:
                 return False
-            if (back, here, fore) not in graph.angles or fore in avoid:
+            if fore in avoid or graph.angle(back, here, fore) is None:
                 continue
             closing = fore == path[0] and done(fore, [*path, fore])
             if fore in on_path and not closing:
@@ -241,7 +260,7 @@ def closure(azimuths: list[float], distances: list[float], start_en: tuple[float
 
 def _link(graph: _Graph, path: list[str], oriented: tuple[float, bool], tol: TraverseTolerance) -> Misclosure:
     azimuth, start_angle = oriented
-    turned = [graph.angles[(path[i - 1], path[i], path[i + 1])] for i in range(1, len(path) - 1)]
+    turned = [graph.angle(path[i - 1], path[i], path[i + 1]) for i in range(1, len(path) - 1)]
     legs = [_leg(graph, a, b) for a, b in zip(path, path[1:])]
     stations = len(turned) + (1 if start_angle else 0)
     raw = _azimuths(azimuth, turned)
@@ -259,7 +278,7 @@ def _link(graph: _Graph, path: list[str], oriented: tuple[float, bool], tol: Tra
 
 def _polygon(graph: _Graph, path: list[str], tol: TraverseTolerance) -> Misclosure:
     corners = [*path[-2:-1], *path]  # the station before the start closes the first corner
-    turned = [graph.angles[(corners[i - 1], corners[i], corners[i + 1])] for i in range(1, len(corners) - 1)]
+    turned = [graph.angle(corners[i - 1], corners[i], corners[i + 1]) for i in range(1, len(corners) - 1)]
     n = len(turned)
     total = sum(turned)
     # interior and exterior sums differ by 4·180°, so the nearest wraps to one of them
