@@ -94,6 +94,7 @@ class _Graph:
     def __init__(self, fieldbook: Fieldbook) -> None:
         sums: dict[frozenset[str], list[float]] = {}
         self.angles: dict[tuple[str, str, str], float] = {}  # (back, at, fore) → clockwise angle
+        self.booked: set[tuple[str, str, str]] = set()  # the angles as the lines state them
         self.azimuths: dict[tuple[str, str], float] = {}
         self.order: dict[str, int] = {}
         rounds: dict[int, list[Observation]] = {}
@@ -144,6 +145,7 @@ class _Graph:
     def _angle(self, back: str, at: str, fore: str, value: float) -> None:
         # the first observation of an angle stands for it; the reverse is its explement
         if (back, at, fore) not in self.angles:
+            self.booked.add((back, at, fore))
             self.angles[(back, at, fore)] = value
             self.angles[(fore, at, back)] = wrap_2pi(-value)
 
@@ -277,6 +279,8 @@ def _link(graph: _Graph, path: list[str], oriented: tuple[float, bool], tol: Tra
 
 
 def _polygon(graph: _Graph, path: list[str], tol: TraverseTolerance) -> Misclosure:
+    if _reversed_corners(graph, path) > _reversed_corners(graph, path[::-1]):
+        path = path[::-1]  # walk the way the angles were booked, so their sum keeps its sign
     corners = [*path[-2:-1], *path]  # the station before the start closes the first corner
     turned = [graph.angle(corners[i - 1], corners[i], corners[i + 1]) for i in range(1, len(corners) - 1)]
     n = len(turned)
@@ -293,6 +297,12 @@ def _polygon(graph: _Graph, path: list[str], tol: TraverseTolerance) -> Misclosu
         azimuths.append(azimuth)
     fit = closure(azimuths, legs, start, start)
     return _entry(path, fit, angular, n, tol)
+
+
+def _reversed_corners(graph: _Graph, path: list[str]) -> int:
+    """How many corners of a closed path use the explement of a booked angle."""
+    corners = [path[-2], *path]
+    return sum((corners[i + 1], corners[i], corners[i - 1]) in graph.booked for i in range(1, len(corners) - 1))
 
 
 def _azimuths(first: float, turned: list[float]) -> list[float]:
