@@ -7,7 +7,10 @@ another; any other cycle is a closed loop.  An independent set of cycles (a
 cycle basis over GF(2)) is chosen short first: each section proposes the
 cycle it closes with the shortest path between its ends, the candidates are
 taken shortest first when independent of those already taken, and the basis
-is completed from a spanning tree if any are missing.
+is completed from a spanning tree if any are missing.  The closed loops are
+chosen first, among paths that avoid the datum, so they are the smallest
+loops of the network (its faces, as a crew runs them); the runs between
+fixed benchmarks then complete the set, and are listed after the loops.
 """
 
 from __future__ import annotations
@@ -113,7 +116,8 @@ def leveling_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
     cycles = _cycle_basis(edges, adjacency, weights)
     order = _first_appearance(fieldbook)
     results = [_describe(cycle, edges, order, fieldbook.misclosure_tolerance) for cycle in cycles]
-    results.sort(key=lambda m: (m.kind != "run", min(map(order.get, m.points, repeat(0)))))
+    # the loops as the crew ran them first, then the runs from benchmark to benchmark
+    results.sort(key=lambda m: (m.kind == "run", min(map(order.get, m.points, repeat(0)))))
     return tuple(results)
 
 
@@ -151,17 +155,13 @@ def _cycle_basis(
             mask ^= basis[pivot]
 
     if len(edges) <= _CANDIDATE_LIMIT:
-        candidates = []
-        for k, (start, end) in enumerate(zip(edges.start, edges.end)):
-            path = _shortest_path(adjacency, weights, end, start, excluded=k)
-            if path is not None:
-                cycle = [k, *path]
-                candidates.append((sum(weights[j] for j in cycle), len(cycle), k, cycle))
-        candidates.sort(key=lambda c: c[:3])
-        for *_, cycle in candidates:
-            if len(chosen) == dimension:
-                break
-            take(cycle)
+        # the loops first, each section's shortest loop without the datum (the smallest
+        # closed loops, as the crew ran them), then the runs through the datum
+        for blocked in (_DATUM, None):
+            for cycle in _candidates(edges, adjacency, weights, blocked):
+                if len(chosen) == dimension:
+                    break
+                take(cycle)
     if not chosen:
         # each spanning-tree cycle holds its own non-tree section, so together they are
         # independent and complete: no elimination needed
@@ -174,14 +174,40 @@ def _cycle_basis(
     return chosen
 
 
+def _candidates(
+    edges: _Edges, adjacency: dict[str, list[tuple[int, str]]], weights: list[float],
+    blocked: str | None,
+) -> list[list[int]]:
+    """Each section's cycle with the shortest path between its ends, shortest first.
+
+    With ``blocked`` the paths avoid that node (the datum: loops only); without
+    it only the cycles through the datum (runs) are proposed.
+    """
+    candidates = []
+    for k, (start, end) in enumerate(zip(edges.start, edges.end)):
+        if blocked is not None and blocked in (start, end):
+            continue
+        path = _shortest_path(adjacency, weights, end, start, excluded=k, blocked=blocked)
+        if path is None:
+            continue
+        cycle = [k, *path]
+        if blocked is None and not any(_DATUM in (edges.start[j], edges.end[j]) for j in cycle):
+            continue
+        candidates.append((sum(weights[j] for j in cycle), len(cycle), k, cycle))
+    candidates.sort(key=lambda c: c[:3])
+    return [c[3] for c in candidates]
+
+
 def _shortest_path(
     adjacency: dict[str, list[tuple[int, str]]],
     weights: list[float],
     source: str,
     target: str,
     excluded: int,
+    blocked: str | None = None,
 ) -> list[int] | None:
-    """Edge indices of a shortest path (Dijkstra) from source to target avoiding one edge."""
+    """Edge indices of a shortest path (Dijkstra) from source to target avoiding one edge
+    (and the node ``blocked``)."""
     best = {source: 0.0}
     previous: dict[str, tuple[str, int]] = {}
     heap = [(0.0, 0, source)]
@@ -194,7 +220,7 @@ def _shortest_path(
             continue
         for k, nxt in adjacency[node]:
             candidate = dist + weights[k]
-            if k != excluded and candidate < best.get(nxt, math.inf):
+            if k != excluded and nxt != blocked and candidate < best.get(nxt, math.inf):
                 best[nxt] = candidate
                 previous[nxt] = (node, k)
                 heapq.heappush(heap, (candidate, counter, nxt))
