@@ -304,3 +304,27 @@ def test_unknown_tolerance_option_lists_the_new_ones() -> None:
     [issue] = caught.value.issues
     assert issue.line == 3
     assert "angular" in issue.message
+
+
+def test_stored_result_keeps_the_traverse_figures() -> None:
+    import dataclasses
+
+    from server.storage import _result_from_detail
+
+    result = adjust_text(_purdue_fieldbook(WAC_PLAIN))
+    again = _result_from_detail(dataclasses.asdict(result))
+    assert again.misclosures == result.misclosures
+    assert again.to_json_dict()["misclosures"] == result.to_json_dict()["misclosures"]
+
+
+def test_reports_show_the_traverse_closure() -> None:
+    from server.report import report_html, report_text
+
+    result = adjust_text(_purdue_fieldbook(WAC_PLAIN))
+    text = report_text(result)
+    assert "Traverse closures before adjustment" in text
+    assert "1 : 2,783" in text  # 2466.05 / 0.886, rounded down
+    assert "1 : 5,000" in text
+    html = report_html(result)
+    assert "Traverse closures before adjustment" in html
+    assert "✕ exceeds" in html
