@@ -218,34 +218,36 @@ def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
 
 def _search(graph: _Graph, path: list[str], done, total: list[int],
             avoid: set[str] = frozenset()) -> list[str] | None:
-    """Depth-first walk along angle chains, next stations in file order; the first end wins."""
-    budget = [min(_SEARCH_BUDGET, total[0])]
+    """Depth-first walk along angle chains, next stations in file order; the first end wins.
+
+    ``path`` holds the first two stations; ``done(node, path)`` says where a walk ends.
+    An explicit stack (one iterator of next stations per station on the path)
+    lets a traverse of any length through without recursion.
+    """
+    budget = min(_SEARCH_BUDGET, total[0])
     on_path = set(path)
-
-    def walk() -> bool:
-        budget[0] -= 1
+    stack = [iter(graph.neighbours.get(path[-1], ()))]
+    while stack and budget > 0:
+        fore = next(stack[-1], None)
+        if fore is None:
+            stack.pop()
+            if stack:
+                on_path.discard(path.pop())
+            continue
+        if fore in avoid or graph.angle(path[-2], path[-1], fore) is None:
+            continue
+        if fore == path[0] and done(fore, [*path, fore]):
+            return [*path, fore]
+        if fore in on_path:
+            continue
+        budget -= 1
         total[0] -= 1
-        back, here = path[-2], path[-1]
-        if here != path[0] and done(here, path) and len(path) > 2:
-            return True
-        for fore in graph.neighbours.get(here, ()):
-            if budget[0] <= 0:
-                return False
-            if fore in avoid or graph.angle(back, here, fore) is None:
-                continue
-            closing = fore == path[0] and done(fore, [*path, fore])
-            if fore in on_path and not closing:
-                continue
-            path.append(fore)
-            if closing:
-                return True
-            on_path.add(fore)
-            if walk():
-                return True
-            on_path.discard(path.pop())
-        return False
-
-    return list(path) if walk() else None
+        path.append(fore)
+        on_path.add(fore)
+        if done(fore, path):
+            return list(path)
+        stack.append(iter(graph.neighbours.get(fore, ())))
+    return None
 
 
 def _leg(graph: _Graph, a: str, b: str) -> float:

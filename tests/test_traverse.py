@@ -328,3 +328,23 @@ def test_reports_show_the_traverse_closure() -> None:
     html = report_html(result)
     assert "Traverse closures before adjustment" in html
     assert "✕ exceeds" in html
+
+
+def test_a_traverse_of_1500_stations_is_closed_without_running_out_of_stack() -> None:
+    # a straight line east with every angle 180°: the closure is exact, so any error
+    # would be in the bookkeeping; 1500 stations is deeper than Python's recursion limit
+    stations = ["S", *(f"T{i}" for i in range(1, 1500)), "E"]
+    lines = ["fieldbook 1", "units length=m angle=dms", "defaults angle=1sec distance=1mm",
+             "point R east=-100 north=0 fix", "point S east=0 north=0 fix",
+             f"point E east={100 * (len(stations) - 1)} north=0 fix",
+             f"point F east={100 * len(stations)} north=0 fix"]
+    route = ["R", *stations, "F"]
+    for back, at, fore in zip(route, route[1:], route[2:]):
+        lines.append(f"angle {back} {at} {fore} 180:00:00")
+    for a, b in zip(stations, stations[1:]):
+        lines.append(f"distance {a} {b} 100.000")
+    [entry] = traverse_misclosures(parse_fieldbook("\n".join(lines) + "\n"))
+    assert entry.points[0] == "S" and entry.points[-1] == "E"
+    assert entry.angle_stations == len(stations)
+    assert entry.angular == pytest.approx(0.0, abs=1e-9)
+    assert entry.misclosure < 1e-6
