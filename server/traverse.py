@@ -49,9 +49,13 @@ def parse_angular_allowance(text: str) -> float:
         )
     value = parse_quantity(base)
     if not value.angular or value.constant <= 0.0:
-        raise UnitError(f"'{text}': write the angle in sec or mgon and above zero, like 10sec/sqrtn")
+        raise UnitError(
+            f"'{text}': write the angle in sec or mgon and above zero, like 10sec/sqrtn"
+        )
     if value.constant > math.radians(1.0):
-        raise UnitError(f"'{text}': more than 1 degree per station is not plausible; check the unit")
+        raise UnitError(
+            f"'{text}': more than 1 degree per station is not plausible; check the unit"
+        )
     return value.constant
 
 
@@ -120,7 +124,9 @@ class _Graph:
             for o in members:
                 readings.setdefault(o.to, o.value)
             self.rounds_at.setdefault(members[0].from_point, []).append(readings)
-        self.legs = {pair: sum(values) / len(values) for pair, values in sums.items() if len(pair) == 2}
+        self.legs = {
+            pair: sum(values) / len(values) for pair, values in sums.items() if len(pair) == 2
+        }
         self.neighbours: dict[str, list[str]] = {}
         for pair in self.legs:
             a, b = sorted(pair, key=lambda n: self.order.get(n, 0))
@@ -256,13 +262,18 @@ def _leg(graph: _Graph, a: str, b: str) -> float:
 
 def closure(azimuths: list[float], distances: list[float], start_en: tuple[float, float],
             end_en: tuple[float, float]) -> Closure:
-    """Sum the departures (east) and latitudes (north) of the legs; misclosure = computed − known."""
+    """Sum the departures (east) and latitudes (north) of the legs.
+
+    The misclosure is the computed end minus its known coordinates.
+    """
     east = start_en[0] + sum(d * math.sin(a) for a, d in zip(azimuths, distances))
     north = start_en[1] + sum(d * math.cos(a) for a, d in zip(azimuths, distances))
     return Closure(east - end_en[0], north - end_en[1], sum(distances))
 
 
-def _link(graph: _Graph, path: list[str], oriented: tuple[float, bool], tol: TraverseTolerance) -> Misclosure:
+def _link(
+    graph: _Graph, path: list[str], oriented: tuple[float, bool], tol: TraverseTolerance
+) -> Misclosure:
     azimuth, start_angle = oriented
     turned = [graph.angle(path[i - 1], path[i], path[i + 1]) for i in range(1, len(path) - 1)]
     legs = [_leg(graph, a, b) for a, b in zip(path, path[1:])]
@@ -284,14 +295,16 @@ def _polygon(graph: _Graph, path: list[str], tol: TraverseTolerance) -> Misclosu
     if _reversed_corners(graph, path) > _reversed_corners(graph, path[::-1]):
         path = path[::-1]  # walk the way the angles were booked, so their sum keeps its sign
     corners = [*path[-2:-1], *path]  # the station before the start closes the first corner
-    turned = [graph.angle(corners[i - 1], corners[i], corners[i + 1]) for i in range(1, len(corners) - 1)]
+    turned = [graph.angle(corners[i - 1], corners[i], corners[i + 1])
+              for i in range(1, len(corners) - 1)]
     n = len(turned)
     total = sum(turned)
     # interior and exterior sums differ by 4·180°, so the nearest wraps to one of them
     angular = wrap_pi(total - (n - 2) * math.pi)
     legs = [_leg(graph, a, b) for a, b in zip(path, path[1:])]
     start = graph.fixed.get(path[0], (0.0, 0.0))
-    first = graph.bearing(path[0], path[1]) if path[0] in graph.fixed and path[1] in graph.fixed else 0.0
+    both_fixed = path[0] in graph.fixed and path[1] in graph.fixed
+    first = graph.bearing(path[0], path[1]) if both_fixed else 0.0  # else assumed
     correction = -angular / n
     azimuths, azimuth = [first], first
     for angle in turned[1:]:
@@ -304,7 +317,8 @@ def _polygon(graph: _Graph, path: list[str], tol: TraverseTolerance) -> Misclosu
 def _reversed_corners(graph: _Graph, path: list[str]) -> int:
     """How many corners of a closed path use the explement of a booked angle."""
     corners = [path[-2], *path]
-    return sum((corners[i + 1], corners[i], corners[i - 1]) in graph.booked for i in range(1, len(corners) - 1))
+    return sum((corners[i + 1], corners[i], corners[i - 1]) in graph.booked
+               for i in range(1, len(corners) - 1))
 
 
 def _azimuths(first: float, turned: list[float]) -> list[float]:
@@ -314,7 +328,9 @@ def _azimuths(first: float, turned: list[float]) -> list[float]:
     return out
 
 
-def _balance(first: float, turned: list[float], angular: float, stations: int, start_angle: bool) -> list[float]:
+def _balance(
+    first: float, turned: list[float], angular: float, stations: int, start_angle: bool
+) -> list[float]:
     """Azimuths with the angular misclosure taken out equally at every angle station."""
     correction = -angular / stations
     azimuth = wrap_2pi(first + (correction if start_angle else 0.0))
@@ -327,7 +343,8 @@ def _balance(first: float, turned: list[float], angular: float, stations: int, s
 
 def _entry(path: list[str], fit: Closure, angular: float | None, stations: int,
            tol: TraverseTolerance) -> Misclosure:
-    angular_allowed = None if tol.angular_per_sqrtn is None else tol.angular_per_sqrtn * math.sqrt(stations)
+    k = tol.angular_per_sqrtn
+    angular_allowed = None if k is None else k * math.sqrt(stations)
     return Misclosure(
         kind="traverse",
         points=tuple(path),
