@@ -187,6 +187,7 @@ def _stages(text: str, dense_max: int) -> dict[str, object]:
     from server.misclosures import leveling_misclosures
     from server.network import build_network
     from server.result import build_result
+    from server.traverse import traverse_misclosures
 
     stages: dict[str, float] = {}
     clock = time.perf_counter
@@ -198,6 +199,8 @@ def _stages(text: str, dense_max: int) -> dict[str, object]:
     stages["network"] = clock() - t
     t = clock()
     misclosures = leveling_misclosures(fieldbook) if network.vertical else ()
+    if network.horizontal:  # as the pipeline does
+        misclosures += traverse_misclosures(fieldbook)
     stages["misclosures"] = clock() - t
     marks: dict[str, float] = {}
 

@@ -58,8 +58,10 @@ from .fieldbook_model import (
     PointStatement,
     RelativePair,
     TestLevels,
+    TraverseTolerance,
 )
 from .point_names import near_miss_warnings
+from .traverse import parse_angular_allowance, parse_ratio
 from .units import (
     FILE_ANGLE_UNITS,
     FILE_LENGTH_UNITS,
@@ -175,6 +177,7 @@ class _Parser:
         self.tests = TestLevels()
         self.misclosure: Quantity | None = None
         self.relative: Quantity | None = None
+        self.traverse = TraverseTolerance()
         self.defaults: dict[str, _Default] = {}
         self.centering = 0.0
         self.scale = 1.0
@@ -232,6 +235,7 @@ class _Parser:
             tests=self.tests,
             misclosure_tolerance=self.misclosure,
             relative_tolerance=self.relative,
+            traverse_tolerance=self.traverse,
             points=tuple(self.points),
             observations=tuple(self.observations),
             rounds=tuple(self.rounds),
@@ -508,6 +512,9 @@ class _Parser:
             self.report_empty(st)
         self.misclosure = self.option(st, "misclosure", read_quantity, MISCLOSURE_RULE)
         self.relative = self.option(st, "relative", read_quantity, RELATIVE_RULE)
+        self.traverse = TraverseTolerance(
+            self.option(st, "angular", parse_angular_allowance), self.option(st, "ratio", parse_ratio)
+        )
 
     def set_defaults(self, st: Statement) -> None:
         """Change the defaults of the kinds named; the others stay in force."""

@@ -476,8 +476,9 @@ GRAMMARS: dict[str, Grammar] = {
     "tolerance": Grammar(
         "tolerance",
         "header",
-        options=frozenset({"misclosure", "relative"}),
-        hint="misclosure= or relative=, e.g. misclosure=4mm/sqrtkm",
+        options=frozenset({"misclosure", "relative", "angular", "ratio"}),
+        hint="misclosure=, relative=, angular= or ratio=, e.g. misclosure=4mm/sqrtkm "
+        "or angular=10sec/sqrtn ratio=1:10000",
     ),
     "defaults": Grammar(
         "defaults",

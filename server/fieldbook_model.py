@@ -34,6 +34,14 @@ class TestLevels:
 
 
 @dataclass(frozen=True, slots=True)
+class TraverseTolerance:
+    """``tolerance angular=K/sqrtn ratio=1:N``: K in radians, N as a number (either may be None)."""
+
+    angular_per_sqrtn: float | None = None
+    ratio: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
 class PointStatement:
     """A ``point`` line.  ``fixed``/``weighted`` are among "", "en", "h", "enh"."""
 
@@ -112,6 +120,7 @@ class Fieldbook:
     tests: TestLevels = field(default_factory=TestLevels)
     misclosure_tolerance: Quantity | None = None
     relative_tolerance: Quantity | None = None
+    traverse_tolerance: TraverseTolerance = field(default_factory=TraverseTolerance)
     points: tuple[PointStatement, ...] = ()
     observations: tuple[Observation, ...] = ()
     rounds: tuple[DirectionRound, ...] = ()

@@ -7,7 +7,10 @@ another; any other cycle is a closed loop.  An independent set of cycles (a
 cycle basis over GF(2)) is chosen short first: each section proposes the
 cycle it closes with the shortest path between its ends, the candidates are
 taken shortest first when independent of those already taken, and the basis
-is completed from a spanning tree if any are missing.
+is completed from a spanning tree if any are missing.  The closed loops are
+chosen first, among paths that avoid the datum, so they are the smallest
+loops of the network (its faces, as a crew runs them); the runs between
+fixed benchmarks then complete the set, and are listed after the loops.
 """
 
 from __future__ import annotations
@@ -21,25 +24,47 @@ from .fieldbook_model import Fieldbook
 from .units import Quantity
 
 _DATUM = "\x00datum"
-#: Above this many sections, use the spanning-tree cycles directly (shortest-path candidates are O(E²)).
+#: Above this many lines between junctions, use the spanning-tree cycles directly
+#: (the shortest-path candidates cost one bounded search per line).
 _CANDIDATE_LIMIT = 3000
 
 
 @dataclass(frozen=True, slots=True)
 class Misclosure:
-    """One loop or run; lengths in metres (``length`` None when a section has no len=)."""
+    """One loop, run or traverse; lengths in metres (``length`` None when a section has no len=).
 
-    kind: str  # "loop" or "run"
+    A traverse (``traverse.py``) also carries its angular misclosure and allowance in
+    radians, its number of angle stations, the east/north parts of the linear
+    misclosure and the N of the required precision 1 : N.
+    """
+
+    kind: str  # "loop", "run" or "traverse"
     points: tuple[str, ...]
     misclosure: float
     length: float | None
     setups: int | None
     allowed: float | None
+    angular: float | None = None
+    angular_allowed: float | None = None
+    angle_stations: int | None = None
+    misclosure_east: float | None = None
+    misclosure_north: float | None = None
+    ratio_allowed: float | None = None
 
     @property
     def exceeds(self) -> bool:
-        """|misclosure| above the allowance (False when no allowance applies)."""
-        return self.allowed is not None and abs(self.misclosure) > self.allowed
+        """|misclosure| (or the angular one) above its allowance (False when none applies)."""
+        if self.allowed is not None and abs(self.misclosure) > self.allowed:
+            return True
+        return (self.angular is not None and self.angular_allowed is not None
+                and abs(self.angular) > self.angular_allowed)
+
+    @property
+    def ratio(self) -> float | None:
+        """N of a traverse's precision 1 : N (None for a loop or run, or a zero misclosure)."""
+        if self.kind != "traverse" or not self.misclosure or self.length is None:
+            return None
+        return self.length / abs(self.misclosure)
 
 
 @dataclass(slots=True)
@@ -89,10 +114,11 @@ def leveling_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
         weights = [
             0.0 if _DATUM in (start, end) else 1.0 for start, end in zip(edges.start, edges.end)
         ]
-    cycles = _cycle_basis(edges, adjacency, weights)
+    cycles = _contracted_basis(edges, adjacency, weights)
     order = _first_appearance(fieldbook)
     results = [_describe(cycle, edges, order, fieldbook.misclosure_tolerance) for cycle in cycles]
-    results.sort(key=lambda m: (m.kind != "run", min(map(order.get, m.points, repeat(0)))))
+    # the loops as the crew ran them first, then the runs from benchmark to benchmark
+    results.sort(key=lambda m: (m.kind == "run", min(map(order.get, m.points, repeat(0)))))
     return tuple(results)
 
 
@@ -116,31 +142,44 @@ def _cycle_basis(
         return []
     basis: dict[int, int] = {}  # pivot bit → reduced mask (GF(2) elimination)
     chosen: list[list[int]] = []
+    covered: set[int] = set()
+    pending: list[list[int]] = []  # chosen but not yet in the elimination
 
-    def take(cycle: list[int]) -> None:
+    def reduce(cycle: list[int]) -> int:
         mask = 0
         for k in cycle:
             mask ^= 1 << k
         while mask:
             pivot = mask.bit_length() - 1
             if pivot not in basis:
-                basis[pivot] = mask
-                chosen.append(cycle)
-                return
+                return mask
             mask ^= basis[pivot]
+        return 0
+
+    def take(cycle: list[int]) -> None:
+        # a cycle with a section no chosen cycle has is independent of them all: the
+        # usual case, which spares the elimination until a cycle has only old sections
+        if not covered.issuperset(cycle):
+            covered.update(cycle)
+            chosen.append(cycle)
+            pending.append(cycle)
+            return
+        while pending:
+            mask = reduce(pending.pop())
+            basis[mask.bit_length() - 1] = mask
+        mask = reduce(cycle)
+        if mask:
+            basis[mask.bit_length() - 1] = mask
+            chosen.append(cycle)
 
     if len(edges) <= _CANDIDATE_LIMIT:
-        candidates = []
-        for k, (start, end) in enumerate(zip(edges.start, edges.end)):
-            path = _shortest_path(adjacency, weights, end, start, excluded=k)
-            if path is not None:
-                cycle = [k, *path]
-                candidates.append((sum(weights[j] for j in cycle), len(cycle), k, cycle))
-        candidates.sort(key=lambda c: c[:3])
-        for *_, cycle in candidates:
-            if len(chosen) == dimension:
-                break
-            take(cycle)
+        # the loops first, each section's shortest loop without the datum (the smallest
+        # closed loops, as the crew ran them), then the runs through the datum
+        for blocked in (_DATUM, None):
+            for cycle in _candidates(edges, adjacency, weights, blocked):
+                if len(chosen) == dimension:
+                    break
+                take(cycle)
     if not chosen:
         # each spanning-tree cycle holds its own non-tree section, so together they are
         # independent and complete: no elimination needed
@@ -153,14 +192,100 @@ def _cycle_basis(
     return chosen
 
 
+def _contracted_basis(
+    edges: _Edges, adjacency: dict[str, list[tuple[int, str]]], weights: list[float]
+) -> list[list[int]]:
+    """The cycle basis found on the lines between junctions, then spelled in sections.
+
+    A mark with exactly two sections (not a fixed benchmark, which also has its
+    datum link) only carries a line on, so each chain of them becomes one line:
+    the cycles are the same and the searches run on a graph of junctions, ten
+    or more times smaller in a regional network.
+    """
+    start, end, members = _chains(adjacency)
+    lines = _Edges(start, end, [], [], [])
+    line_adjacency: dict[str, list[tuple[int, str]]] = {}
+    for k, (a, b) in enumerate(zip(start, end)):
+        line_adjacency.setdefault(a, []).append((k, b))
+        if a != b:
+            line_adjacency.setdefault(b, []).append((k, a))
+    line_weights = [sum(weights[j] for j in chain) for chain in members]
+    return [
+        [j for k in cycle for j in members[k]]
+        for cycle in _cycle_basis(lines, line_adjacency, line_weights)
+    ]
+
+
+def _chains(
+    adjacency: dict[str, list[tuple[int, str]]]
+) -> tuple[list[str], list[str], list[list[int]]]:
+    """Lines between junctions (marks of other than two sections): ends and sections."""
+    start: list[str] = []
+    end: list[str] = []
+    members: list[list[int]] = []
+    done: set[int] = set()
+
+    def follow(origin: str, k: int, node: str, junction) -> None:
+        chain = [k]
+        done.add(k)
+        while not junction(node):
+            (k1, n1), (k2, n2) = adjacency[node]
+            k, node = (k2, n2) if k1 == k else (k1, n1)
+            chain.append(k)
+            done.add(k)
+        start.append(origin)
+        end.append(node)
+        members.append(chain)
+
+    def is_junction(node: str) -> bool:
+        return len(adjacency[node]) != 2 or node == _DATUM
+
+    for node, links in adjacency.items():
+        if is_junction(node):
+            for k, nxt in links:
+                if k not in done:
+                    follow(node, k, nxt, is_junction)
+    for node, links in adjacency.items():  # rings with no junction at all
+        for k, nxt in links:
+            if k not in done:
+                follow(node, k, nxt, lambda n, ring=node: n == ring)
+    return start, end, members
+
+
+def _candidates(
+    edges: _Edges, adjacency: dict[str, list[tuple[int, str]]], weights: list[float],
+    blocked: str | None,
+) -> list[list[int]]:
+    """Each section's cycle with the shortest path between its ends, shortest first.
+
+    With ``blocked`` the paths avoid that node (the datum: loops only); without
+    it the datum links propose the runs.
+    """
+    candidates = []
+    for k, (start, end) in enumerate(zip(edges.start, edges.end)):
+        # loops: the lines between marks; runs: each benchmark's link to the datum, whose
+        # shortest way back is the run to the nearest other benchmark
+        if (blocked is not None) == (_DATUM in (start, end)):
+            continue
+        path = _shortest_path(adjacency, weights, end, start, excluded=k, blocked=blocked)
+        if path is None:
+            continue
+        cycle = [k, *path]
+        candidates.append((sum(weights[j] for j in cycle), len(cycle), k, cycle))
+    candidates.sort(key=lambda c: c[:3])
+    return [c[3] for c in candidates]
+
+
 def _shortest_path(
     adjacency: dict[str, list[tuple[int, str]]],
     weights: list[float],
     source: str,
     target: str,
     excluded: int,
+    blocked: str | None = None,
 ) -> list[int] | None:
-    """Edge indices of a shortest path (Dijkstra) from source to target avoiding one edge."""
+    """Edge indices of a shortest path (Dijkstra) from source to target avoiding one edge
+    (and the node ``blocked``)."""
     best = {source: 0.0}
     previous: dict[str, tuple[str, int]] = {}
     heap = [(0.0, 0, source)]
@@ -173,7 +298,7 @@ def _shortest_path(
             continue
         for k, nxt in adjacency[node]:
             candidate = dist + weights[k]
-            if k != excluded and candidate < best.get(nxt, math.inf):
+            if k != excluded and nxt != blocked and candidate < best.get(nxt, math.inf):
                 best[nxt] = candidate
                 previous[nxt] = (node, k)
                 heapq.heappush(heap, (candidate, counter, nxt))

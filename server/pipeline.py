@@ -13,6 +13,7 @@ from .adjust import ProgressCallback, adjust
 from .fieldbook import parse_fieldbook
 from .fieldbook_model import Fieldbook
 from .misclosures import leveling_misclosures
+from .traverse import traverse_misclosures
 from .network import build_network
 from .result import AdjustmentResult, build_result
 
@@ -56,6 +57,8 @@ def _adjust_parsed(fieldbook: Fieldbook, progress: ProgressCallback | None) -> A
     warnings += list(network.warnings)
     report("misclosures", 0)
     misclosures = leveling_misclosures(fieldbook) if network.vertical else ()
+    if network.horizontal:
+        misclosures += traverse_misclosures(fieldbook)
     solution = adjust(network, progress=progress)
     report("result", 0)
     return build_result(network, solution, misclosures, warnings)

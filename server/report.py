@@ -22,6 +22,7 @@ import base64
 import csv
 import hashlib
 import io
+import math
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, datetime
@@ -252,7 +253,7 @@ class ObservationRow:
 
 @dataclass(frozen=True, slots=True)
 class MisclosureRow:
-    """One leveling loop or run, formatted."""
+    """One leveling loop or run, or a traverse, formatted (the last four for traverses only)."""
 
     kind: str
     route: str
@@ -262,6 +263,11 @@ class MisclosureRow:
     allowed: str
     exceeds: bool
     status: str
+    angular: str = NOT_APPLICABLE
+    angular_allowed: str = NOT_APPLICABLE
+    ratio: str = NOT_APPLICABLE
+    ratio_allowed: str = NOT_APPLICABLE
+    stations: str = NOT_APPLICABLE
 
 
 def verdict(result: AdjustmentResult) -> Verdict:
@@ -523,11 +529,11 @@ def observation_rows(result: AdjustmentResult) -> list[ObservationRow]:
 
 
 def misclosure_rows(result: AdjustmentResult) -> list[MisclosureRow]:
-    """Loops and runs with their misclosure against the allowance."""
+    """Loops, runs and traverses with their misclosure against the allowance."""
     unit = result.length_unit
     out = []
     for m in result.misclosures:
-        if m.allowed is None:
+        if m.allowed is None and m.angular_allowed is None:
             status = "no allowance set"
         else:
             status = "exceeds" if m.exceeds else "within"
@@ -540,8 +546,40 @@ def misclosure_rows(result: AdjustmentResult) -> list[MisclosureRow]:
             allowed=fmt_length(m.allowed, unit),
             exceeds=m.exceeds,
             status=status,
+            angular=fmt_closure_angle(m.angular_misclosure, result.angle_unit),
+            angular_allowed=fmt_closure_angle(m.angular_allowed, result.angle_unit),
+            ratio=fmt_precision_ratio(m.ratio, floor=True),
+            ratio_allowed=fmt_precision_ratio(m.ratio_allowed),
+            stations=NOT_APPLICABLE if m.angle_stations is None else str(m.angle_stations),
         ))
     return out
+
+
+def leveling_rows(result: AdjustmentResult) -> list[MisclosureRow]:
+    """The loops and runs of ``misclosure_rows``."""
+    return [m for m in misclosure_rows(result) if m.kind != "traverse"]
+
+
+def traverse_rows(result: AdjustmentResult) -> list[MisclosureRow]:
+    """The traverses of ``misclosure_rows``."""
+    return [m for m in misclosure_rows(result) if m.kind == "traverse"]
+
+
+def fmt_closure_angle(arcsec: float | None, angle_unit: str) -> str:
+    """An angular closure: arc-seconds to 0.1″, or mgon to 0.1 for gon field books."""
+    if arcsec is None:
+        return NOT_APPLICABLE
+    if angle_unit == "gon":
+        return _fixed(arcsec / 3.24, 1) + " mgon"  # 1 mgon = 3.24″
+    return _fixed(arcsec, 1) + ARCSEC
+
+
+def fmt_precision_ratio(n: float | None, *, floor: bool = False) -> str:
+    """``1 : 12,345``; an achieved ratio is rounded down so it is never overstated."""
+    if n is None:
+        return NOT_APPLICABLE
+    whole = math.floor(n) if floor else round(n)
+    return f"1 : {whole:,}"
 
 
 @dataclass(frozen=True, slots=True)
@@ -718,13 +756,22 @@ def standards_summary(result: AdjustmentResult,
                        f"{fmt_percent(result.relative[0].confidence)}",
                        "pair of joined points", "pairs of joined points", outcomes, allowance)
         out.append(_relative_check(check, result.relative))
-    if result.misclosures:
+    leveling = [m for m in result.misclosures if m.kind != "traverse"]
+    if leveling:
         # the contract records exceeds; an allowance of None means the loop was not checked
-        outcomes = [None if m.allowed is None else not m.exceeds for m in result.misclosures]
+        outcomes = [None if m.allowed is None else not m.exceeds for m in leveling]
         allowance = _allowance_source(presets, "misclosure", "misclosure",
-                                      any(m.allowed is not None for m in result.misclosures))
+                                      any(m.allowed is not None for m in leveling))
         out.append(_check("Leveling misclosures", "loop or run", "loops and runs", outcomes,
                           allowance))
+    traverses = [m for m in result.misclosures if m.kind == "traverse"]
+    if traverses:
+        outcomes = [None if m.allowed is None and m.angular_allowed is None else not m.exceeds
+                    for m in traverses]
+        allowance = ("the field book's own “tolerance angular= ratio=” statement"
+                     if any(o is not None for o in outcomes) else
+                     "none: the field book sets no “tolerance angular=” or “ratio=”")
+        out.append(_check("Traverse closures", "traverse", "traverses", outcomes, allowance))
     return out
 
 
@@ -840,6 +887,8 @@ def context(result: AdjustmentResult, presets: Sequence[Preset] = ()) -> dict[st
         "reductions_note": reductions_note(result),
         "observation_rows": observation_rows(result),
         "misclosure_rows": misclosure_rows(result),
+        "leveling_rows": leveling_rows(result),
+        "traverse_rows": traverse_rows(result),
         "columns": columns(result),
         "length_unit": length_label(result.length_unit),
         "variance_factor": fmt_ratio(result.summary.variance_factor, 3),
@@ -1044,11 +1093,18 @@ def report_text(result: AdjustmentResult) -> str:
             ["from", "to", f"ΔH {unit}", "sd ΔH", f"± {fmt_percent(result.summary.confidence)}"],
             rows_h, {2, 3, 4})
 
-    exceeded = [m for m in misclosure_rows(result) if m.exceeds]
+    exceeded = [m for m in leveling_rows(result) if m.exceeds]
     if exceeded:
         out += ["", "Misclosures over the allowance"]
         out += _table(["kind", "route", f"misclosure {unit}", "allowed"],
                       [[m.kind, m.route, m.misclosure, m.allowed] for m in exceeded], {2, 3})
+    traverses = traverse_rows(result)
+    if traverses:
+        out += ["", "Traverse closures before adjustment"]
+        out += _table(["route", "n", "angular", "allowed", f"linear {unit}", "precision",
+                       "required", "check"],
+                      [[m.route, m.stations, m.angular, m.angular_allowed, m.misclosure, m.ratio,
+                        m.ratio_allowed, m.status] for m in traverses], {1, 2, 3, 4})
 
     # the largest |w| first: that is the observation to suspect first
     flagged = sorted((o for o in observation_rows(result) if o.flagged),

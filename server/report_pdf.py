@@ -324,8 +324,32 @@ def _relative_block(data: dict[str, Any], styles: Styles, width: float) -> list[
             styles.para(note, styles.note)]
 
 
+def _traverse_block(data: dict[str, Any], styles: Styles, width: float) -> list[Flowable]:
+    if not data["traverse_rows"]:
+        return []
+    unit = data["length_unit"]
+    columns = [Column("Route", None, widest=300), Column("n", 20, True),
+               Column("Angular", 44, True), Column("Allowed", 44, True),
+               Column(f"Linear ({unit})", 50, True), Column(f"Length ({unit})", 54, True),
+               Column("Precision", 56, True), Column("Required", 56, True), Column("Check", 50)]
+    rows, states = [], []
+    for m in data["traverse_rows"]:
+        passed = None if m.status == "no allowance set" else not m.exceeds
+        rows.append([Paragraph(styles.text(m.route), styles.cell), m.stations, m.angular,
+                     m.angular_allowed, m.misclosure, m.length, m.ratio, m.ratio_allowed,
+                     _check_cell(styles, passed, "within", "exceeds", m.status)])
+        states.append("bad" if m.exceeds else "")
+    note = ("From the booked angles and the distances after any scale factor, before adjustment. "
+            "The angular misclosure is spread equally over the n angle stations before latitudes "
+            "and departures are summed; the angular allowance is K·√n, the precision the traverse "
+            "length over the linear misclosure, rounded down.")
+    return [*_heading("Traverse closures before adjustment", styles),
+            data_table(styles, columns, rows, width, row_states=states),
+            styles.para(note, styles.note)]
+
+
 def _misclosure_block(data: dict[str, Any], styles: Styles, width: float) -> list[Flowable]:
-    if not data["misclosure_rows"]:
+    if not data["leveling_rows"]:
         return []
     unit = data["length_unit"]
     columns = [Column("Kind", 34), Column("Route", None, widest=400),
@@ -333,7 +357,7 @@ def _misclosure_block(data: dict[str, Any], styles: Styles, width: float) -> lis
                Column(f"Length ({unit})", 54, True), Column(f"Allowed ({unit})", 50, True),
                Column("Check", 56)]
     rows, states = [], []
-    for m in data["misclosure_rows"]:
+    for m in data["leveling_rows"]:
         passed = None if m.status == "no allowance set" else not m.exceeds
         rows.append([m.kind, Paragraph(styles.text(m.route), styles.cell), m.misclosure, m.length,
                      m.allowed, _check_cell(styles, passed, "within", "exceeds", m.status)])
@@ -543,6 +567,7 @@ def report_pdf(result: AdjustmentResult, *, generated: datetime | None = None,
     story += _points_block(result, data, styles, width)
     story += _relative_block(data, styles, width)
     story += _misclosure_block(data, styles, width)
+    story += _traverse_block(data, styles, width)
     story += _histogram_block(data, styles, width)
     story += _observation_block(data, styles, width)
     story += _warnings_block(result, styles)

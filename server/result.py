@@ -12,6 +12,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -135,7 +136,7 @@ class ObservationResult:
 
 @dataclass(frozen=True, slots=True, kw_only=True)
 class MisclosureResult:
-    """A leveling loop or run, in length units."""
+    """A leveling loop or run, or a traverse, in length units (traverse angles in arcsec)."""
 
     kind: str
     points: tuple[str, ...]
@@ -143,6 +144,35 @@ class MisclosureResult:
     length: float | None
     allowed: float | None
     exceeds: bool
+    # traverse entries only (None for loops and runs)
+    angular_misclosure: float | None = None
+    angular_allowed: float | None = None
+    angle_stations: int | None = None
+    misclosure_east: float | None = None
+    misclosure_north: float | None = None
+    ratio: float | None = None
+    ratio_allowed: float | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {
+            "kind": self.kind,
+            "points": list(self.points),
+            "misclosure": self.misclosure,
+            "length": self.length,
+            "allowed": self.allowed,
+            "exceeds": self.exceeds,
+        }
+        if self.kind == "traverse":
+            out.update(
+                angular_misclosure=self.angular_misclosure,
+                angular_allowed=self.angular_allowed,
+                angle_stations=self.angle_stations,
+                misclosure_east=self.misclosure_east,
+                misclosure_north=self.misclosure_north,
+                ratio=self.ratio,
+                ratio_allowed=self.ratio_allowed,
+            )
+        return out
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -278,17 +308,7 @@ class AdjustmentResult:
                 }
                 for o in self.observations
             ],
-            "misclosures": [
-                {
-                    "kind": m.kind,
-                    "points": list(m.points),
-                    "misclosure": m.misclosure,
-                    "length": m.length,
-                    "allowed": m.allowed,
-                    "exceeds": m.exceeds,
-                }
-                for m in self.misclosures
-            ],
+            "misclosures": [m.to_dict() for m in self.misclosures],
             "relative": [
                 {
                     "from": r.from_point,
@@ -321,6 +341,31 @@ class AdjustmentResult:
             "warnings": list(self.warnings),
             "caution": self.caution,
         }
+
+
+def _misclosure_result(m: Misclosure, per_m: float) -> MisclosureResult:
+    """One misclosure in output units; a traverse also gets its angular part in arcsec."""
+    def length(value: float | None) -> float | None:
+        return None if value is None else value * per_m
+
+    def arcsec(value: float | None) -> float | None:
+        return None if value is None else value * ARCSEC_PER_RAD
+
+    return MisclosureResult(
+        kind=m.kind,
+        points=m.points,
+        misclosure=m.misclosure * per_m,
+        length=length(m.length),
+        allowed=length(m.allowed),
+        exceeds=m.exceeds,
+        angular_misclosure=arcsec(m.angular),
+        angular_allowed=arcsec(m.angular_allowed),
+        angle_stations=m.angle_stations,
+        misclosure_east=length(m.misclosure_east),
+        misclosure_north=length(m.misclosure_north),
+        ratio=m.ratio,
+        ratio_allowed=m.ratio_allowed,
+    )
 
 
 def build_result(
@@ -401,17 +446,7 @@ def build_result(
         summary=summary,
         points=points,
         observations=observations,
-        misclosures=tuple(
-            MisclosureResult(
-                kind=m.kind,
-                points=m.points,
-                misclosure=m.misclosure * per_m,
-                length=None if m.length is None else m.length * per_m,
-                allowed=None if m.allowed is None else m.allowed * per_m,
-                exceeds=m.exceeds,
-            )
-            for m in misclosures
-        ),
+        misclosures=tuple(_misclosure_result(m, per_m) for m in misclosures),
         relative=relative,
         relative_heights=relative_heights,
         warnings=tuple(warnings),
