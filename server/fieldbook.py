@@ -52,6 +52,7 @@ from .fieldbook_lexer import (
     tokenize,
 )
 from .fieldbook_model import (
+    PRECISION_METHODS,
     DirectionRound,
     Fieldbook,
     Observation,
@@ -487,8 +488,12 @@ class _Parser:
     def set_tests(self, st: Statement) -> None:
         if not st.options:
             self.report_empty(st)
-        levels = {}
+        levels: dict[str, float | str] = {}
         for key, token in st.options.items():
+            if key == "precision":
+                if (method := self.precision_method(st, token)) is not None:
+                    levels[key] = method
+                continue
             value = self.read(st, token, parse_number)
             if value is not None and not 0.0 < value < 1.0:
                 self.error(
@@ -505,7 +510,21 @@ class _Parser:
                 )
             elif value is not None:
                 levels[key] = value
-        self.tests = TestLevels(**levels)
+        self.tests = TestLevels(**levels)  # type: ignore[arg-type]
+
+    def precision_method(self, st: Statement, token: Token) -> str | None:
+        """``precision=`` names how precisions are scaled; any case is accepted."""
+        method = token.value.lower()
+        if method in PRECISION_METHODS:
+            return method
+        self.error(
+            st.line,
+            token.raw,
+            f"'{show(token.value)}' is not a precision scaling{suggest(method, PRECISION_METHODS)} "
+            "(precision= takes posterior: by the a posteriori variance factor, prior: by the "
+            "a priori one, or larger: by the larger of the two)",
+        )
+        return None
 
     def tolerance(self, st: Statement) -> None:
         if not st.options:

@@ -470,8 +470,8 @@ GRAMMARS: dict[str, Grammar] = {
     "tests": Grammar(
         "tests",
         "header",
-        options=frozenset({"alpha", "snooping", "power", "confidence"}),
-        hint="alpha=, snooping=, power= or confidence=, e.g. alpha=0.05",
+        options=frozenset({"alpha", "snooping", "power", "confidence", "precision"}),
+        hint="alpha=, snooping=, power=, confidence= or precision=, e.g. alpha=0.05",
     ),
     "tolerance": Grammar(
         "tolerance",

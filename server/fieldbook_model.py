@@ -23,14 +23,20 @@ SPATIAL_KINDS = frozenset({"slope", "zenith"})
 ANGULAR_KINDS = frozenset({"angle", "direction", "azimuth", "zenith"})
 
 
+#: How ``tests precision=`` scales the precisions: by the a posteriori variance factor,
+#: by the a priori one (1), or by the larger of the two.
+PRECISION_METHODS = ("posterior", "prior", "larger")
+
+
 @dataclass(frozen=True, slots=True)
 class TestLevels:
-    """The ``tests`` statement: significance levels, power and confidence."""
+    """The ``tests`` statement: significance levels, power, confidence and precision scaling."""
 
     alpha: float = 0.05
     snooping: float = 0.001
     power: float = 0.80
     confidence: float = 0.95
+    precision: str = "posterior"
 
 
 @dataclass(frozen=True, slots=True)

@@ -376,6 +376,7 @@ def rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:
         ("Redundancy (degrees of freedom)", str(s.redundancy), ""),
         ("Iterations", f"{s.iterations} ({'converged' if s.converged else 'NOT converged'})", ""),
         ("Variance factor σ̂₀²", fmt_ratio(s.variance_factor, 3), ""),
+        ("Precisions scaled by", precision_short(result), ""),
     ]
     if test is not None:
         out += [
@@ -812,10 +813,61 @@ def a_priori_rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:
     return out
 
 
+#: How each ``tests precision=`` choice reads in a report.
+PRECISION_WORDS = {
+    "posterior": "the a posteriori variance factor",
+    "prior": "the a priori variance factor",
+    "larger": "the larger of the a priori and a posteriori variance factors",
+}
+
+
+def _sd_times(variance: float) -> str:
+    return fmt_ratio(math.sqrt(variance), 3)
+
+
+def precision_short(result: AdjustmentResult) -> str:
+    """The scaling in force for the summary table, e.g. "a posteriori σ̂₀² = 1.840 (sd × 1.356)"."""
+    s = result.summary
+    used = s.precision_factor if s.precision_factor is not None else 1.0
+    which = "a posteriori σ̂₀²" if s.precision_estimated else "a priori σ₀²"
+    chosen = "larger: " if s.precision_method == "larger" else ""
+    return f"{chosen}{which} = {fmt_ratio(used, 3)} (sd × {_sd_times(used)})"
+
+
+def precision_note(result: AdjustmentResult) -> str:
+    """The ``tests precision=`` choice and its effect on every standard deviation and ellipse."""
+    s = result.summary
+    method, posterior = s.precision_method, s.variance_factor
+    setting = f"tests precision={method}" + (" (the default)" if method == "posterior" else "")
+    if posterior is None:
+        return (f"Precisions use the a priori variance factor 1 (standard deviations × 1.000, as "
+                "propagated from the a priori standard deviations): with no redundancy the a "
+                f"posteriori variance factor cannot be estimated, whatever {setting} asks for.")
+    effect = f"standard deviations × {_sd_times(posterior)}"
+    if method == "posterior":
+        return (f"Precisions scaled by the a posteriori variance factor {fmt_ratio(posterior, 3)} "
+                f"({effect}); set by {setting}.")
+    if method == "prior":
+        return ("Precisions scaled by the a priori variance factor 1 (standard deviations × 1.000, "
+                "as propagated from the a priori standard deviations); the a posteriori variance "
+                f"factor {fmt_ratio(posterior, 3)} would have given {effect}. Set by {setting}.")
+    if s.precision_estimated:
+        return (f"Precisions scaled by {PRECISION_WORDS['larger']} (1 and "
+                f"{fmt_ratio(posterior, 3)}): the a posteriori one, {effect}; set by {setting}.")
+    return (f"Precisions scaled by {PRECISION_WORDS['larger']} (1 and {fmt_ratio(posterior, 3)}): "
+            "the a priori one, standard deviations × 1.000; the a posteriori factor alone would "
+            f"have given {effect}, smaller than the a priori model supports. Set by {setting}.")
+
+
 def ellipse_convention(result: AdjustmentResult) -> str:
     """The 95 % (or other) factor of the ellipses in words, with its value for this network."""
     s = result.summary
     p = fmt_percent(s.confidence)
+    if s.redundancy > 0 and not s.precision_estimated:
+        return (f"Confidence ellipses ({p}) are the standard ellipse of Qxx (a priori σ₀² = 1, "
+                f"as tests precision={s.precision_method} chose) multiplied by "
+                f"k = √χ²({p}; 2) = {s.ellipse_factor:.4f}: the variance is taken as known, "
+                "not estimated from the observations, so the χ² quantile applies rather than F.")
     if s.redundancy > 0:
         return (f"Confidence ellipses ({p}) are the standard ellipse of σ̂₀²·Qxx multiplied by "
                 f"k = √(2·F({p}; 2, r)) = {s.ellipse_factor:.4f} for r = {s.redundancy} degrees "
@@ -874,6 +926,7 @@ def context(result: AdjustmentResult, presets: Sequence[Preset] = ()) -> dict[st
         "relative_height_rows": relative_height_rows(result),
         "a_priori_rows": a_priori_rows(result),
         "ellipse_note": ellipse_convention(result) if result.summary.dimension != 1 else "",
+        "precision_note": precision_note(result),
         "histogram": histogram,
         "histogram_layout": None if histogram is None
         else histogram_layout(histogram, *HISTOGRAM_SIZE),
@@ -1054,6 +1107,7 @@ def report_text(result: AdjustmentResult) -> str:
         f"{s.unknowns} unknowns, redundancy {s.redundancy}, "
         f"variance factor {fmt_ratio(s.variance_factor, 3)}"
     )
+    out.append(precision_note(result))
     out += [f"{c.symbol} {c.name}: {c.words}." for c in standards_summary(result)]
     if reduced := reductions_note(result):
         out.append(reduced)

@@ -235,7 +235,7 @@ def _statistics_block(result: AdjustmentResult, data: dict[str, Any], styles: St
     table.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "TOP"),
                                ("LEFTPADDING", (0, 0), (-1, -1), 0),
                                ("RIGHTPADDING", (0, 0), (-1, -1), 0)]))
-    out: list[Flowable] = [table]
+    out: list[Flowable] = [table, styles.para(data["precision_note"], styles.note)]
     if data["ellipse_note"]:
         out.append(styles.para(data["ellipse_note"], styles.note))
     return out
@@ -270,9 +270,10 @@ def _points_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles
         row.append(Paragraph(role, styles.cell))
         rows.append(row)
         states.append("" if p.in_use else "muted")
-    note = (f"Coordinates and standard deviations in {unit}; standard deviations are a "
-            "posteriori" + ("; ellipse azimuths of the major axis from grid north"
-                            if cols.ellipses else "") + ".")
+    scaled = "a posteriori" if result.summary.precision_estimated else "a priori (σ₀² = 1)"
+    note = (f"Coordinates and standard deviations in {unit}; standard deviations are {scaled}"
+            + ("; ellipse azimuths of the major axis from grid north" if cols.ellipses else "")
+            + ".")
     return [*_heading("Adjusted points", styles),
             data_table(styles, columns, rows, width, row_states=states),
             styles.para(note, styles.note)]

@@ -77,6 +77,20 @@ class Summary:
     snooping: float
     power: float
     confidence: float
+    #: ``tests precision=`` as written, and σ₀² actually used to scale every precision figure
+    #: (None only in runs stored before the choice existed: then it was σ̂₀², or 1 at r = 0).
+    precision_method: str = "posterior"
+    precision_factor: float | None = None
+
+    def __post_init__(self) -> None:
+        if self.precision_factor is None:
+            factor = 1.0 if self.variance_factor is None else self.variance_factor
+            object.__setattr__(self, "precision_factor", factor)
+
+    @property
+    def precision_estimated(self) -> bool:
+        """True when precisions are scaled by σ̂₀² (ellipses then take the F quantile, not χ²)."""
+        return st.precision_variance(self.precision_method, self.variance_factor)[1]
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -261,6 +275,7 @@ class AdjustmentResult:
                     "alpha": s.global_test.alpha,
                     "passed": s.global_test.passed,
                 },
+                "precision_scaling": {"method": s.precision_method, "factor": s.precision_factor},
             },
             "points": [
                 {
@@ -394,8 +409,9 @@ def build_result(
         )
     critical = st.normal_critical_value(tests.snooping)
     lambda0 = st.non_centrality(tests.snooping, tests.power)
-    factor = st.ellipse_factor(tests.confidence, redundancy)
-    scale_variance = variance if variance is not None else 1.0
+    # σ₀² that scales Qxx, and the ellipse quantile that matches it (F if estimated, else χ²)
+    scale_variance, estimated = st.precision_variance(tests.precision, variance)
+    factor = st.ellipse_factor(tests.confidence, redundancy, estimated)
     warnings = list(warnings)
 
     observations = _observation_results(
@@ -429,13 +445,17 @@ def build_result(
         snooping=tests.snooping,
         power=tests.power,
         confidence=tests.confidence,
+        precision_method=tests.precision,
+        precision_factor=scale_variance,
     )
     horizontal_pairs, height_pairs = _requested_pairs(network, solution, warnings)
     relative = _relative_results(
         network, solution, scale_variance, factor, tests.confidence, per_m, horizontal_pairs
     )
     relative_heights = _relative_height_results(
-        network, solution, scale_variance, tests.confidence, redundancy, per_m, height_pairs
+        network, solution, scale_variance, tests.confidence,
+        redundancy if estimated else 0,  # Student's t only when σ₀² is the estimate
+        per_m, height_pairs,
     )
     return AdjustmentResult(
         title=fb.title,

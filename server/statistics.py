@@ -65,13 +65,14 @@ def minimal_detectable_bias(sigmas: np.ndarray, redundancy: np.ndarray, lambda0:
     return sigmas * np.sqrt(lambda0 / redundancy)
 
 
-def ellipse_factor(confidence: float, redundancy: int) -> float:
+def ellipse_factor(confidence: float, redundancy: int, estimated: bool = True) -> float:
     """Scale from the standard ellipse to the confidence ellipse.
 
-    √(2·F(confidence; 2, r)) when σ₀² is estimated on r degrees of freedom,
-    √χ²(confidence; 2) (2.4477 at 95 %) when r = 0 and the a priori σ₀ is used.
+    √(2·F(confidence; 2, r)) when the ellipse is scaled by σ̂₀² estimated on r degrees of
+    freedom; √χ²(confidence; 2) (2.4477 at 95 %) when the variance is taken as known,
+    the a priori σ₀² = 1 (``estimated`` false, or r = 0).
     """
-    if redundancy <= 0:
+    if redundancy <= 0 or not estimated:
         return math.sqrt(_chi2_ppf(confidence, 2))
     return math.sqrt(2.0 * float(scipy.special.fdtri(2, redundancy, confidence)))
 
@@ -86,6 +87,17 @@ def interval_factor(confidence: float, redundancy: int) -> float:
     if redundancy <= 0:
         return math.sqrt(_chi2_ppf(confidence, 1))
     return math.sqrt(float(scipy.special.fdtri(1, redundancy, confidence)))
+
+
+def precision_variance(method: str, variance: float | None) -> tuple[float, bool]:
+    """(σ₀² that scales Qxx, whether it is the estimate σ̂₀²) for ``tests precision=``.
+
+    posterior: σ̂₀²; prior: 1; larger: max(σ̂₀², 1), so precisions never look better than
+    the a priori model.  Without redundancy σ̂₀² does not exist and the a priori 1 is used.
+    """
+    if variance is None or method == "prior" or (method == "larger" and variance <= 1.0):
+        return 1.0, False
+    return variance, True
 
 
 def standard_ellipse(covariance: np.ndarray) -> tuple[float, float, float]:
