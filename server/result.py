@@ -3,7 +3,7 @@
 ``build_result`` runs the statistics once and converts SI values to the
 file's length unit, decimal degrees and arc-seconds exactly once.  The same
 object feeds the command line, the JSON API, the web pages and the reports;
-``to_json_dict`` follows ``shared/spec/result.md`` key for key.
+``to_json_dict`` writes the JSON described by ``docs/result.schema.json``.
 """
 
 from __future__ import annotations

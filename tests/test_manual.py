@@ -86,7 +86,6 @@ def test_the_manual_has_an_example_for_each_job_and_few_pending_ones():
 
 @pytest.mark.parametrize("block", EXAMPLES, ids=[f"line{line}" for line, _ in EXAMPLES])
 def test_every_example_reads_adjusts_and_passes_its_global_test(block):
-    jsonschema = pytest.importorskip("jsonschema")
     _, text = block
     result = _adjust(text)
     summary = result["summary"]
@@ -97,8 +96,27 @@ def test_every_example_reads_adjusts_and_passes_its_global_test(block):
     assert not [o for o in result["observations"] if o["flagged"]]
     assert not [m for m in result["misclosures"] if m["exceeds"]]
     assert all(r["passed"] is not False for r in result["relative"])
-    schema = json.loads(SCHEMA_PATH.read_text(encoding="utf-8"))
-    jsonschema.Draft202012Validator(schema).validate(result)
+
+
+def test_every_example_result_validates_against_the_schema():
+    jsonschema = pytest.importorskip("jsonschema")
+    validator = jsonschema.Draft202012Validator(
+        json.loads(SCHEMA_PATH.read_text(encoding="utf-8"))
+    )
+    for line, text in EXAMPLES:
+        errors = [error.message for error in validator.iter_errors(_adjust(text))]
+        assert errors == [], f"the example at docs/fieldbook.md line {line}: {errors[:3]}"
+
+
+def test_the_boundary_example_reports_control_to_corner_pairs_only():
+    result = _adjust(_block_titled("Lot 14 - corner survey against 2 cm + 50 ppm"))
+    pairs = {frozenset((r["from"], r["to"])) for r in result["relative"]}
+    corners = {"C1", "C2", "C3", "C4"}
+    assert pairs == {frozenset((cp, c)) for cp in ("CP1", "CP2") for c in corners}
+    # 2 cm + 50 ppm is met by every pair (the text says the job passes)
+    for pair in result["relative"]:
+        assert pair["allowed"] == pytest.approx(0.02 + 50e-6 * pair["distance"], abs=1e-12)
+        assert pair["passed"] is True
 
 
 @pytest.mark.parametrize("block", PENDING, ids=[f"line{line}" for line, _ in PENDING])

@@ -502,7 +502,7 @@ async def demo_open(name: str, request: Request) -> Response:
 
 
 # --------------------------------------------------------------------------------------
-# JSON API (shared/spec/result.md)
+# JSON API (the result JSON: docs/result.schema.json)
 
 
 _MISSING_FIELD = {"error": "send the field book in the multipart field 'fieldbook'"}
