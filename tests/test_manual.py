@@ -113,7 +113,7 @@ def test_the_boundary_example_reports_control_to_corner_pairs_only():
     pairs = {frozenset((r["from"], r["to"])) for r in result["relative"]}
     corners = {"C1", "C2", "C3", "C4"}
     assert pairs == {frozenset((cp, c)) for cp in ("CP1", "CP2") for c in corners}
-    # 2 cm + 50 ppm is met by every pair (the text says the job passes)
+    # 2 cm + 50 ppm is met by every pair (the example meets its allowance)
     for pair in result["relative"]:
         assert pair["allowed"] == pytest.approx(0.02 + 50e-6 * pair["distance"], abs=1e-12)
         assert pair["passed"] is True
