@@ -1,11 +1,12 @@
 """Field book text → ``Fieldbook``: every statement checked, every problem reported at once.
 
-The format, and what the parser decides where a line could be read two ways, is
-written down for users in ``docs/fieldbook.md``.  Tokens, grammars and single values
-are read in ``fieldbook_lexer.py``; this module gives statements their
-meaning: one small handler per statement, found through the ``_HANDLERS``
-table, and a parser object holding what is in force (units, defaults, scale,
-an open directions round).
+What is accepted, and every decision the format leaves open, is written down
+for users in ``docs/fieldbook.md`` (``tests/test_manual.py`` holds the two
+together).  Tokens, grammars and single values are read in
+``fieldbook_lexer.py``; this module gives statements their meaning: one
+small handler per statement, found through the ``_HANDLERS`` table, and a
+parser object holding what is in force (units, defaults, scale, an open
+directions round).
 
 Everything produced is SI (metres, radians).  Problems are collected as
 ``Issue`` objects and raised together in one ``FieldbookError``.

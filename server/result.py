@@ -3,8 +3,8 @@
 ``build_result`` runs the statistics once and converts SI values to the
 file's length unit, decimal degrees and arc-seconds exactly once.  The same
 object feeds the command line, the JSON API, the web pages and the reports;
-``to_json_dict`` is the JSON contract: a key never changes its meaning; new keys
-may be added.
+``to_json_dict`` writes the JSON described by ``docs/result.schema.json``: a key
+never changes its meaning; new keys may be added.
 """
 
 from __future__ import annotations

@@ -527,7 +527,7 @@ async def demo_open(name: str, request: Request) -> Response:
 
 
 # --------------------------------------------------------------------------------------
-# JSON API (the result JSON of to_json_dict; keys keep their meaning, new keys may be added)
+# JSON API (the result JSON: docs/result.schema.json)
 
 
 _MISSING_FIELD = {"error": "send the field book in the multipart field 'fieldbook'"}
