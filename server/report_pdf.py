@@ -408,7 +408,6 @@ def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> li
     cols = data["columns"]
     columns = [Column("Line", 22, True), Column("Kind", 38), Column("Marks", None, widest=400),
                Column(f"Booked\n({cols.values_unit})", 58, True), Column("Used", 58, True),
-               Column("Adjusted", 58, True),
                Column(f"Residual\n({cols.small_unit})", 44, True),
                Column(f"sd\n({cols.small_unit})", 36, True), Column("r", 24, True),
                Column("w", 30, True), Column(f"Est. bias\n({cols.small_unit})", 40, True),
@@ -443,7 +442,7 @@ def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> li
             w_cell = Paragraph(f"<b>{styles.text(o.w)}</b>", styles.cell_right)
         rows.append([str(o.line), o.kind,
                      Paragraph(marks, styles.cell_muted if o.ignored else styles.cell),
-                     booked, o.observed, o.adjusted, o.residual + sfx, o.sd + sfx, o.redundancy,
+                     booked, o.observed, o.residual + sfx, o.sd + sfx, o.redundancy,
                      w_cell,
                      o.estimated_bias + (sfx if o.estimated_bias != report.NOT_APPLICABLE else ""),
                      o.mdb + sfx, test])
@@ -451,7 +450,8 @@ def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> li
     note = ("Booked: the value as written in the field book, with the reduction that turned it "
             "into the value used beneath it (× the scale factor for a distance)."
             + (f" {data['reductions_note']}" if data["reductions_note"] else "")
-            + " Residual = adjusted − used. r: redundancy number. w: standardized residual, "
+            + " Residual = adjusted − used (the adjusted value is used + residual; the HTML "
+            "report and the CSV list it). r: redundancy number. w: standardized residual, "
             f"flagged when |w| > {data['critical_w']}. Est. bias: −v/r, the blunder that alone "
             "would explain the residual. \u201cSame test as\u201d: w-tests correlated at "
             "|ρ| ≥ 0.99, which the data cannot tell apart. MDB: minimal detectable bias."

@@ -364,6 +364,8 @@ class Comparison:
     heights: bool
     fixed_points: int
     corrected: tuple[CorrectedValue, ...] = ()
+    #: observations checked in A that no test can check in B (redundancy number below 0.001)
+    unchecked: tuple[FlagChange, ...] = ()
 
 
 def _corrected(a: AdjustmentResult, b: AdjustmentResult) -> tuple[CorrectedValue, ...]:
@@ -381,10 +383,6 @@ def _corrected(a: AdjustmentResult, b: AdjustmentResult) -> tuple[CorrectedValue
             residual_a=before.residual + sfx, residual_b=row.residual + sfx,
         ))
     return tuple(out)
-
-
-    #: observations checked in A that no test can check in B (redundancy number below 0.001)
-    unchecked: tuple[FlagChange, ...] = ()
 
 
 def shift_unit(length_unit: str) -> tuple[str, float]:

@@ -166,7 +166,7 @@ def test_every_point_and_observation_is_listed(network, network_pdf):
 
 def test_observation_table_repeats_its_header_on_every_page_it_runs_onto(network, network_pdf):
     pages = _pages(network_pdf)
-    header = ("Line Kind Marks Booked (m / D:M:S) Used Adjusted Residual (m / ″) sd (m / ″) r w "
+    header = ("Line Kind Marks Booked (m / D:M:S) Used Residual (m / ″) sd (m / ″) r w "
               "Est. bias (m / ″) MDB")
     with_rows = [i for i, text in enumerate(pages)
                  if re.search(r" \d{2,3} (distance|direction|angle|azimuth) [A-Z]", text)]
