@@ -216,6 +216,14 @@ class RunGone(LookupError):
     """The run to finish no longer exists: its project was deleted while it was adjusted."""
 
 
+class DecisionsChanged(RuntimeError):
+    """A re-run was refused at commit: the decisions changed while it was adjusting."""
+
+
+class AlreadyQueued(ValueError):
+    """The same decision on the same line is already waiting for the next re-run."""
+
+
 class Store:
     """Projects and runs in one SQLite file (WAL mode, one connection per call)."""
 
@@ -382,26 +390,44 @@ class Store:
         result: AdjustmentResult | None = None,
         error: BaseException | str | None = None,
         *,
-        consumed: tuple[int, ...] = (),
+        consumed: tuple[int, ...] | None = None,
     ) -> None:
-        """Complete a running run and drop the pending decisions it used, in one transaction."""
+        """Complete a running run and drop the pending decisions it used, in one transaction.
+
+        ``consumed`` is the queue the run was started with.  A finished re-run commits only
+        if that queue is still exactly the project's queue and no other run finished since
+        the one it was based on; otherwise the run is discarded and ``DecisionsChanged``
+        raised, so a decision undone or added meanwhile is never silently ignored.
+        """
         outcome = _outcome(result, error)
+        change = ""
         with self._write() as db:
-            cursor = db.execute(
-                "UPDATE runs SET status = ?, result = ?, detail = ?, summary = ?, error = ? "
-                "WHERE id = ? AND status = 'running'",
-                (*outcome, run_id),
-            )
-            if cursor.rowcount != 1:
-                if db.execute("SELECT 1 FROM runs WHERE id = ?", (run_id,)).fetchone() is None:
-                    raise RunGone(f"run {run_id} no longer exists; its project was deleted")
+            row = db.execute(
+                "SELECT project_id, status, settings FROM runs WHERE id = ?", (run_id,)
+            ).fetchone()
+            if row is None:
+                raise RunGone(f"run {run_id} no longer exists; its project was deleted")
+            if row[1] != "running":
                 raise ValueError(f"run {run_id} is not running")
-            for edit_id in consumed:
+            project_id = row[0]
+            if result is not None and consumed is not None:
+                change = _queue_change(db, project_id, run_id, _loads(row[2]) or {}, consumed)
+            if change:  # discarded, so it does not stay behind as an interrupted run
+                db.execute("DELETE FROM runs WHERE id = ?", (run_id,))
+            else:
                 db.execute(
-                    "DELETE FROM pending_edits WHERE id = ? AND project_id = "
-                    "(SELECT project_id FROM runs WHERE id = ?)",
-                    (edit_id, run_id),
+                    "UPDATE runs SET status = ?, result = ?, detail = ?, summary = ?, error = ? "
+                    "WHERE id = ?",
+                    (*outcome, run_id),
                 )
+                for edit_id in consumed or ():
+                    db.execute("DELETE FROM pending_edits WHERE id = ? AND project_id = ?",
+                               (edit_id, project_id))
+        if change:
+            raise DecisionsChanged(
+                f"The decisions changed while this re-run was adjusting ({change}); "
+                "nothing was stored. Check the decisions and re-run again."
+            )
 
     def latest_run(self, project_id: str, *, finished: bool = False) -> Run | None:
         """The most recent completed run (or finished one) with its full result dump, or None.
@@ -447,9 +473,33 @@ class Store:
 
     # -- decisions waiting for a re-run ---------------------------------------------
 
-    def add_pending_edit(self, project_id: str, edit: dict[str, Any]) -> int:
-        """Queue a decision (a JSON object) for the project's next re-run."""
+    def add_pending_edit(
+        self, project_id: str, edit: dict[str, Any], *, based_on: int | None = None
+    ) -> int:
+        """Queue a decision (a JSON object) for the project's next re-run.
+
+        Checked and inserted in one transaction: ``AlreadyQueued`` when the same decision
+        on the same line is already waiting (two clients leaving out the same line give
+        one decision), ``DecisionsChanged`` when ``based_on`` is given and is no longer the
+        project's latest finished run (the decision was checked against an older state).
+        """
+        key = _decision_key(edit)
         with self._write() as db:
+            if based_on is not None:
+                (latest,) = db.execute(
+                    "SELECT MAX(id) FROM runs WHERE project_id = ? AND status = 'finished'",
+                    (project_id,)).fetchone()
+                if latest != based_on:
+                    raise DecisionsChanged(
+                        "A re-run finished while this decision was made; "
+                        "reload the page and decide again on the new run.")
+            for (text,) in db.execute(
+                "SELECT edit FROM pending_edits WHERE project_id = ?", (project_id,)
+            ):
+                if _decision_key(json.loads(text)) == key:
+                    where = f"line {edit['line']}: t" if edit.get("line") else "T"
+                    raise AlreadyQueued(
+                        f"{where}he same decision is already queued for the next re-run.")
             cursor = db.execute(
                 "INSERT INTO pending_edits (project_id, created, edit) VALUES (?, ?, ?)",
                 (project_id, _now(), json.dumps(edit)),
@@ -485,6 +535,33 @@ _RUN_COLUMNS = (
     "id, project_id, created, status, result, error, detail, summary, settings, "
     "(SELECT COUNT(*) FROM runs n WHERE n.project_id = runs.project_id AND n.id <= runs.id)"
 )
+
+
+def _decision_key(edit: Any) -> tuple[Any, ...]:
+    """What makes two decisions the same (who wrote it, why and when do not)."""
+    if not isinstance(edit, dict):
+        return (repr(edit),)
+    return tuple(json.dumps(edit.get(k), sort_keys=True)
+                 for k in ("line", "action", "sd", "value", "pairs"))
+
+
+def _queue_change(db: sqlite3.Connection, project_id: str, run_id: int,
+                  settings: dict[str, Any], consumed: tuple[int, ...]) -> str:
+    """Why a re-run started with queue ``consumed`` may no longer commit ('' when it may)."""
+    queued = {r[0] for r in db.execute(
+        "SELECT id FROM pending_edits WHERE project_id = ?", (project_id,))}
+    if set(consumed) - queued:
+        return "a decision it used was undone or applied by another re-run"
+    if queued - set(consumed):
+        return "a decision was queued after it started"
+    based_on = settings.get("based_on")
+    if based_on is not None:
+        (latest,) = db.execute(
+            "SELECT MAX(id) FROM runs WHERE project_id = ? AND status = 'finished' AND id != ?",
+            (project_id, run_id)).fetchone()
+        if latest != based_on:
+            return "another re-run finished first"
+    return ""
 
 
 def _run(row: tuple[Any, ...]) -> Run:
