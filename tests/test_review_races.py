@@ -9,6 +9,8 @@ must give one queued decision, the second told it is already queued.
 
 from __future__ import annotations
 
+import dataclasses
+import json
 import re
 import threading
 import warnings
@@ -237,3 +239,54 @@ def test_concurrent_posts_leaving_out_one_line_queue_it_once(app, client, projec
     assert sorted(codes)[-1] != 500 and len(codes) == 4
     assert codes.count(303) == 1  # one accepted, the others told it is already queued
     assert [p.edit["line"] for p in app.state.store.pending_edits(project)] == [FIRST]
+
+
+# ---------------------------------------------------------------------------------------
+# results stored compactly
+
+
+def _database_bytes(store: Store) -> int:
+    import sqlite3
+    from contextlib import closing
+
+    with closing(sqlite3.connect(store.path)) as raw:
+        raw.execute("PRAGMA wal_checkpoint(TRUNCATE)")  # count what the file really holds
+    return sum(f.stat().st_size for f in store.path.parent.iterdir())
+
+
+def test_a_rerun_of_a_large_field_book_adds_a_few_times_its_size_not_thirty(tmp_path):
+    from bench.networks import leveling
+
+    text = leveling(1500)  # about 1,600 observations, 59 KB
+    result = adjust_fieldbook(text)
+    store = Store(tmp_path / "store.sqlite3")
+    project_id = store.create_project("big", "big.fieldbook", text)
+    store.add_run(project_id, result=result)
+    before = _database_bytes(store)
+    run_id = store.start_run(project_id, {"edits": [], "based_on": None})
+    store.finish_run(run_id, result=result, consumed=())
+    growth = _database_bytes(store) - before
+    # stored as JSON text a run took about 34 times the field book; compressed about 5.4
+    assert growth < 8 * len(text.encode())
+    stored = store.run(project_id, run_id)
+    assert stored.result() == result  # nothing lost: the pages rebuild the same result
+    assert stored.result_json == json.loads(json.dumps(result.to_json_dict()))
+
+
+def test_runs_stored_as_json_text_before_compression_are_still_read(store_project):
+    import sqlite3
+    from contextlib import closing
+
+    store, project_id, base = store_project
+    result = adjust_fieldbook(TEXT)
+    contract = json.dumps(result.to_json_dict())
+    detail = json.dumps(dataclasses.asdict(result))
+    with closing(sqlite3.connect(store.path)) as raw:  # a row as the earlier version wrote it
+        raw.execute("INSERT INTO runs (project_id, created, status, result, detail, summary, "
+                    "settings) VALUES (?, '2026-01-01T00:00:00+00:00', 'finished', ?, ?, "
+                    "'{}', '{\"edits\": []}')", (project_id, contract, detail))
+        raw.commit()
+    old = store.latest_run(project_id)
+    assert old.id != base and old.result() == result
+    assert old.result_json == json.loads(contract)
+    assert [r.result_json == json.loads(contract) for r in store.runs(project_id)] == [True, True]
