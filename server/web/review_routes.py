@@ -7,8 +7,9 @@ original upload, is stored as ``running`` first and finished in one
 transaction, which refuses it when the queue changed meanwhile (a decision
 undone or added by another client), so a re-run never applies a decision the
 surveyor was told is withdrawn.  Queuing a decision checks for the same
-decision already queued in the transaction that inserts it.  Every form that changes something carries the project's form
-token and is refused when the browser says it came from another site.
+decision already queued in the transaction that inserts it.  Every form that
+changes something carries the project's form token and is refused when the
+browser says it came from another site.
 """
 
 from __future__ import annotations
