@@ -290,3 +290,19 @@ def test_runs_stored_as_json_text_before_compression_are_still_read(store_projec
     assert old.id != base and old.result() == result
     assert old.result_json == json.loads(contract)
     assert [r.result_json == json.loads(contract) for r in store.runs(project_id)] == [True, True]
+
+
+def test_undoing_a_decision_another_clients_rerun_already_applied_says_so(app, client, project):
+    token = _token(client, project)
+    assert _decide(client, project, FIRST, token).status_code == 303
+    store: Store = app.state.store
+    (queued,) = store.pending_edits(project)
+    rerun = client.post(f"/projects/{project}/runs", data={"token": token},
+                        follow_redirects=False)
+    assert rerun.status_code == 303  # the other client's re-run applied the decision
+    response = client.post(f"/projects/{project}/edits/{queued.id}/undo",
+                           data={"token": token}, follow_redirects=False)
+    assert response.status_code == 409
+    assert "This decision is no longer queued: a re-run has already applied it" in (
+        re.sub(r"\s+", " ", response.text))
+    assert _observation(client, project, FIRST)["ignored"] is True  # still in force, as shown

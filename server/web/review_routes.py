@@ -419,9 +419,18 @@ async def undo_edit(request: Request, project_id: str, edit_id: RowId) -> Respon
     project = _project_or_404(store, project_id)
     form = await _read_form(request)
     _check_form(request, project, form)
-    store.remove_pending_edit(project.id, edit_id)
     suggest = _text(form, "back", 20) == "suggest"
     rejected = _rejected([v for v in form.getlist("reject") if isinstance(v, str)])
+    if not await run_in_threadpool(store.remove_pending_edit, project.id, edit_id):
+        # another client's re-run applied it, or it was already withdrawn: never say "done"
+        state = await run_in_threadpool(_load_state, store, project)
+        problem = ("This decision is no longer queued: a re-run has already applied it, or it "
+                   "was withdrawn. The decisions in force are listed below; to reverse one, "
+                   "make a new decision on its line.")
+        context = await run_in_threadpool(
+            lambda: _review_context(request, state, suggest=suggest, rejected=rejected,
+                                    problem=problem))
+        return _render(request, "review.html", context, status=409)
     return RedirectResponse(_review_url(project.id, suggest=suggest, rejected=rejected,
                                         anchor="decisions"), status_code=303)
 
