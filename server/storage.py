@@ -9,7 +9,10 @@ nothing the surveyor sent is lost.
 A finished run keeps three JSON documents: the contract JSON
 (``AdjustmentResult.to_json_dict()``), which the API serves unchanged; a full
 dump of the result object, from which the pages and reports are rebuilt
-without adjusting again; and a small summary for project lists.
+without adjusting again; and a small summary for project lists.  The two
+large ones are stored zlib-compressed (BLOBs); runs stored before that keep
+their JSON text and are read as they are.  Edited field books are never
+stored: they are the upload with the run's decisions written in.
 
 Every run also keeps its settings (``{"edits": [...]}``: the surveyor's
 decisions in force, each a JSON object).  A re-run is stored as ``running``
@@ -27,6 +30,7 @@ import re
 import secrets
 import sqlite3
 import uuid
+import zlib
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -216,6 +220,14 @@ class RunGone(LookupError):
     """The run to finish no longer exists: its project was deleted while it was adjusted."""
 
 
+class DecisionsChanged(RuntimeError):
+    """A re-run was refused at commit: the decisions changed while it was adjusting."""
+
+
+class AlreadyQueued(ValueError):
+    """The same decision on the same line is already waiting for the next re-run."""
+
+
 class Store:
     """Projects and runs in one SQLite file (WAL mode, one connection per call)."""
 
@@ -382,26 +394,44 @@ class Store:
         result: AdjustmentResult | None = None,
         error: BaseException | str | None = None,
         *,
-        consumed: tuple[int, ...] = (),
+        consumed: tuple[int, ...] | None = None,
     ) -> None:
-        """Complete a running run and drop the pending decisions it used, in one transaction."""
+        """Complete a running run and drop the pending decisions it used, in one transaction.
+
+        ``consumed`` is the queue the run was started with.  A finished re-run commits only
+        if that queue is still exactly the project's queue and no other run finished since
+        the one it was based on; otherwise the run is discarded and ``DecisionsChanged``
+        raised, so a decision undone or added meanwhile is never silently ignored.
+        """
         outcome = _outcome(result, error)
+        change = ""
         with self._write() as db:
-            cursor = db.execute(
-                "UPDATE runs SET status = ?, result = ?, detail = ?, summary = ?, error = ? "
-                "WHERE id = ? AND status = 'running'",
-                (*outcome, run_id),
-            )
-            if cursor.rowcount != 1:
-                if db.execute("SELECT 1 FROM runs WHERE id = ?", (run_id,)).fetchone() is None:
-                    raise RunGone(f"run {run_id} no longer exists; its project was deleted")
+            row = db.execute(
+                "SELECT project_id, status, settings FROM runs WHERE id = ?", (run_id,)
+            ).fetchone()
+            if row is None:
+                raise RunGone(f"run {run_id} no longer exists; its project was deleted")
+            if row[1] != "running":
                 raise ValueError(f"run {run_id} is not running")
-            for edit_id in consumed:
+            project_id = row[0]
+            if result is not None and consumed is not None:
+                change = _queue_change(db, project_id, run_id, _loads(row[2]) or {}, consumed)
+            if change:  # discarded, so it does not stay behind as an interrupted run
+                db.execute("DELETE FROM runs WHERE id = ?", (run_id,))
+            else:
                 db.execute(
-                    "DELETE FROM pending_edits WHERE id = ? AND project_id = "
-                    "(SELECT project_id FROM runs WHERE id = ?)",
-                    (edit_id, run_id),
+                    "UPDATE runs SET status = ?, result = ?, detail = ?, summary = ?, error = ? "
+                    "WHERE id = ?",
+                    (*outcome, run_id),
                 )
+                for edit_id in consumed or ():
+                    db.execute("DELETE FROM pending_edits WHERE id = ? AND project_id = ?",
+                               (edit_id, project_id))
+        if change:
+            raise DecisionsChanged(
+                f"The decisions changed while this re-run was adjusting ({change}); "
+                "nothing was stored. Check the decisions and re-run again."
+            )
 
     def latest_run(self, project_id: str, *, finished: bool = False) -> Run | None:
         """The most recent completed run (or finished one) with its full result dump, or None.
@@ -447,9 +477,33 @@ class Store:
 
     # -- decisions waiting for a re-run ---------------------------------------------
 
-    def add_pending_edit(self, project_id: str, edit: dict[str, Any]) -> int:
-        """Queue a decision (a JSON object) for the project's next re-run."""
+    def add_pending_edit(
+        self, project_id: str, edit: dict[str, Any], *, based_on: int | None = None
+    ) -> int:
+        """Queue a decision (a JSON object) for the project's next re-run.
+
+        Checked and inserted in one transaction: ``AlreadyQueued`` when the same decision
+        on the same line is already waiting (two clients leaving out the same line give
+        one decision), ``DecisionsChanged`` when ``based_on`` is given and is no longer the
+        project's latest finished run (the decision was checked against an older state).
+        """
+        key = _decision_key(edit)
         with self._write() as db:
+            if based_on is not None:
+                (latest,) = db.execute(
+                    "SELECT MAX(id) FROM runs WHERE project_id = ? AND status = 'finished'",
+                    (project_id,)).fetchone()
+                if latest != based_on:
+                    raise DecisionsChanged(
+                        "A re-run finished while this decision was made; "
+                        "reload the page and decide again on the new run.")
+            for (text,) in db.execute(
+                "SELECT edit FROM pending_edits WHERE project_id = ?", (project_id,)
+            ):
+                if _decision_key(json.loads(text)) == key:
+                    where = f"line {edit['line']}: t" if edit.get("line") else "T"
+                    raise AlreadyQueued(
+                        f"{where}he same decision is already queued for the next re-run.")
             cursor = db.execute(
                 "INSERT INTO pending_edits (project_id, created, edit) VALUES (?, ?, ?)",
                 (project_id, _now(), json.dumps(edit)),
@@ -487,6 +541,33 @@ _RUN_COLUMNS = (
 )
 
 
+def _decision_key(edit: Any) -> tuple[Any, ...]:
+    """What makes two decisions the same (who wrote it, why and when do not)."""
+    if not isinstance(edit, dict):
+        return (repr(edit),)
+    return tuple(json.dumps(edit.get(k), sort_keys=True)
+                 for k in ("line", "action", "sd", "value", "pairs"))
+
+
+def _queue_change(db: sqlite3.Connection, project_id: str, run_id: int,
+                  settings: dict[str, Any], consumed: tuple[int, ...]) -> str:
+    """Why a re-run started with queue ``consumed`` may no longer commit ('' when it may)."""
+    queued = {r[0] for r in db.execute(
+        "SELECT id FROM pending_edits WHERE project_id = ?", (project_id,))}
+    if set(consumed) - queued:
+        return "a decision it used was undone or applied by another re-run"
+    if queued - set(consumed):
+        return "a decision was queued after it started"
+    based_on = settings.get("based_on")
+    if based_on is not None:
+        (latest,) = db.execute(
+            "SELECT MAX(id) FROM runs WHERE project_id = ? AND status = 'finished' AND id != ?",
+            (project_id, run_id)).fetchone()
+        if latest != based_on:
+            return "another re-run finished first"
+    return ""
+
+
 def _run(row: tuple[Any, ...]) -> Run:
     """A ``Run`` from a row selected with ``_RUN_COLUMNS``."""
     return Run(id=row[0], project_id=row[1], created=row[2], status=row[3],
@@ -510,12 +591,27 @@ def _outcome(
     summary["uncontrolled"] = sum(
         1 for o in result.observations if not o.ignored and o.redundancy is not None and o.w is None
     )
-    return ("finished", json.dumps(contract), json.dumps(dataclasses.asdict(result)),
+    return ("finished", _pack(contract), _pack(dataclasses.asdict(result)),
             json.dumps(summary), None)
 
 
-def _loads(text: str | None) -> dict[str, Any] | None:
-    return None if text is None else json.loads(text)
+def _pack(data: dict[str, Any]) -> bytes:
+    """A large JSON document stored compactly: zlib-compressed UTF-8, kept as a BLOB.
+
+    Results are mostly numbers and repeated keys; compressed they take about a sixth
+    of the space (a re-run of a 360 KB field book: 12.2 MB as text, 2 MB compressed).
+    """
+    return zlib.compress(json.dumps(data, separators=(",", ":")).encode("utf-8"), 6)
+
+
+def _loads(value: str | bytes | None) -> dict[str, Any] | None:
+    """A stored JSON column: text (summaries, settings, runs stored before compression)
+    or a zlib BLOB written by ``_pack``; the storage type tells them apart."""
+    if value is None:
+        return None
+    if isinstance(value, bytes):
+        value = zlib.decompress(value).decode("utf-8")
+    return json.loads(value)  # type: ignore[no-any-return]
 
 
 def _result_from_detail(data: dict[str, Any]) -> AdjustmentResult:

@@ -20,6 +20,7 @@ from .. import review
 from ..edits import MAX_PAIRS, ObservationEdit, apply_edits, clean_reason
 from ..errors import SurveyError
 from ..result import AdjustmentResult
+from ..storage import AlreadyQueued
 from .review_routes import _check_form, _load_state, _render, _store, _today
 from .routes import _project_or_404, display_name
 
@@ -135,6 +136,13 @@ async def ask_relative_pairs(request: Request, project_id: str) -> Response:
             "name": display_name(project.name, project.filename),
             "message": message,
         }, status=422)
-    store.add_pending_edit(project.id, review.edit_to_json(edit))
+    try:
+        await run_in_threadpool(store.add_pending_edit, project.id, review.edit_to_json(edit))
+    except AlreadyQueued as exc:
+        return _render(request, "relative_refused.html", {
+            "project": project,
+            "name": display_name(project.name, project.filename),
+            "message": str(exc),
+        }, status=409)
     return RedirectResponse(f"/projects/{project.id}/review#decisions", status_code=303)
 

@@ -4,8 +4,12 @@ The review works on the project's latest finished run.  Decisions are queued
 (stored, so closing the browser loses nothing) until the surveyor re-runs;
 a re-run applies every decision in force plus the queued ones to the
 original upload, is stored as ``running`` first and finished in one
-transaction.  Every form that changes something carries the project's form
-token and is refused when the browser says it came from another site.
+transaction, which refuses it when the queue changed meanwhile (a decision
+undone or added by another client), so a re-run never applies a decision the
+surveyor was told is withdrawn.  Queuing a decision checks for the same
+decision already queued in the transaction that inserts it.  Every form that
+changes something carries the project's form token and is refused when the
+browser says it came from another site.
 """
 
 from __future__ import annotations
@@ -41,7 +45,7 @@ from ..report import ARCSEC, columns, fmt_ratio, length_label, verdict
 from ..result import AdjustmentResult
 from ..robust import HUBER_K, RobustResult, robust_adjustment
 from ..snooping import SnoopingPlan, propose_snooping
-from ..storage import PendingEdit, Project, Run, Store
+from ..storage import AlreadyQueued, DecisionsChanged, PendingEdit, Project, Run, Store
 from ..tau_test import tau_test
 from .routes import RowId, _attachment, _download_name, _project_or_404, display_name
 
@@ -390,12 +394,19 @@ async def queue_edit(request: Request, project_id: str) -> Response:
                                     source=project.filename)
         except SurveyError as exc:
             message = str(exc)
+    status = 422
+    if not message:
+        try:  # checked again and inserted in one transaction: another client may be deciding
+            await run_in_threadpool(store.add_pending_edit, project.id, review.edit_to_json(edit),
+                                    based_on=state.base.id if state.base else None)
+        except (AlreadyQueued, DecisionsChanged) as exc:
+            message, status = str(exc), 409
+            state = await run_in_threadpool(_load_state, store, project)
     if message:
         context = await run_in_threadpool(
             lambda: _review_context(request, state, suggest=suggest, rejected=rejected,
                                     errors={line: message}, values={line: values}))
-        return _render(request, "review.html", context, status=422)
-    store.add_pending_edit(project.id, review.edit_to_json(edit))
+        return _render(request, "review.html", context, status=status)
     anchor = "snooping" if suggest else f"line-{line}"
     return RedirectResponse(_review_url(project.id, suggest=suggest, rejected=rejected,
                                         anchor=anchor), status_code=303)
@@ -408,9 +419,18 @@ async def undo_edit(request: Request, project_id: str, edit_id: RowId) -> Respon
     project = _project_or_404(store, project_id)
     form = await _read_form(request)
     _check_form(request, project, form)
-    store.remove_pending_edit(project.id, edit_id)
     suggest = _text(form, "back", 20) == "suggest"
     rejected = _rejected([v for v in form.getlist("reject") if isinstance(v, str)])
+    if not await run_in_threadpool(store.remove_pending_edit, project.id, edit_id):
+        # another client's re-run applied it, or it was already withdrawn: never say "done"
+        state = await run_in_threadpool(_load_state, store, project)
+        problem = ("This decision is no longer queued: a re-run has already applied it, or it "
+                   "was withdrawn. The decisions in force are listed below; to reverse one, "
+                   "make a new decision on its line.")
+        context = await run_in_threadpool(
+            lambda: _review_context(request, state, suggest=suggest, rejected=rejected,
+                                    problem=problem))
+        return _render(request, "review.html", context, status=409)
     return RedirectResponse(_review_url(project.id, suggest=suggest, rejected=rejected,
                                         anchor="decisions"), status_code=303)
 
@@ -441,6 +461,7 @@ def _rerun(store: Store, state: ReviewState) -> tuple[int | None, str]:
     except Exception:
         store.finish_run(run_id, error="the adjustment stopped unexpectedly")
         raise
+    # refused (DecisionsChanged) unless the queue is still exactly the one read above
     store.finish_run(run_id, result=result, consumed=tuple(p.id for p in state.pending))
     return run_id, ""
 
@@ -455,10 +476,15 @@ async def rerun(request: Request, project_id: str) -> Response:
     state = await run_in_threadpool(_load_state, store, project)
     if state.base is None or not state.pending:
         return RedirectResponse(_review_url(project.id), status_code=303)
-    run_id, problem = await run_in_threadpool(_rerun, store, state)
+    status = 422
+    try:
+        run_id, problem = await run_in_threadpool(_rerun, store, state)
+    except DecisionsChanged as exc:  # another client undid or queued a decision meanwhile
+        run_id, problem, status = None, str(exc), 409
+        state = await run_in_threadpool(_load_state, store, project)
     if problem:
         context = await run_in_threadpool(lambda: _review_context(request, state, problem=problem))
-        return _render(request, "review.html", context, status=422)
+        return _render(request, "review.html", context, status=status)
     new = store.run(project.id, run_id) if run_id is not None else None
     if new is None or not new.finished:
         return RedirectResponse(_review_url(project.id), status_code=303)
