@@ -8,6 +8,7 @@ from collections.abc import Collection
 from datetime import datetime
 from pathlib import Path
 from typing import Any
+from urllib.parse import urlsplit
 
 import jinja2
 from fastapi import FastAPI, Request
@@ -138,6 +139,84 @@ class HeadAsGetMiddleware:
             await send(message)
 
         await self.app({**scope, "method": "GET"}, receive, send_headers_only)
+
+
+#: Methods that change what is stored; only these are checked for another site's origin.
+UNSAFE_METHODS = frozenset({"POST", "PUT", "PATCH", "DELETE"})
+#: ``Sec-Fetch-Site`` values a browser sends for a request its own page (or the user) made.
+OWN_FETCH_SITES = frozenset({"same-origin", "none"})
+_DEFAULT_PORTS = {"http": "80", "https": "443"}
+FOREIGN_ORIGIN_MESSAGE = (
+    "This request was sent by a page of another site, so it was refused and nothing was "
+    "stored. Open Stationfit's own page and send it from there; scripts can call the API "
+    "directly."
+)
+
+
+def _host_and_port(netloc: str, scheme: str) -> str:
+    """``host:port`` in lower case, the scheme's default port written out."""
+    netloc = netloc.strip().lower()
+    if netloc.startswith("["):  # an IPv6 literal: the port follows the bracket
+        host, _, rest = netloc.partition("]")
+        host, port = host + "]", rest[1:] if rest.startswith(":") else ""
+    else:
+        host, _, port = netloc.partition(":")
+    return f"{host}:{port or _DEFAULT_PORTS.get(scheme, '')}"
+
+
+def foreign_origin(headers: Headers) -> bool:
+    """True when the browser's headers say another origin sent this request.
+
+    ``Sec-Fetch-Site`` other than same-origin or none (typed address, bookmark) means
+    another site, or another port or sub-domain of this one (``same-site``, still a
+    different origin).  An ``Origin`` header must name this service's own host and
+    port; ``Origin: null`` (a sandboxed frame, a file, a redirect) names no site and is
+    refused.  No header at all is a script or an old browser: allowed, because a
+    browser that sends neither cannot be driven by another site's page today.
+    The scheme is not compared: behind a proxy that terminates TLS the service sees
+    ``http`` while the page was ``https``.
+    """
+    site = headers.get("sec-fetch-site")
+    if site is not None and site.strip().lower() not in OWN_FETCH_SITES:
+        return True
+    origin = headers.get("origin")
+    if origin is None:
+        return False
+    parts = urlsplit(origin.strip())
+    if not parts.scheme or not parts.netloc:
+        return True  # "null" or something no browser sends for a real page
+    own_host = headers.get("host", "")
+    return _host_and_port(parts.netloc, parts.scheme) != _host_and_port(own_host, parts.scheme)
+
+
+class SameOriginMiddleware:
+    """Refuse (403) every POST, PUT, PATCH and DELETE that another site's page sent.
+
+    One check in front of every route: an upload, a demo, the API and the review
+    forms alike, before anything reads the body or touches the store.  Reading
+    requests are never refused.  The review forms keep their per-project tokens too.
+    """
+
+    def __init__(self, app: ASGIApp, templates: Jinja2Templates) -> None:
+        self.app = app
+        self.templates = templates
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if (scope["type"] != "http" or scope["method"] not in UNSAFE_METHODS
+                or not foreign_origin(Headers(scope=scope))):
+            await self.app(scope, receive, send)
+            return
+        headers = Headers(scope=scope)
+        logger.warning("refused %s %s from another site (Origin %r, Sec-Fetch-Site %r)",
+                       scope["method"], scope.get("path", ""), headers.get("origin"),
+                       headers.get("sec-fetch-site"))
+        response: Response
+        if is_api(scope.get("path", "")):
+            response = JSONResponse({"error": FOREIGN_ORIGIN_MESSAGE}, status_code=403)
+        else:
+            response = _error_page(self.templates, scope, 403, "Request refused (403)",
+                                   FOREIGN_ORIGIN_MESSAGE)
+        await response(scope, receive, send)
 
 
 class _BodyTooLarge(Exception):
@@ -380,6 +459,8 @@ def create_app(
     app.include_router(relative_routes.router)
     _install_handlers(app, templates)
     app.add_middleware(UploadLimitMiddleware, max_bytes=max_upload_bytes, templates=templates)
+    # Before the upload limit, so another site's request is refused without reading its body.
+    app.add_middleware(SameOriginMiddleware, templates=templates)
     # Pages, JSON and CSV compress to a tenth or less when the browser accepts gzip.
     app.add_middleware(GZipMiddleware, minimum_size=GZIP_MINIMUM_BYTES, compresslevel=GZIP_LEVEL,
                        exclude_content_types=GZIP_EXCLUDED)
