@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import logging
 import os
+import sqlite3
 from collections.abc import Collection
 from datetime import datetime
 from pathlib import Path
@@ -169,12 +170,13 @@ def foreign_origin(headers: Headers) -> bool:
 
     ``Sec-Fetch-Site`` other than same-origin or none (typed address, bookmark) means
     another site, or another port or sub-domain of this one (``same-site``, still a
-    different origin).  An ``Origin`` header must name this service's own host and
-    port; ``Origin: null`` (a sandboxed frame, a file, a redirect) names no site and is
-    refused.  No header at all is a script or an old browser: allowed, because a
-    browser that sends neither cannot be driven by another site's page today.
-    The scheme is not compared: behind a proxy that terminates TLS the service sees
-    ``http`` while the page was ``https``.
+    different origin).  An ``Origin`` naming a site must name this service's own host
+    and port.  ``Origin: null`` (a sandboxed frame, a local file) is refused unless
+    ``Sec-Fetch-Site`` vouches for the request: the pages' ``Referrer-Policy:
+    no-referrer`` makes Chromium send ``null`` for the service's own forms too.  No
+    header at all is a script or a very old browser: allowed.  The scheme is not
+    compared: behind a proxy that terminates TLS the service sees ``http`` while the
+    page was ``https``.
     """
     site = headers.get("sec-fetch-site")
     if site is not None and site.strip().lower() not in OWN_FETCH_SITES:
@@ -184,7 +186,7 @@ def foreign_origin(headers: Headers) -> bool:
         return False
     parts = urlsplit(origin.strip())
     if not parts.scheme or not parts.netloc:
-        return True  # "null" or something no browser sends for a real page
+        return site is None  # "null", or something no browser sends for a real page
     own_host = headers.get("host", "")
     return _host_and_port(parts.netloc, parts.scheme) != _host_and_port(own_host, parts.scheme)
 
@@ -338,6 +340,26 @@ def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
             return JSONResponse({"error": message}, status_code=404)
         return _error_page(templates, request.scope, 404, "Not found", message)
 
+    @app.exception_handler(sqlite3.Error)
+    async def storage_error(request: Request, exc: sqlite3.Error) -> Response:
+        """The project store cannot be read or written: say so, and name the folder in the log."""
+        folder = request.app.state.store.path.parent
+        logger.error("%s %s: the data folder %s cannot be used (%s); check that it exists, "
+                     "that the service's user may write to it and that the disk has room",
+                     request.method, request.url.path, folder, exc)
+        if request.method in UNSAFE_METHODS:
+            message = ("Your request could not be stored: the service cannot write to its "
+                       "data folder. Nothing was saved. Please tell the administrator; the "
+                       "service's log names the folder and the reason.")
+        else:
+            message = ("The stored projects cannot be read right now: the service cannot use "
+                       "its data folder. Please tell the administrator; the service's log "
+                       "names the folder and the reason.")
+        if is_api(request.url.path):
+            return JSONResponse({"error": message}, status_code=503)
+        return _error_page(templates, request.scope, 503, "The project store is unavailable",
+                           message)
+
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request: Request, exc: StarletteHTTPException) -> Response:
         """404, 405, 400 and friends."""
@@ -365,8 +387,13 @@ def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
     async def server_error(request: Request, exc: Exception) -> Response:
         """The generic 500: logged on the server, never shown to the user."""
         logger.error("unhandled error on %s %s", request.method, request.url.path, exc_info=exc)
-        message = ("Something went wrong on the server. Your field book was not changed; "
-                   "please try again, and report the problem if it persists.")
+        if request.method in UNSAFE_METHODS:
+            message = ("Something went wrong on the server before this request was finished. "
+                       "Check the project list to see whether it was stored, then try again; "
+                       "report the problem if it persists.")
+        else:
+            message = ("Something went wrong on the server. Nothing was changed; please try "
+                       "again, and report the problem if it persists.")
         response: Response
         if is_api(request.url.path):
             response = JSONResponse({"error": "internal server error"}, status_code=500)
