@@ -459,7 +459,7 @@ def create_app(
     else the defaults (docs/security.md).  ``allowed_hosts`` (None: any) are the Host
     names answered; ``python -m server serve`` passes ``serve_allowed_hosts``.
     """
-    from . import relative_routes, review_routes, routes
+    from . import interrupted_routes, relative_routes, review_routes, routes
 
     if max_upload_bytes is None:
         max_upload_bytes = _env_int("STATIONFIT_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES)
@@ -475,6 +475,12 @@ def create_app(
     )
     templates = make_templates()
     app.state.store = Store(Path(data_dir) / DATABASE_NAME)
+    # This process has not started any run yet: one still ``running`` was cut off.
+    interrupted = app.state.store.mark_interrupted()
+    if interrupted:
+        logger.warning("runs %s were interrupted when the service last stopped; stored as "
+                       "interrupted (each can be re-run from its project's page)",
+                       ", ".join(map(str, interrupted)))
     app.state.templates = templates
     app.state.max_upload_bytes = max_upload_bytes
     app.state.max_projects = max_projects
@@ -484,6 +490,7 @@ def create_app(
     app.include_router(routes.router)
     app.include_router(review_routes.router)
     app.include_router(relative_routes.router)
+    app.include_router(interrupted_routes.router)
     _install_handlers(app, templates)
     app.add_middleware(UploadLimitMiddleware, max_bytes=max_upload_bytes, templates=templates)
     # Before the upload limit, so another site's request is refused without reading its body.
