@@ -478,7 +478,7 @@ def create_app(
     # This process has not started any run yet: one still ``running`` was cut off.
     interrupted = app.state.store.mark_interrupted()
     if interrupted:
-        logger.warning("runs %s were interrupted when the service last stopped; stored as "
+        logger.warning("the service stopped before finishing run(s) %s; stored as "
                        "interrupted (each can be re-run from its project's page)",
                        ", ".join(map(str, interrupted)))
     app.state.templates = templates
