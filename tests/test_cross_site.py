@@ -112,7 +112,8 @@ def test_review_forms_and_deletion_from_another_site_are_refused(client):
         response = client.post(path, data=data, headers=foreign, follow_redirects=False)
         assert response.status_code == 403, (path, response.status_code)
     for method in ("PUT", "PATCH", "DELETE"):  # refused before any route is looked up
-        assert client.request(method, f"/api/projects/{project}", headers=foreign).status_code == 403
+        response = client.request(method, f"/api/projects/{project}", headers=foreign)
+        assert response.status_code == 403, method
     assert [p["id"] for p in client.get("/api/projects").json()["projects"]] == [project]
     review = client.get(f"/projects/{project}/review").text
     assert "Queued: " not in review  # the decision was not queued
