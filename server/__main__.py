@@ -8,6 +8,7 @@ plain sentences, never as a traceback.
 from __future__ import annotations
 
 import argparse
+import sqlite3
 import sys
 from pathlib import Path
 
@@ -15,6 +16,8 @@ from .errors import FieldbookError, NetworkError
 from .json_output import dumps_indented
 
 EXIT_OK, EXIT_FIELDBOOK, EXIT_NETWORK, EXIT_USAGE = 0, 2, 3, 64
+#: ``serve`` cannot open or create its data folder (sysexits' EX_CANTCREAT).
+EXIT_DATA = 73
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -118,9 +121,16 @@ def _serve(host: str, port: int, data: Path | None) -> int:
     from .web.app import create_app, serve_allowed_hosts
 
     data_dir = data if data is not None else default_data_dir()
-    data_dir.mkdir(parents=True, exist_ok=True)
+    try:
+        data_dir.mkdir(parents=True, exist_ok=True)
+        app = create_app(data_dir, allowed_hosts=serve_allowed_hosts(host))
+    except (OSError, sqlite3.Error, RuntimeError) as exc:
+        # one line for the administrator: which folder, and what the system said
+        reason = getattr(exc, "strerror", None) or str(exc)
+        print(f"Stationfit: cannot use the data folder {data_dir}: {reason}. Give --data a "
+              "folder the service may write to, or fix this one.", file=sys.stderr)
+        return EXIT_DATA
     print(f"Stationfit: projects are stored in {data_dir}; open http://{host}:{port}/", file=sys.stderr)
-    app = create_app(data_dir, allowed_hosts=serve_allowed_hosts(host))
     uvicorn.run(app, host=host, port=port, log_level="warning")
     return EXIT_OK
 

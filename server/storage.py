@@ -17,7 +17,9 @@ stored: they are the upload with the run's decisions written in.
 Every run also keeps its settings (``{"edits": [...]}``: the surveyor's
 decisions in force, each a JSON object).  A re-run is stored as ``running``
 first and finished in one later transaction, so a run interrupted by a crash
-stays marked as not finished and never touches the runs before it.
+stays marked as not finished and never touches the runs before it; the
+service's next start stores it as ``interrupted`` (``Store.mark_interrupted``),
+and the surveyor can re-run it with the same decisions.
 Decisions queued for the next re-run are kept in ``pending_edits``.
 """
 
@@ -51,7 +53,7 @@ from .result import (
     Summary,
 )
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 _ID_RE = re.compile(r"^[0-9a-f]{32}$")
 #: Settings of a run made without any decision (an upload as it is).
 NO_EDITS: dict[str, Any] = {"edits": []}
@@ -61,7 +63,8 @@ CREATE TABLE {name} (
     id         INTEGER PRIMARY KEY AUTOINCREMENT,
     project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
     created    TEXT NOT NULL,
-    status     TEXT NOT NULL CHECK (status IN ('running', 'finished', 'failed')),
+    status     TEXT NOT NULL
+               CHECK (status IN ('running', 'finished', 'failed', 'interrupted')),
     result     TEXT,
     detail     TEXT,
     summary    TEXT,
@@ -107,6 +110,22 @@ _MIGRATE_1_TO_2 = (
     _SCHEMA[3],
     _SCHEMA[4],
 )
+
+#: Statements bringing schema 2 to 3: a run may be stored as ``interrupted`` (rebuilding
+#: the table is SQLite's only way to change a CHECK constraint).
+_MIGRATE_2_TO_3 = (
+    _RUNS_TABLE.format(name="runs_v3"),
+    "INSERT INTO runs_v3 SELECT id, project_id, created, status, result, detail, summary, "
+    "error, settings FROM runs",
+    "DROP TABLE runs",
+    "ALTER TABLE runs_v3 RENAME TO runs",
+    "CREATE INDEX runs_by_project ON runs(project_id, id)",
+)
+#: Runs a stopped service left ``running``: what is stored for them once found.
+INTERRUPTED_ERROR = {
+    "kind": "interrupted",
+    "message": "The service stopped before this run finished, so it has no result.",
+}
 
 
 def is_valid_id(value: str) -> bool:
@@ -260,7 +279,12 @@ class Store:
         has_projects = db.execute(
             "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'projects'"
         ).fetchone()
-        statements = _MIGRATE_1_TO_2 if has_projects else _SCHEMA
+        if not has_projects:
+            statements = _SCHEMA
+        elif version <= 1:
+            statements = _MIGRATE_1_TO_2 + _MIGRATE_2_TO_3
+        else:
+            statements = _MIGRATE_2_TO_3
         for statement in statements:
             db.execute(statement)
         db.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
@@ -334,7 +358,7 @@ class Store:
                 "r.id, r.created, r.status, r.summary, r.error, "
                 "(SELECT COUNT(*) FROM runs n WHERE n.project_id = p.id AND n.id <= r.id) "
                 "FROM projects p LEFT JOIN runs r ON r.id = "
-                "(SELECT MAX(id) FROM runs WHERE project_id = p.id AND status != 'running') "
+                "(SELECT MAX(id) FROM runs WHERE project_id = p.id AND " + _COMPLETED + ") "
                 "ORDER BY p.created DESC, p.rowid DESC"
             ).fetchall()
         listings = []
@@ -433,14 +457,28 @@ class Store:
                 "nothing was stored. Check the decisions and re-run again."
             )
 
+    def mark_interrupted(self) -> list[int]:
+        """Store every run left ``running`` as ``interrupted``; returns their ids.
+
+        Call only when no process is adjusting on this data folder (at start-up): a run
+        is ``running`` between ``start_run`` and ``finish_run`` of one live process.
+        """
+        with self._write() as db:
+            ids = [row[0] for row in db.execute(
+                "SELECT id FROM runs WHERE status = 'running' ORDER BY id")]
+            db.execute("UPDATE runs SET status = 'interrupted', error = ? "
+                       "WHERE status = 'running'", (json.dumps(INTERRUPTED_ERROR),))
+        return ids
+
     def latest_run(self, project_id: str, *, finished: bool = False) -> Run | None:
         """The most recent completed run (or finished one) with its full result dump, or None.
 
-        A run still marked ``running`` (in progress, or interrupted) is never the latest.
+        A run marked ``running`` (in progress, or interrupted before a restart found it)
+        or ``interrupted`` is never the latest: it has no result and no error of its own.
         """
         if not is_valid_id(project_id):
             return None
-        status = "status = 'finished'" if finished else "status != 'running'"
+        status = "status = 'finished'" if finished else _COMPLETED
         with self._read() as db:
             row = db.execute(
                 f"SELECT {_RUN_COLUMNS} FROM runs WHERE project_id = ? AND {status} "
@@ -534,6 +572,9 @@ class Store:
             )
         return cursor.rowcount > 0
 
+
+#: Runs that ended with a result or an error (not in progress, not interrupted).
+_COMPLETED = "status IN ('finished', 'failed')"
 
 _RUN_COLUMNS = (
     "id, project_id, created, status, result, error, detail, summary, settings, "

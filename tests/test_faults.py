@@ -93,7 +93,8 @@ def test_kill_during_an_adjustment_loses_nothing_and_finishes_nothing(
         interrupted = http.get(f"/api/projects/{project_id}").json()
         assert interrupted["sha256"] == hashlib.sha256(big).hexdigest()
         assert interrupted["status"] != "finished" and interrupted["result"] is None
-        assert [r["status"] for r in interrupted["runs"]] == ["running"]
+        # the restart found the run cut off and stored it as such
+        assert [r["status"] for r in interrupted["runs"]] == ["interrupted"]
         assert all(r["summary"] is None for r in interrupted["runs"])
         assert listed[project_id]["summary"] is None
         assert http.get(f"/projects/{project_id}/fieldbook").content == big
@@ -101,6 +102,7 @@ def test_kill_during_an_adjustment_loses_nothing_and_finishes_nothing(
         assert http.get(f"/projects/{project_id}/report.html").status_code == 404
         page = http.get(f"/projects/{project_id}")
         assert page.status_code == 200 and "Passes" not in page.text
+        assert "was interrupted" in page.text and f"/runs/{run_id}/retry" in page.text
         assert "Not adjusted" in http.get("/projects").text
 
         fresh = _upload(http, DEMOS / "leveling_clean.fieldbook")
@@ -108,7 +110,8 @@ def test_kill_during_an_adjustment_loses_nothing_and_finishes_nothing(
     report_figure(
         f"faults: SIGKILL during the adjustment of {SIDE * SIDE} marks; restart after "
         f"{restarted_in:.1f} s: integrity ok, {len(earlier)} earlier projects intact, "
-        "interrupted run left 'running' with no result, upload kept byte for byte"
+        "interrupted run stored as 'interrupted' with no result and a re-run button, upload "
+        "kept byte for byte"
     )
 
 

@@ -12,7 +12,7 @@ import pytest
 
 from server.errors import FieldbookError, NetworkError
 from server.pipeline import adjust_fieldbook
-from server.storage import Store, is_valid_id
+from server.storage import SCHEMA_VERSION, Store, is_valid_id
 
 DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"
 
@@ -296,7 +296,7 @@ def test_a_database_of_schema_1_is_upgraded_keeping_projects_and_runs(db):
                     "'{\"kind\": \"other\", \"message\": \"stopped\"}')")
         raw.commit()
     store = Store(db)
-    assert _query(db, "PRAGMA user_version") == (2,)
+    assert _query(db, "PRAGMA user_version") == (SCHEMA_VERSION,)
     project = store.get_project("a" * 32)
     assert project.fieldbook == b"level" and len(project.form_token) == 32
     (run,) = store.runs("a" * 32)

@@ -4,10 +4,12 @@ from __future__ import annotations
 
 import logging
 import os
+import sqlite3
 from collections.abc import Collection
 from datetime import datetime
 from pathlib import Path
 from typing import Any
+from urllib.parse import urlsplit
 
 import jinja2
 from fastapi import FastAPI, Request
@@ -140,6 +142,85 @@ class HeadAsGetMiddleware:
         await self.app({**scope, "method": "GET"}, receive, send_headers_only)
 
 
+#: Methods that change what is stored; only these are checked for another site's origin.
+UNSAFE_METHODS = frozenset({"POST", "PUT", "PATCH", "DELETE"})
+#: ``Sec-Fetch-Site`` values a browser sends for a request its own page (or the user) made.
+OWN_FETCH_SITES = frozenset({"same-origin", "none"})
+_DEFAULT_PORTS = {"http": "80", "https": "443"}
+FOREIGN_ORIGIN_MESSAGE = (
+    "This request was sent by a page of another site, so it was refused and nothing was "
+    "stored. Open Stationfit's own page and send it from there; scripts can call the API "
+    "directly."
+)
+
+
+def _host_and_port(netloc: str, scheme: str) -> str:
+    """``host:port`` in lower case, the scheme's default port written out."""
+    netloc = netloc.strip().lower()
+    if netloc.startswith("["):  # an IPv6 literal: the port follows the bracket
+        host, _, rest = netloc.partition("]")
+        host, port = host + "]", rest[1:] if rest.startswith(":") else ""
+    else:
+        host, _, port = netloc.partition(":")
+    return f"{host}:{port or _DEFAULT_PORTS.get(scheme, '')}"
+
+
+def foreign_origin(headers: Headers) -> bool:
+    """True when the browser's headers say another origin sent this request.
+
+    ``Sec-Fetch-Site`` other than same-origin or none (typed address, bookmark) means
+    another site, or another port or sub-domain of this one (``same-site``, still a
+    different origin).  An ``Origin`` naming a site must name this service's own host
+    and port.  ``Origin: null`` (a sandboxed frame, a local file) is refused unless
+    ``Sec-Fetch-Site`` vouches for the request: the pages' ``Referrer-Policy:
+    no-referrer`` makes Chromium send ``null`` for the service's own forms too.  No
+    header at all is a script or a very old browser: allowed.  The scheme is not
+    compared: behind a proxy that terminates TLS the service sees ``http`` while the
+    page was ``https``.
+    """
+    site = headers.get("sec-fetch-site")
+    if site is not None and site.strip().lower() not in OWN_FETCH_SITES:
+        return True
+    origin = headers.get("origin")
+    if origin is None:
+        return False
+    parts = urlsplit(origin.strip())
+    if not parts.scheme or not parts.netloc:
+        return site is None  # "null", or something no browser sends for a real page
+    own_host = headers.get("host", "")
+    return _host_and_port(parts.netloc, parts.scheme) != _host_and_port(own_host, parts.scheme)
+
+
+class SameOriginMiddleware:
+    """Refuse (403) every POST, PUT, PATCH and DELETE that another site's page sent.
+
+    One check in front of every route: an upload, a demo, the API and the review
+    forms alike, before anything reads the body or touches the store.  Reading
+    requests are never refused.  The review forms keep their per-project tokens too.
+    """
+
+    def __init__(self, app: ASGIApp, templates: Jinja2Templates) -> None:
+        self.app = app
+        self.templates = templates
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if (scope["type"] != "http" or scope["method"] not in UNSAFE_METHODS
+                or not foreign_origin(Headers(scope=scope))):
+            await self.app(scope, receive, send)
+            return
+        headers = Headers(scope=scope)
+        logger.warning("refused %s %s from another site (Origin %r, Sec-Fetch-Site %r)",
+                       scope["method"], scope.get("path", ""), headers.get("origin"),
+                       headers.get("sec-fetch-site"))
+        response: Response
+        if is_api(scope.get("path", "")):
+            response = JSONResponse({"error": FOREIGN_ORIGIN_MESSAGE}, status_code=403)
+        else:
+            response = _error_page(self.templates, scope, 403, "Request refused (403)",
+                                   FOREIGN_ORIGIN_MESSAGE)
+        await response(scope, receive, send)
+
+
 class _BodyTooLarge(Exception):
     """Raised inside the app when the request body passes the limit."""
 
@@ -259,6 +340,26 @@ def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
             return JSONResponse({"error": message}, status_code=404)
         return _error_page(templates, request.scope, 404, "Not found", message)
 
+    @app.exception_handler(sqlite3.Error)
+    async def storage_error(request: Request, exc: sqlite3.Error) -> Response:
+        """The project store cannot be read or written: say so, and name the folder in the log."""
+        folder = request.app.state.store.path.parent
+        logger.error("%s %s: the data folder %s cannot be used (%s); check that it exists, "
+                     "that the service's user may write to it and that the disk has room",
+                     request.method, request.url.path, folder, exc)
+        if request.method in UNSAFE_METHODS:
+            message = ("Your request could not be stored: the service cannot write to its "
+                       "data folder. Nothing was saved. Please tell the administrator; the "
+                       "service's log names the folder and the reason.")
+        else:
+            message = ("The stored projects cannot be read right now: the service cannot use "
+                       "its data folder. Please tell the administrator; the service's log "
+                       "names the folder and the reason.")
+        if is_api(request.url.path):
+            return JSONResponse({"error": message}, status_code=503)
+        return _error_page(templates, request.scope, 503, "The project store is unavailable",
+                           message)
+
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request: Request, exc: StarletteHTTPException) -> Response:
         """404, 405, 400 and friends."""
@@ -286,8 +387,13 @@ def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
     async def server_error(request: Request, exc: Exception) -> Response:
         """The generic 500: logged on the server, never shown to the user."""
         logger.error("unhandled error on %s %s", request.method, request.url.path, exc_info=exc)
-        message = ("Something went wrong on the server. Your field book was not changed; "
-                   "please try again, and report the problem if it persists.")
+        if request.method in UNSAFE_METHODS:
+            message = ("Something went wrong on the server before this request was finished. "
+                       "Check the project list to see whether it was stored, then try again; "
+                       "report the problem if it persists.")
+        else:
+            message = ("Something went wrong on the server. Nothing was changed; please try "
+                       "again, and report the problem if it persists.")
         response: Response
         if is_api(request.url.path):
             response = JSONResponse({"error": "internal server error"}, status_code=500)
@@ -353,7 +459,7 @@ def create_app(
     else the defaults (docs/security.md).  ``allowed_hosts`` (None: any) are the Host
     names answered; ``python -m server serve`` passes ``serve_allowed_hosts``.
     """
-    from . import relative_routes, review_routes, routes
+    from . import interrupted_routes, relative_routes, review_routes, routes
 
     if max_upload_bytes is None:
         max_upload_bytes = _env_int("STATIONFIT_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES)
@@ -369,6 +475,12 @@ def create_app(
     )
     templates = make_templates()
     app.state.store = Store(Path(data_dir) / DATABASE_NAME)
+    # This process has not started any run yet: one still ``running`` was cut off.
+    interrupted = app.state.store.mark_interrupted()
+    if interrupted:
+        logger.warning("the service stopped before finishing run(s) %s; stored as "
+                       "interrupted (each can be re-run from its project's page)",
+                       ", ".join(map(str, interrupted)))
     app.state.templates = templates
     app.state.max_upload_bytes = max_upload_bytes
     app.state.max_projects = max_projects
@@ -378,8 +490,11 @@ def create_app(
     app.include_router(routes.router)
     app.include_router(review_routes.router)
     app.include_router(relative_routes.router)
+    app.include_router(interrupted_routes.router)
     _install_handlers(app, templates)
     app.add_middleware(UploadLimitMiddleware, max_bytes=max_upload_bytes, templates=templates)
+    # Before the upload limit, so another site's request is refused without reading its body.
+    app.add_middleware(SameOriginMiddleware, templates=templates)
     # Pages, JSON and CSV compress to a tenth or less when the browser accepts gzip.
     app.add_middleware(GZipMiddleware, minimum_size=GZIP_MINIMUM_BYTES, compresslevel=GZIP_LEVEL,
                        exclude_content_types=GZIP_EXCLUDED)

@@ -241,7 +241,7 @@ def _review_context(
         "base": state.base,
         "result": result,
         "latest": latest,
-        "interrupted": [r for r in runs if r.status == "running"],
+        "interrupted": [r for r in runs if r.status in ("running", "interrupted")],
         "finished_runs": sum(1 for r in runs if r.finished),
         "problems": state.problems + ([problem] if problem else []),
         "errors": errors or {},

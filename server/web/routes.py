@@ -404,9 +404,9 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
     runs = store.runs(project_id)
     newest = runs[-1] if runs else None
     interrupted = None
-    if newest is not None and newest.status == "running":
+    if newest is not None and newest.status in ("running", "interrupted"):
         job = request.app.state.jobs.get(newest.id)
-        if job is not None:
+        if job is not None and newest.status == "running":
             return _render(request, "progress.html", {
                 "project": project, "run": newest, "job": job,
                 "name": display_name(project.name, project.filename),
