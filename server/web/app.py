@@ -24,7 +24,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from .. import __version__
 from ..errors import FieldbookError, NetworkError, SurveyError
 from ..result import CAUTION
-from ..settings import DEFAULT_MAX_UPLOAD_BYTES
+from ..settings import DEFAULT_MAX_UPLOAD_BYTES, WorkLimits, service_limits
 from ..storage import RunGone, Store, error_record
 from .jobs import Jobs
 
@@ -346,12 +346,14 @@ def create_app(
     max_projects: int | None = None,
     allowed_hosts: Collection[str] | None = None,
     demo_dir: Path | None = None,
+    limits: WorkLimits | None = None,
 ) -> FastAPI:
     """Build the web application storing projects under ``data_dir``.
 
     Limits not given come from STATIONFIT_MAX_UPLOAD_BYTES and STATIONFIT_MAX_PROJECTS,
     else the defaults (docs/security.md).  ``allowed_hosts`` (None: any) are the Host
     names answered; ``python -m server serve`` passes ``serve_allowed_hosts``.
+    ``limits`` (observations and unknowns per field book) default to ``service_limits()``.
     """
     from . import relative_routes, review_routes, routes
 
@@ -372,6 +374,7 @@ def create_app(
     app.state.templates = templates
     app.state.max_upload_bytes = max_upload_bytes
     app.state.max_projects = max_projects
+    app.state.limits = limits if limits is not None else service_limits()
     app.state.jobs = Jobs()
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")

@@ -27,9 +27,10 @@ from ..errors import SurveyError
 from ..exports import geojson_text
 from ..fieldbook import parse_fieldbook
 from ..fieldbook_model import Fieldbook
-from ..pipeline import adjust_fieldbook, adjust_parsed
+from ..pipeline import UNLIMITED, adjust_fieldbook, adjust_parsed, check_observation_limit
 from ..report_pdf import report_pdf
 from ..result import AdjustmentResult
+from ..settings import WorkLimits
 from ..standards import PRESETS, Preset, with_presets
 from ..storage import NO_EDITS, Project, Run, Store
 from .app import survey_error_payload
@@ -58,6 +59,10 @@ class Upload:
 
 def _store(request: Request) -> Store:
     return request.app.state.store  # type: ignore[no-any-return]
+
+
+def _limits(request: Request) -> WorkLimits:
+    return request.app.state.limits  # type: ignore[no-any-return]
 
 
 def _templates(request: Request) -> Jinja2Templates:
@@ -109,7 +114,7 @@ async def _read_upload(request: Request, *, with_text: bool) -> Upload | None:
 
 
 def _submit(
-    store: Store, upload: Upload, max_projects: int = 0
+    store: Store, upload: Upload, max_projects: int = 0, limits: WorkLimits = UNLIMITED
 ) -> tuple[str, AdjustmentResult | None, SurveyError | None]:
     """Store the upload, then adjust it as a run marked ``running`` until it ends.
 
@@ -117,17 +122,21 @@ def _submit(
     adjustment leaves the project stored and its run marked ``running`` (never
     finished, never shown as a result); the runs before it are untouched.
     """
-    project_id, book, run_id, error = _store_upload(store, upload, max_projects)
+    project_id, book, run_id, error = _store_upload(store, upload, max_projects, limits)
     if book is None or run_id is None:
         return project_id, None, error
-    result, error = _adjust_run(store, run_id, book)
+    result, error = _adjust_run(store, run_id, book, limits=limits)
     return project_id, result, error
 
 
 def _store_upload(
-    store: Store, upload: Upload, max_projects: int = 0
+    store: Store, upload: Upload, max_projects: int = 0, limits: WorkLimits = UNLIMITED
 ) -> tuple[str, Fieldbook | None, int | None, SurveyError | None]:
-    """Store the upload and open its run; a field book that does not read gets a failed run."""
+    """Store the upload and open its run; a field book that does not read gets a failed run.
+
+    A field book with more observations than ``limits`` allow raises ``FieldbookError``
+    and is not stored: it could never be adjusted here, and keeping it fills the store.
+    """
     source = upload.filename or "pasted.fieldbook"
     _check_room(store, max_projects)
     try:
@@ -136,16 +145,18 @@ def _store_upload(
         project_id = store.create_project(upload.name, upload.filename, upload.data)
         store.add_run(project_id, error=exc)
         return project_id, None, None, exc
+    check_observation_limit(book, limits)
     project_id = store.create_project(upload.name or book.title, upload.filename, upload.data)
     return project_id, book, store.start_run(project_id, NO_EDITS), None
 
 
 def _adjust_run(
-    store: Store, run_id: int, book: Fieldbook, progress: Callable[[str, int], None] | None = None
+    store: Store, run_id: int, book: Fieldbook, progress: Callable[[str, int], None] | None = None,
+    limits: WorkLimits = UNLIMITED,
 ) -> tuple[AdjustmentResult | None, SurveyError | None]:
     """Adjust a stored run's field book and finish the run with its result or error."""
     try:
-        result = adjust_parsed(book, progress=progress)
+        result = adjust_parsed(book, progress=progress, limits=limits)
     except SurveyError as exc:
         store.finish_run(run_id, error=exc)
         return None, exc
@@ -160,12 +171,13 @@ def _adjust_run(
 async def _submit_in_background(request: Request, upload: Upload) -> str:
     """Store and start adjusting; wait briefly so small jobs open straight on their results."""
     store = _store(request)
+    limits = _limits(request)
     project_id, book, run_id, _ = await run_in_threadpool(
-        _store_upload, store, upload, request.app.state.max_projects
+        _store_upload, store, upload, request.app.state.max_projects, limits
     )
     if book is not None and run_id is not None:
         job = request.app.state.jobs.start(
-            run_id, lambda progress: _adjust_run(store, run_id, book, progress)
+            run_id, lambda progress: _adjust_run(store, run_id, book, progress, limits)
         )
         await run_in_threadpool(job.done.wait, _WAIT_FOR_SMALL_JOBS)
     return project_id
@@ -563,7 +575,8 @@ async def api_adjust(request: Request) -> JSONResponse:
     if upload is None:
         return JSONResponse(_MISSING_FIELD, status_code=422)
     result = await run_in_threadpool(
-        adjust_fieldbook, upload.data, source=upload.filename or "upload.fieldbook"
+        adjust_fieldbook, upload.data, source=upload.filename or "upload.fieldbook",
+        limits=_limits(request),
     )
     return JSONResponse(result.to_json_dict())
 
@@ -575,7 +588,8 @@ async def api_create_project(request: Request) -> JSONResponse:
     if upload is None:
         return JSONResponse(_MISSING_FIELD, status_code=422)
     project_id, result, error = await run_in_threadpool(_submit, _store(request), upload,
-                                             request.app.state.max_projects)
+                                                        request.app.state.max_projects,
+                                                        _limits(request))
     body: dict[str, Any] = {"id": project_id,
                             "result": None if result is None else result.to_json_dict()}
     if error is not None:
