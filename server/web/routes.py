@@ -574,10 +574,14 @@ async def api_adjust(request: Request) -> JSONResponse:
     upload = await _read_upload(request, with_text=False)
     if upload is None:
         return JSONResponse(_MISSING_FIELD, status_code=422)
-    result = await run_in_threadpool(
-        adjust_fieldbook, upload.data, source=upload.filename or "upload.fieldbook",
-        limits=_limits(request),
-    )
+    return await run_in_threadpool(_adjusted_json, upload, _limits(request))
+
+
+def _adjusted_json(upload: Upload, limits: WorkLimits) -> JSONResponse:
+    """Adjust and encode on a worker thread: the JSON of a large network takes seconds to
+    write, and on the event loop it would hold up every other request meanwhile."""
+    result = adjust_fieldbook(upload.data, source=upload.filename or "upload.fieldbook",
+                              limits=limits)
     return JSONResponse(result.to_json_dict())
 
 
@@ -587,9 +591,14 @@ async def api_create_project(request: Request) -> JSONResponse:
     upload = await _read_upload(request, with_text=False)
     if upload is None:
         return JSONResponse(_MISSING_FIELD, status_code=422)
-    project_id, result, error = await run_in_threadpool(_submit, _store(request), upload,
-                                                        request.app.state.max_projects,
-                                                        _limits(request))
+    return await run_in_threadpool(_stored_json, _store(request), upload,
+                                   request.app.state.max_projects, _limits(request))
+
+
+def _stored_json(store: Store, upload: Upload, max_projects: int,
+                 limits: WorkLimits) -> JSONResponse:
+    """Store, adjust and encode the answer on a worker thread (see ``_adjusted_json``)."""
+    project_id, result, error = _submit(store, upload, max_projects, limits)
     body: dict[str, Any] = {"id": project_id,
                             "result": None if result is None else result.to_json_dict()}
     if error is not None:
