@@ -29,8 +29,13 @@ def repository_root() -> Path:
 DEFAULT_MAX_OBSERVATIONS = 200_000
 #: Unknowns (coordinates, heights, orientations) one network may have in the web service.
 DEFAULT_MAX_UNKNOWNS = 150_000
-#: Adjustments the web service runs at the same time; the others wait their turn.
-DEFAULT_MAX_CONCURRENT_ADJUSTMENTS = 1
+#: Adjustments the web service runs at the same time; the others wait their turn.  One
+#: keeps the memory to that of one adjustment and leaves the second core to the pages.
+DEFAULT_ADJUSTMENTS_AT_ONCE = 1
+#: Adjustments that may wait for a slot; a new upload beyond them gets 503 and Retry-After.
+DEFAULT_MAX_WAITING = 20
+#: Seconds a client refused with 503 is asked to wait before trying again.
+RETRY_AFTER_SECONDS = 30
 
 
 @dataclass(frozen=True, slots=True)
@@ -60,3 +65,16 @@ def service_limits(max_observations: int | None = None,
     if max_unknowns is None:
         max_unknowns = env_int("STATIONFIT_MAX_UNKNOWNS", DEFAULT_MAX_UNKNOWNS)
     return WorkLimits(max_observations or None, max_unknowns or None)
+
+
+def service_queue(adjustments_at_once: int | None = None,
+                  max_waiting: int | None = None) -> tuple[int, int]:
+    """(adjustments at once, adjustments allowed to wait): the arguments, else
+    STATIONFIT_ADJUSTMENTS_AT_ONCE and STATIONFIT_MAX_WAITING, else the defaults."""
+    if adjustments_at_once is None:
+        adjustments_at_once = env_int("STATIONFIT_ADJUSTMENTS_AT_ONCE", DEFAULT_ADJUSTMENTS_AT_ONCE)
+    if max_waiting is None:
+        max_waiting = env_int("STATIONFIT_MAX_WAITING", DEFAULT_MAX_WAITING)
+    if adjustments_at_once < 1:
+        raise ValueError("STATIONFIT_ADJUSTMENTS_AT_ONCE must be at least 1")
+    return adjustments_at_once, max_waiting

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import re
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -30,10 +31,11 @@ from ..fieldbook_model import Fieldbook
 from ..pipeline import UNLIMITED, adjust_fieldbook, adjust_parsed, check_observation_limit
 from ..report_pdf import report_pdf
 from ..result import AdjustmentResult
-from ..settings import WorkLimits
+from ..settings import RETRY_AFTER_SECONDS, WorkLimits
 from ..standards import PRESETS, Preset, with_presets
 from ..storage import NO_EDITS, Project, Run, Store
 from .app import survey_error_payload
+from .jobs import AdjustmentQueue, QueueFull
 
 router = APIRouter()
 
@@ -63,6 +65,29 @@ def _store(request: Request) -> Store:
 
 def _limits(request: Request) -> WorkLimits:
     return request.app.state.limits  # type: ignore[no-any-return]
+
+
+def _queue(request: Request) -> AdjustmentQueue:
+    return request.app.state.jobs.queue  # type: ignore[no-any-return]
+
+
+def _busy(exc: QueueFull) -> HTTPException:
+    """503 with Retry-After: the queue of adjustments is full; nothing was stored."""
+    waiting = exc.args[0] if exc.args else 0
+    return HTTPException(
+        status_code=503,
+        detail=(f"The service is busy: {waiting} adjustments are already waiting their turn. "
+                f"Nothing was stored; please send the field book again in a minute."),
+        headers={"Retry-After": str(RETRY_AFTER_SECONDS)},
+    )
+
+
+def _room_in_queue(request: Request) -> None:
+    """Refuse (503) before storing anything when the adjustment queue is full."""
+    try:
+        _queue(request).check_room()
+    except QueueFull as exc:
+        raise _busy(exc) from None
 
 
 def _templates(request: Request) -> Jinja2Templates:
@@ -114,18 +139,21 @@ async def _read_upload(request: Request, *, with_text: bool) -> Upload | None:
 
 
 def _submit(
-    store: Store, upload: Upload, max_projects: int = 0, limits: WorkLimits = UNLIMITED
+    store: Store, upload: Upload, max_projects: int = 0, limits: WorkLimits = UNLIMITED,
+    queue: AdjustmentQueue | None = None,
 ) -> tuple[str, AdjustmentResult | None, SurveyError | None]:
     """Store the upload, then adjust it as a run marked ``running`` until it ends.
 
     The field book is kept even when it cannot be read.  A crash or kill during the
     adjustment leaves the project stored and its run marked ``running`` (never
     finished, never shown as a result); the runs before it are untouched.
+    With a ``queue``, the adjustment waits for a slot (the run is stored meanwhile).
     """
     project_id, book, run_id, error = _store_upload(store, upload, max_projects, limits)
     if book is None or run_id is None:
         return project_id, None, error
-    result, error = _adjust_run(store, run_id, book, limits=limits)
+    with queue.slot(bounded=False) if queue is not None else contextlib.nullcontext():
+        result, error = _adjust_run(store, run_id, book, limits=limits)
     return project_id, result, error
 
 
@@ -172,6 +200,7 @@ async def _submit_in_background(request: Request, upload: Upload) -> str:
     """Store and start adjusting; wait briefly so small jobs open straight on their results."""
     store = _store(request)
     limits = _limits(request)
+    _room_in_queue(request)
     project_id, book, run_id, _ = await run_in_threadpool(
         _store_upload, store, upload, request.app.state.max_projects, limits
     )
@@ -574,14 +603,18 @@ async def api_adjust(request: Request) -> JSONResponse:
     upload = await _read_upload(request, with_text=False)
     if upload is None:
         return JSONResponse(_MISSING_FIELD, status_code=422)
-    return await run_in_threadpool(_adjusted_json, upload, _limits(request))
+    return await run_in_threadpool(_adjusted_json, upload, _limits(request), _queue(request))
 
 
-def _adjusted_json(upload: Upload, limits: WorkLimits) -> JSONResponse:
-    """Adjust and encode on a worker thread: the JSON of a large network takes seconds to
-    write, and on the event loop it would hold up every other request meanwhile."""
-    result = adjust_fieldbook(upload.data, source=upload.filename or "upload.fieldbook",
-                              limits=limits)
+def _adjusted_json(upload: Upload, limits: WorkLimits, queue: AdjustmentQueue) -> JSONResponse:
+    """Wait for a slot, adjust and encode on a worker thread: the JSON of a large network
+    takes seconds to write, and on the event loop it would hold up every other request."""
+    try:
+        with queue.slot():
+            result = adjust_fieldbook(upload.data, source=upload.filename or "upload.fieldbook",
+                                      limits=limits)
+    except QueueFull as exc:
+        raise _busy(exc) from None
     return JSONResponse(result.to_json_dict())
 
 
@@ -591,14 +624,16 @@ async def api_create_project(request: Request) -> JSONResponse:
     upload = await _read_upload(request, with_text=False)
     if upload is None:
         return JSONResponse(_MISSING_FIELD, status_code=422)
+    _room_in_queue(request)
     return await run_in_threadpool(_stored_json, _store(request), upload,
-                                   request.app.state.max_projects, _limits(request))
+                                   request.app.state.max_projects, _limits(request),
+                                   _queue(request))
 
 
-def _stored_json(store: Store, upload: Upload, max_projects: int,
-                 limits: WorkLimits) -> JSONResponse:
+def _stored_json(store: Store, upload: Upload, max_projects: int, limits: WorkLimits,
+                 queue: AdjustmentQueue) -> JSONResponse:
     """Store, adjust and encode the answer on a worker thread (see ``_adjusted_json``)."""
-    project_id, result, error = _submit(store, upload, max_projects, limits)
+    project_id, result, error = _submit(store, upload, max_projects, limits, queue)
     body: dict[str, Any] = {"id": project_id,
                             "result": None if result is None else result.to_json_dict()}
     if error is not None:
