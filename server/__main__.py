@@ -27,24 +27,30 @@ def main(argv: list[str] | None = None) -> int:
     adjust.add_argument("--report", type=Path, metavar="FILE.html", help="write the HTML report")
     adjust.add_argument("--pdf", type=Path, metavar="FILE.pdf", help="write the PDF report")
     adjust.add_argument("--csv", type=Path, metavar="FILE.csv", help="write the adjusted points as CSV")
-    _limit_options(adjust, "(default: no limit)")
+    _limit_options(adjust, "(default: no limit)", "(default: no limit)")
     serve = commands.add_parser("serve", help="start the web service")
     serve.add_argument("--host", default="127.0.0.1")
     serve.add_argument("--port", type=int, default=8000)
     serve.add_argument("--data", type=Path, default=None, help="where projects are stored")
-    _limit_options(serve, "(default: $STATIONFIT_MAX_OBSERVATIONS / $STATIONFIT_MAX_UNKNOWNS, "
-                          "else 200000 / 150000; 0: no limit)")
+    _limit_options(serve, "(default: $STATIONFIT_MAX_OBSERVATIONS, else 200000; 0: no limit)",
+                   "(default: $STATIONFIT_MAX_UNKNOWNS, else 150000; 0: no limit)")
+    serve.add_argument("--adjustments-at-once", type=_whole, default=None, metavar="N",
+                       help="adjustments run at the same time, the others wait their turn "
+                            "(default: $STATIONFIT_ADJUSTMENTS_AT_ONCE, else 1)")
+    serve.add_argument("--max-waiting", type=_whole, default=None, metavar="N",
+                       help="adjustments allowed to wait; more get 503 "
+                            "(default: $STATIONFIT_MAX_WAITING, else 20; 0: no bound)")
     args = parser.parse_args(argv)
     if args.command == "serve":
         return _serve(args)
     return _adjust(args)
 
 
-def _limit_options(command: argparse.ArgumentParser, default: str) -> None:
+def _limit_options(command: argparse.ArgumentParser, observations: str, unknowns: str) -> None:
     command.add_argument("--max-observations", type=_whole, default=None, metavar="N",
-                         help=f"refuse field books with more observations {default}")
+                         help=f"refuse field books with more observations {observations}")
     command.add_argument("--max-unknowns", type=_whole, default=None, metavar="N",
-                         help=f"refuse networks with more unknowns {default}")
+                         help=f"refuse networks with more unknowns {unknowns}")
 
 
 def _whole(text: str) -> int:
@@ -134,14 +140,17 @@ def _serve(args: argparse.Namespace) -> int:
 
     from .settings import default_data_dir, service_limits
     from .web.app import create_app, serve_allowed_hosts
+    from .web.serving import uvicorn_options
 
     host, port, data = args.host, args.port, args.data
     limits = service_limits(args.max_observations, args.max_unknowns)
     data_dir = data if data is not None else default_data_dir()
     data_dir.mkdir(parents=True, exist_ok=True)
     print(f"Stationfit: projects are stored in {data_dir}; open http://{host}:{port}/", file=sys.stderr)
-    app = create_app(data_dir, allowed_hosts=serve_allowed_hosts(host), limits=limits)
-    uvicorn.run(app, host=host, port=port, log_level="warning")
+    app = create_app(data_dir, allowed_hosts=serve_allowed_hosts(host), limits=limits,
+                     adjustments_at_once=args.adjustments_at_once or None,
+                     max_waiting=args.max_waiting)
+    uvicorn.run(app, host=host, port=port, log_level="warning", **uvicorn_options())
     return EXIT_OK
 
 
