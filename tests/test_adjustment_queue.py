@@ -167,3 +167,37 @@ def test_the_api_waits_for_a_slot_too(tmp_path, monkeypatch):
     assert started == [1]  # it ran holding the one slot
     assert answers[0].status_code == 200
     assert answers[0].json()["summary"]["global_test"]["passed"] is True
+
+
+def test_a_stored_result_is_shown_without_the_queue_but_a_preset_rerun_waits_its_turn(tmp_path):
+    app = create_app(tmp_path, adjustments_at_once=1, max_waiting=1)
+    queue = app.state.jobs.queue
+    project_id, result, _ = routes._submit(
+        app.state.store, routes.Upload(DEMO.read_bytes(), DEMO.name, ""))
+    assert result is not None
+    release, holding = threading.Event(), threading.Event()
+
+    def hold() -> None:
+        with queue.slot():
+            holding.set()
+            release.wait(WAIT)
+
+    def wait_in_line() -> None:
+        with queue.slot():
+            pass
+
+    holder, waiter = threading.Thread(target=hold), threading.Thread(target=wait_in_line)
+    holder.start()
+    assert holding.wait(WAIT)
+    waiter.start()
+    eventually(lambda: len(queue._waiting) == 1, "the queue is full")
+    try:
+        with TestClient(app) as client:
+            stored = client.get(f"/projects/{project_id}")
+            assert stored.status_code == 200 and "Passes" in stored.text
+            rerun = client.get(f"/projects/{project_id}/points.csv?misclosure=fgcc-1984-second-order-class-I")
+            assert rerun.status_code == 503  # adjusting again would have had to queue
+    finally:
+        release.set()
+        holder.join(WAIT)
+        waiter.join(WAIT)

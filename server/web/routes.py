@@ -285,9 +285,12 @@ def _standards_choice(request: Request) -> StandardsChoice:
     return StandardsChoice(**chosen)
 
 
-def _result_with_presets(project: Project, run: Run | None,
-                         choice: StandardsChoice) -> AdjustmentResult | None:
-    """The latest run adjusted again with the chosen presets as its tolerances (decisions kept)."""
+def _result_with_presets(project: Project, run: Run | None, choice: StandardsChoice,
+                         queue: AdjustmentQueue | None = None) -> AdjustmentResult | None:
+    """The latest run adjusted again with the chosen presets as its tolerances (decisions kept).
+
+    That adjustment waits for a slot in ``queue`` like any other (503 when it is full).
+    """
     if not choice.presets:
         return _result_of(project, run)
     if run is None or not run.finished:
@@ -298,16 +301,19 @@ def _result_with_presets(project: Project, run: Run | None,
         text = apply_edits(project.text, edits, source=source) if edits else project.text
         fieldbook = with_presets(parse_fieldbook(text, source=source),
                                  relative=choice.relative, misclosure=choice.misclosure)
-        return adjust_parsed(fieldbook)
+        with queue.slot() if queue is not None else contextlib.nullcontext():
+            return adjust_parsed(fieldbook)
     except SurveyError:
         return None
+    except QueueFull as exc:
+        raise _busy(exc) from None
 
 
-def _finished_result(store: Store, project_id: str,
-                     choice: StandardsChoice | None = None) -> tuple[Project, AdjustmentResult]:
+def _finished_result(store: Store, project_id: str, choice: StandardsChoice | None = None,
+                     queue: AdjustmentQueue | None = None) -> tuple[Project, AdjustmentResult]:
     project = _project_or_404(store, project_id)
     result = _result_with_presets(project, store.latest_run(project_id),
-                                  choice or StandardsChoice())
+                                  choice or StandardsChoice(), queue)
     if result is None:
         raise HTTPException(status_code=404, detail="This project has no adjustment result.")
     return project, result
@@ -455,7 +461,7 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
         interrupted = newest  # the service stopped before this run finished
     run = store.latest_run(project_id)
     choice = _standards_choice(request)
-    result = _result_with_presets(project, run, choice)
+    result = _result_with_presets(project, run, choice, _queue(request))
     context: dict[str, Any] = {
         "project": project,
         "run": run,
@@ -483,7 +489,7 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
 def project_report(project_id: str, request: Request) -> Response:
     """The printable report, as a download; its inline style is allowed by hash only."""
     choice = _standards_choice(request)
-    project, result = _finished_result(_store(request), project_id, choice)
+    project, result = _finished_result(_store(request), project_id, choice, _queue(request))
     css = report.report_css()
     response = _attachment(report.report_html(result, presets=choice.presets),
                            "text/html; charset=utf-8", _download_name(project, "-report.html"))
@@ -498,7 +504,7 @@ def project_report(project_id: str, request: Request) -> Response:
 def project_report_pdf(project_id: str, request: Request) -> Response:
     """The report as PDF, drawn on the server."""
     choice = _standards_choice(request)
-    project, result = _finished_result(_store(request), project_id, choice)
+    project, result = _finished_result(_store(request), project_id, choice, _queue(request))
     return _attachment(report_pdf(result, presets=choice.presets), "application/pdf",
                        _download_name(project, "-report.pdf"))
 
@@ -506,7 +512,8 @@ def project_report_pdf(project_id: str, request: Request) -> Response:
 @router.get("/projects/{project_id}/points.csv")
 def project_points_csv(project_id: str, request: Request) -> Response:
     """The adjusted points as CSV."""
-    project, result = _finished_result(_store(request), project_id, _standards_choice(request))
+    project, result = _finished_result(_store(request), project_id, _standards_choice(request),
+                                       _queue(request))
     return _attachment(report.points_csv(result), "text/csv; charset=utf-8",
                        _download_name(project, "-points.csv"))
 
@@ -514,7 +521,8 @@ def project_points_csv(project_id: str, request: Request) -> Response:
 @router.get("/projects/{project_id}/points.geojson")
 def project_geojson(project_id: str, request: Request) -> Response:
     """Points and observation lines as GeoJSON (project grid coordinates)."""
-    project, result = _finished_result(_store(request), project_id, _standards_choice(request))
+    project, result = _finished_result(_store(request), project_id, _standards_choice(request),
+                                       _queue(request))
     return _attachment(geojson_text(result), "application/geo+json",
                        _download_name(project, ".geojson"))
 
@@ -530,7 +538,7 @@ def project_result_json(project_id: str, request: Request) -> Response:
     choice = _standards_choice(request)
     body = run.result_json
     if choice.presets:
-        _, result = _finished_result(store, project_id, choice)
+        _, result = _finished_result(store, project_id, choice, _queue(request))
         body = result.to_json_dict()
     response = JSONResponse(body)
     response.headers["Content-Disposition"] = (
