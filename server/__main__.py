@@ -33,7 +33,7 @@ def main(argv: list[str] | None = None) -> int:
     serve.add_argument("--port", type=int, default=8000)
     serve.add_argument("--data", type=Path, default=None, help="where projects are stored")
     _limit_options(serve, "(default: $STATIONFIT_MAX_OBSERVATIONS, else 200000; 0: no limit)",
-                   "(default: $STATIONFIT_MAX_UNKNOWNS, else 150000; 0: no limit)")
+                   "(default: $STATIONFIT_MAX_UNKNOWNS, else 100000; 0: no limit)")
     serve.add_argument("--adjustments-at-once", type=_whole, default=None, metavar="N",
                        help="adjustments run at the same time, the others wait their turn "
                             "(default: $STATIONFIT_ADJUSTMENTS_AT_ONCE, else 1)")

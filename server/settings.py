@@ -24,11 +24,13 @@ def repository_root() -> Path:
     return Path(__file__).resolve().parent.parent
 
 
-#: Observations one field book may hold in the web service before it is refused
-#: (a 200,000-observation network adjusts in roughly 25 s and under 1 GB; docs/security.md).
+#: Observations one field book may hold in the web service before it is refused.
 DEFAULT_MAX_OBSERVATIONS = 200_000
 #: Unknowns (coordinates, heights, orientations) one network may have in the web service.
-DEFAULT_MAX_UNKNOWNS = 150_000
+#: Measured on a 2-core machine (docs/security.md): a levelling grid of 50,625 unknowns
+#: took 26 s and 0.8 GB, one of 100,489 unknowns 104 s and 2.4 GB; time and memory grow
+#: faster than the size, so the limit sits just under the larger one.
+DEFAULT_MAX_UNKNOWNS = 100_000
 #: Adjustments the web service runs at the same time; the others wait their turn.  One
 #: keeps the memory to that of one adjustment and leaves the second core to the pages.
 DEFAULT_ADJUSTMENTS_AT_ONCE = 1

@@ -63,9 +63,9 @@ def test_the_service_defaults_are_the_documented_ones(tmp_path, monkeypatch):
     monkeypatch.delenv("STATIONFIT_MAX_UNKNOWNS", raising=False)
     app = create_app(tmp_path)
     assert app.state.limits == WorkLimits(DEFAULT_MAX_OBSERVATIONS, DEFAULT_MAX_UNKNOWNS)
-    assert (DEFAULT_MAX_OBSERVATIONS, DEFAULT_MAX_UNKNOWNS) == (200_000, 150_000)
+    assert (DEFAULT_MAX_OBSERVATIONS, DEFAULT_MAX_UNKNOWNS) == (200_000, 100_000)
     docs = (ROOT / "docs" / "security.md").read_text(encoding="utf-8")
-    assert "200,000 observations" in docs and "150,000 unknowns" in docs
+    assert "200,000 observations" in docs and "100,000 unknowns" in docs
 
 
 @pytest.fixture
