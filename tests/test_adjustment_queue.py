@@ -118,7 +118,9 @@ def test_waiting_uploads_show_how_many_are_ahead_then_their_results(blocked):
     assert "Iterating" in client.get(urls[0]).text or "Adjusting" in client.get(urls[0]).text
     eventually(lambda: "Waiting: 1 ahead of this one" in client.get(urls[2]).text,
                "the third upload shows its place")
-    assert "Waiting: 0 ahead of this one" in client.get(urls[1]).text
+    second = client.get(urls[1]).text
+    assert "Waiting: 0 ahead of this one" in second and "Waiting for its turn" in second
+    assert "Waiting for its turn" not in client.get(urls[0]).text  # the first is adjusting
     # the queue is full (one running, two waiting): a fourth upload is refused, not stored
     before = len(client.get("/api/projects").json()["projects"])
     refused = client.post("/projects", **upload("book3.fieldbook"))
