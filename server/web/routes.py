@@ -77,7 +77,7 @@ def _busy(exc: QueueFull) -> HTTPException:
     return HTTPException(
         status_code=503,
         detail=(f"The service is busy: {waiting} adjustments are already waiting their turn. "
-                f"Nothing was stored; please send the field book again in a minute."),
+                "Nothing was stored or changed; please try again in a minute."),
         headers={"Retry-After": str(RETRY_AFTER_SECONDS)},
     )
 
