@@ -30,19 +30,43 @@ def main(argv: list[str] | None = None) -> int:
     adjust.add_argument("--report", type=Path, metavar="FILE.html", help="write the HTML report")
     adjust.add_argument("--pdf", type=Path, metavar="FILE.pdf", help="write the PDF report")
     adjust.add_argument("--csv", type=Path, metavar="FILE.csv", help="write the adjusted points as CSV")
+    _limit_options(adjust, "(default: no limit)", "(default: no limit)")
     serve = commands.add_parser("serve", help="start the web service")
     serve.add_argument("--host", default="127.0.0.1")
     serve.add_argument("--port", type=int, default=8000)
     serve.add_argument("--data", type=Path, default=None, help="where projects are stored")
+    _limit_options(serve, "(default: $STATIONFIT_MAX_OBSERVATIONS, else 200000; 0: no limit)",
+                   "(default: $STATIONFIT_MAX_UNKNOWNS, else 100000; 0: no limit)")
+    serve.add_argument("--adjustments-at-once", type=_whole, default=None, metavar="N",
+                       help="adjustments run at the same time, the others wait their turn "
+                            "(default: $STATIONFIT_ADJUSTMENTS_AT_ONCE, else 1)")
+    serve.add_argument("--max-waiting", type=_whole, default=None, metavar="N",
+                       help="adjustments allowed to wait; more get 503 "
+                            "(default: $STATIONFIT_MAX_WAITING, else 20; 0: no bound)")
     args = parser.parse_args(argv)
     if args.command == "serve":
-        return _serve(args.host, args.port, args.data)
+        return _serve(args)
     return _adjust(args)
+
+
+def _limit_options(command: argparse.ArgumentParser, observations: str, unknowns: str) -> None:
+    command.add_argument("--max-observations", type=_whole, default=None, metavar="N",
+                         help=f"refuse field books with more observations {observations}")
+    command.add_argument("--max-unknowns", type=_whole, default=None, metavar="N",
+                         help=f"refuse networks with more unknowns {unknowns}")
+
+
+def _whole(text: str) -> int:
+    if not text.isdigit():
+        raise argparse.ArgumentTypeError(f"a whole number is needed, not {text!r}")
+    return int(text)
 
 
 def _adjust(args: argparse.Namespace) -> int:
     from .pipeline import adjust_fieldbook
+    from .settings import WorkLimits
 
+    limits = WorkLimits(args.max_observations or None, args.max_unknowns or None)
     path: Path = args.file
     try:
         data = path.read_bytes()
@@ -51,7 +75,7 @@ def _adjust(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     progress = _TerminalProgress(sys.stderr) if sys.stderr.isatty() else None
     try:
-        result = adjust_fieldbook(data, source=str(path), progress=progress)
+        result = adjust_fieldbook(data, source=str(path), progress=progress, limits=limits)
     except FieldbookError as exc:
         _clear(progress)
         print(str(exc), file=sys.stderr)
@@ -114,16 +138,21 @@ def _clear(progress: _TerminalProgress | None) -> None:
         progress._stream.flush()
 
 
-def _serve(host: str, port: int, data: Path | None) -> int:
+def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
-    from .settings import default_data_dir
+    from .settings import default_data_dir, service_limits
     from .web.app import create_app, serve_allowed_hosts
+    from .web.serving import uvicorn_options
 
+    host, port, data = args.host, args.port, args.data
+    limits = service_limits(args.max_observations, args.max_unknowns)
     data_dir = data if data is not None else default_data_dir()
     try:
         data_dir.mkdir(parents=True, exist_ok=True)
-        app = create_app(data_dir, allowed_hosts=serve_allowed_hosts(host))
+        app = create_app(data_dir, allowed_hosts=serve_allowed_hosts(host), limits=limits,
+                         adjustments_at_once=args.adjustments_at_once or None,
+                         max_waiting=args.max_waiting)
     except (OSError, sqlite3.Error, RuntimeError) as exc:
         # one line for the administrator: which folder, and what the system said
         reason = getattr(exc, "strerror", None) or str(exc)
@@ -131,7 +160,7 @@ def _serve(host: str, port: int, data: Path | None) -> int:
               "folder the service may write to, or fix this one.", file=sys.stderr)
         return EXIT_DATA
     print(f"Stationfit: projects are stored in {data_dir}; open http://{host}:{port}/", file=sys.stderr)
-    uvicorn.run(app, host=host, port=port, log_level="warning")
+    uvicorn.run(app, host=host, port=port, log_level="warning", **uvicorn_options())
     return EXIT_OK
 
 

@@ -10,16 +10,23 @@ import gc
 from collections.abc import Iterator
 
 from .adjust import ProgressCallback, adjust
+from .errors import FieldbookError, Issue, NetworkError
 from .fieldbook import parse_fieldbook
 from .fieldbook_model import Fieldbook
 from .misclosures import leveling_misclosures
 from .traverse import traverse_misclosures
 from .network import build_network
 from .result import AdjustmentResult, build_result
+from .network import Network
+from .settings import WorkLimits
+
+#: No limits: the command line's default.
+UNLIMITED = WorkLimits()
 
 
 def adjust_fieldbook(
-    text: str | bytes, *, source: str = "", progress: ProgressCallback | None = None
+    text: str | bytes, *, source: str = "", progress: ProgressCallback | None = None,
+    limits: WorkLimits = UNLIMITED,
 ) -> AdjustmentResult:
     """Parse, check, adjust and test a field book.
 
@@ -32,27 +39,64 @@ def adjust_fieldbook(
     FieldbookError
         The text has errors (every one found, with line numbers).
     NetworkError
-        The network cannot be adjusted (the message names the points).
+        The network cannot be adjusted (the message names the points), or it has
+        more unknowns than ``limits`` allow.
+    FieldbookError
+        Also when the field book has more observations than ``limits`` allow.
     """
     with paused_gc():
         if progress is not None:
             progress("parse", 0)
-        return adjust_parsed(parse_fieldbook(text, source=source), progress=progress)
+        return adjust_parsed(parse_fieldbook(text, source=source), progress=progress,
+                             limits=limits)
 
 
-def adjust_parsed(fieldbook: Fieldbook, *, progress: ProgressCallback | None = None) -> AdjustmentResult:
+def adjust_parsed(fieldbook: Fieldbook, *, progress: ProgressCallback | None = None,
+                  limits: WorkLimits = UNLIMITED) -> AdjustmentResult:
     """Adjust an already parsed field book (re-runs with edited observations start here).
 
-    Raises ``NetworkError`` when the network cannot be adjusted.
+    Raises ``NetworkError`` when the network cannot be adjusted and ``FieldbookError``
+    or ``NetworkError`` when it is larger than ``limits`` allow (checked before the work).
     """
     with paused_gc():
-        return _adjust_parsed(fieldbook, progress)
+        return _adjust_parsed(fieldbook, progress, limits)
 
 
-def _adjust_parsed(fieldbook: Fieldbook, progress: ProgressCallback | None) -> AdjustmentResult:
+def check_observation_limit(fieldbook: Fieldbook, limits: WorkLimits) -> None:
+    """Refuse a field book with more observations than allowed, naming both numbers.
+
+    The error points at the first observation over the limit, so the surveyor sees
+    where to split the book.
+    """
+    limit, count = limits.max_observations, len(fieldbook.observations)
+    if limit is None or count <= limit:
+        return
+    first_over = fieldbook.observations[limit]
+    message = (f"the field book has {count:,} observations, more than the {limit:,} this "
+               f"service adjusts in one field book (this is observation {limit + 1:,}); "
+               "split it into smaller field books, or ask the administrator to raise "
+               "the observation limit")
+    raise FieldbookError([Issue(first_over.line, "", message)], source=fieldbook.source)
+
+
+def check_unknown_limit(network: Network, limits: WorkLimits) -> None:
+    """Refuse a network with more unknowns than allowed, naming both numbers."""
+    limit, count = limits.max_unknowns, len(network.parameters)
+    if limit is None or count <= limit:
+        return
+    raise NetworkError(f"the network has {count:,} unknowns (coordinates, heights and "
+                       f"orientations), more than the {limit:,} this service adjusts at once; "
+                       "split the field book, or ask the administrator to raise the "
+                       "unknown limit")
+
+
+def _adjust_parsed(fieldbook: Fieldbook, progress: ProgressCallback | None,
+                   limits: WorkLimits) -> AdjustmentResult:
     report = progress or _quiet
+    check_observation_limit(fieldbook, limits)
     report("network", 0)
     network = build_network(fieldbook)
+    check_unknown_limit(network, limits)
     warnings = [issue.format(fieldbook.source) for issue in fieldbook.warnings]
     warnings += list(network.warnings)
     report("misclosures", 0)

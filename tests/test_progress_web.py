@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pytest
 
-from server.pipeline import adjust_parsed
+from server.pipeline import UNLIMITED, adjust_parsed
 from server.storage import NO_EDITS, RunGone
 from server.web import create_app, routes
 
@@ -29,10 +29,10 @@ def app(tmp_path: Path):
 def test_a_long_adjustment_shows_its_stage_then_its_results(app, monkeypatch):
     release = threading.Event()
 
-    def slow(book, *, progress=None):
+    def slow(book, *, progress=None, limits=UNLIMITED):
         progress("iteration", 3)
         assert release.wait(20), "the test never released the adjustment"
-        return adjust_parsed(book, progress=progress)
+        return adjust_parsed(book, progress=progress, limits=limits)
 
     monkeypatch.setattr(routes, "adjust_parsed", slow)
     monkeypatch.setattr(routes, "_WAIT_FOR_SMALL_JOBS", 0.05)
@@ -88,10 +88,10 @@ def test_a_project_deleted_while_it_adjusts_leaves_no_traceback(app, monkeypatch
     started, release = threading.Event(), threading.Event()
     escaped: list[BaseException] = []
 
-    def slow(book, *, progress=None):
+    def slow(book, *, progress=None, limits=UNLIMITED):
         started.set()
         assert release.wait(20), "the test never released the adjustment"
-        return adjust_parsed(book, progress=progress)
+        return adjust_parsed(book, progress=progress, limits=limits)
 
     monkeypatch.setattr(routes, "adjust_parsed", slow)
     monkeypatch.setattr(routes, "_WAIT_FOR_SMALL_JOBS", 0.05)
@@ -130,10 +130,10 @@ def test_a_run_of_a_deleted_project_cannot_be_finished_and_says_why(app):
 def test_an_api_upload_deleted_while_it_adjusts_is_not_found_not_a_server_error(app, monkeypatch):
     store = app.state.store
 
-    def deleted_meanwhile(book, *, progress=None):
+    def deleted_meanwhile(book, *, progress=None, limits=UNLIMITED):
         for listing in store.list_projects():
             store.delete_project(listing.id)
-        return adjust_parsed(book, progress=progress)
+        return adjust_parsed(book, progress=progress, limits=limits)
 
     monkeypatch.setattr(routes, "adjust_parsed", deleted_meanwhile)
     with TestClient(app, raise_server_exceptions=False) as client:

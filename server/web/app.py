@@ -26,9 +26,9 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from .. import __version__
 from ..errors import FieldbookError, NetworkError, SurveyError
 from ..result import CAUTION
-from ..settings import DEFAULT_MAX_UPLOAD_BYTES
+from ..settings import DEFAULT_MAX_UPLOAD_BYTES, WorkLimits, service_limits, service_queue
 from ..storage import RunGone, Store, error_record
-from .jobs import Jobs
+from .jobs import AdjustmentQueue, Jobs
 
 logger = logging.getLogger("stationfit.web")
 
@@ -452,12 +452,17 @@ def create_app(
     max_projects: int | None = None,
     allowed_hosts: Collection[str] | None = None,
     demo_dir: Path | None = None,
+    limits: WorkLimits | None = None,
+    adjustments_at_once: int | None = None,
+    max_waiting: int | None = None,
 ) -> FastAPI:
     """Build the web application storing projects under ``data_dir``.
 
     Limits not given come from STATIONFIT_MAX_UPLOAD_BYTES and STATIONFIT_MAX_PROJECTS,
     else the defaults (docs/security.md).  ``allowed_hosts`` (None: any) are the Host
     names answered; ``python -m server serve`` passes ``serve_allowed_hosts``.
+    ``limits`` (observations and unknowns per field book) default to ``service_limits()``;
+    ``adjustments_at_once`` and ``max_waiting`` (the adjustment queue) to ``service_queue()``.
     """
     from . import interrupted_routes, relative_routes, review_routes, routes
 
@@ -484,7 +489,8 @@ def create_app(
     app.state.templates = templates
     app.state.max_upload_bytes = max_upload_bytes
     app.state.max_projects = max_projects
-    app.state.jobs = Jobs()
+    app.state.limits = limits if limits is not None else service_limits()
+    app.state.jobs = Jobs(AdjustmentQueue(*service_queue(adjustments_at_once, max_waiting)))
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
     app.include_router(routes.router)

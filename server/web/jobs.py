@@ -6,14 +6,20 @@ iteration until the run is finished in the store.  Small jobs finish within
 the short wait of the upload request, so their results open directly.  A run
 that the store shows as ``running`` but that no thread of this process holds
 was interrupted (the service stopped before it finished).
+
+Every adjustment of an upload, from the browser or the API, takes one of a
+fixed number of slots (``AdjustmentQueue``); the others wait their turn in
+order of arrival, and the progress page says how many are ahead.
 """
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import threading
 import time
-from collections.abc import Callable
+from collections import deque
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 
 from ..storage import RunGone
@@ -33,6 +39,80 @@ STAGE_WORDS = {
 }
 
 
+class QueueFull(Exception):
+    """Too many adjustments are already waiting: the caller should come back later."""
+
+
+class AdjustmentQueue:
+    """At most ``size`` adjustments at once; the rest wait first come, first served.
+
+    A large network takes tens of seconds and hundreds of megabytes; running every
+    upload at once shares the same two cores and multiplies the memory, so all of
+    them finish late.  ``max_waiting`` bounds the queue itself (0: unbounded).
+    """
+
+    def __init__(self, size: int, max_waiting: int = 0) -> None:
+        if size < 1:
+            raise ValueError("at least one adjustment must be able to run")
+        self.size = size
+        self.max_waiting = max_waiting
+        self._turn = threading.Condition()
+        self._running = 0
+        self._waiting: deque[object] = deque()
+
+    def check_room(self) -> None:
+        """Raise ``QueueFull`` when a new adjustment would have to wait and the queue is full."""
+        with self._turn:
+            if self._full():
+                raise QueueFull(self._waiting_count())
+
+    def _full(self) -> bool:
+        return bool(self.max_waiting) and self._running >= self.size and (
+            len(self._waiting) >= self.max_waiting)
+
+    def _waiting_count(self) -> int:
+        return len(self._waiting)
+
+    @contextlib.contextmanager
+    def slot(self, ticket: object | None = None, *, bounded: bool = True) -> Iterator[None]:
+        """Hold a slot for the ``with`` block, after waiting for one in order of arrival.
+
+        ``ticket`` identifies the waiting place for ``ahead_of``.  Raises ``QueueFull``
+        when ``bounded`` and the queue is already full (the caller has not started
+        waiting); a run already stored and promised a result passes ``bounded=False``.
+        """
+        ticket = object() if ticket is None else ticket
+        with self._turn:
+            if bounded and self._full():
+                raise QueueFull(self._waiting_count())
+            self._waiting.append(ticket)
+            while self._running >= self.size or self._waiting[0] is not ticket:
+                self._turn.wait()
+            self._waiting.popleft()
+            self._running += 1
+            self._turn.notify_all()  # the next in line may also fit
+        try:
+            yield
+        finally:
+            with self._turn:
+                self._running -= 1
+                self._turn.notify_all()
+
+    def ahead_of(self, ticket: object) -> int | None:
+        """Adjustments waiting ahead of ``ticket``; None once it is no longer waiting."""
+        with self._turn:
+            for place, waiting in enumerate(self._waiting):
+                if waiting is ticket:
+                    return place
+            return None
+
+    @property
+    def running(self) -> int:
+        """Adjustments holding a slot now."""
+        with self._turn:
+            return self._running
+
+
 @dataclass
 class Job:
     """One background adjustment: where it is and whether it has ended."""
@@ -42,14 +122,25 @@ class Job:
     stage: str = "queued"
     step: int = 0
     done: threading.Event = field(default_factory=threading.Event)
+    queue: AdjustmentQueue | None = None
 
     def progress(self, stage: str, step: int) -> None:
         """The pipeline's progress callback."""
         self.stage, self.step = stage, step
 
     @property
+    def ahead(self) -> int | None:
+        """Adjustments waiting ahead of this one (None once it has started)."""
+        return None if self.queue is None else self.queue.ahead_of(self)
+
+    @property
     def words(self) -> str:
         """The stage as a person reads it."""
+        ahead = self.ahead if self.stage == "queued" else None
+        if ahead is not None:
+            running = self.queue.running if self.queue is not None else 0
+            return (f"waiting: {ahead} ahead of this one "
+                    f"({running} adjustment{'' if running == 1 else 's'} running)")
         text = STAGE_WORDS.get(self.stage, self.stage)
         return f"{text} (iteration {self.step})" if self.stage == "iteration" else text
 
@@ -60,21 +151,28 @@ class Job:
 
 
 class Jobs:
-    """The background adjustments of this process, by run id."""
+    """The background adjustments of this process, by run id, sharing one queue."""
 
-    def __init__(self) -> None:
+    def __init__(self, queue: AdjustmentQueue | None = None) -> None:
         self._lock = threading.Lock()
         self._jobs: dict[int, Job] = {}
+        self.queue = queue if queue is not None else AdjustmentQueue(1)
 
     def start(self, run_id: int, work: Callable[[Callable[[str, int], None]], None]) -> Job:
-        """Run ``work(progress)`` on a new thread; the job is forgotten once it ends."""
-        job = Job(run_id)
+        """Run ``work(progress)`` on a new thread once the queue gives it a slot.
+
+        The job is forgotten once it ends.
+        """
+        job = Job(run_id, queue=self.queue)
         with self._lock:
             self._jobs[run_id] = job
 
         def target() -> None:
             try:
-                work(job.progress)
+                # The upload checked the room before it was stored; its run is promised.
+                with self.queue.slot(job, bounded=False):
+                    job.started = time.monotonic()
+                    work(job.progress)
             except RunGone:
                 # Deleting a project while it adjusts is allowed: the result has nowhere to go.
                 logger.info("run %s: its project was deleted during the adjustment; "

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import re
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -27,12 +28,14 @@ from ..errors import SurveyError
 from ..exports import geojson_text
 from ..fieldbook import parse_fieldbook
 from ..fieldbook_model import Fieldbook
-from ..pipeline import adjust_fieldbook, adjust_parsed
+from ..pipeline import UNLIMITED, adjust_fieldbook, adjust_parsed, check_observation_limit
 from ..report_pdf import report_pdf
 from ..result import AdjustmentResult
+from ..settings import RETRY_AFTER_SECONDS, WorkLimits
 from ..standards import PRESETS, Preset, with_presets
 from ..storage import NO_EDITS, Project, Run, Store
 from .app import survey_error_payload
+from .jobs import AdjustmentQueue, QueueFull
 
 router = APIRouter()
 
@@ -58,6 +61,33 @@ class Upload:
 
 def _store(request: Request) -> Store:
     return request.app.state.store  # type: ignore[no-any-return]
+
+
+def _limits(request: Request) -> WorkLimits:
+    return request.app.state.limits  # type: ignore[no-any-return]
+
+
+def _queue(request: Request) -> AdjustmentQueue:
+    return request.app.state.jobs.queue  # type: ignore[no-any-return]
+
+
+def _busy(exc: QueueFull) -> HTTPException:
+    """503 with Retry-After: the queue of adjustments is full; nothing was stored."""
+    waiting = exc.args[0] if exc.args else 0
+    return HTTPException(
+        status_code=503,
+        detail=(f"The service is busy: {waiting} adjustments are already waiting their turn. "
+                "Nothing was stored or changed; please try again in a minute."),
+        headers={"Retry-After": str(RETRY_AFTER_SECONDS)},
+    )
+
+
+def _room_in_queue(request: Request) -> None:
+    """Refuse (503) before storing anything when the adjustment queue is full."""
+    try:
+        _queue(request).check_room()
+    except QueueFull as exc:
+        raise _busy(exc) from None
 
 
 def _templates(request: Request) -> Jinja2Templates:
@@ -109,25 +139,32 @@ async def _read_upload(request: Request, *, with_text: bool) -> Upload | None:
 
 
 def _submit(
-    store: Store, upload: Upload, max_projects: int = 0
+    store: Store, upload: Upload, max_projects: int = 0, limits: WorkLimits = UNLIMITED,
+    queue: AdjustmentQueue | None = None,
 ) -> tuple[str, AdjustmentResult | None, SurveyError | None]:
     """Store the upload, then adjust it as a run marked ``running`` until it ends.
 
     The field book is kept even when it cannot be read.  A crash or kill during the
     adjustment leaves the project stored and its run marked ``running`` (never
     finished, never shown as a result); the runs before it are untouched.
+    With a ``queue``, the adjustment waits for a slot (the run is stored meanwhile).
     """
-    project_id, book, run_id, error = _store_upload(store, upload, max_projects)
+    project_id, book, run_id, error = _store_upload(store, upload, max_projects, limits)
     if book is None or run_id is None:
         return project_id, None, error
-    result, error = _adjust_run(store, run_id, book)
+    with queue.slot(bounded=False) if queue is not None else contextlib.nullcontext():
+        result, error = _adjust_run(store, run_id, book, limits=limits)
     return project_id, result, error
 
 
 def _store_upload(
-    store: Store, upload: Upload, max_projects: int = 0
+    store: Store, upload: Upload, max_projects: int = 0, limits: WorkLimits = UNLIMITED
 ) -> tuple[str, Fieldbook | None, int | None, SurveyError | None]:
-    """Store the upload and open its run; a field book that does not read gets a failed run."""
+    """Store the upload and open its run; a field book that does not read gets a failed run.
+
+    A field book with more observations than ``limits`` allow raises ``FieldbookError``
+    and is not stored: it could never be adjusted here, and keeping it fills the store.
+    """
     source = upload.filename or "pasted.fieldbook"
     _check_room(store, max_projects)
     try:
@@ -136,16 +173,18 @@ def _store_upload(
         project_id = store.create_project(upload.name, upload.filename, upload.data)
         store.add_run(project_id, error=exc)
         return project_id, None, None, exc
+    check_observation_limit(book, limits)
     project_id = store.create_project(upload.name or book.title, upload.filename, upload.data)
     return project_id, book, store.start_run(project_id, NO_EDITS), None
 
 
 def _adjust_run(
-    store: Store, run_id: int, book: Fieldbook, progress: Callable[[str, int], None] | None = None
+    store: Store, run_id: int, book: Fieldbook, progress: Callable[[str, int], None] | None = None,
+    limits: WorkLimits = UNLIMITED,
 ) -> tuple[AdjustmentResult | None, SurveyError | None]:
     """Adjust a stored run's field book and finish the run with its result or error."""
     try:
-        result = adjust_parsed(book, progress=progress)
+        result = adjust_parsed(book, progress=progress, limits=limits)
     except SurveyError as exc:
         store.finish_run(run_id, error=exc)
         return None, exc
@@ -160,12 +199,14 @@ def _adjust_run(
 async def _submit_in_background(request: Request, upload: Upload) -> str:
     """Store and start adjusting; wait briefly so small jobs open straight on their results."""
     store = _store(request)
+    limits = _limits(request)
+    _room_in_queue(request)
     project_id, book, run_id, _ = await run_in_threadpool(
-        _store_upload, store, upload, request.app.state.max_projects
+        _store_upload, store, upload, request.app.state.max_projects, limits
     )
     if book is not None and run_id is not None:
         job = request.app.state.jobs.start(
-            run_id, lambda progress: _adjust_run(store, run_id, book, progress)
+            run_id, lambda progress: _adjust_run(store, run_id, book, progress, limits)
         )
         await run_in_threadpool(job.done.wait, _WAIT_FOR_SMALL_JOBS)
     return project_id
@@ -244,9 +285,12 @@ def _standards_choice(request: Request) -> StandardsChoice:
     return StandardsChoice(**chosen)
 
 
-def _result_with_presets(project: Project, run: Run | None,
-                         choice: StandardsChoice) -> AdjustmentResult | None:
-    """The latest run adjusted again with the chosen presets as its tolerances (decisions kept)."""
+def _result_with_presets(project: Project, run: Run | None, choice: StandardsChoice,
+                         queue: AdjustmentQueue | None = None) -> AdjustmentResult | None:
+    """The latest run adjusted again with the chosen presets as its tolerances (decisions kept).
+
+    That adjustment waits for a slot in ``queue`` like any other (503 when it is full).
+    """
     if not choice.presets:
         return _result_of(project, run)
     if run is None or not run.finished:
@@ -257,16 +301,19 @@ def _result_with_presets(project: Project, run: Run | None,
         text = apply_edits(project.text, edits, source=source) if edits else project.text
         fieldbook = with_presets(parse_fieldbook(text, source=source),
                                  relative=choice.relative, misclosure=choice.misclosure)
-        return adjust_parsed(fieldbook)
+        with queue.slot() if queue is not None else contextlib.nullcontext():
+            return adjust_parsed(fieldbook)
     except SurveyError:
         return None
+    except QueueFull as exc:
+        raise _busy(exc) from None
 
 
-def _finished_result(store: Store, project_id: str,
-                     choice: StandardsChoice | None = None) -> tuple[Project, AdjustmentResult]:
+def _finished_result(store: Store, project_id: str, choice: StandardsChoice | None = None,
+                     queue: AdjustmentQueue | None = None) -> tuple[Project, AdjustmentResult]:
     project = _project_or_404(store, project_id)
     result = _result_with_presets(project, store.latest_run(project_id),
-                                  choice or StandardsChoice())
+                                  choice or StandardsChoice(), queue)
     if result is None:
         raise HTTPException(status_code=404, detail="This project has no adjustment result.")
     return project, result
@@ -414,7 +461,7 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
         interrupted = newest  # the service stopped before this run finished
     run = store.latest_run(project_id)
     choice = _standards_choice(request)
-    result = _result_with_presets(project, run, choice)
+    result = _result_with_presets(project, run, choice, _queue(request))
     context: dict[str, Any] = {
         "project": project,
         "run": run,
@@ -442,7 +489,7 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
 def project_report(project_id: str, request: Request) -> Response:
     """The printable report, as a download; its inline style is allowed by hash only."""
     choice = _standards_choice(request)
-    project, result = _finished_result(_store(request), project_id, choice)
+    project, result = _finished_result(_store(request), project_id, choice, _queue(request))
     css = report.report_css()
     response = _attachment(report.report_html(result, presets=choice.presets),
                            "text/html; charset=utf-8", _download_name(project, "-report.html"))
@@ -457,7 +504,7 @@ def project_report(project_id: str, request: Request) -> Response:
 def project_report_pdf(project_id: str, request: Request) -> Response:
     """The report as PDF, drawn on the server."""
     choice = _standards_choice(request)
-    project, result = _finished_result(_store(request), project_id, choice)
+    project, result = _finished_result(_store(request), project_id, choice, _queue(request))
     return _attachment(report_pdf(result, presets=choice.presets), "application/pdf",
                        _download_name(project, "-report.pdf"))
 
@@ -465,7 +512,8 @@ def project_report_pdf(project_id: str, request: Request) -> Response:
 @router.get("/projects/{project_id}/points.csv")
 def project_points_csv(project_id: str, request: Request) -> Response:
     """The adjusted points as CSV."""
-    project, result = _finished_result(_store(request), project_id, _standards_choice(request))
+    project, result = _finished_result(_store(request), project_id, _standards_choice(request),
+                                       _queue(request))
     return _attachment(report.points_csv(result), "text/csv; charset=utf-8",
                        _download_name(project, "-points.csv"))
 
@@ -473,7 +521,8 @@ def project_points_csv(project_id: str, request: Request) -> Response:
 @router.get("/projects/{project_id}/points.geojson")
 def project_geojson(project_id: str, request: Request) -> Response:
     """Points and observation lines as GeoJSON (project grid coordinates)."""
-    project, result = _finished_result(_store(request), project_id, _standards_choice(request))
+    project, result = _finished_result(_store(request), project_id, _standards_choice(request),
+                                       _queue(request))
     return _attachment(geojson_text(result), "application/geo+json",
                        _download_name(project, ".geojson"))
 
@@ -489,7 +538,7 @@ def project_result_json(project_id: str, request: Request) -> Response:
     choice = _standards_choice(request)
     body = run.result_json
     if choice.presets:
-        _, result = _finished_result(store, project_id, choice)
+        _, result = _finished_result(store, project_id, choice, _queue(request))
         body = result.to_json_dict()
     response = JSONResponse(body)
     response.headers["Content-Disposition"] = (
@@ -562,9 +611,18 @@ async def api_adjust(request: Request) -> JSONResponse:
     upload = await _read_upload(request, with_text=False)
     if upload is None:
         return JSONResponse(_MISSING_FIELD, status_code=422)
-    result = await run_in_threadpool(
-        adjust_fieldbook, upload.data, source=upload.filename or "upload.fieldbook"
-    )
+    return await run_in_threadpool(_adjusted_json, upload, _limits(request), _queue(request))
+
+
+def _adjusted_json(upload: Upload, limits: WorkLimits, queue: AdjustmentQueue) -> JSONResponse:
+    """Wait for a slot, adjust and encode on a worker thread: the JSON of a large network
+    takes seconds to write, and on the event loop it would hold up every other request."""
+    try:
+        with queue.slot():
+            result = adjust_fieldbook(upload.data, source=upload.filename or "upload.fieldbook",
+                                      limits=limits)
+    except QueueFull as exc:
+        raise _busy(exc) from None
     return JSONResponse(result.to_json_dict())
 
 
@@ -574,8 +632,16 @@ async def api_create_project(request: Request) -> JSONResponse:
     upload = await _read_upload(request, with_text=False)
     if upload is None:
         return JSONResponse(_MISSING_FIELD, status_code=422)
-    project_id, result, error = await run_in_threadpool(_submit, _store(request), upload,
-                                             request.app.state.max_projects)
+    _room_in_queue(request)
+    return await run_in_threadpool(_stored_json, _store(request), upload,
+                                   request.app.state.max_projects, _limits(request),
+                                   _queue(request))
+
+
+def _stored_json(store: Store, upload: Upload, max_projects: int, limits: WorkLimits,
+                 queue: AdjustmentQueue) -> JSONResponse:
+    """Store, adjust and encode the answer on a worker thread (see ``_adjusted_json``)."""
+    project_id, result, error = _submit(store, upload, max_projects, limits, queue)
     body: dict[str, Any] = {"id": project_id,
                             "result": None if result is None else result.to_json_dict()}
     if error is not None:
