@@ -26,7 +26,13 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from .. import __version__
 from ..errors import FieldbookError, NetworkError, SurveyError
 from ..result import CAUTION
-from ..settings import DEFAULT_MAX_UPLOAD_BYTES, WorkLimits, service_limits, service_queue
+from ..settings import (
+    DEFAULT_MAX_UPLOAD_BYTES,
+    WorkLimits,
+    env_int,
+    service_limits,
+    service_queue,
+)
 from ..storage import RunGone, Store, error_record
 from .jobs import AdjustmentQueue, Jobs
 
@@ -423,16 +429,6 @@ DEFAULT_MAX_PROJECTS = 10_000
 LOOPBACK_HOSTS = ("127.0.0.1", "localhost")
 
 
-def _env_int(name: str, default: int) -> int:
-    """A whole number from the environment, or ``default`` when unset."""
-    value = os.environ.get(name, "").strip()
-    if not value:
-        return default
-    if not value.isdigit():
-        raise ValueError(f"{name} must be a whole number, not {value!r}")
-    return int(value)
-
-
 def serve_allowed_hosts(host: str) -> tuple[str, ...]:
     """Host names to accept when serving on ``host``: STATIONFIT_ALLOWED_HOSTS, else loopback.
 
@@ -467,9 +463,9 @@ def create_app(
     from . import interrupted_routes, relative_routes, review_routes, routes
 
     if max_upload_bytes is None:
-        max_upload_bytes = _env_int("STATIONFIT_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES)
+        max_upload_bytes = env_int("STATIONFIT_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES)
     if max_projects is None:
-        max_projects = _env_int("STATIONFIT_MAX_PROJECTS", DEFAULT_MAX_PROJECTS)
+        max_projects = env_int("STATIONFIT_MAX_PROJECTS", DEFAULT_MAX_PROJECTS)
 
     app = FastAPI(
         title="Stationfit",
