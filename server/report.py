@@ -433,11 +433,11 @@ def _role(point: PointResult) -> str:
     return ", ".join(parts) if parts else "adjusted"
 
 
-def point_rows(result: AdjustmentResult) -> list[PointRow]:
-    """Adjusted points in file order."""
+def point_rows(result: AdjustmentResult, window: slice = slice(None)) -> list[PointRow]:
+    """Adjusted points in file order; ``window`` picks the rows of one page."""
     unit = result.length_unit
     out = []
-    for p in result.points:
+    for p in result.points[window]:
         e = p.ellipse
         out.append(PointRow(
             name=p.name,
@@ -480,11 +480,13 @@ def _status(o: ObservationResult, uncontrolled: bool) -> str:
     return ""
 
 
-def observation_rows(result: AdjustmentResult) -> list[ObservationRow]:
-    """Observations in file order, each with its residual and test figures formatted."""
+def observation_rows(result: AdjustmentResult, window: slice = slice(None)) -> list[ObservationRow]:
+    """Observations in file order, each with its residual and test figures formatted.
+
+    ``window`` picks the rows of one page before any is formatted."""
     unit, angle_unit = result.length_unit, result.angle_unit
     out = []
-    for o in result.observations:
+    for o in result.observations[window]:
         if o.angular:
             value = fmt_angle(o.observed, angle_unit)
             booked = fmt_booked_angle(o.booked, angle_unit)
@@ -914,10 +916,55 @@ def columns(result: AdjustmentResult) -> Columns:
 #: Size of the inline SVG histogram, in CSS pixels (it scales with the page).
 HISTOGRAM_SIZE = (720.0, 250.0)
 
+# Rows per table per page on the results page; the downloads always hold every row.
+PAGE_SIZE = 500
 
-def context(result: AdjustmentResult, presets: Sequence[Preset] = ()) -> dict[str, object]:
-    """Everything the report and the results page lay out; ``presets`` name the allowances chosen."""
+
+@dataclass(frozen=True)
+class Page:
+    """One page of a long table: ``number`` of ``count`` (both from 1), rows start..stop-1."""
+    number: int
+    count: int
+    total: int
+    start: int
+    stop: int
+
+    @property
+    def window(self) -> slice:
+        return slice(self.start, self.stop)
+
+    @property
+    def paged(self) -> bool:
+        """Whether the table needs a pager at all (small tables show as before)."""
+        return self.count > 1
+
+    @property
+    def label(self) -> str:
+        return f"rows {self.start + 1:,}–{self.stop:,} of {self.total:,}"
+
+
+def page(total: int, requested: int = 1, size: int = PAGE_SIZE) -> Page:
+    """The page ``requested`` of a table of ``total`` rows, clamped to the pages there are."""
+    count = max(1, -(-total // size))
+    number = min(max(1, requested), count)
+    start = (number - 1) * size
+    return Page(number, count, total, start, min(total, start + size))
+
+
+def flagged_lines(result: AdjustmentResult) -> list[int]:
+    """Lines of the flagged observations, so a paged table can still list them all."""
+    return [o.line for o in result.observations if o.flagged]
+
+
+def context(result: AdjustmentResult, presets: Sequence[Preset] = (),
+            obs_page: int | None = None, pt_page: int | None = None) -> dict[str, object]:
+    """Everything the report and the results page lay out; ``presets`` name the allowances chosen.
+
+    ``obs_page`` / ``pt_page`` (results page only) show one page of the observation and
+    point tables; without them every row is laid out, as the downloads need."""
     histogram = w_histogram(result)
+    obs = page(len(result.observations), obs_page) if obs_page is not None else None
+    pts = page(len(result.points), pt_page) if pt_page is not None else None
     return {
         "result": result,
         "standards": standards_summary(result, presets),
@@ -935,10 +982,13 @@ def context(result: AdjustmentResult, presets: Sequence[Preset] = ()) -> dict[st
         "settings_rows": settings_rows(result),
         "units_rows": units_rows(result),
         "datum_rows": datum_rows(result),
-        "point_rows": point_rows(result),
+        "point_rows": point_rows(result, pts.window if pts else slice(None)),
+        "point_page": pts,
         "point_notes": any(p.note for p in result.points),
         "reductions_note": reductions_note(result),
-        "observation_rows": observation_rows(result),
+        "observation_rows": observation_rows(result, obs.window if obs else slice(None)),
+        "observation_page": obs,
+        "flagged_lines": flagged_lines(result) if obs and obs.paged else [],
         "misclosure_rows": misclosure_rows(result),
         "leveling_rows": leveling_rows(result),
         "traverse_rows": traverse_rows(result),

@@ -8,6 +8,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Annotated, Any
+from urllib.parse import urlencode
 
 from fastapi import APIRouter, HTTPException, Request
 from fastapi import Path as PathParameter
@@ -443,6 +444,32 @@ def project_list(request: Request) -> HTMLResponse:
     return _render(request, "projects.html", {"projects": items})
 
 
+# Page numbers beyond this are clamped (to the last page) like any other too-large one.
+MAX_PAGE_PARAMETER = 1_000_000
+
+
+def _page_number(request: Request, key: str) -> int:
+    """A ``?obs_page=`` style number: anything unreadable means page 1, too large the last."""
+    raw = request.query_params.get(key, "1").strip()
+    if not raw.isdigit() or len(raw) > 7:
+        return 1 if not raw.isdigit() else MAX_PAGE_PARAMETER
+    return min(int(raw), MAX_PAGE_PARAMETER)
+
+
+def _page_links(request: Request, key: str, page: report.Page | None,
+                anchor: str) -> dict[str, str]:
+    """Previous/next addresses of a paged table, keeping the page's other parameters."""
+    if page is None or not page.paged:
+        return {}
+    links = {}
+    for name, number in (("previous", page.number - 1), ("next", page.number + 1)):
+        if 1 <= number <= page.count:
+            params = dict(request.query_params)
+            params[key] = str(number)
+            links[name] = f"?{urlencode(params)}#{anchor}"
+    return links
+
+
 @router.get("/projects/{project_id}", response_class=HTMLResponse)
 def project_page(request: Request, project_id: str) -> HTMLResponse:
     """The results of a project's latest adjustment, or what stopped it."""
@@ -471,7 +498,12 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
         "interrupted": interrupted,
     }
     if result is not None:
-        context.update(report.context(result, choice.presets))
+        context.update(report.context(result, choice.presets,
+                                      obs_page=_page_number(request, "obs_page"),
+                                      pt_page=_page_number(request, "pt_page")))
+        context["observation_links"] = _page_links(
+            request, "obs_page", context["observation_page"], "observations")
+        context["point_links"] = _page_links(request, "pt_page", context["point_page"], "points")
         context["network_plot"] = plot.network_plot_data(result)
         context["choice"] = choice
         context["download_query"] = choice.query
