@@ -484,9 +484,15 @@ def observation_rows(result: AdjustmentResult, window: slice = slice(None)) -> l
     """Observations in file order, each with its residual and test figures formatted.
 
     ``window`` picks the rows of one page before any is formatted."""
+    return observation_rows_of(result, result.observations[window])
+
+
+def observation_rows_of(result: AdjustmentResult,
+                        observations: Iterable[ObservationResult]) -> list[ObservationRow]:
+    """``observations`` (some of the result's, in the order given) formatted as table rows."""
     unit, angle_unit = result.length_unit, result.angle_unit
     out = []
-    for o in result.observations[window]:
+    for o in observations:
         if o.angular:
             value = fmt_angle(o.observed, angle_unit)
             booked = fmt_booked_angle(o.booked, angle_unit)

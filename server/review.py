@@ -27,6 +27,7 @@ from .report import (
     fmt_w,
     length_label,
     observation_rows,
+    observation_rows_of,
     stations,
     verdict,
 )
@@ -184,13 +185,21 @@ class ReviewRow:
         return self.figures.line
 
 
-def review_rows(
-    result: AdjustmentResult, lines: Sequence[str], tau: TauTest | None
-) -> list[ReviewRow]:
+def review_order(result: AdjustmentResult) -> list[ObservationResult]:
     """Flagged observations first, largest |w| first; then the others in file order."""
+    flagged = sorted((o for o in result.observations if o.flagged),
+                     key=lambda o: (-abs(o.w or 0.0), o.line))
+    return flagged + [o for o in result.observations if not o.flagged]
+
+
+def review_rows(
+    result: AdjustmentResult, lines: Sequence[str], tau: TauTest | None,
+    window: slice = slice(None),
+) -> list[ReviewRow]:
+    """The rows of ``review_order`` in ``window`` (one page), built only for that page."""
     taus = {o.line: o for o in tau.observations} if tau is not None else {}
     rows = []
-    for figures in observation_rows(result):
+    for figures in observation_rows_of(result, review_order(result)[window]):
         t = taus.get(figures.line)
         source = lines[figures.line - 1] if 0 < figures.line <= len(lines) else ""
         rows.append(ReviewRow(
@@ -200,10 +209,7 @@ def review_rows(
             source=source.strip()[:MAX_SOURCE_CHARS],
             value=value_token(source, figures.kind),
         ))
-    flagged = sorted((r for r in rows if r.figures.flagged),
-                     key=lambda r: (-abs(r.figures.w_raw or 0.0), r.line))
-    others = [r for r in rows if not r.figures.flagged]
-    return flagged + others
+    return rows
 
 
 # --------------------------------------------------------------------------------------

@@ -19,6 +19,7 @@ with warnings.catch_warnings():
     from fastapi.testclient import TestClient
 
 DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"
+BLUNDER_LINE = 38  # tools/DEMOS.md: the blunder of the leveling demo
 SIDE = 23  # 529 marks and 2 * 23 * 22 = 1012 level runs: three observation pages, two point pages
 
 
@@ -87,9 +88,9 @@ def test_first_page_holds_the_page_size_and_the_next_page_the_rest(grid):
 def test_links_keep_the_other_parameters(grid):
     client, url, _ = grid
     html = client.get(url + "?pt_page=2&obs_page=2").text
-    assert 'href="?pt_page=2&amp;obs_page=1#observations"' in html
-    assert 'href="?pt_page=2&amp;obs_page=3#observations"' in html
-    assert 'href="?pt_page=1&amp;obs_page=2#points"' in html
+    assert f'href="{url}?pt_page=2&amp;obs_page=1#observations"' in html
+    assert f'href="{url}?pt_page=2&amp;obs_page=3#observations"' in html
+    assert f'href="{url}?pt_page=1&amp;obs_page=2#points"' in html
     assert "rows 501–529 of 529" in html
 
 
@@ -135,3 +136,43 @@ def test_small_demo_shows_no_pager(tmp_path):
         assert 'class="pager"' not in html and 'id="flagged-lines"' not in html
         assert html == client.get(url + "?obs_page=7&pt_page=2").text.replace(
             "?obs_page=7&amp;pt_page=2", "")  # the parameters change nothing
+        review = client.get(url + "/review").text
+        assert 'class="pager"' not in review and f'data-line="{BLUNDER_LINE}"' in review
+
+
+def _review_lines(html: str) -> list[int]:
+    table = html.split('class="data review-table"', 1)[1].split("</table>", 1)[0]
+    return [int(n) for n in re.findall(r'id="line-(\d+)"', table)]
+
+
+def test_review_page_pages_with_the_flagged_first(grid):
+    client, url, line = grid
+    first = client.get(url + "/review").text
+    lines = _review_lines(first)
+    assert len(lines) == 500 and lines[0] == line  # the flagged run leads page 1
+    assert "rows 1–500 of 1,012" in first
+    assert f'href="{url}/review?obs_page=2#observations"' in first
+    rest = _review_lines(client.get(url + "/review?obs_page=2").text)
+    last = _review_lines(client.get(url + "/review?obs_page=abc9").text)
+    assert len(rest) == 500 and len(last) == 500 and last == lines  # unreadable: page 1
+    tail = _review_lines(client.get(url + "/review?obs_page=9").text)
+    assert len(tail) == 12
+    assert len(set(lines + rest + tail)) == 1012
+
+
+def test_a_decision_on_a_later_page_comes_back_to_that_page(grid):
+    """Runs last in this file: it queues a decision on the shared project."""
+    client, url, _ = grid
+    second = client.get(url + "/review?obs_page=2").text
+    line = _review_lines(second)[0]
+    token = re.search(r'name="token" value="([0-9a-f]{32})"', second).group(1)
+    refused = client.post(url + "/edits", follow_redirects=False,
+                          data={"token": token, "line": str(line), "action": "bogus"})
+    assert refused.status_code != 500
+    assert line in _review_lines(refused.text)  # the refusal is drawn beside its line
+    assert f'href="{url}/review?obs_page=1#observations"' in refused.text
+    done = client.post(url + "/edits", follow_redirects=False,
+                       data={"token": token, "line": str(line), "action": "exclude",
+                             "reason": "synthetic check"})
+    assert done.status_code == 303
+    assert done.headers["location"].endswith(f"/review?obs_page=2#line-{line}")

@@ -28,7 +28,7 @@ from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Resp
 from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import FormData
 
-from .. import review
+from .. import report, review
 from ..edits import (
     ACTIONS,
     MAX_VALUE_CHARS,
@@ -47,7 +47,15 @@ from ..robust import HUBER_K, RobustResult, robust_adjustment
 from ..snooping import SnoopingPlan, propose_snooping
 from ..storage import AlreadyQueued, DecisionsChanged, PendingEdit, Project, Run, Store
 from ..tau_test import tau_test
-from .routes import RowId, _attachment, _download_name, _project_or_404, display_name
+from .routes import (
+    RowId,
+    _attachment,
+    _download_name,
+    _page_links,
+    _page_number,
+    _project_or_404,
+    display_name,
+)
 
 router = APIRouter()
 
@@ -116,9 +124,9 @@ def _rejected(values: list[str]) -> list[int]:
 
 
 def _review_url(project_id: str, *, suggest: bool = False, rejected: list[int] | None = None,
-                anchor: str = "") -> str:
+                anchor: str = "", page: int = 1) -> str:
     """The review page's address, built from checked values only (never echoed from a request)."""
-    query: list[tuple[str, str]] = []
+    query: list[tuple[str, str]] = [("obs_page", str(page))] if page > 1 else []
     if suggest:
         query.append(("suggest", "1"))
         query += [("reject", str(line)) for line in rejected or []]
@@ -220,6 +228,14 @@ def _snooping(request: Request, state: ReviewState) -> SnoopingPlan | str:
                      "No sequence could be proposed")
 
 
+def _page_of(result: AdjustmentResult | None, line: int) -> int:
+    """The review page that lists ``line`` (page 1 when there is no such observation)."""
+    if result is None:
+        return 1
+    order = [o.line for o in review.review_order(result)]
+    return order.index(line) // report.PAGE_SIZE + 1 if line in order else 1
+
+
 def _review_context(
     request: Request,
     state: ReviewState,
@@ -256,7 +272,11 @@ def _review_context(
     if result is None:
         return context
     tau = tau_test(result)
-    rows = review.review_rows(result, review.source_lines(state.text), tau)
+    # a refused decision is drawn on the page of its line, so its message sits beside it
+    wanted = (_page_of(result, next(iter(errors))) if errors and "obs_page" not in
+              request.query_params else _page_number(request, "obs_page"))
+    page = report.page(len(result.observations), wanted)
+    rows = review.review_rows(result, review.source_lines(state.text), tau, page.window)
     shown = {row.line for row in rows}
     context["problems"] += [message for line, message in (errors or {}).items()
                             if line not in shown]
@@ -266,6 +286,10 @@ def _review_context(
     context.update({
         "verdict": verdict(result),
         "rows": rows,
+        "observation_page": page,
+        # a form's answer is drawn at its own address: the links go back to the review page
+        "observation_links": _page_links(request, "obs_page", page, "observations",
+                                         f"/projects/{project.id}/review"),
         "pending_by_line": pending_by_line,
         "ignored_after": review.ignored_after(result, state.pending_edits),
         "critical_w": fmt_ratio(result.summary.critical_w),
@@ -408,8 +432,9 @@ async def queue_edit(request: Request, project_id: str) -> Response:
                                     errors={line: message}, values={line: values}))
         return _render(request, "review.html", context, status=status)
     anchor = "snooping" if suggest else f"line-{line}"
+    page = 1 if suggest else _page_of(state.result, line)
     return RedirectResponse(_review_url(project.id, suggest=suggest, rejected=rejected,
-                                        anchor=anchor), status_code=303)
+                                        anchor=anchor, page=page), status_code=303)
 
 
 @router.post("/projects/{project_id}/edits/{edit_id}/undo")

@@ -457,8 +457,8 @@ def _page_number(request: Request, key: str) -> int:
 
 
 def _page_links(request: Request, key: str, page: report.Page | None,
-                anchor: str) -> dict[str, str]:
-    """Previous/next addresses of a paged table, keeping the page's other parameters."""
+                anchor: str, path: str) -> dict[str, str]:
+    """Previous/next addresses of a paged table at ``path``, keeping the other parameters."""
     if page is None or not page.paged:
         return {}
     links = {}
@@ -466,7 +466,7 @@ def _page_links(request: Request, key: str, page: report.Page | None,
         if 1 <= number <= page.count:
             params = dict(request.query_params)
             params[key] = str(number)
-            links[name] = f"?{urlencode(params)}#{anchor}"
+            links[name] = f"{path}?{urlencode(params)}#{anchor}"
     return links
 
 
@@ -501,9 +501,11 @@ def project_page(request: Request, project_id: str) -> HTMLResponse:
         context.update(report.context(result, choice.presets,
                                       obs_page=_page_number(request, "obs_page"),
                                       pt_page=_page_number(request, "pt_page")))
+        here = f"/projects/{project.id}"
         context["observation_links"] = _page_links(
-            request, "obs_page", context["observation_page"], "observations")
-        context["point_links"] = _page_links(request, "pt_page", context["point_page"], "points")
+            request, "obs_page", context["observation_page"], "observations", here)
+        context["point_links"] = _page_links(
+            request, "pt_page", context["point_page"], "points", here)
         context["network_plot"] = plot.network_plot_data(result)
         context["choice"] = choice
         context["download_query"] = choice.query
