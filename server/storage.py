@@ -249,6 +249,7 @@ class DeletedProject:
     filename: str
     deleted: str
     runs: int
+    form_token: str
 
 
 class RunGone(LookupError):
@@ -353,14 +354,15 @@ class Store:
             )
         return project_id
 
-    def get_project(self, project_id: str) -> Project | None:
-        """The project with its field book, or None."""
+    def get_project(self, project_id: str, *, deleted: bool = False) -> Project | None:
+        """The project with its field book, or None (``deleted``: a deleted one instead)."""
         if not is_valid_id(project_id):
             return None
         with self._read() as db:
             row = db.execute(
                 "SELECT id, name, filename, created, sha256, fieldbook, form_token "
-                "FROM projects WHERE id = ? AND deleted IS NULL",
+                "FROM projects WHERE id = ? AND deleted IS "
+                + ("NOT NULL" if deleted else "NULL"),
                 (project_id,),
             ).fetchone()
         if row is None:
@@ -405,10 +407,11 @@ class Store:
         with self._read() as db:
             rows = db.execute(
                 "SELECT id, name, filename, deleted, "
-                "(SELECT COUNT(*) FROM runs WHERE project_id = projects.id) "
+                "(SELECT COUNT(*) FROM runs WHERE project_id = projects.id), form_token "
                 "FROM projects WHERE deleted IS NOT NULL ORDER BY deleted DESC, rowid DESC"
             ).fetchall()
-        return [DeletedProject(id=r[0], name=r[1], filename=r[2], deleted=r[3], runs=r[4])
+        return [DeletedProject(id=r[0], name=r[1], filename=r[2], deleted=r[3], runs=r[4],
+                               form_token=r[5])
                 for r in rows]
 
     def restore_project(self, project_id: str) -> bool:
