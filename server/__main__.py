@@ -43,6 +43,9 @@ def main(argv: list[str] | None = None) -> int:
     serve.add_argument("--max-waiting", type=_whole, default=None, metavar="N",
                        help="adjustments allowed to wait; more get 503 "
                             "(default: $STATIONFIT_MAX_WAITING, else 20; 0: no bound)")
+    serve.add_argument("--keep-deleted-days", type=_whole, default=None, metavar="DAYS",
+                       help="days a deleted project can be restored before it is erased "
+                            "(default: $STATIONFIT_KEEP_DELETED_DAYS, else 30; 0: erase at once)")
     args = parser.parse_args(argv)
     if args.command == "serve":
         return _serve(args)
@@ -152,7 +155,8 @@ def _serve(args: argparse.Namespace) -> int:
         data_dir.mkdir(parents=True, exist_ok=True)
         app = create_app(data_dir, allowed_hosts=serve_allowed_hosts(host), limits=limits,
                          adjustments_at_once=args.adjustments_at_once or None,
-                         max_waiting=args.max_waiting)
+                         max_waiting=args.max_waiting,
+                         keep_deleted_days=args.keep_deleted_days)
     except (OSError, sqlite3.Error, RuntimeError) as exc:
         # one line for the administrator: which folder, and what the system said
         reason = getattr(exc, "strerror", None) or str(exc)

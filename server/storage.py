@@ -36,7 +36,7 @@ import zlib
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -53,7 +53,7 @@ from .result import (
     Summary,
 )
 
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 _ID_RE = re.compile(r"^[0-9a-f]{32}$")
 #: Settings of a run made without any decision (an upload as it is).
 NO_EDITS: dict[str, Any] = {"edits": []}
@@ -82,7 +82,8 @@ _SCHEMA = (
     created    TEXT NOT NULL,
     fieldbook  BLOB NOT NULL,
     sha256     TEXT NOT NULL,
-    form_token TEXT NOT NULL DEFAULT ''
+    form_token TEXT NOT NULL DEFAULT '',
+    deleted    TEXT
 )""",
     _RUNS_TABLE.format(name="runs"),
     "CREATE INDEX runs_by_project ON runs(project_id, id)",
@@ -121,6 +122,10 @@ _MIGRATE_2_TO_3 = (
     "ALTER TABLE runs_v3 RENAME TO runs",
     "CREATE INDEX runs_by_project ON runs(project_id, id)",
 )
+
+#: Statements bringing schema 3 to 4: a deleted project is kept, marked with the time.
+_MIGRATE_3_TO_4 = ("ALTER TABLE projects ADD COLUMN deleted TEXT",)
+
 #: Runs a stopped service left ``running``: what is stored for them once found.
 INTERRUPTED_ERROR = {
     "kind": "interrupted",
@@ -235,6 +240,18 @@ def error_record(error: BaseException | str) -> dict[str, Any]:
     return {"kind": "other", "message": str(error)}
 
 
+@dataclass(frozen=True, slots=True)
+class DeletedProject:
+    """A project deleted but still recoverable: ``deleted`` is when (ISO 8601, UTC)."""
+
+    id: str
+    name: str
+    filename: str
+    deleted: str
+    runs: int
+    form_token: str
+
+
 class RunGone(LookupError):
     """The run to finish no longer exists: its project was deleted while it was adjusted."""
 
@@ -282,9 +299,11 @@ class Store:
         if not has_projects:
             statements = _SCHEMA
         elif version <= 1:
-            statements = _MIGRATE_1_TO_2 + _MIGRATE_2_TO_3
+            statements = _MIGRATE_1_TO_2 + _MIGRATE_2_TO_3 + _MIGRATE_3_TO_4
+        elif version == 2:
+            statements = _MIGRATE_2_TO_3 + _MIGRATE_3_TO_4
         else:
-            statements = _MIGRATE_2_TO_3
+            statements = _MIGRATE_3_TO_4
         for statement in statements:
             db.execute(statement)
         db.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
@@ -335,14 +354,15 @@ class Store:
             )
         return project_id
 
-    def get_project(self, project_id: str) -> Project | None:
-        """The project with its field book, or None."""
+    def get_project(self, project_id: str, *, deleted: bool = False) -> Project | None:
+        """The project with its field book, or None (``deleted``: a deleted one instead)."""
         if not is_valid_id(project_id):
             return None
         with self._read() as db:
             row = db.execute(
                 "SELECT id, name, filename, created, sha256, fieldbook, form_token "
-                "FROM projects WHERE id = ?",
+                "FROM projects WHERE id = ? AND deleted IS "
+                + ("NOT NULL" if deleted else "NULL"),
                 (project_id,),
             ).fetchone()
         if row is None:
@@ -359,6 +379,7 @@ class Store:
                 "(SELECT COUNT(*) FROM runs n WHERE n.project_id = p.id AND n.id <= r.id) "
                 "FROM projects p LEFT JOIN runs r ON r.id = "
                 "(SELECT MAX(id) FROM runs WHERE project_id = p.id AND " + _COMPLETED + ") "
+                "WHERE p.deleted IS NULL "
                 "ORDER BY p.created DESC, p.rowid DESC"
             ).fetchall()
         listings = []
@@ -373,12 +394,46 @@ class Store:
         return listings
 
     def delete_project(self, project_id: str) -> bool:
-        """Delete a project and its runs; True if it existed."""
+        """Mark a project deleted (kept for ``restore_project`` until purged); True if it was live."""
         if not is_valid_id(project_id):
             return False
         with self._write() as db:
-            cursor = db.execute("DELETE FROM projects WHERE id = ?", (project_id,))
+            cursor = db.execute("UPDATE projects SET deleted = ? WHERE id = ? AND deleted IS NULL",
+                                (_now(), project_id))
         return cursor.rowcount > 0
+
+    def deleted_projects(self) -> list[DeletedProject]:
+        """Projects deleted but not yet purged, most recently deleted first."""
+        with self._read() as db:
+            rows = db.execute(
+                "SELECT id, name, filename, deleted, "
+                "(SELECT COUNT(*) FROM runs WHERE project_id = projects.id), form_token "
+                "FROM projects WHERE deleted IS NOT NULL ORDER BY deleted DESC, rowid DESC"
+            ).fetchall()
+        return [DeletedProject(id=r[0], name=r[1], filename=r[2], deleted=r[3], runs=r[4],
+                               form_token=r[5])
+                for r in rows]
+
+    def restore_project(self, project_id: str) -> bool:
+        """Bring a deleted project back with its runs; True if it was deleted."""
+        if not is_valid_id(project_id):
+            return False
+        with self._write() as db:
+            cursor = db.execute("UPDATE projects SET deleted = NULL "
+                                "WHERE id = ? AND deleted IS NOT NULL", (project_id,))
+        return cursor.rowcount > 0
+
+    def purge_deleted(self, keep_days: int, *, now: datetime | None = None
+                      ) -> list[DeletedProject]:
+        """Remove for good the projects deleted ``keep_days`` days ago or earlier; returns them."""
+        cutoff = ((now or datetime.now(UTC)) - timedelta(days=keep_days)
+                  ).isoformat(timespec="seconds")
+        gone = [p for p in self.deleted_projects() if p.deleted <= cutoff]
+        with self._write() as db:
+            for project in gone:
+                db.execute("DELETE FROM projects WHERE id = ? AND deleted IS NOT NULL",
+                           (project.id,))
+        return gone
 
     # -- runs ------------------------------------------------------------------------
 
@@ -429,18 +484,27 @@ class Store:
         """
         outcome = _outcome(result, error)
         change = ""
+        gone = False
         with self._write() as db:
             row = db.execute(
                 "SELECT project_id, status, settings FROM runs WHERE id = ?", (run_id,)
             ).fetchone()
             if row is None:
                 raise RunGone(f"run {run_id} no longer exists; its project was deleted")
-            if row[1] != "running":
+            deleted = db.execute("SELECT deleted FROM projects WHERE id = ?",
+                                 (row[0],)).fetchone()
+            if deleted is not None and deleted[0] is not None:
+                # Dropped (not left running): a restored project shows no orphan run.
+                db.execute("DELETE FROM runs WHERE id = ?", (run_id,))
+                gone = True
+            elif row[1] != "running":
                 raise ValueError(f"run {run_id} is not running")
             project_id = row[0]
-            if result is not None and consumed is not None:
+            if not gone and result is not None and consumed is not None:
                 change = _queue_change(db, project_id, run_id, _loads(row[2]) or {}, consumed)
-            if change:  # discarded, so it does not stay behind as an interrupted run
+            if gone:
+                pass
+            elif change:  # discarded, so it does not stay behind as an interrupted run
                 db.execute("DELETE FROM runs WHERE id = ?", (run_id,))
             else:
                 db.execute(
@@ -451,6 +515,8 @@ class Store:
                 for edit_id in consumed or ():
                     db.execute("DELETE FROM pending_edits WHERE id = ? AND project_id = ?",
                                (edit_id, project_id))
+        if gone:
+            raise RunGone(f"run {run_id} was dropped: its project was deleted")
         if change:
             raise DecisionsChanged(
                 f"The decisions changed while this re-run was adjusting ({change}); "

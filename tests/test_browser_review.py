@@ -107,10 +107,13 @@ def test_delete_from_the_project_list_after_confirming(page, base_url, tmp_path)
     row = page.locator("tr", has=page.locator(f"a[href='{project_url[len(base_url):]}']"))
     _click_and_wait(page, row.get_by_role("button", name=re.compile("^Delete")))
     assert "Delete “two-blunders.fieldbook”?" in page.locator("h1").inner_text()
-    _click_and_wait(page, page.get_by_role("button", name="Delete permanently"))
+    _click_and_wait(page, page.get_by_role("button", name="Delete", exact=True))
     assert page.url == base_url + "/projects"
     assert page.locator(f"a[href='{project_url[len(base_url):]}']").count() == 0
     assert page.goto(project_url).status == 404
+    page.goto(base_url + "/deleted-projects")  # kept for 30 days: it can be restored
+    _click_and_wait(page, page.get_by_role("button", name="Restore two-blunders.fieldbook"))
+    assert page.url == project_url
     assert [m for m in browser_problems(page) if "404" not in m] == []
 
 

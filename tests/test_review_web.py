@@ -8,8 +8,11 @@ every test checks what a surveyor would check on the screen or in the file.
 from __future__ import annotations
 
 from html import unescape
+import logging
 import re
+import sqlite3
 import warnings
+from contextlib import closing
 from pathlib import Path
 
 import pytest
@@ -429,9 +432,87 @@ def test_delete_asks_for_confirmation_then_removes_the_project(client, project, 
     assert deleted.status_code == 303 and deleted.headers["location"] == "/projects"
     assert client.get(f"/api/projects/{project}").status_code == 404
     assert client.get(f"/projects/{project}/review").status_code == 404
-    assert project not in client.get("/projects").text
+    assert project not in client.get("/projects").text.split("Recently deleted")[0]
+    # Kept for the retention time (30 days by default), not erased yet.
     store = Store(tmp_path / "data" / DATABASE_NAME)
-    assert store.runs(project) == [] and store.pending_edits(project) == []
+    assert [p.id for p in store.deleted_projects()] == [project]
+
+
+def _delete(client, project: str) -> None:
+    confirm = client.post(f"/projects/{project}/confirm-delete").text
+    answer = client.post(f"/projects/{project}/delete", data={"token": _token(confirm)},
+                         follow_redirects=False)
+    assert answer.status_code == 303
+
+
+def test_a_deleted_project_is_listed_as_recently_deleted_and_restored_with_its_runs(
+        client, project, caplog):
+    _decide(client, project, FIRST)
+    _rerun(client, project)
+    store = client.app.state.store
+    runs_before = [(r.id, r.status, r.settings) for r in store.runs(project)]
+    assert len(runs_before) == 2
+    confirm = client.post(f"/projects/{project}/confirm-delete").text
+    assert "Recently deleted" in confirm and "30 days" in confirm
+    caplog.set_level(logging.INFO, logger="stationfit.web")
+    _delete(client, project)
+    assert client.get(f"/projects/{project}").status_code == 404
+    page = client.get("/deleted-projects")
+    assert page.status_code == 200
+    assert "two-blunders.fieldbook" in page.text
+    assert f'action="/deleted-projects/{project}/restore"' in page.text
+
+    assert client.post(f"/deleted-projects/{project}/restore").status_code == 403  # no token
+    restored = client.post(f"/deleted-projects/{project}/restore",
+                           data={"token": _token(page.text)}, follow_redirects=False)
+    assert restored.status_code == 303 and restored.headers["location"] == f"/projects/{project}"
+    assert _api(client, project)["id"] == project
+    assert [(r.id, r.status, r.settings) for r in store.runs(project)] == runs_before
+    rerun = client.get(f"/api/projects/{project}/runs/{runs_before[1][0]}")  # the re-run is back
+    assert rerun.status_code == 200
+    assert project not in client.get("/deleted-projects").text
+    assert client.post(f"/deleted-projects/{project}/restore",
+                       data={"token": _token(page.text)}).status_code == 404
+    lines = [r.getMessage() for r in caplog.records if r.name == "stationfit.web"]
+    assert any(f"project {project} ('two-blunders.fieldbook') deleted by testclient" in m
+               for m in lines), lines
+    assert any(f"project {project} ('two-blunders.fieldbook') restored by testclient" in m
+               for m in lines), lines
+
+
+def test_a_retention_of_0_days_erases_a_deleted_project_at_once(tmp_path, caplog):
+    client = TestClient(create_app(tmp_path / "data", keep_deleted_days=0))
+    project = client.post("/projects", files={"fieldbook": ("two-blunders.fieldbook",
+                          TEXT.encode(), "text/plain")}, follow_redirects=False
+                          ).headers["location"].rsplit("/", 1)[1]
+    with caplog.at_level(logging.INFO, logger="stationfit.web"):
+        _delete(client, project)
+    store = Store(tmp_path / "data" / DATABASE_NAME)
+    assert store.deleted_projects() == [] and store.runs(project) == []
+    assert "two-blunders" not in client.get("/deleted-projects").text
+    assert any(f"project {project} ('two-blunders.fieldbook') purged for good" in r.getMessage()
+               for r in caplog.records)
+
+
+def test_projects_deleted_longer_ago_than_the_retention_are_purged_at_start_up(
+        tmp_path, project, caplog, monkeypatch):
+    store = Store(tmp_path / "data" / DATABASE_NAME)
+    recent = store.create_project("Recent", "recent.fieldbook", TEXT)
+    store.delete_project(project)
+    store.delete_project(recent)
+    with closing(sqlite3.connect(tmp_path / "data" / DATABASE_NAME)) as raw:
+        raw.execute("UPDATE projects SET deleted = '2026-01-01T00:00:00+00:00' WHERE id = ?",
+                    (project,))
+        raw.commit()
+    monkeypatch.setenv("STATIONFIT_KEEP_DELETED_DAYS", "7")
+    with caplog.at_level(logging.INFO, logger="stationfit.web"):
+        client = TestClient(create_app(tmp_path / "data"))
+    assert [p.id for p in store.deleted_projects()] == [recent]
+    assert store.runs(project) == []
+    page = client.get("/deleted-projects").text
+    assert "recent.fieldbook" in page and "7 days" in page
+    assert any(f"project {project} ('two-blunders.fieldbook') purged for good" in r.getMessage()
+               and "kept 7 days" in r.getMessage() for r in caplog.records)
 
 
 def test_review_pages_have_no_inline_scripts_or_styles(client, project):

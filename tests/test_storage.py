@@ -106,15 +106,44 @@ def test_list_is_newest_first(db):
     assert all(p.latest is None for p in store.list_projects())
 
 
-def test_delete_removes_the_project_and_its_runs(db):
+def test_delete_hides_the_project_and_a_purge_removes_it_and_its_runs(db):
     store = Store(db)
     project_id = store.create_project("p", "", "x")
     store.add_run(project_id, error="stopped")
     assert store.delete_project(project_id) is True
     assert store.get_project(project_id) is None
+    assert store.list_projects() == []
+    assert store.delete_project(project_id) is False  # already deleted
+    assert [p.id for p in store.purge_deleted(0)] == [project_id]
     assert store.latest_run(project_id) is None
-    assert store.delete_project(project_id) is False
     assert _query(db, "SELECT COUNT(*) FROM runs") == (0,)
+    assert _query(db, "SELECT COUNT(*) FROM projects") == (0,)
+
+
+def test_a_deleted_project_is_listed_and_restored_with_its_runs(db):
+    store = Store(db)
+    project_id = store.create_project("Quarry pillars", "quarry.fieldbook", "x")
+    store.add_run(project_id, error="stopped")
+    store.add_run(project_id, error="stopped again")
+    store.delete_project(project_id)
+    [deleted] = store.deleted_projects()
+    assert (deleted.id, deleted.name, deleted.runs) == (project_id, "Quarry pillars", 2)
+    assert store.restore_project(project_id) is True
+    assert store.restore_project(project_id) is False  # not deleted any more
+    assert store.deleted_projects() == []
+    assert [p.id for p in store.list_projects()] == [project_id]
+    assert [r.error["message"] for r in store.runs(project_id)] == ["stopped", "stopped again"]
+
+
+def test_a_purge_keeps_projects_deleted_less_than_the_retention_ago(db):
+    store = Store(db)
+    old, recent = store.create_project("old", "", "x"), store.create_project("new", "", "x")
+    store.delete_project(old)
+    store.delete_project(recent)
+    _query(db, f"UPDATE projects SET deleted = '2026-01-01T00:00:00+00:00' WHERE id = '{old}'")
+    assert [p.id for p in store.purge_deleted(30)] == [old]
+    assert [p.id for p in store.deleted_projects()] == [recent]
+    assert store.restore_project(old) is False
 
 
 def test_a_run_needs_an_existing_project_and_leaves_nothing_behind_on_failure(db):
@@ -263,6 +292,7 @@ def test_queued_decisions_are_listed_withdrawn_and_deleted_with_the_project(db):
     assert store.remove_pending_edit(project_id, first) is True
     assert [p.id for p in store.pending_edits(project_id)] == [second]
     store.delete_project(project_id)
+    store.purge_deleted(0)
     assert _query(db, "SELECT COUNT(*) FROM pending_edits") == (0,)
 
 
@@ -305,3 +335,44 @@ def test_a_database_of_schema_1_is_upgraded_keeping_projects_and_runs(db):
     assert new > run.id
     Store(db)  # opening again leaves it as it is
     assert [r.id for r in Store(db).runs("a" * 32)] == [run.id, new]
+
+
+def test_a_database_of_schema_3_is_upgraded_and_its_projects_stay_live(db):
+    """Schema 3 had no deletion time: every project it holds is live after the upgrade."""
+    db.parent.mkdir(parents=True)
+    with closing(sqlite3.connect(db)) as raw:
+        raw.executescript(SCHEMA_3)
+        raw.execute("INSERT INTO projects (id, name, filename, created, fieldbook, sha256) "
+                    "VALUES (?, 'old', 'old.fieldbook', '2026-01-01T00:00:00+00:00', x'78', 'h')",
+                    ("b" * 32,))
+        raw.execute("INSERT INTO runs (project_id, created, status, error) VALUES "
+                    "(?, '2026-01-01T00:00:00+00:00', 'failed', '{\"kind\": \"other\", "
+                    "\"message\": \"stopped\"}')", ("b" * 32,))
+        raw.commit()
+    store = Store(db)
+    assert _query(db, "PRAGMA user_version") == (SCHEMA_VERSION,) == (4,)
+    assert [p.id for p in store.list_projects()] == ["b" * 32]
+    assert store.deleted_projects() == []
+    assert store.delete_project("b" * 32) is True
+    assert store.restore_project("b" * 32) is True
+    assert [r.error["message"] for r in store.runs("b" * 32)] == ["stopped"]
+
+
+SCHEMA_3 = """
+CREATE TABLE projects (id TEXT PRIMARY KEY, name TEXT NOT NULL, filename TEXT NOT NULL,
+    created TEXT NOT NULL, fieldbook BLOB NOT NULL, sha256 TEXT NOT NULL,
+    form_token TEXT NOT NULL DEFAULT '');
+CREATE TABLE runs (id INTEGER PRIMARY KEY AUTOINCREMENT,
+    project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
+    created TEXT NOT NULL,
+    status TEXT NOT NULL CHECK (status IN ('running', 'finished', 'failed', 'interrupted')),
+    result TEXT, detail TEXT, summary TEXT, error TEXT,
+    settings TEXT NOT NULL DEFAULT '{"edits": []}',
+    CHECK ((status = 'finished') = (result IS NOT NULL)));
+CREATE INDEX runs_by_project ON runs(project_id, id);
+CREATE TABLE pending_edits (id INTEGER PRIMARY KEY AUTOINCREMENT,
+    project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
+    created TEXT NOT NULL, edit TEXT NOT NULL);
+CREATE INDEX pending_by_project ON pending_edits(project_id, id);
+PRAGMA user_version = 3;
+"""

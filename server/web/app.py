@@ -424,6 +424,8 @@ GZIP_EXCLUDED = (*DEFAULT_EXCLUDED_CONTENT_TYPES, "application/pdf")
 
 #: Projects one data folder holds before uploads are refused with 507 (0: no limit).
 DEFAULT_MAX_PROJECTS = 10_000
+#: Days a deleted project stays restorable before it is erased for good.
+DEFAULT_KEEP_DELETED_DAYS = 30
 #: Host names ``serve`` answers to unless STATIONFIT_ALLOWED_HOSTS says otherwise.  Refusing
 #: other Host headers stops a web page from reaching the service through DNS rebinding.
 LOOPBACK_HOSTS = ("127.0.0.1", "localhost")
@@ -451,6 +453,7 @@ def create_app(
     limits: WorkLimits | None = None,
     adjustments_at_once: int | None = None,
     max_waiting: int | None = None,
+    keep_deleted_days: int | None = None,
 ) -> FastAPI:
     """Build the web application storing projects under ``data_dir``.
 
@@ -459,6 +462,8 @@ def create_app(
     names answered; ``python -m server serve`` passes ``serve_allowed_hosts``.
     ``limits`` (observations and unknowns per field book) default to ``service_limits()``;
     ``adjustments_at_once`` and ``max_waiting`` (the adjustment queue) to ``service_queue()``.
+    ``keep_deleted_days`` (how long a deleted project can be restored; 0: erased at once)
+    defaults to STATIONFIT_KEEP_DELETED_DAYS, else 30.
     """
     from . import interrupted_routes, relative_routes, review_routes, routes
 
@@ -466,6 +471,8 @@ def create_app(
         max_upload_bytes = env_int("STATIONFIT_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES)
     if max_projects is None:
         max_projects = env_int("STATIONFIT_MAX_PROJECTS", DEFAULT_MAX_PROJECTS)
+    if keep_deleted_days is None:
+        keep_deleted_days = env_int("STATIONFIT_KEEP_DELETED_DAYS", DEFAULT_KEEP_DELETED_DAYS)
 
     app = FastAPI(
         title="Stationfit",
@@ -482,6 +489,9 @@ def create_app(
         logger.warning("the service stopped before finishing run(s) %s; stored as "
                        "interrupted (each can be re-run from its project's page)",
                        ", ".join(map(str, interrupted)))
+    # Deleted projects past their retention are erased at each start (and each deletion).
+    review_routes.purge_deleted(app.state.store, keep_deleted_days)
+    app.state.keep_deleted_days = keep_deleted_days
     app.state.templates = templates
     app.state.max_upload_bytes = max_upload_bytes
     app.state.max_projects = max_projects

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import dataclasses
 import hmac
+import logging
 from collections import OrderedDict
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -45,7 +46,9 @@ from ..report import ARCSEC, columns, fmt_ratio, length_label, verdict
 from ..result import AdjustmentResult
 from ..robust import HUBER_K, RobustResult, robust_adjustment
 from ..snooping import SnoopingPlan, propose_snooping
-from ..storage import AlreadyQueued, DecisionsChanged, PendingEdit, Project, Run, Store
+from ..storage import (
+    AlreadyQueued, DecisionsChanged, PendingEdit, Project, Run, Store, is_valid_id,
+)
 from ..tau_test import tau_test
 from .routes import (
     RowId,
@@ -64,6 +67,8 @@ _CACHE_SIZE = 16
 _MAX_FORM_FIELDS = 40
 _MAX_FORM_BYTES = 64 * 1024
 _MAX_REJECTED = 20
+
+logger = logging.getLogger("stationfit.web")
 
 
 def _store(request: Request) -> Store:
@@ -607,18 +612,62 @@ def confirm_delete(request: Request, project_id: str) -> HTMLResponse:
         "runs": len(runs),
         "pending": len(store.pending_edits(project.id)),
         "token": project.form_token,
+        "keep_days": request.app.state.keep_deleted_days,
     })
 
 
 @router.post("/projects/{project_id}/delete")
 async def delete_project(request: Request, project_id: str) -> Response:
-    """Delete the project, its runs and its queued decisions."""
+    """Move the project to the recently deleted ones (or erase it when none are kept)."""
     store = _store(request)
     project = _project_or_404(store, project_id)
     form = await _read_form(request)
     _check_form(request, project, form)
     store.delete_project(project.id)
+    logger.info("project %s (%r) deleted by %s", project.id,
+                display_name(project.name, project.filename), _client(request))
+    keep_days = request.app.state.keep_deleted_days
+    if keep_days == 0:
+        purge_deleted(store, 0, who=_client(request))
     return RedirectResponse("/projects", status_code=303)
+
+
+@router.get("/deleted-projects", response_class=HTMLResponse)
+def deleted_projects(request: Request) -> HTMLResponse:
+    """The projects deleted within the retention time, each with a Restore button."""
+    store = _store(request)
+    return _render(request, "deleted_projects.html", {
+        "projects": [(p, display_name(p.name, p.filename)) for p in store.deleted_projects()],
+        "keep_days": request.app.state.keep_deleted_days,
+    })
+
+
+@router.post("/deleted-projects/{project_id}/restore")
+async def restore_project(request: Request, project_id: str) -> Response:
+    """Bring a deleted project back with its runs and queued decisions."""
+    store = _store(request)
+    project = store.get_project(project_id, deleted=True) if is_valid_id(project_id) else None
+    if project is None:
+        raise HTTPException(status_code=404, detail="No recently deleted project has this id.")
+    form = await _read_form(request)
+    _check_form(request, project, form)
+    store.restore_project(project.id)
+    logger.info("project %s (%r) restored by %s", project.id,
+                display_name(project.name, project.filename), _client(request))
+    return RedirectResponse(f"/projects/{project.id}", status_code=303)
+
+
+def _client(request: Request) -> str:
+    """Who acted, until there are accounts: the client's address."""
+    return request.client.host if request.client is not None else "unknown client"
+
+
+def purge_deleted(store: Store, keep_days: int, *, who: str = "the retention") -> None:
+    """Erase the projects deleted ``keep_days`` days ago or more, one log line each."""
+    for project in store.purge_deleted(keep_days):
+        logger.info("project %s (%r) purged for good by %s (deleted %s, kept %d days)",
+                    project.id, display_name(project.name, project.filename), who,
+                    project.deleted, keep_days)
 
 
 # --------------------------------------------------------------------------------------
