@@ -141,6 +141,19 @@ def _clear(progress: _TerminalProgress | None) -> None:
         progress._stream.flush()
 
 
+def _log_to_stderr() -> None:
+    """The service's own log lines (deletions, restores, refused requests) on stderr for the
+    administrator; uvicorn keeps its own handlers."""
+    import logging
+
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    log = logging.getLogger("stationfit")
+    log.addHandler(handler)
+    log.setLevel(logging.INFO)
+    log.propagate = False
+
+
 def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
@@ -149,6 +162,7 @@ def _serve(args: argparse.Namespace) -> int:
     from .web.serving import uvicorn_options
 
     host, port, data = args.host, args.port, args.data
+    _log_to_stderr()
     limits = service_limits(args.max_observations, args.max_unknowns)
     data_dir = data if data is not None else default_data_dir()
     try:
