@@ -75,7 +75,7 @@ def main() -> int:
     folder = args.keep or Path(tempfile.mkdtemp(prefix="stationfit-bench-"))
     folder.mkdir(parents=True, exist_ok=True)
 
-    from server.sparse import choose_backend
+    from server.engine.backends import choose_backend
 
     print(f"factorization: {choose_backend()}; python {sys.version.split()[0]}; "
           f"{os.cpu_count()} cores")
@@ -149,7 +149,7 @@ def _cli(path: Path) -> tuple[float, float, int]:
 @contextmanager
 def _timed_factorizations(log: list[float]):
     """Record the time of every sparse factorization made while inside."""
-    from server import sparse
+    from server.engine import backends as sparse
 
     originals = {cls: cls.factorize for cls in (sparse._Cholmod, sparse._SuperLU)}
 
@@ -180,14 +180,15 @@ def _in_process(text: str, dense_max: int) -> dict[str, object]:
 
 
 def _stages(text: str, dense_max: int) -> dict[str, object]:
-    from server import adjust as engine
-    from server import kernels, sparse
-    from server.fieldbook import parse_fieldbook
-    from server.json_output import dumps_indented
-    from server.misclosures import leveling_misclosures
-    from server.network import build_network
-    from server.result import build_result
-    from server.traverse import traverse_misclosures
+    from server.engine import gauss_newton as engine
+    from server.engine import kernels
+    from server.engine import backends as sparse
+    from server.fieldbook.parser import parse_fieldbook
+    from server.results.json_text import dumps_indented
+    from server.model.misclosures import leveling_misclosures
+    from server.model.network import build_network
+    from server.results.result import build_result
+    from server.model.traverse import traverse_misclosures
 
     stages: dict[str, float] = {}
     clock = time.perf_counter
@@ -259,7 +260,7 @@ def _dense_textbook(network, solution, iterations: int) -> float:
     import scipy.linalg
     from threadpoolctl import threadpool_limits
 
-    from server import adjust as engine
+    from server.engine import gauss_newton as engine
 
     state = engine._State(network, solution.coordinates)
     assembly = state.assembly(state.column)
@@ -323,7 +324,7 @@ def _print_stages(stages) -> None:
 
 def _typical() -> None:
     """Warm time of a typical project: adjustment with full statistics plus its HTML report."""
-    from server import report
+    from server.report import tables as report
     from server.pipeline import adjust_fieldbook
 
     text = networks.horizontal(200, sparse=True, fixed_every=50)

@@ -12,8 +12,8 @@ import sqlite3
 import sys
 from pathlib import Path
 
-from .errors import FieldbookError, NetworkError
-from .json_output import dumps_indented
+from server.errors import FieldbookError, NetworkError
+from server.results.json_text import dumps_indented
 
 EXIT_OK, EXIT_FIELDBOOK, EXIT_NETWORK, EXIT_USAGE = 0, 2, 3, 64
 #: ``serve`` cannot open or create its data folder (sysexits' EX_CANTCREAT).
@@ -66,8 +66,8 @@ def _whole(text: str) -> int:
 
 
 def _adjust(args: argparse.Namespace) -> int:
-    from .pipeline import adjust_fieldbook
-    from .settings import WorkLimits
+    from server.pipeline import adjust_fieldbook
+    from server.settings import WorkLimits
 
     limits = WorkLimits(args.max_observations or None, args.max_unknowns or None)
     path: Path = args.file
@@ -89,15 +89,15 @@ def _adjust(args: argparse.Namespace) -> int:
         return EXIT_NETWORK
     _clear(progress)
     if args.pdf is not None:
-        from .report_pdf import report_pdf
+        from server.report.pdf import report_pdf
 
         args.pdf.write_bytes(report_pdf(result))
     if args.report is not None:
-        from . import report
+        from server.report import tables as report
 
         args.report.write_text(report.report_html(result), encoding="utf-8")
     if args.csv is not None:
-        from . import report
+        from server.report import tables as report
 
         args.csv.write_text(report.points_csv(result), encoding="utf-8", newline="")
     if args.json:
@@ -105,7 +105,7 @@ def _adjust(args: argparse.Namespace) -> int:
         sys.stdout.write(dumps_indented(result.to_json_dict()))
         sys.stdout.write("\n")
     else:
-        from . import report
+        from server.report import tables as report
 
         sys.stdout.write(report.report_text(result))
     return EXIT_OK
@@ -157,9 +157,9 @@ def _log_to_stderr() -> None:
 def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
-    from .settings import default_data_dir, service_limits
-    from .web.app import create_app, serve_allowed_hosts
-    from .web.serving import uvicorn_options
+    from server.settings import default_data_dir, service_limits
+    from server.web.app import create_app, serve_allowed_hosts
+    from server.web.serving import uvicorn_options
 
     host, port, data = args.host, args.port, args.data
     _log_to_stderr()

@@ -9,16 +9,16 @@ import contextlib
 import gc
 from collections.abc import Iterator
 
-from .adjust import ProgressCallback, adjust
-from .errors import FieldbookError, Issue, NetworkError
-from .fieldbook import parse_fieldbook
-from .fieldbook_model import Fieldbook
-from .misclosures import leveling_misclosures
-from .traverse import traverse_misclosures
-from .network import build_network
-from .result import AdjustmentResult, build_result
-from .network import Network
-from .settings import WorkLimits
+from server.engine.gauss_newton import ProgressCallback, adjust
+from server.errors import FieldbookError, Issue, NetworkError
+from server.fieldbook.parser import parse_fieldbook
+from server.fieldbook.model import Fieldbook
+from server.model.misclosures import leveling_misclosures
+from server.model.traverse import traverse_misclosures
+from server.model.network import build_network
+from server.results.result import AdjustmentResult, build_result
+from server.model.network import Network
+from server.settings import WorkLimits
 
 #: No limits: the command line's default.
 UNLIMITED = WorkLimits()

@@ -10,7 +10,8 @@ from pathlib import Path
 import pytest
 
 from server.pipeline import UNLIMITED, adjust_parsed
-from server.web import create_app, routes
+from server.web import create_app
+from server.web import pages as routes
 from server.web.jobs import AdjustmentQueue, QueueFull
 
 with warnings.catch_warnings():

@@ -19,10 +19,10 @@ from pathlib import Path
 import pypdf
 import pytest
 
-from server.fieldbook import parse_fieldbook
+from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
-from server.report import observation_rows, points_csv, report_html, report_text
-from server.report_pdf import report_pdf
+from server.report.tables import observation_rows, points_csv, report_html, report_text
+from server.report.pdf import report_pdf
 from server.web import create_app
 
 with warnings.catch_warnings():

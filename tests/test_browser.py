@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 
-from server.result import CAUTION
+from server.results.result import CAUTION
 from tests.browser_support import browser_problems
 
 pytestmark = pytest.mark.browser

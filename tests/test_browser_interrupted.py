@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 
-from server.storage import NO_EDITS, Store
+from server.store.sqlite import NO_EDITS, Store
 from server.web.app import DATABASE_NAME
 from tests.browser_support import browser_problems, free_port
 

@@ -18,14 +18,14 @@ import pypdf
 import pytest
 import scipy.stats
 
-from server import report
+from server.report import tables as report
 from server.__main__ import main
-from server.fieldbook import parse_fieldbook
-from server.histogram import BIN_WIDTH, expected_count, w_histogram
+from server.fieldbook.parser import parse_fieldbook
+from server.report.histogram import BIN_WIDTH, expected_count, w_histogram
 from server.pipeline import adjust_fieldbook, adjust_parsed
-from server.report import safe_cell, standards_summary
-from server.result import CAUTION
-from server.standards import FGCC_1984_LEVELING, PRESETS, with_presets
+from server.report.tables import safe_cell, standards_summary
+from server.results.result import CAUTION
+from server.review.standards import FGCC_1984_LEVELING, PRESETS, with_presets
 from server.units import LENGTH_FACTORS
 from server.web import create_app
 

@@ -19,10 +19,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from server import fieldbook as fieldbook_module
+from server.fieldbook import parser as fieldbook_module
 from server.errors import FieldbookError
-from server.fieldbook import parse_fieldbook
-from server.json_output import dumps_indented
+from server.fieldbook.parser import parse_fieldbook
+from server.results.json_text import dumps_indented
 from tests.hypothesis_profiles import examples
 
 ROOT = Path(__file__).resolve().parents[1]

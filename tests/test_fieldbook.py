@@ -17,8 +17,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from server.errors import FieldbookError, Issue
-from server.fieldbook import parse_fieldbook
-from server.fieldbook_model import Fieldbook, Observation
+from server.fieldbook.parser import parse_fieldbook
+from server.fieldbook.model import Fieldbook, Observation
 from tests.hypothesis_profiles import examples
 
 FOOT_M = 0.3048

@@ -20,7 +20,7 @@ from pathlib import Path
 import pytest
 
 from server.__main__ import main
-from server.sparse import cholmod_available
+from server.engine.backends import cholmod_available
 
 ROOT = Path(__file__).resolve().parents[1]
 GOLDEN = ROOT / "tests" / "golden"

@@ -10,7 +10,7 @@ import scipy.optimize
 import scipy.stats
 
 from server.errors import NetworkError
-from server.fieldbook import parse_fieldbook
+from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
 from tests.synthetic import grid_network
 

@@ -27,11 +27,11 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from server import report
+from server.report import tables as report
 from server.errors import FieldbookError, NetworkError
-from server.fieldbook import parse_fieldbook
+from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
-from server.result import AdjustmentResult
+from server.results.result import AdjustmentResult
 from tests.hypothesis_profiles import examples
 
 DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import pytest
 
-from server.storage import NO_EDITS, Store
+from server.store.sqlite import NO_EDITS, Store
 from server.web import create_app
 from server.web.app import DATABASE_NAME
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
@@ -145,7 +145,7 @@ PRAGMA user_version = 2;
 
 def test_a_schema_2_database_is_upgraded_and_its_cut_off_run_kept(tmp_path):
     """Schema 2 did not allow the ``interrupted`` state; the upgrade keeps every run."""
-    from server.storage import SCHEMA_VERSION
+    from server.store.sqlite import SCHEMA_VERSION
 
     database = tmp_path / DATABASE_NAME
     with closing(sqlite3.connect(database)) as raw:

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import pytest
 
-from server.fieldbook import parse_fieldbook
-from server.misclosures import leveling_misclosures
+from server.fieldbook.parser import parse_fieldbook
+from server.model.misclosures import leveling_misclosures
 
 # Two benchmarks close to a long triangle C–D–E: a run A–C–D–B is far shorter than the
 # loop, so a basis chosen only by length would hold two runs and no loop at all.

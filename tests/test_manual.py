@@ -27,8 +27,8 @@ from pathlib import Path
 import pytest
 
 from server.errors import FieldbookError, NetworkError
-from server.fieldbook_lexer import DIRECTION_ENTRY, GRAMMARS, SD_RULES
-from server import fieldbook_model
+from server.fieldbook.lexer import DIRECTION_ENTRY, GRAMMARS, SD_RULES
+from server.fieldbook import model as fieldbook_model
 from server.pipeline import adjust_fieldbook
 from server.units import FILE_ANGLE_UNITS, FILE_LENGTH_UNITS, LENGTH_FACTORS
 

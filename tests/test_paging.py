@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from server import report
+from server.report import tables as report
 from server.web import create_app
 from tests.synthetic import leveling_grid
 

@@ -1,4 +1,4 @@
-"""The network plot: geometry prepared by server/plot.py and the SVG the results page draws."""
+"""The network plot: geometry prepared by server/report/plot.py and the SVG the results page draws."""
 
 from __future__ import annotations
 
@@ -12,9 +12,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from server import plot, report
+from server.report import plot
+
+from server.report import tables as report
 from server.pipeline import adjust_fieldbook
-from server.result import (
+from server.results.result import (
     AdjustmentResult,
     Ellipse,
     GlobalTest,

@@ -29,13 +29,13 @@ import pypdf
 import pytest
 import scipy.stats
 
-from server import report
-from server import statistics as st
+from server.report import tables as report
+from server.statistics import quality as st
 from server.errors import FieldbookError
-from server.fieldbook import parse_fieldbook
+from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
-from server.report_pdf import report_pdf
-from server.storage import _result_from_detail
+from server.report.pdf import report_pdf
+from server.store.sqlite import _result_from_detail
 from server.web import create_app
 
 with warnings.catch_warnings():

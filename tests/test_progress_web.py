@@ -11,8 +11,9 @@ from pathlib import Path
 import pytest
 
 from server.pipeline import UNLIMITED, adjust_parsed
-from server.storage import NO_EDITS, RunGone
-from server.web import create_app, routes
+from server.store.sqlite import NO_EDITS, RunGone
+from server.web import create_app
+from server.web import pages as routes
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")  # starlette's test client prefers httpx2

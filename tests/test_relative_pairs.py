@@ -14,12 +14,12 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from server import adjust as engine
-from server import fieldbook as fieldbook_module
+from server.engine import gauss_newton as engine
+from server.fieldbook import parser as fieldbook_module
 from server.errors import FieldbookError
-from server.fieldbook import parse_fieldbook
+from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
-from server.report import pairs_checked, standards_summary, report_text
+from server.report.tables import pairs_checked, standards_summary, report_text
 from server.units import format_dms
 
 RAD_PER_SEC = math.pi / 648000.0
@@ -324,7 +324,7 @@ def test_joint_network_pair_with_a_height_only_point_is_named_in_a_warning():
 
 
 def test_a_relative_decision_appends_lines_keeping_every_line_number_and_the_line_ends():
-    from server.edits import EditError, ObservationEdit, apply_edits
+    from server.fieldbook.edits import EditError, ObservationEdit, apply_edits
 
     text = boundary_text("relative K1 K2").replace("\n", "\r\n")  # CRLF, no final line end
     edit = ObservationEdit(line=0, action="relative", reason="adjacent\ncorners", date="2026-12-03",

@@ -17,7 +17,7 @@ import pytest
 from fastapi import FastAPI
 
 from server.web import create_app
-from server.web.relative_routes import PairRequestError, requested_pairs
+from server.web.relative import PairRequestError, requested_pairs
 from tests.test_relative_pairs import boundary_text
 
 with warnings.catch_warnings():

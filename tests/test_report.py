@@ -11,9 +11,11 @@ from pathlib import Path
 
 import pytest
 
-from server import __version__, report
+from server import __version__
+
+from server.report import tables as report
 from server.pipeline import adjust_fieldbook
-from server.result import (
+from server.results.result import (
     CAUTION,
     AdjustmentResult,
     Ellipse,

@@ -23,14 +23,14 @@ from PIL import Image
 from reportlab.graphics.shapes import Ellipse, Group
 
 from server import __version__
-from server.fieldbook import parse_fieldbook
-from server.pdf_drawings import network_drawing
-from server.pdf_kit import load_fonts
+from server.fieldbook.parser import parse_fieldbook
+from server.report.pdf_drawings import network_drawing
+from server.report.pdf_kit import load_fonts
 from server.pipeline import adjust_fieldbook, adjust_parsed
-from server.plot import network_plot_data
-from server.report_pdf import report_pdf
-from server.result import CAUTION, AdjustmentResult
-from server.standards import PRESETS, with_presets
+from server.report.plot import network_plot_data
+from server.report.pdf import report_pdf
+from server.results.result import CAUTION, AdjustmentResult
+from server.review.standards import PRESETS, with_presets
 
 DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"
 WHEN = datetime(2026, 3, 2, 9, 15, tzinfo=UTC)
@@ -320,7 +320,7 @@ def test_ellipses_are_drawn_along_their_azimuth(directions):
 
 def test_the_report_names_the_field_book_by_its_file_name_not_its_folders(tmp_path):
     """A report leaves the office: the surveyor's folders are nobody else's business."""
-    from server.report import report_html
+    from server.report.tables import report_html
 
     folder = tmp_path / "jobs" / "client-private"
     folder.mkdir(parents=True)
@@ -346,6 +346,6 @@ def test_the_report_names_the_field_book_by_its_file_name_not_its_folders(tmp_pa
      ("c.fieldbook", "c.fieldbook"), ("", "")],
 )
 def test_source_name_drops_the_folders_of_either_kind_of_path(source, name):
-    from server.report import source_name
+    from server.report.tables import source_name
 
     assert source_name(source) == name

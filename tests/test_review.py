@@ -8,12 +8,12 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from server.edits import EditError, ObservationEdit, apply_edits
-from server.fieldbook import parse_fieldbook
+from server.fieldbook.edits import EditError, ObservationEdit, apply_edits
+from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
-from server.robust import huber_weight, robust_adjustment
-from server.snooping import propose_snooping
-from server.tau_test import tau_critical, tau_test
+from server.review.robust import huber_weight, robust_adjustment
+from server.review.snooping import propose_snooping
+from server.review.tau import tau_critical, tau_test
 from tests.synthetic import grid_network
 
 TODAY = "2026-12-02"
@@ -202,7 +202,7 @@ def test_round_trip_exclude_download_reupload_gives_the_same_result():
     blunder = _line_of(text, "level M2 M4")
     first = parse_fieldbook(text)
     from server.pipeline import adjust_parsed
-    from server.snooping import with_ignored
+    from server.review.snooping import with_ignored
 
     rerun = adjust_parsed(with_ignored(first, {blunder}))
     edited = apply_edits(text, [ObservationEdit(blunder, "exclude", "staff misread", TODAY)])
@@ -366,8 +366,8 @@ def test_correcting_to_the_same_value_or_a_distance_with_a_unit_is_refused():
 
 
 def test_a_correction_survives_storage_as_json_and_reads_in_words():
-    from server.edits import booked_value
-    from server.review import decision_words, edit_from_json, edit_to_json
+    from server.fieldbook.edits import booked_value
+    from server.report.review import decision_words, edit_from_json, edit_to_json
 
     edit = ObservationEdit(5, "correct", "rod", TODAY, value="+0.8100",
                            previous=booked_value(BOOK, 5))

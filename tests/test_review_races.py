@@ -20,8 +20,9 @@ import pytest
 from fastapi import FastAPI
 
 from server.pipeline import adjust_fieldbook
-from server.storage import AlreadyQueued, DecisionsChanged, Store
-from server.web import create_app, review_routes
+from server.store.sqlite import AlreadyQueued, DecisionsChanged, Store
+from server.web import create_app
+from server.web import review as review_routes
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
 
 with warnings.catch_warnings():

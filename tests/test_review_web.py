@@ -18,7 +18,7 @@ from pathlib import Path
 import pytest
 from fastapi import FastAPI
 
-from server.storage import Store
+from server.store.sqlite import Store
 from server.web import create_app
 from server.web.app import DATABASE_NAME
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
@@ -369,7 +369,7 @@ def test_an_interrupted_run_stays_unfinished_and_the_earlier_run_is_reviewed(app
 
 
 def test_an_unexpected_engine_error_marks_the_run_failed_not_running(app, project, monkeypatch):
-    from server.web import review_routes
+    from server.web import review as review_routes
 
     def explode(*args, **kwargs):
         raise RuntimeError("engine bug")

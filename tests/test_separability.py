@@ -20,12 +20,12 @@ import numpy as np
 import pypdf
 import pytest
 
-from server import separability
-from server.fieldbook import parse_fieldbook
+from server.statistics import separability
+from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook, adjust_parsed
-from server.report import report_text, verdict
-from server.robust import robust_adjustment
-from server.snooping import propose_snooping, with_ignored
+from server.report.tables import report_text, verdict
+from server.review.robust import robust_adjustment
+from server.review.snooping import propose_snooping, with_ignored
 
 # Two benchmarks 3.000 m apart joined by three 1 km sections; the middle one is
 # booked 5 mm long (the case).  1 mm per section: the 5 mm misclosure
@@ -337,9 +337,9 @@ def test_review_compare_projects_and_reports_never_show_a_false_pass(tmp_path):
 @pytest.mark.parametrize("name", ["leveling", "2D held control", "2D free network",
                                   "2D free network with an azimuth", "2D weighted control"])
 def test_sparse_and_free_datum_paths_give_the_dense_correlations(name):
-    from server import adjust as engine
-    from server.network import build_network
-    from server.sparse import cholmod_available
+    from server.engine import gauss_newton as engine
+    from server.model.network import build_network
+    from server.engine.backends import cholmod_available
     from tests.test_sparse import NETWORKS
 
     network = build_network(parse_fieldbook(NETWORKS[name]))
@@ -413,7 +413,7 @@ def test_large_network_lists_agree_with_the_dense_computation(monkeypatch):
 def test_json_text_of_the_new_keys_is_what_the_standard_library_writes():
     import json
 
-    from server.json_output import dumps_indented
+    from server.results.json_text import dumps_indented
 
     result = adjust_fieldbook(CHAIN_AND_LOOP)
     data = result.to_json_dict()

@@ -16,16 +16,17 @@ import math
 import numpy as np
 import pytest
 
-from server import adjust as engine
-from server import kernels, sparse
-from server.assembly import Assembly, ControlEquation
+from server.engine import gauss_newton as engine
+from server.engine import kernels
+from server.engine import backends as sparse
+from server.model.assembly import Assembly, ControlEquation
 from server.errors import NetworkError
-from server.fieldbook import parse_fieldbook
-from server.json_output import dumps_indented
-from server.network import build_network
-from server.observations import EQUATIONS, a_priori_sigma
+from server.fieldbook.parser import parse_fieldbook
+from server.results.json_text import dumps_indented
+from server.model.network import build_network
+from server.model.observations import EQUATIONS, a_priori_sigma
 from server.pipeline import adjust_fieldbook
-from server.result import build_result
+from server.results.result import build_result
 from server.units import wrap_pi
 from tests.synthetic import grid_network
 

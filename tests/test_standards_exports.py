@@ -12,11 +12,11 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from server.exports import geojson_text
-from server.fieldbook import parse_fieldbook
+from server.formats.geojson import geojson_text
+from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook, adjust_parsed
-from server.report import points_csv
-from server.standards import FGCC_1984_LEVELING, PRESETS, with_presets
+from server.report.tables import points_csv
+from server.review.standards import FGCC_1984_LEVELING, PRESETS, with_presets
 
 DEMOS = Path(__file__).resolve().parent.parent / "demo_projects"
 

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from server import statistics as st
+from server.statistics import quality as st
 from server.pipeline import adjust_fieldbook
 
 # Two-sided 5 % chi-square bounds.  Published: NIST/SEMATECH e-Handbook of

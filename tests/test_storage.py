@@ -12,7 +12,7 @@ import pytest
 
 from server.errors import FieldbookError, NetworkError
 from server.pipeline import adjust_fieldbook
-from server.storage import SCHEMA_VERSION, Store, is_valid_id
+from server.store.sqlite import SCHEMA_VERSION, Store, is_valid_id
 
 DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"
 

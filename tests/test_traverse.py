@@ -1,4 +1,4 @@
-"""Traverse closures before adjustment (``server/traverse.py``) and ``tolerance angular= ratio=``.
+"""Traverse closures before adjustment (``server/model/traverse.py``) and ``tolerance angular= ratio=``.
 
 Outside references used here:
 
@@ -20,9 +20,9 @@ import math
 import pytest
 
 from server.errors import FieldbookError
-from server.fieldbook import parse_fieldbook
+from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_parsed
-from server.traverse import closure, traverse_misclosures
+from server.model.traverse import closure, traverse_misclosures
 from server.units import ARCSEC_PER_RAD
 
 FT = 0.3048
@@ -309,7 +309,7 @@ def test_unknown_tolerance_option_lists_the_new_ones() -> None:
 def test_stored_result_keeps_the_traverse_figures() -> None:
     import dataclasses
 
-    from server.storage import _result_from_detail
+    from server.store.sqlite import _result_from_detail
 
     result = adjust_text(_purdue_fieldbook(WAC_PLAIN))
     again = _result_from_detail(dataclasses.asdict(result))
@@ -318,7 +318,7 @@ def test_stored_result_keeps_the_traverse_figures() -> None:
 
 
 def test_reports_show_the_traverse_closure() -> None:
-    from server.report import report_html, report_text
+    from server.report.tables import report_html, report_text
 
     result = adjust_text(_purdue_fieldbook(WAC_PLAIN))
     text = report_text(result)

@@ -14,7 +14,7 @@ from pathlib import Path
 import pytest
 from fastapi import FastAPI
 
-from server.result import CAUTION
+from server.results.result import CAUTION
 from server.web import create_app
 
 with warnings.catch_warnings():
@@ -426,7 +426,7 @@ def test_server_error_page_never_shows_a_traceback(app):
 
 
 def test_adjustment_runs_off_the_event_loop(client, monkeypatch):
-    from server.web import routes
+    from server.web import pages as routes
 
     seen: list[bool] = []
 

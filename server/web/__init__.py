@@ -2,6 +2,6 @@
 
 from __future__ import annotations
 
-from .app import create_app
+from server.web.app import create_app
 
 __all__ = ["create_app"]

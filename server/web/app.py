@@ -23,18 +23,18 @@ from starlette.middleware.gzip import DEFAULT_EXCLUDED_CONTENT_TYPES, GZipMiddle
 from starlette.middleware.trustedhost import TrustedHostMiddleware
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
-from .. import __version__
-from ..errors import FieldbookError, NetworkError, SurveyError
-from ..result import CAUTION
-from ..settings import (
+from server import __version__
+from server.errors import FieldbookError, NetworkError, SurveyError
+from server.results.result import CAUTION
+from server.settings import (
     DEFAULT_MAX_UPLOAD_BYTES,
     WorkLimits,
     env_int,
     service_limits,
     service_queue,
 )
-from ..storage import RunGone, Store, error_record
-from .jobs import AdjustmentQueue, Jobs
+from server.store.sqlite import RunGone, Store, error_record
+from server.web.jobs import AdjustmentQueue, Jobs
 
 logger = logging.getLogger("stationfit.web")
 
@@ -465,7 +465,10 @@ def create_app(
     ``keep_deleted_days`` (how long a deleted project can be restored; 0: erased at once)
     defaults to STATIONFIT_KEEP_DELETED_DAYS, else 30.
     """
-    from . import interrupted_routes, relative_routes, review_routes, routes
+    from server.web import interrupted as interrupted_routes
+    from server.web import relative as relative_routes
+    from server.web import review as review_routes
+    from server.web import pages as routes
 
     if max_upload_bytes is None:
         max_upload_bytes = env_int("STATIONFIT_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES)

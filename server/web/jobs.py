@@ -22,7 +22,7 @@ from collections import deque
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 
-from ..storage import RunGone
+from server.store.sqlite import RunGone
 
 logger = logging.getLogger("stationfit.web")
 

@@ -1,0 +1,1 @@
+"""engine: see DEVELOPERS.md for the architecture map."""

@@ -1,0 +1,1 @@
+"""fieldbook: see DEVELOPERS.md for the architecture map."""

@@ -1,0 +1,1025 @@
+"""Field book text → ``Fieldbook``: every statement checked, every problem reported at once.
+
+What is accepted, and every decision the format leaves open, is written down
+for users in ``docs/fieldbook.md`` (``tests/test_manual.py`` holds the two
+together).  Tokens, grammars and single values are read in
+``fieldbook_lexer.py``; this module gives statements their meaning: one
+small handler per statement, found through the ``_HANDLERS`` table, and a
+parser object holding what is in force (units, defaults, scale, an open
+directions round).
+
+Everything produced is SI (metres, radians).  Problems are collected as
+``Issue`` objects and raised together in one ``FieldbookError``.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import math
+import re
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import TypeVar
+
+from server.errors import FieldbookError
+from server.fieldbook.lexer import (
+    CONTROL_RULE,
+    DIRECTION_ENTRY,
+    GRAMMARS,
+    KEYWORDS,
+    MAX_LENGTH_M,
+    MIN_DISTANCE_M,
+    MISCLOSURE_RULE,
+    RELATIVE_RULE,
+    SD_RULES,
+    Binder,
+    Grammar,
+    IssueLog,
+    LexError,
+    Statement,
+    Token,
+    bounded_length,
+    decode_lines,
+    file_number,
+    observed_angle,
+    option_length,
+    point_name,
+    read_quantity,
+    show,
+    sniff_foreign,
+    suggest,
+    to_bytes,
+    tokenize,
+)
+from server.fieldbook.model import (
+    PRECISION_METHODS,
+    DirectionRound,
+    Fieldbook,
+    Observation,
+    PointStatement,
+    RelativePair,
+    TestLevels,
+    TraverseTolerance,
+)
+from server.fieldbook.point_names import near_miss_warnings
+from server.model.traverse import parse_angular_allowance, parse_ratio
+from server.units import (
+    FILE_ANGLE_UNITS,
+    FILE_LENGTH_UNITS,
+    LENGTH_FACTORS,
+    Quantity,
+    UnitError,
+    parse_number,
+    wrap_2pi,
+)
+
+#: A combined grid scale factor outside this range is a unit mix-up or a typo, not a projection.
+SCALE_LIMITS = (0.9, 1.1)
+#: Outside this range the factor is accepted with a warning.
+SCALE_USUAL = (0.995, 1.005)
+#: Kinds whose centering error the network adds (not azimuths, not 3D kinds, not leveling).
+CENTERED_KINDS = frozenset({"distance", "angle", "direction"})
+# Exactly 180° written in gon or deg can land a rounding error past π.
+_ZENITH_SLACK = 1e-12
+#: Smallest significance level (alpha, snooping) whose critical values are still computable.
+MIN_SIGNIFICANCE = 1e-9
+
+T = TypeVar("T")
+
+
+def parse_fieldbook(text: str | bytes, *, source: str = "") -> Fieldbook:
+    """Read a field book into frozen statements with SI values.
+
+    Parameters
+    ----------
+    text : str or bytes
+        The whole file.  Bytes are decoded as UTF-8 line by line, so a line
+        with other bytes is reported and the rest is still read.  A byte-order
+        mark and LF, CRLF or CR line ends are accepted.
+    source : str, optional
+        File name used in error messages (``FILE:LINE: message``).
+
+    Returns
+    -------
+    Fieldbook
+        Header settings, points, observations (one per direction of a round)
+        and rounds, in file order, with non-fatal ``warnings`` and the SHA-256
+        of the raw input bytes (of its UTF-8 encoding when given a ``str``).
+
+    Raises
+    ------
+    FieldbookError
+        If anything is wrong.  ``issues`` lists every problem found (the first
+        50, then a count of the rest), each with its line number, the offending
+        token and a sentence a surveyor can act on.
+
+    Notes
+    -----
+    Lengths are metres (file values times the unit factor; horizontal
+    distances also times the ``scale`` in force); angles are radians, with
+    horizontal angles, directions and azimuths reduced to [0, 2π).  The time
+    taken grows linearly with the length of the file.
+
+    Examples
+    --------
+    >>> book = parse_fieldbook("defaults level=1mm/sqrtkm\\nlevel A B +0.5 len=0.4km\\n")
+    >>> book.observations[0].value, book.observations[0].length_km
+    (0.5, 0.4)
+    """
+    raw = to_bytes(text)
+    digest = hashlib.sha256(raw).hexdigest()
+    lines, bad_lines = decode_lines(raw)
+    foreign = sniff_foreign(raw, lines, KEYWORDS)
+    if foreign is not None:
+        raise FieldbookError([foreign], source)
+    parser = _Parser(fast=_FAST_LINES)
+    parser.run(lines, bad_lines)
+    if parser.errors.count:
+        raise FieldbookError(parser.errors.result(), source, count=parser.errors.count)
+    for issue in near_miss_warnings(parser.points, parser.observations):
+        parser.warnings.add(issue.line, issue.token, issue.message)
+    return parser.fieldbook(source, digest)
+
+
+@dataclass(frozen=True, slots=True)
+class _Default:
+    """A standard deviation in force: as parsed, as written, and where."""
+
+    sigma: Quantity | None  # None: the statement was wrong and has been reported
+    text: str
+    line: int
+
+
+@dataclass(slots=True)
+class _Round:
+    """A ``directions`` round still open."""
+
+    line: int
+    at: str | None
+    sigma: _Default | None
+    note: str = ""
+    ignored: bool = False
+    flawed: bool = False
+    lines: list[int] = field(default_factory=list)
+    sd_missing_reported: bool = False
+
+
+class _Parser:
+    """What is in force while reading (units, defaults, scale, a round) and what was read."""
+
+    def __init__(self, fast: bool = False) -> None:
+        self.fast = fast
+        self.errors = IssueLog("errors")
+        self.warnings = IssueLog("warnings")
+        self.binder = Binder(GRAMMARS, self.errors)
+        self.title = ""
+        self.length_unit, self.length_factor = "m", 1.0
+        self.angle_unit, self.angle_unit_known = "dms", True
+        self.tests = TestLevels()
+        self.misclosure: Quantity | None = None
+        self.relative: Quantity | None = None
+        self.traverse = TraverseTolerance()
+        self.defaults: dict[str, _Default] = {}
+        self.centering = 0.0
+        self.scale = 1.0
+        self.header_lines: dict[str, int] = {}
+        self.body_line: int | None = None
+        self.statements = 0
+        self.points: list[PointStatement] = []
+        self.point_lines: dict[str, int] = {}
+        self.observations: list[Observation] = []
+        self.rounds: list[DirectionRound] = []
+        self.round: _Round | None = None
+        self.relative_pairs: list[RelativePair] = []
+
+    # ---- driving
+
+    def run(self, lines: list[str], bad_lines: dict[int, tuple[str, str]]) -> None:
+        fast = self.fast_line if self.fast else None
+        for index, text in enumerate(lines):
+            number = index + 1
+            if index in bad_lines:
+                self.error(number, *bad_lines[index])
+            elif fast is not None and fast(number, text):
+                pass  # a plain, well-formed observation line, read without tokens
+            else:
+                try:
+                    tokens = tokenize(text)
+                except LexError as exc:
+                    self.error(number, exc.token, f"'{show(exc.token)}': {exc.message}")
+                    if _DEFAULTS_LINE.match(text):
+                        self.defaults_unread(number, _KEY_WORDS.findall(text))
+                else:
+                    if not tokens:
+                        continue
+                    self.statement(number, tokens)
+            self.statements += 1
+        if self.round is not None:
+            at, line = self.round.at or "?", self.round.line
+            self.error(
+                line,
+                at,
+                f"the directions round at {at} on line {line} is never closed; "
+                "add 'end' after its last direction",
+            )
+            self.close_round()
+        if self.relative_pairs:
+            self.check_relative_names()
+
+    def fieldbook(self, source: str, digest: str) -> Fieldbook:
+        return Fieldbook(
+            source=source,
+            version=1,
+            title=self.title,
+            length_unit=self.length_unit,
+            angle_unit=self.angle_unit,
+            tests=self.tests,
+            misclosure_tolerance=self.misclosure,
+            relative_tolerance=self.relative,
+            traverse_tolerance=self.traverse,
+            points=tuple(self.points),
+            observations=tuple(self.observations),
+            rounds=tuple(self.rounds),
+            relative_pairs=tuple(self.relative_pairs),
+            warnings=self.warnings.result(),
+            text_sha256=digest,
+        )
+
+    def error(self, line: int, token: str, message: str) -> None:
+        self.errors.add(line, token, message)
+
+    # ---- the fast path: the common well-formed observation lines
+
+    def fast_line(self, line: int, text: str) -> bool:
+        """Read a plain ``level``/``distance`` line or a direction of a round, if it is one.
+
+        True when the line was taken (its observation appended); False, with
+        nothing changed, whenever anything is unusual, so that the careful
+        path reads the line and reports exactly what it always reports.  Only
+        lines the careful path would accept without a word are taken here, and
+        they give the same ``Observation`` (``tests/test_fast_paths.py``).
+        """
+        if self.round is not None:
+            match = _FAST_DIRECTION.match(text)
+            return match is not None and self.fast_direction(line, *match.groups())
+        if self.body_line is None:
+            return False
+        match = _FAST_OBSERVATION.match(text)
+        if match is None:
+            return False
+        kind, from_point, to, value_text, length_text, length_unit = match.groups()
+        if from_point == to or from_point.lower() == "end" or to.lower() == "end":
+            return False
+        default = self.defaults.get(kind)
+        if default is None or default.sigma is None:
+            return False
+        sigma = default.sigma
+        # as units.parse_number, file_number and bounded_length read them (the pattern
+        # has checked the spelling of the numbers)
+        number = float(value_text)
+        if not math.isfinite(number):
+            return False
+        value = number * self.length_factor
+        if abs(value) > MAX_LENGTH_M:
+            return False
+        length_km = None
+        if kind == "level":
+            if sigma.per_setup:
+                return False  # needs setups=
+            if length_text is None:
+                if sigma.per_sqrtkm:
+                    return False
+            else:
+                factor = LENGTH_FACTORS.get(length_unit.lower())
+                number = float(length_text)
+                if factor is None or not math.isfinite(number):
+                    return False
+                length_m = number * factor  # as units.parse_length and option_length
+                if abs(length_m) > MAX_LENGTH_M or length_m <= 0.0 or length_m < MIN_DISTANCE_M:
+                    return False
+                length_km = length_m / 1000.0
+            scale = 1.0
+            centering = 0.0
+        else:
+            if length_text is not None or value <= 0.0 or value < MIN_DISTANCE_M:
+                return False
+            scale = self.scale
+            centering = self.centering
+        self.observations.append(
+            Observation(
+                line, kind, from_point, None, to, value * scale, sigma, centering, scale, length_km,
+                booked=value,
+            )
+        )
+        self.statements += 1
+        return True
+
+    def fast_direction(self, line: int, to: str, value_text: str) -> bool:
+        """``TO D:M:S`` inside a round with its standard deviation in force (see ``fast_line``)."""
+        round_ = self.round
+        assert round_ is not None
+        at = round_.at
+        if at is None or to == at or to.lower() in GRAMMARS or not self.angle_unit_known:
+            return False
+        sigma = round_.sigma or self.defaults.get("direction")
+        if sigma is None or sigma.sigma is None:
+            return False
+        try:
+            booked = observed_angle(value_text, self.angle_unit)
+        except UnitError:
+            return False
+        value = wrap_2pi(booked)
+        round_.lines.append(line)
+        self.observations.append(
+            Observation(
+                line=line,
+                kind="direction",
+                from_point=at,
+                at=at,
+                to=to,
+                value=value,
+                sigma=sigma.sigma,
+                centering=self.centering,
+                round_line=round_.line,
+                ignored=round_.ignored,
+                note=round_.note,
+                booked=booked,
+            )
+        )
+        self.statements += 1
+        return True
+
+    def statement(self, line: int, tokens: list[Token]) -> None:
+        first = tokens[0]
+        word = first.value.lower() if first.key is None and not first.quoted else ""
+        if self.round is not None:
+            if word == "end":
+                self.binder.bind(line, first.raw, GRAMMARS["end"], tokens[1:])
+                self.close_round()
+                return
+            if word not in GRAMMARS:
+                self.direction(line, tokens)
+                return
+            self.error(
+                line,
+                first.raw,
+                f"'{show(first.raw)}' is a statement, but the directions round at "
+                f"{self.round.at or '?'} on line {self.round.line} is not closed; "
+                "put 'end' on the line before this one",
+            )
+            self.close_round()
+        grammar = GRAMMARS.get(word)
+        if grammar is None:
+            name = first.key if first.key is not None else first.value
+            hint = "" if self.errors.full else suggest(name, KEYWORDS)
+            hint = hint or (
+                "; a line starts with a keyword such as point, level, distance or directions"
+            )
+            self.error(line, first.raw, f"'{show(first.raw)}' is not a statement{hint}")
+            return
+        # Body lines after the first need no placement check; skipping the call saves time.
+        needs_check = grammar.section != "body" or self.body_line is None
+        if needs_check and not self.placement_allows(line, word, first.raw, grammar):
+            return
+        st = self.binder.bind(line, first.raw, grammar, tokens[1:])
+        if st is not None:
+            _HANDLERS[word](self, st)
+        elif word == "directions":
+            # Still swallow the round's lines, so they are not read as unknown statements.
+            self.round = _Round(line, None, None, flawed=True)
+        if word == "defaults" and (st is None or st.flawed):
+            self.defaults_unread(line, [t.key or t.value for t in tokens[1:]])
+
+    def placement_allows(self, line: int, word: str, raw: str, grammar: Grammar) -> bool:
+        """Header statements once and before the body; ``fieldbook`` first of all."""
+        if grammar.section == "body":
+            self.body_line = self.body_line or line
+            return True
+        if grammar.section != "header":
+            return True
+        earlier = self.header_lines.setdefault(word, line)
+        if earlier != line:
+            self.error(
+                line, raw, f"'{word}' is already given on line {earlier}; it may appear once"
+            )
+        elif self.body_line is not None:
+            self.error(
+                line,
+                raw,
+                f"'{word}' must come before the first point or observation (line {self.body_line})",
+            )
+        elif word == "fieldbook" and self.statements:
+            self.error(line, raw, "'fieldbook' must be the first statement of the file")
+        else:
+            return True
+        return False
+
+    def read(
+        self, st: Statement, token: Token, reader: Callable[..., T], *args: object
+    ) -> T | None:
+        """``reader(token.value, *args)``, or None after reporting its ``UnitError``."""
+        try:
+            return reader(token.value, *args)
+        except UnitError as exc:
+            self.error(st.line, token.raw, str(exc))
+            return None
+
+    def option(self, st: Statement, key: str, reader: Callable[..., T], *args: object) -> T | None:
+        token = st.options.get(key)
+        return None if token is None else self.read(st, token, reader, *args)
+
+    def length(self, st: Statement, token: Token, what: str) -> float | None:
+        """A coordinate or observed length in the file's unit, in metres."""
+        value = self.read(st, token, file_number, what, self.length_unit)
+        if value is None:
+            return None
+        return self.read(st, token, bounded_length, value * self.length_factor)
+
+    def angle(self, st: Statement, token: Token) -> float | None:
+        if not self.angle_unit_known:
+            return None  # the 'units' line is wrong; one error there is enough
+        return self.read(st, token, observed_angle, self.angle_unit)
+
+    def report_empty(self, st: Statement) -> None:
+        if not st.flawed:
+            grammar = GRAMMARS[st.word.lower()]
+            self.error(st.line, st.word, f"{grammar.name} needs {grammar.hint}")
+
+    # ---- header and settings
+
+    def version(self, st: Statement) -> None:
+        version = _whole_number(st.values[0].value)
+        if version == 1:
+            return
+        if version is not None:
+            message = f"field book format version {version} is not supported; this program reads version 1"
+        else:
+            message = f"'{show(st.values[0].value)}' is not a format version; write 'fieldbook 1'"
+        self.error(st.line, st.values[0].raw, message)
+
+    def set_title(self, st: Statement) -> None:
+        self.title = st.values[0].value
+
+    def units(self, st: Statement) -> None:
+        if not st.options:
+            self.report_empty(st)
+        if (token := st.options.get("length")) is not None:
+            if (unit := token.value.lower()) in FILE_LENGTH_UNITS:
+                self.length_unit, self.length_factor = unit, LENGTH_FACTORS[unit]
+            else:
+                self.error(
+                    st.line,
+                    token.raw,
+                    f"'{show(token.value)}' is not a length unit of a field book; use m, "
+                    "ft (international foot, 0.3048 m) or usft (US survey foot, 1200/3937 m)",
+                )
+        if (token := st.options.get("angle")) is not None:
+            if (unit := token.value.lower()) in FILE_ANGLE_UNITS:
+                self.angle_unit = unit
+            else:
+                self.angle_unit_known = False
+                self.error(
+                    st.line,
+                    token.raw,
+                    f"'{show(token.value)}' is not an angle unit of a field book; use dms "
+                    "(degrees:minutes:seconds), deg (decimal degrees) or gon",
+                )
+
+    def set_tests(self, st: Statement) -> None:
+        if not st.options:
+            self.report_empty(st)
+        levels: dict[str, float | str] = {}
+        for key, token in st.options.items():
+            if key == "precision":
+                if (method := self.precision_method(st, token)) is not None:
+                    levels[key] = method
+                continue
+            value = self.read(st, token, parse_number)
+            if value is not None and not 0.0 < value < 1.0:
+                self.error(
+                    st.line,
+                    token.raw,
+                    f"'{show(token.raw)}': {key} is a probability, strictly between 0 and 1",
+                )
+            elif value is not None and key in ("alpha", "snooping") and value < MIN_SIGNIFICANCE:
+                self.error(
+                    st.line,
+                    token.raw,
+                    f"'{show(token.raw)}': a significance level below {MIN_SIGNIFICANCE:g} "
+                    "cannot be tested; the usual values are 0.05 (alpha) and 0.001 (snooping)",
+                )
+            elif value is not None:
+                levels[key] = value
+        self.tests = TestLevels(**levels)  # type: ignore[arg-type]
+
+    def precision_method(self, st: Statement, token: Token) -> str | None:
+        """``precision=`` names how precisions are scaled; any case is accepted."""
+        method = token.value.lower()
+        if method in PRECISION_METHODS:
+            return method
+        self.error(
+            st.line,
+            token.raw,
+            f"'{show(token.value)}' is not a precision scaling{suggest(method, PRECISION_METHODS)} "
+            "(precision= takes posterior: by the a posteriori variance factor, prior: by the "
+            "a priori one, or larger: by the larger of the two)",
+        )
+        return None
+
+    def tolerance(self, st: Statement) -> None:
+        if not st.options:
+            self.report_empty(st)
+        self.misclosure = self.option(st, "misclosure", read_quantity, MISCLOSURE_RULE)
+        self.relative = self.option(st, "relative", read_quantity, RELATIVE_RULE)
+        self.traverse = TraverseTolerance(
+            self.option(st, "angular", parse_angular_allowance), self.option(st, "ratio", parse_ratio)
+        )
+
+    def set_defaults(self, st: Statement) -> None:
+        """Change the defaults of the kinds named; the others stay in force."""
+        if not st.options:
+            self.report_empty(st)
+        for key, token in st.options.items():
+            sigma = self.read(st, token, read_quantity, SD_RULES[key])
+            if key == "centering":
+                self.centering = sigma.constant if sigma is not None else self.centering
+            else:
+                # A wrong default stays as None so its observations do not repeat the error.
+                self.defaults[key] = _Default(sigma, token.value, st.line)
+
+    def defaults_unread(self, line: int, words: list[str]) -> None:
+        """Kinds a wrong ``defaults`` line meant to set, marked as reported (see ``set_defaults``).
+
+        The line's own error is the root cause; the observations after it would otherwise
+        each say that they have no standard deviation.  A misspelt kind counts as the kind
+        it is closest to.
+        """
+        for word in words:
+            word = word.lower()
+            kind = word if word in _SD_KINDS else next(
+                iter(difflib.get_close_matches(word, _SD_KINDS, n=1, cutoff=0.75)), None
+            )
+            default = self.defaults.get(kind) if kind else None
+            if kind and (default is None or default.line != line):
+                self.defaults[kind] = _Default(None, word, line)
+
+    def set_scale(self, st: Statement) -> None:
+        token = st.options.get("factor")
+        if token is None:
+            self.report_empty(st)
+            return
+        factor = self.read(st, token, parse_number)
+        if factor is None:
+            return
+        (low, high), (usual_low, usual_high) = SCALE_LIMITS, SCALE_USUAL
+        if not low <= factor <= high:
+            self.error(
+                st.line,
+                token.raw,
+                f"'{show(token.raw)}': a combined grid scale factor must lie between {low} and "
+                f"{high} (real ones differ from 1 by a few hundred ppm); is this a unit conversion?",
+            )
+            return
+        if not usual_low <= factor <= usual_high:
+            self.warnings.add(
+                st.line,
+                token.raw,
+                f"scale factor {factor} differs from 1 by more than 0.5%; check that it is "
+                "the combined grid scale factor",
+            )
+        self.scale = factor
+
+    # ---- points
+
+    def point(self, st: Statement) -> None:
+        before = self.errors.count
+        token = st.values[0]
+        name = self.read(st, token, point_name)
+        if name is not None:
+            earlier = self.point_lines.setdefault(name, st.line)
+            if earlier != st.line:
+                self.error(
+                    st.line, token.raw, f"point {name} is already declared on line {earlier}"
+                )
+        label = name or show(token.value)
+        east, north, height = (
+            None if (t := st.options.get(key)) is None else self.length(st, t, "coordinates")
+            for key in ("east", "north", "height")
+        )
+        given = {"h"} if "height" in st.options else set()
+        if "east" in st.options and "north" in st.options:
+            given.add("en")
+        elif "east" in st.options or "north" in st.options:
+            has, lacks = ("east", "north") if "east" in st.options else ("north", "east")
+            self.error(
+                st.line,
+                st.options[has].raw,
+                f"point {label} has {has}= but no {lacks}=; eastings and northings go together",
+            )
+        fixed = self.point_fixed(st, label, given)
+        weights = self.point_weights(st, label, given, fixed)
+        if self.errors.count != before or name is None:
+            return
+        self.points.append(
+            PointStatement(
+                line=st.line,
+                name=name,
+                east=east,
+                north=north,
+                height=height,
+                fixed=_components(fixed),
+                weighted=_components(set(weights)),
+                sd_en=weights.get("en"),
+                sd_h=weights.get("h"),
+                note=st.text("note"),
+            )
+        )
+
+    def point_fixed(self, st: Statement, label: str, given: set[str]) -> set[str]:
+        """Components held fixed: ``fix`` holds every given one, ``fix=`` names them."""
+        token = st.options.get("fix")
+        if "fix" in st.flags:
+            if token is not None:
+                self.error(st.line, token.raw, "give either 'fix' or 'fix=...', not both")
+            elif not given:
+                message = f"'fix' has nothing to hold: point {label} has no coordinates"
+                self.error(st.line, "fix", message)
+            return set(given)
+        if token is None:
+            return set()
+        choice = token.value.lower()
+        if choice not in ("en", "h", "enh"):
+            hint = suggest(choice, ("en", "h", "enh"))
+            self.error(st.line, token.raw, f"'{show(token.raw)}': fix= takes en, h or enh{hint}")
+            return set()
+        wanted = {"en", "h"} if choice == "enh" else {choice}
+        for component in sorted(wanted - given):
+            message = f"'{show(token.raw)}' needs {_KEYS[component]} on point {label}"
+            self.error(st.line, token.raw, message)
+        return wanted & given
+
+    def point_weights(
+        self, st: Statement, label: str, given: set[str], fixed: set[str]
+    ) -> dict[str, float]:
+        """Weighted control by component: ``sd=`` for every free given one, or sd_en/sd_h."""
+        sd = st.options.get("sd")
+        if sd is not None:
+            free = given - fixed
+            if "sd_en" in st.options or "sd_h" in st.options:
+                self.error(st.line, sd.raw, "give either sd= or sd_en=/sd_h=, not both")
+            elif not free:
+                why = (
+                    "it has no coordinates"
+                    if not given
+                    else "every given component is fixed, and none can be both fixed and weighted"
+                )
+                message = f"'{show(sd.raw)}' has nothing to weight on point {label}: {why}"
+                self.error(st.line, sd.raw, message)
+            elif (value := self.read(st, sd, read_quantity, CONTROL_RULE)) is not None:
+                return dict.fromkeys(free, value.constant)
+            return {}
+        weights = {}
+        for component, key in (("en", "sd_en"), ("h", "sd_h")):
+            if (token := st.options.get(key)) is None:
+                continue
+            value = self.read(st, token, read_quantity, CONTROL_RULE)
+            if component not in given:
+                message = f"'{show(token.raw)}' needs {_KEYS[component]} on point {label}"
+                self.error(st.line, token.raw, message)
+            elif component in fixed:
+                message = f"the {_NAMES[component]} of {label} is fixed; it cannot also be weighted"
+                self.error(st.line, token.raw, message)
+            elif value is not None:
+                weights[component] = value.constant
+        return weights
+
+    # ---- observations
+
+    def observation(self, st: Statement) -> None:
+        """``level``, ``distance``, ``angle``, ``azimuth``, ``slope`` and ``zenith``."""
+        before = self.errors.count
+        kind = st.word.lower()
+        *point_tokens, value_token = st.values
+        names = [self.read(st, token, point_name) for token in point_tokens]
+        self.check_distinct(st, kind, names)
+        booked = _VALUE_READERS[kind](self, st, value_token)
+        # horizontal angles are used in [0, 2π); the booked value keeps what was written
+        value = wrap_2pi(booked) if booked is not None and kind in _WRAPPED_KINDS else booked
+        sigma = self.sigma(st, kind)
+        length_km = setups = None
+        if kind == "level":
+            length_km, setups = self.level_options(st, sigma)
+        hi = self.option(st, "hi", option_length)
+        ht = self.option(st, "ht", option_length)
+        if sigma is None:
+            self.report_missing_sigma(st, kind, "sd=")
+        if self.errors.count != before or sigma is None or sigma.sigma is None:
+            return
+        if value is None or None in names:
+            return  # only after an error reported elsewhere (a wrong 'units angle=')
+        scale = self.scale if kind == "distance" else 1.0
+        self.observations.append(
+            Observation(
+                line=st.line,
+                kind=kind,
+                from_point=names[0],  # type: ignore[arg-type]  # None ruled out above
+                at=names[1] if kind == "angle" else None,
+                to=names[-1],  # type: ignore[arg-type]
+                value=value * scale,
+                sigma=sigma.sigma,
+                centering=self.centering if kind in CENTERED_KINDS else 0.0,
+                scale=scale,
+                length_km=length_km,
+                setups=setups,
+                instrument_height=hi,
+                target_height=ht,
+                ignored="ignore" in st.flags,
+                note=st.text("note"),
+                booked=booked,
+            )
+        )
+
+    def sigma(self, st: Statement, kind: str) -> _Default | None:
+        """The standard deviation in force: the observation's own ``sd=`` or the default."""
+        token = st.options.get("sd")
+        if token is None:
+            return self.defaults.get(kind)
+        sigma = self.read(st, token, read_quantity, SD_RULES[kind])
+        return _Default(sigma, token.value, st.line)
+
+    def report_missing_sigma(self, st: Statement, kind: str, where: str) -> None:
+        if not st.flawed:
+            self.error(
+                st.line,
+                st.word,
+                f"no standard deviation for this {kind}: give {where} or put a "
+                f"'defaults {kind}=...' line before it",
+            )
+
+    def check_distinct(self, st: Statement, kind: str, names: list[str | None]) -> None:
+        if kind != "angle":
+            if names[0] is not None and names[0] == names[1]:
+                message = f"{kind} from {names[0]} to itself: FROM and TO must be different points"
+                self.error(st.line, st.values[1].raw, message)
+            return
+        back, at, fore = names
+        if back is not None and back == fore:
+            message = f"an angle needs two different points: BACK and FORE are both {back}"
+            self.error(st.line, st.values[2].raw, message)
+        if at is not None and at in (back, fore):
+            message = f"angle at {at} to itself: AT must differ from BACK and FORE"
+            self.error(st.line, st.values[1].raw, message)
+
+    def level_options(
+        self, st: Statement, sigma: _Default | None
+    ) -> tuple[float | None, int | None]:
+        """``len=`` and ``setups=``, and whether the standard deviation in force needs them."""
+        length_m = self.option(st, "len", option_length)
+        if length_m is not None and length_m <= 0.0:
+            self.error(st.line, st.options["len"].raw, "a section length must be greater than zero")
+        elif length_m is not None and length_m < MIN_DISTANCE_M:
+            message = "a section length must be at least 1 mm; check the unit (len=0.35km)"
+            self.error(st.line, st.options["len"].raw, message)
+        setups: int | None = None
+        if (token := st.options.get("setups")) is not None:
+            setups = _whole_number(token.value)
+            if not setups:
+                message = f"'{show(token.raw)}': setups must be a whole number, at least 1"
+                self.error(st.line, token.raw, message)
+        if sigma is not None and sigma.sigma is not None:
+            where = "its sd=" if sigma.line == st.line else f"defaults on line {sigma.line}"
+            for part, key, what, example in _LEVEL_PARTS:
+                if getattr(sigma.sigma, part) and key not in st.options:
+                    self.error(
+                        st.line,
+                        st.word,
+                        f"this level has no {key}=, but its standard deviation {sigma.text} "
+                        f"({where}) has a {what} part; give {example}",
+                    )
+        return (None if length_m is None else length_m / 1000.0), setups
+
+    def read_level(self, st: Statement, token: Token) -> float | None:
+        return self.length(st, token, "observed values")
+
+    def read_distance(self, st: Statement, token: Token) -> float | None:
+        value = self.length(st, token, "observed values")
+        if value is not None and value <= 0.0:
+            message = f"'{show(token.raw)}': a distance must be greater than zero"
+            self.error(st.line, token.raw, message)
+        elif value is not None and value < MIN_DISTANCE_M:
+            message = (f"'{show(token.raw)}': a distance shorter than 1 mm is not a measured "
+                       "distance; check the number and the file's length unit")
+            self.error(st.line, token.raw, message)
+            return None
+        return value
+
+    def read_zenith(self, st: Statement, token: Token) -> float | None:
+        value = self.angle(st, token)
+        if value is None or -_ZENITH_SLACK <= value <= math.pi + _ZENITH_SLACK:
+            return None if value is None else min(max(value, 0.0), math.pi)
+        message = f"'{show(token.raw)}': a zenith angle must lie between 0 and 180°"
+        self.error(st.line, token.raw, message)
+        return None
+
+    # ---- directions rounds
+
+    def directions(self, st: Statement) -> None:
+        at = self.read(st, st.values[0], point_name)
+        sigma = self.sigma(st, "direction") if "sd" in st.options else None
+        note, ignored = st.text("note"), "ignore" in st.flags
+        self.round = _Round(st.line, at, sigma, note, ignored, flawed=st.flawed)
+
+    def direction(self, line: int, tokens: list[Token]) -> None:
+        """One ``TO VALUE [options]`` line inside a round."""
+        round_ = self.round
+        assert round_ is not None  # only called while a round is open
+        round_.lines.append(line)
+        before = self.errors.count
+        st = self.binder.bind(line, tokens[0].raw, DIRECTION_ENTRY, tokens)
+        if st is None:
+            return
+        to = self.read(st, st.values[0], point_name)
+        if to is not None and to == round_.at:
+            message = f"direction from {to} to itself: TO must differ from AT"
+            self.error(line, st.values[0].raw, message)
+        booked = self.angle(st, st.values[1])
+        value = None if booked is None else wrap_2pi(booked)
+        own = self.sigma(st, "direction") if "sd" in st.options else None
+        sigma = own or round_.sigma or self.defaults.get("direction")
+        if sigma is None and not (round_.sd_missing_reported or round_.flawed):
+            round_.sd_missing_reported = True
+            self.report_missing_sigma(st, "direction", "sd= on the 'directions' line")
+        if self.errors.count != before or sigma is None or sigma.sigma is None:
+            return
+        if round_.at is None or to is None or value is None:
+            return
+        self.observations.append(
+            Observation(
+                line=line,
+                kind="direction",
+                from_point=round_.at,
+                at=round_.at,
+                to=to,
+                value=value,
+                sigma=sigma.sigma,
+                centering=self.centering,
+                round_line=round_.line,
+                ignored=round_.ignored or "ignore" in st.flags,
+                note=st.text("note") or round_.note,
+                booked=booked,
+            )
+        )
+
+    def close_round(self) -> None:
+        round_ = self.round
+        assert round_ is not None  # only called while a round is open
+        self.round = None
+        at, line = round_.at or "?", round_.line
+        if not round_.lines:
+            self.error(
+                line,
+                at,
+                f"the directions round at {at} on line {line} is empty; "
+                "list its 'TO DIRECTION' lines before 'end'",
+            )
+        elif len(round_.lines) == 1:
+            self.warnings.add(
+                line,
+                at,
+                f"the directions round at {at} on line {line} has only one direction; "
+                "it adds no redundancy",
+            )
+        if round_.at is not None:
+            self.rounds.append(DirectionRound(line, round_.at, tuple(round_.lines)))
+
+    # ---- relative precision asked for
+
+    def relative_pair(self, st: Statement) -> None:
+        """``relative A B``: the names are checked once the whole file is read."""
+        first, second = (self.read(st, token, point_name) for token in st.values)
+        if first is None or second is None:
+            return
+        if first == second:
+            message = f"relative from {first} to itself: name two different points"
+            self.error(st.line, st.values[1].raw, message)
+            return
+        key = frozenset((first, second))
+        for earlier in self.relative_pairs:
+            if frozenset((earlier.first, earlier.second)) == key:
+                self.warnings.add(
+                    st.line,
+                    st.word,
+                    f"the pair {first}–{second} is already asked for on line {earlier.line}; "
+                    "it is reported once",
+                )
+                return
+        self.relative_pairs.append(RelativePair(st.line, first, second))
+
+    def check_relative_names(self) -> None:
+        """Both points of a pair must be named elsewhere in the file (declared or observed)."""
+        known: set[str] = set(self.point_lines)
+        for obs in self.observations:
+            known.add(obs.from_point)
+            known.add(obs.to)
+            if obs.at is not None:
+                known.add(obs.at)
+        kept = []
+        for pair in self.relative_pairs:
+            missing = [name for name in (pair.first, pair.second) if name not in known]
+            for name in missing:
+                self.error(
+                    pair.line,
+                    name,
+                    f"relative: point {name} is not in this field book (no point line or "
+                    f"observation names it){_similar_name(name, known)}",
+                )
+            if not missing:
+                kept.append(pair)
+        self.relative_pairs = kept
+
+    def end_without_round(self, st: Statement) -> None:
+        self.error(st.line, st.word, "'end' closes a directions round, but no round is open")
+
+
+# --------------------------------------------------------------------------- tables
+
+#: Read the common observation lines without tokens (``_Parser.fast_line``); the tests
+#: compare both paths, and switching this off gives the careful path alone.
+_FAST_LINES = True
+# A point name the careful path accepts without a word: printable ASCII, no space, '"', '#'
+# or '='; a value or option value: no space, '"' or '#'; then at most a comment.
+_NAME = r"([!$-<>-~]{1,64})"
+_VALUE = r'([^ \t#"=]+)'
+_TAIL = r"[ \t]*(?:#.*)?\Z"
+_NUMBER = r"([+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?)"  # as units._NUMBER
+_FAST_OBSERVATION = re.compile(
+    rf"[ \t]*(level|distance)[ \t]+{_NAME}[ \t]+{_NAME}[ \t]+{_NUMBER}"
+    rf"(?:[ \t]+len={_NUMBER}([a-zA-Z]+))?{_TAIL}",
+    re.DOTALL,
+)
+_FAST_DIRECTION = re.compile(rf"[ \t]*{_NAME}[ \t]+{_VALUE}{_TAIL}", re.DOTALL)
+
+#: Kinds that take a default standard deviation (``centering`` is not one).
+_SD_KINDS = tuple(kind for kind in SD_RULES if kind != "centering")
+# A line that a 'defaults' statement starts, and the words of it that may name a kind.
+_DEFAULTS_LINE = re.compile(r"[ \t]*defaults(?:[ \t]|\Z)", re.IGNORECASE)
+_KEY_WORDS = re.compile(r"([A-Za-z]+)=")
+
+_KEYS = {"en": "east= and north=", "h": "height="}
+_NAMES = {"en": "horizontal position", "h": "height"}
+_LEVEL_PARTS = (
+    ("per_sqrtkm", "len", "per-√km", "the section length, e.g. len=0.35km"),
+    ("per_setup", "setups", "per-setup", "the number of setups, e.g. setups=4"),
+)
+
+#: Kinds whose value the adjustment uses in [0, 2π) (the booked value is kept as written).
+_WRAPPED_KINDS = frozenset({"angle", "azimuth"})
+_VALUE_READERS: dict[str, Callable[[_Parser, Statement, Token], float | None]] = {
+    "level": _Parser.read_level,
+    "distance": _Parser.read_distance,
+    "slope": _Parser.read_distance,
+    "angle": _Parser.angle,
+    "azimuth": _Parser.angle,
+    "zenith": _Parser.read_zenith,
+}
+#: What each statement does, by keyword (its syntax is ``GRAMMARS`` in the lexer).
+_HANDLERS: dict[str, Callable[[_Parser, Statement], None]] = {
+    "fieldbook": _Parser.version,
+    "title": _Parser.set_title,
+    "units": _Parser.units,
+    "tests": _Parser.set_tests,
+    "tolerance": _Parser.tolerance,
+    "defaults": _Parser.set_defaults,
+    "scale": _Parser.set_scale,
+    "point": _Parser.point,
+    **dict.fromkeys(
+        ("level", "distance", "angle", "azimuth", "slope", "zenith"), _Parser.observation
+    ),
+    "directions": _Parser.directions,
+    "relative": _Parser.relative_pair,
+    "end": _Parser.end_without_round,
+}
+
+
+def _similar_name(name: str, known: set[str]) -> str:
+    """``"; did you mean 'X'?"`` for the closest point name of the file, or ``""``.
+
+    Point names are case-sensitive, so a name differing only in case is the
+    first guess; otherwise the closest by spelling.
+    """
+    same_case = [k for k in known if k.lower() == name.lower()]
+    if same_case:
+        return f"; did you mean '{min(same_case)}'?"
+    matches = difflib.get_close_matches(name, sorted(known), n=1, cutoff=0.6)
+    return f"; did you mean '{matches[0]}'?" if matches else ""
+
+
+def _whole_number(text: str) -> int | None:
+    """A plain whole number of ASCII digits (``str.isdigit`` alone admits '²', which int() refuses)."""
+    return int(text) if text.isascii() and text.isdigit() and len(text) < 10 else None
+
+
+def _components(components: set[str]) -> str:
+    """``""``, ``"en"``, ``"h"`` or ``"enh"``: always in that order."""
+    return ("en" if "en" in components else "") + ("h" if "h" in components else "")

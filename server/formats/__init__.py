@@ -1,0 +1,1 @@
+"""formats: see DEVELOPERS.md for the architecture map."""

@@ -1,0 +1,1 @@
+"""model: see DEVELOPERS.md for the architecture map."""

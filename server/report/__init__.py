@@ -1,0 +1,1 @@
+"""report: see DEVELOPERS.md for the architecture map."""

@@ -1,0 +1,1 @@
+"""results: see DEVELOPERS.md for the architecture map."""

@@ -1,0 +1,1 @@
+"""review: see DEVELOPERS.md for the architecture map."""

@@ -1,0 +1,1 @@
+"""statistics: see DEVELOPERS.md for the architecture map."""

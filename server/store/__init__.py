@@ -1,0 +1,1 @@
+"""store: see DEVELOPERS.md for the architecture map."""
