@@ -19,11 +19,6 @@ def default_data_dir() -> Path:
     return Path(base) / "stationfit"
 
 
-def repository_root() -> Path:
-    """The checkout's top folder (templates/, static/, demo_projects/ live there)."""
-    return Path(__file__).resolve().parent.parent
-
-
 #: Observations one field book may hold in the web service before it is refused.
 DEFAULT_MAX_OBSERVATIONS = 200_000
 #: Unknowns (coordinates, heights, orientations) one network may have in the web service.

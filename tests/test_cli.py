@@ -100,3 +100,26 @@ def test_results_are_identical_whatever_the_hash_seed():
         assert proc.returncode == 0, proc.stderr
         outputs.add(proc.stdout)
     assert len(outputs) == 1
+
+
+def test_help_lists_every_exit_status():
+    proc = run("--help")
+    assert proc.returncode == 0
+    for status, meaning in (("0", "adjusted"), ("2", "field book has errors"),
+                            ("3", "cannot be adjusted"), ("64", "command line"), ("73", "data folder")):
+        assert any(line.split()[:1] == [status] and meaning in line
+                   for line in proc.stdout.splitlines()), status
+
+
+def test_wrong_command_line_is_not_taken_for_field_book_errors():
+    """Exit 2 means 'the field book has errors' to scripts; a typo in an option must not say that."""
+    proc = run("adjust", "--no-such-option", "x.fieldbook")
+    assert proc.returncode == 64
+    assert "Traceback" not in proc.stderr
+
+
+def test_version_is_the_package_version():
+    from server import __version__
+
+    proc = run("--version")
+    assert proc.returncode == 0 and proc.stdout.strip() == f"stationfit {__version__}"

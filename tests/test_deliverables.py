@@ -19,7 +19,7 @@ import pytest
 import scipy.stats
 
 from server.report import tables as report
-from server.__main__ import main
+from server.cli import main
 from server.fieldbook.parser import parse_fieldbook
 from server.report.histogram import BIN_WIDTH, expected_count, w_histogram
 from server.pipeline import adjust_fieldbook, adjust_parsed

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import pytest
 
-from server.__main__ import main
+from server.cli import main
 from server.engine.backends import cholmod_available
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -31,7 +31,7 @@ from pathlib import Path
 import jinja2
 from markupsafe import Markup
 
-from server import __version__
+from server import __version__, resources
 from server.report.histogram import layout as histogram_layout
 from server.report.histogram import w_histogram
 from server.results.result import AdjustmentResult, ObservationResult, PointResult, RelativeResult
@@ -39,7 +39,7 @@ from server.review.standards import Preset
 from server.units import format_dms
 
 #: Folder of the report templates and of the CSS that is inlined into the report.
-TEMPLATE_DIR = Path(__file__).resolve().parents[2] / "templates" / "report"
+TEMPLATE_DIR = resources.TEMPLATE_DIR / "report"
 REPORT_CSS = TEMPLATE_DIR / "report.css"
 
 #: Shown where a figure does not apply.

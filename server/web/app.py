@@ -25,6 +25,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from server import __version__
 from server.errors import FieldbookError, NetworkError, SurveyError
+from server.resources import DEMO_DIR, STATIC_DIR, TEMPLATE_DIR
 from server.results.result import CAUTION
 from server.settings import (
     DEFAULT_MAX_UPLOAD_BYTES,
@@ -38,11 +39,6 @@ from server.web.jobs import AdjustmentQueue, Jobs
 
 logger = logging.getLogger("stationfit.web")
 
-#: The checkout's top folder: templates, static files and demos come from here, never a request.
-REPO_ROOT = Path(__file__).resolve().parents[2]
-TEMPLATE_DIR = REPO_ROOT / "templates"
-STATIC_DIR = REPO_ROOT / "static"
-DEMO_DIR = REPO_ROOT / "demo_projects"
 DATABASE_NAME = "stationfit.sqlite3"
 
 CONTENT_SECURITY_POLICY = (

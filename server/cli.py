@@ -1,0 +1,211 @@
+"""Command line: ``stationfit adjust FILE`` and ``stationfit serve`` (also ``python -m server``).
+
+Exit statuses follow the result contract: 0 adjusted (tests pass or not),
+2 field book errors, 3 network cannot be adjusted; 64 for a command line that
+cannot be followed (unknown option, unreadable file) and 73 for a data folder
+``serve`` cannot use (the sysexits numbers).  Errors go to stderr as plain
+sentences, never as a traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sqlite3
+import sys
+from pathlib import Path
+
+from server import __version__
+from server.errors import FieldbookError, NetworkError
+from server.results.json_text import dumps_indented
+
+EXIT_OK, EXIT_FIELDBOOK, EXIT_NETWORK, EXIT_USAGE = 0, 2, 3, 64
+#: ``serve`` cannot open or create its data folder (sysexits' EX_CANTCREAT).
+EXIT_DATA = 73
+
+
+EXIT_STATUSES = """exit statuses:
+  0   adjusted (whether or not its statistical tests pass)
+  2   the field book has errors: each on stderr as FILE:LINE: message
+  3   the network cannot be adjusted: what is wrong, naming the points
+  64  the command line cannot be followed (unknown option, unreadable file)
+  73  serve: the data folder cannot be created or written"""
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse, but a wrong command line exits 64 so that 2 always means field book errors."""
+
+    def error(self, message: str):  # type: ignore[override]
+        self.print_usage(sys.stderr)
+        self.exit(EXIT_USAGE, f"{self.prog}: error: {message}\n")
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line; returns the exit status."""
+    parser = _Parser(
+        prog="stationfit", epilog=EXIT_STATUSES, formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Least-squares adjustment of survey control networks. The results must be "
+                    "reviewed and certified by a licensed surveyor; local codes and standards govern.")
+    parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
+    commands = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
+    adjust = commands.add_parser(
+        "adjust", help="adjust a field book", epilog=EXIT_STATUSES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Adjust FILE and print the result (text, or --json for the JSON result).")
+    adjust.add_argument("file", type=Path)
+    adjust.add_argument("--json", action="store_true", help="print the JSON result alone on stdout")
+    adjust.add_argument("--report", type=Path, metavar="FILE.html", help="write the HTML report")
+    adjust.add_argument("--pdf", type=Path, metavar="FILE.pdf", help="write the PDF report")
+    adjust.add_argument("--csv", type=Path, metavar="FILE.csv", help="write the adjusted points as CSV")
+    _limit_options(adjust, "(default: no limit)", "(default: no limit)")
+    serve = commands.add_parser(
+        "serve", help="start the web service", epilog=EXIT_STATUSES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Start the web service: upload field books, review, re-run, download reports.")
+    serve.add_argument("--host", default="127.0.0.1")
+    serve.add_argument("--port", type=int, default=8000)
+    serve.add_argument("--data", type=Path, default=None, help="where projects are stored")
+    _limit_options(serve, "(default: $STATIONFIT_MAX_OBSERVATIONS, else 200000; 0: no limit)",
+                   "(default: $STATIONFIT_MAX_UNKNOWNS, else 100000; 0: no limit)")
+    serve.add_argument("--adjustments-at-once", type=_whole, default=None, metavar="N",
+                       help="adjustments run at the same time, the others wait their turn "
+                            "(default: $STATIONFIT_ADJUSTMENTS_AT_ONCE, else 1)")
+    serve.add_argument("--max-waiting", type=_whole, default=None, metavar="N",
+                       help="adjustments allowed to wait; more get 503 "
+                            "(default: $STATIONFIT_MAX_WAITING, else 20; 0: no bound)")
+    serve.add_argument("--keep-deleted-days", type=_whole, default=None, metavar="DAYS",
+                       help="days a deleted project can be restored before it is erased "
+                            "(default: $STATIONFIT_KEEP_DELETED_DAYS, else 30; 0: erase at once)")
+    args = parser.parse_args(argv)
+    if args.command == "serve":
+        return _serve(args)
+    return _adjust(args)
+
+
+def _limit_options(command: argparse.ArgumentParser, observations: str, unknowns: str) -> None:
+    command.add_argument("--max-observations", type=_whole, default=None, metavar="N",
+                         help=f"refuse field books with more observations {observations}")
+    command.add_argument("--max-unknowns", type=_whole, default=None, metavar="N",
+                         help=f"refuse networks with more unknowns {unknowns}")
+
+
+def _whole(text: str) -> int:
+    if not text.isdigit():
+        raise argparse.ArgumentTypeError(f"a whole number is needed, not {text!r}")
+    return int(text)
+
+
+def _adjust(args: argparse.Namespace) -> int:
+    from server.pipeline import adjust_fieldbook
+    from server.settings import WorkLimits
+
+    limits = WorkLimits(args.max_observations or None, args.max_unknowns or None)
+    path: Path = args.file
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        print(f"{path}: cannot read the file: {exc.strerror or exc}", file=sys.stderr)
+        return EXIT_USAGE
+    progress = _TerminalProgress(sys.stderr) if sys.stderr.isatty() else None
+    try:
+        result = adjust_fieldbook(data, source=str(path), progress=progress, limits=limits)
+    except FieldbookError as exc:
+        _clear(progress)
+        print(str(exc), file=sys.stderr)
+        return EXIT_FIELDBOOK
+    except NetworkError as exc:
+        _clear(progress)
+        print(f"{path}: the network cannot be adjusted: {exc}", file=sys.stderr)
+        return EXIT_NETWORK
+    _clear(progress)
+    if args.pdf is not None:
+        from server.report.pdf import report_pdf
+
+        args.pdf.write_bytes(report_pdf(result))
+    if args.report is not None:
+        from server.report import tables as report
+
+        args.report.write_text(report.report_html(result), encoding="utf-8")
+    if args.csv is not None:
+        from server.report import tables as report
+
+        args.csv.write_text(report.points_csv(result), encoding="utf-8", newline="")
+    if args.json:
+        # the same text as json.dump(..., indent=2), written faster for large networks
+        sys.stdout.write(dumps_indented(result.to_json_dict()))
+        sys.stdout.write("\n")
+    else:
+        from server.report import tables as report
+
+        sys.stdout.write(report.report_text(result))
+    return EXIT_OK
+
+
+class _TerminalProgress:
+    """Shows the stage of a long adjustment on one line of the terminal (stderr only)."""
+
+    #: Say nothing for adjustments that finish sooner than this (seconds).
+    QUIET_FOR = 1.0
+
+    def __init__(self, stream) -> None:
+        import time
+
+        self._clock = time.monotonic
+        self._start = self._clock()
+        self._stream = stream
+        self.shown = False
+
+    def __call__(self, stage: str, step: int) -> None:
+        elapsed = self._clock() - self._start
+        if elapsed < self.QUIET_FOR:
+            return
+        what = f"iteration {step}" if stage == "iteration" else stage
+        self._stream.write(f"\rStationfit: {what}… ({elapsed:.0f} s)\033[K")
+        self._stream.flush()
+        self.shown = True
+
+
+def _clear(progress: _TerminalProgress | None) -> None:
+    if progress is not None and progress.shown:
+        progress._stream.write("\r\033[K")
+        progress._stream.flush()
+
+
+def _log_to_stderr() -> None:
+    """The service's own log lines (deletions, restores, refused requests) on stderr for the
+    administrator; uvicorn keeps its own handlers."""
+    import logging
+
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    log = logging.getLogger("stationfit")
+    log.addHandler(handler)
+    log.setLevel(logging.INFO)
+    log.propagate = False
+
+
+def _serve(args: argparse.Namespace) -> int:
+    import uvicorn
+
+    from server.settings import default_data_dir, service_limits
+    from server.web.app import create_app, serve_allowed_hosts
+    from server.web.serving import uvicorn_options
+
+    host, port, data = args.host, args.port, args.data
+    _log_to_stderr()
+    limits = service_limits(args.max_observations, args.max_unknowns)
+    data_dir = data if data is not None else default_data_dir()
+    try:
+        data_dir.mkdir(parents=True, exist_ok=True)
+        app = create_app(data_dir, allowed_hosts=serve_allowed_hosts(host), limits=limits,
+                         adjustments_at_once=args.adjustments_at_once or None,
+                         max_waiting=args.max_waiting,
+                         keep_deleted_days=args.keep_deleted_days)
+    except (OSError, sqlite3.Error, RuntimeError) as exc:
+        # one line for the administrator: which folder, and what the system said
+        reason = getattr(exc, "strerror", None) or str(exc)
+        print(f"Stationfit: cannot use the data folder {data_dir}: {reason}. Give --data a "
+              "folder the service may write to, or fix this one.", file=sys.stderr)
+        return EXIT_DATA
+    print(f"Stationfit: projects are stored in {data_dir}; open http://{host}:{port}/", file=sys.stderr)
+    uvicorn.run(app, host=host, port=port, log_level="warning", **uvicorn_options())
+    return EXIT_OK
