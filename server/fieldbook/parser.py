@@ -63,14 +63,15 @@ from server.fieldbook.model import (
     TraverseTolerance,
 )
 from server.fieldbook.point_names import near_miss_warnings
-from server.model.traverse import parse_angular_allowance, parse_ratio
 from server.units import (
     FILE_ANGLE_UNITS,
     FILE_LENGTH_UNITS,
     LENGTH_FACTORS,
     Quantity,
     UnitError,
+    parse_angular_allowance,
     parse_number,
+    parse_ratio,
     wrap_2pi,
 )
 

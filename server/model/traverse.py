@@ -30,47 +30,13 @@ from dataclasses import dataclass
 
 from server.fieldbook.model import Fieldbook, Observation, TraverseTolerance
 from server.model.misclosures import Misclosure
-from server.units import UnitError, parse_quantity, wrap_2pi, wrap_pi
+from server.units import wrap_2pi, wrap_pi
 
 #: How many station visits one search may make before it gives up, and all searches
 #: together per station of the network (keeps big networks fast: a route not found
 #: within them is not reported).
 _SEARCH_BUDGET = 20_000
 _TOTAL_BUDGET_PER_STATION = 50
-
-
-def parse_angular_allowance(text: str) -> float:
-    """``10sec/sqrtn`` or ``3mgon/sqrtn`` → K in radians (the allowance is K·√n)."""
-    base, slash, per = text.partition("/")
-    if not slash or per.lower() != "sqrtn":
-        raise UnitError(
-            f"'{text}': an angular closure allowance is an angle per root of the number of "
-            "angle stations, like 10sec/sqrtn or 3mgon/sqrtn"
-        )
-    value = parse_quantity(base)
-    if not value.angular or value.constant <= 0.0:
-        raise UnitError(
-            f"'{text}': write the angle in sec or mgon and above zero, like 10sec/sqrtn"
-        )
-    if value.constant > math.radians(1.0):
-        raise UnitError(
-            f"'{text}': more than 1 degree per station is not plausible; check the unit"
-        )
-    return value.constant
-
-
-def parse_ratio(text: str) -> float:
-    """``1:10000`` → 10000 (the precision ratio 1 : N a traverse must reach)."""
-    one, colon, rest = text.partition(":")
-    try:
-        number = float(rest) if colon and one.strip() == "1" else math.nan
-    except ValueError:
-        number = math.nan
-    if not math.isfinite(number):
-        raise UnitError(f"'{text}': write the precision ratio as 1:N, like ratio=1:10000")
-    if not 1.0 <= number <= 1e9:
-        raise UnitError(f"'{text}': N in 1:N must be between 1 and 1000000000")
-    return number
 
 
 @dataclass(frozen=True, slots=True)
