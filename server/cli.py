@@ -12,6 +12,7 @@ from __future__ import annotations
 import argparse
 import sqlite3
 import sys
+from typing import NoReturn, TextIO
 from pathlib import Path
 
 from server import __version__
@@ -34,7 +35,7 @@ EXIT_STATUSES = """exit statuses:
 class _Parser(argparse.ArgumentParser):
     """argparse, but a wrong command line exits 64 so that 2 always means field book errors."""
 
-    def error(self, message: str):  # type: ignore[override]
+    def error(self, message: str) -> NoReturn:
         self.print_usage(sys.stderr)
         self.exit(EXIT_USAGE, f"{self.prog}: error: {message}\n")
 
@@ -146,7 +147,7 @@ class _TerminalProgress:
     #: Say nothing for adjustments that finish sooner than this (seconds).
     QUIET_FOR = 1.0
 
-    def __init__(self, stream) -> None:
+    def __init__(self, stream: TextIO) -> None:
         import time
 
         self._clock = time.monotonic

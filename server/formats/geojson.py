@@ -41,8 +41,7 @@ def _point_feature(p: PointResult) -> dict[str, object]:
 
 
 def _line_feature(o: ObservationResult, positions: dict[str, tuple[float, float]]) -> dict[str, object]:
-    start = o.at if o.kind == "angle" else o.from_point
-    ends = [start, o.to] if o.kind != "angle" else [o.from_point, o.at or "", o.to]
+    ends = [o.from_point, o.to] if o.kind != "angle" else [o.from_point, o.at or "", o.to]
     geometry: dict[str, object] | None = None
     if all(name in positions for name in ends):
         geometry = {"type": "LineString", "coordinates": [list(positions[n]) for n in ends]}
@@ -75,7 +74,7 @@ def geojson(result: AdjustmentResult) -> dict[str, object]:
         p.name: (p.east, p.north) for p in result.points if p.east is not None and p.north is not None
     }
     features = [_point_feature(p) for p in result.points]
-    features += [_line_feature(o, positions) for o in result.observations]  # type: ignore[arg-type]
+    features += [_line_feature(o, positions) for o in result.observations]
     return {
         "type": "FeatureCollection",
         "coordinate_system": f"project grid: east, north (and height) in {result.length_unit}; not WGS 84",

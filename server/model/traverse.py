@@ -26,6 +26,7 @@ averaged.  Nothing here is adjusted by least squares.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 
 from server.fieldbook.model import Fieldbook, Observation, TraverseTolerance
@@ -121,6 +122,12 @@ class _Graph:
             self.angles[(back, at, fore)] = value
             self.angles[(fore, at, back)] = wrap_2pi(-value)
 
+    def turned(self, back: str, at: str, fore: str) -> float:
+        """The angle at a station of a found traverse (the search only walks booked angles)."""
+        value = self.angle(back, at, fore)
+        assert value is not None, (back, at, fore)
+        return value
+
     def bearing(self, a: str, b: str) -> float:
         (ea, na), (eb, nb) = self.fixed[a], self.fixed[b]
         return wrap_2pi(math.atan2(eb - ea, nb - na))
@@ -134,7 +141,7 @@ class _Graph:
         observed = self.azimuths.get((start, first))
         return None if observed is None else (observed, False)
 
-    def closing_azimuth(self, last: str, end: str) -> tuple[float, float | None] | None:
+    def closing_azimuth(self, last: str, end: str) -> tuple[float | None, float] | None:
         """(Angle at the end to a fixed foresight or None, known azimuth it should give)."""
         for fore in sorted(self.fixed, key=lambda n: self.order.get(n, 0)):
             angle = self.angle(last, end, fore)
@@ -188,8 +195,8 @@ def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
     return tuple(found)
 
 
-def _search(graph: _Graph, path: list[str], done, total: list[int],
-            avoid: set[str] = frozenset()) -> list[str] | None:
+def _search(graph: _Graph, path: list[str], done: Callable[[str, list[str]], bool],
+            total: list[int], avoid: frozenset[str] | set[str] = frozenset()) -> list[str] | None:
     """Depth-first walk along angle chains, next stations in file order; the first end wins.
 
     ``path`` holds the first two stations; ``done(node, path)`` says where a walk ends.
@@ -241,7 +248,7 @@ def _link(
     graph: _Graph, path: list[str], oriented: tuple[float, bool], tol: TraverseTolerance
 ) -> Misclosure:
     azimuth, start_angle = oriented
-    turned = [graph.angle(path[i - 1], path[i], path[i + 1]) for i in range(1, len(path) - 1)]
+    turned = [graph.turned(path[i - 1], path[i], path[i + 1]) for i in range(1, len(path) - 1)]
     legs = [_leg(graph, a, b) for a, b in zip(path, path[1:])]
     stations = len(turned) + (1 if start_angle else 0)
     raw = _azimuths(azimuth, turned)
@@ -261,7 +268,7 @@ def _polygon(graph: _Graph, path: list[str], tol: TraverseTolerance) -> Misclosu
     if _reversed_corners(graph, path) > _reversed_corners(graph, path[::-1]):
         path = path[::-1]  # walk the way the angles were booked, so their sum keeps its sign
     corners = [*path[-2:-1], *path]  # the station before the start closes the first corner
-    turned = [graph.angle(corners[i - 1], corners[i], corners[i + 1])
+    turned = [graph.turned(corners[i - 1], corners[i], corners[i + 1])
               for i in range(1, len(corners) - 1)]
     n = len(turned)
     total = sum(turned)

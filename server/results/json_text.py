@@ -15,9 +15,10 @@ from __future__ import annotations
 import gc
 import json
 import math
-from collections.abc import Iterator
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from itertools import chain
 from operator import itemgetter
+from typing import Any
 
 _INDENT = "  "
 _SCALARS = (str, int, float, bool, type(None))
@@ -37,11 +38,11 @@ def dumps_indented(obj: object) -> str:
             gc.enable()
 
 
-def _is_flat(values) -> bool:
+def _is_flat(values: Iterable[Any]) -> bool:
     return all(isinstance(v, _SCALARS) for v in values)
 
 
-def _flat_records(items) -> bool:
+def _flat_records(items: Sequence[Any]) -> bool:
     """True for a list of non-empty dicts with string keys and scalar values only."""
     if not all(type(item) is dict and item for item in items):
         return False
@@ -50,7 +51,7 @@ def _flat_records(items) -> bool:
     return keys == {str} and all(issubclass(kind, _SCALARS) for kind in kinds)
 
 
-def _records(items, level: int) -> str:
+def _records(items: Sequence[Any], level: int) -> str:
     """A list of flat dicts in one C-encoder call, its record boundaries re-indented.
 
     Encoded with the dicts' item separator throughout, a boundary between two
@@ -71,7 +72,7 @@ def _records(items, level: int) -> str:
 
 _encode_str = json.encoder.encode_basestring_ascii  # what json.dumps uses (ensure_ascii)
 _NONE = type(None)
-_SPELL = {
+_SPELL: dict[type, Callable[[Any], str]] = {
     str: _encode_str,
     int: int.__repr__,
     float: float.__repr__,
@@ -80,7 +81,7 @@ _SPELL = {
 }
 
 
-def _spelled(column: list, kinds: set[type], level: int) -> list[str] | None:
+def _spelled(column: Sequence[Any], kinds: set[type], level: int) -> list[str] | None:
     """Every value of one column as JSON text, or None if one is not a plain scalar.
 
     A column of dicts (or None) that are records themselves, as the ellipse of
@@ -125,7 +126,7 @@ def _spelled(column: list, kinds: set[type], level: int) -> list[str] | None:
     return [spell[type(v)](v) for v in column]
 
 
-def _columns(items, level: int) -> str | None:
+def _columns(items: Sequence[Any], level: int) -> str | None:
     """A list of dicts sharing one key order, spelled column by column.
 
     Each column's scalars are spelled by the functions the C encoder uses
@@ -141,7 +142,7 @@ def _columns(items, level: int) -> str | None:
     return "[\n" + list_indent + (",\n" + list_indent).join(texts) + "\n" + _INDENT * level + "]"
 
 
-def _record_texts(items, level: int) -> list[str] | None:
+def _record_texts(items: Sequence[Any], level: int) -> list[str] | None:
     """The text of each dict, its braces at ``level``; None unless all share their keys."""
     if not items:
         return []
@@ -207,8 +208,8 @@ def _chunks(obj: object, level: int) -> Iterator[str]:
             text = _flat_encoder(level).encode(list(obj))
             yield "[" + inner + text[1:-1] + "\n" + _INDENT * level + "]"
             return
-        if type(obj[0]) is dict and (text := _columns(obj, level)) is not None:
-            yield text
+        if type(obj[0]) is dict and (columns := _columns(obj, level)) is not None:
+            yield columns
             return
         if _flat_records(obj):
             yield _records(obj, level)

@@ -25,7 +25,9 @@ written in the field book itself is always shown as such.
 from __future__ import annotations
 
 import dataclasses
+from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 from server.fieldbook.model import Fieldbook
 from server.units import LENGTH_FACTORS, Quantity
@@ -70,7 +72,12 @@ def _alta(length_unit: str) -> Quantity:
     return Quantity(constant=constant, ppm=50.0)
 
 
-_QUANTITIES = {"alta-nsps-2026": _alta}
+def _loop_allowance(k_mm: float) -> Callable[[str], Quantity]:
+    """k mm·√K (the same in every length unit: the allowance is stored in metres)."""
+    return lambda unit: Quantity(per_sqrtkm=k_mm * 1e-3)
+
+
+_QUANTITIES: dict[str, Callable[[str], Quantity]] = {"alta-nsps-2026": _alta}
 PRESETS: dict[str, Preset] = {
     "alta-nsps-2026": Preset(
         "alta-nsps-2026", "ALTA/NSPS relative positional precision", _ALTA_SOURCE, "relative", True
@@ -80,7 +87,7 @@ for _name, (_section, _loop) in FGCC_1984_LEVELING.items():
     _key = f"fgcc-1984-{_name}"
     # loops and runs are both checked with the loop constant: a run between fixed
     # benchmarks closes like a loop through the datum
-    _QUANTITIES[_key] = lambda unit, k=_loop: Quantity(per_sqrtkm=k * 1e-3)
+    _QUANTITIES[_key] = _loop_allowance(_loop)
     PRESETS[_key] = Preset(
         _key,
         f"FGCC 1984 leveling, {_name.replace('-', ' ')} ({_loop:g} mm·√K)",
@@ -92,7 +99,7 @@ for _name, (_section, _loop) in FGCC_1984_LEVELING.items():
 
 def with_presets(fieldbook: Fieldbook, *, relative: str | None = None, misclosure: str | None = None) -> Fieldbook:
     """The field book with its tolerances replaced by the named presets (None keeps the file's)."""
-    changes: dict[str, Quantity] = {}
+    changes: dict[str, Any] = {}
     for key, field in ((relative, "relative_tolerance"), (misclosure, "misclosure_tolerance")):
         if key is None:
             continue

@@ -126,7 +126,8 @@ def correlated_rows(
     return out
 
 
-def _representatives(exact_rows: Sequence[int], candidates: np.ndarray, groups, n: int) -> np.ndarray:
+def _representatives(exact_rows: Sequence[int], candidates: np.ndarray,
+                     groups: Sequence[Sequence[int]], n: int) -> np.ndarray:
     """The rows to solve for exactly: one per |ρ| = 1 group, since its members share
     their column of R up to scale; at most ``MAX_EXACT_ROWS``."""
     member = np.zeros(n, bool)
@@ -159,7 +160,8 @@ def correlation_rows(hat: Hat, sigmas: np.ndarray, redundancy: np.ndarray, rows:
     return np.nan_to_num(rho, nan=0.0, posinf=0.0, neginf=0.0).T
 
 
-def _pairs(hat: Hat, root_p, redundancy, rows, candidates, threshold) -> tuple[np.ndarray, np.ndarray]:
+def _pairs(hat: Hat, root_p: np.ndarray, redundancy: np.ndarray, rows: np.ndarray,
+           candidates: np.ndarray, threshold: float) -> tuple[np.ndarray, np.ndarray]:
     """(row, candidate) pairs with |ρ| ≥ threshold, ρ computed exactly for ``rows``.
 
     The test |R_ij| ≥ threshold·√(r_i·r_j) is ρ's without dividing by a vanishing r.
@@ -173,7 +175,8 @@ def _pairs(hat: Hat, root_p, redundancy, rows, candidates, threshold) -> tuple[n
     return rows[first], candidates[second]
 
 
-def _simulated_groups(hat: Hat, root_p, redundancy, candidates, out) -> None:
+def _simulated_groups(hat: Hat, root_p: np.ndarray, redundancy: np.ndarray, candidates: np.ndarray,
+                      out: list[tuple[int, ...]]) -> None:
     """Join rows whose simulated standardized residuals agree in every sample (|ρ| = 1).
 
     The signatures are sorted on a few coordinates rounded to ``GRID``; members of a
