@@ -47,7 +47,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from bench import networks
+from bench import networks  # noqa: E402 - importable once the root is on the path
 
 SIZES = [
     ("leveling", 1_000),

@@ -238,6 +238,28 @@ def angle_in_sec(text: str) -> str | None:
     return None if factor is None else f"{float(number) * factor:g}sec"
 
 
+def _term_unit(written: str) -> tuple[str, float, bool]:
+    """The unit of one term → (which part of the quantity, factor to SI, angular?)."""
+    unit = written.lower()
+    if unit == "ppm":
+        return "ppm", 1.0, False
+    if unit == "sec":
+        return "constant", RAD_PER_ARCSEC, True
+    if unit == "mgon":
+        return "constant", RAD_PER_MGON, True
+    if unit in LENGTH_FACTORS:
+        return "constant", LENGTH_FACTORS[unit], False
+    base, slash, per = unit.partition("/")
+    if slash and base in LENGTH_FACTORS:
+        if per in ("sqrtkm", "setup"):
+            return f"per_{per}", LENGTH_FACTORS[base], False
+        raise UnitError(f"'{written}': use /sqrtkm or /setup after a length")
+    raise UnitError(
+        f"'{written}' is not a unit here "
+        "(use mm, cm, m, km, ft, usft, ppm, sec, mgon, mm/sqrtkm or mm/setup)"
+    )
+
+
 def parse_quantity(text: str) -> Quantity:
     """Read ``2mm+2ppm``, ``1.0mm/sqrtkm``, ``0.5mm+0.4mm/setup``, ``1.5sec`` or ``0.3mgon``.
 
@@ -257,29 +279,7 @@ def parse_quantity(text: str) -> Quantity:
                 raise UnitError(f"'{text}' needs a unit, e.g. {rest}mm or {rest}sec")
             raise UnitError(f"'{text}' is not a quantity with units (e.g. 2mm+2ppm, 1.5sec)")
         number = parse_number(match.group(1))
-        unit = match.group(2).lower()
-        if unit == "ppm":
-            key, factor, is_angle = "ppm", 1.0, False
-        elif unit == "sec":
-            key, factor, is_angle = "constant", RAD_PER_ARCSEC, True
-        elif unit == "mgon":
-            key, factor, is_angle = "constant", RAD_PER_MGON, True
-        elif unit in LENGTH_FACTORS:
-            key, factor, is_angle = "constant", LENGTH_FACTORS[unit], False
-        elif "/" in unit and unit.split("/", 1)[0] in LENGTH_FACTORS:
-            base, per = unit.split("/", 1)
-            if per == "sqrtkm":
-                key = "per_sqrtkm"
-            elif per == "setup":
-                key = "per_setup"
-            else:
-                raise UnitError(f"'{match.group(2)}': use /sqrtkm or /setup after a length")
-            factor, is_angle = LENGTH_FACTORS[base], False
-        else:
-            raise UnitError(
-                f"'{match.group(2)}' is not a unit here "
-                "(use mm, cm, m, km, ft, usft, ppm, sec, mgon, mm/sqrtkm or mm/setup)"
-            )
+        key, factor, is_angle = _term_unit(match.group(2))
         if angular is not None and angular != is_angle:
             raise UnitError(f"'{text}' mixes angular and length units")
         angular = is_angle

@@ -76,9 +76,8 @@ def test_a_full_queue_refuses_at_once_instead_of_waiting():
     eventually(lambda: len(queue._waiting) == 1, "the second waits")
     with pytest.raises(QueueFull):
         queue.check_room()
-    with pytest.raises(QueueFull):
-        with queue.slot():
-            pass
+    with pytest.raises(QueueFull), queue.slot():
+        pass
     release.set()
     first.join(WAIT)
     second.join(WAIT)

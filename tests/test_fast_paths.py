@@ -28,7 +28,7 @@ from tests.hypothesis_profiles import examples
 ROOT = Path(__file__).resolve().parents[1]
 DEMO_TEXTS = {p.name: p.read_text(encoding="utf-8") for p in sorted((ROOT / "demo_projects").glob("*.fieldbook"))}
 sys.path.insert(0, str(ROOT / "bench"))
-import networks  # bench/networks.py: the benchmark's field books
+import networks  # noqa: E402 - bench/networks.py: the benchmark field books
 
 
 def _outcome(text: str, fast: bool, monkeypatch: pytest.MonkeyPatch):

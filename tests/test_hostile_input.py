@@ -576,7 +576,9 @@ def test_headline_gives_the_true_count_of_100_000_errors():
     assert error.headline == "the field book has 100,000 errors"
     assert len(error.issues) == 51  # 50 listed and the line saying how many more there are
     assert error.issues[-1].message.startswith("99950 more errors from this line on")
-    few = pytest.raises(FieldbookError, parse_fieldbook, "level A\n").value
+    with pytest.raises(FieldbookError) as raised:
+        parse_fieldbook("level A\n")
+    few = raised.value
     assert (few.count, few.headline) == (1, "the field book has 1 error")
 
 

@@ -394,8 +394,8 @@ def test_labels_cover_no_other_label_or_symbol_and_stay_on_the_canvas(demo, requ
         return min(a[2], b[2]) > max(a[0], b[0]) and min(a[3], b[3]) > max(a[1], b[1])
 
     for i, box in enumerate(boxes):
-        assert 0 <= box[0] and box[2] <= data["nominal"]["width"]
-        assert 0 <= box[1] and box[3] <= data["nominal"]["height"]
+        assert box[0] >= 0 and box[2] <= data["nominal"]["width"]
+        assert box[1] >= 0 and box[3] <= data["nominal"]["height"]
         for j, other in enumerate(boxes[i + 1:], start=i + 1):
             assert not overlap(box, other), (data["points"][i]["name"], data["points"][j]["name"])
         for j, (x, y) in enumerate(symbols):

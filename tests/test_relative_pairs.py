@@ -343,5 +343,5 @@ def test_a_relative_decision_appends_lines_keeping_every_line_number_and_the_lin
             apply_edits(text, [bad])
     unknown = ObservationEdit(line=0, action="relative", reason="r", date="2026-12-03",
                               pairs=(("K1", "K33"),))
-    with pytest.raises(EditError, match="line 31: relative: point K33 .*did you mean .K3.?"):
+    with pytest.raises(EditError, match=r"line 31: relative: point K33 .*did you mean .K3.?"):
         apply_edits(text, [unknown])

@@ -19,11 +19,11 @@ import pytest
 
 jsonschema = pytest.importorskip("jsonschema")
 
-from server.web import create_app  # noqa: E402
+from server.web import create_app  # noqa: E402 - after the skip for a missing jsonschema
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")  # starlette's test client prefers httpx2
-    from fastapi.testclient import TestClient  # noqa: E402
+    from fastapi.testclient import TestClient
 
 ROOT = Path(__file__).resolve().parent.parent
 SCHEMA = json.loads((ROOT / "docs" / "result.schema.json").read_text(encoding="utf-8"))

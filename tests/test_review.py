@@ -288,7 +288,7 @@ def _round_book(misbooked_b: str | None = None) -> tuple[str, dict[str, str]]:
 
 
 def test_a_misbooked_minute_in_a_round_is_corrected_in_place_and_the_original_kept():
-    good, true_values = _round_book()
+    _good, true_values = _round_book()
     right = true_values["B"]
     d, m, s = right.split(":")
     wrong = f"{d}:{int(m) + 1:02d}:{s}" if int(m) < 59 else f"{d}:{int(m) - 1:02d}:{s}"

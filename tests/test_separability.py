@@ -240,7 +240,7 @@ def test_inseparable_lists_match_a_dense_numpy_solution():
 
 def test_large_network_path_agrees_with_the_dense_one():
     result = adjust_fieldbook(LOOPS_WITH_BLUNDER)
-    used, a, p, rho, r = _dense_rho(result, LOOPS_WITH_BLUNDER)
+    _used, a, p, rho, r = _dense_rho(result, LOOPS_WITH_BLUNDER)
     qxx = np.linalg.inv(a.T @ p @ a)
 
     def hat(block):
@@ -383,7 +383,7 @@ def _junction_grid(side: int, per_line: int, blunder_m: float) -> tuple[str, int
                         blunder_line = len(out) + 1
                     out.append(f"level {previous} {mark} {dh:+.5f} len=0.5km")
                     previous = mark
-    tie = f"L1_1_01_3"
+    tie = "L1_1_01_3"
     out.append(f"level {tie} J0_0 {height['J0_0'] - height[tie]:+.5f} sd=30mm")
     return "\n".join(out) + "\n", blunder_line
 

@@ -191,7 +191,7 @@ def test_concurrent_writers_from_threads_lose_nothing(db):
             for i in range(10):
                 project_id = store.create_project(f"t{n}-{i}", "", f"level A B {i}")
                 store.add_run(project_id, error=f"run {n}-{i}")
-        except BaseException as exc:  # noqa: BLE001 - collected and asserted below
+        except BaseException as exc:
             errors.append(exc)
 
     threads = [threading.Thread(target=work, args=(n,)) for n in range(8)]

@@ -15,6 +15,7 @@ Outside references used here:
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import pytest
@@ -244,7 +245,7 @@ def test_link_traverse_without_a_closing_orientation_has_only_the_linear_part() 
 
 
 def adjust_text(text: str):
-    return adjust_parsed(parse_fieldbook(text))  # noqa: the pipeline as the CLI runs it
+    return adjust_parsed(parse_fieldbook(text))  # the pipeline as the CLI runs it
 
 
 def test_result_json_keys_for_a_traverse() -> None:
@@ -341,7 +342,7 @@ def test_a_traverse_of_1500_stations_is_closed_without_running_out_of_stack() ->
     route = ["R", *stations, "F"]
     for back, at, fore in zip(route, route[1:], route[2:]):
         lines.append(f"angle {back} {at} {fore} 180:00:00")
-    for a, b in zip(stations, stations[1:]):
+    for a, b in itertools.pairwise(stations):
         lines.append(f"distance {a} {b} 100.000")
     [entry] = traverse_misclosures(parse_fieldbook("\n".join(lines) + "\n"))
     assert entry.points[0] == "S" and entry.points[-1] == "E"

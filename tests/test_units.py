@@ -37,7 +37,7 @@ def test_gon_definitions():
     """400 gon to the circle (ISO 80000-3): 1 gon = 0.9°, 1 mgon = 3.24″."""
     assert parse_angle("100", "gon") == pytest.approx(math.pi / 2, abs=1e-15)
     assert math.degrees(RAD_PER_GON) == pytest.approx(0.9, abs=1e-15)
-    assert RAD_PER_MGON * ARCSEC_PER_RAD == pytest.approx(3.24, abs=1e-12)
+    assert pytest.approx(3.24, abs=1e-12) == RAD_PER_MGON * ARCSEC_PER_RAD
     assert parse_angle("96.9375gon", "dms") == pytest.approx(96.9375 * math.pi / 200)
 
 

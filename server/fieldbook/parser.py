@@ -556,8 +556,8 @@ class _Parser:
         each say that they have no standard deviation.  A misspelt kind counts as the kind
         it is closest to.
         """
-        for word in words:
-            word = word.lower()
+        for written in words:
+            word = written.lower()
             kind = word if word in _SD_KINDS else next(
                 iter(difflib.get_close_matches(word, _SD_KINDS, n=1, cutoff=0.75)), None
             )

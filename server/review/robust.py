@@ -99,7 +99,7 @@ def robust_adjustment(
     result = base
     converged = False
     iterations = 0
-    for iterations in range(1, MAX_ITERATIONS + 1):
+    for iterations in range(1, MAX_ITERATIONS + 1):  # noqa: B007 - the count is reported
         new = {}
         for o in result.observations:
             if o.ignored or o.redundancy is None or o.redundancy < 1e-3 or o.residual is None:

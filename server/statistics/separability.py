@@ -56,6 +56,7 @@ minimal-datum factor serves as well as the inner-constraint Qxx.
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Callable, Sequence
 
 import numpy as np
@@ -210,7 +211,7 @@ def _simulated_groups(hat: Hat, root_p: np.ndarray, redundancy: np.ndarray, cand
     grouped = grouped[np.argsort(label[grouped], kind="stable")]
     bounds = [0, *(np.flatnonzero(np.diff(label[grouped])) + 1).tolist(), grouped.size]
     members = candidates[grouped].tolist()
-    for start, end in zip(bounds[:-1], bounds[1:]):
+    for start, end in itertools.pairwise(bounds):
         group = tuple(sorted(members[start:end]))
         for k, row in enumerate(group):
             out[row] = group[:k] + group[k + 1:]
