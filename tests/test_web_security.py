@@ -141,7 +141,7 @@ def test_openapi_operations_never_answer_5xx(tmp_path):
             @settings(max_examples=NUMBERED_EXAMPLES if numbered else EXAMPLES_PER_OPERATION,
                       suppress_health_check=list(HealthCheck))
             @given(case=operation.as_strategy(generation_mode=mode), real=st.booleans())
-            def run(case, real, mode=mode) -> None:
+            def run(case, real) -> None:
                 parameters = case.path_parameters or {}
                 if real and "project_id" in parameters:
                     parameters["project_id"] = real_project
@@ -149,7 +149,7 @@ def test_openapi_operations_never_answer_5xx(tmp_path):
                     warnings.simplefilter("ignore", DeprecationWarning)
                     response = case.call()
                 # run() is called at once, inside this iteration of the loop
-                where = f"{case.method} {case.formatted_path} ({mode.value})"
+                where = f"{case.method} {case.formatted_path} ({mode.value})"  # noqa: B023
                 statuses[response.status_code] += 1
                 if real_project in case.formatted_path:
                     reached[case.path] += 1
