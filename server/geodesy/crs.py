@@ -264,7 +264,8 @@ def _build(label: str, crs: pyproj.CRS, check_point: tuple[float, float] | None,
 
 def _require_conversion(label: str, crs: pyproj.CRS, transformer: pyproj.Transformer) -> None:
     """Every step of the operation must be a conversion: no datum change, no ballpark shift."""
-    described = transformer.to_json_dict()
+    # several candidate operations (a choice between datum shifts) give no JSON at all
+    described = transformer.to_json_dict() if transformer.to_json() else {}
     steps = described.get("steps", [described])
     kinds = {step.get("type") for step in steps}
     if kinds != {"Conversion"} or "ballpark" in transformer.description.lower():
