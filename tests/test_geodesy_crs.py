@@ -12,9 +12,11 @@ import numpy as np
 import pyproj
 import pytest
 from geographiclib.geodesic import Geodesic
+from scipy.optimize._numdiff import approx_derivative
 
 from server.geodesy.crs import CrsError, _require_conversion, crs_from_epsg, local_crs
 from server.geodesy.ellipsoid import GRS80, Ellipsoid
+from server.geodesy.grid import grid_position
 
 
 def dms(degrees: int, minutes: int, seconds: float, sign: int = 1) -> float:
@@ -289,3 +291,28 @@ def test_ellipsoid_is_a_frozen_value():
     assert sphere.b == sphere.a and sphere.e2 == 0.0
     with pytest.raises(AttributeError):
         sphere.a = 1.0  # type: ignore[misc]
+
+
+# --- grid coordinates of Earth-centred points, with partials ------------------------------------
+
+@pytest.mark.parametrize("code, lat, lon", [
+    ("EPSG:32113", 32.28, -106.75), ("EPSG:2258", 32.28, -106.75),
+    ("EPSG:32633", 60.0, 17.9), ("EPSG:2193", -41.3, 174.8), ("EPSG:2223", 34.2, -111.6),
+])
+def test_grid_partials_agree_with_finite_differences_through_pyproj(code, lat, lon):
+    """∂(E, N, h)/∂X from the scale factor and convergence against central differences of
+    the whole chain Earth-centred → geodetic → pyproj's projection (1 cm steps; pyproj's
+    coordinates are good to about 1e-9 m, so about 1e-7 relative), in metres and feet."""
+    grid = crs_from_epsg(code)
+    rng = np.random.default_rng(int(code[5:]))
+    lats = np.radians(lat + rng.uniform(-0.3, 0.3, 3))
+    lons = np.radians(lon + rng.uniform(-0.3, 0.3, 3))
+    xyz = grid.geodetic_to_ecef(lats, lons, rng.uniform(0, 3000, 3))
+    position = grid_position(grid, xyz)
+    east, north, h = grid.ecef_to_grid(xyz)
+    assert position.east == pytest.approx(east, abs=0) and position.h == pytest.approx(h, abs=0)
+    for row in range(3):
+        numeric = approx_derivative(lambda x: np.concatenate(grid.ecef_to_grid(x[None])),
+                                    xyz[row], method="3-point", abs_step=1e-2)
+        analytic = np.vstack([position.d_east[row], position.d_north[row], position.d_h[row]])
+        assert np.abs(numeric - analytic).max() < 3e-7 * np.abs(analytic).max()
