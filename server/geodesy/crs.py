@@ -224,8 +224,12 @@ def _check_projected(label: str, crs: pyproj.CRS) -> None:
 def _build(label: str, crs: pyproj.CRS, check_point: tuple[float, float] | None,
            name: str | None = None) -> Crs:
     geodetic = crs.geodetic_crs
-    to_geodetic = pyproj.Transformer.from_crs(crs, geodetic, always_xy=True)
-    to_grid = pyproj.Transformer.from_crs(geodetic, crs, always_xy=True)
+    try:
+        to_geodetic = pyproj.Transformer.from_crs(crs, geodetic, always_xy=True)
+        to_grid = pyproj.Transformer.from_crs(geodetic, crs, always_xy=True)
+    except ProjError:  # e.g. a family of zones without a zone ("UTM grid system")
+        raise CrsError(f"{label} ({crs.name}) does not define one projection that pyproj can "
+                       "compute; give the code of a single zone") from None
     for transformer in (to_geodetic, to_grid):
         _require_conversion(label, crs, transformer)
     angle_units = {axis.unit_conversion_factor for axis in geodetic.axis_info}
