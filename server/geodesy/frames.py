@@ -163,9 +163,9 @@ def local_vector(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray,
     target = local_frames(ellipsoid, to)
     d = (to + ht * target.up) - (frm + hi * at.up)
     rot = at.rotation
-    enu = np.einsum("nij,nj->ni", rot, d)
+    enu = _apply(rot, d)
     identity = np.eye(3)
-    d_to = np.einsum("nij,njk->nik", rot, identity + ht[:, :, None] * target.up_derivative())
+    d_to = rot @ (identity + ht[:, :, None] * target.up_derivative())
     a, b, c = enu[:, 0:1], enu[:, 1:2], enu[:, 2:3]
     tan_lat = np.tan(at.lat)[:, None]
     e_row = at.east / at.prime_vertical[:, None]
@@ -175,7 +175,7 @@ def local_vector(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray,
         -c * n_row - a * tan_lat * e_row,
         b * n_row + a * e_row,
     ], axis=1)
-    d_from = turning - np.einsum("nij,njk->nik", rot, identity + hi[:, :, None] * at.up_derivative())
+    d_from = turning - rot @ (identity + hi[:, :, None] * at.up_derivative())
     return LocalVector(enu=enu, d_from=d_from, d_to=d_to, frames=at)
 
 
@@ -190,8 +190,8 @@ def slope_distance(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray,
     s = np.linalg.norm(d, axis=1)
     unit = d / _nonzero(s, "instrument and target coincide")[:, None]
     identity = np.eye(3)
-    d_to = np.einsum("ni,nij->nj", unit, identity + ht[:, :, None] * target.up_derivative())
-    d_from = -np.einsum("ni,nij->nj", unit, identity + hi[:, :, None] * at.up_derivative())
+    d_to = _row_times(unit, identity + ht[:, :, None] * target.up_derivative())
+    d_from = -_row_times(unit, identity + hi[:, :, None] * at.up_derivative())
     return Equation(value=s, d_from=d_from, d_to=d_to)
 
 
@@ -237,13 +237,13 @@ def baseline(frm: np.ndarray, to: np.ndarray) -> tuple[np.ndarray, np.ndarray, n
 def enu_to_ecef_covariance(lat: np.ndarray, lon: np.ndarray, cov_enu: np.ndarray) -> np.ndarray:
     """Σ_X = Rᵀ Σ_enu R: local (east, north, up) covariances (n, 3, 3) in Earth-centred axes."""
     rot = enu_rotation(lat, lon)
-    return np.einsum("nji,njk,nkl->nil", rot, np.asarray(cov_enu, dtype=float), rot)
+    return np.transpose(rot, (0, 2, 1)) @ np.asarray(cov_enu, dtype=float) @ rot
 
 
 def ecef_to_enu_covariance(lat: np.ndarray, lon: np.ndarray, cov_ecef: np.ndarray) -> np.ndarray:
     """Σ_enu = R Σ_X Rᵀ: Earth-centred covariances (n, 3, 3) in local east, north, up."""
     rot = enu_rotation(lat, lon)
-    return np.einsum("nij,njk,nlk->nil", rot, np.asarray(cov_ecef, dtype=float), rot)
+    return rot @ np.asarray(cov_ecef, dtype=float) @ np.transpose(rot, (0, 2, 1))
 
 
 def enu_sd_to_ecef_covariance(lat: np.ndarray, lon: np.ndarray, sd_enu: np.ndarray) -> np.ndarray:
@@ -271,9 +271,19 @@ def _chain(value: np.ndarray, grad: np.ndarray, vec: LocalVector) -> Equation:
     """Partials to the two marks from ∂value/∂(a, b, c), shape (n, 3)."""
     return Equation(
         value=value,
-        d_from=np.einsum("ni,nij->nj", grad, vec.d_from),
-        d_to=np.einsum("ni,nij->nj", grad, vec.d_to),
+        d_from=_row_times(grad, vec.d_from),
+        d_to=_row_times(grad, vec.d_to),
     )
+
+
+def _apply(matrices: np.ndarray, vectors: np.ndarray) -> np.ndarray:
+    """Row-wise M·v for (n, 3, 3) and (n, 3)."""
+    return (matrices @ vectors[:, :, None])[:, :, 0]
+
+
+def _row_times(rows: np.ndarray, matrices: np.ndarray) -> np.ndarray:
+    """Row-wise vᵀ·M for (n, 3) and (n, 3, 3)."""
+    return (rows[:, None, :] @ matrices)[:, 0, :]
 
 
 def _points(xyz: np.ndarray) -> np.ndarray:
