@@ -322,3 +322,28 @@ def test_ellipse_azimuth_is_clockwise_from_geodetic_north():
     see, sen, snn = cov[0, 0, 0], cov[0, 0, 1], cov[0, 1, 1]
     azimuth = math.degrees(0.5 * math.atan2(2 * sen, snn - see)) % 180.0
     assert azimuth == pytest.approx(30.0, abs=1e-9)
+
+
+def test_baseline_covariance_from_sd_and_correlations_and_its_refusals():
+    """Σ = diag(σ) ρ diag(σ); draws from it (200,000, Cholesky) give back the σ and the
+    correlations.  Correlations of ±1 and sets no three errors can have are refused."""
+    sd = np.array([[0.003, 0.004, 0.008], [0.002, 0.002, 0.002], [0.003, 0.003, 0.003],
+                   [0.003, 0.003, 0.003], [0.003, 0.0, 0.003]])
+    corr = np.array([[0.4, -0.3, 0.6], [0.0, 0.0, 0.0], [1.0, 0.0, 0.0],
+                     [0.9, 0.9, -0.9], [0.1, 0.1, 0.1]])
+    cov, positive = frames.baseline_covariance(sd, corr)
+    assert positive.tolist() == [True, True, False, False, False]
+    draws = np.random.default_rng(17).normal(size=(200_000, 3)) @ np.linalg.cholesky(cov[0]).T
+    assert draws.std(axis=0) == pytest.approx(sd[0], rel=0.01)
+    sample = np.corrcoef(draws.T)
+    assert [sample[0, 1], sample[0, 2], sample[1, 2]] == pytest.approx(corr[0], abs=0.01)
+
+
+def test_horizon_distance_is_the_horizontal_part_of_the_slope_distance():
+    """On a sphere, the horizon distance to a point at central angle θ and radius r₂ is
+    r₂ sin θ, whatever the instrument's height."""
+    theta = 1.5e-4
+    frm = SPHERE.to_ecef(0.3, 0.2, 10.0)
+    to = SPHERE.to_ecef(0.3 + theta, 0.2, 250.0)
+    expected = (SPHERE.a + 250.0) * math.sin(theta)
+    assert frames.horizon_distance(SPHERE, frm, to)[0] == pytest.approx(expected, rel=1e-12)

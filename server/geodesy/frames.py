@@ -51,7 +51,8 @@ Observations, from (a, b, c), with s = √(a² + b²) and S = √(a² + b² + c�
 
 The slope distance does not depend on the frame (the G terms cancel), so it is computed
 from d directly.  A GNSS baseline is X_t − X_i itself (antenna heights are applied by the
-processor), with partials −I and I.
+processor), with partials −I and I; its covariance is diag(σ) ρ diag(σ) from the three
+standard deviations and correlations, refused unless positive definite.
 
 Covariances.  Local (east, north, up) standard deviations σ at a point become
 Σ_X = Rᵀ diag(σ²) R in Earth-centred axes, and an Earth-centred covariance becomes
@@ -225,6 +226,33 @@ def horizon_azimuth(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray,
     s2 = _nonzero(a * a + b * b, "the target is straight above or below the instrument")
     grad = np.stack([b, -a, np.zeros_like(a)], axis=1) / s2[:, None]
     return _chain(np.mod(np.arctan2(a, b), TWO_PI), grad, vec)
+
+
+def horizon_distance(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray) -> np.ndarray:
+    """Distance D in the horizon plane at FROM to TO's mark, √(a² + b²) (centering terms)."""
+    enu = local_vector(ellipsoid, frm, to).enu
+    return np.hypot(enu[:, 0], enu[:, 1])
+
+
+def baseline_covariance(sd: np.ndarray, corr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Covariances (n, 3, 3) from standard deviations (σx, σy, σz) and correlations
+    (ρxy, ρxz, ρyz), each of shape (n, 3), and a mask of the rows that are positive definite.
+
+    A row is refused (mask False) when a standard deviation is not positive or when the
+    smallest eigenvalue of its correlation matrix is not above 1e-12 of the largest:
+    correlations of ±1, or a set no three errors can have, such as ρxy = ρxz = 0.9 with
+    ρyz = −0.9.
+    """
+    sd = np.atleast_2d(np.asarray(sd, dtype=float))
+    corr = np.atleast_2d(np.asarray(corr, dtype=float))
+    rho = np.broadcast_to(np.eye(3), (max(len(sd), len(corr)), 3, 3)).copy()
+    for k, (i, j) in enumerate(((0, 1), (0, 2), (1, 2))):
+        rho[:, i, j] = rho[:, j, i] = corr[:, k]
+    cov = sd[:, :, None] * rho * sd[:, None, :]
+    finite = np.isfinite(cov).all(axis=(1, 2)) & (sd > 0.0).all(axis=1)
+    eigen = np.linalg.eigvalsh(np.where(finite[:, None, None], rho, np.eye(3)))
+    positive = finite & (eigen[:, 0] > 1e-12 * eigen[:, 2])
+    return cov, positive
 
 
 def baseline(frm: np.ndarray, to: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
