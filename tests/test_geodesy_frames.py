@@ -119,8 +119,8 @@ def test_turning_of_the_horizon_is_in_the_partials():
 def test_sphere_law_of_cosines(theta):
     """On a sphere (f = 0) the instrument at radius r₁ and the target at r₂, central angle θ:
     S² = r₁² + r₂² − 2 r₁ r₂ cos θ and cos z = (r₂ cos θ − r₁)/S (the triangle with the
-    centre; written with sin²(θ/2), which does not cancel), and the azimuth is the great circle's, tan α = sin Δλ cos φ₂ /
-    (cos φ₁ sin φ₂ − sin φ₁ cos φ₂ cos Δλ)."""
+    centre; written with sin²(θ/2), which does not cancel), and the azimuth is the great
+    circle's, tan α = sin Δλ cos φ₂ / (cos φ₁ sin φ₂ − sin φ₁ cos φ₂ cos Δλ)."""
     lat1, lon1, azimuth = 0.7, 0.3, math.radians(37.0)
     # destination on the sphere along the great circle (closed form)
     lat2 = math.asin(math.sin(lat1) * math.cos(theta)
@@ -133,7 +133,8 @@ def test_sphere_law_of_cosines(theta):
     half = math.sin(theta / 2) ** 2
     slope = math.sqrt((r1 - r2) ** 2 + 4 * r1 * r2 * half)
     zenith = math.acos((r2 - r1 - 2 * r2 * half) / slope)
-    assert frames.slope_distance(SPHERE, frm, to, hi, ht).value[0] == pytest.approx(slope, rel=1e-12)
+    assert frames.slope_distance(SPHERE, frm, to, hi, ht).value[0] == pytest.approx(slope,
+                                                                                   rel=1e-12)
     assert frames.zenith_angle(SPHERE, frm, to, hi, ht).value[0] == pytest.approx(zenith, abs=1e-11)
     dlon = lon2 - lon1
     great_circle = math.atan2(math.sin(dlon) * math.cos(lat2), math.cos(lat1) * math.sin(lat2)

@@ -40,6 +40,7 @@ import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
+import numpy.typing as npt
 import pyproj
 from pyproj.exceptions import CRSError, ProjError
 
@@ -93,7 +94,8 @@ class Crs:
     _proj: pyproj.Proj = field(repr=False)
     _radians_per_angle_unit: float = field(repr=False)
 
-    def grid_to_geodetic(self, east: np.ndarray, north: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def grid_to_geodetic(self, east: npt.ArrayLike,
+                         north: npt.ArrayLike) -> tuple[np.ndarray, np.ndarray]:
         """Latitude and longitude (radians) of grid points (east, north in the CRS's unit)."""
         lon, lat = self._to_geodetic.transform(_floats(east), _floats(north))
         scale = self._radians_per_angle_unit
@@ -206,8 +208,11 @@ def _check_projected(label: str, crs: pyproj.CRS) -> None:
         pointing = ", ".join(axis.direction for axis in axes)
         raise CrsError(f"{label} ({crs.name}) has axes pointing {pointing}; only CRSs with "
                        "an east and a north axis can be used")
-    units = crs.coordinate_system.to_json_dict().get("axis", [])
-    for axis, described in zip(axes, units):
+    system = crs.coordinate_system
+    units = system.to_json_dict().get("axis", []) if system is not None else []
+    if len(units) != len(axes):
+        raise CrsError(f"{label} ({crs.name}) does not describe the units of its axes")
+    for axis, described in zip(axes, units, strict=True):
         unit = described.get("unit", "metre")
         unit_type = unit.get("type") if isinstance(unit, dict) else "LinearUnit"
         if unit_type != "LinearUnit" or not axis.unit_conversion_factor > 0:
@@ -216,14 +221,16 @@ def _check_projected(label: str, crs: pyproj.CRS) -> None:
     if axes[0].unit_conversion_factor != axes[1].unit_conversion_factor:
         raise CrsError(f"{label} ({crs.name}) has its two axes in different units")
     meridian = crs.prime_meridian
-    if meridian.longitude != 0.0:
+    if meridian is not None and meridian.longitude != 0.0:
         raise CrsError(f"{label} ({crs.name}) counts longitude from the {meridian.name} "
                        "meridian; use a CRS whose longitudes count from Greenwich")
 
 
 def _build(label: str, crs: pyproj.CRS, check_point: tuple[float, float] | None,
            name: str | None = None) -> Crs:
-    geodetic = crs.geodetic_crs
+    geodetic, spheroid = crs.geodetic_crs, crs.ellipsoid
+    if geodetic is None or spheroid is None:
+        raise CrsError(f"{label} ({crs.name}) has no geodetic CRS and ellipsoid")
     try:
         to_geodetic = pyproj.Transformer.from_crs(crs, geodetic, always_xy=True)
         to_grid = pyproj.Transformer.from_crs(geodetic, crs, always_xy=True)
@@ -235,7 +242,6 @@ def _build(label: str, crs: pyproj.CRS, check_point: tuple[float, float] | None,
     angle_units = {axis.unit_conversion_factor for axis in geodetic.axis_info}
     if len(angle_units) != 1 or not all(a.unit_name for a in geodetic.axis_info):
         raise CrsError(f"{label} ({crs.name}) has a geodetic CRS with mixed angle units")
-    spheroid = crs.ellipsoid
     ellipsoid = Ellipsoid(spheroid.semi_major_metre, _flattening(spheroid), spheroid.name)
     unit_name = crs.axis_info[0].unit_name
     factor = crs.axis_info[0].unit_conversion_factor
@@ -255,7 +261,7 @@ def _build(label: str, crs: pyproj.CRS, check_point: tuple[float, float] | None,
         unit=unit,
         metres_per_unit=_EXACT_UNITS[unit] if unit else float(factor),
         ellipsoid=GRS80 if (ellipsoid.a, ellipsoid.f) == (GRS80.a, GRS80.f) else ellipsoid,
-        area_of_use=tuple(area.bounds) if area is not None else None,
+        area_of_use=(area.west, area.south, area.east, area.north) if area is not None else None,
         _to_geodetic=to_geodetic,
         _to_grid=to_grid,
         _proj=proj,
@@ -339,7 +345,7 @@ def _flattening(spheroid: pyproj.crs.Ellipsoid) -> float:
     return 1.0 - spheroid.semi_minor_metre / spheroid.semi_major_metre
 
 
-def _floats(values: np.ndarray) -> np.ndarray:
+def _floats(values: npt.ArrayLike) -> np.ndarray:
     return np.asarray(values, dtype=float)
 
 

@@ -28,6 +28,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import numpy.typing as npt
 
 _BOWRING_STEPS = 3
 
@@ -50,18 +51,18 @@ class Ellipsoid:
         """First eccentricity squared, f(2 − f)."""
         return self.f * (2.0 - self.f)
 
-    def prime_vertical_radius(self, lat: np.ndarray) -> np.ndarray:
+    def prime_vertical_radius(self, lat: npt.ArrayLike) -> np.ndarray:
         """N(φ) = a / √(1 − e² sin²φ), metres."""
         s = np.sin(lat)
         return self.a / np.sqrt(1.0 - self.e2 * s * s)
 
-    def meridian_radius(self, lat: np.ndarray) -> np.ndarray:
+    def meridian_radius(self, lat: npt.ArrayLike) -> np.ndarray:
         """M(φ) = a(1 − e²) / (1 − e² sin²φ)^{3/2}, metres."""
         s = np.sin(lat)
         w2 = 1.0 - self.e2 * s * s
         return self.a * (1.0 - self.e2) / (w2 * np.sqrt(w2))
 
-    def to_ecef(self, lat: np.ndarray, lon: np.ndarray, h: np.ndarray) -> np.ndarray:
+    def to_ecef(self, lat: npt.ArrayLike, lon: npt.ArrayLike, h: npt.ArrayLike) -> np.ndarray:
         """Earth-centred X, Y, Z (last axis of length 3) from φ, λ (radians) and h (metres)."""
         lat, lon, h = np.broadcast_arrays(*(np.asarray(v, dtype=float) for v in (lat, lon, h)))
         n = self.prime_vertical_radius(lat)
@@ -75,7 +76,7 @@ class Ellipsoid:
             axis=-1,
         )
 
-    def from_ecef(self, xyz: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    def from_ecef(self, xyz: npt.ArrayLike) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """φ, λ (radians) and h (metres) from Earth-centred coordinates (last axis of length 3).
 
         Not meant for points within a few kilometres of the Earth's centre, where the

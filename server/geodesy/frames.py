@@ -275,7 +275,8 @@ def ecef_to_enu_covariance(lat: np.ndarray, lon: np.ndarray, cov_ecef: np.ndarra
 
 
 def enu_sd_to_ecef_covariance(lat: np.ndarray, lon: np.ndarray, sd_enu: np.ndarray) -> np.ndarray:
-    """Independent local standard deviations (n, 3) (east, north, up) as Earth-centred covariances."""
+    """Independent local (east, north, up) standard deviations (n, 3) as Earth-centred
+    covariances (n, 3, 3)."""
     sd = np.atleast_2d(np.asarray(sd_enu, dtype=float))
     cov = np.zeros(sd.shape + (3,))
     idx = np.arange(3)
