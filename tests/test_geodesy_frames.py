@@ -348,3 +348,51 @@ def test_horizon_distance_is_the_horizontal_part_of_the_slope_distance():
     to = SPHERE.to_ecef(0.3 + theta, 0.2, 250.0)
     expected = (SPHERE.a + 250.0) * math.sin(theta)
     assert frames.horizon_distance(SPHERE, frm, to)[0] == pytest.approx(expected, rel=1e-12)
+
+
+def test_the_pieces_fit_a_gauss_newton_adjustment_of_a_small_3d_network():
+    """How the kinds table will use these functions: rows of values and partials placed in
+    the columns of the marks' X, Y, Z.  Observations computed from known positions on a
+    site grid (slope distances, refracted zeniths, azimuths, two baselines) bring start
+    positions 0.5 m off back to those positions in a few Gauss–Newton steps."""
+    grid = local_crs(math.radians(-33.9), math.radians(18.4), 10_000.0, 50_000.0)
+    names = ["A", "B", "C", "D"]
+    truth = grid.grid_to_ecef(np.array([10_000.0, 10_480.0, 9_620.0, 10_150.0]),
+                              np.array([50_000.0, 50_310.0, 50_420.0, 50_900.0]),
+                              np.array([31.0, 45.5, 12.2, 80.9]))
+    lines = [("A", "B"), ("A", "C"), ("B", "C"), ("C", "D"), ("B", "D"), ("A", "D")]
+    frm = [names.index(a) for a, _ in lines]
+    to = [names.index(b) for _, b in lines]
+    hi, ht = 1.55, 1.70
+
+    def observe(xyz):
+        rows = [frames.slope_distance(GRS80, xyz[frm], xyz[to], hi, ht),
+                frames.zenith_angle(GRS80, xyz[frm], xyz[to], hi, ht, k=0.13),
+                frames.horizon_azimuth(GRS80, xyz[frm], xyz[to])]
+        values = np.concatenate([r.value for r in rows])
+        design = np.zeros((len(values) + 6, 12))
+        for block, r in enumerate(rows):
+            for i, (f, t) in enumerate(zip(frm, to, strict=True)):
+                design[block * len(lines) + i, 3 * f:3 * f + 3] += r.d_from[i]
+                design[block * len(lines) + i, 3 * t:3 * t + 3] += r.d_to[i]
+        base, d_from, d_to = frames.baseline(xyz[[0, 1]], xyz[[3, 3]])
+        for i, (f, t) in enumerate(((0, 3), (1, 3))):
+            design[len(values) + 3 * i:len(values) + 3 * i + 3, 3 * f:3 * f + 3] = d_from[i]
+            design[len(values) + 3 * i:len(values) + 3 * i + 3, 3 * t:3 * t + 3] = d_to[i]
+        return np.concatenate([values, base.ravel()]), design
+
+    observed, _ = observe(truth)
+    position = truth + np.random.default_rng(12).normal(scale=0.5, size=truth.shape)
+    position[0] = truth[0]  # A held
+    for _ in range(6):
+        computed, design = observe(position)
+        misclosure = observed - computed
+        rows = len(lines)
+        misclosure[2 * rows:3 * rows] = np.remainder(misclosure[2 * rows:3 * rows] + np.pi,
+                                                     2 * np.pi) - np.pi
+        weights = np.concatenate([np.full(rows, 1 / 0.003), np.full(2 * rows, 1 / 5e-6),
+                                  np.full(6, 1 / 0.005)])
+        step, *_ = np.linalg.lstsq(design[:, 3:] * weights[:, None], misclosure * weights,
+                                   rcond=None)
+        position[1:] += step.reshape(3, 3)
+    assert np.abs(position - truth).max() < 1e-7
