@@ -47,7 +47,8 @@ Observations, from (a, b, c), with s = √(a² + b²) and S = √(a² + b² + c�
 * zenith angle    z = atan2(s, c), from the instrument's normal;
                                              ∂z/∂(a, b, c) = (a c/s, b c/s, −s)/S²
   and with refraction the model value is z − k·S/(2R), R = 6 371 000 m: the line of sight
-  is taken as an arc of radius R/k, which leaves the instrument k·S/(2R) above the chord.
+  is taken as an arc of radius R/k, concave towards the ground, whose tangent at the
+  instrument (the direction the telescope reads) lies k·S/(2R) above the chord.
 
 The slope distance does not depend on the frame (the G terms cancel), so it is computed
 from d directly.  A GNSS baseline is X_t − X_i itself (antenna heights are applied by the
