@@ -49,7 +49,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import numpy.typing as npt
 import pyproj
-from pyproj.crs.datum import Ellipsoid as Ellipsoid_
+from pyproj._crs import Ellipsoid as Ellipsoid_
 from pyproj.exceptions import CRSError, ProjError
 
 from server.geodesy.ellipsoid import GRS80, Ellipsoid
