@@ -45,14 +45,17 @@ import math
 import re
 import warnings
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 import numpy.typing as npt
 import pyproj
-from pyproj._crs import Ellipsoid as Ellipsoid_
 from pyproj.exceptions import CRSError, ProjError
 
 from server.geodesy.ellipsoid import GRS80, Ellipsoid
+
+if TYPE_CHECKING:  # the type is defined in pyproj's compiled part
+    from pyproj._crs import Ellipsoid as Ellipsoid_
 
 #: Exact metres per unit of the length units a field book uses, keyed by the file's spelling
 #: (international foot 0.3048 m; US survey foot 1200/3937 m: NIST and NOAA/NGS, 85 FR 62698).
