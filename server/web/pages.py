@@ -17,7 +17,8 @@ from fastapi.responses import (
 from starlette.concurrency import run_in_threadpool
 
 from server.formats.geojson import geojson_text
-from server.report import plot
+from server.report import csv_export, plot
+from server.report import html as html_report
 from server.report import tables as report
 from server.report.pdf import report_pdf
 from server.results.result import AdjustmentResult
@@ -160,11 +161,11 @@ def project_report(choice: ChoiceDep, project: ProjectDep, store: StoreDep,
                    queue: QueueDep) -> Response:
     """The printable report, as a download; its inline style is allowed by hash only."""
     result = finished_result(store, project, choice, queue)
-    css = report.report_css()
-    response = attachment(report.report_html(result, presets=choice.presets),
+    css = html_report.report_css()
+    response = attachment(html_report.report_html(result, presets=choice.presets),
                           "text/html; charset=utf-8", download_name(project, "-report.html"))
     response.headers["Content-Security-Policy"] = (
-        f"default-src 'none'; style-src {report.style_hash(css)}; base-uri 'none'; "
+        f"default-src 'none'; style-src {html_report.style_hash(css)}; base-uri 'none'; "
         "form-action 'none'; frame-ancestors 'none'"
     )
     return response
@@ -184,7 +185,7 @@ def project_points_csv(project: ProjectDep, choice: ChoiceDep, store: StoreDep,
                        queue: QueueDep) -> Response:
     """The adjusted points as CSV."""
     result = finished_result(store, project, choice, queue)
-    return attachment(report.points_csv(result), "text/csv; charset=utf-8",
+    return attachment(csv_export.points_csv(result), "text/csv; charset=utf-8",
                       download_name(project, "-points.csv"))
 
 
