@@ -12,8 +12,9 @@ Nothing here computes a figure.  Every number comes from the frozen
 * w-statistics and redundancy numbers to 2 decimals.
 
 The row helpers (``rows``, ``point_rows``, ``observation_rows``,
-``misclosure_rows`` …) are shared by the HTML report (``html.py``), the text summary (``text.py``),
-the CSV (``csv_export.py``) and the web pages, so every output shows the same figures the same way.
+``misclosure_rows`` …) are shared by the HTML report (``html.py``), the text
+summary (``text.py``), the CSV (``csv_export.py``) and the web pages, so every
+output shows the same figures the same way.
 """
 
 from __future__ import annotations
@@ -259,6 +260,19 @@ class MisclosureRow:
     stations: str = NOT_APPLICABLE
 
 
+def verdict_state(*, converged: bool, passed: bool | None, flagged: int = 0, exceeded: int = 0,
+                  unchecked: int = 0) -> str:
+    """The one rule for a verdict's state: "pass", "warn", "fail" or "none" (``passed`` None:
+    not tested).  The results banner, the review, the comparison and the project list use it."""
+    if not converged:
+        return "fail"
+    if passed is None:
+        return "none"
+    if passed:
+        return "warn" if flagged or exceeded or unchecked else "pass"
+    return "fail"
+
+
 def verdict(result: AdjustmentResult) -> Verdict:
     """The summary sentence of the global test, with the counts of flags and exceeded loops."""
     s = result.summary
@@ -287,14 +301,15 @@ def verdict(result: AdjustmentResult) -> Verdict:
     if unchecked:
         notes.append(unchecked_note(result, unchecked))
     detail = tuple(notes)
+    state = verdict_state(converged=s.converged, passed=None if test is None else test.passed,
+                          flagged=len(flagged), exceeded=exceeded, unchecked=len(unchecked))
     if not s.converged:
-        return Verdict("fail", "Not converged: the iterations did not settle — do not use these "
+        return Verdict(state, "Not converged: the iterations did not settle — do not use these "
                        "results", detail, len(flagged), exceeded, len(unchecked))
     if test is None:
-        return Verdict("none", "Not tested: there are no redundant observations, so a blunder "
+        return Verdict(state, "Not tested: there are no redundant observations, so a blunder "
                        "cannot be detected", detail, len(flagged), exceeded, len(unchecked))
     if test.passed:
-        state = "warn" if flagged or exceeded or unchecked else "pass"
         headline = "Passes: the residuals agree with the a priori standard deviations"
         if unchecked:
             headline = (f"Passes, but {_count(len(unchecked))} can no longer be checked: a blunder "
@@ -307,7 +322,7 @@ def verdict(result: AdjustmentResult) -> Verdict:
     else:
         headline = ("Fails: residuals smaller than expected — the a priori standard deviations "
                     "may be too pessimistic")
-    return Verdict("fail", headline, detail, len(flagged), exceeded, len(unchecked))
+    return Verdict(state, headline, detail, len(flagged), exceeded, len(unchecked))
 
 
 def _inseparable_notes(result: AdjustmentResult) -> list[str]:

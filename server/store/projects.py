@@ -10,6 +10,7 @@ routes turn the exceptions below into answers (``StoreFull`` 507, ``QueueFull`` 
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import logging
 import re
 import threading
@@ -19,11 +20,20 @@ from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 from server.errors import SurveyError
-from server.fieldbook.edits import EditError, ObservationEdit, apply_edits
+from server.fieldbook.edits import (
+    ACTIONS,
+    MAX_VALUE_CHARS,
+    EditError,
+    ObservationEdit,
+    apply_edits,
+    booked_value,
+    clean_reason,
+)
 from server.fieldbook.model import Fieldbook
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import UNLIMITED, adjust_fieldbook, adjust_parsed, check_observation_limit
 from server.report import review
+from server.report.tables import verdict_state
 from server.results.result import AdjustmentResult
 from server.review.standards import PRESETS, Preset, with_presets
 from server.settings import WorkLimits
@@ -158,7 +168,7 @@ class UnknownPreset(ValueError):
 
 @dataclass(frozen=True, slots=True)
 class StandardsChoice:
-    """The accuracy-standard presets asked for with ``?relative=…&misclosure=…`` (None: the file's)."""
+    """The presets asked for with ``?relative=…&misclosure=…`` (None: the field book's own)."""
 
     relative: str | None = None
     misclosure: str | None = None
@@ -246,20 +256,25 @@ def list_verdict(run: Run | None) -> tuple[str, str]:
         return "fail", _failure_words(run)
     summary = run.summary
     test = summary.get("global_test")
-    if not summary.get("converged", True):
-        return "fail", "Not converged"
-    if test is None:
-        return "none", "Not tested (no redundancy)"
     flagged = summary.get("flagged", 0)
     unchecked = summary.get("uncontrolled", 0)
-    if test.get("passed"):
-        if flagged:
-            return "warn", f"Passes, {flagged} flagged"
-        if unchecked:
-            noun = "observation" if unchecked == 1 else "observations"
-            return "warn", f"Passes, but {unchecked} {noun} can no longer be checked"
-        return "pass", "Passes"
-    return "fail", f"Fails, {flagged} flagged" if flagged else "Fails"
+    converged = summary.get("converged", True)
+    # the stored summary has no misclosure count: the list decides on flags and checks alone
+    passed = None if test is None else bool(test.get("passed"))
+    state = verdict_state(converged=converged, passed=passed, flagged=flagged,
+                          unchecked=unchecked)
+    if not converged:
+        return state, "Not converged"
+    if test is None:
+        return state, "Not tested (no redundancy)"
+    if state == "fail":
+        return state, f"Fails, {flagged} flagged" if flagged else "Fails"
+    if flagged:
+        return state, f"Passes, {flagged} flagged"
+    if unchecked:
+        noun = "observation" if unchecked == 1 else "observations"
+        return state, f"Passes, but {unchecked} {noun} can no longer be checked"
+    return state, "Passes"
 
 
 def _failure_words(run: Run) -> str:
@@ -393,6 +408,51 @@ def load_state(store: Store, project: Project) -> ReviewState:
             except SurveyError as exc:
                 problems.append(str(exc))
     return ReviewState(project, base, result, in_force, pending, pending_edits, text, problems)
+
+
+def prepare_decision(state: ReviewState, line: int, values: dict[str, str], day: str
+                     ) -> tuple[ObservationEdit, str]:
+    """The decision a review form asks for, and why it cannot be queued ("" when it can).
+
+    ``values`` holds the form's action, reason, sd and value.  The decision must name an
+    action, make sense for the line (not leave out what is left out), and, with every
+    decision in force and queued, still give a field book that reads.
+    """
+    project, action = state.project, values["action"]
+    message = ""
+    if state.result is None:
+        message = "This project has no adjusted run to decide on."
+    elif action not in ACTIONS:
+        message = f"line {line}: choose leave out, bring back, change sd or correct the value"
+    elif len(values["sd"]) > review.MAX_SD_CHARS:
+        message = f"line {line}: the standard deviation is too long"
+    elif action == "correct" and len(values["value"]) > MAX_VALUE_CHARS:
+        message = f"line {line}: the corrected value is too long"
+    else:
+        left_out = review.ignored_after(state.result, state.pending_edits).get(line)
+        if action == "exclude" and left_out:
+            message = f"line {line} is already left out"
+        elif action == "include" and left_out is False:
+            message = f"line {line} is already used in the adjustment"
+    edit = ObservationEdit(line=line, action=action, reason=clean_reason(values["reason"]),
+                           date=day, sd=values["sd"] if action == "sd" else None,
+                           value=values["value"] if action == "correct" else None)
+    if not message and action == "correct":
+        # the value it replaces, as the line reads once the earlier decisions are written in
+        try:
+            text = apply_edits(project.text, [*state.in_force, *state.pending_edits],
+                               source=project.filename)
+            edit = dataclasses.replace(
+                edit, previous=booked_value(text, line, source=project.filename))
+        except SurveyError as exc:
+            message = str(exc)
+    if not message:
+        try:
+            apply_edits(project.text, [*state.in_force, *state.pending_edits, edit],
+                        source=project.filename)
+        except SurveyError as exc:
+            message = str(exc)
+    return edit, message
 
 
 def rerun(store: Store, state: ReviewState) -> tuple[int | None, str]:

@@ -497,7 +497,7 @@ def create_app(
     app.state.max_projects = max_projects
     app.state.limits = limits if limits is not None else service_limits()
     app.state.jobs = Jobs(AdjustmentQueue(*service_queue(adjustments_at_once, max_waiting)))
-    # the review's second opinions (robust, snooping) of recent runs; locked, worker threads share it
+    # the review's second opinions (robust, snooping) of recent runs, shared by worker threads
     app.state.proposals = ProposalCache()
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")

@@ -37,7 +37,8 @@ async def retry_interrupted(project: ProjectDep, store: StoreDep, form: CheckedF
     settings = {**(interrupted.settings or {}), "retry_of": interrupted.id}
     new_id = await run_in_threadpool(store.start_run, project.id, settings)
     job = jobs.start(
-        new_id, lambda progress: service.retry_interrupted(store, project, interrupted, progress, new_id)
+        new_id,
+        lambda progress: service.retry_interrupted(store, project, interrupted, progress, new_id),
     )
     await run_in_threadpool(job.done.wait, WAIT_FOR_SMALL_JOBS)
     return RedirectResponse(f"/projects/{project.id}", status_code=303)

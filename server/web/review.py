@@ -14,7 +14,6 @@ browser says it came from another site.
 
 from __future__ import annotations
 
-import dataclasses
 import logging
 from collections.abc import Callable
 from datetime import date
@@ -27,12 +26,7 @@ from starlette.concurrency import run_in_threadpool
 
 from server.errors import SurveyError
 from server.fieldbook.edits import (
-    ACTIONS,
-    MAX_VALUE_CHARS,
     ObservationEdit,
-    apply_edits,
-    booked_value,
-    clean_reason,
 )
 from server.fieldbook.parser import parse_fieldbook
 from server.report import review
@@ -288,38 +282,8 @@ async def queue_edit(request: Request, project: ProjectDep, store: StoreDep,
     values = {"action": action, "reason": _text(form, "reason", 1000),
               "sd": _text(form, "sd", 200).strip(), "value": _text(form, "value", 200).strip()}
     state = await run_in_threadpool(_load_state, store, project)
-    message = ""
-    if state.result is None:
-        message = "This project has no adjusted run to decide on."
-    elif action not in ACTIONS:
-        message = f"line {line}: choose leave out, bring back, change sd or correct the value"
-    elif len(values["sd"]) > review.MAX_SD_CHARS:
-        message = f"line {line}: the standard deviation is too long"
-    elif action == "correct" and len(values["value"]) > MAX_VALUE_CHARS:
-        message = f"line {line}: the corrected value is too long"
-    else:
-        left_out = review.ignored_after(state.result, state.pending_edits).get(line)
-        if action == "exclude" and left_out:
-            message = f"line {line} is already left out"
-        elif action == "include" and left_out is False:
-            message = f"line {line} is already used in the adjustment"
-    edit = ObservationEdit(line=line, action=action, reason=clean_reason(values["reason"]),
-                           date=today(), sd=values["sd"] if action == "sd" else None,
-                           value=values["value"] if action == "correct" else None)
-    if not message and action == "correct":
-        # the value it replaces, as the line reads once the earlier decisions are written in
-        try:
-            previous = await run_in_threadpool(_value_now, project, state, line)
-            edit = dataclasses.replace(edit, previous=previous)
-        except SurveyError as exc:
-            message = str(exc)
-    if not message:
-        try:
-            await run_in_threadpool(apply_edits, project.text,
-                                    [*state.in_force, *state.pending_edits, edit],
-                                    source=project.filename)
-        except SurveyError as exc:
-            message = str(exc)
+    edit, message = await run_in_threadpool(service.prepare_decision, state, line, values,
+                                            today())
     status = 422
     if not message:
         try:  # checked again and inserted in one transaction: another client may be deciding
@@ -357,13 +321,6 @@ async def undo_edit(request: Request, project: ProjectDep, store: StoreDep,
         return _render(request, "review.html", context, status=409)
     return RedirectResponse(_review_url(project.id, suggest=suggest, rejected=rejected,
                                         anchor="decisions"), status_code=303)
-
-
-def _value_now(project: Project, state: ReviewState, line: int) -> str:
-    """The value on ``line`` with every decision in force and queued written in."""
-    text = apply_edits(project.text, [*state.in_force, *state.pending_edits],
-                       source=project.filename)
-    return booked_value(text, line, source=project.filename)
 
 
 @router.post("/projects/{project_id}/runs")
