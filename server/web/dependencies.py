@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import hmac
 import re
+from datetime import date
 from pathlib import Path
 from typing import Annotated, Any
 from urllib.parse import urlencode, urlsplit
@@ -114,6 +115,11 @@ ChoiceDep = Annotated[StandardsChoice, Depends(standards_choice)]
 async def read_form(request: Request, max_fields: int = _MAX_FORM_FIELDS) -> FormData:
     """A small url-encoded or multipart form with no files."""
     return await request.form(max_files=0, max_fields=max_fields, max_part_size=_MAX_FORM_BYTES)
+
+
+def today() -> str:
+    """The date written beside a decision: today on the server's calendar."""
+    return date.today().isoformat()
 
 
 def form_text(form: FormData, name: str, limit: int = 1000) -> str:

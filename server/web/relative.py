@@ -22,8 +22,7 @@ from server.report import review
 from server.results.result import AdjustmentResult
 from server.store.projects import display_name, load_state
 from server.store.sqlite import AlreadyQueued
-from server.web.dependencies import ProjectDep, StoreDep, check_form, read_form, render
-from server.web.review import today
+from server.web.dependencies import ProjectDep, StoreDep, check_form, read_form, render, today
 
 router = APIRouter()
 

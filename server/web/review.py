@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Callable
-from datetime import date
 from typing import Any
 from urllib.parse import urlencode
 
@@ -53,6 +52,7 @@ from server.web.dependencies import (
     page_links,
     page_number,
     read_form,
+    today,
 )
 from server.web.dependencies import (
     form_text as _text,
@@ -69,11 +69,6 @@ router = APIRouter()
 _MAX_REJECTED = 20
 
 logger = logging.getLogger("stationfit.web")
-
-
-def today() -> str:
-    """The date written beside a decision: today on the server's calendar."""
-    return date.today().isoformat()
 
 
 def _int(value: str) -> int | None:
