@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import base64
 import hashlib
+import threading
 from collections.abc import Sequence
 from datetime import UTC, datetime
 from pathlib import Path
@@ -24,21 +25,28 @@ REPORT_CSS = TEMPLATE_DIR / "report.css"
 
 
 _environment: jinja2.Environment | None = None
+# reports are drawn on worker threads: one of them makes the environment, the others wait
+_environment_lock = threading.Lock()
 
 
 def _env() -> jinja2.Environment:
     global _environment
-    if _environment is None:
-        _environment = jinja2.Environment(
-            # the report's own folder first, then the shared partials (network plot, histogram)
-            loader=jinja2.ChoiceLoader([jinja2.FileSystemLoader(TEMPLATE_DIR),
-                                        jinja2.FileSystemLoader(TEMPLATE_DIR.parent)]),
-            autoescape=True,
-            undefined=jinja2.StrictUndefined,
-            trim_blocks=True,
-            lstrip_blocks=True,
-        )
-    return _environment
+    with _environment_lock:
+        if _environment is None:
+            _environment = _make_environment()
+        return _environment
+
+
+def _make_environment() -> jinja2.Environment:
+    return jinja2.Environment(
+        # the report's own folder first, then the shared partials (network plot, histogram)
+        loader=jinja2.ChoiceLoader([jinja2.FileSystemLoader(TEMPLATE_DIR),
+                                    jinja2.FileSystemLoader(TEMPLATE_DIR.parent)]),
+        autoescape=True,
+        undefined=jinja2.StrictUndefined,
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
 
 
 def report_css() -> str:
