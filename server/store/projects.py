@@ -492,6 +492,60 @@ def run_result(project: Project, run: Run) -> AdjustmentResult:
     return result
 
 
+class NoSuchRun(LookupError):
+    """A run asked for by number that the project does not have (finished)."""
+
+
+def _finished_run(store: Store, project: Project, value: str | None) -> Run:
+    text = (value or "").strip()
+    if not (text.isdigit() and len(text) <= 9):
+        raise NoSuchRun("There is no run with this number.")
+    run = store.run(project.id, int(text))
+    if run is None or not run.finished:
+        raise NoSuchRun("This project has no finished run with this number.")
+    return run
+
+
+def compare_runs(store: Store, project: Project, a_arg: str | None, b_arg: str | None
+                 ) -> dict[str, Any]:
+    """The comparison page's context: runs ``a`` and ``b`` (by default the last two finished).
+
+    Raises ``NoSuchRun`` for a number that names no finished run, or no earlier run.
+    """
+    finished = [r for r in store.runs(project.id) if r.finished]
+    context: dict[str, Any] = {
+        "project": project,
+        "name": display_name(project.name, project.filename),
+        "runs": finished,
+        "comparison": None,
+    }
+    if len(finished) < 2 and a_arg is None and b_arg is None:
+        return context
+    b = _finished_run(store, project, b_arg) if b_arg else store.run(project.id, finished[-1].id)
+    assert b is not None
+    if a_arg:
+        a = _finished_run(store, project, a_arg)
+    else:
+        earlier = [r for r in finished if r.id < b.id]
+        if not earlier:
+            raise NoSuchRun("There is no earlier run to compare with.")
+        a = store.run(project.id, earlier[-1].id)
+    assert a is not None
+    result_a, result_b = run_result(project, a), run_result(project, b)
+    edits_a, edits_b = review.edits_from_json(a.edits), review.edits_from_json(b.edits)
+    made, withdrawn = review.decisions_between(edits_a, edits_b)
+    context.update({
+        "name": display_name(project.name, project.filename, result_b.title),
+        "a": a,
+        "b": b,
+        "latest_id": finished[-1].id,
+        "comparison": review.compare(result_a, result_b),
+        "made": review.decision_rows(made, result_b),
+        "withdrawn": review.decision_rows(withdrawn, result_a),
+    })
+    return context
+
+
 def edited_fieldbook(store: Store, project: Project) -> str | bytes:
     """The upload with the decisions in force written into their lines."""
     base = store.latest_run(project.id, finished=True)

@@ -38,7 +38,7 @@ from server.review.tau import tau_test
 from server.store import projects as service
 from server.store.projects import ReviewState, display_name
 from server.store.projects import load_state as _load_state
-from server.store.sqlite import AlreadyQueued, DecisionsChanged, Project, Run, Store, is_valid_id
+from server.store.sqlite import AlreadyQueued, DecisionsChanged, is_valid_id
 from server.web.dependencies import (
     CheckedForm,
     ProjectDep,
@@ -341,52 +341,14 @@ async def rerun(request: Request, project: ProjectDep, store: StoreDep,
                             status_code=303)
 
 
-def _finished_run(store: Store, project: Project, value: str | None) -> Run | None:
-    run_id = _int(value or "")
-    if run_id is None:
-        raise HTTPException(status_code=404, detail="There is no run with this number.")
-    run = store.run(project.id, run_id)
-    if run is None or not run.finished:
-        raise HTTPException(status_code=404, detail="This project has no finished run "
-                                                    "with this number.")
-    return run
-
-
 @router.get("/projects/{project_id}/compare", response_class=HTMLResponse)
 def compare_page(request: Request, project: ProjectDep, store: StoreDep) -> HTMLResponse:
     """Two runs side by side: variance factor, global test, flags, point shifts."""
-    finished = [r for r in store.runs(project.id) if r.finished]
-    a_arg, b_arg = request.query_params.get("a"), request.query_params.get("b")
-    context: dict[str, Any] = {
-        "project": project,
-        "name": display_name(project.name, project.filename),
-        "runs": finished,
-        "comparison": None,
-    }
-    if len(finished) < 2 and a_arg is None and b_arg is None:
-        return _render(request, "compare.html", context)
-    b = _finished_run(store, project, b_arg) if b_arg else store.run(project.id, finished[-1].id)
-    assert b is not None
-    if a_arg:
-        a = _finished_run(store, project, a_arg)
-    else:
-        earlier = [r for r in finished if r.id < b.id]
-        if not earlier:
-            raise HTTPException(status_code=404, detail="There is no earlier run to compare with.")
-        a = store.run(project.id, earlier[-1].id)
-    assert a is not None
-    result_a, result_b = service.run_result(project, a), service.run_result(project, b)
-    edits_a, edits_b = review.edits_from_json(a.edits), review.edits_from_json(b.edits)
-    made, withdrawn = review.decisions_between(edits_a, edits_b)
-    context.update({
-        "name": display_name(project.name, project.filename, result_b.title),
-        "a": a,
-        "b": b,
-        "latest_id": finished[-1].id,
-        "comparison": review.compare(result_a, result_b),
-        "made": review.decision_rows(made, result_b),
-        "withdrawn": review.decision_rows(withdrawn, result_a),
-    })
+    try:
+        context = service.compare_runs(store, project, request.query_params.get("a"),
+                                       request.query_params.get("b"))
+    except service.NoSuchRun as exc:
+        raise HTTPException(status_code=404, detail=str(exc)) from None
     return _render(request, "compare.html", context)
 
 
