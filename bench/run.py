@@ -324,19 +324,19 @@ def _print_stages(stages) -> None:
 
 def _typical() -> None:
     """Warm time of a typical project: adjustment with full statistics plus its HTML report."""
-    from server.report import tables as report
+    from server.report import html as html_report
     from server.pipeline import adjust_fieldbook
 
     text = networks.horizontal(200, sparse=True, fixed_every=50)
     count = sum(1 for line in text.splitlines() if line.startswith(("  ", "distance")))
     for _ in range(3):
-        report.report_html(adjust_fieldbook(text))
+        html_report.report_html(adjust_fieldbook(text))
     adjust_times, page_times = [], []
     for _ in range(20):
         start = time.perf_counter()
         result = adjust_fieldbook(text)
         middle = time.perf_counter()
-        report.report_html(result)
+        html_report.report_html(result)
         adjust_times.append(middle - start)
         page_times.append(time.perf_counter() - middle)
     adjust_times.sort()

@@ -123,21 +123,21 @@ def _adjust(args: argparse.Namespace) -> int:
 
         args.pdf.write_bytes(report_pdf(result))
     if args.report is not None:
-        from server.report import tables as report
+        from server.report.html import report_html
 
-        args.report.write_text(report.report_html(result), encoding="utf-8")
+        args.report.write_text(report_html(result), encoding="utf-8")
     if args.csv is not None:
-        from server.report import tables as report
+        from server.report.csv_export import points_csv
 
-        args.csv.write_text(report.points_csv(result), encoding="utf-8", newline="")
+        args.csv.write_text(points_csv(result), encoding="utf-8", newline="")
     if args.json:
         # the same text as json.dump(..., indent=2), written faster for large networks
         sys.stdout.write(dumps_indented(result.to_json_dict()))
         sys.stdout.write("\n")
     else:
-        from server.report import tables as report
+        from server.report.text import report_text
 
-        sys.stdout.write(report.report_text(result))
+        sys.stdout.write(report_text(result))
     return EXIT_OK
 
 

@@ -11,7 +11,8 @@ import pytest
 
 from server.pipeline import UNLIMITED, adjust_parsed
 from server.web import create_app
-from server.web import pages as routes
+from server.store import projects as routes
+from server.web import dependencies
 from server.web.jobs import AdjustmentQueue, QueueFull
 
 with warnings.catch_warnings():
@@ -96,7 +97,7 @@ def blocked(tmp_path, monkeypatch):
         return adjust_parsed(book, progress=progress, limits=limits)
 
     monkeypatch.setattr(routes, "adjust_parsed", held)
-    monkeypatch.setattr(routes, "_WAIT_FOR_SMALL_JOBS", 0.05)
+    monkeypatch.setattr(dependencies, "WAIT_FOR_SMALL_JOBS", 0.05)
     app = create_app(tmp_path, adjustments_at_once=1, max_waiting=2)
     with TestClient(app) as client:
         yield client, app, release, entered
@@ -174,7 +175,7 @@ def test_the_api_waits_for_a_slot_too(tmp_path, monkeypatch):
 def test_a_stored_result_is_shown_without_the_queue_but_a_preset_rerun_waits_its_turn(tmp_path):
     app = create_app(tmp_path, adjustments_at_once=1, max_waiting=1)
     queue = app.state.jobs.queue
-    project_id, result, _ = routes._submit(
+    project_id, result, _ = routes.submit(
         app.state.store, routes.Upload(DEMO.read_bytes(), DEMO.name, ""))
     assert result is not None
     release, holding = threading.Event(), threading.Event()

@@ -21,7 +21,10 @@ import pytest
 
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
-from server.report.tables import observation_rows, points_csv, report_html, report_text
+from server.report.tables import observation_rows
+from server.report.csv_export import points_csv
+from server.report.html import report_html
+from server.report.text import report_text
 from server.report.pdf import report_pdf
 from server.web import create_app
 

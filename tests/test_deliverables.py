@@ -18,12 +18,13 @@ import pypdf
 import pytest
 import scipy.stats
 
-from server.report import tables as report
 from server.cli import main
+from server.report import html as html_report
 from server.fieldbook.parser import parse_fieldbook
 from server.report.histogram import BIN_WIDTH, expected_count, w_histogram
 from server.pipeline import adjust_fieldbook, adjust_parsed
-from server.report.tables import safe_cell, standards_summary
+from server.report.csv_export import safe_cell
+from server.report.tables import standards_summary
 from server.results.result import CAUTION
 from server.review.standards import FGCC_1984_LEVELING, PRESETS, with_presets
 from server.units import LENGTH_FACTORS
@@ -206,7 +207,7 @@ def test_histogram_reference_curve_is_the_expected_count_per_bin(network):
 def test_no_histogram_without_tested_observations():
     result = adjust_fieldbook(TWO_POINTS.format(sigma=5))
     assert w_histogram(result) is None
-    assert "Standardized residuals" not in report.report_html(result)
+    assert "Standardized residuals" not in html_report.report_html(result)
 
 
 # ---------------------------------------------------------------------------------------
@@ -214,7 +215,7 @@ def test_no_histogram_without_tested_observations():
 
 
 def test_html_report_draws_the_network_and_the_histogram_inline(network):
-    html = report.report_html(network)
+    html = html_report.report_html(network)
     plot = re.search(r'<svg class="np-map".*?</svg>', html, re.DOTALL)
     assert plot, "the 2D report has the network plot"
     assert plot.group(0).count('<g class="np-pt ') == len(network.points)
@@ -226,7 +227,7 @@ def test_html_report_draws_the_network_and_the_histogram_inline(network):
 
 
 def test_html_report_loads_nothing_from_outside(network):
-    html = report.report_html(network)
+    html = html_report.report_html(network)
     assert "<script" not in html and "<link" not in html and "<iframe" not in html
     assert not re.search(r"\b(src|href)\s*=", html)
     assert "url(" not in html and "@import" not in html
@@ -235,7 +236,7 @@ def test_html_report_loads_nothing_from_outside(network):
 
 
 def test_html_report_puts_the_standards_summary_first_with_symbol_and_word(blunder):
-    html = report.report_html(blunder)
+    html = html_report.report_html(blunder)
     body = html.split("<body>", 1)[1]
     exceeded = sum(m.exceeds for m in blunder.misclosures)
     summary = (f"Fail: {exceeded} of {len(blunder.misclosures)} loops and runs exceed the "
@@ -248,7 +249,7 @@ def test_html_report_puts_the_standards_summary_first_with_symbol_and_word(blund
 
 
 def test_html_report_lists_relative_precision_per_pair(network):
-    html = report.report_html(network)
+    html = html_report.report_html(network)
     assert html.count("✓ meets") == sum(r.passed is True for r in network.relative)
     assert "Pass: 64 joined pairs within the allowance; pairs neither joined" in html
     assert html.count(CAUTION) == 2

@@ -80,7 +80,7 @@ def test_the_home_page_answers_while_a_results_page_is_built(tmp_path, monkeypat
     import jinja2
 
     app = create_app(tmp_path)
-    from server.web.pages import Upload, _submit
+    from server.store.projects import Upload, submit as _submit
 
     project_id, result, _ = _submit(app.state.store, Upload(DEMO.read_bytes(), DEMO.name, ""))
     assert result is not None

@@ -27,7 +27,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from server.report import tables as report
+from server.report import text as text_report
 from server.errors import FieldbookError, NetworkError
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
@@ -178,7 +178,7 @@ def check_result(result: AdjustmentResult) -> None:
     assert isinstance(result.summary.redundancy, int) and result.summary.redundancy >= 0
     if NAN_WORD.search(_user_strings(result)):
         return  # a point named 'nan' would be found below; the JSON check above still holds
-    text = report.report_text(result)
+    text = text_report.report_text(result)
     assert not NAN_WORD.search(text), NAN_WORD.search(text)
 
 

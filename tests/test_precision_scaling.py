@@ -30,6 +30,8 @@ import pytest
 import scipy.stats
 
 from server.report import tables as report
+from server.report import text as text_report
+from server.report import html as html_report
 from server.statistics import quality as st
 from server.errors import FieldbookError
 from server.fieldbook.parser import parse_fieldbook
@@ -299,13 +301,13 @@ def test_precision_given_twice_is_refused():
 def test_text_summary_states_choice_and_effect(tight):
     (_, _, variance, _, _), results = tight
     vf, times = f"{variance:.3f}", f"{math.sqrt(variance):.3f}"
-    post = report.report_text(results["posterior"])
+    post = text_report.report_text(results["posterior"])
     assert (f"Precisions scaled by the a posteriori variance factor {vf} "
             f"(standard deviations × {times})") in post
-    prior = report.report_text(results["prior"])
+    prior = text_report.report_text(results["prior"])
     assert "Precisions scaled by the a priori variance factor 1 (standard deviations × 1.000" in prior
     assert f"would have given standard deviations × {times}" in prior
-    larger = report.report_text(results["larger"])
+    larger = text_report.report_text(results["larger"])
     assert f"the a posteriori one, standard deviations × {times}" in larger
 
 
@@ -321,7 +323,7 @@ def test_larger_picking_the_a_priori_factor_says_so(loose):
 
 def test_html_report_and_pdf_state_choice_and_ellipse_quantile(tight):
     _, results = tight
-    html = report.report_html(results["prior"])
+    html = html_report.report_html(results["prior"])
     assert "Precisions scaled by the a priori variance factor 1" in html
     assert "k = √χ²(95%; 2) = 2.4477" in html
     assert "Precisions scaled by" in html and "a priori σ₀² = 1.000 (sd × 1.000)" in html
@@ -330,7 +332,7 @@ def test_html_report_and_pdf_state_choice_and_ellipse_quantile(tight):
                     for page in pypdf.PdfReader(io.BytesIO(pdf)).pages)
     assert "Precisions scaled by the a priori variance factor 1" in text
     assert "standard deviations are a priori (σ₀² = 1)" in text
-    post_html = report.report_html(results["posterior"])
+    post_html = html_report.report_html(results["posterior"])
     assert f"k = √(2·F(95%; 2, r)) = {_k_f(0.95, 3):.4f}" in post_html
 
 

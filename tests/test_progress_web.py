@@ -13,7 +13,8 @@ import pytest
 from server.pipeline import UNLIMITED, adjust_parsed
 from server.store.sqlite import NO_EDITS, RunGone
 from server.web import create_app
-from server.web import pages as routes
+from server.store import projects as routes
+from server.web import dependencies
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")  # starlette's test client prefers httpx2
@@ -36,7 +37,7 @@ def test_a_long_adjustment_shows_its_stage_then_its_results(app, monkeypatch):
         return adjust_parsed(book, progress=progress, limits=limits)
 
     monkeypatch.setattr(routes, "adjust_parsed", slow)
-    monkeypatch.setattr(routes, "_WAIT_FOR_SMALL_JOBS", 0.05)
+    monkeypatch.setattr(dependencies, "WAIT_FOR_SMALL_JOBS", 0.05)
     with TestClient(app) as client:
         posted = client.post("/projects", files={"fieldbook": ("b.fieldbook", BLUNDER.read_bytes())},
                              follow_redirects=False)
@@ -95,7 +96,7 @@ def test_a_project_deleted_while_it_adjusts_leaves_no_traceback(app, monkeypatch
         return adjust_parsed(book, progress=progress, limits=limits)
 
     monkeypatch.setattr(routes, "adjust_parsed", slow)
-    monkeypatch.setattr(routes, "_WAIT_FOR_SMALL_JOBS", 0.05)
+    monkeypatch.setattr(dependencies, "WAIT_FOR_SMALL_JOBS", 0.05)
     monkeypatch.setattr(threading, "excepthook", lambda args: escaped.append(args.exc_value))
     caplog.set_level(logging.INFO, logger="stationfit.web")
     with TestClient(app) as client:

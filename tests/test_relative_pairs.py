@@ -19,7 +19,8 @@ from server.fieldbook import parser as fieldbook_module
 from server.errors import FieldbookError
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
-from server.report.tables import pairs_checked, standards_summary, report_text
+from server.report.tables import pairs_checked, standards_summary
+from server.report.text import report_text
 from server.units import format_dms
 
 RAD_PER_SEC = math.pi / 648000.0

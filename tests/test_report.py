@@ -14,6 +14,9 @@ import pytest
 from server import __version__
 
 from server.report import tables as report
+from server.report import csv_export
+from server.report import text as text_report
+from server.report import html as html_report
 from server.pipeline import adjust_fieldbook
 from server.results.result import (
     CAUTION,
@@ -81,7 +84,7 @@ def _angle(value_deg: float, residual_arcsec: float) -> ObservationResult:
 
 
 def test_report_shows_caution_at_top_and_bottom(blunder):
-    html = report.report_html(blunder)
+    html = html_report.report_html(blunder)
     assert html.count(CAUTION) == 2
     body = html.split("<body>", 1)[1]
     # once before the verdict and once after the observations
@@ -91,7 +94,7 @@ def test_report_shows_caution_at_top_and_bottom(blunder):
 
 
 def test_report_identifies_the_field_book_and_software(blunder):
-    html = report.report_html(blunder, generated=datetime(2024, 5, 9, 14, 30, tzinfo=UTC))
+    html = html_report.report_html(blunder, generated=datetime(2024, 5, 9, 14, 30, tzinfo=UTC))
     assert blunder.text_sha256 in html
     assert re.fullmatch(r"[0-9a-f]{64}", blunder.text_sha256)
     assert f"Stationfit {__version__}" in html
@@ -100,7 +103,7 @@ def test_report_identifies_the_field_book_and_software(blunder):
 
 
 def test_report_names_the_datum_and_test_settings(blunder):
-    html = report.report_html(blunder)
+    html = html_report.report_html(blunder)
     assert "BM-TANNERY" in html and "BM-KESTREL" in html
     assert "held fixed" in html
     assert "|w| &gt; 3.29" in html  # critical value of the w-test at snooping 0.001
@@ -108,7 +111,7 @@ def test_report_names_the_datum_and_test_settings(blunder):
 
 
 def test_report_verdict_says_fails_and_points_at_the_blunder(blunder):
-    html = report.report_html(blunder)
+    html = html_report.report_html(blunder)
     assert "Fails: residuals too large — look for blunders" in html
     row = _row_of_line(html, BLUNDER_LINE)
     assert "is-flagged" in row and "⚑ flagged" in row
@@ -117,21 +120,21 @@ def test_report_verdict_says_fails_and_points_at_the_blunder(blunder):
 
 
 def test_report_heights_are_the_results_to_a_tenth_of_a_millimetre(blunder):
-    html = report.report_html(blunder)
+    html = html_report.report_html(blunder)
     assert len(blunder.points) == 30  # the demo's marks (tools/DEMOS.md)
     for p in blunder.points:
         assert p.height is not None and f">{p.height:.4f}<" in html, p.name
 
 
 def test_report_marks_loops_over_the_allowance(blunder):
-    html = report.report_html(blunder)
+    html = html_report.report_html(blunder)
     exceeded = [m for m in blunder.misclosures if m.exceeds]
     assert exceeded, "the demo has loops over the allowance (tools/DEMOS.md)"
     assert html.count("✕ exceeds") == len(exceeded)
 
 
 def test_report_is_self_contained_and_printable(blunder):
-    html = report.report_html(blunder)
+    html = html_report.report_html(blunder)
     assert "<script" not in html
     assert not re.search(r"""(src|href)\s*=\s*["']?(https?:)?//""", html)
     assert "<link" not in html
@@ -141,7 +144,7 @@ def test_report_is_self_contained_and_printable(blunder):
 
 
 def test_report_warnings_are_numbered(blunder):
-    html = report.report_html(blunder)
+    html = html_report.report_html(blunder)
     assert blunder.warnings
     assert '<ol class="warnings">' in html
     for warning in blunder.warnings:
@@ -151,7 +154,7 @@ def test_report_warnings_are_numbered(blunder):
 def test_report_escapes_point_names():
     name = "<script>alert(1)</script>"
     result = _built(points=(_point(name, height=1.0, sd_height=0.0, fixed="h"),), dimension=1)
-    html = report.report_html(result)
+    html = html_report.report_html(result)
     assert name not in html
     assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
 
@@ -160,10 +163,10 @@ def test_style_hash_matches_the_inline_style(blunder):
     import base64
     import hashlib
 
-    html = report.report_html(blunder)
+    html = html_report.report_html(blunder)
     style = re.search(r"<style>(.*?)</style>", html, re.DOTALL).group(1)
     digest = base64.b64encode(hashlib.sha256(style.encode()).digest()).decode()
-    assert report.style_hash() == f"'sha256-{digest}'"
+    assert html_report.style_hash() == f"'sha256-{digest}'"
 
 
 # ---------------------------------------------------------------------------------------
@@ -246,13 +249,13 @@ def test_verdict_not_converged_overrides_a_passing_test():
 @pytest.mark.parametrize("name", ["=cmd|' /C calc'!A0", "+1", "-2", "@SUM(A1)", "\tTAB"])
 def test_csv_guards_names_that_a_spreadsheet_would_run(name):
     result = _built(points=(_point(name, height=-1.23456, sd_height=0.0001),), dimension=1)
-    (row,) = list(csv.DictReader(io.StringIO(report.points_csv(result))))
+    (row,) = list(csv.DictReader(io.StringIO(csv_export.points_csv(result))))
     assert row["name"] == "'" + name
 
 
 def test_csv_keeps_negative_numbers_as_numbers():
     point = _point("BM-1", east=-12.34567, north=5.0, height=-1.23456, sd_height=0.0001)
-    (row,) = list(csv.DictReader(io.StringIO(report.points_csv(_built(points=(point,))))))
+    (row,) = list(csv.DictReader(io.StringIO(csv_export.points_csv(_built(points=(point,))))))
     assert row["height"] == "-1.2346"
     assert row["east"] == "-12.3457"
     assert float(row["height"]) == pytest.approx(-1.2346)
@@ -260,9 +263,9 @@ def test_csv_keeps_negative_numbers_as_numbers():
 
 
 def test_csv_has_every_point_with_its_datum(blunder):
-    rows = list(csv.DictReader(io.StringIO(report.points_csv(blunder))))
+    rows = list(csv.DictReader(io.StringIO(csv_export.points_csv(blunder))))
     assert [r["name"] for r in rows] == [p.name for p in blunder.points]
-    assert list(rows[0]) == list(report.POINT_CSV_HEADER)
+    assert list(rows[0]) == list(csv_export.POINT_CSV_HEADER)
     fixed = {r["name"] for r in rows if r["fixed"] == "h"}
     assert fixed == {"BM-TANNERY", "BM-KESTREL"}
     # a 1D network has no positions and no ellipses: empty cells, not zeros
@@ -276,7 +279,7 @@ def test_csv_has_every_point_with_its_datum(blunder):
 
 
 def test_text_summary_for_the_terminal(blunder):
-    text = report.report_text(blunder)
+    text = text_report.report_text(blunder)
     assert "FAILS" in text
     flagged = text.split("Flagged observations", 1)[1].split("Warnings", 1)[0]
     assert re.search(rf"^\s*{BLUNDER_LINE}\s+level\s+KR-106 → KR-107", flagged, re.MULTILINE)
@@ -286,7 +289,7 @@ def test_text_summary_for_the_terminal(blunder):
 
 
 def test_text_summary_says_none_flagged_for_the_clean_demo(clean):
-    text = report.report_text(clean)
+    text = text_report.report_text(clean)
     assert text.startswith(f"Stationfit {__version__}")
     assert "PASSES" in text
     assert re.search(r"Flagged observations \(\|w\| > 3\.29, largest first\)\nnone\n", text)
@@ -296,7 +299,7 @@ def test_text_summary_lists_the_largest_w_first():
     """network_direction_blunder: the +30″ slip on line 94 has the largest |w| (tools/DEMOS.md)."""
     path = DEMOS / "network_direction_blunder.fieldbook"
     result = adjust_fieldbook(path.read_bytes(), source=path.name)
-    section = report.report_text(result).split("largest first)", 1)[1].split("\n\n", 1)[0]
+    section = text_report.report_text(result).split("largest first)", 1)[1].split("\n\n", 1)[0]
     lines = [int(row.split()[0]) for row in section.splitlines() if re.match(r"\s*\d+\s", row)]
     assert lines[0] == 94
     by_w = sorted((o for o in result.observations if o.flagged), key=lambda o: -abs(o.w))

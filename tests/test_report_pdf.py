@@ -320,7 +320,7 @@ def test_ellipses_are_drawn_along_their_azimuth(directions):
 
 def test_the_report_names_the_field_book_by_its_file_name_not_its_folders(tmp_path):
     """A report leaves the office: the surveyor's folders are nobody else's business."""
-    from server.report.tables import report_html
+    from server.report.html import report_html
 
     folder = tmp_path / "jobs" / "client-private"
     folder.mkdir(parents=True)
@@ -346,6 +346,6 @@ def test_the_report_names_the_field_book_by_its_file_name_not_its_folders(tmp_pa
      ("c.fieldbook", "c.fieldbook"), ("", "")],
 )
 def test_source_name_drops_the_folders_of_either_kind_of_path(source, name):
-    from server.report.tables import source_name
+    from server.report.html import source_name
 
     assert source_name(source) == name

@@ -22,6 +22,7 @@ from fastapi import FastAPI
 from server.pipeline import adjust_fieldbook
 from server.store.sqlite import AlreadyQueued, DecisionsChanged, Store
 from server.web import create_app
+from server.store import projects as service
 from server.web import review as review_routes
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
 
@@ -88,7 +89,7 @@ def test_undo_during_another_clients_rerun_refuses_the_rerun_so_the_undo_holds(
     assert _decide(client, project, SECOND, token).status_code == 303
     store: Store = app.state.store
     undone = next(p.id for p in store.pending_edits(project) if p.edit["line"] == FIRST)
-    real_adjust = review_routes.adjust_fieldbook
+    real_adjust = service.adjust_fieldbook
 
     def adjust_while_the_other_client_undoes(*args, **kwargs):
         result = real_adjust(*args, **kwargs)
@@ -98,7 +99,7 @@ def test_undo_during_another_clients_rerun_refuses_the_rerun_so_the_undo_holds(
         assert response.status_code == 303
         return result
 
-    monkeypatch.setattr(review_routes, "adjust_fieldbook", adjust_while_the_other_client_undoes)
+    monkeypatch.setattr(service, "adjust_fieldbook", adjust_while_the_other_client_undoes)
     response = client.post(f"/projects/{project}/runs", data={"token": token},
                            follow_redirects=False)
     assert response.status_code == 409
@@ -111,7 +112,7 @@ def test_undo_during_another_clients_rerun_refuses_the_rerun_so_the_undo_holds(
     assert _observation(client, project, FIRST)["ignored"] is False  # the undo held
     assert [p.edit["line"] for p in store.pending_edits(project)] == [SECOND]
 
-    monkeypatch.setattr(review_routes, "adjust_fieldbook", real_adjust)
+    monkeypatch.setattr(service, "adjust_fieldbook", real_adjust)
     response = client.post(f"/projects/{project}/runs", data={"token": token},
                            follow_redirects=False)
     assert response.status_code == 303  # re-run again: exactly the decision still queued
@@ -123,14 +124,14 @@ def test_undo_during_another_clients_rerun_refuses_the_rerun_so_the_undo_holds(
 def test_a_decision_queued_during_a_rerun_is_not_swallowed(app, client, project, monkeypatch):
     token = _token(client, project)
     assert _decide(client, project, FIRST, token).status_code == 303
-    real_adjust = review_routes.adjust_fieldbook
+    real_adjust = service.adjust_fieldbook
 
     def adjust_while_the_other_client_decides(*args, **kwargs):
         result = real_adjust(*args, **kwargs)
         assert _decide(client, project, SECOND, token).status_code == 303
         return result
 
-    monkeypatch.setattr(review_routes, "adjust_fieldbook", adjust_while_the_other_client_decides)
+    monkeypatch.setattr(service, "adjust_fieldbook", adjust_while_the_other_client_decides)
     response = client.post(f"/projects/{project}/runs", data={"token": token},
                            follow_redirects=False)
     assert response.status_code == 409 and "queued after it started" in response.text

@@ -369,7 +369,7 @@ def test_an_interrupted_run_stays_unfinished_and_the_earlier_run_is_reviewed(app
 
 
 def test_an_unexpected_engine_error_marks_the_run_failed_not_running(app, project, monkeypatch):
-    from server.web import review as review_routes
+    from server.store import projects as review_routes
 
     def explode(*args, **kwargs):
         raise RuntimeError("engine bug")

@@ -23,7 +23,8 @@ import pytest
 from server.statistics import separability
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook, adjust_parsed
-from server.report.tables import report_text, verdict
+from server.report.text import report_text
+from server.report.tables import verdict
 from server.review.robust import robust_adjustment
 from server.review.snooping import propose_snooping, with_ignored
 

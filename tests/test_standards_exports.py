@@ -15,7 +15,7 @@ import scipy.stats
 from server.formats.geojson import geojson_text
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook, adjust_parsed
-from server.report.tables import points_csv
+from server.report.csv_export import points_csv
 from server.review.standards import FGCC_1984_LEVELING, PRESETS, with_presets
 
 DEMOS = Path(__file__).resolve().parent.parent / "demo_projects"

@@ -319,7 +319,8 @@ def test_stored_result_keeps_the_traverse_figures() -> None:
 
 
 def test_reports_show_the_traverse_closure() -> None:
-    from server.report.tables import report_html, report_text
+    from server.report.html import report_html
+    from server.report.text import report_text
 
     result = adjust_text(_purdue_fieldbook(WAC_PLAIN))
     text = report_text(result)

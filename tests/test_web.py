@@ -426,7 +426,7 @@ def test_server_error_page_never_shows_a_traceback(app):
 
 
 def test_adjustment_runs_off_the_event_loop(client, monkeypatch):
-    from server.web import pages as routes
+    from server.store import projects as routes
 
     seen: list[bool] = []
 

@@ -41,7 +41,7 @@ from reportlab.platypus import (
 )
 
 from server import __version__
-
+from server.report import html as html_report
 from server.report import tables as report
 from server.report.pdf_drawings import histogram_drawing, network_drawing, network_legend
 from server.report.pdf_kit import (
@@ -166,11 +166,11 @@ def _heading(text: str, styles: Styles) -> list[Flowable]:
 
 def _title_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles,
                  width: float, generated: str) -> list[Flowable]:
-    title = result.title or report.source_name(result.source) or "Untitled field book"
+    title = result.title or html_report.source_name(result.source) or "Untitled field book"
     facts = [
         ("Generated", generated),
         ("Software", f"Stationfit {__version__}"),
-        ("Field book", report.source_name(result.source) or "—"),
+        ("Field book", html_report.source_name(result.source) or "—"),
         ("Network", report.DIMENSION_LABELS.get(result.summary.dimension, "")),
     ]
     facts += [(label, value) for label, value, _ in data["units_rows"]]
@@ -468,7 +468,7 @@ def _warnings_block(result: AdjustmentResult, styles: Styles) -> list[Flowable]:
     if not result.warnings:
         return []
     out = _heading("Warnings", styles)
-    for i, warning in enumerate(report.report_warnings(result), start=1):
+    for i, warning in enumerate(html_report.report_warnings(result), start=1):
         out.append(styles.markup(f"<b>{i}.</b> {styles.text(warning)}", styles.small))
         out.append(Spacer(1, 2))
     return out
@@ -544,8 +544,8 @@ def report_pdf(result: AdjustmentResult, *, generated: datetime | None = None,
     fonts = load_fonts(font_dir)
     styles = make_styles(fonts)
     data = report.context(result, presets)
-    when = report.generated_text(generated)
-    title = result.title or report.source_name(result.source) or "Untitled field book"
+    when = html_report.generated_text(generated)
+    title = result.title or html_report.source_name(result.source) or "Untitled field book"
     size = PAGE_SIZES[page_size]
     width = size[0] - 2 * MARGIN_X
     buffer = io.BytesIO()

@@ -1,4 +1,4 @@
-"""Presentation of an adjustment result: rows of formatted figures, laid out as HTML, text or CSV.
+"""Presentation of an adjustment result: the rows of formatted figures, built once.
 
 Nothing here computes a figure.  Every number comes from the frozen
 ``AdjustmentResult`` and is only rounded for display:
@@ -12,26 +12,18 @@ Nothing here computes a figure.  Every number comes from the frozen
 * w-statistics and redundancy numbers to 2 decimals.
 
 The row helpers (``rows``, ``point_rows``, ``observation_rows``,
-``misclosure_rows`` …) are shared by the HTML report, the text summary and
-the web pages, so every output shows the same figures the same way.
+``misclosure_rows`` …) are shared by the HTML report (``html.py``), the text
+summary (``text.py``), the CSV (``csv_export.py``) and the web pages, so every
+output shows the same figures the same way.
 """
 
 from __future__ import annotations
 
-import base64
-import csv
-import hashlib
-import io
 import math
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, replace
-from datetime import UTC, datetime
-from pathlib import Path
 
-import jinja2
-from markupsafe import Markup
-
-from server import __version__, resources
+from server import __version__
 from server.report.histogram import layout as histogram_layout
 from server.report.histogram import w_histogram
 from server.results.result import AdjustmentResult, ObservationResult, PointResult, RelativeResult
@@ -39,8 +31,6 @@ from server.review.standards import Preset
 from server.units import format_dms
 
 #: Folder of the report templates and of the CSS that is inlined into the report.
-TEMPLATE_DIR = resources.TEMPLATE_DIR / "report"
-REPORT_CSS = TEMPLATE_DIR / "report.css"
 
 #: Shown where a figure does not apply.
 NOT_APPLICABLE = "—"
@@ -270,6 +260,19 @@ class MisclosureRow:
     stations: str = NOT_APPLICABLE
 
 
+def verdict_state(*, converged: bool, passed: bool | None, flagged: int = 0, exceeded: int = 0,
+                  unchecked: int = 0) -> str:
+    """The one rule for a verdict's state: "pass", "warn", "fail" or "none" (``passed`` None:
+    not tested).  The results banner, the review, the comparison and the project list use it."""
+    if not converged:
+        return "fail"
+    if passed is None:
+        return "none"
+    if passed:
+        return "warn" if flagged or exceeded or unchecked else "pass"
+    return "fail"
+
+
 def verdict(result: AdjustmentResult) -> Verdict:
     """The summary sentence of the global test, with the counts of flags and exceeded loops."""
     s = result.summary
@@ -298,14 +301,15 @@ def verdict(result: AdjustmentResult) -> Verdict:
     if unchecked:
         notes.append(unchecked_note(result, unchecked))
     detail = tuple(notes)
+    state = verdict_state(converged=s.converged, passed=None if test is None else test.passed,
+                          flagged=len(flagged), exceeded=exceeded, unchecked=len(unchecked))
     if not s.converged:
-        return Verdict("fail", "Not converged: the iterations did not settle — do not use these "
+        return Verdict(state, "Not converged: the iterations did not settle — do not use these "
                        "results", detail, len(flagged), exceeded, len(unchecked))
     if test is None:
-        return Verdict("none", "Not tested: there are no redundant observations, so a blunder "
+        return Verdict(state, "Not tested: there are no redundant observations, so a blunder "
                        "cannot be detected", detail, len(flagged), exceeded, len(unchecked))
     if test.passed:
-        state = "warn" if flagged or exceeded or unchecked else "pass"
         headline = "Passes: the residuals agree with the a priori standard deviations"
         if unchecked:
             headline = (f"Passes, but {_count(len(unchecked))} can no longer be checked: a blunder "
@@ -318,7 +322,7 @@ def verdict(result: AdjustmentResult) -> Verdict:
     else:
         headline = ("Fails: residuals smaller than expected — the a priori standard deviations "
                     "may be too pessimistic")
-    return Verdict("fail", headline, detail, len(flagged), exceeded, len(unchecked))
+    return Verdict(state, headline, detail, len(flagged), exceeded, len(unchecked))
 
 
 def _inseparable_notes(result: AdjustmentResult) -> list[str]:
@@ -1006,236 +1010,3 @@ def context(result: AdjustmentResult, presets: Sequence[Preset] = (),
         "arcsec": ARCSEC,
         "version": __version__,
     }
-
-
-# --------------------------------------------------------------------------------------
-# HTML
-
-
-_environment: jinja2.Environment | None = None
-
-
-def _env() -> jinja2.Environment:
-    global _environment
-    if _environment is None:
-        _environment = jinja2.Environment(
-            # the report's own folder first, then the shared partials (network plot, histogram)
-            loader=jinja2.ChoiceLoader([jinja2.FileSystemLoader(TEMPLATE_DIR),
-                                        jinja2.FileSystemLoader(TEMPLATE_DIR.parent)]),
-            autoescape=True,
-            undefined=jinja2.StrictUndefined,
-            trim_blocks=True,
-            lstrip_blocks=True,
-        )
-    return _environment
-
-
-def report_css() -> str:
-    """The report's style sheet, read at render time so the file can be edited without a restart."""
-    css = REPORT_CSS.read_text(encoding="utf-8")
-    if "</" in css:
-        raise ValueError(f"{REPORT_CSS} must not contain '</'; it is inlined in a <style> element")
-    return css
-
-
-def style_hash(css: str | None = None) -> str:
-    """The CSP source expression (``'sha256-…'``) that allows the report's inline style."""
-    digest = hashlib.sha256((css if css is not None else report_css()).encode("utf-8")).digest()
-    return f"'sha256-{base64.b64encode(digest).decode('ascii')}'"
-
-
-def source_name(source: str) -> str:
-    """The field book's file name without its folders: a report leaves the office."""
-    return source.replace("\\", "/").rsplit("/", 1)[-1]
-
-
-def report_warnings(result: AdjustmentResult) -> list[str]:
-    """The warnings as a report prints them: ``FILE:LINE:`` without the folders of FILE."""
-    name = source_name(result.source)
-    if name == result.source:
-        return list(result.warnings)
-    prefix = f"{result.source}:"
-    return [f"{name}:{w[len(prefix):]}" if w.startswith(prefix) else w for w in result.warnings]
-
-
-def generated_text(generated: datetime | None) -> str:
-    """The moment a report was made, as "YYYY-MM-DD HH:MM UTC" (now when None)."""
-    moment = generated if generated is not None else datetime.now(UTC)
-    if moment.tzinfo is None:
-        return moment.strftime("%Y-%m-%d %H:%M")
-    return moment.astimezone(UTC).strftime("%Y-%m-%d %H:%M UTC")
-
-
-def report_html(result: AdjustmentResult, *, generated: datetime | None = None,
-                presets: Sequence[Preset] = ()) -> str:
-    """A self-contained printable HTML report (inline CSS and SVG, no scripts, nothing external)."""
-    from server.report.plot import network_plot_data  # plot lays out report rows: imported here, not above
-
-    data = context(result, presets)
-    data["network_plot"] = network_plot_data(result)
-    data["np_static"] = True
-    # The CSS is our own file, never user input; Markup keeps autoescape off its '>' selectors.
-    data["css"] = Markup(report_css())
-    data["generated"] = generated_text(generated)
-    data["source_name"] = source_name(result.source)
-    data["report_warnings"] = report_warnings(result)
-    return _env().get_template("report.html").render(data)
-
-
-# --------------------------------------------------------------------------------------
-# CSV
-
-
-def safe_cell(text: str) -> str:
-    """A text cell that a spreadsheet will not run as a formula (leading apostrophe)."""
-    return "'" + text if text.startswith(_FORMULA_STARTS) else text
-
-
-def _number(value: float | None, decimals: int) -> str:
-    return "" if value is None else _fixed(value, decimals)
-
-
-POINT_CSV_HEADER = (
-    "name", "east", "north", "height", "sd_east", "sd_north", "sd_height",
-    "fixed", "weighted", "semi_major", "semi_minor", "azimuth", "note",
-)
-
-
-def points_csv(result: AdjustmentResult) -> str:
-    """Adjusted points as CSV; text cells are guarded against formula injection, numbers are not."""
-    buffer = io.StringIO()
-    writer = csv.writer(buffer, lineterminator="\r\n")
-    writer.writerow(POINT_CSV_HEADER)
-    places = LENGTH_DECIMALS.get(result.length_unit, 4)
-    for p in result.points:
-        e = p.ellipse
-        writer.writerow([
-            safe_cell(p.name),
-            _number(p.east, places),
-            _number(p.north, places),
-            _number(p.height, places),
-            _number(p.sd_east, places),
-            _number(p.sd_north, places),
-            _number(p.sd_height, places),
-            safe_cell(p.fixed),
-            safe_cell(p.weighted),
-            _number(e.semi_major if e else None, places),
-            _number(e.semi_minor if e else None, places),
-            _number(e.azimuth if e else None, 4),
-            safe_cell(p.note),
-        ])
-    return buffer.getvalue()
-
-
-# --------------------------------------------------------------------------------------
-# plain text
-
-
-def _table(header: Iterable[str], body: list[list[str]], right: set[int]) -> list[str]:
-    head = list(header)
-    widths = [len(h) for h in head]
-    for row in body:
-        widths = [max(w, len(c)) for w, c in zip(widths, row, strict=True)]
-
-    def line(cells: list[str]) -> str:
-        parts = [c.rjust(w) if i in right else c.ljust(w)
-                 for i, (c, w) in enumerate(zip(cells, widths, strict=True))]
-        return "  ".join(parts).rstrip()
-
-    return [line(head), line(["-" * w for w in widths])] + [line(r) for r in body]
-
-
-def report_text(result: AdjustmentResult) -> str:
-    """A compact plain-text summary for the terminal."""
-    v = verdict(result)
-    s = result.summary
-    cols = columns(result)
-    unit = length_label(result.length_unit)
-    title = result.title or result.source or "field book"
-    out = [f"Stationfit {__version__} — {title}"]
-    out.append(f"SHA-256 of the field book: {result.text_sha256}")
-    out.append("")
-    head, _, rest = v.headline.partition(": ")
-    out.append(f"{head.upper()}: {rest}")
-    out += list(v.notes)
-    out.append(
-        f"{s.points} points, {s.used_observations} of {s.observations} observations used, "
-        f"{s.unknowns} unknowns, redundancy {s.redundancy}, "
-        f"variance factor {fmt_ratio(s.variance_factor, 3)}"
-    )
-    out.append(precision_note(result))
-    out += [f"{c.symbol} {c.name}: {c.words}." for c in standards_summary(result)]
-    if reduced := reductions_note(result):
-        out.append(reduced)
-
-    header = ["point"]
-    right = set()
-    if cols.positions:
-        header += [f"east {unit}", f"north {unit}", "sd E", "sd N"]
-    if cols.heights:
-        header += [f"height {unit}", "sd H"]
-    if cols.ellipses:
-        header += ["ellipse a", "b", "az"]
-    header.append("datum")
-    right = set(range(1, len(header) - 1))
-    notes = any(p.note for p in result.points)
-    if notes:
-        header.append("note")
-    body = []
-    for p in point_rows(result):
-        row = [p.name]
-        if cols.positions:
-            row += [p.east, p.north, p.sd_east, p.sd_north]
-        if cols.heights:
-            row += [p.height, p.sd_height]
-        if cols.ellipses:
-            row += [p.semi_major, p.semi_minor, p.azimuth]
-        row.append(p.role)
-        if notes:
-            row.append(p.note)
-        body.append(row)
-    out += ["", "Points"] + _table(header, body, right)
-    heights = relative_height_rows(result)
-    if heights:
-        rows_h = [[h.from_point, h.to_point, h.height_difference, h.sd,
-                   h.half_width + (" (held)" if h.held else "")] for h in heights]
-        out += ["", "Relative precision of height differences (relative lines)"] + _table(
-            ["from", "to", f"ΔH {unit}", "sd ΔH", f"± {fmt_percent(result.summary.confidence)}"],
-            rows_h, {2, 3, 4})
-
-    exceeded = [m for m in leveling_rows(result) if m.exceeds]
-    if exceeded:
-        out += ["", "Misclosures over the allowance"]
-        out += _table(["kind", "route", f"misclosure {unit}", "allowed"],
-                      [[m.kind, m.route, m.misclosure, m.allowed] for m in exceeded], {2, 3})
-    traverses = traverse_rows(result)
-    if traverses:
-        out += ["", "Traverse closures before adjustment"]
-        out += _table(["route", "n", "angular", "allowed", f"linear {unit}", "precision",
-                       "required", "check"],
-                      [[m.route, m.stations, m.angular, m.angular_allowed, m.misclosure, m.ratio,
-                        m.ratio_allowed, m.status] for m in traverses], {1, 2, 3, 4})
-
-    # the largest |w| first: that is the observation to suspect first
-    flagged = sorted((o for o in observation_rows(result) if o.flagged),
-                     key=lambda o: -abs(o.w_raw or 0.0))
-    out += ["", f"Flagged observations (|w| > {fmt_w(s.critical_w)}, largest first)"]
-    if flagged:
-        out += _table(
-            ["line", "kind", "marks", "booked", "reduction", "used", "residual", "w",
-             "est. bias", "MDB", "same test as"],
-            [[str(o.line), o.kind, o.stations, o.booked, o.reduction, o.observed,
-              o.residual + (ARCSEC if o.angular else f" {unit}"), o.w,
-              o.estimated_bias + (ARCSEC if o.angular else f" {unit}"),
-              o.mdb + (ARCSEC if o.angular else f" {unit}"),
-              ", ".join(map(str, o.inseparable)) or "-"] for o in flagged],
-            {0, 3, 4, 5, 6, 7, 8, 9},
-        )
-    else:
-        out.append("none")
-
-    if result.warnings:
-        out += ["", "Warnings"]
-        out += [f"{i}. {w}" for i, w in enumerate(result.warnings, start=1)]
-    out += ["", f"CAUTION: {result.caution}", ""]
-    return "\n".join(out)

@@ -41,7 +41,7 @@ from pathlib import Path
 from typing import Any
 
 from server.errors import FieldbookError, NetworkError
-from server.results.result import (
+from server.results.types import (
     AdjustmentResult,
     Ellipse,
     GlobalTest,

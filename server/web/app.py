@@ -24,7 +24,7 @@ from starlette.middleware.trustedhost import TrustedHostMiddleware
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from server import __version__
-from server.errors import FieldbookError, NetworkError, SurveyError
+from server.errors import SurveyError
 from server.resources import DEMO_DIR, STATIC_DIR, TEMPLATE_DIR
 from server.results.result import CAUTION
 from server.settings import (
@@ -34,8 +34,11 @@ from server.settings import (
     service_limits,
     service_queue,
 )
-from server.store.sqlite import RunGone, Store, error_record
-from server.web.jobs import AdjustmentQueue, Jobs
+from server.store.projects import ProposalCache, StoreFull, purge_deleted
+from server.store.sqlite import RunGone, Store
+from server.web import api, interrupted, pages, relative, review
+from server.web.dependencies import busy, survey_error_payload
+from server.web.jobs import AdjustmentQueue, Jobs, QueueFull
 
 logger = logging.getLogger("stationfit.web")
 
@@ -310,17 +313,6 @@ def _error_page(
     return templates.TemplateResponse(request, "error.html", context, status_code=status)
 
 
-def survey_error_payload(exc: SurveyError) -> dict[str, Any]:
-    """The JSON body for an input error: line-numbered ``errors`` or ``error`` with ``points``."""
-    record = error_record(exc)
-    if isinstance(exc, FieldbookError):
-        return {"error": record["message"], "errors": record["issues"],
-                "error_count": record["count"]}
-    if isinstance(exc, NetworkError):
-        return {"error": exc.message, "points": list(exc.points)}
-    return {"error": str(exc)}
-
-
 def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
     """Errors as JSON under /api and as friendly pages elsewhere; never a traceback."""
 
@@ -384,6 +376,16 @@ def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
         if is_api(request.url.path):
             return JSONResponse({"error": message}, status_code=422)
         return _error_page(templates, request.scope, 400, "Bad request", message)
+
+    @app.exception_handler(QueueFull)
+    async def queue_full(request: Request, exc: QueueFull) -> Response:
+        """The adjustment queue is full: 503 with Retry-After, nothing stored."""
+        return await http_error(request, busy(exc))
+
+    @app.exception_handler(StoreFull)
+    async def store_full(request: Request, exc: StoreFull) -> Response:
+        """The store holds as many projects as it may: 507, nothing stored."""
+        return await http_error(request, StarletteHTTPException(507, str(exc)))
 
     @app.exception_handler(Exception)
     async def server_error(request: Request, exc: Exception) -> Response:
@@ -461,11 +463,6 @@ def create_app(
     ``keep_deleted_days`` (how long a deleted project can be restored; 0: erased at once)
     defaults to STATIONFIT_KEEP_DELETED_DAYS, else 30.
     """
-    from server.web import interrupted as interrupted_routes
-    from server.web import relative as relative_routes
-    from server.web import review as review_routes
-    from server.web import pages as routes
-
     if max_upload_bytes is None:
         max_upload_bytes = env_int("STATIONFIT_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES)
     if max_projects is None:
@@ -483,25 +480,25 @@ def create_app(
     templates = make_templates()
     app.state.store = Store(Path(data_dir) / DATABASE_NAME)
     # This process has not started any run yet: one still ``running`` was cut off.
-    interrupted = app.state.store.mark_interrupted()
-    if interrupted:
+    stopped = app.state.store.mark_interrupted()
+    if stopped:
         logger.warning("the service stopped before finishing run(s) %s; stored as "
                        "interrupted (each can be re-run from its project's page)",
-                       ", ".join(map(str, interrupted)))
+                       ", ".join(map(str, stopped)))
     # Deleted projects past their retention are erased at each start (and each deletion).
-    review_routes.purge_deleted(app.state.store, keep_deleted_days)
+    purge_deleted(app.state.store, keep_deleted_days)
     app.state.keep_deleted_days = keep_deleted_days
     app.state.templates = templates
     app.state.max_upload_bytes = max_upload_bytes
     app.state.max_projects = max_projects
     app.state.limits = limits if limits is not None else service_limits()
     app.state.jobs = Jobs(AdjustmentQueue(*service_queue(adjustments_at_once, max_waiting)))
+    # the review's second opinions (robust, snooping) of recent runs, shared by worker threads
+    app.state.proposals = ProposalCache()
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
-    app.include_router(routes.router)
-    app.include_router(review_routes.router)
-    app.include_router(relative_routes.router)
-    app.include_router(interrupted_routes.router)
+    for module in (pages, api, review, relative, interrupted):
+        app.include_router(module.router)
     _install_handlers(app, templates)
     app.add_middleware(UploadLimitMiddleware, max_bytes=max_upload_bytes, templates=templates)
     # Before the upload limit, so another site's request is refused without reading its body.

@@ -16,13 +16,13 @@ from fastapi.responses import RedirectResponse, Response
 from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import FormData
 
-from server.report import review
-from server.fieldbook.edits import MAX_PAIRS, ObservationEdit, apply_edits, clean_reason
 from server.errors import SurveyError
+from server.fieldbook.edits import MAX_PAIRS, ObservationEdit, apply_edits, clean_reason
+from server.report import review
 from server.results.result import AdjustmentResult
+from server.store.projects import display_name, load_state
 from server.store.sqlite import AlreadyQueued
-from server.web.review import _check_form, _load_state, _render, _store, _today
-from server.web.pages import _project_or_404, display_name
+from server.web.dependencies import ProjectDep, StoreDep, check_form, read_form, render, today
 
 router = APIRouter()
 
@@ -30,7 +30,6 @@ router = APIRouter()
 MAX_AMONG = 20
 # pairs added one by one in the browser, the among list, from, to, reason, token
 _MAX_FIELDS = MAX_PAIRS + MAX_AMONG + 10
-_MAX_FORM_BYTES = 64 * 1024
 
 
 def pickable_points(result: AdjustmentResult) -> list[str]:
@@ -99,13 +98,11 @@ def _strings(form: FormData, name: str, limit: int = 200) -> list[str]:
 
 
 @router.post("/projects/{project_id}/relative-pairs")
-async def ask_relative_pairs(request: Request, project_id: str) -> Response:
+async def ask_relative_pairs(request: Request, project: ProjectDep, store: StoreDep) -> Response:
     """Queue a decision asking for the relative precision of the pairs picked."""
-    store = _store(request)
-    project = _project_or_404(store, project_id)
-    form = await request.form(max_files=0, max_fields=_MAX_FIELDS, max_part_size=_MAX_FORM_BYTES)
-    _check_form(request, project, form)
-    state = await run_in_threadpool(_load_state, store, project)
+    form = await read_form(request, max_fields=_MAX_FIELDS)
+    check_form(request, project, form)
+    state = await run_in_threadpool(load_state, store, project)
     message = ""
     pairs: list[tuple[str, str]] = []
     reason = clean_reason(next(iter(_strings(form, "reason", 1000)), ""))
@@ -122,7 +119,7 @@ async def ask_relative_pairs(request: Request, project_id: str) -> Response:
         if not message and not reason:
             message = "give a reason (it is written into the field book beside the pairs)"
     if not message:
-        edit = ObservationEdit(line=0, action="relative", reason=reason, date=_today(),
+        edit = ObservationEdit(line=0, action="relative", reason=reason, date=today(),
                                pairs=tuple(pairs))
         try:
             await run_in_threadpool(apply_edits, project.text,
@@ -131,7 +128,7 @@ async def ask_relative_pairs(request: Request, project_id: str) -> Response:
         except SurveyError as exc:
             message = str(exc)
     if message:
-        return _render(request, "relative_refused.html", {
+        return render(request, "relative_refused.html", {
             "project": project,
             "name": display_name(project.name, project.filename),
             "message": message,
@@ -139,7 +136,7 @@ async def ask_relative_pairs(request: Request, project_id: str) -> Response:
     try:
         await run_in_threadpool(store.add_pending_edit, project.id, review.edit_to_json(edit))
     except AlreadyQueued as exc:
-        return _render(request, "relative_refused.html", {
+        return render(request, "relative_refused.html", {
             "project": project,
             "name": display_name(project.name, project.filename),
             "message": str(exc),

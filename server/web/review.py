@@ -14,109 +14,61 @@ browser says it came from another site.
 
 from __future__ import annotations
 
-import dataclasses
-import hmac
 import logging
-from collections import OrderedDict
 from collections.abc import Callable
-from dataclasses import dataclass, field
-from datetime import date
 from typing import Any
-from urllib.parse import urlencode, urlsplit
+from urllib.parse import urlencode
 
 from fastapi import APIRouter, HTTPException, Request
-from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
+from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from starlette.concurrency import run_in_threadpool
-from starlette.datastructures import FormData
 
-from server.report import tables as report
-
-from server.report import review
-from server.fieldbook.edits import (
-    ACTIONS,
-    MAX_VALUE_CHARS,
-    EditError,
-    ObservationEdit,
-    apply_edits,
-    booked_value,
-    clean_reason,
-)
 from server.errors import SurveyError
+from server.fieldbook.edits import (
+    ObservationEdit,
+)
 from server.fieldbook.parser import parse_fieldbook
-from server.pipeline import adjust_fieldbook
+from server.report import review
+from server.report import tables as report
 from server.report.tables import ARCSEC, columns, fmt_ratio, length_label, verdict
 from server.results.result import AdjustmentResult
 from server.review.robust import HUBER_K, RobustResult, robust_adjustment
 from server.review.snooping import SnoopingPlan, propose_snooping
-from server.store.sqlite import (
-    AlreadyQueued, DecisionsChanged, PendingEdit, Project, Run, Store, is_valid_id,
-)
 from server.review.tau import tau_test
-from server.web.pages import (
+from server.store import projects as service
+from server.store.projects import ReviewState, display_name
+from server.store.projects import load_state as _load_state
+from server.store.sqlite import AlreadyQueued, DecisionsChanged, is_valid_id
+from server.web.dependencies import (
+    CheckedForm,
+    ProjectDep,
     RowId,
-    _attachment,
-    _download_name,
-    _page_links,
-    _page_number,
-    _project_or_404,
-    display_name,
+    StoreDep,
+    attachment,
+    check_form,
+    client,
+    download_name,
+    get_proposals,
+    page_links,
+    page_number,
+    read_form,
+    today,
+)
+from server.web.dependencies import (
+    form_text as _text,
+)
+from server.web.dependencies import (
+    get_store as _store,
+)
+from server.web.dependencies import (
+    render as _render,
 )
 
 router = APIRouter()
 
-#: Results of the slower second opinions kept per run (robust: up to 30 adjustments).
-_CACHE_SIZE = 16
-_MAX_FORM_FIELDS = 40
-_MAX_FORM_BYTES = 64 * 1024
 _MAX_REJECTED = 20
 
 logger = logging.getLogger("stationfit.web")
-
-
-def _store(request: Request) -> Store:
-    return request.app.state.store  # type: ignore[no-any-return]
-
-
-def _render(request: Request, name: str, context: dict[str, Any], status: int = 200) -> HTMLResponse:
-    templates = request.app.state.templates
-    return templates.TemplateResponse(request, name, context, status_code=status)  # type: ignore[no-any-return]
-
-
-def _today() -> str:
-    """The date written beside a decision: today on the server's calendar."""
-    return date.today().isoformat()
-
-
-# --------------------------------------------------------------------------------------
-# forms: size limits and the same-origin check
-
-
-async def _read_form(request: Request) -> FormData:
-    """A small url-encoded or multipart form with no files."""
-    return await request.form(max_files=0, max_fields=_MAX_FORM_FIELDS,
-                              max_part_size=_MAX_FORM_BYTES)
-
-
-def _text(form: FormData, name: str, limit: int = 1000) -> str:
-    value = form.get(name)
-    return value[:limit] if isinstance(value, str) else ""
-
-
-def _check_form(request: Request, project: Project, form: FormData) -> None:
-    """Refuse a state-changing form that another site sent, or that lacks the project's token."""
-    if request.headers.get("sec-fetch-site", "") == "cross-site":
-        raise HTTPException(status_code=403, detail="This form was sent from another site.")
-    origin = request.headers.get("origin")
-    host = request.headers.get("host", "")
-    if origin and origin != "null" and urlsplit(origin).netloc != host:
-        raise HTTPException(status_code=403, detail="This form was sent from another site.")
-    token = _text(form, "token", 100)
-    if not project.form_token or not hmac.compare_digest(token, project.form_token):
-        raise HTTPException(
-            status_code=403,
-            detail="This form is out of date or did not come from this page. "
-                   "Reload the page and try again.",
-        )
 
 
 def _int(value: str) -> int | None:
@@ -143,70 +95,6 @@ def _review_url(project_id: str, *, suggest: bool = False, rejected: list[int] |
     return url + (f"#{anchor}" if anchor else "")
 
 
-# --------------------------------------------------------------------------------------
-# the state of a project's review
-
-
-@dataclass
-class ReviewState:
-    """The run under review, the decisions in force and queued, and the field book they give."""
-
-    project: Project
-    base: Run | None
-    result: AdjustmentResult | None
-    in_force: list[ObservationEdit]
-    pending: list[PendingEdit]
-    pending_edits: list[ObservationEdit]
-    text: str
-    problems: list[str] = field(default_factory=list)
-
-
-def _load_state(store: Store, project: Project) -> ReviewState:
-    base = store.latest_run(project.id, finished=True)
-    problems: list[str] = []
-    try:
-        in_force = review.edits_from_json(base.edits) if base is not None else []
-    except EditError as exc:
-        in_force, problems = [], [str(exc)]
-    pending = store.pending_edits(project.id)
-    pending_edits = []
-    for item in pending:
-        try:
-            pending_edits.append(review.edit_from_json(item.edit))
-        except EditError as exc:
-            problems.append(str(exc))
-    text = project.text
-    if in_force:
-        try:
-            text = apply_edits(project.text, in_force, source=project.filename)
-        except SurveyError as exc:
-            problems.append(str(exc))
-    result = None
-    if base is not None:
-        result = base.result()
-        if result is None:  # stored by an incompatible version: adjust the same text again
-            try:
-                result = adjust_fieldbook(text, source=project.filename)
-            except SurveyError as exc:
-                problems.append(str(exc))
-    return ReviewState(project, base, result, in_force, pending, pending_edits, text, problems)
-
-
-def _cached(request: Request, key: tuple[Any, ...], compute: Any) -> Any:
-    cache: OrderedDict[tuple[Any, ...], Any] | None = getattr(request.app.state, "review_cache",
-                                                                None)
-    if cache is None:
-        cache = request.app.state.review_cache = OrderedDict()
-    if key in cache:
-        cache.move_to_end(key)
-        return cache[key]
-    value = compute()
-    cache[key] = value
-    while len(cache) > _CACHE_SIZE:
-        cache.popitem(last=False)
-    return value
-
-
 def _proposal(request: Request, state: ReviewState, kind: str,
               propose: Callable[..., Any], failure: str) -> Any:
     """A proposal computed from the reviewed run's field book, cached per run."""
@@ -220,7 +108,7 @@ def _proposal(request: Request, state: ReviewState, kind: str,
         except SurveyError as exc:
             return f"{failure}: {exc}"
 
-    return _cached(request, (kind, state.base.id), compute)
+    return get_proposals(request).get((kind, state.base.id), compute)
 
 
 def _robust(request: Request, state: ReviewState) -> RobustResult | str:
@@ -281,7 +169,7 @@ def _review_context(
     tau = tau_test(result)
     # a refused decision is drawn on the page of its line, so its message sits beside it
     wanted = (_page_of(result, next(iter(errors))) if errors and "obs_page" not in
-              request.query_params else _page_number(request, "obs_page"))
+              request.query_params else page_number(request, "obs_page"))
     page = report.page(len(result.observations), wanted)
     rows = review.review_rows(result, review.source_lines(state.text), tau, page.window)
     shown = {row.line for row in rows}
@@ -295,7 +183,7 @@ def _review_context(
         "rows": rows,
         "observation_page": page,
         # a form's answer is drawn at its own address: the links go back to the review page
-        "observation_links": _page_links(request, "obs_page", page, "observations",
+        "observation_links": page_links(request, "obs_page", page, "observations",
                                          f"/projects/{project.id}/review"),
         "pending_by_line": pending_by_line,
         "ignored_after": review.ignored_after(result, state.pending_edits),
@@ -367,10 +255,9 @@ def _plan_items(
 
 
 @router.get("/projects/{project_id}/review", response_class=HTMLResponse)
-def review_page(request: Request, project_id: str) -> HTMLResponse:
+def review_page(request: Request, project: ProjectDep, store: StoreDep) -> HTMLResponse:
     """The observations to look at first, the decisions queued, and the second opinions."""
-    store = _store(request)
-    state = _load_state(store, _project_or_404(store, project_id))
+    state = _load_state(store, project)
     suggest = request.query_params.get("suggest") == "1"
     rejected = _rejected(request.query_params.getlist("reject"))
     return _render(request, "review.html",
@@ -378,12 +265,9 @@ def review_page(request: Request, project_id: str) -> HTMLResponse:
 
 
 @router.post("/projects/{project_id}/edits")
-async def queue_edit(request: Request, project_id: str) -> Response:
+async def queue_edit(request: Request, project: ProjectDep, store: StoreDep,
+                    form: CheckedForm) -> Response:
     """Queue one decision after checking it reads; a refusal is shown beside its observation."""
-    store = _store(request)
-    project = _project_or_404(store, project_id)
-    form = await _read_form(request)
-    _check_form(request, project, form)
     suggest = _text(form, "back", 20) == "suggest"
     rejected = _rejected([v for v in form.getlist("reject") if isinstance(v, str)])
     line = _int(_text(form, "line", 20))
@@ -393,38 +277,8 @@ async def queue_edit(request: Request, project_id: str) -> Response:
     values = {"action": action, "reason": _text(form, "reason", 1000),
               "sd": _text(form, "sd", 200).strip(), "value": _text(form, "value", 200).strip()}
     state = await run_in_threadpool(_load_state, store, project)
-    message = ""
-    if state.result is None:
-        message = "This project has no adjusted run to decide on."
-    elif action not in ACTIONS:
-        message = f"line {line}: choose leave out, bring back, change sd or correct the value"
-    elif len(values["sd"]) > review.MAX_SD_CHARS:
-        message = f"line {line}: the standard deviation is too long"
-    elif action == "correct" and len(values["value"]) > MAX_VALUE_CHARS:
-        message = f"line {line}: the corrected value is too long"
-    else:
-        left_out = review.ignored_after(state.result, state.pending_edits).get(line)
-        if action == "exclude" and left_out:
-            message = f"line {line} is already left out"
-        elif action == "include" and left_out is False:
-            message = f"line {line} is already used in the adjustment"
-    edit = ObservationEdit(line=line, action=action, reason=clean_reason(values["reason"]),
-                           date=_today(), sd=values["sd"] if action == "sd" else None,
-                           value=values["value"] if action == "correct" else None)
-    if not message and action == "correct":
-        # the value it replaces, as the line reads once the earlier decisions are written in
-        try:
-            previous = await run_in_threadpool(_value_now, project, state, line)
-            edit = dataclasses.replace(edit, previous=previous)
-        except SurveyError as exc:
-            message = str(exc)
-    if not message:
-        try:
-            await run_in_threadpool(apply_edits, project.text,
-                                    [*state.in_force, *state.pending_edits, edit],
-                                    source=project.filename)
-        except SurveyError as exc:
-            message = str(exc)
+    edit, message = await run_in_threadpool(service.prepare_decision, state, line, values,
+                                            today())
     status = 422
     if not message:
         try:  # checked again and inserted in one transaction: another client may be deciding
@@ -445,12 +299,9 @@ async def queue_edit(request: Request, project_id: str) -> Response:
 
 
 @router.post("/projects/{project_id}/edits/{edit_id}/undo")
-async def undo_edit(request: Request, project_id: str, edit_id: RowId) -> Response:
+async def undo_edit(request: Request, project: ProjectDep, store: StoreDep,
+                   form: CheckedForm, edit_id: RowId) -> Response:
     """Withdraw a queued decision."""
-    store = _store(request)
-    project = _project_or_404(store, project_id)
-    form = await _read_form(request)
-    _check_form(request, project, form)
     suggest = _text(form, "back", 20) == "suggest"
     rejected = _rejected([v for v in form.getlist("reject") if isinstance(v, str)])
     if not await run_in_threadpool(store.remove_pending_edit, project.id, edit_id):
@@ -467,50 +318,16 @@ async def undo_edit(request: Request, project_id: str, edit_id: RowId) -> Respon
                                         anchor="decisions"), status_code=303)
 
 
-def _value_now(project: Project, state: ReviewState, line: int) -> str:
-    """The value on ``line`` with every decision in force and queued written in."""
-    text = apply_edits(project.text, [*state.in_force, *state.pending_edits],
-                       source=project.filename)
-    return booked_value(text, line, source=project.filename)
-
-
-def _rerun(store: Store, state: ReviewState) -> tuple[int | None, str]:
-    """Adjust with every decision in force and queued; (new run id or None, problem)."""
-    project = state.project
-    edits = [*state.in_force, *state.pending_edits]
-    try:
-        text = apply_edits(project.text, edits, source=project.filename)
-    except SurveyError as exc:
-        return None, str(exc)
-    settings = {"edits": [review.edit_to_json(e) for e in edits],
-                "based_on": state.base.id if state.base else None}
-    run_id = store.start_run(project.id, settings)
-    try:
-        result = adjust_fieldbook(text, source=project.filename or "edited.fieldbook")
-    except SurveyError as exc:
-        store.finish_run(run_id, error=exc)  # the decisions stay queued: undo one and re-run
-        return run_id, ""
-    except Exception:
-        store.finish_run(run_id, error="the adjustment stopped unexpectedly")
-        raise
-    # refused (DecisionsChanged) unless the queue is still exactly the one read above
-    store.finish_run(run_id, result=result, consumed=tuple(p.id for p in state.pending))
-    return run_id, ""
-
-
 @router.post("/projects/{project_id}/runs")
-async def rerun(request: Request, project_id: str) -> Response:
+async def rerun(request: Request, project: ProjectDep, store: StoreDep,
+               form: CheckedForm) -> Response:
     """Re-run with the decisions, then show what changed."""
-    store = _store(request)
-    project = _project_or_404(store, project_id)
-    form = await _read_form(request)
-    _check_form(request, project, form)
     state = await run_in_threadpool(_load_state, store, project)
     if state.base is None or not state.pending:
         return RedirectResponse(_review_url(project.id), status_code=303)
     status = 422
     try:
-        run_id, problem = await run_in_threadpool(_rerun, store, state)
+        run_id, problem = await run_in_threadpool(service.rerun, store, state)
     except DecisionsChanged as exc:  # another client undid or queued a decision meanwhile
         run_id, problem, status = None, str(exc), 409
         state = await run_in_threadpool(_load_state, store, project)
@@ -524,78 +341,22 @@ async def rerun(request: Request, project_id: str) -> Response:
                             status_code=303)
 
 
-def _finished_run(store: Store, project: Project, value: str | None) -> Run | None:
-    run_id = _int(value or "")
-    if run_id is None:
-        raise HTTPException(status_code=404, detail="There is no run with this number.")
-    run = store.run(project.id, run_id)
-    if run is None or not run.finished:
-        raise HTTPException(status_code=404, detail="This project has no finished run "
-                                                    "with this number.")
-    return run
-
-
-def _result(project: Project, run: Run) -> AdjustmentResult:
-    result = run.result()
-    if result is None:
-        edits = review.edits_from_json(run.edits)
-        text = apply_edits(project.text, edits, source=project.filename) if edits else project.text
-        result = adjust_fieldbook(text, source=project.filename)
-    return result
-
-
 @router.get("/projects/{project_id}/compare", response_class=HTMLResponse)
-def compare_page(request: Request, project_id: str) -> HTMLResponse:
+def compare_page(request: Request, project: ProjectDep, store: StoreDep) -> HTMLResponse:
     """Two runs side by side: variance factor, global test, flags, point shifts."""
-    store = _store(request)
-    project = _project_or_404(store, project_id)
-    finished = [r for r in store.runs(project.id) if r.finished]
-    a_arg, b_arg = request.query_params.get("a"), request.query_params.get("b")
-    context: dict[str, Any] = {
-        "project": project,
-        "name": display_name(project.name, project.filename),
-        "runs": finished,
-        "comparison": None,
-    }
-    if len(finished) < 2 and a_arg is None and b_arg is None:
-        return _render(request, "compare.html", context)
-    b = _finished_run(store, project, b_arg) if b_arg else store.run(project.id, finished[-1].id)
-    assert b is not None
-    if a_arg:
-        a = _finished_run(store, project, a_arg)
-    else:
-        earlier = [r for r in finished if r.id < b.id]
-        if not earlier:
-            raise HTTPException(status_code=404, detail="There is no earlier run to compare with.")
-        a = store.run(project.id, earlier[-1].id)
-    assert a is not None
-    result_a, result_b = _result(project, a), _result(project, b)
-    edits_a, edits_b = review.edits_from_json(a.edits), review.edits_from_json(b.edits)
-    made, withdrawn = review.decisions_between(edits_a, edits_b)
-    context.update({
-        "name": display_name(project.name, project.filename, result_b.title),
-        "a": a,
-        "b": b,
-        "latest_id": finished[-1].id,
-        "comparison": review.compare(result_a, result_b),
-        "made": review.decision_rows(made, result_b),
-        "withdrawn": review.decision_rows(withdrawn, result_a),
-    })
+    try:
+        context = service.compare_runs(store, project, request.query_params.get("a"),
+                                       request.query_params.get("b"))
+    except service.NoSuchRun as exc:
+        raise HTTPException(status_code=404, detail=str(exc)) from None
     return _render(request, "compare.html", context)
 
 
 @router.get("/projects/{project_id}/fieldbook/edited")
-def edited_fieldbook(request: Request, project_id: str) -> Response:
+def edited_fieldbook(project: ProjectDep, store: StoreDep) -> Response:
     """The upload with the decisions in force written into their lines (the original is kept)."""
-    store = _store(request)
-    project = _project_or_404(store, project_id)
-    base = store.latest_run(project.id, finished=True)
-    edits = review.edits_from_json(base.edits) if base is not None else []
-    content: str | bytes = project.fieldbook
-    if edits:
-        content = apply_edits(project.text, edits, source=project.filename)
-    return _attachment(content, "text/plain; charset=utf-8",
-                       _download_name(project, "-edited.fieldbook"))
+    return attachment(service.edited_fieldbook(store, project), "text/plain; charset=utf-8",
+                      download_name(project, "-edited.fieldbook"))
 
 
 # --------------------------------------------------------------------------------------
@@ -603,10 +364,8 @@ def edited_fieldbook(request: Request, project_id: str) -> Response:
 
 
 @router.post("/projects/{project_id}/confirm-delete", response_class=HTMLResponse)
-def confirm_delete(request: Request, project_id: str) -> HTMLResponse:
+def confirm_delete(request: Request, project: ProjectDep, store: StoreDep) -> HTMLResponse:
     """Ask before deleting: what will be lost, with the download of the field book."""
-    store = _store(request)
-    project = _project_or_404(store, project_id)
     runs = store.runs(project.id)
     return _render(request, "confirm_delete.html", {
         "project": project,
@@ -619,25 +378,21 @@ def confirm_delete(request: Request, project_id: str) -> HTMLResponse:
 
 
 @router.post("/projects/{project_id}/delete")
-async def delete_project(request: Request, project_id: str) -> Response:
+async def delete_project(request: Request, project: ProjectDep, store: StoreDep,
+                         form: CheckedForm) -> Response:
     """Move the project to the recently deleted ones (or erase it when none are kept)."""
-    store = _store(request)
-    project = _project_or_404(store, project_id)
-    form = await _read_form(request)
-    _check_form(request, project, form)
     store.delete_project(project.id)
     logger.info("project %s (%r) deleted by %s", project.id,
-                display_name(project.name, project.filename), _client(request))
+                display_name(project.name, project.filename), client(request))
     keep_days = request.app.state.keep_deleted_days
     if keep_days == 0:
-        purge_deleted(store, 0, who=_client(request))
+        service.purge_deleted(store, 0, who=client(request))
     return RedirectResponse("/projects", status_code=303)
 
 
 @router.get("/deleted-projects", response_class=HTMLResponse)
-def deleted_projects(request: Request) -> HTMLResponse:
+def deleted_projects(request: Request, store: StoreDep) -> HTMLResponse:
     """The projects deleted within the retention time, each with a Restore button."""
-    store = _store(request)
     return _render(request, "deleted_projects.html", {
         "projects": [(p, display_name(p.name, p.filename)) for p in store.deleted_projects()],
         "keep_days": request.app.state.keep_deleted_days,
@@ -645,49 +400,14 @@ def deleted_projects(request: Request) -> HTMLResponse:
 
 
 @router.post("/deleted-projects/{project_id}/restore")
-async def restore_project(request: Request, project_id: str) -> Response:
+async def restore_project(request: Request, project_id: str, store: StoreDep) -> Response:
     """Bring a deleted project back with its runs and queued decisions."""
-    store = _store(request)
     project = store.get_project(project_id, deleted=True) if is_valid_id(project_id) else None
     if project is None:
         raise HTTPException(status_code=404, detail="No recently deleted project has this id.")
-    form = await _read_form(request)
-    _check_form(request, project, form)
+    form = await read_form(request)
+    check_form(request, project, form)
     store.restore_project(project.id)
     logger.info("project %s (%r) restored by %s", project.id,
-                display_name(project.name, project.filename), _client(request))
+                display_name(project.name, project.filename), client(request))
     return RedirectResponse(f"/projects/{project.id}", status_code=303)
-
-
-def _client(request: Request) -> str:
-    """Who acted, until there are accounts: the client's address."""
-    return request.client.host if request.client is not None else "unknown client"
-
-
-def purge_deleted(store: Store, keep_days: int, *, who: str = "the retention") -> None:
-    """Erase the projects deleted ``keep_days`` days ago or more, one log line each."""
-    for project in store.purge_deleted(keep_days):
-        logger.info("project %s (%r) purged for good by %s (deleted %s, kept %d days)",
-                    project.id, display_name(project.name, project.filename), who,
-                    project.deleted, keep_days)
-
-
-# --------------------------------------------------------------------------------------
-# JSON
-
-
-@router.get("/api/projects/{project_id}/runs/{run_id}")
-def api_run(request: Request, project_id: str, run_id: RowId) -> JSONResponse:
-    """One run: its settings (the decisions in force) and its result or error."""
-    store = _store(request)
-    project = _project_or_404(store, project_id)
-    run = store.run(project.id, run_id)
-    if run is None:
-        raise HTTPException(status_code=404, detail="This project has no run with this number.")
-    body: dict[str, Any] = {"id": run.id, "number": run.number, "created": run.created,
-                            "status": run.status,
-                            "settings": run.settings or {"edits": []},
-                            "result": run.result_json}
-    if run.error is not None:
-        body["error"] = run.error.get("message", "")
-    return JSONResponse(body)

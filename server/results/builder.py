@@ -1,0 +1,620 @@
+"""From the engine's ``Solution`` to the frozen result (``server.results.types``).
+
+``build_result`` runs the statistics once and converts SI values to the
+file's length unit, decimal degrees and arc-seconds exactly once.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import numpy as np
+
+from server.engine.gauss_newton import Solution
+from server.fieldbook.model import ANGULAR_KINDS, Observation
+from server.model.misclosures import Misclosure
+from server.model.network import Network
+from server.model.observations import EQUATIONS
+from server.results.types import (
+    UNCONTROLLED,
+    AdjustmentResult,
+    Ellipse,
+    GlobalTest,
+    MisclosureResult,
+    ObservationResult,
+    PointResult,
+    RelativeHeightResult,
+    RelativeResult,
+    Summary,
+)
+from server.statistics import quality as st
+from server.statistics import separability
+from server.units import ARCSEC_PER_RAD, LENGTH_FACTORS, wrap_2pi, wrap_pi
+
+
+def _misclosure_result(m: Misclosure, per_m: float) -> MisclosureResult:
+    """One misclosure in output units; a traverse also gets its angular part in arcsec."""
+    def length(value: float | None) -> float | None:
+        return None if value is None else value * per_m
+
+    def arcsec(value: float | None) -> float | None:
+        return None if value is None else value * ARCSEC_PER_RAD
+
+    return MisclosureResult(
+        kind=m.kind,
+        points=m.points,
+        misclosure=m.misclosure * per_m,
+        length=length(m.length),
+        allowed=length(m.allowed),
+        exceeds=m.exceeds,
+        angular_misclosure=arcsec(m.angular),
+        angular_allowed=arcsec(m.angular_allowed),
+        angle_stations=m.angle_stations,
+        misclosure_east=length(m.misclosure_east),
+        misclosure_north=length(m.misclosure_north),
+        ratio=m.ratio,
+        ratio_allowed=m.ratio_allowed,
+    )
+
+
+def build_result(
+    network: Network,
+    solution: Solution,
+    misclosures: tuple[Misclosure, ...],
+    warnings: list[str],
+) -> AdjustmentResult:
+    """Run the statistics once and freeze everything in output units."""
+    fb = network.fieldbook
+    tests = fb.tests
+    per_m = 1.0 / LENGTH_FACTORS[fb.length_unit]
+    n_rows = len(solution.sigmas)
+    n_unknowns = len(network.parameters)
+    redundancy = n_rows - n_unknowns + network.datum_defect
+
+    r_i = st.redundancy_numbers(solution.adjusted_cofactor, solution.sigmas)
+    vtpv = st.weighted_square_sum(solution.residuals, solution.sigmas)
+    variance = st.variance_factor(vtpv, redundancy)
+    global_test = None
+    if redundancy > 0:
+        lower, upper = st.chi_square_bounds(redundancy, tests.alpha)
+        global_test = GlobalTest(
+            statistic=vtpv, lower=lower, upper=upper, alpha=tests.alpha,
+            passed=bool(lower <= vtpv <= upper),
+        )
+    critical = st.normal_critical_value(tests.snooping)
+    lambda0 = st.non_centrality(tests.snooping, tests.power)
+    # σ₀² that scales Qxx, and the ellipse quantile that matches it (F if estimated, else χ²)
+    scale_variance, estimated = st.precision_variance(tests.precision, variance)
+    factor = st.ellipse_factor(tests.confidence, redundancy, estimated)
+    warnings = list(warnings)
+
+    observations = _observation_results(
+        network, solution, r_i, critical, lambda0, per_m, warnings
+    )
+    points = _point_results(network, solution, scale_variance, factor, tests.confidence, per_m)
+    if not solution.converged:
+        warnings.append(solution.message)
+    if global_test is not None and not global_test.passed:
+        side = "large" if vtpv > global_test.upper else "small"
+        warnings.append(
+            f"the global test fails: the residuals are too {side} for the a priori standard "
+            "deviations" + (" (look for blunders or optimistic standard deviations)" if side == "large"
+                            else " (the standard deviations may be pessimistic)")
+        )
+    summary = Summary(
+        dimension=network.dimension,
+        points=len(points),
+        observations=len(fb.observations),
+        used_observations=len(network.used),
+        unknowns=n_unknowns,
+        redundancy=redundancy,
+        iterations=solution.iterations,
+        converged=solution.converged,
+        variance_factor=variance,
+        global_test=global_test,
+        critical_w=critical,
+        lambda0=lambda0,
+        ellipse_factor=factor,
+        alpha=tests.alpha,
+        snooping=tests.snooping,
+        power=tests.power,
+        confidence=tests.confidence,
+        precision_method=tests.precision,
+        precision_factor=scale_variance,
+    )
+    horizontal_pairs, height_pairs = _requested_pairs(network, solution, warnings)
+    relative = _relative_results(
+        network, solution, scale_variance, factor, tests.confidence, per_m, horizontal_pairs
+    )
+    relative_heights = _relative_height_results(
+        network, solution, scale_variance, tests.confidence,
+        redundancy if estimated else 0,  # Student's t only when σ₀² is the estimate
+        per_m, height_pairs,
+    )
+    return AdjustmentResult(
+        title=fb.title,
+        source=fb.source,
+        length_unit=fb.length_unit,
+        angle_unit=fb.angle_unit,
+        text_sha256=fb.text_sha256,
+        summary=summary,
+        points=points,
+        observations=observations,
+        misclosures=tuple(_misclosure_result(m, per_m) for m in misclosures),
+        relative=relative,
+        relative_heights=relative_heights,
+        warnings=tuple(warnings),
+    )
+
+
+def _observation_results(
+    network: Network,
+    solution: Solution,
+    r_i: np.ndarray,
+    critical: float,
+    lambda0: float,
+    per_m: float,
+    warnings: list[str],
+) -> tuple[ObservationResult, ...]:
+    used = network.used
+    n_used = len(used)
+    # every figure of the used rows at once, then one object per observation
+    angular = np.array([obs.kind in ANGULAR_KINDS for obs in used], dtype=bool)
+    wrapped = angular & np.array([obs.kind != "zenith" for obs in used], dtype=bool)
+    observed_si = np.array([obs.value for obs in used], dtype=float)
+    booked_si = np.array([_booked_si(obs) for obs in used], dtype=float)
+    adjusted_si = np.array(solution.adjusted[:n_used], dtype=float)
+    adjusted_si[wrapped] = _wrap_2pi(adjusted_si[wrapped])
+    residual_si = np.asarray(solution.residuals[:n_used], dtype=float)
+    sd_si = np.asarray(solution.sigmas[:n_used], dtype=float)
+    redundancy = np.asarray(r_i[:n_used], dtype=float)
+    controlled = redundancy >= UNCONTROLLED
+    safe = np.where(controlled, redundancy, 1.0)
+    w_all = residual_si / (sd_si * np.sqrt(safe))
+    mdb_si = sd_si * np.sqrt(lambda0 / safe)
+    small = np.where(angular, ARCSEC_PER_RAD, per_m)
+    # math.degrees multiplies by 180/π; so does this, for the same last bit
+    observed = np.where(angular, observed_si * _DEG_PER_RAD, observed_si * per_m).tolist()
+    booked = np.where(angular, booked_si * _DEG_PER_RAD, booked_si * per_m).tolist()
+    adjusted = np.where(angular, adjusted_si * _DEG_PER_RAD, adjusted_si * per_m).tolist()
+    residual = (residual_si * small).tolist()
+    sd = (sd_si * small).tolist()
+    w_list = np.where(controlled, w_all, np.nan).tolist()
+    mdb = np.where(controlled, mdb_si * small, np.nan).tolist()
+    flagged_rows = controlled & (np.abs(w_all) > critical)
+    flagged = flagged_rows.tolist()
+    bias = np.where(controlled, -residual_si / safe * small, np.nan).tolist()
+    partners = _inseparable_lines(network, solution, r_i, controlled, flagged_rows)
+    redundancy_list = redundancy.tolist()
+    controlled_list = controlled.tolist()
+
+    row_of = {id(obs): row for row, obs in enumerate(used)}
+    results = []
+    uncontrolled: list[str] = []
+    for obs in network.fieldbook.observations:
+        row = row_of.get(id(obs))
+        if row is not None:
+            if not controlled_list[row]:
+                uncontrolled.append(f"line {obs.line} ({obs.kind} {obs.from_point}–{obs.to})")
+            results.append(
+                ObservationResult(
+                    line=obs.line,
+                    kind=obs.kind,
+                    from_point=obs.from_point,
+                    at=obs.at,
+                    to=obs.to,
+                    observed=observed[row],
+                    adjusted=adjusted[row],
+                    residual=residual[row],
+                    sd=sd[row],
+                    redundancy=redundancy_list[row],
+                    w=w_list[row] if controlled_list[row] else None,
+                    mdb=mdb[row] if controlled_list[row] else None,
+                    flagged=flagged[row],
+                    ignored=obs.ignored,
+                    note=obs.note,
+                    booked=booked[row],
+                    scale_factor=_scale_factor(obs),
+
+
+                    estimated_bias=bias[row] if controlled_list[row] else None,
+                    inseparable=partners[row],
+                )
+            )
+            continue
+        is_angle = obs.kind in ANGULAR_KINDS
+        to_value = math.degrees if is_angle else (lambda x: x * per_m)
+        to_small = (lambda x: x * ARCSEC_PER_RAD) if is_angle else (lambda x: x * per_m)
+        value_si = _evaluate(obs, solution)
+        residual_one = None if value_si is None else _difference(obs, value_si)
+        if value_si is not None and is_angle and obs.kind != "zenith":
+            value_si = wrap_2pi(value_si)
+        results.append(
+            ObservationResult(
+                line=obs.line,
+                kind=obs.kind,
+                from_point=obs.from_point,
+                at=obs.at,
+                to=obs.to,
+                observed=to_value(obs.value),
+                adjusted=None if value_si is None else to_value(value_si),
+                residual=None if residual_one is None else to_small(residual_one),
+                sd=to_small(_sigma_of_ignored(obs, solution)),
+                redundancy=None,
+                w=None,
+                mdb=None,
+                flagged=False,
+                ignored=obs.ignored,
+                note=obs.note,
+                booked=to_value(_booked_si(obs)),
+                scale_factor=_scale_factor(obs),
+            )
+        )
+    if uncontrolled:
+        shown = "; ".join(uncontrolled[:10]) + (f" and {len(uncontrolled) - 10} more" if len(uncontrolled) > 10 else "")
+        warnings.append(
+            "uncontrolled observations (redundancy number below 0.001), a blunder in them "
+            f"cannot be detected: {shown}"
+        )
+    return tuple(results)
+
+
+_DEG_PER_RAD = 180.0 / math.pi
+
+
+def _booked_si(obs: Observation) -> float:
+    """The value as written, in SI, before the scale factor and the reduction into [0, 2π)."""
+    if obs.booked is not None:
+        return obs.booked
+    return obs.value / obs.scale if obs.scale else obs.value
+
+
+def _scale_factor(obs: Observation) -> float | None:
+    """The scale factor a distance was multiplied by; None where no scale applies."""
+    return obs.scale if obs.kind == "distance" else None
+
+
+def _inseparable_lines(
+    network: Network, solution: Solution, r_i: np.ndarray, controlled: np.ndarray, flagged: np.ndarray
+) -> list[tuple[int, ...]]:
+    """For each used row, the lines whose w-test is the same test as its own (|ρ| ≥ 0.99)."""
+    used = network.used
+    n_used = len(used)
+    candidates = np.flatnonzero(controlled)
+    if solution.hat is None or candidates.size < 2:
+        return [()] * n_used
+    rows = separability.correlated_rows(
+        solution.hat, np.asarray(solution.sigmas, dtype=float), np.asarray(r_i, dtype=float),
+        candidates, np.flatnonzero(flagged).tolist(),
+    )
+    # each used row has its own line (a round's directions too), so rows map to lines one to one
+    line_of = [obs.line for obs in used].__getitem__
+    return [tuple(map(line_of, partners)) if partners else () for partners in rows[:n_used]]
+
+
+def _wrap_2pi(angle_rad: np.ndarray) -> np.ndarray:
+    """``units.wrap_2pi`` for an array: reduce to [0, 2π)."""
+    reduced = np.fmod(angle_rad, 2.0 * math.pi)
+    reduced = np.where(reduced < 0.0, reduced + 2.0 * math.pi, reduced)
+    return np.where(reduced >= 2.0 * math.pi, 0.0, reduced)
+
+
+def _difference(obs: Observation, adjusted: float) -> float:
+    difference = adjusted - obs.value
+    return wrap_pi(difference) if obs.kind in ANGULAR_KINDS else difference
+
+
+def _evaluate(obs: Observation, solution: Solution) -> float | None:
+    """The value of an ignored observation computed from the adjusted coordinates."""
+    equation = EQUATIONS.get(obs.kind)
+    if equation is None:
+        return None
+    if obs.round_line is not None and obs.round_line not in solution.orientations:
+        return None
+    try:
+        value, _ = equation(obs, solution.coordinates, solution.orientations)
+    except (KeyError, ZeroDivisionError):
+        return None
+    return None if math.isnan(value) else value
+
+
+def _sigma_of_ignored(obs: Observation, solution: Solution) -> float:
+    from server.model.observations import a_priori_sigma
+
+    try:
+        sigma = a_priori_sigma(obs, solution.coordinates)
+    except (KeyError, ZeroDivisionError):
+        sigma = math.nan
+    return sigma if math.isfinite(sigma) else obs.sigma.constant
+
+
+def _point_results(
+    network: Network,
+    solution: Solution,
+    variance: float,
+    factor: float,
+    confidence: float,
+    per_m: float,
+) -> tuple[PointResult, ...]:
+    column = {(p.point, p.kind): k for k, p in enumerate(network.parameters)}
+    n_unknowns = len(network.parameters)
+    # the elements of Qxx the points need, fetched at once: the diagonal and each E–N pair
+    q_diagonal = solution.covariance_entries(np.arange(n_unknowns), np.arange(n_unknowns))
+    sd_all = (np.sqrt(np.maximum(variance * q_diagonal, 0.0)) * per_m).tolist()
+    en_points = [
+        (p.name, column[(p.name, "E")], column[(p.name, "N")])
+        for p in network.points
+        if (p.name, "E") in column and (p.name, "N") in column
+    ]
+    ke_all = np.array([ke for _, ke, _ in en_points], dtype=np.int64)
+    kn_all = np.array([kn for _, _, kn in en_points], dtype=np.int64)
+    q_en = solution.covariance_entries(ke_all, kn_all)
+    major, minor, azimuth = st.standard_ellipses(
+        variance * q_diagonal[ke_all], variance * q_en, variance * q_diagonal[kn_all]
+    )
+    ellipses = {
+        name: Ellipse(semi_major=a, semi_minor=b, azimuth=t, confidence=confidence)
+        for (name, _, _), a, b, t in zip(
+            en_points, (major * factor * per_m).tolist(), (minor * factor * per_m).tolist(),
+            azimuth.tolist(),
+        )
+    }
+    results = []
+    horizontal, vertical = network.horizontal, network.vertical
+    coordinates = solution.coordinates
+    absent = (math.nan,) * 3
+    # the unknown of each component by point name (one lookup by name, not by pair)
+    by_component: tuple[dict[str, int], ...] = ({}, {}, {})
+    component_index = {"E": 0, "N": 1, "H": 2}
+    for (name, comp), k in column.items():
+        if comp in component_index:
+            by_component[component_index[comp]][name] = k
+    for p in network.points:
+        adjusted = coordinates.get(p.name, absent)
+        out: list[float | None] = [None, None, None]
+        sds: list[float | None] = [None, None, None]
+        for index, original in ((0, p.east), (1, p.north), (2, p.height)):
+            k = by_component[index].get(p.name)
+            if k is not None:
+                out[index] = float(adjusted[index]) * per_m
+                sds[index] = sd_all[k]
+            else:
+                out[index] = None if original is None else original * per_m
+                if original is not None and (
+                    ("h" in p.fixed and vertical) if index == 2 else ("en" in p.fixed and horizontal)
+                ):
+                    sds[index] = 0.0
+        results.append(
+            PointResult(
+                name=p.name,
+                east=out[0],
+                north=out[1],
+                height=out[2],
+                sd_east=sds[0],
+                sd_north=sds[1],
+                sd_height=sds[2],
+                fixed=p.fixed,
+                weighted=p.weighted,
+                ellipse=ellipses.get(p.name),
+                in_use=p.in_use,
+                note=p.note,
+            )
+        )
+    return tuple(results)
+
+
+def _joined_pairs(network: Network) -> list[tuple[str, str]]:
+    """Point pairs joined by a used horizontal observation, first-seen order, no repeats."""
+    pairs: dict[tuple[str, str], tuple[str, str]] = {}
+    for obs in network.used:
+        if obs.kind == "angle":
+            assert obs.at is not None
+            candidates = [(obs.at, obs.from_point), (obs.at, obs.to)]
+        elif obs.kind in ("distance", "azimuth", "direction"):
+            candidates = [(obs.from_point, obs.to)]
+        else:
+            continue
+        for a, b in candidates:
+            # the unordered pair as its key (as a frozenset would be, made faster)
+            pairs.setdefault((a, b) if a <= b else (b, a), (a, b))
+    return list(pairs.values())
+
+
+def _requested_pairs(
+    network: Network, solution: Solution, warnings: list[str]
+) -> tuple[list[tuple[str, str]], list[tuple[str, str]]]:
+    """The ``relative A B`` pairs split into horizontal and height pairs.
+
+    A pair is horizontal when the network adjusts positions and both points
+    have one (estimated or held); otherwise a height pair when the network
+    adjusts heights and both have one.  A pair with a point that no used
+    observation ties to the survey is left out with a warning: the survey
+    says nothing about where that point lies relative to the other.
+    """
+    requests = network.fieldbook.relative_pairs
+    if not requests:
+        return [], []
+    column = {(p.point, p.kind) for p in network.parameters}
+    by_name = {p.name: p for p in network.points}
+
+    def has(name: str, kind: str, held: str) -> bool:
+        point = by_name.get(name)
+        return (name, kind) in column or (point is not None and held in point.fixed)
+
+    horizontal, heights = [], []
+    for pair in requests:
+        a, b = pair.first, pair.second
+        loose = [n for n in (a, b) if n not in by_name or not by_name[n].in_use]
+        if loose:
+            warnings.append(
+                f"line {pair.line}: relative {a} {b} is not reported: {loose[0]} is not tied to "
+                "the survey by any used observation, so their relative precision is undetermined"
+            )
+        elif network.horizontal and has(a, "E", "en") and has(b, "E", "en"):
+            horizontal.append((a, b))
+        elif network.vertical and has(a, "H", "h") and has(b, "H", "h"):
+            heights.append((a, b))
+        else:
+            what = "horizontal position" if network.horizontal else "height"
+            lacking = a if not (has(a, "E", "en") or has(a, "H", "h")) else b
+            warnings.append(
+                f"line {pair.line}: relative {a} {b} is not reported: {lacking} has no adjusted "
+                f"{what} in this adjustment"
+            )
+    held = [
+        f"{a}–{b}"
+        for pairs, kinds in ((horizontal, "EN"), (heights, "H"))
+        for a, b in pairs
+        if not any((n, k) in column for n in (a, b) for k in kinds)
+    ]
+    if held:
+        warnings.append(
+            "relative pairs of two held points (their relative position comes from the control, "
+            "not from this survey; reported with zero precision figures and not checked against "
+            f"the allowance): {', '.join(held)}"
+        )
+    return horizontal, heights
+
+
+def _relative_results(
+    network: Network,
+    solution: Solution,
+    variance: float,
+    factor: float,
+    confidence: float,
+    per_m: float,
+    requested: Sequence[tuple[str, str]] = (),
+) -> tuple[RelativeResult, ...]:
+    """Relative confidence ellipses: Σ_Δ = Σ_ii + Σ_jj − Σ_ij − Σ_ji over (E, N).
+
+    Pairs joined by a used observation (two held points left out), then the
+    ``relative`` pairs not joined; a requested pair that is also joined keeps
+    its place and is marked requested.  Covariances of unjoined pairs come
+    from ``Solution.covariance_entries`` like the others (off the factor's
+    pattern they are solved for).
+    """
+    column = {(p.point, p.kind): k for k, p in enumerate(network.parameters)}
+    tolerance = network.fieldbook.relative_tolerance
+    # each pair's unknowns (E_a, N_a, E_b, N_b), −1 where held; signs of the difference b − a
+    east = {name: k for (name, kind), k in column.items() if kind == "E"}
+    north = {name: k for (name, kind), k in column.items() if kind == "N"}
+    asked = {(a, b) if a <= b else (b, a) for a, b in requested}
+    pairs = []
+    seen = set()
+    for a, b in _joined_pairs(network):
+        ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
+        key = (a, b) if a <= b else (b, a)
+        if max(ends) >= 0 or key in asked:  # else both ends held fixed
+            pairs.append((a, b, ends, key in asked))
+            seen.add(key)
+    for a, b in requested:
+        if ((a, b) if a <= b else (b, a)) not in seen:
+            ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
+            pairs.append((a, b, ends, True))
+    unknowns = np.array([ends for _, _, ends, _ in pairs], dtype=np.int64).reshape(-1, 4)
+    held = (unknowns < 0).all(axis=1).tolist()
+    sign = np.array([-1.0, -1.0, 1.0, 1.0])
+    # Σ_Δ over (E, N) from the 4×4 block of the pair's unknowns, held ones contributing nothing
+    first, second = np.meshgrid(np.arange(4), np.arange(4), indexing="ij")
+    rows = unknowns[:, first.ravel()]
+    cols = unknowns[:, second.ravel()]
+    valid = (rows >= 0) & (cols >= 0)
+    block = np.zeros(rows.shape)
+    block[valid] = solution.covariance_entries(rows[valid], cols[valid])
+    block = block.reshape(-1, 4, 4) * (sign[:, None] * sign[None, :])
+    axis_of = np.array([0, 1, 0, 1])  # E, N, E, N
+    covariances = np.zeros((len(pairs), 2, 2))
+    for s_ in range(4):
+        for t_ in range(4):
+            covariances[:, axis_of[s_], axis_of[t_]] += block[:, s_, t_]
+    cov = variance * covariances
+    major, minor, azimuth = st.standard_ellipses(cov[:, 0, 0], cov[:, 0, 1], cov[:, 1, 1])
+    coordinates = solution.coordinates
+    ends_a = np.array([coordinates[a][:2] for a, _, _, _ in pairs], dtype=float).reshape(-1, 2)
+    ends_b = np.array([coordinates[b][:2] for _, b, _, _ in pairs], dtype=float).reshape(-1, 2)
+    d_east, d_north = ends_b[:, 0] - ends_a[:, 0], ends_b[:, 1] - ends_a[:, 1]
+    distance_m = np.hypot(d_east, d_north)
+    length = np.where(distance_m > 0.0, distance_m, 1.0)
+    u_east = np.where(distance_m > 0.0, d_east / length, 0.0)
+    u_north = np.where(distance_m > 0.0, d_north / length, 0.0)
+    along = u_east * (cov[:, 0, 0] * u_east + cov[:, 0, 1] * u_north) + u_north * (
+        cov[:, 1, 0] * u_east + cov[:, 1, 1] * u_north
+    )
+    sd_distance = (np.sqrt(np.maximum(along, 0.0)) * per_m).tolist()
+    semi_major = (major * factor * per_m).tolist()
+    semi_minor = (minor * factor * per_m).tolist()
+    azimuths = azimuth.tolist()
+    if tolerance is None:
+        allowed: list[float | None] = [None] * len(pairs)
+    else:
+        allowed = ((tolerance.constant + tolerance.ppm * 1e-6 * distance_m) * per_m).tolist()
+    results = []
+    for k, ((a, b, _, asked_for), distance) in enumerate(
+        zip(pairs, (distance_m * per_m).tolist())
+    ):
+        allow = None if held[k] else allowed[k]
+        results.append(
+            RelativeResult(
+                from_point=a,
+                to_point=b,
+                distance=distance,
+                semi_major=semi_major[k],
+                semi_minor=semi_minor[k],
+                azimuth=azimuths[k],
+                confidence=confidence,
+                allowed=allow,
+                passed=None if allow is None else bool(semi_major[k] <= allow),
+                sd_distance=sd_distance[k],
+                requested=asked_for,
+                held=held[k],
+            )
+        )
+    return tuple(results)
+
+
+def _relative_height_results(
+    network: Network,
+    solution: Solution,
+    variance: float,
+    confidence: float,
+    redundancy: int,
+    per_m: float,
+    pairs: list[tuple[str, str]],
+) -> tuple[RelativeHeightResult, ...]:
+    """σ of H(B) − H(A) from Q_aa + Q_bb − 2·Q_ab (held heights contribute nothing).
+
+    ``half_width`` is the confidence half-interval: σ times √F(confidence; 1, r)
+    (Student's t) when σ₀² is estimated, else the normal quantile.
+    """
+    if not pairs:
+        return ()
+    column = {p.point: k for k, p in enumerate(network.parameters) if p.kind == "H"}
+    scale = st.interval_factor(confidence, redundancy)
+    coordinates = solution.coordinates
+    # (H_a, H_b) unknowns per pair, −1 where held; one fetch of every needed element of Qxx
+    ends = np.array([[column.get(a, -1), column.get(b, -1)] for a, b in pairs], dtype=np.int64)
+    sign = np.array([-1.0, 1.0])
+    rows = np.repeat(ends, 2, axis=1)  # a a b b
+    cols = np.tile(ends, (1, 2))  # a b a b
+    valid = (rows >= 0) & (cols >= 0)
+    q = np.zeros(rows.shape)
+    q[valid] = solution.covariance_entries(rows[valid], cols[valid])
+    weights = np.repeat(sign, 2) * np.tile(sign, 2)  # + − − +
+    variances = variance * (q * weights).sum(axis=1)
+    sds = (np.sqrt(np.maximum(variances, 0.0)) * per_m).tolist()
+    held = (ends < 0).all(axis=1).tolist()
+    results = []
+    for k, (a, b) in enumerate(pairs):
+        results.append(
+            RelativeHeightResult(
+                from_point=a,
+                to_point=b,
+                height_difference=(coordinates[b][2] - coordinates[a][2]) * per_m,
+                sd=sds[k],
+                half_width=sds[k] * scale,
+                confidence=confidence,
+                held=held[k],
+            )
+        )
+    return tuple(results)

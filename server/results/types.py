@@ -1,0 +1,346 @@
+"""The public result types: frozen objects holding plain numbers, in the field book's units.
+
+``AdjustmentResult.to_json_dict`` writes the JSON described by
+``docs/result.schema.json``: a key never changes its meaning; new keys may be added.
+``server.results.builder`` makes these objects from the engine's ``Solution``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+from server.fieldbook.model import ANGULAR_KINDS
+from server.statistics import quality as st
+
+CAUTION = (
+    "These results were computed from the observations as entered. They must be "
+    "reviewed and certified by a licensed professional surveyor before use; local "
+    "codes, standards and regulations govern."
+)
+
+#: Redundancy numbers below this leave an observation uncontrolled (contract value).
+UNCONTROLLED = 0.001
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class GlobalTest:
+    """Two-sided χ² test of vᵀPv against its redundancy."""
+
+    statistic: float
+    lower: float
+    upper: float
+    alpha: float
+    passed: bool
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Ellipse:
+    """A confidence ellipse: semi-axes in length units, azimuth of the major axis in degrees."""
+
+    semi_major: float
+    semi_minor: float
+    azimuth: float
+    confidence: float
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Summary:
+    """Counts and global figures of the adjustment."""
+
+    dimension: int
+    points: int
+    observations: int
+    used_observations: int
+    unknowns: int
+    redundancy: int
+    iterations: int
+    converged: bool
+    variance_factor: float | None
+    global_test: GlobalTest | None
+    critical_w: float
+    lambda0: float
+    ellipse_factor: float
+    alpha: float
+    snooping: float
+    power: float
+    confidence: float
+    #: ``tests precision=`` as written, and σ₀² actually used to scale every precision figure
+    #: (None only in runs stored before the choice existed: then it was σ̂₀², or 1 at r = 0).
+    precision_method: str = "posterior"
+    precision_factor: float | None = None
+
+    def __post_init__(self) -> None:
+        if self.precision_factor is None:
+            factor = 1.0 if self.variance_factor is None else self.variance_factor
+            object.__setattr__(self, "precision_factor", factor)
+
+    @property
+    def precision_estimated(self) -> bool:
+        """True when precisions are scaled by σ̂₀² (ellipses then take the F quantile, not χ²)."""
+        return st.precision_variance(self.precision_method, self.variance_factor)[1]
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class PointResult:
+    """An adjusted (or passed-through) point with its a posteriori precision."""
+
+    name: str
+    east: float | None
+    north: float | None
+    height: float | None
+    sd_east: float | None
+    sd_north: float | None
+    sd_height: float | None
+    fixed: str
+    weighted: str
+    ellipse: Ellipse | None
+    in_use: bool = True
+    note: str = ""
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class ObservationResult:
+    """One field observation: values in length units or decimal degrees, angular figures in arc-seconds."""
+
+    line: int
+    kind: str
+    from_point: str
+    at: str | None
+    to: str
+    observed: float
+    adjusted: float | None
+    residual: float | None
+    sd: float
+    redundancy: float | None
+    w: float | None
+    mdb: float | None
+    flagged: bool
+    ignored: bool
+    note: str = ""
+    #: The value as written (length units or decimal degrees) before any reduction; None
+    #: only in results stored before it was recorded.
+    booked: float | None = None
+    #: The scale factor applied to a booked distance (1.0 when none); None for other kinds.
+    scale_factor: float | None = None
+
+
+    #: −residual/redundancy: the blunder that alone would explain the residual (None without w)
+    estimated_bias: float | None = None
+    #: lines of the used observations whose w-test has |ρ| ≥ 0.99 with this one's
+    inseparable: tuple[int, ...] = ()
+
+    @property
+    def angular(self) -> bool:
+        """True for kinds whose value is an angle."""
+        return self.kind in ANGULAR_KINDS
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class MisclosureResult:
+    """A leveling loop or run, or a traverse, in length units (traverse angles in arcsec)."""
+
+    kind: str
+    points: tuple[str, ...]
+    misclosure: float
+    length: float | None
+    allowed: float | None
+    exceeds: bool
+    # traverse entries only (None for loops and runs)
+    angular_misclosure: float | None = None
+    angular_allowed: float | None = None
+    angle_stations: int | None = None
+    misclosure_east: float | None = None
+    misclosure_north: float | None = None
+    ratio: float | None = None
+    ratio_allowed: float | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {
+            "kind": self.kind,
+            "points": list(self.points),
+            "misclosure": self.misclosure,
+            "length": self.length,
+            "allowed": self.allowed,
+            "exceeds": self.exceeds,
+        }
+        if self.kind == "traverse":
+            out.update(
+                angular_misclosure=self.angular_misclosure,
+                angular_allowed=self.angular_allowed,
+                angle_stations=self.angle_stations,
+                misclosure_east=self.misclosure_east,
+                misclosure_north=self.misclosure_north,
+                ratio=self.ratio,
+                ratio_allowed=self.ratio_allowed,
+            )
+        return out
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class RelativeResult:
+    """Relative confidence ellipse between two joined points."""
+
+    from_point: str
+    to_point: str
+    distance: float
+    semi_major: float
+    semi_minor: float
+    azimuth: float
+    confidence: float
+    allowed: float | None
+    passed: bool | None
+    sd_distance: float
+    #: asked for by a ``relative A B`` line (joined or not)
+    requested: bool = False
+    #: both points held fixed: their relative position comes from the control (zero ellipse)
+    held: bool = False
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class RelativeHeightResult:
+    """A ``relative A B`` pair in a height network: the precision of H(B) − H(A)."""
+
+    from_point: str
+    to_point: str
+    height_difference: float
+    sd: float
+    half_width: float
+    confidence: float
+    held: bool = False
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class AdjustmentResult:
+    """The whole result of one adjustment, identical for every output."""
+
+    title: str
+    source: str
+    length_unit: str
+    angle_unit: str
+    text_sha256: str
+    summary: Summary
+    points: tuple[PointResult, ...]
+    observations: tuple[ObservationResult, ...]
+    misclosures: tuple[MisclosureResult, ...]
+    relative: tuple[RelativeResult, ...]
+    warnings: tuple[str, ...]
+    caution: str = CAUTION
+    relative_heights: tuple[RelativeHeightResult, ...] = ()
+
+    def to_json_dict(self) -> dict[str, object]:
+        """The JSON object of the result contract."""
+        s = self.summary
+        return {
+            "format": 1,
+            "title": self.title,
+            "units": {"length": self.length_unit, "angle_residual": "arcsec"},
+            "settings": {
+                "alpha": s.alpha,
+                "snooping": s.snooping,
+                "power": s.power,
+                "confidence": s.confidence,
+                "critical_w": s.critical_w,
+                "lambda0": s.lambda0,
+                "ellipse_factor": s.ellipse_factor,
+            },
+            "summary": {
+                "dimension": s.dimension,
+                "points": s.points,
+                "observations": s.observations,
+                "used_observations": s.used_observations,
+                "unknowns": s.unknowns,
+                "redundancy": s.redundancy,
+                "iterations": s.iterations,
+                "converged": s.converged,
+                "variance_factor": s.variance_factor,
+                "global_test": None
+                if s.global_test is None
+                else {
+                    "statistic": s.global_test.statistic,
+                    "lower": s.global_test.lower,
+                    "upper": s.global_test.upper,
+                    "alpha": s.global_test.alpha,
+                    "passed": s.global_test.passed,
+                },
+                "precision_scaling": {"method": s.precision_method, "factor": s.precision_factor},
+            },
+            "points": [
+                {
+                    "name": p.name,
+                    "east": p.east,
+                    "north": p.north,
+                    "height": p.height,
+                    "sd_east": p.sd_east,
+                    "sd_north": p.sd_north,
+                    "sd_height": p.sd_height,
+                    "fixed": p.fixed,
+                    "weighted": p.weighted,
+                    "note": p.note,
+                    "ellipse": None
+                    if p.ellipse is None
+                    else {
+                        "semi_major": p.ellipse.semi_major,
+                        "semi_minor": p.ellipse.semi_minor,
+                        "azimuth": p.ellipse.azimuth,
+                        "confidence": p.ellipse.confidence,
+                    },
+                }
+                for p in self.points
+            ],
+            "observations": [
+                {
+                    "line": o.line,
+                    "kind": o.kind,
+                    "from": o.from_point,
+                    "at": o.at,
+                    "to": o.to,
+                    "observed": o.observed,
+                    "booked": o.booked,
+                    "scale_factor": o.scale_factor,
+                    "adjusted": o.adjusted,
+                    "residual": o.residual,
+                    "sd": o.sd,
+                    "redundancy": o.redundancy,
+                    "w": o.w,
+                    "mdb": o.mdb,
+                    "estimated_bias": o.estimated_bias,
+                    "inseparable": list(o.inseparable),
+                    "flagged": o.flagged,
+                    "ignored": o.ignored,
+                }
+                for o in self.observations
+            ],
+            "misclosures": [m.to_dict() for m in self.misclosures],
+            "relative": [
+                {
+                    "from": r.from_point,
+                    "to": r.to_point,
+                    "distance": r.distance,
+                    "semi_major": r.semi_major,
+                    "semi_minor": r.semi_minor,
+                    "azimuth": r.azimuth,
+                    "confidence": r.confidence,
+                    "allowed": r.allowed,
+                    "passed": r.passed,
+                    "sd_distance": r.sd_distance,
+                    "requested": r.requested,
+                    "held": r.held,
+                }
+                for r in self.relative
+            ],
+            "relative_heights": [
+                {
+                    "from": h.from_point,
+                    "to": h.to_point,
+                    "height_difference": h.height_difference,
+                    "sd": h.sd,
+                    "half_width": h.half_width,
+                    "confidence": h.confidence,
+                    "held": h.held,
+                }
+                for h in self.relative_heights
+            ],
+            "warnings": list(self.warnings),
+            "caution": self.caution,
+        }
