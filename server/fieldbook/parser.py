@@ -768,6 +768,7 @@ class _Parser:
             return None, None
         first = lat or lon
         assert first is not None
+        given.add("en")  # meant as the horizontal position: no follow-on 'fix' complaints
         if "east" in st.options or "north" in st.options:
             message = (f"point {label} has both lat=/lon= and east=/north=; give its position "
                        "one way only")
@@ -787,7 +788,6 @@ class _Parser:
                 "to place it on the grid: crs EPSG:CODE or crs local lat=LAT lon=LON",
             )
             return None, None
-        given.add("en")
         if not self.angle_unit_known:
             return None, None  # the 'units' line is wrong; one error there is enough
         return (self.read(st, lat, read_latitude, self.angle_unit),
