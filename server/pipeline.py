@@ -12,7 +12,8 @@ from collections.abc import Iterator
 from server.engine.gauss_newton import ProgressCallback, adjust
 from server.errors import FieldbookError, Issue, NetworkError
 from server.fieldbook.parser import parse_fieldbook
-from server.fieldbook.model import Fieldbook
+from server.fieldbook.lexer import MAX_ISSUES
+from server.fieldbook.model import SPATIAL_KINDS, Fieldbook
 from server.model.misclosures import leveling_misclosures
 from server.model.traverse import traverse_misclosures
 from server.model.network import build_network
@@ -79,6 +80,43 @@ def check_observation_limit(fieldbook: Fieldbook, limits: WorkLimits) -> None:
     raise FieldbookError([Issue(first_over.line, "", message)], source=fieldbook.source)
 
 
+def check_adjustable_now(fieldbook: Fieldbook) -> None:
+    """Refuse what the field book accepts but this version cannot adjust, naming the line.
+
+    Planned observations (``?``) have no value (exit 2, every such line); used
+    3D observations (slope, zenith, baseline) and points given by latitude and
+    longitude need the geodetic 3D model, which is not wired in yet (exit 3,
+    the first line).  Ignored 3D observations stay in the book as before.
+    """
+    planned = sorted({obs.line for obs in fieldbook.observations if obs.planned})
+    if planned:
+        message = ("'?' marks a planned observation: it has a standard deviation but no value "
+                   "yet, so it cannot be adjusted; book the measured value, or leave the line "
+                   "out of the field book you adjust")
+        issues = [Issue(line, "?", message) for line in planned[:MAX_ISSUES]]
+        raise FieldbookError(issues, source=fieldbook.source, count=len(planned))
+    spatial = [obs for obs in fieldbook.observations if obs.kind in SPATIAL_KINDS
+               and not obs.ignored]
+    if spatial:
+        first = spatial[0]
+        more = f" and {len(spatial) - 1:,} more 3D observations" if len(spatial) > 1 else ""
+        verb = "need" if more else "needs"
+        raise NetworkError(
+            f"the geodetic 3D model is not available yet: the {first.kind} on line "
+            f"{first.line}{more} {verb} it; mark the slope, zenith and baseline lines "
+            "ignore to adjust the rest",
+            (first.from_point, first.to),
+        )
+    placed = next((p for p in fieldbook.points if p.latitude is not None), None)
+    if placed is not None:
+        raise NetworkError(
+            f"the geodetic 3D model is not available yet: point {placed.name} on line "
+            f"{placed.line} is given by lat= and lon=, and placing it on the grid needs it; "
+            "give its east= and north= instead",
+            (placed.name,),
+        )
+
+
 def check_unknown_limit(network: Network, limits: WorkLimits) -> None:
     """Refuse a network with more unknowns than allowed, naming both numbers."""
     limit, count = limits.max_unknowns, len(network.parameters)
@@ -94,6 +132,7 @@ def _adjust_parsed(fieldbook: Fieldbook, progress: ProgressCallback | None,
                    limits: WorkLimits) -> AdjustmentResult:
     report = progress or _quiet
     check_observation_limit(fieldbook, limits)
+    check_adjustable_now(fieldbook)
     report("network", 0)
     network = build_network(fieldbook)
     check_unknown_limit(network, limits)

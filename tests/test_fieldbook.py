@@ -48,6 +48,10 @@ ALL_DEFAULTS = (
 )
 
 
+#: The 3D kinds need a crs line (the geodetic model); any valid one serves these tests.
+CRS = "crs EPSG:32633\n"
+
+
 def parse(text: str | bytes, **kwargs: str) -> Fieldbook:
     return parse_fieldbook(text, **kwargs)
 
@@ -113,7 +117,7 @@ def test_coordinates_and_observed_lengths_convert_by_the_exact_definition(
     unit: str, metres_per_unit: float
 ) -> None:
     book = parse(
-        f"units length={unit}\n{ALL_DEFAULTS}"
+        f"units length={unit}\n{CRS}{ALL_DEFAULTS}"
         "point A east=1000.5 north=-2000.25 height=350.125\n"
         "distance A B 328.084\n"
         "level A B -1.5 len=1km\n"
@@ -139,7 +143,7 @@ def test_us_survey_foot_is_two_ppm_longer_than_the_international_foot() -> None:
 
 def test_option_lengths_carry_their_own_unit_whatever_the_file_unit() -> None:
     book = parse(
-        "units length=ft\ndefaults level=1mm/sqrtkm slope=1mm zenith=1sec\n"
+        "units length=ft\ncrs EPSG:32633\ndefaults level=1mm/sqrtkm slope=1mm zenith=1sec\n"
         "level A B 1.0 len=420m\nlevel A B 1.0 len=1320ft\n"
         "slope A B 100 hi=1.552m ht=5ft\n"
         "zenith A B 90:00:00 hi=0m ht=-0.35m\n"
@@ -204,14 +208,15 @@ def test_horizontal_angles_directions_and_azimuths_are_reduced_to_one_turn(
     [("0:00:00", 0.0), ("90:00:00", math.pi / 2), ("180:00:00", math.pi), ("200gon", math.pi)],
 )
 def test_zenith_angles_at_the_ends_of_their_range_are_accepted(text: str, radians: float) -> None:
-    assert single(f"zenith A B {text}\n").value == pytest.approx(radians, abs=1e-15)
-    assert 0.0 <= single(f"zenith A B {text}\n").value <= math.pi
+    (zenith,) = parse(CRS + ALL_DEFAULTS + f"zenith A B {text}\n").observations
+    assert zenith.value == pytest.approx(radians, abs=1e-15)
+    assert 0.0 <= zenith.value <= math.pi
 
 
 @pytest.mark.parametrize("text", ["-0:00:01", "180:00:01", "200.001gon", "-1deg"])
 def test_zenith_angles_outside_0_to_180_are_errors(text: str) -> None:
-    issue = only_issue(ALL_DEFAULTS + f"zenith A B {text}\n")
-    assert issue.line == 2
+    issue = only_issue(CRS + ALL_DEFAULTS + f"zenith A B {text}\n")
+    assert issue.line == 3
     assert issue.token == text
     assert "between 0 and 180°" in issue.message
 
@@ -247,7 +252,7 @@ def test_dms_in_a_decimal_degree_file_points_at_the_units_line() -> None:
 
 def test_each_kind_names_its_points_as_the_result_contract_says() -> None:
     book = parse(
-        ALL_DEFAULTS + "level L1 L2 0.5 len=1km\n"
+        CRS + ALL_DEFAULTS + "level L1 L2 0.5 len=1km\n"
         "distance D1 D2 10\n"
         "angle BACK AT FORE 10:00:00\n"
         "azimuth Z1 Z2 10:00:00\n"
@@ -265,10 +270,10 @@ def test_each_kind_names_its_points_as_the_result_contract_says() -> None:
         ("direction", "OCC", "OCC", "T1"),
         ("direction", "OCC", "OCC", "T2"),
     ]
-    assert [o.line for o in book.observations] == [2, 3, 4, 5, 6, 7, 9, 10]
-    assert book.rounds[0].line == 8
-    assert book.rounds[0].observation_lines == (9, 10)
-    assert {o.round_line for o in book.observations[-2:]} == {8}
+    assert [o.line for o in book.observations] == [3, 4, 5, 6, 7, 8, 10, 11]
+    assert book.rounds[0].line == 9
+    assert book.rounds[0].observation_lines == (10, 11)
+    assert {o.round_line for o in book.observations[-2:]} == {9}
 
 
 def test_own_sd_replaces_the_default_for_that_observation_only() -> None:
@@ -302,9 +307,10 @@ def test_ignore_and_note_are_kept() -> None:
     assert observation.note == 'tape "B" # not a comment'
 
 
-def test_centering_goes_to_distances_angles_and_directions_only() -> None:
+def test_centering_goes_to_distances_angles_directions_and_slope_distances_only() -> None:
+    """Slope distances carry it too: the 3D model adds 2c² to them as to distances."""
     book = parse(
-        ALL_DEFAULTS + "defaults centering=1.5mm\n"
+        CRS + ALL_DEFAULTS + "defaults centering=1.5mm\n"
         "distance A B 10\nangle A B C 1:00:00\ndirections A\nB 0:00:00\nC 1:00:00\nend\n"
         "azimuth A B 1:00:00\nlevel A B 1 len=1km\nslope A B 10\nzenith A B 90:00:00\n"
     )
@@ -315,7 +321,7 @@ def test_centering_goes_to_distances_angles_and_directions_only() -> None:
         "direction": pytest.approx(0.0015),
         "azimuth": 0.0,
         "level": 0.0,
-        "slope": 0.0,
+        "slope": pytest.approx(0.0015),
         "zenith": 0.0,
     }
 
@@ -343,7 +349,7 @@ def test_defaults_changing_mid_file_apply_only_to_later_observations() -> None:
 
 def test_scale_multiplies_only_the_distances_after_it() -> None:
     book = parse(
-        "units length=ft\n" + ALL_DEFAULTS + "distance A B 1000\n"
+        "units length=ft\n" + CRS + ALL_DEFAULTS + "distance A B 1000\n"
         "scale factor=0.99962\n"
         "distance A B 1000\nslope A B 1000\nlevel A B 1000 len=1km\n"
         "scale factor=1\ndistance A B 1000\n"
@@ -665,7 +671,7 @@ def test_direction_errors(entry: str, fragment: str) -> None:
     ],
 )
 def test_observation_errors(line: str, token: str, fragment: str) -> None:
-    issue = only_issue(f"{ALL_DEFAULTS}\n{line}\n")
+    issue = only_issue(f"{ALL_DEFAULTS}{CRS}{line}\n")
     assert (issue.line, issue.token) == (3, token)
     assert fragment in issue.message
 

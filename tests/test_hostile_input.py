@@ -95,6 +95,7 @@ distance P1 P3 100.004
 distance P2 P3 141.420
 """
 SPATIAL = """units angle=deg
+crs EPSG:32633
 defaults slope=2mm zenith=1sec level=1mm
 point A east=0 north=0 height=10 fix
 slope A B 100.000 hi=1.5m ht=1.6m

@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import re
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 from server.errors import FieldbookError, SurveyError
 from server.fieldbook.parser import parse_fieldbook
@@ -42,7 +42,12 @@ _ENDING = re.compile(r"\r\n|\r|\n")
 #: a direction inside a round is written ``TO VALUE`` with no keyword.
 _LEADING_TOKENS = {
     "level": 4, "distance": 4, "angle": 5, "azimuth": 4, "slope": 4, "zenith": 4, "direction": 2,
+    "baseline": 6,
 }
+#: Value tokens just before the first option: a baseline's DX DY DZ, one for the others.
+#: A baseline's value is written and corrected as ``DX,DY,DZ``, and its sd as ``SX,SY,SZ``
+#: (or one length for all three).
+_VALUE_COUNTS = {"baseline": 3}
 
 
 class EditError(SurveyError):
@@ -103,20 +108,20 @@ def validate_edit(edit: ObservationEdit) -> None:
         text = (edit.sd or "").strip()
         if not text or any(c.isspace() for c in text):
             raise EditError(f"line {edit.line}: give the standard deviation with its unit, e.g. 3mm")
-        try:
-            quantity = parse_quantity(text)
-        except UnitError as exc:
-            raise EditError(f"line {edit.line}: {exc}") from None
-        if min(quantity.constant, quantity.ppm, quantity.per_sqrtkm, quantity.per_setup) < 0 or not any(
-            (quantity.constant, quantity.ppm, quantity.per_sqrtkm, quantity.per_setup)
-        ):
-            raise EditError(f"line {edit.line}: a standard deviation must be positive")
+        for part in text.split(",") if text.count(",") == 2 else [text]:
+            try:
+                quantity = parse_quantity(part)
+            except UnitError as exc:
+                raise EditError(f"line {edit.line}: {exc}") from None
+            parts = (quantity.constant, quantity.ppm, quantity.per_sqrtkm, quantity.per_setup)
+            if min(parts) < 0 or not any(parts):
+                raise EditError(f"line {edit.line}: a standard deviation must be positive")
     if edit.action == "correct":
         text = (edit.value or "").strip()
         if not text:
             raise EditError(f"line {edit.line}: type the corrected value as the field book "
                             "writes it (D:M:S such as 291:16:50 for angles in a dms file)")
-        if len(text) > MAX_VALUE_CHARS:
+        if len(text) > MAX_VALUE_CHARS * (1 + text.count(",")):
             raise EditError(f"line {edit.line}: the corrected value is too long")
         if _NOT_IN_VALUE.search(text):
             raise EditError(f"line {edit.line}: the corrected value must be one number or angle, "
@@ -143,7 +148,8 @@ def apply_edits(text: str, edits: Sequence[ObservationEdit], *, source: str = ""
         obs = observation_lines.get(edit.line)
         if obs is None or not 1 <= edit.line <= len(lines):
             raise EditError(f"line {edit.line} holds no observation that can be edited")
-        lines[edit.line - 1] = _edit_line(lines[edit.line - 1], edit, _LEADING_TOKENS[obs.kind])
+        as_written = _for_kind(edit, obs.kind)
+        lines[edit.line - 1] = _edit_line(lines[edit.line - 1], as_written, obs.kind)
     edited = "".join(lines)
     if added:
         ending = _ENDING.search(text)
@@ -180,11 +186,31 @@ def value_token(line_text: str, kind: str) -> str:
     """The value as written on an observation's line of kind ``kind``; "" if there is none."""
     code, _ = _split_comment(line_text.rstrip("\r\n"))
     spans = _token_spans(code)
-    index = _LEADING_TOKENS.get(kind, 0) - 1
-    if not 0 <= index < len(spans):
+    last = _LEADING_TOKENS.get(kind, 0)
+    first = last - _VALUE_COUNTS.get(kind, 1)
+    if not 0 <= first < last <= len(spans):
         return ""
-    start, end = spans[index]
-    return code[start:end]
+    return ",".join(code[start:end] for start, end in spans[first:last])
+
+
+def _for_kind(edit: ObservationEdit, kind: str) -> ObservationEdit:
+    """The edit as the line of ``kind`` takes it; three values only for a baseline."""
+    count = _VALUE_COUNTS.get(kind, 1)
+    if edit.action == "sd" and edit.sd is not None:
+        parts = edit.sd.strip().split(",")
+        if count == 3 and len(parts) == 1:
+            # one standard deviation for each of DX, DY and DZ, as 'defaults baseline=' does
+            return replace(edit, sd=",".join(parts * 3))
+        if len(parts) != (3 if count == 3 else 1):
+            what = ("a baseline takes one standard deviation or three (SX,SY,SZ)" if count == 3
+                    else f"a {kind} takes one standard deviation")
+            raise EditError(f"line {edit.line}: {what}")
+    if edit.action == "correct" and len((edit.value or "").split(",")) != count:
+        what = ("type a baseline's three components as DX,DY,DZ" if count == 3
+                else "the corrected value must be one number or angle")
+        raise EditError(f"line {edit.line}: {what}")
+    return edit
+
 
 
 def _validate_pairs(pairs: Sequence[tuple[str, str]]) -> None:
@@ -213,13 +239,15 @@ def _relative_lines(edit: ObservationEdit, asked: set[frozenset[str]]) -> list[s
     return out
 
 
-def _edit_line(line: str, edit: ObservationEdit, first_option: int) -> str:
+def _edit_line(line: str, edit: ObservationEdit, kind: str) -> str:
+    first_option = _LEADING_TOKENS[kind]
     body = line.rstrip("\r\n")
     ending = line[len(body):]
     code, comment = _split_comment(body)
     spans = _token_spans(code)
     if edit.action == "correct":
-        return _correct_line(code, comment, ending, spans, edit, first_option - 1)
+        first_value = first_option - _VALUE_COUNTS.get(kind, 1)
+        return _correct_line(code, comment, ending, spans, edit, first_value, first_option)
     tokens = [code[a:b] for a, b in spans]
     keep = list(range(len(tokens)))
     if edit.action in ("exclude", "include"):
@@ -238,17 +266,23 @@ def _edit_line(line: str, edit: ObservationEdit, first_option: int) -> str:
 
 
 def _correct_line(code: str, comment: str, ending: str, spans: list[tuple[int, int]],
-                  edit: ObservationEdit, index: int) -> str:
-    """The value token replaced in place (the surveyor's spacing kept), the old one commented."""
-    if len(spans) <= index:
+                  edit: ObservationEdit, first: int, last: int) -> str:
+    """The value tokens replaced in place (the surveyor's spacing kept), the old ones commented.
+
+    One token for most kinds; a baseline's DX DY DZ are three, given as ``DX,DY,DZ``.
+    """
+    if len(spans) < last:
         raise EditError(f"line {edit.line}: its value could not be found")
-    start, end = spans[index]
-    old, new = code[start:end], (edit.value or "").strip()
+    values = spans[first:last]
+    old = ",".join(code[start:end] for start, end in values)
+    new = (edit.value or "").strip()
     if new == old:
         raise EditError(f"line {edit.line}: the value is already {old}")
     note = f"corrected from {old} on {edit.date}: {clean_reason(edit.reason)}"
     comment = f"{comment}; {note}" if comment else f"# {note}"
-    return f"{code[:start]}{new}{code[end:]}  {comment}{ending}"
+    for (start, end), part in reversed(list(zip(values, new.split(","), strict=True))):
+        code = f"{code[:start]}{part}{code[end:]}"
+    return f"{code}  {comment}{ending}"
 
 
 def _split_comment(body: str) -> tuple[str, str]:

@@ -13,7 +13,7 @@ import difflib
 import functools
 import re
 from collections.abc import Collection, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from server.errors import Issue
@@ -272,6 +272,7 @@ class Grammar:
     text_positional: bool = False
     hint: str = ""  # what an option-only statement takes
     stray: str = ""  # what to say about a value too many, when the usage is not enough
+    why_not: Mapping[str, str] = field(default_factory=dict)  # why an option of others is not
 
     def takes(self) -> str:
         return join_words(self.positionals) if self.positionals else self.hint
@@ -428,6 +429,8 @@ class Binder:
         if key in self.all_options:
             owners = self.option_owners.get(key)
             where = f"; it is an option of {owners}" if owners else ""
+            if key in grammar.why_not:
+                where = f": {grammar.why_not[key]}"
             return f"'{key}=' does not apply to {grammar.name}{where}"
         hint = suggest(key, grammar.options) or (
             f" (it takes {join_words(sorted(grammar.options))})" if grammar.options else ""
@@ -480,22 +483,50 @@ GRAMMARS: dict[str, Grammar] = {
         hint="misclosure=, relative=, angular= or ratio=, e.g. misclosure=4mm/sqrtkm "
         "or angular=10sec/sqrtn ratio=1:10000",
     ),
+    "crs": Grammar(
+        "crs",
+        "header",
+        ("EPSG:CODE or local",),
+        options=frozenset({"lat", "lon", "east", "north"}),
+        stray="crs takes EPSG:CODE (as crs EPSG:32633) or local lat=LAT lon=LON "
+        "[east=E0] [north=N0]",
+    ),
+    "geoid": Grammar(
+        "geoid",
+        "header",
+        options=frozenset({"undulation"}),
+        hint="undulation=N, a length such as undulation=-28.41m",
+    ),
+    "refraction": Grammar(
+        "refraction", "header", options=frozenset({"k"}), hint="k=K, e.g. k=0.13"
+    ),
+    "epoch": Grammar(
+        "epoch",
+        "header",
+        ("the date (2026-03-14) or UTC time (2026-03-14T10:30Z)",),
+    ),
     "defaults": Grammar(
         "defaults",
         "setting",
         options=frozenset(
-            {"level", "distance", "angle", "direction", "azimuth", "zenith", "slope", "centering"}
+            {"level", "distance", "angle", "direction", "azimuth", "zenith", "slope", "baseline",
+             "centering"}
         ),
         hint="KIND=SD, e.g. distance=2mm+2ppm",
     ),
     "scale": Grammar(
-        "scale", "setting", options=frozenset({"factor"}), hint="factor=F, e.g. factor=0.99962"
+        "scale",
+        "setting",
+        options=frozenset({"factor", "baseline"}),
+        hint="factor=F and/or baseline=F, e.g. factor=0.99962",
     ),
     "point": Grammar(
         "point",
         "body",
         ("the point name",),
-        options=frozenset({"east", "north", "height", "fix", "sd", "sd_en", "sd_h", "note"}),
+        options=frozenset(
+            {"east", "north", "lat", "lon", "height", "geoid", "fix", "sd", "sd_en", "sd_h", "note"}
+        ),
         flags=frozenset({"fix"}),
         stray="coordinates are always named, as in east=E north=N height=H",
     ),
@@ -505,6 +536,20 @@ GRAMMARS: dict[str, Grammar] = {
     "azimuth": _observation("azimuth", ("FROM", "TO", "the azimuth")),
     "slope": _observation("slope", ("FROM", "TO", "the slope distance"), "hi", "ht"),
     "zenith": _observation("zenith", ("FROM", "TO", "the zenith angle"), "hi", "ht"),
+    "baseline": Grammar(
+        "baseline",
+        "body",
+        ("FROM", "TO", "DX", "DY", "DZ"),
+        frozenset({"sd", "corr", "note"}),
+        frozenset({"ignore"}),
+        why_not=dict.fromkeys(
+            ("hi", "ht"),
+            "a baseline runs from mark to mark; the antenna heights are applied when the "
+            "vector is processed",
+        ),
+        stray="baseline takes FROM, TO and the three components DX DY DZ; sd= and corr= list "
+        "three values with commas and no spaces, as sd=3mm,3mm,6mm",
+    ),
     "directions": Grammar(
         "directions",
         "body",
@@ -676,6 +721,9 @@ SD_RULES = {
     "direction": QuantityRule("a direction standard deviation", True, frozenset(), "1sec"),
     "azimuth": QuantityRule("an azimuth standard deviation", True, frozenset(), "2sec"),
     "zenith": QuantityRule("a zenith standard deviation", True, frozenset(), "1.5sec"),
+    "baseline": QuantityRule(
+        "a baseline component's standard deviation", False, frozenset(), "3mm"
+    ),
     "centering": QuantityRule(
         "the centering standard deviation", False, frozenset(), "1mm", allow_zero=True
     ),

@@ -9,16 +9,21 @@ the same units.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from datetime import date, datetime
 
 from server.errors import Issue
 from server.units import Quantity
 
 #: Observation kinds as they appear in results (``direction`` for each line of a round).
-OBSERVATION_KINDS = ("level", "distance", "angle", "direction", "azimuth", "slope", "zenith")
+OBSERVATION_KINDS = (
+    "level", "distance", "angle", "direction", "azimuth", "slope", "zenith", "baseline"
+)
 #: Kinds that observe horizontal geometry.
 HORIZONTAL_KINDS = frozenset({"distance", "angle", "direction", "azimuth"})
-#: Kinds that couple heights and positions (need the 3D model).
-SPATIAL_KINDS = frozenset({"slope", "zenith"})
+#: Kinds that couple heights and positions (need the geodetic 3D model and a ``crs``).
+SPATIAL_KINDS = frozenset({"slope", "zenith", "baseline"})
+#: Refraction coefficient when the field book has no ``refraction`` line (common practice).
+DEFAULT_REFRACTION = 0.13
 #: Kinds whose value is an angle.
 ANGULAR_KINDS = frozenset({"angle", "direction", "azimuth", "zenith"})
 
@@ -61,6 +66,54 @@ class PointStatement:
     sd_en: float | None = None
     sd_h: float | None = None
     note: str = ""
+    latitude: float | None = None
+    longitude: float | None = None
+    geoid: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Crs:
+    """The ``crs`` line: the coordinate reference system of every east/north of the file.
+
+    Either ``epsg`` (``crs EPSG:CODE``, a projected CRS checked for syntax only here;
+    ``server/geodesy`` resolves it) or a local site grid (``crs local``): transverse
+    Mercator on GRS80, scale 1 on the meridian through ``latitude``/``longitude``
+    (radians, south and west negative), that point at ``false_east``/``false_north``
+    (metres).  ``text`` is the line as given after ``crs`` ("EPSG:32633", "local lat=...").
+    """
+
+    line: int
+    text: str
+    epsg: int | None = None
+    latitude: float | None = None
+    longitude: float | None = None
+    false_east: float = 0.0
+    false_north: float = 0.0
+
+    @property
+    def local(self) -> bool:
+        """True for a site grid (``crs local``), False for ``crs EPSG:CODE``."""
+        return self.epsg is None
+
+
+@dataclass(frozen=True, slots=True)
+class BaselineVector:
+    """The three components of a ``baseline`` line and their 3×3 covariance.
+
+    ``components`` are ΔX, ΔY, ΔZ of TO − FROM in the Earth-centred frame, metres.
+    ``sd`` are the three standard deviations as booked (own ``sd=`` or ``defaults
+    baseline=``), metres, before ``sd_scale`` (the ``scale baseline=`` factor in force);
+    ``correlations`` are ρxy, ρxz, ρyz (0 without ``corr=``).  ``covariance`` is the
+    matrix the adjustment weights with, in m², row by row:
+    C_ij = (sd_scale·sd_i)·(sd_scale·sd_j)·ρ_ij, positive definite (the parser refuses
+    anything else).
+    """
+
+    components: tuple[float, float, float]
+    sd: tuple[float, float, float]
+    correlations: tuple[float, float, float] = (0.0, 0.0, 0.0)
+    sd_scale: float = 1.0
+    covariance: tuple[tuple[float, float, float], ...] = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -75,6 +128,19 @@ class Observation:
     the default for the kind); ``centering`` the centering σ in metres.
     ``booked`` is the value as written, in SI but before any reduction (no
     scale factor, angles not yet brought into [0, 2π)); None means ``value``.
+
+    A ``baseline`` is one observation with three correlated components, kept
+    whole so that the model evaluates it as one 3-row block: ``baseline``
+    holds ΔX, ΔY, ΔZ (m) and their 3×3 covariance (m², ``scale baseline=``
+    applied).  For it ``value`` is the length of the vector (m, a summary for
+    listings, not what is adjusted) and ``sigma`` the root mean square of the
+    three scaled standard deviations (a summary too); ``centering`` is the σ
+    the model adds at each end in the local east and north directions.
+
+    A planned observation (``?`` as its value) has ``planned`` True and NaN as
+    ``value`` and ``booked`` (``baseline.components`` NaN too): it has a
+    standard deviation but no value, for designing a network, and cannot be
+    adjusted.
     """
 
     line: int
@@ -94,6 +160,8 @@ class Observation:
     ignored: bool = False
     note: str = ""
     booked: float | None = None
+    planned: bool = False
+    baseline: BaselineVector | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -116,7 +184,13 @@ class RelativePair:
 
 @dataclass(frozen=True, slots=True)
 class Fieldbook:
-    """Everything a field book says, in file order."""
+    """Everything a field book says, in file order.
+
+    The geodetic header: ``crs`` (None without a ``crs`` line), ``geoid_undulation``
+    (metres; None without a ``geoid`` line, then points without their own ``geoid=``
+    have undulation 0), ``refraction`` (the coefficient k in force) and ``epoch``
+    (a ``date``, or a ``datetime`` in UTC when a time was given; None without one).
+    """
 
     source: str = ""
     version: int = 1
@@ -133,3 +207,7 @@ class Fieldbook:
     relative_pairs: tuple[RelativePair, ...] = ()
     warnings: tuple[Issue, ...] = ()
     text_sha256: str = ""
+    crs: Crs | None = None
+    geoid_undulation: float | None = None
+    refraction: float = DEFAULT_REFRACTION
+    epoch: date | datetime | None = None

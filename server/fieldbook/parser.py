@@ -20,9 +20,26 @@ import math
 import re
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from datetime import date, datetime
 from typing import TypeVar
 
 from server.errors import FieldbookError
+from server.fieldbook.baselines import (
+    baseline_component,
+    baseline_length,
+    baseline_vector,
+    read_baseline_scale,
+    read_correlations,
+    read_sd_triple,
+)
+from server.fieldbook.geodetic_header import (
+    read_epoch,
+    read_epsg,
+    read_latitude,
+    read_longitude,
+    read_refraction,
+    read_undulation,
+)
 from server.fieldbook.lexer import (
     CONTROL_RULE,
     DIRECTION_ENTRY,
@@ -53,7 +70,10 @@ from server.fieldbook.lexer import (
     tokenize,
 )
 from server.fieldbook.model import (
+    DEFAULT_REFRACTION,
     PRECISION_METHODS,
+    SPATIAL_KINDS,
+    Crs,
     DirectionRound,
     Fieldbook,
     Observation,
@@ -79,8 +99,10 @@ from server.units import (
 SCALE_LIMITS = (0.9, 1.1)
 #: Outside this range the factor is accepted with a warning.
 SCALE_USUAL = (0.995, 1.005)
-#: Kinds whose centering error the network adds (not azimuths, not 3D kinds, not leveling).
-CENTERED_KINDS = frozenset({"distance", "angle", "direction"})
+#: Kinds whose centering error the model adds (not azimuths, zenith angles or leveling).
+CENTERED_KINDS = frozenset({"distance", "angle", "direction", "slope", "baseline"})
+#: What an observed value of ``?`` means: a planned observation, with no value yet.
+PLANNED = "?"
 # Exactly 180° written in gon or deg can land a rounding error past π.
 _ZENITH_SLACK = 1e-12
 #: Smallest significance level (alpha, snooping) whose critical values are still computable.
@@ -193,6 +215,13 @@ class _Parser:
         self.rounds: list[DirectionRound] = []
         self.round: _Round | None = None
         self.relative_pairs: list[RelativePair] = []
+        self.crs: Crs | None = None
+        self.crs_written = False  # a crs line was seen, even a wrong or misplaced one
+        self.geoid_undulation: float | None = None
+        self.refraction = DEFAULT_REFRACTION
+        self.epoch: date | datetime | None = None
+        self.baseline_scale = 1.0
+        self.first_spatial: tuple[int, str] | None = None  # line and keyword as written
 
     # ---- driving
 
@@ -227,6 +256,16 @@ class _Parser:
             self.close_round()
         if self.relative_pairs:
             self.check_relative_names()
+        if self.first_spatial is not None and not self.crs_written:
+            line, word = self.first_spatial
+            self.error(
+                line,
+                word,
+                f"'{show(word)}' is a 3D observation, and the geodetic 3D model needs a 'crs' "
+                "line in the header (before the first point or observation): "
+                "'crs EPSG:CODE' for the projected CRS of the coordinates (e.g. crs EPSG:32633), "
+                "or 'crs local lat=LAT lon=LON' for a site grid centred near the survey",
+            )
 
     def fieldbook(self, source: str, digest: str) -> Fieldbook:
         return Fieldbook(
@@ -245,6 +284,10 @@ class _Parser:
             relative_pairs=tuple(self.relative_pairs),
             warnings=self.warnings.result(),
             text_sha256=digest,
+            crs=self.crs,
+            geoid_undulation=self.geoid_undulation,
+            refraction=self.refraction,
+            epoch=self.epoch,
         )
 
     def error(self, line: int, token: str, message: str) -> None:
@@ -379,6 +422,10 @@ class _Parser:
             )
             self.error(line, first.raw, f"'{show(first.raw)}' is not a statement{hint}")
             return
+        if word == "crs":
+            self.crs_written = True
+        elif word in SPATIAL_KINDS and self.first_spatial is None:
+            self.first_spatial = (line, first.raw)
         # Body lines after the first need no placement check; skipping the call saves time.
         needs_check = grammar.section != "body" or self.body_line is None
         if needs_check and not self.placement_allows(line, word, first.raw, grammar):
@@ -537,11 +584,76 @@ class _Parser:
             self.option(st, "angular", parse_angular_allowance), self.option(st, "ratio", parse_ratio)
         )
 
+    def set_crs(self, st: Statement) -> None:
+        """``crs EPSG:CODE`` or ``crs local lat=LAT lon=LON [east=E0] [north=N0]``."""
+        before = self.errors.count
+        token = st.values[0]
+        if token.value.lower() != "local":
+            code = self.read(st, token, read_epsg)
+            for key, option in st.options.items():
+                self.error(
+                    st.line,
+                    option.raw,
+                    f"'{key}=' belongs to a site grid (crs local lat=LAT lon=LON); "
+                    f"crs EPSG:CODE takes nothing after the code",
+                )
+            if code is not None and self.errors.count == before:
+                self.crs = Crs(st.line, f"EPSG:{code}", epsg=code)
+            return
+        missing = [key for key in ("lat", "lon") if key not in st.options]
+        if missing:
+            self.error(
+                st.line,
+                token.raw,
+                f"crs local needs {' and '.join(k + '=' for k in missing)}: the latitude and "
+                "longitude of the grid's origin in the file's angle unit, south and west "
+                "negative, e.g. crs local lat=47:03:12.5 lon=-122:54:08.1",
+            )
+        latitude = longitude = None
+        if self.angle_unit_known:
+            latitude = self.option(st, "lat", read_latitude, self.angle_unit)
+            longitude = self.option(st, "lon", read_longitude, self.angle_unit)
+        east = self.option(st, "east", option_length)
+        north = self.option(st, "north", option_length)
+        if self.errors.count != before or latitude is None or longitude is None:
+            return
+        words = " ".join(f"{key}={st.options[key].value}" for key in ("lat", "lon", "east", "north")
+                         if key in st.options)
+        self.crs = Crs(
+            st.line, f"local {words}", None, latitude, longitude, east or 0.0, north or 0.0
+        )
+
+    def set_geoid(self, st: Statement) -> None:
+        if (token := st.options.get("undulation")) is None:
+            self.report_empty(st)
+            return
+        self.geoid_undulation = self.read(st, token, read_undulation)
+
+    def set_refraction(self, st: Statement) -> None:
+        if (token := st.options.get("k")) is None:
+            self.report_empty(st)
+            return
+        k = self.read(st, token, read_refraction)
+        self.refraction = self.refraction if k is None else k
+
+    def set_epoch(self, st: Statement) -> None:
+        self.epoch = self.read(st, st.values[0], read_epoch)
+
     def set_defaults(self, st: Statement) -> None:
         """Change the defaults of the kinds named; the others stay in force."""
         if not st.options:
             self.report_empty(st)
         for key, token in st.options.items():
+            if key == "baseline" and "," in token.value:
+                self.error(
+                    st.line,
+                    token.raw,
+                    f"'{show(token.raw)}': defaults baseline= takes one length, used for each "
+                    "of DX, DY and DZ; three different ones go on the baseline line as "
+                    "sd=SX,SY,SZ",
+                )
+                self.defaults[key] = _Default(None, token.value, st.line)
+                continue
             sigma = self.read(st, token, read_quantity, SD_RULES[key])
             if key == "centering":
                 self.centering = sigma.constant if sigma is not None else self.centering
@@ -566,9 +678,14 @@ class _Parser:
                 self.defaults[kind] = _Default(None, word, line)
 
     def set_scale(self, st: Statement) -> None:
+        if not st.options:
+            self.report_empty(st)
+            return
+        if (token := st.options.get("baseline")) is not None:
+            factor = self.read(st, token, read_baseline_scale)
+            self.baseline_scale = self.baseline_scale if factor is None else factor
         token = st.options.get("factor")
         if token is None:
-            self.report_empty(st)
             return
         factor = self.read(st, token, parse_number)
         if factor is None:
@@ -618,6 +735,8 @@ class _Parser:
                 st.options[has].raw,
                 f"point {label} has {has}= but no {lacks}=; eastings and northings go together",
             )
+        latitude, longitude = self.point_lat_lon(st, label, given)
+        geoid = self.option(st, "geoid", read_undulation)
         fixed = self.point_fixed(st, label, given)
         weights = self.point_weights(st, label, given, fixed)
         if self.errors.count != before or name is None:
@@ -634,8 +753,45 @@ class _Parser:
                 sd_en=weights.get("en"),
                 sd_h=weights.get("h"),
                 note=st.text("note"),
+                latitude=latitude,
+                longitude=longitude,
+                geoid=geoid,
             )
         )
+
+    def point_lat_lon(
+        self, st: Statement, label: str, given: set[str]
+    ) -> tuple[float | None, float | None]:
+        """``lat=``/``lon=`` in place of ``east=``/``north=``: the horizontal position, radians."""
+        lat, lon = st.options.get("lat"), st.options.get("lon")
+        if lat is None and lon is None:
+            return None, None
+        first = lat or lon
+        assert first is not None
+        given.add("en")  # meant as the horizontal position: no follow-on 'fix' complaints
+        if "east" in st.options or "north" in st.options:
+            message = (f"point {label} has both lat=/lon= and east=/north=; give its position "
+                       "one way only")
+            self.error(st.line, first.raw, message)
+            return None, None
+        if lat is None or lon is None:
+            has, lacks = ("lat", "lon") if lat is not None else ("lon", "lat")
+            message = (f"point {label} has {has}= but no {lacks}=; latitude and longitude "
+                       "go together")
+            self.error(st.line, first.raw, message)
+            return None, None
+        if not self.crs_written:
+            self.error(
+                st.line,
+                first.raw,
+                f"point {label} is given by lat= and lon=, which need a 'crs' line in the header "
+                "to place it on the grid: crs EPSG:CODE or crs local lat=LAT lon=LON",
+            )
+            return None, None
+        if not self.angle_unit_known:
+            return None, None  # the 'units' line is wrong; one error there is enough
+        return (self.read(st, lat, read_latitude, self.angle_unit),
+                self.read(st, lon, read_longitude, self.angle_unit))
 
     def point_fixed(self, st: Statement, label: str, given: set[str]) -> set[str]:
         """Components held fixed: ``fix`` holds every given one, ``fix=`` names them."""
@@ -704,9 +860,15 @@ class _Parser:
         *point_tokens, value_token = st.values
         names = [self.read(st, token, point_name) for token in point_tokens]
         self.check_distinct(st, kind, names)
-        booked = _VALUE_READERS[kind](self, st, value_token)
-        # horizontal angles are used in [0, 2π); the booked value keeps what was written
-        value = wrap_2pi(booked) if booked is not None and kind in _WRAPPED_KINDS else booked
+        planned = _planned(value_token)
+        booked: float | None
+        value: float | None
+        if planned:
+            booked = value = math.nan
+        else:
+            booked = _VALUE_READERS[kind](self, st, value_token)
+            # horizontal angles are used in [0, 2π); the booked value keeps what was written
+            value = wrap_2pi(booked) if booked is not None and kind in _WRAPPED_KINDS else booked
         sigma = self.sigma(st, kind)
         length_km = setups = None
         if kind == "level":
@@ -720,6 +882,8 @@ class _Parser:
         if value is None or None in names:
             return  # only after an error reported elsewhere (a wrong 'units angle=')
         scale = self.scale if kind == "distance" else 1.0
+        if not planned:
+            value *= scale
         self.observations.append(
             Observation(
                 line=st.line,
@@ -727,7 +891,7 @@ class _Parser:
                 from_point=names[0],  # type: ignore[arg-type]  # None ruled out above
                 at=names[1] if kind == "angle" else None,
                 to=names[-1],  # type: ignore[arg-type]
-                value=value * scale,
+                value=value,
                 sigma=sigma.sigma,
                 centering=self.centering if kind in CENTERED_KINDS else 0.0,
                 scale=scale,
@@ -738,8 +902,82 @@ class _Parser:
                 ignored="ignore" in st.flags,
                 note=st.text("note"),
                 booked=booked,
+                planned=planned,
             )
         )
+
+    def baseline(self, st: Statement) -> None:
+        """``baseline FROM TO DX DY DZ [sd=SX,SY,SZ] [corr=RXY,RXZ,RYZ]``: one 3-row observation."""
+        before = self.errors.count
+        names = [self.read(st, token, point_name) for token in st.values[:2]]
+        self.check_distinct(st, "baseline", names)
+        components = self.baseline_components(st)
+        sd = self.baseline_sd(st)
+        correlations = (0.0, 0.0, 0.0)
+        if "corr" in st.options:
+            correlations = self.option(st, "corr", read_correlations)  # type: ignore[assignment]
+        if self.errors.count != before or sd is None or components is None:
+            return
+        if correlations is None or names[0] is None or names[1] is None:
+            return
+        vector = baseline_vector(components, sd, correlations, self.baseline_scale)
+        planned = math.isnan(components[0])
+        rms = math.sqrt(sum(vector.covariance[i][i] for i in range(3)) / 3.0)
+        self.observations.append(
+            Observation(
+                line=st.line,
+                kind="baseline",
+                from_point=names[0],
+                at=None,
+                to=names[1],
+                value=math.nan if planned else math.sqrt(sum(c * c for c in components)),
+                sigma=Quantity(constant=rms),
+                centering=self.centering,
+                ignored="ignore" in st.flags,
+                note=st.text("note"),
+                booked=math.nan if planned else None,
+                planned=planned,
+                baseline=vector,
+            )
+        )
+
+    def baseline_components(self, st: Statement) -> tuple[float, float, float] | None:
+        """DX, DY, DZ in metres; NaN for all three of a planned baseline (``? ? ?``)."""
+        tokens = st.values[2:]
+        planned = [_planned(token) for token in tokens]
+        if all(planned):
+            return math.nan, math.nan, math.nan
+        if any(planned):
+            token = tokens[planned.index(True)]
+            message = ("a planned baseline has '?' for all three components (DX DY DZ as ? ? ?); "
+                       "a measured one has three numbers")
+            self.error(st.line, token.raw, message)
+            return None
+        values = [
+            self.read(st, token, baseline_component, self.length_unit, self.length_factor)
+            for token in tokens
+        ]
+        if None in values:
+            return None
+        dx, dy, dz = values
+        assert dx is not None and dy is not None and dz is not None
+        text = " ".join(token.raw for token in tokens)
+        if self.read(st, tokens[0], lambda _: baseline_length((dx, dy, dz), text)) is None:
+            return None
+        return dx, dy, dz
+
+    def baseline_sd(self, st: Statement) -> tuple[float, float, float] | None:
+        """The three standard deviations: own ``sd=``, else ``defaults baseline=`` for each."""
+        if (token := st.options.get("sd")) is not None:
+            return self.read(st, token, read_sd_triple)
+        default = self.defaults.get("baseline")
+        if default is None:
+            self.report_missing_sigma(st, "baseline", "sd=SX,SY,SZ")
+            return None
+        if default.sigma is None:
+            return None  # the defaults line is wrong and reported there
+        sd = default.sigma.constant
+        return sd, sd, sd
 
     def sigma(self, st: Statement, kind: str) -> _Default | None:
         """The standard deviation in force: the observation's own ``sd=`` or the default."""
@@ -844,8 +1082,9 @@ class _Parser:
         if to is not None and to == round_.at:
             message = f"direction from {to} to itself: TO must differ from AT"
             self.error(line, st.values[0].raw, message)
-        booked = self.angle(st, st.values[1])
-        value = None if booked is None else wrap_2pi(booked)
+        planned = _planned(st.values[1])
+        booked = math.nan if planned else self.angle(st, st.values[1])
+        value = None if booked is None else booked if planned else wrap_2pi(booked)
         own = self.sigma(st, "direction") if "sd" in st.options else None
         sigma = own or round_.sigma or self.defaults.get("direction")
         if sigma is None and not (round_.sd_missing_reported or round_.flawed):
@@ -869,6 +1108,7 @@ class _Parser:
                 ignored=round_.ignored or "ignore" in st.flags,
                 note=st.text("note") or round_.note,
                 booked=booked,
+                planned=planned,
             )
         )
 
@@ -993,7 +1233,12 @@ _HANDLERS: dict[str, Callable[[_Parser, Statement], None]] = {
     "tolerance": _Parser.tolerance,
     "defaults": _Parser.set_defaults,
     "scale": _Parser.set_scale,
+    "crs": _Parser.set_crs,
+    "geoid": _Parser.set_geoid,
+    "refraction": _Parser.set_refraction,
+    "epoch": _Parser.set_epoch,
     "point": _Parser.point,
+    "baseline": _Parser.baseline,
     **dict.fromkeys(
         ("level", "distance", "angle", "azimuth", "slope", "zenith"), _Parser.observation
     ),
@@ -1001,6 +1246,11 @@ _HANDLERS: dict[str, Callable[[_Parser, Statement], None]] = {
     "relative": _Parser.relative_pair,
     "end": _Parser.end_without_round,
 }
+
+
+def _planned(token: Token) -> bool:
+    """True for an observed value written ``?``: a planned observation."""
+    return not token.quoted and token.value == PLANNED
 
 
 def _similar_name(name: str, known: set[str]) -> str:
