@@ -49,6 +49,7 @@ import math
 from collections import deque
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import TypeVar
 
 import numpy as np
 from pyproj import Geod
@@ -60,6 +61,8 @@ EARTH_RADIUS = 6_371_000.0
 DEFAULT_REFRACTION = 0.13
 
 XYZ = tuple[float, float, float]
+_T = TypeVar("_T")
+_Pairs = Mapping[tuple[str, str], _T]
 
 
 @dataclass(frozen=True, slots=True)
@@ -331,14 +334,20 @@ def _sight_length(slope: SlopeDistance, zen: ZenithAngle, z: float) -> float:
     return -delta * math.cos(z) + math.sqrt(slope.value**2 - (delta * math.sin(z)) ** 2)
 
 
-def _slope_from(slopes: Mapping[tuple[str, str], SlopeDistance], s: str, t: str):
+def _slope_from(slopes: _Pairs[SlopeDistance], s: str, t: str) -> SlopeDistance | None:
     if (s, t) in slopes:
         return slopes[(s, t)]
     back = slopes.get((t, s))  # the distance is the same seen from the other end
     return None if back is None else SlopeDistance(s, t, back.value, back.ht, back.hi)
 
 
-def _polar(state: _State, rounds: list[_Round], slopes, zeniths, grids) -> bool:
+def _polar(
+    state: _State,
+    rounds: list[_Round],
+    slopes: _Pairs[SlopeDistance],
+    zeniths: _Pairs[ZenithAngle],
+    grids: _Pairs[GridDistance],
+) -> bool:
     grew = False
     for rnd in rounds:
         omega = _orientation(state, rnd)
@@ -373,7 +382,12 @@ def _polar(state: _State, rounds: list[_Round], slopes, zeniths, grids) -> bool:
     return grew
 
 
-def _heights(state: _State, slopes, zeniths, levels: list[HeightDifference]) -> bool:
+def _heights(
+    state: _State,
+    slopes: _Pairs[SlopeDistance],
+    zeniths: _Pairs[ZenithAngle],
+    levels: list[HeightDifference],
+) -> bool:
     grew = False
     for (s, t), zen in zeniths.items():
         slope = _slope_from(slopes, s, t)
@@ -402,7 +416,11 @@ def _heights(state: _State, slopes, zeniths, levels: list[HeightDifference]) -> 
     return grew
 
 
-def _names(known, heights, observations) -> list[str]:
+def _names(
+    known: Sequence[KnownPoint],
+    heights: Sequence[KnownHeight],
+    observations: Sequence[Observation],
+) -> list[str]:
     order: dict[str, None] = {}
     for p in known:
         order[p.name] = None
