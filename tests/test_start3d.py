@@ -196,3 +196,28 @@ def test_curvature_and_refraction_on_a_one_kilometre_sight():
         assert s.value * math.cos(z.value) == pytest.approx(-0.068, abs=0.002)
     finally:
         del TRUE["Q"]
+
+
+def test_slope_and_zenith_to_different_target_heights():
+    """The zenith is read to a target 1.8 m up and the distance to a prism 0.3 m up."""
+    s, _, _ = sight("A", "P1", hi=1.55, ht=0.3)
+    _, z, _ = sight("A", "P1", hi=1.55, ht=1.8)
+    obs = [round_from("A", ["B", "P1"]), s, z]
+    result = start_positions(control("A", "B"), obs)
+    assert error(result, "P1") < 0.003
+
+
+def test_geodetic_to_earth_centred_matches_a_published_example():
+    """53°36′43.1653″N, 1°39′51.9920″W, h 299.800 m on GRS80 → X 3790644.900,
+    Y −110149.210, Z 5111482.970 (docs/references.md "Geodetic to Earth-centred coordinates").
+    """
+    from server.geodesy.start3d import GRS80_A, GRS80_F, _Ellipsoid
+
+    ell = _Ellipsoid(GRS80_A, GRS80_F)
+    lat = math.radians(53 + 36 / 60 + 43.1653 / 3600)
+    lon = -math.radians(1 + 39 / 60 + 51.9920 / 3600)
+    xyz = ell.to_ecef(lat, lon, 299.800)
+    assert xyz == pytest.approx([3790644.900, -110149.210, 5111482.970], abs=0.001)
+    back = ell.from_ecef(xyz)
+    assert back[:2] == pytest.approx((lat, lon), abs=1e-12)
+    assert back[2] == pytest.approx(299.800, abs=1e-6)

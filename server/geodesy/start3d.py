@@ -25,12 +25,12 @@ Methods, repeated until a pass reaches nothing new:
 2. Polar ties.  A round at a placed station is oriented by the circular mean of
    (azimuth computed to each placed target − its direction).  A target with a direction,
    a slope distance S and a zenith angle V from that station is placed along the line of
-   sight: the geometric zenith angle is z = V + k·L/(2R) (the model's refraction angle,
+   sight: the geometric zenith angle is z = V + k·S/(2R) (the model's refraction angle,
    R = 6 371 000 m), and the sight of length L from the instrument (station + hi along its
    normal) reaches the zenith's target point; X_t = P_i + L·Rᵀ(sin z sin α, sin z cos α, cos z)
-   − ht·û_s.  When the slope's and the zenith's hi/ht differ by δ (in hi − ht), the length is
-   L = −δ cos z + √(S² − δ² sin² z) (the two normals taken parallel: error ~δ·D/R, far below
-   a millimetre).  Curvature is exact here since the frame is Earth-centred; only ht is
+   − ht·û_s.  When the slope's and the zenith's (ht − hi) differ by δ, the length is
+   L = −δ cos z + √(S² − δ² sin² z) (the two normals taken parallel: error ~δ·D/R, far
+   below a millimetre).  Curvature is exact here since the frame is Earth-centred; only ht is
    taken along the station's normal instead of the target's (ht·D/R, 0.3 mm for 2 m at 1 km).
    A direction with a grid distance gives the latitude and longitude only (geodesic
    forward on the ellipsoid, pyproj.Geod), the height then comes from step 3.
@@ -330,7 +330,7 @@ def _baselines(state: _State, baselines: list[Baseline], order: list[str]) -> bo
 
 
 def _sight_length(slope: SlopeDistance, zen: ZenithAngle, z: float) -> float:
-    delta = (slope.hi - slope.ht) - (zen.hi - zen.ht)
+    delta = (slope.ht - slope.hi) - (zen.ht - zen.hi)  # the slope target above the zenith one
     return -delta * math.cos(z) + math.sqrt(slope.value**2 - (delta * math.sin(z)) ** 2)
 
 
