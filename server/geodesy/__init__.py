@@ -5,5 +5,6 @@ Earth-centred Cartesian coordinates; ``crs.py`` reads a projected CRS (pyproj, o
 site grid and converts grid coordinates to and from latitude and longitude on the CRS's own
 ellipsoid; ``frames.py`` computes observations in the local horizon frame (slope distance,
 zenith angle, azimuth) with their partial derivatives, and carries covariances between the
-local and the Earth-centred axes.  Everything is SI: metres and radians.
+local and the Earth-centred axes; ``start3d.py`` finds first Earth-centred positions
+from baselines, polar ties, trigonometric heighting and leveling.  Everything is SI: metres and radians.
 """
