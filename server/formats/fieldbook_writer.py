@@ -84,7 +84,7 @@ class _Writer:
         if self.data.title:
             title = self.data.title.replace("\\", "\\\\").replace('"', '\\"')
             self.lines.append(f'title "{title[:200]}"')
-        where = f"  # {units.source.note()}" if units.source else "  # the file states no units"
+        where = f"  # {units.source.note()}" if units.source else "  # the file states no units: those given to the import command"
         self.lines.append(f"units length={self.length_unit} angle={self.angle_unit}{where}")
         if self.data.crs and self.data.crs_source:
             self.lines.append(f"crs {self.data.crs}  # {self.data.crs_source.note()}")
