@@ -93,7 +93,7 @@ class _Rows:
             return None
         face = _FACES.get(written) or (2 if zenith is not None and zenith > math.pi else 1)
         if hz is None and zenith is None and slope is None:
-            if not any(i.line == line for i in self.issues):
+            if not self.issues or self.issues[-1].line != line:
                 self.issues.append(Issue(line, "", "a row needs hz, zenith or slope"))
             return None
         return RawReading(setup, _clean(station), _clean(target), Source(line, "row", "csv"),

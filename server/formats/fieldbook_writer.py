@@ -83,7 +83,8 @@ class _Writer:
         self.lines.append("# imported: each line names its source; raw readings are in comments")
         if self.data.title:
             title = self.data.title.replace("\\", "\\\\").replace('"', '\\"')
-            self.lines.append(f'title "{title[:200]}"')
+            where = f"  # {self.data.title_source.note()}" if self.data.title_source else ""
+            self.lines.append(f'title "{title[:200]}"{where}')
         where = f"  # {units.source.note()}" if units.source else "  # the file states no units: those given to the import command"
         self.lines.append(f"units length={self.length_unit} angle={self.angle_unit}{where}")
         if self.data.crs and self.data.crs_source:

@@ -105,6 +105,7 @@ class SurveyData:
     """Everything read from one file, in SI units, before any reduction."""
 
     title: str | None = None
+    title_source: Source | None = None
     crs: str | None = None
     crs_source: Source | None = None
     units: FileUnits = field(default_factory=FileUnits)

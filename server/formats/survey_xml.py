@@ -41,8 +41,8 @@ MAX_BYTES = 50 * 1024 * 1024
 #: Values beyond this (metres) are typing or unit mistakes, as in the field book parser.
 MAX_LENGTH_M = 1e8
 
-# Exact factors: the international foot 0.3048 m and the US survey foot 1200/3937 m
-# (NIST, "U.S. Survey Foot: Revised Unit Conversion Factors", 2019 / Federal Register 2020).
+# Exact factors: the international foot 0.3048 m and the US survey foot 1200/3937 m (NIST and
+# NOAA/NGS, 85 FR 62698, 2020; docs/references.md "Units").
 LINEAR_UNITS: dict[str, tuple[float, str]] = {
     "meter": (1.0, "m"),
     "millimeter": (0.001, "m"),
@@ -63,16 +63,33 @@ _TRUE = {"true", "1"}
 _FALSE = {"false", "0"}
 
 
+#: Survey XML nests about ten deep; far deeper nesting is refused (it only costs time).
+MAX_DEPTH = 100
+
+
+class _TooDeep(Exception):
+    pass
+
+
 class _LineParser(DefusedXMLParser):
     """defusedxml's parser that also records the line on which each element starts."""
 
     def __init__(self) -> None:
         super().__init__(target=TreeBuilder(), forbid_dtd=True)
         self.lines: dict[int, int] = {}
+        self.depth = 0
 
     def _start(self, tag: str, attr_list: list[str]) -> Element:
+        self.depth += 1
+        if self.depth > MAX_DEPTH:
+            raise _TooDeep
         element: Element = super()._start(tag, attr_list)
         self.lines[id(element)] = self.parser.CurrentLineNumber
+        return element
+
+    def _end(self, tag: str) -> Element:
+        self.depth -= 1
+        element: Element = super()._end(tag)
         return element
 
 
@@ -95,6 +112,10 @@ def parse_xml(data: bytes, source: str) -> tuple[Element, dict[int, int]]:
         what = type(exc).__name__.replace("Forbidden", "")
         message = (f"the file declares {_EXPLAIN.get(what, what)}; survey XML needs none and "
                    "it is refused for safety")
+        raise FieldbookError([Issue(line, "", message)], source) from None
+    except _TooDeep:
+        line = parser.parser.CurrentLineNumber or 1
+        message = f"elements nest more than {MAX_DEPTH} deep; survey XML nests about ten"
         raise FieldbookError([Issue(line, "", message)], source) from None
     except ParseError as exc:
         line = exc.position[0] if exc.position else 1
@@ -260,11 +281,11 @@ class _Reader:
                                   "no crs line is written"))
         return None, None
 
-    def title(self) -> str | None:
+    def title(self) -> tuple[str | None, Source | None]:
         for element, _ in _walk(self.root):
             if local(element.tag) in ("Project", "SurveyHeader") and element.get("name"):
-                return element.get("name")
-        return None
+                return element.get("name"), self.where(element)
+        return None, None
 
     # ---- points and instruments
 
@@ -493,7 +514,7 @@ class _Reader:
             return None
         components = [self.length(element, key) for key in ("dX", "dY", "dZ")]
         if None in components:
-            if not any(i.line == self.line(element) for i in self.issues):
+            if not self.issues or self.issues[-1].line != self.line(element):
                 self.error(element, "GPSVector needs dX, dY and dZ")
             return None
         covariance = None
@@ -566,8 +587,9 @@ def read_survey_xml(data: bytes, source: str = "") -> SurveyData:
     if not (points or readings or vectors):
         message = "the file holds no CgPoint, RawObservation or GPSVector to import"
         raise FieldbookError([Issue(lines.get(id(root), 1), "", message)], source)
+    title, title_source = reader.title()
     return SurveyData(
-        title=reader.title(), crs=crs, crs_source=crs_source, units=reader.units,
+        title=title, title_source=title_source, crs=crs, crs_source=crs_source, units=reader.units,
         points=tuple(points), readings=tuple(readings), vectors=tuple(vectors),
         accuracies=tuple(accuracies.values()), warnings=tuple(reader.warnings),
     )
