@@ -27,8 +27,8 @@ EXIT_DATA = 73
 
 EXIT_STATUSES = """exit statuses:
   0   adjusted (whether or not its statistical tests pass)
-  2   the field book (for import: the XML or CSV file) has errors: each on
-      stderr as FILE:LINE: message
+  2   the field book has errors: each on stderr as FILE:LINE: message
+      (import: the errors of the XML or CSV file, the same way)
   3   the network cannot be adjusted: what is wrong, naming the points
   64  the command line cannot be followed (unknown option, unreadable file)
   73  serve: the data folder cannot be created or written"""

@@ -32,8 +32,9 @@ def csv_import(text: str, **units: str):
 
 def test_face_pairs_from_a_csv_are_meaned():
     """FL 45°00′10″ / FR 225°00′20″ → 45°00′15″; zenith 88° / 272°00′04″ → 87°59′58″."""
-    text = import_file((DATA / "quarry_lane_readings.csv").read_bytes(), "quarry.csv",
-                       ImportOptions(DEFAULT)).text
+    text = import_file(
+        (DATA / "quarry_lane_readings.csv").read_bytes(), "quarry.csv", ImportOptions(DEFAULT)
+    ).text
     assert re.search(r'^  QL2 45:00:15\.00 note="csv lines 2,5: row"$', text, re.M)
     assert re.search(r'^  QL3 120:30:03\.00 note="csv lines 3,4: row"$', text, re.M)
     assert re.search(r"^zenith QL1 QL2 87:59:58\.00 hi=1\.4500m ht=1\.6000m ", text, re.M)
@@ -63,18 +64,21 @@ def test_face_inferred_from_the_zenith_and_semicolons():
     assert "  B 10:00:02.00 " in csv_import(text).text
 
 
-@pytest.mark.parametrize(("text", "line", "words"), [
-    ("station,target,bearing\nA,B,1\n", 1, "unknown column 'bearing'"),
-    ("station,hz\nA,1:00:00\n", 1, "station and target"),
-    ("station,target,hz\nA,B,291.1650\n", 2, "not in D:M:S"),
-    ("station,target,hz\nA,B\n", 2, "2 fields; the header has 3"),
-    ("station,target,slope\nA,B,nan\n", 2, "not a finite number"),
-    ("station,target,slope\nA,B,1e300\n", 2, "larger than 100 000 km"),
-    ("station,target,hz,face\nA,B,1:00:00,3\n", 2, "is not 1 or 2"),
-    ("station,target,hz\nA,A,1:00:00\n", 2, "the target is the station"),
-    ('station,target,hz\nA,"B\n', 2, "not a readable CSV"),
-    ("station,target,hz\n", 1, "no rows of readings"),
-])
+@pytest.mark.parametrize(
+    ("text", "line", "words"),
+    [
+        ("station,target,bearing\nA,B,1\n", 1, "unknown column 'bearing'"),
+        ("station,hz\nA,1:00:00\n", 1, "station and target"),
+        ("station,target,hz\nA,B,291.1650\n", 2, "not in D:M:S"),
+        ("station,target,hz\nA,B\n", 2, "2 fields; the header has 3"),
+        ("station,target,slope\nA,B,nan\n", 2, "not a finite number"),
+        ("station,target,slope\nA,B,1e300\n", 2, "larger than 100 000 km"),
+        ("station,target,hz,face\nA,B,1:00:00,3\n", 2, "is not 1 or 2"),
+        ("station,target,hz\nA,A,1:00:00\n", 2, "the target is the station"),
+        ('station,target,hz\nA,"B\n', 2, "not a readable CSV"),
+        ("station,target,hz\n", 1, "no rows of readings"),
+    ],
+)
 def test_bad_rows_name_their_line(text, line, words):
     with pytest.raises(FieldbookError) as caught:
         read_csv_observations(text.encode(), "bad.csv")
@@ -84,14 +88,25 @@ def test_bad_rows_name_their_line(text, line, words):
 
 
 def test_cli_imports_a_csv_and_exits_2_on_errors(tmp_path):
-    proc = subprocess.run([sys.executable, "-m", "server", "import",
-                           str(DATA / "quarry_lane_readings.csv")], cwd=ROOT,
-                          capture_output=True, text=True, timeout=120, check=False)
+    proc = subprocess.run(
+        [sys.executable, "-m", "server", "import", str(DATA / "quarry_lane_readings.csv")],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+    )
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.startswith("fieldbook 1\n")
     bad = tmp_path / "bad.csv"
     bad.write_bytes(b"station,target,hz\nA,B,\xff\n")
-    proc = subprocess.run([sys.executable, "-m", "server", "import", str(bad)], cwd=ROOT,
-                          capture_output=True, text=True, timeout=120, check=False)
+    proc = subprocess.run(
+        [sys.executable, "-m", "server", "import", str(bad)],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+    )
     assert proc.returncode == 2
     assert proc.stderr == f"{bad}:2: this line is not UTF-8 text\n"

@@ -42,13 +42,21 @@ def imported(name: str, tol: Tolerances = DEFAULT):
 
 
 def wrap_xml(units: str, body: str) -> bytes:
-    return (f'<?xml version="1.0"?>\n<LandXML xmlns="http://www.landxml.org/schema/LandXML-1.2">'
-            f"\n<Units>{units}</Units>\n{body}\n</LandXML>\n").encode()
+    return (
+        f'<?xml version="1.0"?>\n<LandXML xmlns="http://www.landxml.org/schema/LandXML-1.2">'
+        f"\n<Units>{units}</Units>\n{body}\n</LandXML>\n"
+    ).encode()
 
 
 def run_cli(*args: str) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "server", *args], cwd=ROOT, capture_output=True,
-                          text=True, timeout=120, check=False)
+    return subprocess.run(
+        [sys.executable, "-m", "server", *args],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+    )
 
 
 # ---- face I / face II: closed forms (textbook relations, recalled)
@@ -111,12 +119,14 @@ def test_two_sets_are_reduced_to_the_reference_and_meaned_with_their_spread():
 
 def test_spread_above_the_set_tolerance_is_a_warning_on_its_line():
     result = imported("heron_hill_rounds.xml")
-    assert result.warnings == ((28, "spread of the direction over 2 sets 8.0″ exceeds the "
-                                     "tolerance 5.0″"),)
+    assert result.warnings == (
+        (28, "spread of the direction over 2 sets 8.0″ exceeds the tolerance 5.0″"),
+    )
     assert "# WARNING (xml line 28): spread of the direction" in result.text
     # a tolerance of 10″ passes it; the reading is never dropped either way
     relaxed = imported("heron_hill_rounds.xml", Tolerances(20 * SEC, 10 * SEC, 0.005))
     assert relaxed.warnings == ()
+
     def rows(text: str) -> int:
         return sum(line.startswith("  NEW7 ") for line in text.splitlines())
 
@@ -128,25 +138,36 @@ def test_face_difference_above_the_face_tolerance_is_a_warning():
     result = imported("heron_hill_rounds.xml", Tolerances(5 * SEC, 10 * SEC, 0.005))
     lines = {line for line, _ in result.warnings}
     assert 26 in lines
-    assert any("face difference of the direction +10.0″ exceeds the tolerance 5.0″" in m
-               for _, m in result.warnings)
+    assert any(
+        "face difference of the direction +10.0″ exceeds the tolerance 5.0″" in m
+        for _, m in result.warnings
+    )
 
 
 def test_distance_spread_tolerance():
     """Set 2 to HH2 booked 1.0 mm longer in both faces: set means 192.0943 and 192.0953."""
-    body = (DATA / "heron_hill_rounds.xml").read_text().replace(
-        'slopeDistance="192.0943"', 'slopeDistance="192.0953"')
+    body = (
+        (DATA / "heron_hill_rounds.xml")
+        .read_text()
+        .replace('slopeDistance="192.0943"', 'slopeDistance="192.0953"')
+    )
     tol = Tolerances(20 * SEC, 10 * SEC, 0.0009)
     result = import_file(body.encode(), "h.xml", ImportOptions(tol))
-    assert result.warnings == ((26, "spread of the slope distance over 2 sets 1.0 mm exceeds "
-                                     "the tolerance 0.9 mm"),)
+    assert result.warnings == (
+        (26, "spread of the slope distance over 2 sets 1.0 mm exceeds the tolerance 0.9 mm"),
+    )
     assert "slope HH1 HH2 192.0948 " in result.text
 
 
 def test_a_reading_marked_unused_is_kept_raw_but_not_reduced(tmp_path):
-    body = (DATA / "marsh_end_faces.xml").read_text().replace(
-        '<RawObservation directFace="true" horizAngle="120.3000">',
-        '<RawObservation directFace="true" horizAngle="120.3000" unused="true">')
+    body = (
+        (DATA / "marsh_end_faces.xml")
+        .read_text()
+        .replace(
+            '<RawObservation directFace="true" horizAngle="120.3000">',
+            '<RawObservation directFace="true" horizAngle="120.3000" unused="true">',
+        )
+    )
     result = import_file(body.encode(), "m.xml", ImportOptions(DEFAULT))
     assert "FENCE4 300:30:06" not in result.text
     assert re.search(r"^  FENCE4 120:30:06\.00 ", result.text, re.M)  # FR − 180° alone
@@ -167,7 +188,9 @@ def test_us_survey_feet_and_grads_are_read_in_the_files_units():
     assert reading.hz == pytest.approx(math.pi / 4, abs=1e-15)
     assert reading.zenith == pytest.approx(math.pi / 2, abs=1e-15)
     assert reading.slope == pytest.approx(1200.0, abs=1e-12)
-    assert reading.hi == pytest.approx(5 * 1200 / 3937) and reading.ht == pytest.approx(6 * 1200 / 3937)
+    assert reading.hi == pytest.approx(5 * 1200 / 3937) and reading.ht == pytest.approx(
+        6 * 1200 / 3937
+    )
     accuracy = data.accuracies[0]
     assert accuracy.direction == pytest.approx(0.0003 * math.pi / 200)
     assert accuracy.distance_constant == pytest.approx(0.01 * 1200 / 3937)
@@ -178,17 +201,23 @@ def test_us_survey_feet_and_grads_are_read_in_the_files_units():
     assert "defaults direction=0.972sec zenith=0.972sec slope=3.04801mm+3ppm" in text
 
 
-@pytest.mark.parametrize(("linear", "factor"), [
-    ("foot", 0.3048),  # international foot, NIST (docs/references.md "Units")
-    ("USSurveyFoot", 1200 / 3937),  # NIST (docs/references.md "Units")
-    ("meter", 1.0), ("millimeter", 0.001), ("kilometer", 1000.0),
-])
+@pytest.mark.parametrize(
+    ("linear", "factor"),
+    [
+        ("foot", 0.3048),  # international foot, NIST (docs/references.md "Units")
+        ("USSurveyFoot", 1200 / 3937),  # NIST (docs/references.md "Units")
+        ("meter", 1.0),
+        ("millimeter", 0.001),
+        ("kilometer", 1000.0),
+    ],
+)
 def test_linear_units(linear, factor):
     units = f'<Imperial linearUnit="{linear}" angularUnit="radians"/>'
     body = '<CgPoints><CgPoint name="A">10 20 30</CgPoint></CgPoints>'
     point = read_survey_xml(wrap_xml(units, body)).points[0]
     assert (point.north, point.east, point.height) == pytest.approx(
-        (10 * factor, 20 * factor, 30 * factor), rel=1e-15)
+        (10 * factor, 20 * factor, 30 * factor), rel=1e-15
+    )
 
 
 def test_radians_and_packed_dms_and_degrees():
@@ -199,20 +228,28 @@ def test_radians_and_packed_dms_and_degrees():
         ("decimal degrees", "271.5", math.radians(271.5)),
         ("decimal dd.mm.ss", "271.3015", math.radians(271 + 30 / 60 + 15 / 3600)),
     ]:
-        body = (f'<Survey><InstrumentSetup id="S" stationName="A">{reading.format(written)}'
-                "</InstrumentSetup></Survey>")
+        body = (
+            f'<Survey><InstrumentSetup id="S" stationName="A">{reading.format(written)}'
+            "</InstrumentSetup></Survey>"
+        )
         data = read_survey_xml(wrap_xml(f'<Metric linearUnit="meter" angularUnit="{unit}"/>', body))
         assert data.readings[0].hz == pytest.approx(expected, abs=1e-12), unit
 
 
 def test_latitude_longitude_control_with_standard_errors():
     units = '<Metric linearUnit="meter" angularUnit="decimal degrees"/>'
-    body = ('<CgPoints><CgPoint name="GEO" pntSurv="control" latitude="-33.5" longitude="151.25"'
-            ' horizontalAccuracy="0.004" verticalAccuracy="0.008">'
-            "</CgPoint></CgPoints>")
+    body = (
+        '<CgPoints><CgPoint name="GEO" pntSurv="control" latitude="-33.5" longitude="151.25"'
+        ' horizontalAccuracy="0.004" verticalAccuracy="0.008">'
+        "</CgPoint></CgPoints>"
+    )
     text = import_file(wrap_xml(units, body), "g.xml", ImportOptions(DEFAULT)).text
-    assert re.search(r"^point GEO lat=-33\.5000000000 lon=151\.2500000000 sd_en=0\.0040m "
-                     r'note="xml line 4: CgPoint"$', text, re.M)
+    assert re.search(
+        r"^point GEO lat=-33\.5000000000 lon=151\.2500000000 sd_en=0\.0040m "
+        r'note="xml line 4: CgPoint"$',
+        text,
+        re.M,
+    )
 
 
 # ---- GNSS vectors
@@ -227,16 +264,20 @@ def test_covariance_to_sd_and_corr_matches_numpy():
     assert sd == pytest.approx(tuple(s), rel=1e-14)
     assert corr == pytest.approx((r[0, 1], r[0, 2], r[1, 2]), rel=1e-14)
     text = imported("heron_hill_rounds.xml").text
-    assert ("baseline HH1 NEW7 -52.4410 138.7720 61.0330 sd=2.0000mm,3.0000mm,4.0000mm "
-            'corr=0.200000,-0.100000,0.175000 note="xml line 47: GPSVector"') in text
+    assert (
+        "baseline HH1 NEW7 -52.4410 138.7720 61.0330 sd=2.0000mm,3.0000mm,4.0000mm "
+        'corr=0.200000,-0.100000,0.175000 note="xml line 47: GPSVector"'
+    ) in text
 
 
 def test_covariance_in_feet_is_converted_by_the_square_of_the_factor():
     units = '<Imperial linearUnit="foot" angularUnit="decimal degrees"/>'
-    body = ('<Survey><GPSSetup id="a" stationName="A"/><GPSSetup id="b" stationName="B"/>'
-            '<GPSVector setupID_A="a" setupID_B="b" dX="1" dY="2" dZ="3"><GPSQCInfoLevel2 '
-            'covarianceXX="1e-4" covarianceXY="0" covarianceXZ="0" covarianceYY="1e-4" '
-            'covarianceYZ="0" covarianceZZ="4e-4"/></GPSVector></Survey>')
+    body = (
+        '<Survey><GPSSetup id="a" stationName="A"/><GPSSetup id="b" stationName="B"/>'
+        '<GPSVector setupID_A="a" setupID_B="b" dX="1" dY="2" dZ="3"><GPSQCInfoLevel2 '
+        'covarianceXX="1e-4" covarianceXY="0" covarianceXZ="0" covarianceYY="1e-4" '
+        'covarianceYZ="0" covarianceZZ="4e-4"/></GPSVector></Survey>'
+    )
     vector = read_survey_xml(wrap_xml(units, body)).vectors[0]
     assert vector.dz == pytest.approx(3 * 0.3048)
     assert math.sqrt(vector.covariance[5]) == pytest.approx(0.02 * 0.3048)
@@ -244,10 +285,12 @@ def test_covariance_in_feet_is_converted_by_the_square_of_the_factor():
 
 def test_covariance_not_positive_definite_is_an_error():
     units = '<Metric linearUnit="meter" angularUnit="decimal degrees"/>'
-    body = ('<Survey><GPSSetup id="a" stationName="A"/><GPSSetup id="b" stationName="B"/>'
-            '<GPSVector setupID_A="a" setupID_B="b" dX="1" dY="2" dZ="3"><GPSQCInfoLevel2 '
-            'covarianceXX="1e-6" covarianceXY="2e-6" covarianceXZ="0" covarianceYY="1e-6" '
-            'covarianceYZ="0" covarianceZZ="1e-6"/></GPSVector></Survey>')
+    body = (
+        '<Survey><GPSSetup id="a" stationName="A"/><GPSSetup id="b" stationName="B"/>'
+        '<GPSVector setupID_A="a" setupID_B="b" dX="1" dY="2" dZ="3"><GPSQCInfoLevel2 '
+        'covarianceXX="1e-6" covarianceXY="2e-6" covarianceXZ="0" covarianceYY="1e-6" '
+        'covarianceYZ="0" covarianceZZ="1e-6"/></GPSVector></Survey>'
+    )
     with pytest.raises(FieldbookError) as caught:
         read_survey_xml(wrap_xml(units, body), "v.xml")
     assert "not positive definite" in str(caught.value)
@@ -257,8 +300,9 @@ def test_covariance_not_positive_definite_is_an_error():
 # ---- sources, defaults never invented
 
 
-@pytest.mark.parametrize("name", ["heron_hill_rounds.xml", "marsh_end_faces.xml",
-                                  "gorse_common_usft.xml"])
+@pytest.mark.parametrize(
+    "name", ["heron_hill_rounds.xml", "marsh_end_faces.xml", "gorse_common_usft.xml"]
+)
 def test_every_written_line_names_its_source_element(name):
     xml_lines = (DATA / name).read_text().splitlines()
     text = imported(name).text
@@ -267,8 +311,9 @@ def test_every_written_line_names_its_source_element(name):
             continue
         if line.startswith("defaults centering=0mm  # the file states no centering"):
             continue  # no element states it: written so that the user sets it
-        match = re.search(r'note="xml lines? ([0-9,]+): ([A-Za-z/]+)"|# xml line ([0-9]+): (\w+)',
-                          line)
+        match = re.search(
+            r'note="xml lines? ([0-9,]+): ([A-Za-z/]+)"|# xml line ([0-9]+): (\w+)', line
+        )
         assert match, line
         numbers = (match.group(1) or match.group(3)).split(",")
         elements = (match.group(2) or match.group(4)).split("/")
@@ -305,16 +350,20 @@ def _parser_refuses_3d_header() -> bool:
     from server.fieldbook.parser import parse_fieldbook
 
     try:
-        parse_fieldbook("crs EPSG:25832\ndefaults baseline=3mm\n"
-                        "baseline A B 1 2 3\npoint A east=0 north=0 height=0 fix\n")
+        parse_fieldbook(
+            "crs EPSG:25832\ndefaults baseline=3mm\n"
+            "baseline A B 1 2 3\npoint A east=0 north=0 height=0 fix\n"
+        )
     except FieldbookError:
         return True
     return False
 
 
-@pytest.mark.skipif(_parser_refuses_3d_header(),
-                    reason="the field book parser does not accept crs and baseline yet "
-                           "(the geodetic 3D model arrives in another branch)")
+@pytest.mark.skipif(
+    _parser_refuses_3d_header(),
+    reason="the field book parser does not accept crs and baseline yet "
+    "(the geodetic 3D model arrives in another branch)",
+)
 def test_the_imported_book_parses_whole():
     from server.fieldbook.parser import parse_fieldbook
 
@@ -327,21 +376,38 @@ def test_the_imported_book_parses_whole():
 
 
 HOSTILE = {
-    "billion_laughs": ('<?xml version="1.0"?>\n<!DOCTYPE lolz [\n <!ENTITY lol "lol">\n'
-                       ' <!ENTITY lol2 "&lol;&lol;&lol;&lol;&lol;&lol;&lol;&lol;&lol;&lol;">\n'
-                       ']>\n<LandXML>&lol2;</LandXML>\n', "refused for safety"),
-    "external_entity": ('<?xml version="1.0"?>\n<!DOCTYPE x [<!ENTITY e SYSTEM '
-                        '"file:///etc/passwd">]>\n<LandXML>&e;</LandXML>\n', "refused for safety"),
-    "external_dtd": ('<?xml version="1.0"?>\n<!DOCTYPE LandXML SYSTEM "http://example.invalid/'
-                     'x.dtd">\n<LandXML/>\n', "refused for safety"),
-    "malformed": ('<?xml version="1.0"?>\n<LandXML>\n<CgPoints>\n</LandXML>\n',
-                  "not well-formed XML"),
-    "wrong_root": ('<?xml version="1.0"?>\n<svg xmlns="http://www.w3.org/2000/svg"/>\n',
-                   "not <LandXML>"),
-    "huge_number": ('<LandXML><CgPoints><CgPoint name="A">1e300 0 0</CgPoint></CgPoints>'
-                    "</LandXML>", "larger than 100 000 km"),
-    "nan": ('<LandXML><CgPoints><CgPoint name="A">nan 0 0</CgPoint></CgPoints></LandXML>',
-            "NaN and infinity"),
+    "billion_laughs": (
+        '<?xml version="1.0"?>\n<!DOCTYPE lolz [\n <!ENTITY lol "lol">\n'
+        ' <!ENTITY lol2 "&lol;&lol;&lol;&lol;&lol;&lol;&lol;&lol;&lol;&lol;">\n'
+        "]>\n<LandXML>&lol2;</LandXML>\n",
+        "refused for safety",
+    ),
+    "external_entity": (
+        '<?xml version="1.0"?>\n<!DOCTYPE x [<!ENTITY e SYSTEM '
+        '"file:///etc/passwd">]>\n<LandXML>&e;</LandXML>\n',
+        "refused for safety",
+    ),
+    "external_dtd": (
+        '<?xml version="1.0"?>\n<!DOCTYPE LandXML SYSTEM "http://example.invalid/'
+        'x.dtd">\n<LandXML/>\n',
+        "refused for safety",
+    ),
+    "malformed": (
+        '<?xml version="1.0"?>\n<LandXML>\n<CgPoints>\n</LandXML>\n',
+        "not well-formed XML",
+    ),
+    "wrong_root": (
+        '<?xml version="1.0"?>\n<svg xmlns="http://www.w3.org/2000/svg"/>\n',
+        "not <LandXML>",
+    ),
+    "huge_number": (
+        '<LandXML><CgPoints><CgPoint name="A">1e300 0 0</CgPoint></CgPoints></LandXML>',
+        "larger than 100 000 km",
+    ),
+    "nan": (
+        '<LandXML><CgPoints><CgPoint name="A">nan 0 0</CgPoint></CgPoints></LandXML>',
+        "NaN and infinity",
+    ),
     "empty_survey": ("<LandXML/>", "no CgPoint, RawObservation or GPSVector"),
     "not_utf8": ('<?xml version="1.0" encoding="utf-8"?>\n<LandXML name="\xff\xfe"/>', ""),
 }
@@ -389,8 +455,9 @@ def test_cli_import_writes_the_book_on_stdout_and_warnings_on_stderr():
     proc = run_cli("import", str(path))
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.startswith("fieldbook 1\n")
-    assert proc.stderr == (f"{path}:28: warning: spread of the direction over 2 sets 8.0″ "
-                           "exceeds the tolerance 5.0″\n")
+    assert proc.stderr == (
+        f"{path}:28: warning: spread of the direction over 2 sets 8.0″ exceeds the tolerance 5.0″\n"
+    )
     quiet = run_cli("import", str(path), "--set-tolerance", "10sec")
     assert quiet.returncode == 0 and quiet.stderr == ""
 

@@ -51,8 +51,9 @@ class _Rows:
             self.issues.append(Issue(line, text, f"{column}: {exc}"))
             return None
         if not math.isfinite(value) or abs(value) > 4.0 * math.pi:
-            self.issues.append(Issue(line, text, f"{column}: '{text[:40]}' is not an angle "
-                                     "of a survey"))
+            self.issues.append(
+                Issue(line, text, f"{column}: '{text[:40]}' is not an angle of a survey")
+            )
             return None
         return value
 
@@ -65,8 +66,11 @@ class _Rows:
             self.issues.append(Issue(line, text, f"{column}: {exc}"))
             return None
         if abs(value) > 1e8:
-            self.issues.append(Issue(line, text, f"{column}: '{text[:40]}' is larger than "
-                                     "100 000 km; check the unit"))
+            self.issues.append(
+                Issue(
+                    line, text, f"{column}: '{text[:40]}' is larger than 100 000 km; check the unit"
+                )
+            )
             return None
         return value
 
@@ -96,10 +100,19 @@ class _Rows:
             if not self.issues or self.issues[-1].line != line:
                 self.issues.append(Issue(line, "", "a row needs hz, zenith or slope"))
             return None
-        return RawReading(setup, _clean(station), _clean(target), Source(line, "row", "csv"),
-                          hz=hz, zenith=zenith, slope=slope, face=face,
-                          set_id=row.get("set", ""), hi=self.length(line, "hi", row.get("hi", "")),
-                          ht=self.length(line, "ht", row.get("ht", "")))
+        return RawReading(
+            setup,
+            _clean(station),
+            _clean(target),
+            Source(line, "row", "csv"),
+            hz=hz,
+            zenith=zenith,
+            slope=slope,
+            face=face,
+            set_id=row.get("set", ""),
+            hi=self.length(line, "hi", row.get("hi", "")),
+            ht=self.length(line, "ht", row.get("ht", "")),
+        )
 
 
 def _clean(name: str) -> str:
@@ -113,8 +126,10 @@ def read_csv_observations(
     """The readings of a CSV file as records in SI units; problems → ``FieldbookError``."""
     assert length_unit in FILE_LENGTH_UNITS and angle_unit in FILE_ANGLE_UNITS
     if len(data) > MAX_BYTES:
-        raise FieldbookError([Issue(1, "", f"the file has {len(data):,} bytes; at most "
-                                            f"{MAX_BYTES:,} are read")], source)
+        raise FieldbookError(
+            [Issue(1, "", f"the file has {len(data):,} bytes; at most {MAX_BYTES:,} are read")],
+            source,
+        )
     try:
         text = data.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
@@ -136,8 +151,9 @@ def read_csv_observations(
             if not any(v.strip() for v in values):
                 continue
             if len(values) != len(header):
-                rows.issues.append(Issue(line, "", f"{len(values)} fields; the header has "
-                                         f"{len(header)}"))
+                rows.issues.append(
+                    Issue(line, "", f"{len(values)} fields; the header has {len(header)}")
+                )
                 continue
             row = {h: v.strip() for h, v in zip(header, values)}
             if (row.get("station", ""), row.get("hi", "")) != key:
@@ -146,8 +162,9 @@ def read_csv_observations(
             if reading is not None:
                 readings.append(reading)
     except csv.Error as exc:
-        raise FieldbookError([Issue(reader.line_num or 1, "", f"not a readable CSV: {exc}")],
-                             source) from None
+        raise FieldbookError(
+            [Issue(reader.line_num or 1, "", f"not a readable CSV: {exc}")], source
+        ) from None
     if rows.issues:
         raise FieldbookError(rows.issues[:50], source, count=len(rows.issues))
     if not readings:
@@ -159,8 +176,10 @@ def read_csv_observations(
 def _check_header(header: list[str]) -> str | None:
     unknown = [h for h in header if h not in COLUMNS]
     if unknown:
-        return (f"unknown column '{unknown[0][:40]}'; the columns are "
-                f"{', '.join(COLUMNS)} (a header row first)")
+        return (
+            f"unknown column '{unknown[0][:40]}'; the columns are "
+            f"{', '.join(COLUMNS)} (a header row first)"
+        )
     if len(set(header)) != len(header):
         return "a column is named twice in the header"
     if "station" not in header or "target" not in header:

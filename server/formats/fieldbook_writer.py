@@ -85,39 +85,56 @@ class _Writer:
             title = self.data.title.replace("\\", "\\\\").replace('"', '\\"')
             where = f"  # {self.data.title_source.note()}" if self.data.title_source else ""
             self.lines.append(f'title "{title[:200]}"{where}')
-        where = f"  # {units.source.note()}" if units.source else "  # the file states no units: those given to the import command"
+        where = (
+            f"  # {units.source.note()}"
+            if units.source
+            else "  # the file states no units: those given to the import command"
+        )
         self.lines.append(f"units length={self.length_unit} angle={self.angle_unit}{where}")
         if self.data.crs and self.data.crs_source:
             self.lines.append(f"crs {self.data.crs}  # {self.data.crs_source.note()}")
         else:
-            self.lines.append("# the file names no coordinate reference system: add a crs line "
-                              "(crs EPSG:CODE, or crs local lat=.. lon=..) for slope, zenith "
-                              "and baseline")
+            self.lines.append(
+                "# the file names no coordinate reference system: add a crs line "
+                "(crs EPSG:CODE, or crs local lat=.. lon=..) for slope, zenith "
+                "and baseline"
+            )
 
     def defaults(self) -> None:
         accuracies = self.data.accuracies
         if len(accuracies) > 1:
             names = ", ".join(a.name for a in accuracies)
-            self.warn(accuracies[1].source.line, f"several instruments ({names}): the first's "
-                      "accuracies are written as defaults; check the others' setups")
-        parts, missing = (_accuracy_parts(self, accuracies[0]) if accuracies else ([], []))
+            self.warn(
+                accuracies[1].source.line,
+                f"several instruments ({names}): the first's "
+                "accuracies are written as defaults; check the others' setups",
+            )
+        parts, missing = _accuracy_parts(self, accuracies[0]) if accuracies else ([], [])
         if not accuracies:
             missing = ["direction", "zenith", "slope"]
         if parts:
-            self.lines.append(f"defaults {' '.join(parts)}  # {accuracies[0].source.note()} "
-                              "(angle precisions apply to face means, ISO 17123-3)")
+            self.lines.append(
+                f"defaults {' '.join(parts)}  # {accuracies[0].source.note()} "
+                "(angle precisions apply to face means, ISO 17123-3)"
+            )
         if self.data.readings and missing:
-            self.lines.append(f"# the file states no accuracy for: {', '.join(missing)}; add "
-                              "them to a defaults line (nothing is assumed)")
+            self.lines.append(
+                f"# the file states no accuracy for: {', '.join(missing)}; add "
+                "them to a defaults line (nothing is assumed)"
+            )
         if self.data.vectors and any(v.covariance is None for v in self.data.vectors):
-            self.lines.append("# some vectors carry no covariance: give them sd= or a "
-                              "'defaults baseline=' line (nothing is assumed)")
+            self.lines.append(
+                "# some vectors carry no covariance: give them sd= or a "
+                "'defaults baseline=' line (nothing is assumed)"
+            )
         if self.data.readings:
-            self.lines.append("defaults centering=0mm  # the file states no centering: "
-                              "set your crew's value")
+            self.lines.append(
+                "defaults centering=0mm  # the file states no centering: set your crew's value"
+            )
         self.lines.append(
             f"# reduction tolerances: face difference {_sec_abs(self.tol.face)}, spread of sets "
-            f"{_sec_abs(self.tol.spread)}, slope distances {self.tol.distance * 1000:.1f} mm")
+            f"{_sec_abs(self.tol.spread)}, slope distances {self.tol.distance * 1000:.1f} mm"
+        )
 
     def points(self) -> None:
         seen: set[str] = set()
@@ -125,8 +142,10 @@ class _Writer:
             self.lines.append("")
         for point in self.data.points:
             if point.name in seen:
-                self.warn(point.source.line, f"point {point.name} is given again: this "
-                          "CgPoint is left out")
+                self.warn(
+                    point.source.line,
+                    f"point {point.name} is given again: this CgPoint is left out",
+                )
                 continue
             seen.add(point.name)
             self.lines.append(self.point(point))
@@ -156,8 +175,11 @@ class _Writer:
             errors.append(f"collimation {_sec(setup.collimation)}")
         if setup.index_error is not None:
             errors.append(f"index error {_sec(setup.index_error)}")
-        self.lines += ["", f"# setup at {setup.station} (setup {setup.setup}){hi}"
-                       + (f"; {', '.join(errors)} (mean of the face pairs)" if errors else "")]
+        self.lines += [
+            "",
+            f"# setup at {setup.station} (setup {setup.setup}){hi}"
+            + (f"; {', '.join(errors)} (mean of the face pairs)" if errors else ""),
+        ]
         self.raw_table(setup)
         for line, message in setup.warnings:
             self.warn(line, message)
@@ -170,15 +192,21 @@ class _Writer:
     def raw_table(self, setup: ReducedSetup) -> None:
         self.lines.append("# raw:  line  target  face  set  direction  zenith  slope  ht")
         for r in setup.raw:
-            cells = [str(r.source.line), r.target, "I" if r.face == 1 else "II", r.set_id or "-",
-                     self.angle(r.hz) if r.hz is not None else "-",
-                     self.angle(r.zenith) if r.zenith is not None else "-",
-                     self.length(r.slope) if r.slope is not None else "-",
-                     self.length(r.ht) if r.ht is not None else "-"]
+            cells = [
+                str(r.source.line),
+                r.target,
+                "I" if r.face == 1 else "II",
+                r.set_id or "-",
+                self.angle(r.hz) if r.hz is not None else "-",
+                self.angle(r.zenith) if r.zenith is not None else "-",
+                self.length(r.slope) if r.slope is not None else "-",
+                self.length(r.ht) if r.ht is not None else "-",
+            ]
             self.lines.append("# raw:  " + "  ".join(cells) + ("  unused" if r.unused else ""))
 
-    def directions(self, station: str, targets: tuple[ReducedTarget, ...],
-                   accuracy: Accuracy | None) -> None:
+    def directions(
+        self, station: str, targets: tuple[ReducedTarget, ...], accuracy: Accuracy | None
+    ) -> None:
         rows = [t for t in targets if t.hz is not None]
         if not rows:
             return
@@ -186,14 +214,20 @@ class _Writer:
         self.lines.append(f'directions {station} note="{_notes(sources)}"')
         for target in rows:
             sd = _sd(accuracy.direction if accuracy else None, target.hz_sets)
-            spread = (f"  # spread {_sec_abs(target.hz_spread)} over {target.hz_sets} sets"
-                      if target.hz_spread is not None else "")
-            self.lines.append(f"  {target.target} {self.angle(target.hz)}{sd} "  # type: ignore[arg-type]
-                              f'note="{_notes(target.sources)}"{spread}')
+            spread = (
+                f"  # spread {_sec_abs(target.hz_spread)} over {target.hz_sets} sets"
+                if target.hz_spread is not None
+                else ""
+            )
+            self.lines.append(
+                f"  {target.target} {self.angle(target.hz)}{sd} "  # type: ignore[arg-type]
+                f'note="{_notes(target.sources)}"{spread}'
+            )
         self.lines.append("end")
 
-    def zenith_slope(self, setup: ReducedSetup, target: ReducedTarget,
-                     accuracy: Accuracy | None) -> None:
+    def zenith_slope(
+        self, setup: ReducedSetup, target: ReducedTarget, accuracy: Accuracy | None
+    ) -> None:
         heights = ""
         if setup.hi is not None:
             heights += f" hi={self.length_option(setup.hi)}"
@@ -202,28 +236,46 @@ class _Writer:
         note = f'note="{_notes(target.sources)}"'
         if target.zenith is not None:
             sd = _sd(accuracy.zenith if accuracy else None, target.zenith_sets)
-            spread = (f"  # spread {_sec_abs(target.zenith_spread)} over {target.zenith_sets} sets"
-                      if target.zenith_spread is not None else "")
-            self.lines.append(f"zenith {setup.station} {target.target} "
-                              f"{self.angle(target.zenith)}{sd}{heights} {note}{spread}")
+            spread = (
+                f"  # spread {_sec_abs(target.zenith_spread)} over {target.zenith_sets} sets"
+                if target.zenith_spread is not None
+                else ""
+            )
+            self.lines.append(
+                f"zenith {setup.station} {target.target} "
+                f"{self.angle(target.zenith)}{sd}{heights} {note}{spread}"
+            )
         if target.slope is not None:
-            spread = (f"  # spread {target.slope_spread * 1000:.1f} mm"
-                      if target.slope_spread is not None else "")
-            self.lines.append(f"slope {setup.station} {target.target} "
-                              f"{self.length(target.slope)}{heights} {note}{spread}")
+            spread = (
+                f"  # spread {target.slope_spread * 1000:.1f} mm"
+                if target.slope_spread is not None
+                else ""
+            )
+            self.lines.append(
+                f"slope {setup.station} {target.target} "
+                f"{self.length(target.slope)}{heights} {note}{spread}"
+            )
 
     def vector(self, vector: GnssVector) -> None:
         values = " ".join(self.length(v) for v in (vector.dx, vector.dy, vector.dz))
         options = ""
         if vector.covariance is not None:
             sd, corr = vector_sd_corr(vector.covariance)
-            options = (" sd=" + ",".join(f"{s * 1000:.4f}mm" for s in sd)
-                       + " corr=" + ",".join(f"{r:.6f}" for r in corr))
+            options = (
+                " sd="
+                + ",".join(f"{s * 1000:.4f}mm" for s in sd)
+                + " corr="
+                + ",".join(f"{r:.6f}" for r in corr)
+            )
         else:
-            self.warn(vector.source.line, "this vector has no covariance: give sd= or a "
-                      "'defaults baseline=' line")
-        self.lines.append(f"baseline {vector.from_point} {vector.to_point} {values}{options} "
-                          f'note="{vector.source.note()}"')
+            self.warn(
+                vector.source.line,
+                "this vector has no covariance: give sd= or a 'defaults baseline=' line",
+            )
+        self.lines.append(
+            f"baseline {vector.from_point} {vector.to_point} {values}{options} "
+            f'note="{vector.source.note()}"'
+        )
 
     def write(self) -> Imported:
         self.header()

@@ -19,13 +19,19 @@ class ImportOptions:
     angle_unit: str = "dms"
 
     @classmethod
-    def from_text(cls, face: str, spread: str, distance: str, length_unit: str = "m",
-                  angle_unit: str = "dms") -> ImportOptions:
+    def from_text(
+        cls, face: str, spread: str, distance: str, length_unit: str = "m", angle_unit: str = "dms"
+    ) -> ImportOptions:
         """Tolerances as the field book writes quantities (``20sec``, ``6mgon``, ``5mm``)."""
-        return cls(Tolerances(_angle(face, "--face-tolerance"),
-                              _angle(spread, "--set-tolerance"),
-                              _length(distance, "--distance-tolerance")),
-                   length_unit, angle_unit)
+        return cls(
+            Tolerances(
+                _angle(face, "--face-tolerance"),
+                _angle(spread, "--set-tolerance"),
+                _length(distance, "--distance-tolerance"),
+            ),
+            length_unit,
+            angle_unit,
+        )
 
 
 def _angle(text: str, option: str) -> float:
@@ -48,8 +54,9 @@ def import_file(data: bytes, source: str, options: ImportOptions) -> Imported:
     if head.startswith(b"<") or source.lower().endswith(".xml"):
         survey = read_survey_xml(data, source)
     elif source.lower().endswith((".csv", ".txt")) or b"," in head or b";" in head:
-        survey = read_csv_observations(data, source, length_unit=options.length_unit,
-                                       angle_unit=options.angle_unit)
+        survey = read_csv_observations(
+            data, source, length_unit=options.length_unit, angle_unit=options.angle_unit
+        )
     else:
         message = "neither survey XML nor a CSV of readings with a header row"
         raise FieldbookError([Issue(1, "", message)], source)

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 from collections import defaultdict
+from collections.abc import Callable
 from dataclasses import dataclass
 
 from server.formats.survey_records import RawReading, Source
@@ -110,25 +111,43 @@ def pair_faces(readings: list[RawReading], tol: Tolerances) -> tuple[FacePair, l
     right = [r for r in readings if r.face == 2]
     warnings: list[str] = []
     hz, collimation = _pair(
-        [r.hz for r in left if r.hz is not None], [r.hz for r in right if r.hz is not None],
-        mean_direction, lambda v: wrap_2pi(v - math.pi), circular=True)
+        [r.hz for r in left if r.hz is not None],
+        [r.hz for r in right if r.hz is not None],
+        mean_direction,
+        lambda v: wrap_2pi(v - math.pi),
+        circular=True,
+    )
     zenith, index = _pair(
         [r.zenith for r in left if r.zenith is not None],
         [r.zenith for r in right if r.zenith is not None],
-        mean_zenith, lambda v: 2.0 * math.pi - v, circular=False)
+        mean_zenith,
+        lambda v: 2.0 * math.pi - v,
+        circular=False,
+    )
     if collimation is not None and abs(2.0 * collimation) > tol.face:
-        warnings.append(f"face difference of the direction {_sec(2.0 * collimation)} exceeds "
-                        f"the tolerance {_sec_abs(tol.face)}")
+        warnings.append(
+            f"face difference of the direction {_sec(2.0 * collimation)} exceeds "
+            f"the tolerance {_sec_abs(tol.face)}"
+        )
     if index is not None and abs(2.0 * index) > tol.face:
-        warnings.append(f"face difference of the zenith {_sec(2.0 * index)} exceeds "
-                        f"the tolerance {_sec_abs(tol.face)}")
+        warnings.append(
+            f"face difference of the zenith {_sec(2.0 * index)} exceeds "
+            f"the tolerance {_sec_abs(tol.face)}"
+        )
     slopes = [r.slope for r in readings if r.slope is not None]
     slope = sum(slopes) / len(slopes) if slopes else None
     sources = tuple(r.source for r in readings)
     return FacePair(readings[0].target, hz, zenith, slope, collimation, index, sources), warnings
 
 
-def _pair(left, right, mean, single, *, circular):  # type: ignore[no-untyped-def]
+def _pair(
+    left: list[float],
+    right: list[float],
+    mean: Callable[[float, float], tuple[float, float]],
+    single: Callable[[float], float],
+    *,
+    circular: bool,
+) -> tuple[float | None, float | None]:
     """Mean of the face means; a face seen alone is reduced to face I and used as it is."""
     if left and right:
         fl = _circular_mean(left, left[0]) if circular else sum(left) / len(left)
@@ -157,44 +176,69 @@ def reduce_setup(readings: list[RawReading], tol: Tolerances) -> ReducedSetup:
     used = [r for r in readings if not r.unused]
     first = readings[0]
     warnings: list[tuple[int, str]] = [
-        (r.source.line, f"reading marked unused in the file: kept in the raw table, not "
-                        f"reduced ({r.target})") for r in readings if r.unused]
+        (
+            r.source.line,
+            f"reading marked unused in the file: kept in the raw table, not reduced ({r.target})",
+        )
+        for r in readings
+        if r.unused
+    ]
     sets: dict[str, dict[str, list[RawReading]]] = defaultdict(lambda: defaultdict(list))
     for reading in used:
         sets[reading.set_id][reading.target].append(reading)
     pairs: list[dict[str, FacePair]] = []
-    for targets in sets.values():
+    for readings_by_target in sets.values():
         by_target: dict[str, FacePair] = {}
-        for target, group in targets.items():
+        for name, group in readings_by_target.items():
             pair, messages = pair_faces(group, tol)
-            by_target[target] = pair
+            by_target[name] = pair
             warnings.extend((group[0].source.line, m) for m in messages)
         pairs.append(by_target)
     reference = next((t for t, p in pairs[0].items() if p.hz is not None), None) if pairs else None
-    joined = [s for s in pairs if reference is not None and s.get(reference)
-              and s[reference].hz is not None]
+    joined = [
+        s
+        for s in pairs
+        if reference is not None and s.get(reference) and s[reference].hz is not None
+    ]
     separate = [s for s in pairs if not any(s is j for j in joined)]
     targets = _mean_sets(pairs, joined, reference, tol, used)
-    extra = tuple(_mean_sets([s], [s], None, tol, used) for s in separate if any(
-        p.hz is not None for p in s.values()))
-    for group in extra:
-        line = group[0].sources[0].line if group else first.source.line
-        warnings.append((line, "this set lacks the reference target of the first set: "
-                               "written as a round of its own"))
-    for target in (*targets, *(t for g in extra for t in g)):
-        warnings.extend((target.sources[0].line, m) for m in target.warnings)
+    extra = tuple(
+        _mean_sets([s], [s], None, tol, used)
+        for s in separate
+        if any(p.hz is not None for p in s.values())
+    )
+    for own_round in extra:
+        line = own_round[0].sources[0].line if own_round else first.source.line
+        warnings.append(
+            (
+                line,
+                "this set lacks the reference target of the first set: "
+                "written as a round of its own",
+            )
+        )
+    for reduced in (*targets, *(t for g in extra for t in g)):
+        warnings.extend((reduced.sources[0].line, m) for m in reduced.warnings)
     collimations = [p.collimation for s in pairs for p in s.values() if p.collimation is not None]
     indexes = [p.index_error for s in pairs for p in s.values() if p.index_error is not None]
     return ReducedSetup(
-        first.setup, first.station, first.hi, targets,
+        first.setup,
+        first.station,
+        first.hi,
+        targets,
         sum(collimations) / len(collimations) if collimations else None,
         sum(indexes) / len(indexes) if indexes else None,
-        tuple(readings), tuple(sorted(warnings)), extra)
+        tuple(readings),
+        tuple(sorted(warnings)),
+        extra,
+    )
 
 
 def _mean_sets(
-    sets: list[dict[str, FacePair]], direction_sets: list[dict[str, FacePair]],
-    reference: str | None, tol: Tolerances, readings: list[RawReading],
+    sets: list[dict[str, FacePair]],
+    direction_sets: list[dict[str, FacePair]],
+    reference: str | None,
+    tol: Tolerances,
+    readings: list[RawReading],
 ) -> tuple[ReducedTarget, ...]:
     """Mean each target over the sets; directions (of ``direction_sets`` only) are reduced
     to the reference first, so a set without the reference adds no direction here."""
@@ -207,32 +251,53 @@ def _mean_sets(
         seen = [s[target] for s in sets if target in s]
         hz_values = [
             wrap_2pi(p.hz - s[reference].hz + base)  # type: ignore[operator]
-            if reference is not None and base is not None else p.hz
-            for s in direction_sets if target in s and (p := s[target]).hz is not None
+            if reference is not None and base is not None
+            else p.hz
+            for s in direction_sets
+            if target in s and (p := s[target]).hz is not None
         ]
         zeniths = [p.zenith for p in seen if p.zenith is not None]
         slopes = [p.slope for p in seen if p.slope is not None]
-        hz = _circular_mean(hz_values, hz_values[0]) if hz_values else None  # type: ignore[arg-type]
-        hz_spread = _spread(hz_values, hz) if hz_values and hz is not None else None  # type: ignore[arg-type]
+        hz = _circular_mean(hz_values, hz_values[0]) if hz_values else None
+        hz_spread = _spread(hz_values, hz) if hz_values and hz is not None else None
         zen_spread, slope_spread = _spread(zeniths), _spread(slopes)
         messages: list[str] = []
-        for what, spread, n in (("direction", hz_spread, len(hz_values)),
-                                ("zenith", zen_spread, len(zeniths))):
+        for what, spread, n in (
+            ("direction", hz_spread, len(hz_values)),
+            ("zenith", zen_spread, len(zeniths)),
+        ):
             if spread is not None and spread > tol.spread:
-                messages.append(f"spread of the {what} over {n} sets {_sec_abs(spread)} "
-                                f"exceeds the tolerance {_sec_abs(tol.spread)}")
+                messages.append(
+                    f"spread of the {what} over {n} sets {_sec_abs(spread)} "
+                    f"exceeds the tolerance {_sec_abs(tol.spread)}"
+                )
         if slope_spread is not None and slope_spread > tol.distance:
-            messages.append(f"spread of the slope distance over {len(seen)} sets "
-                            f"{_mm(slope_spread)} exceeds the tolerance {_mm(tol.distance)}")
+            messages.append(
+                f"spread of the slope distance over {len(seen)} sets "
+                f"{_mm(slope_spread)} exceeds the tolerance {_mm(tol.distance)}"
+            )
         hts = [r.ht for r in readings if r.target == target and r.ht is not None]
         if len(set(hts)) > 1:
-            messages.append(f"the target height changes between readings ({len(set(hts))} "
-                            "values); the first is written")
-        out.append(ReducedTarget(
-            target, hz, sum(zeniths) / len(zeniths) if zeniths else None,
-            sum(slopes) / len(slopes) if slopes else None, hz_spread, zen_spread, slope_spread,
-            len(hz_values), len(zeniths), hts[0] if hts else None,
-            tuple(src for p in seen for src in p.sources), tuple(messages)))
+            messages.append(
+                f"the target height changes between readings ({len(set(hts))} "
+                "values); the first is written"
+            )
+        out.append(
+            ReducedTarget(
+                target,
+                hz,
+                sum(zeniths) / len(zeniths) if zeniths else None,
+                sum(slopes) / len(slopes) if slopes else None,
+                hz_spread,
+                zen_spread,
+                slope_spread,
+                len(hz_values),
+                len(zeniths),
+                hts[0] if hts else None,
+                tuple(src for p in seen for src in p.sources),
+                tuple(messages),
+            )
+        )
     return tuple(out)
 
 

@@ -67,11 +67,11 @@ _FALSE = {"false", "0"}
 MAX_DEPTH = 100
 
 
-class _TooDeep(Exception):
+class _TooDeepError(Exception):
     pass
 
 
-class _LineParser(DefusedXMLParser):
+class _LineParser(DefusedXMLParser):  # type: ignore[misc]  # defusedxml ships no type hints
     """defusedxml's parser that also records the line on which each element starts."""
 
     def __init__(self) -> None:
@@ -82,7 +82,7 @@ class _LineParser(DefusedXMLParser):
     def _start(self, tag: str, attr_list: list[str]) -> Element:
         self.depth += 1
         if self.depth > MAX_DEPTH:
-            raise _TooDeep
+            raise _TooDeepError
         element: Element = super()._start(tag, attr_list)
         self.lines[id(element)] = self.parser.CurrentLineNumber
         return element
@@ -110,22 +110,25 @@ def parse_xml(data: bytes, source: str) -> tuple[Element, dict[int, int]]:
     except DefusedXmlException as exc:
         line = getattr(parser.parser, "CurrentLineNumber", 1) or 1
         what = type(exc).__name__.replace("Forbidden", "")
-        message = (f"the file declares {_EXPLAIN.get(what, what)}; survey XML needs none and "
-                   "it is refused for safety")
+        message = (
+            f"the file declares {_EXPLAIN.get(what, what)}; survey XML needs none and "
+            "it is refused for safety"
+        )
         raise FieldbookError([Issue(line, "", message)], source) from None
-    except _TooDeep:
+    except _TooDeepError:
         line = parser.parser.CurrentLineNumber or 1
         message = f"elements nest more than {MAX_DEPTH} deep; survey XML nests about ten"
         raise FieldbookError([Issue(line, "", message)], source) from None
     except ParseError as exc:
         line = exc.position[0] if exc.position else 1
-        raise FieldbookError([Issue(line, "", f"not well-formed XML: {exc.msg}")], source) \
-            from None
+        raise FieldbookError([Issue(line, "", f"not well-formed XML: {exc.msg}")], source) from None
     except (ValueError, RecursionError, MemoryError) as exc:
         raise FieldbookError([Issue(1, "", f"the XML cannot be read: {exc}")], source) from None
     if local(root.tag) != "LandXML":
-        message = (f"the root element is <{local(root.tag)[:64]}>, not <LandXML>: this is not "
-                   "a survey XML file")
+        message = (
+            f"the root element is <{local(root.tag)[:64]}>, not <LandXML>: this is not "
+            "a survey XML file"
+        )
         raise FieldbookError([Issue(parser.lines.get(id(root), 1), "", message)], source)
     return root, parser.lines
 
@@ -250,8 +253,14 @@ class _Reader:
             names = ", ".join(sorted(ANGULAR_UNITS))
             self.error(element, f"angularUnit='{angular[:40]}' is not an angle unit ({names})")
             angle = (math.pi / 180.0, "deg")
-        self.units = FileUnits(length[0], angle[0], angle[1] == "dms" and "dd.mm" in angular,
-                               length[1], angle[1], self.where(element))
+        self.units = FileUnits(
+            length[0],
+            angle[0],
+            angle[1] == "dms" and "dd.mm" in angular,
+            length[1],
+            angle[1],
+            self.where(element),
+        )
         self.direction_factor = self.other_unit(element, "directionUnit", angle[0])
         self.latlong_factor = self.other_unit(element, "latLongAngularUnit", angle[0])
         self.latlong_packed = "dd.mm" in (element.get("latLongAngularUnit") or angular)
@@ -277,8 +286,12 @@ class _Reader:
                 match = _EPSG_RE.match(element.get(name) or "")
                 if match:
                     return f"EPSG:{int(match.group(1))}", self.where(element)
-            self.warnings.append((self.line(element), "the CoordinateSystem names no EPSG code; "
-                                  "no crs line is written"))
+            self.warnings.append(
+                (
+                    self.line(element),
+                    "the CoordinateSystem names no EPSG code; no crs line is written",
+                )
+            )
         return None, None
 
     def title(self) -> tuple[str | None, Source | None]:
@@ -302,8 +315,11 @@ class _Reader:
         name = _name(element.get("name"))
         parts = (element.text or "").split()
         if len(parts) not in (0, 2, 3):
-            self.error(element, f"CgPoint {name}: expected 'northing easting [elevation]', "
-                       f"found {len(parts)} numbers")
+            self.error(
+                element,
+                f"CgPoint {name}: expected 'northing easting [elevation]', "
+                f"found {len(parts)} numbers",
+            )
             return None
         values = [self.length(element, "coordinate", part) for part in parts]
         if any(value is None for value in values):
@@ -315,8 +331,13 @@ class _Reader:
             height = self.length(element, "elevation")
         control = (element.get("pntSurv") or "").strip().lower() == "control"
         return ControlPoint(
-            name, self.where(element), east=east, north=north, height=height,
-            lat=lat if lon is not None else None, lon=lon if lat is not None else None,
+            name,
+            self.where(element),
+            east=east,
+            north=north,
+            height=height,
+            lat=lat if lon is not None else None,
+            lon=lon if lat is not None else None,
             control=control,
             sd_en=self.positive_length(element, "horizontalAccuracy"),
             sd_h=self.positive_length(element, "verticalAccuracy"),
@@ -340,7 +361,8 @@ class _Reader:
                 ppm = None
             name = element.get("id") or element.get("model") or "instrument"
             found[name] = Accuracy(
-                name, self.where(element),
+                name,
+                self.where(element),
                 direction=self.positive_angle(element, "horizAnglePrecision"),
                 zenith=self.positive_angle(element, "zenithAnglePrecision"),
                 distance_constant=self.positive_length(element, "edmAccuracyConstant"),
@@ -368,8 +390,10 @@ class _Reader:
                 if local(child.tag) == "InstrumentPoint" and child.get("pntRef"):
                     station = child.get("pntRef")
             if not station:
-                self.error(element, "InstrumentSetup names no station (stationName or "
-                           "InstrumentPoint pntRef)")
+                self.error(
+                    element,
+                    "InstrumentSetup names no station (stationName or InstrumentPoint pntRef)",
+                )
                 continue
             setup_id = element.get("id") or f"line {self.line(element)}"
             found[setup_id] = (_name(station), self.length(element, "instrumentHeight"), element)
@@ -419,8 +443,10 @@ class _Reader:
     ) -> RawReading | None:
         setup_id = self.setup_of(element, parents)
         if setup_id is None or setup_id not in setups:
-            self.error(element, f"RawObservation refers to no InstrumentSetup "
-                       f"(setupID='{(setup_id or '')[:40]}')")
+            self.error(
+                element,
+                f"RawObservation refers to no InstrumentSetup (setupID='{(setup_id or '')[:40]}')",
+            )
             return None
         station, hi, _ = setups[setup_id]
         target = _target_name(element)
@@ -439,16 +465,29 @@ class _Reader:
         if hz is None and zenith is None and slope is None:
             kept = [n for n in ("horizDistance", "vertDistance", "azimuth") if element.get(n)]
             what = ", ".join(kept) or "no value"
-            self.warnings.append((self.line(element), f"RawObservation with {what} only: "
-                                  "not a raw reading, left out"))
+            self.warnings.append(
+                (
+                    self.line(element),
+                    f"RawObservation with {what} only: not a raw reading, left out",
+                )
+            )
             return None
         ht = self.length(element, "targetHeight")
         if ht is None:
             ht = heights.get(element.get("targetSetupID") or "")
         set_id = element.get("setID") or _group_set(parents)
         return RawReading(
-            setup_id, station, target, self.where(element), hz=hz, zenith=zenith, slope=slope,
-            face=self.face(element, zenith), set_id=set_id, hi=hi, ht=ht,
+            setup_id,
+            station,
+            target,
+            self.where(element),
+            hz=hz,
+            zenith=zenith,
+            slope=slope,
+            face=self.face(element, zenith),
+            set_id=set_id,
+            hi=hi,
+            ht=ht,
             unused=(element.get("unused") or "").strip().lower() in _TRUE,
         )
 
@@ -472,17 +511,29 @@ class _Reader:
     ) -> RawReading | None:
         """A Backsight's circle reading, unless a RawObservation already reads that target."""
         setup_id = self.setup_of(element, parents)
-        target = next((_name(c.get("pntRef") or c.get("name"))
-                       for c in element if local(c.tag) == "BacksightPoint"
-                       and (c.get("pntRef") or c.get("name"))), None)
+        target = next(
+            (
+                _name(c.get("pntRef") or c.get("name"))
+                for c in element
+                if local(c.tag) == "BacksightPoint" and (c.get("pntRef") or c.get("name"))
+            ),
+            None,
+        )
         if setup_id is None or setup_id not in setups or target is None:
             return None
         if (setup_id, target) in observed:
             return None
         station, hi, _ = setups[setup_id]
-        return RawReading(setup_id, station, target, self.where(element),
-                          hz=self.angle(element, "circle"), hi=hi,
-                          ht=self.length(element, "targetHeight"), set_id=_group_set(parents))
+        return RawReading(
+            setup_id,
+            station,
+            target,
+            self.where(element),
+            hz=self.angle(element, "circle"),
+            hi=hi,
+            ht=self.length(element, "targetHeight"),
+            set_id=_group_set(parents),
+        )
 
     # ---- GNSS
 
@@ -495,9 +546,14 @@ class _Reader:
                     stations[element.get("id") or ""] = _name(name)
                 height = self.length(element, "antennaHeight")
                 if height:
-                    self.warnings.append((self.line(element), f"antennaHeight {height:.4f} m "
-                                          "is taken as applied by the processor: the vectors "
-                                          "are read mark to mark"))
+                    self.warnings.append(
+                        (
+                            self.line(element),
+                            f"antennaHeight {height:.4f} m "
+                            "is taken as applied by the processor: the vectors "
+                            "are read mark to mark",
+                        )
+                    )
         vectors: list[GnssVector] = []
         for element, _ in _walk(self.root):
             if local(element.tag) == "GPSVector":
@@ -507,13 +563,16 @@ class _Reader:
         return vectors
 
     def vector(self, element: Element, stations: dict[str, str]) -> GnssVector | None:
-        ends = [stations.get(element.get(key) or "") for key in ("setupID_A", "setupID_B")]
-        if None in ends:
-            self.error(element, "GPSVector: setupID_A and setupID_B must name GPSSetup ids "
-                       "with a stationName")
+        start = stations.get(element.get("setupID_A") or "")
+        end = stations.get(element.get("setupID_B") or "")
+        if start is None or end is None:
+            self.error(
+                element,
+                "GPSVector: setupID_A and setupID_B must name GPSSetup ids with a stationName",
+            )
             return None
-        components = [self.length(element, key) for key in ("dX", "dY", "dZ")]
-        if None in components:
+        dx, dy, dz = (self.length(element, key) for key in ("dX", "dY", "dZ"))
+        if dx is None or dy is None or dz is None:
             if not self.issues or self.issues[-1].line != self.line(element):
                 self.error(element, "GPSVector needs dX, dY and dZ")
             return None
@@ -521,13 +580,19 @@ class _Reader:
         for child in element:
             if local(child.tag) == "GPSQCInfoLevel2":
                 covariance = self.covariance(child)
-        dx, dy, dz = components
-        return GnssVector(ends[0], ends[1], dx, dy, dz, self.where(element),  # type: ignore[arg-type]
-                          covariance)
+        return GnssVector(start, end, dx, dy, dz, self.where(element), covariance)
 
-    def covariance(self, element: Element) -> tuple[float, float, float, float, float, float] | None:
-        names = ("covarianceXX", "covarianceXY", "covarianceXZ",
-                 "covarianceYY", "covarianceYZ", "covarianceZZ")
+    def covariance(
+        self, element: Element
+    ) -> tuple[float, float, float, float, float, float] | None:
+        names = (
+            "covarianceXX",
+            "covarianceXY",
+            "covarianceXZ",
+            "covarianceYY",
+            "covarianceYZ",
+            "covarianceZZ",
+        )
         raw = [self.number(element, name) for name in names]
         if all(value is None for value in raw):
             return None
@@ -582,14 +647,22 @@ def read_survey_xml(data: bytes, source: str = "") -> SurveyData:
     readings = reader.readings()
     vectors = reader.vectors()
     if reader.issues:
-        raise FieldbookError(sorted(reader.issues, key=lambda i: i.line)[:50], source,
-                             count=len(reader.issues))
+        raise FieldbookError(
+            sorted(reader.issues, key=lambda i: i.line)[:50], source, count=len(reader.issues)
+        )
     if not (points or readings or vectors):
         message = "the file holds no CgPoint, RawObservation or GPSVector to import"
         raise FieldbookError([Issue(lines.get(id(root), 1), "", message)], source)
     title, title_source = reader.title()
     return SurveyData(
-        title=title, title_source=title_source, crs=crs, crs_source=crs_source, units=reader.units,
-        points=tuple(points), readings=tuple(readings), vectors=tuple(vectors),
-        accuracies=tuple(accuracies.values()), warnings=tuple(reader.warnings),
+        title=title,
+        title_source=title_source,
+        crs=crs,
+        crs_source=crs_source,
+        units=reader.units,
+        points=tuple(points),
+        readings=tuple(readings),
+        vectors=tuple(vectors),
+        accuracies=tuple(accuracies.values()),
+        warnings=tuple(reader.warnings),
     )
