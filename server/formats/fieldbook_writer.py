@@ -50,6 +50,7 @@ class _Writer:
         self.angle_unit = data.units.fieldbook_angle
         self.lines: list[str] = []
         self.warnings: list[tuple[int, str]] = list(data.warnings)
+        self.current: Accuracy | None = None
 
     # ---- formatting
 
@@ -101,27 +102,8 @@ class _Writer:
             )
 
     def defaults(self) -> None:
-        accuracies = self.data.accuracies
-        if len(accuracies) > 1:
-            names = ", ".join(a.name for a in accuracies)
-            self.warn(
-                accuracies[1].source.line,
-                f"several instruments ({names}): the first's "
-                "accuracies are written as defaults; check the others' setups",
-            )
-        parts, missing = _accuracy_parts(self, accuracies[0]) if accuracies else ([], [])
-        if not accuracies:
-            missing = ["direction", "zenith", "slope"]
-        if parts:
-            self.lines.append(
-                f"defaults {' '.join(parts)}  # {accuracies[0].source.note()} "
-                "(angle precisions apply to face means, ISO 17123-3)"
-            )
-        if self.data.readings and missing:
-            self.lines.append(
-                f"# the file states no accuracy for: {', '.join(missing)}; add "
-                "them to a defaults line (nothing is assumed)"
-            )
+        first = self.data.readings[0].instrument if self.data.readings else ""
+        self.instrument_defaults(self.accuracy_of(first))
         if self.data.vectors and any(v.covariance is None for v in self.data.vectors):
             self.lines.append(
                 "# some vectors carry no covariance: give them sd= or a "
@@ -135,6 +117,39 @@ class _Writer:
             f"# reduction tolerances: face difference {_sec_abs(self.tol.face)}, spread of sets "
             f"{_sec_abs(self.tol.spread)}, slope distances {self.tol.distance * 1000:.1f} mm"
         )
+
+    def accuracy_of(self, instrument: str) -> Accuracy | None:
+        """The setup's instrument, by its instrumentDetailsID; else the only (or first) one."""
+        accuracies = self.data.accuracies
+        named = next((a for a in accuracies if a.name == instrument), None)
+        return named or (accuracies[0] if accuracies else None)
+
+    def instrument_defaults(self, accuracy: Accuracy | None) -> None:
+        """A defaults line with what this instrument states, and a comment naming the rest."""
+        previous, self.current = self.current, accuracy
+        parts, missing = (
+            _accuracy_parts(accuracy) if accuracy else ([], ["direction", "zenith", "slope"])
+        )
+        if previous is not None and accuracy is not None:
+            # a defaults line only sets the kinds it names: the others stay the previous
+            # instrument's, which this instrument never stated
+            inherited = [k for k in missing if k not in _accuracy_parts(previous)[1]]
+            if inherited:
+                self.warn(
+                    accuracy.source.line,
+                    f"{accuracy.name} states no accuracy for {', '.join(inherited)}: the "
+                    f"defaults of {previous.name} stay in force for its setups; write its own",
+                )
+        if parts and accuracy is not None:
+            self.lines.append(
+                f"defaults {' '.join(parts)}  # {accuracy.source.note()} {accuracy.name} "
+                "(angle precisions apply to face means, ISO 17123-3)"
+            )
+        if self.data.readings and missing:
+            self.lines.append(
+                f"# the file states no accuracy for: {', '.join(missing)}; add "
+                "them to a defaults line (nothing is assumed)"
+            )
 
     def points(self) -> None:
         seen: set[str] = set()
@@ -210,7 +225,7 @@ class _Writer:
         rows = [t for t in targets if t.hz is not None]
         if not rows:
             return
-        sources = tuple(s for t in rows for s in t.sources)
+        sources = tuple(s for t in rows for s in t.hz_sources)
         self.lines.append(f'directions {station} note="{_notes(sources)}"')
         for target in rows:
             sd = _sd(accuracy.direction if accuracy else None, target.hz_sets)
@@ -221,7 +236,7 @@ class _Writer:
             )
             self.lines.append(
                 f"  {target.target} {self.angle(target.hz)}{sd} "  # type: ignore[arg-type]
-                f'note="{_notes(target.sources)}"{spread}'
+                f'note="{_notes(target.hz_sources)}"{spread}'
             )
         self.lines.append("end")
 
@@ -233,7 +248,15 @@ class _Writer:
             heights += f" hi={self.length_option(setup.hi)}"
         if target.ht is not None:
             heights += f" ht={self.length_option(target.ht)}"
-        note = f'note="{_notes(target.sources)}"'
+
+        def note(kind: str) -> str:
+            sources = [
+                r.source
+                for r in setup.raw
+                if r.target == target.target and getattr(r, kind) is not None and not r.unused
+            ]
+            return f'note="{_notes(tuple(sources))}"'
+
         if target.zenith is not None:
             sd = _sd(accuracy.zenith if accuracy else None, target.zenith_sets)
             spread = (
@@ -243,7 +266,7 @@ class _Writer:
             )
             self.lines.append(
                 f"zenith {setup.station} {target.target} "
-                f"{self.angle(target.zenith)}{sd}{heights} {note}{spread}"
+                f"{self.angle(target.zenith)}{sd}{heights} {note('zenith')}{spread}"
             )
         if target.slope is not None:
             spread = (
@@ -253,7 +276,7 @@ class _Writer:
             )
             self.lines.append(
                 f"slope {setup.station} {target.target} "
-                f"{self.length(target.slope)}{heights} {note}{spread}"
+                f"{self.length(target.slope)}{heights} {note('slope')}{spread}"
             )
 
     def vector(self, vector: GnssVector) -> None:
@@ -281,8 +304,11 @@ class _Writer:
         self.header()
         self.defaults()
         self.points()
-        accuracy = self.data.accuracies[0] if self.data.accuracies else None
         for setup in reduce_readings(self.data.readings, self.tol):
+            accuracy = self.accuracy_of(setup.raw[0].instrument)
+            if accuracy is not self.current:
+                self.lines.append("")
+                self.instrument_defaults(accuracy)
             self.setup(setup, accuracy)
         if self.data.vectors:
             self.lines.append("")
@@ -291,7 +317,7 @@ class _Writer:
         return Imported("\n".join(self.lines) + "\n", tuple(sorted(set(self.warnings))))
 
 
-def _accuracy_parts(writer: _Writer, accuracy: Accuracy) -> tuple[list[str], list[str]]:
+def _accuracy_parts(accuracy: Accuracy) -> tuple[list[str], list[str]]:
     parts, missing = [], []
     for kind, value in (("direction", accuracy.direction), ("zenith", accuracy.zenith)):
         if value is None:
@@ -305,7 +331,6 @@ def _accuracy_parts(writer: _Writer, accuracy: Accuracy) -> tuple[list[str], lis
         parts.append(f"slope={ppm:g}ppm")
     else:
         parts.append(f"slope={constant * 1000:g}mm" + (f"+{ppm:g}ppm" if ppm else ""))
-    del writer
     return parts, missing
 
 

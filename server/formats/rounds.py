@@ -64,6 +64,8 @@ class ReducedTarget:
     ht: float | None
     sources: tuple[Source, ...]
     warnings: tuple[str, ...]
+    #: the readings behind the direction alone (a set without the reference adds none)
+    hz_sources: tuple[Source, ...] = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -277,6 +279,7 @@ def _mean_sets(
                 f"{_mm(slope_spread)} exceeds the tolerance {_mm(tol.distance)}"
             )
         hts = [r.ht for r in readings if r.target == target and r.ht is not None]
+        with_hz = _hz_sources(readings, target)
         if len(set(hts)) > 1:
             messages.append(
                 f"the target height changes between readings ({len(set(hts))} "
@@ -296,9 +299,20 @@ def _mean_sets(
                 hts[0] if hts else None,
                 tuple(src for p in seen for src in p.sources),
                 tuple(messages),
+                tuple(
+                    src
+                    for s in direction_sets
+                    if target in s and s[target].hz is not None
+                    for src in s[target].sources
+                    if src in with_hz
+                ),
             )
         )
     return tuple(out)
+
+
+def _hz_sources(readings: list[RawReading], target: str) -> set[Source]:
+    return {r.source for r in readings if r.target == target and r.hz is not None}
 
 
 def reduce_readings(readings: tuple[RawReading, ...], tol: Tolerances) -> list[ReducedSetup]:

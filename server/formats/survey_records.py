@@ -58,6 +58,8 @@ class RawReading:
     hi: float | None = None
     ht: float | None = None
     unused: bool = False
+    #: the setup's instrumentDetailsID, "" when not named
+    instrument: str = ""
 
 
 @dataclass(frozen=True, slots=True)

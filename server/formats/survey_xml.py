@@ -379,9 +379,9 @@ class _Reader:
 
     # ---- total station
 
-    def setups(self) -> dict[str, tuple[str, float | None, Element]]:
-        """InstrumentSetup id → (station name, instrument height, element)."""
-        found: dict[str, tuple[str, float | None, Element]] = {}
+    def setups(self) -> dict[str, tuple[str, float | None, str]]:
+        """InstrumentSetup id → (station name, instrument height, instrumentDetailsID)."""
+        found: dict[str, tuple[str, float | None, str]] = {}
         for element, _ in _walk(self.root):
             if local(element.tag) != "InstrumentSetup":
                 continue
@@ -396,7 +396,8 @@ class _Reader:
                 )
                 continue
             setup_id = element.get("id") or f"line {self.line(element)}"
-            found[setup_id] = (_name(station), self.length(element, "instrumentHeight"), element)
+            instrument = element.get("instrumentDetailsID") or ""
+            found[setup_id] = (_name(station), self.length(element, "instrumentHeight"), instrument)
         return found
 
     def target_heights(self) -> dict[str, float | None]:
@@ -438,7 +439,7 @@ class _Reader:
         self,
         element: Element,
         parents: tuple[Element, ...],
-        setups: dict[str, tuple[str, float | None, Element]],
+        setups: dict[str, tuple[str, float | None, str]],
         heights: dict[str, float | None],
     ) -> RawReading | None:
         setup_id = self.setup_of(element, parents)
@@ -448,7 +449,7 @@ class _Reader:
                 f"RawObservation refers to no InstrumentSetup (setupID='{(setup_id or '')[:40]}')",
             )
             return None
-        station, hi, _ = setups[setup_id]
+        station, hi, instrument = setups[setup_id]
         target = _target_name(element)
         if target is None:
             self.error(element, "RawObservation has no TargetPoint (pntRef or name)")
@@ -489,6 +490,7 @@ class _Reader:
             hi=hi,
             ht=ht,
             unused=(element.get("unused") or "").strip().lower() in _TRUE,
+            instrument=instrument,
         )
 
     def face(self, element: Element, zenith: float | None) -> int:
@@ -506,7 +508,7 @@ class _Reader:
         self,
         element: Element,
         parents: tuple[Element, ...],
-        setups: dict[str, tuple[str, float | None, Element]],
+        setups: dict[str, tuple[str, float | None, str]],
         observed: set[tuple[str, str]],
     ) -> RawReading | None:
         """A Backsight's circle reading, unless a RawObservation already reads that target."""
@@ -523,7 +525,7 @@ class _Reader:
             return None
         if (setup_id, target) in observed:
             return None
-        station, hi, _ = setups[setup_id]
+        station, hi, instrument = setups[setup_id]
         return RawReading(
             setup_id,
             station,
@@ -533,6 +535,7 @@ class _Reader:
             hi=hi,
             ht=self.length(element, "targetHeight"),
             set_id=_group_set(parents),
+            instrument=instrument,
         )
 
     # ---- GNSS
