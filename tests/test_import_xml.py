@@ -487,8 +487,11 @@ def test_each_setup_gets_its_instruments_defaults():
     # 0.000138888888889° = 0.5″, 0.000833333333333° = 3″ (file's own angle unit)
     assert "zenith=0.5sec slope=1mm+1ppm" in lines[fine]
     # ROUGH states no zenith or slope accuracy: FINE's would stay in force, and that is said
-    assert (10, "ROUGH states no accuracy for zenith, slope: the defaults of FINE stay in "
-                "force for its setups; write its own") in result.warnings
+    assert (
+        10,
+        "ROUGH states no accuracy for zenith, slope: the defaults of FINE stay in "
+        "force for its setups; write its own",
+    ) in result.warnings
 
 
 def test_backsight_circle_is_a_reading_and_a_set_without_the_reference_is_its_own_round():
@@ -496,7 +499,11 @@ def test_backsight_circle_is_a_reading_and_a_set_without_the_reference_is_its_ow
     text = result.text
     assert '  AF2 10.0000000 note="xml line 13: Backsight"' in text
     rounds = re.findall(r"^directions AF2 .*$", text, re.M)
-    assert rounds == ['directions AF2 note="xml lines 19,20: RawObservation"',
-                      'directions AF2 note="xml lines 23,24: RawObservation"']
-    assert (23, "this set lacks the reference target of the first set: written as a round "
-                "of its own") in result.warnings
+    assert rounds == [
+        'directions AF2 note="xml lines 19,20: RawObservation"',
+        'directions AF2 note="xml lines 23,24: RawObservation"',
+    ]
+    assert (
+        23,
+        "this set lacks the reference target of the first set: written as a round of its own",
+    ) in result.warnings
