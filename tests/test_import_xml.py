@@ -408,7 +408,14 @@ HOSTILE = {
         '<LandXML><CgPoints><CgPoint name="A">nan 0 0</CgPoint></CgPoints></LandXML>',
         "NaN and infinity",
     ),
-    "empty_survey": ("<LandXML/>", "no CgPoint, RawObservation or GPSVector"),
+    "empty_survey": (
+        '<LandXML><Units><Metric linearUnit="meter"/></Units></LandXML>',
+        "no CgPoint, RawObservation or GPSVector",
+    ),
+    "no_units": (
+        '<LandXML>\n<CgPoints><CgPoint name="A">1 2 3</CgPoint></CgPoints></LandXML>',
+        "no Units element",
+    ),
     "not_utf8": ('<?xml version="1.0" encoding="utf-8"?>\n<LandXML name="\xff\xfe"/>', ""),
 }
 

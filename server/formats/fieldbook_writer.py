@@ -17,6 +17,7 @@ from server.formats.survey_records import (
     Accuracy,
     ControlPoint,
     GnssVector,
+    RawReading,
     Source,
     SurveyData,
 )
@@ -51,6 +52,10 @@ class _Writer:
         self.lines: list[str] = []
         self.warnings: list[tuple[int, str]] = list(data.warnings)
         self.current: Accuracy | None = None
+        #: "xml" or "csv": how the warnings name their line
+        self.kind = next((r.source.kind for r in data.readings), "xml")
+        self._raw_key: ReducedSetup | None = None
+        self._raw: dict[str, list[RawReading]] = {}
 
     # ---- formatting
 
@@ -70,11 +75,7 @@ class _Writer:
 
     def warn(self, line: int, message: str) -> None:
         self.warnings.append((line, message))
-        self.lines.append(f"# WARNING ({self.data_kind()} line {line}): {message}")
-
-    def data_kind(self) -> str:
-        sources = [p.source for p in self.data.points] + [r.source for r in self.data.readings]
-        return sources[0].kind if sources else "xml"
+        self.lines.append(f"# WARNING ({self.kind} line {line}): {message}")
 
     # ---- sections
 
@@ -204,6 +205,14 @@ class _Writer:
         for target in setup.targets:
             self.zenith_slope(setup, target, accuracy)
 
+    def raw_by_target(self, setup: ReducedSetup) -> dict[str, list[RawReading]]:
+        """The setup's readings by target, computed once per setup."""
+        if self._raw_key is not setup:
+            self._raw_key, self._raw = setup, {}
+            for reading in setup.raw:
+                self._raw.setdefault(reading.target, []).append(reading)
+        return self._raw
+
     def raw_table(self, setup: ReducedSetup) -> None:
         self.lines.append("# raw:  line  target  face  set  direction  zenith  slope  ht")
         for r in setup.raw:
@@ -252,8 +261,8 @@ class _Writer:
         def note(kind: str) -> str:
             sources = [
                 r.source
-                for r in setup.raw
-                if r.target == target.target and getattr(r, kind) is not None and not r.unused
+                for r in self.raw_by_target(setup).get(target.target, ())
+                if getattr(r, kind) is not None and not r.unused
             ]
             return f'note="{_notes(tuple(sources))}"'
 

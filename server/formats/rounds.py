@@ -244,9 +244,10 @@ def _mean_sets(
 ) -> tuple[ReducedTarget, ...]:
     """Mean each target over the sets; directions (of ``direction_sets`` only) are reduced
     to the reference first, so a set without the reference adds no direction here."""
-    order: list[str] = []
-    for pairs in sets:
-        order.extend(t for t in pairs if t not in order)
+    order = list(dict.fromkeys(t for pairs in sets for t in pairs))
+    by_target: dict[str, list[RawReading]] = defaultdict(list)
+    for reading in readings:
+        by_target[reading.target].append(reading)
     base = direction_sets[0][reference].hz if reference is not None and direction_sets else None
     out: list[ReducedTarget] = []
     for target in order:
@@ -278,8 +279,8 @@ def _mean_sets(
                 f"spread of the slope distance over {len(seen)} sets "
                 f"{_mm(slope_spread)} exceeds the tolerance {_mm(tol.distance)}"
             )
-        hts = [r.ht for r in readings if r.target == target and r.ht is not None]
-        with_hz = _hz_sources(readings, target)
+        hts = [r.ht for r in by_target[target] if r.ht is not None]
+        with_hz = {r.source for r in by_target[target] if r.hz is not None}
         if len(set(hts)) > 1:
             messages.append(
                 f"the target height changes between readings ({len(set(hts))} "
@@ -309,10 +310,6 @@ def _mean_sets(
             )
         )
     return tuple(out)
-
-
-def _hz_sources(readings: list[RawReading], target: str) -> set[Source]:
-    return {r.source for r in readings if r.target == target and r.hz is not None}
 
 
 def reduce_readings(readings: tuple[RawReading, ...], tol: Tolerances) -> list[ReducedSetup]:

@@ -235,10 +235,16 @@ class _Reader:
     # ---- units and header
 
     def read_units(self) -> None:
+        """The first Metric/Imperial element; without one no value can be read."""
         for element, _ in _walk(self.root):
             if local(element.tag) in ("Metric", "Imperial"):
                 self.apply_units(element)
                 return
+        self.error(
+            self.root,
+            "the file has no Units element (Metric or Imperial): its lengths and angles "
+            "cannot be read without their units",
+        )
 
     def apply_units(self, element: Element) -> None:
         linear = (element.get("linearUnit") or "meter").strip()
