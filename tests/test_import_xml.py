@@ -514,3 +514,21 @@ def test_backsight_circle_is_a_reading_and_a_set_without_the_reference_is_its_ow
         23,
         "this set lacks the reference target of the first set: written as a round of its own",
     ) in result.warnings
+
+
+def test_control_with_a_horizontal_standard_error_keeps_its_height_fixed():
+    from server.fieldbook.parser import parse_fieldbook
+
+    units = '<Metric linearUnit="meter" angularUnit="decimal degrees"/>'
+    body = (
+        '<CgPoints><CgPoint name="W1" pntSurv="control" horizontalAccuracy="0.003">'
+        "100 200 30</CgPoint></CgPoints>"
+    )
+    text = import_file(wrap_xml(units, body), "w.xml", ImportOptions(DEFAULT)).text
+    line = next(l for l in text.splitlines() if l.startswith("point W1"))
+    assert line == (
+        "point W1 east=200.0000 north=100.0000 height=30.0000 sd_en=0.0030m fix=h "
+        'note="xml line 4: CgPoint"'
+    )
+    point = parse_fieldbook(line + "\n").points[0]
+    assert point.note == "xml line 4: CgPoint"

@@ -174,15 +174,31 @@ class _Writer:
             words += [f"lat={self.angle(point.lat, 3)}", f"lon={self.angle(point.lon, 3)}"]
         if point.height is not None:
             words.append(f"height={self.length(point.height)}")
-        if point.control and len(words) > 1:
-            weights = []
-            if point.sd_en is not None and len(words) > 2:
-                weights.append(f"sd_en={self.length_option(point.sd_en)}")
-            if point.sd_h is not None and point.height is not None:
-                weights.append(f"sd_h={self.length_option(point.sd_h)}")
-            words += weights or ["fix"]
+        if point.control:
+            words += self.control_options(point)
         words.append(f'note="{point.source.note()}"')
         return " ".join(words)
+
+    def control_options(self, point: ControlPoint) -> list[str]:
+        """Control: a component with a stated standard error is weighted, the others fixed."""
+        has_en = (point.east is not None and point.north is not None) or (
+            point.lat is not None and point.lon is not None
+        )
+        has_h = point.height is not None
+        en_weighted = has_en and point.sd_en is not None
+        h_weighted = has_h and point.sd_h is not None
+        options = []
+        if en_weighted:
+            options.append(f"sd_en={self.length_option(point.sd_en)}")  # type: ignore[arg-type]
+        if h_weighted:
+            options.append(f"sd_h={self.length_option(point.sd_h)}")  # type: ignore[arg-type]
+        fixed = ("en" if has_en and not en_weighted else "") + (
+            "h" if has_h and not h_weighted else ""
+        )
+        given = ("en" if has_en else "") + ("h" if has_h else "")
+        if fixed:
+            options.append("fix" if fixed == given else f"fix={fixed}")
+        return options
 
     def setup(self, setup: ReducedSetup, accuracy: Accuracy | None) -> None:
         hi = f", hi {self.length(setup.hi)} {self.length_unit}" if setup.hi is not None else ""
