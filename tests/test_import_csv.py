@@ -110,3 +110,9 @@ def test_cli_imports_a_csv_and_exits_2_on_errors(tmp_path):
     )
     assert proc.returncode == 2
     assert proc.stderr == f"{bad}:2: this line is not UTF-8 text\n"
+
+
+def test_a_name_with_a_space_is_changed_with_a_warning():
+    result = csv_import("station,target,hz\nA,TREE 4,1:00:00\n")
+    assert "  TREE_4 1:00:00.00 " in result.text
+    assert result.warnings[0][0] == 2 and "'TREE 4' is written TREE_4" in result.warnings[0][1]

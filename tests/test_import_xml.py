@@ -532,3 +532,17 @@ def test_control_with_a_horizontal_standard_error_keeps_its_height_fixed():
     )
     point = parse_fieldbook(line + "\n").points[0]
     assert point.note == "xml line 4: CgPoint"
+
+
+def test_a_name_the_field_book_cannot_hold_is_changed_with_a_warning():
+    units = '<Metric linearUnit="meter" angularUnit="decimal degrees"/>'
+    body = '<CgPoints>\n<CgPoint name="BM 12">1 2 3</CgPoint></CgPoints>'
+    result = import_file(wrap_xml(units, body), "n.xml", ImportOptions(DEFAULT))
+    assert "point BM_12 east=2.0000 north=1.0000 height=3.0000 " in result.text
+    assert result.warnings == (
+        (
+            5,
+            "point name 'BM 12' is written BM_12 (a field book name has no white space, =, # "
+            "or quotes, at most 64 characters)",
+        ),
+    )

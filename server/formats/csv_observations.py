@@ -41,6 +41,21 @@ class _Rows:
         self.length_factor = LENGTH_FACTORS[length_unit]
         self.angle_unit = angle_unit
         self.issues: list[Issue] = []
+        self.warnings: list[tuple[int, str]] = []
+        self.renamed: set[str] = set()
+
+    def name(self, line: int, text: str) -> str:
+        cleaned = _clean(text)
+        if cleaned != text and text not in self.renamed:
+            self.renamed.add(text)
+            self.warnings.append(
+                (
+                    line,
+                    f"point name '{text[:64]}' is written {cleaned} (a field book name has "
+                    "no white space, =, # or quotes, at most 64 characters)",
+                )
+            )
+        return cleaned
 
     def angle(self, line: int, column: str, text: str) -> float | None:
         if not text:
@@ -102,8 +117,8 @@ class _Rows:
             return None
         return RawReading(
             setup,
-            _clean(station),
-            _clean(target),
+            self.name(line, station),
+            self.name(line, target),
             Source(line, "row", "csv"),
             hz=hz,
             zenith=zenith,
@@ -170,7 +185,7 @@ def read_csv_observations(
     if not readings:
         raise FieldbookError([Issue(1, "", "the file holds no rows of readings")], source)
     units = FileUnits(LENGTH_FACTORS[length_unit], 1.0, False, length_unit, angle_unit)
-    return SurveyData(units=units, readings=tuple(readings))
+    return SurveyData(units=units, readings=tuple(readings), warnings=tuple(rows.warnings))
 
 
 def _check_header(header: list[str]) -> str | None:

@@ -159,6 +159,7 @@ class _Reader:
         self.latlong_factor = math.pi / 180.0
         self.latlong_packed = False
         self.direction_factor = math.pi / 180.0
+        self.renamed: set[str | None] = set()
 
     def line(self, element: Element) -> int:
         return self.lines.get(id(element), 1)
@@ -306,6 +307,26 @@ class _Reader:
                 return element.get("name"), self.where(element)
         return None, None
 
+    # ---- names
+
+    def name(self, text: str | None, element: Element) -> str:
+        """A field book point name; a name that had to change is a warning (once)."""
+        cleaned = _name(text)
+        if cleaned != text and text not in self.renamed:
+            self.renamed.add(text)
+            self.warnings.append(
+                (
+                    self.line(element),
+                    f"point name '{(text or '')[:64]}' is written {cleaned} "
+                    "(a field book name has no white space, =, # or quotes, at most 64 characters)",
+                )
+            )
+        return cleaned
+
+    def target_name(self, element: Element) -> str | None:
+        found = _target_ref(element)
+        return None if found is None else self.name(*found)
+
     # ---- points and instruments
 
     def points(self) -> list[ControlPoint]:
@@ -318,7 +339,7 @@ class _Reader:
         return points
 
     def point(self, element: Element) -> ControlPoint | None:
-        name = _name(element.get("name"))
+        name = self.name(element.get("name"), element)
         parts = (element.text or "").split()
         if len(parts) not in (0, 2, 3):
             self.error(
@@ -403,7 +424,11 @@ class _Reader:
                 continue
             setup_id = element.get("id") or f"line {self.line(element)}"
             instrument = element.get("instrumentDetailsID") or ""
-            found[setup_id] = (_name(station), self.length(element, "instrumentHeight"), instrument)
+            found[setup_id] = (
+                self.name(station, element),
+                self.length(element, "instrumentHeight"),
+                instrument,
+            )
         return found
 
     def target_heights(self) -> dict[str, float | None]:
@@ -456,7 +481,7 @@ class _Reader:
             )
             return None
         station, hi, instrument = setups[setup_id]
-        target = _target_name(element)
+        target = self.target_name(element)
         if target is None:
             self.error(element, "RawObservation has no TargetPoint (pntRef or name)")
             return None
@@ -521,7 +546,7 @@ class _Reader:
         setup_id = self.setup_of(element, parents)
         target = next(
             (
-                _name(c.get("pntRef") or c.get("name"))
+                self.name(c.get("pntRef") or c.get("name"), c)
                 for c in element
                 if local(c.tag) == "BacksightPoint" and (c.get("pntRef") or c.get("name"))
             ),
@@ -550,9 +575,9 @@ class _Reader:
         stations: dict[str, str] = {}
         for element, _ in _walk(self.root):
             if local(element.tag) == "GPSSetup" and element.get("id"):
-                name = element.get("stationName") or _target_name(element)
+                name = element.get("stationName") or self.target_name(element)
                 if name:
-                    stations[element.get("id") or ""] = _name(name)
+                    stations[element.get("id") or ""] = self.name(name, element)
                 height = self.length(element, "antennaHeight")
                 if height:
                     self.warnings.append(
@@ -629,12 +654,12 @@ def _name(text: str | None) -> str:
     return cleaned if cleaned and cleaned.lower() != "end" else f"_{cleaned or 'unnamed'}"
 
 
-def _target_name(element: Element) -> str | None:
+def _target_ref(element: Element) -> tuple[str, Element] | None:
     for child in element:
         if local(child.tag) == "TargetPoint":
             name = child.get("pntRef") or child.get("name")
             if name:
-                return _name(name)
+                return name, child
     return None
 
 
