@@ -504,7 +504,9 @@ def test_each_setup_gets_its_instruments_defaults():
 def test_backsight_circle_is_a_reading_and_a_set_without_the_reference_is_its_own_round():
     result = imported("ash_ford_two_instruments.xml")
     text = result.text
-    assert '  AF2 10.0000000 note="xml line 13: Backsight"' in text
+    # one face only: σ·√2 with σ = 0.5″ stated for a face mean (ISO 17123-3) → 0.707″
+    assert '  AF2 10.0000000 sd=0.707sec note="xml line 13: Backsight"' in text
+    assert "  AF4 250.0000000 sd=4.243sec " in text  # 3″·√2
     rounds = re.findall(r"^directions AF2 .*$", text, re.M)
     assert rounds == [
         'directions AF2 note="xml lines 19,20: RawObservation"',

@@ -253,7 +253,7 @@ class _Writer:
         sources = tuple(s for t in rows for s in t.hz_sources)
         self.lines.append(f'directions {station} note="{_notes(sources)}"')
         for target in rows:
-            sd = _sd(accuracy.direction if accuracy else None, target.hz_sets)
+            sd = _sd(accuracy.direction if accuracy else None, target.hz_factor)
             spread = (
                 f"  # spread {_sec_abs(target.hz_spread)} over {target.hz_sets} sets"
                 if target.hz_spread is not None
@@ -283,7 +283,7 @@ class _Writer:
             return f'note="{_notes(tuple(sources))}"'
 
         if target.zenith is not None:
-            sd = _sd(accuracy.zenith if accuracy else None, target.zenith_sets)
+            sd = _sd(accuracy.zenith if accuracy else None, target.zenith_factor)
             spread = (
                 f"  # spread {_sec_abs(target.zenith_spread)} over {target.zenith_sets} sets"
                 if target.zenith_spread is not None
@@ -371,11 +371,12 @@ def _sec_abs(radians: float) -> str:
     return f"{abs(math.degrees(radians)) * 3600.0:.1f}″"
 
 
-def _sd(sigma: float | None, sets: int) -> str:
-    """A mean of n face means has σ/√n; one face mean keeps the default."""
-    if sigma is None or sets < 2:
+def _sd(sigma: float | None, factor: float) -> str:
+    """σ·√factor: a mean of n face means has σ/√n, one face alone σ·√2 (ISO 17123-3 states σ
+    for a direction observed in both faces); a single face mean keeps the default σ."""
+    if sigma is None or abs(factor - 1.0) < 1e-12:
         return ""
-    return f" sd={math.degrees(sigma / math.sqrt(sets)) * 3600.0:.3f}sec"
+    return f" sd={math.degrees(sigma * math.sqrt(factor)) * 3600.0:.3f}sec"
 
 
 def _notes(sources: tuple[Source, ...]) -> str:

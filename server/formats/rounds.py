@@ -46,6 +46,10 @@ class FacePair:
     collimation: float | None  # radians, ½((FR − 180°) − FL)
     index_error: float | None  # radians, ½(FL + FR − 360°)
     sources: tuple[Source, ...]
+    #: variance of hz (zenith) in units of σ², σ the precision of a face mean (ISO 17123-3):
+    #: 1 for a face pair, 2/k for k pointings in one face only
+    hz_factor: float = 1.0
+    zenith_factor: float = 1.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -61,6 +65,9 @@ class ReducedTarget:
     slope_spread: float | None
     hz_sets: int  # how many set means the direction is the mean of
     zenith_sets: int
+    #: variance of the mean in units of σ² (σ: a face mean): Σ factors / n²
+    hz_factor: float
+    zenith_factor: float
     ht: float | None
     sources: tuple[Source, ...]
     warnings: tuple[str, ...]
@@ -139,7 +146,23 @@ def pair_faces(readings: list[RawReading], tol: Tolerances) -> tuple[FacePair, l
     slopes = [r.slope for r in readings if r.slope is not None]
     slope = sum(slopes) / len(slopes) if slopes else None
     sources = tuple(r.source for r in readings)
-    return FacePair(readings[0].target, hz, zenith, slope, collimation, index, sources), warnings
+    pair = FacePair(
+        readings[0].target,
+        hz,
+        zenith,
+        slope,
+        collimation,
+        index,
+        sources,
+        _factor(sum(r.hz is not None for r in left), sum(r.hz is not None for r in right)),
+        _factor(sum(r.zenith is not None for r in left), sum(r.zenith is not None for r in right)),
+    )
+    return pair, warnings
+
+
+def _factor(left: int, right: int) -> float:
+    """σ² multiplier of one set's value: a face mean has σ², k readings in one face 2σ²/k."""
+    return 1.0 if left and right else 2.0 / max(left + right, 1)
 
 
 def _pair(
@@ -260,6 +283,10 @@ def _mean_sets(
             if target in s and (p := s[target]).hz is not None
         ]
         zeniths = [p.zenith for p in seen if p.zenith is not None]
+        hz_factors = [
+            s[target].hz_factor for s in direction_sets if target in s and s[target].hz is not None
+        ]
+        zen_factors = [p.zenith_factor for p in seen if p.zenith is not None]
         slopes = [p.slope for p in seen if p.slope is not None]
         hz = _circular_mean(hz_values, hz_values[0]) if hz_values else None
         hz_spread = _spread(hz_values, hz) if hz_values and hz is not None else None
@@ -297,6 +324,8 @@ def _mean_sets(
                 slope_spread,
                 len(hz_values),
                 len(zeniths),
+                sum(hz_factors) / len(hz_factors) ** 2 if hz_factors else 1.0,
+                sum(zen_factors) / len(zen_factors) ** 2 if zen_factors else 1.0,
                 hts[0] if hts else None,
                 tuple(src for p in seen for src in p.sources),
                 tuple(messages),
