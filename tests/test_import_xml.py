@@ -548,3 +548,25 @@ def test_a_name_the_field_book_cannot_hold_is_changed_with_a_warning():
             "or quotes, at most 64 characters)",
         ),
     )
+
+
+def test_face_inferred_from_the_zenith_and_the_zenith_face_difference_warned():
+    """No directFace: zenith 272°00′30″ is face II. FL 88°, FR 272°00′30″: 2i = +30″ > 20″,
+    mean (88° + 360° − 272°00′30″)/2 = 87°59′45″."""
+    units = '<Metric linearUnit="meter" angularUnit="decimal dd.mm.ss"/>'
+    reading = '<RawObservation horizAngle="{}" zenithAngle="{}"><TargetPoint pntRef="B"/></RawObservation>'
+    body = (
+        '<Survey><InstrumentSetup id="S" stationName="A">\n'
+        + reading.format("10.0000", "88.0000")
+        + "\n"
+        + reading.format("190.0004", "272.0030")
+        + "\n</InstrumentSetup></Survey>"
+    )
+    result = import_file(wrap_xml(units, body), "z.xml", ImportOptions(DEFAULT))
+    data = read_survey_xml(wrap_xml(units, body))
+    assert [r.face for r in data.readings] == [1, 2]
+    assert "  B 10:00:02.00 " in result.text
+    assert "zenith A B 87:59:45.00 " in result.text
+    assert (5, "face difference of the zenith +30.0″ exceeds the tolerance 20.0″") in (
+        result.warnings
+    )
