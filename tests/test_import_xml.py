@@ -554,7 +554,10 @@ def test_face_inferred_from_the_zenith_and_the_zenith_face_difference_warned():
     """No directFace: zenith 272°00′30″ is face II. FL 88°, FR 272°00′30″: 2i = +30″ > 20″,
     mean (88° + 360° − 272°00′30″)/2 = 87°59′45″."""
     units = '<Metric linearUnit="meter" angularUnit="decimal dd.mm.ss"/>'
-    reading = '<RawObservation horizAngle="{}" zenithAngle="{}"><TargetPoint pntRef="B"/></RawObservation>'
+    reading = (
+        '<RawObservation horizAngle="{}" zenithAngle="{}"><TargetPoint pntRef="B"/>'
+        "</RawObservation>"
+    )
     body = (
         '<Survey><InstrumentSetup id="S" stationName="A">\n'
         + reading.format("10.0000", "88.0000")
