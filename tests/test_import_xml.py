@@ -122,7 +122,12 @@ def test_spread_above_the_set_tolerance_is_a_warning_on_its_line():
     assert result.warnings == (
         (28, "spread of the direction over 2 sets 8.0″ exceeds the tolerance 5.0″"),
     )
-    assert "# WARNING (xml line 28): spread of the direction" in result.text
+    new7 = next(line for line in result.text.splitlines() if line.startswith("  NEW7 "))
+    assert new7.endswith(
+        "  # WARNING (xml line 28): spread of the direction over 2 sets 8.0″ exceeds the "
+        "tolerance 5.0″"
+    )
+    assert result.text.count("WARNING") == 1  # on its line, not repeated above
     # a tolerance of 10″ passes it; the reading is never dropped either way
     relaxed = imported("heron_hill_rounds.xml", Tolerances(20 * SEC, 10 * SEC, 0.005))
     assert relaxed.warnings == ()
@@ -142,6 +147,8 @@ def test_face_difference_above_the_face_tolerance_is_a_warning():
         "face difference of the direction +10.0″ exceeds the tolerance 5.0″" in m
         for _, m in result.warnings
     )
+    hh2 = next(line for line in result.text.splitlines() if line.startswith("  HH2 "))
+    assert "# WARNING (xml line 26): face difference of the direction +10.0″" in hh2
 
 
 def test_distance_spread_tolerance():

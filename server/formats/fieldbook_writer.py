@@ -52,6 +52,7 @@ class _Writer:
         self.lines: list[str] = []
         self.warnings: list[tuple[int, str]] = list(data.warnings)
         self.current: Accuracy | None = None
+        self.attached: dict[tuple[int, str], list[tuple[int, str]]] = {}
         #: "xml" or "csv": how the warnings name their line
         self.kind = next((r.source.kind for r in data.readings), "xml")
         self._raw_key: ReducedSetup | None = None
@@ -213,13 +214,25 @@ class _Writer:
             + (f"; {', '.join(errors)} (mean of the face pairs)" if errors else ""),
         ]
         self.raw_table(setup)
+        self.attached = _attach_warnings(setup)
+        placed = {w for found in self.attached.values() for w in found}
         for line, message in setup.warnings:
-            self.warn(line, message)
+            if (line, message) in placed:
+                self.warnings.append((line, message))  # written on its own line below
+            else:
+                self.warn(line, message)
         self.directions(setup.station, setup.targets, accuracy)
         for group in setup.separate:
             self.directions(setup.station, group, accuracy)
         for target in setup.targets:
             self.zenith_slope(setup, target, accuracy)
+
+    def inline(self, target: ReducedTarget, kind: str) -> str:
+        """The warnings about this value, as a comment at the end of its line."""
+        found = self.attached.get((id(target), kind), [])
+        return "".join(
+            f"  # WARNING ({self.kind} line {line}): {message}" for line, message in found
+        )
 
     def raw_by_target(self, setup: ReducedSetup) -> dict[str, list[RawReading]]:
         """The setup's readings by target, computed once per setup."""
@@ -261,7 +274,7 @@ class _Writer:
             )
             self.lines.append(
                 f"  {target.target} {self.angle(target.hz)}{sd} "  # type: ignore[arg-type]
-                f'note="{_notes(target.hz_sources)}"{spread}'
+                f'note="{_notes(target.hz_sources)}"{spread}' + self.inline(target, "direction")
             )
         self.lines.append("end")
 
@@ -292,6 +305,7 @@ class _Writer:
             self.lines.append(
                 f"zenith {setup.station} {target.target} "
                 f"{self.angle(target.zenith)}{sd}{heights} {note('zenith')}{spread}"
+                + self.inline(target, "zenith")
             )
         if target.slope is not None:
             spread = (
@@ -302,6 +316,7 @@ class _Writer:
             self.lines.append(
                 f"slope {setup.station} {target.target} "
                 f"{self.length(target.slope)}{heights} {note('slope')}{spread}"
+                + self.inline(target, "slope")
             )
 
     def vector(self, vector: GnssVector) -> None:
@@ -340,6 +355,35 @@ class _Writer:
         for vector in self.data.vectors:
             self.vector(vector)
         return Imported("\n".join(self.lines) + "\n", tuple(sorted(set(self.warnings))))
+
+
+_KIND_WORDS = {
+    "direction": ("of the direction",),
+    "zenith": ("of the zenith", "target height"),
+    "slope": ("slope distance", "target height"),
+}
+
+
+def _attach_warnings(setup: ReducedSetup) -> dict[tuple[int, str], list[tuple[int, str]]]:
+    """Which of the setup's warnings belong on which written line: a warning names the first
+    reading of its face pair or target, and says which quantity it is about."""
+    attached: dict[tuple[int, str], list[tuple[int, str]]] = {}
+    targets = (*setup.targets, *(t for group in setup.separate for t in group))
+    for target in targets:
+        lines = {
+            "direction": {s.line for s in target.hz_sources} if target.hz is not None else set(),
+            "zenith": {s.line for s in target.sources} if target.zenith is not None else set(),
+            "slope": {s.line for s in target.sources} if target.slope is not None else set(),
+        }
+        for kind, words in _KIND_WORDS.items():
+            found = [
+                (line, message)
+                for line, message in setup.warnings
+                if line in lines[kind] and any(word in message for word in words)
+            ]
+            if found:
+                attached[(id(target), kind)] = found
+    return attached
 
 
 def _accuracy_parts(accuracy: Accuracy) -> tuple[list[str], list[str]]:
