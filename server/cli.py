@@ -1,4 +1,5 @@
-"""Command line: ``stationfit adjust FILE`` and ``stationfit serve`` (also ``python -m server``).
+"""Command line: ``stationfit adjust FILE``, ``stationfit import FILE`` and ``stationfit serve``
+(also ``python -m server``).
 
 Exit statuses follow the result contract: 0 adjusted (tests pass or not),
 2 field book errors, 3 network cannot be adjusted; 64 for a command line that
@@ -27,6 +28,7 @@ EXIT_DATA = 73
 EXIT_STATUSES = """exit statuses:
   0   adjusted (whether or not its statistical tests pass)
   2   the field book has errors: each on stderr as FILE:LINE: message
+      (import: the errors of the XML or CSV file, the same way)
   3   the network cannot be adjusted: what is wrong, naming the points
   64  the command line cannot be followed (unknown option, unreadable file)
   73  serve: the data folder cannot be created or written"""
@@ -76,10 +78,73 @@ def main(argv: list[str] | None = None) -> int:
     serve.add_argument("--keep-deleted-days", type=_whole, default=None, metavar="DAYS",
                        help="days a deleted project can be restored before it is erased "
                             "(default: $STATIONFIT_KEEP_DELETED_DAYS, else 30; 0: erase at once)")
+    _import_command(commands)
     args = parser.parse_args(argv)
     if args.command == "serve":
         return _serve(args)
+    if args.command == "import":
+        return _import(args)
     return _adjust(args)
+
+
+IMPORT_HELP = """Turn a data collector's file into field book text on stdout.
+
+FILE.xml is the open survey-XML standard (1.2 or 2.0): control points, instrument setups,
+raw readings, GNSS vectors with covariances, the instrument's accuracies, the CRS.
+FILE.csv is a table of readings with a header row (columns station, target, hz, zenith,
+slope, face, set, hi, ht; see docs/import.md), in --length-unit and --angle-unit.
+
+Face I / face II pairs are meaned, collimation and index error reported per setup, sets
+of rounds meaned with their spreads. A face difference or spread above its tolerance is a
+warning (stderr, and a comment above its line); nothing is dropped. Every written line names
+its source line in FILE. Nothing the file does not state is invented: centering is written
+as 0mm and missing accuracies are left for you to add."""
+
+
+def _import_command(commands: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    command = commands.add_parser(
+        "import", help="survey XML or CSV of readings → field book text", epilog=EXIT_STATUSES,
+        formatter_class=argparse.RawDescriptionHelpFormatter, description=IMPORT_HELP)
+    command.add_argument("file", type=Path, metavar="FILE.xml|FILE.csv")
+    command.add_argument("--face-tolerance", default="20sec", metavar="ANGLE",
+                         help="largest face I / face II difference, 2c or 2i (default 20sec)")
+    command.add_argument("--set-tolerance", default="5sec", metavar="ANGLE",
+                         help="largest spread of a direction or zenith over the sets "
+                              "(default 5sec)")
+    command.add_argument("--distance-tolerance", default="5mm", metavar="LENGTH",
+                         help="largest spread of a slope distance over the sets (default 5mm)")
+    command.add_argument("--length-unit", choices=("m", "ft", "usft"), default="m",
+                         help="CSV only: unit of lengths (default m)")
+    command.add_argument("--angle-unit", choices=("dms", "deg", "gon"), default="dms",
+                         help="CSV only: unit of angles (default dms, D:M:S)")
+
+
+def _import(args: argparse.Namespace) -> int:
+    from server.formats.importing import ImportOptions, import_file
+    from server.units import UnitError
+
+    path: Path = args.file
+    try:
+        options = ImportOptions.from_text(
+            args.face_tolerance, args.set_tolerance, args.distance_tolerance,
+            args.length_unit, args.angle_unit)
+    except UnitError as exc:
+        print(f"stationfit import: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        print(f"{path}: cannot read the file: {exc.strerror or exc}", file=sys.stderr)
+        return EXIT_USAGE
+    try:
+        imported = import_file(data, str(path), options)
+    except FieldbookError as exc:
+        print(str(exc), file=sys.stderr)
+        return EXIT_FIELDBOOK
+    for line, message in imported.warnings:
+        print(f"{path}:{line}: warning: {message}", file=sys.stderr)
+    sys.stdout.write(imported.text)
+    return EXIT_OK
 
 
 def _limit_options(command: argparse.ArgumentParser, observations: str, unknowns: str) -> None:

@@ -37,10 +37,17 @@ def _point_feature(p: PointResult) -> dict[str, object]:
         "ellipse_azimuth_deg": p.ellipse.azimuth if p.ellipse else None,
         "ellipse_confidence": p.ellipse.confidence if p.ellipse else None,
     }
-    return {"type": "Feature", "id": f"point:{p.name}", "geometry": geometry, "properties": properties}
+    return {
+        "type": "Feature",
+        "id": f"point:{p.name}",
+        "geometry": geometry,
+        "properties": properties,
+    }
 
 
-def _line_feature(o: ObservationResult, positions: dict[str, tuple[float, float]]) -> dict[str, object]:
+def _line_feature(
+    o: ObservationResult, positions: dict[str, tuple[float, float]]
+) -> dict[str, object]:
     ends = [o.from_point, o.to] if o.kind != "angle" else [o.from_point, o.at or "", o.to]
     geometry: dict[str, object] | None = None
     if all(name in positions for name in ends):
@@ -65,13 +72,20 @@ def _line_feature(o: ObservationResult, positions: dict[str, tuple[float, float]
         "flagged": o.flagged,
         "left_out": o.ignored,
     }
-    return {"type": "Feature", "id": f"line:{o.line}", "geometry": geometry, "properties": properties}
+    return {
+        "type": "Feature",
+        "id": f"line:{o.line}",
+        "geometry": geometry,
+        "properties": properties,
+    }
 
 
 def geojson(result: AdjustmentResult) -> dict[str, object]:
     """A FeatureCollection: one Point per point, one LineString per observation."""
     positions = {
-        p.name: (p.east, p.north) for p in result.points if p.east is not None and p.north is not None
+        p.name: (p.east, p.north)
+        for p in result.points
+        if p.east is not None and p.north is not None
     }
     features = [_point_feature(p) for p in result.points]
     features += [_line_feature(o, positions) for o in result.observations]
