@@ -1,8 +1,8 @@
 """The adjustment engine: Gauss–Newton iterations on the observation equations.
 
 Each iteration linearises every used observation about the current
-coordinates (``observations.py`` is the reference, ``assembly.py`` the
-whole-array form used here), adds weighted control as direct observations of
+coordinates (``kinds.py`` defines each kind, ``assembly.py`` lays out the
+rows), adds weighted control as direct observations of
 coordinate components, and solves the normal equations
 
     N·dx = Aᵀ·P·l,   N = Aᵀ·P·A,   l = observed − computed

@@ -13,9 +13,9 @@ import numpy as np
 
 from server.engine.gauss_newton import Solution
 from server.fieldbook.model import ANGULAR_KINDS, Observation
+from server.model.kinds import CoincidentPointsError, evaluate_one, sigma_one
 from server.model.misclosures import Misclosure
 from server.model.network import Network
-from server.model.observations import EQUATIONS
 from server.results.types import (
     UNCONTROLLED,
     AdjustmentResult,
@@ -307,24 +307,19 @@ def _difference(obs: Observation, adjusted: float) -> float:
 
 def _evaluate(obs: Observation, solution: Solution) -> float | None:
     """The value of an ignored observation computed from the adjusted coordinates."""
-    equation = EQUATIONS.get(obs.kind)
-    if equation is None:
-        return None
     if obs.round_line is not None and obs.round_line not in solution.orientations:
         return None
     try:
-        value, _ = equation(obs, solution.coordinates, solution.orientations)
-    except (KeyError, ZeroDivisionError):
+        value = float(evaluate_one(obs, solution.coordinates, solution.orientations).value[0])
+    except (KeyError, CoincidentPointsError):  # a kind without a model, or no position for it
         return None
     return None if math.isnan(value) else value
 
 
 def _sigma_of_ignored(obs: Observation, solution: Solution) -> float:
-    from server.model.observations import a_priori_sigma
-
     try:
-        sigma = a_priori_sigma(obs, solution.coordinates)
-    except (KeyError, ZeroDivisionError):
+        sigma = sigma_one(obs, solution.coordinates)
+    except KeyError:
         sigma = math.nan
     return sigma if math.isfinite(sigma) else obs.sigma.constant
 
