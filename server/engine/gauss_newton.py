@@ -113,6 +113,9 @@ class Solution:
     method: str = "dense"  # "dense", "cholmod" or "superlu"
     #: hat(B) = A·Qxx·Aᵀ·B for a block B of rows × k (``separability.py``); None if not kept
     hat: Callable[[np.ndarray], np.ndarray] | None = None
+    #: geodetic model: Earth-centred X, Y, Z of each point (``coordinates`` then hold grid
+    #: east, north in metres and orthometric heights); None in the plane model
+    positions: dict[str, tuple[float, float, float]] | None = None
 
     @property
     def converged(self) -> bool:
@@ -184,7 +187,13 @@ def adjust(
         raise ValueError("`method` must be 'auto', 'dense' or 'sparse'")
     report = progress or _quiet
     report("start values", 0)
-    state = _State(network, approximate_coordinates(network))
+    state: _State
+    if network.geodetic is not None:
+        from server.engine.geodetic_state import GeodeticState  # it builds on _State
+
+        state = GeodeticState(network)
+    else:
+        state = _State(network, approximate_coordinates(network))
     n_unknowns = len(network.parameters)
     if method == "auto" or n_unknowns == 0:
         method = "dense" if n_unknowns <= DENSE_LIMIT else "sparse"
@@ -246,6 +255,7 @@ def _iterate(
         cofactor=cofactor,
         method=engine.name,
         hat=engine.hat(evaluation) if n_unknowns else None,
+        positions=state.positions(),
     )
 
 
@@ -327,6 +337,10 @@ class _State:
 
     def coordinates(self) -> dict[str, tuple[float, float, float]]:
         return dict(zip(self.names, zip(self.east.tolist(), self.north.tolist(), self.height.tolist())))
+
+    def positions(self) -> dict[str, tuple[float, float, float]] | None:
+        """Earth-centred positions (geodetic model only)."""
+        return None
 
     def orientation_dict(self) -> dict[int, float]:
         return dict(zip(self.round_lines, self.orientation.tolist()))

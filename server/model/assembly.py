@@ -16,7 +16,7 @@ contributes nothing and takes no slot.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -62,6 +62,18 @@ class _Control:
     sigma: np.ndarray
 
 
+@dataclass(frozen=True)
+class GeodeticRows:
+    """What the geodetic model changes in the assembly: its kinds table, each point's geoid
+    undulation (by name), and its control equation ``control(xyz, point, component)`` giving
+    grid east, north or orthometric height (metres) of the control rows and their partials
+    (c, 3) with respect to the local E, N, H corrections of the point."""
+
+    kinds: Mapping[str, Kind]
+    undulation: Mapping[str, float]
+    control: Callable[[np.ndarray, np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]]
+
+
 @dataclass
 class Evaluation:
     """One linearisation: slot values of A, misclosures l = observed − computed, σ."""
@@ -89,6 +101,9 @@ class Assembly:
         Per round, the column of its orientation unknown (−1: none).
     control : sequence of ControlEquation
         Weighted control rows, after the observations.
+    model : GeodeticRows, optional
+        The geodetic model's kinds, undulations and control equation; without it the
+        plane kinds of ``kinds.KINDS`` and control rows that observe a coordinate directly.
     """
 
     def __init__(
@@ -101,11 +116,15 @@ class Assembly:
         column_h: np.ndarray,
         column_o: np.ndarray,
         control: Sequence[ControlEquation],
+        model: GeodeticRows | None = None,
     ) -> None:
-        unknown_kinds = sorted({o.kind for o in used} - set(KINDS))
+        self.model = model
+        kinds = KINDS if model is None else model.kinds
+        self.kinds = kinds
+        unknown_kinds = sorted({o.kind for o in used} - set(kinds))
         if unknown_kinds:
             raise ValueError(f"no observation equation for {unknown_kinds}")
-        components = np.array([KINDS[o.kind].components for o in used], dtype=np.int64)
+        components = np.array([kinds[o.kind].components for o in used], dtype=np.int64)
         #: first row of each used observation (one row per component)
         self.first_row = np.zeros(len(used) + 1, np.int64)
         np.cumsum(components, out=self.first_row[1:])
@@ -119,7 +138,7 @@ class Assembly:
             by_kind.setdefault(obs.kind, []).append(row)
         self.groups = [
             self._group(kind, by_kind[name], used, point_index, round_index, columns)
-            for name, kind in KINDS.items()
+            for name, kind in kinds.items()
             if name in by_kind
         ]
         self._controls = self._control_group(columns)
@@ -136,7 +155,9 @@ class Assembly:
     ) -> _Group:
         """The rows of one kind, their batch and the columns of their partials."""
         members = np.array(members_list, np.int64)
-        batch = batch_of(kind, [used[k] for k in members_list], point_index, round_index)
+        undulation = None if self.model is None else self.model.undulation
+        batch = batch_of(kind, [used[k] for k in members_list], point_index, round_index,
+                         undulation)
         cols = np.stack(
             [columns[unknown][batch.role(role)] for role, unknown in kind.columns], axis=1
         )
@@ -154,7 +175,10 @@ class Assembly:
         point = np.array([c.point for c in control], dtype=np.int64)
         component = np.array([c.component for c in control], dtype=np.int64)
         ce, cn, ch = columns["E"], columns["N"], columns["H"]
-        cols = np.choose(component, [ce[point], cn[point], ch[point]])[:, None]
+        if self.model is None:
+            cols = np.choose(component, [ce[point], cn[point], ch[point]])[:, None]
+        else:  # grid east, north and height each depend on all three local corrections
+            cols = np.stack([ce[point], cn[point], ch[point]], axis=1)
         self.groups.append(
             _Group(None, rows, np.zeros(0, np.int64), None, cols, cols >= 0, np.zeros(0, np.int64))
         )
@@ -208,6 +232,10 @@ class Assembly:
         """Partials (all 1), computed and given values and σ of the control rows."""
         c = self._controls
         assert c is not None
+        if self.model is not None:
+            xyz = np.stack([at.east[c.point], at.north[c.point], at.height[c.point]], axis=1)
+            value, partials = self.model.control(xyz, c.point, c.component)
+            return partials, value, c.given, c.sigma
         value = np.choose(c.component, [at.east[c.point], at.north[c.point], at.height[c.point]])
         return np.ones((c.point.size, 1)), value, c.given, c.sigma
 

@@ -94,6 +94,7 @@ def geodetic_frame(fieldbook: Fieldbook) -> GeodeticFrame:
                            "lat=LAT lon=LON)")
     und = undulations(fieldbook)
     known, heights = _given_points(fieldbook.points, crs, und)
+    known += _height_only(fieldbook, crs, known)
     observations = _start_observations(fieldbook, crs, known)
     try:
         found = start3d.start_positions(known, observations, heights=heights, undulations=und,
@@ -150,6 +151,49 @@ def _given_points(points: Sequence[PointStatement], crs: Crs, und: Mapping[str, 
         known.append(start3d.KnownPoint(p.name, position, control=control,  # type: ignore[arg-type]
                                         height_known=has_height))
     return known, heights
+
+
+def height_only_points(fieldbook: Fieldbook) -> set[str]:
+    """Points that only used level lines touch and that have no given position: they
+    carry a height alone (their place on the ellipsoid is only a reference)."""
+    spatial: set[str] = set()
+    leveled: set[str] = set()
+    for obs in fieldbook.observations:
+        if obs.ignored or obs.planned:
+            continue
+        names = leveled if obs.kind == "level" else spatial
+        names.update(n for n in (obs.from_point, obs.at, obs.to) if n)
+    placed = {p.name for p in fieldbook.points
+              if p.latitude is not None or (p.east is not None and p.north is not None)}
+    return leveled - spatial - placed
+
+
+def _height_only(fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.KnownPoint]
+                 ) -> list[start3d.KnownPoint]:
+    """Height-only points placed at a reference position (the first given point, else the
+    CRS's origin or the centre of its area of use); only their heights are estimated."""
+    names = sorted(height_only_points(fieldbook))
+    if not names:
+        return []
+    if known:
+        reference = np.array(known[0].xyz, dtype=float)
+    else:
+        lat, lon = _crs_centre(crs)
+        reference = np.asarray(crs.geodetic_to_ecef(np.array([lat]), np.array([lon]),
+                                                    np.array([0.0]))).reshape(3)
+    x, y, z = (float(c) for c in reference)
+    return [start3d.KnownPoint(name, (x, y, z), height_known=False) for name in names]
+
+
+def _crs_centre(crs: Crs) -> tuple[float, float]:
+    """Latitude and longitude (radians) of a place the CRS covers."""
+    if crs.area_of_use is not None:
+        west, south, east, north = crs.area_of_use
+        lat, lon = math.radians((south + north) / 2.0), math.radians((west + east) / 2.0)
+    else:
+        lat, lon = crs.grid_to_geodetic(np.array([0.0]), np.array([0.0]))
+        lat, lon = float(np.asarray(lat).reshape(-1)[0]), float(np.asarray(lon).reshape(-1)[0])
+    return lat, lon
 
 
 def _start_observations(fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.KnownPoint]

@@ -41,7 +41,7 @@ weights of angles and distances; recalled from memory):
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -51,6 +51,7 @@ from server.fieldbook.model import Observation
 ROLES = ("from", "at", "to")
 
 Array = np.ndarray
+_EMPTY = np.zeros(0)
 
 
 class CoincidentPointsError(Exception):
@@ -81,7 +82,11 @@ class Batch:
     ``frm``/``at``/``to`` are point indices (``at`` equals ``frm`` where the
     kind has no separate station), ``rnd`` round indices (0 where none);
     ``value`` holds the observed numbers, ``components`` per observation.
-    The σ parts are those of ``units.Quantity`` in SI, ``centering`` metres.
+    The σ parts are those of ``units.Quantity`` in SI, ``centering`` metres;
+    ``instrument_height``/``target_height`` (hi, ht) metres, 0 where not given;
+    ``covariance`` the booked (components × components) block of a vector kind
+    in m² (shape (m, k, k); empty for the scalar kinds); ``geoid_from``/``geoid_to``
+    the geoid undulations N of the two ends (geodetic model; 0 elsewhere).
     """
 
     frm: Array
@@ -96,6 +101,12 @@ class Batch:
     length_km: Array
     setups: Array
     centering: Array
+    # the geodetic model's inputs; empty where a kind does not use them
+    instrument_height: Array = field(default_factory=lambda: _EMPTY)
+    target_height: Array = field(default_factory=lambda: _EMPTY)
+    covariance: Array = field(default_factory=lambda: _EMPTY)
+    geoid_from: Array = field(default_factory=lambda: _EMPTY)
+    geoid_to: Array = field(default_factory=lambda: _EMPTY)
 
     @property
     def size(self) -> int:
@@ -271,8 +282,11 @@ def batch_of(
     observations: Sequence[Observation],
     point_index: Mapping[str, int],
     round_index: Mapping[int, int],
+    undulation: Mapping[str, float] | None = None,
 ) -> Batch:
-    """The arrays of a list of observations of ``kind`` (KeyError for an unknown point)."""
+    """The arrays of a list of observations of ``kind`` (KeyError for an unknown point);
+    ``undulation`` gives the geoid undulation of each point name (geodetic model)."""
+    und = undulation or {}
     frm = np.array([point_index[o.from_point] for o in observations], dtype=np.int64)
     to = np.array([point_index[o.to] for o in observations], dtype=np.int64)
     at = frm
@@ -281,12 +295,20 @@ def batch_of(
     rnd = np.zeros(len(observations), np.int64)
     if kind.has_round:
         rnd = np.array([round_index[o.round_line or 0] for o in observations], dtype=np.int64)
+    covariance = np.zeros((0, kind.components, kind.components))
+    if kind.components > 1:
+        vectors = [o.baseline for o in observations]
+        assert all(v is not None for v in vectors), "a vector kind needs its components"
+        value = np.array([v.components for v in vectors if v is not None], dtype=float).ravel()
+        covariance = np.array([v.covariance for v in vectors if v is not None], dtype=float)
+    else:
+        value = np.array([o.value for o in observations], dtype=float)
     return Batch(
         frm=frm,
         at=at,
         to=to,
         rnd=rnd,
-        value=np.array([o.value for o in observations], dtype=float),
+        value=value,
         constant=np.array([o.sigma.constant for o in observations], dtype=float),
         ppm=np.array([o.sigma.ppm for o in observations], dtype=float),
         per_sqrtkm=np.array([o.sigma.per_sqrtkm for o in observations], dtype=float),
@@ -294,6 +316,11 @@ def batch_of(
         length_km=np.array([o.length_km or 0.0 for o in observations], dtype=float),
         setups=np.array([o.setups or 0 for o in observations], dtype=float),
         centering=np.array([o.centering for o in observations], dtype=float),
+        instrument_height=np.array([o.instrument_height or 0.0 for o in observations]),
+        target_height=np.array([o.target_height or 0.0 for o in observations]),
+        covariance=covariance.reshape(-1, kind.components, kind.components),
+        geoid_from=np.array([und.get(o.from_point, 0.0) for o in observations], dtype=float),
+        geoid_to=np.array([und.get(o.to, 0.0) for o in observations], dtype=float),
     )
 
 
@@ -301,16 +328,18 @@ def _one(
     obs: Observation,
     coordinates: Mapping[str, tuple[float, float, float]],
     orientations: Mapping[int, float],
+    kinds: Mapping[str, Kind],
+    undulation: Mapping[str, float] | None,
 ) -> tuple[Kind, Batch, Positions]:
     """A single observation as a batch of one, over just the points it names."""
-    kind = KINDS[obs.kind]
+    kind = kinds[obs.kind]
     station = (obs.at,) if kind.has_station and obs.at is not None else ()
     names = list(dict.fromkeys((obs.from_point, *station, obs.to)))
     table = np.array([coordinates[n] for n in names], dtype=float).reshape(-1, 3)
     rounds = {obs.round_line or 0: 0} if kind.has_round else {}
     orientation = np.array([orientations.get(r, np.nan) for r in rounds], dtype=float)
     positions = Positions(table[:, 0], table[:, 1], table[:, 2], orientation)
-    batch = batch_of(kind, [obs], {n: k for k, n in enumerate(names)}, rounds)
+    batch = batch_of(kind, [obs], {n: k for k, n in enumerate(names)}, rounds, undulation)
     return kind, batch, positions
 
 
@@ -318,19 +347,23 @@ def evaluate_one(
     obs: Observation,
     coordinates: Mapping[str, tuple[float, float, float]],
     orientations: Mapping[int, float],
+    kinds: Mapping[str, Kind] | None = None,
+    undulation: Mapping[str, float] | None = None,
 ) -> Linearised:
-    """Value and partials of one observation, as a batch of one.
+    """Value and partials of one observation, as a batch of one (``kinds``: the plane
+    table unless the geodetic model's is given, with its ``undulation`` per point).
 
     Raises KeyError for a kind not in the table or a point not in ``coordinates``, and
     ``CoincidentPointsError`` when its points coincide or lack a position.  A round without an
     orientation gives NaN.
     """
-    kind, batch, positions = _one(obs, coordinates, orientations)
+    kind, batch, positions = _one(obs, coordinates, orientations, kinds or KINDS, undulation)
     return kind.equation(batch, positions)
 
 
-def sigma_one(obs: Observation, coordinates: Mapping[str, tuple[float, float, float]]) -> float:
+def sigma_one(obs: Observation, coordinates: Mapping[str, tuple[float, float, float]],
+              kinds: Mapping[str, Kind] | None = None) -> float:
     """The a priori σ of one observation in SI units, centering included (NaN or inf when
-    its points coincide or lack coordinates)."""
-    kind, batch, positions = _one(obs, coordinates, {})
+    its points coincide or lack coordinates); a vector kind gives its first component's."""
+    kind, batch, positions = _one(obs, coordinates, {}, kinds or KINDS, None)
     return float(kind.sigma(batch, positions)[0])

@@ -7,12 +7,14 @@ file's length unit, decimal degrees and arc-seconds exactly once.
 from __future__ import annotations
 
 import math
+from typing import Any
 from collections.abc import Sequence
 
 import numpy as np
 
 from server.engine.gauss_newton import Solution
 from server.fieldbook.model import ANGULAR_KINDS, Observation
+from server.model.geodetic_kinds import geodetic_kinds
 from server.model.kinds import CoincidentPointsError, evaluate_one, sigma_one
 from server.model.misclosures import Misclosure
 from server.model.network import Network
@@ -310,15 +312,26 @@ def _evaluate(obs: Observation, solution: Solution) -> float | None:
     if obs.round_line is not None and obs.round_line not in solution.orientations:
         return None
     try:
-        value = float(evaluate_one(obs, solution.coordinates, solution.orientations).value[0])
+        value = float(evaluate_one(obs, *_model_of(solution)).value[0])
     except (KeyError, CoincidentPointsError):  # a kind without a model, or no position for it
         return None
     return None if math.isnan(value) else value
 
 
+def _model_of(solution: Solution) -> tuple[Any, Any, Any, Any]:
+    """Coordinates, orientations, kinds table and undulations to evaluate one observation:
+    Earth-centred positions and the geodetic kinds in the geodetic model."""
+    frame = solution.network.geodetic
+    if frame is None or solution.positions is None:
+        return solution.coordinates, solution.orientations, None, None
+    kinds = geodetic_kinds(frame.crs, frame.refraction)
+    return solution.positions, solution.orientations, kinds, frame.undulation
+
+
 def _sigma_of_ignored(obs: Observation, solution: Solution) -> float:
     try:
-        sigma = sigma_one(obs, solution.coordinates)
+        coordinates, _, kinds, _ = _model_of(solution)
+        sigma = sigma_one(obs, coordinates, kinds)
     except KeyError:
         sigma = math.nan
     return sigma if math.isfinite(sigma) else obs.sigma.constant
