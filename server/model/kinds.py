@@ -96,6 +96,8 @@ class Batch:
     length_km: Array
     setups: Array
     centering: Array
+    #: (m, k, k) covariance of each observation's components as booked (kinds with k > 1)
+    covariance: Array | None = None
 
     @property
     def size(self) -> int:
@@ -117,6 +119,8 @@ class Linearised:
 
 Equation = Callable[[Batch, Positions], Linearised]
 Sigma = Callable[[Batch, Positions], Array]
+#: (m, k, k) covariance of each observation's k components, for a correlated kind
+Covariance = Callable[[Batch, Positions], Array]
 
 
 @dataclass(frozen=True, slots=True)
@@ -126,6 +130,9 @@ class Kind:
     ``columns`` list (role, unknown) for each partial derivative, in the order
     ``equation`` returns them; ``angular`` kinds have their misclosures reduced
     to (−π, π].  ``sigma`` gives each row's a priori σ (centering included).
+    A kind whose components are correlated gives their k×k ``covariance`` per
+    observation; its rows are then whitened (``whitening.py``), and ``sigma``
+    is the square root of the covariance's diagonal.
     """
 
     name: str
@@ -138,6 +145,7 @@ class Kind:
     has_station: bool = False
     #: True when the kind has an orientation unknown per round
     has_round: bool = False
+    covariance: Covariance | None = None
 
 
 def _polar(i: Array, j: Array, at: Positions) -> tuple[Array, Array, Array]:
@@ -281,12 +289,20 @@ def batch_of(
     rnd = np.zeros(len(observations), np.int64)
     if kind.has_round:
         rnd = np.array([round_index[o.round_line or 0] for o in observations], dtype=np.int64)
+    value = np.array([o.value for o in observations], dtype=float)
+    covariance = None
+    if kind.components > 1:  # a vector observation: its components and their covariance
+        vectors = [o.baseline for o in observations]
+        if any(v is None for v in vectors):
+            raise ValueError(f"a {kind.name} observation lacks its {kind.components} components")
+        value = np.array([v.components for v in vectors if v], dtype=float).reshape(-1)
+        covariance = np.array([v.covariance for v in vectors if v], dtype=float)
     return Batch(
         frm=frm,
         at=at,
         to=to,
         rnd=rnd,
-        value=np.array([o.value for o in observations], dtype=float),
+        value=value,
         constant=np.array([o.sigma.constant for o in observations], dtype=float),
         ppm=np.array([o.sigma.ppm for o in observations], dtype=float),
         per_sqrtkm=np.array([o.sigma.per_sqrtkm for o in observations], dtype=float),
@@ -294,6 +310,7 @@ def batch_of(
         length_km=np.array([o.length_km or 0.0 for o in observations], dtype=float),
         setups=np.array([o.setups or 0 for o in observations], dtype=float),
         centering=np.array([o.centering for o in observations], dtype=float),
+        covariance=covariance,
     )
 
 
