@@ -9,6 +9,8 @@ orientation is the mean of (horizon azimuth − direction) over its targets.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import numpy as np
 
 from server.engine.gauss_newton import _State
@@ -18,18 +20,19 @@ from server.model.assembly import Assembly, GeodeticRows
 from server.model.geodetic import GeodeticFrame, height_only_points
 from server.model.geodetic_kinds import geodetic_kinds
 from server.model.network import Network
+from server.model.whitening import CorrelatedBlock
 
 
 class GeodeticState(_State):
     """Positions X, Y, Z per point; unknowns along local east, north and up."""
 
-    def __init__(self, network: Network) -> None:
+    def __init__(self, network: Network, correlated: Sequence[CorrelatedBlock] = ()) -> None:
         frame = network.geodetic
         assert frame is not None
         self.frame: GeodeticFrame = frame
-        super().__init__(network, {name: tuple(xyz) for name, xyz in frame.start.items()})
+        start = {name: tuple(xyz) for name, xyz in frame.start.items()}
+        super().__init__(network, start, geodetic_kinds(frame.crs, frame.refraction), correlated)
         self.undulation = np.array([frame.undulation.get(n, 0.0) for n in self.names])
-        self.kinds = geodetic_kinds(frame.crs, frame.refraction)
         only = height_only_points(network.fieldbook)
         self.height_only = np.array([n in only for n in self.names], dtype=bool)
 
@@ -46,7 +49,8 @@ class GeodeticState(_State):
         model = GeodeticRows(self.kinds, frame.undulation, control)
         return Assembly(
             self.network.used, self.point_index, self.round_index,
-            columns["E"], columns["N"], columns["H"], columns["O"], self.control, model,
+            columns["E"], columns["N"], columns["H"], columns["O"], self.control,
+            self.kinds, self.correlated, model,
         )
 
     def apply(self, correction: np.ndarray) -> None:

@@ -18,13 +18,23 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from functools import partial
 from typing import Any
 
 import numpy as np
 
 from server.errors import NetworkError
 from server.fieldbook.model import Observation
-from server.model.kinds import KINDS, Batch, CoincidentPointsError, Kind, Positions, batch_of
+from server.model.kinds import (
+    KINDS,
+    Batch,
+    CoincidentPointsError,
+    Covariance,
+    Kind,
+    Positions,
+    batch_of,
+)
+from server.model.whitening import BlockSet, CorrelatedBlock, Whitening, constant_blocks
 
 TWO_PI = 2.0 * math.pi
 
@@ -76,12 +86,32 @@ class GeodeticRows:
 
 @dataclass
 class Evaluation:
-    """One linearisation: slot values of A, misclosures l = observed − computed, σ."""
+    """One linearisation: slot values of A, misclosures l = observed − computed, σ.
+
+    Rows of correlated blocks are whitened (``whitening.py``): their slot
+    values and misclosures are L⁻¹ times the observations' and their σ is 1;
+    ``computed`` is always the observations' own.  ``factors`` hold, per set of
+    blocks, the rows (b, k) and the Cholesky factors L (b, k, k).
+    """
 
     slot_val: np.ndarray
     misclosure: np.ndarray
     computed: np.ndarray
     sigmas: np.ndarray
+    factors: tuple[tuple[np.ndarray, np.ndarray], ...] = ()
+
+    @property
+    def weights(self) -> np.ndarray:
+        """P's diagonal, 1/σ², in the rows the engine sees (whitened rows: 1)."""
+        return 1.0 / self.sigmas**2
+
+    def unwhiten(self, values: np.ndarray) -> np.ndarray:
+        """A vector over the rows (such as residuals) carried back from the whitened rows to
+        the observations: L·v̄ in each block, other rows unchanged."""
+        out = np.array(values, dtype=float)
+        for rows, factor in self.factors:
+            out[rows] = np.einsum("bij,bj->bi", factor, out[rows])
+        return out
 
 
 class Assembly:
@@ -101,10 +131,17 @@ class Assembly:
         Per round, the column of its orientation unknown (−1: none).
     control : sequence of ControlEquation
         Weighted control rows, after the observations.
+    kinds : mapping
+        The observation kinds by name (``kinds.KINDS``; tests add their own).
+    correlated : sequence of CorrelatedBlock
+        Groups of observation rows with a full covariance, whitened on evaluation.
     model : GeodeticRows, optional
         The geodetic model's kinds, undulations and control equation; without it the
         plane kinds of ``kinds.KINDS`` and control rows that observe a coordinate directly.
     """
+
+    row_ptr: np.ndarray  # slots of row r: row_ptr[r] … row_ptr[r+1]−1
+    slot_col: np.ndarray  # the column of each slot
 
     def __init__(
         self,
@@ -116,10 +153,13 @@ class Assembly:
         column_h: np.ndarray,
         column_o: np.ndarray,
         control: Sequence[ControlEquation],
+        kinds: Mapping[str, Kind] = KINDS,
+        correlated: Sequence[CorrelatedBlock] = (),
         model: GeodeticRows | None = None,
     ) -> None:
         self.model = model
-        kinds = KINDS if model is None else model.kinds
+        if model is not None:
+            kinds = model.kinds
         self.kinds = kinds
         unknown_kinds = sorted({o.kind for o in used} - set(kinds))
         if unknown_kinds:
@@ -143,6 +183,21 @@ class Assembly:
         ]
         self._controls = self._control_group(columns)
         self._layout()
+        sets = self._kind_blocks() + constant_blocks(list(correlated), self.n_used)
+        self._whitening = Whitening(self.row_ptr, self.slot_col, sets) if sets else None
+        if self._whitening is not None:  # the engine sees the whitened layout
+            self.row_ptr, self.slot_col = self._whitening.row_ptr, self._whitening.slot_col
+
+    def _kind_blocks(self) -> list[BlockSet]:
+        """One k×k block per observation of each kind with correlated components."""
+        sets = []
+        for g in self.groups:
+            kind, batch = g.kind, g.batch
+            if kind is None or kind.covariance is None or batch is None:
+                continue
+            source = partial(_batch_covariance, kind.covariance, batch)
+            sets.append(BlockSet(g.rows.reshape(-1, kind.components), source))
+        return sets
 
     def _group(
         self,
@@ -186,13 +241,14 @@ class Assembly:
         return _Control(point, component, given, np.array([c.sigma for c in control]))
 
     def _layout(self) -> None:
-        """The fixed layout: slots of each row, in row order."""
+        """The fixed layout: slots of each row, in row order (before any whitening)."""
         counts = np.zeros(self.n_rows, np.int64)
         for g in self.groups:
             counts[g.rows] = g.valid.sum(axis=1)
         self.row_ptr = np.zeros(self.n_rows + 1, np.int64)
         np.cumsum(counts, out=self.row_ptr[1:])
         self.slot_col = np.empty(int(self.row_ptr[-1]), np.int64)
+        self._raw_slots = self.slot_col.shape[0]
         for g in self.groups:
             rank = np.cumsum(g.valid, axis=1) - 1
             g.dest = (self.row_ptr[g.rows][:, None] + rank)[g.valid]
@@ -203,7 +259,7 @@ class Assembly:
     ) -> Evaluation:
         """Linearise every row about the given coordinates (metres) and orientations (radians)."""
         positions = Positions(east, north, height, orientation)
-        slot_val = np.empty(self.slot_col.shape[0])
+        slot_val = np.empty(self._raw_slots)
         misclosure = np.empty(self.n_rows)
         computed = np.empty(self.n_rows)
         sigmas = np.empty(self.n_rows)
@@ -226,7 +282,10 @@ class Assembly:
             # an angle's computed value is the observed one less its wrapped misclosure
             computed[g.rows] = value if g.kind is None else observed - difference
             sigmas[g.rows] = sigma
-        return Evaluation(slot_val, misclosure, computed, sigmas)
+        if self._whitening is None:
+            return Evaluation(slot_val, misclosure, computed, sigmas)
+        slot_val, factors = self._whitening.apply(slot_val, misclosure, sigmas, positions)
+        return Evaluation(slot_val, misclosure, computed, sigmas, factors)
 
     def _control_rows(self, at: Positions) -> tuple[np.ndarray, ...]:
         """Partials (all 1), computed and given values and σ of the control rows."""
@@ -256,6 +315,10 @@ class Assembly:
             f"(line {obs.line}); check their coordinates and observations",
             names,
         )
+
+
+def _batch_covariance(covariance: Covariance, batch: Batch, positions: Positions) -> np.ndarray:
+    return covariance(batch, positions)
 
 
 def wrap_pi(angle: np.ndarray) -> np.ndarray:

@@ -112,10 +112,13 @@ def geodetic_kinds(crs: Crs, refraction: float) -> dict[str, Kind]:
 
         return KINDS["distance"].sigma(b, at)
 
+    def baseline_covariance(b: Batch, at: Positions) -> Array:
+        assert b.covariance is not None
+        return ge.baseline_covariance(ell, b.covariance, b.centering, _xyz(at, b.frm),
+                                      _xyz(at, b.to))
+
     def baseline_sigma(b: Batch, at: Positions) -> Array:
-        cov = ge.baseline_covariance(ell, b.covariance, b.centering, _xyz(at, b.frm),
-                                     _xyz(at, b.to))
-        return np.sqrt(np.einsum("mii->mi", cov)).reshape(-1)
+        return np.sqrt(np.einsum("mii->mi", baseline_covariance(b, at))).reshape(-1)
 
     entries = (
         Kind("level", (("to", "H"), ("from", "H")), False, _guarded(level), level_sigma),
@@ -127,6 +130,7 @@ def geodetic_kinds(crs: Crs, refraction: float) -> dict[str, Kind]:
         Kind("angle", (*_TO_FROM, *_AT), True, _guarded(angle), angle_sigma, has_station=True),
         Kind("slope", _TO_FROM, False, _guarded(slope), slope_sigma),
         Kind("zenith", _TO_FROM, True, _guarded(zenith), constant_sigma),
-        Kind("baseline", _TO_FROM, False, _guarded(baseline), baseline_sigma, components=3),
+        Kind("baseline", _TO_FROM, False, _guarded(baseline), baseline_sigma, components=3,
+             covariance=baseline_covariance),
     )
     return {kind.name: kind for kind in entries}

@@ -101,10 +101,11 @@ class Batch:
     length_km: Array
     setups: Array
     centering: Array
+    #: (m, k, k) covariance of each observation's components as booked (kinds with k > 1)
+    covariance: Array | None = None
     # the geodetic model's inputs; empty where a kind does not use them
     instrument_height: Array = field(default_factory=lambda: _EMPTY)
     target_height: Array = field(default_factory=lambda: _EMPTY)
-    covariance: Array = field(default_factory=lambda: _EMPTY)
     geoid_from: Array = field(default_factory=lambda: _EMPTY)
     geoid_to: Array = field(default_factory=lambda: _EMPTY)
 
@@ -128,6 +129,8 @@ class Linearised:
 
 Equation = Callable[[Batch, Positions], Linearised]
 Sigma = Callable[[Batch, Positions], Array]
+#: (m, k, k) covariance of each observation's k components, for a correlated kind
+Covariance = Callable[[Batch, Positions], Array]
 
 
 @dataclass(frozen=True, slots=True)
@@ -137,6 +140,9 @@ class Kind:
     ``columns`` list (role, unknown) for each partial derivative, in the order
     ``equation`` returns them; ``angular`` kinds have their misclosures reduced
     to (−π, π].  ``sigma`` gives each row's a priori σ (centering included).
+    A kind whose components are correlated gives their k×k ``covariance`` per
+    observation; its rows are then whitened (``whitening.py``), and ``sigma``
+    is the square root of the covariance's diagonal.
     """
 
     name: str
@@ -149,6 +155,7 @@ class Kind:
     has_station: bool = False
     #: True when the kind has an orientation unknown per round
     has_round: bool = False
+    covariance: Covariance | None = None
 
 
 def _polar(i: Array, j: Array, at: Positions) -> tuple[Array, Array, Array]:
@@ -295,14 +302,14 @@ def batch_of(
     rnd = np.zeros(len(observations), np.int64)
     if kind.has_round:
         rnd = np.array([round_index[o.round_line or 0] for o in observations], dtype=np.int64)
-    covariance = np.zeros((0, kind.components, kind.components))
-    if kind.components > 1:
+    value = np.array([o.value for o in observations], dtype=float)
+    covariance = None
+    if kind.components > 1:  # a vector observation: its components and their covariance
         vectors = [o.baseline for o in observations]
-        assert all(v is not None for v in vectors), "a vector kind needs its components"
-        value = np.array([v.components for v in vectors if v is not None], dtype=float).ravel()
-        covariance = np.array([v.covariance for v in vectors if v is not None], dtype=float)
-    else:
-        value = np.array([o.value for o in observations], dtype=float)
+        if any(v is None for v in vectors):
+            raise ValueError(f"a {kind.name} observation lacks its {kind.components} components")
+        value = np.array([v.components for v in vectors if v], dtype=float).reshape(-1)
+        covariance = np.array([v.covariance for v in vectors if v], dtype=float)
     return Batch(
         frm=frm,
         at=at,
@@ -318,7 +325,7 @@ def batch_of(
         centering=np.array([o.centering for o in observations], dtype=float),
         instrument_height=np.array([o.instrument_height or 0.0 for o in observations]),
         target_height=np.array([o.target_height or 0.0 for o in observations]),
-        covariance=covariance.reshape(-1, kind.components, kind.components),
+        covariance=covariance,
         geoid_from=np.array([und.get(o.from_point, 0.0) for o in observations], dtype=float),
         geoid_to=np.array([und.get(o.to, 0.0) for o in observations], dtype=float),
     )
