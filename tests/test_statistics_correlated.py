@@ -75,6 +75,7 @@ def test_diagonal_block_gives_the_usual_w_test_and_mdb():
     np.testing.assert_allclose(got.w.ravel(), quality.w_statistics(v, sigmas, r), rtol=1e-9)
     np.testing.assert_allclose(got.mdb.ravel(),
                                quality.minimal_detectable_bias(sigmas, r, lambda0), rtol=1e-9)
+    np.testing.assert_allclose(got.estimated_bias.ravel(), -v / r, rtol=1e-9)  # the contract
 
 
 def _monte_carlo(a: np.ndarray, cov: np.ndarray, draws: int,
@@ -102,6 +103,29 @@ def test_component_w_is_standard_normal_for_correlated_baselines():
     # the correlations matter: the naive v_i/(σ_i·√r_i) is not the same statistic
     naive = v / np.sqrt(np.einsum("nii->ni", np.linalg.inv(p)) * tests.redundancy)
     assert np.abs(naive - tests.w).max() > 0.1
+
+
+def test_a_bias_in_one_component_is_estimated_and_found_by_its_w_test():
+    """A 60 mm blunder added to one component of one correlated baseline: the mean of the
+    estimated bias over the draws is the blunder (the estimator is unbiased), and the
+    component's w-test rejects far more often than α, the block test too."""
+    a, cov = _network(np.random.default_rng(3))
+    p, qvv = _solve(a, cov)
+    draws, row = 3000, 3 * 2 + 1  # baseline 2 (points 1–2), its dy
+    rng = np.random.default_rng(12)
+    errors = rng.multivariate_normal(np.zeros(len(cov)), cov, size=draws)
+    errors[:, row] += 0.060
+    residuals = -errors @ (qvv @ p).T
+    n = len(_BASELINES)
+    v = residuals.reshape(draws * n, 3)
+    pb, qb = np.tile(_blocks(p, n), (draws, 1, 1)), np.tile(_blocks(qvv, n), (draws, 1, 1))
+    tests = correlated.component_tests(v, pb, qb, 17.075, 3.2905)
+    bias = tests.estimated_bias.reshape(draws, n, 3)[:, 2, 1]
+    assert bias.mean() == pytest.approx(0.060, abs=5 * bias.std() / np.sqrt(draws))
+    mdb = tests.mdb.reshape(draws, n, 3)[0, 2, 1]
+    assert mdb < 0.060  # so the power to find it exceeds 80 %
+    assert tests.flagged.reshape(draws, n, 3)[:, 2, 1].mean() > 0.8
+    assert correlated.block_tests(v, pb, qb, 0.001).flagged.reshape(draws, n)[:, 2].mean() > 0.5
 
 
 def test_block_statistic_follows_chi_square_3_and_rejects_at_alpha():

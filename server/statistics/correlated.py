@@ -8,6 +8,8 @@ and cofactor block Qvv of the residuals:
   others keep their correlation:  w_i = (P·v)_i / √((P·Qvv·P)_ii).  It is standard normal
   when the model holds, and the usual v_i / (σ_i·√r_i) when P is diagonal;
 - its minimal detectable bias ∇_i = √(λ₀ / (P·Qvv·P)_ii), in the units of v;
+- the estimated bias of that component, −(P·v)_i / (P·Qvv·P)_ii: the least-squares size of a
+  blunder in it alone (residual = adjusted − observed), −v_i/r_i when P is diagonal;
 - the block test T = vᵀ·Qvv⁺·v (σ₀² = 1), whose critical value is the χ²(k) quantile at
   1 − α.  T is χ²(rank Qvv) when the model holds.
 
@@ -40,6 +42,7 @@ class ComponentTests:
     redundancy: np.ndarray
     w: np.ndarray  # NaN where uncontrolled
     mdb: np.ndarray  # units of v; NaN where uncontrolled
+    estimated_bias: np.ndarray  # units of v; NaN where uncontrolled
     controlled: np.ndarray  # bool
     flagged: np.ndarray  # bool: |w| above the critical value, controlled components only
 
@@ -67,9 +70,10 @@ def component_tests(v: np.ndarray, weight: np.ndarray, qvv: np.ndarray,
     pv = np.einsum("nij,nj->ni", weight, v)
     w = np.where(controlled, pv / np.sqrt(safe), np.nan)
     mdb = np.where(controlled, np.sqrt(lambda0 / safe), np.nan)
+    bias = np.where(controlled, -pv / safe, np.nan)
     flagged = controlled & (np.abs(np.where(controlled, w, 0.0)) > critical_w)
-    return ComponentTests(redundancy=redundancy, w=w, mdb=mdb, controlled=controlled,
-                          flagged=flagged)
+    return ComponentTests(redundancy=redundancy, w=w, mdb=mdb, estimated_bias=bias,
+                          controlled=controlled, flagged=flagged)
 
 
 def block_tests(v: np.ndarray, weight: np.ndarray, qvv: np.ndarray,
