@@ -128,7 +128,8 @@ def geodetic_note(result: AdjustmentResult) -> str:
             "the projection's point scale factor; convergence: grid north minus true north.")
     if result.geodetic:
         text += (" Standard deviations and ellipses are along local east, north and up (the "
-                 "ellipsoid normal); ellipse azimuths are clockwise from true north.")
+                 "ellipsoid normal); ellipse azimuths are clockwise from true north, and a "
+                 "relative ellipse is in the local axes at the first point of its pair.")
     return text
 
 
