@@ -1,9 +1,15 @@
 """Exports for drafting and GIS: GeoJSON of points and observation lines.
 
-Coordinates are the project's grid eastings and northings in the field
-book's length unit, not longitude and latitude: RFC 7946 expects WGS 84, so
-the collection says which system it is in (a foreign member
-``coordinate_system``) and GIS users assign the project's grid on import.
+With a ``crs`` line the geometry is what RFC 7946 (§3.1.1, §4) asks for: longitude,
+latitude in decimal degrees and the height above the ellipsoid in metres.  They are on the
+datum of the field book's CRS (NAD83, ETRS89, the site grid's GRS80 ...), not transformed to
+WGS 84: offline, that would need grids we do not have, and the two differ by up to about
+two metres; the collection says so in its foreign member ``coordinate_system``.  Grid
+east, north and the orthometric height stay in the properties.
+
+Without a ``crs`` the coordinates are the project's grid eastings and northings in the field
+book's length unit, not longitude and latitude; the foreign member ``coordinate_system``
+says so and GIS users assign the project's grid on import.
 Points without horizontal coordinates (a height network) have a null
 geometry, which RFC 7946 allows for unlocated features.
 """
@@ -13,14 +19,29 @@ from __future__ import annotations
 import json
 
 from server.results.result import AdjustmentResult, ObservationResult, PointResult
+from server.units import LENGTH_FACTORS
+
+Position = list[float]
 
 
-def _point_feature(p: PointResult) -> dict[str, object]:
-    located = p.east is not None and p.north is not None
+def _grid_position(p: PointResult) -> Position | None:
+    if p.east is None or p.north is None:
+        return None
+    return [p.east, p.north] + ([p.height] if p.height is not None else [])
+
+
+def _geographic_position(p: PointResult, metres_per_unit: float) -> Position | None:
+    """Longitude, latitude and (RFC 7946 §3.1.1) the ellipsoidal height in metres."""
+    if p.longitude is None or p.latitude is None:
+        return None
+    height = p.ellipsoidal_height
+    return [p.longitude, p.latitude] + ([] if height is None else [height * metres_per_unit])
+
+
+def _point_feature(p: PointResult, position: Position | None) -> dict[str, object]:
     geometry: dict[str, object] | None = None
-    if located:
-        coordinates = [p.east, p.north] + ([p.height] if p.height is not None else [])
-        geometry = {"type": "Point", "coordinates": coordinates}
+    if position is not None:
+        geometry = {"type": "Point", "coordinates": position}
     properties: dict[str, object] = {
         "name": p.name,
         "east": p.east,
@@ -37,6 +58,10 @@ def _point_feature(p: PointResult) -> dict[str, object]:
         "ellipse_azimuth_deg": p.ellipse.azimuth if p.ellipse else None,
         "ellipse_confidence": p.ellipse.confidence if p.ellipse else None,
     }
+    if p.latitude is not None or p.longitude is not None:
+        properties.update(latitude=p.latitude, longitude=p.longitude,
+                          ellipsoidal_height=p.ellipsoidal_height, geoid=p.geoid,
+                          scale_factor=p.scale_factor, convergence_deg=p.convergence)
     return {
         "type": "Feature",
         "id": f"point:{p.name}",
@@ -45,17 +70,16 @@ def _point_feature(p: PointResult) -> dict[str, object]:
     }
 
 
-def _line_feature(
-    o: ObservationResult, positions: dict[str, tuple[float, float]]
-) -> dict[str, object]:
+def _line_feature(o: ObservationResult, positions: dict[str, Position]) -> dict[str, object]:
     ends = [o.from_point, o.to] if o.kind != "angle" else [o.from_point, o.at or "", o.to]
     geometry: dict[str, object] | None = None
     if all(name in positions for name in ends):
-        geometry = {"type": "LineString", "coordinates": [list(positions[n]) for n in ends]}
+        geometry = {"type": "LineString", "coordinates": [positions[n][:2] for n in ends]}
     unit = "arcsec" if o.angular else "length unit"
     properties: dict[str, object] = {
         "field_book_line": o.line,
         "kind": o.kind,
+        **({} if o.component is None else {"component": o.component}),
         "from": o.from_point,
         "at": o.at,
         "to": o.to,
@@ -82,16 +106,25 @@ def _line_feature(
 
 def geojson(result: AdjustmentResult) -> dict[str, object]:
     """A FeatureCollection: one Point per point, one LineString per observation."""
-    positions = {
-        p.name: (p.east, p.north)
+    crs = result.summary.crs
+    metres = LENGTH_FACTORS[result.length_unit]
+    located = {
+        p.name: _geographic_position(p, metres) if crs else _grid_position(p)
         for p in result.points
-        if p.east is not None and p.north is not None
     }
-    features = [_point_feature(p) for p in result.points]
+    positions = {name: xy for name, xy in located.items() if xy is not None}
+    features = [_point_feature(p, located[p.name]) for p in result.points]
     features += [_line_feature(o, positions) for o in result.observations]
+    if crs:
+        system = (f"longitude, latitude (decimal degrees) and ellipsoidal height (m) on the "
+                  f"datum of {crs}, not transformed to WGS 84 (they may differ by up to about "
+                  "2 m); grid east, north and orthometric height in the properties, in "
+                  f"{result.length_unit}")
+    else:
+        system = (f"project grid: east, north (and height) in {result.length_unit}; not WGS 84")
     return {
         "type": "FeatureCollection",
-        "coordinate_system": f"project grid: east, north (and height) in {result.length_unit}; not WGS 84",
+        "coordinate_system": system,
         "title": result.title,
         "features": features,
     }

@@ -27,19 +27,37 @@ POINT_CSV_HEADER = (
 )
 
 
+#: Columns after ``height`` when the result has a CRS: degrees to 9 decimals (about 0.1 mm),
+#: heights in the file's unit, the scale factor to 9 and the convergence (degrees) to 7.
+GEODETIC_CSV_HEADER = (
+    "latitude", "longitude", "ellipsoidal_height", "geoid", "scale_factor", "convergence",
+)
+
+
 def points_csv(result: AdjustmentResult) -> str:
-    """Adjusted points as CSV; text cells are guarded against formula injection, numbers are not."""
+    """Adjusted points as CSV; text cells are guarded against formula injection, numbers are not.
+
+    With a CRS the geodetic columns follow ``height``; without one the columns are as before.
+    """
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\r\n")
-    writer.writerow(POINT_CSV_HEADER)
+    geodetic = result.summary.geodetic_keys
+    header = list(POINT_CSV_HEADER)
+    if geodetic:
+        header[4:4] = GEODETIC_CSV_HEADER
+    writer.writerow(header)
     places = LENGTH_DECIMALS.get(result.length_unit, 4)
     for p in result.points:
         e = p.ellipse
+        extra = [_number(p.latitude, 9), _number(p.longitude, 9),
+                 _number(p.ellipsoidal_height, places), _number(p.geoid, places),
+                 _number(p.scale_factor, 9), _number(p.convergence, 7)] if geodetic else []
         writer.writerow([
             safe_cell(p.name),
             _number(p.east, places),
             _number(p.north, places),
             _number(p.height, places),
+            *extra,
             _number(p.sd_east, places),
             _number(p.sd_north, places),
             _number(p.sd_height, places),

@@ -44,6 +44,7 @@ from server import __version__
 from server.report import html as html_report
 from server.report import tables as report
 from server.report.pdf_drawings import histogram_drawing, network_drawing, network_legend
+from server.report.pdf_geodetic import baseline_tests_block, geodetic_points_block, model_block
 from server.report.pdf_kit import (
     FAIL,
     INK,
@@ -274,7 +275,9 @@ def _points_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles
         states.append("" if p.in_use else "muted")
     scaled = "a posteriori" if result.summary.precision_estimated else "a priori (σ₀² = 1)"
     note = (f"Coordinates and standard deviations in {unit}; standard deviations are {scaled}"
-            + ("; ellipse azimuths of the major axis from grid north" if cols.ellipses else "")
+            + (("; ellipse azimuths of the major axis from true north, axes along local east "
+                "and north" if result.geodetic else
+                "; ellipse azimuths of the major axis from grid north") if cols.ellipses else "")
             + ".")
     return [*_heading("Adjusted points", styles),
             data_table(styles, columns, rows, width, row_states=states),
@@ -566,13 +569,16 @@ def report_pdf(result: AdjustmentResult, *, generated: datetime | None = None,
     story += _verdict_block(data, styles, width)
     story += _standards_block(data, styles, width)
     story += _statistics_block(result, data, styles, width)
+    story += model_block(data, styles, width)
     story += _plot_block(result, styles, width)
     story += _points_block(result, data, styles, width)
+    story += geodetic_points_block(data, styles, width)
     story += _relative_block(data, styles, width)
     story += _misclosure_block(data, styles, width)
     story += _traverse_block(data, styles, width)
     story += _histogram_block(data, styles, width)
     story += _observation_block(data, styles, width)
+    story += baseline_tests_block(data, styles, width)
     story += _warnings_block(result, styles)
     story += _notes_block(result, data, presets, styles)
     story += _review_block(styles, width)

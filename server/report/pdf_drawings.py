@@ -89,13 +89,16 @@ def _ignored_mark(x: float, y: float, k: float) -> list[Any]:
 
 
 _LINE_DASHES = {"distance": None, "sighting": [6, 4], "height": [9, 3, 2, 3],
-                "ignored": [1.5, 3.5]}
+                "ignored": [1.5, 3.5], "baseline": [11, 3]}
+#: GNSS baselines in a colour of their own, as in the HTML plot
+GNSS = colors.HexColor("#7a4a9c")
+_LINE_WIDTHS = {"distance": 1.5, "baseline": 1.7}
 
 
 def _line_shape(style: str, x1: float, y1: float, x2: float, y2: float, k: float) -> Line:
     dash = _LINE_DASHES.get(style)
-    colour = PALE if style == "ignored" else SLATE
-    width = 1.5 if style == "distance" else 1.3
+    colour = PALE if style == "ignored" else (GNSS if style == "baseline" else SLATE)
+    width = _LINE_WIDTHS.get(style, 1.3)
     return Line(x1, y1, x2, y2, strokeColor=colour, strokeWidth=width * k,
                 strokeDashArray=None if dash is None else [d * k for d in dash])
 
@@ -119,7 +122,8 @@ def network_drawing(data: dict[str, Any], width: float, fonts: Fonts) -> Drawing
         if ln["flagged"]:
             drawing.add(Line(x1, y1, x2, y2, strokeColor=_faded(FAIL, 0.32), strokeWidth=9 * k,
                              strokeDashArray=[9 * k, 5 * k]))
-            dash = None if ln["style"] == "distance" else [6 * k, 4 * k]
+            dash = None if ln["style"] == "distance" else [
+                d * k for d in (_LINE_DASHES["baseline"] if ln["style"] == "baseline" else (6, 4))]
             drawing.add(Line(x1, y1, x2, y2, strokeColor=FAIL, strokeWidth=2 * k,
                              strokeDashArray=dash))
         else:
@@ -230,7 +234,7 @@ def network_legend(data: dict[str, Any], styles: Styles, width: float) -> Table:
             return [group]
         items.append(_legend_item(ellipse, f"{data['confidence']} confidence ellipse, "
                                   f"{data['exaggeration_label']}", styles))
-    for style, words in (("distance", "Distance measured"),
+    for style, words in (("baseline", "GNSS baseline"), ("distance", "Distance measured"),
                          ("sighting", "Sighted only (direction, angle, azimuth)"),
                          ("height", "Height difference only")):
         if present[style]:

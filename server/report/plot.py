@@ -53,6 +53,8 @@ BAR_LENGTHS: tuple[float, ...] = tuple(
     float(f"{m}e{k}") for k in range(-4, 5) for m in (1, 2, 5)
 )
 
+#: GNSS baselines: drawn in a colour and dash of their own, whatever else joins the pair.
+BASELINE_KINDS = frozenset({"baseline"})
 DISTANCE_KINDS = frozenset({"distance", "slope"})
 SIGHTING_KINDS = frozenset({"direction", "angle", "azimuth", "zenith"})
 HEIGHT_KINDS = frozenset({"level"})
@@ -131,6 +133,8 @@ def observation_ends(obs: ObservationResult) -> list[tuple[str, str]]:
 
 def _line_style(kinds: set[str]) -> str:
     """How a line is drawn, from the kinds of its observations."""
+    if kinds & BASELINE_KINDS:
+        return "baseline"
     if kinds & DISTANCE_KINDS:
         return "distance"
     if kinds & SIGHTING_KINDS:
@@ -515,6 +519,7 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
             "weighted": "weighted" in kinds_present,
             "free": "free" in kinds_present,
             "unused_point": any(not p["in_use"] for p in points),
+            "baseline": "baseline" in styles_present,
             "distance": "distance" in styles_present,
             "sighting": "sighting" in styles_present,
             "height": "height" in styles_present,

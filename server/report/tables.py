@@ -513,7 +513,7 @@ def observation_rows_of(result: AdjustmentResult,
         uncontrolled = not o.ignored and o.redundancy is not None and o.w is None
         out.append(ObservationRow(
             line=o.line,
-            kind=o.kind,
+            kind=o.kind if o.component is None else f"{o.kind} {o.component}",
             stations=stations(o),
             marks=_marks(o),
             separator=" – " if o.kind == "angle" and o.at is not None else " → ",
@@ -972,10 +972,14 @@ def context(result: AdjustmentResult, presets: Sequence[Preset] = (),
 
     ``obs_page`` / ``pt_page`` (results page only) show one page of the observation and
     point tables; without them every row is laid out, as the downloads need."""
+    # imported here: geodetic_tables formats with this module's helpers
+    from server.report.geodetic_tables import geodetic_context
+
     histogram = w_histogram(result)
     obs = page(len(result.observations), obs_page) if obs_page is not None else None
     pts = page(len(result.points), pt_page) if pt_page is not None else None
     return {
+        **geodetic_context(result, pts.window if pts else slice(None)),
         "result": result,
         "standards": standards_summary(result, presets),
         "presets": list(presets),

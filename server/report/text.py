@@ -5,6 +5,13 @@ from __future__ import annotations
 from collections.abc import Iterable
 
 from server import __version__
+from server.report.geodetic_tables import (
+    baseline_test_note,
+    baseline_test_rows,
+    geodetic_note,
+    geodetic_point_rows,
+    model_rows,
+)
 from server.report.tables import (
     ARCSEC,
     columns,
@@ -46,7 +53,6 @@ def report_text(result: AdjustmentResult) -> str:
     """A compact plain-text summary for the terminal."""
     v = verdict(result)
     s = result.summary
-    cols = columns(result)
     unit = length_label(result.length_unit)
     title = result.title or result.source or "field book"
     out = [f"Stationfit {__version__} — {title}"]
@@ -61,37 +67,13 @@ def report_text(result: AdjustmentResult) -> str:
         f"variance factor {fmt_ratio(s.variance_factor, 3)}"
     )
     out.append(precision_note(result))
+    out += _model_lines(result)
     out += [f"{c.symbol} {c.name}: {c.words}." for c in standards_summary(result)]
     if reduced := reductions_note(result):
         out.append(reduced)
 
-    header = ["point"]
-    right = set()
-    if cols.positions:
-        header += [f"east {unit}", f"north {unit}", "sd E", "sd N"]
-    if cols.heights:
-        header += [f"height {unit}", "sd H"]
-    if cols.ellipses:
-        header += ["ellipse a", "b", "az"]
-    header.append("datum")
-    right = set(range(1, len(header) - 1))
-    notes = any(p.note for p in result.points)
-    if notes:
-        header.append("note")
-    body = []
-    for p in point_rows(result):
-        row = [p.name]
-        if cols.positions:
-            row += [p.east, p.north, p.sd_east, p.sd_north]
-        if cols.heights:
-            row += [p.height, p.sd_height]
-        if cols.ellipses:
-            row += [p.semi_major, p.semi_minor, p.azimuth]
-        row.append(p.role)
-        if notes:
-            row.append(p.note)
-        body.append(row)
-    out += ["", "Points"] + _table(header, body, right)
+    out += ["", "Points"] + _points_table(result)
+    out += _geodetic_points(result)
     heights = relative_height_rows(result)
     if heights:
         rows_h = [[h.from_point, h.to_point, h.height_difference, h.sd,
@@ -131,8 +113,73 @@ def report_text(result: AdjustmentResult) -> str:
     else:
         out.append("none")
 
+    out += _baseline_tests(result)
+
     if result.warnings:
         out += ["", "Warnings"]
         out += [f"{i}. {w}" for i, w in enumerate(result.warnings, start=1)]
     out += ["", f"CAUTION: {result.caution}", ""]
     return "\n".join(out)
+
+
+def _model_lines(result: AdjustmentResult) -> list[str]:
+    """Model, CRS, refraction, geoid and the vertical (results with a CRS only)."""
+    return [f"{label}: {value}" for label, value, _ in model_rows(result)]
+
+
+def _geodetic_points(result: AdjustmentResult) -> list[str]:
+    """Latitude, longitude, heights and projection factors (results with a CRS only)."""
+    rows = geodetic_point_rows(result)
+    if not rows:
+        return []
+    unit = length_label(result.length_unit)
+    body = [[g.name, g.latitude, g.longitude, g.ellipsoidal_height, g.geoid, g.height,
+             g.scale_factor, g.convergence] for g in rows]
+    header = ["point", "latitude °", "longitude °", f"h {unit}", f"N {unit}", f"H {unit}",
+              "scale factor", "convergence"]
+    return ["", "Geodetic coordinates"] + _table(header, body, set(range(1, 8))) + [
+        geodetic_note(result)]
+
+
+def _baseline_tests(result: AdjustmentResult) -> list[str]:
+    """Every baseline's vᵀQv⁺v against χ²(3) (geodetic results with baselines only)."""
+    rows = baseline_test_rows(result)
+    if not rows:
+        return []
+    body = [[str(t.line), f"{t.from_point} → {t.to_point}", t.statistic, t.critical, t.status]
+            for t in rows]
+    table = _table(["line", "baseline", "vTQv+v", "critical", "test"], body, {0, 2, 3})
+    return ["", "Baseline tests"] + table + [baseline_test_note(result)]
+
+
+def _points_table(result: AdjustmentResult) -> list[str]:
+    """The points with the columns that apply to this network."""
+    cols = columns(result)
+    unit = length_label(result.length_unit)
+    header = ["point"]
+    right = set()
+    if cols.positions:
+        header += [f"east {unit}", f"north {unit}", "sd E", "sd N"]
+    if cols.heights:
+        header += [f"height {unit}", "sd H"]
+    if cols.ellipses:
+        header += ["ellipse a", "b", "az"]
+    header.append("datum")
+    right = set(range(1, len(header) - 1))
+    notes = any(p.note for p in result.points)
+    if notes:
+        header.append("note")
+    body = []
+    for p in point_rows(result):
+        row = [p.name]
+        if cols.positions:
+            row += [p.east, p.north, p.sd_east, p.sd_north]
+        if cols.heights:
+            row += [p.height, p.sd_height]
+        if cols.ellipses:
+            row += [p.semi_major, p.semi_minor, p.azimuth]
+        row.append(p.role)
+        if notes:
+            row.append(p.note)
+        body.append(row)
+    return _table(header, body, right)

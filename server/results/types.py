@@ -69,11 +69,22 @@ class Summary:
     #: (None only in runs stored before the choice existed: then it was σ̂₀², or 1 at r = 0).
     precision_method: str = "posterior"
     precision_factor: float | None = None
+    #: "plane" (1D/2D/joint) or "geodetic" (3D, Earth-centred unknowns)
+    model: str = "plane"
+    #: the ``crs`` line as given ("EPSG:32633", "local ..."), None without one
+    crs: str | None = None
+    #: refraction coefficient k in force in the geodetic model, else None
+    refraction: float | None = None
 
     def __post_init__(self) -> None:
         if self.precision_factor is None:
             factor = 1.0 if self.variance_factor is None else self.variance_factor
             object.__setattr__(self, "precision_factor", factor)
+
+    @property
+    def geodetic_keys(self) -> bool:
+        """True when the result carries the geodetic keys: a ``crs`` line or the 3D model."""
+        return self.model == "geodetic" or self.crs is not None
 
     @property
     def precision_estimated(self) -> bool:
@@ -97,11 +108,23 @@ class PointResult:
     ellipse: Ellipse | None
     in_use: bool = True
     note: str = ""
+    # With a ``crs`` (None without one): decimal degrees, south and west negative; heights and
+    # the geoid undulation N in length units (height = ellipsoidal_height − geoid); the
+    # projection's point scale factor and meridian convergence (degrees, grid north minus true
+    # north).  In the geodetic model sd_east/north/height and the ellipse are along local east,
+    # north and up, the ellipse azimuth from true north.
+    latitude: float | None = None
+    longitude: float | None = None
+    ellipsoidal_height: float | None = None
+    geoid: float | None = None
+    scale_factor: float | None = None
+    convergence: float | None = None
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
 class ObservationResult:
-    """One field observation: values in length units or decimal degrees, angular figures in arc-seconds."""
+    """One field observation: values in length units or decimal degrees, angular figures in
+    arc-seconds."""
 
     line: int
     kind: str
@@ -129,11 +152,29 @@ class ObservationResult:
     estimated_bias: float | None = None
     #: lines of the used observations whose w-test has |ρ| ≥ 0.99 with this one's
     inseparable: tuple[int, ...] = ()
+    #: "dx", "dy" or "dz" for the three entries of a baseline; None for other kinds
+    component: str | None = None
 
     @property
     def angular(self) -> bool:
         """True for kinds whose value is an angle."""
         return self.kind in ANGULAR_KINDS
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class BaselineTestResult:
+    """The test of a baseline's whole residual vector: vᵀ·Qv⁺·v against χ²(3) at 1 − snooping."""
+
+    line: int
+    from_point: str
+    to_point: str
+    statistic: float
+    critical: float
+    flagged: bool
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"line": self.line, "from": self.from_point, "to": self.to_point,
+                "statistic": self.statistic, "critical": self.critical, "flagged": self.flagged}
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -227,9 +268,25 @@ class AdjustmentResult:
     warnings: tuple[str, ...]
     caution: str = CAUTION
     relative_heights: tuple[RelativeHeightResult, ...] = ()
+    baseline_tests: tuple[BaselineTestResult, ...] = ()
+
+    @property
+    def geodetic(self) -> bool:
+        """True for a result of the geodetic 3D model."""
+        return self.summary.model == "geodetic"
 
     def to_json_dict(self) -> dict[str, object]:
-        """The JSON object of the result contract."""
+        """The JSON object of the result contract.
+
+        The geodetic keys are written only when the book has a ``crs`` line or the geodetic
+        model is in use, so that every other result keeps its text byte for byte.
+        """
+        out = self._plane_json_dict()
+        if self.summary.geodetic_keys:
+            _add_geodetic_keys(self, out)
+        return out
+
+    def _plane_json_dict(self) -> dict[str, object]:
         s = self.summary
         return {
             "format": 1,
@@ -344,3 +401,33 @@ class AdjustmentResult:
             "warnings": list(self.warnings),
             "caution": self.caution,
         }
+
+
+def _add_geodetic_keys(result: AdjustmentResult, out: dict[str, Any]) -> None:
+    """summary.model/crs/refraction, the point keys after ``height``, ``component`` after
+    ``kind`` (baselines only) and ``baseline_tests`` after ``observations``."""
+    s = result.summary
+    out["summary"].update(model=s.model, crs=s.crs, refraction=s.refraction)
+    out["points"] = [
+        _inserted(entry, "height", [
+            ("latitude", p.latitude), ("longitude", p.longitude),
+            ("ellipsoidal_height", p.ellipsoidal_height), ("geoid", p.geoid),
+            ("scale_factor", p.scale_factor), ("convergence", p.convergence)])
+        for entry, p in zip(out["points"], result.points, strict=True)
+    ]
+    out["observations"] = [
+        entry if o.component is None else _inserted(entry, "kind", [("component", o.component)])
+        for entry, o in zip(out["observations"], result.observations, strict=True)
+    ]
+    tests = [t.to_dict() for t in result.baseline_tests]
+    replaced = _inserted(out, "observations", [("baseline_tests", tests)])
+    out.clear()
+    out.update(replaced)
+
+
+def _inserted(entry: dict[str, Any], after: str,
+              pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    """A copy of ``entry`` with ``pairs`` placed right after the key ``after``."""
+    items = list(entry.items())
+    at = [key for key, _ in items].index(after) + 1
+    return dict(items[:at] + pairs + items[at:])
