@@ -40,7 +40,8 @@ DEG = math.pi / 180.0
 GON = math.pi / 200.0
 CRS = "crs EPSG:32633\n"
 
-#: An invented GNSS control job on a site grid (the manual shows the same book).
+#: An invented GNSS control job on a site grid (the manual shows it with standard deviations
+#: that match its noise; here the processor's figures are scaled by 3).
 #: The vectors were made from the marks' latitudes, longitudes and heights on GRS80 with
 #: N = -23.84 m and a few millimetres of noise added, so they agree as real ones would.
 HARBOR_HILL = """\

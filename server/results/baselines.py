@@ -110,11 +110,11 @@ def _entry(obs: Observation, i: int, observed: float, adjusted: float, residual:
 
     return ObservationResult(
         line=obs.line, kind=obs.kind, from_point=obs.from_point, at=obs.at, to=obs.to,
-        observed=observed * per_m, adjusted=adjusted * per_m, residual=residual * per_m,
-        sd=sd * per_m,
+        observed=float(observed) * per_m, adjusted=float(adjusted) * per_m,
+        residual=float(residual) * per_m, sd=float(sd) * per_m,
         redundancy=float(tests.redundancy[k, i]) if used else None,
         w=figure("w", 1.0), mdb=figure("mdb"),
         flagged=bool(tests.flagged[k, i]) if used else False,
-        ignored=obs.ignored, note=obs.note, booked=observed * per_m, scale_factor=None,
+        ignored=obs.ignored, note=obs.note, booked=float(observed) * per_m, scale_factor=None,
         estimated_bias=figure("estimated_bias"), inseparable=(), component=COMPONENTS[i],
     )

@@ -443,13 +443,16 @@ def _point_results(
 
 
 def _joined_pairs(network: Network) -> list[tuple[str, str]]:
-    """Point pairs joined by a used horizontal observation, first-seen order, no repeats."""
+    """Point pairs joined by a used observation of any kind but level and zenith, first-seen
+    order, no repeats."""
     pairs: dict[tuple[str, str], tuple[str, str]] = {}
     for obs in network.used:
         if obs.kind == "angle":
             assert obs.at is not None
             candidates = [(obs.at, obs.from_point), (obs.at, obs.to)]
-        elif obs.kind in ("distance", "azimuth", "direction"):
+        elif obs.kind in ("distance", "azimuth", "direction", "slope", "baseline"):
+            # (the geodetic model's slope distances and baselines join marks too; a zenith
+            # angle or a level line does not fix a horizontal position between them)
             candidates = [(obs.from_point, obs.to)]
         else:
             continue
