@@ -1,10 +1,8 @@
-"""The geodetic demo field books (demo_projects/geodetic/): they parse, the generator rewrites
+"""The geodetic demo field books (demo_projects/dam_control_3d*): they parse, the generator rewrites
 them identically, and their observations agree with the invented truth when computed by
 pyproj alone (projection inverse, +proj=cart, +proj=topocentric), within the noise the book
-states.  The blunder copy differs by the one component the answer key names.
-
-They sit in a subfolder so that the loops over demo_projects/*.fieldbook (golden output,
-web demos, packaging) do not pick them up before the geodetic adjustment exists.
+states.  The blunder copy differs by the one component the answer key names, and the adjustment
+finds it: its w is the largest and its baseline's vector test fails.
 """
 
 from __future__ import annotations
@@ -22,7 +20,7 @@ import pytest
 from server.fieldbook.parser import parse_fieldbook
 
 ROOT = Path(__file__).resolve().parents[1]
-FOLDER = ROOT / "demo_projects" / "geodetic"
+FOLDER = ROOT / "demo_projects"
 R_REFRACTION = 6_371_000.0  # the model's radius for k·S/(2R) (docs/fieldbook.md, refraction)
 
 
@@ -53,14 +51,27 @@ def _text(name: str) -> str:
     return (FOLDER / f"{name}.fieldbook").read_text(encoding="utf-8")
 
 
-def test_demos_parse_and_stay_out_of_the_plain_demo_loops():
+def test_demos_parse():
     for name in ("dam_control_3d", "dam_control_3d_blunder"):
         book = parse_fieldbook(_text(name), source=f"{name}.fieldbook")
         kinds = {o.kind for o in book.observations}
         assert {"baseline", "slope", "zenith", "direction", "level"} <= kinds
         assert book.crs is not None and book.warnings == ()
-    plain = {p.name for p in (ROOT / "demo_projects").glob("*.fieldbook")}
-    assert not any(name.startswith("dam_control_3d") for name in plain)
+
+
+def test_the_clean_demo_passes_and_the_blunder_is_found():
+    """The answer key (tools/GEODETIC_DEMOS.md): 45 mm in dy of line 48.  Clean, the global
+    test passes and nothing is flagged; with the blunder, that component has the largest |w|
+    and its baseline's χ²(3) test fails."""
+    from server.pipeline import adjust_fieldbook
+
+    clean = adjust_fieldbook(_text("dam_control_3d")).to_json_dict()
+    assert clean["summary"]["global_test"]["passed"]
+    assert not any(o["flagged"] for o in clean["observations"])
+    bad = adjust_fieldbook(_text("dam_control_3d_blunder")).to_json_dict()
+    worst = max(bad["observations"], key=lambda o: abs(o["w"] or 0.0))
+    assert (worst["line"], worst["component"]) == (48, "dy")
+    assert [t["line"] for t in bad["baseline_tests"] if t["flagged"]] == [48]
 
 
 def test_generator_rewrites_the_files_identically():

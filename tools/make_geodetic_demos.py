@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
 """Generate the invented demo field books of the geodetic 3D model.
 
-Writes ``demo_projects/geodetic/dam_control_3d.fieldbook`` and a copy with one blunder in
+Writes ``demo_projects/dam_control_3d.fieldbook`` and a copy with one blunder in
 one baseline component, ``dam_control_3d_blunder.fieldbook``, and the answer key
 ``tools/GEODETIC_DEMOS.md``.  Everything is simulated and invented (site, firm, people):
 
@@ -21,8 +21,6 @@ The seed is fixed: running the script again writes the same files byte for byte:
 
     .venv/bin/python tools/make_geodetic_demos.py
 
-The files sit in a subfolder so that the loops over ``demo_projects/*.fieldbook`` (golden
-output, web demos, packaging) leave them out until the geodetic adjustment is wired in.
 """
 
 from __future__ import annotations
@@ -42,7 +40,7 @@ from server.geodesy import frames  # noqa: E402 - after the path is set
 from server.geodesy.crs import Crs, crs_from_epsg  # noqa: E402
 from server.units import format_dms  # noqa: E402
 
-OUT_DIR = ROOT / "demo_projects" / "geodetic"
+OUT_DIR = ROOT / "demo_projects"
 ANSWER_KEY = ROOT / "tools" / "GEODETIC_DEMOS.md"
 SEED = 7031
 CRS_TEXT = "EPSG:32633"
