@@ -173,3 +173,21 @@ def test_direction_rounds_agree_with_pyproj_azimuths():
             # two directions, each 1″ with 1 mm centering at both ends
             sd = math.sqrt(sum(1 / 206264.8**2 + 2e-6 / dist**2 for dist in (distance, first_d)))
             assert abs(turned) < 5 * sd, (at, value)
+
+
+def test_a_geodetic_result_survives_the_project_store(tmp_path):
+    """Stored and read back, the result is the same object: baseline tests, components and
+    geodetic point figures included (nothing a reviewer saw is lost on reopening)."""
+    from server.pipeline import adjust_fieldbook
+    from server.store.sqlite import Store
+
+    text = _text("dam_control_3d_blunder")
+    result = adjust_fieldbook(text)
+    store = Store(tmp_path / "projects.sqlite")
+    project_id = store.create_project("dam", "dam.fieldbook", text.encode())
+    run_id = store.add_run(project_id, result)
+    run = store.run(project_id, run_id)
+    assert run is not None
+    again = run.result
+    assert again == result
+    assert again is not None and again.baseline_tests and again.points[0].latitude is not None
