@@ -188,6 +188,6 @@ def test_a_geodetic_result_survives_the_project_store(tmp_path):
     run_id = store.add_run(project_id, result)
     run = store.run(project_id, run_id)
     assert run is not None
-    again = run.result
+    again = run.result()
     assert again == result
     assert again is not None and again.baseline_tests and again.points[0].latitude is not None
