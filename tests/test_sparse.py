@@ -19,6 +19,7 @@ import pytest
 from server.engine import gauss_newton as engine
 from server.engine import kernels
 from server.engine import backends as sparse
+from server.engine import diagnosis
 from server.model.assembly import Assembly, ControlEquation
 from server.errors import NetworkError
 from server.fieldbook.parser import parse_fieldbook
@@ -96,7 +97,8 @@ NETWORKS = {
 @pytest.mark.parametrize("backend", BACKENDS)
 @pytest.mark.parametrize("name", list(NETWORKS))
 def test_sparse_path_reproduces_the_dense_path(name, backend):
-    """Coordinates, σ, ellipses, r_i, w, MDB and relative ellipses agree to 1e-9."""
+    """The dense LAPACK back end and each sparse one: coordinates, σ, ellipses, r_i, w, MDB
+    and relative ellipses agree to 1e-9."""
     text = NETWORKS[name]
     if name == "2D free network with an azimuth":
         # one azimuth fixes rotation: translation only is free
@@ -109,20 +111,43 @@ def test_sparse_path_reproduces_the_dense_path(name, backend):
     _assert_same(dense, sparse_result)
 
 
-def test_free_network_sparse_covariance_is_the_inner_constraint_one():
+def _bordered_inverse(network, solution):
+    """Qxx of the inner-constraint solution by the bordered system [[N, G], [Gᵀ, 0]]⁻¹,
+    with N and G formed here at the solution (independent of the S-transformation)."""
+    import scipy.linalg
+
+    from server.engine.datum import inner_constraints
+    from server.engine.state import State
+
+    state = State(network, solution.coordinates)
+    state.orientation[:] = [solution.orientations[line] for line in state.round_lines]
+    assembly = state.assembly(state.column)
+    evaluation = assembly.evaluate(*state.arrays())
+    design = assembly.design_matrix(evaluation.slot_val, len(network.parameters)).toarray()
+    normal = design.T @ (design / evaluation.sigmas[:, None] ** 2)
+    g = inner_constraints(state) * math.sqrt(np.abs(np.diag(normal)).max())
+    k = g.shape[1]
+    bordered = np.block([[normal, g], [g.T, np.zeros((k, k))]])
+    return scipy.linalg.inv(bordered)[: len(normal), : len(normal)]
+
+
+@pytest.mark.parametrize("method", ["dense"] + BACKENDS)
+def test_free_network_covariance_is_the_inner_constraint_one(method):
     """S-transformed minimal-datum Qxx equals the bordered system's, off the pattern too."""
     text = NETWORKS["2D free network"]
     network = build_network(parse_fieldbook(text))
-    dense = engine.adjust(network, method="dense")
-    sparse_solution = engine.adjust(network, method="sparse", factorization="superlu")
+    backend = None if method == "dense" else method
+    solution = engine.adjust(network, method="dense" if method == "dense" else "sparse",
+                             factorization=backend)
     n = len(network.parameters)
-    full = dense.covariance_block(np.arange(n))
+    full = _bordered_inverse(network, solution)
     rows, cols = np.meshgrid(np.arange(n), np.arange(n), indexing="ij")
-    got = sparse_solution.covariance_entries(rows.ravel(), cols.ravel()).reshape(n, n)
+    got = solution.covariance_entries(rows.ravel(), cols.ravel()).reshape(n, n)
     np.testing.assert_allclose(got, full, rtol=1e-8, atol=1e-12 * np.abs(full).max())
     # inner constraints: the coordinate corrections have no mean shift
     e_cols = [k for k, p in enumerate(network.parameters) if p.kind == "E"]
     assert abs(full[np.ix_(e_cols, e_cols)].sum()) < 1e-9 * np.abs(full).max() * len(e_cols) ** 2
+    assert abs(got[np.ix_(e_cols, e_cols)].sum()) < 1e-9 * np.abs(full).max() * len(e_cols) ** 2
 
 
 @pytest.mark.parametrize("backend", BACKENDS)
@@ -224,7 +249,7 @@ def test_selected_inverse_equals_the_dense_inverse_on_the_factor_pattern(backend
 
 def test_singular_normal_matrix_is_diagnosed_without_a_dense_eigendecomposition(monkeypatch):
     """A point seen by one direction only: the large-network diagnosis names it too."""
-    monkeypatch.setattr(engine, "DENSE_DIAGNOSIS_LIMIT", 0)
+    monkeypatch.setattr(diagnosis, "DENSE_DIAGNOSIS_LIMIT", 0)
     text = NETWORKS["2D held control"] + "directions P0_0\n  LOST 10:00:00\n  P0_1 20:00:00\nend\n"
     text += "point LOST east=512100 north=184100\n"
     network = build_network(parse_fieldbook(text))

@@ -1,9 +1,13 @@
-"""Sparse normal equations: a fixed pattern, one ordering, a Cholesky factor, a selected inverse.
+"""Factorization back ends of the normal equations, behind one ``Factorization`` interface.
 
-The pattern of N = AᵀPA is computed once per adjustment (``kernels.normal_pattern``);
-each iteration refills its numbers and refactorizes with the fill-reducing
-ordering found the first time.  Two factorization back ends give the same
-results:
+Three back ends give the same results (to rounding):
+
+* dense LAPACK (``scipy.linalg.cho_factor``) for small networks: N as a full
+  array, its Cholesky factor, and Qxx = N⁻¹ in full for the statistics;
+
+and, for everything else, a sparse N on a fixed pattern (computed once per
+adjustment by ``kernels.normal_pattern``; each iteration refills its numbers
+and refactorizes with the fill-reducing ordering found the first time):
 
 * CHOLMOD (SuiteSparse) through scikit-sparse, when it is installed: its own
   ordering (AMD, or METIS where built in) and a supernodal factorization;
@@ -12,7 +16,7 @@ results:
   ordering of the first factorization is kept and later matrices are handed
   over already permuted.
 
-``STATIONFIT_FACTORIZATION=superlu`` (or ``cholmod``) forces a back end.
+``STATIONFIT_FACTORIZATION=superlu`` (or ``cholmod``) forces a sparse back end.
 
 After the last iteration the factor is written as L·D·Lᵀ = N[order][:, order]
 (L unit lower triangular) and ``kernels.selected_inverse`` gives the
@@ -25,8 +29,10 @@ from __future__ import annotations
 
 import os
 import warnings
+from typing import Any
 
 import numpy as np
+import scipy.linalg
 import scipy.sparse
 import scipy.sparse.linalg
 
@@ -41,7 +47,7 @@ BACKEND_VARIABLE = "STATIONFIT_FACTORIZATION"
 SINGULAR_PIVOT = 1e-12
 
 
-class SingularMatrix(Exception):
+class SingularMatrixError(Exception):
     """The normal matrix is singular (or not positive definite)."""
 
 
@@ -55,7 +61,8 @@ def cholmod_available() -> bool:
 
 
 def choose_backend(requested: str | None = None) -> str:
-    """``"cholmod"`` or ``"superlu"``: the argument, else the environment, else the fastest installed."""
+    """The sparse back end, ``"cholmod"`` or ``"superlu"``: the argument, else the
+    environment, else the fastest installed."""
     choice = (requested or os.environ.get(BACKEND_VARIABLE, "") or "auto").lower()
     if choice not in ("auto", "cholmod", "superlu"):
         raise ValueError(f"unknown factorization back end {choice!r} (use cholmod or superlu)")
@@ -103,27 +110,85 @@ class NormalPattern:
 
 
 class Factorization:
-    """A Cholesky-type factorization of N with a fixed ordering (base class)."""
+    """A Cholesky-type factorization of N with a fixed ordering (base class).
+
+    ``dense`` back ends take N as a full array, the others as CSC on N's pattern.
+    """
 
     name = ""
+    dense = False
 
-    def factorize(self, matrix: scipy.sparse.csc_matrix, check: bool) -> None:
+    def factorize(self, matrix: Any, check: bool) -> None:
+        """Factorize N; with ``check`` also test the pivots (``SingularMatrixError``)."""
         raise NotImplementedError
 
     def solve(self, rhs: np.ndarray) -> np.ndarray:
         raise NotImplementedError
 
     def check(self) -> None:
-        """Raise ``SingularMatrix`` if a pivot is negligible against N's diagonal."""
+        """Raise ``SingularMatrixError`` if a pivot is negligible against N's diagonal."""
         raise NotImplementedError
 
     def ldl(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """(indptr, indices, unit-lower data, pivots d, order) with L·D·Lᵀ = N[order][:, order]."""
         raise NotImplementedError
 
+    def cofactor(self, n: int) -> Cofactor | DenseCofactor:
+        """Elements of Qxx = N⁻¹ from the last factor (a selected inverse when sparse)."""
+        return Cofactor(self, n)
+
+
+#: The back ends by name.
+BACKENDS = ("dense", "cholmod", "superlu")
+
 
 def make_factorization(backend: str) -> Factorization:
+    """The back end called ``backend`` (one of ``BACKENDS``)."""
+    if backend == "dense":
+        return DenseLapack()
     return _Cholmod() if backend == "cholmod" else _SuperLU()
+
+
+class DenseCofactor:
+    """Qxx held in full (small networks)."""
+
+    def __init__(self, qxx: np.ndarray) -> None:
+        self.qxx = qxx
+
+    def entries(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        return self.qxx[np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64)]
+
+
+class DenseLapack(Factorization):
+    """LAPACK's Cholesky of a full N (``cho_factor``): the fastest for small networks."""
+
+    name = "dense"
+    dense = True
+
+    def __init__(self) -> None:
+        self._factor: tuple[np.ndarray, bool] | None = None
+
+    def factorize(self, matrix: Any, check: bool) -> None:
+        # the pivots are always examined: for a full N that costs nothing
+        del check
+        try:
+            self._factor = scipy.linalg.cho_factor(matrix, lower=True, check_finite=False)
+        except np.linalg.LinAlgError:
+            raise SingularMatrixError from None
+        # Cholesky of a numerically singular matrix may succeed with a vanishing pivot
+        _check_pivots(np.diag(self._factor[0]) ** 2, np.diag(matrix))
+
+    def check(self) -> None:
+        """Done by ``factorize``."""
+
+    def solve(self, rhs: np.ndarray) -> np.ndarray:
+        assert self._factor is not None
+        return scipy.linalg.cho_solve(self._factor, rhs, check_finite=False)
+
+    def cofactor(self, n: int) -> DenseCofactor:
+        qxx = self.solve(np.eye(n))
+        qxx.flags.writeable = False
+        return DenseCofactor(qxx)
 
 
 class _Cholmod(Factorization):
@@ -133,7 +198,7 @@ class _Cholmod(Factorization):
         from sksparse import cholmod
 
         self._cholmod = cholmod
-        self._factor = None
+        self._factor: Any = None
         self._diagonal = np.ones(0)  # N's diagonal in the factor's (pivot) order
 
     def factorize(self, matrix: scipy.sparse.csc_matrix, check: bool) -> None:
@@ -146,7 +211,7 @@ class _Cholmod(Factorization):
                     self._factor = _analyze(cholmod, matrix)
                 self._factor.cholesky_inplace(matrix)
             except cholmod.CholmodNotPositiveDefiniteError:
-                raise SingularMatrix from None
+                raise SingularMatrixError from None
         self._diagonal = matrix.diagonal()[np.asarray(self._factor.P())]
         if check:
             self.check()
@@ -182,7 +247,7 @@ class _SuperLU(Factorization):
         self._order: np.ndarray | None = None  # N[order][:, order] is factorized
         self._gather: np.ndarray | None = None  # data of the permuted matrix from N's data
         self._permuted: tuple[np.ndarray, np.ndarray] | None = None
-        self._lu = None
+        self._lu: Any = None
         self._diagonal = np.ones(0)  # N's diagonal in the order of U's pivots
         self._inner: np.ndarray | None = None  # SuperLU's own column order of the permuted matrix
 
@@ -193,7 +258,8 @@ class _SuperLU(Factorization):
             self._order = np.argsort(lu.perm_c).astype(np.int64)
             # where each element of the permuted matrix comes from in N's data
             marker = scipy.sparse.csc_matrix(
-                (np.arange(matrix.nnz, dtype=float), matrix.indices, matrix.indptr), shape=matrix.shape
+                (np.arange(matrix.nnz, dtype=float), matrix.indices, matrix.indptr),
+                shape=matrix.shape,
             )
             permuted = marker[self._order][:, self._order].tocsc()
             permuted.sort_indices()
@@ -201,11 +267,13 @@ class _SuperLU(Factorization):
             self._permuted = (permuted.indices.copy(), permuted.indptr.copy())
         assert self._gather is not None and self._permuted is not None
         indices, indptr = self._permuted
-        permuted = scipy.sparse.csc_matrix((matrix.data[self._gather], indices, indptr), shape=(n, n))
+        permuted = scipy.sparse.csc_matrix(
+            (matrix.data[self._gather], indices, indptr), shape=(n, n)
+        )
         self._lu = self._splu(permuted, "NATURAL")
         perm_r, perm_c = self._lu.perm_r, self._lu.perm_c
         if not np.array_equal(perm_r, perm_c):
-            raise SingularMatrix  # an off-diagonal pivot: a zero on the diagonal
+            raise SingularMatrixError  # an off-diagonal pivot: a zero on the diagonal
         self._inner = np.argsort(perm_c).astype(np.int64)
         # U's j-th pivot belongs to column inner[j] of the permuted matrix
         self._diagonal = matrix.diagonal()[self._order[self._inner]]
@@ -217,7 +285,7 @@ class _SuperLU(Factorization):
         _check_pivots(self._lu.U.diagonal(), self._diagonal)
 
     @staticmethod
-    def _splu(matrix: scipy.sparse.csc_matrix, ordering: str):
+    def _splu(matrix: scipy.sparse.csc_matrix, ordering: str) -> Any:
         try:
             return scipy.sparse.linalg.splu(
                 matrix,
@@ -226,7 +294,7 @@ class _SuperLU(Factorization):
                 options={"SymmetricMode": True},
             )
         except RuntimeError:  # "Factor is exactly singular"
-            raise SingularMatrix from None
+            raise SingularMatrixError from None
 
     def solve(self, rhs: np.ndarray) -> np.ndarray:
         assert self._lu is not None and self._order is not None
@@ -250,7 +318,7 @@ class _SuperLU(Factorization):
         )
 
 
-def _analyze(cholmod, matrix: scipy.sparse.csc_matrix):
+def _analyze(cholmod: Any, matrix: scipy.sparse.csc_matrix) -> Any:
     """CHOLMOD's symbolic analysis with nested dissection (METIS) where it is built in.
 
     Measured on the benchmark's 2D networks: METIS leaves about 30 % less fill
@@ -273,9 +341,10 @@ METIS_DENSITY = 10
 
 
 def _check_pivots(pivots: np.ndarray, diagonal: np.ndarray) -> None:
-    """Raise ``SingularMatrix`` when a pivot has lost all but 1e-12 of its diagonal element."""
+    """Raise ``SingularMatrixError`` when a pivot has lost all but ``SINGULAR_PIVOT`` of its
+    diagonal element."""
     if pivots.size and not np.all(pivots > SINGULAR_PIVOT * diagonal):
-        raise SingularMatrix
+        raise SingularMatrixError
 
 
 class Cofactor:

@@ -13,7 +13,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from server.engine.gauss_newton import _State
+from server.engine.state import State
 from server.errors import NetworkError
 from server.model import geodetic_equations as ge
 from server.model.assembly import Assembly, GeodeticRows
@@ -23,7 +23,7 @@ from server.model.network import Network
 from server.model.whitening import CorrelatedBlock
 
 
-class GeodeticState(_State):
+class GeodeticState(State):
     """Positions X, Y, Z per point; unknowns along local east, north and up."""
 
     def __init__(self, network: Network, correlated: Sequence[CorrelatedBlock] = ()) -> None:
@@ -107,8 +107,3 @@ class GeodeticState(_State):
         sines = np.bincount(r[ok], weights=np.sin(offset), minlength=len(self.round_lines))
         cosines = np.bincount(r[ok], weights=np.cos(offset), minlength=len(self.round_lines))
         return np.arctan2(sines, cosines)
-
-    def inner_constraints(self) -> np.ndarray:
-        raise NetworkError("a free geodetic network (no control) cannot be adjusted; hold "
-                           "control points fixed")
-

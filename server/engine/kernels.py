@@ -28,20 +28,24 @@ Without numba the same functions run as plain Python (correct, slow).
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 try:  # numba is a declared dependency; the fallback keeps the module importable
     from numba import njit
 except ImportError:  # pragma: no cover - exercised only where numba is missing
 
-    def njit(*args, **kwargs):  # type: ignore[no-redef]
+    def njit(*args: Any, **kwargs: Any) -> Any:  # type: ignore[no-redef]
         if args and callable(args[0]):
             return args[0]
         return lambda function: function
 
 
 @njit(cache=True, nogil=True)
-def normal_pattern(n, row_ptr, slot_col):  # pragma: no cover - compiled
+def normal_pattern(
+    n: int, row_ptr: np.ndarray, slot_col: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:  # pragma: no cover - compiled
     """Pattern of AᵀA (CSC, sorted) and the data position of every slot pair.
 
     Row r of A has slots row_ptr[r] … row_ptr[r+1]−1 with columns slot_col.
@@ -103,7 +107,14 @@ def normal_pattern(n, row_ptr, slot_col):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def fill_normal(nnz, row_ptr, slot_val, weights, pair_ptr, targets):  # pragma: no cover
+def fill_normal(
+    nnz: int,
+    row_ptr: np.ndarray,
+    slot_val: np.ndarray,
+    weights: np.ndarray,
+    pair_ptr: np.ndarray,
+    targets: np.ndarray,
+) -> np.ndarray:  # pragma: no cover - compiled
     """N's data: Σ_r w_r·a_rs·a_rt, each term added to its fixed position.
 
     The term of a pair and of its mirror is the same product, so N is
@@ -127,7 +138,13 @@ def fill_normal(nnz, row_ptr, slot_val, weights, pair_ptr, targets):  # pragma: 
 
 
 @njit(cache=True, nogil=True)
-def row_quadratic(row_ptr, slot_val, pair_ptr, targets, q_data):  # pragma: no cover
+def row_quadratic(
+    row_ptr: np.ndarray,
+    slot_val: np.ndarray,
+    pair_ptr: np.ndarray,
+    targets: np.ndarray,
+    q_data: np.ndarray,
+) -> np.ndarray:  # pragma: no cover - compiled
     """a_r·Q·a_rᵀ for every row r, with Q's elements on N's pattern in ``q_data``."""
     m = row_ptr.shape[0] - 1
     out = np.zeros(m, np.float64)
@@ -138,13 +155,14 @@ def row_quadratic(row_ptr, slot_val, pair_ptr, targets, q_data):  # pragma: no c
         total = 0.0
         for a in range(k):
             for b in range(k):
-                total += slot_val[start + a] * slot_val[start + b] * q_data[targets[base + a * k + b]]
+                q = q_data[targets[base + a * k + b]]
+                total += slot_val[start + a] * slot_val[start + b] * q
         out[r] = total
     return out
 
 
 @njit(cache=True, nogil=True)
-def supernodes(indptr, indices):  # pragma: no cover - compiled
+def supernodes(indptr: np.ndarray, indices: np.ndarray) -> np.ndarray:  # pragma: no cover
     """Start columns of the supernodes of L (columns sharing one structure below them).
 
     Column j joins column j+1's supernode when its first row below the
@@ -173,7 +191,9 @@ def supernodes(indptr, indices):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def selected_inverse(indptr, indices, lower, pivots):  # pragma: no cover - compiled
+def selected_inverse(
+    indptr: np.ndarray, indices: np.ndarray, lower: np.ndarray, pivots: np.ndarray
+) -> np.ndarray:  # pragma: no cover - compiled
     """Z = (L·D·Lᵀ)⁻¹ on the pattern of L (unit lower, diagonal stored first per column).
 
     Blocked by supernodes: for a supernode J with rows R below it,
@@ -186,7 +206,7 @@ def selected_inverse(indptr, indices, lower, pivots):  # pragma: no cover - comp
     starts = supernodes(indptr, indices)
     column_supernode = np.empty(n, np.int64)
     for s in range(starts.shape[0] - 1):
-        column_supernode[starts[s]:starts[s + 1]] = s
+        column_supernode[starts[s] : starts[s + 1]] = s
     for s in range(starts.shape[0] - 2, -1, -1):
         j0 = starts[s]
         j1 = starts[s + 1]
@@ -194,52 +214,12 @@ def selected_inverse(indptr, indices, lower, pivots):  # pragma: no cover - comp
         # rows below the block: the tail of the last column of the supernode
         tail_first = indptr[j1 - 1] + 1
         height = indptr[j1] - tail_first
-        rows = indices[tail_first:indptr[j1]]
-        # dense unit lower L_JJ and L_RJ
-        ljj = np.zeros((width, width))
-        lrj = np.empty((height, width))
-        for c in range(width):
-            p = indptr[j0 + c]
-            for a in range(c, width):
-                ljj[a, c] = lower[p + a - c]
-            for a in range(height):
-                lrj[a, c] = lower[p + width - c + a]
-        # L_JJ⁻¹ by forward substitution (unit diagonal)
-        linv = np.zeros((width, width))
-        for c in range(width if width <= 24 else 0):
-            linv[c, c] = 1.0
-            for a in range(c + 1, width):
-                total = 0.0
-                for b in range(c, a):
-                    total += ljj[a, b] * linv[b, c]
-                linv[a, c] = -total
-        zjj = np.zeros((width, width))
-        if width > 24:
-            linv = np.ascontiguousarray(np.linalg.inv(ljj))
-            zjj = np.dot(linv.T / pivots[j0:j1], linv)
-        else:
-            for a in range(width):
-                for b in range(a + 1):
-                    total = 0.0
-                    for k in range(a, width):
-                        total += linv[k, a] * linv[k, b] / pivots[j0 + k]
-                    zjj[a, b] = total
+        rows = indices[tail_first : indptr[j1]]
+        ljj, lrj = _supernode_block(indptr, lower, j0, width, height)
+        linv, zjj = _diagonal_block(ljj, pivots[j0:j1])
         if height > 0:
-            y = np.dot(lrj, linv) if height * width > 64 else _small_product(lrj, linv)
             zrr = _gather(z, indptr, indices, rows, starts, column_supernode)
-            if height * height * width > 4096:
-                zry = np.dot(zrr, y)
-            else:
-                zry = _small_product(zrr, y)
-            if height * width * width > 4096:
-                zjj += np.dot(y.T, zry)
-            else:
-                for a in range(width):
-                    for b in range(a + 1):
-                        total = 0.0
-                        for k in range(height):
-                            total += y[k, a] * zry[k, b]
-                        zjj[a, b] += total
+            zry = _below_block(lrj, linv, zrr, zjj)
             for c in range(width):
                 p = indptr[j0 + c] + width - c
                 for a in range(height):
@@ -252,7 +232,81 @@ def selected_inverse(indptr, indices, lower, pivots):  # pragma: no cover - comp
 
 
 @njit(cache=True, nogil=True)
-def _gather(z, indptr, indices, rows, starts, column_supernode):  # pragma: no cover - compiled
+def _supernode_block(
+    indptr: np.ndarray, lower: np.ndarray, j0: int, width: int, height: int
+) -> tuple[np.ndarray, np.ndarray]:  # pragma: no cover - compiled
+    """The supernode's dense unit lower L_JJ (width²) and the rows below it, L_RJ."""
+    ljj = np.zeros((width, width))
+    lrj = np.empty((height, width))
+    for c in range(width):
+        p = indptr[j0 + c]
+        for a in range(c, width):
+            ljj[a, c] = lower[p + a - c]
+        for a in range(height):
+            lrj[a, c] = lower[p + width - c + a]
+    return ljj, lrj
+
+
+@njit(cache=True, nogil=True)
+def _diagonal_block(
+    ljj: np.ndarray, pivots: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:  # pragma: no cover - compiled
+    """L_JJ⁻¹ and L_JJ⁻ᵀ·D_J⁻¹·L_JJ⁻¹ (lower triangle): loops for a narrow block, BLAS else."""
+    width = ljj.shape[0]
+    if width > 24:
+        linv = np.ascontiguousarray(np.linalg.inv(ljj))
+        return linv, np.dot(linv.T / pivots, linv)
+    # L_JJ⁻¹ by forward substitution (unit diagonal)
+    linv = np.zeros((width, width))
+    for c in range(width):
+        linv[c, c] = 1.0
+        for a in range(c + 1, width):
+            total = 0.0
+            for b in range(c, a):
+                total += ljj[a, b] * linv[b, c]
+            linv[a, c] = -total
+    zjj = np.zeros((width, width))
+    for a in range(width):
+        for b in range(a + 1):
+            total = 0.0
+            for k in range(a, width):
+                total += linv[k, a] * linv[k, b] / pivots[k]
+            zjj[a, b] = total
+    return linv, zjj
+
+
+@njit(cache=True, nogil=True)
+def _below_block(
+    lrj: np.ndarray, linv: np.ndarray, zrr: np.ndarray, zjj: np.ndarray
+) -> np.ndarray:  # pragma: no cover - compiled
+    """Z_RR·Y with Y = L_RJ·L_JJ⁻¹ (= −Z_RJ); adds Yᵀ·Z_RR·Y to ``zjj`` (lower triangle).
+
+    Small products by loops, large ones by BLAS (measured crossovers).
+    """
+    height, width = lrj.shape
+    y = np.dot(lrj, linv) if height * width > 64 else _small_product(lrj, linv)
+    zry = np.dot(zrr, y) if height * height * width > 4096 else _small_product(zrr, y)
+    if height * width * width > 4096:
+        zjj += np.dot(y.T, zry)
+        return zry
+    for a in range(width):
+        for b in range(a + 1):
+            total = 0.0
+            for k in range(height):
+                total += y[k, a] * zry[k, b]
+            zjj[a, b] += total
+    return zry
+
+
+@njit(cache=True, nogil=True)
+def _gather(
+    z: np.ndarray,
+    indptr: np.ndarray,
+    indices: np.ndarray,
+    rows: np.ndarray,
+    starts: np.ndarray,
+    column_supernode: np.ndarray,
+) -> np.ndarray:  # pragma: no cover - compiled
     """Z_RR (dense, both triangles) from the columns of the supernodes already done.
 
     The rows R fall into a few later supernodes T.  Within T every column
@@ -297,7 +351,7 @@ def _gather(z, indptr, indices, rows, starts, column_supernode):  # pragma: no c
 
 
 @njit(cache=True, nogil=True)
-def _small_product(a, b):  # pragma: no cover - compiled
+def _small_product(a: np.ndarray, b: np.ndarray) -> np.ndarray:  # pragma: no cover - compiled
     out = np.zeros((a.shape[0], b.shape[1]))
     for i in range(a.shape[0]):
         for k in range(a.shape[1]):
@@ -309,7 +363,9 @@ def _small_product(a, b):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def selected_inverse_columns(indptr, indices, lower, pivots):  # pragma: no cover - compiled
+def selected_inverse_columns(
+    indptr: np.ndarray, indices: np.ndarray, lower: np.ndarray, pivots: np.ndarray
+) -> np.ndarray:  # pragma: no cover - compiled
     """The same as ``selected_inverse``, one column at a time (the plain recurrences).
 
     Kept as the readable form of the algorithm and as a check on the blocked one.
@@ -344,7 +400,9 @@ def selected_inverse_columns(indptr, indices, lower, pivots):  # pragma: no cove
 
 
 @njit(cache=True, nogil=True)
-def lookup(indptr, indices, rows, cols):  # pragma: no cover - compiled
+def lookup(
+    indptr: np.ndarray, indices: np.ndarray, rows: np.ndarray, cols: np.ndarray
+) -> np.ndarray:  # pragma: no cover - compiled
     """Data positions of (rows[p], cols[p]) in a CSC pattern with sorted rows; −1 if absent."""
     out = np.empty(rows.shape[0], np.int64)
     for p in range(rows.shape[0]):

@@ -18,7 +18,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
-from functools import partial
+from functools import cached_property, partial
 from typing import Any
 
 import numpy as np
@@ -100,9 +100,9 @@ class Evaluation:
     sigmas: np.ndarray
     factors: tuple[tuple[np.ndarray, np.ndarray], ...] = ()
 
-    @property
+    @cached_property
     def weights(self) -> np.ndarray:
-        """P's diagonal, 1/σ², in the rows the engine sees (whitened rows: 1)."""
+        """P's diagonal, 1/σ², in the rows the engine sees (whitened rows: 1); computed once."""
         return 1.0 / self.sigmas**2
 
     def unwhiten(self, values: np.ndarray) -> np.ndarray:

@@ -17,7 +17,10 @@ from __future__ import annotations
 
 import heapq
 import math
+import operator
+from collections.abc import Callable
 from dataclasses import dataclass
+from functools import partial
 from itertools import repeat
 
 from server.fieldbook.model import Fieldbook
@@ -225,7 +228,7 @@ def _chains(
     members: list[list[int]] = []
     done: set[int] = set()
 
-    def follow(origin: str, k: int, node: str, junction) -> None:
+    def follow(origin: str, k: int, node: str, junction: Callable[[str], bool]) -> None:
         chain = [k]
         done.add(k)
         while not junction(node):
@@ -248,7 +251,7 @@ def _chains(
     for node, links in adjacency.items():  # rings with no junction at all
         for k, nxt in links:
             if k not in done:
-                follow(node, k, nxt, lambda n, ring=node: n == ring)
+                follow(node, k, nxt, partial(operator.eq, node))  # back at the ring's start
     return start, end, members
 
 

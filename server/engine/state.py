@@ -1,0 +1,163 @@
+"""The engine's current estimate: coordinates and orientations as arrays, and their columns.
+
+Every point has an east, north and height entry (NaN where the network has
+none) and every direction round an orientation; ``column`` maps each to its
+unknown (−1 where held).  Weighted control becomes ``ControlRow`` objects, the
+direct observations of one coordinate component each that the assembly adds
+after the field observations.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from server.model.assembly import Assembly, ControlEquation
+from server.model.kinds import KINDS, Kind
+from server.model.network import Network
+from server.model.whitening import CorrelatedBlock
+
+_COMPONENT = {"E": 0, "N": 1, "H": 2}
+#: Codes of the unknowns in ``State.kind``.
+EAST, NORTH, HEIGHT, ORIENTATION = 0, 1, 2, 3
+
+
+@dataclass(frozen=True, slots=True)
+class ControlRow:
+    """Weighted control treated as a direct observation of one coordinate component."""
+
+    point: str
+    component: str  # "E", "N" or "H"
+    given: float
+    sigma: float
+
+
+class State:
+    """Coordinates and orientations as arrays, and the column of each unknown."""
+
+    def __init__(
+        self,
+        network: Network,
+        coords: dict[str, tuple[float, float, float]],
+        kinds: Mapping[str, Kind] = KINDS,
+        correlated: Sequence[CorrelatedBlock] = (),
+    ) -> None:
+        self.kinds, self.correlated = kinds, correlated
+        self.network = network
+        self.names = [p.name for p in network.points]
+        self.point_index = {name: k for k, name in enumerate(self.names)}
+        values = np.array([coords[name] for name in self.names], dtype=float).reshape(-1, 3)
+        self.east, self.north, self.height = (values[:, c].copy() for c in range(3))
+        params = network.parameters
+        self.round_lines = sorted({p.round_line for p in params if p.kind == "O" and p.round_line})
+        self.round_index = {line: k for k, line in enumerate(self.round_lines)}
+        n_points = len(self.names)
+        self.column = {c: np.full(n_points, -1, np.int64) for c in "ENH"}
+        self.column["O"] = np.full(len(self.round_lines), -1, np.int64)
+        kind = np.empty(len(params), np.int64)  # EAST, NORTH, HEIGHT or ORIENTATION
+        target = np.empty(len(params), np.int64)  # point or round index
+        for k, p in enumerate(params):
+            if p.kind == "O":
+                assert p.round_line is not None
+                index = self.round_index[p.round_line]
+                kind[k] = ORIENTATION
+            else:
+                assert p.point is not None
+                index = self.point_index[p.point]
+                kind[k] = _COMPONENT[p.kind]
+            self.column[p.kind][index] = k
+            target[k] = index
+        self.kind, self.target = kind, target
+        self.orientation = self._start_orientations()
+        self.control_rows = control_rows(network)
+        self.control = [
+            ControlEquation(self.point_index[c.point], _COMPONENT[c.component], c.given, c.sigma)
+            for c in self.control_rows
+        ]
+
+    def arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        return self.east, self.north, self.height, self.orientation
+
+    def assembly(self, columns: dict[str, np.ndarray]) -> Assembly:
+        return Assembly(
+            self.network.used,
+            self.point_index,
+            self.round_index,
+            columns["E"],
+            columns["N"],
+            columns["H"],
+            columns["O"],
+            self.control,
+            self.kinds,
+            self.correlated,
+        )
+
+    def apply(self, correction: np.ndarray) -> None:
+        for code, array in enumerate((self.east, self.north, self.height, self.orientation)):
+            pick = self.kind == code
+            array[self.target[pick]] += correction[pick]  # one unknown per component: no repeats
+
+    def largest_move(self, correction: np.ndarray) -> float:
+        """Largest correction in metres; orientations count at a 1 km lever arm."""
+        if correction.size == 0:
+            return 0.0
+        lever = np.where(self.kind == ORIENTATION, 1000.0, 1.0)
+        return float(np.max(np.abs(correction) * lever))
+
+    def coordinates(self) -> dict[str, tuple[float, float, float]]:
+        columns = zip(self.east.tolist(), self.north.tolist(), self.height.tolist())
+        return dict(zip(self.names, columns))
+
+    def positions(self) -> dict[str, tuple[float, float, float]] | None:
+        """Earth-centred positions (the geodetic model's state only)."""
+        return None
+
+    def orientation_dict(self) -> dict[int, float]:
+        return dict(zip(self.round_lines, self.orientation.tolist()))
+
+    def _start_orientations(self) -> np.ndarray:
+        """Each round's orientation as the mean of (azimuth − direction) over its targets."""
+        rounds = [
+            (
+                self.round_index[o.round_line],
+                self.point_index[o.from_point],
+                self.point_index[o.to],
+                o.value,
+            )
+            for o in self.network.used
+            if o.round_line in self.round_index
+            and o.kind in self.kinds
+            and self.kinds[o.kind].has_round
+        ]
+        orientation = np.zeros(len(self.round_lines))
+        if not rounds:
+            return orientation
+        table = np.array(rounds, dtype=float)
+        r, i, j = (table[:, c].astype(np.int64) for c in range(3))
+        d_east = self.east[j] - self.east[i]
+        d_north = self.north[j] - self.north[i]
+        ok = np.isfinite(d_east) & np.isfinite(d_north)
+        offset = np.arctan2(d_east[ok], d_north[ok]) - table[ok, 3]
+        # average on the circle: offsets near 0 and 2π must not cancel
+        sines = np.bincount(r[ok], weights=np.sin(offset), minlength=len(self.round_lines))
+        cosines = np.bincount(r[ok], weights=np.cos(offset), minlength=len(self.round_lines))
+        return np.arctan2(sines, cosines)
+
+
+def control_rows(network: Network) -> tuple[ControlRow, ...]:
+    """Weighted control of estimated components, as rows: E and N together, then H."""
+    rows: list[ControlRow] = []
+    estimated = {(p.point, p.kind) for p in network.parameters}
+    for p in network.points:
+        if "en" in p.weighted and (p.name, "E") in estimated:
+            assert p.east is not None and p.north is not None and p.sd_en is not None
+            rows += [
+                ControlRow(p.name, "E", p.east, p.sd_en),
+                ControlRow(p.name, "N", p.north, p.sd_en),
+            ]
+        if "h" in p.weighted and (p.name, "H") in estimated:
+            assert p.height is not None and p.sd_h is not None
+            rows.append(ControlRow(p.name, "H", p.height, p.sd_h))
+    return tuple(rows)
