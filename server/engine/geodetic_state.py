@@ -14,7 +14,6 @@ from collections.abc import Sequence
 import numpy as np
 
 from server.engine.state import State
-from server.errors import NetworkError
 from server.model import geodetic_equations as ge
 from server.model.assembly import Assembly, GeodeticRows
 from server.model.geodetic import GeodeticFrame, height_only_points
@@ -30,7 +29,7 @@ class GeodeticState(State):
         frame = network.geodetic
         assert frame is not None
         self.frame: GeodeticFrame = frame
-        start = {name: tuple(xyz) for name, xyz in frame.start.items()}
+        start = {name: (float(x), float(y), float(z)) for name, (x, y, z) in frame.start.items()}
         super().__init__(network, start, geodetic_kinds(frame.crs, frame.refraction), correlated)
         self.undulation = np.array([frame.undulation.get(n, 0.0) for n in self.names])
         only = height_only_points(network.fieldbook)

@@ -189,11 +189,9 @@ def _crs_centre(crs: Crs) -> tuple[float, float]:
     """Latitude and longitude (radians) of a place the CRS covers."""
     if crs.area_of_use is not None:
         west, south, east, north = crs.area_of_use
-        lat, lon = math.radians((south + north) / 2.0), math.radians((west + east) / 2.0)
-    else:
-        lat, lon = crs.grid_to_geodetic(np.array([0.0]), np.array([0.0]))
-        lat, lon = float(np.asarray(lat).reshape(-1)[0]), float(np.asarray(lon).reshape(-1)[0])
-    return lat, lon
+        return math.radians((south + north) / 2.0), math.radians((west + east) / 2.0)
+    lat, lon = crs.grid_to_geodetic(np.array([0.0]), np.array([0.0]))
+    return float(np.asarray(lat).reshape(-1)[0]), float(np.asarray(lon).reshape(-1)[0])
 
 
 def _start_observations(fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.KnownPoint]

@@ -122,8 +122,9 @@ def network_drawing(data: dict[str, Any], width: float, fonts: Fonts) -> Drawing
         if ln["flagged"]:
             drawing.add(Line(x1, y1, x2, y2, strokeColor=_faded(FAIL, 0.32), strokeWidth=9 * k,
                              strokeDashArray=[9 * k, 5 * k]))
-            dash = None if ln["style"] == "distance" else [
-                d * k for d in (_LINE_DASHES["baseline"] if ln["style"] == "baseline" else (6, 4))]
+            pattern = _LINE_DASHES.get("baseline") if ln["style"] == "baseline" else (6, 4)
+            dash = None if ln["style"] == "distance" or pattern is None else [
+                d * k for d in pattern]
             drawing.add(Line(x1, y1, x2, y2, strokeColor=FAIL, strokeWidth=2 * k,
                              strokeDashArray=dash))
         else:

@@ -208,7 +208,7 @@ def _observation_results(
     controlled_list = controlled.tolist()
 
     row_of = {id(obs): row for row, obs in enumerate(used)}
-    results = []
+    results: list[ObservationResult] = []
     uncontrolled: list[str] = []
     for obs in network.fieldbook.observations:
         if id(obs) in baselines.entries:
@@ -245,8 +245,14 @@ def _observation_results(
             )
             continue
         is_angle = obs.kind in ANGULAR_KINDS
-        to_value = math.degrees if is_angle else (lambda x: x * per_m)
-        to_small = (lambda x: x * ARCSEC_PER_RAD) if is_angle else (lambda x: x * per_m)
+        value_unit, small_unit = (_DEG_PER_RAD, ARCSEC_PER_RAD) if is_angle else (per_m, per_m)
+
+        def to_value(x: float, unit: float = value_unit) -> float:
+            return x * unit
+
+        def to_small(x: float, unit: float = small_unit) -> float:
+            return x * unit
+
         value_si = _evaluate(obs, solution)
         residual_one = None if value_si is None else _difference(obs, value_si)
         if value_si is not None and is_angle and obs.kind != "zenith":
@@ -406,17 +412,17 @@ def _point_results(
     by_component: tuple[dict[str, int], ...] = ({}, {}, {})
     component_index = {"E": 0, "N": 1, "H": 2}
     for (name, comp), k in column.items():
-        if comp in component_index:
+        if comp in component_index and isinstance(name, str):
             by_component[component_index[comp]][name] = k
     for p in network.points:
         adjusted = coordinates.get(p.name, absent)
         out: list[float | None] = [None, None, None]
         sds: list[float | None] = [None, None, None]
         for index, original in ((0, p.east), (1, p.north), (2, p.height)):
-            k = by_component[index].get(p.name)
-            if k is not None:
+            found = by_component[index].get(p.name)
+            if found is not None:
                 out[index] = float(adjusted[index]) * per_m
-                sds[index] = sd_all[k]
+                sds[index] = sd_all[found]
             else:
                 out[index] = None if original is None else original * per_m
                 if original is not None and (
@@ -554,7 +560,7 @@ def _relative_results(
             ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
             pairs.append((a, b, ends, True))
     unknowns = np.array([ends for _, _, ends, _ in pairs], dtype=np.int64).reshape(-1, 4)
-    held = (unknowns < 0).all(axis=1).tolist()
+    held = [bool(x) for x in np.all(unknowns < 0, axis=1).tolist()]
     sign = np.array([-1.0, -1.0, 1.0, 1.0])
     # Σ_Δ over (E, N) from the 4×4 block of the pair's unknowns, held ones contributing nothing
     first, second = np.meshgrid(np.arange(4), np.arange(4), indexing="ij")
@@ -644,7 +650,7 @@ def _relative_height_results(
     weights = np.repeat(sign, 2) * np.tile(sign, 2)  # + − − +
     variances = variance * (q * weights).sum(axis=1)
     sds = (np.sqrt(np.maximum(variances, 0.0)) * per_m).tolist()
-    held = (ends < 0).all(axis=1).tolist()
+    held = [bool(x) for x in np.all(ends < 0, axis=1).tolist()]
     results = []
     for k, (a, b) in enumerate(pairs):
         results.append(
