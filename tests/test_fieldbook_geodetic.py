@@ -24,7 +24,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from server.errors import FieldbookError, Issue, NetworkError
+from server.errors import FieldbookError, Issue
 from server.fieldbook import parser as parser_module
 from server.fieldbook.baselines import MIN_CORRELATION_DETERMINANT
 from server.fieldbook.edits import ObservationEdit, apply_edits, booked_value

@@ -26,7 +26,7 @@ from pathlib import Path
 
 import pytest
 
-from server.errors import FieldbookError, NetworkError
+from server.errors import FieldbookError
 from server.fieldbook.lexer import DIRECTION_ENTRY, GRAMMARS, SD_RULES
 from server.fieldbook import model as fieldbook_model
 from server.pipeline import adjust_fieldbook

@@ -261,7 +261,7 @@ class _Propagator:
 
     def _place_resections(self) -> bool:
         placed = False
-        for line, directions in self.rounds.items():
+        for directions in self.rounds.values():
             station = directions[0].from_point
             if station in self.known:
                 continue
