@@ -43,6 +43,7 @@ from typing import Any
 from server.errors import FieldbookError, NetworkError
 from server.results.types import (
     AdjustmentResult,
+    BaselineTestResult,
     Ellipse,
     GlobalTest,
     MisclosureResult,
@@ -746,4 +747,8 @@ def _result_from_detail(data: dict[str, Any]) -> AdjustmentResult:
             RelativeHeightResult(**h) for h in data.get("relative_heights", ())
         ),
         "warnings": tuple(data["warnings"]),
+        # results stored before the geodetic model have no baseline tests
+        "baseline_tests": tuple(
+            BaselineTestResult(**t) for t in data.get("baseline_tests", ())
+        ),
     })
