@@ -11,14 +11,13 @@ from collections.abc import Iterator
 
 from server.engine.gauss_newton import ProgressCallback, adjust
 from server.errors import FieldbookError, Issue, NetworkError
-from server.fieldbook.parser import parse_fieldbook
 from server.fieldbook.lexer import MAX_ISSUES
-from server.fieldbook.model import SPATIAL_KINDS, Fieldbook
+from server.fieldbook.model import Fieldbook
+from server.fieldbook.parser import parse_fieldbook
 from server.model.misclosures import leveling_misclosures
+from server.model.network import Network, build_network
 from server.model.traverse import traverse_misclosures
-from server.model.network import build_network
 from server.results.result import AdjustmentResult, build_result
-from server.model.network import Network
 from server.settings import WorkLimits
 
 #: No limits: the command line's default.
@@ -83,10 +82,8 @@ def check_observation_limit(fieldbook: Fieldbook, limits: WorkLimits) -> None:
 def check_adjustable_now(fieldbook: Fieldbook) -> None:
     """Refuse what the field book accepts but this version cannot adjust, naming the line.
 
-    Planned observations (``?``) have no value (exit 2, every such line); used
-    3D observations (slope, zenith, baseline) and points given by latitude and
-    longitude need the geodetic 3D model, which is not wired in yet (exit 3,
-    the first line).  Ignored 3D observations stay in the book as before.
+    Planned observations (``?``) have no value (exit 2, every such line): they are for
+    designing a network, not for adjusting one.
     """
     planned = sorted({obs.line for obs in fieldbook.observations if obs.planned})
     if planned:
@@ -95,26 +92,6 @@ def check_adjustable_now(fieldbook: Fieldbook) -> None:
                    "out of the field book you adjust")
         issues = [Issue(line, "?", message) for line in planned[:MAX_ISSUES]]
         raise FieldbookError(issues, source=fieldbook.source, count=len(planned))
-    spatial = [obs for obs in fieldbook.observations if obs.kind in SPATIAL_KINDS
-               and not obs.ignored]
-    if spatial:
-        first = spatial[0]
-        more = f" and {len(spatial) - 1:,} more 3D observations" if len(spatial) > 1 else ""
-        verb = "need" if more else "needs"
-        raise NetworkError(
-            f"the geodetic 3D model is not available yet: the {first.kind} on line "
-            f"{first.line}{more} {verb} it; mark the slope, zenith and baseline lines "
-            "ignore to adjust the rest",
-            (first.from_point, first.to),
-        )
-    placed = next((p for p in fieldbook.points if p.latitude is not None), None)
-    if placed is not None:
-        raise NetworkError(
-            f"the geodetic 3D model is not available yet: point {placed.name} on line "
-            f"{placed.line} is given by lat= and lon=, and placing it on the grid needs it; "
-            "give its east= and north= instead",
-            (placed.name,),
-        )
 
 
 def check_unknown_limit(network: Network, limits: WorkLimits) -> None:

@@ -175,8 +175,8 @@ class Quantity:
 
     ``constant`` is metres (or radians when ``angular``); ``ppm`` applies to a
     distance; ``per_sqrtkm`` and ``per_setup`` are metres for leveling.  How
-    the parts combine (quadrature for a standard deviation, linearly for an
-    allowance) is decided by the caller.
+    the parts combine is decided by the caller: in quadrature for a standard
+    deviation (``model/kinds.py``), linearly for an allowance (below).
     """
 
     constant: float = 0.0
@@ -184,19 +184,6 @@ class Quantity:
     per_sqrtkm: float = 0.0
     per_setup: float = 0.0
     angular: bool = False
-
-    def sigma_distance(self, distance_m: float) -> float:
-        """σ = √(a² + (b·D·10⁻⁶)²) for ``a + b ppm``."""
-        return math.hypot(self.constant, self.ppm * 1e-6 * distance_m)
-
-    def sigma_level(self, length_km: float | None, setups: int | None) -> float:
-        """σ = √(c² + k²·L + s²·K) for ``c + k/sqrtkm`` or ``c + s/setup``."""
-        variance = self.constant**2
-        if self.per_sqrtkm:
-            variance += self.per_sqrtkm**2 * (length_km or 0.0)
-        if self.per_setup:
-            variance += self.per_setup**2 * (setups or 0)
-        return math.sqrt(variance)
 
     def allowance_level(self, length_km: float | None, setups: int | None) -> float | None:
         """Allowed misclosure c + k·√L + s·√K (parts added linearly); None if a part lacks data."""

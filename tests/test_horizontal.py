@@ -29,7 +29,9 @@ def _reference_solution(text: str):
     ocol = {r: 2 * len(names) + k for k, r in enumerate(rounds)}
     obs = [o for o in fb.observations if not o.ignored]
     sigma = np.array(
-        [o.sigma.sigma_distance(o.value) if o.kind == "distance" else o.sigma.constant for o in obs]
+        # σ = √(a² + (b·D·10⁻⁶)²) for a + b ppm (no centering in these books)
+        [math.hypot(o.sigma.constant, o.sigma.ppm * 1e-6 * o.value) if o.kind == "distance"
+         else o.sigma.constant for o in obs]
     )
 
     def position(x, n):

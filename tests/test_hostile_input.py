@@ -333,9 +333,12 @@ def test_snippets_adjust(name):
     assert outcome(SNIPPETS[name]) == "result"
 
 
-def test_spatial_snippet_stops_with_the_3d_message():
-    with pytest.raises(NetworkError, match="3D model"):
+def test_spatial_snippet_names_the_point_no_observation_places():
+    """Slope and zenith without a direction fix B's distance and height, not its bearing:
+    the geodetic model says so and names B (never a traceback)."""
+    with pytest.raises(NetworkError, match="no start position can be computed for B") as caught:
         adjust_fieldbook(SPATIAL)
+    assert caught.value.points == ("B",)
 
 
 # ---------------------------------------------------------------------------------------

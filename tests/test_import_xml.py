@@ -337,46 +337,19 @@ def test_nothing_is_invented():
     assert "\ncrs " not in text
 
 
-def test_ignored_lines_parse_with_the_current_parser():
-    """Structural check that works before the 3D parser lands: without its crs and baseline
-    lines, the written book parses, and zenith/slope carry hi and ht in metres."""
-    from server.fieldbook.parser import parse_fieldbook
-
-    text = imported("heron_hill_rounds.xml").text
-    kept = "\n".join(l for l in text.splitlines() if not l.startswith(("crs ", "baseline ")))
-    book = parse_fieldbook(kept)
-    kinds = [o.kind for o in book.observations]
-    assert kinds.count("zenith") == 2 and kinds.count("slope") == 2
-    slope = next(o for o in book.observations if o.kind == "slope" and o.to == "HH2")
-    assert (slope.instrument_height, slope.target_height) == (1.523, 1.3)
-    assert slope.value == pytest.approx(192.0943)
-    assert len(book.rounds) == 1 if hasattr(book, "rounds") else True
-
-
-def _parser_refuses_3d_header() -> bool:
-    from server.fieldbook.parser import parse_fieldbook
-
-    try:
-        parse_fieldbook(
-            "crs EPSG:25832\ndefaults baseline=3mm\n"
-            "baseline A B 1 2 3\npoint A east=0 north=0 height=0 fix\n"
-        )
-    except FieldbookError:
-        return True
-    return False
-
-
-@pytest.mark.skipif(
-    _parser_refuses_3d_header(),
-    reason="the field book parser does not accept crs and baseline yet "
-    "(the geodetic 3D model arrives in another branch)",
-)
 def test_the_imported_book_parses_whole():
+    """The written book (crs, baselines, slope and zenith with hi/ht in metres, one round)
+    is read back by the field book parser as the same observations."""
     from server.fieldbook.parser import parse_fieldbook
 
     book = parse_fieldbook(imported("heron_hill_rounds.xml").text)
-    kinds = sorted({o.kind for o in book.observations})
-    assert "zenith" in kinds and "slope" in kinds
+    kinds = [o.kind for o in book.observations]
+    assert kinds.count("zenith") == 2 and kinds.count("slope") == 2
+    assert book.crs is not None
+    slope = next(o for o in book.observations if o.kind == "slope" and o.to == "HH2")
+    assert (slope.instrument_height, slope.target_height) == (1.523, 1.3)
+    assert slope.value == pytest.approx(192.0943)
+    assert len(book.rounds) == 1
 
 
 # ---- hostile and broken files: a message with a line, never a traceback

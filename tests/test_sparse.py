@@ -1,4 +1,4 @@
-"""The sparse engine against the dense one and against the reference equations.
+"""The sparse engine against the dense one, and the assembly's fixed layout of A.
 
 What a surveyor relies on: whichever algebra the program picks (dense for a
 small job; sparse with CHOLMOD, or SciPy's SuperLU where CHOLMOD is not
@@ -24,10 +24,8 @@ from server.errors import NetworkError
 from server.fieldbook.parser import parse_fieldbook
 from server.results.json_text import dumps_indented
 from server.model.network import build_network
-from server.model.observations import EQUATIONS, a_priori_sigma
 from server.pipeline import adjust_fieldbook
 from server.results.result import build_result
-from server.units import wrap_pi
 from tests.synthetic import grid_network
 
 BACKENDS = ["superlu"] + (["cholmod"] if sparse.cholmod_available() else [])
@@ -162,48 +160,6 @@ def test_automatic_choice_is_dense_for_tiny_and_sparse_for_larger_networks():
 
 
 # --------------------------------------------------------------------------- the pieces
-
-
-def _layout(network):
-    state = engine._State(network, engine.approximate_coordinates(network))
-    return state, state.assembly(state.column)
-
-
-@pytest.mark.parametrize("name", ["2D with centering", "2D weighted control", "leveling"])
-def test_vectorised_equations_match_the_reference_functions(name):
-    """assembly.py computes what observations.py defines, row by row, partial by partial."""
-    text = NETWORKS[name] + (
-        "angle P0_0 P1_1 P2_2 123:45:00 sd=2sec\nazimuth P1_1 P2_2 45:00:00 sd=3sec\n"
-        if name.startswith("2D") else ""
-    )
-    network = build_network(parse_fieldbook(text))
-    state, assembly = _layout(network)
-    # move the points off their start values so nothing is exactly at a special value
-    rng = np.random.default_rng(0)
-    state.east += rng.normal(0, 0.05, state.east.shape)
-    state.north += rng.normal(0, 0.05, state.north.shape)
-    evaluation = assembly.evaluate(*state.arrays())
-    design = assembly.design_matrix(evaluation.slot_val, len(network.parameters)).toarray()
-    coords = state.coordinates()
-    orientations = state.orientation_dict()
-    column = {(p.point if p.kind != "O" else p.round_line, p.kind): k
-              for k, p in enumerate(network.parameters)}
-    for row, obs in enumerate(network.used):
-        value, partials = EQUATIONS[obs.kind](obs, coords, orientations)
-        expected = np.zeros(len(network.parameters))
-        for unknown, coefficient in partials:
-            if unknown in column:
-                expected[column[unknown]] += coefficient
-        np.testing.assert_allclose(design[row], expected, rtol=1e-12, atol=1e-15)
-        difference = obs.value - value
-        if obs.kind not in ("level", "distance"):
-            difference = wrap_pi(difference)
-        assert evaluation.misclosure[row] == pytest.approx(difference, rel=1e-12, abs=1e-14)
-        assert evaluation.sigmas[row] == pytest.approx(a_priori_sigma(obs, coords), rel=1e-14)
-    for offset, control in enumerate(state.control_rows):
-        row = len(network.used) + offset
-        assert design[row, column[(control.point, control.component)]] == 1.0
-        assert evaluation.sigmas[row] == control.sigma
 
 
 def test_coincident_points_are_named_not_divided_by_zero():

@@ -209,7 +209,7 @@ def test_slope_and_zenith_to_different_target_heights():
 
 def test_geodetic_to_earth_centred_matches_a_published_example():
     """53°36′43.1653″N, 1°39′51.9920″W, h 299.800 m on GRS80 → X 3790644.900,
-    Y −110149.210, Z 5111482.970 (docs/references.md "Geodetic to Earth-centred coordinates").
+    Y −110149.210, Z 5111482.970 (docs/references.md "Geodetic model and projections").
     """
     from server.geodesy.start3d import GRS80_A, GRS80_F, _Ellipsoid
 

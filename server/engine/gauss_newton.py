@@ -1,8 +1,8 @@
 """The adjustment engine: Gauss–Newton iterations on the observation equations.
 
 Each iteration linearises every used observation about the current
-coordinates (``observations.py`` is the reference, ``assembly.py`` the
-whole-array form used here), adds weighted control as direct observations of
+coordinates (``kinds.py`` defines each kind, ``assembly.py`` lays out the
+rows), adds weighted control as direct observations of
 coordinate components, and solves the normal equations
 
     N·dx = Aᵀ·P·l,   N = Aᵀ·P·A,   l = observed − computed
@@ -35,7 +35,7 @@ from __future__ import annotations
 import contextlib
 import math
 import sys
-from collections.abc import Callable
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -43,6 +43,8 @@ import scipy.linalg
 
 from server.model.start_values import approximate_coordinates
 from server.model.assembly import Assembly, ControlEquation
+from server.model.kinds import KINDS, Kind
+from server.model.whitening import CorrelatedBlock
 from server.errors import ConvergenceError, NetworkError
 from server.model.network import Network
 
@@ -113,6 +115,9 @@ class Solution:
     method: str = "dense"  # "dense", "cholmod" or "superlu"
     #: hat(B) = A·Qxx·Aᵀ·B for a block B of rows × k (``separability.py``); None if not kept
     hat: Callable[[np.ndarray], np.ndarray] | None = None
+    #: geodetic model: Earth-centred X, Y, Z of each point (``coordinates`` then hold grid
+    #: east, north in metres and orthometric heights); None in the plane model
+    positions: dict[str, tuple[float, float, float]] | None = None
 
     @property
     def converged(self) -> bool:
@@ -148,6 +153,8 @@ def adjust(
     method: str = "auto",
     factorization: str | None = None,
     progress: ProgressCallback | None = None,
+    kinds: Mapping[str, Kind] = KINDS,
+    correlated: Sequence[CorrelatedBlock] = (),
 ) -> Solution:
     """Adjust ``network`` by weighted least squares.
 
@@ -167,6 +174,12 @@ def adjust(
         CHOLMOD when installed, else SuperLU.
     progress : callable, optional
         Called as ``progress(stage, step)`` at each stage and iteration.
+    kinds : mapping
+        The observation kinds (``model.kinds.KINDS``).
+    correlated : sequence of CorrelatedBlock
+        Rows of ``network.used`` with a full covariance; they are whitened, and
+        the ``Solution`` holds their whitened residuals, σ = 1 and cofactors (the
+        statistics of the decorrelated observations, see ``model/whitening.py``).
 
     Raises
     ------
@@ -184,7 +197,13 @@ def adjust(
         raise ValueError("`method` must be 'auto', 'dense' or 'sparse'")
     report = progress or _quiet
     report("start values", 0)
-    state = _State(network, approximate_coordinates(network))
+    state: _State
+    if network.geodetic is not None:
+        from server.engine.geodetic_state import GeodeticState  # it builds on _State
+
+        state = GeodeticState(network, correlated)
+    else:
+        state = _State(network, approximate_coordinates(network), kinds, correlated)
     n_unknowns = len(network.parameters)
     if method == "auto" or n_unknowns == 0:
         method = "dense" if n_unknowns <= DENSE_LIMIT else "sparse"
@@ -246,6 +265,7 @@ def _iterate(
         cofactor=cofactor,
         method=engine.name,
         hat=engine.hat(evaluation) if n_unknowns else None,
+        positions=state.positions(),
     )
 
 
@@ -274,7 +294,14 @@ def _one_blas_thread():
 class _State:
     """Coordinates and orientations as arrays, and the column of each unknown."""
 
-    def __init__(self, network: Network, coords: dict[str, tuple[float, float, float]]) -> None:
+    def __init__(
+        self,
+        network: Network,
+        coords: dict[str, tuple[float, float, float]],
+        kinds: Mapping[str, Kind] = KINDS,
+        correlated: Sequence[CorrelatedBlock] = (),
+    ) -> None:
+        self.kinds, self.correlated = kinds, correlated
         self.network = network
         self.names = [p.name for p in network.points]
         self.point_index = {name: k for k, name in enumerate(self.names)}
@@ -312,6 +339,7 @@ class _State:
         return Assembly(
             self.network.used, self.point_index, self.round_index,
             columns["E"], columns["N"], columns["H"], columns["O"], self.control,
+            self.kinds, self.correlated,
         )
 
     def apply(self, correction: np.ndarray) -> None:
@@ -327,6 +355,10 @@ class _State:
 
     def coordinates(self) -> dict[str, tuple[float, float, float]]:
         return dict(zip(self.names, zip(self.east.tolist(), self.north.tolist(), self.height.tolist())))
+
+    def positions(self) -> dict[str, tuple[float, float, float]] | None:
+        """Earth-centred positions (geodetic model only)."""
+        return None
 
     def orientation_dict(self) -> dict[int, float]:
         return dict(zip(self.round_lines, self.orientation.tolist()))
@@ -433,7 +465,7 @@ class _DenseEngine(_Engine):
 
     def step(self, evaluation, first: bool) -> np.ndarray:
         design = self._design(evaluation)
-        weights = 1.0 / evaluation.sigmas**2
+        weights = evaluation.weights
         normal = design.T @ (design * weights[:, None])
         rhs = design.T @ (weights * evaluation.misclosure)
         constraints = self.state.inner_constraints() if self.network.free_datum else None
@@ -480,7 +512,7 @@ class _SparseEngine(_Engine):
         self._datum: tuple[np.ndarray, np.ndarray] | None = None
 
     def step(self, evaluation, first: bool) -> np.ndarray:
-        weights = 1.0 / evaluation.sigmas**2
+        weights = evaluation.weights
         data = self.pattern.fill(evaluation.slot_val, weights)
         matrix = self.pattern.matrix(data)
         try:
@@ -509,7 +541,7 @@ class _SparseEngine(_Engine):
         try:
             cofactor = sparse.Cofactor(self.factorization, self.kept.size)
         except sparse.SingularMatrix:
-            weights = 1.0 / evaluation.sigmas**2
+            weights = evaluation.weights
             matrix = self.pattern.matrix(self.pattern.fill(evaluation.slot_val, weights))
             raise NetworkError(*self._diagnosis(matrix)) from None
         columns = np.repeat(np.arange(self.kept.size, dtype=np.int64), np.diff(self.pattern.indptr))

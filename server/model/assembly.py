@@ -1,14 +1,12 @@
-"""The observation equations of ``observations.py`` evaluated for all rows at once.
+"""The rows of the design matrix A for a whole network, kind by kind, from ``kinds.py``.
 
-``observations.py`` is the reference: one function per kind, one
-observation at a time, with the model derived in its docstring.  This
-module computes the same values and partial derivatives with whole-array
-numpy operations, kind by kind, and lays them out as the rows of the design
-matrix A in a fixed sparse layout (``row_ptr``, ``slot_col``): the columns
-of every row are known before the first iteration, only the numbers change.
-Rows are the used field observations in ``network.used`` order, then the
-weighted control rows.  ``tests/test_sparse.py`` checks it against the
-reference function by function.
+``kinds.KINDS`` defines each observation kind (equation, partial derivatives,
+a priori σ) for a whole batch at once; this module groups the used field
+observations by kind, calls the table once per kind and lays the partials out
+as the rows of A in a fixed sparse layout (``row_ptr``, ``slot_col``): the
+columns of every row are known before the first iteration, only the numbers
+change.  Rows are the used field observations in ``network.used`` order
+(``components`` rows each), then the weighted control rows.
 
 Columns are indices into ``columns`` (normally the network's parameters);
 a component whose column is −1 (held fixed, or removed for a minimal datum)
@@ -18,13 +16,25 @@ contributes nothing and takes no slot.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from functools import partial
+from typing import Any
 
 import numpy as np
 
 from server.errors import NetworkError
 from server.fieldbook.model import Observation
+from server.model.kinds import (
+    KINDS,
+    Batch,
+    CoincidentPointsError,
+    Covariance,
+    Kind,
+    Positions,
+    batch_of,
+)
+from server.model.whitening import BlockSet, CorrelatedBlock, Whitening, constant_blocks
 
 TWO_PI = 2.0 * math.pi
 
@@ -41,31 +51,67 @@ class ControlEquation:
 
 @dataclass
 class _Group:
-    """The rows of one kind: their row numbers, point indices and slot columns."""
+    """The rows of one kind (``kind`` None: control rows) and where their partials go."""
 
-    kind: str
-    rows: np.ndarray
-    frm: np.ndarray
-    at: np.ndarray
-    to: np.ndarray
-    rnd: np.ndarray
-    value: np.ndarray
-    cols: np.ndarray  # (m, k) columns of the kind's partials, −1 where not estimated
+    kind: Kind | None
+    rows: np.ndarray  # row numbers, observation-major (components rows per observation)
+    observations: np.ndarray  # index into ``used`` of each observation of the group
+    batch: Batch | None
+    cols: np.ndarray  # (rows, k) columns of the kind's partials, −1 where not estimated
     valid: np.ndarray  # cols ≥ 0
     dest: np.ndarray  # slot positions of the valid entries, row-major
-    constant: np.ndarray
-    centering: np.ndarray
-    extra: np.ndarray  # kind-specific σ input (ppm for distances, level σ², …)
+
+
+@dataclass
+class _Control:
+    """Control rows: point, component (0 E, 1 N, 2 H), given value and σ."""
+
+    point: np.ndarray
+    component: np.ndarray
+    given: np.ndarray
+    sigma: np.ndarray
+
+
+@dataclass(frozen=True)
+class GeodeticRows:
+    """What the geodetic model changes in the assembly: its kinds table, each point's geoid
+    undulation (by name), and its control equation ``control(xyz, point, component)`` giving
+    grid east, north or orthometric height (metres) of the control rows and their partials
+    (c, 3) with respect to the local E, N, H corrections of the point."""
+
+    kinds: Mapping[str, Kind]
+    undulation: Mapping[str, float]
+    control: Callable[[np.ndarray, np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]]
 
 
 @dataclass
 class Evaluation:
-    """One linearisation: slot values of A, misclosures l = observed − computed, σ."""
+    """One linearisation: slot values of A, misclosures l = observed − computed, σ.
+
+    Rows of correlated blocks are whitened (``whitening.py``): their slot
+    values and misclosures are L⁻¹ times the observations' and their σ is 1;
+    ``computed`` is always the observations' own.  ``factors`` hold, per set of
+    blocks, the rows (b, k) and the Cholesky factors L (b, k, k).
+    """
 
     slot_val: np.ndarray
     misclosure: np.ndarray
     computed: np.ndarray
     sigmas: np.ndarray
+    factors: tuple[tuple[np.ndarray, np.ndarray], ...] = ()
+
+    @property
+    def weights(self) -> np.ndarray:
+        """P's diagonal, 1/σ², in the rows the engine sees (whitened rows: 1)."""
+        return 1.0 / self.sigmas**2
+
+    def unwhiten(self, values: np.ndarray) -> np.ndarray:
+        """A vector over the rows (such as residuals) carried back from the whitened rows to
+        the observations: L·v̄ in each block, other rows unchanged."""
+        out = np.array(values, dtype=float)
+        for rows, factor in self.factors:
+            out[rows] = np.einsum("bij,bj->bi", factor, out[rows])
+        return out
 
 
 class Assembly:
@@ -85,7 +131,17 @@ class Assembly:
         Per round, the column of its orientation unknown (−1: none).
     control : sequence of ControlEquation
         Weighted control rows, after the observations.
+    kinds : mapping
+        The observation kinds by name (``kinds.KINDS``; tests add their own).
+    correlated : sequence of CorrelatedBlock
+        Groups of observation rows with a full covariance, whitened on evaluation.
+    model : GeodeticRows, optional
+        The geodetic model's kinds, undulations and control equation; without it the
+        plane kinds of ``kinds.KINDS`` and control rows that observe a coordinate directly.
     """
+
+    row_ptr: np.ndarray  # slots of row r: row_ptr[r] … row_ptr[r+1]−1
+    slot_col: np.ndarray  # the column of each slot
 
     def __init__(
         self,
@@ -97,84 +153,102 @@ class Assembly:
         column_h: np.ndarray,
         column_o: np.ndarray,
         control: Sequence[ControlEquation],
+        kinds: Mapping[str, Kind] = KINDS,
+        correlated: Sequence[CorrelatedBlock] = (),
+        model: GeodeticRows | None = None,
     ) -> None:
-        self.n_rows = len(used) + len(control)
-        self.n_used = len(used)
+        self.model = model
+        if model is not None:
+            kinds = model.kinds
+        self.kinds = kinds
+        unknown_kinds = sorted({o.kind for o in used} - set(kinds))
+        if unknown_kinds:
+            raise ValueError(f"no observation equation for {unknown_kinds}")
+        components = np.array([kinds[o.kind].components for o in used], dtype=np.int64)
+        #: first row of each used observation (one row per component)
+        self.first_row = np.zeros(len(used) + 1, np.int64)
+        np.cumsum(components, out=self.first_row[1:])
+        self.n_used = int(self.first_row[-1])
+        self.n_rows = self.n_used + len(control)
         self.used = used
-        self.groups: list[_Group] = []
+        self.control = tuple(control)
+        columns = {"E": column_e, "N": column_n, "H": column_h, "O": column_o}
         by_kind: dict[str, list[int]] = {}
         for row, obs in enumerate(used):
             by_kind.setdefault(obs.kind, []).append(row)
-        ce, cn, ch, co = column_e, column_n, column_h, column_o
-        for kind in ("level", "distance", "azimuth", "direction", "angle"):
-            rows_list = by_kind.pop(kind, None)
-            if not rows_list:
+        self.groups = [
+            self._group(kind, by_kind[name], used, point_index, round_index, columns)
+            for name, kind in kinds.items()
+            if name in by_kind
+        ]
+        self._controls = self._control_group(columns)
+        self._layout()
+        sets = self._kind_blocks() + constant_blocks(list(correlated), self.n_used)
+        self._whitening = Whitening(self.row_ptr, self.slot_col, sets) if sets else None
+        if self._whitening is not None:  # the engine sees the whitened layout
+            self.row_ptr, self.slot_col = self._whitening.row_ptr, self._whitening.slot_col
+
+    def _kind_blocks(self) -> list[BlockSet]:
+        """One k×k block per observation of each kind with correlated components."""
+        sets = []
+        for g in self.groups:
+            kind, batch = g.kind, g.batch
+            if kind is None or kind.covariance is None or batch is None:
                 continue
-            rows = np.array(rows_list, dtype=np.int64)
-            obs_list = [used[r] for r in rows_list]
-            frm = np.array([point_index[o.from_point] for o in obs_list], dtype=np.int64)
-            to = np.array([point_index[o.to] for o in obs_list], dtype=np.int64)
-            at = (
-                np.array([point_index[o.at] for o in obs_list], dtype=np.int64)  # type: ignore[index]
-                if kind == "angle"
-                else frm
-            )
-            rnd = (
-                np.array([round_index[o.round_line] for o in obs_list], dtype=np.int64)  # type: ignore[index]
-                if kind == "direction"
-                else np.zeros(len(rows), np.int64)
-            )
-            value = np.array([o.value for o in obs_list])
-            constant = np.array([o.sigma.constant for o in obs_list])
-            centering = np.array([o.centering for o in obs_list])
-            if kind == "level":
-                cols = np.stack([ch[to], ch[frm]], axis=1)
-                # σ² = c² + k²·L + s²·K, summed in the order of Quantity.sigma_level
-                k = np.array([o.sigma.per_sqrtkm for o in obs_list])
-                s = np.array([o.sigma.per_setup for o in obs_list])
-                length = np.array([o.length_km or 0.0 for o in obs_list])
-                setups = np.array([o.setups or 0 for o in obs_list], dtype=float)
-                variance = constant**2
-                variance = np.where(k != 0.0, variance + k**2 * length, variance)
-                variance = np.where(s != 0.0, variance + s**2 * setups, variance)
-                extra = variance
-            elif kind == "distance":
-                cols = np.stack([ce[to], cn[to], ce[frm], cn[frm]], axis=1)
-                extra = np.array([o.sigma.ppm for o in obs_list])
-            elif kind == "azimuth":
-                cols = np.stack([ce[to], cn[to], ce[frm], cn[frm]], axis=1)
-                extra = np.zeros(0)
-            elif kind == "direction":
-                cols = np.stack([ce[to], cn[to], ce[frm], cn[frm], co[rnd]], axis=1)
-                extra = np.zeros(0)
-            else:  # angle: FORE, BACK, AT (AT's two azimuth partials combined)
-                cols = np.stack([ce[to], cn[to], ce[frm], cn[frm], ce[at], cn[at]], axis=1)
-                extra = np.zeros(0)
-            self.groups.append(
-                _Group(kind, rows, frm, at, to, rnd, value, cols, cols >= 0, np.zeros(0, np.int64),
-                       constant, centering, extra)
-            )
-        if by_kind:
-            raise ValueError(f"no observation equation for {sorted(by_kind)}")
-        self.control = tuple(control)
-        if control:
-            rows = np.arange(len(used), self.n_rows, dtype=np.int64)
-            point = np.array([c.point for c in control], dtype=np.int64)
-            component = np.array([c.component for c in control], dtype=np.int64)
+            source = partial(_batch_covariance, kind.covariance, batch)
+            sets.append(BlockSet(g.rows.reshape(-1, kind.components), source))
+        return sets
+
+    def _group(
+        self,
+        kind: Kind,
+        members_list: list[int],
+        used: Sequence[Observation],
+        point_index: dict[str, int],
+        round_index: dict[int, int],
+        columns: dict[str, np.ndarray],
+    ) -> _Group:
+        """The rows of one kind, their batch and the columns of their partials."""
+        members = np.array(members_list, np.int64)
+        undulation = None if self.model is None else self.model.undulation
+        batch = batch_of(kind, [used[k] for k in members_list], point_index, round_index,
+                         undulation)
+        cols = np.stack(
+            [columns[unknown][batch.role(role)] for role, unknown in kind.columns], axis=1
+        )
+        k = kind.components
+        # every component row of an observation has the same columns
+        rows = (self.first_row[members][:, None] + np.arange(k)).ravel()
+        cols = np.repeat(cols, k, axis=0) if k > 1 else cols
+        return _Group(kind, rows, members, batch, cols, cols >= 0, np.zeros(0, np.int64))
+
+    def _control_group(self, columns: dict[str, np.ndarray]) -> _Control | None:
+        control = self.control
+        if not control:
+            return None
+        rows = np.arange(self.n_used, self.n_rows, dtype=np.int64)
+        point = np.array([c.point for c in control], dtype=np.int64)
+        component = np.array([c.component for c in control], dtype=np.int64)
+        ce, cn, ch = columns["E"], columns["N"], columns["H"]
+        if self.model is None:
             cols = np.choose(component, [ce[point], cn[point], ch[point]])[:, None]
-            self.groups.append(
-                _Group("control", rows, point, point, point, component,
-                       np.array([c.given for c in control]), cols, cols >= 0,
-                       np.zeros(0, np.int64), np.array([c.sigma for c in control]),
-                       np.zeros(len(control)), np.zeros(0))
-            )
-        # the fixed layout: slots of each row, in row order
+        else:  # grid east, north and height each depend on all three local corrections
+            cols = np.stack([ce[point], cn[point], ch[point]], axis=1)
+        self.groups.append(
+            _Group(None, rows, np.zeros(0, np.int64), None, cols, cols >= 0, np.zeros(0, np.int64))
+        )
+        given = np.array([c.given for c in control])
+        return _Control(point, component, given, np.array([c.sigma for c in control]))
+
+    def _layout(self) -> None:
+        """The fixed layout: slots of each row, in row order (before any whitening)."""
         counts = np.zeros(self.n_rows, np.int64)
         for g in self.groups:
             counts[g.rows] = g.valid.sum(axis=1)
         self.row_ptr = np.zeros(self.n_rows + 1, np.int64)
         np.cumsum(counts, out=self.row_ptr[1:])
         self.slot_col = np.empty(int(self.row_ptr[-1]), np.int64)
+        self._raw_slots = self.slot_col.shape[0]
         for g in self.groups:
             rank = np.cumsum(g.valid, axis=1) - 1
             g.dest = (self.row_ptr[g.rows][:, None] + rank)[g.valid]
@@ -184,26 +258,47 @@ class Assembly:
         self, east: np.ndarray, north: np.ndarray, height: np.ndarray, orientation: np.ndarray
     ) -> Evaluation:
         """Linearise every row about the given coordinates (metres) and orientations (radians)."""
-        slot_val = np.empty(self.slot_col.shape[0])
+        positions = Positions(east, north, height, orientation)
+        slot_val = np.empty(self._raw_slots)
         misclosure = np.empty(self.n_rows)
         computed = np.empty(self.n_rows)
         sigmas = np.empty(self.n_rows)
         for g in self.groups:
-            coefficients, value, sigma = _EQUATIONS[g.kind](self, g, east, north, height, orientation)
-            slot_val[g.dest] = coefficients[g.valid]
-            if g.kind == "control":
-                misclosure[g.rows] = g.value - value
-                computed[g.rows] = value
+            if g.kind is None:
+                coefficients, value, observed, sigma = self._control_rows(positions)
             else:
-                difference = g.value - value
-                if g.kind in ("azimuth", "direction", "angle"):
-                    difference = wrap_pi(difference)
-                misclosure[g.rows] = difference
-                computed[g.rows] = g.value - difference
+                assert g.batch is not None
+                try:
+                    linearised = g.kind.equation(g.batch, positions)
+                except CoincidentPointsError as caught:
+                    raise self._coincident(g, caught.rows) from None
+                coefficients, value = linearised.partials, linearised.value
+                observed, sigma = g.batch.value, g.kind.sigma(g.batch, positions)
+            difference = observed - value
+            if g.kind is not None and g.kind.angular:
+                difference = wrap_pi(difference)
+            slot_val[g.dest] = coefficients[g.valid]
+            misclosure[g.rows] = difference
+            # an angle's computed value is the observed one less its wrapped misclosure
+            computed[g.rows] = value if g.kind is None else observed - difference
             sigmas[g.rows] = sigma
-        return Evaluation(slot_val, misclosure, computed, sigmas)
+        if self._whitening is None:
+            return Evaluation(slot_val, misclosure, computed, sigmas)
+        slot_val, factors = self._whitening.apply(slot_val, misclosure, sigmas, positions)
+        return Evaluation(slot_val, misclosure, computed, sigmas, factors)
 
-    def design_matrix(self, slot_val: np.ndarray, n_columns: int):  # -> scipy.sparse.csr_matrix
+    def _control_rows(self, at: Positions) -> tuple[np.ndarray, ...]:
+        """Partials (all 1), computed and given values and σ of the control rows."""
+        c = self._controls
+        assert c is not None
+        if self.model is not None:
+            xyz = np.stack([at.east[c.point], at.north[c.point], at.height[c.point]], axis=1)
+            value, partials = self.model.control(xyz, c.point, c.component)
+            return partials, value, c.given, c.sigma
+        value = np.choose(c.component, [at.east[c.point], at.north[c.point], at.height[c.point]])
+        return np.ones((c.point.size, 1)), value, c.given, c.sigma
+
+    def design_matrix(self, slot_val: np.ndarray, n_columns: int) -> Any:
         """A as a scipy CSR matrix (for checks and small dense solves)."""
         import scipy.sparse
 
@@ -211,97 +306,22 @@ class Assembly:
             (slot_val, self.slot_col, self.row_ptr), shape=(self.n_rows, n_columns)
         )
 
-    def coincident(self, g: _Group, s2: np.ndarray) -> None:
-        """Raise ``NetworkError`` for the first row whose two points coincide."""
-        bad = np.flatnonzero(~(s2 > 0.0))
-        if bad.size:
-            obs = self.used[int(g.rows[bad[0]])]
-            names = list(dict.fromkeys(n for n in (obs.from_point, obs.at, obs.to) if n))
-            raise NetworkError(
-                f"points {' and '.join(names)} have the same position during the adjustment "
-                f"(line {obs.line}); check their coordinates and observations",
-                names,
-            )
+    def _coincident(self, g: _Group, rows: np.ndarray) -> NetworkError:
+        """The error naming the points of the first row whose two points coincide."""
+        obs = self.used[int(g.observations[rows[0]])]
+        names = list(dict.fromkeys(n for n in (obs.from_point, obs.at, obs.to) if n))
+        return NetworkError(
+            f"points {' and '.join(names)} have the same position during the adjustment "
+            f"(line {obs.line}); check their coordinates and observations",
+            names,
+        )
+
+
+def _batch_covariance(covariance: Covariance, batch: Batch, positions: Positions) -> np.ndarray:
+    return covariance(batch, positions)
 
 
 def wrap_pi(angle: np.ndarray) -> np.ndarray:
     """Reduce angles to (−π, π] (the array form of ``units.wrap_pi``)."""
     reduced = angle - TWO_PI * np.round(angle / TWO_PI)
     return np.where(reduced <= -math.pi, reduced + TWO_PI, reduced)
-
-
-def _polar(asm: Assembly, g: _Group, i: np.ndarray, j: np.ndarray, east: np.ndarray,
-           north: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    d_east = east[j] - east[i]
-    d_north = north[j] - north[i]
-    s2 = d_east * d_east + d_north * d_north
-    asm.coincident(g, s2)
-    return d_east, d_north, s2
-
-
-def _level(asm, g, east, north, height, orientation):
-    value = height[g.to] - height[g.frm]
-    coefficients = np.empty(g.cols.shape)
-    coefficients[:, 0] = 1.0
-    coefficients[:, 1] = -1.0
-    return coefficients, value, np.sqrt(g.extra)
-
-
-def _distance(asm, g, east, north, height, orientation):
-    d_east, d_north, s2 = _polar(asm, g, g.frm, g.to, east, north)
-    s = np.sqrt(s2)
-    de, dn = d_east / s, d_north / s
-    coefficients = np.stack([de, dn, -de, -dn], axis=1)
-    sigma = np.sqrt(np.hypot(g.constant, g.extra * 1e-6 * g.value) ** 2 + 2.0 * g.centering**2)
-    return coefficients, s, sigma
-
-
-def _azimuth_terms(asm, g, i, j, east, north, sign):
-    d_east, d_north, s2 = _polar(asm, g, i, j, east, north)
-    value = np.arctan2(d_east, d_north)
-    return value, sign * d_north / s2, -sign * d_east / s2, s2
-
-
-def _azimuth(asm, g, east, north, height, orientation):
-    value, de, dn, _ = _azimuth_terms(asm, g, g.frm, g.to, east, north, 1.0)
-    return np.stack([de, dn, -de, -dn], axis=1), value, g.constant
-
-
-def _direction(asm, g, east, north, height, orientation):
-    value, de, dn, s2 = _azimuth_terms(asm, g, g.frm, g.to, east, north, 1.0)
-    coefficients = np.stack([de, dn, -de, -dn, np.full(de.shape, -1.0)], axis=1)
-    c = g.centering
-    d = np.sqrt(s2)
-    centred = np.sqrt(g.constant**2 + 2.0 * c * c / (d * d))
-    sigma = np.where(c != 0.0, centred, g.constant)
-    return coefficients, value - orientation[g.rnd], sigma
-
-
-def _angle(asm, g, east, north, height, orientation):
-    fore, de_f, dn_f, s2_f = _azimuth_terms(asm, g, g.at, g.to, east, north, 1.0)
-    back, de_b, dn_b, s2_b = _azimuth_terms(asm, g, g.at, g.frm, east, north, -1.0)
-    coefficients = np.stack([de_f, dn_f, de_b, dn_b, -de_f - de_b, -dn_f - dn_b], axis=1)
-    c = g.centering
-    d3e = east[g.to] - east[g.frm]
-    d3n = north[g.to] - north[g.frm]
-    d1, d2 = np.sqrt(s2_b), np.sqrt(s2_f)
-    d3 = np.sqrt(d3e * d3e + d3n * d3n)
-    instrument = c * c * d3 * d3 / (d1 * d1 * d2 * d2)
-    targets = c * c * (1.0 / (d1 * d1) + 1.0 / (d2 * d2))
-    sigma = np.where(c != 0.0, np.sqrt(g.constant**2 + instrument + targets), g.constant)
-    return coefficients, fore - back, sigma
-
-
-def _control(asm, g, east, north, height, orientation):
-    value = np.choose(g.rnd, [east[g.frm], north[g.frm], height[g.frm]])
-    return np.ones(g.cols.shape), value, g.constant
-
-
-_EQUATIONS = {
-    "level": _level,
-    "distance": _distance,
-    "azimuth": _azimuth,
-    "direction": _direction,
-    "angle": _angle,
-    "control": _control,
-}

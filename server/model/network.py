@@ -9,8 +9,10 @@ adjusted and says why, naming the points.
 from __future__ import annotations
 
 from collections import defaultdict
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from itertools import pairwise
+
+import numpy as np
 
 from server.errors import NetworkError
 from server.fieldbook.model import (
@@ -20,6 +22,8 @@ from server.fieldbook.model import (
     Observation,
     PointStatement,
 )
+from server.geodesy.crs import Crs
+from server.model.geodetic import GeodeticFrame
 
 #: Unknown-component labels, in parameter order within a point.
 EAST, NORTH, HEIGHT = "E", "N", "H"
@@ -62,6 +66,8 @@ class Network:
     parameters: tuple[Parameter, ...]
     warnings: tuple[str, ...]
     free_datum: tuple[str, ...] = ()  # "translation", "rotation": removed by inner constraints
+    #: the geodetic 3D model's CRS, undulations and start positions (None: plane model)
+    geodetic: GeodeticFrame | None = None
 
     @property
     def datum_defect(self) -> int:
@@ -99,15 +105,18 @@ def build_network(fieldbook: Fieldbook) -> Network:
     used = tuple(obs for obs in fieldbook.observations if not obs.ignored)
     if not used:
         raise NetworkError("every observation is marked ignore, so there is nothing to adjust")
-    spatial = sorted({obs.kind for obs in used if obs.kind in SPATIAL_KINDS})
-    if spatial:
-        lines = [str(obs.line) for obs in used if obs.kind in SPATIAL_KINDS][:10]
-        raise NetworkError(
-            f"{' and '.join(spatial)} observations need the 3D model, which Stationfit "
-            f"does not have yet (lines {', '.join(lines)}); mark them ignore to adjust the rest"
-        )
+    if any(obs.kind in SPATIAL_KINDS for obs in fieldbook.observations):
+        from server.model.geodetic_network import build_geodetic_network  # it builds on this
+
+        return build_geodetic_network(fieldbook, used)
     dimension = network_dimension(fieldbook)
     points = _collect_points(fieldbook, used)
+    if any(p.latitude is not None for p in fieldbook.points):
+        from server.model.geodetic import resolve_crs  # a crs line in a plane file
+
+        crs = resolve_crs(fieldbook)
+        assert crs is not None, "the parser refuses lat= and lon= without a crs line"
+        points = with_grid_positions(points, fieldbook, crs)
     warnings = [
         f"point {p.name} (line {p.line}) is not touched by any used observation; "
         "it is reported with its given values"
@@ -167,6 +176,22 @@ def _collect_points(fieldbook: Fieldbook, used: tuple[Observation, ...]) -> tupl
                 )
             )
     return tuple(points)
+
+
+def with_grid_positions(points: tuple[NetworkPoint, ...], fieldbook: Fieldbook,
+                        crs: Crs) -> tuple[NetworkPoint, ...]:
+    """Points given by latitude and longitude get their grid east and north (metres)."""
+    by_name = {p.name: p for p in fieldbook.points}
+    out = []
+    per_unit = crs.metres_per_unit
+    for p in points:
+        stmt = by_name.get(p.name)
+        if stmt is None or stmt.latitude is None or stmt.longitude is None:
+            out.append(p)
+            continue
+        east, north = crs.geodetic_to_grid(np.array([stmt.latitude]), np.array([stmt.longitude]))
+        out.append(replace(p, east=float(east[0]) * per_unit, north=float(north[0]) * per_unit))
+    return tuple(out)
 
 
 def _first_appearance(fieldbook: Fieldbook) -> dict[str, None]:

@@ -177,7 +177,7 @@ def layout(histogram: Histogram, width: float, height: float, *,
     low, high = histogram.edges[0], histogram.edges[-1]
     start = low - (2 * delta if histogram.below else 0.0)
     end = high + (2 * delta if histogram.above else 0.0)
-    peak = max(max(histogram.counts), histogram.below, histogram.above,
+    peak = max(*histogram.counts, histogram.below, histogram.above,
                expected_count(histogram, 0.0))
     step = _count_step(peak)
     y_max = step * math.ceil(peak * 1.08 / step)

@@ -24,17 +24,16 @@ REPORT_CSS = TEMPLATE_DIR / "report.css"
 # HTML
 
 
-_environment: jinja2.Environment | None = None
 # reports are drawn on worker threads: one of them makes the environment, the others wait
 _environment_lock = threading.Lock()
+_environment: list[jinja2.Environment] = []  # made once, on first use
 
 
 def _env() -> jinja2.Environment:
-    global _environment
     with _environment_lock:
-        if _environment is None:
-            _environment = _make_environment()
-        return _environment
+        if not _environment:
+            _environment.append(_make_environment())
+        return _environment[0]
 
 
 def _make_environment() -> jinja2.Environment:
@@ -93,7 +92,7 @@ def report_html(result: AdjustmentResult, *, generated: datetime | None = None,
     data["network_plot"] = network_plot_data(result)
     data["np_static"] = True
     # The CSS is our own file, never user input; Markup keeps autoescape off its '>' selectors.
-    data["css"] = Markup(report_css())
+    data["css"] = Markup(report_css())  # noqa: S704 (our own file, see above)
     data["generated"] = generated_text(generated)
     data["source_name"] = source_name(result.source)
     data["report_warnings"] = report_warnings(result)

@@ -134,12 +134,12 @@ def _fit(text: str, font: str, size: float, room: float) -> str:
 def _numbered_canvas(fonts: Fonts) -> type[Canvas]:
     """A canvas that holds its pages until ``save`` and then writes "Page N of M" on each."""
 
-    class NumberedCanvas(Canvas):
+    class NumberedCanvas(Canvas):  # type: ignore[misc]  # reportlab ships no type hints
         def __init__(self, *args: Any, **kwargs: Any) -> None:
             super().__init__(*args, **kwargs)
             self._held_pages: list[dict[str, Any]] = []
 
-        def showPage(self) -> None:
+        def showPage(self) -> None:  # noqa: N802 (reportlab's name, overridden)
             self._held_pages.append(dict(self.__dict__))
             self._startPage()
 

@@ -196,6 +196,11 @@ def _furniture(drawing: Drawing, data: dict[str, Any], width: float, height: flo
                            fontSize=font_size, fillColor=ACCENT))
 
 
+def _legend_line(style: str) -> Callable[[float, float], list[Any]]:
+    """The legend symbol of a line style: a short stroke through the symbol's middle."""
+    return lambda x, y: [_line_shape(style, 1, y, 25, y, 1.0)]
+
+
 def _legend_item(symbol: Callable[[float, float], list[Any]], words: str,
                  styles: Styles) -> list[Any]:
     icon = Drawing(26, 14)
@@ -233,8 +238,7 @@ def network_legend(data: dict[str, Any], styles: Styles, width: float) -> Table:
                          ("sighting", "Sighted only (direction, angle, azimuth)"),
                          ("height", "Height difference only")):
         if present[style]:
-            items.append(_legend_item(
-                lambda x, y, s=style: [_line_shape(s, 1, y, 25, y, 1.0)], words, styles))
+            items.append(_legend_item(_legend_line(style), words, styles))
     if present["ignored"]:
         items.append(_legend_item(
             lambda x, y: [_line_shape("ignored", 1, y, 25, y, 1.0), *_ignored_mark(x, y, 0.8)],

@@ -221,7 +221,7 @@ def data_table(styles: Styles, columns: Sequence[Column], rows: Sequence[Sequenc
     body = []
     for row in rows:
         cells = []
-        for column, value in zip(columns, row, strict=True):
+        for _column, value in zip(columns, row, strict=True):
             cells.append(plain(value, styles.fonts) if isinstance(value, str) else value)
         body.append(cells)
     commands: list[tuple[Any, ...]] = [
@@ -295,4 +295,4 @@ def state_box(styles: Styles, state: str, symbol: str, paragraphs: list[Flowable
 
 
 def hex_colour(colour: colors.Color) -> str:
-    return "#" + colour.hexval()[2:]
+    return "#" + str(colour.hexval())[2:]

@@ -8,14 +8,18 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 
 from server.engine.gauss_newton import Solution
 from server.fieldbook.model import ANGULAR_KINDS, Observation
+from server.model.geodetic_kinds import geodetic_kinds
+from server.model.kinds import CoincidentPointsError, evaluate_one, sigma_one
 from server.model.misclosures import Misclosure
 from server.model.network import Network
-from server.model.observations import EQUATIONS
+from server.results.baselines import BaselineFigures, baseline_figures
+from server.results.geodetic_points import with_geodetic_figures
 from server.results.types import (
     UNCONTROLLED,
     AdjustmentResult,
@@ -89,10 +93,12 @@ def build_result(
     factor = st.ellipse_factor(tests.confidence, redundancy, estimated)
     warnings = list(warnings)
 
+    baselines = baseline_figures(network, solution, lambda0, critical, tests.snooping, per_m)
     observations = _observation_results(
-        network, solution, r_i, critical, lambda0, per_m, warnings
+        network, solution, r_i, critical, lambda0, per_m, warnings, baselines
     )
     points = _point_results(network, solution, scale_variance, factor, tests.confidence, per_m)
+    points = with_geodetic_figures(network, solution, points, per_m)
     if not solution.converged:
         warnings.append(solution.message)
     if global_test is not None and not global_test.passed:
@@ -105,8 +111,8 @@ def build_result(
     summary = Summary(
         dimension=network.dimension,
         points=len(points),
-        observations=len(fb.observations),
-        used_observations=len(network.used),
+        observations=_counted(fb.observations),
+        used_observations=_counted(network.used),
         unknowns=n_unknowns,
         redundancy=redundancy,
         iterations=solution.iterations,
@@ -122,6 +128,9 @@ def build_result(
         confidence=tests.confidence,
         precision_method=tests.precision,
         precision_factor=scale_variance,
+        model="geodetic" if network.geodetic is not None else "plane",
+        crs=fb.crs.text if fb.crs is not None else None,
+        refraction=network.geodetic.refraction if network.geodetic is not None else None,
     )
     horizontal_pairs, height_pairs = _requested_pairs(network, solution, warnings)
     relative = _relative_results(
@@ -145,7 +154,13 @@ def build_result(
         relative=relative,
         relative_heights=relative_heights,
         warnings=tuple(warnings),
+        baseline_tests=baselines.tests,
     )
+
+
+def _counted(observations: Sequence[Observation]) -> int:
+    """Observations as the result counts them: a baseline is three."""
+    return sum(3 if obs.kind == "baseline" else 1 for obs in observations)
 
 
 def _observation_results(
@@ -156,19 +171,22 @@ def _observation_results(
     lambda0: float,
     per_m: float,
     warnings: list[str],
+    baselines: BaselineFigures,
 ) -> tuple[ObservationResult, ...]:
     used = network.used
-    n_used = len(used)
+    # a baseline takes three rows (one per component); every other observation one
+    components = np.array([3 if obs.kind == "baseline" else 1 for obs in used], dtype=np.int64)
+    first = np.concatenate([[0], np.cumsum(components)[:-1]]).astype(np.int64)
     # every figure of the used rows at once, then one object per observation
     angular = np.array([obs.kind in ANGULAR_KINDS for obs in used], dtype=bool)
     wrapped = angular & np.array([obs.kind != "zenith" for obs in used], dtype=bool)
     observed_si = np.array([obs.value for obs in used], dtype=float)
     booked_si = np.array([_booked_si(obs) for obs in used], dtype=float)
-    adjusted_si = np.array(solution.adjusted[:n_used], dtype=float)
+    adjusted_si = np.array(solution.adjusted[first], dtype=float)
     adjusted_si[wrapped] = _wrap_2pi(adjusted_si[wrapped])
-    residual_si = np.asarray(solution.residuals[:n_used], dtype=float)
-    sd_si = np.asarray(solution.sigmas[:n_used], dtype=float)
-    redundancy = np.asarray(r_i[:n_used], dtype=float)
+    residual_si = np.asarray(solution.residuals[first], dtype=float)
+    sd_si = np.asarray(solution.sigmas[first], dtype=float)
+    redundancy = np.asarray(r_i[first], dtype=float)
     controlled = redundancy >= UNCONTROLLED
     safe = np.where(controlled, redundancy, 1.0)
     w_all = residual_si / (sd_si * np.sqrt(safe))
@@ -185,7 +203,7 @@ def _observation_results(
     flagged_rows = controlled & (np.abs(w_all) > critical)
     flagged = flagged_rows.tolist()
     bias = np.where(controlled, -residual_si / safe * small, np.nan).tolist()
-    partners = _inseparable_lines(network, solution, r_i, controlled, flagged_rows)
+    partners = _inseparable_lines(network, solution, r_i, components, first)
     redundancy_list = redundancy.tolist()
     controlled_list = controlled.tolist()
 
@@ -193,6 +211,9 @@ def _observation_results(
     results = []
     uncontrolled: list[str] = []
     for obs in network.fieldbook.observations:
+        if id(obs) in baselines.entries:
+            results.extend(baselines.entries[id(obs)])
+            continue
         row = row_of.get(id(obs))
         if row is not None:
             if not controlled_list[row]:
@@ -276,21 +297,32 @@ def _scale_factor(obs: Observation) -> float | None:
 
 
 def _inseparable_lines(
-    network: Network, solution: Solution, r_i: np.ndarray, controlled: np.ndarray, flagged: np.ndarray
+    network: Network, solution: Solution, r_i: np.ndarray, components: np.ndarray,
+    first: np.ndarray,
 ) -> list[tuple[int, ...]]:
-    """For each used row, the lines whose w-test is the same test as its own (|ρ| ≥ 0.99)."""
+    """For each used observation, the lines whose w-test is the same test as its own
+    (|ρ| ≥ 0.99).  Rows of a baseline (a whitened block) take no part: their components are
+    tested in ``baselines.py``."""
     used = network.used
-    n_used = len(used)
+    n_rows = int(first[-1] + components[-1]) if len(used) else 0
+    scalar = np.repeat(components == 1, components)
+    r_rows = np.asarray(r_i[:n_rows], dtype=float)
+    controlled = (r_rows >= UNCONTROLLED) & scalar
+    sigmas = np.asarray(solution.sigmas, dtype=float)
+    w_rows = np.asarray(solution.residuals[:n_rows], dtype=float) / (
+        sigmas[:n_rows] * np.sqrt(np.where(controlled, r_rows, 1.0)))
+    flagged = controlled & (np.abs(w_rows) > st.normal_critical_value(
+        network.fieldbook.tests.snooping))
     candidates = np.flatnonzero(controlled)
     if solution.hat is None or candidates.size < 2:
-        return [()] * n_used
+        return [()] * len(used)
     rows = separability.correlated_rows(
-        solution.hat, np.asarray(solution.sigmas, dtype=float), np.asarray(r_i, dtype=float),
-        candidates, np.flatnonzero(flagged).tolist(),
+        solution.hat, sigmas, np.asarray(r_i, dtype=float), candidates,
+        np.flatnonzero(flagged).tolist(),
     )
-    # each used row has its own line (a round's directions too), so rows map to lines one to one
-    line_of = [obs.line for obs in used].__getitem__
-    return [tuple(map(line_of, partners)) if partners else () for partners in rows[:n_used]]
+    # each scalar row has its own line (a round's directions too)
+    line_of = np.repeat([obs.line for obs in used], components).tolist().__getitem__
+    return [tuple(map(line_of, rows[row])) if rows[row] else () for row in first.tolist()]
 
 
 def _wrap_2pi(angle_rad: np.ndarray) -> np.ndarray:
@@ -307,24 +339,30 @@ def _difference(obs: Observation, adjusted: float) -> float:
 
 def _evaluate(obs: Observation, solution: Solution) -> float | None:
     """The value of an ignored observation computed from the adjusted coordinates."""
-    equation = EQUATIONS.get(obs.kind)
-    if equation is None:
-        return None
     if obs.round_line is not None and obs.round_line not in solution.orientations:
         return None
     try:
-        value, _ = equation(obs, solution.coordinates, solution.orientations)
-    except (KeyError, ZeroDivisionError):
+        value = float(evaluate_one(obs, *_model_of(solution)).value[0])
+    except (KeyError, CoincidentPointsError):  # a kind without a model, or no position for it
         return None
     return None if math.isnan(value) else value
 
 
-def _sigma_of_ignored(obs: Observation, solution: Solution) -> float:
-    from server.model.observations import a_priori_sigma
+def _model_of(solution: Solution) -> tuple[Any, Any, Any, Any]:
+    """Coordinates, orientations, kinds table and undulations to evaluate one observation:
+    Earth-centred positions and the geodetic kinds in the geodetic model."""
+    frame = solution.network.geodetic
+    if frame is None or solution.positions is None:
+        return solution.coordinates, solution.orientations, None, None
+    kinds = geodetic_kinds(frame.crs, frame.refraction)
+    return solution.positions, solution.orientations, kinds, frame.undulation
 
+
+def _sigma_of_ignored(obs: Observation, solution: Solution) -> float:
     try:
-        sigma = a_priori_sigma(obs, solution.coordinates)
-    except (KeyError, ZeroDivisionError):
+        coordinates, _, kinds, _ = _model_of(solution)
+        sigma = sigma_one(obs, coordinates, kinds)
+    except KeyError:
         sigma = math.nan
     return sigma if math.isfinite(sigma) else obs.sigma.constant
 
@@ -405,13 +443,16 @@ def _point_results(
 
 
 def _joined_pairs(network: Network) -> list[tuple[str, str]]:
-    """Point pairs joined by a used horizontal observation, first-seen order, no repeats."""
+    """Point pairs joined by a used observation of any kind but level and zenith, first-seen
+    order, no repeats."""
     pairs: dict[tuple[str, str], tuple[str, str]] = {}
     for obs in network.used:
         if obs.kind == "angle":
             assert obs.at is not None
             candidates = [(obs.at, obs.from_point), (obs.at, obs.to)]
-        elif obs.kind in ("distance", "azimuth", "direction"):
+        elif obs.kind in ("distance", "azimuth", "direction", "slope", "baseline"):
+            # (the geodetic model's slope distances and baselines join marks too; a zenith
+            # angle or a level line does not fix a horizontal position between them)
             candidates = [(obs.from_point, obs.to)]
         else:
             continue

@@ -47,7 +47,9 @@ _LINE_BREAK = re.compile(r"\r\n|\r|\n")
 class Slots(Protocol):
     """The adjustment queue as this module uses it (``server.web.jobs.AdjustmentQueue``)."""
 
-    def slot(self, bounded: bool = True) -> contextlib.AbstractContextManager[Any]: ...
+    def slot(
+        self, ticket: object | None = None, *, bounded: bool = True
+    ) -> contextlib.AbstractContextManager[None]: ...
 
 
 class StoreFull(RuntimeError):
@@ -529,8 +531,9 @@ def compare_runs(store: Store, project: Project, a_arg: str | None, b_arg: str |
         earlier = [r for r in finished if r.id < b.id]
         if not earlier:
             raise NoSuchRun("There is no earlier run to compare with.")
-        a = store.run(project.id, earlier[-1].id)
-    assert a is not None
+        found = store.run(project.id, earlier[-1].id)
+        assert found is not None
+        a = found
     result_a, result_b = run_result(project, a), run_result(project, b)
     edits_a, edits_b = review.edits_from_json(a.edits), review.edits_from_json(b.edits)
     made, withdrawn = review.decisions_between(edits_a, edits_b)

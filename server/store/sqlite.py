@@ -297,6 +297,7 @@ class Store:
         has_projects = db.execute(
             "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'projects'"
         ).fetchone()
+        statements: tuple[str, ...]
         if not has_projects:
             statements = _SCHEMA
         elif version <= 1:
@@ -374,8 +375,8 @@ class Store:
     def list_projects(self) -> list[ProjectListing]:
         """All projects, newest first, with their latest run's summary (no field books, no results)."""
         with self._read() as db:
-            rows = db.execute(
-                "SELECT p.id, p.name, p.filename, p.created, p.sha256, "
+            rows = db.execute(  # _COMPLETED below is a constant of this module
+                "SELECT p.id, p.name, p.filename, p.created, p.sha256, "  # noqa: S608
                 "r.id, r.created, r.status, r.summary, r.error, "
                 "(SELECT COUNT(*) FROM runs n WHERE n.project_id = p.id AND n.id <= r.id) "
                 "FROM projects p LEFT JOIN runs r ON r.id = "
@@ -548,7 +549,8 @@ class Store:
         status = "status = 'finished'" if finished else _COMPLETED
         with self._read() as db:
             row = db.execute(
-                f"SELECT {_RUN_COLUMNS} FROM runs WHERE project_id = ? AND {status} "
+                # both pieces are constants of this module; values go in as parameters
+                f"SELECT {_RUN_COLUMNS} FROM runs WHERE project_id = ? AND {status} "  # noqa: S608
                 "ORDER BY id DESC LIMIT 1",
                 (project_id,),
             ).fetchone()
@@ -560,7 +562,7 @@ class Store:
             return None
         with self._read() as db:
             row = db.execute(
-                f"SELECT {_RUN_COLUMNS} FROM runs WHERE project_id = ? AND id = ?",
+                f"SELECT {_RUN_COLUMNS} FROM runs WHERE project_id = ? AND id = ?",  # noqa: S608
                 (project_id, run_id),
             ).fetchone()
         return None if row is None else _run(row)
@@ -685,7 +687,7 @@ def _run(row: tuple[Any, ...]) -> Run:
 
 def _outcome(
     result: AdjustmentResult | None, error: BaseException | str | None
-) -> tuple[str, str | None, str | None, str | None, str | None]:
+) -> tuple[str, bytes | None, bytes | None, str | None, str | None]:
     """(status, result, detail, summary, error) columns of a finished or failed run."""
     if (result is None) == (error is None):
         raise ValueError("give exactly one of result and error")

@@ -315,6 +315,12 @@ def _error_page(
 
 def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
     """Errors as JSON under /api and as friendly pages elsewhere; never a traceback."""
+    _install_request_handlers(app, templates)
+    _install_failure_handlers(app, templates)
+
+
+def _install_request_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
+    """What the request asked for cannot be done: field book problems, 4xx, a full queue."""
 
     @app.exception_handler(SurveyError)
     async def survey_error(request: Request, exc: SurveyError) -> Response:
@@ -333,26 +339,6 @@ def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
         if is_api(request.url.path):
             return JSONResponse({"error": message}, status_code=404)
         return _error_page(templates, request.scope, 404, "Not found", message)
-
-    @app.exception_handler(sqlite3.Error)
-    async def storage_error(request: Request, exc: sqlite3.Error) -> Response:
-        """The project store cannot be read or written: say so, and name the folder in the log."""
-        folder = request.app.state.store.path.parent
-        logger.error("%s %s: the data folder %s cannot be used (%s); check that it exists, "
-                     "that the service's user may write to it and that the disk has room",
-                     request.method, request.url.path, folder, exc)
-        if request.method in UNSAFE_METHODS:
-            message = ("Your request could not be stored: the service cannot write to its "
-                       "data folder. Nothing was saved. Please tell the administrator; the "
-                       "service's log names the folder and the reason.")
-        else:
-            message = ("The stored projects cannot be read right now: the service cannot use "
-                       "its data folder. Please tell the administrator; the service's log "
-                       "names the folder and the reason.")
-        if is_api(request.url.path):
-            return JSONResponse({"error": message}, status_code=503)
-        return _error_page(templates, request.scope, 503, "The project store is unavailable",
-                           message)
 
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request: Request, exc: StarletteHTTPException) -> Response:
@@ -386,6 +372,31 @@ def _install_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
     async def store_full(request: Request, exc: StoreFull) -> Response:
         """The store holds as many projects as it may: 507, nothing stored."""
         return await http_error(request, StarletteHTTPException(507, str(exc)))
+
+
+
+def _install_failure_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
+    """The service itself failed: its store is unusable, or an unexpected error (500)."""
+
+    @app.exception_handler(sqlite3.Error)
+    async def storage_error(request: Request, exc: sqlite3.Error) -> Response:
+        """The project store cannot be read or written: say so, and name the folder in the log."""
+        folder = request.app.state.store.path.parent
+        logger.error("%s %s: the data folder %s cannot be used (%s); check that it exists, "
+                     "that the service's user may write to it and that the disk has room",
+                     request.method, request.url.path, folder, exc)
+        if request.method in UNSAFE_METHODS:
+            message = ("Your request could not be stored: the service cannot write to its "
+                       "data folder. Nothing was saved. Please tell the administrator; the "
+                       "service's log names the folder and the reason.")
+        else:
+            message = ("The stored projects cannot be read right now: the service cannot use "
+                       "its data folder. Please tell the administrator; the service's log "
+                       "names the folder and the reason.")
+        if is_api(request.url.path):
+            return JSONResponse({"error": message}, status_code=503)
+        return _error_page(templates, request.scope, 503, "The project store is unavailable",
+                           message)
 
     @app.exception_handler(Exception)
     async def server_error(request: Request, exc: Exception) -> Response:
@@ -437,7 +448,8 @@ def serve_allowed_hosts(host: str) -> tuple[str, ...]:
     configured = os.environ.get("STATIONFIT_ALLOWED_HOSTS", "").strip()
     if configured:
         return tuple(h.strip() for h in configured.split(",") if h.strip())
-    extra = () if host in ("", "0.0.0.0", "::") or ":" in host else (host,)
+    # a wildcard bind address names no host a client could ask for
+    extra = () if host in ("", "0.0.0.0", "::") or ":" in host else (host,)  # noqa: S104
     return tuple(dict.fromkeys(LOOPBACK_HOSTS + extra))
 
 

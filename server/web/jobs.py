@@ -158,7 +158,7 @@ class Jobs:
         self._jobs: dict[int, Job] = {}
         self.queue = queue if queue is not None else AdjustmentQueue(1)
 
-    def start(self, run_id: int, work: Callable[[Callable[[str, int], None]], None]) -> Job:
+    def start(self, run_id: int, work: Callable[[Callable[[str, int], None]], object]) -> Job:
         """Run ``work(progress)`` on a new thread once the queue gives it a slot.
 
         The job is forgotten once it ends.

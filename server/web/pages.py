@@ -21,6 +21,7 @@ from server.report import csv_export, plot
 from server.report import html as html_report
 from server.report import tables as report
 from server.report.pdf import report_pdf
+from server.report.tables import Page
 from server.results.result import AdjustmentResult
 from server.store import projects as service
 from server.store.projects import StandardsChoice, Upload, display_name
@@ -87,9 +88,12 @@ def _results_context(request: Request, project: Project, result: AdjustmentResul
     context = report.context(result, choice.presets, obs_page=page_number(request, "obs_page"),
                              pt_page=page_number(request, "pt_page"))
     here = f"/projects/{project.id}"
+    observation_page = context["observation_page"]
+    point_page = context["point_page"]
+    assert isinstance(observation_page, Page | None) and isinstance(point_page, Page | None)
     context["observation_links"] = page_links(
-        request, "obs_page", context["observation_page"], "observations", here)
-    context["point_links"] = page_links(request, "pt_page", context["point_page"], "points", here)
+        request, "obs_page", observation_page, "observations", here)
+    context["point_links"] = page_links(request, "pt_page", point_page, "points", here)
     context["network_plot"] = plot.network_plot_data(result)
     context.update(choice=choice, download_query=choice.query,
                    preset_options=service.preset_options())

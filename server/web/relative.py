@@ -54,26 +54,7 @@ def requested_pairs(
     from/to selects, ``among`` the points of "all pairs among these points".
     """
     order = {name: k for k, name in enumerate(known)}
-    chosen: list[tuple[str, str]] = []
-    for text in pairs:
-        parts = text.split()
-        if len(parts) != 2:
-            raise PairRequestError("a pair must name two points")
-        chosen.append((parts[0], parts[1]))
-    if first or second:
-        if not (first and second):
-            raise PairRequestError("choose both points of the pair, From and To")
-        chosen.append((first, second))
-    if among:
-        if len(among) > MAX_AMONG:
-            raise PairRequestError(
-                f"{len(among)} points chosen for all pairs among them; choose at most {MAX_AMONG}"
-            )
-        if len(set(among)) < 2:
-            raise PairRequestError("choose at least two points for all pairs among them")
-        unknown = [n for n in among if n not in order]
-        if not unknown:
-            chosen += combinations(sorted(set(among), key=order.__getitem__), 2)
+    chosen = _typed_pairs(pairs) + _selected_pair(first, second) + _pairs_among(among, order)
     for a, b in chosen:
         for name in (a, b):
             if name not in order:
@@ -91,6 +72,42 @@ def requested_pairs(
     if len(out) > MAX_PAIRS:
         raise PairRequestError(f"{len(out)} pairs at once is too many; ask for at most {MAX_PAIRS}")
     return out
+
+
+def _typed_pairs(pairs: list[str]) -> list[tuple[str, str]]:
+    """The "A B" strings added one by one."""
+    chosen = []
+    for text in pairs:
+        parts = text.split()
+        if len(parts) != 2:
+            raise PairRequestError("a pair must name two points")
+        chosen.append((parts[0], parts[1]))
+    return chosen
+
+
+def _selected_pair(first: str, second: str) -> list[tuple[str, str]]:
+    """The From/To selects: both or neither."""
+    if not (first or second):
+        return []
+    if not (first and second):
+        raise PairRequestError("choose both points of the pair, From and To")
+    return [(first, second)]
+
+
+def _pairs_among(among: list[str], order: dict[str, int]) -> list[tuple[str, str]]:
+    """All pairs among the chosen points, in the order of the adjusted points."""
+    if not among:
+        return []
+    if len(among) > MAX_AMONG:
+        raise PairRequestError(
+            f"{len(among)} points chosen for all pairs among them; choose at most {MAX_AMONG}"
+        )
+    if len(set(among)) < 2:
+        raise PairRequestError("choose at least two points for all pairs among them")
+    for name in among:
+        if name not in order:
+            raise PairRequestError(f"point {name} is not among the adjusted points")
+    return list(combinations(sorted(set(among), key=order.__getitem__), 2))
 
 
 def _strings(form: FormData, name: str, limit: int = 200) -> list[str]:

@@ -335,7 +335,7 @@ async def rerun(request: Request, project: ProjectDep, store: StoreDep,
         context = await run_in_threadpool(lambda: _review_context(request, state, problem=problem))
         return _render(request, "review.html", context, status=status)
     new = store.run(project.id, run_id) if run_id is not None else None
-    if new is None or not new.finished:
+    if new is None or not new.finished or state.base is None:
         return RedirectResponse(_review_url(project.id), status_code=303)
     return RedirectResponse(f"/projects/{project.id}/compare?a={state.base.id}&b={new.id}",
                             status_code=303)

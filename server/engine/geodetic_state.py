@@ -1,0 +1,114 @@
+"""The engine's state in the geodetic 3D model: Earth-centred positions, local corrections.
+
+The coordinate arrays of the plane state hold X, Y, Z here, and the unknowns E, N, H of a
+point are corrections along its local east, north and up at the current position, so a
+step moves a point by Rᵀ·(δe, δn, δu) (``model/geodetic_equations.py``).  Weighted control
+observes grid east, north (metres) and the orthometric height.  Each round's start
+orientation is the mean of (horizon azimuth − direction) over its targets.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+
+from server.engine.gauss_newton import _State
+from server.errors import NetworkError
+from server.model import geodetic_equations as ge
+from server.model.assembly import Assembly, GeodeticRows
+from server.model.geodetic import GeodeticFrame, height_only_points
+from server.model.geodetic_kinds import geodetic_kinds
+from server.model.network import Network
+from server.model.whitening import CorrelatedBlock
+
+
+class GeodeticState(_State):
+    """Positions X, Y, Z per point; unknowns along local east, north and up."""
+
+    def __init__(self, network: Network, correlated: Sequence[CorrelatedBlock] = ()) -> None:
+        frame = network.geodetic
+        assert frame is not None
+        self.frame: GeodeticFrame = frame
+        start = {name: tuple(xyz) for name, xyz in frame.start.items()}
+        super().__init__(network, start, geodetic_kinds(frame.crs, frame.refraction), correlated)
+        self.undulation = np.array([frame.undulation.get(n, 0.0) for n in self.names])
+        only = height_only_points(network.fieldbook)
+        self.height_only = np.array([n in only for n in self.names], dtype=bool)
+
+    def assembly(self, columns: dict[str, np.ndarray]) -> Assembly:
+        frame = self.frame
+        undulation = self.undulation
+
+        def control(xyz: np.ndarray, point: np.ndarray, component: np.ndarray
+                    ) -> tuple[np.ndarray, np.ndarray]:
+            values, jac = ge.control(frame.crs, xyz, undulation[point])
+            rows = np.arange(len(point))
+            return values[rows, component], jac[rows, component, :]
+
+        model = GeodeticRows(self.kinds, frame.undulation, control)
+        return Assembly(
+            self.network.used, self.point_index, self.round_index,
+            columns["E"], columns["N"], columns["H"], columns["O"], self.control,
+            self.kinds, self.correlated, model,
+        )
+
+    def apply(self, correction: np.ndarray) -> None:
+        points = self.kind < 3
+        delta = np.zeros((len(self.names), 3))
+        delta[self.target[points], self.kind[points]] = correction[points]
+        moved = np.flatnonzero(np.any(delta != 0.0, axis=1))
+        if moved.size:
+            xyz = self._xyz(moved)
+            rot = ge.rotation_at(self.frame.crs.ellipsoid, xyz)
+            shift = np.einsum("mji,mj->mi", rot, delta[moved])  # Rᵀ δ
+            self.east[moved] += shift[:, 0]
+            self.north[moved] += shift[:, 1]
+            self.height[moved] += shift[:, 2]
+        rounds = self.kind == 3
+        self.orientation[self.target[rounds]] += correction[rounds]
+
+    def positions(self) -> dict[str, tuple[float, float, float]]:
+        return dict(zip(self.names, zip(self.east.tolist(), self.north.tolist(),
+                                        self.height.tolist())))
+
+    def coordinates(self) -> dict[str, tuple[float, float, float]]:
+        """Grid east, north (metres) and orthometric height of each point; east and north
+        NaN for a point that has a height only."""
+        crs = self.frame.crs
+        per_unit = crs.metres_per_unit
+        xyz = self._xyz(np.arange(len(self.names)))
+        east, north, h = crs.ecef_to_grid(xyz)
+        east = np.where(self.height_only, np.nan, np.asarray(east) * per_unit)
+        north = np.where(self.height_only, np.nan, np.asarray(north) * per_unit)
+        height = np.asarray(h) - self.undulation
+        return dict(zip(self.names, zip(east.tolist(), north.tolist(), height.tolist())))
+
+    def _xyz(self, index: np.ndarray) -> np.ndarray:
+        return np.stack([self.east[index], self.north[index], self.height[index]], axis=1)
+
+    def _start_orientations(self) -> np.ndarray:
+        """Each round's orientation: circular mean of (horizon azimuth − direction)."""
+        rows = [
+            (self.round_index[o.round_line], self.point_index[o.from_point],
+             self.point_index[o.to], o.value)
+            for o in self.network.used
+            if o.kind == "direction" and o.round_line in self.round_index
+        ]
+        orientation = np.zeros(len(self.round_lines))
+        if not rows:
+            return orientation
+        table = np.array(rows, dtype=float)
+        r, i, j = (table[:, c].astype(np.int64) for c in range(3))
+        xyz_i, xyz_j = self._xyz(i), self._xyz(j)
+        ok = np.isfinite(xyz_i).all(axis=1) & np.isfinite(xyz_j).all(axis=1) & (i != j)
+        azimuth = ge.direction(self.frame.crs.ellipsoid, xyz_i[ok], xyz_j[ok]).value
+        offset = azimuth - table[ok, 3]
+        sines = np.bincount(r[ok], weights=np.sin(offset), minlength=len(self.round_lines))
+        cosines = np.bincount(r[ok], weights=np.cos(offset), minlength=len(self.round_lines))
+        return np.arctan2(sines, cosines)
+
+    def inner_constraints(self) -> np.ndarray:
+        raise NetworkError("a free geodetic network (no control) cannot be adjusted; hold "
+                           "control points fixed")
+

@@ -1,0 +1,256 @@
+"""The geodetic 3D model's frame: the CRS, each point's geoid undulation, and start positions.
+
+A field book with a ``slope``, ``zenith`` or ``baseline`` line (and a ``crs`` line) is
+adjusted with every point as one position in the Earth-centred frame of the CRS's own
+ellipsoid.  This module gathers what the model needs before the first iteration:
+
+* the CRS from pyproj (``server/geodesy/crs.py``: a projected CRS and its own geodetic CRS,
+  conversions only, never a datum transformation), refused on the ``crs`` line when pyproj
+  cannot use it;
+* each point's undulation N (its own ``geoid=``, else the ``geoid undulation=`` line,
+  else 0), so that h = H + N turns the field book's orthometric heights into ellipsoidal
+  ones; deflections of the vertical are taken as zero;
+* each given point's Earth-centred position (grid east/north in the file's unit, or
+  latitude/longitude) and start positions of the others from baselines, polar ties and
+  trigonometric heighting (``server/geodesy/start3d.py``); a point nothing reaches is
+  named (exit 3).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from server.errors import FieldbookError, Issue, NetworkError
+from server.fieldbook.model import SPATIAL_KINDS, Fieldbook, Observation, PointStatement
+from server.geodesy import start3d
+from server.geodesy.crs import Crs, CrsError, crs_from_epsg, local_crs
+from server.units import LENGTH_FACTORS
+
+XYZ = tuple[float, float, float]
+
+
+@dataclass(frozen=True, eq=False)
+class GeodeticFrame:
+    """What the geodetic model holds for a whole field book."""
+
+    crs: Crs
+    crs_text: str  # the crs line as given after ``crs``
+    refraction: float  # k in force for zenith angles
+    undulation: Mapping[str, float]  # per point name, metres (0 where none is given)
+    geoid_given: bool  # whether the file gives any undulation at all
+    start: Mapping[str, XYZ]  # Earth-centred start position of every point, metres
+    methods: Mapping[str, str]  # how each start position was found
+
+
+def is_geodetic(fieldbook: Fieldbook) -> bool:
+    """The 3D model is entered by a slope, zenith or baseline line (ignored ones count)."""
+    return any(obs.kind in SPATIAL_KINDS for obs in fieldbook.observations)
+
+
+def resolve_crs(fieldbook: Fieldbook) -> Crs | None:
+    """The field book's CRS through pyproj, or None without a ``crs`` line.
+
+    Raises ``FieldbookError`` on the ``crs`` line when pyproj cannot use it.
+    """
+    line = fieldbook.crs
+    if line is None:
+        return None
+    try:
+        if line.epsg is not None:
+            return crs_from_epsg(f"EPSG:{line.epsg}")
+        assert line.latitude is not None and line.longitude is not None
+        unit = fieldbook.length_unit
+        per_unit = LENGTH_FACTORS[unit]
+        return local_crs(line.latitude, line.longitude, line.false_east / per_unit,
+                         line.false_north / per_unit, unit=unit, definition=line.text)
+    except CrsError as exc:
+        raise FieldbookError([Issue(line.line, line.text, str(exc))],
+                             source=fieldbook.source) from None
+
+
+def undulations(fieldbook: Fieldbook) -> dict[str, float]:
+    """Each point's geoid undulation in metres: its own, else the file's, else 0."""
+    default = fieldbook.geoid_undulation or 0.0
+    named = {p.name: p.geoid for p in fieldbook.points if p.geoid is not None}
+    names = {p.name for p in fieldbook.points}
+    for obs in fieldbook.observations:
+        names.update(n for n in (obs.from_point, obs.at, obs.to) if n)
+    return {name: float(named.get(name, default)) for name in sorted(names)}
+
+
+def geodetic_frame(fieldbook: Fieldbook) -> GeodeticFrame:
+    """The CRS, undulations and start positions of a geodetic field book.
+
+    Raises ``FieldbookError`` for a CRS pyproj cannot use (on its line) and
+    ``NetworkError`` naming the points no observation places.
+    """
+    crs = resolve_crs(fieldbook)
+    if crs is None:  # the parser refuses 3D lines without a crs line; kept for library callers
+        raise NetworkError("the geodetic 3D model needs a crs line (crs EPSG:CODE, or crs local "
+                           "lat=LAT lon=LON)")
+    und = undulations(fieldbook)
+    known, heights = _given_points(fieldbook.points, crs, und)
+    known += _height_only(fieldbook, crs, known)
+    observations = _start_observations(fieldbook, crs, known)
+    try:
+        found = start3d.start_positions(known, observations, heights=heights, undulations=und,
+                                        a=crs.ellipsoid.a, f=crs.ellipsoid.f)
+    except start3d.UnreachablePointsError as exc:
+        raise NetworkError(
+            f"no start position can be computed for {_listed(exc.points)}: no baseline, polar "
+            "tie (direction or angle with a slope distance), trigonometric height or level line "
+            "reaches them from the given points; give an approximate position (east= north=, "
+            "or lat= lon=) or connect them",
+            exc.points,
+        ) from None
+    geoid_given = fieldbook.geoid_undulation is not None or any(
+        p.geoid is not None for p in fieldbook.points)
+    return GeodeticFrame(crs=crs, crs_text=fieldbook.crs.text if fieldbook.crs else "",
+                         refraction=fieldbook.refraction, undulation=und,
+                         geoid_given=geoid_given, start=dict(found.positions),
+                         methods=dict(found.methods))
+
+
+def grid_to_ecef(crs: Crs, east_m: float, north_m: float, h: float) -> XYZ:
+    """Earth-centred position of a point given by grid east/north in metres and height h."""
+    per_unit = crs.metres_per_unit
+    xyz = crs.grid_to_ecef(np.array([east_m / per_unit]), np.array([north_m / per_unit]),
+                           np.array([h]))
+    x, y, z = (float(c) for c in np.asarray(xyz).reshape(3))
+    return x, y, z
+
+
+def _given_points(points: Sequence[PointStatement], crs: Crs, und: Mapping[str, float]
+                  ) -> tuple[list[start3d.KnownPoint], list[start3d.KnownHeight]]:
+    """Points with a given position (grid or lat/lon) and benchmarks with a height only."""
+    known: list[start3d.KnownPoint] = []
+    heights: list[start3d.KnownHeight] = []
+    for p in points:
+        n = und.get(p.name, 0.0)
+        has_height = p.height is not None
+        h = (p.height if p.height is not None else 0.0) + n
+        control = bool(p.fixed or p.weighted)
+        if p.latitude is not None and p.longitude is not None:
+            xyz = crs.geodetic_to_ecef(np.array([p.latitude]), np.array([p.longitude]),
+                                       np.array([h]))
+            position = tuple(float(c) for c in np.asarray(xyz).reshape(3))
+        elif p.east is not None and p.north is not None:
+            position = grid_to_ecef(crs, p.east, p.north, h)
+        else:
+            if p.height is not None:
+                heights.append(start3d.KnownHeight(p.name, p.height))
+            continue
+        if not all(math.isfinite(c) for c in position):
+            raise NetworkError(
+                f"point {p.name} (line {p.line}) lies where the CRS {crs.definition} cannot "
+                "place it on its ellipsoid; check its coordinates and the crs line", (p.name,))
+        known.append(start3d.KnownPoint(p.name, position, control=control,  # type: ignore[arg-type]
+                                        height_known=has_height))
+    return known, heights
+
+
+def height_only_points(fieldbook: Fieldbook) -> set[str]:
+    """Points that only used level lines touch and that have no given position: they
+    carry a height alone (their place on the ellipsoid is only a reference)."""
+    spatial: set[str] = set()
+    leveled: set[str] = set()
+    for obs in fieldbook.observations:
+        if obs.ignored or obs.planned:
+            continue
+        names = leveled if obs.kind == "level" else spatial
+        names.update(n for n in (obs.from_point, obs.at, obs.to) if n)
+    placed = {p.name for p in fieldbook.points
+              if p.latitude is not None or (p.east is not None and p.north is not None)}
+    return leveled - spatial - placed
+
+
+def _height_only(fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.KnownPoint]
+                 ) -> list[start3d.KnownPoint]:
+    """Height-only points placed at a reference position (the first given point, else the
+    CRS's origin or the centre of its area of use); only their heights are estimated."""
+    names = sorted(height_only_points(fieldbook))
+    if not names:
+        return []
+    if known:
+        reference = np.array(known[0].xyz, dtype=float)
+    else:
+        lat, lon = _crs_centre(crs)
+        reference = np.asarray(crs.geodetic_to_ecef(np.array([lat]), np.array([lon]),
+                                                    np.array([0.0]))).reshape(3)
+    x, y, z = (float(c) for c in reference)
+    return [start3d.KnownPoint(name, (x, y, z), height_known=False) for name in names]
+
+
+def _crs_centre(crs: Crs) -> tuple[float, float]:
+    """Latitude and longitude (radians) of a place the CRS covers."""
+    if crs.area_of_use is not None:
+        west, south, east, north = crs.area_of_use
+        lat, lon = math.radians((south + north) / 2.0), math.radians((west + east) / 2.0)
+    else:
+        lat, lon = crs.grid_to_geodetic(np.array([0.0]), np.array([0.0]))
+        lat, lon = float(np.asarray(lat).reshape(-1)[0]), float(np.asarray(lon).reshape(-1)[0])
+    return lat, lon
+
+
+def _start_observations(fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.KnownPoint]
+                        ) -> list[start3d.Observation]:
+    """The used observations in the start-value module's terms.
+
+    Grid azimuths and distances need the convergence and scale factor only roughly here (start
+    values); they are taken at the first given point.
+    """
+    convergence, scale = _rough_factors(crs, known)
+    by_round: dict[int, list[Observation]] = {}
+    out: list[start3d.Observation] = []
+    for obs in fieldbook.observations:
+        if obs.ignored or obs.planned:
+            continue
+        hi, ht = obs.instrument_height or 0.0, obs.target_height or 0.0
+        if obs.kind == "slope":
+            out.append(start3d.SlopeDistance(obs.from_point, obs.to, obs.value, hi, ht))
+        elif obs.kind == "zenith":
+            out.append(start3d.ZenithAngle(obs.from_point, obs.to, obs.value, hi, ht,
+                                           fieldbook.refraction))
+        elif obs.kind == "baseline":
+            assert obs.baseline is not None
+            dx, dy, dz = obs.baseline.components
+            out.append(start3d.Baseline(obs.from_point, obs.to, dx, dy, dz))
+        elif obs.kind == "level":
+            out.append(start3d.HeightDifference(obs.from_point, obs.to, obs.value))
+        elif obs.kind == "distance":
+            out.append(start3d.GridDistance(obs.from_point, obs.to, obs.value, scale))
+        elif obs.kind == "azimuth":
+            out.append(start3d.Azimuth(obs.from_point, obs.to, obs.value, convergence))
+        elif obs.kind == "angle":
+            assert obs.at is not None
+            out.append(start3d.HorizontalAngle(obs.at, obs.from_point, obs.to, obs.value))
+        elif obs.kind == "direction" and obs.round_line is not None:
+            by_round.setdefault(obs.round_line, []).append(obs)
+    for line in sorted(by_round):
+        entries = by_round[line]
+        out.append(start3d.DirectionRound(entries[0].from_point,
+                                          tuple((o.to, o.value) for o in entries)))
+    return out
+
+
+def _rough_factors(crs: Crs, known: Sequence[start3d.KnownPoint]) -> tuple[float, float]:
+    """Convergence (radians) and point scale factor at the first given point (1 and 0 if none)."""
+    if not known:
+        return 0.0, 1.0
+    lat, lon, _ = crs.ecef_to_geodetic(np.array([known[0].xyz], dtype=float))
+    factors = crs.factors(lat, lon)
+    convergence = float(np.asarray(factors.convergence).reshape(-1)[0])
+    scale = float(np.asarray(factors.scale).reshape(-1)[0])
+    if not (math.isfinite(convergence) and math.isfinite(scale)):
+        return 0.0, 1.0
+    return convergence, scale
+
+
+def _listed(names: Sequence[str], limit: int = 12) -> str:
+    shown = ", ".join(names[:limit])
+    more = len(names) - limit
+    return shown + (f" and {more} more" if more > 0 else "")
