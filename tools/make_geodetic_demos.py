@@ -21,8 +21,8 @@ The seed is fixed: running the script again writes the same files byte for byte:
 
     .venv/bin/python tools/make_geodetic_demos.py
 
-The files sit in a subfolder so that the loops over ``demo_projects/*.fieldbook`` (golden
-output, web demos, packaging) leave them out until the geodetic adjustment is wired in.
+The files sit in a subfolder, so the loops over ``demo_projects/*.fieldbook`` (golden
+output, web demos, packaging) leave them out until they get golden outputs of their own.
 """
 
 from __future__ import annotations
