@@ -165,3 +165,14 @@ def test_results_page_shows_the_geodetic_parts(result, tmp_path, monkeypatch):
     _check_page(html, result)
     assert 'id="geodetic-points"' in html and 'id="baseline-tests"' in html
     assert "TS<1>&" not in html and "TS&lt;1&gt;&amp;" in html
+
+
+def test_verdict_names_a_flagged_baseline_line_once_with_its_components(result):
+    from server.report.tables import flagged_lines, verdict
+
+    two = dataclasses.replace(result, observations=tuple(
+        dataclasses.replace(o, flagged=True) if (o.line, o.component) == (13, "dz") else o
+        for o in result.observations))
+    note = " ".join(verdict(two).notes)
+    assert "2 observations flagged" in note and "line 13 (dy, dz)." in note
+    assert flagged_lines(two) == [13]
