@@ -176,3 +176,10 @@ def test_verdict_names_a_flagged_baseline_line_once_with_its_components(result):
     note = " ".join(verdict(two).notes)
     assert "2 observations flagged" in note and "line 13 (dy, dz)." in note
     assert flagged_lines(two) == [13]
+
+
+def test_plot_detail_panel_gives_latitude_and_longitude(result):
+    data = plot.network_plot_data(result)
+    detail = dict(map(tuple, data["points"][1]["detail"]))
+    assert detail["Latitude"] == f"{result.points[1].latitude:.9f}°"
+    assert detail["Longitude"] == f"{result.points[1].longitude:.9f}°"
