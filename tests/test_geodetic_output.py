@@ -131,7 +131,9 @@ def test_geojson_is_longitude_latitude_with_a_crs(result):
         assert -180 <= lon <= 180 and -90 <= lat <= 90
         assert h == pytest.approx(p.ellipsoidal_height)  # metres above the ellipsoid
         assert points[p.name]["properties"]["east"] == p.east
-    line = next(f for f in data["features"] if f["id"] == "line:12")
+    ids = [f["id"] for f in data["features"]]
+    assert len(ids) == len(set(ids))  # a baseline's components are three features, three ids
+    line = next(f for f in data["features"] if f["id"] == "line:12:dx")
     assert line["properties"]["component"] == "dx"
     assert line["geometry"]["coordinates"][0] == [result.points[0].longitude,
                                                   result.points[0].latitude]
