@@ -191,3 +191,23 @@ def test_a_geodetic_result_survives_the_project_store(tmp_path):
     again = run.result()
     assert again == result
     assert again is not None and again.baseline_tests and again.points[0].latitude is not None
+
+
+def test_the_adjustment_passes_the_clean_demo_and_finds_the_bad_component():
+    """End to end through the pipeline: the clean book passes the global test with no
+    baseline flagged; in the copy the bad baseline is the only one its test flags and its
+    dy component has the largest |w| of the book (the answer key)."""
+    from server.pipeline import adjust_fieldbook
+
+    clean = adjust_fieldbook(_text("dam_control_3d").encode())
+    assert clean.summary.model == "geodetic" and clean.summary.crs == "EPSG:32633"
+    assert clean.summary.global_test is not None and clean.summary.global_test.passed
+    assert not any(t.flagged for t in clean.baseline_tests) and len(clean.baseline_tests) == 9
+    bad = adjust_fieldbook(_text("dam_control_3d_blunder").encode())
+    line = _baselines(_text("dam_control_3d_blunder"))[("GN-WEIR", "P-4")][2]
+    assert bad.summary.global_test is not None and not bad.summary.global_test.passed
+    assert [t.line for t in bad.baseline_tests if t.flagged] == [line]
+    worst = max((o for o in bad.observations if o.w is not None), key=lambda o: abs(o.w or 0))
+    assert (worst.line, worst.component) == (line, "dy")
+    # the component's estimated bias finds the 45 mm the key names, within two of its MDBs
+    assert worst.estimated_bias == pytest.approx(0.045, abs=2 * (worst.mdb or 0))

@@ -69,3 +69,15 @@ def test_geodetic_result_validates_against_the_schema():
     assert [e.message for e in validator.iter_errors(data)] == []
     data["observations"][0]["component"] = "dq"
     assert list(validator.iter_errors(data))  # a component the contract does not allow
+
+
+def test_a_stored_geodetic_result_reads_back_equal(tmp_path):
+    from server.store.sqlite import Store
+
+    result = geodetic_result()
+    store = Store(tmp_path / "stationfit.sqlite3")
+    project = store.create_project("dam", "dam.fieldbook", b"title dam\n")
+    store.add_run(project, result=result)
+    back = Store(tmp_path / "stationfit.sqlite3").latest_run(project).result()
+    assert back == result
+    assert back.baseline_tests[1].flagged and back.points[1].latitude == result.points[1].latitude

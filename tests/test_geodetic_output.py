@@ -131,7 +131,9 @@ def test_geojson_is_longitude_latitude_with_a_crs(result):
         assert -180 <= lon <= 180 and -90 <= lat <= 90
         assert h == pytest.approx(p.ellipsoidal_height)  # metres above the ellipsoid
         assert points[p.name]["properties"]["east"] == p.east
-    line = next(f for f in data["features"] if f["id"] == "line:12")
+    ids = [f["id"] for f in data["features"]]
+    assert len(ids) == len(set(ids))  # a baseline's components are three features, three ids
+    line = next(f for f in data["features"] if f["id"] == "line:12:dx")
     assert line["properties"]["component"] == "dx"
     assert line["geometry"]["coordinates"][0] == [result.points[0].longitude,
                                                   result.points[0].latitude]
@@ -165,3 +167,21 @@ def test_results_page_shows_the_geodetic_parts(result, tmp_path, monkeypatch):
     _check_page(html, result)
     assert 'id="geodetic-points"' in html and 'id="baseline-tests"' in html
     assert "TS<1>&" not in html and "TS&lt;1&gt;&amp;" in html
+
+
+def test_verdict_names_a_flagged_baseline_line_once_with_its_components(result):
+    from server.report.tables import flagged_lines, verdict
+
+    two = dataclasses.replace(result, observations=tuple(
+        dataclasses.replace(o, flagged=True) if (o.line, o.component) == (13, "dz") else o
+        for o in result.observations))
+    note = " ".join(verdict(two).notes)
+    assert "2 observations flagged" in note and "line 13 (dy, dz)." in note
+    assert flagged_lines(two) == [13]
+
+
+def test_plot_detail_panel_gives_latitude_and_longitude(result):
+    data = plot.network_plot_data(result)
+    detail = dict(map(tuple, data["points"][1]["detail"]))
+    assert detail["Latitude"] == f"{result.points[1].latitude:.9f}°"
+    assert detail["Longitude"] == f"{result.points[1].longitude:.9f}°"

@@ -98,7 +98,8 @@ def _line_feature(o: ObservationResult, positions: dict[str, Position]) -> dict[
     }
     return {
         "type": "Feature",
-        "id": f"line:{o.line}",
+        # a baseline's three components share a line: each keeps an id of its own
+        "id": f"line:{o.line}" if o.component is None else f"line:{o.line}:{o.component}",
         "geometry": geometry,
         "properties": properties,
     }
@@ -117,9 +118,9 @@ def geojson(result: AdjustmentResult) -> dict[str, object]:
     features += [_line_feature(o, positions) for o in result.observations]
     if crs:
         system = (f"longitude, latitude (decimal degrees) and ellipsoidal height (m) on the "
-                  f"datum of {crs}, not transformed to WGS 84 (they may differ by up to about "
-                  "2 m); grid east, north and orthometric height in the properties, in "
-                  f"{result.length_unit}")
+                  f"geodetic datum of {crs}; where that datum is not WGS 84 they are not "
+                  "transformed to it (the two may differ by up to about 2 m); grid east, north "
+                  f"and orthometric height in the properties, in {result.length_unit}")
     else:
         system = (f"project grid: east, north (and height) in {result.length_unit}; not WGS 84")
     return {

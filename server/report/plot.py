@@ -163,6 +163,9 @@ def _point_detail(row: report.PointRow, point: PointResult, unit: str,
             ["Ellipse b", f"{row.semi_minor} {unit}"],
             ["Azimuth of a", row.azimuth + ("" if ":" in row.azimuth else "°")],
         ]
+    if point.latitude is not None and point.longitude is not None:
+        # decimal degrees to 9 places (about 0.1 mm), as in the geodetic coordinates table
+        out += [["Latitude", f"{point.latitude:.9f}°"], ["Longitude", f"{point.longitude:.9f}°"]]
     return out
 
 

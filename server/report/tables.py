@@ -287,11 +287,12 @@ def verdict(result: AdjustmentResult) -> Verdict:
             f"for {s.redundancy} degrees of freedom."
         )
     if flagged:
-        lines = ", ".join(str(line) for line in flagged[:12]) + (" …" if len(flagged) > 12 else "")
+        labels = _flagged_line_labels(result)
+        lines = ", ".join(labels[:12]) + (" …" if len(labels) > 12 else "")
         noun = "observation" if len(flagged) == 1 else "observations"
         notes.append(
             f"{len(flagged)} {noun} flagged by the w-test (|w| > {fmt_w(s.critical_w)}): "
-            f"line{'s' if len(flagged) > 1 else ''} {lines}."
+            f"line{'s' if len(labels) > 1 else ''} {lines}."
         )
     notes += _inseparable_notes(result)
     if exceeded:
@@ -323,6 +324,18 @@ def verdict(result: AdjustmentResult) -> Verdict:
         headline = ("Fails: residuals smaller than expected — the a priori standard deviations "
                     "may be too pessimistic")
     return Verdict(state, headline, detail, len(flagged), exceeded, len(unchecked))
+
+
+def _flagged_line_labels(result: AdjustmentResult) -> list[str]:
+    """Each line with a flag once; a baseline names its flagged components: "48 (dx, dy)"."""
+    components: dict[int, list[str]] = {}
+    for o in result.observations:
+        if o.flagged:
+            components.setdefault(o.line, [])
+            if o.component is not None:
+                components[o.line].append(o.component)
+    return [f"{line} ({', '.join(parts)})" if parts else str(line)
+            for line, parts in components.items()]
 
 
 def _inseparable_notes(result: AdjustmentResult) -> list[str]:
@@ -962,8 +975,9 @@ def page(total: int, requested: int = 1, size: int = PAGE_SIZE) -> Page:
 
 
 def flagged_lines(result: AdjustmentResult) -> list[int]:
-    """Lines of the flagged observations, so a paged table can still list them all."""
-    return [o.line for o in result.observations if o.flagged]
+    """Lines of the flagged observations, so a paged table can still list them all (a
+    baseline's line once, however many of its components are flagged)."""
+    return list(dict.fromkeys(o.line for o in result.observations if o.flagged))
 
 
 def context(result: AdjustmentResult, presets: Sequence[Preset] = (),

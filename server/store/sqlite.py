@@ -749,6 +749,7 @@ def _result_from_detail(data: dict[str, Any]) -> AdjustmentResult:
             RelativeHeightResult(**h) for h in data.get("relative_heights", ())
         ),
         "warnings": tuple(data["warnings"]),
+        # results stored before the geodetic model have no baseline tests
         "baseline_tests": tuple(
             BaselineTestResult(**t) for t in data.get("baseline_tests", ())
         ),
