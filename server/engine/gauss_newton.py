@@ -298,10 +298,12 @@ class _Engine:
         self.kept = np.flatnonzero(keep)
         self.factor_column = np.full(self.n, -1, np.int64)
         self.factor_column[self.kept] = np.arange(self.kept.size)
-        columns = {
-            c: np.where(a >= 0, self.factor_column[np.maximum(a, 0)], -1)
-            for c, a in state.column.items()
-        }
+        columns = state.column  # every unknown is a column of the factor, unless ...
+        if removed.size:  # ... a minimal datum is held: the others renumbered
+            columns = {
+                c: np.where(a >= 0, self.factor_column[np.maximum(a, 0)], -1)
+                for c, a in state.column.items()
+            }
         self.assembly: Assembly = state.assembly(columns)
         self.normals = NormalEquations(self.kept.size, self.assembly, factorization.dense)
         self._datum: tuple[np.ndarray, np.ndarray] | None = None
