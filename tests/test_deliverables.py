@@ -280,7 +280,9 @@ def test_points_csv_parses_and_keeps_numbers_numeric(client):
 
 
 def test_geojson_download_is_valid_and_matches_the_points(client):
-    url = _open_demo(client, "control_network")
+    """With a crs line: longitude, latitude and ellipsoidal height (RFC 7946 §3.1.1), the
+    same numbers as the result's."""
+    url = _open_demo(client, "dam_control_3d")
     response = client.get(f"{url}/points.geojson")
     assert response.status_code == 200
     assert response.headers["content-type"].startswith("application/geo+json")
@@ -292,14 +294,19 @@ def test_geojson_download_is_valid_and_matches_the_points(client):
     result = json.loads(client.get(f"{url}/result.json").text)
     for p in result["points"]:
         feature = points[p["name"]]
+        if p["latitude"] is None:  # a benchmark with a height only: unlocated
+            assert feature["geometry"] is None
+            continue
         assert feature["geometry"]["type"] == "Point"
-        assert feature["geometry"]["coordinates"][:2] == [p["east"], p["north"]]
+        assert feature["geometry"]["coordinates"] == [p["longitude"], p["latitude"],
+                                                      p["ellipsoidal_height"]]
         assert feature["properties"]["sd_east"] == p["sd_east"]
     for f in data["features"]:
         if f["id"].startswith("line:") and f["geometry"] is not None:
             assert f["geometry"]["type"] == "LineString"
             ends = [tuple(c) for c in f["geometry"]["coordinates"]]
-            located = {tuple(g["geometry"]["coordinates"][:2]) for g in points.values()}
+            located = {tuple(g["geometry"]["coordinates"][:2]) for g in points.values()
+                       if g["geometry"] is not None}
             assert set(ends) <= located
 
 
@@ -312,8 +319,13 @@ def test_results_page_offers_presets_and_downloads_carry_the_choice(client):
     html = client.get(f"{url}?relative=alta-nsps-2026").text
     assert '<option value="alta-nsps-2026" selected>' in html
     assert "Allowance: ALTA/NSPS relative positional precision (preset)" in html
-    for path in ("report.pdf", "report.html", "points.csv", "points.geojson", "result.json"):
+    for path in ("report.pdf", "report.html", "points.csv", "result.json"):
         assert f'href="{url}/{path}?relative=alta-nsps-2026"' in html, path
+    # no crs line: no longitude and latitude, so no GeoJSON is offered, and the page says why
+    assert "points.geojson" not in html and "No GeoJSON: geojson holds" not in html
+    assert "add &#39;crs EPSG:CODE&#39;" in html
+    refused = client.get(f"{url}/points.geojson")
+    assert refused.status_code == 409 and "crs" in refused.text
     # feet book: 0.07 ft + 50 ppm (docs/standards.md), in the JSON the download carries
     body = client.get(f"{url}/result.json?relative=alta-nsps-2026").json()
     for r in body["relative"]:

@@ -15,7 +15,7 @@ import warnings
 import pypdf
 import pytest
 
-from server.formats.geojson import geojson
+from server.formats.geojson import GeoJsonUnavailable, geojson
 from server.report import html as html_report
 from server.report import plot
 from server.report.csv_export import POINT_CSV_HEADER, points_csv
@@ -145,13 +145,12 @@ def test_geojson_heights_in_metres_from_a_feet_book(result):
     assert coordinates[2] == pytest.approx(result.points[1].ellipsoidal_height * 0.3048)
 
 
-def test_geojson_without_crs_keeps_grid_coordinates_labelled_as_grid(result):
-    data = geojson(_plane(dataclasses.replace(result, points=tuple(
-        dataclasses.replace(p, latitude=None, longitude=None) for p in result.points))))
-    assert "not WGS 84" in data["coordinate_system"]
-    first = data["features"][0]
-    assert first["geometry"]["coordinates"][:2] == [result.points[0].east,
-                                                    result.points[0].north]
+def test_geojson_without_crs_is_refused_rather_than_passed_off_as_geographic(result):
+    """RFC 7946 positions are longitude and latitude; grid eastings would be read as such."""
+    plane = _plane(dataclasses.replace(result, points=tuple(
+        dataclasses.replace(p, latitude=None, longitude=None) for p in result.points)))
+    with pytest.raises(GeoJsonUnavailable, match="crs"):
+        geojson(plane)
 
 
 def test_results_page_shows_the_geodetic_parts(result, tmp_path, monkeypatch):

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from server.formats.geojson import geojson_text
+from server.formats.geojson import GeoJsonUnavailable, geojson_text
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook, adjust_parsed
 from server.report.csv_export import points_csv
@@ -109,11 +109,19 @@ def test_unknown_preset_is_refused_with_choices():
         with_presets(fb, relative="alta")
 
 
-def test_geojson_is_valid_feature_collection():
+def test_geojson_is_refused_without_a_crs():
+    """Grid eastings in a GeoJSON file would be read as longitudes (RFC 7946 §4 allows only
+    WGS 84-style longitude/latitude): without a crs line there is no GeoJSON."""
     result = adjust_fieldbook((DEMOS / "control_network.fieldbook").read_bytes())
+    with pytest.raises(GeoJsonUnavailable, match="crs"):
+        geojson_text(result)
+
+
+def test_geojson_is_valid_feature_collection():
+    result = adjust_fieldbook((DEMOS / "dam_control_3d.fieldbook").read_bytes())
     data = json.loads(geojson_text(result))
     assert data["type"] == "FeatureCollection"
-    assert "not WGS 84" in data["coordinate_system"]
+    assert "EPSG:32633" in data["coordinate_system"]
     points = [f for f in data["features"] if f["id"].startswith("point:")]
     lines = [f for f in data["features"] if f["id"].startswith("line:")]
     assert len(points) == len(result.points) and len(lines) == len(result.observations)

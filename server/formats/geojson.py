@@ -7,9 +7,10 @@ WGS 84: offline, that would need grids we do not have, and the two differ by up 
 two metres; the collection says so in its foreign member ``coordinate_system``.  Grid
 east, north and the orthometric height stay in the properties.
 
-Without a ``crs`` the coordinates are the project's grid eastings and northings in the field
-book's length unit, not longitude and latitude; the foreign member ``coordinate_system``
-says so and GIS users assign the project's grid on import.
+Without a ``crs`` there is no longitude and latitude to give, and RFC 7946 has no place for
+grid coordinates (GIS software would read eastings as longitudes and put the survey in the
+wrong place without a word), so no GeoJSON is made: ``GeoJsonUnavailable`` says why and what
+to do (add a ``crs`` line, or take the points CSV with its grid coordinates).
 Points without horizontal coordinates (a height network) have a null
 geometry, which RFC 7946 allows for unlocated features.
 """
@@ -24,10 +25,14 @@ from server.units import LENGTH_FACTORS
 Position = list[float]
 
 
-def _grid_position(p: PointResult) -> Position | None:
-    if p.east is None or p.north is None:
-        return None
-    return [p.east, p.north] + ([p.height] if p.height is not None else [])
+#: Why a result without a CRS has no GeoJSON (shown on the page and returned by the route).
+NO_CRS = ("GeoJSON holds longitude and latitude, and this field book has no crs line to give "
+          "them: add 'crs EPSG:CODE' (or a site grid, 'crs local lat= lon=') to the field book, "
+          "or download the points CSV, which carries the grid coordinates")
+
+
+class GeoJsonUnavailable(ValueError):
+    """The result has no CRS, so no longitude and latitude for GeoJSON."""
 
 
 def _geographic_position(p: PointResult, metres_per_unit: float) -> Position | None:
@@ -108,21 +113,17 @@ def _line_feature(o: ObservationResult, positions: dict[str, Position]) -> dict[
 def geojson(result: AdjustmentResult) -> dict[str, object]:
     """A FeatureCollection: one Point per point, one LineString per observation."""
     crs = result.summary.crs
+    if not crs:
+        raise GeoJsonUnavailable(NO_CRS)
     metres = LENGTH_FACTORS[result.length_unit]
-    located = {
-        p.name: _geographic_position(p, metres) if crs else _grid_position(p)
-        for p in result.points
-    }
+    located = {p.name: _geographic_position(p, metres) for p in result.points}
     positions = {name: xy for name, xy in located.items() if xy is not None}
     features = [_point_feature(p, located[p.name]) for p in result.points]
     features += [_line_feature(o, positions) for o in result.observations]
-    if crs:
-        system = (f"longitude, latitude (decimal degrees) and ellipsoidal height (m) on the "
-                  f"geodetic datum of {crs}; where that datum is not WGS 84 they are not "
-                  "transformed to it (the two may differ by up to about 2 m); grid east, north "
-                  f"and orthometric height in the properties, in {result.length_unit}")
-    else:
-        system = (f"project grid: east, north (and height) in {result.length_unit}; not WGS 84")
+    system = (f"longitude, latitude (decimal degrees) and ellipsoidal height (m) on the "
+              f"geodetic datum of {crs}; where that datum is not WGS 84 they are not "
+              "transformed to it (the two may differ by up to about 2 m); grid east, north "
+              f"and orthometric height in the properties, in {result.length_unit}")
     return {
         "type": "FeatureCollection",
         "coordinate_system": system,
@@ -132,5 +133,5 @@ def geojson(result: AdjustmentResult) -> dict[str, object]:
 
 
 def geojson_text(result: AdjustmentResult) -> str:
-    """GeoJSON as text (no NaN, which JSON forbids)."""
+    """GeoJSON as text (no NaN, which JSON forbids); ``GeoJsonUnavailable`` without a CRS."""
     return json.dumps(geojson(result), indent=1, allow_nan=False)

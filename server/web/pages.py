@@ -16,7 +16,7 @@ from fastapi.responses import (
 )
 from starlette.concurrency import run_in_threadpool
 
-from server.formats.geojson import geojson_text
+from server.formats.geojson import NO_CRS, GeoJsonUnavailable, geojson_text
 from server.report import csv_export, plot
 from server.report import html as html_report
 from server.report import tables as report
@@ -95,6 +95,7 @@ def _results_context(request: Request, project: Project, result: AdjustmentResul
         request, "obs_page", observation_page, "observations", here)
     context["point_links"] = page_links(request, "pt_page", point_page, "points", here)
     context["network_plot"] = plot.network_plot_data(result)
+    context["geojson_unavailable"] = "No GeoJSON: " + NO_CRS[0].lower() + NO_CRS[1:] + "."
     context.update(choice=choice, download_query=choice.query,
                    preset_options=service.preset_options())
     return context
@@ -196,10 +197,14 @@ def project_points_csv(project: ProjectDep, choice: ChoiceDep, store: StoreDep,
 @router.get("/projects/{project_id}/points.geojson")
 def project_geojson(project: ProjectDep, choice: ChoiceDep, store: StoreDep,
                     queue: QueueDep) -> Response:
-    """Points and observation lines as GeoJSON (project grid coordinates)."""
+    """Points and observation lines as GeoJSON in longitude and latitude; 409 without a CRS
+    (there is nothing RFC 7946 can hold)."""
     result = finished_result(store, project, choice, queue)
-    return attachment(geojson_text(result), "application/geo+json",
-                      download_name(project, ".geojson"))
+    try:
+        text = geojson_text(result)
+    except GeoJsonUnavailable as exc:
+        raise HTTPException(409, str(exc)) from None
+    return attachment(text, "application/geo+json", download_name(project, ".geojson"))
 
 
 @router.get("/projects/{project_id}/result.json")
