@@ -340,8 +340,10 @@ class Book:
 
 
 def write_book(site: Site, observations: Sequence[Obs], grid: Grid, *, k: float = 0.13,
-               title: str = "Harbor Hill - synthetic", decimals: int = 6) -> Book:
-    """The field book of ``observations`` with control written in ``grid``'s coordinates."""
+               title: str = "Harbor Hill - synthetic", decimals: int = 6,
+               latlon: bool = False) -> Book:
+    """The field book of ``observations`` with control written in ``grid``'s coordinates
+    (or, with ``latlon``, by latitude and longitude in decimal degrees, every digit)."""
     per = grid.metres_per_unit
     unit = grid.unit
 
@@ -366,7 +368,13 @@ def write_book(site: Site, observations: Sequence[Obs], grid: Grid, *, k: float 
             continue
         geoid = f" geoid={mark.undulation}m" if mark.own_geoid else ""
         height = length(mark.height)
-        if mark.role == "control":
+        if mark.role == "control" and latlon:
+            lines.append(f"point {name} lat={mark.lat!r}deg lon={mark.lon!r}deg "
+                         f"height={height}{geoid} fix")
+            xyz = ecef(np.array([mark.lat]), np.array([mark.lon]),
+                       np.array([float(height) * per + mark.undulation]))[0]
+            control[name] = (float(xyz[0]), float(xyz[1]), float(xyz[2]))
+        elif mark.role == "control":
             e, n = grid_of(grid, np.array([mark.lat]), np.array([mark.lon]))
             e_txt, n_txt = f"{e[0]:.{decimals + 3}f}", f"{n[0]:.{decimals + 3}f}"
             lines.append(f"point {name} east={e_txt} north={n_txt} height={height}{geoid} fix")
