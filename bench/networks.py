@@ -55,7 +55,8 @@ def leveling(marks: int, *, seed: int = 1, section_km: float = 1.0, per_line: in
                 lines.append(f"point {name} height={heights[name]:.5f} fix")
     sd_km = LEVEL_SD_MM_PER_SQRTKM * 1e-3
 
-    def run_line(start: str, end: str, x0: float, y0: float, dx: float, dy: float, label: str) -> None:
+    def run_line(start: str, end: str, x0: float, y0: float, dx: float, dy: float,
+                 label: str) -> None:
         previous = start
         for k in range(1, per_line + 2):
             if k <= per_line:
@@ -80,7 +81,8 @@ def leveling(marks: int, *, seed: int = 1, section_km: float = 1.0, per_line: in
 
 
 def horizontal(
-    points: int, *, seed: int = 1, spacing: float = 300.0, fixed_every: int = 400, sparse: bool = False
+    points: int, *, seed: int = 1, spacing: float = 300.0, fixed_every: int = 400,
+    sparse: bool = False,
 ) -> str:
     """A triangulated 2D network of about ``points`` points.
 
@@ -140,3 +142,109 @@ def _dms(degrees: float) -> str:
     minutes, seconds = divmod(whole, 60)
     d, m = divmod(minutes, 60)
     return f"{d % 360}:{m:02d}:{seconds:02d}.{hundredths:02d}"
+
+
+def geodetic(points: int, *, seed: int = 1, spacing: float = 250.0) -> str:
+    """A 3D control network on a site grid: GNSS baselines and total-station rounds.
+
+    Points on a jittered square grid ``spacing`` apart, heights on a smooth hill (60 to
+    160 m), geoid undulation −23.84 m.  Every point is a setup: a directions round to its
+    four grid neighbours with a slope distance and a zenith angle to each (instrument and
+    target heights of about 1.5 m and 1.8 m, refraction k = 0.13).  One point in 225 (every
+    15th row and column, at least four) is held fixed; in every third row, pairs of
+    neighbours (two columns in three) have GNSS baselines from the nearest held point, so
+    that each such pair gives its rounds a known backsight.  The observations are
+    computed from the true latitudes, longitudes and heights with PROJ's ``cart`` and the
+    local axes of the ellipsoid normal, with normal errors of their standard deviations.
+    """
+    import pyproj
+
+    rng = np.random.default_rng(seed)
+    side = max(2, math.ceil(math.sqrt(points)))
+    cells = [(i, j) for i in range(side) for j in range(side)][:points]
+    name = {cell: f"G{cell[0]}_{cell[1]}" for cell in cells}
+    held = [c for c in cells if c[0] % 15 == 0 and c[1] % 15 == 0]
+    for corner in ((0, 0), (0, side - 1), (side - 1, 0), cells[-1]):
+        if corner in name and corner not in held:
+            held.append(corner)
+    x = np.array([c[1] * spacing + rng.uniform(-0.15, 0.15) * spacing for c in cells])
+    y = np.array([c[0] * spacing + rng.uniform(-0.15, 0.15) * spacing for c in cells])
+    x -= x.mean()
+    y -= y.mean()
+    height = 110.0 + 50.0 * np.sin(x / 1700.0) * np.cos(y / 2300.0)
+    undulation = -23.84
+    site = "+proj=tmerc +lat_0=47.05 +lon_0=-122.9 +k=1 +x_0=20000 +y_0=20000 +ellps=GRS80"
+    east, north = x + 20000.0, y + 20000.0
+    inverse = pyproj.Transformer.from_pipeline(
+        f"+proj=pipeline +step +inv {site} +step +proj=unitconvert +xy_in=rad +xy_out=deg")
+    lon, lat = inverse.transform(east, north)
+    cart = pyproj.Transformer.from_pipeline("+proj=cart +ellps=GRS80")
+    h = height + undulation
+
+    def xyz(lift: np.ndarray | float = 0.0) -> np.ndarray:
+        return np.stack(cart.transform(lon, lat, h + lift), axis=1)
+
+    phi, lam = np.radians(lat), np.radians(lon)
+    axes_e = np.stack([-np.sin(lam), np.cos(lam), np.zeros_like(lam)], axis=1)
+    axes_n = np.stack([-np.sin(phi) * np.cos(lam), -np.sin(phi) * np.sin(lam), np.cos(phi)], 1)
+    axes_u = np.stack([np.cos(phi) * np.cos(lam), np.cos(phi) * np.sin(lam), np.sin(phi)], 1)
+    marks = xyz()
+    index = {cell: k for k, cell in enumerate(cells)}
+
+    lines = [
+        "fieldbook 1",
+        f'title "Synthetic 3D control, {len(cells)} marks"',
+        "units length=m angle=dms",
+        "crs local lat=47:03:00 lon=-122:54:00 east=20000m north=20000m",
+        f"geoid undulation={undulation}m",
+        "refraction k=0.13",
+        "defaults slope=1mm+1.5ppm zenith=1sec direction=1sec baseline=3mm centering=0mm",
+    ]
+    for cell in held:
+        k = index[cell]
+        lines.append(f"point {name[cell]} east={east[k]:.4f} north={north[k]:.4f} "
+                     f"height={height[k]:.4f} fix")
+    sec = math.pi / 180.0 / 3600.0
+    for cell in cells:
+        i = index[cell]
+        neighbours = [index[n] for n in ((cell[0], cell[1] + 1), (cell[0] + 1, cell[1]),
+                                         (cell[0], cell[1] - 1), (cell[0] - 1, cell[1]))
+                      if n in index]
+        j = np.array(neighbours)
+        hi = round(1.45 + 0.1 * rng.random(), 3)
+        ht = 1.8
+        d = marks[j] - marks[i]
+        azimuth = np.arctan2(d @ axes_e[i], d @ axes_n[i])
+        orientation = rng.uniform(0, 2 * math.pi)
+        sight = marks[j] + ht * axes_u[j] - marks[i] - hi * axes_u[i]
+        slope = np.linalg.norm(sight, axis=1)
+        zenith = np.arccos(sight @ axes_u[i] / slope) - 0.13 * slope / (2 * 6_371_000.0)
+        lines.append(f"directions {name[cell]}")
+        for k, a in zip(j, azimuth):
+            value = (a - orientation + rng.normal(0, DIRECTION_SD_SEC * sec)) % (2 * math.pi)
+            lines.append(f"  {name[cells[k]]} {_dms_of_radians(value)}")
+        lines.append("end")
+        for k, s, z in zip(j, slope, zenith):
+            sd_s = math.hypot(0.001, 1.5e-6 * s)
+            lines.append(f"slope {name[cell]} {name[cells[k]]} {s + rng.normal(0, sd_s):.5f} "
+                         f"hi={hi}m ht={ht}m")
+            lines.append(f"zenith {name[cell]} {name[cells[k]]} "
+                         f"{_dms_of_radians(z + rng.normal(0, sec))} hi={hi}m ht={ht}m")
+    held_index = np.array([index[c] for c in held])
+    for cell in cells:
+        if cell[0] % 3 or cell[1] % 3 > 1 or cell in held:
+            continue
+        k = index[cell]
+        base = held_index[np.argmin(np.linalg.norm(marks[held_index] - marks[k], axis=1))]
+        vector = marks[k] - marks[base] + rng.normal(0, 0.003, 3)
+        lines.append(f"baseline {name[cells[base]]} {name[cell]} "
+                     + " ".join(f"{c:+.4f}" for c in vector))
+    return "\n".join(lines) + "\n"
+
+
+def _dms_of_radians(radians: float) -> str:
+    """D:M:S to 0.01″, carried so that the seconds never read 60."""
+    hundredths = round(math.degrees(radians) * 360000.0)
+    degrees, rest = divmod(hundredths, 360000)
+    minutes, rest = divmod(rest, 6000)
+    return f"{degrees}:{minutes:02d}:{rest / 100:05.2f}"
