@@ -90,7 +90,8 @@ def test_a_noise_free_book_returns_the_true_grid_coordinates_and_heights(grid: g
 def test_a_noisy_book_is_the_least_squares_solution_scipy_finds(grid: gs.Grid) -> None:
     """scipy.optimize.least_squares on our own residual function (PROJ + numpy, whitened by
     the book's σ, Jacobian by finite differences) is the reference: positions within 0.1 mm,
-    vᵀPv and the variance factor within 1e-6 relative, residuals within 1e-3 σ."""
+    vᵀPv and the variance factor within 1e-6 relative, residuals within 1e-3 σ, redundancy
+    numbers, standard deviations and 95 % ellipses from our own Jacobian."""
     site, observations = _site_and_truth()
     noisy = gs.with_noise(observations, np.random.default_rng(20261204))
     book = gs.write_book(site, noisy, grid)
@@ -132,6 +133,34 @@ def test_a_noisy_book_is_the_least_squares_solution_scipy_finds(grid: gs.Grid) -
     assert len(terrestrial) == sum(o.kind != "baseline" for o in book.observations)
     np.testing.assert_allclose([o["redundancy"] for o in terrestrial],
                                own_r[: len(terrestrial)], atol=1e-4)
+    _check_precisions(book, own, points, summary["redundancy"])
+
+
+def _check_precisions(book: gs.Book, own: gs.Independent, points: dict[str, dict],
+                      redundancy: int) -> None:
+    """Each new mark's standard deviations along local east, north, up and its 95 % ellipse
+    from our own cofactors: (JᵀJ)⁻¹ of the whitened Jacobian, rotated to the mark's local
+    axes, times the variance factor (precision=posterior), semi-axes times
+    √(2·F(0.95; 2, r)) from scipy.stats.f."""
+    per = book.grid.metres_per_unit
+    cofactor = np.linalg.inv(own.jacobian.T @ own.jacobian)
+    factor = math.sqrt(2.0 * stats.f.ppf(0.95, 2, redundancy))
+    for k, name in enumerate(book.new):
+        axes = gs.local_axes(np.asarray(own.positions[name])[None, :])[0]
+        block = own.variance_factor * (axes @ cofactor[3 * k: 3 * k + 3, 3 * k: 3 * k + 3]
+                                       @ axes.T)
+        got = points[name]
+        sd = np.array([got["sd_east"], got["sd_north"], got["sd_height"]]) * per
+        np.testing.assert_allclose(sd, np.sqrt(np.diag(block)), rtol=1e-3, err_msg=name)
+        values, vectors = np.linalg.eigh(block[:2, :2])
+        ellipse = got["ellipse"]
+        assert ellipse["semi_major"] * per == pytest.approx(factor * math.sqrt(values[1]),
+                                                            rel=1e-3)
+        assert ellipse["semi_minor"] * per == pytest.approx(factor * math.sqrt(values[0]),
+                                                            rel=1e-3)
+        azimuth = math.degrees(math.atan2(vectors[0, 1], vectors[1, 1])) % 180.0
+        difference = (ellipse["azimuth"] - azimuth + 90.0) % 180.0 - 90.0
+        assert abs(difference) < 0.1, (name, ellipse["azimuth"], azimuth)
 
 
 def test_correlated_baselines_are_weighted_with_their_full_covariance() -> None:
