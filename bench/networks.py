@@ -55,8 +55,9 @@ def leveling(marks: int, *, seed: int = 1, section_km: float = 1.0, per_line: in
                 lines.append(f"point {name} height={heights[name]:.5f} fix")
     sd_km = LEVEL_SD_MM_PER_SQRTKM * 1e-3
 
-    def run_line(start: str, end: str, x0: float, y0: float, dx: float, dy: float,
-                 label: str) -> None:
+    def run_line(
+        start: str, end: str, x0: float, y0: float, dx: float, dy: float, label: str
+    ) -> None:
         previous = start
         for k in range(1, per_line + 2):
             if k <= per_line:
@@ -81,7 +82,11 @@ def leveling(marks: int, *, seed: int = 1, section_km: float = 1.0, per_line: in
 
 
 def horizontal(
-    points: int, *, seed: int = 1, spacing: float = 300.0, fixed_every: int = 400,
+    points: int,
+    *,
+    seed: int = 1,
+    spacing: float = 300.0,
+    fixed_every: int = 400,
     sparse: bool = False,
 ) -> str:
     """A triangulated 2D network of about ``points`` points.
@@ -176,7 +181,8 @@ def geodetic(points: int, *, seed: int = 1, spacing: float = 250.0) -> str:
     site = "+proj=tmerc +lat_0=47.05 +lon_0=-122.9 +k=1 +x_0=20000 +y_0=20000 +ellps=GRS80"
     east, north = x + 20000.0, y + 20000.0
     inverse = pyproj.Transformer.from_pipeline(
-        f"+proj=pipeline +step +inv {site} +step +proj=unitconvert +xy_in=rad +xy_out=deg")
+        f"+proj=pipeline +step +inv {site} +step +proj=unitconvert +xy_in=rad +xy_out=deg"
+    )
     lon, lat = inverse.transform(east, north)
     cart = pyproj.Transformer.from_pipeline("+proj=cart +ellps=GRS80")
     h = height + undulation
@@ -202,14 +208,22 @@ def geodetic(points: int, *, seed: int = 1, spacing: float = 250.0) -> str:
     ]
     for cell in held:
         k = index[cell]
-        lines.append(f"point {name[cell]} east={east[k]:.4f} north={north[k]:.4f} "
-                     f"height={height[k]:.4f} fix")
+        lines.append(
+            f"point {name[cell]} east={east[k]:.4f} north={north[k]:.4f} height={height[k]:.4f} fix"
+        )
     sec = math.pi / 180.0 / 3600.0
     for cell in cells:
         i = index[cell]
-        neighbours = [index[n] for n in ((cell[0], cell[1] + 1), (cell[0] + 1, cell[1]),
-                                         (cell[0], cell[1] - 1), (cell[0] - 1, cell[1]))
-                      if n in index]
+        neighbours = [
+            index[n]
+            for n in (
+                (cell[0], cell[1] + 1),
+                (cell[0] + 1, cell[1]),
+                (cell[0], cell[1] - 1),
+                (cell[0] - 1, cell[1]),
+            )
+            if n in index
+        ]
         j = np.array(neighbours)
         hi = round(1.45 + 0.1 * rng.random(), 3)
         ht = 1.8
@@ -226,10 +240,14 @@ def geodetic(points: int, *, seed: int = 1, spacing: float = 250.0) -> str:
         lines.append("end")
         for k, s, z in zip(j, slope, zenith):
             sd_s = math.hypot(0.001, 1.5e-6 * s)
-            lines.append(f"slope {name[cell]} {name[cells[k]]} {s + rng.normal(0, sd_s):.5f} "
-                         f"hi={hi}m ht={ht}m")
-            lines.append(f"zenith {name[cell]} {name[cells[k]]} "
-                         f"{_dms_of_radians(z + rng.normal(0, sec))} hi={hi}m ht={ht}m")
+            lines.append(
+                f"slope {name[cell]} {name[cells[k]]} {s + rng.normal(0, sd_s):.5f} "
+                f"hi={hi}m ht={ht}m"
+            )
+            lines.append(
+                f"zenith {name[cell]} {name[cells[k]]} "
+                f"{_dms_of_radians(z + rng.normal(0, sec))} hi={hi}m ht={ht}m"
+            )
     held_index = np.array([index[c] for c in held])
     for cell in cells:
         if cell[0] % 3 or cell[1] % 3 > 1 or cell in held:
@@ -237,8 +255,9 @@ def geodetic(points: int, *, seed: int = 1, spacing: float = 250.0) -> str:
         k = index[cell]
         base = held_index[np.argmin(np.linalg.norm(marks[held_index] - marks[k], axis=1))]
         vector = marks[k] - marks[base] + rng.normal(0, 0.003, 3)
-        lines.append(f"baseline {name[cells[base]]} {name[cell]} "
-                     + " ".join(f"{c:+.4f}" for c in vector))
+        lines.append(
+            f"baseline {name[cells[base]]} {name[cell]} " + " ".join(f"{c:+.4f}" for c in vector)
+        )
     return "\n".join(lines) + "\n"
 
 

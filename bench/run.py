@@ -65,19 +65,35 @@ SIZES = [
     ("2D", 20_000),
     ("geodetic", 2_000),
 ]
-QUICK = [("leveling", 1_000), ("leveling", 10_000), ("2D", 1_000), ("2D", 5_000),
-         ("geodetic", 2_000)]
-GENERATORS = {"leveling": networks.leveling, "2D": networks.horizontal,
-              "geodetic": networks.geodetic}
+QUICK = [
+    ("leveling", 1_000),
+    ("leveling", 10_000),
+    ("2D", 1_000),
+    ("2D", 5_000),
+    ("geodetic", 2_000),
+]
+GENERATORS = {
+    "leveling": networks.leveling,
+    "2D": networks.horizontal,
+    "geodetic": networks.geodetic,
+}
 
 
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--quick", action="store_true", help="the smaller sizes only")
-    parser.add_argument("--only", default="", metavar="FAMILY:SIZE,...",
-                        help="just these networks, e.g. leveling:100000,2D:10000")
-    parser.add_argument("--dense-max", type=int, default=16_000,
-                        help="largest number of unknowns for the dense textbook solver")
+    parser.add_argument(
+        "--only",
+        default="",
+        metavar="FAMILY:SIZE,...",
+        help="just these networks, e.g. leveling:100000,2D:10000",
+    )
+    parser.add_argument(
+        "--dense-max",
+        type=int,
+        default=16_000,
+        help="largest number of unknowns for the dense textbook solver",
+    )
     parser.add_argument("--keep", type=Path, default=None, help="write the field books here")
     args = parser.parse_args()
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
@@ -87,8 +103,10 @@ def main() -> int:
 
     from server.engine.backends import choose_backend
 
-    print(f"factorization: {choose_backend()}; python {sys.version.split()[0]}; "
-          f"{os.cpu_count()} cores")
+    print(
+        f"factorization: {choose_backend()}; python {sys.version.split()[0]}; "
+        f"{os.cpu_count()} cores"
+    )
     # warm the compiled-kernel cache once, so no run below pays for compiling
     warm = folder / "warm.fieldbook"
     warm.write_text(networks.horizontal(100))
@@ -140,8 +158,14 @@ _runner: list[subprocess.Popen] = []
 
 def _start_runner() -> None:
     if not _runner:
-        _runner.append(subprocess.Popen([sys.executable, "-c", _RUNNER], stdin=subprocess.PIPE,
-                                        stdout=subprocess.PIPE, text=True))
+        _runner.append(
+            subprocess.Popen(
+                [sys.executable, "-c", _RUNNER],
+                stdin=subprocess.PIPE,
+                stdout=subprocess.PIPE,
+                text=True,
+            )
+        )
 
 
 def _cli(path: Path) -> tuple[float, float, int]:
@@ -172,6 +196,7 @@ def _timed_factorizations(log: list[float]):
                 return function(self, matrix, check)
             finally:
                 log.append(time.perf_counter() - start)
+
         return timed
 
     for cls, function in originals.items():
@@ -301,8 +326,9 @@ def _dense_textbook(network, solution, iterations: int) -> float:
         for _ in range(iterations):
             normal = (design.T @ weighted).toarray()
             rhs = design.T @ (weights * evaluation.misclosure)
-            factor = scipy.linalg.cho_factor(normal, lower=True, check_finite=False,
-                                             overwrite_a=True)
+            factor = scipy.linalg.cho_factor(
+                normal, lower=True, check_finite=False, overwrite_a=True
+            )
             scipy.linalg.cho_solve(factor, rhs, check_finite=False)
         inverse, _ = scipy.linalg.lapack.dpotri(factor[0], lower=True, overwrite_c=True)
         qxx = np.tril(inverse)
@@ -323,9 +349,11 @@ def _dense_textbook(network, solution, iterations: int) -> float:
 def _print_row(row) -> None:
     family, size, wall, peak_mb, inside = row
     if not hasattr(_print_row, "header"):
-        print(f"{'network':>16} {'unknowns':>9} {'obs':>8} {'cli s':>7} {'peak MB':>8} {'iter':>4} "
-              f"{'floor s':>8} {'selinv s':>8} {'cli/floor':>9} {'engine s':>8} {'dense s':>8} "
-              f"{'×engine':>8} {'×cli':>6}")
+        print(
+            f"{'network':>16} {'unknowns':>9} {'obs':>8} {'cli s':>7} {'peak MB':>8} {'iter':>4} "
+            f"{'floor s':>8} {'selinv s':>8} {'cli/floor':>9} {'engine s':>8} {'dense s':>8} "
+            f"{'×engine':>8} {'×cli':>6}"
+        )
         _print_row.header = True  # type: ignore[attr-defined]
     dense = inside["dense"]
     floor = inside["floor"]
@@ -334,22 +362,35 @@ def _print_row(row) -> None:
     dense_text = f"{dense:8.2f}" if dense is not None else f"{'—':>8}"
     by_engine = f"{dense / engine:8.0f}" if dense is not None else f"{'—':>8}"
     by_cli = f"{dense / wall:6.0f}" if dense is not None else f"{'—':>6}"
-    print(f"{family + ' ' + format(size, ','):>16} {inside['unknowns']:>9,} "
-          f"{inside['observations']:>8,} "
-          f"{wall:7.2f} {peak_mb:8.0f} {inside['iterations']:>4} {floor:8.3f} "
-          f"{inside['selinv']:8.3f} {wall / floor if floor else math.inf:9.1f} {engine:8.3f} "
-          f"{dense_text} {by_engine} {by_cli}",
-          flush=True)
+    print(
+        f"{family + ' ' + format(size, ','):>16} {inside['unknowns']:>9,} "
+        f"{inside['observations']:>8,} "
+        f"{wall:7.2f} {peak_mb:8.0f} {inside['iterations']:>4} {floor:8.3f} "
+        f"{inside['selinv']:8.3f} {wall / floor if floor else math.inf:9.1f} {engine:8.3f} "
+        f"{dense_text} {by_engine} {by_cli}",
+        flush=True,
+    )
 
 
 def _print_stages(stages) -> None:
-    names = ["parse", "network", "start 3D", "misclosures", "start values", "iterations",
-             "statistics", "result", "json"]
+    names = [
+        "parse",
+        "network",
+        "start 3D",
+        "misclosures",
+        "start values",
+        "iterations",
+        "statistics",
+        "result",
+        "json",
+    ]
     print("in-process seconds by stage")
     print(f"{'network':>16} " + " ".join(f"{n:>12}" for n in names))
     for family, size, times in stages:
-        print(f"{family + ' ' + format(size, ','):>16} "
-              + " ".join(f"{times.get(n, 0.0):12.3f}" for n in names))
+        print(
+            f"{family + ' ' + format(size, ','):>16} "
+            + " ".join(f"{times.get(n, 0.0):12.3f}" for n in names)
+        )
 
 
 def _warm_pipeline(text: str) -> None:
@@ -363,10 +404,13 @@ def _warm_pipeline(text: str) -> None:
         result = adjust_fieldbook(text)
         times.append(time.perf_counter() - start)
     times.sort()
-    print(f"  adjust_fieldbook warm: {times[1]:.2f} s median of 3 (min {times[0]:.2f}, max "
-          f"{times[2]:.2f}); {result.summary.points} points, {result.summary.unknowns} unknowns, "
-          f"redundancy {result.summary.redundancy}, variance factor "
-          f"{result.summary.variance_factor:.3f}", flush=True)
+    print(
+        f"  adjust_fieldbook warm: {times[1]:.2f} s median of 3 (min {times[0]:.2f}, max "
+        f"{times[2]:.2f}); {result.summary.points} points, {result.summary.unknowns} unknowns, "
+        f"redundancy {result.summary.redundancy}, variance factor "
+        f"{result.summary.variance_factor:.3f}",
+        flush=True,
+    )
 
 
 def _typical() -> None:
@@ -388,11 +432,19 @@ def _typical() -> None:
         page_times.append(time.perf_counter() - middle)
     adjust_times.sort()
     page_times.sort()
-    print(f"typical project: {result.summary.points} points, {count} observations, "
-          f"{result.summary.unknowns} unknowns: warm adjustment {adjust_times[10] * 1000:.0f} ms "
-          f"(median of 20), HTML report {page_times[10] * 1000:.0f} ms")
-    print(json.dumps({"typical_adjust_ms": round(adjust_times[10] * 1000, 1),
-                      "typical_report_ms": round(page_times[10] * 1000, 1)}))
+    print(
+        f"typical project: {result.summary.points} points, {count} observations, "
+        f"{result.summary.unknowns} unknowns: warm adjustment {adjust_times[10] * 1000:.0f} ms "
+        f"(median of 20), HTML report {page_times[10] * 1000:.0f} ms"
+    )
+    print(
+        json.dumps(
+            {
+                "typical_adjust_ms": round(adjust_times[10] * 1000, 1),
+                "typical_report_ms": round(page_times[10] * 1000, 1),
+            }
+        )
+    )
 
 
 if __name__ == "__main__":

@@ -41,7 +41,7 @@ class FieldbookError(SurveyError):
 
     @property
     def headline(self) -> str:
-        """"the field book has N errors" with the true N, not the length of the capped list."""
+        """ "the field book has N errors" with the true N, not the length of the capped list."""
         return f"the field book has {self.count:,} error{'' if self.count == 1 else 's'}"
 
     def __str__(self) -> str:

@@ -11,7 +11,8 @@ DEFAULT_MAX_UPLOAD_BYTES = 20 * 1024 * 1024
 
 
 def default_data_dir() -> Path:
-    """The per-user data folder: $STATIONFIT_DATA, else $XDG_DATA_HOME/stationfit, else ~/.local/share."""
+    """The per-user data folder: $STATIONFIT_DATA, else $XDG_DATA_HOME/stationfit, else
+    ~/.local/share."""
     explicit = os.environ.get("STATIONFIT_DATA")
     if explicit:
         return Path(explicit)
@@ -53,8 +54,9 @@ def env_int(name: str, default: int) -> int:
     return int(value)
 
 
-def service_limits(max_observations: int | None = None,
-                   max_unknowns: int | None = None) -> WorkLimits:
+def service_limits(
+    max_observations: int | None = None, max_unknowns: int | None = None
+) -> WorkLimits:
     """The web service's limits: the arguments, else STATIONFIT_MAX_OBSERVATIONS and
     STATIONFIT_MAX_UNKNOWNS, else the defaults; 0 turns a limit off."""
     if max_observations is None:
@@ -64,8 +66,9 @@ def service_limits(max_observations: int | None = None,
     return WorkLimits(max_observations or None, max_unknowns or None)
 
 
-def service_queue(adjustments_at_once: int | None = None,
-                  max_waiting: int | None = None) -> tuple[int, int]:
+def service_queue(
+    adjustments_at_once: int | None = None, max_waiting: int | None = None
+) -> tuple[int, int]:
     """(adjustments at once, adjustments allowed to wait): the arguments, else
     STATIONFIT_ADJUSTMENTS_AT_ONCE and STATIONFIT_MAX_WAITING, else the defaults."""
     if adjustments_at_once is None:

@@ -203,8 +203,17 @@ class Quantity:
 _TERM_RE = re.compile(rf"({_NUMBER})([a-zA-Z/]+)")
 #: Ways of marking an angle that are not units of a standard deviation, in arc-seconds.
 _ANGLE_MARKS = {
-    '"': 1.0, "''": 1.0, "″": 1.0, "s": 1.0, "secs": 1.0, "arcsec": 1.0,
-    "'": 60.0, "′": 60.0, "min": 60.0, "°": 3600.0, "deg": 3600.0,
+    '"': 1.0,
+    "''": 1.0,
+    "″": 1.0,
+    "s": 1.0,
+    "secs": 1.0,
+    "arcsec": 1.0,
+    "'": 60.0,
+    "′": 60.0,
+    "min": 60.0,
+    "°": 3600.0,
+    "deg": 3600.0,
 }
 _MARKED_RE = re.compile(rf"^({_NUMBER})(\"|''|″|'|′|°|[a-zA-Z]+)$")
 

@@ -75,15 +75,35 @@ NOTES = {
     "BM-MILL": "bolt in the old mill wall, published height",
     "BM-SLUICE": "bolt on the sluice house step, published height",
 }
-BASELINES = [("GN-HILL", "GN-WEIR"), ("GN-WEIR", "GN-FARM"), ("GN-HILL", "P-1"),
-             ("GN-HILL", "P-2"), ("GN-WEIR", "P-3"), ("GN-WEIR", "P-4"), ("GN-FARM", "P-5"),
-             ("GN-FARM", "P-1"), ("GN-HILL", "P-3")]
-ROUNDS = {"P-1": ["P-2", "P-3", "P-5", "GN-HILL"], "P-2": ["P-1", "P-3", "P-4"],
-          "P-3": ["P-2", "P-4", "P-5", "GN-WEIR"], "P-4": ["P-3", "P-5", "P-1"],
-          "P-5": ["P-4", "P-1", "GN-FARM"]}
+BASELINES = [
+    ("GN-HILL", "GN-WEIR"),
+    ("GN-WEIR", "GN-FARM"),
+    ("GN-HILL", "P-1"),
+    ("GN-HILL", "P-2"),
+    ("GN-WEIR", "P-3"),
+    ("GN-WEIR", "P-4"),
+    ("GN-FARM", "P-5"),
+    ("GN-FARM", "P-1"),
+    ("GN-HILL", "P-3"),
+]
+ROUNDS = {
+    "P-1": ["P-2", "P-3", "P-5", "GN-HILL"],
+    "P-2": ["P-1", "P-3", "P-4"],
+    "P-3": ["P-2", "P-4", "P-5", "GN-WEIR"],
+    "P-4": ["P-3", "P-5", "P-1"],
+    "P-5": ["P-4", "P-1", "GN-FARM"],
+}
 INSTRUMENT_HEIGHTS = {"P-1": 1.562, "P-2": 1.498, "P-3": 1.611, "P-4": 1.534, "P-5": 1.587}
-TARGET_HEIGHTS = {"P-1": 1.800, "P-2": 1.650, "P-3": 1.750, "P-4": 2.000, "P-5": 1.700,
-                  "GN-HILL": 1.550, "GN-WEIR": 1.800, "GN-FARM": 2.000}
+TARGET_HEIGHTS = {
+    "P-1": 1.800,
+    "P-2": 1.650,
+    "P-3": 1.750,
+    "P-4": 2.000,
+    "P-5": 1.700,
+    "GN-HILL": 1.550,
+    "GN-WEIR": 1.800,
+    "GN-FARM": 2.000,
+}
 LEVEL_RUN = ["BM-MILL", "P-1", "P-5", "P-4", "BM-SLUICE", "P-3", "P-2", "P-1"]
 
 
@@ -110,8 +130,9 @@ def _site() -> Site:
             lon_deg = _dms_value(format_dms(lon_deg, 5))
         lat_lon[name] = (lat_deg, lon_deg)
         h = height + geoid(east, north)
-        xyz[name] = crs.geodetic_to_ecef(np.radians([lat_deg]), np.radians([lon_deg]),
-                                         np.array([h]))[0]
+        xyz[name] = crs.geodetic_to_ecef(
+            np.radians([lat_deg]), np.radians([lon_deg]), np.array([h])
+        )[0]
     return Site(crs, xyz, lat_lon)
 
 
@@ -128,11 +149,15 @@ def _points(site: Site) -> list[str]:
         undulation = f"geoid={geoid(east, north):.3f}m"
         lat, lon = site.lat_lon[name]
         if role == "gnss":
-            lines.append(f"point {name} lat={format_dms(lat, 5)} lon={format_dms(lon, 5)} "
-                         f"height={height:.3f} {undulation} fix{note}")
+            lines.append(
+                f"point {name} lat={format_dms(lat, 5)} lon={format_dms(lon, 5)} "
+                f"height={height:.3f} {undulation} fix{note}"
+            )
         elif role == "weighted":
-            lines.append(f"point {name} lat={format_dms(lat, 5)} lon={format_dms(lon, 5)} "
-                         f"height={height:.3f} {undulation} sd_en=10mm sd_h=20mm{note}")
+            lines.append(
+                f"point {name} lat={format_dms(lat, 5)} lon={format_dms(lon, 5)} "
+                f"height={height:.3f} {undulation} sd_en=10mm sd_h=20mm{note}"
+            )
         elif role == "bench":
             lines.append(f"point {name} height={height:.4f} fix{note}")
         else:
@@ -140,8 +165,7 @@ def _points(site: Site) -> list[str]:
     return lines
 
 
-def _baselines(site: Site, rng: np.random.Generator,
-               blunder: bool) -> tuple[list[str], list[str]]:
+def _baselines(site: Site, rng: np.random.Generator, blunder: bool) -> tuple[list[str], list[str]]:
     """Baseline lines and the answer key's notes on them."""
     lines, key = [], []
     ell = site.crs.ellipsoid
@@ -156,18 +180,29 @@ def _baselines(site: Site, rng: np.random.Generator,
         assert ok[0]
         lat_a, lon_a, _ = ell.from_ecef(a)
         lat_b, lon_b, _ = ell.from_ecef(b)
-        cov = cov[0] + frames.baseline_centering_covariance(
-            np.atleast_1d(lat_a), np.atleast_1d(lon_a), np.atleast_1d(lat_b),
-            np.atleast_1d(lon_b), CENTERING)[0]
+        cov = (
+            cov[0]
+            + frames.baseline_centering_covariance(
+                np.atleast_1d(lat_a),
+                np.atleast_1d(lon_a),
+                np.atleast_1d(lat_b),
+                np.atleast_1d(lon_b),
+                CENTERING,
+            )[0]
+        )
         value = (b - a) + rng.multivariate_normal(np.zeros(3), cov)
         if blunder and (frm, to) == BLUNDER[:2]:
             value[BLUNDER[2]] += BLUNDER[3]
-            key.append(f"`baseline {frm} {to}`: {BLUNDER[3] * 1000:+.1f} mm added to "
-                       f"{'XYZ'[BLUNDER[2]]} (component d{'xyz'[BLUNDER[2]]})")
+            key.append(
+                f"`baseline {frm} {to}`: {BLUNDER[3] * 1000:+.1f} mm added to "
+                f"{'XYZ'[BLUNDER[2]]} (component d{'xyz'[BLUNDER[2]]})"
+            )
         sds = ",".join(f"{s / MM:.1f}mm" for s in sd)
         corrs = ",".join(f"{c:.2f}" for c in corr)
-        lines.append(f"baseline {frm} {to} {value[0]:.4f} {value[1]:.4f} {value[2]:.4f} "
-                     f"sd={sds} corr={corrs}")
+        lines.append(
+            f"baseline {frm} {to} {value[0]:.4f} {value[1]:.4f} {value[2]:.4f} "
+            f"sd={sds} corr={corrs}"
+        )
     return lines, key
 
 
@@ -186,17 +221,20 @@ def _station(site: Site, at: str, rng: np.random.Generator) -> list[str]:
     orientation = rng.uniform(0, 2 * math.pi)
     direction_sd = np.sqrt(DIRECTION_SD**2 + 2 * CENTERING**2 / distance**2)
     directions = azimuth - orientation + rng.normal(0.0, direction_sd)
-    slope_sd = np.sqrt(SLOPE_SD[0]**2 + (SLOPE_SD[1] * 1e-6 * slope) ** 2 + 2 * CENTERING**2)
+    slope_sd = np.sqrt(SLOPE_SD[0] ** 2 + (SLOPE_SD[1] * 1e-6 * slope) ** 2 + 2 * CENTERING**2)
     slopes = slope + rng.normal(0.0, slope_sd)
     zeniths = zenith + rng.normal(0.0, ZENITH_SD, len(targets))
     lines = [f"directions {at}"]
-    lines += [f"  {t:<8} {format_dms(math.degrees(d % (2 * math.pi)), 1, wrap=True)}"
-              for t, d in zip(targets, directions, strict=True)]
+    lines += [
+        f"  {t:<8} {format_dms(math.degrees(d % (2 * math.pi)), 1, wrap=True)}"
+        for t, d in zip(targets, directions, strict=True)
+    ]
     lines.append("end")
     for t, s, z, h in zip(targets, slopes, zeniths, ht, strict=True):
         lines.append(f"slope  {at} {t:<8} {s:.4f} hi={hi:.3f}m ht={h:.3f}m")
-        lines.append(f"zenith {at} {t:<8} {format_dms(math.degrees(z), 1)} hi={hi:.3f}m "
-                     f"ht={h:.3f}m")
+        lines.append(
+            f"zenith {at} {t:<8} {format_dms(math.degrees(z), 1)} hi={hi:.3f}m ht={h:.3f}m"
+        )
     return lines
 
 
@@ -246,12 +284,16 @@ def fieldbook(blunder: bool) -> tuple[str, list[str]]:
     rng = np.random.default_rng(SEED)
     site = _site()
     baselines, key = _baselines(site, rng, blunder)
-    title = ("Brannoch Water dam - 3D control from GNSS, total station and leveling"
-             + (" (one bad baseline)" if blunder else ""))
-    look = ("one GNSS baseline has a component 45 mm off; its baseline test and the\n# "
-            "w-test of that component should point at it." if blunder else
-            "a clean network: no blunder, every value carries only the noise\n# "
-            "its standard deviation states.")
+    title = "Brannoch Water dam - 3D control from GNSS, total station and leveling" + (
+        " (one bad baseline)" if blunder else ""
+    )
+    look = (
+        "one GNSS baseline has a component 45 mm off; its baseline test and the\n# "
+        "w-test of that component should point at it."
+        if blunder
+        else "a clean network: no blunder, every value carries only the noise\n# "
+        "its standard deviation states."
+    )
     out = [HEADER.format(title=title, look=look, crs=CRS_TEXT, k=K_REFRACTION).rstrip("\n")]
     out += ["", "# Control and marks (grid from the CRS; heights orthometric)"] + _points(site)
     out += ["", "# GNSS baselines (Earth-centred differences, metres)"] + baselines
@@ -267,8 +309,11 @@ def main() -> None:
     bad, key = fieldbook(True)
     (OUT_DIR / "dam_control_3d.fieldbook").write_text(clean, encoding="utf-8")
     (OUT_DIR / "dam_control_3d_blunder.fieldbook").write_text(bad, encoding="utf-8")
-    line = next(n for n, text in enumerate(bad.splitlines(), 1)
-                if text.startswith(f"baseline {BLUNDER[0]} {BLUNDER[1]} "))
+    line = next(
+        n
+        for n, text in enumerate(bad.splitlines(), 1)
+        if text.startswith(f"baseline {BLUNDER[0]} {BLUNDER[1]} ")
+    )
     ANSWER_KEY.write_text(
         "# Geodetic demo field books: answer key\n\n"
         "For test writers. Written by `tools/make_geodetic_demos.py` (fixed seed).\n"
@@ -276,7 +321,8 @@ def main() -> None:
         "## dam_control_3d.fieldbook\n\n- No blunder.\n\n"
         "## dam_control_3d_blunder.fieldbook\n\n"
         f"- Blunder: line {line}, " + key[0] + ".\n",
-        encoding="utf-8")
+        encoding="utf-8",
+    )
 
 
 if __name__ == "__main__":

@@ -132,7 +132,5 @@ def baseline_vector(
     scaled = tuple(sd_scale * s for s in sd)
     rxy, rxz, ryz = correlations
     r = ((1.0, rxy, rxz), (rxy, 1.0, ryz), (rxz, ryz, 1.0))
-    covariance = tuple(
-        tuple(scaled[i] * scaled[j] * r[i][j] for j in range(3)) for i in range(3)
-    )
+    covariance = tuple(tuple(scaled[i] * scaled[j] * r[i][j] for j in range(3)) for i in range(3))
     return BaselineVector(components, sd, correlations, sd_scale, covariance)  # type: ignore[arg-type]

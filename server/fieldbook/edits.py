@@ -41,7 +41,13 @@ _ENDING = re.compile(r"\r\n|\r|\n")
 #: Tokens before the first option or flag: the keyword and its positional values;
 #: a direction inside a round is written ``TO VALUE`` with no keyword.
 _LEADING_TOKENS = {
-    "level": 4, "distance": 4, "angle": 5, "azimuth": 4, "slope": 4, "zenith": 4, "direction": 2,
+    "level": 4,
+    "distance": 4,
+    "angle": 5,
+    "azimuth": 4,
+    "slope": 4,
+    "zenith": 4,
+    "direction": 2,
     "baseline": 6,
 }
 #: Value tokens just before the first option: a baseline's DX DY DZ, one for the others.
@@ -107,7 +113,9 @@ def validate_edit(edit: ObservationEdit) -> None:
     if edit.action == "sd":
         text = (edit.sd or "").strip()
         if not text or any(c.isspace() for c in text):
-            raise EditError(f"line {edit.line}: give the standard deviation with its unit, e.g. 3mm")
+            raise EditError(
+                f"line {edit.line}: give the standard deviation with its unit, e.g. 3mm"
+            )
         for part in text.split(",") if text.count(",") == 2 else [text]:
             try:
                 quantity = parse_quantity(part)
@@ -119,13 +127,17 @@ def validate_edit(edit: ObservationEdit) -> None:
     if edit.action == "correct":
         text = (edit.value or "").strip()
         if not text:
-            raise EditError(f"line {edit.line}: type the corrected value as the field book "
-                            "writes it (D:M:S such as 291:16:50 for angles in a dms file)")
+            raise EditError(
+                f"line {edit.line}: type the corrected value as the field book "
+                "writes it (D:M:S such as 291:16:50 for angles in a dms file)"
+            )
         if len(text) > MAX_VALUE_CHARS * (1 + text.count(",")):
             raise EditError(f"line {edit.line}: the corrected value is too long")
         if _NOT_IN_VALUE.search(text):
-            raise EditError(f"line {edit.line}: the corrected value must be one number or angle, "
-                            "without spaces, quotes, '#' or '='")
+            raise EditError(
+                f"line {edit.line}: the corrected value must be one number or angle, "
+                "without spaces, quotes, '#' or '='"
+            )
 
 
 def apply_edits(text: str, edits: Sequence[ObservationEdit], *, source: str = "") -> str:
@@ -163,8 +175,9 @@ def apply_edits(text: str, edits: Sequence[ObservationEdit], *, source: str = ""
         corrected = {e.line for e in edits if e.action == "correct"}
         for issue in exc.issues:
             if issue.line in corrected:  # the corrected value itself: say so, plainly
-                raise EditError(f"line {issue.line}: the corrected value does not read: "
-                                f"{issue.message}") from None
+                raise EditError(
+                    f"line {issue.line}: the corrected value does not read: {issue.message}"
+                ) from None
         raise EditError("the edited field book no longer reads: " + str(exc)) from None
     return edited
 
@@ -202,15 +215,20 @@ def _for_kind(edit: ObservationEdit, kind: str) -> ObservationEdit:
             # one standard deviation for each of DX, DY and DZ, as 'defaults baseline=' does
             return replace(edit, sd=",".join(parts * 3))
         if len(parts) != (3 if count == 3 else 1):
-            what = ("a baseline takes one standard deviation or three (SX,SY,SZ)" if count == 3
-                    else f"a {kind} takes one standard deviation")
+            what = (
+                "a baseline takes one standard deviation or three (SX,SY,SZ)"
+                if count == 3
+                else f"a {kind} takes one standard deviation"
+            )
             raise EditError(f"line {edit.line}: {what}")
     if edit.action == "correct" and len((edit.value or "").split(",")) != count:
-        what = ("type a baseline's three components as DX,DY,DZ" if count == 3
-                else "the corrected value must be one number or angle")
+        what = (
+            "type a baseline's three components as DX,DY,DZ"
+            if count == 3
+            else "the corrected value must be one number or angle"
+        )
         raise EditError(f"line {edit.line}: {what}")
     return edit
-
 
 
 def _validate_pairs(pairs: Sequence[tuple[str, str]]) -> None:
@@ -242,7 +260,7 @@ def _relative_lines(edit: ObservationEdit, asked: set[frozenset[str]]) -> list[s
 def _edit_line(line: str, edit: ObservationEdit, kind: str) -> str:
     first_option = _LEADING_TOKENS[kind]
     body = line.rstrip("\r\n")
-    ending = line[len(body):]
+    ending = line[len(body) :]
     code, comment = _split_comment(body)
     spans = _token_spans(code)
     if edit.action == "correct":
@@ -265,8 +283,15 @@ def _edit_line(line: str, edit: ObservationEdit, kind: str) -> str:
     return f"{indent}{' '.join(new_tokens)}  {comment}{ending}"
 
 
-def _correct_line(code: str, comment: str, ending: str, spans: list[tuple[int, int]],
-                  edit: ObservationEdit, first: int, last: int) -> str:
+def _correct_line(
+    code: str,
+    comment: str,
+    ending: str,
+    spans: list[tuple[int, int]],
+    edit: ObservationEdit,
+    first: int,
+    last: int,
+) -> str:
     """The value tokens replaced in place (the surveyor's spacing kept), the old ones commented.
 
     One token for most kinds; a baseline's DX DY DZ are three, given as ``DX,DY,DZ``.
@@ -320,4 +345,3 @@ def _token_spans(code: str) -> list[tuple[int, int]]:
             k += 1
         spans.append((start, k))
     return spans
-

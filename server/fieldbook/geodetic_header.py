@@ -109,13 +109,18 @@ def read_epoch(text: str) -> date | datetime:
         raise UnitError(f"'{show(text)}': the time of day is out of range; {example}")
     micro = round(float(fraction) * 1e6) if fraction else 0
     moment = datetime(
-        day_of.year, day_of.month, day_of.day, int(hour), int(minute), int(second or 0),
-        min(micro, 999_999), tzinfo=UTC,
+        day_of.year,
+        day_of.month,
+        day_of.day,
+        int(hour),
+        int(minute),
+        int(second or 0),
+        min(micro, 999_999),
+        tzinfo=UTC,
     )
     if zone is None:
         raise UnitError(
-            f"'{show(text)}' has no time zone; the epoch is in UTC: write "
-            f"{text}Z if this is UTC"
+            f"'{show(text)}' has no time zone; the epoch is in UTC: write {text}Z if this is UTC"
         )
     if zone.upper() != "Z":
         sign = 1 if zone[0] == "+" else -1
@@ -134,4 +139,3 @@ def _seconds(moment: datetime) -> str:
     if moment.second == 0 and moment.microsecond == 0:
         return ""
     return f":{moment.second:02d}" + (f".{moment.microsecond:06d}" if moment.microsecond else "")
-

@@ -174,8 +174,11 @@ def _tokenize_quoted(text: str, position: int) -> list[Token]:
             plain = _PLAIN.match(text, position)
             word = plain.group() if plain else ""
             after = position + len(word) + 1  # just past a quote that follows the word
-            if after <= end and text[after - 1] == '"' and _SECONDS_MARK.match(word) and (
-                after == end or text[after] in " \t#"
+            if (
+                after <= end
+                and text[after - 1] == '"'
+                and _SECONDS_MARK.match(word)
+                and (after == end or text[after] in " \t#")
             ):
                 # 'angle=5"': seconds marked as on a field sheet.  Read it as a value so that
                 # its reader can say to write 5sec, and the rest of the line still counts.
@@ -509,8 +512,17 @@ GRAMMARS: dict[str, Grammar] = {
         "defaults",
         "setting",
         options=frozenset(
-            {"level", "distance", "angle", "direction", "azimuth", "zenith", "slope", "baseline",
-             "centering"}
+            {
+                "level",
+                "distance",
+                "angle",
+                "direction",
+                "azimuth",
+                "zenith",
+                "slope",
+                "baseline",
+                "centering",
+            }
         ),
         hint="KIND=SD, e.g. distance=2mm+2ppm",
     ),
@@ -667,8 +679,7 @@ def read_quantity(text: str, rule: QuantityRule) -> Quantity:
     except UnitError:
         if rule.angular and (written := angle_in_sec(text)) is not None:
             raise UnitError(
-                f"'{shown}': write {written} for {rule.subject} (sec for seconds of arc, "
-                "or mgon)"
+                f"'{shown}': write {written} for {rule.subject} (sec for seconds of arc, or mgon)"
             ) from None
         raise
     if value.angular != rule.angular:
@@ -679,7 +690,8 @@ def read_quantity(text: str, rule: QuantityRule) -> Quantity:
         )
     if value.ppm and "ppm" not in rule.parts:
         raise UnitError(
-            f"'{shown}': a ppm part applies to distances only; {rule.subject} is like {rule.example}"
+            f"'{shown}': a ppm part applies to distances only; "
+            f"{rule.subject} is like {rule.example}"
         )
     if (value.per_sqrtkm or value.per_setup) and "per_sqrtkm" not in rule.parts:
         raise UnitError(
@@ -692,9 +704,12 @@ def read_quantity(text: str, rule: QuantityRule) -> Quantity:
     if not rule.allow_zero and not any(parts):
         raise UnitError(f"'{shown}': {rule.subject} must be greater than zero")
     length_range = SD_ANGLE_RANGE_RAD if value.angular else SD_LENGTH_RANGE_M
-    for part, (low, high) in ((value.constant, length_range), (value.ppm, PPM_RANGE),
-                              (value.per_sqrtkm, SD_LENGTH_RANGE_M),
-                              (value.per_setup, SD_LENGTH_RANGE_M)):
+    for part, (low, high) in (
+        (value.constant, length_range),
+        (value.ppm, PPM_RANGE),
+        (value.per_sqrtkm, SD_LENGTH_RANGE_M),
+        (value.per_setup, SD_LENGTH_RANGE_M),
+    ):
         if part and not low <= part <= high:
             raise UnitError(
                 f"'{shown}': {rule.subject} this {'small' if part < low else 'large'} "

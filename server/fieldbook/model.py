@@ -16,7 +16,14 @@ from server.units import Quantity
 
 #: Observation kinds as they appear in results (``direction`` for each line of a round).
 OBSERVATION_KINDS = (
-    "level", "distance", "angle", "direction", "azimuth", "slope", "zenith", "baseline"
+    "level",
+    "distance",
+    "angle",
+    "direction",
+    "azimuth",
+    "slope",
+    "zenith",
+    "baseline",
 )
 #: Kinds that observe horizontal geometry.
 HORIZONTAL_KINDS = frozenset({"distance", "angle", "direction", "azimuth"})

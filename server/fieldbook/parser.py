@@ -352,7 +352,16 @@ class _Parser:
             centering = self.centering
         self.observations.append(
             Observation(
-                line, kind, from_point, None, to, value * scale, sigma, centering, scale, length_km,
+                line,
+                kind,
+                from_point,
+                None,
+                to,
+                value * scale,
+                sigma,
+                centering,
+                scale,
+                length_km,
                 booked=value,
             )
         )
@@ -501,7 +510,10 @@ class _Parser:
         if version == 1:
             return
         if version is not None:
-            message = f"field book format version {version} is not supported; this program reads version 1"
+            message = (
+                f"field book format version {version} is not supported; "
+                "this program reads version 1"
+            )
         else:
             message = f"'{show(st.values[0].value)}' is not a format version; write 'fieldbook 1'"
         self.error(st.line, st.values[0].raw, message)
@@ -581,7 +593,8 @@ class _Parser:
         self.misclosure = self.option(st, "misclosure", read_quantity, MISCLOSURE_RULE)
         self.relative = self.option(st, "relative", read_quantity, RELATIVE_RULE)
         self.traverse = TraverseTolerance(
-            self.option(st, "angular", parse_angular_allowance), self.option(st, "ratio", parse_ratio)
+            self.option(st, "angular", parse_angular_allowance),
+            self.option(st, "ratio", parse_ratio),
         )
 
     def set_crs(self, st: Statement) -> None:
@@ -617,8 +630,11 @@ class _Parser:
         north = self.option(st, "north", option_length)
         if self.errors.count != before or latitude is None or longitude is None:
             return
-        words = " ".join(f"{key}={st.options[key].value}" for key in ("lat", "lon", "east", "north")
-                         if key in st.options)
+        words = " ".join(
+            f"{key}={st.options[key].value}"
+            for key in ("lat", "lon", "east", "north")
+            if key in st.options
+        )
         self.crs = Crs(
             st.line, f"local {words}", None, latitude, longitude, east or 0.0, north or 0.0
         )
@@ -670,8 +686,10 @@ class _Parser:
         """
         for written in words:
             word = written.lower()
-            kind = word if word in _SD_KINDS else next(
-                iter(difflib.get_close_matches(word, _SD_KINDS, n=1, cutoff=0.75)), None
+            kind = (
+                word
+                if word in _SD_KINDS
+                else next(iter(difflib.get_close_matches(word, _SD_KINDS, n=1, cutoff=0.75)), None)
             )
             default = self.defaults.get(kind) if kind else None
             if kind and (default is None or default.line != line):
@@ -696,7 +714,8 @@ class _Parser:
                 st.line,
                 token.raw,
                 f"'{show(token.raw)}': a combined grid scale factor must lie between {low} and "
-                f"{high} (real ones differ from 1 by a few hundred ppm); is this a unit conversion?",
+                f"{high} (real ones differ from 1 by a few hundred ppm); "
+                "is this a unit conversion?",
             )
             return
         if not usual_low <= factor <= usual_high:
@@ -770,14 +789,16 @@ class _Parser:
         assert first is not None
         given.add("en")  # meant as the horizontal position: no follow-on 'fix' complaints
         if "east" in st.options or "north" in st.options:
-            message = (f"point {label} has both lat=/lon= and east=/north=; give its position "
-                       "one way only")
+            message = (
+                f"point {label} has both lat=/lon= and east=/north=; give its position one way only"
+            )
             self.error(st.line, first.raw, message)
             return None, None
         if lat is None or lon is None:
             has, lacks = ("lat", "lon") if lat is not None else ("lon", "lat")
-            message = (f"point {label} has {has}= but no {lacks}=; latitude and longitude "
-                       "go together")
+            message = (
+                f"point {label} has {has}= but no {lacks}=; latitude and longitude go together"
+            )
             self.error(st.line, first.raw, message)
             return None, None
         if not self.crs_written:
@@ -790,8 +811,10 @@ class _Parser:
             return None, None
         if not self.angle_unit_known:
             return None, None  # the 'units' line is wrong; one error there is enough
-        return (self.read(st, lat, read_latitude, self.angle_unit),
-                self.read(st, lon, read_longitude, self.angle_unit))
+        return (
+            self.read(st, lat, read_latitude, self.angle_unit),
+            self.read(st, lon, read_longitude, self.angle_unit),
+        )
 
     def point_fixed(self, st: Statement, label: str, given: set[str]) -> set[str]:
         """Components held fixed: ``fix`` holds every given one, ``fix=`` names them."""
@@ -949,8 +972,10 @@ class _Parser:
             return math.nan, math.nan, math.nan
         if any(planned):
             token = tokens[planned.index(True)]
-            message = ("a planned baseline has '?' for all three components (DX DY DZ as ? ? ?); "
-                       "a measured one has three numbers")
+            message = (
+                "a planned baseline has '?' for all three components (DX DY DZ as ? ? ?); "
+                "a measured one has three numbers"
+            )
             self.error(st.line, token.raw, message)
             return None
         values = [
@@ -1047,8 +1072,10 @@ class _Parser:
             message = f"'{show(token.raw)}': a distance must be greater than zero"
             self.error(st.line, token.raw, message)
         elif value is not None and value < MIN_DISTANCE_M:
-            message = (f"'{show(token.raw)}': a distance shorter than 1 mm is not a measured "
-                       "distance; check the number and the file's length unit")
+            message = (
+                f"'{show(token.raw)}': a distance shorter than 1 mm is not a measured "
+                "distance; check the number and the file's length unit"
+            )
             self.error(st.line, token.raw, message)
             return None
         return value
@@ -1267,7 +1294,8 @@ def _similar_name(name: str, known: set[str]) -> str:
 
 
 def _whole_number(text: str) -> int | None:
-    """A plain whole number of ASCII digits (``str.isdigit`` alone admits '²', which int() refuses)."""
+    """A plain whole number of ASCII digits (``str.isdigit`` alone admits '²', which int()
+    refuses)."""
     return int(text) if text.isascii() and text.isdigit() and len(text) < 10 else None
 
 

@@ -50,8 +50,9 @@ def near_miss_warnings(
     if not points or not observations:
         return []
     declared = {p.name for p in points}
-    once = [name for name, count in _uses(observations).items()
-            if count == 1 and name not in declared]
+    once = [
+        name for name, count in _uses(observations).items() if count == 1 and name not in declared
+    ]
     if not once:
         return []
     index = _index(points)
@@ -86,8 +87,7 @@ def _uses(observations: Iterable[Observation]) -> Counter[str]:
     """How many observations name each point (three C-level passes, no per-name Python work)."""
     counts = Counter(o.from_point for o in observations)
     counts.update(o.to for o in observations)
-    counts.update(o.at for o in observations
-                  if o.at is not None and o.at != o.from_point)
+    counts.update(o.at for o in observations if o.at is not None and o.at != o.from_point)
     return counts
 
 
@@ -113,7 +113,7 @@ def _single_letters(key: str) -> Iterator[str]:
     """``key`` with one doubled letter typed once (digits are never doubled by a slip)."""
     for i in range(len(key) - 1):
         if key[i] == key[i + 1] and not key[i].isdigit():
-            yield key[:i] + key[i + 1:]
+            yield key[:i] + key[i + 1 :]
 
 
 def _variants(key: str) -> Iterator[str]:
@@ -122,10 +122,10 @@ def _variants(key: str) -> Iterator[str]:
     yield from _single_letters(key)
     for i in range(len(key) - 1):
         if key[i] != key[i + 1]:
-            yield key[:i] + key[i + 1] + key[i] + key[i + 2:]
+            yield key[:i] + key[i + 1] + key[i] + key[i + 2 :]
     for i, char in enumerate(key):
         for other in _LOOK_ALIKE.get(char, ""):
-            yield key[:i] + other + key[i + 1:]
+            yield key[:i] + other + key[i + 1 :]
 
 
 def _lookup(name: str, key: str, index: dict[str, list[PointStatement]]) -> list[PointStatement]:
@@ -139,6 +139,8 @@ def _lookup(name: str, key: str, index: dict[str, list[PointStatement]]) -> list
 
 def _message(name: str, choices: list[PointStatement]) -> str:
     listed = " or ".join(f"'{p.name}' (declared on line {p.line})" for p in choices)
-    return (f"point {name} is named in this observation only and no 'point' line declares "
-            f"it; did you mean {listed}? A misspelt name makes a new point that no other "
-            "observation checks")
+    return (
+        f"point {name} is named in this observation only and no 'point' line declares "
+        f"it; did you mean {listed}? A misspelt name makes a new point that no other "
+        "observation checks"
+    )

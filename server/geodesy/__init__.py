@@ -6,5 +6,6 @@ site grid and converts grid coordinates to and from latitude and longitude on th
 ellipsoid; ``frames.py`` computes observations in the local horizon frame (slope distance,
 zenith angle, azimuth) with their partial derivatives, and carries covariances between the
 local and the Earth-centred axes; ``start3d.py`` finds first Earth-centred positions
-from baselines, polar ties, trigonometric heighting and leveling.  Everything is SI: metres and radians.
+from baselines, polar ties, trigonometric heighting and leveling.  Everything is SI: metres
+and radians.
 """

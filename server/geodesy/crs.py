@@ -105,8 +105,9 @@ class Crs:
     _proj: pyproj.Proj = field(repr=False)
     _radians_per_angle_unit: float = field(repr=False)
 
-    def grid_to_geodetic(self, east: npt.ArrayLike,
-                         north: npt.ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+    def grid_to_geodetic(
+        self, east: npt.ArrayLike, north: npt.ArrayLike
+    ) -> tuple[np.ndarray, np.ndarray]:
         """Latitude and longitude (radians) of grid points (east, north in the CRS's unit)."""
         lon, lat = self._to_geodetic.transform(_floats(east), _floats(north))
         scale = self._radians_per_angle_unit
@@ -161,14 +162,22 @@ def _epsg(code: int) -> Crs:
     try:
         crs = pyproj.CRS.from_epsg(code)
     except CRSError:
-        raise CrsError(f"{label} is not a coordinate reference system in the EPSG database "
-                       "that comes with pyproj") from None
+        raise CrsError(
+            f"{label} is not a coordinate reference system in the EPSG database "
+            "that comes with pyproj"
+        ) from None
     _check_projected(label, crs)
     return _build(label, crs, check_point=_area_centre(crs))
 
 
-def local_crs(lat: float, lon: float, east0: float = 0.0, north0: float = 0.0,
-              unit: str = "m", definition: str = "") -> Crs:
+def local_crs(
+    lat: float,
+    lon: float,
+    east0: float = 0.0,
+    north0: float = 0.0,
+    unit: str = "m",
+    definition: str = "",
+) -> Crs:
     """A site grid: transverse Mercator on GRS80, scale 1 on the meridian through (lat, lon).
 
     ``lat``/``lon`` in radians (south and west negative); the point (lat, lon) has grid
@@ -180,21 +189,32 @@ def local_crs(lat: float, lon: float, east0: float = 0.0, north0: float = 0.0,
     if not all(isinstance(v, (int, float)) and math.isfinite(v) for v in values):
         raise CrsError("the site grid needs finite numbers for lat, lon, east and north")
     if not abs(lat) < math.radians(89.0):
-        raise CrsError(f"the site grid's latitude {math.degrees(lat):.6f}° is not between "
-                       "-89° and 89° (a transverse Mercator grid needs a meridian)")
+        raise CrsError(
+            f"the site grid's latitude {math.degrees(lat):.6f}° is not between "
+            "-89° and 89° (a transverse Mercator grid needs a meridian)"
+        )
     if not abs(lon) <= math.pi:
-        raise CrsError(f"the site grid's longitude {math.degrees(lon):.6f}° is not between "
-                       "-180° and 180°")
+        raise CrsError(
+            f"the site grid's longitude {math.degrees(lon):.6f}° is not between -180° and 180°"
+        )
     mpu = _EXACT_UNITS[unit]
     # PROJ takes the false easting and northing in metres whatever +units says
-    proj = (f"+proj=tmerc +lat_0={math.degrees(lat)!r} +lon_0={math.degrees(lon)!r} +k=1 "
-            f"+x_0={east0 * mpu!r} +y_0={north0 * mpu!r} +ellps=GRS80 "
-            f"+units={_PROJ_UNITS[unit]} +no_defs +type=crs")
+    proj = (
+        f"+proj=tmerc +lat_0={math.degrees(lat)!r} +lon_0={math.degrees(lon)!r} +k=1 "
+        f"+x_0={east0 * mpu!r} +y_0={north0 * mpu!r} +ellps=GRS80 "
+        f"+units={_PROJ_UNITS[unit]} +no_defs +type=crs"
+    )
     crs = pyproj.CRS.from_proj4(proj)
-    label = definition or (f"local lat={math.degrees(lat):.9f} lon={math.degrees(lon):.9f} "
-                           f"east={east0!r} north={north0!r}")
-    built = _build(label, crs, check_point=(math.degrees(lon), math.degrees(lat)),
-                   name="site grid (transverse Mercator on GRS80, scale 1 at the site)")
+    label = definition or (
+        f"local lat={math.degrees(lat):.9f} lon={math.degrees(lon):.9f} "
+        f"east={east0!r} north={north0!r}"
+    )
+    built = _build(
+        label,
+        crs,
+        check_point=(math.degrees(lon), math.degrees(lat)),
+        name="site grid (transverse Mercator on GRS80, scale 1 at the site)",
+    )
     assert built.ellipsoid is GRS80, built.ellipsoid  # pyproj's GRS80 is ours to the last digit
     return built
 
@@ -204,21 +224,26 @@ def _check_projected(label: str, crs: pyproj.CRS) -> None:
     if crs.is_compound:
         parts = [sub.to_epsg() for sub in crs.sub_crs_list if sub.is_projected]
         hint = f"; give its horizontal part, EPSG:{parts[0]}" if parts and parts[0] else ""
-        raise CrsError(f"{label} ({crs.name}) is a compound CRS with heights{hint} "
-                       "(heights come from the field book)")
+        raise CrsError(
+            f"{label} ({crs.name}) is a compound CRS with heights{hint} "
+            "(heights come from the field book)"
+        )
     if crs.is_geographic:
-        raise CrsError(f"{label} ({crs.name}) is a geographic CRS (latitude and longitude); "
-                       "give a projected CRS with east and north in metres or feet")
+        raise CrsError(
+            f"{label} ({crs.name}) is a geographic CRS (latitude and longitude); "
+            "give a projected CRS with east and north in metres or feet"
+        )
     if not crs.is_projected:
         kind = crs.type_name[:1].lower() + crs.type_name[1:]
-        raise CrsError(f"{label} ({crs.name}) is a {kind}, not a projected CRS with east "
-                       "and north")
+        raise CrsError(f"{label} ({crs.name}) is a {kind}, not a projected CRS with east and north")
     axes = crs.axis_info
     directions = sorted(axis.direction.lower() for axis in axes)
     if len(axes) != 2 or directions != ["east", "north"]:
         pointing = ", ".join(axis.direction for axis in axes)
-        raise CrsError(f"{label} ({crs.name}) has axes pointing {pointing}; only CRSs with "
-                       "an east and a north axis can be used")
+        raise CrsError(
+            f"{label} ({crs.name}) has axes pointing {pointing}; only CRSs with "
+            "an east and a north axis can be used"
+        )
     system = crs.coordinate_system
     units = system.to_json_dict().get("axis", []) if system is not None else []
     if len(units) != len(axes):
@@ -227,18 +252,22 @@ def _check_projected(label: str, crs: pyproj.CRS) -> None:
         unit = described.get("unit", "metre")
         unit_type = unit.get("type") if isinstance(unit, dict) else "LinearUnit"
         if unit_type != "LinearUnit" or not axis.unit_conversion_factor > 0:
-            raise CrsError(f"{label} ({crs.name}) has an axis in {axis.unit_name}, "
-                           "not a length unit")
+            raise CrsError(
+                f"{label} ({crs.name}) has an axis in {axis.unit_name}, not a length unit"
+            )
     if axes[0].unit_conversion_factor != axes[1].unit_conversion_factor:
         raise CrsError(f"{label} ({crs.name}) has its two axes in different units")
     meridian = crs.prime_meridian
     if meridian is not None and meridian.longitude != 0.0:
-        raise CrsError(f"{label} ({crs.name}) counts longitude from the {meridian.name} "
-                       "meridian; use a CRS whose longitudes count from Greenwich")
+        raise CrsError(
+            f"{label} ({crs.name}) counts longitude from the {meridian.name} "
+            "meridian; use a CRS whose longitudes count from Greenwich"
+        )
 
 
-def _build(label: str, crs: pyproj.CRS, check_point: tuple[float, float] | None,
-           name: str | None = None) -> Crs:
+def _build(
+    label: str, crs: pyproj.CRS, check_point: tuple[float, float] | None, name: str | None = None
+) -> Crs:
     geodetic, spheroid = crs.geodetic_crs, crs.ellipsoid
     if geodetic is None or spheroid is None:
         raise CrsError(f"{label} ({crs.name}) has no geodetic CRS and ellipsoid")
@@ -246,8 +275,10 @@ def _build(label: str, crs: pyproj.CRS, check_point: tuple[float, float] | None,
         to_geodetic = pyproj.Transformer.from_crs(crs, geodetic, always_xy=True)
         to_grid = pyproj.Transformer.from_crs(geodetic, crs, always_xy=True)
     except ProjError:  # e.g. a family of zones without a zone ("UTM grid system")
-        raise CrsError(f"{label} ({crs.name}) does not define one projection that pyproj can "
-                       "compute; give the code of a single zone") from None
+        raise CrsError(
+            f"{label} ({crs.name}) does not define one projection that pyproj can "
+            "compute; give the code of a single zone"
+        ) from None
     for transformer in (to_geodetic, to_grid):
         _require_conversion(label, crs, transformer)
     angle_units = {axis.unit_conversion_factor for axis in geodetic.axis_info}
@@ -263,8 +294,10 @@ def _build(label: str, crs: pyproj.CRS, check_point: tuple[float, float] | None,
         try:
             proj = pyproj.Proj(crs)
         except (CRSError, ProjError):
-            raise CrsError(f"{label} ({crs.name}): pyproj cannot compute grid scale factors "
-                           "and convergence for this projection") from None
+            raise CrsError(
+                f"{label} ({crs.name}): pyproj cannot compute grid scale factors "
+                "and convergence for this projection"
+            ) from None
     built = Crs(
         definition=label,
         name=name or crs.name,
@@ -290,8 +323,10 @@ def _require_conversion(label: str, crs: pyproj.CRS, transformer: pyproj.Transfo
     steps = described.get("steps", [described])
     kinds = {step.get("type") for step in steps}
     if kinds != {"Conversion"} or "ballpark" in transformer.description.lower():
-        raise CrsError(f"{label} ({crs.name}): pyproj would reach its geodetic CRS through "
-                       f"'{transformer.description}', which is not a pure conversion")
+        raise CrsError(
+            f"{label} ({crs.name}): pyproj would reach its geodetic CRS through "
+            f"'{transformer.description}', which is not a pure conversion"
+        )
 
 
 def _check_proj_agrees(built: Crs, lon_lat_deg: tuple[float, float]) -> None:
@@ -304,8 +339,10 @@ def _check_proj_agrees(built: Crs, lon_lat_deg: tuple[float, float]) -> None:
     pe, pn = proj_m(lon, lat)
     gap = math.hypot(pe - east[0] * built.metres_per_unit, pn - north[0] * built.metres_per_unit)
     if not gap <= _PROJ_AGREEMENT_M:
-        raise CrsError(f"{built.definition} ({built.name}): pyproj's two descriptions of this "
-                       f"projection differ by {gap:.3g} m, so its scale factors cannot be trusted")
+        raise CrsError(
+            f"{built.definition} ({built.name}): pyproj's two descriptions of this "
+            f"projection differ by {gap:.3g} m, so its scale factors cannot be trusted"
+        )
     _check_factors(built, math.radians(lat), math.radians(lon))
 
 
@@ -330,12 +367,17 @@ def _check_factors(built: Crs, lat: float, lon: float) -> None:
     parallel = math.hypot(de_dlon, dn_dlon) / float(ell.prime_vertical_radius(lat) * math.cos(lat))
     convergence = -math.atan2(de_dlat, dn_dlat)
     factors = built.factors(np.array([lat]), np.array([lon]))
-    gaps = (meridional - parallel, factors.scale[0] - parallel,
-            factors.convergence[0] - convergence)
+    gaps = (
+        meridional - parallel,
+        factors.scale[0] - parallel,
+        factors.convergence[0] - convergence,
+    )
     if not all(abs(gap) <= _CONFORMAL_TOLERANCE for gap in gaps):
-        raise CrsError(f"{built.definition} ({built.name}) is not a conformal projection of "
-                       "its datum's ellipsoid as pyproj describes it, so grid angles, scale "
-                       "factors and convergence would not hold")
+        raise CrsError(
+            f"{built.definition} ({built.name}) is not a conformal projection of "
+            "its datum's ellipsoid as pyproj describes it, so grid angles, scale "
+            "factors and convergence would not hold"
+        )
 
 
 def _area_centre(crs: pyproj.CRS) -> tuple[float, float] | None:

@@ -101,8 +101,10 @@ class LocalFrames:
     def up_derivative(self) -> np.ndarray:
         """U = ∂û/∂X, shape (n, 3, 3)."""
         n, e = self.north, self.east
-        return (n[:, :, None] * n[:, None, :] / self.meridian[:, None, None]
-                + e[:, :, None] * e[:, None, :] / self.prime_vertical[:, None, None])
+        return (
+            n[:, :, None] * n[:, None, :] / self.meridian[:, None, None]
+            + e[:, :, None] * e[:, None, :] / self.prime_vertical[:, None, None]
+        )
 
 
 @dataclass(frozen=True, slots=True)
@@ -126,15 +128,19 @@ class LocalVector:
 
 def enu_rotation(lat: np.ndarray, lon: np.ndarray) -> np.ndarray:
     """R with rows east, north, up at φ, λ (radians): shape (n, 3, 3)."""
-    lat, lon = np.broadcast_arrays(np.atleast_1d(np.asarray(lat, dtype=float)),
-                                   np.atleast_1d(np.asarray(lon, dtype=float)))
+    lat, lon = np.broadcast_arrays(
+        np.atleast_1d(np.asarray(lat, dtype=float)), np.atleast_1d(np.asarray(lon, dtype=float))
+    )
     sp, cp, sl, cl = np.sin(lat), np.cos(lat), np.sin(lon), np.cos(lon)
     zero = np.zeros_like(lat)
-    return np.stack([
-        np.stack([-sl, cl, zero], axis=-1),
-        np.stack([-sp * cl, -sp * sl, cp], axis=-1),
-        np.stack([cp * cl, cp * sl, sp], axis=-1),
-    ], axis=-2)
+    return np.stack(
+        [
+            np.stack([-sl, cl, zero], axis=-1),
+            np.stack([-sp * cl, -sp * sl, cp], axis=-1),
+            np.stack([cp * cl, cp * sl, sp], axis=-1),
+        ],
+        axis=-2,
+    )
 
 
 def local_frames(ellipsoid: Ellipsoid, xyz: np.ndarray) -> LocalFrames:
@@ -142,7 +148,9 @@ def local_frames(ellipsoid: Ellipsoid, xyz: np.ndarray) -> LocalFrames:
     xyz = _points(xyz)
     lat, lon, h = ellipsoid.from_ecef(xyz)
     return LocalFrames(
-        lat=lat, lon=lon, h=h,
+        lat=lat,
+        lon=lon,
+        h=h,
         rotation=enu_rotation(lat, lon),
         meridian=ellipsoid.meridian_radius(lat) + h,
         prime_vertical=ellipsoid.prime_vertical_radius(lat) + h,
@@ -155,8 +163,13 @@ def lifted(ellipsoid: Ellipsoid, xyz: np.ndarray, height: np.ndarray | float) ->
     return _points(xyz) + _column(height, len(frames.lat)) * frames.up
 
 
-def local_vector(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray,
-                 hi: np.ndarray | float = 0.0, ht: np.ndarray | float = 0.0) -> LocalVector:
+def local_vector(
+    ellipsoid: Ellipsoid,
+    frm: np.ndarray,
+    to: np.ndarray,
+    hi: np.ndarray | float = 0.0,
+    ht: np.ndarray | float = 0.0,
+) -> LocalVector:
     """(a, b, c): target (TO + ht) minus instrument (FROM + hi) in FROM's east, north, up."""
     frm, to = _points(frm), _points(to)
     count = len(frm)
@@ -172,17 +185,25 @@ def local_vector(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray,
     tan_lat = np.tan(at.lat)[:, None]
     e_row = at.east / at.prime_vertical[:, None]
     n_row = at.north / at.meridian[:, None]
-    turning = np.stack([
-        -(c - b * tan_lat) * e_row,
-        -c * n_row - a * tan_lat * e_row,
-        b * n_row + a * e_row,
-    ], axis=1)
+    turning = np.stack(
+        [
+            -(c - b * tan_lat) * e_row,
+            -c * n_row - a * tan_lat * e_row,
+            b * n_row + a * e_row,
+        ],
+        axis=1,
+    )
     d_from = turning - rot @ (identity + hi[:, :, None] * at.up_derivative())
     return LocalVector(enu=enu, d_from=d_from, d_to=d_to, frames=at)
 
 
-def slope_distance(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray,
-                   hi: np.ndarray | float = 0.0, ht: np.ndarray | float = 0.0) -> Equation:
+def slope_distance(
+    ellipsoid: Ellipsoid,
+    frm: np.ndarray,
+    to: np.ndarray,
+    hi: np.ndarray | float = 0.0,
+    ht: np.ndarray | float = 0.0,
+) -> Equation:
     """Straight-line distance from the instrument (FROM + hi) to the target (TO + ht)."""
     frm, to = _points(frm), _points(to)
     count = len(frm)
@@ -197,9 +218,14 @@ def slope_distance(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray,
     return Equation(value=s, d_from=d_from, d_to=d_to)
 
 
-def zenith_angle(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray,
-                 hi: np.ndarray | float = 0.0, ht: np.ndarray | float = 0.0,
-                 k: np.ndarray | float = 0.0) -> Equation:
+def zenith_angle(
+    ellipsoid: Ellipsoid,
+    frm: np.ndarray,
+    to: np.ndarray,
+    hi: np.ndarray | float = 0.0,
+    ht: np.ndarray | float = 0.0,
+    k: np.ndarray | float = 0.0,
+) -> Equation:
     """Zenith angle at the instrument from its normal to the target, less k·S/(2R)."""
     vec = local_vector(ellipsoid, frm, to, hi, ht)
     a, b, c = vec.enu[:, 0], vec.enu[:, 1], vec.enu[:, 2]
@@ -215,8 +241,13 @@ def zenith_angle(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray,
     return _chain(value, grad, vec)
 
 
-def horizon_azimuth(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray,
-                    hi: np.ndarray | float = 0.0, ht: np.ndarray | float = 0.0) -> Equation:
+def horizon_azimuth(
+    ellipsoid: Ellipsoid,
+    frm: np.ndarray,
+    to: np.ndarray,
+    hi: np.ndarray | float = 0.0,
+    ht: np.ndarray | float = 0.0,
+) -> Equation:
     """Azimuth in the horizon plane at the instrument, clockwise from geodetic north, [0, 2π).
 
     For horizontal directions and angles toward the marks leave ``ht`` at 0; ``hi`` moves the
@@ -285,16 +316,21 @@ def enu_sd_to_ecef_covariance(lat: np.ndarray, lon: np.ndarray, sd_enu: np.ndarr
     return enu_to_ecef_covariance(lat, lon, cov)
 
 
-def baseline_centering_covariance(lat_from: np.ndarray, lon_from: np.ndarray,
-                                  lat_to: np.ndarray, lon_to: np.ndarray,
-                                  centering: np.ndarray | float) -> np.ndarray:
+def baseline_centering_covariance(
+    lat_from: np.ndarray,
+    lon_from: np.ndarray,
+    lat_to: np.ndarray,
+    lon_to: np.ndarray,
+    centering: np.ndarray | float,
+) -> np.ndarray:
     """Covariance (n, 3, 3) a baseline gains from centering c in east and north at each end."""
     c = np.atleast_1d(np.asarray(centering, dtype=float))
     sd = np.stack([c, c, np.zeros_like(c)], axis=-1)
     count = max(np.size(lat_from), np.size(lat_to), len(c))
     sd = np.broadcast_to(sd, (count, 3))
-    return (enu_sd_to_ecef_covariance(lat_from, lon_from, sd)
-            + enu_sd_to_ecef_covariance(lat_to, lon_to, sd))
+    return enu_sd_to_ecef_covariance(lat_from, lon_from, sd) + enu_sd_to_ecef_covariance(
+        lat_to, lon_to, sd
+    )
 
 
 def _chain(value: np.ndarray, grad: np.ndarray, vec: LocalVector) -> Equation:

@@ -49,7 +49,9 @@ def grid_position(crs: Crs, xyz: np.ndarray) -> GridPosition:
     cos_g = np.cos(np.atleast_1d(factors.convergence))[:, None]
     sin_g = np.sin(np.atleast_1d(factors.convergence))[:, None]
     return GridPosition(
-        east=np.atleast_1d(east), north=np.atleast_1d(north), h=at.h,
+        east=np.atleast_1d(east),
+        north=np.atleast_1d(north),
+        h=at.h,
         d_east=scale * (d_e * cos_g - d_n * sin_g),
         d_north=scale * (d_e * sin_g + d_n * cos_g),
         d_h=at.up,

@@ -68,7 +68,9 @@ class RobustResult:
     @property
     def down_weighted(self) -> tuple[RobustObservation, ...]:
         """Observations given less than full weight, lowest weight first."""
-        return tuple(sorted((o for o in self.observations if o.weight < 1.0), key=lambda o: o.weight))
+        return tuple(
+            sorted((o for o in self.observations if o.weight < 1.0), key=lambda o: o.weight)
+        )
 
 
 def huber_weight(u: float, k: float = HUBER_K) -> float:
@@ -77,7 +79,8 @@ def huber_weight(u: float, k: float = HUBER_K) -> float:
 
 
 def _scaled(obs: Observation, factor: float) -> Observation:
-    """The observation with its whole a priori σ multiplied by ``factor`` (all parts, centering too)."""
+    """The observation with its whole a priori σ multiplied by ``factor`` (all parts,
+    centering too)."""
     q = obs.sigma
     sigma = Quantity(
         constant=q.constant * factor,
@@ -137,7 +140,9 @@ def robust_adjustment(
     )
 
 
-def _inseparable_warning(base: AdjustmentResult, final: list[RobustObservation]) -> tuple[str, tuple[int, ...]]:
+def _inseparable_warning(
+    base: AdjustmentResult, final: list[RobustObservation]
+) -> tuple[str, tuple[int, ...]]:
     """The warning for a most down-weighted observation whose w-test others share."""
     lowest = min((o for o in final if o.weight < 1.0), key=lambda o: o.weight, default=None)
     if lowest is None:

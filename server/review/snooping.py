@@ -56,7 +56,8 @@ class SnoopingPlan:
 def with_ignored(fieldbook: Fieldbook, lines: set[int]) -> Fieldbook:
     """The field book with the observations on ``lines`` marked ignore."""
     observations = tuple(
-        dataclasses.replace(o, ignored=True) if o.line in lines else o for o in fieldbook.observations
+        dataclasses.replace(o, ignored=True) if o.line in lines else o
+        for o in fieldbook.observations
     )
     return dataclasses.replace(fieldbook, observations=observations)
 
@@ -80,7 +81,9 @@ def propose_snooping(fieldbook: Fieldbook, first: AdjustmentResult | None = None
         worst = max(flagged, key=lambda o: abs(o.w or 0.0))
         if worst.inseparable:
             group = (worst.line, *worst.inseparable)
-            return SnoopingPlan(tuple(steps), inseparable_message(result, group), tuple(sorted(group)))
+            return SnoopingPlan(
+                tuple(steps), inseparable_message(result, group), tuple(sorted(group))
+            )
         try:
             after = adjust_parsed(with_ignored(fieldbook, removed | {worst.line}))
         except NetworkError as exc:
@@ -114,8 +117,11 @@ def describe(result: AdjustmentResult, lines: tuple[int, ...]) -> str:
     parts = []
     for line in sorted(set(lines)):
         o = by_line.get(line)
-        marks = f"{o.from_point} – {o.at} – {o.to}" if o and o.kind == "angle" and o.at else (
-            f"{o.from_point} → {o.to}" if o else "")
+        marks = (
+            f"{o.from_point} – {o.at} – {o.to}"
+            if o and o.kind == "angle" and o.at
+            else (f"{o.from_point} → {o.to}" if o else "")
+        )
         parts.append(f"line {line} ({o.kind} {marks})" if o else f"line {line}")
     return parts[0] if len(parts) == 1 else ", ".join(parts[:-1]) + " and " + parts[-1]
 

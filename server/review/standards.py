@@ -97,7 +97,9 @@ for _name, (_section, _loop) in FGCC_1984_LEVELING.items():
     )
 
 
-def with_presets(fieldbook: Fieldbook, *, relative: str | None = None, misclosure: str | None = None) -> Fieldbook:
+def with_presets(
+    fieldbook: Fieldbook, *, relative: str | None = None, misclosure: str | None = None
+) -> Fieldbook:
     """The field book with its tolerances replaced by the named presets (None keeps the file's)."""
     changes: dict[str, Any] = {}
     for key, field in ((relative, "relative_tolerance"), (misclosure, "misclosure_tolerance")):

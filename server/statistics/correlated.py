@@ -57,8 +57,9 @@ class BlockTests:
     flagged: np.ndarray  # bool
 
 
-def component_tests(v: np.ndarray, weight: np.ndarray, qvv: np.ndarray,
-                    lambda0: float, critical_w: float) -> ComponentTests:
+def component_tests(
+    v: np.ndarray, weight: np.ndarray, qvv: np.ndarray, lambda0: float, critical_w: float
+) -> ComponentTests:
     """Redundancy, w, MDB and flags of every component of every block."""
     v, weight, qvv = _stacks(v, weight, qvv)
     redundancy = np.einsum("nij,nji->ni", qvv, weight)
@@ -72,12 +73,17 @@ def component_tests(v: np.ndarray, weight: np.ndarray, qvv: np.ndarray,
     mdb = np.where(controlled, np.sqrt(lambda0 / safe), np.nan)
     bias = np.where(controlled, -pv / safe, np.nan)
     flagged = controlled & (np.abs(np.where(controlled, w, 0.0)) > critical_w)
-    return ComponentTests(redundancy=redundancy, w=w, mdb=mdb, estimated_bias=bias,
-                          controlled=controlled, flagged=flagged)
+    return ComponentTests(
+        redundancy=redundancy,
+        w=w,
+        mdb=mdb,
+        estimated_bias=bias,
+        controlled=controlled,
+        flagged=flagged,
+    )
 
 
-def block_tests(v: np.ndarray, weight: np.ndarray, qvv: np.ndarray,
-                alpha: float) -> BlockTests:
+def block_tests(v: np.ndarray, weight: np.ndarray, qvv: np.ndarray, alpha: float) -> BlockTests:
     """T = vᵀ·Qvv⁺·v per block, uncontrolled components left out, against χ²(k) at 1 − α."""
     v, weight, qvv = _stacks(v, weight, qvv)
     k = v.shape[1]
@@ -93,8 +99,12 @@ def block_tests(v: np.ndarray, weight: np.ndarray, qvv: np.ndarray,
     projected = np.einsum("nji,nj->ni", vectors, u)
     statistic = np.sum(projected * projected * inverse, axis=1)
     critical = chi_square_quantile(1.0 - alpha, k)
-    return BlockTests(statistic=statistic, rank=nonzero.sum(axis=1), critical=critical,
-                      flagged=statistic > critical)
+    return BlockTests(
+        statistic=statistic,
+        rank=nonzero.sum(axis=1),
+        critical=critical,
+        flagged=statistic > critical,
+    )
 
 
 def chi_square_quantile(q: float, degrees: int) -> float:
@@ -109,8 +119,9 @@ def _symmetric_root(matrices: np.ndarray) -> np.ndarray:
     return (vectors * roots[:, None, :]) @ np.swapaxes(vectors, 1, 2)
 
 
-def _stacks(v: np.ndarray, weight: np.ndarray,
-            qvv: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _stacks(
+    v: np.ndarray, weight: np.ndarray, qvv: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """The three inputs as float stacks of matching shapes (one block may come unstacked)."""
     v = np.asarray(v, dtype=float)
     weight = np.asarray(weight, dtype=float)
@@ -119,6 +130,8 @@ def _stacks(v: np.ndarray, weight: np.ndarray,
         v, weight, qvv = v[None, :], weight[None, :, :], qvv[None, :, :]
     n, k = v.shape
     if weight.shape != (n, k, k) or qvv.shape != (n, k, k):
-        raise ValueError(f"blocks must be v (n, k), P and Qvv (n, k, k); got {v.shape}, "
-                         f"{weight.shape}, {qvv.shape}")
+        raise ValueError(
+            f"blocks must be v (n, k), P and Qvv (n, k, k); got {v.shape}, "
+            f"{weight.shape}, {qvv.shape}"
+        )
     return v, weight, qvv

@@ -60,7 +60,9 @@ def w_statistics(residuals: np.ndarray, sigmas: np.ndarray, redundancy: np.ndarr
     return residuals / (sigmas * np.sqrt(redundancy))
 
 
-def minimal_detectable_bias(sigmas: np.ndarray, redundancy: np.ndarray, lambda0: float) -> np.ndarray:
+def minimal_detectable_bias(
+    sigmas: np.ndarray, redundancy: np.ndarray, lambda0: float
+) -> np.ndarray:
     """∇_i = σ_i·√(λ₀ / r_i)."""
     return sigmas * np.sqrt(lambda0 / redundancy)
 
@@ -128,5 +130,7 @@ def standard_ellipses(
     radius = np.hypot(0.5 * (var_north - var_east), cov_en)
     major = np.sqrt(np.maximum(mean + radius, 0.0))
     minor = np.sqrt(np.maximum(mean - radius, 0.0))
-    azimuth = np.mod(0.5 * np.arctan2(2.0 * cov_en, var_north - var_east) * (180.0 / math.pi), 180.0)
+    azimuth = np.mod(
+        0.5 * np.arctan2(2.0 * cov_en, var_north - var_east) * (180.0 / math.pi), 180.0
+    )
     return major, minor, azimuth

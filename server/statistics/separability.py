@@ -107,12 +107,23 @@ def correlated_rows(
     if n <= dense_rows:
         # every row exact, in blocks so that no n×n array is held
         for start in range(0, candidates.size, BLOCK):
-            pairs.append(_pairs(hat, root_p, redundancy, candidates[start:start + BLOCK], candidates, threshold))
+            pairs.append(
+                _pairs(
+                    hat,
+                    root_p,
+                    redundancy,
+                    candidates[start : start + BLOCK],
+                    candidates,
+                    threshold,
+                )
+            )
     else:
         _simulated_groups(hat, root_p, redundancy, candidates, out)
         exact = _representatives(exact_rows, candidates, out, n)
         for start in range(0, exact.size, BLOCK):
-            pairs.append(_pairs(hat, root_p, redundancy, exact[start:start + BLOCK], candidates, threshold))
+            pairs.append(
+                _pairs(hat, root_p, redundancy, exact[start : start + BLOCK], candidates, threshold)
+            )
     groups = list(out)
     extra: dict[int, set[int]] = {}
     for first, second in pairs:
@@ -127,8 +138,9 @@ def correlated_rows(
     return out
 
 
-def _representatives(exact_rows: Sequence[int], candidates: np.ndarray,
-                     groups: Sequence[Sequence[int]], n: int) -> np.ndarray:
+def _representatives(
+    exact_rows: Sequence[int], candidates: np.ndarray, groups: Sequence[Sequence[int]], n: int
+) -> np.ndarray:
     """The rows to solve for exactly: one per |ρ| = 1 group, since its members share
     their column of R up to scale; at most ``MAX_EXACT_ROWS``."""
     member = np.zeros(n, bool)
@@ -143,7 +155,9 @@ def _representatives(exact_rows: Sequence[int], candidates: np.ndarray,
     return np.array(chosen[:MAX_EXACT_ROWS], dtype=np.int64)
 
 
-def correlation_rows(hat: Hat, sigmas: np.ndarray, redundancy: np.ndarray, rows: np.ndarray) -> np.ndarray:
+def correlation_rows(
+    hat: Hat, sigmas: np.ndarray, redundancy: np.ndarray, rows: np.ndarray
+) -> np.ndarray:
     """ρ[rows[k], j] for every row j: the exact correlations of a few w-tests with all others.
 
     Column i of R is e_i − P^½·A·Qxx·Aᵀ·P^½·e_i; rows with r = 0 give 0.
@@ -161,8 +175,14 @@ def correlation_rows(hat: Hat, sigmas: np.ndarray, redundancy: np.ndarray, rows:
     return np.nan_to_num(rho, nan=0.0, posinf=0.0, neginf=0.0).T
 
 
-def _pairs(hat: Hat, root_p: np.ndarray, redundancy: np.ndarray, rows: np.ndarray,
-           candidates: np.ndarray, threshold: float) -> tuple[np.ndarray, np.ndarray]:
+def _pairs(
+    hat: Hat,
+    root_p: np.ndarray,
+    redundancy: np.ndarray,
+    rows: np.ndarray,
+    candidates: np.ndarray,
+    threshold: float,
+) -> tuple[np.ndarray, np.ndarray]:
     """(row, candidate) pairs with |ρ| ≥ threshold, ρ computed exactly for ``rows``.
 
     The test |R_ij| ≥ threshold·√(r_i·r_j) is ρ's without dividing by a vanishing r.
@@ -176,8 +196,13 @@ def _pairs(hat: Hat, root_p: np.ndarray, redundancy: np.ndarray, rows: np.ndarra
     return rows[first], candidates[second]
 
 
-def _simulated_groups(hat: Hat, root_p: np.ndarray, redundancy: np.ndarray, candidates: np.ndarray,
-                      out: list[tuple[int, ...]]) -> None:
+def _simulated_groups(
+    hat: Hat,
+    root_p: np.ndarray,
+    redundancy: np.ndarray,
+    candidates: np.ndarray,
+    out: list[tuple[int, ...]],
+) -> None:
     """Join rows whose simulated standardized residuals agree in every sample (|ρ| = 1).
 
     The signatures are sorted on a few coordinates rounded to ``GRID``; members of a
@@ -214,4 +239,4 @@ def _simulated_groups(hat: Hat, root_p: np.ndarray, redundancy: np.ndarray, cand
     for start, end in itertools.pairwise(bounds):
         group = tuple(sorted(members[start:end]))
         for k, row in enumerate(group):
-            out[row] = group[:k] + group[k + 1:]
+            out[row] = group[:k] + group[k + 1 :]
