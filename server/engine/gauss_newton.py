@@ -87,8 +87,12 @@ class Solution:
 
     Rows of ``sigmas``, ``residuals``, ``adjusted`` and
     ``adjusted_cofactor`` are the used field observations in
-    ``network.used`` order, followed by ``control`` rows.  Unknowns are
-    numbered as ``network.parameters``.
+    ``network.used`` order (``components`` rows each), followed by
+    ``control`` rows.  Unknowns are numbered as ``network.parameters``.
+    Rows of correlated blocks are whitened (``model/whitening.py``): their
+    residuals, σ (= 1) and cofactors are the decorrelated observations', so
+    Σ(v/σ)² is vᵀPv and r = 1 − cofactor/σ² sum to the redundancy; ``adjusted``
+    is always the observations' own computed values.
     """
 
     network: Network
