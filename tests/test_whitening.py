@@ -289,3 +289,21 @@ def test_a_bad_block_is_refused_with_its_number():
     with pytest.raises(ValueError, match="block 2: needs k distinct rows"):
         engine.adjust(network, correlated=[CorrelatedBlock((0,), np.eye(1)),
                                            CorrelatedBlock((1, 1), np.eye(2))])
+
+
+def test_unwhitened_misclosures_are_the_observations_own():
+    """L·(L⁻¹·l) gives back l = observed − computed for every row, whitened or not."""
+    from server.engine.state import State
+
+    network, observed, covariance, start = _vector_network(np.random.default_rng(2))
+    state = State(network, {n: tuple(map(float, start[n])) for n in start},
+                  {**KINDS, "vector": VECTOR})
+    evaluation = state.assembly(state.column).evaluate(*state.arrays())
+    raw = observed - _vector_model(np.concatenate([start[n] for n in FREE]))
+    whitened = scipy.linalg.solve_triangular(np.linalg.cholesky(covariance), raw, lower=True)
+    blocks = 3 * len(VECTORS)  # the level and distance rows stay as they are, with their σ
+    np.testing.assert_allclose(evaluation.misclosure[:blocks], whitened[:blocks], rtol=1e-9)
+    np.testing.assert_allclose(evaluation.misclosure[blocks:], raw[blocks:], rtol=1e-12)
+    assert np.all(evaluation.sigmas[:blocks] == 1.0) and np.all(evaluation.sigmas[blocks:] > 1e-3)
+    np.testing.assert_allclose(evaluation.unwhiten(evaluation.misclosure), raw, atol=1e-12)
+    np.testing.assert_allclose(evaluation.computed, observed - raw, atol=1e-9)
