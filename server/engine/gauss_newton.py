@@ -76,8 +76,6 @@ IMPLAUSIBLE_CORRECTION = 1e4
 #: or "statistics"; the pipeline adds "parse", "network" and "result".
 ProgressCallback = Callable[[str, int], None]
 
-_State = State  # the name the benchmark uses
-
 __all__ = ["ControlRow", "DenseCofactor", "Solution", "adjust"]
 
 
