@@ -104,9 +104,10 @@ def _reference(model, observed, covariance, x0):
 
 # ------------------------------------------------------------------ network 1: vector blocks
 
+#: True positions (east, north, height) in metres; A and B are held, P, Q and R adjusted.
 TRUTH = {
     "A": (1000.0, 2000.0, 50.0),
-    "B": (1800.0, 2100.0, 62.0),  # held
+    "B": (1800.0, 2100.0, 62.0),
     "P": (1300.0, 2600.0, 55.0),
     "Q": (1700.0, 2700.0, 71.0),
     "R": (1500.0, 2300.0, 48.0),
