@@ -143,56 +143,64 @@ def _cycle_basis(
     dimension = len(edges) - len(adjacency) + forest[2]
     if dimension <= 0:
         return []
-    basis: dict[int, int] = {}  # pivot bit → reduced mask (GF(2) elimination)
-    chosen: list[list[int]] = []
-    covered: set[int] = set()
-    pending: list[list[int]] = []  # chosen but not yet in the elimination
-
-    def reduce(cycle: list[int]) -> int:
-        mask = 0
-        for k in cycle:
-            mask ^= 1 << k
-        while mask:
-            pivot = mask.bit_length() - 1
-            if pivot not in basis:
-                return mask
-            mask ^= basis[pivot]
-        return 0
-
-    def take(cycle: list[int]) -> None:
-        # a cycle with a section no chosen cycle has is independent of them all: the
-        # usual case, which spares the elimination until a cycle has only old sections
-        if not covered.issuperset(cycle):
-            covered.update(cycle)
-            chosen.append(cycle)
-            pending.append(cycle)
-            return
-        while pending:
-            mask = reduce(pending.pop())
-            basis[mask.bit_length() - 1] = mask
-        mask = reduce(cycle)
-        if mask:
-            basis[mask.bit_length() - 1] = mask
-            chosen.append(cycle)
-
+    kept = _Independent()
     if len(edges) <= _CANDIDATE_LIMIT:
         # the loops first, each section's shortest loop without the datum (the smallest
         # closed loops, as the crew ran them), then the runs through the datum
         for blocked in (_DATUM, None):
             for cycle in _candidates(edges, adjacency, weights, blocked):
-                if len(chosen) == dimension:
+                if len(kept.chosen) == dimension:
                     break
-                take(cycle)
-    if not chosen:
+                kept.take(cycle)
+    if not kept.chosen:
         # each spanning-tree cycle holds its own non-tree section, so together they are
         # independent and complete: no elimination needed
         return _fundamental_cycles(edges, forest)[:dimension]
-    if len(chosen) < dimension:
+    if len(kept.chosen) < dimension:
         for cycle in _fundamental_cycles(edges, forest):
-            if len(chosen) == dimension:
+            if len(kept.chosen) == dimension:
                 break
-            take(cycle)
-    return chosen
+            kept.take(cycle)
+    return kept.chosen
+
+
+class _Independent:
+    """Cycles kept while each is independent of those before (GF(2) elimination: a cycle
+    is the bit mask of its sections, the sum of cycles their exclusive or)."""
+
+    def __init__(self) -> None:
+        self.basis: dict[int, int] = {}  # pivot bit → reduced mask
+        self.chosen: list[list[int]] = []
+        self.covered: set[int] = set()
+        self.pending: list[list[int]] = []  # chosen but not yet in the elimination
+
+    def _reduce(self, cycle: list[int]) -> int:
+        mask = 0
+        for k in cycle:
+            mask ^= 1 << k
+        while mask:
+            pivot = mask.bit_length() - 1
+            if pivot not in self.basis:
+                return mask
+            mask ^= self.basis[pivot]
+        return 0
+
+    def take(self, cycle: list[int]) -> None:
+        """Keep ``cycle`` if it is independent of the cycles kept so far."""
+        # a cycle with a section no chosen cycle has is independent of them all: the
+        # usual case, which spares the elimination until a cycle has only old sections
+        if not self.covered.issuperset(cycle):
+            self.covered.update(cycle)
+            self.chosen.append(cycle)
+            self.pending.append(cycle)
+            return
+        while self.pending:
+            mask = self._reduce(self.pending.pop())
+            self.basis[mask.bit_length() - 1] = mask
+        mask = self._reduce(cycle)
+        if mask:
+            self.basis[mask.bit_length() - 1] = mask
+            self.chosen.append(cycle)
 
 
 def _contracted_basis(
@@ -345,11 +353,12 @@ def _fundamental_cycles(edges: _Edges, forest: _Forest) -> list[list[int]]:
     parent, depth, _ = forest
     tree = {link[1] for link in parent.values() if link is not None}
     cycles = []
-    for k, (a, b) in enumerate(zip(edges.start, edges.end)):
+    for k, (start, end) in enumerate(zip(edges.start, edges.end)):
         if k in tree:
             continue
         cycle = [k]
         append = cycle.append
+        a, b = start, end
         depth_a, depth_b = depth[a], depth[b]
         while a != b:  # climb from the deeper end until both meet
             if depth_a < depth_b:
@@ -377,11 +386,12 @@ def _walk(
     node, marks, rise = start_mark, [start_mark], 0.0
     append = marks.append
     for _ in range(len(cycle)):
-        for position, k in at_mark.get(node, ()):
-            if not used[position]:
+        for entry in at_mark.get(node, ()):  # (position in the cycle, section)
+            if not used[entry[0]]:
                 break
         else:  # not a simple cycle through start; cannot happen for basis cycles
             raise RuntimeError("cycle walk lost its way")
+        position, k = entry
         used[position] = True
         if starts[k] == node:
             rise += rises[k]
