@@ -28,6 +28,8 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 from dataclasses import dataclass
+from functools import partial
+from itertools import pairwise
 
 from server.fieldbook.model import Fieldbook, Observation, TraverseTolerance
 from server.model.misclosures import Misclosure
@@ -172,7 +174,7 @@ def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
             if path is None:
                 continue
             found.append(_link(graph, path, oriented, tolerance))
-            used_legs.update(frozenset(leg) for leg in zip(path, path[1:]))
+            used_legs.update(frozenset(leg) for leg in pairwise(path))
             covered.update(path[1:-1])
     for start in sorted(graph.neighbours, key=lambda n: graph.order.get(n, 0)):
         if start in covered or start in graph.fixed:
@@ -181,18 +183,21 @@ def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
             if first in covered or frozenset((start, first)) in used_legs:
                 continue
             path = _search(
-                graph, [start, first],
-                lambda node, path: node == start and len(path) > 3
-                and graph.angle(path[-2], start, path[1]) is not None,
-                total,
+                graph, [start, first], partial(_closes_polygon, graph, start), total,
                 avoid=covered,
             )
             if path is not None:
                 found.append(_polygon(graph, path, tolerance))
-                used_legs.update(frozenset(leg) for leg in zip(path, path[1:]))
+                used_legs.update(frozenset(leg) for leg in pairwise(path))
                 covered.update(path)
                 break
     return tuple(found)
+
+
+def _closes_polygon(graph: _Graph, start: str, node: str, path: list[str]) -> bool:
+    """A polygon search ends back at its start, with an angle there between the last and
+    the first leg."""
+    return node == start and len(path) > 3 and graph.angle(path[-2], start, path[1]) is not None
 
 
 def _search(graph: _Graph, path: list[str], done: Callable[[str, list[str]], bool],
@@ -249,7 +254,7 @@ def _link(
 ) -> Misclosure:
     azimuth, start_angle = oriented
     turned = [graph.turned(path[i - 1], path[i], path[i + 1]) for i in range(1, len(path) - 1)]
-    legs = [_leg(graph, a, b) for a, b in zip(path, path[1:])]
+    legs = [_leg(graph, a, b) for a, b in pairwise(path)]
     stations = len(turned) + (1 if start_angle else 0)
     raw = _azimuths(azimuth, turned)
     angular = None
@@ -274,7 +279,7 @@ def _polygon(graph: _Graph, path: list[str], tol: TraverseTolerance) -> Misclosu
     total = sum(turned)
     # interior and exterior sums differ by 4·180°, so the nearest wraps to one of them
     angular = wrap_pi(total - (n - 2) * math.pi)
-    legs = [_leg(graph, a, b) for a, b in zip(path, path[1:])]
+    legs = [_leg(graph, a, b) for a, b in pairwise(path)]
     start = graph.fixed.get(path[0], (0.0, 0.0))
     both_fixed = path[0] in graph.fixed and path[1] in graph.fixed
     first = graph.bearing(path[0], path[1]) if both_fixed else 0.0  # else assumed
