@@ -313,9 +313,9 @@ def _dense_textbook(network, solution, iterations: int) -> float:
     import scipy.linalg
     from threadpoolctl import threadpool_limits
 
-    from server.engine import gauss_newton as engine
+    from server.engine.state import State
 
-    state = engine._State(network, solution.coordinates)
+    state = State(network, solution.coordinates)
     assembly = state.assembly(state.column)
     evaluation = assembly.evaluate(*state.arrays())
     design = assembly.design_matrix(evaluation.slot_val, len(network.parameters))

@@ -16,16 +16,15 @@ import math
 import numpy as np
 import pytest
 
-from server.engine import gauss_newton as engine
-from server.engine import kernels
 from server.engine import backends as sparse
-from server.engine import diagnosis
-from server.model.assembly import Assembly, ControlEquation
+from server.engine import diagnosis, kernels
+from server.engine import gauss_newton as engine
 from server.errors import NetworkError
 from server.fieldbook.parser import parse_fieldbook
-from server.results.json_text import dumps_indented
+from server.model.assembly import Assembly, ControlEquation
 from server.model.network import build_network
 from server.pipeline import adjust_fieldbook
+from server.results.json_text import dumps_indented
 from server.results.result import build_result
 from tests.synthetic import grid_network
 

@@ -104,9 +104,13 @@ def _reference(model, observed, covariance, x0):
 
 # ------------------------------------------------------------------ network 1: vector blocks
 
+#: True positions (east, north, height) in metres; A and B are held, P, Q and R adjusted.
 TRUTH = {
-    "A": (1000.0, 2000.0, 50.0), "B": (1800.0, 2100.0, 62.0),  # held
-    "P": (1300.0, 2600.0, 55.0), "Q": (1700.0, 2700.0, 71.0), "R": (1500.0, 2300.0, 48.0),
+    "A": (1000.0, 2000.0, 50.0),
+    "B": (1800.0, 2100.0, 62.0),
+    "P": (1300.0, 2600.0, 55.0),
+    "Q": (1700.0, 2700.0, 71.0),
+    "R": (1500.0, 2300.0, 48.0),
 }
 FREE = ("P", "Q", "R")
 VECTORS = [("A", "P"), ("B", "P"), ("P", "Q"), ("A", "Q"), ("Q", "R"), ("B", "R"), ("R", "P")]
@@ -120,8 +124,18 @@ def _vector_network(rng: np.random.Generator):
         true = np.subtract(TRUTH[b], TRUTH[a])
         value = true + np.linalg.cholesky(c) @ rng.normal(size=3)
         vector = BaselineVector(tuple(value), (0.004,) * 3, covariance=tuple(map(tuple, c)))
-        used.append(Observation(line, "vector", a, None, b, float(np.linalg.norm(value)),
-                                Quantity(0.004), baseline=vector))
+        used.append(
+            Observation(
+                line,
+                "vector",
+                a,
+                None,
+                b,
+                float(np.linalg.norm(value)),
+                Quantity(0.004),
+                baseline=vector,
+            )
+        )
         blocks.append(c)
         observed += list(value)
     level = TRUTH["Q"][2] - TRUTH["B"][2] + rng.normal(0, 0.002)
@@ -130,11 +144,20 @@ def _vector_network(rng: np.random.Generator):
     used.append(Observation(21, "distance", "P", None, "R", distance, Quantity(0.003)))
     observed += [level, distance]
     covariance = scipy.linalg.block_diag(*blocks, 0.002**2, 0.003**2)
-    start = {n: np.add(TRUTH[n], rng.uniform(-0.3, 0.3, 3)) if n in FREE else TRUTH[n]
-             for n in TRUTH}
+    start = {
+        n: np.add(TRUTH[n], rng.uniform(-0.3, 0.3, 3)) if n in FREE else TRUTH[n] for n in TRUTH
+    }
     points = tuple(
-        NetworkPoint(n, *map(float, start[n]), fixed="" if n in FREE else "enh",
-                     weighted="", sd_en=None, sd_h=None, line=None, in_use=True)
+        NetworkPoint(
+            n,
+            *map(float, start[n]),
+            fixed="" if n in FREE else "enh",
+            weighted="",
+            sd_en=None,
+            sd_h=None,
+            line=None,
+            in_use=True,
+        )
         for n in TRUTH
     )
     parameters = tuple(Parameter(c, n) for n in FREE for c in "ENH")
@@ -146,7 +169,7 @@ def _vector_model(x: np.ndarray) -> np.ndarray:
     """The same observations computed from x = (E, N, H) of P, Q, R, written out here."""
     xyz = dict(TRUTH)
     for k, n in enumerate(FREE):
-        xyz[n] = tuple(x[3 * k: 3 * k + 3])
+        xyz[n] = tuple(x[3 * k : 3 * k + 3])
     out = [np.subtract(xyz[b], xyz[a]) for a, b in VECTORS]
     out.append([xyz["Q"][2] - xyz["B"][2]])
     out.append([math.hypot(xyz["R"][0] - xyz["P"][0], xyz["R"][1] - xyz["P"][1])])
@@ -173,8 +196,9 @@ def test_vector_blocks_give_the_full_weight_matrix_solution(method, backend):
     x0 = np.concatenate([start[n] for n in FREE])
     expected, fitted, vpv = _reference(_vector_model, observed, covariance, x0)
     kinds = {**KINDS, "vector": VECTOR}
-    solution = engine.adjust(network, method=method, factorization=backend, kinds=kinds,
-                             tolerance=1e-10)
+    solution = engine.adjust(
+        network, method=method, factorization=backend, kinds=kinds, tolerance=1e-10
+    )
     _check(solution, FREE, expected, fitted, vpv, observed.size)
     # the observations' own residuals: adjusted − observed (computed before whitening)
     v = np.asarray(solution.adjusted)[: observed.size] - observed
@@ -191,21 +215,39 @@ point P east=1200.4 north=1700.2
 point Q east=1750.1 north=1600.3
 point R east=1450.2 north=1350.1
 """
-PAIRS = [("A", "P"), ("A", "R"), ("B", "Q"), ("B", "R"), ("P", "Q"), ("P", "R"), ("Q", "R"),
-         ("A", "Q")]
+PAIRS = [
+    ("A", "P"),
+    ("A", "R"),
+    ("B", "Q"),
+    ("B", "R"),
+    ("P", "Q"),
+    ("P", "R"),
+    ("Q", "R"),
+    ("A", "Q"),
+]
 CORRELATED_ROWS = (1, 4, 6)  # three distances correlated (say, one EDM calibration)
 
 
 def _true2d():
-    return {"A": (1000.0, 1000.0), "B": (1900.0, 1150.0), "P": (1200.0, 1700.0),
-            "Q": (1750.0, 1600.0), "R": (1450.0, 1350.0)}
+    return {
+        "A": (1000.0, 1000.0),
+        "B": (1900.0, 1150.0),
+        "P": (1200.0, 1700.0),
+        "Q": (1750.0, 1600.0),
+        "R": (1450.0, 1350.0),
+    }
 
 
 def _covariance(network) -> np.ndarray:
     """σ = √(a² + (b·D·10⁻⁶)²) for a distance, a for an azimuth; three rows correlated."""
-    sigmas = np.array([o.sigma.constant if o.kind == "azimuth"
-                       else math.hypot(o.sigma.constant, o.sigma.ppm * 1e-6 * o.value)
-                       for o in network.used])
+    sigmas = np.array(
+        [
+            o.sigma.constant
+            if o.kind == "azimuth"
+            else math.hypot(o.sigma.constant, o.sigma.ppm * 1e-6 * o.value)
+            for o in network.used
+        ]
+    )
     covariance = np.diag(sigmas**2)
     rows = list(CORRELATED_ROWS)
     correlation = np.array([[1.0, 0.6, -0.3], [0.6, 1.0, 0.4], [-0.3, 0.4, 1.0]])
@@ -223,14 +265,25 @@ def _book_network(rng: np.random.Generator):
     for a, b in (("A", "P"), ("B", "Q")):
         t = math.atan2(truth[b][0] - truth[a][0], truth[b][1] - truth[a][1]) % (2 * math.pi)
         values.append(("azimuth", a, b, t))
-    network0 = build_network(parse_fieldbook(BOOK + "".join(
-        f"{k} {a} {b} {v:.6f}\n" if k == "distance" else f"{k} {a} {b} {math.degrees(v):.9f}deg\n"
-        for k, a, b, v in values)))
+    network0 = build_network(
+        parse_fieldbook(
+            BOOK
+            + "".join(
+                f"{k} {a} {b} {v:.6f}\n"
+                if k == "distance"
+                else f"{k} {a} {b} {math.degrees(v):.9f}deg\n"
+                for k, a, b, v in values
+            )
+        )
+    )
     noise = np.linalg.cholesky(_covariance(network0)) @ rng.normal(size=len(values))
     noisy = [(k, a, b, v + e) for (k, a, b, v), e in zip(values, noise)]
     for k, a, b, v in noisy:
-        lines.append(f"distance {a} {b} {v:.9f}\n" if k == "distance"
-                     else f"azimuth {a} {b} {math.degrees(v):.12f}deg\n")
+        lines.append(
+            f"distance {a} {b} {v:.9f}\n"
+            if k == "distance"
+            else f"azimuth {a} {b} {math.degrees(v):.12f}deg\n"
+        )
     network = build_network(parse_fieldbook("".join(lines)))
     observed = np.array([o.value for o in network.used])
     covariance = _covariance(network)  # σ of a distance depends on its (noisy) value
@@ -259,10 +312,10 @@ def test_a_given_block_gives_the_full_weight_matrix_solution(method, backend):
     rng = np.random.default_rng(11)
     network, observed, covariance, block = _book_network(rng)
     x0 = np.array([1200.4, 1700.2, 1750.1, 1600.3, 1450.2, 1350.1])
-    expected, fitted, vpv = _reference(lambda x: _book_model(x, network), observed, covariance,
-                                       x0)
-    solution = engine.adjust(network, method=method, factorization=backend, correlated=[block],
-                             tolerance=1e-10)
+    expected, fitted, vpv = _reference(lambda x: _book_model(x, network), observed, covariance, x0)
+    solution = engine.adjust(
+        network, method=method, factorization=backend, correlated=[block], tolerance=1e-10
+    )
     _check(solution, ("P", "Q", "R"), expected, fitted, vpv, observed.size)
 
 
@@ -275,17 +328,41 @@ def test_without_blocks_nothing_is_whitened():
     plain = engine.adjust(network, method="dense", tolerance=1e-10)
     blocked = engine.adjust(network, method="dense", correlated=[diagonal], tolerance=1e-10)
     for name in ("P", "Q", "R"):
-        np.testing.assert_allclose(blocked.coordinates[name], plain.coordinates[name],
-                                   rtol=1e-12)
-    np.testing.assert_allclose(blocked.adjusted_cofactor / blocked.sigmas**2,
-                               plain.adjusted_cofactor / plain.sigmas**2, atol=1e-12)
+        np.testing.assert_allclose(blocked.coordinates[name], plain.coordinates[name], rtol=1e-12)
+    np.testing.assert_allclose(
+        blocked.adjusted_cofactor / blocked.sigmas**2,
+        plain.adjusted_cofactor / plain.sigmas**2,
+        atol=1e-12,
+    )
 
 
 def test_a_bad_block_is_refused_with_its_number():
     network, _, _, _ = _book_network(np.random.default_rng(1))
     with pytest.raises(ValueError, match="block 1: the covariance is not positive definite"):
-        engine.adjust(network, correlated=[CorrelatedBlock((0, 1), np.array([[1.0, 2.0],
-                                                                            [2.0, 1.0]]))])
+        engine.adjust(
+            network, correlated=[CorrelatedBlock((0, 1), np.array([[1.0, 2.0], [2.0, 1.0]]))]
+        )
     with pytest.raises(ValueError, match="block 2: needs k distinct rows"):
-        engine.adjust(network, correlated=[CorrelatedBlock((0,), np.eye(1)),
-                                           CorrelatedBlock((1, 1), np.eye(2))])
+        engine.adjust(
+            network,
+            correlated=[CorrelatedBlock((0,), np.eye(1)), CorrelatedBlock((1, 1), np.eye(2))],
+        )
+
+
+def test_unwhitened_misclosures_are_the_observations_own():
+    """L·(L⁻¹·l) gives back l = observed − computed for every row, whitened or not."""
+    from server.engine.state import State
+
+    network, observed, covariance, start = _vector_network(np.random.default_rng(2))
+    state = State(
+        network, {n: tuple(map(float, start[n])) for n in start}, {**KINDS, "vector": VECTOR}
+    )
+    evaluation = state.assembly(state.column).evaluate(*state.arrays())
+    raw = observed - _vector_model(np.concatenate([start[n] for n in FREE]))
+    whitened = scipy.linalg.solve_triangular(np.linalg.cholesky(covariance), raw, lower=True)
+    blocks = 3 * len(VECTORS)  # the level and distance rows stay as they are, with their σ
+    np.testing.assert_allclose(evaluation.misclosure[:blocks], whitened[:blocks], rtol=1e-9)
+    np.testing.assert_allclose(evaluation.misclosure[blocks:], raw[blocks:], rtol=1e-12)
+    assert np.all(evaluation.sigmas[:blocks] == 1.0) and np.all(evaluation.sigmas[blocks:] > 1e-3)
+    np.testing.assert_allclose(evaluation.unwhiten(evaluation.misclosure), raw, atol=1e-12)
+    np.testing.assert_allclose(evaluation.computed, observed - raw, atol=1e-9)

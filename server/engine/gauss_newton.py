@@ -76,8 +76,6 @@ IMPLAUSIBLE_CORRECTION = 1e4
 #: or "statistics"; the pipeline adds "parse", "network" and "result".
 ProgressCallback = Callable[[str, int], None]
 
-_State = State  # the name the benchmark uses
-
 __all__ = ["ControlRow", "DenseCofactor", "Solution", "adjust"]
 
 
@@ -87,8 +85,12 @@ class Solution:
 
     Rows of ``sigmas``, ``residuals``, ``adjusted`` and
     ``adjusted_cofactor`` are the used field observations in
-    ``network.used`` order, followed by ``control`` rows.  Unknowns are
-    numbered as ``network.parameters``.
+    ``network.used`` order (``components`` rows each), followed by
+    ``control`` rows.  Unknowns are numbered as ``network.parameters``.
+    Rows of correlated blocks are whitened (``model/whitening.py``): their
+    residuals, σ (= 1) and cofactors are the decorrelated observations', so
+    Σ(v/σ)² is vᵀPv and r = 1 − cofactor/σ² sum to the redundancy; ``adjusted``
+    is always the observations' own computed values.
     """
 
     network: Network

@@ -128,8 +128,7 @@ def _with_given_heights(fieldbook: Fieldbook, crs: Crs, und: Mapping[str, float]
     lat, lon, _ = crs.ecef_to_geodetic(np.array([start[n] for n in names], dtype=float))
     h = np.array([height + und.get(name, 0.0) for name, height in booked])
     xyz = np.asarray(crs.geodetic_to_ecef(lat, lon, h)).reshape(-1, 3)
-    for name, (x, y, z) in zip(names, xyz.tolist()):
-        start[name] = (x, y, z)
+    start.update({name: (x, y, z) for name, (x, y, z) in zip(names, xyz.tolist())})
     return start
 
 

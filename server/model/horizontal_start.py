@@ -67,7 +67,8 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
         _Propagator(tables, known).run()
     missing = sorted(needed - set(known))
     if missing:
-        shown = ", ".join(missing[:12]) + (f" and {len(missing) - 12} more" if len(missing) > 12 else "")
+        more = f" and {len(missing) - 12} more" if len(missing) > 12 else ""
+        shown = ", ".join(missing[:12]) + more
         raise NetworkError(
             "no approximate position can be computed for these points from the observations "
             f"(each needs a polar tie, an intersection, a resection or two distances from "
@@ -85,7 +86,9 @@ def _seed(used: list[Observation], known: set[str]) -> tuple[str, str]:
         for o in used
         if o.kind in ("direction", "angle", "distance")
     ]
-    links.sort(key=lambda link: (frozenset(link) not in measured, link[0] in known and link[1] in known))
+    links.sort(
+        key=lambda link: (frozenset(link) not in measured, link[0] in known and link[1] in known)
+    )
     return links[0]
 
 
@@ -114,7 +117,8 @@ def _names(o: Observation) -> tuple[str, ...]:
 
 
 class _Tables:
-    """The observations sorted for propagation: distances by pair, rounds, angles, azimuths, links."""
+    """The observations sorted for propagation: distances by pair, rounds, angles, azimuths,
+    links."""
 
     def __init__(self, used: list[Observation]) -> None:
         self.distances: dict[frozenset[str], list[float]] = defaultdict(list)
@@ -309,7 +313,9 @@ class _Propagator:
                 e, n = self.known[i]
                 return min(
                     candidates,
-                    key=lambda p: abs(math.remainder(math.atan2(p[0] - e, p[1] - n) - azimuth, 2 * math.pi)),
+                    key=lambda p: abs(
+                        math.remainder(math.atan2(p[0] - e, p[1] - n) - azimuth, 2 * math.pi)
+                    ),
                 )
         return None
 
@@ -335,7 +341,10 @@ def _circle_cut(pa: Position, ra: float, pb: Position, rb: float) -> list[Positi
     across = math.sqrt(max(ra * ra - along * along, 0.0))
     ue, un = (pb[0] - pa[0]) / d, (pb[1] - pa[1]) / d
     base = (pa[0] + along * ue, pa[1] + along * un)
-    return [(base[0] - across * un, base[1] + across * ue), (base[0] + across * un, base[1] - across * ue)]
+    return [
+        (base[0] - across * un, base[1] + across * ue),
+        (base[0] + across * un, base[1] - across * ue),
+    ]
 
 
 def _resect(targets: list[tuple[Position, float]]) -> Position | None:
@@ -345,7 +354,8 @@ def _resect(targets: list[tuple[Position, float]]) -> Position | None:
     centre = points.mean(axis=0)
     spread = float(np.max(np.linalg.norm(points - centre, axis=1))) or 1.0
     starts = [centre] + [
-        centre + 1.5 * spread * np.array([math.sin(a), math.cos(a)]) for a in np.arange(8) * math.pi / 4
+        centre + 1.5 * spread * np.array([math.sin(a), math.cos(a)])
+        for a in np.arange(8) * math.pi / 4
     ]
     best: tuple[float, Position] | None = None
     for start in starts:
@@ -360,7 +370,8 @@ def _resect(targets: list[tuple[Position, float]]) -> Position | None:
             s2 = d_e**2 + d_n**2
             if np.any(s2 < 1e-12):
                 break
-            misfit = np.remainder(directions + x[2] - np.arctan2(d_e, d_n) + np.pi, 2 * np.pi) - np.pi
+            turned = directions + x[2] - np.arctan2(d_e, d_n)
+            misfit = np.remainder(turned + np.pi, 2 * np.pi) - np.pi
             jac = np.column_stack([d_n / s2, -d_e / s2, np.ones(len(s2))])
             step, *_ = np.linalg.lstsq(jac, -misfit, rcond=None)
             x += step

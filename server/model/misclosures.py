@@ -135,8 +135,38 @@ def _first_appearance(fieldbook: Fieldbook) -> dict[str, int]:
     return order
 
 
-class _Elimination:
-    """Cycles chosen so far and the GF(2) elimination that tells a new one's independence."""
+def _cycle_basis(
+    edges: _Edges, adjacency: dict[str, list[tuple[int, str]]], weights: list[float]
+) -> list[list[int]]:
+    """Independent simple cycles, each as the list of its edge indices."""
+    forest = _spanning_forest(adjacency)
+    dimension = len(edges) - len(adjacency) + forest[2]
+    if dimension <= 0:
+        return []
+    kept = _Independent()
+    if len(edges) <= _CANDIDATE_LIMIT:
+        # the loops first, each section's shortest loop without the datum (the smallest
+        # closed loops, as the crew ran them), then the runs through the datum
+        for blocked in (_DATUM, None):
+            for cycle in _candidates(edges, adjacency, weights, blocked):
+                if len(kept.chosen) == dimension:
+                    break
+                kept.take(cycle)
+    if not kept.chosen:
+        # each spanning-tree cycle holds its own non-tree section, so together they are
+        # independent and complete: no elimination needed
+        return _fundamental_cycles(edges, forest)[:dimension]
+    if len(kept.chosen) < dimension:
+        for cycle in _fundamental_cycles(edges, forest):
+            if len(kept.chosen) == dimension:
+                break
+            kept.take(cycle)
+    return kept.chosen
+
+
+class _Independent:
+    """Cycles kept while each is independent of those before (GF(2) elimination: a cycle
+    is the bit mask of its sections, the sum of cycles their exclusive or)."""
 
     def __init__(self) -> None:
         self.basis: dict[int, int] = {}  # pivot bit → reduced mask
@@ -144,7 +174,7 @@ class _Elimination:
         self.covered: set[int] = set()
         self.pending: list[list[int]] = []  # chosen but not yet in the elimination
 
-    def reduce(self, cycle: list[int]) -> int:
+    def _reduce(self, cycle: list[int]) -> int:
         mask = 0
         for k in cycle:
             mask ^= 1 << k
@@ -156,7 +186,7 @@ class _Elimination:
         return 0
 
     def take(self, cycle: list[int]) -> None:
-        """Keep ``cycle`` if it is independent of the chosen ones."""
+        """Keep ``cycle`` if it is independent of the cycles kept so far."""
         # a cycle with a section no chosen cycle has is independent of them all: the
         # usual case, which spares the elimination until a cycle has only old sections
         if not self.covered.issuperset(cycle):
@@ -165,42 +195,12 @@ class _Elimination:
             self.pending.append(cycle)
             return
         while self.pending:
-            mask = self.reduce(self.pending.pop())
+            mask = self._reduce(self.pending.pop())
             self.basis[mask.bit_length() - 1] = mask
-        mask = self.reduce(cycle)
+        mask = self._reduce(cycle)
         if mask:
             self.basis[mask.bit_length() - 1] = mask
             self.chosen.append(cycle)
-
-
-def _cycle_basis(
-    edges: _Edges, adjacency: dict[str, list[tuple[int, str]]], weights: list[float]
-) -> list[list[int]]:
-    """Independent simple cycles, each as the list of its edge indices."""
-    forest = _spanning_forest(adjacency)
-    dimension = len(edges) - len(adjacency) + forest[2]
-    if dimension <= 0:
-        return []
-    basis = _Elimination()
-    chosen, take = basis.chosen, basis.take
-    if len(edges) <= _CANDIDATE_LIMIT:
-        # the loops first, each section's shortest loop without the datum (the smallest
-        # closed loops, as the crew ran them), then the runs through the datum
-        for blocked in (_DATUM, None):
-            for cycle in _candidates(edges, adjacency, weights, blocked):
-                if len(chosen) == dimension:
-                    break
-                take(cycle)
-    if not chosen:
-        # each spanning-tree cycle holds its own non-tree section, so together they are
-        # independent and complete: no elimination needed
-        return _fundamental_cycles(edges, forest)[:dimension]
-    if len(chosen) < dimension:
-        for cycle in _fundamental_cycles(edges, forest):
-            if len(chosen) == dimension:
-                break
-            take(cycle)
-    return chosen
 
 
 def _contracted_basis(
@@ -386,10 +386,12 @@ def _walk(
     node, marks, rise = start_mark, [start_mark], 0.0
     append = marks.append
     for _ in range(len(cycle)):
-        found = next(((at, edge) for at, edge in at_mark.get(node, ()) if not used[at]), None)
-        if found is None:  # not a simple cycle through start; cannot happen for basis cycles
+        for entry in at_mark.get(node, ()):  # (position in the cycle, section)
+            if not used[entry[0]]:
+                break
+        else:  # not a simple cycle through start; cannot happen for basis cycles
             raise RuntimeError("cycle walk lost its way")
-        position, k = found
+        position, k = entry
         used[position] = True
         if starts[k] == node:
             rise += rises[k]

@@ -142,7 +142,9 @@ def build_network(fieldbook: Fieldbook) -> Network:
     )
 
 
-def _collect_points(fieldbook: Fieldbook, used: tuple[Observation, ...]) -> tuple[NetworkPoint, ...]:
+def _collect_points(
+    fieldbook: Fieldbook, used: tuple[Observation, ...]
+) -> tuple[NetworkPoint, ...]:
     """Every point in order of first appearance (declared or observed)."""
     declared: dict[str, PointStatement] = {p.name: p for p in fieldbook.points}
     ordered = _first_appearance(fieldbook)
@@ -204,7 +206,8 @@ def _first_appearance(fieldbook: Fieldbook) -> dict[str, None]:
     point_lines = [p.line for p in points]
     obs_lines = [o.line for o in observations]
     ordered: dict[str, None] = {}
-    if _increasing(point_lines) and _increasing(obs_lines) and not set(point_lines) & set(obs_lines):
+    ordered_lines = _increasing(point_lines) and _increasing(obs_lines)
+    if ordered_lines and not set(point_lines) & set(obs_lines):
         i, count = 0, len(points)
         for obs, line in zip(observations, obs_lines):
             while i < count and point_lines[i] < line:
@@ -326,7 +329,9 @@ def _graph(used: tuple[Observation, ...], kinds: frozenset[str]) -> dict[str, se
     return graph
 
 
-def _check_height_datum(points: tuple[NetworkPoint, ...], used: tuple[Observation, ...]) -> list[str]:
+def _check_height_datum(
+    points: tuple[NetworkPoint, ...], used: tuple[Observation, ...]
+) -> list[str]:
     """Every part of the leveling needs a fixed or weighted height; else name its points."""
     parts = connected_parts(_graph(used, frozenset({"level"})))
     controlled = {p.name for p in points if "h" in p.fixed or "h" in p.weighted}

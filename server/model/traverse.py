@@ -26,9 +26,10 @@ averaged.  Nothing here is adjusted by least squares.
 from __future__ import annotations
 
 import math
-from itertools import pairwise
 from collections.abc import Callable
 from dataclasses import dataclass
+from functools import partial
+from itertools import pairwise
 
 from server.fieldbook.model import Fieldbook, Observation, TraverseTolerance
 from server.model.misclosures import Misclosure
@@ -182,10 +183,7 @@ def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
             if first in covered or frozenset((start, first)) in used_legs:
                 continue
             path = _search(
-                graph, [start, first],
-                lambda node, path, start=start: node == start and len(path) > 3
-                and graph.angle(path[-2], start, path[1]) is not None,
-                total,
+                graph, [start, first], partial(_closes_polygon, graph, start), total,
                 avoid=covered,
             )
             if path is not None:
@@ -194,6 +192,12 @@ def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
                 covered.update(path)
                 break
     return tuple(found)
+
+
+def _closes_polygon(graph: _Graph, start: str, node: str, path: list[str]) -> bool:
+    """A polygon search ends back at its start, with an angle there between the last and
+    the first leg."""
+    return node == start and len(path) > 3 and graph.angle(path[-2], start, path[1]) is not None
 
 
 def _search(graph: _Graph, path: list[str], done: Callable[[str, list[str]], bool],
