@@ -39,17 +39,26 @@ class GeodeticState(State):
         frame = self.frame
         undulation = self.undulation
 
-        def control(xyz: np.ndarray, point: np.ndarray, component: np.ndarray
-                    ) -> tuple[np.ndarray, np.ndarray]:
+        def control(
+            xyz: np.ndarray, point: np.ndarray, component: np.ndarray
+        ) -> tuple[np.ndarray, np.ndarray]:
             values, jac = ge.control(frame.crs, xyz, undulation[point])
             rows = np.arange(len(point))
             return values[rows, component], jac[rows, component, :]
 
         model = GeodeticRows(self.kinds, frame.undulation, control)
         return Assembly(
-            self.network.used, self.point_index, self.round_index,
-            columns["E"], columns["N"], columns["H"], columns["O"], self.control,
-            self.kinds, self.correlated, model,
+            self.network.used,
+            self.point_index,
+            self.round_index,
+            columns["E"],
+            columns["N"],
+            columns["H"],
+            columns["O"],
+            self.control,
+            self.kinds,
+            self.correlated,
+            model,
         )
 
     def apply(self, correction: np.ndarray) -> None:
@@ -68,8 +77,9 @@ class GeodeticState(State):
         self.orientation[self.target[rounds]] += correction[rounds]
 
     def positions(self) -> dict[str, tuple[float, float, float]]:
-        return dict(zip(self.names, zip(self.east.tolist(), self.north.tolist(),
-                                        self.height.tolist())))
+        return dict(
+            zip(self.names, zip(self.east.tolist(), self.north.tolist(), self.height.tolist()))
+        )
 
     def coordinates(self) -> dict[str, tuple[float, float, float]]:
         """Grid east, north (metres) and orthometric height of each point; east and north
@@ -89,8 +99,12 @@ class GeodeticState(State):
     def _start_orientations(self) -> np.ndarray:
         """Each round's orientation: circular mean of (horizon azimuth − direction)."""
         rows = [
-            (self.round_index[o.round_line], self.point_index[o.from_point],
-             self.point_index[o.to], o.value)
+            (
+                self.round_index[o.round_line],
+                self.point_index[o.from_point],
+                self.point_index[o.to],
+                o.value,
+            )
             for o in self.network.used
             if o.kind == "direction" and o.round_line in self.round_index
         ]

@@ -211,8 +211,9 @@ class Assembly:
         """The rows of one kind, their batch and the columns of their partials."""
         members = np.array(members_list, np.int64)
         undulation = None if self.model is None else self.model.undulation
-        batch = batch_of(kind, [used[k] for k in members_list], point_index, round_index,
-                         undulation)
+        batch = batch_of(
+            kind, [used[k] for k in members_list], point_index, round_index, undulation
+        )
         cols = np.stack(
             [columns[unknown][batch.role(role)] for role, unknown in kind.columns], axis=1
         )

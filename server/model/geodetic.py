@@ -65,11 +65,18 @@ def resolve_crs(fieldbook: Fieldbook) -> Crs | None:
         assert line.latitude is not None and line.longitude is not None
         unit = fieldbook.length_unit
         per_unit = LENGTH_FACTORS[unit]
-        return local_crs(line.latitude, line.longitude, line.false_east / per_unit,
-                         line.false_north / per_unit, unit=unit, definition=line.text)
+        return local_crs(
+            line.latitude,
+            line.longitude,
+            line.false_east / per_unit,
+            line.false_north / per_unit,
+            unit=unit,
+            definition=line.text,
+        )
     except CrsError as exc:
-        raise FieldbookError([Issue(line.line, line.text, str(exc))],
-                             source=fieldbook.source) from None
+        raise FieldbookError(
+            [Issue(line.line, line.text, str(exc))], source=fieldbook.source
+        ) from None
 
 
 def undulations(fieldbook: Fieldbook) -> dict[str, float]:
@@ -90,15 +97,22 @@ def geodetic_frame(fieldbook: Fieldbook) -> GeodeticFrame:
     """
     crs = resolve_crs(fieldbook)
     if crs is None:  # the parser refuses 3D lines without a crs line; kept for library callers
-        raise NetworkError("the geodetic 3D model needs a crs line (crs EPSG:CODE, or crs local "
-                           "lat=LAT lon=LON)")
+        raise NetworkError(
+            "the geodetic 3D model needs a crs line (crs EPSG:CODE, or crs local lat=LAT lon=LON)"
+        )
     und = undulations(fieldbook)
     known, heights = _given_points(fieldbook.points, crs, und)
     known += _height_only(fieldbook, crs, known)
     observations = _start_observations(fieldbook, crs, known)
     try:
-        found = start3d.start_positions(known, observations, heights=heights, undulations=und,
-                                        a=crs.ellipsoid.a, f=crs.ellipsoid.f)
+        found = start3d.start_positions(
+            known,
+            observations,
+            heights=heights,
+            undulations=und,
+            a=crs.ellipsoid.a,
+            f=crs.ellipsoid.f,
+        )
     except start3d.UnreachablePointsError as exc:
         raise NetworkError(
             f"no start position can be computed for {_listed(exc.points)}: no baseline, polar "
@@ -109,19 +123,27 @@ def geodetic_frame(fieldbook: Fieldbook) -> GeodeticFrame:
         ) from None
     start = _with_given_heights(fieldbook, crs, und, dict(found.positions))
     geoid_given = fieldbook.geoid_undulation is not None or any(
-        p.geoid is not None for p in fieldbook.points)
-    return GeodeticFrame(crs=crs, crs_text=fieldbook.crs.text if fieldbook.crs else "",
-                         refraction=fieldbook.refraction, undulation=und,
-                         geoid_given=geoid_given, start=start,
-                         methods=dict(found.methods))
+        p.geoid is not None for p in fieldbook.points
+    )
+    return GeodeticFrame(
+        crs=crs,
+        crs_text=fieldbook.crs.text if fieldbook.crs else "",
+        refraction=fieldbook.refraction,
+        undulation=und,
+        geoid_given=geoid_given,
+        start=start,
+        methods=dict(found.methods),
+    )
 
 
-def _with_given_heights(fieldbook: Fieldbook, crs: Crs, und: Mapping[str, float],
-                        start: dict[str, XYZ]) -> dict[str, XYZ]:
+def _with_given_heights(
+    fieldbook: Fieldbook, crs: Crs, und: Mapping[str, float], start: dict[str, XYZ]
+) -> dict[str, XYZ]:
     """Start positions at the booked heights: a benchmark placed by sights keeps its latitude
     and longitude from them but its height from the book (held, it must be exactly that)."""
-    booked = [(p.name, p.height) for p in fieldbook.points
-              if p.height is not None and p.name in start]
+    booked = [
+        (p.name, p.height) for p in fieldbook.points if p.height is not None and p.name in start
+    ]
     if not booked:
         return start
     names = [name for name, _ in booked]
@@ -135,14 +157,16 @@ def _with_given_heights(fieldbook: Fieldbook, crs: Crs, und: Mapping[str, float]
 def grid_to_ecef(crs: Crs, east_m: float, north_m: float, h: float) -> XYZ:
     """Earth-centred position of a point given by grid east/north in metres and height h."""
     per_unit = crs.metres_per_unit
-    xyz = crs.grid_to_ecef(np.array([east_m / per_unit]), np.array([north_m / per_unit]),
-                           np.array([h]))
+    xyz = crs.grid_to_ecef(
+        np.array([east_m / per_unit]), np.array([north_m / per_unit]), np.array([h])
+    )
     x, y, z = (float(c) for c in np.asarray(xyz).reshape(3))
     return x, y, z
 
 
-def _given_points(points: Sequence[PointStatement], crs: Crs, und: Mapping[str, float]
-                  ) -> tuple[list[start3d.KnownPoint], list[start3d.KnownHeight]]:
+def _given_points(
+    points: Sequence[PointStatement], crs: Crs, und: Mapping[str, float]
+) -> tuple[list[start3d.KnownPoint], list[start3d.KnownHeight]]:
     """Points with a given position (grid or lat/lon) and benchmarks with a height only."""
     known: list[start3d.KnownPoint] = []
     heights: list[start3d.KnownHeight] = []
@@ -152,8 +176,9 @@ def _given_points(points: Sequence[PointStatement], crs: Crs, und: Mapping[str, 
         h = (p.height if p.height is not None else 0.0) + n
         control = bool(p.fixed or p.weighted)
         if p.latitude is not None and p.longitude is not None:
-            xyz = crs.geodetic_to_ecef(np.array([p.latitude]), np.array([p.longitude]),
-                                       np.array([h]))
+            xyz = crs.geodetic_to_ecef(
+                np.array([p.latitude]), np.array([p.longitude]), np.array([h])
+            )
             position = tuple(float(c) for c in np.asarray(xyz).reshape(3))
         elif p.east is not None and p.north is not None:
             position = grid_to_ecef(crs, p.east, p.north, h)
@@ -164,9 +189,17 @@ def _given_points(points: Sequence[PointStatement], crs: Crs, und: Mapping[str, 
         if not all(math.isfinite(c) for c in position):
             raise NetworkError(
                 f"point {p.name} (line {p.line}) lies where the CRS {crs.definition} cannot "
-                "place it on its ellipsoid; check its coordinates and the crs line", (p.name,))
-        known.append(start3d.KnownPoint(p.name, position, control=control,  # type: ignore[arg-type]
-                                        height_known=has_height))
+                "place it on its ellipsoid; check its coordinates and the crs line",
+                (p.name,),
+            )
+        known.append(
+            start3d.KnownPoint(
+                p.name,
+                position,
+                control=control,  # type: ignore[arg-type]
+                height_known=has_height,
+            )
+        )
     return known, heights
 
 
@@ -180,13 +213,17 @@ def height_only_points(fieldbook: Fieldbook) -> set[str]:
             continue
         names = leveled if obs.kind == "level" else spatial
         names.update(n for n in (obs.from_point, obs.at, obs.to) if n)
-    placed = {p.name for p in fieldbook.points
-              if p.latitude is not None or (p.east is not None and p.north is not None)}
+    placed = {
+        p.name
+        for p in fieldbook.points
+        if p.latitude is not None or (p.east is not None and p.north is not None)
+    }
     return leveled - spatial - placed
 
 
-def _height_only(fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.KnownPoint]
-                 ) -> list[start3d.KnownPoint]:
+def _height_only(
+    fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.KnownPoint]
+) -> list[start3d.KnownPoint]:
     """Height-only points placed at a reference position (the first given point, else the
     CRS's origin or the centre of its area of use); only their heights are estimated."""
     names = sorted(height_only_points(fieldbook))
@@ -196,8 +233,9 @@ def _height_only(fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.KnownPo
         reference = np.array(known[0].xyz, dtype=float)
     else:
         lat, lon = _crs_centre(crs)
-        reference = np.asarray(crs.geodetic_to_ecef(np.array([lat]), np.array([lon]),
-                                                    np.array([0.0]))).reshape(3)
+        reference = np.asarray(
+            crs.geodetic_to_ecef(np.array([lat]), np.array([lon]), np.array([0.0]))
+        ).reshape(3)
     x, y, z = (float(c) for c in reference)
     return [start3d.KnownPoint(name, (x, y, z), height_known=False) for name in names]
 
@@ -211,8 +249,9 @@ def _crs_centre(crs: Crs) -> tuple[float, float]:
     return float(np.asarray(lat).reshape(-1)[0]), float(np.asarray(lon).reshape(-1)[0])
 
 
-def _start_observations(fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.KnownPoint]
-                        ) -> list[start3d.Observation]:
+def _start_observations(
+    fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.KnownPoint]
+) -> list[start3d.Observation]:
     """The used observations in the start-value module's terms.
 
     Grid azimuths and distances need the convergence and scale factor only roughly here (start
@@ -228,8 +267,9 @@ def _start_observations(fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.
         if obs.kind == "slope":
             out.append(start3d.SlopeDistance(obs.from_point, obs.to, obs.value, hi, ht))
         elif obs.kind == "zenith":
-            out.append(start3d.ZenithAngle(obs.from_point, obs.to, obs.value, hi, ht,
-                                           fieldbook.refraction))
+            out.append(
+                start3d.ZenithAngle(obs.from_point, obs.to, obs.value, hi, ht, fieldbook.refraction)
+            )
         elif obs.kind == "baseline":
             assert obs.baseline is not None
             dx, dy, dz = obs.baseline.components
@@ -247,8 +287,9 @@ def _start_observations(fieldbook: Fieldbook, crs: Crs, known: Sequence[start3d.
             by_round.setdefault(obs.round_line, []).append(obs)
     for line in sorted(by_round):
         entries = by_round[line]
-        out.append(start3d.DirectionRound(entries[0].from_point,
-                                          tuple((o.to, o.value) for o in entries)))
+        out.append(
+            start3d.DirectionRound(entries[0].from_point, tuple((o.to, o.value) for o in entries))
+        )
     return out
 
 

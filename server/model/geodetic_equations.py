@@ -75,22 +75,36 @@ def _local(rot: Array, gradient: Array) -> Array:
 
 def slope(ellipsoid: Ellipsoid, frm: Array, to: Array, hi: Array, ht: Array) -> Rows:
     eq = frames.slope_distance(ellipsoid, frm, to, hi, ht)
-    return Rows(eq.value, {"from": _local(rotation_at(ellipsoid, frm), eq.d_from),
-                           "to": _local(rotation_at(ellipsoid, to), eq.d_to)})
+    return Rows(
+        eq.value,
+        {
+            "from": _local(rotation_at(ellipsoid, frm), eq.d_from),
+            "to": _local(rotation_at(ellipsoid, to), eq.d_to),
+        },
+    )
 
 
-def zenith(ellipsoid: Ellipsoid, frm: Array, to: Array, hi: Array, ht: Array,
-           k: float) -> Rows:
+def zenith(ellipsoid: Ellipsoid, frm: Array, to: Array, hi: Array, ht: Array, k: float) -> Rows:
     eq = frames.zenith_angle(ellipsoid, frm, to, hi, ht, k)
-    return Rows(eq.value, {"from": _local(rotation_at(ellipsoid, frm), eq.d_from),
-                           "to": _local(rotation_at(ellipsoid, to), eq.d_to)})
+    return Rows(
+        eq.value,
+        {
+            "from": _local(rotation_at(ellipsoid, frm), eq.d_from),
+            "to": _local(rotation_at(ellipsoid, to), eq.d_to),
+        },
+    )
 
 
 def direction(ellipsoid: Ellipsoid, at: Array, to: Array) -> Rows:
     """Horizon azimuth AT → TO's mark in [0, 2π) (the caller subtracts the orientation)."""
     eq = frames.horizon_azimuth(ellipsoid, at, to)
-    return Rows(eq.value, {"at": _local(rotation_at(ellipsoid, at), eq.d_from),
-                           "to": _local(rotation_at(ellipsoid, to), eq.d_to)})
+    return Rows(
+        eq.value,
+        {
+            "at": _local(rotation_at(ellipsoid, at), eq.d_from),
+            "to": _local(rotation_at(ellipsoid, to), eq.d_to),
+        },
+    )
 
 
 def angle(ellipsoid: Ellipsoid, back: Array, at: Array, fore: Array) -> Rows:
@@ -98,11 +112,14 @@ def angle(ellipsoid: Ellipsoid, back: Array, at: Array, fore: Array) -> Rows:
     f = frames.horizon_azimuth(ellipsoid, at, fore)
     b = frames.horizon_azimuth(ellipsoid, at, back)
     rot_at = rotation_at(ellipsoid, at)
-    return Rows(f.value - b.value, {
-        "to": _local(rotation_at(ellipsoid, fore), f.d_to),
-        "from": -_local(rotation_at(ellipsoid, back), b.d_to),
-        "at": _local(rot_at, f.d_from - b.d_from),
-    })
+    return Rows(
+        f.value - b.value,
+        {
+            "to": _local(rotation_at(ellipsoid, fore), f.d_to),
+            "from": -_local(rotation_at(ellipsoid, back), b.d_to),
+            "at": _local(rot_at, f.d_from - b.d_from),
+        },
+    )
 
 
 def level(ellipsoid: Ellipsoid, frm: Array, to: Array, n_from: Array, n_to: Array) -> Rows:
@@ -133,8 +150,10 @@ def grid_distance(crs: Crs, frm: Array, to: Array) -> Rows:
     if not np.all(s > 0.0):
         raise frames_error("two marks of a grid distance coincide")
     unit = np.stack([d_east / s, d_north / s], axis=1)
-    return Rows(s, {"from": -np.einsum("mk,mki->mi", unit, jac_a),
-                    "to": np.einsum("mk,mki->mi", unit, jac_b)})
+    return Rows(
+        s,
+        {"from": -np.einsum("mk,mki->mi", unit, jac_a), "to": np.einsum("mk,mki->mi", unit, jac_b)},
+    )
 
 
 def grid_azimuth(crs: Crs, frm: Array, to: Array) -> Rows:
@@ -143,18 +162,20 @@ def grid_azimuth(crs: Crs, frm: Array, to: Array) -> Rows:
     if not np.all(s2 > 0.0):
         raise frames_error("two marks of a grid azimuth coincide")
     grad = np.stack([d_north / s2, -d_east / s2], axis=1)
-    return Rows(np.mod(np.arctan2(d_east, d_north), 2.0 * np.pi),
-                {"from": -np.einsum("mk,mki->mi", grad, jac_a),
-                 "to": np.einsum("mk,mki->mi", grad, jac_b)})
+    return Rows(
+        np.mod(np.arctan2(d_east, d_north), 2.0 * np.pi),
+        {"from": -np.einsum("mk,mki->mi", grad, jac_a), "to": np.einsum("mk,mki->mi", grad, jac_b)},
+    )
 
 
 def baseline(ellipsoid: Ellipsoid, frm: Array, to: Array) -> Rows:
     """X_TO − X_FROM (m, 3); partials (m, 3, 3): ∂(TO − FROM)/∂δ = ±Rᵀ."""
     rot_from = rotation_at(ellipsoid, frm)
     rot_to = rotation_at(ellipsoid, to)
-    return Rows(np.asarray(to, dtype=float) - np.asarray(frm, dtype=float),
-                {"from": -np.transpose(rot_from, (0, 2, 1)),
-                 "to": np.transpose(rot_to, (0, 2, 1)).copy()})
+    return Rows(
+        np.asarray(to, dtype=float) - np.asarray(frm, dtype=float),
+        {"from": -np.transpose(rot_from, (0, 2, 1)), "to": np.transpose(rot_to, (0, 2, 1)).copy()},
+    )
 
 
 def control(crs: Crs, xyz: Array, undulation: Array) -> tuple[Array, Array]:
@@ -164,8 +185,10 @@ def control(crs: Crs, xyz: Array, undulation: Array) -> tuple[Array, Array]:
     g = grid_position(crs, xyz)
     rot = rotation_at(crs.ellipsoid, xyz)
     values = np.stack([g.east * per_unit, g.north * per_unit, g.h - undulation], axis=1)
-    jac = np.stack([_local(rot, g.d_east) * per_unit, _local(rot, g.d_north) * per_unit,
-                    _local(rot, g.d_h)], axis=1)
+    jac = np.stack(
+        [_local(rot, g.d_east) * per_unit, _local(rot, g.d_north) * per_unit, _local(rot, g.d_h)],
+        axis=1,
+    )
     return values, jac
 
 
@@ -177,8 +200,9 @@ def slope_sigma(constant: Array, ppm: Array, value: Array, centering: Array) -> 
     return np.sqrt(constant**2 + (ppm * 1e-6 * value) ** 2 + 2.0 * centering**2)
 
 
-def direction_sigma(ellipsoid: Ellipsoid, constant: Array, centering: Array, at: Array,
-                    to: Array) -> Array:
+def direction_sigma(
+    ellipsoid: Ellipsoid, constant: Array, centering: Array, at: Array, to: Array
+) -> Array:
     if not np.any(centering):
         return np.asarray(constant, dtype=float)
     d = frames.horizon_distance(ellipsoid, at, to)
@@ -187,8 +211,9 @@ def direction_sigma(ellipsoid: Ellipsoid, constant: Array, centering: Array, at:
     return np.where(centering != 0.0, centred, constant)
 
 
-def angle_sigma(ellipsoid: Ellipsoid, constant: Array, centering: Array, back: Array,
-                at: Array, fore: Array) -> Array:
+def angle_sigma(
+    ellipsoid: Ellipsoid, constant: Array, centering: Array, back: Array, at: Array, fore: Array
+) -> Array:
     if not np.any(centering):
         return np.asarray(constant, dtype=float)
     to_back = frames.local_vector(ellipsoid, at, back).enu
@@ -198,13 +223,17 @@ def angle_sigma(ellipsoid: Ellipsoid, constant: Array, centering: Array, back: A
     d3 = np.hypot(to_fore[:, 0] - to_back[:, 0], to_fore[:, 1] - to_back[:, 1])
     c2 = centering**2
     with np.errstate(divide="ignore", invalid="ignore"):
-        centred = np.sqrt(constant**2 + c2 * d3 * d3 / (d1 * d1 * d2 * d2)
-                          + c2 * (1.0 / (d1 * d1) + 1.0 / (d2 * d2)))
+        centred = np.sqrt(
+            constant**2
+            + c2 * d3 * d3 / (d1 * d1 * d2 * d2)
+            + c2 * (1.0 / (d1 * d1) + 1.0 / (d2 * d2))
+        )
     return np.where(centering != 0.0, centred, constant)
 
 
-def baseline_covariance(ellipsoid: Ellipsoid, booked: Array, centering: Array, frm: Array,
-                        to: Array) -> Array:
+def baseline_covariance(
+    ellipsoid: Ellipsoid, booked: Array, centering: Array, frm: Array, to: Array
+) -> Array:
     """Σ (m, 3, 3): the booked covariance plus horizontal centering at both ends."""
     booked = np.asarray(booked, dtype=float).reshape(-1, 3, 3)
     if not np.any(centering):

@@ -31,8 +31,9 @@ def _xyz(at: Positions, index: Array) -> Array:
     return np.stack([at.east[index], at.north[index], at.height[index]], axis=1)
 
 
-def _guarded(function: Callable[[Batch, Positions], Linearised]
-             ) -> Callable[[Batch, Positions], Linearised]:
+def _guarded(
+    function: Callable[[Batch, Positions], Linearised],
+) -> Callable[[Batch, Positions], Linearised]:
     """Coincident marks (or a target straight above the instrument) name their rows."""
 
     def equation(batch: Batch, at: Positions) -> Linearised:
@@ -44,8 +45,9 @@ def _guarded(function: Callable[[Batch, Positions], Linearised]
             for i, j in pairs:
                 d = _xyz(at, j) - _xyz(at, i)
                 bad |= ~(np.einsum("mi,mi->m", d, d) > 0.0) & (i != j)
-            raise CoincidentPointsError(np.flatnonzero(bad) if bad.any()
-                                        else np.arange(batch.size)) from None
+            raise CoincidentPointsError(
+                np.flatnonzero(bad) if bad.any() else np.arange(batch.size)
+            ) from None
 
     return equation
 
@@ -67,13 +69,22 @@ def _two_ends(rows: ge.Rows) -> Linearised:
 
 
 def _slope(m: _Model, b: Batch, at: Positions) -> Linearised:
-    return _two_ends(ge.slope(m.ell, _xyz(at, b.frm), _xyz(at, b.to), b.instrument_height,
-                              b.target_height))
+    return _two_ends(
+        ge.slope(m.ell, _xyz(at, b.frm), _xyz(at, b.to), b.instrument_height, b.target_height)
+    )
 
 
 def _zenith(m: _Model, b: Batch, at: Positions) -> Linearised:
-    return _two_ends(ge.zenith(m.ell, _xyz(at, b.frm), _xyz(at, b.to), b.instrument_height,
-                               b.target_height, m.refraction))
+    return _two_ends(
+        ge.zenith(
+            m.ell,
+            _xyz(at, b.frm),
+            _xyz(at, b.to),
+            b.instrument_height,
+            b.target_height,
+            m.refraction,
+        )
+    )
 
 
 def _direction(m: _Model, b: Batch, at: Positions) -> Linearised:
@@ -90,8 +101,9 @@ def _angle(m: _Model, b: Batch, at: Positions) -> Linearised:
 
 def _level(m: _Model, b: Batch, at: Positions) -> Linearised:
     rows = ge.level(m.ell, _xyz(at, b.frm), _xyz(at, b.to), b.geoid_from, b.geoid_to)
-    return Linearised(rows.value, np.stack([rows.partials["to"][:, 2],
-                                            rows.partials["from"][:, 2]], axis=1))
+    return Linearised(
+        rows.value, np.stack([rows.partials["to"][:, 2], rows.partials["from"][:, 2]], axis=1)
+    )
 
 
 def _distance(m: _Model, b: Batch, at: Positions) -> Linearised:
@@ -122,14 +134,14 @@ def _direction_sigma(m: _Model, b: Batch, at: Positions) -> Array:
 
 
 def _angle_sigma(m: _Model, b: Batch, at: Positions) -> Array:
-    return ge.angle_sigma(m.ell, b.constant, b.centering, _xyz(at, b.frm), _xyz(at, b.at),
-                          _xyz(at, b.to))
+    return ge.angle_sigma(
+        m.ell, b.constant, b.centering, _xyz(at, b.frm), _xyz(at, b.at), _xyz(at, b.to)
+    )
 
 
 def _baseline_covariance(m: _Model, b: Batch, at: Positions) -> Array:
     assert b.covariance is not None
-    return ge.baseline_covariance(m.ell, b.covariance, b.centering, _xyz(at, b.frm),
-                                  _xyz(at, b.to))
+    return ge.baseline_covariance(m.ell, b.covariance, b.centering, _xyz(at, b.frm), _xyz(at, b.to))
 
 
 def _baseline_sigma(m: _Model, b: Batch, at: Positions) -> Array:
@@ -144,21 +156,43 @@ def geodetic_kinds(crs: Crs, refraction: float) -> dict[str, Kind]:
     m = _Model(crs, refraction)
     to_from_round = (*(("to", c) for c in _ENU), *(("from", c) for c in _ENU), ("round", "O"))
     entries = (
-        Kind("level", (("to", "H"), ("from", "H")), False, _guarded(partial(_level, m)),
-             KINDS["level"].sigma),
-        Kind("distance", _TO_FROM, False, _guarded(partial(_distance, m)),
-             KINDS["distance"].sigma),
-        Kind("azimuth", _TO_FROM, True, _guarded(partial(_azimuth, m)),
-             partial(_constant_sigma, m)),
-        Kind("direction", to_from_round, True, _guarded(partial(_direction, m)),
-             partial(_direction_sigma, m), has_round=True),
-        Kind("angle", (*_TO_FROM, *_AT), True, _guarded(partial(_angle, m)),
-             partial(_angle_sigma, m), has_station=True),
+        Kind(
+            "level",
+            (("to", "H"), ("from", "H")),
+            False,
+            _guarded(partial(_level, m)),
+            KINDS["level"].sigma,
+        ),
+        Kind("distance", _TO_FROM, False, _guarded(partial(_distance, m)), KINDS["distance"].sigma),
+        Kind(
+            "azimuth", _TO_FROM, True, _guarded(partial(_azimuth, m)), partial(_constant_sigma, m)
+        ),
+        Kind(
+            "direction",
+            to_from_round,
+            True,
+            _guarded(partial(_direction, m)),
+            partial(_direction_sigma, m),
+            has_round=True,
+        ),
+        Kind(
+            "angle",
+            (*_TO_FROM, *_AT),
+            True,
+            _guarded(partial(_angle, m)),
+            partial(_angle_sigma, m),
+            has_station=True,
+        ),
         Kind("slope", _TO_FROM, False, _guarded(partial(_slope, m)), partial(_slope_sigma, m)),
-        Kind("zenith", _TO_FROM, True, _guarded(partial(_zenith, m)),
-             partial(_constant_sigma, m)),
-        Kind("baseline", _TO_FROM, False, _guarded(partial(_baseline, m)),
-             partial(_baseline_sigma, m), components=3,
-             covariance=partial(_baseline_covariance, m)),
+        Kind("zenith", _TO_FROM, True, _guarded(partial(_zenith, m)), partial(_constant_sigma, m)),
+        Kind(
+            "baseline",
+            _TO_FROM,
+            False,
+            _guarded(partial(_baseline, m)),
+            partial(_baseline_sigma, m),
+            components=3,
+            covariance=partial(_baseline_covariance, m),
+        ),
     )
     return {kind.name: kind for kind in entries}

@@ -36,20 +36,34 @@ def build_geodetic_network(fieldbook: Fieldbook, used: tuple[Observation, ...]) 
     warnings = [
         f"point {p.name} (line {p.line}) is not touched by any used observation; "
         "it is reported with its given values"
-        for p in points if not p.in_use
+        for p in points
+        if not p.in_use
     ]
-    if not frame.geoid_given and any(o.kind == "level" for o in used) and any(
-            o.kind == "baseline" for o in used):
-        warnings.append("no geoid undulation is given, so ellipsoidal and orthometric heights "
-                        "were taken as equal; give 'geoid undulation=' or point geoid= values")
+    if (
+        not frame.geoid_given
+        and any(o.kind == "level" for o in used)
+        and any(o.kind == "baseline" for o in used)
+    ):
+        warnings.append(
+            "no geoid undulation is given, so ellipsoidal and orthometric heights "
+            "were taken as equal; give 'geoid undulation=' or point geoid= values"
+        )
     parameters = _parameters(points, used)
     _check_datum(points, used)
-    return Network(fieldbook=fieldbook, dimension=3, points=points, used=used,
-                   parameters=parameters, warnings=tuple(warnings), geodetic=frame)
+    return Network(
+        fieldbook=fieldbook,
+        dimension=3,
+        points=points,
+        used=used,
+        parameters=parameters,
+        warnings=tuple(warnings),
+        geodetic=frame,
+    )
 
 
-def _parameters(points: tuple[NetworkPoint, ...], used: tuple[Observation, ...]
-                ) -> tuple[Parameter, ...]:
+def _parameters(
+    points: tuple[NetworkPoint, ...], used: tuple[Observation, ...]
+) -> tuple[Parameter, ...]:
     """E, N, H per spatially observed point (H alone where only level lines touch it),
     then one orientation per direction round."""
     spatial: set[str] = set()
@@ -83,10 +97,13 @@ def _check_datum(points: tuple[NetworkPoint, ...], used: tuple[Observation, ...]
         raise NetworkError(
             "the geodetic network has no control in position: hold at least one point fixed "
             "in east and north (fix en), or weight it; points with given coordinates: "
-            + (_shown(given) or "none"), given)
+            + (_shown(given) or "none"),
+            given,
+        )
     if not held_h and spatial:
         heights = [p.name for p in points if p.name in touched and p.height is not None]
         raise NetworkError(
             "the geodetic network has no control in height: hold at least one point's height "
             "(fix h), or weight it; points with given heights: " + (_shown(heights) or "none"),
-            heights)
+            heights,
+        )

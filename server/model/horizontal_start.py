@@ -57,9 +57,7 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
         if not known:
             known.update(local.known)
         elif len(common) >= 2:
-            transform = _similarity(
-                [local.known[n] for n in common], [known[n] for n in common]
-            )
+            transform = _similarity([local.known[n] for n in common], [known[n] for n in common])
             for name, position in local.known.items():
                 known.setdefault(name, transform(position))
         else:
@@ -82,9 +80,7 @@ def _seed(used: list[Observation], known: set[str]) -> tuple[str, str]:
     """A station to start a local frame from: one with a distance, preferring unplaced ones."""
     measured = {frozenset((o.from_point, o.to)) for o in used if o.kind == "distance"}
     links = [
-        ((o.at or o.from_point), o.to)
-        for o in used
-        if o.kind in ("direction", "angle", "distance")
+        ((o.at or o.from_point), o.to) for o in used if o.kind in ("direction", "angle", "distance")
     ]
     links.sort(
         key=lambda link: (frozenset(link) not in measured, link[0] in known and link[1] in known)
@@ -92,9 +88,7 @@ def _seed(used: list[Observation], known: set[str]) -> tuple[str, str]:
     return links[0]
 
 
-def _similarity(
-    source: list[Position], target: list[Position]
-) -> Callable[[Position], Position]:
+def _similarity(source: list[Position], target: list[Position]) -> Callable[[Position], Position]:
     """Least-squares 2D similarity (shift, rotation, scale) taking ``source`` onto ``target``."""
     src = np.array(source)
     dst = np.array(target)
@@ -304,8 +298,10 @@ class _Propagator:
         if len(candidates) == 1:
             return candidates[0]
         if spare:
+
             def misfit(p: Position) -> float:
                 return sum(abs(math.dist(p, self.known[s]) - r) for s, r in spare)
+
             return min(candidates, key=misfit)
         # a known azimuth toward the target from a known station picks the side
         for (i, j), azimuth in self.azimuths.items():

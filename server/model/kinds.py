@@ -368,8 +368,11 @@ def evaluate_one(
     return kind.equation(batch, positions)
 
 
-def sigma_one(obs: Observation, coordinates: Mapping[str, tuple[float, float, float]],
-              kinds: Mapping[str, Kind] | None = None) -> float:
+def sigma_one(
+    obs: Observation,
+    coordinates: Mapping[str, tuple[float, float, float]],
+    kinds: Mapping[str, Kind] | None = None,
+) -> float:
     """The a priori σ of one observation in SI units, centering included (NaN or inf when
     its points coincide or lack coordinates); a vector kind gives its first component's."""
     kind, batch, positions = _one(obs, coordinates, {}, kinds or KINDS, None)

@@ -59,8 +59,11 @@ class Misclosure:
         """|misclosure| (or the angular one) above its allowance (False when none applies)."""
         if self.allowed is not None and abs(self.misclosure) > self.allowed:
             return True
-        return (self.angular is not None and self.angular_allowed is not None
-                and abs(self.angular) > self.angular_allowed)
+        return (
+            self.angular is not None
+            and self.angular_allowed is not None
+            and abs(self.angular) > self.angular_allowed
+        )
 
     @property
     def ratio(self) -> float | None:
@@ -96,9 +99,7 @@ def leveling_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
         [o.length_km for o in sections],
         [o.setups for o in sections],
     )
-    fixed = [
-        p for p in fieldbook.points if "h" in p.fixed and p.height is not None
-    ]
+    fixed = [p for p in fieldbook.points if "h" in p.fixed and p.height is not None]
     if len(fixed) >= 2:
         for p in fixed:
             edges.start.append(_DATUM)
@@ -228,7 +229,7 @@ def _contracted_basis(
 
 
 def _chains(
-    adjacency: dict[str, list[tuple[int, str]]]
+    adjacency: dict[str, list[tuple[int, str]]],
 ) -> tuple[list[str], list[str], list[list[int]]]:
     """Lines between junctions (marks of other than two sections): ends and sections."""
     start: list[str] = []
@@ -264,7 +265,9 @@ def _chains(
 
 
 def _candidates(
-    edges: _Edges, adjacency: dict[str, list[tuple[int, str]]], weights: list[float],
+    edges: _Edges,
+    adjacency: dict[str, list[tuple[int, str]]],
+    weights: list[float],
     blocked: str | None,
 ) -> list[list[int]]:
     """Each section's cycle with the shortest path between its ends, shortest first.

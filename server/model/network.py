@@ -85,7 +85,6 @@ class Network:
         return self.dimension in (1, 3)
 
 
-
 def network_dimension(fieldbook: Fieldbook) -> int:
     """1 for leveling only, 2 for horizontal kinds only, 3 for both (ignored ones count)."""
     kinds = {obs.kind for obs in fieldbook.observations}
@@ -180,8 +179,9 @@ def _collect_points(
     return tuple(points)
 
 
-def with_grid_positions(points: tuple[NetworkPoint, ...], fieldbook: Fieldbook,
-                        crs: Crs) -> tuple[NetworkPoint, ...]:
+def with_grid_positions(
+    points: tuple[NetworkPoint, ...], fieldbook: Fieldbook, crs: Crs
+) -> tuple[NetworkPoint, ...]:
     """Points given by latitude and longitude get their grid east and north (metres)."""
     by_name = {p.name: p for p in fieldbook.points}
     out = []
@@ -280,8 +280,10 @@ def _parameters(
     horizontal_points: set[str] = set()
     vertical_points: set[str] = set()
     for o in used:
-        names = vertical_points if o.kind == "level" else (
-            horizontal_points if o.kind in HORIZONTAL_KINDS else None
+        names = (
+            vertical_points
+            if o.kind == "level"
+            else (horizontal_points if o.kind in HORIZONTAL_KINDS else None)
         )
         if names is not None:
             names.add(o.from_point)

@@ -183,7 +183,10 @@ def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
             if first in covered or frozenset((start, first)) in used_legs:
                 continue
             path = _search(
-                graph, [start, first], partial(_closes_polygon, graph, start), total,
+                graph,
+                [start, first],
+                partial(_closes_polygon, graph, start),
+                total,
                 avoid=covered,
             )
             if path is not None:
@@ -200,8 +203,13 @@ def _closes_polygon(graph: _Graph, start: str, node: str, path: list[str]) -> bo
     return node == start and len(path) > 3 and graph.angle(path[-2], start, path[1]) is not None
 
 
-def _search(graph: _Graph, path: list[str], done: Callable[[str, list[str]], bool],
-            total: list[int], avoid: frozenset[str] | set[str] = frozenset()) -> list[str] | None:
+def _search(
+    graph: _Graph,
+    path: list[str],
+    done: Callable[[str, list[str]], bool],
+    total: list[int],
+    avoid: frozenset[str] | set[str] = frozenset(),
+) -> list[str] | None:
     """Depth-first walk along angle chains, next stations in file order; the first end wins.
 
     ``path`` holds the first two stations; ``done(node, path)`` says where a walk ends.
@@ -238,8 +246,12 @@ def _leg(graph: _Graph, a: str, b: str) -> float:
     return graph.legs[frozenset((a, b))]
 
 
-def closure(azimuths: list[float], distances: list[float], start_en: tuple[float, float],
-            end_en: tuple[float, float]) -> Closure:
+def closure(
+    azimuths: list[float],
+    distances: list[float],
+    start_en: tuple[float, float],
+    end_en: tuple[float, float],
+) -> Closure:
     """Sum the departures (east) and latitudes (north) of the legs.
 
     The misclosure is the computed end minus its known coordinates.
@@ -273,8 +285,9 @@ def _polygon(graph: _Graph, path: list[str], tol: TraverseTolerance) -> Misclosu
     if _reversed_corners(graph, path) > _reversed_corners(graph, path[::-1]):
         path = path[::-1]  # walk the way the angles were booked, so their sum keeps its sign
     corners = [*path[-2:-1], *path]  # the station before the start closes the first corner
-    turned = [graph.turned(corners[i - 1], corners[i], corners[i + 1])
-              for i in range(1, len(corners) - 1)]
+    turned = [
+        graph.turned(corners[i - 1], corners[i], corners[i + 1]) for i in range(1, len(corners) - 1)
+    ]
     n = len(turned)
     total = sum(turned)
     # interior and exterior sums differ by 4·180°, so the nearest wraps to one of them
@@ -295,8 +308,10 @@ def _polygon(graph: _Graph, path: list[str], tol: TraverseTolerance) -> Misclosu
 def _reversed_corners(graph: _Graph, path: list[str]) -> int:
     """How many corners of a closed path use the explement of a booked angle."""
     corners = [path[-2], *path]
-    return sum((corners[i + 1], corners[i], corners[i - 1]) in graph.booked
-               for i in range(1, len(corners) - 1))
+    return sum(
+        (corners[i + 1], corners[i], corners[i - 1]) in graph.booked
+        for i in range(1, len(corners) - 1)
+    )
 
 
 def _azimuths(first: float, turned: list[float]) -> list[float]:
@@ -319,8 +334,9 @@ def _balance(
     return out
 
 
-def _entry(path: list[str], fit: Closure, angular: float | None, stations: int,
-           tol: TraverseTolerance) -> Misclosure:
+def _entry(
+    path: list[str], fit: Closure, angular: float | None, stations: int, tol: TraverseTolerance
+) -> Misclosure:
     k = tol.angular_per_sqrtn
     angular_allowed = None if k is None else k * math.sqrt(stations)
     return Misclosure(
