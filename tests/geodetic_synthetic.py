@@ -57,9 +57,12 @@ class Grid:
         return 1.0 if self.unit == "m" else US_FOOT
 
 
-SITE_GRID = Grid("site grid", "crs local lat=47:03:00 lon=-122:54:00 east=5000m north=5000m",
-                 "m", "+proj=tmerc +lat_0=47.05 +lon_0=-122.9 +k=1 +x_0=5000 +y_0=5000 "
-                 "+ellps=GRS80 +units=m")
+SITE_GRID = Grid(
+    "site grid",
+    "crs local lat=47:03:00 lon=-122:54:00 east=5000m north=5000m",
+    "m",
+    "+proj=tmerc +lat_0=47.05 +lon_0=-122.9 +k=1 +x_0=5000 +y_0=5000 +ellps=GRS80 +units=m",
+)
 UTM_10N = Grid("UTM zone 10N", "crs EPSG:26910", "m", "EPSG:26910")
 WA_SOUTH_FTUS = Grid("Washington South, US survey feet", "crs EPSG:2286", "usft", "EPSG:2286")
 
@@ -78,8 +81,9 @@ def _cart() -> tuple[pyproj.Transformer, pyproj.Transformer]:
 
 def ecef(lat: Array, lon: Array, h: Array) -> Array:
     """X, Y, Z (rows) of geodetic positions in degrees and metres, by PROJ's cart."""
-    x, y, z = _cart()[0].transform(np.asarray(lon, float), np.asarray(lat, float),
-                                   np.asarray(h, float))
+    x, y, z = _cart()[0].transform(
+        np.asarray(lon, float), np.asarray(lat, float), np.asarray(h, float)
+    )
     return np.stack([x, y, z], axis=-1)
 
 
@@ -93,8 +97,9 @@ def geodetic(xyz: Array) -> tuple[Array, Array, Array]:
 def grid_of(grid: Grid, lat: Array, lon: Array) -> tuple[Array, Array]:
     """Grid east, north in the grid's unit, by PROJ."""
     if grid.proj.startswith("+"):
-        tr = pyproj.Transformer.from_pipeline(f"+proj=pipeline +step +proj=unitconvert "
-                                              f"+xy_in=deg +xy_out=rad +step {grid.proj}")
+        tr = pyproj.Transformer.from_pipeline(
+            f"+proj=pipeline +step +proj=unitconvert +xy_in=deg +xy_out=rad +step {grid.proj}"
+        )
         e, n = tr.transform(np.asarray(lon, float), np.asarray(lat, float))
         return np.asarray(e), np.asarray(n)
     e, n = _to_grid(grid.proj).transform(np.asarray(lon, float), np.asarray(lat, float))
@@ -104,12 +109,14 @@ def grid_of(grid: Grid, lat: Array, lon: Array) -> tuple[Array, Array]:
 def from_grid(grid: Grid, east: Array, north: Array) -> tuple[Array, Array]:
     """Latitude, longitude (degrees) of grid east, north in the grid's unit, by PROJ."""
     if grid.proj.startswith("+"):
-        tr = pyproj.Transformer.from_pipeline(f"+proj=pipeline +step +inv {grid.proj} "
-                                              "+step +proj=unitconvert +xy_in=rad +xy_out=deg")
+        tr = pyproj.Transformer.from_pipeline(
+            f"+proj=pipeline +step +inv {grid.proj} +step +proj=unitconvert +xy_in=rad +xy_out=deg"
+        )
         lon, lat = tr.transform(np.asarray(east, float), np.asarray(north, float))
     else:
-        lon, lat = _to_grid(grid.proj).transform(np.asarray(east, float),
-                                                 np.asarray(north, float), direction="INVERSE")
+        lon, lat = _to_grid(grid.proj).transform(
+            np.asarray(east, float), np.asarray(north, float), direction="INVERSE"
+        )
     return np.asarray(lat), np.asarray(lon)
 
 
@@ -118,7 +125,8 @@ def topocentric(origin: tuple[float, float, float], lat: Array, lon: Array, h: A
     lat0, lon0, h0 = origin
     tr = pyproj.Transformer.from_pipeline(
         f"+proj=pipeline +step +proj=cart {GRS80} +step +proj=topocentric {GRS80} "
-        f"+lat_0={lat0!r} +lon_0={lon0!r} +h_0={h0!r}")
+        f"+lat_0={lat0!r} +lon_0={lon0!r} +h_0={h0!r}"
+    )
     e, n, u = tr.transform(np.asarray(lon, float), np.asarray(lat, float), np.asarray(h, float))
     return np.stack([np.asarray(e), np.asarray(n), np.asarray(u)], axis=-1)
 
@@ -197,8 +205,11 @@ class Site:
     def xyz(self, names: Sequence[str], lift: Sequence[float] | float = 0.0) -> Array:
         m = [self.marks[n] for n in names]
         lift_arr = np.broadcast_to(np.asarray(lift, float), (len(m),))
-        return ecef(np.array([p.lat for p in m]), np.array([p.lon for p in m]),
-                    np.array([p.h for p in m]) + lift_arr)
+        return ecef(
+            np.array([p.lat for p in m]),
+            np.array([p.lon for p in m]),
+            np.array([p.h for p in m]) + lift_arr,
+        )
 
 
 def _offset(lat0: float, lon0: float, east_m: float, north_m: float) -> tuple[float, float]:
@@ -235,8 +246,11 @@ def harbor_site(rng: np.random.Generator | None = None) -> Site:
 HARBOR_PLAN = Plan(
     setups=(
         ("RIDGE", 1.532, (("CEDAR", 1.80), ("K-10", 1.80), ("K-8", 1.65), ("K-7", 1.80))),
-        ("K-8", 1.487, (("RIDGE", 1.80), ("K-11", 1.80), ("K-9", 1.80), ("K-7", 1.65),
-                        ("K-10", 1.80))),
+        (
+            "K-8",
+            1.487,
+            (("RIDGE", 1.80), ("K-11", 1.80), ("K-9", 1.80), ("K-7", 1.65), ("K-10", 1.80)),
+        ),
         ("K-9", 1.601, (("FERRY", 1.80), ("K-7", 1.80), ("K-8", 1.80), ("CEDAR", 2.10))),
         ("K-7", 1.455, (("K-9", 1.80), ("RIDGE", 1.80), ("K-8", 1.80))),
         ("K-11", 1.512, (("CEDAR", 1.80), ("K-10", 1.80), ("K-8", 1.80))),
@@ -262,8 +276,9 @@ def true_observations(site: Site, plan: Plan) -> list[Obs]:
         at_mark = topocentric((station.lat, station.lon, station.h), lat, lon, h)
         azimuth = np.arctan2(at_mark[:, 0], at_mark[:, 1]) % (2 * math.pi)
         for name, az in zip(names, azimuth):
-            out.append(Obs("direction", at, name, (float(az),), (plan.direction_sd,),
-                           round_id=round_id))
+            out.append(
+                Obs("direction", at, name, (float(az),), (plan.direction_sd,), round_id=round_id)
+            )
         if not plan.slope_zenith:
             continue
         lifted = topocentric((station.lat, station.lon, station.h + hi), lat, lon, h + ht)
@@ -273,17 +288,32 @@ def true_observations(site: Site, plan: Plan) -> list[Obs]:
         for name, s, z, t in zip(names, slope, zenith, ht):
             sd = math.hypot(plan.slope_a, plan.slope_ppm * 1e-6 * s)
             out.append(Obs("slope", at, name, (float(s),), (sd,), hi=hi, ht=float(t)))
-            out.append(Obs("zenith", at, name, (float(z),), (plan.zenith_sd,), hi=hi,
-                           ht=float(t)))
+            out.append(Obs("zenith", at, name, (float(z),), (plan.zenith_sd,), hi=hi, ht=float(t)))
     for frm, to in plan.levels:
         a, b = site.marks[frm], site.marks[to]
         length = float(np.linalg.norm(site.xyz([to]) - site.xyz([frm]))) / 1000.0
-        out.append(Obs("level", frm, to, (b.height - a.height,),
-                       (plan.level_per_sqrtkm * math.sqrt(length),), length_km=length))
+        out.append(
+            Obs(
+                "level",
+                frm,
+                to,
+                (b.height - a.height,),
+                (plan.level_per_sqrtkm * math.sqrt(length),),
+                length_km=length,
+            )
+        )
     for frm, to in plan.baselines:
         d = (site.xyz([to]) - site.xyz([frm]))[0]
-        out.append(Obs("baseline", frm, to, tuple(float(c) for c in d), plan.baseline_sd,
-                       corr=plan.baseline_corr))
+        out.append(
+            Obs(
+                "baseline",
+                frm,
+                to,
+                tuple(float(c) for c in d),
+                plan.baseline_sd,
+                corr=plan.baseline_corr,
+            )
+        )
     return out
 
 
@@ -339,9 +369,16 @@ class Book:
     lines: Mapping[int, int] = field(default_factory=dict)  # observation index → book line
 
 
-def write_book(site: Site, observations: Sequence[Obs], grid: Grid, *, k: float = 0.13,
-               title: str = "Harbor Hill - synthetic", decimals: int = 6,
-               latlon: bool = False) -> Book:
+def write_book(
+    site: Site,
+    observations: Sequence[Obs],
+    grid: Grid,
+    *,
+    k: float = 0.13,
+    title: str = "Harbor Hill - synthetic",
+    decimals: int = 6,
+    latlon: bool = False,
+) -> Book:
     """The field book of ``observations`` with control written in ``grid``'s coordinates
     (or, with ``latlon``, by latitude and longitude in decimal degrees, every digit)."""
     per = grid.metres_per_unit
@@ -369,10 +406,14 @@ def write_book(site: Site, observations: Sequence[Obs], grid: Grid, *, k: float 
         geoid = f" geoid={mark.undulation}m" if mark.own_geoid else ""
         height = length(mark.height)
         if mark.role == "control" and latlon:
-            lines.append(f"point {name} lat={mark.lat!r}deg lon={mark.lon!r}deg "
-                         f"height={height}{geoid} fix")
-            xyz = ecef(np.array([mark.lat]), np.array([mark.lon]),
-                       np.array([float(height) * per + mark.undulation]))[0]
+            lines.append(
+                f"point {name} lat={mark.lat!r}deg lon={mark.lon!r}deg height={height}{geoid} fix"
+            )
+            xyz = ecef(
+                np.array([mark.lat]),
+                np.array([mark.lon]),
+                np.array([float(height) * per + mark.undulation]),
+            )[0]
             control[name] = (float(xyz[0]), float(xyz[1]), float(xyz[2]))
         elif mark.role == "control":
             e, n = grid_of(grid, np.array([mark.lat]), np.array([mark.lon]))
@@ -415,15 +456,18 @@ def write_book(site: Site, observations: Sequence[Obs], grid: Grid, *, k: float 
             value = (dms_value(text),)
         elif o.kind == "level":
             text = length(o.value[0])
-            lines.append(f"level {o.frm} {o.to} {text} len={o.length_km!r}km "
-                         f"sd={o.sigma[0] / math.sqrt(o.length_km) * 1000.0!r}mm/sqrtkm")
+            lines.append(
+                f"level {o.frm} {o.to} {text} len={o.length_km!r}km "
+                f"sd={o.sigma[0] / math.sqrt(o.length_km) * 1000.0!r}mm/sqrtkm"
+            )
             value = (float(text) * per,)
         elif o.kind == "baseline":
             parts = [f"{c:+.{decimals}f}" for c in o.value]  # metres, with the unit
             sds = ",".join(f"{s * 1000.0!r}mm" for s in o.sigma)
             corr = f" corr={','.join(repr(c) for c in o.corr)}" if o.corr else ""
-            lines.append(f"baseline {o.frm} {o.to} " + " ".join(p + "m" for p in parts)
-                         + f" sd={sds}{corr}")
+            lines.append(
+                f"baseline {o.frm} {o.to} " + " ".join(p + "m" for p in parts) + f" sd={sds}{corr}"
+            )
             value = tuple(float(p) for p in parts)
         else:
             raise ValueError(o.kind)
@@ -432,8 +476,17 @@ def write_book(site: Site, observations: Sequence[Obs], grid: Grid, *, k: float 
     if current_round != -2:
         lines.append("end")
     undulation = {n: m.undulation for n, m in site.marks.items()}
-    return Book("\n".join(lines) + "\n", grid, tuple(written), control, benchmarks, undulation,
-                new, k, line_of)
+    return Book(
+        "\n".join(lines) + "\n",
+        grid,
+        tuple(written),
+        control,
+        benchmarks,
+        undulation,
+        new,
+        k,
+        line_of,
+    )
 
 
 # --------------------------------------------------------------------------- the model
@@ -445,9 +498,14 @@ def local_axes(xyz: Array) -> Array:
     phi, lam = np.radians(lat), np.radians(lon)
     sp, cp, sl, cl = np.sin(phi), np.cos(phi), np.sin(lam), np.cos(lam)
     zero = np.zeros_like(phi)
-    return np.stack([np.stack([-sl, cl, zero], -1),
-                     np.stack([-sp * cl, -sp * sl, cp], -1),
-                     np.stack([cp * cl, cp * sl, sp], -1)], axis=1)
+    return np.stack(
+        [
+            np.stack([-sl, cl, zero], -1),
+            np.stack([-sp * cl, -sp * sl, cp], -1),
+            np.stack([cp * cl, cp * sl, sp], -1),
+        ],
+        axis=1,
+    )
 
 
 def observe(book: Book, positions: Mapping[str, Array], orientation: Array) -> list[Array]:
@@ -463,11 +521,13 @@ def observe(book: Book, positions: Mapping[str, Array], orientation: Array) -> l
     for o in obs:
         i, j = index.get(o.frm), index.get(o.to)
         if o.kind == "level":
+
             def height(name: str, k: int | None) -> float:
                 if name in book.benchmarks:
                     return book.benchmarks[name]
                 assert k is not None
                 return float(h[k]) - book.undulation[name]
+
             out.append(np.array([height(o.to, j) - height(o.frm, i)]))
             continue
         assert i is not None and j is not None
@@ -537,32 +597,39 @@ def solve_independently(book: Book, start: Mapping[str, Array]) -> Independent:
     rounds = sorted({o.round_id for o in book.observations if o.kind == "direction"})
     observed = [np.asarray(o.value) for o in book.observations]
     # whitening: 1/σ, or the inverse Cholesky factor of a baseline's covariance
-    whiten = [np.linalg.inv(np.linalg.cholesky(o.covariance())) if o.kind == "baseline"
-              else np.array([[1.0 / o.sigma[0]]]) for o in book.observations]
+    whiten = [
+        np.linalg.inv(np.linalg.cholesky(o.covariance()))
+        if o.kind == "baseline"
+        else np.array([[1.0 / o.sigma[0]]])
+        for o in book.observations
+    ]
     kinds = [o.kind for o in book.observations]
     start_new = np.array([start[n] for n in book.new]).reshape(-1, 3)
 
     def unpack(x: Array) -> tuple[dict[str, Array], Array]:
         positions: dict[str, Array] = {n: np.asarray(v) for n, v in book.control.items()}
         for k, name in enumerate(book.new):
-            positions[name] = start_new[k] + x[3 * k: 3 * k + 3]
+            positions[name] = start_new[k] + x[3 * k : 3 * k + 3]
         base = 3 * n_new
         for k, name in enumerate(sighted):
             lat, lon, _ = bench_start[name]
             phi = math.radians(float(lat[0]))
             de, dn = x[base + 2 * k], x[base + 2 * k + 1]
-            positions[name] = ecef(lat + math.degrees(dn / 6_371_000.0),
-                                   lon + math.degrees(de / (6_371_000.0 * math.cos(phi))),
-                                   np.array([bench_h[name]]))[0]
+            positions[name] = ecef(
+                lat + math.degrees(dn / 6_371_000.0),
+                lon + math.degrees(de / (6_371_000.0 * math.cos(phi))),
+                np.array([bench_h[name]]),
+            )[0]
         orientation = np.zeros(max(rounds, default=-1) + 1)
-        orientation[rounds] = x[base + 2 * n_bench:]
+        orientation[rounds] = x[base + 2 * n_bench :]
         return positions, orientation
 
     def whitened(x: Array) -> Array:
         positions, orientation = unpack(x)
         parts = []
-        for model, value, w, kind in zip(observe(book, positions, orientation), observed,
-                                         whiten, kinds):
+        for model, value, w, kind in zip(
+            observe(book, positions, orientation), observed, whiten, kinds
+        ):
             v = model - value
             parts.append(w @ (wrap(v) if kind == "direction" else v))
         return np.concatenate(parts)
@@ -572,12 +639,26 @@ def solve_independently(book: Book, start: Mapping[str, Array]) -> Independent:
     positions, _ = unpack(x0)
     azimuths = observe(book, positions, np.zeros(max(rounds, default=-1) + 1))
     for k, r in enumerate(rounds):
-        offsets = [float(wrap(a - o.value[0])[0]) + 0.0 for a, o in
-                   zip(azimuths, book.observations) if o.kind == "direction" and o.round_id == r]
-        x0[3 * n_new + 2 * n_bench + k] = math.atan2(np.mean(np.sin(offsets)),
-                                                      np.mean(np.cos(offsets)))
-    fit = least_squares(whitened, x0, jac="3-point", diff_step=1e-6, method="trf", x_scale="jac",
-                        ftol=1e-14, xtol=1e-14, gtol=1e-14, max_nfev=200)
+        offsets = [
+            float(wrap(a - o.value[0])[0]) + 0.0
+            for a, o in zip(azimuths, book.observations)
+            if o.kind == "direction" and o.round_id == r
+        ]
+        x0[3 * n_new + 2 * n_bench + k] = math.atan2(
+            np.mean(np.sin(offsets)), np.mean(np.cos(offsets))
+        )
+    fit = least_squares(
+        whitened,
+        x0,
+        jac="3-point",
+        diff_step=1e-6,
+        method="trf",
+        x_scale="jac",
+        ftol=1e-14,
+        xtol=1e-14,
+        gtol=1e-14,
+        max_nfev=200,
+    )
     positions, orientation = unpack(fit.x)
     residuals = []
     for model, value, kind in zip(observe(book, positions, orientation), observed, kinds):
@@ -593,8 +674,7 @@ def solve_independently(book: Book, start: Mapping[str, Array]) -> Independent:
         e = np.zeros(len(x0))
         e[j] = step
         jacobian[:, j] = (whitened(fit.x + e) - whitened(fit.x - e)) / (2.0 * step)
-    return Independent(positions, orientation, vtpv, rows - len(x0), tuple(residuals),
-                       jacobian)
+    return Independent(positions, orientation, vtpv, rows - len(x0), tuple(residuals), jacobian)
 
 
 def true_positions(site: Site, names: Sequence[str]) -> dict[str, Array]:

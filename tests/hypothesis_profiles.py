@@ -34,8 +34,8 @@ def examples(count: int) -> int:
 
 
 def load() -> None:
-    settings.register_profile("ci", derandomize=True, database=None, deadline=None,
-                              print_blob=True)
-    settings.register_profile("random", derandomize=False, database=None, deadline=None,
-                              print_blob=True)
+    settings.register_profile("ci", derandomize=True, database=None, deadline=None, print_blob=True)
+    settings.register_profile(
+        "random", derandomize=False, database=None, deadline=None, print_blob=True
+    )
     settings.load_profile(chosen())

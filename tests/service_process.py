@@ -46,15 +46,30 @@ class ServiceProcess:
     def __enter__(self) -> Self:
         with self.log.open("ab") as sink:
             self.process = subprocess.Popen(
-                [sys.executable, "-m", "server", "serve", "--host", "127.0.0.1",
-                 "--port", str(self.port), "--data", str(self.data)],
-                cwd=REPO, stdout=sink, stderr=sink, env=self.env,
+                [
+                    sys.executable,
+                    "-m",
+                    "server",
+                    "serve",
+                    "--host",
+                    "127.0.0.1",
+                    "--port",
+                    str(self.port),
+                    "--data",
+                    str(self.data),
+                ],
+                cwd=REPO,
+                stdout=sink,
+                stderr=sink,
+                env=self.env,
             )
         deadline = time.monotonic() + 30
         while True:
             if self.process.poll() is not None:
-                raise RuntimeError(f"the service exited with {self.process.returncode}: "
-                                   f"{self.log.read_text(errors='replace')}")
+                raise RuntimeError(
+                    f"the service exited with {self.process.returncode}: "
+                    f"{self.log.read_text(errors='replace')}"
+                )
             try:
                 with socket.create_connection(("127.0.0.1", self.port), timeout=0.2):
                     return self

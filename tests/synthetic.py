@@ -67,7 +67,9 @@ def grid_network(
         if name in fixed:
             lines.append(f"point {name} east={e:.4f} north={n:.4f} fix")
         elif give_approximate:
-            lines.append(f"point {name} east={e + rng.normal(0, 0.5):.3f} north={n + rng.normal(0, 0.5):.3f}")
+            lines.append(
+                f"point {name} east={e + rng.normal(0, 0.5):.3f} north={n + rng.normal(0, 0.5):.3f}"
+            )
     sd_dir = math.radians(direction_sd_sec / 3600)
 
     def neighbours(name: str) -> list[str]:
@@ -97,8 +99,13 @@ def grid_network(
     return Synthetic("\n".join(lines) + "\n", truth, fixed)
 
 
-def leveling_grid(rng: np.random.Generator, *, side: int = 50, spacing_km: float = 0.3,
-                  sd_mm_per_sqrtkm: float = 1.0) -> str:
+def leveling_grid(
+    rng: np.random.Generator,
+    *,
+    side: int = 50,
+    spacing_km: float = 0.3,
+    sd_mm_per_sqrtkm: float = 1.0,
+) -> str:
     """A ``side`` × ``side`` grid of marks joined by level runs along rows and columns.
 
     Four corner benchmarks are held fixed; heights are a gentle random surface and
@@ -107,8 +114,11 @@ def leveling_grid(rng: np.random.Generator, *, side: int = 50, spacing_km: float
     """
     heights = 100.0 + np.cumsum(rng.normal(0.0, 0.4, size=(side, side)), axis=1)
     corners = {(0, 0), (0, side - 1), (side - 1, 0), (side - 1, side - 1)}
-    lines = ["fieldbook 1", f'title "Synthetic leveling grid {side} x {side}"',
-             f"defaults level={sd_mm_per_sqrtkm}mm/sqrtkm"]
+    lines = [
+        "fieldbook 1",
+        f'title "Synthetic leveling grid {side} x {side}"',
+        f"defaults level={sd_mm_per_sqrtkm}mm/sqrtkm",
+    ]
     for i, j in sorted(corners):
         lines.append(f"point G{i}_{j} height={heights[i, j]:.5f} fix")
     sd_m = sd_mm_per_sqrtkm * 1e-3 * math.sqrt(spacing_km)

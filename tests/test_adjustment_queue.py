@@ -10,9 +10,8 @@ from pathlib import Path
 import pytest
 
 from server.pipeline import UNLIMITED, adjust_parsed
-from server.web import create_app
 from server.store import projects as routes
-from server.web import dependencies
+from server.web import create_app, dependencies
 from server.web.jobs import AdjustmentQueue, QueueFull
 
 with warnings.catch_warnings():
@@ -117,8 +116,10 @@ def test_waiting_uploads_show_how_many_are_ahead_then_their_results(blocked):
         urls.append(posted.headers["location"])
     eventually(lambda: entered == ["book0.fieldbook"], "the first adjustment holds the slot")
     assert "Iterating" in client.get(urls[0]).text or "Adjusting" in client.get(urls[0]).text
-    eventually(lambda: "Waiting: 1 ahead of this one" in client.get(urls[2]).text,
-               "the third upload shows its place")
+    eventually(
+        lambda: "Waiting: 1 ahead of this one" in client.get(urls[2]).text,
+        "the third upload shows its place",
+    )
     second = client.get(urls[1]).text
     assert "Waiting: 0 ahead of this one" in second and "Waiting for its turn" in second
     assert "Waiting for its turn" not in client.get(urls[0]).text  # the first is adjusting
@@ -160,7 +161,8 @@ def test_the_api_waits_for_a_slot_too(tmp_path, monkeypatch):
     assert holding.wait(WAIT)
     with TestClient(app) as client:
         caller = threading.Thread(
-            target=lambda: answers.append(client.post("/api/adjust", **upload("api.fieldbook"))))
+            target=lambda: answers.append(client.post("/api/adjust", **upload("api.fieldbook")))
+        )
         caller.start()
         eventually(lambda: len(queue._waiting) == 1, "the API request waits in the queue")
         assert started == [] and answers == []  # it has not started while the slot is held
@@ -176,7 +178,8 @@ def test_a_stored_result_is_shown_without_the_queue_but_a_preset_rerun_waits_its
     app = create_app(tmp_path, adjustments_at_once=1, max_waiting=1)
     queue = app.state.jobs.queue
     project_id, result, _ = routes.submit(
-        app.state.store, routes.Upload(DEMO.read_bytes(), DEMO.name, ""))
+        app.state.store, routes.Upload(DEMO.read_bytes(), DEMO.name, "")
+    )
     assert result is not None
     release, holding = threading.Event(), threading.Event()
 
@@ -198,7 +201,9 @@ def test_a_stored_result_is_shown_without_the_queue_but_a_preset_rerun_waits_its
         with TestClient(app) as client:
             stored = client.get(f"/projects/{project_id}")
             assert stored.status_code == 200 and "Passes" in stored.text
-            rerun = client.get(f"/projects/{project_id}/points.csv?misclosure=fgcc-1984-second-order-class-I")
+            rerun = client.get(
+                f"/projects/{project_id}/points.csv?misclosure=fgcc-1984-second-order-class-I"
+            )
             assert rerun.status_code == 503  # adjusting again would have had to queue
     finally:
         release.set()

@@ -21,11 +21,11 @@ import pytest
 
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
-from server.report.tables import observation_rows
 from server.report.csv_export import points_csv
 from server.report.html import report_html
-from server.report.text import report_text
 from server.report.pdf import report_pdf
+from server.report.tables import observation_rows
+from server.report.text import report_text
 from server.web import create_app
 
 with warnings.catch_warnings():
@@ -93,8 +93,10 @@ def test_without_a_scale_factor_booked_equals_used_and_no_reduction_is_shown():
 
 
 def test_scale_factor_applies_only_to_the_distances_after_it():
-    text = SCALED.replace("scale factor=0.99996\ndistance MON-1 C3 223.6177\n",
-                          "distance MON-1 C3 223.6088\nscale factor=0.99996\n")
+    text = SCALED.replace(
+        "scale factor=0.99996\ndistance MON-1 C3 223.6177\n",
+        "distance MON-1 C3 223.6088\nscale factor=0.99996\n",
+    )
     by_line = _by_line(adjust_fieldbook(text))
     assert by_line[8].scale_factor == 1.0 and by_line[8].booked == by_line[8].observed
     assert by_line[10].scale_factor == 0.99996
@@ -147,27 +149,41 @@ distance P B 70.7107
 def test_rows_show_booked_reduction_and_used(scaled):
     rows = {r.line: r for r in observation_rows(scaled)}
     assert (rows[DIST_1].booked, rows[DIST_1].reduction, rows[DIST_1].observed) == (
-        "223.6177", "× 0.99996", "223.6088")
+        "223.6177",
+        "× 0.99996",
+        "223.6088",
+    )
     assert (rows[ANGLE_1].booked, rows[ANGLE_1].reduction, rows[ANGLE_1].observed) == (
-        "656:33:56.2", "− 360°", "296:33:56.2")
+        "656:33:56.2",
+        "− 360°",
+        "296:33:56.2",
+    )
     assert (rows[ANGLE_2].booked, rows[ANGLE_2].reduction, rows[ANGLE_2].observed) == (
-        "-315:00:00.0", "+ 360°", "45:00:00.0")
+        "-315:00:00.0",
+        "+ 360°",
+        "45:00:00.0",
+    )
 
 
 def _cells(html: str, line: int) -> list[str]:
     match = re.search(rf"<tr[^>]*>\s*<td class=\"num\">{line}</td>(.*?)</tr>", html, re.DOTALL)
     assert match, f"no row for line {line}"
-    return [re.sub(r"<[^>]+>", "", c).strip() for c in re.findall(r"<td[^>]*>(.*?)</td>",
-                                                                  match.group(1), re.DOTALL)]
+    return [
+        re.sub(r"<[^>]+>", "", c).strip()
+        for c in re.findall(r"<td[^>]*>(.*?)</td>", match.group(1), re.DOTALL)
+    ]
 
 
 def test_html_report_shows_booked_reduction_used_and_point_notes(scaled):
     html = report_html(scaled)
-    assert re.search(r"<th[^>]*>Booked \(m / D:M:S\)</th>\s*<th[^>]*>Reduction</th>\s*"
-                     r"<th[^>]*>Used</th>", html)
+    assert re.search(
+        r"<th[^>]*>Booked \(m / D:M:S\)</th>\s*<th[^>]*>Reduction</th>\s*"
+        r"<th[^>]*>Used</th>",
+        html,
+    )
     cells = _cells(html, DIST_1)
     start = cells.index("223.6177")
-    assert cells[start:start + 3] == ["223.6177", "× 0.99996", "223.6088"]
+    assert cells[start : start + 3] == ["223.6177", "× 0.99996", "223.6088"]
     assert "2 booked distances reduced by the scale factor 0.99996" in html
     for note in ("brass cap, NE corner", "iron pipe", "rebar with cap"):
         assert note in html
@@ -175,8 +191,9 @@ def test_html_report_shows_booked_reduction_used_and_point_notes(scaled):
 
 def test_text_report_names_the_scale_factor_and_the_point_notes(scaled):
     text = report_text(scaled)
-    assert ("2 booked distances reduced by the scale factor 0.99996 (used = booked × factor)."
-            in text)
+    assert (
+        "2 booked distances reduced by the scale factor 0.99996 (used = booked × factor)." in text
+    )
     c3 = next(line for line in text.splitlines() if line.startswith("C3 "))
     assert c3.rstrip().endswith("rebar with cap")
 
@@ -193,7 +210,10 @@ def test_pdf_shows_the_reduction_and_the_point_notes(scaled):
 def test_csv_and_json_carry_the_point_notes(scaled):
     rows = list(csv.DictReader(io.StringIO(points_csv(scaled))))
     assert {r["name"]: r["note"] for r in rows} == {
-        "MON-1": "brass cap, NE corner", "MON-2": "iron pipe", "C3": "rebar with cap"}
+        "MON-1": "brass cap, NE corner",
+        "MON-2": "iron pipe",
+        "C3": "rebar with cap",
+    }
     points = {p["name"]: p for p in scaled.to_json_dict()["points"]}
     assert points["C3"]["note"] == "rebar with cap"
 
@@ -207,9 +227,11 @@ def test_csv_note_that_looks_like_a_formula_is_neutralised():
 def test_results_page_shows_booked_reduction_used_and_escaped_notes(tmp_path: Path):
     text = SCALED.replace('note="iron pipe"', 'note="<b>iron</b> pipe"')
     with TestClient(create_app(tmp_path / "data")) as client:
-        response = client.post("/projects", files={"fieldbook": ("b.fieldbook", text.encode(),
-                                                                 "text/plain")},
-                               follow_redirects=False)
+        response = client.post(
+            "/projects",
+            files={"fieldbook": ("b.fieldbook", text.encode(), "text/plain")},
+            follow_redirects=False,
+        )
         assert response.status_code == 303
         url = response.headers["location"]
         page = client.get(url)
@@ -222,10 +244,12 @@ def test_results_page_shows_booked_reduction_used_and_escaped_notes(tmp_path: Pa
         html = page.text
         row = re.search(rf'<tr[^>]*data-line="{DIST_1}"[^>]*>(.*?)</tr>', html, re.DOTALL)
         assert row
-        cells = [re.sub(r"<[^>]+>", "", c).strip()
-                 for c in re.findall(r"<td[^>]*>(.*?)</td>", row.group(1), re.DOTALL)]
+        cells = [
+            re.sub(r"<[^>]+>", "", c).strip()
+            for c in re.findall(r"<td[^>]*>(.*?)</td>", row.group(1), re.DOTALL)
+        ]
         start = cells.index("223.6177")
-        assert cells[start:start + 3] == ["223.6177", "× 0.99996", "223.6088"]
+        assert cells[start : start + 3] == ["223.6177", "× 0.99996", "223.6088"]
         assert re.search(r"<th[^>]*>Booked \(m / D:M:S\)</th>", html)
         assert "&lt;b&gt;iron&lt;/b&gt; pipe" in html and "<b>iron</b>" not in html
         assert "rebar with cap" in html

@@ -32,12 +32,16 @@ FOREIGN = {
     "another site": {"Origin": "https://evil.example", "Sec-Fetch-Site": "cross-site"},
     "another site, Origin only": {"Origin": "https://evil.example"},
     "another site, Sec-Fetch-Site only": {"Sec-Fetch-Site": "cross-site"},
-    "another port of the same host": {"Origin": "http://127.0.0.1:9999",
-                                      "Sec-Fetch-Site": "same-site"},
+    "another port of the same host": {
+        "Origin": "http://127.0.0.1:9999",
+        "Sec-Fetch-Site": "same-site",
+    },
     "a sub-domain (same-site)": {"Sec-Fetch-Site": "same-site"},
     "a sandboxed frame or file (Origin: null)": {"Origin": "null"},
-    "another site that calls itself the own": {"Origin": "https://evil.example",
-                                                "Sec-Fetch-Site": "same-origin"},
+    "another site that calls itself the own": {
+        "Origin": "https://evil.example",
+        "Sec-Fetch-Site": "same-origin",
+    },
     "a look-alike host": {"Origin": "http://127.0.0.1:8000.evil.example"},
 }
 
@@ -46,8 +50,12 @@ def _upload(client: TestClient, route: str, headers: dict[str, str]):
     """POST a field book to one of the routes that store or adjust one."""
     if route.startswith("/demos/"):
         return client.post(route, headers=headers, follow_redirects=False)
-    return client.post(route, headers=headers, follow_redirects=False,
-                       files={"fieldbook": ("b.fieldbook", BLUNDER, "text/plain")})
+    return client.post(
+        route,
+        headers=headers,
+        follow_redirects=False,
+        files={"fieldbook": ("b.fieldbook", BLUNDER, "text/plain")},
+    )
 
 
 UPLOAD_ROUTES = ("/projects", "/demos/leveling_blunder", "/api/projects", "/api/adjust")
@@ -105,10 +113,12 @@ def test_review_forms_and_deletion_from_another_site_are_refused(client):
     """The token forms keep their token and are refused from another site even with it."""
     project = _upload(client, "/api/projects", {}).json()["id"]
     foreign = FOREIGN["another site"]
-    for path, data in ((f"/projects/{project}/edits", {"line": "5", "action": "exclude"}),
-                       (f"/projects/{project}/runs", {}),
-                       (f"/projects/{project}/delete", {}),
-                       (f"/projects/{project}/relative-pairs", {})):
+    for path, data in (
+        (f"/projects/{project}/edits", {"line": "5", "action": "exclude"}),
+        (f"/projects/{project}/runs", {}),
+        (f"/projects/{project}/delete", {}),
+        (f"/projects/{project}/relative-pairs", {}),
+    ):
         response = client.post(path, data=data, headers=foreign, follow_redirects=False)
         assert response.status_code == 403, (path, response.status_code)
     for method in ("PUT", "PATCH", "DELETE"):  # refused before any route is looked up

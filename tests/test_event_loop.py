@@ -22,15 +22,19 @@ DEMO = Path(__file__).resolve().parents[1] / "demo_projects" / "leveling_clean.f
 GIVE_UP_AFTER = 20.0
 
 
-def _encoding_waits_for_the_home_page(monkeypatch) -> tuple[threading.Event, threading.Event,
-                                                              list[bool]]:
+def _encoding_waits_for_the_home_page(
+    monkeypatch,
+) -> tuple[threading.Event, threading.Event, list[bool]]:
     """Make the first large JSON encoding wait until the test says the home page answered."""
     started, home_served, outcome = threading.Event(), threading.Event(), []
     render = JSONResponse.render
 
     def waiting_render(self, content):
-        if not started.is_set() and isinstance(content, dict) and (
-                "observations" in content or "result" in content):
+        if (
+            not started.is_set()
+            and isinstance(content, dict)
+            and ("observations" in content or "result" in content)
+        ):
             started.set()
             outcome.append(home_served.wait(GIVE_UP_AFTER))
         return render(self, content)
@@ -80,7 +84,8 @@ def test_the_home_page_answers_while_a_results_page_is_built(tmp_path, monkeypat
     import jinja2
 
     app = create_app(tmp_path)
-    from server.store.projects import Upload, submit as _submit
+    from server.store.projects import Upload
+    from server.store.projects import submit as _submit
 
     project_id, result, _ = _submit(app.state.store, Upload(DEMO.read_bytes(), DEMO.name, ""))
     assert result is not None

@@ -19,14 +19,17 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from server.fieldbook import parser as fieldbook_module
 from server.errors import FieldbookError
+from server.fieldbook import parser as fieldbook_module
 from server.fieldbook.parser import parse_fieldbook
 from server.results.json_text import dumps_indented
 from tests.hypothesis_profiles import examples
 
 ROOT = Path(__file__).resolve().parents[1]
-DEMO_TEXTS = {p.name: p.read_text(encoding="utf-8") for p in sorted((ROOT / "demo_projects").glob("*.fieldbook"))}
+DEMO_TEXTS = {
+    p.name: p.read_text(encoding="utf-8")
+    for p in sorted((ROOT / "demo_projects").glob("*.fieldbook"))
+}
 sys.path.insert(0, str(ROOT / "bench"))
 import networks  # noqa: E402 - bench/networks.py: the benchmark field books
 
@@ -116,12 +119,26 @@ point A height=10 east=0 north=0 fix
 @pytest.mark.parametrize(
     "line",
     [
-        "distance A B 0.0001", "distance A B 0", "distance A B -5", "distance A B 1e9",
-        "distance A B 12m", "distance A A 10", "distance A end 10", "distance A B 10 len=1km",
-        "level A B 1 len=0.0005m", "level A B 1 len=0km", "level A B 1", "level A B 1 len=5",
-        "level A B 1e9 len=1km", "level A B nan len=1km", "level A B 1 len=1km#x",
-        "level A B\t1\tlen=1km", "LEVEL A B 1 len=1km", "level A B 1 len=1KM",
-        "level A " + "B" * 65 + " 1 len=1km", "level A B\u200b 1 len=1km",
+        "distance A B 0.0001",
+        "distance A B 0",
+        "distance A B -5",
+        "distance A B 1e9",
+        "distance A B 12m",
+        "distance A A 10",
+        "distance A end 10",
+        "distance A B 10 len=1km",
+        "level A B 1 len=0.0005m",
+        "level A B 1 len=0km",
+        "level A B 1",
+        "level A B 1 len=5",
+        "level A B 1e9 len=1km",
+        "level A B nan len=1km",
+        "level A B 1 len=1km#x",
+        "level A B\t1\tlen=1km",
+        "LEVEL A B 1 len=1km",
+        "level A B 1 len=1KM",
+        "level A " + "B" * 65 + " 1 len=1km",
+        "level A B\u200b 1 len=1km",
     ],
 )
 def test_edge_lines_parse_alike(line, monkeypatch):
@@ -129,8 +146,20 @@ def test_edge_lines_parse_alike(line, monkeypatch):
 
 
 @pytest.mark.parametrize(
-    "entry", ["B 12:00:00", "A 12:00:00", "end 1:00:00", "Point 1:00:00", "B 12:60:00",
-              "B 361:00:00", "B -1:00:00", "B 12", "B 12:00:00 x", "B 12:00:00#c", "B\t1:2:3"]
+    "entry",
+    [
+        "B 12:00:00",
+        "A 12:00:00",
+        "end 1:00:00",
+        "Point 1:00:00",
+        "B 12:60:00",
+        "B 361:00:00",
+        "B -1:00:00",
+        "B 12",
+        "B 12:00:00 x",
+        "B 12:00:00#c",
+        "B\t1:2:3",
+    ],
 )
 @pytest.mark.parametrize("header", ["", "units angle=gon\n", "units angle=oops\n"])
 def test_edge_directions_parse_alike(entry, header, monkeypatch):
@@ -140,18 +169,76 @@ def test_edge_directions_parse_alike(entry, header, monkeypatch):
 
 # Lines near the fast path's edges: every one must give what the careful path gives.
 _NAMES = st.sampled_from(
-    ["A", "B", "P1", "end", "END", "level", "a=b", "x#y", '"q"', "Ünï", "B\u200b", "N" * 65,
-     "N" * 64, "-1", "C.2", "dir/1"]
+    [
+        "A",
+        "B",
+        "P1",
+        "end",
+        "END",
+        "level",
+        "a=b",
+        "x#y",
+        '"q"',
+        "Ünï",
+        "B\u200b",
+        "N" * 65,
+        "N" * 64,
+        "-1",
+        "C.2",
+        "dir/1",
+    ]
 )
 _NUMBERS = st.sampled_from(
-    ["1.5", "+0.7421", "-2", "0", "0.0001", "1e3", "1e9", "nan", "inf", "1,5", "12m", ".5",
-     "5.", "1e400", "90:00:00", "359:59:59.9", "360:00:00", "12:60:00", "12:00:60", "-1:00:00",
-     "100gon", "45deg", "400.0", "", "x"]
+    [
+        "1.5",
+        "+0.7421",
+        "-2",
+        "0",
+        "0.0001",
+        "1e3",
+        "1e9",
+        "nan",
+        "inf",
+        "1,5",
+        "12m",
+        ".5",
+        "5.",
+        "1e400",
+        "90:00:00",
+        "359:59:59.9",
+        "360:00:00",
+        "12:60:00",
+        "12:00:60",
+        "-1:00:00",
+        "100gon",
+        "45deg",
+        "400.0",
+        "",
+        "x",
+    ]
 )
 _LENGTHS = st.sampled_from(
-    ["", " len=0.5km", " len=420m", " len=0km", " len=0.0005m", " len=1e9km", " len=5",
-     " len=3ft", " LEN=1km", " len=", " setups=3", " sd=2mm", " ignore", " note=\"x\"",
-     " len=1km len=2km", " len=1km#c", "  # comment", "\t", " hi=1m"]
+    [
+        "",
+        " len=0.5km",
+        " len=420m",
+        " len=0km",
+        " len=0.0005m",
+        " len=1e9km",
+        " len=5",
+        " len=3ft",
+        " LEN=1km",
+        " len=",
+        " setups=3",
+        " sd=2mm",
+        " ignore",
+        ' note="x"',
+        " len=1km len=2km",
+        " len=1km#c",
+        "  # comment",
+        "\t",
+        " hi=1m",
+    ]
 )
 _SPACE = st.sampled_from([" ", "  ", "\t", " \t"])
 _LEAD = st.sampled_from(["", " ", "  ", "\t"])
@@ -169,18 +256,32 @@ def _observation_line(draw) -> str:
 def _direction_line(draw) -> str:
     sep = draw(_SPACE)
     parts = [draw(_NAMES), draw(_NUMBERS)]
-    return draw(_LEAD) + sep.join(parts) + draw(st.sampled_from(["", " sd=1sec", " ignore", "#c", " x"]))
+    return (
+        draw(_LEAD)
+        + sep.join(parts)
+        + draw(st.sampled_from(["", " sd=1sec", " ignore", "#c", " x"]))
+    )
 
 
 _HEADERS = st.sampled_from(
-    ["units length=m angle=dms", "units length=ft angle=gon", "units length=usft angle=deg",
-     "units angle=bogus", "units length=m"]
+    [
+        "units length=m angle=dms",
+        "units length=ft angle=gon",
+        "units length=usft angle=deg",
+        "units angle=bogus",
+        "units length=m",
+    ]
 )
 _DEFAULTS = st.sampled_from(
-    ["defaults level=1mm/sqrtkm distance=2mm+2ppm direction=1sec",
-     "defaults level=0.5mm/setup", "defaults level=1mm distance=3mm centering=0.5mm",
-     "defaults level=1mm/sqrtkm+0.2mm/setup", "defaults distance=2cm direction=-1sec",
-     "defaults level=2", ""]
+    [
+        "defaults level=1mm/sqrtkm distance=2mm+2ppm direction=1sec",
+        "defaults level=0.5mm/setup",
+        "defaults level=1mm distance=3mm centering=0.5mm",
+        "defaults level=1mm/sqrtkm+0.2mm/setup",
+        "defaults distance=2cm direction=-1sec",
+        "defaults level=2",
+        "",
+    ]
 )
 
 
@@ -195,7 +296,7 @@ def _book(draw) -> str:
             lines.append(draw(_observation_line()))
         else:
             at = draw(_NAMES)
-            options = draw(st.sampled_from(["", " sd=1sec", " sd=bad", " ignore note=\"n\""]))
+            options = draw(st.sampled_from(["", " sd=1sec", " sd=bad", ' ignore note="n"']))
             lines.append(f"directions {at}{options}")
             lines += draw(st.lists(_direction_line(), max_size=4))
             if draw(st.integers(0, 5)):
@@ -206,8 +307,10 @@ def _book(draw) -> str:
     return "\n".join(lines) + "\n"
 
 
-@settings(max_examples=examples(400),
-          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
+@settings(
+    max_examples=examples(400),
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
 @given(_book())
 def test_fast_and_careful_paths_agree_on_edge_lines(monkeypatch, text):
     assert_same(text, monkeypatch)
@@ -230,7 +333,11 @@ def _records(draw):
     keys = draw(_KEYS)
     # per column: one kind for every record, or anything at all
     kinds = {
-        key: draw(st.sampled_from(["float", "float-or-none", "str", "int", "any", "record-or-none", "list"]))
+        key: draw(
+            st.sampled_from(
+                ["float", "float-or-none", "str", "int", "any", "record-or-none", "list"]
+            )
+        )
         for key in keys
     }
     makers = {
@@ -240,13 +347,17 @@ def _records(draw):
         "int": st.integers(-(10**20), 10**20),
         "any": _SCALAR,
         # as the marks of a misclosure: a list of scalars (or None, or a nested list)
-        "list": st.one_of(st.none(), st.lists(_SCALAR, max_size=3),
-                          st.lists(st.lists(_SCALAR, max_size=2), max_size=2)),
+        "list": st.one_of(
+            st.none(),
+            st.lists(_SCALAR, max_size=3),
+            st.lists(st.lists(_SCALAR, max_size=2), max_size=2),
+        ),
         # as the ellipse of a point: a small record, or None
         "record-or-none": st.one_of(
             st.none(),
-            st.fixed_dictionaries({"semi_major": st.floats(allow_nan=False, allow_infinity=False),
-                                   "azimuth": _SCALAR}),
+            st.fixed_dictionaries(
+                {"semi_major": st.floats(allow_nan=False, allow_infinity=False), "azimuth": _SCALAR}
+            ),
             st.dictionaries(st.text(max_size=3), _SCALAR, max_size=2),
         ),
     }
@@ -255,7 +366,9 @@ def _records(draw):
     if draw(st.integers(0, 4)) == 0 and count > 1:
         # a record whose keys come in another order, or differ
         last = records[-1]
-        records[-1] = dict(reversed(list(last.items()))) if draw(st.booleans()) else {**last, "extra%s": 1}
+        records[-1] = (
+            dict(reversed(list(last.items()))) if draw(st.booleans()) else {**last, "extra%s": 1}
+        )
     if draw(st.integers(0, 4)) == 0:
         records[0][keys[0]] = [1.5, "x", None]  # a container: the general path
     return records

@@ -40,15 +40,18 @@ def _upload(http: httpx.Client, path: Path) -> dict:
 
 
 def test_kill_during_an_adjustment_loses_nothing_and_finishes_nothing(
-        tmp_path: Path, report_figure: Callable[[str], None]):
+    tmp_path: Path, report_figure: Callable[[str], None]
+):
     data, log = tmp_path / "data", tmp_path / "service.log"
     big = leveling_grid(np.random.default_rng(11), side=SIDE).encode()
     crashed: dict[str, object] = {}
 
     with ServiceProcess(data, log) as service:
         with httpx.Client(base_url=service.url, timeout=TIMEOUT_S) as http:
-            earlier = [_upload(http, DEMOS / "leveling_blunder.fieldbook")["id"],
-                       _upload(http, DEMOS / "closed_traverse.fieldbook")["id"]]
+            earlier = [
+                _upload(http, DEMOS / "leveling_blunder.fieldbook")["id"],
+                _upload(http, DEMOS / "closed_traverse.fieldbook")["id"],
+            ]
             before = {pid: http.get(f"/api/projects/{pid}").json() for pid in earlier}
         known_runs = {run_id for run_id, _, _ in run_states(service.database)}
 
@@ -66,8 +69,11 @@ def test_kill_during_an_adjustment_loses_nothing_and_finishes_nothing(
         deadline = time.monotonic() + TIMEOUT_S
         running: list[tuple[int, str, str]] = []
         while not running and sender.is_alive() and time.monotonic() < deadline:
-            running = [r for r in run_states(service.database)
-                       if r[0] not in known_runs and r[2] == "running"]
+            running = [
+                r
+                for r in run_states(service.database)
+                if r[0] not in known_runs and r[2] == "running"
+            ]
             time.sleep(0.01)
         assert running, f"the large upload was never seen running: {crashed}"
         killed_at = time.monotonic()
@@ -75,7 +81,7 @@ def test_kill_during_an_adjustment_loses_nothing_and_finishes_nothing(
         sender.join(timeout=TIMEOUT_S)
         assert not sender.is_alive()
     assert "response" not in crashed, "the adjustment finished before the kill"
-    (run_id, project_id, _), = running
+    ((run_id, project_id, _),) = running
 
     assert integrity_check(data / "stationfit.sqlite3") == "ok"
     states = {r[0]: r[2] for r in run_states(data / "stationfit.sqlite3")}

@@ -17,8 +17,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from server.errors import FieldbookError, Issue
-from server.fieldbook.parser import parse_fieldbook
 from server.fieldbook.model import Fieldbook, Observation
+from server.fieldbook.parser import parse_fieldbook
 from tests.hypothesis_profiles import examples
 
 FOOT_M = 0.3048
@@ -1068,13 +1068,20 @@ def test_a_large_file_keeps_every_observation() -> None:
     assert book.observations[-1].line == first_line + 49_999
 
 
-# --------------------------------------------------------------------------- messages that lead to the fix
+# ------------------------------------------------------------- messages that lead to the fix
 
 
 @pytest.mark.parametrize(
     ("sd", "written"),
-    [('5"', "5sec"), ("5''", "5sec"), ("5″", "5sec"), ("1.5s", "1.5sec"), ("5'", "300sec"),
-     ("0.001deg", "3.6sec"), ("3cc", "0.3mgon")],
+    [
+        ('5"', "5sec"),
+        ("5''", "5sec"),
+        ("5″", "5sec"),
+        ("1.5s", "1.5sec"),
+        ("5'", "300sec"),
+        ("0.001deg", "3.6sec"),
+        ("3cc", "0.3mgon"),
+    ],
 )
 def test_an_angle_marked_as_on_a_field_sheet_is_written_in_sec_for_the_user(
     sd: str, written: str
@@ -1092,9 +1099,11 @@ def test_a_seconds_mark_on_a_distance_is_not_turned_into_sec() -> None:
 
 
 def test_one_wrong_defaults_value_is_reported_once_and_the_rest_of_its_line_still_counts() -> None:
-    text = ('defaults angle=5" distance=2mm\n'
-            "angle A B C 60:00:00\nangle B C A 60:00:00\nangle C A B 60:00:00\n"
-            "distance A B 94.34\n")
+    text = (
+        'defaults angle=5" distance=2mm\n'
+        "angle A B C 60:00:00\nangle B C A 60:00:00\nangle C A B 60:00:00\n"
+        "distance A B 94.34\n"
+    )
     issue = only_issue(text)
     assert (issue.line, issue.token) == (1, 'angle=5"')
     assert "5sec" in issue.message
@@ -1144,7 +1153,8 @@ def test_a_decimal_number_in_a_dms_file_is_offered_as_d_m_s(
     assert "deg" not in issue.message
     # the suggestion is the angle that D.MMSS means (degrees + minutes/60 + seconds/3600)
     assert single(f"azimuth A B {dms}\n").value == pytest.approx(
-        math.radians(degrees) % (2 * math.pi), abs=1e-12)
+        math.radians(degrees) % (2 * math.pi), abs=1e-12
+    )
 
 
 @pytest.mark.parametrize("text", ["12.5", "291.7650", "291.1575", "400.1010", "1e2"])
@@ -1176,8 +1186,15 @@ def _near_misses(book: Fieldbook) -> list[Issue]:
 
 @pytest.mark.parametrize(
     ("name", "meant"),
-    [("BM-12", "BM-21"), ("bm-21", "BM-21"), ("BM21", "BM-21"), ("BM_21", "BM-21"),
-     ("BMM-21", "BM-21"), ("BM-3O", "BM-30"), ("BM-2l", "BM-21")],
+    [
+        ("BM-12", "BM-21"),
+        ("bm-21", "BM-21"),
+        ("BM21", "BM-21"),
+        ("BM_21", "BM-21"),
+        ("BMM-21", "BM-21"),
+        ("BM-3O", "BM-30"),
+        ("BM-2l", "BM-21"),
+    ],
 )
 def test_a_point_named_once_like_a_declared_one_gets_a_did_you_mean(name: str, meant: str) -> None:
     book = parse(LEVEL_RUN + f"level TP2 {name} +0.500 len=0.2km\n")
@@ -1220,5 +1237,7 @@ def test_the_did_you_mean_warning_reaches_the_result() -> None:
     from server.pipeline import adjust_fieldbook
 
     result = adjust_fieldbook(LEVEL_RUN + "level TP2 BM-12 +0.500 len=0.2km\n", source="run.fb")
-    assert any(w.startswith("run.fb:7: point BM-12") and "did you mean 'BM-21'" in w
-               for w in result.warnings)
+    assert any(
+        w.startswith("run.fb:7: point BM-12") and "did you mean 'BM-21'" in w
+        for w in result.warnings
+    )

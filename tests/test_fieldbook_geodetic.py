@@ -124,8 +124,13 @@ def test_crs_by_epsg_code_keeps_the_code_and_the_canonical_text(text: str, code:
 @pytest.mark.parametrize(
     ("units", "lat", "lon", "lat_rad", "lon_rad"),
     [
-        ("angle=dms", "-33:52:04.5", "151:12:36", -(33 + 52 / 60 + 4.5 / 3600) * DEG,
-         (151 + 12 / 60 + 36 / 3600) * DEG),
+        (
+            "angle=dms",
+            "-33:52:04.5",
+            "151:12:36",
+            -(33 + 52 / 60 + 4.5 / 3600) * DEG,
+            (151 + 12 / 60 + 36 / 3600) * DEG,
+        ),
         ("angle=dms", "-0:30:00", "-0:15:00", -0.5 * DEG, -0.25 * DEG),
         ("angle=deg", "47.05", "-122.8916667", 47.05 * DEG, -122.8916667 * DEG),
         ("angle=gon", "52.2777778", "-136.5462963", 52.2777778 * GON, -136.5462963 * GON),
@@ -135,8 +140,9 @@ def test_crs_by_epsg_code_keeps_the_code_and_the_canonical_text(text: str, code:
 def test_crs_local_reads_its_origin_in_the_files_angle_unit(
     units: str, lat: str, lon: str, lat_rad: float, lon_rad: float
 ) -> None:
-    book = parse(f"units {units}\ncrs local lat={lat} lon={lon}\n"
-                 "defaults distance=2mm\ndistance A B 10\n")
+    book = parse(
+        f"units {units}\ncrs local lat={lat} lon={lon}\ndefaults distance=2mm\ndistance A B 10\n"
+    )
     assert book.crs is not None and book.crs.local
     assert book.crs.latitude == pytest.approx(lat_rad, abs=1e-15)
     assert book.crs.longitude == pytest.approx(lon_rad, abs=1e-15)
@@ -145,14 +151,20 @@ def test_crs_local_reads_its_origin_in_the_files_angle_unit(
 
 @pytest.mark.parametrize(
     ("written", "metres"),
-    [("5000m", 5000.0), ("16404.2ft", 16404.2 * FOOT_M), ("16404.2usft", 16404.2 * US_FOOT_M),
-     ("2.5km", 2500.0)],
+    [
+        ("5000m", 5000.0),
+        ("16404.2ft", 16404.2 * FOOT_M),
+        ("16404.2usft", 16404.2 * US_FOOT_M),
+        ("2.5km", 2500.0),
+    ],
 )
 def test_the_false_origin_of_a_site_grid_is_a_length_with_its_unit(
     written: str, metres: float
 ) -> None:
-    book = parse(f"units length=usft\ncrs local lat=10:00:00 lon=20:00:00 east={written} "
-                 f"north={written}\ndefaults distance=2mm\ndistance A B 10\n")
+    book = parse(
+        f"units length=usft\ncrs local lat=10:00:00 lon=20:00:00 east={written} "
+        f"north={written}\ndefaults distance=2mm\ndistance A B 10\n"
+    )
     assert book.crs is not None
     assert book.crs.false_east == pytest.approx(metres, rel=1e-15)
     assert book.crs.false_north == pytest.approx(metres, rel=1e-15)
@@ -160,8 +172,13 @@ def test_the_false_origin_of_a_site_grid_is_a_length_with_its_unit(
 
 @pytest.mark.parametrize(
     ("written", "metres"),
-    [("-28.41m", -28.41), ("-93.2ft", -93.2 * FOOT_M), ("-93.2usft", -93.2 * US_FOOT_M),
-     ("12cm", 0.12), ("0m", 0.0)],
+    [
+        ("-28.41m", -28.41),
+        ("-93.2ft", -93.2 * FOOT_M),
+        ("-93.2usft", -93.2 * US_FOOT_M),
+        ("12cm", 0.12),
+        ("0m", 0.0),
+    ],
 )
 def test_geoid_undulation_in_any_length_unit(written: str, metres: float) -> None:
     book = parse(f"geoid undulation={written}\npoint A height=1 geoid={written}\n")
@@ -222,8 +239,10 @@ def test_points_by_latitude_and_longitude_up_to_the_ends_of_their_ranges(
 
 
 def test_latitude_and_longitude_are_the_horizontal_position_for_fixing_and_weighting() -> None:
-    book = parse(CRS + "point P lat=10:00:00 lon=20:00:00 height=5 sd_en=2cm fix=h\n"
-                 "point Q lat=10:00:01 lon=20:00:01 sd=1cm\n")
+    book = parse(
+        CRS + "point P lat=10:00:00 lon=20:00:00 height=5 sd_en=2cm fix=h\n"
+        "point Q lat=10:00:01 lon=20:00:01 sd=1cm\n"
+    )
     p, q = book.points
     assert (p.fixed, p.weighted, p.sd_en) == ("h", "en", pytest.approx(0.02))
     assert (q.fixed, q.weighted, q.sd_en) == ("", "en", pytest.approx(0.01))
@@ -239,23 +258,28 @@ def test_latitude_and_longitude_are_the_horizontal_position_for_fixing_and_weigh
 def test_baseline_components_are_in_the_files_unit_unless_they_carry_their_own(
     unit: str, metres_per_unit: float
 ) -> None:
-    book = parse(f"units length={unit}\n{CRS}defaults baseline=3mm\n"
-                 "baseline A B 1212.3638 -8.4031 554.7086\n"
-                 "baseline A C 1212.3638m -8.4031ft 554.7086usft\n")
+    book = parse(
+        f"units length={unit}\n{CRS}defaults baseline=3mm\n"
+        "baseline A B 1212.3638 -8.4031 554.7086\n"
+        "baseline A C 1212.3638m -8.4031ft 554.7086usft\n"
+    )
     plain, suffixed = baselines(book)
     assert plain.baseline is not None and suffixed.baseline is not None
     assert plain.baseline.components == pytest.approx(
         (1212.3638 * metres_per_unit, -8.4031 * metres_per_unit, 554.7086 * metres_per_unit),
-        rel=1e-15)
+        rel=1e-15,
+    )
     assert suffixed.baseline.components == pytest.approx(
-        (1212.3638, -8.4031 * FOOT_M, 554.7086 * US_FOOT_M), rel=1e-15)
+        (1212.3638, -8.4031 * FOOT_M, 554.7086 * US_FOOT_M), rel=1e-15
+    )
     # the value listed for a baseline is its length: |(dx, dy, dz)|
     assert plain.value == pytest.approx(math.hypot(*plain.baseline.components), rel=1e-15)
 
 
 def test_baseline_covariance_is_s_r_s_with_the_scale_on_the_standard_deviations() -> None:
-    book = parse(CRS + "scale baseline=2.5\n"
-                 "baseline A B 100 200 300 sd=2mm,0.01ft,5mm corr=0.1,-0.2,0.3\n")
+    book = parse(
+        CRS + "scale baseline=2.5\nbaseline A B 100 200 300 sd=2mm,0.01ft,5mm corr=0.1,-0.2,0.3\n"
+    )
     (obs,) = baselines(book)
     vector = obs.baseline
     assert vector is not None
@@ -270,8 +294,10 @@ def test_baseline_covariance_is_s_r_s_with_the_scale_on_the_standard_deviations(
 
 
 def test_a_baseline_without_sd_takes_the_default_for_each_component_and_no_correlation() -> None:
-    book = parse(CRS + "defaults baseline=4mm centering=1.5mm\nbaseline A B 1 2 3\n"
-                 "baseline A C 1 2 3 corr=0.5,0,0\n")
+    book = parse(
+        CRS + "defaults baseline=4mm centering=1.5mm\nbaseline A B 1 2 3\n"
+        "baseline A C 1 2 3 corr=0.5,0,0\n"
+    )
     plain, correlated = baselines(book)
     assert plain.baseline is not None and correlated.baseline is not None
     assert plain.baseline.sd == (0.004, 0.004, 0.004)
@@ -284,9 +310,9 @@ def test_each_scale_option_keeps_its_own_value() -> None:
     book = parse(
         CRS + "defaults baseline=2mm distance=2mm\n"
         "scale factor=0.9996\n"
-        "scale baseline=3\n"           # the grid factor stays 0.9996
+        "scale baseline=3\n"  # the grid factor stays 0.9996
         "distance A B 100\nbaseline A B 1 2 3\n"
-        "scale factor=1.0002\n"        # the baseline factor stays 3
+        "scale factor=1.0002\n"  # the baseline factor stays 3
         "distance A B 100\nbaseline A B 1 2 3\n"
         "scale factor=1 baseline=1\n"
         "distance A B 100\nbaseline A B 1 2 3\n"
@@ -300,8 +326,12 @@ def test_each_scale_option_keeps_its_own_value() -> None:
 
 
 def test_baseline_flags_notes_and_the_names_of_its_ends() -> None:
-    (obs,) = baselines(parse(CRS + 'defaults baseline=3mm\nbaseline P1 P2 1 2 3 ignore '
-                             'note="session 2, antenna swap"\n'))
+    (obs,) = baselines(
+        parse(
+            CRS + "defaults baseline=3mm\nbaseline P1 P2 1 2 3 ignore "
+            'note="session 2, antenna swap"\n'
+        )
+    )
     assert (obs.from_point, obs.at, obs.to) == ("P1", None, "P2")
     assert obs.ignored and obs.note == "session 2, antenna swap"
 
@@ -325,7 +355,8 @@ def _accepted(rxy: float, rxz: float, ryz: float) -> bool:
         parse(text)
     except FieldbookError as exc:
         assert [(i.line, "is not positive definite" in i.message) for i in exc.issues] == [
-            (2, True)]
+            (2, True)
+        ]
         return False
     return True
 
@@ -335,8 +366,7 @@ def _accepted(rxy: float, rxz: float, ryz: float) -> bool:
 def test_correlations_are_accepted_exactly_when_cholesky_factors_them(
     rxy: float, rxz: float, ryz: float
 ) -> None:
-    eigenvalues = np.linalg.eigvalsh(
-        np.array([[1.0, rxy, rxz], [rxy, 1.0, ryz], [rxz, ryz, 1.0]]))
+    eigenvalues = np.linalg.eigvalsh(np.array([[1.0, rxy, rxz], [rxy, 1.0, ryz], [rxz, ryz, 1.0]]))
     # The parser also refuses the numerically singular sliver 0 < det R <= 1e-9 (documented);
     # there and at the rounding edge of det = 0 the two tests may rightly differ.
     if abs(float(np.prod(eigenvalues))) <= 10 * MIN_CORRELATION_DETERMINANT:
@@ -348,9 +378,9 @@ def test_correlations_are_accepted_exactly_when_cholesky_factors_them(
     ("corr", "positive_definite"),
     [
         ("0.21,-0.43,-0.18", True),
-        ("0.9,0.9,0.9", True),      # strongly but consistently correlated
-        ("0.9,0.9,-0.9", False),    # X~Y and X~Z strongly, yet Y against Z: impossible
-        ("0.7,0.7,-0.1", False),    # det R = 1 - 0.49 - 0.49 - 0.01 - 0.098 < 0
+        ("0.9,0.9,0.9", True),  # strongly but consistently correlated
+        ("0.9,0.9,-0.9", False),  # X~Y and X~Z strongly, yet Y against Z: impossible
+        ("0.7,0.7,-0.1", False),  # det R = 1 - 0.49 - 0.49 - 0.01 - 0.098 < 0
         ("-0.6,-0.6,-0.6", False),  # three mutually anticorrelated: det R = -0.296
         ("0.5,0.5,0.5", True),
     ],
@@ -374,7 +404,15 @@ def test_planned_values_are_read_with_their_standard_deviation_and_no_value() ->
     )
     planned = [o for o in book.observations if o.planned]
     assert [o.kind for o in planned] == [
-        "level", "distance", "angle", "azimuth", "slope", "zenith", "baseline", "direction"]
+        "level",
+        "distance",
+        "angle",
+        "azimuth",
+        "slope",
+        "zenith",
+        "baseline",
+        "direction",
+    ]
     assert all(math.isnan(o.value) and math.isnan(o.booked) for o in planned)  # type: ignore[arg-type]
     assert planned[0].length_km == pytest.approx(0.4)
     assert planned[1].sigma.ppm == 2.0
@@ -386,9 +424,11 @@ def test_planned_values_are_read_with_their_standard_deviation_and_no_value() ->
 
 
 def test_adjusting_planned_observations_is_an_error_naming_each_line() -> None:
-    text = ("defaults distance=2mm direction=1sec\npoint A east=0 north=0 fix\n"
-            "point B east=100 north=0 fix\ndistance A B ?\ndistance A C 50\n"
-            "directions A\n  B 0:00:00\n  C ?\nend\n")
+    text = (
+        "defaults distance=2mm direction=1sec\npoint A east=0 north=0 fix\n"
+        "point B east=100 north=0 fix\ndistance A B ?\ndistance A C 50\n"
+        "directions A\n  B 0:00:00\n  C ?\nend\n"
+    )
     with pytest.raises(FieldbookError) as caught:
         adjust_fieldbook(text, source="plan.fieldbook")
     assert [issue.line for issue in caught.value.issues] == [4, 8]
@@ -412,9 +452,11 @@ def test_the_gnss_control_book_adjusts_in_the_geodetic_model() -> None:
 
 
 def test_ignored_3d_lines_stay_in_the_book_and_the_rest_adjusts() -> None:
-    text = (CRS + "defaults level=1mm/sqrtkm baseline=3mm slope=2mm\npoint A height=10 fix\n"
-            "level A B 1.0 len=1km\nlevel B A -1.002 len=1km\n"
-            "baseline A B 1 2 3 ignore\nslope A B 3.8 ignore\n")
+    text = (
+        CRS + "defaults level=1mm/sqrtkm baseline=3mm slope=2mm\npoint A height=10 fix\n"
+        "level A B 1.0 len=1km\nlevel B A -1.002 len=1km\n"
+        "baseline A B 1 2 3 ignore\nslope A B 3.8 ignore\n"
+    )
     result = adjust_fieldbook(text)
     assert result.to_json_dict()["summary"]["used_observations"] == 2
 
@@ -422,9 +464,11 @@ def test_ignored_3d_lines_stay_in_the_book_and_the_rest_adjusts() -> None:
 def test_a_point_given_by_latitude_and_longitude_is_placed_on_the_grid() -> None:
     """A plane file with a crs line may give control by lat/lon: it is projected through
     pyproj (the reference library) before the plane adjustment."""
-    text = (CRS + "defaults distance=2mm\npoint A lat=45:00:00 lon=15:00:00 fix\n"
-            "point B east=500100 north=4982950 fix\ndistance A C 60\ndistance B C 60\n"
-            "distance A B 100.000\npoint C east=500050 north=4982990\n")
+    text = (
+        CRS + "defaults distance=2mm\npoint A lat=45:00:00 lon=15:00:00 fix\n"
+        "point B east=500100 north=4982950 fix\ndistance A C 60\ndistance B C 60\n"
+        "distance A B 100.000\npoint C east=500050 north=4982990\n"
+    )
     result = adjust_fieldbook(text)
     a = next(p for p in result.points if p.name == "A")
     east, north = pyproj.Transformer.from_crs(4326, 32633, always_xy=True).transform(15.0, 45.0)
@@ -434,8 +478,14 @@ def test_a_point_given_by_latitude_and_longitude_is_placed_on_the_grid() -> None
 def test_the_command_line_adjusts_a_geodetic_book(tmp_path: Path) -> None:
     book = tmp_path / "harbor.fieldbook"
     book.write_text(HARBOR_HILL, encoding="utf-8")
-    proc = subprocess.run([sys.executable, "-m", "server", "adjust", str(book), "--json"],
-                          cwd=ROOT, capture_output=True, text=True, timeout=120, check=False)
+    proc = subprocess.run(
+        [sys.executable, "-m", "server", "adjust", str(book), "--json"],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+    )
     assert proc.returncode == 0, proc.stderr
     assert '"K-7"' in proc.stdout and "Traceback" not in proc.stderr
 
@@ -443,13 +493,17 @@ def test_the_command_line_adjusts_a_geodetic_book(tmp_path: Path) -> None:
 # --------------------------------------------------------------------------- the crs rule
 
 
-@pytest.mark.parametrize("kind_line", ["slope A B 100", "zenith A B 90:00:00",
-                                       "baseline A B 1 2 3", "baseline A B 1 2 3 ignore"])
+@pytest.mark.parametrize(
+    "kind_line",
+    ["slope A B 100", "zenith A B 90:00:00", "baseline A B 1 2 3", "baseline A B 1 2 3 ignore"],
+)
 def test_a_3d_statement_without_crs_is_an_error_on_the_first_one_showing_both_forms(
     kind_line: str,
 ) -> None:
-    text = ("defaults slope=2mm zenith=1sec baseline=3mm distance=2mm\n"
-            f"distance A B 10\n{kind_line}\n{kind_line}\nzenith A B 90:00:00\n")
+    text = (
+        "defaults slope=2mm zenith=1sec baseline=3mm distance=2mm\n"
+        f"distance A B 10\n{kind_line}\n{kind_line}\nzenith A B 90:00:00\n"
+    )
     issue = only_issue(text)
     assert (issue.line, issue.token) == (3, kind_line.split()[0])
     assert "needs a 'crs' line" in issue.message
@@ -457,13 +511,14 @@ def test_a_3d_statement_without_crs_is_an_error_on_the_first_one_showing_both_fo
 
 
 def test_a_crs_line_in_a_plane_file_is_allowed_and_adjusts_as_before() -> None:
-    plain = "defaults level=1mm/sqrtkm\npoint A height=10 fix\nlevel A B 1 len=1km\n" \
-            "level B A -1.001 len=1km\n"
+    plain = (
+        "defaults level=1mm/sqrtkm\npoint A height=10 fix\nlevel A B 1 len=1km\n"
+        "level B A -1.001 len=1km\n"
+    )
     with_crs = CRS + plain
     before = adjust_fieldbook(plain).to_json_dict()
     after = adjust_fieldbook(with_crs).to_json_dict()
-    added = {"latitude", "longitude", "ellipsoidal_height", "geoid", "scale_factor",
-             "convergence"}
+    added = {"latitude", "longitude", "ellipsoidal_height", "geoid", "scale_factor", "convergence"}
     for old, new in zip(before["points"], after["points"], strict=True):
         assert {k: v for k, v in new.items() if k not in added} == old
         assert new["latitude"] is None  # a height alone has no place on the grid
@@ -475,8 +530,7 @@ def test_a_wrong_crs_line_is_reported_once_not_again_at_the_3d_lines() -> None:
 
 
 def test_a_crs_after_the_first_point_is_reported_where_it_stands() -> None:
-    issue = only_issue("defaults slope=2mm\npoint A east=1 north=2\ncrs EPSG:32633\n"
-                       "slope A B 10\n")
+    issue = only_issue("defaults slope=2mm\npoint A east=1 north=2\ncrs EPSG:32633\nslope A B 10\n")
     assert issue.line == 3 and "must come before the first point" in issue.message
 
 
@@ -514,8 +568,11 @@ def test_a_crs_after_the_first_point_is_reported_where_it_stands() -> None:
         ("epoch 2026-02-30", "2026-02-30", "there is no such day"),
         ("epoch 14.03.2026", "14.03.2026", "write a date as 2026-03-14"),
         ("epoch 2026-03-14T10:30", "2026-03-14T10:30", "write 2026-03-14T10:30Z if this is UTC"),
-        ("epoch 2026-03-14T11:30+01:00", "2026-03-14T11:30+01:00",
-         "write the same moment as 2026-03-14T10:30Z"),
+        (
+            "epoch 2026-03-14T11:30+01:00",
+            "2026-03-14T11:30+01:00",
+            "write the same moment as 2026-03-14T10:30Z",
+        ),
         ("epoch 2026-03-14T24:00Z", "2026-03-14T24:00Z", "out of range"),
         ("epoch", "epoch", "epoch needs the date"),
         # misspelt keywords get the nearest
@@ -530,8 +587,9 @@ def test_header_errors_name_their_line_and_the_fix(line: str, token: str, fragme
     assert fragment in issue.message
 
 
-@pytest.mark.parametrize("statement", ["crs EPSG:32633", "geoid undulation=1m",
-                                       "refraction k=0.1", "epoch 2026-03-14"])
+@pytest.mark.parametrize(
+    "statement", ["crs EPSG:32633", "geoid undulation=1m", "refraction k=0.1", "epoch 2026-03-14"]
+)
 def test_each_geodetic_header_statement_appears_once_before_the_body(statement: str) -> None:
     twice = only_issue(f"{statement}\n{statement}\npoint A height=1\n")
     assert twice.line == 2 and "already given on line 1; it may appear once" in twice.message
@@ -544,8 +602,11 @@ def test_each_geodetic_header_statement_appears_once_before_the_body(statement: 
     [
         ("point P lat=45:00:00", "lat=45:00:00", "has lat= but no lon="),
         ("point P lon=15:00:00 height=3", "lon=15:00:00", "has lon= but no lat="),
-        ("point P lat=45:00:00 lon=15:00:00 east=1 north=2", "lat=45:00:00",
-         "give its position one way only"),
+        (
+            "point P lat=45:00:00 lon=15:00:00 east=1 north=2",
+            "lat=45:00:00",
+            "give its position one way only",
+        ),
         ("point P lat=90:00:00.1 lon=15:00:00", "lat=90:00:00.1", "latitude lies between"),
         ("point P lat=-91:00:00 lon=15:00:00", "lat=-91:00:00", "(south negative)"),
         ("point P lat=45:00:00 lon=180:00:01", "lon=180:00:01", "(west negative)"),
@@ -578,12 +639,18 @@ def test_latitude_and_longitude_need_a_crs_line() -> None:
         ("baseline A B 1 2 3 sd=2,2,5", "sd=2,2,5", "needs a unit"),
         ("baseline A B 1 2 3 sd=2mm,2sec,5mm", "sd=2mm,2sec,5mm", "is an angle"),
         ("baseline A B 1 2 3 sd=2mm,0mm,5mm", "sd=2mm,0mm,5mm", "must be greater than zero"),
-        ("baseline A B 1 2 3 sd=2mm+1ppm,2mm,5mm", "sd=2mm+1ppm,2mm,5mm",
-         "ppm part applies to distances only"),
+        (
+            "baseline A B 1 2 3 sd=2mm+1ppm,2mm,5mm",
+            "sd=2mm+1ppm,2mm,5mm",
+            "ppm part applies to distances only",
+        ),
         ("baseline A B 1 2 3 corr=1,0,0", "corr=1,0,0", "strictly between -1 and 1"),
         ("baseline A B 1 2 3 corr=-1,0,0", "corr=-1,0,0", "strictly between -1 and 1"),
-        ("baseline A B 1 2 3 corr=0.9,0.9,-0.9", "corr=0.9,0.9,-0.9",
-         "not positive definite (determinant -2.89)"),
+        (
+            "baseline A B 1 2 3 corr=0.9,0.9,-0.9",
+            "corr=0.9,0.9,-0.9",
+            "not positive definite (determinant -2.89)",
+        ),
         ("baseline A B 1 2 3 corr=0.1,0.2", "corr=0.1,0.2", "corr= takes three correlations"),
         ("baseline A B 1 2 3 corr=a,b,c", "corr=a,b,c", "is not a number"),
         ("baseline A B 1 2 3 hi=1.5m", "hi=1.5m", "antenna heights are applied when"),
@@ -618,8 +685,9 @@ def test_a_baseline_with_no_standard_deviation_in_force_says_where_to_give_one()
 
 
 def test_defaults_baseline_takes_one_length_and_a_wrong_one_is_reported_once() -> None:
-    issue = only_issue(CRS + "defaults baseline=2mm,2mm,5mm\nbaseline A B 1 2 3\n"
-                       "baseline A C 1 2 3\n")
+    issue = only_issue(
+        CRS + "defaults baseline=2mm,2mm,5mm\nbaseline A B 1 2 3\nbaseline A C 1 2 3\n"
+    )
     assert (issue.line, issue.token) == (2, "baseline=2mm,2mm,5mm")
     assert "takes one length, used for each of DX, DY and DZ" in issue.message
     issue = only_issue(CRS + "defaults baseline=2sec\nbaseline A B 1 2 3\n")
@@ -648,9 +716,11 @@ def test_scale_baseline_errors(line: str, token: str, fragment: str) -> None:
 def test_new_statements_read_the_same_with_and_without_the_fast_path(
     monkeypatch: pytest.MonkeyPatch,
 ) -> None:
-    text = HARBOR_HILL + ("defaults distance=2mm direction=1sec level=1mm/sqrtkm\n"
-                          "distance RIDGE K-7 ?\nlevel RIDGE K-7 ? len=1.3km\n"
-                          "directions RIDGE\n  CEDAR 0:00:00\n  K-7 ?\nend\n")
+    text = HARBOR_HILL + (
+        "defaults distance=2mm direction=1sec level=1mm/sqrtkm\n"
+        "distance RIDGE K-7 ?\nlevel RIDGE K-7 ? len=1.3km\n"
+        "directions RIDGE\n  CEDAR 0:00:00\n  K-7 ?\nend\n"
+    )
     books = []
     for fast in (False, True):
         monkeypatch.setattr(parser_module, "_FAST_LINES", fast)
@@ -685,8 +755,9 @@ def test_leaving_out_and_bringing_back_a_baseline_edits_its_line() -> None:
 
 def test_a_baseline_value_is_corrected_as_three_components() -> None:
     assert booked_value(BOOK_WITH_BASELINE, 6) == "1.0,2.0,3.0"
-    out = apply_edits(BOOK_WITH_BASELINE, [_edit("correct", value="1.0,2.1,3.0",
-                                                 previous="1.0,2.0,3.0")])
+    out = apply_edits(
+        BOOK_WITH_BASELINE, [_edit("correct", value="1.0,2.1,3.0", previous="1.0,2.0,3.0")]
+    )
     assert out.splitlines()[5].startswith("baseline A B 1.0 2.1 3.0 corr=0.1,0.2,0.3")
     assert "corrected from 1.0,2.0,3.0 on 2026-12-04" in out
     vector = baselines(parse(out))[0].baseline
@@ -703,5 +774,7 @@ def test_a_baseline_sd_edit_takes_three_lengths_or_one_for_all() -> None:
     vector = baselines(parse(three))[0].baseline
     assert vector is not None and vector.sd == pytest.approx((0.002, 0.003, 0.006))
     with pytest.raises(Exception, match="takes one standard deviation"):
-        apply_edits(BOOK_WITH_BASELINE, [ObservationEdit(line=4, action="sd", reason="r",
-                                                         date="2026-12-04", sd="1mm,1mm,1mm")])
+        apply_edits(
+            BOOK_WITH_BASELINE,
+            [ObservationEdit(line=4, action="sd", reason="r", date="2026-12-04", sd="1mm,1mm,1mm")],
+        )

@@ -26,6 +26,7 @@ def dms(degrees: int, minutes: int, seconds: float, sign: int = 1) -> float:
 
 # --- ellipsoid: geodetic <-> Earth-centred ------------------------------------------------------
 
+
 def test_geodetic_to_earth_centred_ordnance_survey_worked_example():
     """Ordnance Survey, *A guide to coordinate systems in Great Britain*, worked example on
     GRS80: 53°36′43.1653″N, 1°39′51.9920″W, h 299.800 m → X 3790644.900, Y −110149.210,
@@ -36,8 +37,9 @@ def test_geodetic_to_earth_centred_ordnance_survey_worked_example():
     # its e² comes from the semi-minor axis rounded to 0.1 mm (computed: 1.3e-11 more than
     # f(2 − f) with 1/f = 298.257222101), which moves ν by 3e-5 m
     assert GRS80.e2 == pytest.approx(6.6943800355e-03, abs=2e-11)
-    assert GRS80.prime_vertical_radius(dms(53, 36, 43.1653)) == pytest.approx(6.3920173768e6,
-                                                                               abs=1e-4)
+    assert GRS80.prime_vertical_radius(dms(53, 36, 43.1653)) == pytest.approx(
+        6.3920173768e6, abs=1e-4
+    )
     lat, lon, h = GRS80.from_ecef(np.array([3790644.900, -110149.210, 5111482.970]))
     assert math.degrees(lat) * 3600 == pytest.approx((53 * 60 + 36) * 60 + 43.1653, abs=1e-4)
     assert math.degrees(lon) * 3600 == pytest.approx(-((1 * 60 + 39) * 60 + 51.9920), abs=1e-4)
@@ -78,10 +80,12 @@ def test_radii_of_curvature_are_the_rates_of_the_position():
     d_lon = (GRS80.to_ecef(lat, lon + step, h) - GRS80.to_ecef(lat, lon - step, h)) / (2 * step)
     assert np.linalg.norm(d_lat) == pytest.approx(GRS80.meridian_radius(lat) + h, rel=1e-9)
     assert np.linalg.norm(d_lon) == pytest.approx(
-        (GRS80.prime_vertical_radius(lat) + h) * math.cos(lat), rel=1e-9)
+        (GRS80.prime_vertical_radius(lat) + h) * math.cos(lat), rel=1e-9
+    )
 
 
 # --- projected CRSs ---------------------------------------------------------------------------
+
 
 def test_british_national_grid_against_epsg_guidance_note_example():
     """EPSG Guidance Note 7-2, transverse Mercator example on the British National Grid:
@@ -126,8 +130,10 @@ def test_convergence_is_the_grid_direction_of_true_north():
     grid = crs_from_epsg("EPSG:32113")  # central meridian 106°15′W
     for lon in (NM_LON, dms(105, 40, 0, -1)):
         end = Geodesic.WGS84.Direct(math.degrees(NM_LAT), math.degrees(lon), 0.0, 10.0)
-        east, north = grid.geodetic_to_grid(np.array([NM_LAT, math.radians(end["lat2"])]),
-                                            np.array([lon, math.radians(end["lon2"])]))
+        east, north = grid.geodetic_to_grid(
+            np.array([NM_LAT, math.radians(end["lat2"])]),
+            np.array([lon, math.radians(end["lon2"])]),
+        )
         grid_azimuth = math.atan2(east[1] - east[0], north[1] - north[0])
         gamma = float(grid.factors(NM_LAT, lon).convergence)
         assert grid_azimuth + gamma == pytest.approx(0.0, abs=1e-8)
@@ -169,7 +175,8 @@ def test_northing_first_crs_still_gives_east_then_north():
     east, north = grid.geodetic_to_grid(lat, lon)
     tm = pyproj.Transformer.from_pipeline(
         "+proj=pipeline +step +proj=unitconvert +xy_in=deg +xy_out=rad +step +proj=tmerc "
-        "+lat_0=0 +lon_0=173 +k=0.9996 +x_0=1600000 +y_0=10000000 +ellps=GRS80")
+        "+lat_0=0 +lon_0=173 +k=0.9996 +x_0=1600000 +y_0=10000000 +ellps=GRS80"
+    )
     ref_east, ref_north = tm.transform(np.degrees(lon), np.degrees(lat))
     assert east == pytest.approx(ref_east, abs=1e-6) and north == pytest.approx(ref_north, abs=1e-6)
     assert (east > 1.7e6).all() and (north > 5.4e6).all()
@@ -205,22 +212,25 @@ def test_an_operation_with_a_datum_change_is_refused():
     _require_conversion("EPSG:27700", pyproj.CRS("EPSG:27700"), own)
 
 
-@pytest.mark.parametrize("text, words", [
-    ("EPSG:4326", "geographic CRS"),
-    ("EPSG:4978", "geocentric CRS"),
-    ("EPSG:5703", "vertical CRS"),
-    ("EPSG:7405", "compound CRS with heights; give its horizontal part, EPSG:27700"),
-    ("EPSG:2053", "axes pointing west, south"),
-    ("EPSG:3031", "axes pointing north, north"),
-    ("EPSG:27572", "Paris meridian"),
-    ("EPSG:3857", "not a conformal projection"),
-    ("EPSG:5071", "not a conformal projection"),  # Albers equal-area
-    ("EPSG:32600", "give the code of a single zone"),  # UTM zones, northern hemisphere
-    ("EPSG:999999", "not a coordinate reference system in the EPSG database"),
-    ("32633", "not an EPSG code"),
-    ("EPSG:", "not an EPSG code"),
-    ("ESRI:102003", "not an EPSG code"),
-])
+@pytest.mark.parametrize(
+    "text, words",
+    [
+        ("EPSG:4326", "geographic CRS"),
+        ("EPSG:4978", "geocentric CRS"),
+        ("EPSG:5703", "vertical CRS"),
+        ("EPSG:7405", "compound CRS with heights; give its horizontal part, EPSG:27700"),
+        ("EPSG:2053", "axes pointing west, south"),
+        ("EPSG:3031", "axes pointing north, north"),
+        ("EPSG:27572", "Paris meridian"),
+        ("EPSG:3857", "not a conformal projection"),
+        ("EPSG:5071", "not a conformal projection"),  # Albers equal-area
+        ("EPSG:32600", "give the code of a single zone"),  # UTM zones, northern hemisphere
+        ("EPSG:999999", "not a coordinate reference system in the EPSG database"),
+        ("32633", "not an EPSG code"),
+        ("EPSG:", "not an EPSG code"),
+        ("ESRI:102003", "not an EPSG code"),
+    ],
+)
 def test_unusable_crs_is_refused_with_a_sentence(text, words):
     with pytest.raises(CrsError, match=words.replace("(", r"\(")) as caught:
         crs_from_epsg(text)
@@ -281,10 +291,12 @@ def test_site_grid_distances_are_ellipsoid_distances():
 
 
 def test_site_grid_refuses_impossible_origins():
-    for args, words in [((math.radians(89.5), 0.0), "not between -89° and 89°"),
-                        ((0.5, math.radians(181.0)), "not between -180° and 180°"),
-                        ((float("nan"), 0.0), "finite numbers"),
-                        ((0.5, 0.2, 0.0, 0.0, "yd"), "not a length unit")]:
+    for args, words in [
+        ((math.radians(89.5), 0.0), "not between -89° and 89°"),
+        ((0.5, math.radians(181.0)), "not between -180° and 180°"),
+        ((float("nan"), 0.0), "finite numbers"),
+        ((0.5, 0.2, 0.0, 0.0, "yd"), "not a length unit"),
+    ]:
         with pytest.raises(CrsError, match=words):
             local_crs(*args)
 
@@ -298,10 +310,17 @@ def test_ellipsoid_is_a_frozen_value():
 
 # --- grid coordinates of Earth-centred points, with partials ------------------------------------
 
-@pytest.mark.parametrize("code, lat, lon", [
-    ("EPSG:32113", 32.28, -106.75), ("EPSG:2258", 32.28, -106.75),
-    ("EPSG:32633", 60.0, 17.9), ("EPSG:2193", -41.3, 174.8), ("EPSG:2223", 34.2, -111.6),
-])
+
+@pytest.mark.parametrize(
+    "code, lat, lon",
+    [
+        ("EPSG:32113", 32.28, -106.75),
+        ("EPSG:2258", 32.28, -106.75),
+        ("EPSG:32633", 60.0, 17.9),
+        ("EPSG:2193", -41.3, 174.8),
+        ("EPSG:2223", 34.2, -111.6),
+    ],
+)
 def test_grid_partials_agree_with_finite_differences_through_pyproj(code, lat, lon):
     """∂(E, N, h)/∂X from the scale factor and convergence against central differences of
     the whole chain Earth-centred → geodetic → pyproj's projection (1 cm steps; pyproj's
@@ -315,8 +334,12 @@ def test_grid_partials_agree_with_finite_differences_through_pyproj(code, lat, l
     east, _north, h = grid.ecef_to_grid(xyz)
     assert position.east == pytest.approx(east, abs=0) and position.h == pytest.approx(h, abs=0)
     for row in range(3):
-        numeric = approx_derivative(lambda x: np.concatenate(grid.ecef_to_grid(x[None])),
-                                    xyz[row], method="3-point", abs_step=1e-2)
+        numeric = approx_derivative(
+            lambda x: np.concatenate(grid.ecef_to_grid(x[None])),
+            xyz[row],
+            method="3-point",
+            abs_step=1e-2,
+        )
         analytic = np.vstack([position.d_east[row], position.d_north[row], position.d_h[row]])
         assert np.abs(numeric - analytic).max() < 3e-7 * np.abs(analytic).max()
 

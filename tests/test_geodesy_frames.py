@@ -31,13 +31,17 @@ def _pairs(count: int, seed: int, spread: float = 0.02) -> tuple[np.ndarray, np.
     lat = rng.uniform(-1.45, 1.45, count)
     lon = rng.uniform(-np.pi, np.pi, count)
     frm = GRS80.to_ecef(lat, lon, rng.uniform(-50, 3000, count))
-    to = GRS80.to_ecef(lat + rng.uniform(-spread, spread, count),
-                       lon + rng.uniform(-spread, spread, count), rng.uniform(-50, 3000, count))
+    to = GRS80.to_ecef(
+        lat + rng.uniform(-spread, spread, count),
+        lon + rng.uniform(-spread, spread, count),
+        rng.uniform(-50, 3000, count),
+    )
     heights = {"hi": rng.uniform(0.0, 2.0, count), "ht": rng.uniform(0.0, 2.5, count)}
     return frm, to, heights
 
 
 # --- partial derivatives ------------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("kind", ["slope", "zenith", "zenith_refracted", "azimuth"])
 def test_partial_derivatives_agree_with_finite_differences(kind):
@@ -49,7 +53,8 @@ def test_partial_derivatives_agree_with_finite_differences(kind):
     if kind == "zenith_refracted":
         options["k"] = 0.13
     function = {"slope": frames.slope_distance, "azimuth": frames.horizon_azimuth}.get(
-        kind, frames.zenith_angle)
+        kind, frames.zenith_angle
+    )
     equation = function(GRS80, frm, to, **options)
     for row in range(len(frm)):
         one = {key: value[row] for key, value in options.items() if key != "k"}
@@ -59,35 +64,49 @@ def test_partial_derivatives_agree_with_finite_differences(kind):
         def value(x, one=one):
             return function(GRS80, x[:3], x[3:], **one).value
 
-        numeric = approx_derivative(value, np.concatenate([frm[row], to[row]]),
-                                    method="3-point", abs_step=1e-3)
+        numeric = approx_derivative(
+            value, np.concatenate([frm[row], to[row]]), method="3-point", abs_step=1e-3
+        )
         analytic = np.concatenate([equation.d_from[row], equation.d_to[row]])
         scale = np.abs(analytic).max()
         assert np.abs(numeric.ravel() - analytic).max() < 1e-6 * scale, (kind, row)
 
 
 @settings(max_examples=examples(40))
-@given(lat=st.floats(-85.0, 85.0), lon=st.floats(-180.0, 180.0),
-       azimuth=st.floats(0.0, 360.0), distance=st.floats(2.0, 20_000.0),
-       rise=st.floats(-0.5, 0.5), hi=st.floats(0.0, 2.0), ht=st.floats(0.0, 3.0))
-def test_partials_of_surveying_lines_agree_with_finite_differences(lat, lon, azimuth, distance,
-                                                                   rise, hi, ht):
+@given(
+    lat=st.floats(-85.0, 85.0),
+    lon=st.floats(-180.0, 180.0),
+    azimuth=st.floats(0.0, 360.0),
+    distance=st.floats(2.0, 20_000.0),
+    rise=st.floats(-0.5, 0.5),
+    hi=st.floats(0.0, 2.0),
+    ht=st.floats(0.0, 3.0),
+)
+def test_partials_of_surveying_lines_agree_with_finite_differences(
+    lat, lon, azimuth, distance, rise, hi, ht
+):
     """Lines of 2 m to 20 km, rising or falling up to half their length, anywhere but the
     poles: slope, refracted zenith and azimuth partials against central differences."""
     line = Geodesic.WGS84.Direct(lat, lon, azimuth, distance)
     frm = GRS80.to_ecef(math.radians(lat), math.radians(lon), 200.0)
-    to = GRS80.to_ecef(math.radians(line["lat2"]), math.radians(line["lon2"]),
-                       200.0 + rise * distance)
+    to = GRS80.to_ecef(
+        math.radians(line["lat2"]), math.radians(line["lon2"]), 200.0 + rise * distance
+    )
     x0 = np.concatenate([frm, to])
-    for function, options in [(frames.slope_distance, {}), (frames.zenith_angle, {"k": 0.13}),
-                              (frames.horizon_azimuth, {})]:
+    for function, options in [
+        (frames.slope_distance, {}),
+        (frames.zenith_angle, {"k": 0.13}),
+        (frames.horizon_azimuth, {}),
+    ]:
         equation = function(GRS80, frm, to, hi, ht, **options)
         analytic = np.concatenate([equation.d_from[0], equation.d_to[0]])
 
         def change(x, f=function, o=options, start=equation.value[0]):
             # differences of an azimuth are taken across north (0 = 2π)
-            return np.remainder(f(GRS80, x[:3], x[3:], hi, ht, **o).value - start + np.pi,
-                                2 * np.pi) - np.pi
+            return (
+                np.remainder(f(GRS80, x[:3], x[3:], hi, ht, **o).value - start + np.pi, 2 * np.pi)
+                - np.pi
+            )
 
         # steps of 1 mm: rounding of the 6e6 m coordinates (1e-9 m) stays below 1e-6 of the
         # result and the truncation, (step/distance)², below 3e-7 on a 2 m line
@@ -105,15 +124,23 @@ def test_turning_of_the_horizon_is_in_the_partials():
     total = equation.d_from + equation.d_to
     assert np.abs(total).max() > 1e-9
     for row in range(4):
+
         def shifted(t, row=row):
             delta = np.asarray(t)
-            return frames.zenith_angle(GRS80, frm[row] + delta, to[row] + delta,
-                                       hi=heights["hi"][row], ht=heights["ht"][row]).value
+            return frames.zenith_angle(
+                GRS80,
+                frm[row] + delta,
+                to[row] + delta,
+                hi=heights["hi"][row],
+                ht=heights["ht"][row],
+            ).value
+
         numeric = approx_derivative(shifted, np.zeros(3), method="3-point", abs_step=1e-2)
         assert numeric.ravel() == pytest.approx(total[row], abs=1e-12)
 
 
 # --- closed forms on a sphere -------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("theta", [1e-4, 1e-3, 8e-3])
 def test_sphere_law_of_cosines(theta):
@@ -123,24 +150,31 @@ def test_sphere_law_of_cosines(theta):
     circle's, tan α = sin Δλ cos φ₂ / (cos φ₁ sin φ₂ − sin φ₁ cos φ₂ cos Δλ)."""
     lat1, lon1, azimuth = 0.7, 0.3, math.radians(37.0)
     # destination on the sphere along the great circle (closed form)
-    lat2 = math.asin(math.sin(lat1) * math.cos(theta)
-                     + math.cos(lat1) * math.sin(theta) * math.cos(azimuth))
-    lon2 = lon1 + math.atan2(math.sin(azimuth) * math.sin(theta) * math.cos(lat1),
-                             math.cos(theta) - math.sin(lat1) * math.sin(lat2))
+    lat2 = math.asin(
+        math.sin(lat1) * math.cos(theta) + math.cos(lat1) * math.sin(theta) * math.cos(azimuth)
+    )
+    lon2 = lon1 + math.atan2(
+        math.sin(azimuth) * math.sin(theta) * math.cos(lat1),
+        math.cos(theta) - math.sin(lat1) * math.sin(lat2),
+    )
     h1, h2, hi, ht = 120.0, 480.0, 1.55, 1.80
     frm, to = SPHERE.to_ecef(lat1, lon1, h1), SPHERE.to_ecef(lat2, lon2, h2)
     r1, r2 = SPHERE.a + h1 + hi, SPHERE.a + h2 + ht
     half = math.sin(theta / 2) ** 2
     slope = math.sqrt((r1 - r2) ** 2 + 4 * r1 * r2 * half)
     zenith = math.acos((r2 - r1 - 2 * r2 * half) / slope)
-    assert frames.slope_distance(SPHERE, frm, to, hi, ht).value[0] == pytest.approx(slope,
-                                                                                   rel=1e-12)
+    assert frames.slope_distance(SPHERE, frm, to, hi, ht).value[0] == pytest.approx(
+        slope, rel=1e-12
+    )
     assert frames.zenith_angle(SPHERE, frm, to, hi, ht).value[0] == pytest.approx(zenith, abs=1e-11)
     dlon = lon2 - lon1
-    great_circle = math.atan2(math.sin(dlon) * math.cos(lat2), math.cos(lat1) * math.sin(lat2)
-                              - math.sin(lat1) * math.cos(lat2) * math.cos(dlon))
+    great_circle = math.atan2(
+        math.sin(dlon) * math.cos(lat2),
+        math.cos(lat1) * math.sin(lat2) - math.sin(lat1) * math.cos(lat2) * math.cos(dlon),
+    )
     assert frames.horizon_azimuth(SPHERE, frm, to, hi, ht).value[0] == pytest.approx(
-        great_circle % (2 * math.pi), abs=1e-11)
+        great_circle % (2 * math.pi), abs=1e-11
+    )
     assert great_circle == pytest.approx(azimuth, abs=1e-11)
 
 
@@ -181,8 +215,9 @@ def test_point_straight_above_and_below():
     above = GRS80.to_ecef(lat, lon, 160.0)
     assert frames.zenith_angle(GRS80, mark, above).value[0] == pytest.approx(0.0, abs=1e-9)
     assert frames.zenith_angle(GRS80, above, mark).value[0] == pytest.approx(math.pi, abs=1e-9)
-    assert frames.slope_distance(GRS80, mark, above, hi=1.5).value[0] == pytest.approx(58.5,
-                                                                                       abs=1e-9)
+    assert frames.slope_distance(GRS80, mark, above, hi=1.5).value[0] == pytest.approx(
+        58.5, abs=1e-9
+    )
     with pytest.raises(ZeroDivisionError, match="straight above"):
         frames.horizon_azimuth(GRS80, mark, GRS80.to_ecef(lat, lon, 130.0))
     with pytest.raises(ZeroDivisionError, match="coincide"):
@@ -200,6 +235,7 @@ def test_lifted_points_keep_latitude_and_longitude():
 
 # --- the ellipsoid: PROJ's topocentric frame and geodesics --------------------------------------
 
+
 def test_local_vector_agrees_with_proj_topocentric_conversion():
     """PROJ's topocentric conversion (east, north, up of a point about an origin on the
     ellipsoid) gives the same local components as ``local_vector``."""
@@ -208,7 +244,8 @@ def test_local_vector_agrees_with_proj_topocentric_conversion():
     for row in range(len(frm)):
         x0, y0, z0 = (float(v) for v in frm[row])
         topo = pyproj.Transformer.from_pipeline(
-            f"+proj=topocentric +ellps=GRS80 +X_0={x0!r} +Y_0={y0!r} +Z_0={z0!r}")
+            f"+proj=topocentric +ellps=GRS80 +X_0={x0!r} +Y_0={y0!r} +Z_0={z0!r}"
+        )
         e, n, u = topo.transform(*to[row])
         assert vector.enu[row] == pytest.approx([e, n, u], abs=1e-6)
 
@@ -259,6 +296,7 @@ def test_geodetic_azimuth_is_grid_azimuth_plus_convergence_near_the_site():
 
 # --- covariances --------------------------------------------------------------------------------
 
+
 def test_local_covariance_round_trip_and_axes():
     """Σ_X = Rᵀ Σ_enu R and back; an up-only variance lies along the ellipsoid normal."""
     rng = np.random.default_rng(8)
@@ -307,8 +345,9 @@ def test_baseline_centering_is_horizontal_at_each_end():
     assert local[0, 0] == pytest.approx(2 * 0.002**2, rel=1e-6)
     assert local[1, 1] == pytest.approx(2 * 0.002**2, rel=1e-6)
     assert abs(local[2, 2]) < 1e-12  # the normals 600 m apart differ by 1e-4 rad
-    value, d_from, d_to = frames.baseline(GRS80.to_ecef(lat, lon, 0.0)[:1],
-                                          GRS80.to_ecef(lat, lon, 0.0)[1:])
+    value, d_from, d_to = frames.baseline(
+        GRS80.to_ecef(lat, lon, 0.0)[:1], GRS80.to_ecef(lat, lon, 0.0)[1:]
+    )
     assert value.shape == (1, 3) and (d_from == -np.eye(3)).all() and (d_to == np.eye(3)).all()
 
 
@@ -328,10 +367,18 @@ def test_ellipse_azimuth_is_clockwise_from_geodetic_north():
 def test_baseline_covariance_from_sd_and_correlations_and_its_refusals():
     """Σ = diag(σ) ρ diag(σ); draws from it (200,000, Cholesky) give back the σ and the
     correlations.  Correlations of ±1 and sets no three errors can have are refused."""
-    sd = np.array([[0.003, 0.004, 0.008], [0.002, 0.002, 0.002], [0.003, 0.003, 0.003],
-                   [0.003, 0.003, 0.003], [0.003, 0.0, 0.003]])
-    corr = np.array([[0.4, -0.3, 0.6], [0.0, 0.0, 0.0], [1.0, 0.0, 0.0],
-                     [0.9, 0.9, -0.9], [0.1, 0.1, 0.1]])
+    sd = np.array(
+        [
+            [0.003, 0.004, 0.008],
+            [0.002, 0.002, 0.002],
+            [0.003, 0.003, 0.003],
+            [0.003, 0.003, 0.003],
+            [0.003, 0.0, 0.003],
+        ]
+    )
+    corr = np.array(
+        [[0.4, -0.3, 0.6], [0.0, 0.0, 0.0], [1.0, 0.0, 0.0], [0.9, 0.9, -0.9], [0.1, 0.1, 0.1]]
+    )
     cov, positive = frames.baseline_covariance(sd, corr)
     assert positive.tolist() == [True, True, False, False, False]
     draws = np.random.default_rng(17).normal(size=(200_000, 3)) @ np.linalg.cholesky(cov[0]).T
@@ -357,28 +404,32 @@ def test_the_pieces_fit_a_gauss_newton_adjustment_of_a_small_3d_network():
     positions 0.5 m off back to those positions in a few Gauss–Newton steps."""
     grid = local_crs(math.radians(-33.9), math.radians(18.4), 10_000.0, 50_000.0)
     names = ["A", "B", "C", "D"]
-    truth = grid.grid_to_ecef(np.array([10_000.0, 10_480.0, 9_620.0, 10_150.0]),
-                              np.array([50_000.0, 50_310.0, 50_420.0, 50_900.0]),
-                              np.array([31.0, 45.5, 12.2, 80.9]))
+    truth = grid.grid_to_ecef(
+        np.array([10_000.0, 10_480.0, 9_620.0, 10_150.0]),
+        np.array([50_000.0, 50_310.0, 50_420.0, 50_900.0]),
+        np.array([31.0, 45.5, 12.2, 80.9]),
+    )
     lines = [("A", "B"), ("A", "C"), ("B", "C"), ("C", "D"), ("B", "D"), ("A", "D")]
     frm = [names.index(a) for a, _ in lines]
     to = [names.index(b) for _, b in lines]
     hi, ht = 1.55, 1.70
 
     def observe(xyz):
-        rows = [frames.slope_distance(GRS80, xyz[frm], xyz[to], hi, ht),
-                frames.zenith_angle(GRS80, xyz[frm], xyz[to], hi, ht, k=0.13),
-                frames.horizon_azimuth(GRS80, xyz[frm], xyz[to])]
+        rows = [
+            frames.slope_distance(GRS80, xyz[frm], xyz[to], hi, ht),
+            frames.zenith_angle(GRS80, xyz[frm], xyz[to], hi, ht, k=0.13),
+            frames.horizon_azimuth(GRS80, xyz[frm], xyz[to]),
+        ]
         values = np.concatenate([r.value for r in rows])
         design = np.zeros((len(values) + 6, 12))
         for block, r in enumerate(rows):
             for i, (f, t) in enumerate(zip(frm, to, strict=True)):
-                design[block * len(lines) + i, 3 * f:3 * f + 3] += r.d_from[i]
-                design[block * len(lines) + i, 3 * t:3 * t + 3] += r.d_to[i]
+                design[block * len(lines) + i, 3 * f : 3 * f + 3] += r.d_from[i]
+                design[block * len(lines) + i, 3 * t : 3 * t + 3] += r.d_to[i]
         base, d_from, d_to = frames.baseline(xyz[[0, 1]], xyz[[3, 3]])
         for i, (f, t) in enumerate(((0, 3), (1, 3))):
-            design[len(values) + 3 * i:len(values) + 3 * i + 3, 3 * f:3 * f + 3] = d_from[i]
-            design[len(values) + 3 * i:len(values) + 3 * i + 3, 3 * t:3 * t + 3] = d_to[i]
+            design[len(values) + 3 * i : len(values) + 3 * i + 3, 3 * f : 3 * f + 3] = d_from[i]
+            design[len(values) + 3 * i : len(values) + 3 * i + 3, 3 * t : 3 * t + 3] = d_to[i]
         return np.concatenate([values, base.ravel()]), design
 
     observed, _ = observe(truth)
@@ -388,11 +439,14 @@ def test_the_pieces_fit_a_gauss_newton_adjustment_of_a_small_3d_network():
         computed, design = observe(position)
         misclosure = observed - computed
         rows = len(lines)
-        misclosure[2 * rows:3 * rows] = np.remainder(misclosure[2 * rows:3 * rows] + np.pi,
-                                                     2 * np.pi) - np.pi
-        weights = np.concatenate([np.full(rows, 1 / 0.003), np.full(2 * rows, 1 / 5e-6),
-                                  np.full(6, 1 / 0.005)])
-        step, *_ = np.linalg.lstsq(design[:, 3:] * weights[:, None], misclosure * weights,
-                                   rcond=None)
+        misclosure[2 * rows : 3 * rows] = (
+            np.remainder(misclosure[2 * rows : 3 * rows] + np.pi, 2 * np.pi) - np.pi
+        )
+        weights = np.concatenate(
+            [np.full(rows, 1 / 0.003), np.full(2 * rows, 1 / 5e-6), np.full(6, 1 / 0.005)]
+        )
+        step, *_ = np.linalg.lstsq(
+            design[:, 3:] * weights[:, None], misclosure * weights, rcond=None
+        )
         position[1:] += step.reshape(3, 3)
     assert np.abs(position - truth).max() < 1e-7

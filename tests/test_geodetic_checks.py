@@ -53,8 +53,9 @@ def test_own_model_at_the_truth_gives_back_the_topocentric_values() -> None:
     longitude) agrees with PROJ's topocentric conversion at the true positions."""
     site, observations = _site_and_truth()
     book = gs.write_book(site, observations, gs.SITE_GRID)
-    model = gs.observe(book, gs.true_positions(site, list(site.marks)),
-                       np.zeros(len(gs.HARBOR_PLAN.setups)))
+    model = gs.observe(
+        book, gs.true_positions(site, list(site.marks)), np.zeros(len(gs.HARBOR_PLAN.setups))
+    )
     for o, value in zip(observations, model):
         v = value - np.asarray(o.value)
         if o.kind == "direction":
@@ -119,25 +120,32 @@ def test_a_noisy_book_is_the_least_squares_solution_scipy_finds(grid: gs.Grid) -
     sigma = np.concatenate([o.sigma for o in book.observations])
     is_baseline = np.array([k == "baseline" for k in _rows(book)])
     scalar = ~is_baseline
-    np.testing.assert_allclose(solution.residuals[: len(own_rows)][scalar] / sigma[scalar],
-                               own_rows[scalar] / sigma[scalar], atol=1e-3)
-    components = np.array([o["residual"] for o in result["observations"]
-                           if o["kind"] == "baseline"]) * per
-    np.testing.assert_allclose(components / sigma[is_baseline],
-                               own_rows[is_baseline] / sigma[is_baseline], atol=1e-3)
+    np.testing.assert_allclose(
+        solution.residuals[: len(own_rows)][scalar] / sigma[scalar],
+        own_rows[scalar] / sigma[scalar],
+        atol=1e-3,
+    )
+    components = (
+        np.array([o["residual"] for o in result["observations"] if o["kind"] == "baseline"]) * per
+    )
+    np.testing.assert_allclose(
+        components / sigma[is_baseline], own_rows[is_baseline] / sigma[is_baseline], atol=1e-3
+    )
     # redundancy numbers from our own central-difference Jacobian (good to about 1e-5);
     # baselines are booked last, so the result's
     # observation rows are the engine's rows up to the first baseline
     own_r = own.redundancy_numbers()
     terrestrial = [o for o in result["observations"] if o["kind"] != "baseline"]
     assert len(terrestrial) == sum(o.kind != "baseline" for o in book.observations)
-    np.testing.assert_allclose([o["redundancy"] for o in terrestrial],
-                               own_r[: len(terrestrial)], atol=1e-4)
+    np.testing.assert_allclose(
+        [o["redundancy"] for o in terrestrial], own_r[: len(terrestrial)], atol=1e-4
+    )
     _check_precisions(book, own, points, summary["redundancy"])
 
 
-def _check_precisions(book: gs.Book, own: gs.Independent, points: dict[str, dict],
-                      redundancy: int) -> None:
+def _check_precisions(
+    book: gs.Book, own: gs.Independent, points: dict[str, dict], redundancy: int
+) -> None:
     """Each new mark's standard deviations along local east, north, up and its 95 % ellipse
     from our own cofactors: (JᵀJ)⁻¹ of the whitened Jacobian, rotated to the mark's local
     axes, times the variance factor (precision=posterior), semi-axes times
@@ -147,17 +155,16 @@ def _check_precisions(book: gs.Book, own: gs.Independent, points: dict[str, dict
     factor = math.sqrt(2.0 * stats.f.ppf(0.95, 2, redundancy))
     for k, name in enumerate(book.new):
         axes = gs.local_axes(np.asarray(own.positions[name])[None, :])[0]
-        block = own.variance_factor * (axes @ cofactor[3 * k: 3 * k + 3, 3 * k: 3 * k + 3]
-                                       @ axes.T)
+        block = own.variance_factor * (
+            axes @ cofactor[3 * k : 3 * k + 3, 3 * k : 3 * k + 3] @ axes.T
+        )
         got = points[name]
         sd = np.array([got["sd_east"], got["sd_north"], got["sd_height"]]) * per
         np.testing.assert_allclose(sd, np.sqrt(np.diag(block)), rtol=1e-3, err_msg=name)
         values, vectors = np.linalg.eigh(block[:2, :2])
         ellipse = got["ellipse"]
-        assert ellipse["semi_major"] * per == pytest.approx(factor * math.sqrt(values[1]),
-                                                            rel=1e-3)
-        assert ellipse["semi_minor"] * per == pytest.approx(factor * math.sqrt(values[0]),
-                                                            rel=1e-3)
+        assert ellipse["semi_major"] * per == pytest.approx(factor * math.sqrt(values[1]), rel=1e-3)
+        assert ellipse["semi_minor"] * per == pytest.approx(factor * math.sqrt(values[0]), rel=1e-3)
         azimuth = math.degrees(math.atan2(vectors[0, 1], vectors[1, 1])) % 180.0
         difference = (ellipse["azimuth"] - azimuth + 90.0) % 180.0 - 90.0
         assert abs(difference) < 0.1, (name, ellipse["azimuth"], azimuth)
@@ -245,8 +252,13 @@ def monte_carlo() -> dict[str, object]:
         for name, p in _points(result).items():
             if name in true_xyz:
                 covered.append(_inside_ellipse(book, p, true_xyz[name]))
-    return {"variance": np.array(variance), "redundancy": redundancy,
-            "covered": np.array(covered), "w": w_by_line, "kind": kind_of}
+    return {
+        "variance": np.array(variance),
+        "redundancy": redundancy,
+        "covered": np.array(covered),
+        "w": w_by_line,
+        "kind": kind_of,
+    }
 
 
 def _inside_ellipse(book: gs.Book, point: dict, truth: np.ndarray) -> bool:
@@ -263,8 +275,10 @@ def _inside_ellipse(book: gs.Book, point: dict, truth: np.ndarray) -> bool:
     az = math.radians(ellipse["azimuth"])
     along = east * math.sin(az) + north * math.cos(az)
     across = east * math.cos(az) - north * math.sin(az)
-    return bool((along / (ellipse["semi_major"] * per)) ** 2
-                + (across / (ellipse["semi_minor"] * per)) ** 2 <= 1.0)
+    return bool(
+        (along / (ellipse["semi_major"] * per)) ** 2 + (across / (ellipse["semi_minor"] * per)) ** 2
+        <= 1.0
+    )
 
 
 def test_monte_carlo_mean_variance_factor_is_one(monte_carlo: dict) -> None:
@@ -280,7 +294,8 @@ def test_monte_carlo_mean_variance_factor_is_one(monte_carlo: dict) -> None:
 
 
 def test_monte_carlo_95_percent_ellipses_hold_the_truth_95_percent_of_the_time(
-        monte_carlo: dict) -> None:
+    monte_carlo: dict,
+) -> None:
     """The ellipse uses √(2·F(0.95; 2, r)) with the estimated variance factor, exact for
     normal errors; over RUNS × 5 marks the share must lie in 92–98 %."""
     share = float(np.mean(monte_carlo["covered"]))
@@ -328,8 +343,9 @@ def test_trigonometric_heighting_on_a_short_line_follows_the_textbook() -> None:
     }
     site = gs.Site(marks)
     plan = gs.Plan(setups=(("BM-2", 1.561, (("RO", 0.0), ("T-1", 1.70))),))
-    observations = [o for o in gs.true_observations(site, plan)
-                    if o.kind == "direction" or o.to == "T-1"]
+    observations = [
+        o for o in gs.true_observations(site, plan) if o.kind == "direction" or o.to == "T-1"
+    ]
     book = gs.write_book(site, observations, gs.SITE_GRID)
     result = adjust_fieldbook(book.text).to_json_dict()
     assert result["summary"]["redundancy"] == 0  # exactly determined
@@ -354,8 +370,9 @@ def test_a_five_centimetre_blunder_in_a_slope_distance_has_the_largest_w_and_is_
     critical value 3.29 (α₀ = 0.001, docs/references.md, "Baarda's w-test")."""
     site, observations = _site_and_truth()
     noisy = gs.with_noise(observations, np.random.default_rng(42))
-    target = next(i for i, o in enumerate(noisy)
-                  if o.kind == "slope" and (o.frm, o.to) == ("K-8", "K-11"))
+    target = next(
+        i for i, o in enumerate(noisy) if o.kind == "slope" and (o.frm, o.to) == ("K-8", "K-11")
+    )
     noisy[target] = replace(noisy[target], value=(noisy[target].value[0] + 0.05,))
     book = gs.write_book(site, noisy, gs.SITE_GRID)
     result = adjust_fieldbook(book.text).to_json_dict()
@@ -381,8 +398,9 @@ def test_observation_figures_after_a_baseline_are_their_own_rows() -> None:
     solution = _engine(book.text)
     rows = np.cumsum([0] + [len(o.value) for o in book.observations])
     slopes = [o for o in result["observations"] if o["kind"] == "slope"]
-    expected = [solution.residuals[rows[i]] for i, o in enumerate(book.observations)
-                if o.kind == "slope"]
+    expected = [
+        solution.residuals[rows[i]] for i, o in enumerate(book.observations) if o.kind == "slope"
+    ]
     assert [o["residual"] for o in slopes] == pytest.approx(expected, abs=1e-6)
 
 

@@ -25,8 +25,9 @@ R_REFRACTION = 6_371_000.0  # the model's radius for k·S/(2R) (docs/fieldbook.m
 
 
 def _generator():
-    spec = importlib.util.spec_from_file_location("make_geodetic_demos",
-                                                  ROOT / "tools" / "make_geodetic_demos.py")
+    spec = importlib.util.spec_from_file_location(
+        "make_geodetic_demos", ROOT / "tools" / "make_geodetic_demos.py"
+    )
     assert spec is not None and spec.loader is not None
     module = importlib.util.module_from_spec(spec)
     sys.modules[spec.name] = module  # its dataclasses look their module up there
@@ -85,8 +86,7 @@ def _baselines(text: str) -> dict[tuple[str, str], tuple[np.ndarray, np.ndarray,
         if line.startswith("baseline "):
             parts = line.split()
             sd = [float(v.rstrip("m")) / 1000 for v in parts[6].split("=")[1].split(",")]
-            out[(parts[1], parts[2])] = (np.array([float(v) for v in parts[3:6]]),
-                                         np.array(sd), n)
+            out[(parts[1], parts[2])] = (np.array([float(v) for v in parts[3:6]]), np.array(sd), n)
     return out
 
 
@@ -133,7 +133,8 @@ def test_slope_distances_and_zenith_angles_agree_with_pyproj():
             continue
         x0, y0, z0 = (float(v) for v in instrument)
         topo = pyproj.Transformer.from_pipeline(
-            f"+proj=topocentric +ellps=WGS84 +X_0={x0!r} +Y_0={y0!r} +Z_0={z0!r}")
+            f"+proj=topocentric +ellps=WGS84 +X_0={x0!r} +Y_0={y0!r} +Z_0={z0!r}"
+        )
         e, n, u = topo.transform(*(float(v) for v in target))
         zenith = math.atan2(math.hypot(e, n), u) - GEN.K_REFRACTION * slope / (2 * R_REFRACTION)
         assert value == pytest.approx(zenith, abs=5 * 1.5 / 206264.8), (at, to)
@@ -159,14 +160,16 @@ def test_direction_rounds_agree_with_pyproj_azimuths():
     for at, body in rounds:
         x0, y0, z0 = (float(v) for v in _truth_xyz(at))
         topo = pyproj.Transformer.from_pipeline(
-            f"+proj=topocentric +ellps=WGS84 +X_0={x0!r} +Y_0={y0!r} +Z_0={z0!r}")
+            f"+proj=topocentric +ellps=WGS84 +X_0={x0!r} +Y_0={y0!r} +Z_0={z0!r}"
+        )
         readings = []
         for line in body.splitlines():
             target, value = line.split()
             d, m, s = (float(x) for x in value.split(":"))
             e, n, _ = topo.transform(*(float(v) for v in _truth_xyz(target)))
-            readings.append((math.radians(d + m / 60 + s / 3600), math.atan2(e, n),
-                             math.hypot(e, n)))
+            readings.append(
+                (math.radians(d + m / 60 + s / 3600), math.atan2(e, n), math.hypot(e, n))
+            )
         first, first_az, first_d = readings[0]
         for value, azimuth, distance in readings[1:]:
             turned = math.remainder((value - first) - (azimuth - first_az), 2 * math.pi)

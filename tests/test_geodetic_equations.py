@@ -37,40 +37,69 @@ def _check_partials(function, roles: dict[str, np.ndarray], rows: ge.Rows, count
     """Each role's analytic partials (rows) against central differences of ``function``."""
     for name in roles:
         for r in range(count):
+
             def value(delta, name=name, r=r):
-                moved = {n: p[r:r + 1].copy() for n, p in roles.items()}
+                moved = {n: p[r : r + 1].copy() for n, p in roles.items()}
                 moved[name] = _moved(roles[name][r], delta)[None, :]
                 return np.atleast_1d(function(**moved, sl=slice(r, r + 1)).value[0])
+
             numeric = approx_derivative(value, np.zeros(3), method="3-point", abs_step=0.5)
             analytic = rows.partials[name][r]
-            assert np.allclose(analytic.reshape(numeric.shape), numeric, rtol=1e-6,
-                               atol=1e-8), (name, r)
+            assert np.allclose(analytic.reshape(numeric.shape), numeric, rtol=1e-6, atol=1e-8), (
+                name,
+                r,
+            )
 
 
-@pytest.mark.parametrize("kind", ["slope", "zenith", "direction", "angle", "level",
-                                  "distance", "azimuth", "baseline"])
+@pytest.mark.parametrize(
+    "kind", ["slope", "zenith", "direction", "angle", "level", "distance", "azimuth", "baseline"]
+)
 def test_partials_match_finite_differences(kind):
     count = 6
     a, b, c = _marks(count), _marks(count), _marks(count)
     hi, ht = RNG.uniform(1.2, 1.8, count), RNG.uniform(0.0, 2.0, count)
     n_a, n_b = RNG.uniform(-30, -20, count), RNG.uniform(-30, -20, count)
     functions = {
-        "slope": (lambda frm, to, sl=ALL: ge.slope(GRS80, frm, to, hi[sl], ht[sl]),
-                  {"frm": a, "to": b}, {"frm": "from", "to": "to"}),
-        "zenith": (lambda frm, to, sl=ALL: ge.zenith(GRS80, frm, to, hi[sl], ht[sl], 0.13),
-                   {"frm": a, "to": b}, {"frm": "from", "to": "to"}),
-        "direction": (lambda at, to, sl=ALL: ge.direction(GRS80, at, to),
-                      {"at": a, "to": b}, {"at": "at", "to": "to"}),
-        "angle": (lambda back, at, fore, sl=ALL: ge.angle(GRS80, back, at, fore),
-                  {"back": a, "at": b, "fore": c}, {"back": "from", "at": "at", "fore": "to"}),
-        "level": (lambda frm, to, sl=ALL: ge.level(GRS80, frm, to, n_a[sl], n_b[sl]),
-                  {"frm": a, "to": b}, {"frm": "from", "to": "to"}),
-        "distance": (lambda frm, to, sl=ALL: ge.grid_distance(CRS, frm, to),
-                     {"frm": a, "to": b}, {"frm": "from", "to": "to"}),
-        "azimuth": (lambda frm, to, sl=ALL: ge.grid_azimuth(CRS, frm, to),
-                    {"frm": a, "to": b}, {"frm": "from", "to": "to"}),
-        "baseline": (lambda frm, to, sl=ALL: ge.baseline(GRS80, frm, to),
-                     {"frm": a, "to": b}, {"frm": "from", "to": "to"}),
+        "slope": (
+            lambda frm, to, sl=ALL: ge.slope(GRS80, frm, to, hi[sl], ht[sl]),
+            {"frm": a, "to": b},
+            {"frm": "from", "to": "to"},
+        ),
+        "zenith": (
+            lambda frm, to, sl=ALL: ge.zenith(GRS80, frm, to, hi[sl], ht[sl], 0.13),
+            {"frm": a, "to": b},
+            {"frm": "from", "to": "to"},
+        ),
+        "direction": (
+            lambda at, to, sl=ALL: ge.direction(GRS80, at, to),
+            {"at": a, "to": b},
+            {"at": "at", "to": "to"},
+        ),
+        "angle": (
+            lambda back, at, fore, sl=ALL: ge.angle(GRS80, back, at, fore),
+            {"back": a, "at": b, "fore": c},
+            {"back": "from", "at": "at", "fore": "to"},
+        ),
+        "level": (
+            lambda frm, to, sl=ALL: ge.level(GRS80, frm, to, n_a[sl], n_b[sl]),
+            {"frm": a, "to": b},
+            {"frm": "from", "to": "to"},
+        ),
+        "distance": (
+            lambda frm, to, sl=ALL: ge.grid_distance(CRS, frm, to),
+            {"frm": a, "to": b},
+            {"frm": "from", "to": "to"},
+        ),
+        "azimuth": (
+            lambda frm, to, sl=ALL: ge.grid_azimuth(CRS, frm, to),
+            {"frm": a, "to": b},
+            {"frm": "from", "to": "to"},
+        ),
+        "baseline": (
+            lambda frm, to, sl=ALL: ge.baseline(GRS80, frm, to),
+            {"frm": a, "to": b},
+            {"frm": "from", "to": "to"},
+        ),
     }
     function, args, role_of = functions[kind]
     rows = function(**args)
@@ -84,8 +113,11 @@ def test_control_partials_match_finite_differences():
     _, jac = ge.control(CRS, xyz, und)
     for r in range(4):
         numeric = approx_derivative(
-            lambda d, r=r: ge.control(CRS, _moved(xyz[r], d)[None, :], und[r:r + 1])[0][0],
-            np.zeros(3), method="3-point", abs_step=0.5)
+            lambda d, r=r: ge.control(CRS, _moved(xyz[r], d)[None, :], und[r : r + 1])[0][0],
+            np.zeros(3),
+            method="3-point",
+            abs_step=0.5,
+        )
         assert np.allclose(jac[r], numeric, rtol=1e-6, atol=1e-8)
 
 
@@ -97,10 +129,11 @@ def test_direction_and_zenith_agree_with_proj_topocentric():
         lat, lon, h = GRS80.from_ecef(at[r])
         topo = pyproj.Transformer.from_pipeline(
             f"+proj=topocentric +ellps=GRS80 +lat_0={math.degrees(float(lat))!r} "
-            f"+lon_0={math.degrees(float(lon))!r} +h_0={float(h)!r}")
+            f"+lon_0={math.degrees(float(lon))!r} +h_0={float(h)!r}"
+        )
         e, n, u = topo.transform(*to[r])
-        az = ge.direction(GRS80, at[r:r + 1], to[r:r + 1]).value[0]
-        zen = ge.zenith(GRS80, at[r:r + 1], to[r:r + 1], np.zeros(1), np.zeros(1), 0.0).value[0]
+        az = ge.direction(GRS80, at[r : r + 1], to[r : r + 1]).value[0]
+        zen = ge.zenith(GRS80, at[r : r + 1], to[r : r + 1], np.zeros(1), np.zeros(1), 0.0).value[0]
         assert az == pytest.approx(math.atan2(e, n) % (2 * math.pi), abs=1e-10)
         assert zen == pytest.approx(math.atan2(math.hypot(e, n), u), abs=1e-10)
 
@@ -112,7 +145,9 @@ def test_grid_distance_is_the_projected_one_from_pyproj():
         pyproj.CRS.from_proj4("+proj=geocent +ellps=GRS80 +units=m +no_defs +type=crs"),
         pyproj.CRS.from_proj4(
             "+proj=tmerc +lat_0=47.05 +lon_0=-122.89 +k=1 +x_0=5000 +y_0=5000 +ellps=GRS80 "
-            "+units=m +no_defs +type=crs"))
+            "+units=m +no_defs +type=crs"
+        ),
+    )
     ea, na, _ = to_grid.transform(a[:, 0], a[:, 1], a[:, 2])
     eb, nb, _ = to_grid.transform(b[:, 0], b[:, 1], b[:, 2])
     computed = ge.grid_distance(CRS, a, b).value
@@ -122,6 +157,5 @@ def test_grid_distance_is_the_projected_one_from_pyproj():
 def test_slope_sigma_closed_form():
     """σ² = a² + (b·S·10⁻⁶)² + 2c²: 2 mm + 2 ppm over 500 m with 1 mm centering is
     √(4 + 1 + 2) mm (error propagation; common practice)."""
-    sigma = ge.slope_sigma(np.array([0.002]), np.array([2.0]), np.array([500.0]),
-                           np.array([0.001]))
+    sigma = ge.slope_sigma(np.array([0.002]), np.array([2.0]), np.array([500.0]), np.array([0.001]))
     assert sigma[0] == pytest.approx(math.sqrt(7.0) * 1e-3)

@@ -34,8 +34,9 @@ def test_undulations_come_from_the_point_else_the_file_else_zero():
 
 
 def test_a_geographic_crs_is_refused_on_its_line():
-    text = HARBOR_HILL.replace("crs local lat=47:03:00 lon=-122:53:30 east=5000m north=5000m",
-                               "crs EPSG:4326")
+    text = HARBOR_HILL.replace(
+        "crs local lat=47:03:00 lon=-122:53:30 east=5000m north=5000m", "crs EPSG:4326"
+    )
     book = parse(text)
     with pytest.raises(FieldbookError) as caught:
         geodetic_frame(book)

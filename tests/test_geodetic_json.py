@@ -18,22 +18,33 @@ ROOT = Path(__file__).resolve().parents[1]
 def test_geodetic_keys_and_their_places():
     data = geodetic_result().to_json_dict()
     summary = data["summary"]
-    assert (summary["model"], summary["crs"], summary["refraction"]) == ("geodetic", CRS_LINE,
-                                                                         0.13)
+    assert (summary["model"], summary["crs"], summary["refraction"]) == ("geodetic", CRS_LINE, 0.13)
     keys = list(data)
     assert keys.index("baseline_tests") == keys.index("observations") + 1
     point = data["points"][1]
     names = list(point)
-    assert names[names.index("height") + 1:names.index("height") + 7] == [
-        "latitude", "longitude", "ellipsoidal_height", "geoid", "scale_factor", "convergence"]
+    assert names[names.index("height") + 1 : names.index("height") + 7] == [
+        "latitude",
+        "longitude",
+        "ellipsoidal_height",
+        "geoid",
+        "scale_factor",
+        "convergence",
+    ]
     # H = h − N (heights in the file's unit)
     assert point["height"] == pytest.approx(point["ellipsoidal_height"] - point["geoid"])
     baselines = [o for o in data["observations"] if o["kind"] == "baseline"]
     assert [o["component"] for o in baselines] == ["dx", "dy", "dz"] * 2
     assert all("component" not in o for o in data["observations"] if o["kind"] != "baseline")
     assert list(baselines[0])[:3] == ["line", "kind", "component"]
-    assert data["baseline_tests"][1] == {"line": 13, "from": "GN-1", "to": "TS<1>&",
-                                         "statistic": 22.4, "critical": 16.266, "flagged": True}
+    assert data["baseline_tests"][1] == {
+        "line": 13,
+        "from": "GN-1",
+        "to": "TS<1>&",
+        "statistic": 22.4,
+        "critical": 16.266,
+        "flagged": True,
+    }
     # the fast writer and the standard library agree on the mixed observation records
     assert dumps_indented(data) == json.dumps(data, indent=2, allow_nan=False)
 
@@ -41,9 +52,11 @@ def test_geodetic_keys_and_their_places():
 def test_plane_result_with_a_crs_line_has_the_keys_with_nulls():
     result = geodetic_result()
     plane = dataclasses.replace(
-        result, summary=dataclasses.replace(result.summary, model="plane", refraction=None),
+        result,
+        summary=dataclasses.replace(result.summary, model="plane", refraction=None),
         baseline_tests=(),
-        points=tuple(dataclasses.replace(p, latitude=None, longitude=None) for p in result.points))
+        points=tuple(dataclasses.replace(p, latitude=None, longitude=None) for p in result.points),
+    )
     data = plane.to_json_dict()
     assert data["summary"]["model"] == "plane" and data["summary"]["refraction"] is None
     assert data["baseline_tests"] == []
@@ -52,8 +65,10 @@ def test_plane_result_with_a_crs_line_has_the_keys_with_nulls():
 
 def test_plane_result_without_crs_has_no_new_keys():
     result = geodetic_result()
-    plain = dataclasses.replace(result, summary=dataclasses.replace(
-        result.summary, model="plane", crs=None, refraction=None))
+    plain = dataclasses.replace(
+        result,
+        summary=dataclasses.replace(result.summary, model="plane", crs=None, refraction=None),
+    )
     data = plain.to_json_dict()
     assert {"model", "crs", "refraction"}.isdisjoint(data["summary"])
     assert "baseline_tests" not in data

@@ -36,8 +36,11 @@ def result():
 
 def _plane(result):
     """The same result as a plane result without a crs line."""
-    return dataclasses.replace(result, baseline_tests=(), summary=dataclasses.replace(
-        result.summary, model="plane", crs=None, refraction=None))
+    return dataclasses.replace(
+        result,
+        baseline_tests=(),
+        summary=dataclasses.replace(result.summary, model="plane", crs=None, refraction=None),
+    )
 
 
 def _check_page(text: str, result) -> None:
@@ -67,8 +70,12 @@ def test_html_report_states_model_coordinates_and_baseline_tests(result):
 
 def test_plane_report_without_crs_has_no_geodetic_parts(result):
     html = html_report.report_html(_plane(result))
-    for words in ("Geodetic model", "Geodetic coordinates", "Baseline tests",
-                  "deflections of the vertical"):
+    for words in (
+        "Geodetic model",
+        "Geodetic coordinates",
+        "Baseline tests",
+        "deflections of the vertical",
+    ):
         assert words not in html
 
 
@@ -81,13 +88,24 @@ def test_text_report_states_the_same(result):
 
 def test_csv_has_geodetic_columns_only_with_a_crs(result):
     rows = list(csv.DictReader(io.StringIO(points_csv(result))))
-    assert list(rows[0])[:10] == ["name", "east", "north", "height", "latitude", "longitude",
-                                  "ellipsoidal_height", "geoid", "scale_factor", "convergence"]
+    assert list(rows[0])[:10] == [
+        "name",
+        "east",
+        "north",
+        "height",
+        "latitude",
+        "longitude",
+        "ellipsoidal_height",
+        "geoid",
+        "scale_factor",
+        "convergence",
+    ]
     for row, p in zip(rows, result.points, strict=True):
         assert float(row["latitude"]) == pytest.approx(p.latitude, abs=5e-10)
         assert float(row["longitude"]) == pytest.approx(p.longitude, abs=5e-10)
         assert float(row["ellipsoidal_height"]) - float(row["geoid"]) == pytest.approx(
-            float(row["height"]), abs=2e-4)
+            float(row["height"]), abs=2e-4
+        )
     assert rows[2]["name"] == "TS<1>&"
     plain = next(csv.reader(io.StringIO(points_csv(_plane(result)))))
     assert tuple(plain) == POINT_CSV_HEADER
@@ -123,8 +141,7 @@ def test_geojson_is_longitude_latitude_with_a_crs(result):
     data = json.loads(json.dumps(geojson(result), allow_nan=False))
     assert "longitude, latitude" in data["coordinate_system"]
     assert CRS_LINE in data["coordinate_system"]
-    points = {f["properties"]["name"]: f for f in data["features"]
-              if f["id"].startswith("point:")}
+    points = {f["properties"]["name"]: f for f in data["features"] if f["id"].startswith("point:")}
     for p in result.points:
         lon, lat, h = points[p.name]["geometry"]["coordinates"]
         assert (lon, lat) == (p.longitude, p.latitude)  # RFC 7946: longitude first
@@ -135,8 +152,10 @@ def test_geojson_is_longitude_latitude_with_a_crs(result):
     assert len(ids) == len(set(ids))  # a baseline's components are three features, three ids
     line = next(f for f in data["features"] if f["id"] == "line:12:dx")
     assert line["properties"]["component"] == "dx"
-    assert line["geometry"]["coordinates"][0] == [result.points[0].longitude,
-                                                  result.points[0].latitude]
+    assert line["geometry"]["coordinates"][0] == [
+        result.points[0].longitude,
+        result.points[0].latitude,
+    ]
 
 
 def test_geojson_heights_in_metres_from_a_feet_book(result):
@@ -147,8 +166,14 @@ def test_geojson_heights_in_metres_from_a_feet_book(result):
 
 def test_geojson_without_crs_is_refused_rather_than_passed_off_as_geographic(result):
     """RFC 7946 positions are longitude and latitude; grid eastings would be read as such."""
-    plane = _plane(dataclasses.replace(result, points=tuple(
-        dataclasses.replace(p, latitude=None, longitude=None) for p in result.points)))
+    plane = _plane(
+        dataclasses.replace(
+            result,
+            points=tuple(
+                dataclasses.replace(p, latitude=None, longitude=None) for p in result.points
+            ),
+        )
+    )
     with pytest.raises(GeoJsonUnavailable, match="crs"):
         geojson(plane)
 
@@ -160,8 +185,7 @@ def test_results_page_shows_the_geodetic_parts(result, tmp_path, monkeypatch):
     with TestClient(create_app(tmp_path / "data")) as client:
         response = client.post("/demos/leveling_clean", follow_redirects=False)
         url = response.headers["location"]
-        monkeypatch.setattr(pages.service, "result_with_presets",
-                            lambda *args, **kwargs: result)
+        monkeypatch.setattr(pages.service, "result_with_presets", lambda *args, **kwargs: result)
         html = client.get(url).text
     _check_page(html, result)
     assert 'id="geodetic-points"' in html and 'id="baseline-tests"' in html
@@ -171,9 +195,13 @@ def test_results_page_shows_the_geodetic_parts(result, tmp_path, monkeypatch):
 def test_verdict_names_a_flagged_baseline_line_once_with_its_components(result):
     from server.report.tables import flagged_lines, verdict
 
-    two = dataclasses.replace(result, observations=tuple(
-        dataclasses.replace(o, flagged=True) if (o.line, o.component) == (13, "dz") else o
-        for o in result.observations))
+    two = dataclasses.replace(
+        result,
+        observations=tuple(
+            dataclasses.replace(o, flagged=True) if (o.line, o.component) == (13, "dz") else o
+            for o in result.observations
+        ),
+    )
     note = " ".join(verdict(two).notes)
     assert "2 observations flagged" in note and "line 13 (dy, dz)." in note
     assert flagged_lines(two) == [13]

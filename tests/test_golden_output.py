@@ -25,10 +25,15 @@ from server.engine.backends import cholmod_available
 ROOT = Path(__file__).resolve().parents[1]
 GOLDEN = ROOT / "tests" / "golden"
 
-CASES = [(f"demo_projects/{p.stem}.fieldbook", p.stem + ".json", None)
-         for p in sorted((ROOT / "demo_projects").glob("*.fieldbook"))]
-CASES += [(f"tests/golden/{name}.fieldbook", f"{name}.{backend}.json", backend)
-          for name in ("grid_network", "leveling_network") for backend in ("superlu", "cholmod")]
+CASES = [
+    (f"demo_projects/{p.stem}.fieldbook", p.stem + ".json", None)
+    for p in sorted((ROOT / "demo_projects").glob("*.fieldbook"))
+]
+CASES += [
+    (f"tests/golden/{name}.fieldbook", f"{name}.{backend}.json", backend)
+    for name in ("grid_network", "leveling_network")
+    for backend in ("superlu", "cholmod")
+]
 
 
 def _close(expected, actual, where: str) -> None:
@@ -43,14 +48,14 @@ def _close(expected, actual, where: str) -> None:
             _close(e, a, f"{where}[{i}]")
     elif isinstance(expected, float) and not isinstance(expected, bool):
         assert isinstance(actual, (int, float)), where
-        assert math.isclose(expected, actual, rel_tol=1e-9, abs_tol=1e-12), \
+        assert math.isclose(expected, actual, rel_tol=1e-9, abs_tol=1e-12), (
             f"{where}: {expected!r} became {actual!r}"
+        )
     else:
         assert expected == actual, f"{where}: {expected!r} became {actual!r}"
 
 
-@pytest.mark.parametrize(("fieldbook", "golden", "backend"), CASES,
-                         ids=[c[1] for c in CASES])
+@pytest.mark.parametrize(("fieldbook", "golden", "backend"), CASES, ids=[c[1] for c in CASES])
 def test_json_output_unchanged(fieldbook, golden, backend, monkeypatch, capsys):
     if backend == "cholmod" and not cholmod_available():
         pytest.skip("scikit-sparse's CHOLMOD is not installed")

@@ -23,15 +23,21 @@ def _reference_solution(text: str):
     """The same model solved independently with scipy.optimize.least_squares."""
     fb = parse_fieldbook(text)
     fixed = {p.name: (p.east, p.north) for p in fb.points if "en" in p.fixed}
-    names = sorted({n for o in fb.observations for n in (o.from_point, o.at or o.to, o.to)} - set(fixed))
+    names = sorted(
+        {n for o in fb.observations for n in (o.from_point, o.at or o.to, o.to)} - set(fixed)
+    )
     rounds = sorted({o.round_line for o in fb.observations if o.round_line})
     col = {n: 2 * k for k, n in enumerate(names)}
     ocol = {r: 2 * len(names) + k for k, r in enumerate(rounds)}
     obs = [o for o in fb.observations if not o.ignored]
     sigma = np.array(
         # σ = √(a² + (b·D·10⁻⁶)²) for a + b ppm (no centering in these books)
-        [math.hypot(o.sigma.constant, o.sigma.ppm * 1e-6 * o.value) if o.kind == "distance"
-         else o.sigma.constant for o in obs]
+        [
+            math.hypot(o.sigma.constant, o.sigma.ppm * 1e-6 * o.value)
+            if o.kind == "distance"
+            else o.sigma.constant
+            for o in obs
+        ]
     )
 
     def position(x, n):
@@ -77,7 +83,9 @@ def test_matches_scipy_least_squares(seed):
         first = next(o for o in obs if o.round_line == line)
         (ea, na), (eb, nb) = net.truth[first.from_point], net.truth[first.to]
         x0[ocol[line]] = math.atan2(eb - ea, nb - na) - first.value + 0.01
-    ref = scipy.optimize.least_squares(residuals, x0, method="lm", xtol=1e-15, ftol=1e-15, gtol=1e-15)
+    ref = scipy.optimize.least_squares(
+        residuals, x0, method="lm", xtol=1e-15, ftol=1e-15, gtol=1e-15
+    )
     redundancy = len(obs) - len(x0)
     s0 = float(ref.fun @ ref.fun) / redundancy
     cov = s0 * np.linalg.inv(ref.jac.T @ ref.jac)
@@ -93,7 +101,9 @@ def test_matches_scipy_least_squares(seed):
         assert p.sd_north == pytest.approx(math.sqrt(cov[col[n] + 1, col[n] + 1]), rel=1e-4)
     scale = np.array([3600 * 180 / math.pi if o.kind != "distance" else 1.0 for o in obs])
     ours = np.array([o.residual for o in result.observations if not o.ignored])
-    np.testing.assert_allclose(ours, ref.fun * sigma * scale, atol=1e-4 * np.max(np.abs(ours)) + 1e-9)
+    np.testing.assert_allclose(
+        ours, ref.fun * sigma * scale, atol=1e-4 * np.max(np.abs(ours)) + 1e-9
+    )
 
 
 def test_free_network_is_invariant_to_translation_and_rotation():
@@ -102,8 +112,12 @@ def test_free_network_is_invariant_to_translation_and_rotation():
     rng = np.random.default_rng(5)
     base = grid_network(rng, size=3, fixed=(), give_approximate=True)
     moved = grid_network(
-        np.random.default_rng(5), size=3, fixed=(), give_approximate=True,
-        origin=(1000.0, 2000.0), rotation_deg=37.0,
+        np.random.default_rng(5),
+        size=3,
+        fixed=(),
+        give_approximate=True,
+        origin=(1000.0, 2000.0),
+        rotation_deg=37.0,
     )
     a, b = adjust_fieldbook(base.text), adjust_fieldbook(moved.text)
     assert a.summary.variance_factor == pytest.approx(b.summary.variance_factor, rel=1e-8)
@@ -116,7 +130,8 @@ def test_free_network_is_invariant_to_translation_and_rotation():
         db = math.dist((pb[x].east, pb[x].north), (pb[y].east, pb[y].north))
         assert da == pytest.approx(db, abs=1e-7)
     assert any("adjusted free" in w for w in a.warnings)
-    # inner constraints: redundancy counts every observation against all unknowns minus the defect (3)
+    # inner constraints: redundancy counts every observation against all unknowns minus the
+    # defect (3)
     assert a.summary.redundancy == a.summary.used_observations - a.summary.unknowns + 3
 
 
@@ -147,7 +162,8 @@ def test_exact_observations_reproduce_the_truth():
 
 
 def test_monte_carlo_variance_factor_and_ellipse_coverage():
-    """With the a priori σ true, E[σ̂₀²] = 1 and 95 % ellipses (√(2F) scaling) hold 95 % of true points."""
+    """With the a priori σ true, E[σ̂₀²] = 1 and 95 % ellipses (√(2F) scaling) hold 95 % of true
+    points."""
     factors, inside, total = [], 0, 0
     rng = np.random.default_rng(99)
     for _ in range(120):
@@ -173,13 +189,19 @@ def test_monte_carlo_variance_factor_and_ellipse_coverage():
 
 def test_intersection_and_resection_start_values():
     """A point seen only from two known stations and a station that only resects to known points."""
-    truth = {"A": (1000.0, 1000.0), "B": (1600.0, 1000.0), "C": (1300.0, 1500.0),
-             "X": (1310.0, 1210.0), "R": (1250.0, 700.0)}
+    truth = {
+        "A": (1000.0, 1000.0),
+        "B": (1600.0, 1000.0),
+        "C": (1300.0, 1500.0),
+        "X": (1310.0, 1210.0),
+        "R": (1250.0, 700.0),
+    }
 
     def az(a, b):
         return math.degrees(math.atan2(truth[b][0] - truth[a][0], truth[b][1] - truth[a][1])) % 360
 
     from server.units import format_dms
+
     text = ["defaults direction=1sec distance=2mm centering=0mm"]
     for n in "ABC":
         text.append(f"point {n} east={truth[n][0]} north={truth[n][1]} fix")

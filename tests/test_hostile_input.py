@@ -27,10 +27,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from server.report import text as text_report
 from server.errors import FieldbookError, NetworkError
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
+from server.report import text as text_report
 from server.results.result import AdjustmentResult
 from tests.hypothesis_profiles import examples
 
@@ -112,25 +112,138 @@ level +1 @A1 +6.0010
 level -SUM(A1) @A1 +1.0000
 level +1 -SUM(A1) +5.0000
 """
-SNIPPETS = {"leveling": LEVELING, "traverse": TRAVERSE, "gon": GON, "spatial": SPATIAL,
-            "names": NAMES}
+SNIPPETS = {
+    "leveling": LEVELING,
+    "traverse": TRAVERSE,
+    "gon": GON,
+    "spatial": SPATIAL,
+    "names": NAMES,
+}
 # The control network demo is the slowest to adjust; the mutations draw it less often.
-SEEDS = [*SNIPPETS.values(), *[t for n, t in DEMO_TEXTS.items() if n != "control_network.fieldbook"]]
+SEEDS = [
+    *SNIPPETS.values(),
+    *[t for n, t in DEMO_TEXTS.items() if n != "control_network.fieldbook"],
+]
 
-KEYWORDS = ["fieldbook", "title", "units", "tests", "tolerance", "defaults", "scale", "point",
-            "level", "distance", "angle", "azimuth", "directions", "end", "slope", "zenith"]
-OPTIONS = ["east=", "north=", "height=", "fix", "fix=en", "fix=h", "sd=", "sd_en=", "sd_h=",
-           "note=", "ignore", "len=", "setups=", "hi=", "ht=", "factor=", "alpha=", "length=",
-           "angle=", "level=", "distance=", "direction=", "centering=", "misclosure="]
-EXTREME_NUMBERS = ["0", "-0", "+0.0", "1e308", "-1e308", "1e-308", "5e-324", "1e400", "1e9",
-                   "1e-9", "123456789012345678901234567890", "0.0000000001", "nan", "-inf",
-                   "Infinity", "1_000", "٣", "1e", ".", "-", "0x10", "1,5"]
-UNITS = ["", "m", "mm", "cm", "km", "ft", "usft", "sec", "mgon", "deg", "gon", "ppm",
-         "mm/sqrtkm", "mm/setup", "mm+2ppm", "mm+1mm/sqrtkm"]
-ANGLES = ["0:00:00", "359:59:59.999", "360:00:00", "-0:00:30", "0:60:00", "0:00:60",
-          "12:34", "1:2:3:4", "400gon", "-1e308deg", "1e308gon"]
-WEIRD = ["\x00", "\ufeff", "\u202e", "\u200b", "\u00a0", "\u2028", "\r", "\t", "é", "名前",
-         "😀", '"', '\\"', "#", "=", "==", "\\", "\udcff"]
+KEYWORDS = [
+    "fieldbook",
+    "title",
+    "units",
+    "tests",
+    "tolerance",
+    "defaults",
+    "scale",
+    "point",
+    "level",
+    "distance",
+    "angle",
+    "azimuth",
+    "directions",
+    "end",
+    "slope",
+    "zenith",
+]
+OPTIONS = [
+    "east=",
+    "north=",
+    "height=",
+    "fix",
+    "fix=en",
+    "fix=h",
+    "sd=",
+    "sd_en=",
+    "sd_h=",
+    "note=",
+    "ignore",
+    "len=",
+    "setups=",
+    "hi=",
+    "ht=",
+    "factor=",
+    "alpha=",
+    "length=",
+    "angle=",
+    "level=",
+    "distance=",
+    "direction=",
+    "centering=",
+    "misclosure=",
+]
+EXTREME_NUMBERS = [
+    "0",
+    "-0",
+    "+0.0",
+    "1e308",
+    "-1e308",
+    "1e-308",
+    "5e-324",
+    "1e400",
+    "1e9",
+    "1e-9",
+    "123456789012345678901234567890",
+    "0.0000000001",
+    "nan",
+    "-inf",
+    "Infinity",
+    "1_000",
+    "٣",
+    "1e",
+    ".",
+    "-",
+    "0x10",
+    "1,5",
+]
+UNITS = [
+    "",
+    "m",
+    "mm",
+    "cm",
+    "km",
+    "ft",
+    "usft",
+    "sec",
+    "mgon",
+    "deg",
+    "gon",
+    "ppm",
+    "mm/sqrtkm",
+    "mm/setup",
+    "mm+2ppm",
+    "mm+1mm/sqrtkm",
+]
+ANGLES = [
+    "0:00:00",
+    "359:59:59.999",
+    "360:00:00",
+    "-0:00:30",
+    "0:60:00",
+    "0:00:60",
+    "12:34",
+    "1:2:3:4",
+    "400gon",
+    "-1e308deg",
+    "1e308gon",
+]
+WEIRD = [
+    "\x00",
+    "\ufeff",
+    "\u202e",
+    "\u200b",
+    "\u00a0",
+    "\u2028",
+    "\r",
+    "\t",
+    "é",
+    "名前",
+    "😀",
+    '"',
+    '\\"',
+    "#",
+    "=",
+    "==",
+    "\\",
+    "\udcff",
+]
 
 NAN_WORD = re.compile(r"(?<![\w-])[-+]?(nan|inf|infinity)(?![\w-])", re.IGNORECASE)
 
@@ -218,8 +331,13 @@ def _tokens() -> st.SearchStrategy[str]:
     )
     name = st.text(st.characters(blacklist_categories=("Cs",)), min_size=1, max_size=6)
     return st.one_of(
-        st.sampled_from(KEYWORDS), option, quantity, st.sampled_from(ANGLES),
-        st.sampled_from(WEIRD), name, st.sampled_from(["A", "B", "C", "BM-1", "NEW", "end"]),
+        st.sampled_from(KEYWORDS),
+        option,
+        quantity,
+        st.sampled_from(ANGLES),
+        st.sampled_from(WEIRD),
+        name,
+        st.sampled_from(["A", "B", "C", "BM-1", "NEW", "end"]),
     )
 
 
@@ -231,8 +349,21 @@ def mutated_books(draw: st.DrawFn) -> str | bytes:
         if not lines:
             break
         i = draw(st.integers(0, len(lines) - 1))
-        op = draw(st.sampled_from(["delete", "duplicate", "swap", "token", "drop token",
-                                   "repeat token", "char", "insert", "truncate"]))
+        op = draw(
+            st.sampled_from(
+                [
+                    "delete",
+                    "duplicate",
+                    "swap",
+                    "token",
+                    "drop token",
+                    "repeat token",
+                    "char",
+                    "insert",
+                    "truncate",
+                ]
+            )
+        )
         tokens = lines[i].split(" ")
         k = draw(st.integers(0, len(tokens) - 1))
         if op == "delete":
@@ -250,7 +381,7 @@ def mutated_books(draw: st.DrawFn) -> str | bytes:
             tokens.insert(k, tokens[k])
         elif op == "char" and tokens[k]:
             c = draw(st.integers(0, len(tokens[k]) - 1))
-            tokens[k] = tokens[k][:c] + draw(st.characters()) + tokens[k][c + 1:]
+            tokens[k] = tokens[k][:c] + draw(st.characters()) + tokens[k][c + 1 :]
         elif op == "insert":
             tokens.insert(k, draw(st.sampled_from(WEIRD)))
         elif op == "truncate":
@@ -282,13 +413,18 @@ def numeric_extremes(draw: st.DrawFn) -> str:
     text = draw(st.sampled_from([LEVELING, TRAVERSE, GON, DEMO_TEXTS["closed_traverse.fieldbook"]]))
     spots = [m for m in re.finditer(r"(?<=[ =])[+-]?\d+(\.\d+)?(?=[a-z/]*(\s|$))", text)]
     spot = draw(st.sampled_from(spots))
-    value = draw(st.sampled_from(["0", "-1", "1e30", "1e-30", "1e12", "1e-12", "1e8", "1e-6",
-                                  "99999999", "0.0001"]))
-    return text[:spot.start()] + value + text[spot.end():]
+    value = draw(
+        st.sampled_from(
+            ["0", "-1", "1e30", "1e-30", "1e12", "1e-12", "1e8", "1e-6", "99999999", "0.0001"]
+        )
+    )
+    return text[: spot.start()] + value + text[spot.end() :]
 
 
-FAST = settings(max_examples=examples(500),
-                suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+FAST = settings(
+    max_examples=examples(500),
+    suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large],
+)
 SLOW = settings(FAST, max_examples=examples(300))
 
 
@@ -495,16 +631,18 @@ def test_tiny_standard_deviations_adjust_and_fail_the_global_test():
     result = _adjusted(LEVEL_PAIR.format(sd="0.000001mm"))
     assert result.summary.global_test is not None and not result.summary.global_test.passed
     assert any("too large" in w for w in result.warnings)
-    assert _points(result)["B"].height == pytest.approx(10.0 + (1.0 + 1.0010 + 1.0004) / 3,
-                                                        abs=1e-9)
+    assert _points(result)["B"].height == pytest.approx(
+        10.0 + (1.0 + 1.0010 + 1.0004) / 3, abs=1e-9
+    )
 
 
 def test_huge_standard_deviations_adjust_and_fail_the_global_test_the_other_way():
     result = _adjusted(LEVEL_PAIR.format(sd="1km"))
     assert result.summary.global_test is not None and not result.summary.global_test.passed
     assert any("too small" in w for w in result.warnings)
-    assert _points(result)["B"].height == pytest.approx(10.0 + (1.0 + 1.0010 + 1.0004) / 3,
-                                                        abs=1e-9)
+    assert _points(result)["B"].height == pytest.approx(
+        10.0 + (1.0 + 1.0010 + 1.0004) / 3, abs=1e-9
+    )
 
 
 SQUARE = """defaults direction={direction} distance={distance} centering=0mm
@@ -526,15 +664,17 @@ distance C D 300.0008
 """
 
 
-@pytest.mark.parametrize("direction, distance", [("0.000001sec", "0.000002mm"),
-                                                 ("500000sec", "1km")])
+@pytest.mark.parametrize(
+    "direction, distance", [("0.000001sec", "0.000002mm"), ("500000sec", "1km")]
+)
 def test_tiny_or_huge_sigmas_in_a_horizontal_network_adjust(direction, distance):
     """Scaling every sigma by the same factor changes the test, not the coordinates."""
     plain = _adjusted(SQUARE.format(direction="1sec", distance="2mm"))
     scaled = _adjusted(SQUARE.format(direction=direction, distance=distance))
     for p, q in zip(plain.points, scaled.points, strict=True):
         assert q.east == pytest.approx(p.east, abs=1e-4) and q.north == pytest.approx(
-            p.north, abs=1e-4), p.name
+            p.north, abs=1e-4
+        ), p.name
     assert scaled.summary.global_test is not None and not scaled.summary.global_test.passed
 
 

@@ -29,8 +29,12 @@ with warnings.catch_warnings():
 TEXT = leveling_with_blunders(TWO_BLUNDERS)
 #: The line of the +15 mm blunder on M2→M4 (tests/test_review.py).
 FIRST = next(k for k, line in enumerate(TEXT.splitlines(), 1) if line.startswith("level M2 M4"))
-EXCLUDE_FIRST = {"line": FIRST, "action": "exclude", "reason": "staff misread",
-                 "date": "2026-01-02"}
+EXCLUDE_FIRST = {
+    "line": FIRST,
+    "action": "exclude",
+    "reason": "staff misread",
+    "date": "2026-01-02",
+}
 
 
 def _statuses(database: Path) -> list[tuple[int, str]]:
@@ -40,9 +44,11 @@ def _statuses(database: Path) -> list[tuple[int, str]]:
 
 def _retry_form(html: str) -> tuple[str, str]:
     """(action, token) of the page's re-run button for an interrupted run."""
-    match = re.search(r'<form class="rerun" method="post" action="(/projects/[0-9a-f]{32}/runs/'
-                      r'\d+/retry)">\s*<input type="hidden" name="token" value="([0-9a-f]{32})">',
-                      html)
+    match = re.search(
+        r'<form class="rerun" method="post" action="(/projects/[0-9a-f]{32}/runs/'
+        r'\d+/retry)">\s*<input type="hidden" name="token" value="([0-9a-f]{32})">',
+        html,
+    )
     assert match, "no re-run button for the interrupted run"
     return match.group(1), match.group(2)
 
@@ -91,8 +97,9 @@ def test_an_interrupted_first_run_is_re_run_from_the_results_page(tmp_path):
         page = client.get(f"/projects/{project}").text
         assert "was interrupted" not in page and "/retry" not in page
         # the button belongs to the interrupted run only: a second press is refused
-        again = client.post(f"/projects/{project}/runs/{body['runs'][1]['id']}/retry",
-                            data={"token": token})
+        again = client.post(
+            f"/projects/{project}/runs/{body['runs'][1]['id']}/retry", data={"token": token}
+        )
         assert again.status_code == 404
 
 
@@ -150,12 +157,16 @@ def test_a_schema_2_database_is_upgraded_and_its_cut_off_run_kept(tmp_path):
     database = tmp_path / DATABASE_NAME
     with closing(sqlite3.connect(database)) as raw:
         raw.executescript(SCHEMA_2)
-        raw.execute("INSERT INTO projects (id, name, filename, created, fieldbook, sha256) "
-                    "VALUES (?, 'old', 'old.fieldbook', '2026-01-01T00:00:00+00:00', ?, 'h')",
-                    ("a" * 32, TEXT.encode()))
-        raw.execute("INSERT INTO runs (project_id, created, status, settings) VALUES "
-                    "(?, '2026-01-01T00:00:00+00:00', 'running', ?)",
-                    ("a" * 32, '{"edits": []}'))
+        raw.execute(
+            "INSERT INTO projects (id, name, filename, created, fieldbook, sha256) "
+            "VALUES (?, 'old', 'old.fieldbook', '2026-01-01T00:00:00+00:00', ?, 'h')",
+            ("a" * 32, TEXT.encode()),
+        )
+        raw.execute(
+            "INSERT INTO runs (project_id, created, status, settings) VALUES "
+            "(?, '2026-01-01T00:00:00+00:00', 'running', ?)",
+            ("a" * 32, '{"edits": []}'),
+        )
         raw.commit()
         with pytest.raises(sqlite3.IntegrityError):  # the old table refuses the new state
             raw.execute("UPDATE runs SET status = 'interrupted'")

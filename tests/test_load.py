@@ -65,9 +65,16 @@ def _demos() -> list[Demo]:
     for path in sorted(DEMOS.glob("*.fieldbook")):
         data = path.read_bytes()
         result = adjust_fieldbook(data, source=path.name).to_json_dict()
-        demos.append(Demo(path.name, data, hashlib.sha256(data).hexdigest(),
-                          result["title"], result["summary"],
-                          [o["line"] for o in result["observations"] if o["flagged"]]))
+        demos.append(
+            Demo(
+                path.name,
+                data,
+                hashlib.sha256(data).hexdigest(),
+                result["title"],
+                result["summary"],
+                [o["line"] for o in result["observations"] if o["flagged"]],
+            )
+        )
     return demos
 
 
@@ -117,8 +124,9 @@ def _check_adjust(response: httpx.Response, demo: Demo) -> str | None:
     if response.status_code != 200:
         return f"POST /api/adjust {demo.name}: {response.status_code}"
     body = response.json()
-    return _same_result(body["summary"], [o["line"] for o in body["observations"]
-                                          if o["flagged"]], demo)
+    return _same_result(
+        body["summary"], [o["line"] for o in body["observations"] if o["flagged"]], demo
+    )
 
 
 def _check_project(response: httpx.Response, demo: Demo) -> str | None:
@@ -127,8 +135,11 @@ def _check_project(response: httpx.Response, demo: Demo) -> str | None:
     body = response.json()
     if body["sha256"] != demo.sha256 or body["status"] != "finished":
         return f"GET project {demo.name}: sha256/status {body['sha256']} {body['status']}"
-    return _same_result(body["result"]["summary"], [o["line"] for o in body["result"][
-        "observations"] if o["flagged"]], demo)
+    return _same_result(
+        body["result"]["summary"],
+        [o["line"] for o in body["result"]["observations"] if o["flagged"]],
+        demo,
+    )
 
 
 def _check_page(response: httpx.Response, needle: str) -> str | None:
@@ -144,12 +155,15 @@ def _plan(demos: list[Demo]) -> list[str]:
     rng = random.Random(20240607)
     kinds = ["upload"] * 16 + rng.choices(
         ["upload", "adjust", "read", "page", "list", "project page"],
-        weights=[3, 2, 3, 1, 1, 2], k=REQUESTS - 16)
+        weights=[3, 2, 3, 1, 1, 2],
+        k=REQUESTS - 16,
+    )
     return kinds
 
 
-def _client_loop(base: str, work: list[tuple[int, str]], demos: list[Demo], tally: Tally,
-                 deadline: float) -> None:
+def _client_loop(
+    base: str, work: list[tuple[int, str]], demos: list[Demo], tally: Tally, deadline: float
+) -> None:
     rng = random.Random(threading.get_ident())
     with httpx.Client(base_url=base, timeout=REQUEST_TIMEOUT_S) as http:
         while time.monotonic() < deadline:
@@ -164,8 +178,9 @@ def _client_loop(base: str, work: list[tuple[int, str]], demos: list[Demo], tall
             started = time.monotonic()
             try:
                 if kind == "upload":
-                    response = http.post("/api/projects",
-                                         files={"fieldbook": (demo.name, demo.data)})
+                    response = http.post(
+                        "/api/projects", files={"fieldbook": (demo.name, demo.data)}
+                    )
                     problem = _check_upload(response, demo, tally)
                 elif kind == "adjust":
                     response = http.post("/api/adjust", files={"fieldbook": (demo.name, demo.data)})
@@ -196,16 +211,18 @@ def service(tmp_path_factory: pytest.TempPathFactory) -> Iterator[ServiceProcess
         yield process
 
 
-def test_burst_of_concurrent_users_loses_nothing(service: ServiceProcess, tmp_path: Path,
-                                                 report_figure: Callable[[str], None]):
+def test_burst_of_concurrent_users_loses_nothing(
+    service: ServiceProcess, tmp_path: Path, report_figure: Callable[[str], None]
+):
     demos = _demos()
     tally = Tally()
     work = list(enumerate(_plan(demos)))
     deadline = time.monotonic() + DEADLINE_S
     started = time.monotonic()
-    threads = [threading.Thread(target=_client_loop,
-                                args=(service.url, work, demos, tally, deadline))
-               for _ in range(CLIENTS)]
+    threads = [
+        threading.Thread(target=_client_loop, args=(service.url, work, demos, tally, deadline))
+        for _ in range(CLIENTS)
+    ]
     for thread in threads:
         thread.start()
     for thread in threads:
@@ -216,26 +233,39 @@ def test_burst_of_concurrent_users_loses_nothing(service: ServiceProcess, tmp_pa
     # after the burst: every project created is listed and readable, byte for byte
     with httpx.Client(base_url=service.url, timeout=REQUEST_TIMEOUT_S) as http:
         listed = {p["id"]: p for p in http.get("/api/projects").json()["projects"]}
-        lost = [pid for pid, demo in tally.created.items()
-                if pid not in listed or listed[pid]["sha256"] != demo.sha256
-                or http.get(f"/projects/{pid}/fieldbook").content != demo.data]
+        lost = [
+            pid
+            for pid, demo in tally.created.items()
+            if pid not in listed
+            or listed[pid]["sha256"] != demo.sha256
+            or http.get(f"/projects/{pid}/fieldbook").content != demo.data
+        ]
     service.stop()
     integrity = integrity_check(service.database)
 
     every = [s for values in tally.latencies.values() for s in values]
     pages = [s for kind in PAGE_KINDS for s in tally.latencies.get(kind, [])]
     figures = {
-        "clients": CLIENTS, "requests": tally.done, "failures": len(tally.failures),
-        "projects_created": len(tally.created), "projects_stored": len(listed),
-        "projects_lost": len(lost), "integrity_check": integrity,
+        "clients": CLIENTS,
+        "requests": tally.done,
+        "failures": len(tally.failures),
+        "projects_created": len(tally.created),
+        "projects_stored": len(listed),
+        "projects_lost": len(lost),
+        "integrity_check": integrity,
         "seconds": round(elapsed, 2),
         "p50_ms": round(1000 * _percentile(every, 50), 1),
         "page_p50_ms": round(1000 * _percentile(pages, 50), 1),
         "p95_ms": round(1000 * _percentile(every, 95), 1),
         "max_ms": round(1000 * max(every, default=0.0), 1),
-        "by_kind": {k: {"n": len(v), "p50_ms": round(1000 * _percentile(v, 50), 1),
-                        "p95_ms": round(1000 * _percentile(v, 95), 1)}
-                    for k, v in sorted(tally.latencies.items())},
+        "by_kind": {
+            k: {
+                "n": len(v),
+                "p50_ms": round(1000 * _percentile(v, 50), 1),
+                "p95_ms": round(1000 * _percentile(v, 95), 1),
+            }
+            for k, v in sorted(tally.latencies.items())
+        },
     }
     (tmp_path / "load-figures.json").write_text(json.dumps(figures, indent=2))
     report_figure(
@@ -258,13 +288,15 @@ def test_burst_of_concurrent_users_loses_nothing(service: ServiceProcess, tmp_pa
     assert statistics.median(every) < ALL_MEDIAN_LIMIT_S, figures
 
 
-def test_a_large_adjustment_does_not_block_page_loads(tmp_path: Path,
-                                                      report_figure: Callable[[str], None]):
+def test_a_large_adjustment_does_not_block_page_loads(
+    tmp_path: Path, report_figure: Callable[[str], None]
+):
     """While one surveyor adjusts thousands of marks, another's pages still load at once."""
     big = leveling_grid(np.random.default_rng(7), side=110).encode()  # 12 100 marks
     outcome: dict[str, object] = {}
 
     with ServiceProcess(tmp_path / "data", tmp_path / "service.log") as service:
+
         def adjust_big() -> None:
             began = time.monotonic()
             with httpx.Client(base_url=service.url, timeout=REQUEST_TIMEOUT_S * 3) as http:

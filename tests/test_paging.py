@@ -135,7 +135,8 @@ def test_small_demo_shows_no_pager(tmp_path):
         html = client.get(url).text
         assert 'class="pager"' not in html and 'id="flagged-lines"' not in html
         assert html == client.get(url + "?obs_page=7&pt_page=2").text.replace(
-            "?obs_page=7&amp;pt_page=2", "")  # the parameters change nothing
+            "?obs_page=7&amp;pt_page=2", ""
+        )  # the parameters change nothing
         review = client.get(url + "/review").text
         assert 'class="pager"' not in review and f'data-line="{BLUNDER_LINE}"' in review
 
@@ -166,13 +167,18 @@ def test_a_decision_on_a_later_page_comes_back_to_that_page(grid):
     second = client.get(url + "/review?obs_page=2").text
     line = _review_lines(second)[0]
     token = re.search(r'name="token" value="([0-9a-f]{32})"', second).group(1)
-    refused = client.post(url + "/edits", follow_redirects=False,
-                          data={"token": token, "line": str(line), "action": "bogus"})
+    refused = client.post(
+        url + "/edits",
+        follow_redirects=False,
+        data={"token": token, "line": str(line), "action": "bogus"},
+    )
     assert refused.status_code != 500
     assert line in _review_lines(refused.text)  # the refusal is drawn beside its line
     assert f'href="{url}/review?obs_page=1#observations"' in refused.text
-    done = client.post(url + "/edits", follow_redirects=False,
-                       data={"token": token, "line": str(line), "action": "exclude",
-                             "reason": "synthetic check"})
+    done = client.post(
+        url + "/edits",
+        follow_redirects=False,
+        data={"token": token, "line": str(line), "action": "exclude", "reason": "synthetic check"},
+    )
     assert done.status_code == 303
     assert done.headers["location"].endswith(f"/review?obs_page=2#line-{line}")

@@ -34,7 +34,9 @@ def serving(data: Path, port: int, log: Path) -> Iterator[httpx.Client]:
     with log.open("ab") as sink:
         process = subprocess.Popen(
             [sys.executable, "-m", "server", "serve", "--port", str(port), "--data", str(data)],
-            cwd=REPO, stdout=sink, stderr=sink,
+            cwd=REPO,
+            stdout=sink,
+            stderr=sink,
         )
     try:
         deadline = time.monotonic() + 30
@@ -67,14 +69,19 @@ def test_projects_runs_and_decisions_survive_a_restart_of_the_service(tmp_path):
     data, log = tmp_path / "data", tmp_path / "service.log"
     port = free_port()
     with serving(data, port, log) as client:
-        created = client.post("/api/projects", files={"fieldbook": ("two.fieldbook",
-                                                                    TEXT.encode())})
+        created = client.post(
+            "/api/projects", files={"fieldbook": ("two.fieldbook", TEXT.encode())}
+        )
         assert created.status_code == 201
         project = created.json()["id"]
         first_result = created.json()["result"]
         token = _token(client.get(f"/projects/{project}/review").text)
-        decision = {"token": token, "line": str(FIRST), "action": "exclude",
-                    "reason": "staff misread"}
+        decision = {
+            "token": token,
+            "line": str(FIRST),
+            "action": "exclude",
+            "reason": "staff misread",
+        }
         assert client.post(f"/projects/{project}/edits", data=decision).status_code == 303
         assert client.post(f"/projects/{project}/runs", data={"token": token}).status_code == 303
         queued = {**decision, "line": str(SECOND), "reason": "rod not plumb"}
@@ -91,7 +98,8 @@ def test_projects_runs_and_decisions_survive_a_restart_of_the_service(tmp_path):
         assert [r["status"] for r in body["runs"]] == ["finished", "finished"]
         assert body["runs"][0]["edits"] == []
         assert [(e["line"], e["reason"]) for e in body["runs"][1]["edits"]] == [
-            (FIRST, "staff misread")]
+            (FIRST, "staff misread")
+        ]
         assert body["result"] == before["result"]
         first = client.get(f"/api/projects/{project}/runs/{body['runs'][0]['id']}").json()
         assert first["result"] == first_result

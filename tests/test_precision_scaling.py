@@ -29,14 +29,14 @@ import pypdf
 import pytest
 import scipy.stats
 
-from server.report import tables as report
-from server.report import text as text_report
-from server.report import html as html_report
-from server.statistics import quality as st
 from server.errors import FieldbookError
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
+from server.report import html as html_report
+from server.report import tables as report
+from server.report import text as text_report
 from server.report.pdf import report_pdf
+from server.statistics import quality as st
 from server.store.sqlite import _result_from_detail
 from server.web import create_app
 
@@ -47,11 +47,25 @@ with warnings.catch_warnings():
 CONFIDENCE = 0.95
 
 #: Fixed A and B, new points C, D, E; every point pair but A–B measured once.
-TRUE = {"A": (1000.0, 1000.0), "B": (1600.0, 1050.0), "C": (1250.0, 1480.0),
-        "D": (1580.0, 1530.0), "E": (1380.0, 1200.0)}
+TRUE = {
+    "A": (1000.0, 1000.0),
+    "B": (1600.0, 1050.0),
+    "C": (1250.0, 1480.0),
+    "D": (1580.0, 1530.0),
+    "E": (1380.0, 1200.0),
+}
 FIXED = ("A", "B")
-PAIRS = [("A", "C"), ("A", "D"), ("A", "E"), ("B", "C"), ("B", "D"), ("B", "E"),
-         ("C", "D"), ("C", "E"), ("D", "E")]
+PAIRS = [
+    ("A", "C"),
+    ("A", "D"),
+    ("A", "E"),
+    ("B", "C"),
+    ("B", "D"),
+    ("B", "E"),
+    ("C", "D"),
+    ("C", "E"),
+    ("D", "E"),
+]
 #: Invented measuring errors in metres (redundancy 9 − 6 = 3).
 ERRORS = [0.004, -0.003, 0.005, -0.002, 0.003, -0.004, 0.002, -0.005, 0.001]
 
@@ -76,8 +90,9 @@ def _numpy_solution(sd_mm: float):
     free = [n for n in TRUE if n not in FIXED]
     column = {(n, axis): 2 * i + axis for i, n in enumerate(free) for axis in (0, 1)}
     xy = {n: np.array(TRUE[n]) + (0.0 if n in FIXED else np.array([0.3, -0.3])) for n in TRUE}
-    observed = np.array([round(math.dist(TRUE[a], TRUE[b]) + e, 4)
-                         for (a, b), e in zip(PAIRS, ERRORS, strict=True)])
+    observed = np.array(
+        [round(math.dist(TRUE[a], TRUE[b]) + e, 4) for (a, b), e in zip(PAIRS, ERRORS, strict=True)]
+    )
     weight = np.eye(len(PAIRS)) / (sd_mm / 1000.0) ** 2
     for _ in range(20):
         design = np.zeros((len(PAIRS), 2 * len(free)))
@@ -128,7 +143,9 @@ def test_chi_square_ellipse_factor_matches_nist_table_and_closed_form():
             assert st.ellipse_factor(p, r, estimated=False) == pytest.approx(_k_chi2(p), rel=1e-12)
     assert st.ellipse_factor(0.95, 3, estimated=False) == pytest.approx(2.4477, abs=5e-5)
     # the standard ellipse holds 1 − e^(−1/2) = 39.35 % of a 2D normal: k = 1
-    assert st.ellipse_factor(1 - math.exp(-0.5), 7, estimated=False) == pytest.approx(1.0, rel=1e-12)
+    assert st.ellipse_factor(1 - math.exp(-0.5), 7, estimated=False) == pytest.approx(
+        1.0, rel=1e-12
+    )
 
 
 def test_f_ellipse_factor_matches_closed_form_and_scipy():
@@ -159,15 +176,17 @@ def test_precision_variance_branches():
 @pytest.fixture(scope="module")
 def tight():
     """1 mm a priori against errors of up to 5 mm: σ̂₀² well above 1."""
-    return _numpy_solution(1.0), {m: adjust_fieldbook(_fieldbook(1.0, m)) for m in
-                                  ("posterior", "prior", "larger")}
+    return _numpy_solution(1.0), {
+        m: adjust_fieldbook(_fieldbook(1.0, m)) for m in ("posterior", "prior", "larger")
+    }
 
 
 @pytest.fixture(scope="module")
 def loose():
     """20 mm a priori: σ̂₀² well below 1."""
-    return _numpy_solution(20.0), {m: adjust_fieldbook(_fieldbook(20.0, m)) for m in
-                                   ("posterior", "prior", "larger")}
+    return _numpy_solution(20.0), {
+        m: adjust_fieldbook(_fieldbook(20.0, m)) for m in ("posterior", "prior", "larger")
+    }
 
 
 @pytest.mark.parametrize("case", ["tight", "loose"])
@@ -214,8 +233,9 @@ def test_the_choice_leaves_coordinates_and_tests_alone(case, request):
         other = results[method].to_json_dict()
         assert other["observations"] == base["observations"]
         assert other["summary"]["global_test"] == base["summary"]["global_test"]
-        assert [(p["east"], p["north"]) for p in other["points"]] == \
-               [(p["east"], p["north"]) for p in base["points"]]
+        assert [(p["east"], p["north"]) for p in other["points"]] == [
+            (p["east"], p["north"]) for p in base["points"]
+        ]
 
 
 def test_sd_ratio_between_methods_is_the_square_root_of_the_variance_factor(tight):
@@ -223,8 +243,9 @@ def test_sd_ratio_between_methods_is_the_square_root_of_the_variance_factor(tigh
     post = {p.name: p for p in results["posterior"].points}
     prior = {p.name: p for p in results["prior"].points}
     for name in ("C", "D", "E"):
-        assert post[name].sd_north / prior[name].sd_north == pytest.approx(math.sqrt(variance),
-                                                                            rel=1e-9)
+        assert post[name].sd_north / prior[name].sd_north == pytest.approx(
+            math.sqrt(variance), rel=1e-9
+        )
 
 
 def test_default_is_posterior_and_matches_today():
@@ -232,7 +253,9 @@ def test_default_is_posterior_and_matches_today():
     explicit = adjust_fieldbook(_fieldbook(1.0, "posterior"))
     assert default.summary.precision_method == "posterior"
     assert default.to_json_dict()["summary"]["precision_scaling"] == {
-        "method": "posterior", "factor": default.summary.variance_factor}
+        "method": "posterior",
+        "factor": default.summary.variance_factor,
+    }
     assert default.to_json_dict()["points"] == explicit.to_json_dict()["points"]
 
 
@@ -250,7 +273,10 @@ azimuth A P 90:00:00
 def test_zero_redundancy_uses_the_a_priori_variance_whatever_the_method(method):
     result = adjust_fieldbook(NO_REDUNDANCY.format(method=method))
     assert result.summary.redundancy == 0
-    assert result.to_json_dict()["summary"]["precision_scaling"] == {"method": method, "factor": 1.0}
+    assert result.to_json_dict()["summary"]["precision_scaling"] == {
+        "method": method,
+        "factor": 1.0,
+    }
     (p,) = [p for p in result.points if p.name == "P"]
     # east is along the distance (5 mm), north across it (400 m · 5″)
     assert p.sd_east == pytest.approx(0.005, rel=1e-6)
@@ -266,18 +292,33 @@ def test_zero_redundancy_uses_the_a_priori_variance_whatever_the_method(method):
 # the field book
 
 
-@pytest.mark.parametrize(("text", "method"), [("precision=prior", "prior"),
-                                              ("precision=LARGER", "larger"),
-                                              ("alpha=0.01 precision=Posterior", "posterior")])
+@pytest.mark.parametrize(
+    ("text", "method"),
+    [
+        ("precision=prior", "prior"),
+        ("precision=LARGER", "larger"),
+        ("alpha=0.01 precision=Posterior", "posterior"),
+    ],
+)
 def test_parser_reads_the_method_in_any_case(text, method):
     book = parse_fieldbook(f"fieldbook 1\ntests {text}\n" + "point A east=0 north=0 fix\n")
     assert book.tests.precision == method
 
 
-@pytest.mark.parametrize(("value", "hint"), [("posterier", "did you mean 'posterior'?"),
-                                             ("apriori", "did you mean 'prior'?"), ("max", ""), ("1.0", "")])
+@pytest.mark.parametrize(
+    ("value", "hint"),
+    [
+        ("posterier", "did you mean 'posterior'?"),
+        ("apriori", "did you mean 'prior'?"),
+        ("max", ""),
+        ("1.0", ""),
+    ],
+)
 def test_parser_refuses_an_unknown_method_naming_the_line_and_the_choices(value, hint):
-    text = f"fieldbook 1\nunits length=m\ntests alpha=0.05 precision={value}\npoint A east=0 north=0 fix\n"
+    text = (
+        f"fieldbook 1\nunits length=m\ntests alpha=0.05 precision={value}\n"
+        "point A east=0 north=0 fix\n"
+    )
     with pytest.raises(FieldbookError) as caught:
         parse_fieldbook(text)
     message = str(caught.value)
@@ -302,10 +343,14 @@ def test_text_summary_states_choice_and_effect(tight):
     (_, _, variance, _, _), results = tight
     vf, times = f"{variance:.3f}", f"{math.sqrt(variance):.3f}"
     post = text_report.report_text(results["posterior"])
-    assert (f"Precisions scaled by the a posteriori variance factor {vf} "
-            f"(standard deviations × {times})") in post
+    assert (
+        f"Precisions scaled by the a posteriori variance factor {vf} "
+        f"(standard deviations × {times})"
+    ) in post
     prior = text_report.report_text(results["prior"])
-    assert "Precisions scaled by the a priori variance factor 1 (standard deviations × 1.000" in prior
+    assert (
+        "Precisions scaled by the a priori variance factor 1 (standard deviations × 1.000" in prior
+    )
     assert f"would have given standard deviations × {times}" in prior
     larger = text_report.report_text(results["larger"])
     assert f"the a posteriori one, standard deviations × {times}" in larger
@@ -328,8 +373,9 @@ def test_html_report_and_pdf_state_choice_and_ellipse_quantile(tight):
     assert "k = √χ²(95%; 2) = 2.4477" in html
     assert "Precisions scaled by" in html and "a priori σ₀² = 1.000 (sd × 1.000)" in html
     pdf = report_pdf(results["prior"])
-    text = " ".join(re.sub(r"\s+", " ", page.extract_text())
-                    for page in pypdf.PdfReader(io.BytesIO(pdf)).pages)
+    text = " ".join(
+        re.sub(r"\s+", " ", page.extract_text()) for page in pypdf.PdfReader(io.BytesIO(pdf)).pages
+    )
     assert "Precisions scaled by the a priori variance factor 1" in text
     assert "standard deviations are a priori (σ₀² = 1)" in text
     post_html = html_report.report_html(results["posterior"])
@@ -340,8 +386,11 @@ def test_results_page_states_choice(tmp_path: Path, tight):
     (_, _, variance, _, _), _ = tight
     with TestClient(create_app(tmp_path / "data")) as client:
         response = client.post(
-            "/projects", follow_redirects=False,
-            files={"fieldbook": ("larger.fieldbook", _fieldbook(1.0, "larger").encode(), "text/plain")},
+            "/projects",
+            follow_redirects=False,
+            files={
+                "fieldbook": ("larger.fieldbook", _fieldbook(1.0, "larger").encode(), "text/plain")
+            },
         )
         assert response.status_code == 303, response.text
         page = client.get(response.headers["location"])

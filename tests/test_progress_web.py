@@ -11,10 +11,9 @@ from pathlib import Path
 import pytest
 
 from server.pipeline import UNLIMITED, adjust_parsed
-from server.store.sqlite import NO_EDITS, RunGone
-from server.web import create_app
 from server.store import projects as routes
-from server.web import dependencies
+from server.store.sqlite import NO_EDITS, RunGone
+from server.web import create_app, dependencies
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")  # starlette's test client prefers httpx2
@@ -39,8 +38,11 @@ def test_a_long_adjustment_shows_its_stage_then_its_results(app, monkeypatch):
     monkeypatch.setattr(routes, "adjust_parsed", slow)
     monkeypatch.setattr(dependencies, "WAIT_FOR_SMALL_JOBS", 0.05)
     with TestClient(app) as client:
-        posted = client.post("/projects", files={"fieldbook": ("b.fieldbook", BLUNDER.read_bytes())},
-                             follow_redirects=False)
+        posted = client.post(
+            "/projects",
+            files={"fieldbook": ("b.fieldbook", BLUNDER.read_bytes())},
+            follow_redirects=False,
+        )
         assert posted.status_code == 303
         url = posted.headers["location"]
         waiting = client.get(url)
@@ -100,14 +102,18 @@ def test_a_project_deleted_while_it_adjusts_leaves_no_traceback(app, monkeypatch
     monkeypatch.setattr(threading, "excepthook", lambda args: escaped.append(args.exc_value))
     caplog.set_level(logging.INFO, logger="stationfit.web")
     with TestClient(app) as client:
-        posted = client.post("/projects", follow_redirects=False,
-                             files={"fieldbook": ("b.fieldbook", BLUNDER.read_bytes())})
+        posted = client.post(
+            "/projects",
+            follow_redirects=False,
+            files={"fieldbook": ("b.fieldbook", BLUNDER.read_bytes())},
+        )
         project = posted.headers["location"].rsplit("/", 1)[-1]
         assert started.wait(20)
         confirm = client.post(f"/projects/{project}/confirm-delete").text
         token = re.search(r'name="token" value="([0-9a-f]{32})"', confirm).group(1)
-        deleted = client.post(f"/projects/{project}/delete", data={"token": token},
-                              follow_redirects=False)
+        deleted = client.post(
+            f"/projects/{project}/delete", data={"token": token}, follow_redirects=False
+        )
         assert deleted.status_code == 303
         (job,) = list(app.state.jobs._jobs.values())
         release.set()
@@ -128,7 +134,6 @@ def test_a_run_of_a_deleted_project_cannot_be_finished_and_says_why(app):
         store.finish_run(run, error="never mind")
 
 
-
 def test_an_api_upload_deleted_while_it_adjusts_is_not_found_not_a_server_error(app, monkeypatch):
     store = app.state.store
 
@@ -139,7 +144,8 @@ def test_an_api_upload_deleted_while_it_adjusts_is_not_found_not_a_server_error(
 
     monkeypatch.setattr(routes, "adjust_parsed", deleted_meanwhile)
     with TestClient(app, raise_server_exceptions=False) as client:
-        answer = client.post("/api/projects",
-                             files={"fieldbook": ("b.fieldbook", BLUNDER.read_bytes())})
+        answer = client.post(
+            "/api/projects", files={"fieldbook": ("b.fieldbook", BLUNDER.read_bytes())}
+        )
     assert answer.status_code == 404
     assert answer.json() == {"error": "This project was deleted while it was being adjusted."}

@@ -22,8 +22,11 @@ def _sources() -> list[Path]:
 
 
 def test_every_cited_section_of_the_references_exists():
-    headings = {line[3:].strip() for line in REFERENCES.read_text(encoding="utf-8").splitlines()
-                if line.startswith("## ")}
+    headings = {
+        line[3:].strip()
+        for line in REFERENCES.read_text(encoding="utf-8").splitlines()
+        if line.startswith("## ")
+    }
     cited = {}
     for path in _sources():
         text = path.read_text(encoding="utf-8")
@@ -47,9 +50,12 @@ def test_every_reference_value_says_how_sure_it_is():
 def test_nothing_points_outside_the_repository():
     """A clone has no shared specification or reference folder; nothing may cite one."""
     outside = re.compile(r"shared/(spec|references)|/work/")
-    offenders = [f"{p.relative_to(ROOT)}:{n}" for p in _sources()
-                 for n, line in enumerate(p.read_text(encoding="utf-8").splitlines(), 1)
-                 if outside.search(line) and p != Path(__file__)]
+    offenders = [
+        f"{p.relative_to(ROOT)}:{n}"
+        for p in _sources()
+        for n, line in enumerate(p.read_text(encoding="utf-8").splitlines(), 1)
+        if outside.search(line) and p != Path(__file__)
+    ]
     assert offenders == []
 
 
@@ -65,6 +71,9 @@ def test_property_tests_run_under_the_profile_docs_security_describes():
     assert settings.default.derandomize is (chosen() == "ci")
     assert settings.default.database is None
     assert examples(10) == (10 if chosen() == "ci" else 10 * RANDOM_FACTOR)
-    pinned = [p.name for p in (ROOT / "tests").glob("test_*.py")
-              if p.name != Path(__file__).name and "derandomize=" in p.read_text(encoding="utf-8")]
+    pinned = [
+        p.name
+        for p in (ROOT / "tests").glob("test_*.py")
+        if p.name != Path(__file__).name and "derandomize=" in p.read_text(encoding="utf-8")
+    ]
     assert pinned == []

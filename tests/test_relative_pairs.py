@@ -15,8 +15,8 @@ import pytest
 import scipy.stats
 
 from server.engine import gauss_newton as engine
-from server.fieldbook import parser as fieldbook_module
 from server.errors import FieldbookError
+from server.fieldbook import parser as fieldbook_module
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook
 from server.report.tables import pairs_checked, standards_summary
@@ -59,7 +59,11 @@ def boundary_text(extra: str = "", *, seed: int = 5, tolerance: str = "2cm+50ppm
         orientation = rng.uniform(0.0, 2.0 * math.pi)
         lines.append(f"directions {station}")
         for target, where in [(other, CONTROL[other]), *CORNERS.items()]:
-            value = _azimuth(here, where) - orientation + rng.normal(0.0, DIRECTION_SD_SEC * RAD_PER_SEC)
+            value = (
+                _azimuth(here, where)
+                - orientation
+                + rng.normal(0.0, DIRECTION_SD_SEC * RAD_PER_SEC)
+            )
             lines.append(f"  {target} {format_dms(math.degrees(value) % 360.0, 2)}")
         lines.append("end")
         for target, where in CORNERS.items():
@@ -194,7 +198,10 @@ def test_banner_on_failure_says_how_many_of_which_pairs():
     result = adjust_fieldbook(boundary_text(ADJACENT, tolerance="0.1mm"))
     (check,) = standards_summary(result)
     assert check.state == "fail"
-    assert check.words == "Fail: 12 of 12 pairs exceed the allowance (8 joined pairs and 4 requested pairs checked)"
+    assert (
+        check.words == "Fail: 12 of 12 pairs exceed the allowance "
+        "(8 joined pairs and 4 requested pairs checked)"
+    )
 
 
 @pytest.mark.parametrize("path", ["dense", "sparse"])
@@ -228,7 +235,9 @@ def test_leveling_pair_gives_the_sd_of_the_height_difference(path, monkeypatch):
     t = scipy.stats.t.ppf(0.975, result.summary.redundancy)
     assert n1n2.half_width == pytest.approx(t * n1n2.sd, rel=1e-9)
     points = {p.name: p for p in result.points}
-    assert n1n2.height_difference == pytest.approx(points["N2"].height - points["N1"].height, abs=1e-12)
+    assert n1n2.height_difference == pytest.approx(
+        points["N2"].height - points["N1"].height, abs=1e-12
+    )
     data = result.to_json_dict()
     assert data["relative_heights"][0]["from"] == "N1" and data["relative_heights"][0]["to"] == "N2"
 
@@ -253,7 +262,10 @@ def test_parser_reads_pairs_with_their_lines_anywhere_after_the_header():
         "distance B C 12.0\n"
     )
     book = parse_fieldbook(text)
-    assert [(p.line, p.first, p.second) for p in book.relative_pairs] == [(3, "A", "C"), (5, "B", "C")]
+    assert [(p.line, p.first, p.second) for p in book.relative_pairs] == [
+        (3, "A", "C"),
+        (5, "B", "C"),
+    ]
 
 
 def test_parser_fast_path_and_careful_path_agree_with_relative_lines(monkeypatch):
@@ -268,7 +280,12 @@ def test_parser_fast_path_and_careful_path_agree_with_relative_lines(monkeypatch
 @pytest.mark.parametrize(
     ("line", "token", "words"),
     [
-        ("relative K1 k2", "k2", "point k2 is not in this field book (no point line or observation names it); did you mean 'K2'?"),
+        (
+            "relative K1 k2",
+            "k2",
+            "point k2 is not in this field book (no point line or observation names it); "
+            "did you mean 'K2'?",
+        ),
         ("relative K1 K22", "K22", "did you mean 'K2'?"),
         ("relative K1 K1", "K1", "relative from K1 to itself"),
         ("relative K1", "relative", "relative needs the first point A and the second point B"),
@@ -298,7 +315,9 @@ def test_relative_is_a_body_statement_so_a_header_after_it_is_refused():
     text = "relative A B\ntolerance relative=2cm\ndefaults distance=2mm\ndistance A B 10.0\n"
     with pytest.raises(FieldbookError) as caught:
         parse_fieldbook(text)
-    assert any("must come before the first point or observation" in i.message for i in caught.value.issues)
+    assert any(
+        "must come before the first point or observation" in i.message for i in caught.value.issues
+    )
 
 
 def test_joint_network_pair_with_a_height_only_point_is_named_in_a_warning():
@@ -318,31 +337,49 @@ def test_joint_network_pair_with_a_height_only_point_is_named_in_a_warning():
     result = adjust_fieldbook(text)
     assert result.summary.dimension == 3
     assert [(r.from_point, r.to_point, r.requested) for r in result.relative] == [
-        ("A", "C", True), ("B", "C", False)]
+        ("A", "C", True),
+        ("B", "C", False),
+    ]
     assert result.relative_heights == ()
-    assert any(w.startswith("line 15: relative C TP is not reported: TP has no adjusted "
-                            "horizontal position") for w in result.warnings)
+    assert any(
+        w.startswith(
+            "line 15: relative C TP is not reported: TP has no adjusted horizontal position"
+        )
+        for w in result.warnings
+    )
 
 
 def test_a_relative_decision_appends_lines_keeping_every_line_number_and_the_line_ends():
     from server.fieldbook.edits import EditError, ObservationEdit, apply_edits
 
     text = boundary_text("relative K1 K2").replace("\n", "\r\n")  # CRLF, no final line end
-    edit = ObservationEdit(line=0, action="relative", reason="adjacent\ncorners", date="2026-12-03",
-                           pairs=(("K2", "K1"), ("K2", "K3")))
+    edit = ObservationEdit(
+        line=0,
+        action="relative",
+        reason="adjacent\ncorners",
+        date="2026-12-03",
+        pairs=(("K2", "K1"), ("K2", "K3")),
+    )
     edited = apply_edits(text, [edit])
     assert edited.startswith(text + "\r\n")  # K2–K1 is already asked for: not repeated
-    assert edited[len(text) + 2:] == (
-        "relative K2 K3  # 2026-12-03 relative precision asked for: adjacent corners\r\n")
+    assert edited[len(text) + 2 :] == (
+        "relative K2 K3  # 2026-12-03 relative precision asked for: adjacent corners\r\n"
+    )
     assert [(p.first, p.second) for p in parse_fieldbook(edited).relative_pairs] == [
-        ("K1", "K2"), ("K2", "K3")]
-    for pairs, words in (((), "at least one pair"), ((("K1", "K1"),), "same point twice"),
-                         ((("K1", "K 2"),), "cannot be written"),
-                         (tuple(("K1", f"P{k}") for k in range(201)), "at most 200")):
+        ("K1", "K2"),
+        ("K2", "K3"),
+    ]
+    for pairs, words in (
+        ((), "at least one pair"),
+        ((("K1", "K1"),), "same point twice"),
+        ((("K1", "K 2"),), "cannot be written"),
+        (tuple(("K1", f"P{k}") for k in range(201)), "at most 200"),
+    ):
         bad = ObservationEdit(line=0, action="relative", reason="r", date="2026-12-03", pairs=pairs)
         with pytest.raises(EditError, match=words):
             apply_edits(text, [bad])
-    unknown = ObservationEdit(line=0, action="relative", reason="r", date="2026-12-03",
-                              pairs=(("K1", "K33"),))
+    unknown = ObservationEdit(
+        line=0, action="relative", reason="r", date="2026-12-03", pairs=(("K1", "K33"),)
+    )
     with pytest.raises(EditError, match=r"line 31: relative: point K33 .*did you mean .K3.?"):
         apply_edits(text, [unknown])

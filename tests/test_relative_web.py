@@ -35,8 +35,11 @@ def client(tmp_path: Path) -> TestClient:
 
 
 def _upload(client: TestClient, text: str = TEXT, name: str = "lot14.fieldbook") -> str:
-    response = client.post("/projects", files={"fieldbook": (name, text.encode(), "text/plain")},
-                           follow_redirects=False)
+    response = client.post(
+        "/projects",
+        files={"fieldbook": (name, text.encode(), "text/plain")},
+        follow_redirects=False,
+    )
     assert response.status_code == 303
     return response.headers["location"].rsplit("/", 1)[1]
 
@@ -75,8 +78,9 @@ def test_results_page_offers_the_adjusted_points_but_not_loose_ones(client):
 
 def test_picked_pairs_are_queued_and_the_rerun_reports_them(client):
     project = _upload(client)
-    response = _ask(client, project, **{"from": "K1", "to": "K2"},
-                    among=["K2", "K3", "K4"], pair=["K4 K1"])
+    response = _ask(
+        client, project, **{"from": "K1", "to": "K2"}, among=["K2", "K3", "K4"], pair=["K4 K1"]
+    )
     assert response.status_code == 303
     assert response.headers["location"].endswith("/review#decisions")
     review = client.get(f"/projects/{project}/review").text
@@ -99,10 +103,15 @@ def test_picked_pairs_are_queued_and_the_rerun_reports_them(client):
 
 def test_a_form_without_the_token_is_refused(client):
     project = _upload(client)
-    response = client.post(f"/projects/{project}/relative-pairs",
-                           data={"from": "K1", "to": "K2", "reason": "x"}, follow_redirects=False)
+    response = client.post(
+        f"/projects/{project}/relative-pairs",
+        data={"from": "K1", "to": "K2", "reason": "x"},
+        follow_redirects=False,
+    )
     assert response.status_code == 403
-    assert client.get(f"/projects/{project}/review").text.count("Report the relative precision") == 0
+    assert (
+        client.get(f"/projects/{project}/review").text.count("Report the relative precision") == 0
+    )
 
 
 @pytest.mark.parametrize(
@@ -159,7 +168,8 @@ def test_a_leveling_project_gets_the_sd_of_the_height_difference(client):
     # N1 and N2 lie on separate lines between the benchmarks: uncorrelated, so
     # σ(ΔH)² = σ(N1)² + σ(N2)²
     points = {p["name"]: p for p in data["points"]}
-    assert pair["sd"] == pytest.approx((points["N1"]["sd_height"] ** 2
-                                        + points["N2"]["sd_height"] ** 2) ** 0.5, rel=1e-9)
+    assert pair["sd"] == pytest.approx(
+        (points["N1"]["sd_height"] ** 2 + points["N2"]["sd_height"] ** 2) ** 0.5, rel=1e-9
+    )
     page = client.get(f"/projects/{project}").text
     assert 'id="relative-heights"' in page

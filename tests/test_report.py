@@ -12,12 +12,11 @@ from pathlib import Path
 import pytest
 
 from server import __version__
-
-from server.report import tables as report
-from server.report import csv_export
-from server.report import text as text_report
-from server.report import html as html_report
 from server.pipeline import adjust_fieldbook
+from server.report import csv_export
+from server.report import html as html_report
+from server.report import tables as report
+from server.report import text as text_report
 from server.results.result import (
     CAUTION,
     AdjustmentResult,
@@ -46,36 +45,81 @@ def clean() -> AdjustmentResult:
 
 def _summary(**changes: object) -> Summary:
     base = Summary(
-        dimension=2, points=2, observations=1, used_observations=1, unknowns=2, redundancy=3,
-        iterations=2, converged=True, variance_factor=1.1,
+        dimension=2,
+        points=2,
+        observations=1,
+        used_observations=1,
+        unknowns=2,
+        redundancy=3,
+        iterations=2,
+        converged=True,
+        variance_factor=1.1,
         global_test=GlobalTest(statistic=3.3, lower=0.2, upper=9.3, alpha=0.05, passed=True),
-        critical_w=3.2905, lambda0=17.075, ellipse_factor=2.45,
-        alpha=0.05, snooping=0.001, power=0.80, confidence=0.95,
+        critical_w=3.2905,
+        lambda0=17.075,
+        ellipse_factor=2.45,
+        alpha=0.05,
+        snooping=0.001,
+        power=0.80,
+        confidence=0.95,
     )
     return dataclasses.replace(base, **changes)
 
 
-def _built(points: tuple[PointResult, ...] = (), observations: tuple[ObservationResult, ...] = (),
-           angle_unit: str = "dms", **changes: object) -> AdjustmentResult:
+def _built(
+    points: tuple[PointResult, ...] = (),
+    observations: tuple[ObservationResult, ...] = (),
+    angle_unit: str = "dms",
+    **changes: object,
+) -> AdjustmentResult:
     """A hand-made result, for formatting cases no field book can produce."""
     return AdjustmentResult(
-        title="Hand-made", source="hand.fieldbook", length_unit="m", angle_unit=angle_unit,
-        text_sha256="ab" * 32, summary=_summary(**changes), points=points,
-        observations=observations, misclosures=(), relative=(), warnings=(),
+        title="Hand-made",
+        source="hand.fieldbook",
+        length_unit="m",
+        angle_unit=angle_unit,
+        text_sha256="ab" * 32,
+        summary=_summary(**changes),
+        points=points,
+        observations=observations,
+        misclosures=(),
+        relative=(),
+        warnings=(),
     )
 
 
 def _point(name: str, **changes: object) -> PointResult:
-    base = PointResult(name=name, east=None, north=None, height=None, sd_east=None,
-                       sd_north=None, sd_height=None, fixed="", weighted="", ellipse=None)
+    base = PointResult(
+        name=name,
+        east=None,
+        north=None,
+        height=None,
+        sd_east=None,
+        sd_north=None,
+        sd_height=None,
+        fixed="",
+        weighted="",
+        ellipse=None,
+    )
     return dataclasses.replace(base, **changes)
 
 
 def _angle(value_deg: float, residual_arcsec: float) -> ObservationResult:
     return ObservationResult(
-        line=7, kind="angle", from_point="B", at="A", to="C", observed=value_deg,
-        adjusted=value_deg + residual_arcsec / 3600, residual=residual_arcsec, sd=2.0,
-        redundancy=0.5, w=-1.234, mdb=11.66, flagged=False, ignored=False,
+        line=7,
+        kind="angle",
+        from_point="B",
+        at="A",
+        to="C",
+        observed=value_deg,
+        adjusted=value_deg + residual_arcsec / 3600,
+        residual=residual_arcsec,
+        sd=2.0,
+        redundancy=0.5,
+        w=-1.234,
+        mdb=11.66,
+        flagged=False,
+        ignored=False,
     )
 
 
@@ -88,8 +132,12 @@ def test_report_shows_caution_at_top_and_bottom(blunder):
     assert html.count(CAUTION) == 2
     body = html.split("<body>", 1)[1]
     # once before the verdict and once after the observations
-    order = [body.index(CAUTION), body.index("Fails"), body.index("Observations"),
-             body.rindex(CAUTION)]
+    order = [
+        body.index(CAUTION),
+        body.index("Fails"),
+        body.index("Observations"),
+        body.rindex(CAUTION),
+    ]
     assert order == sorted(order)
 
 
@@ -175,8 +223,13 @@ def test_style_hash_matches_the_inline_style(blunder):
 
 @pytest.mark.parametrize(
     ("value", "text"),
-    [(0.00004, "0.0000"), (-0.00004, "0.0000"), (-0.00005001, "-0.0001"), (84.85674999, "84.8567"),
-     (None, "—")],
+    [
+        (0.00004, "0.0000"),
+        (-0.00004, "0.0000"),
+        (-0.00005001, "-0.0001"),
+        (84.85674999, "84.8567"),
+        (None, "—"),
+    ],
 )
 def test_lengths_to_a_tenth_of_a_millimetre_without_negative_zero(value, text):
     assert report.fmt_length(value, "m") == text
@@ -194,8 +247,14 @@ def test_angles_follow_the_field_books_unit():
 
 def test_ellipse_azimuth_in_dms_and_axes_in_length_units():
     ellipse = Ellipse(semi_major=0.01234, semi_minor=0.0051, azimuth=164.5947, confidence=0.95)
-    point = _point("LF-101", east=511182.02651, north=182624.72409, sd_east=0.0017,
-                   sd_north=0.0026, ellipse=ellipse)
+    point = _point(
+        "LF-101",
+        east=511182.02651,
+        north=182624.72409,
+        sd_east=0.0017,
+        sd_north=0.0026,
+        ellipse=ellipse,
+    )
     row = report.point_rows(_built(points=(point,)))[0]
     assert (row.east, row.north) == ("511182.0265", "182624.7241")
     assert (row.semi_major, row.semi_minor, row.azimuth) == ("0.0123", "0.0051", "164:35:41")

@@ -24,11 +24,11 @@ from reportlab.graphics.shapes import Ellipse, Group
 
 from server import __version__
 from server.fieldbook.parser import parse_fieldbook
+from server.pipeline import adjust_fieldbook, adjust_parsed
+from server.report.pdf import report_pdf
 from server.report.pdf_drawings import network_drawing
 from server.report.pdf_kit import load_fonts
-from server.pipeline import adjust_fieldbook, adjust_parsed
 from server.report.plot import network_plot_data
-from server.report.pdf import report_pdf
 from server.results.result import CAUTION, AdjustmentResult
 from server.review.standards import PRESETS, with_presets
 
@@ -141,16 +141,19 @@ def test_first_page_gives_the_verdict_and_the_standards_in_words(blunder, blunde
     assert f"line {BLUNDER_LINE}" in first
     exceeded = sum(m.exceeds for m in blunder.misclosures)
     assert exceeded == 2  # tools/DEMOS.md: the blunder opens two circuits
-    assert (f"Leveling misclosures. Fail: {exceeded} of {len(blunder.misclosures)} loops and runs "
-            "exceed the allowance") in first
+    assert (
+        f"Leveling misclosures. Fail: {exceeded} of {len(blunder.misclosures)} loops and runs "
+        "exceed the allowance"
+    ) in first
 
 
 def test_settings_state_the_ellipse_factor_and_its_convention(network, network_pdf):
     """The reader must be able to tell which 95 % factor the ellipses carry (docs/standards.md)."""
     first = _pages(network_pdf)[0]
     s = network.summary
-    assert (f"k = √(2·F(95%; 2, r)) = {s.ellipse_factor:.4f} for r = {s.redundancy} degrees of "
-            "freedom") in first
+    assert (
+        f"k = √(2·F(95%; 2, r)) = {s.ellipse_factor:.4f} for r = {s.redundancy} degrees of freedom"
+    ) in first
     assert "Significance of the global test α 0.05" in first
     assert "Directions (92) 1.5 to 2.6″" in first  # a priori sd actually used, by kind
 
@@ -159,17 +162,23 @@ def test_every_point_and_observation_is_listed(network, network_pdf):
     text = " ".join(_pages(network_pdf))
     for p in network.points:
         assert f"{p.name} {p.east:.4f} {p.north:.4f}" in text, p.name
-    lines = [int(n) for n in re.findall(r"(?:^| )(\d{2,3}) (?:distance|direction|angle|azimuth) ",
-                                        text)]
+    lines = [
+        int(n) for n in re.findall(r"(?:^| )(\d{2,3}) (?:distance|direction|angle|azimuth) ", text)
+    ]
     assert sorted(set(lines)) == sorted(o.line for o in network.observations)
 
 
 def test_observation_table_repeats_its_header_on_every_page_it_runs_onto(network, network_pdf):
     pages = _pages(network_pdf)
-    header = ("Line Kind Marks Booked (m / D:M:S) Used Residual (m / ″) sd (m / ″) r w "
-              "Est. bias (m / ″) MDB")
-    with_rows = [i for i, text in enumerate(pages)
-                 if re.search(r" \d{2,3} (distance|direction|angle|azimuth) [A-Z]", text)]
+    header = (
+        "Line Kind Marks Booked (m / D:M:S) Used Residual (m / ″) sd (m / ″) r w "
+        "Est. bias (m / ″) MDB"
+    )
+    with_rows = [
+        i
+        for i, text in enumerate(pages)
+        if re.search(r" \d{2,3} (distance|direction|angle|azimuth) [A-Z]", text)
+    ]
     assert len(with_rows) >= 3  # 166 observations do not fit on fewer pages
     assert with_rows == list(range(with_rows[0], with_rows[-1] + 1))
     for i in with_rows:
@@ -183,8 +192,10 @@ def test_flagged_observations_are_marked_in_words(directions, directions_pdf):
     assert text.count("⚑ flagged") == len(flagged)
     worst = max(flagged, key=lambda o: abs(o.w))
     # the estimated bias −v/r stands beside w
-    assert f"{worst.residual:.1f}″ {worst.sd:.1f}″ {worst.redundancy:.2f} {worst.w:.2f} " \
-           f"{-worst.residual / worst.redundancy:.1f}″ {worst.mdb:.1f}″ ⚑ flagged" in text
+    assert (
+        f"{worst.residual:.1f}″ {worst.sd:.1f}″ {worst.redundancy:.2f} {worst.w:.2f} "
+        f"{-worst.residual / worst.redundancy:.1f}″ {worst.mdb:.1f}″ ⚑ flagged" in text
+    )
 
 
 def test_relative_precision_table_says_meets_or_fails(network, network_pdf):
@@ -192,8 +203,10 @@ def test_relative_precision_table_says_meets_or_fails(network, network_pdf):
     assert "Relative precision between point pairs" in text
     assert text.count("✓ meets") == sum(r.passed is True for r in network.relative)
     first = network.relative[0]
-    assert (f"{first.from_point} {first.to_point} joined {first.distance:.4f} {first.sd_distance:.4f} "
-            f"{first.semi_major:.4f}") in text
+    assert (
+        f"{first.from_point} {first.to_point} joined {first.distance:.4f} {first.sd_distance:.4f} "
+        f"{first.semi_major:.4f}"
+    ) in text
 
 
 def test_preset_is_named_with_its_source_and_status(blunder):
@@ -201,8 +214,9 @@ def test_preset_is_named_with_its_source_and_status(blunder):
     (docs/references.md "FGCC 1984 leveling allowances")."""
     preset = PRESETS["fgcc-1984-first-order-class-I"]
     path = DEMOS / "leveling_blunder.fieldbook"
-    fieldbook = with_presets(parse_fieldbook(path.read_bytes(), source=path.name),
-                             misclosure=preset.key)
+    fieldbook = with_presets(
+        parse_fieldbook(path.read_bytes(), source=path.name), misclosure=preset.key
+    )
     result = adjust_parsed(fieldbook)
     text = " ".join(_pages(report_pdf(result, presets=[preset])))
     assert f"Allowance: {preset.label} (preset)" in text
@@ -250,12 +264,18 @@ def test_page_size_can_be_a4_and_is_checked(blunder):
 
 def _render(pdf: bytes, tmp_path: Path, dpi: int = 50) -> list[Image.Image]:
     if shutil.which("pdftoppm") is None:
-        pytest.skip("pdftoppm (Debian poppler-utils) is not installed; scripts/install --test "
-                    "installs it when run as root")
+        pytest.skip(
+            "pdftoppm (Debian poppler-utils) is not installed; scripts/install --test "
+            "installs it when run as root"
+        )
     source = tmp_path / "report.pdf"
     source.write_bytes(pdf)
-    subprocess.run(["pdftoppm", "-r", str(dpi), "-png", str(source), str(tmp_path / "page")],
-                   check=True, capture_output=True, timeout=120)
+    subprocess.run(
+        ["pdftoppm", "-r", str(dpi), "-png", str(source), str(tmp_path / "page")],
+        check=True,
+        capture_output=True,
+        timeout=120,
+    )
     files = sorted(tmp_path.glob("page-*.png"), key=lambda p: int(p.stem.split("-")[1]))
     return [Image.open(f).convert("RGB") for f in files]
 
@@ -306,8 +326,9 @@ def test_ellipses_are_drawn_along_their_azimuth(directions):
     """The major axis must point along the azimuth, clockwise from grid north (y up in PDF)."""
     data = network_plot_data(directions)
     drawing = network_drawing(data, 500, load_fonts())
-    groups = [g for g in drawing.contents
-              if isinstance(g, Group) and isinstance(g.contents[0], Ellipse)]
+    groups = [
+        g for g in drawing.contents if isinstance(g, Group) and isinstance(g.contents[0], Ellipse)
+    ]
     with_ellipse = [p for p in data["points"] if p["ellipse"] is not None]
     assert len(groups) == len(with_ellipse) > 0
     for group, point in zip(groups, with_ellipse, strict=True):
@@ -326,9 +347,11 @@ def test_the_report_names_the_field_book_by_its_file_name_not_its_folders(tmp_pa
     folder.mkdir(parents=True)
     path = folder / "spur.fieldbook"
     # a point named once like a declared one gives a warning, which names the file and line
-    path.write_text("defaults level=1mm/sqrtkm\npoint BM-21 height=100 fix\n"
-                    "point BM-30 height=101 fix\nlevel BM-21 TP1 +0.5 len=0.3km\n"
-                    "level TP1 BM-30 +0.5 len=0.3km\nlevel TP1 BM-12 +0.2 len=0.1km\n")
+    path.write_text(
+        "defaults level=1mm/sqrtkm\npoint BM-21 height=100 fix\n"
+        "point BM-30 height=101 fix\nlevel BM-21 TP1 +0.5 len=0.3km\n"
+        "level TP1 BM-30 +0.5 len=0.3km\nlevel TP1 BM-12 +0.2 len=0.1km\n"
+    )
     result = adjust_fieldbook(path.read_bytes(), source=str(path))
     assert any(w.startswith(f"{path}:6:") for w in result.warnings)  # the JSON keeps it whole
     text = " ".join(_pages(report_pdf(result, generated=WHEN)))
@@ -342,8 +365,12 @@ def test_the_report_names_the_field_book_by_its_file_name_not_its_folders(tmp_pa
 
 @pytest.mark.parametrize(
     ("source", "name"),
-    [("/home/ann/jobs/a.fieldbook", "a.fieldbook"), (r"C:\Users\ann\b.fieldbook", "b.fieldbook"),
-     ("c.fieldbook", "c.fieldbook"), ("", "")],
+    [
+        ("/home/ann/jobs/a.fieldbook", "a.fieldbook"),
+        (r"C:\Users\ann\b.fieldbook", "b.fieldbook"),
+        ("c.fieldbook", "c.fieldbook"),
+        ("", ""),
+    ],
 )
 def test_source_name_drops_the_folders_of_either_kind_of_path(source, name):
     from server.report.html import source_name

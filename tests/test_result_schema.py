@@ -35,7 +35,11 @@ VALIDATOR = jsonschema.Draft202012Validator(SCHEMA)
 def _cli_json(demo: Path) -> dict:
     proc = subprocess.run(
         [sys.executable, "-m", "server", "adjust", str(demo), "--json"],
-        cwd=ROOT, capture_output=True, text=True, timeout=120, check=False,
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
     )
     assert proc.returncode == 0, proc.stderr
     return json.loads(proc.stdout)
@@ -83,7 +87,9 @@ def test_every_demo_result_from_the_command_line_validates(demo, cli_results):
 
 
 @pytest.mark.parametrize("demo", DEMOS, ids=lambda p: p.stem)
-def test_every_demo_result_from_the_json_api_validates_and_equals_the_cli(demo, client, cli_results):
+def test_every_demo_result_from_the_json_api_validates_and_equals_the_cli(
+    demo, client, cli_results
+):
     response = client.post("/api/adjust", files={"fieldbook": (demo.name, demo.read_bytes())})
     assert response.status_code == 200
     document = response.json()
@@ -148,12 +154,26 @@ def _mutations() -> list[tuple[str, callable]]:
     def line_zero(d):
         d["observations"][0]["line"] = 0
 
-    return [(f.__name__, f) for f in (
-        typo_observation, extra_top_level, flagged_as_text, missing_caution, fixed_upper_case,
-        dimension_four, null_sd, negative_sd, unknown_kind, confidence_percent,
-        misclosure_points_as_text, traverse_keys_on_a_loop, unknown_precision_method,
-        inseparable_as_names, line_zero,
-    )]
+    return [
+        (f.__name__, f)
+        for f in (
+            typo_observation,
+            extra_top_level,
+            flagged_as_text,
+            missing_caution,
+            fixed_upper_case,
+            dimension_four,
+            null_sd,
+            negative_sd,
+            unknown_kind,
+            confidence_percent,
+            misclosure_points_as_text,
+            traverse_keys_on_a_loop,
+            unknown_precision_method,
+            inseparable_as_names,
+            line_zero,
+        )
+    ]
 
 
 @pytest.mark.parametrize("mutation", _mutations(), ids=lambda m: m[0])
@@ -174,18 +194,34 @@ def test_the_keys_added_this_round_validate_with_their_types(cli_results):
     document["observations"][3]["inseparable"] = [28, 31]
     for pair in document["relative"]:
         pair["requested"] = False
-    document["misclosures"].append({
-        # a linear misclosure of 0.080 over 2400.00 (1 : 30 000), nine angle stations
-        "kind": "traverse", "points": ["MON-3", "STA-1", "STA-2", "MON-4"],
-        "misclosure": 0.080, "length": 2400.0, "allowed": 0.24, "exceeds": False,
-        "angular_misclosure": -12.0, "angular_allowed": 30.0, "angle_stations": 9,
-        "misclosure_east": 0.048, "misclosure_north": -0.064,
-        "ratio": 30000.0, "ratio_allowed": 10000.0,
-    })
+    document["misclosures"].append(
+        {
+            # a linear misclosure of 0.080 over 2400.00 (1 : 30 000), nine angle stations
+            "kind": "traverse",
+            "points": ["MON-3", "STA-1", "STA-2", "MON-4"],
+            "misclosure": 0.080,
+            "length": 2400.0,
+            "allowed": 0.24,
+            "exceeds": False,
+            "angular_misclosure": -12.0,
+            "angular_allowed": 30.0,
+            "angle_stations": 9,
+            "misclosure_east": 0.048,
+            "misclosure_north": -0.064,
+            "ratio": 30000.0,
+            "ratio_allowed": 10000.0,
+        }
+    )
     assert _errors(document) == []
     # a traverse without a closing orientation and an exact closure: the nulls the contract allows
-    document["misclosures"][-1].update(angular_misclosure=None, angular_allowed=None, ratio=None,
-                                       misclosure=0.0, misclosure_east=0.0, misclosure_north=0.0)
+    document["misclosures"][-1].update(
+        angular_misclosure=None,
+        angular_allowed=None,
+        ratio=None,
+        misclosure=0.0,
+        misclosure_east=0.0,
+        misclosure_north=0.0,
+    )
     assert _errors(document) == []
     document["misclosures"][-1]["angle_stations"] = 9.5
     assert _errors(document)
@@ -196,8 +232,15 @@ ARRIVING = {
     "observation": {"booked", "estimated_bias", "inseparable"},
     "relative": {"requested"},
     "summary": {"precision_scaling"},
-    "misclosure": {"angular_misclosure", "angular_allowed", "angle_stations", "misclosure_east",
-                   "misclosure_north", "ratio", "ratio_allowed"},
+    "misclosure": {
+        "angular_misclosure",
+        "angular_allowed",
+        "angle_stations",
+        "misclosure_east",
+        "misclosure_north",
+        "ratio",
+        "ratio_allowed",
+    },
 }
 
 
@@ -212,8 +255,12 @@ def test_every_key_the_schema_names_is_one_the_program_writes(cli_results):
     for result in [*cli_results.values(), geodetic]:
         written["top"] |= set(result)
         written["summary"] |= set(result["summary"])
-        for name, key in (("observation", "observations"), ("relative", "relative"),
-                          ("misclosure", "misclosures"), ("point", "points")):
+        for name, key in (
+            ("observation", "observations"),
+            ("relative", "relative"),
+            ("misclosure", "misclosures"),
+            ("point", "points"),
+        ):
             for record in result[key]:
                 written[name] |= set(record)
     assert set(SCHEMA["properties"]) == written["top"]

@@ -62,8 +62,14 @@ def test_grid_and_heights_agree_with_pyproj_cart_and_projection():
     cart = pyproj.Transformer.from_pipeline("+proj=cart +ellps=WGS84")
     x, y, z = cart.transform(lon, lat, h)
     xyz = np.stack([x, y, z], axis=1)
-    got = geodetic.point_values(crs, xyz, np.broadcast_to(np.eye(3) * 1e-6, (20, 3, 3)),
-                                np.zeros(20), 2.4477, per_metre=1.0 / 0.3048)
+    got = geodetic.point_values(
+        crs,
+        xyz,
+        np.broadcast_to(np.eye(3) * 1e-6, (20, 3, 3)),
+        np.zeros(20),
+        2.4477,
+        per_metre=1.0 / 0.3048,
+    )
     to_grid = pyproj.Transformer.from_crs("EPSG:4326", "EPSG:32633", always_xy=True)
     east, north = to_grid.transform(lon, lat)
     np.testing.assert_allclose(got.east, east, atol=1e-6)
@@ -83,8 +89,9 @@ def test_scale_and_convergence_from_geodesics_on_a_site_grid():
     crs = local_crs(lat0, lon0, 5000.0, 8000.0)
     geod = Geodesic(GRS80.a, GRS80.f)
     lat, lon = 47.27, 8.56  # about 4.5 km east of the site meridian
-    got = geodetic.point_values(crs, _ecef(lat, lon, 500.0), np.eye(3)[None] * 1e-6,
-                                np.zeros(1), 2.4477)
+    got = geodetic.point_values(
+        crs, _ecef(lat, lon, 500.0), np.eye(3)[None] * 1e-6, np.zeros(1), 2.4477
+    )
     e0, n0 = crs.geodetic_to_grid(np.radians([lat]), np.radians([lon]))
     for azimuth in (0.0, 60.0):
         step = geod.Direct(lat, lon, azimuth, 1.0)
@@ -92,8 +99,9 @@ def test_scale_and_convergence_from_geodesics_on_a_site_grid():
         grid_azimuth = math.degrees(math.atan2(e1[0] - e0[0], n1[0] - n0[0]))
         # geodetic azimuth = grid azimuth + convergence
         assert grid_azimuth + got.convergence[0] == pytest.approx(azimuth, abs=2e-6)
-        assert math.hypot(e1[0] - e0[0], n1[0] - n0[0]) == pytest.approx(got.scale_factor[0],
-                                                                         abs=1e-8)
+        assert math.hypot(e1[0] - e0[0], n1[0] - n0[0]) == pytest.approx(
+            got.scale_factor[0], abs=1e-8
+        )
     assert got.convergence[0] > 0.0  # east of the central meridian, northern hemisphere
     assert got.scale_factor[0] - 1.0 == pytest.approx(4400.0**2 / (2 * 6.38e6**2), rel=0.1)
 
@@ -125,8 +133,7 @@ def test_local_standard_deviations_and_ellipse_by_monte_carlo():
     got = geodetic.point_values(crs, xyz, cov[None], np.zeros(1), factor)
     rng = np.random.default_rng(17)
     draws = rng.multivariate_normal(xyz[0], cov, size=20000)
-    topo = pyproj.Transformer.from_pipeline(
-        _topocentric(xyz[0]))
+    topo = pyproj.Transformer.from_pipeline(_topocentric(xyz[0]))
     e, n, u = topo.transform(draws[:, 0], draws[:, 1], draws[:, 2])
     sample = np.cov(np.stack([e, n, u]))
     assert got.sd_east[0] == pytest.approx(math.sqrt(sample[0, 0]), rel=0.03)
@@ -142,8 +149,10 @@ def test_local_standard_deviations_and_ellipse_by_monte_carlo():
     assert got.semi_major[0] == pytest.approx(0.012 * factor, rel=1e-9)
     # confidence: the share of draws inside the 95 % ellipse of σ known is 95 % (χ²(2))
     known = geodetic.point_values(crs, xyz, cov[None], np.zeros(1), st.ellipse_factor(0.95, 0))
-    inside = np.einsum("ni,ij,nj->n", np.stack([e, n], 1), np.linalg.inv(en),
-                       np.stack([e, n], 1)) <= (known.semi_major[0] / 0.012) ** 2
+    inside = (
+        np.einsum("ni,ij,nj->n", np.stack([e, n], 1), np.linalg.inv(en), np.stack([e, n], 1))
+        <= (known.semi_major[0] / 0.012) ** 2
+    )
     assert inside.mean() == pytest.approx(0.95, abs=0.006)
 
 
@@ -154,12 +163,12 @@ def test_relative_ellipse_of_the_difference_in_local_axes_at_the_first_point():
     rng = np.random.default_rng(4)
     m = rng.normal(size=(6, 6)) * 0.004
     joint = m @ m.T + np.eye(6) * 1e-6
-    got = geodetic.pair_values(crs, a, b, joint[None, :3, :3], joint[None, 3:, 3:],
-                               joint[None, :3, 3:], 2.0)
+    got = geodetic.pair_values(
+        crs, a, b, joint[None, :3, :3], joint[None, 3:, 3:], joint[None, :3, 3:], 2.0
+    )
     # by Monte Carlo: difference of joint draws, rotated to A's east-north-up by pyproj
     draws = rng.multivariate_normal(np.concatenate([a[0], b[0]]), joint, size=20000)
-    topo = pyproj.Transformer.from_pipeline(
-        _topocentric(a[0]))
+    topo = pyproj.Transformer.from_pipeline(_topocentric(a[0]))
     ea, na, _ = topo.transform(draws[:, 0], draws[:, 1], draws[:, 2])
     eb, nb, _ = topo.transform(draws[:, 3], draws[:, 4], draws[:, 5])
     sample = np.cov(np.stack([eb - ea, nb - na]))
@@ -170,7 +179,8 @@ def test_relative_ellipse_of_the_difference_in_local_axes_at_the_first_point():
     # grid distance: geographiclib's ellipsoid distance times the site grid's scale (≈ 1)
     line = Geodesic(GRS80.a, GRS80.f).Inverse(-33.9, 151.2, -33.9045, 151.2054)
     assert got.distance[0] == pytest.approx(line["s12"], rel=2e-7)
-    direction = np.array([math.sin(math.radians(line["azi1"])),
-                          math.cos(math.radians(line["azi1"]))])
+    direction = np.array(
+        [math.sin(math.radians(line["azi1"])), math.cos(math.radians(line["azi1"]))]
+    )
     along = np.sqrt(direction @ sample @ direction)
     assert got.sd_distance[0] == pytest.approx(along, rel=0.03)

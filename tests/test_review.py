@@ -1,4 +1,5 @@
-"""The blunder review tools: edits written into the field book, snooping, robust reweighting, tau."""
+"""The blunder review tools: edits written into the field book, snooping, robust reweighting,
+tau."""
 
 from __future__ import annotations
 
@@ -238,9 +239,7 @@ def test_bad_edits_are_refused_with_a_reason(edit, message):
 
 
 def test_reason_cannot_inject_a_new_line():
-    edited = apply_edits(
-        BOOK, [ObservationEdit(5, "exclude", "x\nlevel A Z +9.0 len=1km", TODAY)]
-    )
+    edited = apply_edits(BOOK, [ObservationEdit(5, "exclude", "x\nlevel A Z +9.0 len=1km", TODAY)])
     assert len(edited.splitlines()) == len(BOOK.splitlines())
     assert all(o.to != "Z" for o in parse_fieldbook(edited).observations)
 
@@ -296,16 +295,19 @@ def test_a_misbooked_minute_in_a_round_is_corrected_in_place_and_the_original_ke
     line_b = _line_of(text, "  B ")
     before = adjust_fieldbook(text)
     assert any(o.flagged for o in before.observations)  # a minute is a blunder at 1″ σ
-    edit = ObservationEdit(line_b, "correct", "minute misread from the field sheet", TODAY,
-                           value=right)
+    edit = ObservationEdit(
+        line_b, "correct", "minute misread from the field sheet", TODAY, value=right
+    )
     edited = apply_edits(text, [edit])
     assert len(edited.splitlines()) == len(text.splitlines())
     new_line = edited.splitlines()[line_b - 1]
-    assert new_line == (f"  B {right}  # corrected from {wrong} on {TODAY}: "
-                        "minute misread from the field sheet")
+    assert new_line == (
+        f"  B {right}  # corrected from {wrong} on {TODAY}: minute misread from the field sheet"
+    )
     # every other line is untouched
     assert [l for k, l in enumerate(edited.splitlines()) if k != line_b - 1] == [
-        l for k, l in enumerate(text.splitlines()) if k != line_b - 1]
+        l for k, l in enumerate(text.splitlines()) if k != line_b - 1
+    ]
     after = adjust_fieldbook(edited)
     obs = {o.line: o for o in after.observations}
     d_, m_, s_ = right.split(":")
@@ -320,8 +322,10 @@ def test_a_misbooked_minute_in_a_round_is_corrected_in_place_and_the_original_ke
 def test_a_correction_joins_an_existing_comment_and_other_decisions_on_the_line():
     text, booked = _round_book()
     line_c = _line_of(text, "  C ")
-    edits = [ObservationEdit(line_c, "sd", "old theodolite", TODAY, sd="2sec"),
-             ObservationEdit(line_c, "correct", "booked twice", TODAY, value="45:00:00.0")]
+    edits = [
+        ObservationEdit(line_c, "sd", "old theodolite", TODAY, sd="2sec"),
+        ObservationEdit(line_c, "correct", "booked twice", TODAY, value="45:00:00.0"),
+    ]
     line = apply_edits(text, edits).splitlines()[line_c - 1]
     assert line.startswith("  C 45:00:00.0 sd=2sec  # second face; ")
     assert line.endswith(f"; corrected from {booked['C']} on {TODAY}: booked twice")
@@ -329,10 +333,12 @@ def test_a_correction_joins_an_existing_comment_and_other_decisions_on_the_line(
 
 
 def test_a_leveling_value_is_corrected_with_its_sign_and_options_kept():
-    edited = apply_edits(BOOK, [ObservationEdit(5, "correct", "rod read 0.81", TODAY,
-                                                value="+0.8100")])
+    edited = apply_edits(
+        BOOK, [ObservationEdit(5, "correct", "rod read 0.81", TODAY, value="+0.8100")]
+    )
     assert edited.splitlines()[4] == (
-        f"level B C  +0.8100 len=0.60km  # corrected from +0.8000 on {TODAY}: rod read 0.81")
+        f"level B C  +0.8100 len=0.60km  # corrected from +0.8000 on {TODAY}: rod read 0.81"
+    )
     obs = {o.line: o for o in parse_fieldbook(edited).observations}
     assert obs[5].value == pytest.approx(0.81) and obs[5].length_km == pytest.approx(0.6)
 
@@ -369,8 +375,9 @@ def test_a_correction_survives_storage_as_json_and_reads_in_words():
     from server.fieldbook.edits import booked_value
     from server.report.review import decision_words, edit_from_json, edit_to_json
 
-    edit = ObservationEdit(5, "correct", "rod", TODAY, value="+0.8100",
-                           previous=booked_value(BOOK, 5))
+    edit = ObservationEdit(
+        5, "correct", "rod", TODAY, value="+0.8100", previous=booked_value(BOOK, 5)
+    )
     assert edit.previous == "+0.8000"
     assert edit_from_json(edit_to_json(edit)) == edit
     assert decision_words(edit) == "Correct the value from +0.8000 to +0.8100"

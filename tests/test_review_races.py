@@ -20,9 +20,9 @@ import pytest
 from fastapi import FastAPI
 
 from server.pipeline import adjust_fieldbook
+from server.store import projects as service
 from server.store.sqlite import AlreadyQueued, DecisionsChanged, Store
 from server.web import create_app
-from server.store import projects as service
 from server.web import review as review_routes
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
 
@@ -52,9 +52,11 @@ def client(app: FastAPI) -> TestClient:
 
 @pytest.fixture
 def project(client: TestClient) -> str:
-    response = client.post("/projects", files={"fieldbook": ("two-blunders.fieldbook",
-                                                            TEXT.encode(), "text/plain")},
-                           follow_redirects=False)
+    response = client.post(
+        "/projects",
+        files={"fieldbook": ("two-blunders.fieldbook", TEXT.encode(), "text/plain")},
+        follow_redirects=False,
+    )
     assert response.status_code == 303
     return response.headers["location"].rsplit("/", 1)[1]
 
@@ -67,9 +69,11 @@ def _token(client: TestClient, project: str) -> str:
 
 
 def _decide(client: TestClient, project: str, line: int, token: str):
-    return client.post(f"/projects/{project}/edits", follow_redirects=False,
-                       data={"token": token, "line": str(line), "action": "exclude",
-                             "reason": "staff misread"})
+    return client.post(
+        f"/projects/{project}/edits",
+        follow_redirects=False,
+        data={"token": token, "line": str(line), "action": "exclude", "reason": "staff misread"},
+    )
 
 
 def _observation(client: TestClient, project: str, line: int) -> dict:
@@ -94,14 +98,18 @@ def test_undo_during_another_clients_rerun_refuses_the_rerun_so_the_undo_holds(
     def adjust_while_the_other_client_undoes(*args, **kwargs):
         result = real_adjust(*args, **kwargs)
         # the second client withdraws "leave out FIRST" while this run is adjusting
-        response = client.post(f"/projects/{project}/edits/{undone}/undo",
-                               data={"token": token}, follow_redirects=False)
+        response = client.post(
+            f"/projects/{project}/edits/{undone}/undo",
+            data={"token": token},
+            follow_redirects=False,
+        )
         assert response.status_code == 303
         return result
 
     monkeypatch.setattr(service, "adjust_fieldbook", adjust_while_the_other_client_undoes)
-    response = client.post(f"/projects/{project}/runs", data={"token": token},
-                           follow_redirects=False)
+    response = client.post(
+        f"/projects/{project}/runs", data={"token": token}, follow_redirects=False
+    )
     assert response.status_code == 409
     text = re.sub(r"\s+", " ", response.text)
     assert "The decisions changed while this re-run was adjusting" in text
@@ -113,8 +121,9 @@ def test_undo_during_another_clients_rerun_refuses_the_rerun_so_the_undo_holds(
     assert [p.edit["line"] for p in store.pending_edits(project)] == [SECOND]
 
     monkeypatch.setattr(service, "adjust_fieldbook", real_adjust)
-    response = client.post(f"/projects/{project}/runs", data={"token": token},
-                           follow_redirects=False)
+    response = client.post(
+        f"/projects/{project}/runs", data={"token": token}, follow_redirects=False
+    )
     assert response.status_code == 303  # re-run again: exactly the decision still queued
     assert _observation(client, project, FIRST)["ignored"] is False
     assert _observation(client, project, SECOND)["ignored"] is True
@@ -132,8 +141,9 @@ def test_a_decision_queued_during_a_rerun_is_not_swallowed(app, client, project,
         return result
 
     monkeypatch.setattr(service, "adjust_fieldbook", adjust_while_the_other_client_decides)
-    response = client.post(f"/projects/{project}/runs", data={"token": token},
-                           follow_redirects=False)
+    response = client.post(
+        f"/projects/{project}/runs", data={"token": token}, follow_redirects=False
+    )
     assert response.status_code == 409 and "queued after it started" in response.text
     store: Store = app.state.store
     assert sorted(p.edit["line"] for p in store.pending_edits(project)) == sorted([FIRST, SECOND])
@@ -210,8 +220,7 @@ def test_a_decision_checked_against_an_older_run_is_refused(store_project):
 # two clients leaving out the same line
 
 
-def test_two_clients_leaving_out_the_same_line_give_one_decision(app, client, project,
-                                                                  monkeypatch):
+def test_two_clients_leaving_out_the_same_line_give_one_decision(app, client, project, monkeypatch):
     token = _token(client, project)
     stale = review_routes._load_state(app.state.store, app.state.store.get_project(project))
     assert _decide(client, project, FIRST, token).status_code == 303
@@ -284,9 +293,12 @@ def test_runs_stored_as_json_text_before_compression_are_still_read(store_projec
     contract = json.dumps(result.to_json_dict())
     detail = json.dumps(dataclasses.asdict(result))
     with closing(sqlite3.connect(store.path)) as raw:  # a row as the earlier version wrote it
-        raw.execute("INSERT INTO runs (project_id, created, status, result, detail, summary, "
-                    "settings) VALUES (?, '2026-01-01T00:00:00+00:00', 'finished', ?, ?, "
-                    "'{}', '{\"edits\": []}')", (project_id, contract, detail))
+        raw.execute(
+            "INSERT INTO runs (project_id, created, status, result, detail, summary, "
+            "settings) VALUES (?, '2026-01-01T00:00:00+00:00', 'finished', ?, ?, "
+            "'{}', '{\"edits\": []}')",
+            (project_id, contract, detail),
+        )
         raw.commit()
     old = store.latest_run(project_id)
     assert old.id != base and old.result() == result
@@ -299,12 +311,13 @@ def test_undoing_a_decision_another_clients_rerun_already_applied_says_so(app, c
     assert _decide(client, project, FIRST, token).status_code == 303
     store: Store = app.state.store
     (queued,) = store.pending_edits(project)
-    rerun = client.post(f"/projects/{project}/runs", data={"token": token},
-                        follow_redirects=False)
+    rerun = client.post(f"/projects/{project}/runs", data={"token": token}, follow_redirects=False)
     assert rerun.status_code == 303  # the other client's re-run applied the decision
-    response = client.post(f"/projects/{project}/edits/{queued.id}/undo",
-                           data={"token": token}, follow_redirects=False)
+    response = client.post(
+        f"/projects/{project}/edits/{queued.id}/undo", data={"token": token}, follow_redirects=False
+    )
     assert response.status_code == 409
     assert "This decision is no longer queued: a re-run has already applied it" in (
-        re.sub(r"\s+", " ", response.text))
+        re.sub(r"\s+", " ", response.text)
+    )
     assert _observation(client, project, FIRST)["ignored"] is True  # still in force, as shown

@@ -7,12 +7,12 @@ every test checks what a surveyor would check on the screen or in the file.
 
 from __future__ import annotations
 
-from html import unescape
 import logging
 import re
 import sqlite3
 import warnings
 from contextlib import closing
+from html import unescape
 from pathlib import Path
 
 import pytest
@@ -46,9 +46,11 @@ def client(app: FastAPI) -> TestClient:
 @pytest.fixture
 def project(client: TestClient) -> str:
     """The two-blunder network uploaded through the upload form; its project id."""
-    response = client.post("/projects", files={"fieldbook": ("two-blunders.fieldbook",
-                                                            TEXT.encode(), "text/plain")},
-                           follow_redirects=False)
+    response = client.post(
+        "/projects",
+        files={"fieldbook": ("two-blunders.fieldbook", TEXT.encode(), "text/plain")},
+        follow_redirects=False,
+    )
     assert response.status_code == 303
     return response.headers["location"].rsplit("/", 1)[1]
 
@@ -69,18 +71,25 @@ def _text(html: str) -> str:
     return re.sub(r"\s+", " ", re.sub(r"<[^>]+>", " ", html))
 
 
-def _decide(client: TestClient, project: str, line: int, action: str = "exclude",
-            reason: str = "staff misread", **extra: str):
+def _decide(
+    client: TestClient,
+    project: str,
+    line: int,
+    action: str = "exclude",
+    reason: str = "staff misread",
+    **extra: str,
+):
     token = _token(client.get(f"/projects/{project}/review").text)
-    return client.post(f"/projects/{project}/edits", follow_redirects=False,
-                       data={"token": token, "line": str(line), "action": action,
-                             "reason": reason, **extra})
+    return client.post(
+        f"/projects/{project}/edits",
+        follow_redirects=False,
+        data={"token": token, "line": str(line), "action": action, "reason": reason, **extra},
+    )
 
 
 def _rerun(client: TestClient, project: str):
     token = _token(client.get(f"/projects/{project}/review").text)
-    return client.post(f"/projects/{project}/runs", data={"token": token},
-                       follow_redirects=False)
+    return client.post(f"/projects/{project}/runs", data={"token": token}, follow_redirects=False)
 
 
 def _api(client: TestClient, project: str) -> dict:
@@ -103,11 +112,12 @@ def test_flagged_observations_come_first_by_abs_w_with_their_own_line(client, pr
     html = client.get(f"/projects/{project}/review").text
     order = [int(n) for n in re.findall(r'<tbody id="line-(\d+)"', html)]
     result = _api(client, project)["result"]
-    flagged = sorted((o for o in result["observations"] if o["flagged"]),
-                     key=lambda o: -abs(o["w"]))
+    flagged = sorted(
+        (o for o in result["observations"] if o["flagged"]), key=lambda o: -abs(o["w"])
+    )
     assert order[: len(flagged)] == [o["line"] for o in flagged]
     assert order[:2] == [FIRST, SECOND]  # the two injected blunders have the largest |w|
-    rest = order[len(flagged):]
+    rest = order[len(flagged) :]
     assert rest == sorted(rest) and len(order) == len(result["observations"])
     block = _text(_observation_block(html, FIRST))
     worst = next(o for o in result["observations"] if o["line"] == FIRST)
@@ -118,9 +128,11 @@ def test_flagged_observations_come_first_by_abs_w_with_their_own_line(client, pr
 
 
 def test_field_book_text_is_escaped_on_the_review_page(client):
-    book = ('defaults level=1mm\npoint <b>A</b> height=10 fix\n'
-            'level <b>A</b> B +1.0000 note="<script>x</script>"\n'
-            'level B <b>A</b> -1.0020\nlevel <b>A</b> B +1.0010\n')
+    book = (
+        "defaults level=1mm\npoint <b>A</b> height=10 fix\n"
+        'level <b>A</b> B +1.0000 note="<script>x</script>"\n'
+        "level B <b>A</b> -1.0020\nlevel <b>A</b> B +1.0010\n"
+    )
     created = client.post("/api/projects", files={"fieldbook": ("x.fieldbook", book.encode())})
     html = client.get(f"/projects/{created.json()['id']}/review").text
     assert "<script>x</script>" not in html and "<b>A</b>" not in html
@@ -142,11 +154,17 @@ def test_leaving_out_the_worst_and_rerunning_clears_its_flag_and_shows_the_shift
     assert re.fullmatch(rf"/projects/{project}/compare\?a=\d+&b=\d+", rerun.headers["location"])
     body = _api(client, project)
     assert [r["status"] for r in body["runs"]] == ["finished", "finished"]
-    assert body["runs"][1]["edits"] == [{"line": FIRST, "action": "exclude",
-                                         "reason": "staff misread, re-measured",
-                                         "date": body["runs"][1]["edits"][0]["date"]}]
-    before, after = (client.get(f"/api/projects/{project}/runs/{r['id']}").json()["result"]
-                     for r in body["runs"])
+    assert body["runs"][1]["edits"] == [
+        {
+            "line": FIRST,
+            "action": "exclude",
+            "reason": "staff misread, re-measured",
+            "date": body["runs"][1]["edits"][0]["date"],
+        }
+    ]
+    before, after = (
+        client.get(f"/api/projects/{project}/runs/{r['id']}").json()["result"] for r in body["runs"]
+    )
     assert next(o for o in after["observations"] if o["line"] == FIRST)["ignored"]
 
     html = client.get(rerun.headers["location"]).text
@@ -161,8 +179,11 @@ def test_leaving_out_the_worst_and_rerunning_clears_its_flag_and_shows_the_shift
 
     # shifts: B − A per mark in mm, largest first, equal to the adjusted heights' change
     shifts = re.search(r'id="shifts".*?</section>', html, re.DOTALL).group(0)
-    rows = re.findall(r'<th scope="row" class="mark">([^<]+)</th><td class="num strong">'
-                      r'([+-]?[0-9.]+)</td>', shifts)
+    rows = re.findall(
+        r'<th scope="row" class="mark">([^<]+)</th><td class="num strong">'
+        r"([+-]?[0-9.]+)</td>",
+        shifts,
+    )
     heights_a = {p["name"]: p["height"] for p in before["points"]}
     heights_b = {p["name"]: p["height"] for p in after["points"]}
     assert len(rows) == 9  # M0 is held fixed and not listed
@@ -181,7 +202,8 @@ def test_edited_field_book_reuploaded_gives_the_result_of_the_rerun(client, proj
     download = client.get(f"/projects/{project}/fieldbook/edited")
     assert download.status_code == 200
     assert download.headers["content-disposition"] == (
-        'attachment; filename="two-blunders-edited.fieldbook"')
+        'attachment; filename="two-blunders-edited.fieldbook"'
+    )
     edited = download.text
     line = edited.splitlines()[FIRST - 1]
     assert line.split("#")[0].split()[-1] == "ignore"
@@ -190,16 +212,16 @@ def test_edited_field_book_reuploaded_gives_the_result_of_the_rerun(client, proj
     # the upload itself stays as it was
     assert client.get(f"/projects/{project}/fieldbook").content == TEXT.encode()
 
-    again = client.post("/api/projects", files={"fieldbook": ("edited.fieldbook",
-                                                              download.content)}).json()
+    again = client.post(
+        "/api/projects", files={"fieldbook": ("edited.fieldbook", download.content)}
+    ).json()
     vf_again = again["result"]["summary"]["variance_factor"]
     assert vf_again == pytest.approx(rerun_result["summary"]["variance_factor"], rel=1e-12)
     for p, q in zip(again["result"]["points"], rerun_result["points"], strict=True):
         assert p["height"] == pytest.approx(q["height"], abs=1e-12)
 
 
-def test_decisions_accumulate_across_runs_and_bring_back_restores_the_observation(client,
-                                                                                  project):
+def test_decisions_accumulate_across_runs_and_bring_back_restores_the_observation(client, project):
     _decide(client, project, FIRST)
     _rerun(client, project)
     _decide(client, project, SECOND, reason="rod not plumb")
@@ -219,11 +241,16 @@ def test_decisions_accumulate_across_runs_and_bring_back_restores_the_observatio
 
 
 def test_changing_the_standard_deviation_is_written_and_used(client, project):
-    assert _decide(client, project, FIRST, action="sd", sd="20mm",
-                   reason="tall rod, suspect reading").status_code == 303
+    assert (
+        _decide(
+            client, project, FIRST, action="sd", sd="20mm", reason="tall rod, suspect reading"
+        ).status_code
+        == 303
+    )
     _rerun(client, project)
-    observation = next(o for o in _api(client, project)["result"]["observations"]
-                       if o["line"] == FIRST)
+    observation = next(
+        o for o in _api(client, project)["result"]["observations"] if o["line"] == FIRST
+    )
     assert observation["sd"] == pytest.approx(0.020)
     assert not observation["flagged"]  # 15 mm is within the new 20 mm
     line = client.get(f"/projects/{project}/fieldbook/edited").text.splitlines()[FIRST - 1]
@@ -261,7 +288,7 @@ def test_invalid_decisions_are_refused_beside_the_observation(client, project, e
     assert response.status_code == 422
     block = _observation_block(response.text, FIRST)
     assert "field-error" in block and message in _text(block).lower()
-    assert "<details class=\"decide\" open>" in block  # the form stays open with the error
+    assert '<details class="decide" open>' in block  # the form stays open with the error
     assert "Queued: " not in _text(client.get(f"/projects/{project}/review").text)
 
 
@@ -275,11 +302,17 @@ def test_forms_without_the_project_token_or_from_another_site_are_refused(client
     data = {"line": str(FIRST), "action": "exclude", "reason": "x"}
     assert client.post(f"/projects/{project}/edits", data=data).status_code == 403
     token = _token(client.get(f"/projects/{project}/review").text)
-    forged = client.post(f"/projects/{project}/edits", data={**data, "token": token},
-                         headers={"Origin": "https://evil.example"})
+    forged = client.post(
+        f"/projects/{project}/edits",
+        data={**data, "token": token},
+        headers={"Origin": "https://evil.example"},
+    )
     assert forged.status_code == 403
-    cross = client.post(f"/projects/{project}/edits", data={**data, "token": token},
-                        headers={"Sec-Fetch-Site": "cross-site"})
+    cross = client.post(
+        f"/projects/{project}/edits",
+        data={**data, "token": token},
+        headers={"Sec-Fetch-Site": "cross-site"},
+    )
     assert cross.status_code == 403
     other = client.post("/api/projects", files={"fieldbook": ("o.fieldbook", TEXT.encode())})
     other_token = _token(client.get(f"/projects/{other.json()['id']}/review").text)
@@ -293,22 +326,30 @@ def test_forms_without_the_project_token_or_from_another_site_are_refused(client
 # second opinions
 
 
-def test_snooping_suggestion_lists_both_blunders_and_accepting_queues_an_exclusion(client,
-                                                                                  project):
+def test_snooping_suggestion_lists_both_blunders_and_accepting_queues_an_exclusion(client, project):
     page = client.get(f"/projects/{project}/review").text
     assert "Suggest a sequence" in page and 'id="step-1"' not in page  # only on request
     html = client.get(f"/projects/{project}/review?suggest=1").text
-    steps = re.findall(r'<li class="step step-open" id="step-(\d+)">.*?line (\d+)</a>', html,
-                       re.DOTALL)
+    steps = re.findall(
+        r'<li class="step step-open" id="step-(\d+)">.*?line (\d+)</a>', html, re.DOTALL
+    )
     assert [(int(s), int(line)) for s, line in steps] == [(1, FIRST), (2, SECOND)]
     assert "No observation is flagged any more" in html
     assert re.search(r'value="data snooping step 2: \|w\| = \d+\.\d\d"', html)
     assert len(_api(client, project)["runs"]) == 1  # suggesting changes nothing
 
     token = _token(html)
-    accept = client.post(f"/projects/{project}/edits", follow_redirects=False, data={
-        "token": token, "line": str(FIRST), "action": "exclude", "back": "suggest",
-        "reason": "data snooping step 1: |w| = 12.16 (rod misread)"})
+    accept = client.post(
+        f"/projects/{project}/edits",
+        follow_redirects=False,
+        data={
+            "token": token,
+            "line": str(FIRST),
+            "action": "exclude",
+            "back": "suggest",
+            "reason": "data snooping step 1: |w| = 12.16 (rod misread)",
+        },
+    )
     assert accept.status_code == 303
     assert accept.headers["location"] == f"/projects/{project}/review?suggest=1#snooping"
     html = client.get(f"/projects/{project}/review?suggest=1").text
@@ -339,10 +380,13 @@ def test_robust_panel_names_huber_and_lists_both_blunders_as_suspects(client, pr
 
 def test_a_rerun_that_cannot_adjust_keeps_the_decisions_queued_and_earlier_runs(client):
     # B and C hang on the benchmark by one section: without it they have no height datum
-    book = ("defaults level=1mm\npoint A height=10 fix\nlevel A B +1.0000\nlevel B C +0.5000\n"
-            "level C B -0.5010\nlevel B C +0.5020\n")
-    project = client.post("/api/projects", files={"fieldbook": ("spur.fieldbook",
-                                                                book.encode())}).json()["id"]
+    book = (
+        "defaults level=1mm\npoint A height=10 fix\nlevel A B +1.0000\nlevel B C +0.5000\n"
+        "level C B -0.5010\nlevel B C +0.5020\n"
+    )
+    project = client.post(
+        "/api/projects", files={"fieldbook": ("spur.fieldbook", book.encode())}
+    ).json()["id"]
     assert _decide(client, project, 3, reason="wrong mark").status_code == 303
     assert _rerun(client, project).status_code == 303
     body = _api(client, project)
@@ -354,11 +398,12 @@ def test_a_rerun_that_cannot_adjust_keeps_the_decisions_queued_and_earlier_runs(
     assert 'class="verdict-label">Global test, run #' in review  # the earlier run is reviewed
 
 
-def test_an_interrupted_run_stays_unfinished_and_the_earlier_run_is_reviewed(app, client,
-                                                                           project):
+def test_an_interrupted_run_stays_unfinished_and_the_earlier_run_is_reviewed(app, client, project):
     store: Store = app.state.store
-    run_id = store.start_run(project, {"edits": [{"line": FIRST, "action": "exclude",
-                                                  "reason": "x", "date": "2026-01-02"}]})
+    run_id = store.start_run(
+        project,
+        {"edits": [{"line": FIRST, "action": "exclude", "reason": "x", "date": "2026-01-02"}]},
+    )
     # the process stops here; a restarted service finds the run still marked running
     restarted = Store(store.path)
     assert restarted.latest_run(project).id != run_id
@@ -427,8 +472,9 @@ def test_delete_asks_for_confirmation_then_removes_the_project(client, project, 
     assert refused.status_code == 403
     assert _api(client, project)["id"] == project
 
-    deleted = client.post(f"/projects/{project}/delete", data={"token": _token(confirm.text)},
-                          follow_redirects=False)
+    deleted = client.post(
+        f"/projects/{project}/delete", data={"token": _token(confirm.text)}, follow_redirects=False
+    )
     assert deleted.status_code == 303 and deleted.headers["location"] == "/projects"
     assert client.get(f"/api/projects/{project}").status_code == 404
     assert client.get(f"/projects/{project}/review").status_code == 404
@@ -440,13 +486,15 @@ def test_delete_asks_for_confirmation_then_removes_the_project(client, project, 
 
 def _delete(client, project: str) -> None:
     confirm = client.post(f"/projects/{project}/confirm-delete").text
-    answer = client.post(f"/projects/{project}/delete", data={"token": _token(confirm)},
-                         follow_redirects=False)
+    answer = client.post(
+        f"/projects/{project}/delete", data={"token": _token(confirm)}, follow_redirects=False
+    )
     assert answer.status_code == 303
 
 
 def test_a_deleted_project_is_listed_as_recently_deleted_and_restored_with_its_runs(
-        client, project, caplog):
+    client, project, caplog
+):
     _decide(client, project, FIRST)
     _rerun(client, project)
     store = client.app.state.store
@@ -463,46 +511,65 @@ def test_a_deleted_project_is_listed_as_recently_deleted_and_restored_with_its_r
     assert f'action="/deleted-projects/{project}/restore"' in page.text
 
     assert client.post(f"/deleted-projects/{project}/restore").status_code == 403  # no token
-    restored = client.post(f"/deleted-projects/{project}/restore",
-                           data={"token": _token(page.text)}, follow_redirects=False)
+    restored = client.post(
+        f"/deleted-projects/{project}/restore",
+        data={"token": _token(page.text)},
+        follow_redirects=False,
+    )
     assert restored.status_code == 303 and restored.headers["location"] == f"/projects/{project}"
     assert _api(client, project)["id"] == project
     assert [(r.id, r.status, r.settings) for r in store.runs(project)] == runs_before
     rerun = client.get(f"/api/projects/{project}/runs/{runs_before[1][0]}")  # the re-run is back
     assert rerun.status_code == 200
     assert project not in client.get("/deleted-projects").text
-    assert client.post(f"/deleted-projects/{project}/restore",
-                       data={"token": _token(page.text)}).status_code == 404
+    assert (
+        client.post(
+            f"/deleted-projects/{project}/restore", data={"token": _token(page.text)}
+        ).status_code
+        == 404
+    )
     lines = [r.getMessage() for r in caplog.records if r.name == "stationfit.web"]
-    assert any(f"project {project} ('two-blunders.fieldbook') deleted by testclient" in m
-               for m in lines), lines
-    assert any(f"project {project} ('two-blunders.fieldbook') restored by testclient" in m
-               for m in lines), lines
+    assert any(
+        f"project {project} ('two-blunders.fieldbook') deleted by testclient" in m for m in lines
+    ), lines
+    assert any(
+        f"project {project} ('two-blunders.fieldbook') restored by testclient" in m for m in lines
+    ), lines
 
 
 def test_a_retention_of_0_days_erases_a_deleted_project_at_once(tmp_path, caplog):
     client = TestClient(create_app(tmp_path / "data", keep_deleted_days=0))
-    project = client.post("/projects", files={"fieldbook": ("two-blunders.fieldbook",
-                          TEXT.encode(), "text/plain")}, follow_redirects=False
-                          ).headers["location"].rsplit("/", 1)[1]
+    project = (
+        client.post(
+            "/projects",
+            files={"fieldbook": ("two-blunders.fieldbook", TEXT.encode(), "text/plain")},
+            follow_redirects=False,
+        )
+        .headers["location"]
+        .rsplit("/", 1)[1]
+    )
     with caplog.at_level(logging.INFO, logger="stationfit.web"):
         _delete(client, project)
     store = Store(tmp_path / "data" / DATABASE_NAME)
     assert store.deleted_projects() == [] and store.runs(project) == []
     assert "two-blunders" not in client.get("/deleted-projects").text
-    assert any(f"project {project} ('two-blunders.fieldbook') purged for good" in r.getMessage()
-               for r in caplog.records)
+    assert any(
+        f"project {project} ('two-blunders.fieldbook') purged for good" in r.getMessage()
+        for r in caplog.records
+    )
 
 
 def test_projects_deleted_longer_ago_than_the_retention_are_purged_at_start_up(
-        tmp_path, project, caplog, monkeypatch):
+    tmp_path, project, caplog, monkeypatch
+):
     store = Store(tmp_path / "data" / DATABASE_NAME)
     recent = store.create_project("Recent", "recent.fieldbook", TEXT)
     store.delete_project(project)
     store.delete_project(recent)
     with closing(sqlite3.connect(tmp_path / "data" / DATABASE_NAME)) as raw:
-        raw.execute("UPDATE projects SET deleted = '2026-01-01T00:00:00+00:00' WHERE id = ?",
-                    (project,))
+        raw.execute(
+            "UPDATE projects SET deleted = '2026-01-01T00:00:00+00:00' WHERE id = ?", (project,)
+        )
         raw.commit()
     monkeypatch.setenv("STATIONFIT_KEEP_DELETED_DAYS", "7")
     with caplog.at_level(logging.INFO, logger="stationfit.web"):
@@ -511,8 +578,11 @@ def test_projects_deleted_longer_ago_than_the_retention_are_purged_at_start_up(
     assert store.runs(project) == []
     page = client.get("/deleted-projects").text
     assert "recent.fieldbook" in page and "7 days" in page
-    assert any(f"project {project} ('two-blunders.fieldbook') purged for good" in r.getMessage()
-               and "kept 7 days" in r.getMessage() for r in caplog.records)
+    assert any(
+        f"project {project} ('two-blunders.fieldbook') purged for good" in r.getMessage()
+        and "kept 7 days" in r.getMessage()
+        for r in caplog.records
+    )
 
 
 def test_review_pages_have_no_inline_scripts_or_styles(client, project):
@@ -539,8 +609,15 @@ def test_runs_are_numbered_within_their_project_not_by_the_store(client, project
     """Run ids count every run in the store; a surveyor reads run 1, 2, 3 of this project."""
     _decide(client, project, FIRST)
     _rerun(client, project)
-    other = client.post("/projects", files={"fieldbook": ("other.fieldbook", TEXT.encode())},
-                        follow_redirects=False).headers["location"].rsplit("/", 1)[1]
+    other = (
+        client.post(
+            "/projects",
+            files={"fieldbook": ("other.fieldbook", TEXT.encode())},
+            follow_redirects=False,
+        )
+        .headers["location"]
+        .rsplit("/", 1)[1]
+    )
     _decide(client, project, SECOND)
     _rerun(client, project)
     runs = _api(client, project)["runs"]
@@ -574,20 +651,26 @@ def test_correcting_a_misbooked_value_reruns_with_it_and_keeps_the_review_trail(
     right = f"{float(booked) - 0.015:+.5f}"  # the blunder injected on this line is +15 mm
     review = client.get(f"/projects/{project}/review").text
     assert f'placeholder="{booked}"' in _observation_block(review, FIRST)  # what is replaced
-    queued = _decide(client, project, FIRST, action="correct", value=right,
-                     reason="rod read 15 mm high")
+    queued = _decide(
+        client, project, FIRST, action="correct", value=right, reason="rod read 15 mm high"
+    )
     assert queued.status_code == 303
     review = client.get(f"/projects/{project}/review").text
-    assert (f"Queued: correct the value from {booked} to {right}"
-            in _text(_observation_block(review, FIRST)))
+    assert f"Queued: correct the value from {booked} to {right}" in _text(
+        _observation_block(review, FIRST)
+    )
 
     rerun = _rerun(client, project)
     assert rerun.status_code == 303
     body = _api(client, project)
     edit = body["runs"][-1]["edits"][0]
     assert {k: edit[k] for k in ("line", "action", "value", "previous", "reason")} == {
-        "line": FIRST, "action": "correct", "value": right, "previous": booked,
-        "reason": "rod read 15 mm high"}
+        "line": FIRST,
+        "action": "correct",
+        "value": right,
+        "previous": booked,
+        "reason": "rod read 15 mm high",
+    }
     observation = next(o for o in body["result"]["observations"] if o["line"] == FIRST)
     assert observation["booked"] == float(right) and not observation["ignored"]
     assert not observation["flagged"]
@@ -603,8 +686,9 @@ def test_correcting_a_misbooked_value_reruns_with_it_and_keeps_the_review_trail(
     review = _text(client.get(f"/projects/{project}/review").text)
     assert f"Correct the value from {booked} to {right} level M2 → M4 rod read 15 mm high" in review
     line = client.get(f"/projects/{project}/fieldbook/edited").text.splitlines()[FIRST - 1]
-    assert line == (f"level M2 M4 {right}  # corrected from {booked} on {edit['date']}: "
-                    "rod read 15 mm high")
+    assert line == (
+        f"level M2 M4 {right}  # corrected from {booked} on {edit['date']}: rod read 15 mm high"
+    )
     assert client.get(f"/projects/{project}/fieldbook").content == TEXT.encode()
 
 
@@ -618,13 +702,12 @@ def test_correcting_a_misbooked_value_reruns_with_it_and_keeps_the_review_trail(
         ("9" * 60, "too long"),
     ],
 )
-def test_a_malformed_correction_is_refused_beside_the_observation(client, project, value,
-                                                                  message):
+def test_a_malformed_correction_is_refused_beside_the_observation(client, project, value, message):
     response = _decide(client, project, FIRST, action="correct", value=value, reason="misread")
     assert response.status_code == 422
     block = _observation_block(response.text, FIRST)
     assert "field-error" in block and message in unescape(_text(block))
-    assert "<details class=\"decide\" open>" in block
+    assert '<details class="decide" open>' in block
     assert 'value="correct" checked' in block  # the choice is kept for the second try
     assert "Queued: " not in _text(client.get(f"/projects/{project}/review").text)
 
@@ -635,6 +718,7 @@ def test_a_queued_correction_can_be_undone_and_needs_the_form_token(client, proj
     assert _decide(client, project, FIRST, action="correct", value="+1.00000").status_code == 303
     review = client.get(f"/projects/{project}/review").text
     undo = re.search(rf'action="(/projects/{project}/edits/\d+/undo)"', review).group(1)
-    assert client.post(undo, data={"token": _token(review)},
-                       follow_redirects=False).status_code == 303
+    assert (
+        client.post(undo, data={"token": _token(review)}, follow_redirects=False).status_code == 303
+    )
     assert "Queued: " not in _text(client.get(f"/projects/{project}/review").text)

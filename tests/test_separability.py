@@ -20,13 +20,13 @@ import numpy as np
 import pypdf
 import pytest
 
-from server.statistics import separability
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook, adjust_parsed
-from server.report.text import report_text
 from server.report.tables import verdict
+from server.report.text import report_text
 from server.review.robust import robust_adjustment
 from server.review.snooping import propose_snooping, with_ignored
+from server.statistics import separability
 
 # Two benchmarks 3.000 m apart joined by three 1 km sections; the middle one is
 # booked 5 mm long (the issue's case).  1 mm per section: the 5 mm misclosure
@@ -92,11 +92,14 @@ def test_robust_reweighting_warns_when_its_choice_is_arbitrary():
 
 # The chain beside a loop the crew also ran from BM-WEST (closing to 0.4 mm), so the
 # network keeps a check after one chain section is left out.
-CHAIN_AND_LOOP = CHAIN + """\
+CHAIN_AND_LOOP = (
+    CHAIN
+    + """\
 level BM-WEST  L1       +0.5000 len=0.5km
 level L1       L2       +0.2000 len=0.5km
 level L2       BM-WEST  -0.6996 len=0.5km
 """
+)
 
 
 def test_leaving_out_one_section_leaves_the_others_unchecked_and_never_a_plain_pass():
@@ -220,8 +223,11 @@ def test_inseparable_lists_match_a_dense_numpy_solution():
     controlled = r >= 0.001
     checked = 0
     for i, o in enumerate(used):
-        expected = {used[j].line for j in range(len(used))
-                    if j != i and controlled[i] and controlled[j] and abs(rho[i, j]) >= 0.99}
+        expected = {
+            used[j].line
+            for j in range(len(used))
+            if j != i and controlled[i] and controlled[j] and abs(rho[i, j]) >= 0.99
+        }
         assert set(o.inseparable) == expected, f"line {o.line}"
         if controlled[i]:
             assert o.estimated_bias == pytest.approx(-o.residual / r[i], abs=1e-9)
@@ -229,9 +235,13 @@ def test_inseparable_lists_match_a_dense_numpy_solution():
             assert o.estimated_bias is None
         checked += bool(expected)
     # the chain N4 → N5 → N6 → N7 → N2 is nearly in series (the weak N5 tie): a real group
-    chain = {_line_of(LOOPS_WITH_BLUNDER, f"level {a} {b}") for a, b in
-             (("N4", "N5"), ("N5", "N6"), ("N6", "N7"), ("N7", "N2"))}
-    n6 = next(o for o in result.observations if o.line == _line_of(LOOPS_WITH_BLUNDER, "level N6 N7"))
+    chain = {
+        _line_of(LOOPS_WITH_BLUNDER, f"level {a} {b}")
+        for a, b in (("N4", "N5"), ("N5", "N6"), ("N6", "N7"), ("N7", "N2"))
+    }
+    n6 = next(
+        o for o in result.observations if o.line == _line_of(LOOPS_WITH_BLUNDER, "level N6 N7")
+    )
     assert set(n6.inseparable) >= chain - {n6.line}
     assert checked >= 4
     # the blunder (8 mm in N3 → N2) stands alone: snooping may and does name it
@@ -249,17 +259,27 @@ def test_large_network_path_agrees_with_the_dense_one():
 
     sigmas = 1.0 / np.sqrt(np.diag(p))
     candidates = np.flatnonzero(r >= 0.001)
-    exact_ones = {(int(i), int(j)) for i in candidates for j in candidates
-                  if i != j and abs(rho[i, j]) > 1.0 - 1e-9}
+    exact_ones = {
+        (int(i), int(j))
+        for i in candidates
+        for j in candidates
+        if i != j and abs(rho[i, j]) > 1.0 - 1e-9
+    }
     assert exact_ones, "the network must hold a group in series"
-    near = {(int(i), int(j)) for i in candidates for j in candidates
-            if i != j and abs(rho[i, j]) >= 0.99}
+    near = {
+        (int(i), int(j))
+        for i in candidates
+        for j in candidates
+        if i != j and abs(rho[i, j]) >= 0.99
+    }
     assert near - exact_ones, "and a pair at 0.99 ≤ |ρ| < 1 (the weakly tied chain)"
     # simulated residuals alone: exactly the |ρ| = 1 pairs
     rows = separability.correlated_rows(hat, sigmas, r, candidates, [], dense_rows=0)
     assert {(i, j) for i, js in enumerate(rows) for j in js} == exact_ones
     # with every row exact (as every flagged row is): every pair at |ρ| ≥ 0.99
-    rows = separability.correlated_rows(hat, sigmas, r, candidates, candidates.tolist(), dense_rows=0)
+    rows = separability.correlated_rows(
+        hat, sigmas, r, candidates, candidates.tolist(), dense_rows=0
+    )
     assert {(i, j) for i, js in enumerate(rows) for j in js} == near
     # the exact rows themselves against numpy
     got = separability.correlation_rows(hat, sigmas, r, candidates[:3])
@@ -287,8 +307,11 @@ def test_review_compare_projects_and_reports_never_show_a_false_pass(tmp_path):
         return re.sub(r"\s+", " ", re.sub(r"<[^>]+>", " ", html))
 
     with TestClient(create_app(tmp_path / "data")) as client:
-        upload = client.post("/projects", follow_redirects=False, files={
-            "fieldbook": ("chain.fieldbook", CHAIN_AND_LOOP.encode(), "text/plain")})
+        upload = client.post(
+            "/projects",
+            follow_redirects=False,
+            files={"fieldbook": ("chain.fieldbook", CHAIN_AND_LOOP.encode(), "text/plain")},
+        )
         project = upload.headers["location"].rsplit("/", 1)[1]
         results = plain(client.get(f"/projects/{project}").text)
         assert "Est. bias" in results and "same test as lines 8, 10" in results
@@ -303,8 +326,11 @@ def test_review_compare_projects_and_reports_never_show_a_false_pass(tmp_path):
 
         # the surveyor leaves out the third section anyway and re-runs
         t = token(client.get(f"/projects/{project}/review").text)
-        client.post(f"/projects/{project}/edits", follow_redirects=False, data={
-            "token": t, "line": "10", "action": "exclude", "reason": "suspect"})
+        client.post(
+            f"/projects/{project}/edits",
+            follow_redirects=False,
+            data={"token": t, "line": "10", "action": "exclude", "reason": "suspect"},
+        )
         t = token(client.get(f"/projects/{project}/review").text)
         rerun = client.post(f"/projects/{project}/runs", data={"token": t}, follow_redirects=False)
         compare = client.get(rerun.headers["location"]).text
@@ -319,7 +345,9 @@ def test_review_compare_projects_and_reports_never_show_a_false_pass(tmp_path):
         assert "Passes, but 2 observations can no longer be checked" in listing
         assert "✓ Passes" not in listing
         results = client.get(f"/projects/{project}").text
-        verdict_box = re.search(r'<section class="verdict.*?</section>', results, re.DOTALL).group(0)
+        verdict_box = re.search(r'<section class="verdict.*?</section>', results, re.DOTALL).group(
+            0
+        )
         assert "verdict-pass" not in verdict_box
         assert "line 8 (level BM-WEST → P1)" in plain(verdict_box)
         report = plain(client.get(f"/projects/{project}/report.html").text)
@@ -335,12 +363,20 @@ def test_review_compare_projects_and_reports_never_show_a_false_pass(tmp_path):
 # every engine path gives the same ρ (free networks by their minimal-datum factor)
 
 
-@pytest.mark.parametrize("name", ["leveling", "2D held control", "2D free network",
-                                  "2D free network with an azimuth", "2D weighted control"])
+@pytest.mark.parametrize(
+    "name",
+    [
+        "leveling",
+        "2D held control",
+        "2D free network",
+        "2D free network with an azimuth",
+        "2D weighted control",
+    ],
+)
 def test_sparse_and_free_datum_paths_give_the_dense_correlations(name):
     from server.engine import gauss_newton as engine
-    from server.model.network import build_network
     from server.engine.backends import cholmod_available
+    from server.model.network import build_network
     from tests.test_sparse import NETWORKS
 
     network = build_network(parse_fieldbook(NETWORKS[name]))
@@ -352,7 +388,9 @@ def test_sparse_and_free_datum_paths_give_the_dense_correlations(name):
     assert np.allclose(np.abs(expected[np.arange(rows.size), rows]), 1.0)
     for backend in ["superlu"] + (["cholmod"] if cholmod_available() else []):
         sparse_solution = engine.adjust(network, method="sparse", factorization=backend)
-        got = separability.correlation_rows(sparse_solution.hat, np.asarray(sparse_solution.sigmas), r, rows)
+        got = separability.correlation_rows(
+            sparse_solution.hat, np.asarray(sparse_solution.sigmas), r, rows
+        )
         # N of a free network with orientations (radians) beside coordinates (metres) has a
         # condition number near 2e10: ρ near zero agree to a few 1e-7 between factorizations
         # (measured: each back end within 5e-7 of the bordered inner-constraint inverse)
@@ -399,8 +437,10 @@ def test_large_network_lists_agree_with_the_dense_computation(monkeypatch):
     monkeypatch.setattr(separability, "DENSE_ROWS", 10**6)
     dense = adjust_fieldbook(text)
     worst = max((o for o in large.observations if o.flagged), key=lambda o: abs(o.w))
-    assert worst.line in {blunder_line, *next(o for o in large.observations
-                                             if o.line == blunder_line).inseparable}
+    assert worst.line in {
+        blunder_line,
+        *next(o for o in large.observations if o.line == blunder_line).inseparable,
+    }
     # the flagged line's group: its own four sections, and the weakly tied one at 0.99 ≤ |ρ| < 1
     assert len(worst.inseparable) >= 6
     by_line = {o.line: o for o in dense.observations}

@@ -18,8 +18,13 @@ WAIT = 20.0  # generous: only reached when the server never closes the connectio
 @pytest.fixture
 def server(tmp_path):
     """The app served by uvicorn as ``serve`` configures it, with a half-second header limit."""
-    config = uvicorn.Config(create_app(tmp_path), host="127.0.0.1", port=0, log_level="warning",
-                            **uvicorn_options(header_timeout=0.5))
+    config = uvicorn.Config(
+        create_app(tmp_path),
+        host="127.0.0.1",
+        port=0,
+        log_level="warning",
+        **uvicorn_options(header_timeout=0.5),
+    )
     running = uvicorn.Server(config)
     thread = threading.Thread(target=running.run, daemon=True)
     thread.start()

@@ -42,8 +42,14 @@ def _figures(result) -> np.ndarray:
     """Every number of a result a surveyor reads, in a fixed order."""
     out: list[float] = []
     for p in result.points:
-        out += [p.east or 0.0, p.north or 0.0, p.height or 0.0,
-                p.sd_east or 0.0, p.sd_north or 0.0, p.sd_height or 0.0]
+        out += [
+            p.east or 0.0,
+            p.north or 0.0,
+            p.height or 0.0,
+            p.sd_east or 0.0,
+            p.sd_north or 0.0,
+            p.sd_height or 0.0,
+        ]
         if p.ellipse is not None:
             out += [p.ellipse.semi_major, p.ellipse.semi_minor, p.ellipse.azimuth]
     for o in result.observations:
@@ -88,7 +94,8 @@ NETWORKS = {
     "2D held control": _horizontal(3),
     "2D with centering": _horizontal(4).replace("centering=0mm", "centering=1.5mm"),
     "2D free network": _horizontal(5, fixed=()),
-    "2D free network with an azimuth": _horizontal(6, fixed=()) + "azimuth P0_0 P0_1 12:34:56 sd=5sec\n",
+    "2D free network with an azimuth": _horizontal(6, fixed=())
+    + "azimuth P0_0 P0_1 12:34:56 sd=5sec\n",
     "2D weighted control": _horizontal(7).replace(" fix", " sd=5mm"),
 }
 
@@ -136,8 +143,9 @@ def test_free_network_covariance_is_the_inner_constraint_one(method):
     text = NETWORKS["2D free network"]
     network = build_network(parse_fieldbook(text))
     backend = None if method == "dense" else method
-    solution = engine.adjust(network, method="dense" if method == "dense" else "sparse",
-                             factorization=backend)
+    solution = engine.adjust(
+        network, method="dense" if method == "dense" else "sparse", factorization=backend
+    )
     n = len(network.parameters)
     full = _bordered_inverse(network, solution)
     rows, cols = np.meshgrid(np.arange(n), np.arange(n), indexing="ij")
@@ -188,8 +196,16 @@ def test_automatic_choice_is_dense_for_tiny_and_sparse_for_larger_networks():
 
 def test_coincident_points_are_named_not_divided_by_zero():
     used = parse_fieldbook("defaults distance=2mm\ndistance A B 10\n").observations
-    assembly = Assembly(used, {"A": 0, "B": 1}, {}, np.array([0, 2]), np.array([1, 3]),
-                        np.array([-1, -1]), np.zeros(0, np.int64), [])
+    assembly = Assembly(
+        used,
+        {"A": 0, "B": 1},
+        {},
+        np.array([0, 2]),
+        np.array([1, 3]),
+        np.array([-1, -1]),
+        np.zeros(0, np.int64),
+        [],
+    )
     same = np.array([5.0, 5.0])
     with pytest.raises(NetworkError) as caught:
         assembly.evaluate(same, same, np.zeros(2), np.zeros(0))
@@ -198,8 +214,16 @@ def test_coincident_points_are_named_not_divided_by_zero():
 
 def test_control_rows_observe_one_component():
     used = parse_fieldbook("defaults level=1mm\nlevel A B 1\n").observations
-    assembly = Assembly(used, {"A": 0, "B": 1}, {}, np.array([-1, -1]), np.array([-1, -1]),
-                        np.array([-1, 0]), np.zeros(0, np.int64), [ControlEquation(1, 2, 7.5, 0.002)])
+    assembly = Assembly(
+        used,
+        {"A": 0, "B": 1},
+        {},
+        np.array([-1, -1]),
+        np.array([-1, -1]),
+        np.array([-1, 0]),
+        np.zeros(0, np.int64),
+        [ControlEquation(1, 2, 7.5, 0.002)],
+    )
     evaluation = assembly.evaluate(np.zeros(2), np.zeros(2), np.array([1.0, 2.0]), np.zeros(0))
     assert evaluation.misclosure.tolist() == pytest.approx([0.0, 5.5])
     assert evaluation.sigmas[1] == 0.002
@@ -234,7 +258,9 @@ def test_selected_inverse_equals_the_dense_inverse_on_the_factor_pattern(backend
     rng = np.random.default_rng(2)
     n, row_ptr, cols = _random_rows(rng, n=150, m=600)
     pattern = sparse.NormalPattern(n, row_ptr, cols)
-    matrix = pattern.matrix(pattern.fill(rng.normal(size=cols.size), rng.uniform(1, 2, row_ptr.size - 1)))
+    matrix = pattern.matrix(
+        pattern.fill(rng.normal(size=cols.size), rng.uniform(1, 2, row_ptr.size - 1))
+    )
     factorization = sparse.make_factorization(backend)
     factorization.factorize(matrix, check=True)
     indptr, indices, unit, pivots, order = factorization.ldl()
@@ -262,7 +288,9 @@ def test_singular_normal_matrix_is_diagnosed_without_a_dense_eigendecomposition(
 
 def test_progress_reports_stages_and_iterations_in_order():
     calls: list[tuple[str, int]] = []
-    result = adjust_fieldbook(NETWORKS["2D held control"], progress=lambda s, k: calls.append((s, k)))
+    result = adjust_fieldbook(
+        NETWORKS["2D held control"], progress=lambda s, k: calls.append((s, k))
+    )
     stages = [s for s, _ in calls]
     assert stages[:3] == ["parse", "network", "misclosures"]
     assert stages[-2:] == ["statistics", "result"]
@@ -273,8 +301,13 @@ def test_progress_reports_stages_and_iterations_in_order():
 @pytest.mark.parametrize("name", ["leveling", "2D with centering"])
 def test_fast_json_text_is_byte_identical_to_the_standard_library(name):
     data = adjust_fieldbook(NETWORKS[name]).to_json_dict()
-    data["extra"] = {"empty": [], "nothing": {}, "nested": [[1, 2.5e-07], {"k": "é \" \\ \u2028 }, {"}],
-                     "numbers": [1e16, -0.0, 123456789.123, True, None], "records": [{"a": 1}, {"b": "x"}]}
+    data["extra"] = {
+        "empty": [],
+        "nothing": {},
+        "nested": [[1, 2.5e-07], {"k": 'é " \\ \u2028 }, {'}],
+        "numbers": [1e16, -0.0, 123456789.123, True, None],
+        "records": [{"a": 1}, {"b": "x"}],
+    }
     assert dumps_indented(data) == json.dumps(data, indent=2, allow_nan=False)
     with pytest.raises(ValueError):
         dumps_indented({"bad": [math.nan]})

@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from server.formats.geojson import GeoJsonUnavailable, geojson_text
 from server.fieldbook.parser import parse_fieldbook
+from server.formats.geojson import GeoJsonUnavailable, geojson_text
 from server.pipeline import adjust_fieldbook, adjust_parsed
 from server.report.csv_export import points_csv
 from server.review.standards import FGCC_1984_LEVELING, PRESETS, with_presets
@@ -38,9 +38,16 @@ def test_fgcc_leveling_constants_as_recalled():
     """FGCC 1984 §3.5 loop constants 4/5/6/8/12 mm·√E — from memory
     (docs/references.md "FGCC 1984 leveling allowances");
     a 1st-I 20 km loop allows 17.89 mm (computed)."""
-    loops = [FGCC_1984_LEVELING[k][1] for k in (
-        "first-order-class-I", "first-order-class-II", "second-order-class-I",
-        "second-order-class-II", "third-order")]
+    loops = [
+        FGCC_1984_LEVELING[k][1]
+        for k in (
+            "first-order-class-I",
+            "first-order-class-II",
+            "second-order-class-I",
+            "second-order-class-II",
+            "third-order",
+        )
+    ]
     assert loops == [4.0, 5.0, 6.0, 8.0, 12.0]
     q = PRESETS["fgcc-1984-first-order-class-I"].quantity("m")
     assert q.allowance_level(20.0, None) * 1000 == pytest.approx(17.89, abs=0.005)
@@ -71,15 +78,19 @@ def test_relative_precision_hand_computed_two_point_case():
     across = 400.0 * math.radians(10 / 3600)  # 19.4 mm
     assert rel.semi_major == pytest.approx(factor * across, rel=1e-6)
     assert rel.semi_minor == pytest.approx(factor * 0.005, rel=1e-6)
-    assert rel.azimuth == pytest.approx(0.0, abs=1e-6) or rel.azimuth == pytest.approx(180.0, abs=1e-6)
+    assert rel.azimuth == pytest.approx(0.0, abs=1e-6) or rel.azimuth == pytest.approx(
+        180.0, abs=1e-6
+    )
     assert rel.sd_distance == pytest.approx(0.005, rel=1e-6)
 
 
 def test_preset_applies_to_the_relative_check():
     """2 cm + 50 ppm of the corner-to-corner distance (docs/references.md,
     "ALTA/NSPS relative positional precision")."""
-    fb = with_presets(parse_fieldbook((DEMOS / "control_network.fieldbook").read_text()),
-                      relative="alta-nsps-2026")
+    fb = with_presets(
+        parse_fieldbook((DEMOS / "control_network.fieldbook").read_text()),
+        relative="alta-nsps-2026",
+    )
     result = adjust_parsed(fb)
     assert len(result.relative) >= 10, "the demo's joined pairs are all checked"
     for r in result.relative:
@@ -143,4 +154,6 @@ def test_points_csv_reads_back_with_the_standard_reader():
     rows = list(csv.DictReader(io.StringIO(points_csv(result))))
     assert [r["name"] for r in rows] == [p.name for p in result.points]
     heights = np.array([float(r["height"]) for r in rows if r["height"]])
-    assert np.allclose(heights, [p.height for p in result.points if p.height is not None], atol=5e-5)
+    assert np.allclose(
+        heights, [p.height for p in result.points if p.height is not None], atol=5e-5
+    )

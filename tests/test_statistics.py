@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from server.statistics import quality as st
 from server.pipeline import adjust_fieldbook
+from server.statistics import quality as st
 
 # Two-sided 5 % chi-square bounds.  Published: NIST/SEMATECH e-Handbook of
 # Statistical Methods, §1.3.6.7.4, "Critical Values of the Chi-Square
@@ -94,6 +94,10 @@ def test_monte_carlo_variance_factor_averages_one():
     # standard error of the mean of 200 draws of χ²(r)/r is √(2/r/200)
     assert abs(np.mean(factors) - 1.0) < 4 * math.sqrt(2 / r / 200)
     # the 95 % acceptance region holds about 95 % of the draws (binomial, n = 200)
-    passed = np.mean([st.chi_square_bounds(r, 0.05)[0] <= t <= st.chi_square_bounds(r, 0.05)[1]
-                      for t in statistics])
+    passed = np.mean(
+        [
+            st.chi_square_bounds(r, 0.05)[0] <= t <= st.chi_square_bounds(r, 0.05)[1]
+            for t in statistics
+        ]
+    )
     assert 0.89 <= passed <= 0.99

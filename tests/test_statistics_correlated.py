@@ -29,8 +29,9 @@ def _random_covariance(rng: np.random.Generator, diagonal: bool) -> np.ndarray:
     return sd[:, None] * corr * sd[None, :]
 
 
-def _network(rng: np.random.Generator, diagonal: bool = False,
-             extra_height: bool = False) -> tuple[np.ndarray, np.ndarray]:
+def _network(
+    rng: np.random.Generator, diagonal: bool = False, extra_height: bool = False
+) -> tuple[np.ndarray, np.ndarray]:
     """Design matrix A and block-diagonal covariance Σ of the baselines (+ one z of point 4)."""
     baselines = _BASELINES + ([(3, 4)] if extra_height else [])
     points = 5 if extra_height else 4
@@ -42,7 +43,7 @@ def _network(rng: np.random.Generator, diagonal: bool = False,
             if frm:
                 a[3 * b + axis, 3 * (frm - 1) + axis] = -1.0
             a[3 * b + axis, 3 * (to - 1) + axis] = 1.0
-        cov[3 * b:3 * b + 3, 3 * b:3 * b + 3] = _random_covariance(rng, diagonal)
+        cov[3 * b : 3 * b + 3, 3 * b : 3 * b + 3] = _random_covariance(rng, diagonal)
     if extra_height:  # a lone measurement of point 4's third coordinate
         a[-1, 3 * 3 + 2] = 1.0
         cov[-1, -1] = 0.004**2
@@ -57,7 +58,7 @@ def _solve(a: np.ndarray, cov: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _blocks(matrix: np.ndarray, count: int) -> np.ndarray:
-    return np.stack([matrix[3 * b:3 * b + 3, 3 * b:3 * b + 3] for b in range(count)])
+    return np.stack([matrix[3 * b : 3 * b + 3, 3 * b : 3 * b + 3] for b in range(count)])
 
 
 def test_diagonal_block_gives_the_usual_w_test_and_mdb():
@@ -67,26 +68,33 @@ def test_diagonal_block_gives_the_usual_w_test_and_mdb():
     v = -(qvv @ p) @ rng.multivariate_normal(np.zeros(len(cov)), cov)
     n = len(_BASELINES)
     lambda0 = quality.non_centrality(0.001, 0.80)
-    got = correlated.component_tests(v.reshape(n, 3), _blocks(p, n), _blocks(qvv, n),
-                                     lambda0, quality.normal_critical_value(0.001))
+    got = correlated.component_tests(
+        v.reshape(n, 3),
+        _blocks(p, n),
+        _blocks(qvv, n),
+        lambda0,
+        quality.normal_critical_value(0.001),
+    )
     sigmas = np.sqrt(np.diag(cov))
     r = quality.redundancy_numbers(np.diag(a @ np.linalg.inv(a.T @ p @ a) @ a.T), sigmas)
     np.testing.assert_allclose(got.redundancy.ravel(), r, rtol=1e-10)
     np.testing.assert_allclose(got.w.ravel(), quality.w_statistics(v, sigmas, r), rtol=1e-9)
-    np.testing.assert_allclose(got.mdb.ravel(),
-                               quality.minimal_detectable_bias(sigmas, r, lambda0), rtol=1e-9)
+    np.testing.assert_allclose(
+        got.mdb.ravel(), quality.minimal_detectable_bias(sigmas, r, lambda0), rtol=1e-9
+    )
     np.testing.assert_allclose(got.estimated_bias.ravel(), -v / r, rtol=1e-9)  # the contract
 
 
-def _monte_carlo(a: np.ndarray, cov: np.ndarray, draws: int,
-                 seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _monte_carlo(
+    a: np.ndarray, cov: np.ndarray, draws: int, seed: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Residual stacks (draws·n, 3) with the P and Qvv blocks repeated for each draw."""
     rng = np.random.default_rng(seed)
     p, qvv = _solve(a, cov)
     errors = rng.multivariate_normal(np.zeros(len(cov)), cov, size=draws)
     residuals = -errors @ (qvv @ p).T  # v = −Qvv·P·e
     n = len(cov) // 3
-    v = residuals[:, :3 * n].reshape(draws * n, 3)
+    v = residuals[:, : 3 * n].reshape(draws * n, 3)
     return v, np.tile(_blocks(p, n), (draws, 1, 1)), np.tile(_blocks(qvv, n), (draws, 1, 1))
 
 
@@ -160,8 +168,12 @@ def test_rank_deficient_block_uses_the_pseudo_inverse():
     assert (tests.rank == 1).all()
     assert tests.statistic.mean() == pytest.approx(1.0, abs=0.1)  # χ²(1) has mean 1
     # numpy's pseudo-inverse of the block itself (SVD, no whitening) gives the same T
-    direct = np.einsum("ni,ij,nj->n", v_all[:50, last],
-                       np.linalg.pinv(qvv_full[last, last], rcond=1e-8), v_all[:50, last])
+    direct = np.einsum(
+        "ni,ij,nj->n",
+        v_all[:50, last],
+        np.linalg.pinv(qvv_full[last, last], rcond=1e-8),
+        v_all[:50, last],
+    )
     np.testing.assert_allclose(tests.statistic[:50], direct, rtol=1e-5)
     # the critical value stays χ²(3) whatever the rank (the contract)
     assert tests.critical == pytest.approx(scipy.stats.chi2.ppf(0.95, 3), rel=1e-12)

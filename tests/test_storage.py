@@ -79,7 +79,7 @@ def test_network_error_keeps_the_point_names(db):
 
 
 def test_bytes_that_are_not_utf8_are_stored_unchanged(db):
-    raw = b"title \"caf\xe9\"\r\nlevel A B 1.0\r\n"
+    raw = b'title "caf\xe9"\r\nlevel A B 1.0\r\n'
     store = Store(db)
     project = store.get_project(store.create_project("latin-1", "old.fieldbook", raw))
     assert project.fieldbook == raw
@@ -264,7 +264,9 @@ def test_an_interrupted_run_stays_running_and_the_earlier_runs_are_intact(db, bl
 
     reopened = Store(db)
     assert [(r.id, r.status) for r in reopened.runs(project_id)] == [
-        (first, "finished"), (interrupted, "running")]
+        (first, "finished"),
+        (interrupted, "running"),
+    ]
     assert reopened.latest_run(project_id).result() == result
     assert len(reopened.pending_edits(project_id)) == 1  # the decision is not lost either
 
@@ -287,7 +289,9 @@ def test_queued_decisions_are_listed_withdrawn_and_deleted_with_the_project(db):
     first = store.add_pending_edit(project_id, EXCLUDE_38)
     second = store.add_pending_edit(project_id, {**EXCLUDE_38, "line": 12})
     assert [(p.id, p.edit["line"]) for p in store.pending_edits(project_id)] == [
-        (first, 38), (second, 12)]
+        (first, 38),
+        (second, 12),
+    ]
     assert store.remove_pending_edit(other, first) is False  # not another project's decision
     assert store.remove_pending_edit(project_id, first) is True
     assert [p.id for p in store.pending_edits(project_id)] == [second]
@@ -319,11 +323,15 @@ def test_a_database_of_schema_1_is_upgraded_keeping_projects_and_runs(db):
     db.parent.mkdir(parents=True)
     with closing(sqlite3.connect(db)) as raw:
         raw.executescript(SCHEMA_1)
-        raw.execute("INSERT INTO projects VALUES ('" + "a" * 32 + "', 'old', 'old.fieldbook', "
-                    "'2026-01-01T00:00:00+00:00', x'6c6576656c', 'h')")
-        raw.execute("INSERT INTO runs (project_id, created, status, error) VALUES "
-                    "('" + "a" * 32 + "', '2026-01-01T00:00:00+00:00', 'failed', "
-                    "'{\"kind\": \"other\", \"message\": \"stopped\"}')")
+        raw.execute(
+            "INSERT INTO projects VALUES ('" + "a" * 32 + "', 'old', 'old.fieldbook', "
+            "'2026-01-01T00:00:00+00:00', x'6c6576656c', 'h')"
+        )
+        raw.execute(
+            "INSERT INTO runs (project_id, created, status, error) VALUES "
+            "('" + "a" * 32 + "', '2026-01-01T00:00:00+00:00', 'failed', "
+            '\'{"kind": "other", "message": "stopped"}\')'
+        )
         raw.commit()
     store = Store(db)
     assert _query(db, "PRAGMA user_version") == (SCHEMA_VERSION,)
@@ -342,12 +350,17 @@ def test_a_database_of_schema_3_is_upgraded_and_its_projects_stay_live(db):
     db.parent.mkdir(parents=True)
     with closing(sqlite3.connect(db)) as raw:
         raw.executescript(SCHEMA_3)
-        raw.execute("INSERT INTO projects (id, name, filename, created, fieldbook, sha256) "
-                    "VALUES (?, 'old', 'old.fieldbook', '2026-01-01T00:00:00+00:00', x'78', 'h')",
-                    ("b" * 32,))
-        raw.execute("INSERT INTO runs (project_id, created, status, error) VALUES "
-                    "(?, '2026-01-01T00:00:00+00:00', 'failed', '{\"kind\": \"other\", "
-                    "\"message\": \"stopped\"}')", ("b" * 32,))
+        raw.execute(
+            "INSERT INTO projects (id, name, filename, created, fieldbook, sha256) "
+            "VALUES (?, 'old', 'old.fieldbook', '2026-01-01T00:00:00+00:00', x'78', 'h')",
+            ("b" * 32,),
+        )
+        raw.execute(
+            "INSERT INTO runs (project_id, created, status, error) VALUES "
+            "(?, '2026-01-01T00:00:00+00:00', 'failed', '{\"kind\": \"other\", "
+            '"message": "stopped"}\')',
+            ("b" * 32,),
+        )
         raw.commit()
     store = Store(db)
     assert _query(db, "PRAGMA user_version") == (SCHEMA_VERSION,) == (4,)

@@ -40,8 +40,9 @@ def _read_only(monkeypatch: pytest.MonkeyPatch) -> None:
                 raise sqlite3.OperationalError("attempt to write a readonly database")
             return super().execute(sql, *args)
 
-    monkeypatch.setattr(storage.sqlite3, "connect",
-                        lambda *a, **k: real(*a, **{**k, "factory": ReadOnly}))
+    monkeypatch.setattr(
+        storage.sqlite3, "connect", lambda *a, **k: real(*a, **{**k, "factory": ReadOnly})
+    )
 
 
 @pytest.mark.parametrize("route", ["/projects", "/api/projects", "/demos/leveling_blunder"])
@@ -66,8 +67,10 @@ def test_an_upload_the_store_refuses_says_it_was_not_stored(tmp_path, monkeypatc
 def test_reading_pages_with_an_unreadable_store_say_so(tmp_path, monkeypatch, caplog):
     data = tmp_path / "data"
     with TestClient(create_app(data), raise_server_exceptions=False) as client:
+
         def broken(*args, **kwargs):
             raise sqlite3.OperationalError("unable to open database file")
+
         monkeypatch.setattr(storage.sqlite3, "connect", broken)
         caplog.set_level(logging.ERROR, logger="stationfit.web")
         page = client.get("/projects")
@@ -80,7 +83,10 @@ def test_reading_pages_with_an_unreadable_store_say_so(tmp_path, monkeypatch, ca
 def _serve(data: Path) -> subprocess.CompletedProcess[str]:
     return subprocess.run(
         [sys.executable, "-m", "server", "serve", "--data", str(data), "--port", "1"],
-        cwd=REPO, capture_output=True, text=True, timeout=60,
+        cwd=REPO,
+        capture_output=True,
+        text=True,
+        timeout=60,
     )
 
 

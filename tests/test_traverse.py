@@ -1,4 +1,5 @@
-"""Traverse closures before adjustment (``server/model/traverse.py``) and ``tolerance angular= ratio=``.
+"""Traverse closures before adjustment (``server/model/traverse.py``) and
+``tolerance angular= ratio=``.
 
 Outside references used here:
 
@@ -22,8 +23,8 @@ import pytest
 
 from server.errors import FieldbookError
 from server.fieldbook.parser import parse_fieldbook
-from server.pipeline import adjust_parsed
 from server.model.traverse import closure, traverse_misclosures
+from server.pipeline import adjust_parsed
 from server.units import ARCSEC_PER_RAD
 
 FT = 0.3048
@@ -117,7 +118,9 @@ def test_wac_allowances_read_from_the_tolerance_line() -> None:
     ("tolerance", "error_sec", "angular_exceeds"),
     [(WAC_STRICT, 30.0, True), (WAC_PLAIN, 30.0, False), (WAC_STRICT, 20.0, False)],
 )
-def test_wac_angular_allowance_is_k_root_n(tolerance: str, error_sec: float, angular_exceeds: bool) -> None:
+def test_wac_angular_allowance_is_k_root_n(
+    tolerance: str, error_sec: float, angular_exceeds: bool
+) -> None:
     # 5 angle stations: 10″·√5 = 22.4″ and 30″·√5 = 67.1″ (WAC 332-130-090)
     [entry] = traverse_misclosures(parse_fieldbook(_purdue_fieldbook(tolerance, error_sec)))
     k = 10.0 if tolerance == WAC_STRICT else 30.0
@@ -150,7 +153,9 @@ def _square(reverse: bool, error_sec: float) -> str:
     for i, at in enumerate(names):
         back, fore = names[i - 1], names[(i + 1) % 4]
         az = {
-            name: math.degrees(math.atan2(corners[name][0] - corners[at][0], corners[name][1] - corners[at][1]))
+            name: math.degrees(
+                math.atan2(corners[name][0] - corners[at][0], corners[name][1] - corners[at][1])
+            )
             for name in (back, fore)
         }
         angle = (az[fore] - az[back]) % 360.0 + error_sec / 4 / 3600.0  # the same error at each
@@ -176,10 +181,16 @@ def test_closed_polygon_angle_sum(reverse: bool) -> None:
     assert entry.length == pytest.approx(400.0)
 
 
-# ---------------------------------------------------------------- link traverse between fixed points
+# ------------------------------------------------------------ link traverse between fixed points
 
-LINK = {"S": (2000.0, 1000.0), "R": (2000.0, 1500.0), "P1": (2150.0, 1080.0),
-        "P2": (2330.0, 1040.0), "E": (2480.0, 1120.0), "F": (2700.0, 1400.0)}
+LINK = {
+    "S": (2000.0, 1000.0),
+    "R": (2000.0, 1500.0),
+    "P1": (2150.0, 1080.0),
+    "P2": (2330.0, 1040.0),
+    "E": (2480.0, 1120.0),
+    "F": (2700.0, 1400.0),
+}
 
 
 def _azimuth(a: str, b: str) -> float:
@@ -187,9 +198,15 @@ def _azimuth(a: str, b: str) -> float:
     return math.degrees(math.atan2(eb - ea, nb - na)) % 360.0
 
 
-def _link_fieldbook(angle_error_sec: float = 0.0, distance_error: float = 0.0, closing: str = "angle") -> str:
+def _link_fieldbook(
+    angle_error_sec: float = 0.0, distance_error: float = 0.0, closing: str = "angle"
+) -> str:
     route = ["R", "S", "P1", "P2", "E", "F"]
-    lines = ["fieldbook 1", "units length=m angle=dms", "defaults angle=2sec distance=2mm azimuth=2sec"]
+    lines = [
+        "fieldbook 1",
+        "units length=m angle=dms",
+        "defaults angle=2sec distance=2mm azimuth=2sec",
+    ]
     for name in ("S", "R", "E", "F"):
         lines.append(f"point {name} east={LINK[name][0]} north={LINK[name][1]} fix")
     for i in range(1, 5):
@@ -227,14 +244,18 @@ def test_link_traverse_linear_misclosure_is_the_distance_error_along_its_leg() -
 
 
 def test_link_traverse_closed_by_an_observed_azimuth_of_the_last_leg() -> None:
-    [entry] = traverse_misclosures(parse_fieldbook(_link_fieldbook(angle_error_sec=-8.0, closing="azimuth")))
+    [entry] = traverse_misclosures(
+        parse_fieldbook(_link_fieldbook(angle_error_sec=-8.0, closing="azimuth"))
+    )
     assert entry.angle_stations == 3  # S, P1, P2: the azimuth is not an angle station
     assert entry.angular * ARCSEC_PER_RAD == pytest.approx(-8.0, abs=0.02)
 
 
 def test_link_traverse_without_a_closing_orientation_has_only_the_linear_part() -> None:
     text = "\n".join(
-        line for line in _link_fieldbook(distance_error=0.02).splitlines() if not line.startswith("angle P2 E F")
+        line
+        for line in _link_fieldbook(distance_error=0.02).splitlines()
+        if not line.startswith("angle P2 E F")
     )
     [entry] = traverse_misclosures(parse_fieldbook(text))
     assert entry.angular is None
@@ -264,7 +285,9 @@ def test_result_json_keys_for_a_traverse() -> None:
 def test_demo_closed_traverse_gains_its_traverse_entry() -> None:
     from pathlib import Path
 
-    text = (Path(__file__).parent.parent / "demo_projects" / "closed_traverse.fieldbook").read_text()
+    text = (
+        Path(__file__).parent.parent / "demo_projects" / "closed_traverse.fieldbook"
+    ).read_text()
     data = adjust_text(text).to_json_dict()
     [entry] = data["misclosures"]
     assert entry["kind"] == "traverse"
@@ -336,10 +359,15 @@ def test_a_traverse_of_1500_stations_is_closed_without_running_out_of_stack() ->
     # a straight line east with every angle 180°: the closure is exact, so any error
     # would be in the bookkeeping; 1500 stations is deeper than Python's recursion limit
     stations = ["S", *(f"T{i}" for i in range(1, 1500)), "E"]
-    lines = ["fieldbook 1", "units length=m angle=dms", "defaults angle=1sec distance=1mm",
-             "point R east=-100 north=0 fix", "point S east=0 north=0 fix",
-             f"point E east={100 * (len(stations) - 1)} north=0 fix",
-             f"point F east={100 * len(stations)} north=0 fix"]
+    lines = [
+        "fieldbook 1",
+        "units length=m angle=dms",
+        "defaults angle=1sec distance=1mm",
+        "point R east=-100 north=0 fix",
+        "point S east=0 north=0 fix",
+        f"point E east={100 * (len(stations) - 1)} north=0 fix",
+        f"point F east={100 * len(stations)} north=0 fix",
+    ]
     route = ["R", *stations, "F"]
     for back, at, fore in zip(route, route[1:], route[2:]):
         lines.append(f"angle {back} {at} {fore} 180:00:00")

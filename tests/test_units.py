@@ -81,7 +81,13 @@ def test_format_dms_wraps_full_circle_when_asked():
 
 @pytest.mark.parametrize(
     ("value", "expected"),
-    [(-0.0, 0.0), (2 * math.pi, 0.0), (-1e-18, 0.0), (3 * math.pi, math.pi), (-math.pi / 2, 1.5 * math.pi)],
+    [
+        (-0.0, 0.0),
+        (2 * math.pi, 0.0),
+        (-1e-18, 0.0),
+        (3 * math.pi, math.pi),
+        (-math.pi / 2, 1.5 * math.pi),
+    ],
 )
 def test_wrap_2pi(value, expected):
     result = wrap_2pi(value)

@@ -8,9 +8,8 @@ from __future__ import annotations
 
 import subprocess
 import sys
-from pathlib import Path
-
 import warnings
+from pathlib import Path
 
 import pytest
 
@@ -29,11 +28,18 @@ HEADER_LINES = 4  # the observation lines start after these
 
 
 def level_chain(sections: int) -> str:
-    """A levelled line from a fixed benchmark: ``sections`` observations, as many unknown heights."""
-    lines = ["fieldbook 1", 'title "Limit test line"', "defaults level=1.0mm/sqrtkm",
-             "point BM0 height=10.0000 fix"]
-    lines += [f"level {'BM0' if i == 0 else f'P{i}'} P{i + 1} +0.1000 len=0.100km"
-              for i in range(sections)]
+    """A levelled line from a fixed benchmark: ``sections`` observations, as many unknown
+    heights."""
+    lines = [
+        "fieldbook 1",
+        'title "Limit test line"',
+        "defaults level=1.0mm/sqrtkm",
+        "point BM0 height=10.0000 fix",
+    ]
+    lines += [
+        f"level {'BM0' if i == 0 else f'P{i}'} P{i + 1} +0.1000 len=0.100km"
+        for i in range(sections)
+    ]
     return "\n".join(lines) + "\n"
 
 
@@ -46,8 +52,9 @@ def test_a_book_one_observation_over_the_limit_is_refused_at_that_observation():
 
 
 def test_a_book_at_the_limit_adjusts():
-    result = adjust_fieldbook(level_chain(10), limits=WorkLimits(max_observations=10,
-                                                                  max_unknowns=10))
+    result = adjust_fieldbook(
+        level_chain(10), limits=WorkLimits(max_observations=10, max_unknowns=10)
+    )
     assert len(result.points) == 11
     assert result.points[-1].height == pytest.approx(11.0, abs=1e-9)  # ten rises of 0.1 m
 
@@ -110,8 +117,14 @@ def test_a_browser_upload_over_the_limit_gets_an_error_page(limited):
 
 
 def run_cli(*args: str) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "server", *args], cwd=ROOT, capture_output=True,
-                          text=True, timeout=120, check=False)
+    return subprocess.run(
+        [sys.executable, "-m", "server", *args],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+    )
 
 
 def test_the_command_line_has_no_limit_unless_asked(tmp_path):
