@@ -54,6 +54,9 @@ from typing import TypeVar
 import numpy as np
 from pyproj import Geod
 
+from server.geodesy import frames
+from server.geodesy.ellipsoid import Ellipsoid
+
 GRS80_A = 6_378_137.0
 GRS80_F = 1.0 / 298.257222101
 #: Earth radius of the curvature and refraction terms, metres.
@@ -206,41 +209,24 @@ def trigonometric_height_difference(
 
 
 class _Ellipsoid:
+    """The shared ellipsoid (``ellipsoid.py``) one point at a time, and its geodesics."""
+
     def __init__(self, a: float, f: float) -> None:
-        self.a, self.f, self.e2 = a, f, f * (2.0 - f)
+        self.shape = Ellipsoid(a, f)
+        self.a, self.f, self.e2 = a, f, self.shape.e2
         self.geod = Geod(a=a, f=f)
 
     def to_ecef(self, lat: float, lon: float, h: float) -> np.ndarray:
-        n = self.a / math.sqrt(1.0 - self.e2 * math.sin(lat) ** 2)
-        return np.array(
-            [
-                (n + h) * math.cos(lat) * math.cos(lon),
-                (n + h) * math.cos(lat) * math.sin(lon),
-                (n * (1.0 - self.e2) + h) * math.sin(lat),
-            ]
-        )
+        return np.asarray(self.shape.to_ecef(lat, lon, h), dtype=float).reshape(3)
 
     def from_ecef(self, xyz: Iterable[float]) -> tuple[float, float, float]:
-        x, y, z = xyz
-        b, e2 = self.a * (1.0 - self.f), self.e2
-        ep2 = e2 / (1.0 - e2)
-        p = math.hypot(x, y)
-        beta = math.atan2(self.a * z, b * p)
-        lat = beta
-        for _ in range(3):  # Bowring: three steps reach a double's rounding near the surface
-            lat = math.atan2(
-                z + ep2 * b * math.sin(beta) ** 3, p - e2 * self.a * math.cos(beta) ** 3
-            )
-            beta = math.atan2((1.0 - self.f) * math.sin(lat), math.cos(lat))
-        s = math.sin(lat)
-        h = p * math.cos(lat) + z * s - self.a * math.sqrt(1.0 - e2 * s * s)
-        return lat, math.atan2(y, x), h
+        lat, lon, h = self.shape.from_ecef(np.asarray(list(xyz), dtype=float).reshape(1, 3))
+        return float(lat[0]), float(lon[0]), float(h[0])
 
 
 def enu_rotation(lat: float, lon: float) -> np.ndarray:
     """Rows east, north, up at φ, λ (radians)."""
-    sp, cp, sl, cl = math.sin(lat), math.cos(lat), math.sin(lon), math.cos(lon)
-    return np.array([[-sl, cl, 0.0], [-sp * cl, -sp * sl, cp], [cp * cl, cp * sl, sp]])
+    return frames.enu_rotation(lat, lon)[0]
 
 
 class _State:
