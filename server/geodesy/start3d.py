@@ -226,7 +226,7 @@ class _Ellipsoid:
 
 def enu_rotation(lat: float, lon: float) -> np.ndarray:
     """Rows east, north, up at φ, λ (radians)."""
-    return frames.enu_rotation(lat, lon)[0]
+    return frames.enu_rotation(np.array([lat]), np.array([lon]))[0]
 
 
 class _State:

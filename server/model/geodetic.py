@@ -179,7 +179,8 @@ def _given_points(
             xyz = crs.geodetic_to_ecef(
                 np.array([p.latitude]), np.array([p.longitude]), np.array([h])
             )
-            position = tuple(float(c) for c in np.asarray(xyz).reshape(3))
+            x, y, z = (float(c) for c in np.asarray(xyz).reshape(3))
+            position = (x, y, z)
         elif p.east is not None and p.north is not None:
             position = grid_to_ecef(crs, p.east, p.north, h)
         else:
@@ -196,7 +197,7 @@ def _given_points(
             start3d.KnownPoint(
                 p.name,
                 position,
-                control=control,  # type: ignore[arg-type]
+                control=control,
                 height_known=has_height,
             )
         )
