@@ -25,6 +25,8 @@ from server.engine.linearisation import Linearisation, linearise_once
 from server.engine.state import State
 from server.fieldbook.model import Fieldbook, Observation
 from server.fieldbook.parser import parse_fieldbook
+from server.model.geodetic_kinds import geodetic_kinds
+from server.model.kinds import evaluate_one
 from server.model.network import Network, build_network
 from server.pipeline import (
     UNLIMITED,
@@ -60,6 +62,7 @@ def plan_parsed(fieldbook: Fieldbook, *, switched_off: Collection[int] = (),
     check_given_positions(book)
     network = build_network(book)
     check_unknown_limit(network, limits)
+    network = with_design_lengths(network, design_state(network))
     linear = linearise_once(network, design_state(network))
     warnings = [issue.format(book.source) for issue in book.warnings] + list(network.warnings)
     result = build_result(network, linear.solution, (), warnings, design=True)
@@ -92,6 +95,39 @@ def design_state(network: Network) -> State:
         state = State(network, given)
     state.orientation[:] = 0.0
     return state
+
+
+#: Kinds whose σ has a part proportional to the measured length (``ppm``).
+LENGTH_KINDS = frozenset({"distance", "slope"})
+
+
+def with_design_lengths(network: Network, state: State) -> Network:
+    """The network as the statistics read a design: each distance's value is the length
+    computed at the approximate coordinates (its σ = √(a² + (b·ppm·length)²) needs a length,
+    and a design has none), and no observation is marked planned any more (the network is
+    built; the result builder then treats a planned baseline like a booked one, values empty)."""
+    geodetic = network.geodetic
+    if geodetic is None:
+        coordinates, kinds, undulation = state.coordinates(), None, None
+    else:
+        positions = state.positions()
+        assert positions is not None
+        coordinates = positions
+        kinds, undulation = geodetic_kinds(geodetic.crs, geodetic.refraction), geodetic.undulation
+    replaced: dict[int, Observation] = {}
+    for obs in network.used:
+        if obs.kind in LENGTH_KINDS:
+            length = float(evaluate_one(obs, coordinates, {}, kinds, undulation).value[0])
+            replaced[id(obs)] = dataclasses.replace(obs, value=length, planned=False)
+    for obs in network.fieldbook.observations:
+        if obs.planned and id(obs) not in replaced:
+            replaced[id(obs)] = dataclasses.replace(obs, planned=False)
+    if not replaced:
+        return network
+    used = tuple(replaced.get(id(o), o) for o in network.used)
+    observations = tuple(replaced.get(id(o), o) for o in network.fieldbook.observations)
+    book = dataclasses.replace(network.fieldbook, observations=observations)
+    return dataclasses.replace(network, used=used, fieldbook=book)
 
 
 def design_result(result: AdjustmentResult, network: Network,
