@@ -92,7 +92,10 @@ def line_of(key: str) -> int:
         words = line.split()
         if words[:1] == ["directions"]:
             at_key = words[1]
-        elif (words and words[0] in POINTS and f"{at_key}>{words[0]}" == key) or (words[:1] == ["distance"] and f"d:{words[1]}-{words[2]}" == key):
+        elif words and words[0] in POINTS:
+            if f"{at_key}>{words[0]}" == key:
+                return number
+        elif words[:1] == ["distance"] and f"d:{words[1]}-{words[2]}" == key:
             return number
     raise KeyError(key)
 
