@@ -93,3 +93,28 @@ def design_context(result: AdjustmentResult) -> dict[str, Any]:
         "weak_threshold": WEAK_REDUNDANCY,
         "blank": NOT_APPLICABLE,
     }
+
+
+def design_figures(result: AdjustmentResult) -> dict[str, Any]:
+    """The design page's figures as formatted text, for the page's script to put in place:
+    points by name, observations by line, the summary, relative rows and warnings."""
+    data = design_context(result)
+    return {
+        "summary": [[label, value] for label, value in data["summary_rows"]],
+        "points": {p.name: [p.sd_east, p.sd_north, p.sd_height, p.semi_major, p.semi_minor,
+                            p.azimuth] for p in data["points"]},
+        "observations": {str(o.line): {"sd": o.sd, "redundancy": o.redundancy, "mdb": o.mdb,
+                                       "external": o.external, "note": planned_note(o)}
+                         for o in data["planned"]},
+        "relative": [[r.from_point, r.to_point, r.semi_major, r.semi_minor, r.allowed, r.status]
+                     for r in data["relative"]],
+        "warnings": list(result.warnings),
+    }
+
+
+def planned_note(o: PlannedRow) -> str:
+    """"switched off", "uncontrolled", "weak" and the inseparable lines, as the tables say."""
+    if not o.used:
+        return "switched off"
+    words = ["uncontrolled"] if o.uncontrolled else ["weak"] if o.weak else []
+    return "; ".join(words + ([o.inseparable] if o.inseparable else []))
