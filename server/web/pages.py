@@ -27,7 +27,6 @@ from server.store import projects as service
 from server.store.projects import StandardsChoice, Upload, display_name
 from server.store.sqlite import Project, Store
 from server.web import dependencies as deps
-from server.web.design import design_redirect
 from server.web.dependencies import (
     ChoiceDep,
     JobsDep,
@@ -41,6 +40,7 @@ from server.web.dependencies import (
     read_upload,
     render,
 )
+from server.web.design import design_redirect
 
 router = APIRouter()
 
