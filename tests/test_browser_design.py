@@ -6,7 +6,6 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
-from playwright.sync_api import expect
 
 from server.design.plan import plan_fieldbook
 from server.report.design_tables import planned_rows, point_rows
@@ -14,8 +13,10 @@ from server.results.result import CAUTION
 from tests.browser_support import browser_problems
 
 pytestmark = pytest.mark.browser
+expect = pytest.importorskip("playwright.sync_api").expect
 
-BOOK = Path(__file__).resolve().parents[1] / "demo_projects" / "design" / "footbridge_design.fieldbook"
+DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"
+BOOK = DEMOS / "design" / "footbridge_design.fieldbook"
 DISTANCE_LINE = 43  # distance W1 E1
 
 
