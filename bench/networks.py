@@ -80,8 +80,8 @@ def leveling(marks: int, *, seed: int = 1, section_km: float = 1.0, per_line: in
 
 
 def horizontal(
-    points: int, *, seed: int = 1, spacing: float = 300.0, fixed_every: int = 400, sparse: bool = False,
-    planned: bool = False,
+    points: int, *, seed: int = 1, spacing: float = 300.0, fixed_every: int = 400,
+    sparse: bool = False, planned: bool = False,
 ) -> str:
     """A triangulated 2D network of about ``points`` points.
 
