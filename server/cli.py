@@ -150,6 +150,13 @@ def _import(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+PLAN_STATUSES = """exit statuses:
+  0   designed
+  2   the field book has errors: each on stderr as FILE:LINE: message
+  3   the design cannot be computed: a point without approximate coordinates, or points
+      the planned observations do not determine (named)
+  64  the command line cannot be followed (unknown option, unreadable file)"""
+
 PLAN_HELP = """Design a network before the field: FILE lists the planned observations with their
 standard deviations and ? for the value, and every point's approximate coordinates.
 
@@ -162,7 +169,7 @@ A value booked instead of ? is read but not used. See docs/design.md."""
 def _plan_command(commands: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
     command = commands.add_parser(
         "plan", help="design of a planned network: precision and reliability, no values",
-        epilog=EXIT_STATUSES.replace("adjusted", "designed", 1),
+        epilog=PLAN_STATUSES,
         formatter_class=argparse.RawDescriptionHelpFormatter, description=PLAN_HELP)
     command.add_argument("file", type=Path)
     command.add_argument("--json", action="store_true", help="print the JSON result alone")

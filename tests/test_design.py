@@ -53,8 +53,8 @@ def _length(a: str, b: str) -> float:
     return math.hypot(eb - ea, nb - na)
 
 
-def network_book(*, values: bool, drop: tuple[str, ...] = (), bias: dict[str, float] | None = None
-                 ) -> str:
+def network_book(*, values: bool, drop: tuple[str, ...] = (), bias: dict[str, float] | None = None,
+                 held: tuple[str, ...] = HELD) -> str:
     """The network as a book: '?' for every value, or the values computed from the
     coordinates (directions with orientation 0, in decimal degrees).  Each observation has a
     key ("W1>E2", "d:W1-E1"); keys in ``drop`` become comment lines (line numbers kept), and
@@ -65,7 +65,7 @@ def network_book(*, values: bool, drop: tuple[str, ...] = (), bias: dict[str, fl
            'tolerance relative=5mm+20ppm',
            'defaults direction=1sec distance=1mm+1.5ppm centering=0.5mm']
     for name, (e, n) in POINTS.items():
-        out.append(f"point {name} east={e:.3f} north={n:.3f}" + (" fix" if name in HELD else ""))
+        out.append(f"point {name} east={e:.3f} north={n:.3f}" + (" fix" if name in held else ""))
 
     def value(key: str, computed: float) -> str:
         return f"{computed + bias.get(key, 0.0):.10f}" if values else "?"
@@ -187,6 +187,36 @@ def test_external_reliability_is_the_shift_of_an_adjustment_with_the_mdb_added(d
     largest = max(math.hypot(b.east - c.east, b.north - c.north)
                   for b, c in zip(biased.points, clean.points, strict=True))
     assert planned.external_reliability == pytest.approx(largest, rel=1e-4)
+
+
+def test_external_reliability_of_a_free_network_is_the_inner_constraint_shift():
+    """Reference: a free network (no point held) re-adjusted with the MDB added to one
+    distance; both solutions are the inner-constraint (minimum-trace) ones, so the point
+    shifts compare directly."""
+    key = "d:A1-A2"
+    design = plan_fieldbook(network_book(values=False, held=()))
+    planned = _by_line(design)[line_of(key)]
+    clean = adjust_fieldbook(network_book(values=True, held=()))
+    biased = adjust_fieldbook(network_book(values=True, held=(), bias={key: planned.mdb}))
+    largest = max(math.hypot(b.east - c.east, b.north - c.north)
+                  for b, c in zip(biased.points, clean.points, strict=True))
+    assert planned.external_reliability == pytest.approx(largest, rel=1e-4)
+
+
+def test_every_back_end_gives_the_same_design(monkeypatch):
+    """Regression across the engine's back ends (dense LAPACK and the sparse ones): the same
+    design, also for the external reliability, which solves with each factor."""
+    from server.engine import linearisation
+
+    original = linearisation.linearise_once
+    results = {}
+    for method in ("dense", "sparse"):
+        monkeypatch.setattr("server.design.plan.linearise_once",
+                            lambda network, state, m=method: original(network, state, method=m))
+        results[method] = plan_fieldbook(network_book(values=False))
+    for a, b in zip(results["dense"].observations, results["sparse"].observations, strict=True):
+        assert a.redundancy == pytest.approx(b.redundancy, rel=1e-9, abs=1e-12)
+        assert a.external_reliability == pytest.approx(b.external_reliability, rel=1e-9)
 
 
 LEVEL_LINE = """fieldbook 1
