@@ -49,7 +49,7 @@
       ["sd", "redundancy", "mdb", "external", "note"].forEach(function (key) {
         setText(tr.querySelector("[data-figure=" + key + "]"), o[key]);
       });
-      tr.classList.toggle("flagged", /^(weak|uncontrolled)/.test(o.note));
+      tr.classList.toggle("is-flagged", /^(weak|uncontrolled)/.test(o.note));
     });
     var relative = document.querySelector("#design-relative tbody");
     if (relative) {

@@ -26,7 +26,7 @@ from server.engine.state import State
 from server.fieldbook.model import Fieldbook, Observation
 from server.fieldbook.parser import parse_fieldbook
 from server.model.geodetic_kinds import geodetic_kinds
-from server.model.kinds import evaluate_one
+from server.model.kinds import CoincidentPointsError, evaluate_one
 from server.model.network import Network, build_network
 from server.pipeline import (
     UNLIMITED,
@@ -115,9 +115,12 @@ def with_design_lengths(network: Network, state: State) -> Network:
         coordinates = positions
         kinds, undulation = geodetic_kinds(geodetic.crs, geodetic.refraction), geodetic.undulation
     replaced: dict[int, Observation] = {}
-    for obs in network.used:
+    for obs in network.fieldbook.observations:  # switched-off ones too: their σ is listed
         if obs.kind in LENGTH_KINDS:
-            length = float(evaluate_one(obs, coordinates, {}, kinds, undulation).value[0])
+            try:
+                length = float(evaluate_one(obs, coordinates, {}, kinds, undulation).value[0])
+            except (KeyError, CoincidentPointsError):  # a point no used observation names
+                continue
             replaced[id(obs)] = dataclasses.replace(obs, value=length, planned=False)
     for obs in network.fieldbook.observations:
         if obs.planned and id(obs) not in replaced:
