@@ -88,11 +88,14 @@ def horizontal(
     spacing: float = 300.0,
     fixed_every: int = 400,
     sparse: bool = False,
+    planned: bool = False,
 ) -> str:
     """A triangulated 2D network of about ``points`` points.
 
     ``sparse``: a lighter survey, as in an everyday project: rounds to the four
     grid neighbours and distances along the grid, about six observations per point.
+    ``planned``: a design book instead: every value ``?`` and every point on a ``point``
+    line with its approximate coordinates (``plan``).
     """
     rng = np.random.default_rng(seed)
     size = max(3, round(math.sqrt(points)))
@@ -115,6 +118,9 @@ def horizontal(
     held |= {(0, 0), (0, size - 1), (size - 1, 0), (size - 1, size - 1)}
     for i, j in sorted(held):
         lines.append(f"point {name[i][j]} east={east[i, j]:.4f} north={north[i, j]:.4f} fix")
+    if planned:
+        lines += [f"point {name[i][j]} east={east[i, j]:.2f} north={north[i, j]:.2f}"
+                  for i in range(size) for j in range(size) if (i, j) not in held]
     offsets = ((0, 1), (1, 0), (1, 1), (0, -1), (-1, 0), (-1, -1))
     if sparse:
         offsets = ((0, 1), (1, 0), (0, -1), (-1, 0))
@@ -129,14 +135,15 @@ def horizontal(
             for ti, tj in targets:
                 azimuth = math.atan2(east[ti, tj] - east[i, j], north[ti, tj] - north[i, j])
                 value = math.degrees(azimuth - orientation + rng.normal(0.0, sd_dir)) % 360.0
-                lines.append(f"  {name[ti][tj]} {_dms(value)}")
+                lines.append(f"  {name[ti][tj]} {'?' if planned else _dms(value)}")
             lines.append("end")
             for ti, tj in targets:
                 if (ti, tj) < (i, j):
                     continue  # each triangle edge measured once, from its lower end
                 d = math.hypot(east[ti, tj] - east[i, j], north[ti, tj] - north[i, j])
                 sd = math.hypot(DISTANCE_SD[0] * 1e-3, DISTANCE_SD[1] * 1e-6 * d)
-                lines.append(f"distance {name[i][j]} {name[ti][tj]} {d + rng.normal(0.0, sd):.4f}")
+                booked = "?" if planned else f"{d + rng.normal(0.0, sd):.4f}"
+                lines.append(f"distance {name[i][j]} {name[ti][tj]} {booked}")
     return "\n".join(lines) + "\n"
 
 

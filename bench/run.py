@@ -33,7 +33,12 @@ time of ``adjust_fieldbook`` (median of three, in this process) is printed.
 
 Then the "typical project" (200 points, about 1,000 observations) is
 adjusted repeatedly in one process and the warm time of adjustment plus the
-HTML report is printed.  BLAS runs on one thread throughout, as the engine
+HTML report is printed.  Last, the same network as a design (every value ``?``,
+``--design`` runs this alone): the warm time of one re-evaluation of the design
+page, an observation switched off (the parsed book kept, as the page keeps it;
+the one linearisation, statistics, external reliability and the formatted
+figures of ``design.json``); the target is under 0.5 s for 1,000 planned
+observations.  BLAS runs on one thread throughout, as the engine
 does.
 """
 
@@ -95,7 +100,12 @@ def main() -> int:
         help="largest number of unknowns for the dense textbook solver",
     )
     parser.add_argument("--keep", type=Path, default=None, help="write the field books here")
+    parser.add_argument("--design", action="store_true",
+                        help="only the design page's re-evaluation of 1,000 planned observations")
     args = parser.parse_args()
+    if args.design:
+        _design()
+        return 0
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     _start_runner()  # while this process is still small
     folder = args.keep or Path(tempfile.mkdtemp(prefix="stationfit-bench-"))
@@ -134,6 +144,7 @@ def main() -> int:
     _print_stages(stages)
     print()
     _typical()
+    _design()
     return 0
 
 
@@ -445,6 +456,31 @@ def _typical() -> None:
             }
         )
     )
+
+
+def _design() -> None:
+    """Warm time of one design-page re-evaluation with about 1,000 planned observations."""
+    from server.design.plan import plan_parsed
+    from server.fieldbook.parser import parse_fieldbook
+    from server.report.design_tables import design_figures
+
+    text = networks.horizontal(200, sparse=True, fixed_every=50, planned=True)
+    book = parse_fieldbook(text)
+    lines = [o.line for o in book.observations]
+    for k in range(3):
+        design_figures(plan_parsed(book, switched_off={lines[k]}))
+    times = []
+    for k in range(20):
+        start = time.perf_counter()
+        result = plan_parsed(book, switched_off={lines[(7 * k) % len(lines)]})
+        json.dumps(design_figures(result))
+        times.append(time.perf_counter() - start)
+    times.sort()
+    print(f"design page: {len(lines)} planned observations, {result.summary.unknowns} unknowns: "
+          f"one re-evaluation {times[10] * 1000:.0f} ms (median of 20, slowest "
+          f"{times[-1] * 1000:.0f} ms)")
+    print(json.dumps({"design_reevaluate_ms": round(times[10] * 1000, 1),
+                      "design_observations": len(lines)}))
 
 
 if __name__ == "__main__":

@@ -79,11 +79,14 @@ def main(argv: list[str] | None = None) -> int:
                        help="days a deleted project can be restored before it is erased "
                             "(default: $STATIONFIT_KEEP_DELETED_DAYS, else 30; 0: erase at once)")
     _import_command(commands)
+    _plan_command(commands)
     args = parser.parse_args(argv)
     if args.command == "serve":
         return _serve(args)
     if args.command == "import":
         return _import(args)
+    if args.command == "plan":
+        return _plan(args)
     return _adjust(args)
 
 
@@ -144,6 +147,68 @@ def _import(args: argparse.Namespace) -> int:
     for line, message in imported.warnings:
         print(f"{path}:{line}: warning: {message}", file=sys.stderr)
     sys.stdout.write(imported.text)
+    return EXIT_OK
+
+
+PLAN_STATUSES = """exit statuses:
+  0   designed
+  2   the field book has errors: each on stderr as FILE:LINE: message
+  3   the design cannot be computed: a point without approximate coordinates, or points
+      the planned observations do not determine (named)
+  64  the command line cannot be followed (unknown option, unreadable file)"""
+
+PLAN_HELP = """Design a network before the field: FILE lists the planned observations with their
+standard deviations and ? for the value, and every point's approximate coordinates.
+
+Printed: point standard deviations and confidence ellipses (a priori, sigma0 = 1), relative
+ellipses against tolerance relative=, redundancy numbers (weakly controlled below 0.3), MDB
+and its largest effect on the points (external reliability), inseparable w-tests.
+A value booked instead of ? is read but not used. See docs/design.md."""
+
+
+def _plan_command(commands: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    command = commands.add_parser(
+        "plan", help="design of a planned network: precision and reliability, no values",
+        epilog=PLAN_STATUSES,
+        formatter_class=argparse.RawDescriptionHelpFormatter, description=PLAN_HELP)
+    command.add_argument("file", type=Path)
+    command.add_argument("--json", action="store_true", help="print the JSON result alone")
+    command.add_argument("--report", type=Path, metavar="FILE.html", help="write the HTML report")
+    command.add_argument("--pdf", type=Path, metavar="FILE.pdf", help="write the PDF report")
+
+
+def _plan(args: argparse.Namespace) -> int:
+    from server.design.plan import plan_fieldbook
+
+    path: Path = args.file
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        print(f"{path}: cannot read the file: {exc.strerror or exc}", file=sys.stderr)
+        return EXIT_USAGE
+    try:
+        result = plan_fieldbook(data, source=str(path))
+    except FieldbookError as exc:
+        print(str(exc), file=sys.stderr)
+        return EXIT_FIELDBOOK
+    except NetworkError as exc:
+        print(f"{path}: the network cannot be designed: {exc}", file=sys.stderr)
+        return EXIT_NETWORK
+    if args.pdf is not None:
+        from server.report.design_pdf import design_pdf
+
+        args.pdf.write_bytes(design_pdf(result))
+    if args.report is not None:
+        from server.report.design_html import design_html
+
+        args.report.write_text(design_html(result), encoding="utf-8")
+    if args.json:
+        sys.stdout.write(dumps_indented(result.to_json_dict()))
+        sys.stdout.write("\n")
+    else:
+        from server.report.design_text import design_text
+
+        sys.stdout.write(design_text(result))
     return EXIT_OK
 
 

@@ -247,12 +247,18 @@ ARRIVING = {
 def test_every_key_the_schema_names_is_one_the_program_writes(cli_results):
     """A misspelt optional key in the schema would never match anything; catch it here.
 
-    The geodetic keys come from a hand-made geodetic result until the adjustment writes them.
+    The geodetic keys come from a hand-made geodetic result until the adjustment writes them;
+    the design keys (summary.design, external_reliability) from ``plan`` of the design demo.
     """
+    from server.design.plan import plan_fieldbook
+
     written: dict[str, set[str]] = {name: set() for name in ARRIVING}
     written["point"], written["top"] = set(), set()
     geodetic = json.loads(json.dumps(geodetic_result().to_json_dict()))
-    for result in [*cli_results.values(), geodetic]:
+    book = ROOT / "demo_projects" / "design" / "footbridge_design.fieldbook"
+    design = json.loads(json.dumps(plan_fieldbook(book.read_bytes()).to_json_dict()))
+    assert not _errors(design)
+    for result in [*cli_results.values(), geodetic, design]:
         written["top"] |= set(result)
         written["summary"] |= set(result["summary"])
         for name, key in (

@@ -64,6 +64,7 @@ STATUS_MESSAGES: dict[int, str] = {
     1: "converged: the largest correction fell below the tolerance",
     2: "nothing to estimate: every point is held fixed, observations checked only",
     0: "did not converge within the iteration limit",
+    3: "design: one linearisation at the approximate coordinates, no observed values",
 }
 #: Networks with at most this many unknowns use the dense back end (measured crossover,
 #: see DEVELOPERS.md "Benchmark"); larger ones a sparse one.

@@ -85,6 +85,7 @@ class Furniture:
     caution: str
     sha256: str
     generated: str
+    kind: str = "adjustment report"
 
 
 def _header_footer(furniture: Furniture, styles: Styles) -> Callable[[Canvas, Any], None]:
@@ -98,7 +99,7 @@ def _header_footer(furniture: Furniture, styles: Styles) -> Callable[[Canvas, An
         top = height - 26
         canvas.setFillColor(MUTED)
         canvas.setFont(fonts.regular, 7)
-        left_text = plain(f"Stationfit {__version__} · adjustment report · {furniture.generated}",
+        left_text = plain(f"Stationfit {__version__} · {furniture.kind} · {furniture.generated}",
                           fonts)
         canvas.drawString(MARGIN_X, top, left_text)
         room = right - MARGIN_X - pdfmetrics.stringWidth(left_text, fonts.regular, 7) - 18

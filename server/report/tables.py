@@ -100,7 +100,8 @@ def reduction_text(o: ObservationResult) -> str:
     "± n·360°" for an angle booked outside one turn, else "—" (used as booked)."""
     if o.scale_factor is not None and o.scale_factor != 1.0:
         return f"× {fmt_scale(o.scale_factor)}"
-    if o.angular and o.kind != "zenith" and o.booked is not None:
+    if o.angular and o.kind != "zenith" and o.booked is not None \
+            and o.observed is not None:
         turns = round((o.observed - o.booked) / 360.0)
         if turns:
             return f"{'+' if turns > 0 else '−'} {abs(turns) * 360}°"

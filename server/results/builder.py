@@ -67,8 +67,14 @@ def build_result(
     solution: Solution,
     misclosures: tuple[Misclosure, ...],
     warnings: list[str],
+    *,
+    design: bool = False,
 ) -> AdjustmentResult:
-    """Run the statistics once and freeze everything in output units."""
+    """Run the statistics once and freeze everything in output units.
+
+    ``design``: a planned network's one linearisation (no values): no σ̂₀² and no global
+    test, so the precisions are the a priori ones (``tests precision=prior``).
+    """
     fb = network.fieldbook
     tests = fb.tests
     per_m = 1.0 / LENGTH_FACTORS[fb.length_unit]
@@ -80,7 +86,9 @@ def build_result(
     vtpv = st.weighted_square_sum(solution.residuals, solution.sigmas)
     variance = st.variance_factor(vtpv, redundancy)
     global_test = None
-    if redundancy > 0:
+    if design:
+        variance = None
+    elif redundancy > 0:
         lower, upper = st.chi_square_bounds(redundancy, tests.alpha)
         global_test = GlobalTest(
             statistic=vtpv, lower=lower, upper=upper, alpha=tests.alpha,

@@ -75,6 +75,8 @@ class Summary:
     crs: str | None = None
     #: refraction coefficient k in force in the geodetic model, else None
     refraction: float | None = None
+    #: a design (``plan``): figures from the a priori σ at the approximate coordinates, no values
+    design: bool = False
 
     def __post_init__(self) -> None:
         if self.precision_factor is None:
@@ -131,7 +133,7 @@ class ObservationResult:
     from_point: str
     at: str | None
     to: str
-    observed: float
+    observed: float | None  # None: a planned observation of a design
     adjusted: float | None
     residual: float | None
     sd: float
@@ -154,6 +156,9 @@ class ObservationResult:
     inseparable: tuple[int, ...] = ()
     #: "dx", "dy" or "dz" for the three entries of a baseline; None for other kinds
     component: str | None = None
+    #: a design's external reliability: the largest point shift (length units) an
+    #: undetected error of the size of the MDB in this observation alone causes
+    external_reliability: float | None = None
 
     @property
     def angular(self) -> bool:
@@ -284,6 +289,8 @@ class AdjustmentResult:
         out = self._plane_json_dict()
         if self.summary.geodetic_keys:
             _add_geodetic_keys(self, out)
+        if self.summary.design:
+            _add_design_keys(self, out)
         return out
 
     def _plane_json_dict(self) -> dict[str, object]:
@@ -423,6 +430,16 @@ def _add_geodetic_keys(result: AdjustmentResult, out: dict[str, Any]) -> None:
     replaced = _inserted(out, "observations", [("baseline_tests", tests)])
     out.clear()
     out.update(replaced)
+
+
+def _add_design_keys(result: AdjustmentResult, out: dict[str, Any]) -> None:
+    """summary.design and each observation's ``external_reliability`` after ``mdb``: only a
+    design's result carries them, so every adjustment keeps its text byte for byte."""
+    out["summary"]["design"] = True
+    out["observations"] = [
+        _inserted(entry, "mdb", [("external_reliability", o.external_reliability)])
+        for entry, o in zip(out["observations"], result.observations, strict=True)
+    ]
 
 
 def _inserted(entry: dict[str, Any], after: str,

@@ -34,6 +34,7 @@ from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import UNLIMITED, adjust_fieldbook, adjust_parsed, check_observation_limit
 from server.report import review
 from server.report.tables import verdict_state
+from server.store.designs import is_design
 from server.results.result import AdjustmentResult
 from server.review.standards import PRESETS, Preset, with_presets
 from server.settings import WorkLimits
@@ -100,6 +101,8 @@ def store_upload(
         return project_id, None, None, exc
     check_observation_limit(book, limits)
     project_id = store.create_project(upload.name or book.title, upload.filename, upload.data)
+    if is_design(book):  # planned observations: designed on its own page, no run
+        return project_id, book, None, None
     return project_id, book, store.start_run(project_id, NO_EDITS), None
 
 

@@ -40,6 +40,7 @@ from server.web.dependencies import (
     read_upload,
     render,
 )
+from server.web.design import design_redirect
 
 router = APIRouter()
 
@@ -134,9 +135,13 @@ def project_list(request: Request, store: StoreDep) -> HTMLResponse:
 
 @router.get("/projects/{project_id}", response_class=HTMLResponse)
 def project_page(request: Request, project: ProjectDep, store: StoreDep, jobs: JobsDep,
-                 choice: ChoiceDep) -> HTMLResponse:
+                 choice: ChoiceDep) -> Response:
     """The results of a project's latest adjustment, or what stopped it."""
     runs = store.runs(project.id)
+    if not runs:
+        redirect = design_redirect(project)
+        if redirect is not None:  # a book of planned observations: designed, not adjusted
+            return redirect
     newest = runs[-1] if runs else None
     interrupted = None
     if newest is not None and newest.status in ("running", "interrupted"):

@@ -1,0 +1,1 @@
+"""Network design before the field: precision and reliability of planned observations."""
