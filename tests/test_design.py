@@ -23,6 +23,7 @@ import math
 from pathlib import Path
 
 import pytest
+from scipy.stats import chi2
 
 from server.cli import main
 from server.design.plan import WEAK_REDUNDANCY, plan_fieldbook, weak_lines
@@ -141,6 +142,9 @@ def test_the_design_equals_adjust_on_error_free_values(design, error_free):
 def test_the_design_result_has_no_values(design):
     s = design.summary
     assert s.design and s.variance_factor is None and s.global_test is None
+    # σ0 = 1 is known, so the ellipses take √χ²(0.95; 2) (reference: scipy.stats.chi2)
+    assert s.ellipse_factor == pytest.approx(math.sqrt(chi2.ppf(0.95, 2)), rel=1e-12)
+    assert s.precision_factor == 1.0
     document = design.to_json_dict()
     assert document["summary"]["design"] is True
     for o in document["observations"]:
