@@ -51,12 +51,19 @@
       });
       tr.classList.toggle("is-flagged", /^(weak|uncontrolled)/.test(o.note));
     });
+    // pairs come and go with the observations that join them: the body is rebuilt
     var relative = document.querySelector("#design-relative tbody");
     if (relative) {
-      figures.relative.forEach(function (cells, i) {
-        var tr = relative.rows[i];
-        if (!tr) { return; }
-        cells.forEach(function (text, k) { setText(tr.cells[k], text); });
+      while (relative.firstChild) { relative.removeChild(relative.firstChild); }
+      figures.relative.forEach(function (cells) {
+        var tr = document.createElement("tr");
+        cells.forEach(function (text, k) {
+          var td = document.createElement("td");
+          if (k >= 2 && k <= 4) { td.className = "num"; }
+          td.textContent = text;
+          tr.appendChild(td);
+        });
+        relative.appendChild(tr);
       });
     }
     var list = document.getElementById("design-warnings");

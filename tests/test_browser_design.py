@@ -8,7 +8,7 @@ from pathlib import Path
 import pytest
 
 from server.design.plan import plan_fieldbook
-from server.report.design_tables import planned_rows, point_rows
+from server.report.design_tables import planned_rows, point_rows, relative_rows
 from server.results.result import CAUTION
 from tests.browser_support import browser_problems
 
@@ -47,6 +47,10 @@ def test_a_plan_book_opens_on_its_design_and_a_switch_re_evaluates(page, base_ur
     assert other.locator("[data-figure=redundancy]").inner_text() == row_45.redundancy
     assert other.locator("[data-figure=external]").inner_text() == row_45.external
     assert "off=43" in (page.locator("#design-pdf").get_attribute("href") or "")
+    relative = page.locator("#design-relative tbody tr")
+    assert relative.count() == len(expected.relative)
+    assert relative.first.locator("td").nth(2).inner_text() == \
+        relative_rows(expected)[0].semi_major
 
     page.locator(f"tr[data-line='{DISTANCE_LINE}'] input[type=checkbox]").check()
     expect(cells.nth(0)).to_have_text(before)

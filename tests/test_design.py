@@ -2,7 +2,8 @@
 
 Checks, each against a reference that is not the design code itself:
 
-- the figures equal those ``adjust`` gives for an error-free data set of the same design
+- the figures equal those ``adjust`` gives for an error-free data set of the same design,
+  plane and geodetic
   (values computed here with math.hypot/atan2 from the approximate coordinates, so every
   residual is 0) with ``tests precision=prior``: the adjustment's iterations, misclosures and
   statistics are a different route to the same numbers;
@@ -23,6 +24,7 @@ import math
 from pathlib import Path
 
 import pytest
+from scipy.stats import chi2
 
 from server.cli import main
 from server.design.plan import WEAK_REDUNDANCY, plan_fieldbook, weak_lines
@@ -141,6 +143,9 @@ def test_the_design_equals_adjust_on_error_free_values(design, error_free):
 def test_the_design_result_has_no_values(design):
     s = design.summary
     assert s.design and s.variance_factor is None and s.global_test is None
+    # σ0 = 1 is known, so the ellipses take √χ²(0.95; 2) (reference: scipy.stats.chi2)
+    assert s.ellipse_factor == pytest.approx(math.sqrt(chi2.ppf(0.95, 2)), rel=1e-12)
+    assert s.precision_factor == 1.0
     document = design.to_json_dict()
     assert document["summary"]["design"] is True
     for o in document["observations"]:
@@ -324,3 +329,49 @@ def test_a_geodetic_design_sums_its_redundancy_and_tests_baselines_by_component(
     assert all(o.mdb is not None and o.external_reliability is None for o in baselines)
     assert all(o.external_reliability is not None for o in rows if o.kind != "baseline")
     assert weak_lines(result) == [12, 14, 16]
+
+
+# A geodetic design with values simulated independently: pyproj places the marks (the local
+# grid as a transverse Mercator on GRS80 with its origin at the crs line's point, and
+# Earth-centred X, Y, Z); baselines are ΔX, ΔY, ΔZ and slope distances the chords.
+GEO_MARKS = {"G1": (5000.0, 5000.0, 100.0), "G2": (5600.0, 5100.0, 120.0),
+             "N1": (5300.0, 5400.0, 110.0), "N2": (5350.0, 4700.0, 95.0)}
+GEO_BASELINES = [("G1", "N1"), ("G2", "N2"), ("G1", "N2")]
+GEO_SLOPES = [("N1", "N2"), ("G2", "N1"), ("G1", "N2")]
+
+
+def geodetic_book(*, values: bool) -> str:
+    pyproj = pytest.importorskip("pyproj")
+    grid = pyproj.CRS.from_proj4("+proj=tmerc +lat_0=47.05 +lon_0=-122.8916666666667 +k=1 "
+                                 "+x_0=5000 +y_0=5000 +ellps=GRS80 +units=m")
+    to_xyz = pyproj.Transformer.from_crs(grid, pyproj.CRS.from_proj4(
+        "+proj=geocent +ellps=GRS80 +units=m"), always_xy=True)
+    xyz = {name: to_xyz.transform(*mark) for name, mark in GEO_MARKS.items()}
+    out = ["fieldbook 1", "units length=m angle=dms",
+           "crs local lat=47:03:00 lon=-122:53:30 east=5000m north=5000m",
+           "tests precision=prior", "defaults slope=1mm+1.5ppm"]
+    for name, (e, n, h) in GEO_MARKS.items():
+        held = " fix" if name.startswith("G") else ""
+        out.append(f"point {name} east={e:.3f} north={n:.3f} height={h:.3f}{held}")
+    for a, b in GEO_BASELINES:
+        delta = " ".join(f"{xyz[b][k] - xyz[a][k]:.5f}" for k in range(3))
+        out.append(f"baseline {a} {b} {delta if values else '? ? ?'} sd=3mm,3mm,5mm")
+    for a, b in GEO_SLOPES:
+        out.append(f"slope {a} {b} {math.dist(xyz[a], xyz[b]):.5f}" if values
+                   else f"slope {a} {b} ?")
+    return "\n".join(out) + "\n"
+
+
+def test_a_geodetic_design_equals_adjust_on_error_free_values():
+    """Reference: the geodetic adjustment of values simulated with pyproj (not the model's
+    own equations) from the same approximate positions; values rounded to 0.01 mm."""
+    adjusted = adjust_fieldbook(geodetic_book(values=True))
+    design = plan_fieldbook(geodetic_book(values=False))
+    assert max(abs(o.residual) for o in adjusted.observations) < 2e-5
+    for a, d in zip(adjusted.points, design.points, strict=True):
+        for attr in ("sd_east", "sd_north", "sd_height"):
+            assert getattr(d, attr) == pytest.approx(getattr(a, attr), rel=1e-6, abs=1e-12)
+    for a, d in zip(adjusted.observations, design.observations, strict=True):
+        assert (d.line, d.component) == (a.line, a.component)
+        assert d.redundancy == pytest.approx(a.redundancy, rel=1e-6)
+        assert d.mdb == pytest.approx(a.mdb, rel=1e-6)

@@ -79,6 +79,7 @@ def test_the_form_without_script_switches_off_the_unchecked_lines(client, design
 def test_the_design_reports_carry_the_caution(client, design_url):
     html = client.get(design_url + ".html?off=45")
     assert html.status_code == 200 and CAUTION in html.text
+    assert "style-src 'sha256-" in html.headers["content-security-policy"]
     assert "network design" in html.text
     pdf = client.get(design_url + ".pdf")
     assert pdf.status_code == 200 and pdf.content.startswith(b"%PDF")

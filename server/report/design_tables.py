@@ -81,7 +81,7 @@ def summary_rows(result: AdjustmentResult) -> list[tuple[str, str]]:
 
 def design_context(result: AdjustmentResult) -> dict[str, Any]:
     """Everything a design report shows, formatted."""
-    points: list[PointRow] = [row for row in point_rows(result)]
+    points: list[PointRow] = point_rows(result)
     relative: list[RelativeRow] = relative_rows(result)
     return {
         "result": result,

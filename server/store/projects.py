@@ -34,10 +34,10 @@ from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import UNLIMITED, adjust_fieldbook, adjust_parsed, check_observation_limit
 from server.report import review
 from server.report.tables import verdict_state
-from server.store.designs import is_design
 from server.results.result import AdjustmentResult
 from server.review.standards import PRESETS, Preset, with_presets
 from server.settings import WorkLimits
+from server.store.designs import is_design
 from server.store.sqlite import NO_EDITS, PendingEdit, Project, Run, Store
 
 logger = logging.getLogger("stationfit.web")

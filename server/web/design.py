@@ -14,6 +14,7 @@ from server.errors import SurveyError
 from server.report.design_html import design_html
 from server.report.design_pdf import design_pdf
 from server.report.design_tables import design_context, design_figures, planned_note
+from server.report.html import report_css, style_hash
 from server.results.result import AdjustmentResult
 from server.store.designs import ParsedBooks, design_of, parse_lines
 from server.store.projects import display_name
@@ -78,14 +79,21 @@ async def design_json(request: Request, project: ProjectDep, limits: LimitsDep) 
 
 @router.get("/projects/{project_id}/design.html")
 async def design_report(request: Request, project: ProjectDep, limits: LimitsDep) -> Response:
+    """The design report as a download (switched-off lines as on the page)."""
     off = parse_lines(request.query_params.get("off", ""))
     result = await run_in_threadpool(_design, project, off, limits)
-    return attachment(design_html(result), "text/html; charset=utf-8",
-                      download_name(project, "-design.html"))
+    response = attachment(design_html(result), "text/html; charset=utf-8",
+                          download_name(project, "-design.html"))
+    # as the adjustment report: its one inline style allowed by hash, nothing else
+    response.headers["Content-Security-Policy"] = (
+        f"default-src 'none'; style-src {style_hash(report_css())}; base-uri 'none'; "
+        "form-action 'none'; frame-ancestors 'none'")
+    return response
 
 
 @router.get("/projects/{project_id}/design.pdf")
 async def design_report_pdf(request: Request, project: ProjectDep, limits: LimitsDep) -> Response:
+    """The design report as PDF."""
     off = parse_lines(request.query_params.get("off", ""))
     result = await run_in_threadpool(_design, project, off, limits)
     return attachment(design_pdf(result), "application/pdf", download_name(project, "-design.pdf"))
