@@ -66,6 +66,9 @@ for path in ("/", "/static/app.css", "/static/plot.js"):
 assert "Stationfit" in client.get("/").text
 demo = client.post("/demos/leveling_clean", follow_redirects=False)
 assert demo.status_code in (303, 302), demo.status_code
+imported = client.post("/demos/xml_mixed_job", follow_redirects=False)  # survey XML, carried too
+assert imported.headers["location"].endswith("/import"), imported.headers
+assert "xml_mixed_job" in client.get(imported.headers["location"]).text
 print("served")
 """
     env = dict(os.environ, PYTHONPATH=str(installed))
