@@ -19,7 +19,8 @@ PYPROJECT = tomllib.loads((ROOT / "pyproject.toml").read_text())
 
 def test_every_subpackage_is_listed_for_the_wheel():
     listed = set(PYPROJECT["tool"]["setuptools"]["packages"])
-    found = {".".join(p.parent.relative_to(ROOT).parts) for p in (ROOT / "server").rglob("__init__.py")}
+    found = {".".join(p.parent.relative_to(ROOT).parts)
+             for p in (ROOT / "server").rglob("__init__.py")}
     assert found - listed == set(), "add these to [tool.setuptools] packages in pyproject.toml"
 
 
