@@ -105,6 +105,8 @@ def test_adjusting_names_both_files_with_their_sha256(client):
         assert xml_hash in text and book_hash in text
         assert "xml_mixed_job.xml" in text
     assert client.get(f"/projects/{project_id}/source").content == MIXED.read_bytes()
+    assert client.get(f"/api/projects/{project_id}").json()["source"] == {
+        "filename": "xml_mixed_job.xml", "sha256": xml_hash}
     assert "Passes" in response.text  # the demo's global test (tests/test_import_roundtrip.py)
 
 
