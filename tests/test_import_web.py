@@ -223,3 +223,15 @@ def test_a_schema_4_store_is_upgraded_and_its_projects_have_no_source(tmp_path):
         assert raw.execute("PRAGMA user_version").fetchone() == (SCHEMA_VERSION,) == (5,)
     old = store.get_project("c" * 32)
     assert old is not None and old.fieldbook == b"x" and old.source is None
+
+
+def test_names_from_the_xml_are_shown_as_text(client):
+    xml = (b'<LandXML>\n<Units><Metric linearUnit="meter"/></Units>\n'
+           b'<Project name="&lt;script&gt;alert(1)&lt;/script&gt;"/>\n<CgPoints>\n'
+           b'<CgPoint name="&lt;img src=x onerror=alert(2)&gt;">1 2 3</CgPoint>\n'
+           b"</CgPoints>\n</LandXML>\n")
+    response = client.post("/projects", files={"fieldbook": ("x<b>.xml", xml, "text/xml")},
+                           follow_redirects=True)
+    assert response.url.path.endswith("/import")
+    assert "<script>alert(1)" not in response.text and "<img src=x" not in response.text
+    assert "&lt;script&gt;alert(1)" in response.text
