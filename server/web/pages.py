@@ -30,6 +30,7 @@ from server.store import projects as service
 from server.store.projects import StandardsChoice, Upload, display_name
 from server.store.sqlite import Project, Store
 from server.web import dependencies as deps
+from server.web import imports
 from server.web.dependencies import (
     CheckedForm,
     ChoiceDep,
@@ -68,7 +69,7 @@ async def _import_in_background(request: Request, upload: Upload) -> Response:
     store = deps.get_store(request)
     try:
         project_id = await run_in_threadpool(
-            service.store_import, store, upload, request.app.state.max_projects)
+            imports.store_import, store, upload, request.app.state.max_projects)
     except FieldbookError as exc:
         return import_refused(request, upload.filename, exc)
     return RedirectResponse(f"/projects/{project_id}/import", status_code=303)
@@ -162,7 +163,7 @@ async def create_project(request: Request) -> Response:
         return render(request, "index.html", _upload_page_context(
             request, "Choose a field book file or paste its text, then press Adjust."),
             status=400)
-    if service.is_import(upload):
+    if imports.is_import(upload):
         return await _import_in_background(request, upload)
     project_id = await _submit_in_background(request, upload)
     return RedirectResponse(f"/projects/{project_id}", status_code=303)
@@ -173,7 +174,7 @@ def import_page(request: Request, project: ProjectDep, store: StoreDep) -> Respo
     """The produced field book beside the import's summary, before anything is adjusted."""
     if project.source is None or store.runs(project.id):
         return RedirectResponse(f"/projects/{project.id}", status_code=303)
-    summary = service.import_preview(project)
+    summary = imports.import_preview(project)
     return render(request, "import_preview.html", {
         "project": project, "summary": summary, "source": project.source,
         "name": display_name(project.name, project.filename),
@@ -187,7 +188,7 @@ async def adjust_imported(request: Request, project: ProjectDep, form: CheckedFo
     store, limits, jobs = deps.get_store(request), deps.get_limits(request), deps.get_jobs(request)
     if not store.runs(project.id):
         deps.room_in_queue(jobs.queue)
-        book, run_id = await run_in_threadpool(service.start_imported_run, store, project,
+        book, run_id = await run_in_threadpool(imports.start_imported_run, store, project,
                                                limits)
         if book is not None and run_id is not None:
             job = jobs.start(
