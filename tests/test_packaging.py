@@ -19,7 +19,8 @@ PYPROJECT = tomllib.loads((ROOT / "pyproject.toml").read_text())
 
 def test_every_subpackage_is_listed_for_the_wheel():
     listed = set(PYPROJECT["tool"]["setuptools"]["packages"])
-    found = {".".join(p.parent.relative_to(ROOT).parts) for p in (ROOT / "server").rglob("__init__.py")}
+    found = {".".join(p.parent.relative_to(ROOT).parts)
+             for p in (ROOT / "server").rglob("__init__.py")}
     assert found - listed == set(), "add these to [tool.setuptools] packages in pyproject.toml"
 
 
@@ -66,6 +67,9 @@ for path in ("/", "/static/app.css", "/static/plot.js"):
 assert "Stationfit" in client.get("/").text
 demo = client.post("/demos/leveling_clean", follow_redirects=False)
 assert demo.status_code in (303, 302), demo.status_code
+imported = client.post("/demos/xml_mixed_job", follow_redirects=False)  # survey XML, carried too
+assert imported.headers["location"].endswith("/import"), imported.headers
+assert "xml_mixed_job" in client.get(imported.headers["location"]).text
 print("served")
 """
     env = dict(os.environ, PYTHONPATH=str(installed))

@@ -404,7 +404,9 @@ def _accuracy_parts(accuracy: Accuracy) -> tuple[list[str], list[str]]:
 
 
 def _sec_value(radians: float) -> str:
-    return f"{math.degrees(radians) * 3600.0:.3g}"
+    # six significant digits: a stated precision in gon or decimal degrees (0.3 mgon =
+    # 0.972″, 1.061″) keeps its weight; three would round it by up to half a percent
+    return f"{math.degrees(radians) * 3600.0:.6g}"
 
 
 def _sec(radians: float) -> str:

@@ -12,6 +12,7 @@ import jinja2
 from markupsafe import Markup
 
 from server import resources
+from server.report.origin import ImportedFrom
 from server.report.plot import network_plot_data
 from server.report.tables import context
 from server.results.result import AdjustmentResult
@@ -85,8 +86,11 @@ def generated_text(generated: datetime | None) -> str:
 
 
 def report_html(result: AdjustmentResult, *, generated: datetime | None = None,
-                presets: Sequence[Preset] = ()) -> str:
-    """A self-contained printable HTML report (inline CSS and SVG, no scripts, nothing external)."""
+                presets: Sequence[Preset] = (), imported_from: ImportedFrom | None = None) -> str:
+    """A self-contained printable HTML report (inline CSS and SVG, no scripts, nothing external).
+
+    ``imported_from`` names the survey XML or CSV the field book was imported from.
+    """
 
     data = context(result, presets)
     data["network_plot"] = network_plot_data(result)
@@ -96,4 +100,6 @@ def report_html(result: AdjustmentResult, *, generated: datetime | None = None,
     data["generated"] = generated_text(generated)
     data["source_name"] = source_name(result.source)
     data["report_warnings"] = report_warnings(result)
+    data["imported_from"] = imported_from
+    data["imported_name"] = source_name(imported_from.filename) if imported_from else ""
     return _env().get_template("report.html").render(data)

@@ -43,6 +43,7 @@ from reportlab.platypus import (
 from server import __version__
 from server.report import html as html_report
 from server.report import tables as report
+from server.report.origin import ImportedFrom
 from server.report.pdf_drawings import histogram_drawing, network_drawing, network_legend
 from server.report.pdf_geodetic import baseline_tests_block, geodetic_points_block, model_block
 from server.report.pdf_kit import (
@@ -167,12 +168,17 @@ def _heading(text: str, styles: Styles) -> list[Flowable]:
 
 
 def _title_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles,
-                 width: float, generated: str) -> list[Flowable]:
+                 width: float, generated: str,
+                 imported_from: ImportedFrom | None = None) -> list[Flowable]:
     title = result.title or html_report.source_name(result.source) or "Untitled field book"
     facts = [
         ("Generated", generated),
         ("Software", f"Stationfit {__version__}"),
         ("Field book", html_report.source_name(result.source) or "—"),
+    ]
+    if imported_from is not None:
+        facts.append(("Imported from", html_report.source_name(imported_from.filename)))
+    facts += [
         ("Network", report.DIMENSION_LABELS.get(result.summary.dimension, "")),
     ]
     facts += [(label, value) for label, value, _ in data["units_rows"]]
@@ -192,8 +198,19 @@ def _title_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles,
         styles.markup(f'<font color="{hex_colour(MUTED)}">SHA-256 of the field book</font>  '
                       f'<font name="{styles.fonts.mono}">{styles.text(result.text_sha256)}</font>',
                       styles.small),
+        *_imported_hash(imported_from, styles),
         Spacer(1, 8),
     ]
+
+
+def _imported_hash(imported_from: ImportedFrom | None, styles: Styles) -> list[Flowable]:
+    """The imported file's SHA-256 under the field book's, so both files can be verified."""
+    if imported_from is None:
+        return []
+    label = f"SHA-256 of the {imported_from.kind} file"
+    return [styles.markup(f'<font color="{hex_colour(MUTED)}">{styles.text(label)}</font>  '
+                          f'<font name="{styles.fonts.mono}">'
+                          f'{styles.text(imported_from.sha256)}</font>', styles.small)]
 
 
 def _verdict_block(data: dict[str, Any], styles: Styles, width: float) -> list[Flowable]:
@@ -527,7 +544,7 @@ def _review_block(styles: Styles, width: float) -> list[Flowable]:
 
 def report_pdf(result: AdjustmentResult, *, generated: datetime | None = None,
                presets: Sequence[Preset] = (), page_size: str = "letter",
-               font_dir: Path | None = None) -> bytes:
+               font_dir: Path | None = None, imported_from: ImportedFrom | None = None) -> bytes:
     """The adjustment report as PDF bytes.
 
     Parameters
@@ -542,6 +559,8 @@ def report_pdf(result: AdjustmentResult, *, generated: datetime | None = None,
         "letter" (default) or "a4".
     font_dir
         Where to look for the DejaVu fonts (default ``FONT_DIR``); Helvetica without them.
+    imported_from
+        The survey XML or CSV the field book was imported from, named with its SHA-256.
     """
     if page_size not in PAGE_SIZES:
         raise ValueError(f"page_size must be one of {', '.join(PAGE_SIZES)}, not {page_size!r}")
@@ -566,7 +585,7 @@ def report_pdf(result: AdjustmentResult, *, generated: datetime | None = None,
     doc.addPageTemplates([PageTemplate(id="page", frames=[frame],
                                        onPage=_header_footer(furniture, styles))])
     story: list[Flowable] = []
-    story += _title_block(result, data, styles, width, when)
+    story += _title_block(result, data, styles, width, when, imported_from)
     story += _verdict_block(data, styles, width)
     story += _standards_block(data, styles, width)
     story += _statistics_block(result, data, styles, width)

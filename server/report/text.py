@@ -12,6 +12,7 @@ from server.report.geodetic_tables import (
     geodetic_point_rows,
     model_rows,
 )
+from server.report.origin import ImportedFrom
 from server.report.tables import (
     ARCSEC,
     columns,
@@ -49,14 +50,17 @@ def _table(header: Iterable[str], body: list[list[str]], right: set[int]) -> lis
     return [line(head), line(["-" * w for w in widths])] + [line(r) for r in body]
 
 
-def report_text(result: AdjustmentResult) -> str:
-    """A compact plain-text summary for the terminal."""
+def report_text(result: AdjustmentResult, imported_from: ImportedFrom | None = None) -> str:
+    """A compact plain-text summary for the terminal (naming the imported file, if any)."""
     v = verdict(result)
     s = result.summary
     unit = length_label(result.length_unit)
     title = result.title or result.source or "field book"
     out = [f"Stationfit {__version__} — {title}"]
     out.append(f"SHA-256 of the field book: {result.text_sha256}")
+    if imported_from is not None:
+        out.append(f"Imported from {imported_from.kind} {imported_from.filename}, "
+                   f"SHA-256 {imported_from.sha256}")
     out.append("")
     head, _, rest = v.headline.partition(": ")
     out.append(f"{head.upper()}: {rest}")

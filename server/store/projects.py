@@ -349,6 +349,9 @@ def project_detail_json(store: Store, project: Project) -> dict[str, Any]:
     body = project_json(project.id, project.name, project.filename, project.created,
                         project.sha256, run)
     body.update(run_payload(run))
+    # the imported file (survey XML, CSV) beside the field book; null for an uploaded book
+    body["source"] = None if project.source is None else {
+        "filename": project.source.filename, "sha256": project.source.sha256}
     body["runs"] = [{"id": r.id, "number": r.number, "created": r.created, "status": r.status,
                      "edits": r.edits, "summary": r.summary} for r in store.runs(project.id)]
     return body

@@ -54,7 +54,7 @@ from server.results.types import (
     Summary,
 )
 
-SCHEMA_VERSION = 4
+SCHEMA_VERSION = 5
 _ID_RE = re.compile(r"^[0-9a-f]{32}$")
 #: Settings of a run made without any decision (an upload as it is).
 NO_EDITS: dict[str, Any] = {"edits": []}
@@ -95,6 +95,13 @@ _SCHEMA = (
     edit       TEXT NOT NULL
 )""",
     "CREATE INDEX pending_by_project ON pending_edits(project_id, id)",
+    # the file a field book was imported from (survey XML, CSV), kept byte for byte
+    """CREATE TABLE source_files (
+    project_id TEXT PRIMARY KEY REFERENCES projects(id) ON DELETE CASCADE,
+    filename   TEXT NOT NULL,
+    content    BLOB NOT NULL,
+    sha256     TEXT NOT NULL
+)""",
 )
 
 #: Statements bringing a schema-1 database (no settings, no tokens, no pending edits) to 2.
@@ -126,6 +133,10 @@ _MIGRATE_2_TO_3 = (
 
 #: Statements bringing schema 3 to 4: a deleted project is kept, marked with the time.
 _MIGRATE_3_TO_4 = ("ALTER TABLE projects ADD COLUMN deleted TEXT",)
+
+#: Statements bringing schema 4 to 5: the imported source file beside its field book.  A table
+#: of its own keeps older projects (which have none) as they are.
+_MIGRATE_4_TO_5 = (_SCHEMA[5],)
 
 #: Runs a stopped service left ``running``: what is stored for them once found.
 INTERRUPTED_ERROR = {
@@ -186,8 +197,17 @@ class Run:
 
 
 @dataclass(frozen=True, slots=True)
+class SourceFile:
+    """The file a field book was imported from, byte for byte, with its SHA-256."""
+
+    filename: str
+    content: bytes
+    sha256: str
+
+
+@dataclass(frozen=True, slots=True)
 class Project:
-    """A stored field book as uploaded."""
+    """A stored field book as uploaded (or as imported, with ``source`` the file it came from)."""
 
     id: str
     name: str
@@ -196,6 +216,7 @@ class Project:
     sha256: str
     fieldbook: bytes
     form_token: str = ""
+    source: SourceFile | None = None
 
     @property
     def text(self) -> str:
@@ -301,11 +322,13 @@ class Store:
         if not has_projects:
             statements = _SCHEMA
         elif version <= 1:
-            statements = _MIGRATE_1_TO_2 + _MIGRATE_2_TO_3 + _MIGRATE_3_TO_4
+            statements = _MIGRATE_1_TO_2 + _MIGRATE_2_TO_3 + _MIGRATE_3_TO_4 + _MIGRATE_4_TO_5
         elif version == 2:
-            statements = _MIGRATE_2_TO_3 + _MIGRATE_3_TO_4
+            statements = _MIGRATE_2_TO_3 + _MIGRATE_3_TO_4 + _MIGRATE_4_TO_5
+        elif version == 3:
+            statements = _MIGRATE_3_TO_4 + _MIGRATE_4_TO_5
         else:
-            statements = _MIGRATE_3_TO_4
+            statements = _MIGRATE_4_TO_5
         for statement in statements:
             db.execute(statement)
         db.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
@@ -343,8 +366,10 @@ class Store:
 
     # -- projects --------------------------------------------------------------------
 
-    def create_project(self, name: str, filename: str, fieldbook: str | bytes) -> str:
-        """Store a field book unchanged; returns the new project's id."""
+    def create_project(self, name: str, filename: str, fieldbook: str | bytes,
+                       source: tuple[str, bytes] | None = None) -> str:
+        """Store a field book unchanged (and the ``(filename, bytes)`` it was imported from,
+        in the same transaction); returns the new project's id."""
         raw = fieldbook.encode("utf-8") if isinstance(fieldbook, str) else bytes(fieldbook)
         project_id = uuid.uuid4().hex
         with self._write() as db:
@@ -354,6 +379,13 @@ class Store:
                 (project_id, name, filename, _now(), raw, hashlib.sha256(raw).hexdigest(),
                  secrets.token_hex(16)),
             )
+            if source is not None:
+                content = bytes(source[1])
+                db.execute(
+                    "INSERT INTO source_files (project_id, filename, content, sha256) "
+                    "VALUES (?, ?, ?, ?)",
+                    (project_id, source[0], content, hashlib.sha256(content).hexdigest()),
+                )
         return project_id
 
     def get_project(self, project_id: str, *, deleted: bool = False) -> Project | None:
@@ -362,18 +394,20 @@ class Store:
             return None
         with self._read() as db:
             row = db.execute(
-                "SELECT id, name, filename, created, sha256, fieldbook, form_token "
-                "FROM projects WHERE id = ? AND deleted IS "
-                + ("NOT NULL" if deleted else "NULL"),
+                "SELECT p.id, p.name, p.filename, p.created, p.sha256, p.fieldbook, p.form_token, "
+                "s.filename, s.content, s.sha256 "
+                "FROM projects p LEFT JOIN source_files s ON s.project_id = p.id "
+                "WHERE p.id = ? AND p.deleted IS " + ("NOT NULL" if deleted else "NULL"),
                 (project_id,),
             ).fetchone()
         if row is None:
             return None
+        source = None if row[8] is None else SourceFile(row[7], bytes(row[8]), row[9])
         return Project(id=row[0], name=row[1], filename=row[2], created=row[3], sha256=row[4],
-                       fieldbook=bytes(row[5]), form_token=row[6])
+                       fieldbook=bytes(row[5]), form_token=row[6], source=source)
 
     def list_projects(self) -> list[ProjectListing]:
-        """All projects, newest first, with their latest run's summary (no field books, no results)."""
+        """All projects, newest first, with their latest run's summary (no books, no results)."""
         with self._read() as db:
             rows = db.execute(  # _COMPLETED below is a constant of this module
                 "SELECT p.id, p.name, p.filename, p.created, p.sha256, "  # noqa: S608
@@ -396,7 +430,7 @@ class Store:
         return listings
 
     def delete_project(self, project_id: str) -> bool:
-        """Mark a project deleted (kept for ``restore_project`` until purged); True if it was live."""
+        """Mark a project deleted (kept for ``restore_project`` until purged); True if live."""
         if not is_valid_id(project_id):
             return False
         with self._write() as db:

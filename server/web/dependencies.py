@@ -204,6 +204,16 @@ def download_name(project: Project, suffix: str) -> str:
     return f"{safe or 'stationfit'}{suffix}"
 
 
+def safe_filename(filename: str, fallback: str) -> str:
+    """A client's file name made safe for Content-Disposition (fallback when nothing is left)."""
+    stem, dot, suffix = filename.rpartition(".")
+    if not dot:
+        stem, suffix = filename, ""
+    safe = _UNSAFE_FILENAME.sub("_", stem).strip("._-")[:60]
+    ending = _UNSAFE_FILENAME.sub("", suffix)[:12]
+    return f"{safe}.{ending}" if safe and ending else (safe or fallback)
+
+
 def attachment(content: str | bytes, media_type: str, filename: str) -> Response:
     return Response(content, media_type=media_type,
                     headers={"Content-Disposition": f'attachment; filename="{filename}"'})

@@ -16,18 +16,23 @@ from fastapi.responses import (
 )
 from starlette.concurrency import run_in_threadpool
 
+from server.errors import FieldbookError
 from server.formats.geojson import NO_CRS, GeoJsonUnavailable, geojson_text
 from server.report import csv_export, plot
 from server.report import html as html_report
 from server.report import tables as report
+from server.report.origin import ImportedFrom
 from server.report.pdf import report_pdf
 from server.report.tables import Page
+from server.report.text import report_text
 from server.results.result import AdjustmentResult
 from server.store import projects as service
 from server.store.projects import StandardsChoice, Upload, display_name
 from server.store.sqlite import Project, Store
 from server.web import dependencies as deps
+from server.web import imports
 from server.web.dependencies import (
+    CheckedForm,
     ChoiceDep,
     JobsDep,
     ProjectDep,
@@ -59,6 +64,37 @@ async def _submit_in_background(request: Request, upload: Upload) -> str:
     return project_id
 
 
+async def _import_in_background(request: Request, upload: Upload) -> Response:
+    """Import survey XML or a CSV and show its preview; an input error gets a page naming
+    the file's line (nothing stored)."""
+    store = deps.get_store(request)
+    try:
+        project_id = await run_in_threadpool(
+            imports.store_import, store, upload, request.app.state.max_projects)
+    except FieldbookError as exc:
+        return import_refused(request, upload.filename, exc)
+    return RedirectResponse(f"/projects/{project_id}/import", status_code=303)
+
+
+def import_refused(request: Request, filename: str, exc: FieldbookError) -> Response:
+    """422: the file could not be imported; each problem with its line of that file."""
+    kind = "XML" if not filename.lower().endswith(".csv") else "CSV"
+    issues = [{"line": i.line, "message": i.message} for i in exc.issues]
+    return render(request, "error.html", {
+        "status": 422, "heading": f"The {kind} file could not be imported",
+        "message": (f"{filename or 'The pasted text'}: nothing was stored. Correct the file "
+                    "at the line named below and upload it again."),
+        "issues": issues, "points": [], "line_label": f"{kind} line",
+    }, status=422)
+
+
+def imported_from(project: Project) -> ImportedFrom | None:
+    """The original file of an imported project, as the reports name it."""
+    if project.source is None:
+        return None
+    return ImportedFrom(project.source.filename, project.source.sha256)
+
+
 def finished_result(store: Store, project: Project, choice: StandardsChoice,
                     queue: QueueDep) -> AdjustmentResult:
     """The latest result with the chosen presets, or 404."""
@@ -69,11 +105,19 @@ def finished_result(store: Store, project: Project, choice: StandardsChoice,
 
 
 def _demos(request: Request) -> dict[str, Path]:
-    """Demo field books by name, from the listing of the configured folder."""
+    """Demo field books (and survey XML files to import) by name, from the folder's listing."""
     folder: Path = request.app.state.demo_dir
     if not folder.is_dir():
         return {}
-    return {p.stem: p for p in sorted(folder.glob("*.fieldbook")) if p.is_file()}
+    found = sorted(folder.glob("*.fieldbook")) + sorted(folder.glob("*.xml"))
+    return {p.stem: p for p in found if p.is_file()}
+
+
+def _upload_page_context(request: Request, problem: str) -> dict[str, Any]:
+    demos = _demos(request)
+    return {"demos": list(demos), "problem": problem,
+            "xml_demos": [name for name, path in demos.items() if path.suffix == ".xml"],
+            "limit": request.app.state.max_upload_bytes}
 
 
 def _demo_or_404(request: Request, name: str) -> Path:
@@ -109,22 +153,60 @@ def _results_context(request: Request, project: Project, result: AdjustmentResul
 @router.get("/", response_class=HTMLResponse)
 def upload_page(request: Request) -> HTMLResponse:
     """The upload form and the demo projects."""
-    return render(request, "index.html", {"demos": list(_demos(request)), "problem": "",
-                                          "limit": request.app.state.max_upload_bytes})
+    return render(request, "index.html", _upload_page_context(request, ""))
 
 
 @router.post("/projects")
 async def create_project(request: Request) -> Response:
-    """Store an uploaded field book, adjust it and show the results."""
+    """Store an uploaded field book, adjust it and show the results; survey XML or a CSV
+    of readings is imported and previewed first."""
     upload = await read_upload(request, with_text=True)
     if upload is None:
-        return render(request, "index.html", {
-            "demos": list(_demos(request)),
-            "problem": "Choose a field book file or paste its text, then press Adjust.",
-            "limit": request.app.state.max_upload_bytes,
-        }, status=400)
+        return render(request, "index.html", _upload_page_context(
+            request, "Choose a field book file or paste its text, then press Adjust."),
+            status=400)
+    if imports.is_import(upload):
+        return await _import_in_background(request, upload)
     project_id = await _submit_in_background(request, upload)
     return RedirectResponse(f"/projects/{project_id}", status_code=303)
+
+
+@router.get("/projects/{project_id}/import", response_class=HTMLResponse)
+def import_page(request: Request, project: ProjectDep, store: StoreDep) -> Response:
+    """The produced field book beside the import's summary, before anything is adjusted."""
+    if project.source is None or store.runs(project.id):
+        return RedirectResponse(f"/projects/{project.id}", status_code=303)
+    summary = imports.import_preview(project)
+    return render(request, "import_preview.html", {
+        "project": project, "summary": summary, "source": project.source,
+        "name": display_name(project.name, project.filename),
+        "kind": "CSV" if summary is not None and summary.kind == "csv" else "XML",
+    })
+
+
+@router.post("/projects/{project_id}/adjust")
+async def adjust_imported(request: Request, project: ProjectDep, form: CheckedForm) -> Response:
+    """Adjust an imported field book once (a second press only opens the project)."""
+    store, limits, jobs = deps.get_store(request), deps.get_limits(request), deps.get_jobs(request)
+    if not store.runs(project.id):
+        deps.room_in_queue(jobs.queue)
+        book, run_id = await run_in_threadpool(imports.start_imported_run, store, project,
+                                               limits)
+        if book is not None and run_id is not None:
+            job = jobs.start(
+                run_id, lambda progress: service.adjust_run(store, run_id, book, progress, limits)
+            )
+            await run_in_threadpool(job.done.wait, deps.WAIT_FOR_SMALL_JOBS)
+    return RedirectResponse(f"/projects/{project.id}", status_code=303)
+
+
+@router.post("/projects/{project_id}/discard")
+async def discard_import(request: Request, project: ProjectDep, form: CheckedForm) -> Response:
+    """Go back: an imported project not yet adjusted is deleted (restorable like any other)."""
+    store = deps.get_store(request)
+    if project.source is not None and not store.runs(project.id):
+        store.delete_project(project.id)
+    return RedirectResponse("/", status_code=303)
 
 
 @router.get("/projects", response_class=HTMLResponse)
@@ -138,6 +220,8 @@ def project_page(request: Request, project: ProjectDep, store: StoreDep, jobs: J
                  choice: ChoiceDep) -> Response:
     """The results of a project's latest adjustment, or what stopped it."""
     runs = store.runs(project.id)
+    if project.source is not None and not runs:
+        return RedirectResponse(f"/projects/{project.id}/import", status_code=303)
     if not runs:
         redirect = design_redirect(project)
         if redirect is not None:  # a book of planned observations: designed, not adjusted
@@ -172,7 +256,8 @@ def project_report(choice: ChoiceDep, project: ProjectDep, store: StoreDep,
     """The printable report, as a download; its inline style is allowed by hash only."""
     result = finished_result(store, project, choice, queue)
     css = html_report.report_css()
-    response = attachment(html_report.report_html(result, presets=choice.presets),
+    response = attachment(html_report.report_html(result, presets=choice.presets,
+                                                  imported_from=imported_from(project)),
                           "text/html; charset=utf-8", download_name(project, "-report.html"))
     response.headers["Content-Security-Policy"] = (
         f"default-src 'none'; style-src {html_report.style_hash(css)}; base-uri 'none'; "
@@ -186,8 +271,18 @@ def project_report_pdf(choice: ChoiceDep, project: ProjectDep, store: StoreDep,
                        queue: QueueDep) -> Response:
     """The report as PDF, drawn on the server."""
     result = finished_result(store, project, choice, queue)
-    return attachment(report_pdf(result, presets=choice.presets), "application/pdf",
-                      download_name(project, "-report.pdf"))
+    return attachment(report_pdf(result, presets=choice.presets,
+                                 imported_from=imported_from(project)),
+                      "application/pdf", download_name(project, "-report.pdf"))
+
+
+@router.get("/projects/{project_id}/report.txt")
+def project_report_text(choice: ChoiceDep, project: ProjectDep, store: StoreDep,
+                        queue: QueueDep) -> Response:
+    """The plain-text summary, as the terminal prints it."""
+    result = finished_result(store, project, choice, queue)
+    return attachment(report_text(result, imported_from(project)), "text/plain; charset=utf-8",
+                      download_name(project, "-report.txt"))
 
 
 @router.get("/projects/{project_id}/points.csv")
@@ -235,6 +330,15 @@ def project_fieldbook(project: ProjectDep) -> Response:
                       download_name(project, ".fieldbook"))
 
 
+@router.get("/projects/{project_id}/source")
+def project_source(project: ProjectDep) -> Response:
+    """The file an imported field book came from, byte for byte (never shown inline)."""
+    if project.source is None:
+        raise HTTPException(status_code=404, detail="This project was not imported from a file.")
+    name = deps.safe_filename(project.source.filename, "source.xml")
+    return attachment(project.source.content, "application/octet-stream", name)
+
+
 @router.get("/demos/{name}")
 def demo_text(name: str, request: Request) -> PlainTextResponse:
     """A demo field book as plain text (looked up by name, never by path)."""
@@ -247,5 +351,7 @@ async def demo_open(name: str, request: Request) -> Response:
     """Store a demo as a new project, adjust it and show the results."""
     path = _demo_or_404(request, name)
     upload = Upload(data=path.read_bytes(), filename=path.name, name="")
+    if path.suffix == ".xml":
+        return await _import_in_background(request, upload)
     project_id = await _submit_in_background(request, upload)
     return RedirectResponse(f"/projects/{project_id}", status_code=303)
