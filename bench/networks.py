@@ -119,8 +119,12 @@ def horizontal(
     for i, j in sorted(held):
         lines.append(f"point {name[i][j]} east={east[i, j]:.4f} north={north[i, j]:.4f} fix")
     if planned:
-        lines += [f"point {name[i][j]} east={east[i, j]:.2f} north={north[i, j]:.2f}"
-                  for i in range(size) for j in range(size) if (i, j) not in held]
+        lines += [
+            f"point {name[i][j]} east={east[i, j]:.2f} north={north[i, j]:.2f}"
+            for i in range(size)
+            for j in range(size)
+            if (i, j) not in held
+        ]
     offsets = ((0, 1), (1, 0), (1, 1), (0, -1), (-1, 0), (-1, -1))
     if sparse:
         offsets = ((0, 1), (1, 0), (0, -1), (-1, 0))

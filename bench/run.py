@@ -100,8 +100,11 @@ def main() -> int:
         help="largest number of unknowns for the dense textbook solver",
     )
     parser.add_argument("--keep", type=Path, default=None, help="write the field books here")
-    parser.add_argument("--design", action="store_true",
-                        help="only the design page's re-evaluation of 1,000 planned observations")
+    parser.add_argument(
+        "--design",
+        action="store_true",
+        help="only the design page's re-evaluation of 1,000 planned observations",
+    )
     args = parser.parse_args()
     if args.design:
         _design()
@@ -476,11 +479,16 @@ def _design() -> None:
         json.dumps(design_figures(result))
         times.append(time.perf_counter() - start)
     times.sort()
-    print(f"design page: {len(lines)} planned observations, {result.summary.unknowns} unknowns: "
-          f"one re-evaluation {times[10] * 1000:.0f} ms (median of 20, slowest "
-          f"{times[-1] * 1000:.0f} ms)")
-    print(json.dumps({"design_reevaluate_ms": round(times[10] * 1000, 1),
-                      "design_observations": len(lines)}))
+    print(
+        f"design page: {len(lines)} planned observations, {result.summary.unknowns} unknowns: "
+        f"one re-evaluation {times[10] * 1000:.0f} ms (median of 20, slowest "
+        f"{times[-1] * 1000:.0f} ms)"
+    )
+    print(
+        json.dumps(
+            {"design_reevaluate_ms": round(times[10] * 1000, 1), "design_observations": len(lines)}
+        )
+    )
 
 
 if __name__ == "__main__":

@@ -25,7 +25,10 @@ UNLIMITED = WorkLimits()
 
 
 def adjust_fieldbook(
-    text: str | bytes, *, source: str = "", progress: ProgressCallback | None = None,
+    text: str | bytes,
+    *,
+    source: str = "",
+    progress: ProgressCallback | None = None,
     limits: WorkLimits = UNLIMITED,
 ) -> AdjustmentResult:
     """Parse, check, adjust and test a field book.
@@ -47,12 +50,15 @@ def adjust_fieldbook(
     with paused_gc():
         if progress is not None:
             progress("parse", 0)
-        return adjust_parsed(parse_fieldbook(text, source=source), progress=progress,
-                             limits=limits)
+        return adjust_parsed(parse_fieldbook(text, source=source), progress=progress, limits=limits)
 
 
-def adjust_parsed(fieldbook: Fieldbook, *, progress: ProgressCallback | None = None,
-                  limits: WorkLimits = UNLIMITED) -> AdjustmentResult:
+def adjust_parsed(
+    fieldbook: Fieldbook,
+    *,
+    progress: ProgressCallback | None = None,
+    limits: WorkLimits = UNLIMITED,
+) -> AdjustmentResult:
     """Adjust an already parsed field book (re-runs with edited observations start here).
 
     Raises ``NetworkError`` when the network cannot be adjusted and ``FieldbookError``
@@ -72,10 +78,12 @@ def check_observation_limit(fieldbook: Fieldbook, limits: WorkLimits) -> None:
     if limit is None or count <= limit:
         return
     first_over = fieldbook.observations[limit]
-    message = (f"the field book has {count:,} observations, more than the {limit:,} this "
-               f"service adjusts in one field book (this is observation {limit + 1:,}); "
-               "split it into smaller field books, or ask the administrator to raise "
-               "the observation limit")
+    message = (
+        f"the field book has {count:,} observations, more than the {limit:,} this "
+        f"service adjusts in one field book (this is observation {limit + 1:,}); "
+        "split it into smaller field books, or ask the administrator to raise "
+        "the observation limit"
+    )
     raise FieldbookError([Issue(first_over.line, "", message)], source=fieldbook.source)
 
 
@@ -87,9 +95,11 @@ def check_adjustable_now(fieldbook: Fieldbook) -> None:
     """
     planned = sorted({obs.line for obs in fieldbook.observations if obs.planned})
     if planned:
-        message = ("'?' marks a planned observation: it has a standard deviation but no value "
-                   "yet, so it cannot be adjusted; book the measured value, or leave the line "
-                   "out of the field book you adjust")
+        message = (
+            "'?' marks a planned observation: it has a standard deviation but no value "
+            "yet, so it cannot be adjusted; book the measured value, or leave the line "
+            "out of the field book you adjust"
+        )
         issues = [Issue(line, "?", message) for line in planned[:MAX_ISSUES]]
         raise FieldbookError(issues, source=fieldbook.source, count=len(planned))
 
@@ -99,14 +109,17 @@ def check_unknown_limit(network: Network, limits: WorkLimits) -> None:
     limit, count = limits.max_unknowns, len(network.parameters)
     if limit is None or count <= limit:
         return
-    raise NetworkError(f"the network has {count:,} unknowns (coordinates, heights and "
-                       f"orientations), more than the {limit:,} this service adjusts at once; "
-                       "split the field book, or ask the administrator to raise the "
-                       "unknown limit")
+    raise NetworkError(
+        f"the network has {count:,} unknowns (coordinates, heights and "
+        f"orientations), more than the {limit:,} this service adjusts at once; "
+        "split the field book, or ask the administrator to raise the "
+        "unknown limit"
+    )
 
 
-def _adjust_parsed(fieldbook: Fieldbook, progress: ProgressCallback | None,
-                   limits: WorkLimits) -> AdjustmentResult:
+def _adjust_parsed(
+    fieldbook: Fieldbook, progress: ProgressCallback | None, limits: WorkLimits
+) -> AdjustmentResult:
     report = progress or _quiet
     check_observation_limit(fieldbook, limits)
     check_adjustable_now(fieldbook)

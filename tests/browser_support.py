@@ -16,8 +16,15 @@ from collections.abc import Iterator
 import pytest
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium", path="/usr/bin")
-CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-                 "--disable-background-networking", "--disable-component-update", "--disable-sync"]
+CHROMIUM_ARGS = [
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+]
 
 
 def free_port() -> int:
@@ -29,8 +36,11 @@ def free_port() -> int:
 
 def browser_problems(page) -> list[str]:
     """Console errors and warnings of a page (CSP violations are reported there)."""
-    return [m for m in page.console_messages
-            if m.startswith(("error", "warning", "pageerror")) or "Content Security Policy" in m]
+    return [
+        m
+        for m in page.console_messages
+        if m.startswith(("error", "warning", "pageerror")) or "Content Security Policy" in m
+    ]
 
 
 @pytest.fixture(scope="module")
@@ -42,8 +52,9 @@ def base_url(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
 
     port = free_port()
     app = create_app(tmp_path_factory.mktemp("browser-data"))
-    config = uvicorn.Config(app, host="127.0.0.1", port=port, log_level="warning",
-                            ws="none", lifespan="off")
+    config = uvicorn.Config(
+        app, host="127.0.0.1", port=port, log_level="warning", ws="none", lifespan="off"
+    )
     server = uvicorn.Server(config)
     thread = threading.Thread(target=server.run, daemon=True)
     thread.start()

@@ -48,9 +48,11 @@ def _instrument(fieldbook: Fieldbook, angles: _Angles) -> str:
     zenith = _one([o.sigma.constant for o in by_kind["zenith"]], "zenith")
     constant = _one([o.sigma.constant for o in by_kind["slope"]], "slope")
     ppm = _one([o.sigma.ppm for o in by_kind["slope"]], "slope ppm")
-    return (f'<InstrumentDetails id="TS" horizAnglePrecision="{angles.text(direction)}" '
-            f'zenithAnglePrecision="{angles.text(zenith)}" edmAccuracyConstant="{constant!r}" '
-            f'edmAccuracyppm="{ppm!r}"/>')
+    return (
+        f'<InstrumentDetails id="TS" horizAnglePrecision="{angles.text(direction)}" '
+        f'zenithAnglePrecision="{angles.text(zenith)}" edmAccuracyConstant="{constant!r}" '
+        f'edmAccuracyppm="{ppm!r}"/>'
+    )
 
 
 def _points(fieldbook: Fieldbook) -> list[str]:
@@ -63,8 +65,9 @@ def _points(fieldbook: Fieldbook) -> list[str]:
         if p.fixed == "enh":
             attributes += ' pntSurv="control"'
         elif p.weighted == "enh" and not p.fixed:
-            attributes += (f' pntSurv="control" horizontalAccuracy="{p.sd_en!r}" '
-                           f'verticalAccuracy="{p.sd_h!r}"')
+            attributes += (
+                f' pntSurv="control" horizontalAccuracy="{p.sd_en!r}" verticalAccuracy="{p.sd_h!r}"'
+            )
         elif p.fixed or p.weighted:
             raise ValueError(f"the writer holds or weighs all three components, not {p}")
         out.append(f"<CgPoint {attributes}>{p.north!r} {p.east!r}{height}</CgPoint>")
@@ -111,26 +114,34 @@ def _raw(target: str, reading: dict[str, float], face: int, angles: _Angles) -> 
         parts.append(f'slopeDistance="{reading["slope"]!r}"')
     if "ht" in reading:
         parts.append(f'targetHeight="{reading["ht"]!r}"')
-    return (f"<RawObservation {' '.join(parts)}><TargetPoint pntRef={quoteattr(target)}/>"
-            "</RawObservation>")
+    return (
+        f"<RawObservation {' '.join(parts)}><TargetPoint pntRef={quoteattr(target)}/>"
+        "</RawObservation>"
+    )
 
 
 def _vectors(fieldbook: Fieldbook) -> list[str]:
     out = []
-    stations = sorted({p for o in fieldbook.observations if o.kind == "baseline"
-                       for p in (o.from_point, o.to)})
-    out += [f'<GPSSetup id="G{n}" stationName={quoteattr(name)}/>'
-            for n, name in enumerate(stations)]
+    stations = sorted(
+        {p for o in fieldbook.observations if o.kind == "baseline" for p in (o.from_point, o.to)}
+    )
+    out += [
+        f'<GPSSetup id="G{n}" stationName={quoteattr(name)}/>' for n, name in enumerate(stations)
+    ]
     number = {name: n for n, name in enumerate(stations)}
     for o in fieldbook.observations:
         if o.kind != "baseline" or o.baseline is None:
             continue
         (dx, dy, dz), c = o.baseline.components, o.baseline.covariance
-        out.append(f'<GPSVector setupID_A="G{number[o.from_point]}" '
-                   f'setupID_B="G{number[o.to]}" dX="{dx!r}" dY="{dy!r}" dZ="{dz!r}">')
-        out.append(f'<GPSQCInfoLevel2 covarianceXX="{c[0][0]!r}" covarianceXY="{c[0][1]!r}" '
-                   f'covarianceXZ="{c[0][2]!r}" covarianceYY="{c[1][1]!r}" '
-                   f'covarianceYZ="{c[1][2]!r}" covarianceZZ="{c[2][2]!r}"/>')
+        out.append(
+            f'<GPSVector setupID_A="G{number[o.from_point]}" '
+            f'setupID_B="G{number[o.to]}" dX="{dx!r}" dY="{dy!r}" dZ="{dz!r}">'
+        )
+        out.append(
+            f'<GPSQCInfoLevel2 covarianceXX="{c[0][0]!r}" covarianceXY="{c[0][1]!r}" '
+            f'covarianceXZ="{c[0][2]!r}" covarianceYY="{c[1][1]!r}" '
+            f'covarianceYZ="{c[1][2]!r}" covarianceZZ="{c[2][2]!r}"/>'
+        )
         out.append("</GPSVector>")
     return out
 
@@ -141,10 +152,12 @@ def write_survey_xml(fieldbook: Fieldbook) -> bytes:
         raise ValueError("the writer handles books in metres")
     angles = _Angles(fieldbook)
     epsg = fieldbook.crs.epsg if fieldbook.crs is not None else None
-    lines = ['<?xml version="1.0" encoding="UTF-8"?>',
-             '<LandXML xmlns="http://www.landxml.org/schema/LandXML-1.2" version="1.2">',
-             f'<Units><Metric linearUnit="meter" angularUnit="{angles.name}" '
-             f'directionUnit="{angles.name}"/></Units>']
+    lines = [
+        '<?xml version="1.0" encoding="UTF-8"?>',
+        '<LandXML xmlns="http://www.landxml.org/schema/LandXML-1.2" version="1.2">',
+        f'<Units><Metric linearUnit="meter" angularUnit="{angles.name}" '
+        f'directionUnit="{angles.name}"/></Units>',
+    ]
     if epsg is not None:
         lines.append(f'<CoordinateSystem epsgCode="{epsg}"/>')
     lines += ["<CgPoints>", *_points(fieldbook), "</CgPoints>", "<Survey>"]

@@ -21,6 +21,8 @@ pytestmark = pytest.mark.browser
 DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"
 BLUNDER = DEMOS / "leveling_blunder.fieldbook"
 BLUNDER_LINE = 38  # tools/DEMOS.md: +10 mm on level KR-106 KR-107
+
+
 def test_upload_sort_by_w_and_download(page, base_url, tmp_path):
     page.goto(base_url + "/")
     assert page.locator("footer").get_by_text(CAUTION).is_visible()

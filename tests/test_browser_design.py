@@ -49,8 +49,7 @@ def test_a_plan_book_opens_on_its_design_and_a_switch_re_evaluates(page, base_ur
     assert "off=43" in (page.locator("#design-pdf").get_attribute("href") or "")
     relative = page.locator("#design-relative tbody tr")
     assert relative.count() == len(expected.relative)
-    assert relative.first.locator("td").nth(2).inner_text() == \
-        relative_rows(expected)[0].semi_major
+    assert relative.first.locator("td").nth(2).inner_text() == relative_rows(expected)[0].semi_major
 
     page.locator(f"tr[data-line='{DISTANCE_LINE}'] input[type=checkbox]").check()
     expect(cells.nth(0)).to_have_text(before)

@@ -41,8 +41,9 @@ def base_url(seeded) -> Iterator[str]:
 
     port = free_port()
     app = create_app(Path(seeded["data"]))
-    config = uvicorn.Config(app, host="127.0.0.1", port=port, log_level="warning",
-                            ws="none", lifespan="off")
+    config = uvicorn.Config(
+        app, host="127.0.0.1", port=port, log_level="warning", ws="none", lifespan="off"
+    )
     server = uvicorn.Server(config)
     thread = threading.Thread(target=server.run, daemon=True)
     thread.start()
@@ -71,8 +72,10 @@ def test_a_form_on_another_site_cannot_store_a_field_book(page, base_url):
     foreign = f"""<!doctype html><title>elsewhere</title>
 <form id="f" method="post" action="{base_url}/projects" enctype="multipart/form-data">
 <textarea name="text">{CLEAN.read_text()}</textarea><button>go</button></form>"""
-    page.route("http://elsewhere.example/**",
-               lambda route: route.fulfill(body=foreign, content_type="text/html"))
+    page.route(
+        "http://elsewhere.example/**",
+        lambda route: route.fulfill(body=foreign, content_type="text/html"),
+    )
     page.goto("http://elsewhere.example/")
     with page.expect_navigation():
         page.get_by_role("button", name="go").click()

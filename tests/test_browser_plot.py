@@ -23,8 +23,9 @@ def _open_demo(page, base_url: str, name: str) -> None:
     page.locator(f'form[action="/demos/{name}"] button').click()
     page.wait_for_url(f"{base_url}/projects/*")
     page.locator("#np-map").scroll_into_view_if_needed()
-    page.wait_for_function("document.querySelector('.np-toolbar') && "
-                           "!document.querySelector('.np-toolbar').hidden")
+    page.wait_for_function(
+        "document.querySelector('.np-toolbar') && !document.querySelector('.np-toolbar').hidden"
+    )
 
 
 def _view_box(page) -> list[float]:
@@ -32,13 +33,15 @@ def _view_box(page) -> list[float]:
 
 
 def _point(page, name: str):
-    return page.locator(".np-pt", has=page.locator("text.np-label", has_text=re.compile(
-        rf"^{re.escape(name)}$")))
+    return page.locator(
+        ".np-pt", has=page.locator("text.np-label", has_text=re.compile(rf"^{re.escape(name)}$"))
+    )
 
 
 def _table_row(page, name: str) -> list[str]:
-    row = page.locator("#points tbody tr", has=page.locator("th", has_text=re.compile(
-        rf"^{re.escape(name)}$")))
+    row = page.locator(
+        "#points tbody tr", has=page.locator("th", has_text=re.compile(rf"^{re.escape(name)}$"))
+    )
     return row.locator("td").all_inner_texts()
 
 
@@ -78,7 +81,8 @@ def test_control_network_plot_panel_exaggeration_and_zoom(page, base_url):
     bar = page.locator("#np-ellbar")
     per_px = _view_box(page)[2] / svg.bounding_box()["width"]
     assert float(bar.get_attribute("data-px")) * per_px == pytest.approx(
-        float(bar.get_attribute("data-length")) * 20000, rel=1e-3)
+        float(bar.get_attribute("data-length")) * 20000, rel=1e-3
+    )
     # the slider moves the same factor, by keyboard too
     page.locator("#np-exag").focus()
     page.keyboard.press("ArrowLeft")
@@ -97,8 +101,7 @@ def test_control_network_plot_panel_exaggeration_and_zoom(page, base_url):
     map_label = page.locator("#np-mapbar-label")
     bar_px = float(page.locator(".np-mapbar-back").get_attribute("width")) - 1
     per_px = view_after[2] / svg.bounding_box()["width"]
-    assert bar_px * per_px == pytest.approx(float(map_label.get_attribute("data-length")),
-                                            rel=1e-3)
+    assert bar_px * per_px == pytest.approx(float(map_label.get_attribute("data-length")), rel=1e-3)
 
     # drag pans; Fit shows the whole network again
     box = svg.bounding_box()
@@ -118,8 +121,10 @@ def test_direction_blunder_line_is_flagged_and_opens_from_the_keyboard(page, bas
     _open_demo(page, base_url, "network_direction_blunder")
     svg = page.locator("#np-map")
     assert svg.locator(".np-pt").count() == 19
-    line = svg.locator(".np-ln.is-flagged", has=page.locator("title", has_text=re.compile(
-        r"^(Q13 – Q15|Q15 – Q13):")))
+    line = svg.locator(
+        ".np-ln.is-flagged",
+        has=page.locator("title", has_text=re.compile(r"^(Q13 – Q15|Q15 – Q13):")),
+    )
     assert line.count() == 1
     line_id = line.get_attribute("data-line")
     # marked by more than colour: a dashed highlight and a flag at the middle of the line
@@ -130,8 +135,9 @@ def test_direction_blunder_line_is_flagged_and_opens_from_the_keyboard(page, bas
     line.focus()
     page.keyboard.press("Enter")
     panel = page.locator("#np-panel-body")
-    item = panel.locator(".np-obs li", has=page.get_by_text(f"line {DIRECTION_BLUNDER_LINE}",
-                                                           exact=True))
+    item = panel.locator(
+        ".np-obs li", has=page.get_by_text(f"line {DIRECTION_BLUNDER_LINE}", exact=True)
+    )
     assert item.count() == 1
     assert "Flagged" in item.inner_text() and "Q13 → Q15" in item.inner_text()
     assert "Relative precision" in panel.inner_text()

@@ -39,7 +39,9 @@ def test_pairs_picked_on_the_results_page_are_reported_after_the_rerun(page, bas
         picker.get_by_label("To", exact=True).select_option(b)
         picker.get_by_role("button", name="Add pair").click()
     assert picker.locator("[data-relative-list] li").all_inner_texts() == [
-        "K1–K2 Remove", "K2–K3 Remove"]
+        "K1–K2 Remove",
+        "K2–K3 Remove",
+    ]
     # the same point twice is refused in the browser
     picker.get_by_label("From").select_option("K3")
     picker.get_by_label("To", exact=True).select_option("K3")

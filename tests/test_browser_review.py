@@ -88,9 +88,12 @@ def test_two_blunders_found_decided_rerun_compared_and_downloaded(page, base_url
     download.save_as(target)
     lines = target.read_text().splitlines()
     assert len(lines) == len(TEXT.splitlines())
-    assert re.search(r" ignore  # \d{4}-\d{2}-\d{2} left out: staff misread at M4", lines[FIRST - 1])
-    assert re.search(r" ignore  # \d{4}-\d{2}-\d{2} left out: data snooping step 1",
-                     lines[SECOND - 1])
+    assert re.search(
+        r" ignore  # \d{4}-\d{2}-\d{2} left out: staff misread at M4", lines[FIRST - 1]
+    )
+    assert re.search(
+        r" ignore  # \d{4}-\d{2}-\d{2} left out: data snooping step 1", lines[SECOND - 1]
+    )
     with page.expect_download() as report_info:
         page.get_by_role("link", name="Report (HTML)").click()
     report_path = tmp_path / "report.html"
@@ -104,12 +107,12 @@ def test_delete_from_the_project_list_after_confirming(page, base_url, tmp_path)
     _upload(page, base_url, tmp_path)
     project_url = page.url
     page.goto(base_url + "/projects")
-    row = page.locator("tr", has=page.locator(f"a[href='{project_url[len(base_url):]}']"))
+    row = page.locator("tr", has=page.locator(f"a[href='{project_url[len(base_url) :]}']"))
     _click_and_wait(page, row.get_by_role("button", name=re.compile("^Delete")))
     assert "Delete “two-blunders.fieldbook”?" in page.locator("h1").inner_text()
     _click_and_wait(page, page.get_by_role("button", name="Delete", exact=True))
     assert page.url == base_url + "/projects"
-    assert page.locator(f"a[href='{project_url[len(base_url):]}']").count() == 0
+    assert page.locator(f"a[href='{project_url[len(base_url) :]}']").count() == 0
     assert page.goto(project_url).status == 404
     page.goto(base_url + "/deleted-projects")  # kept for 30 days: it can be restored
     _click_and_wait(page, page.get_by_role("button", name="Restore two-blunders.fieldbook"))
@@ -131,8 +134,10 @@ def test_a_misbooked_value_corrected_in_the_review_and_compared(page, base_url, 
     worst.get_by_label(re.compile(r"^Reason")).fill("rod read 15 mm high")
     worst.screenshot(path="/tmp/review-correct-form.png")
     _click_and_wait(page, worst.get_by_role("button", name="Queue decision"))
-    assert (f"Queued: correct the value from {booked} to {right}"
-            in page.locator(f"#line-{FIRST}").inner_text())
+    assert (
+        f"Queued: correct the value from {booked} to {right}"
+        in page.locator(f"#line-{FIRST}").inner_text()
+    )
     assert "rod read 15 mm high" in page.locator("#decisions").inner_text()
 
     _click_and_wait(page, page.get_by_role("button", name="Re-run with 1 new decision").first)

@@ -35,14 +35,17 @@ document.addEventListener('securitypolicyviolation',
 def hostile_project(base_url: str) -> str:
     """The hostile field book stored, with one decision carrying a hostile reason, re-run."""
     with httpx.Client(base_url=base_url, timeout=60) as http:
-        created = http.post("/api/projects",
-                            files={"fieldbook": ("<b>x</b>.fieldbook", HOSTILE_BOOK)})
+        created = http.post(
+            "/api/projects", files={"fieldbook": ("<b>x</b>.fieldbook", HOSTILE_BOOK)}
+        )
         assert created.status_code == 201, created.text
         project_id = created.json()["id"]
         review = http.get(f"/projects/{project_id}/review").text
         token = re.search(r'name="token" value="([0-9a-f]+)"', review).group(1)
-        queued = http.post(f"/projects/{project_id}/edits", data={
-            "token": token, "line": "9", "action": "exclude", "reason": REASON})
+        queued = http.post(
+            f"/projects/{project_id}/edits",
+            data={"token": token, "line": "9", "action": "exclude", "reason": REASON},
+        )
         assert queued.status_code == 303, queued.text[:1000]
         rerun = http.post(f"/projects/{project_id}/runs", data={"token": token})
         assert rerun.status_code == 303, rerun.text[:1000]
@@ -52,8 +55,11 @@ def hostile_project(base_url: str) -> str:
 @pytest.fixture(scope="module")
 def plotted_project(base_url: str) -> str:
     """A horizontal network with hostile names, drawn in the SVG plot."""
-    created = httpx.post(f"{base_url}/api/projects", timeout=60,
-                         files={"fieldbook": ("plot.fieldbook", HOSTILE_PLOT)})
+    created = httpx.post(
+        f"{base_url}/api/projects",
+        timeout=60,
+        files={"fieldbook": ("plot.fieldbook", HOSTILE_PLOT)},
+    )
     assert created.status_code == 201 and created.json()["result"], created.text
     return created.json()["id"]
 
@@ -80,9 +86,16 @@ def page(browser):
 def _csp_problems(page, status: int = 200) -> list[str]:
     reported = page.evaluate("window.__csp || []")
     expected = f"Failed to load resource: the server responded with a status of {status}"
-    console = [m for m in page.console_messages
-               if ("Content Security Policy" in m or "Refused to" in m
-                   or m.startswith(("error", "pageerror"))) and expected not in m]
+    console = [
+        m
+        for m in page.console_messages
+        if (
+            "Content Security Policy" in m
+            or "Refused to" in m
+            or m.startswith(("error", "pageerror"))
+        )
+        and expected not in m
+    ]
     return [*reported, *console]
 
 
@@ -93,22 +106,32 @@ def _check_page(page, url: str) -> None:
     page.wait_for_timeout(150)  # let deferred scripts and any injected handler fire
     assert page.dialogs == [], (url, page.dialogs)
     sources = page.evaluate(  # JSON data blocks are not scripts; everything else is a file
-        "Array.from(document.scripts).filter(s => s.type !== 'application/json').map(s => s.src)")
-    assert all(re.match(r"^http://127\.0\.0\.1:\d+/static/[\w.-]+\.js(\?.*)?$", s)
-               for s in sources), (url, sources)
+        "Array.from(document.scripts).filter(s => s.type !== 'application/json').map(s => s.src)"
+    )
+    assert all(
+        re.match(r"^http://127\.0\.0\.1:\d+/static/[\w.-]+\.js(\?.*)?$", s) for s in sources
+    ), (url, sources)
     planted = page.locator("img[src='x'], iframe, svg[onload], b").count()
     assert planted == 0, url
     assert page.evaluate("typeof window.alert") == "function"  # nothing replaced it
     assert _csp_problems(page, response.status) == [], url
 
 
-def test_hostile_strings_run_no_script_on_any_page(page, base_url, hostile_project,
-                                                  plotted_project):
+def test_hostile_strings_run_no_script_on_any_page(
+    page, base_url, hostile_project, plotted_project
+):
     project = f"{base_url}/projects/{hostile_project}"
     plotted = f"{base_url}/projects/{plotted_project}"
-    for url in (f"{base_url}/", f"{base_url}/projects", project, f"{project}/review",
-                f"{project}/compare", plotted, f"{plotted}/review",
-                f"{base_url}/projects/{'f' * 32}"):
+    for url in (
+        f"{base_url}/",
+        f"{base_url}/projects",
+        project,
+        f"{project}/review",
+        f"{project}/compare",
+        plotted,
+        f"{plotted}/review",
+        f"{base_url}/projects/{'f' * 32}",
+    ):
         _check_page(page, url)
 
     page.goto(project)
@@ -125,8 +148,9 @@ def test_hostile_strings_run_no_script_on_any_page(page, base_url, hostile_proje
     assert '<script>alert(6)</script> "crew said"' in page.locator("body").inner_text()
 
 
-def test_downloaded_report_runs_no_script_when_opened(page, base_url, hostile_project,
-                                                      tmp_path: Path):
+def test_downloaded_report_runs_no_script_when_opened(
+    page, base_url, hostile_project, tmp_path: Path
+):
     report = httpx.get(f"{base_url}/projects/{hostile_project}/report.html", timeout=60)
     assert report.status_code == 200
     path = tmp_path / "report.html"

@@ -15,7 +15,11 @@ DEMOS = sorted((ROOT / "demo_projects").glob("*.fieldbook"))
 
 def run(*args: str, cwd: Path = ROOT) -> subprocess.CompletedProcess[str]:
     return subprocess.run(
-        [sys.executable, "-m", "server", *args], cwd=cwd, capture_output=True, text=True, timeout=120,
+        [sys.executable, "-m", "server", *args],
+        cwd=cwd,
+        capture_output=True,
+        text=True,
+        timeout=120,
         check=False,
     )
 
@@ -25,17 +29,59 @@ def test_every_demo_adjusts_with_json_on_stdout_alone(demo):
     proc = run("adjust", str(demo), "--json")
     assert proc.returncode == 0, proc.stderr
     data = json.loads(proc.stdout)  # nothing but the JSON object on stdout
-    assert set(data) >= {"format", "units", "summary", "points", "observations",
-                         "misclosures", "relative", "warnings", "caution"}
-    assert set(data["summary"]) >= {"dimension", "points", "observations", "used_observations",
-                                    "unknowns", "redundancy", "iterations", "converged",
-                                    "variance_factor", "global_test"}
+    assert set(data) >= {
+        "format",
+        "units",
+        "summary",
+        "points",
+        "observations",
+        "misclosures",
+        "relative",
+        "warnings",
+        "caution",
+    }
+    assert set(data["summary"]) >= {
+        "dimension",
+        "points",
+        "observations",
+        "used_observations",
+        "unknowns",
+        "redundancy",
+        "iterations",
+        "converged",
+        "variance_factor",
+        "global_test",
+    }
     for obs in data["observations"]:
-        assert set(obs) >= {"line", "kind", "from", "at", "to", "observed", "adjusted", "residual",
-                            "sd", "redundancy", "w", "mdb", "flagged", "ignored"}
+        assert set(obs) >= {
+            "line",
+            "kind",
+            "from",
+            "at",
+            "to",
+            "observed",
+            "adjusted",
+            "residual",
+            "sd",
+            "redundancy",
+            "w",
+            "mdb",
+            "flagged",
+            "ignored",
+        }
     for point in data["points"]:
-        assert set(point) >= {"name", "east", "north", "height", "sd_east", "sd_north",
-                              "sd_height", "fixed", "weighted", "ellipse"}
+        assert set(point) >= {
+            "name",
+            "east",
+            "north",
+            "height",
+            "sd_east",
+            "sd_north",
+            "sd_height",
+            "fixed",
+            "weighted",
+            "ellipse",
+        }
     assert "licensed" in data["caution"]
 
 
@@ -76,26 +122,41 @@ def test_numerical_core_imports_without_the_web_stack():
         "            raise ImportError('blocked ' + name)\n"
         "sys.meta_path.insert(0, Block())\n"
         "from server.pipeline import adjust_fieldbook\n"
-        "r = adjust_fieldbook('defaults level=1mm\\npoint A height=0 fix\\nlevel A B 1\\nlevel A B 1.001\\n')\n"
+        "r = adjust_fieldbook('defaults level=1mm\\npoint A height=0 fix\\n"
+        "level A B 1\\nlevel A B 1.001\\n')\n"
         "print(r.summary.redundancy)\n"
     )
-    proc = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True,
-                          check=False)
+    proc = subprocess.run(
+        [sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, check=False
+    )
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.strip() == "1"
 
 
 def test_results_are_identical_whatever_the_hash_seed():
     """Regression (2026-12-02): start values followed the order of a set of point pairs, so the
-    last digits of a 2D result changed with PYTHONHASHSEED; the same file must give the same bytes."""
+    last digits of a 2D result changed with PYTHONHASHSEED; the same file must give the same
+    bytes."""
     import os
 
     outputs = set()
     for seed in ("0", "1"):  # two seeds that gave different bytes before the fix
         env = {**os.environ, "PYTHONHASHSEED": seed}
         proc = subprocess.run(
-            [sys.executable, "-m", "server", "adjust", str(ROOT / "demo_projects" / "control_network.fieldbook"),
-             "--json"], cwd=ROOT, capture_output=True, text=True, timeout=120, env=env, check=False,
+            [
+                sys.executable,
+                "-m",
+                "server",
+                "adjust",
+                str(ROOT / "demo_projects" / "control_network.fieldbook"),
+                "--json",
+            ],
+            cwd=ROOT,
+            capture_output=True,
+            text=True,
+            timeout=120,
+            env=env,
+            check=False,
         )
         assert proc.returncode == 0, proc.stderr
         outputs.add(proc.stdout)
@@ -105,14 +166,21 @@ def test_results_are_identical_whatever_the_hash_seed():
 def test_help_lists_every_exit_status():
     proc = run("--help")
     assert proc.returncode == 0
-    for status, meaning in (("0", "adjusted"), ("2", "field book has errors"),
-                            ("3", "cannot be adjusted"), ("64", "command line"), ("73", "data folder")):
-        assert any(line.split()[:1] == [status] and meaning in line
-                   for line in proc.stdout.splitlines()), status
+    for status, meaning in (
+        ("0", "adjusted"),
+        ("2", "field book has errors"),
+        ("3", "cannot be adjusted"),
+        ("64", "command line"),
+        ("73", "data folder"),
+    ):
+        assert any(
+            line.split()[:1] == [status] and meaning in line for line in proc.stdout.splitlines()
+        ), status
 
 
 def test_wrong_command_line_is_not_taken_for_field_book_errors():
-    """Exit 2 means 'the field book has errors' to scripts; a typo in an option must not say that."""
+    """Exit 2 means 'the field book has errors' to scripts; a typo in an option must not say
+    that."""
     proc = run("adjust", "--no-such-option", "x.fieldbook")
     assert proc.returncode == 64
     assert "Traceback" not in proc.stderr

@@ -19,11 +19,11 @@ import pytest
 import scipy.stats
 
 from server.cli import main
-from server.report import html as html_report
 from server.fieldbook.parser import parse_fieldbook
-from server.report.histogram import BIN_WIDTH, expected_count, w_histogram
 from server.pipeline import adjust_fieldbook, adjust_parsed
+from server.report import html as html_report
 from server.report.csv_export import safe_cell
+from server.report.histogram import BIN_WIDTH, expected_count, w_histogram
 from server.report.tables import standards_summary
 from server.results.result import CAUTION
 from server.review.standards import FGCC_1984_LEVELING, PRESETS, with_presets
@@ -98,8 +98,10 @@ def test_relative_precision_two_point_case_against_the_alta_allowance(sigma_arcs
     assert check.state == ("pass" if passes else "fail")
     assert check.words == (
         "Pass: 1 joined pair within the allowance; pairs neither joined by an observation nor "
-        "requested with “relative A B” were not checked" if passes
-        else "Fail: 1 of 1 pair exceeds the allowance (1 joined pair checked)")
+        "requested with “relative A B” were not checked"
+        if passes
+        else "Fail: 1 of 1 pair exceeds the allowance (1 joined pair checked)"
+    )
 
 
 def test_ellipse_factor_convention_both_branches(network):
@@ -114,7 +116,8 @@ def test_ellipse_factor_convention_both_branches(network):
     # and the large-r limit is the published 2D factor
     r = network.summary.redundancy
     assert network.summary.ellipse_factor == pytest.approx(
-        math.sqrt(2 * scipy.stats.f.ppf(0.95, 2, r)), rel=1e-9)
+        math.sqrt(2 * scipy.stats.f.ppf(0.95, 2, r)), rel=1e-9
+    )
     assert math.sqrt(2 * scipy.stats.f.ppf(0.95, 2, 10**7)) == pytest.approx(2.4477, abs=5e-5)
 
 
@@ -144,10 +147,16 @@ def test_fgcc_section_and_loop_constants_as_recalled():
     """FGCC 1984 §3.5, from memory (docs/references.md "FGCC 1984 leveling allowances"):
     sections 3/4/6/8/12 mm·√D,
     loops 4/5/6/8/12 mm·√E; a 3rd-order 10 km line allows 37.95 mm (computed)."""
-    assert [FGCC_1984_LEVELING[k] for k in (
-        "first-order-class-I", "first-order-class-II", "second-order-class-I",
-        "second-order-class-II", "third-order")] == [
-        (3.0, 4.0), (4.0, 5.0), (6.0, 6.0), (8.0, 8.0), (12.0, 12.0)]
+    assert [
+        FGCC_1984_LEVELING[k]
+        for k in (
+            "first-order-class-I",
+            "first-order-class-II",
+            "second-order-class-I",
+            "second-order-class-II",
+            "third-order",
+        )
+    ] == [(3.0, 4.0), (4.0, 5.0), (6.0, 6.0), (8.0, 8.0), (12.0, 12.0)]
     third = PRESETS["fgcc-1984-third-order"].quantity("m")
     assert third.allowance_level(10.0, None) * 1000 == pytest.approx(37.95, abs=0.005)
 
@@ -201,7 +210,8 @@ def test_histogram_reference_curve_is_the_expected_count_per_bin(network):
     h = w_histogram(network)
     assert expected_count(h, 0.0) == pytest.approx(h.tested * 0.5 * 0.3989423, rel=1e-6)
     assert expected_count(h, 1.96) == pytest.approx(
-        h.tested * 0.5 * scipy.stats.norm.pdf(1.96), rel=1e-9)
+        h.tested * 0.5 * scipy.stats.norm.pdf(1.96), rel=1e-9
+    )
 
 
 def test_no_histogram_without_tested_observations():
@@ -220,7 +230,8 @@ def test_html_report_draws_the_network_and_the_histogram_inline(network):
     assert plot, "the 2D report has the network plot"
     assert plot.group(0).count('<g class="np-pt ') == len(network.points)
     assert plot.group(0).count('<ellipse class="np-ell"') == sum(
-        p.ellipse is not None for p in network.points)
+        p.ellipse is not None for p in network.points
+    )
     assert '<svg class="w-hist-svg"' in html
     # the static plot has no controls, no detail panel and no data block
     assert "np-toolbar" not in html and "np-panel" not in html and "np-data" not in html
@@ -239,12 +250,10 @@ def test_html_report_puts_the_standards_summary_first_with_symbol_and_word(blund
     html = html_report.report_html(blunder)
     body = html.split("<body>", 1)[1]
     exceeded = sum(m.exceeds for m in blunder.misclosures)
-    summary = (f"Fail: {exceeded} of {len(blunder.misclosures)} loops and runs exceed the "
-               "allowance")
+    summary = f"Fail: {exceeded} of {len(blunder.misclosures)} loops and runs exceed the allowance"
     assert summary in body
     assert body.index("Accuracy standards") < body.index("Adjusted points")
-    check = re.search(r'<li class="check check-fail"><span class="check-mark"[^>]*>✕</span>',
-                      body)
+    check = re.search(r'<li class="check check-fail"><span class="check-mark"[^>]*>✕</span>', body)
     assert check, "the failed check shows ✕ beside the word, not colour alone"
 
 
@@ -267,10 +276,13 @@ def test_csv_guard_covers_every_formula_start():
 
 
 def test_points_csv_parses_and_keeps_numbers_numeric(client):
-    text = (b"defaults level=1mm\npoint +1 height=10 fix\npoint -X height=-2.5 fix\n"
-            b"level +1 @A1 -12.0000\nlevel -X @A1 0.5000\n")
-    response = client.post("/projects", files={"fieldbook": ("f.fieldbook", text)},
-                           follow_redirects=False)
+    text = (
+        b"defaults level=1mm\npoint +1 height=10 fix\npoint -X height=-2.5 fix\n"
+        b"level +1 @A1 -12.0000\nlevel -X @A1 0.5000\n"
+    )
+    response = client.post(
+        "/projects", files={"fieldbook": ("f.fieldbook", text)}, follow_redirects=False
+    )
     url = response.headers["location"]
     rows = list(csv.DictReader(io.StringIO(client.get(f"{url}/points.csv").text)))
     assert [r["name"] for r in rows] == ["'+1", "'-X", "'@A1"]
@@ -298,15 +310,21 @@ def test_geojson_download_is_valid_and_matches_the_points(client):
             assert feature["geometry"] is None
             continue
         assert feature["geometry"]["type"] == "Point"
-        assert feature["geometry"]["coordinates"] == [p["longitude"], p["latitude"],
-                                                      p["ellipsoidal_height"]]
+        assert feature["geometry"]["coordinates"] == [
+            p["longitude"],
+            p["latitude"],
+            p["ellipsoidal_height"],
+        ]
         assert feature["properties"]["sd_east"] == p["sd_east"]
     for f in data["features"]:
         if f["id"].startswith("line:") and f["geometry"] is not None:
             assert f["geometry"]["type"] == "LineString"
             ends = [tuple(c) for c in f["geometry"]["coordinates"]]
-            located = {tuple(g["geometry"]["coordinates"][:2]) for g in points.values()
-                       if g["geometry"] is not None}
+            located = {
+                tuple(g["geometry"]["coordinates"][:2])
+                for g in points.values()
+                if g["geometry"] is not None
+            }
             assert set(ends) <= located
 
 
@@ -357,7 +375,11 @@ def test_results_page_shows_the_standards_summary_at_the_top(client):
 
 def test_unknown_preset_is_refused_with_the_choices(client):
     url = _open_demo(client, "leveling_blunder")
-    for query in ("?relative=alta", "?misclosure=alta-nsps-2026", "?relative=fgcc-1984-third-order"):
+    for query in (
+        "?relative=alta",
+        "?misclosure=alta-nsps-2026",
+        "?relative=fgcc-1984-third-order",
+    ):
         response = client.get(f"{url}/report.pdf{query}")
         assert response.status_code == 400, query
     assert "fgcc-1984-third-order" in client.get(f"{url}?misclosure=nope").text
@@ -369,7 +391,8 @@ def test_pdf_download_is_a_pdf_naming_the_preset(client):
     assert response.status_code == 200
     assert response.headers["content-type"] == "application/pdf"
     assert response.headers["content-disposition"] == (
-        'attachment; filename="leveling_blunder-report.pdf"')
+        'attachment; filename="leveling_blunder-report.pdf"'
+    )
     reader = pypdf.PdfReader(io.BytesIO(response.content))
     text = re.sub(r"\s+", " ", " ".join(page.extract_text() for page in reader.pages))
     assert "FGCC 1984 leveling, third order (12 mm·√K) (preset)" in text

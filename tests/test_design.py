@@ -36,13 +36,30 @@ ROOT = Path(__file__).resolve().parents[1]
 FOOTBRIDGE = ROOT / "demo_projects" / "design" / "footbridge_design.fieldbook"
 
 # An invented traverse-and-braces network: two held marks, four new ones (metres)
-POINTS = {"W1": (1000.0, 2000.0), "W2": (1000.0, 2180.0), "E1": (1140.0, 2010.0),
-          "E2": (1145.0, 2175.0), "A1": (1060.0, 2060.0), "A2": (1095.0, 2120.0)}
+POINTS = {
+    "W1": (1000.0, 2000.0),
+    "W2": (1000.0, 2180.0),
+    "E1": (1140.0, 2010.0),
+    "E2": (1145.0, 2175.0),
+    "A1": (1060.0, 2060.0),
+    "A2": (1095.0, 2120.0),
+}
 HELD = ("W1", "W2")
-ROUNDS = {"W1": ("W2", "E1", "E2", "A1"), "W2": ("W1", "E2", "A2"),
-          "E1": ("W1", "E2", "A1"), "E2": ("W2", "E1", "A2")}
-DISTANCES = [("W1", "E1"), ("W2", "E2"), ("W1", "A1"), ("E1", "A1"), ("W2", "A2"),
-             ("E2", "A2"), ("A1", "A2")]
+ROUNDS = {
+    "W1": ("W2", "E1", "E2", "A1"),
+    "W2": ("W1", "E2", "A2"),
+    "E1": ("W1", "E2", "A1"),
+    "E2": ("W2", "E1", "A2"),
+}
+DISTANCES = [
+    ("W1", "E1"),
+    ("W2", "E2"),
+    ("W1", "A1"),
+    ("E1", "A1"),
+    ("W2", "A2"),
+    ("E2", "A2"),
+    ("A1", "A2"),
+]
 
 
 def _azimuth_deg(a: str, b: str) -> float:
@@ -55,17 +72,26 @@ def _length(a: str, b: str) -> float:
     return math.hypot(eb - ea, nb - na)
 
 
-def network_book(*, values: bool, drop: tuple[str, ...] = (), bias: dict[str, float] | None = None,
-                 held: tuple[str, ...] = HELD) -> str:
+def network_book(
+    *,
+    values: bool,
+    drop: tuple[str, ...] = (),
+    bias: dict[str, float] | None = None,
+    held: tuple[str, ...] = HELD,
+) -> str:
     """The network as a book: '?' for every value, or the values computed from the
     coordinates (directions with orientation 0, in decimal degrees).  Each observation has a
     key ("W1>E2", "d:W1-E1"); keys in ``drop`` become comment lines (line numbers kept), and
     ``bias`` adds metres or decimal degrees to a value."""
     bias = bias or {}
-    out = ['fieldbook 1', 'title "design check"', 'units length=m angle=deg',
-           'tests alpha=0.05 snooping=0.001 power=0.80 confidence=0.95 precision=prior',
-           'tolerance relative=5mm+20ppm',
-           'defaults direction=1sec distance=1mm+1.5ppm centering=0.5mm']
+    out = [
+        "fieldbook 1",
+        'title "design check"',
+        "units length=m angle=deg",
+        "tests alpha=0.05 snooping=0.001 power=0.80 confidence=0.95 precision=prior",
+        "tolerance relative=5mm+20ppm",
+        "defaults direction=1sec distance=1mm+1.5ppm centering=0.5mm",
+    ]
     for name, (e, n) in POINTS.items():
         out.append(f"point {name} east={e:.3f} north={n:.3f}" + (" fix" if name in held else ""))
 
@@ -123,13 +149,16 @@ def test_the_design_equals_adjust_on_error_free_values(design, error_free):
     for planned, adjusted in zip(design.points, error_free.points, strict=True):
         assert planned.name == adjusted.name
         for attr in ("sd_east", "sd_north"):
-            assert getattr(planned, attr) == pytest.approx(getattr(adjusted, attr),
-                                                           rel=1e-9, abs=1e-12)
+            assert getattr(planned, attr) == pytest.approx(
+                getattr(adjusted, attr), rel=1e-9, abs=1e-12
+            )
         if adjusted.ellipse is not None:
-            assert planned.ellipse.semi_major == pytest.approx(adjusted.ellipse.semi_major,
-                                                               rel=1e-9)
-            assert planned.ellipse.semi_minor == pytest.approx(adjusted.ellipse.semi_minor,
-                                                               rel=1e-9)
+            assert planned.ellipse.semi_major == pytest.approx(
+                adjusted.ellipse.semi_major, rel=1e-9
+            )
+            assert planned.ellipse.semi_minor == pytest.approx(
+                adjusted.ellipse.semi_minor, rel=1e-9
+            )
     for planned, adjusted in zip(design.observations, error_free.observations, strict=True):
         assert planned.redundancy == pytest.approx(adjusted.redundancy, rel=1e-9, abs=1e-12)
         assert planned.mdb == pytest.approx(adjusted.mdb, rel=1e-9)
@@ -176,8 +205,7 @@ def test_switching_off_equals_removing_the_line(key):
             assert o.redundancy is None and o.mdb is None  # left out, like an ignored line
             continue
         assert o.redundancy == pytest.approx(kept[o.line].redundancy, rel=1e-12, abs=1e-12)
-        assert o.external_reliability == pytest.approx(kept[o.line].external_reliability,
-                                                       rel=1e-9)
+        assert o.external_reliability == pytest.approx(kept[o.line].external_reliability, rel=1e-9)
 
 
 @pytest.mark.parametrize("key", ["d:W1-E1", "W1>A1", "E1>E2"])
@@ -189,8 +217,10 @@ def test_external_reliability_is_the_shift_of_an_adjustment_with_the_mdb_added(d
     size = planned.mdb if key.startswith("d:") else planned.mdb / 3600.0  # arcsec → degrees
     clean = adjust_fieldbook(network_book(values=True))
     biased = adjust_fieldbook(network_book(values=True, bias={key: size}))
-    largest = max(math.hypot(b.east - c.east, b.north - c.north)
-                  for b, c in zip(biased.points, clean.points, strict=True))
+    largest = max(
+        math.hypot(b.east - c.east, b.north - c.north)
+        for b, c in zip(biased.points, clean.points, strict=True)
+    )
     assert planned.external_reliability == pytest.approx(largest, rel=1e-4)
 
 
@@ -203,8 +233,10 @@ def test_external_reliability_of_a_free_network_is_the_inner_constraint_shift():
     planned = _by_line(design)[line_of(key)]
     clean = adjust_fieldbook(network_book(values=True, held=()))
     biased = adjust_fieldbook(network_book(values=True, held=(), bias={key: planned.mdb}))
-    largest = max(math.hypot(b.east - c.east, b.north - c.north)
-                  for b, c in zip(biased.points, clean.points, strict=True))
+    largest = max(
+        math.hypot(b.east - c.east, b.north - c.north)
+        for b, c in zip(biased.points, clean.points, strict=True)
+    )
     assert planned.external_reliability == pytest.approx(largest, rel=1e-4)
 
 
@@ -216,8 +248,10 @@ def test_every_back_end_gives_the_same_design(monkeypatch):
     original = linearisation.linearise_once
     results = {}
     for method in ("dense", "sparse"):
-        monkeypatch.setattr("server.design.plan.linearise_once",
-                            lambda network, state, m=method: original(network, state, method=m))
+        monkeypatch.setattr(
+            "server.design.plan.linearise_once",
+            lambda network, state, m=method: original(network, state, method=m),
+        )
         results[method] = plan_fieldbook(network_book(values=False))
     for a, b in zip(results["dense"].observations, results["sparse"].observations, strict=True):
         assert a.redundancy == pytest.approx(b.redundancy, rel=1e-9, abs=1e-12)
@@ -334,22 +368,33 @@ def test_a_geodetic_design_sums_its_redundancy_and_tests_baselines_by_component(
 # A geodetic design with values simulated independently: pyproj places the marks (the local
 # grid as a transverse Mercator on GRS80 with its origin at the crs line's point, and
 # Earth-centred X, Y, Z); baselines are ΔX, ΔY, ΔZ and slope distances the chords.
-GEO_MARKS = {"G1": (5000.0, 5000.0, 100.0), "G2": (5600.0, 5100.0, 120.0),
-             "N1": (5300.0, 5400.0, 110.0), "N2": (5350.0, 4700.0, 95.0)}
+GEO_MARKS = {
+    "G1": (5000.0, 5000.0, 100.0),
+    "G2": (5600.0, 5100.0, 120.0),
+    "N1": (5300.0, 5400.0, 110.0),
+    "N2": (5350.0, 4700.0, 95.0),
+}
 GEO_BASELINES = [("G1", "N1"), ("G2", "N2"), ("G1", "N2")]
 GEO_SLOPES = [("N1", "N2"), ("G2", "N1"), ("G1", "N2")]
 
 
 def geodetic_book(*, values: bool) -> str:
     pyproj = pytest.importorskip("pyproj")
-    grid = pyproj.CRS.from_proj4("+proj=tmerc +lat_0=47.05 +lon_0=-122.8916666666667 +k=1 "
-                                 "+x_0=5000 +y_0=5000 +ellps=GRS80 +units=m")
-    to_xyz = pyproj.Transformer.from_crs(grid, pyproj.CRS.from_proj4(
-        "+proj=geocent +ellps=GRS80 +units=m"), always_xy=True)
+    grid = pyproj.CRS.from_proj4(
+        "+proj=tmerc +lat_0=47.05 +lon_0=-122.8916666666667 +k=1 "
+        "+x_0=5000 +y_0=5000 +ellps=GRS80 +units=m"
+    )
+    to_xyz = pyproj.Transformer.from_crs(
+        grid, pyproj.CRS.from_proj4("+proj=geocent +ellps=GRS80 +units=m"), always_xy=True
+    )
     xyz = {name: to_xyz.transform(*mark) for name, mark in GEO_MARKS.items()}
-    out = ["fieldbook 1", "units length=m angle=dms",
-           "crs local lat=47:03:00 lon=-122:53:30 east=5000m north=5000m",
-           "tests precision=prior", "defaults slope=1mm+1.5ppm"]
+    out = [
+        "fieldbook 1",
+        "units length=m angle=dms",
+        "crs local lat=47:03:00 lon=-122:53:30 east=5000m north=5000m",
+        "tests precision=prior",
+        "defaults slope=1mm+1.5ppm",
+    ]
     for name, (e, n, h) in GEO_MARKS.items():
         held = " fix" if name.startswith("G") else ""
         out.append(f"point {name} east={e:.3f} north={n:.3f} height={h:.3f}{held}")
@@ -357,8 +402,9 @@ def geodetic_book(*, values: bool) -> str:
         delta = " ".join(f"{xyz[b][k] - xyz[a][k]:.5f}" for k in range(3))
         out.append(f"baseline {a} {b} {delta if values else '? ? ?'} sd=3mm,3mm,5mm")
     for a, b in GEO_SLOPES:
-        out.append(f"slope {a} {b} {math.dist(xyz[a], xyz[b]):.5f}" if values
-                   else f"slope {a} {b} ?")
+        out.append(
+            f"slope {a} {b} {math.dist(xyz[a], xyz[b]):.5f}" if values else f"slope {a} {b} ?"
+        )
     return "\n".join(out) + "\n"
 
 

@@ -54,8 +54,9 @@ def test_the_design_page_lists_every_planned_observation_with_a_switch(client, d
 def test_design_json_equals_the_design_without_the_lines(client, design_url):
     answer = client.get(design_url + ".json?off=43,26")
     assert answer.status_code == 200
-    expected = design_figures(plan_fieldbook(BOOK.read_bytes(), source="bridge.fieldbook",
-                                             switched_off={43, 26}))
+    expected = design_figures(
+        plan_fieldbook(BOOK.read_bytes(), source="bridge.fieldbook", switched_off={43, 26})
+    )
     assert answer.json() == expected
     assert answer.json()["observations"]["43"]["note"] == "switched off"
 

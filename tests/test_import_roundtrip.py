@@ -27,8 +27,9 @@ DEMO_XML = sorted((ROOT / "demo_projects").glob("*.xml"))
 
 def _generator():
     """tools/make_xml_demos.py as a module: the invented truth of each demo."""
-    spec = importlib.util.spec_from_file_location("make_xml_demos",
-                                                  ROOT / "tools" / "make_xml_demos.py")
+    spec = importlib.util.spec_from_file_location(
+        "make_xml_demos", ROOT / "tools" / "make_xml_demos.py"
+    )
     assert spec is not None and spec.loader is not None
     module = importlib.util.module_from_spec(spec)
     sys.modules.setdefault("make_xml_demos", module)
@@ -46,8 +47,11 @@ def _coordinates(result: AdjustmentResult) -> dict[str, tuple[float, float, floa
 
 
 def test_three_demo_kinds_are_offered():
-    assert [p.name for p in DEMO_XML] == ["xml_gnss_network.xml", "xml_mixed_job.xml",
-                                          "xml_traverse_two_faces.xml"]
+    assert [p.name for p in DEMO_XML] == [
+        "xml_gnss_network.xml",
+        "xml_mixed_job.xml",
+        "xml_traverse_two_faces.xml",
+    ]
 
 
 @pytest.mark.parametrize("path", DEMO_XML, ids=lambda p: p.stem)
@@ -65,8 +69,7 @@ def test_a_book_written_as_xml_and_imported_again_adjusts_the_same(path: Path):
         for x, y in zip(a[name], b[name], strict=True):
             assert abs(x - y) < 1e-6, (name, a[name], b[name])
     assert first.summary.redundancy == second.summary.redundancy
-    assert math.isclose(first.summary.variance_factor, second.summary.variance_factor,
-                        rel_tol=1e-6)
+    assert math.isclose(first.summary.variance_factor, second.summary.variance_factor, rel_tol=1e-6)
 
 
 def test_the_writer_reads_faces_that_the_import_means_back():

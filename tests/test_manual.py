@@ -27,8 +27,8 @@ from pathlib import Path
 import pytest
 
 from server.errors import FieldbookError
-from server.fieldbook.lexer import DIRECTION_ENTRY, GRAMMARS, SD_RULES
 from server.fieldbook import model as fieldbook_model
+from server.fieldbook.lexer import DIRECTION_ENTRY, GRAMMARS, SD_RULES
 from server.pipeline import adjust_fieldbook
 from server.units import FILE_ANGLE_UNITS, FILE_LENGTH_UNITS, LENGTH_FACTORS
 
@@ -77,11 +77,11 @@ def test_the_manual_has_an_example_for_each_job_and_few_pending_ones():
     assert len(EXAMPLES) >= 8
     assert len(PENDING) <= 3, "keep the pending blocks few"
     assert REFUSED
-    jobs = TEXT[TEXT.index("## 16. Examples for each job"):TEXT.index("## 17.")]
+    jobs = TEXT[TEXT.index("## 16. Examples for each job") : TEXT.index("## 17.")]
     for heading in ("### Leveling", "### Traverse", "### Network", "### Boundary check"):
         start = jobs.index(heading)
         end = jobs.find("\n### ", start + 1)
-        assert "```fieldbook\n" in jobs[start:end if end > 0 else None], f"no example: {heading}"
+        assert "```fieldbook\n" in jobs[start : end if end > 0 else None], f"no example: {heading}"
 
 
 @pytest.mark.parametrize("block", EXAMPLES, ids=[f"line{line}" for line, _ in EXAMPLES])
@@ -100,9 +100,7 @@ def test_every_example_reads_adjusts_and_passes_its_global_test(block):
 
 def test_every_example_result_validates_against_the_schema():
     jsonschema = pytest.importorskip("jsonschema")
-    validator = jsonschema.Draft202012Validator(
-        json.loads(SCHEMA_PATH.read_text(encoding="utf-8"))
-    )
+    validator = jsonschema.Draft202012Validator(json.loads(SCHEMA_PATH.read_text(encoding="utf-8")))
     for line, text in EXAMPLES:
         errors = [error.message for error in validator.iter_errors(_adjust(text))]
         assert errors == [], f"the example at docs/fieldbook.md line {line}: {errors[:3]}"
@@ -163,8 +161,7 @@ def test_worked_standard_deviations_match_the_program():
     assert by_kind[("angle", "D")][0] == pytest.approx(4.5845, abs=5e-4)
     levels = sorted(by_kind[("level", "BM-2")] + by_kind[("level", "BM-1")])
     assert levels == pytest.approx([0.5916e-3, 0.8790e-3, 1.3000e-3], abs=1e-7)
-    for shown in ("3.61 mm", "3.87 mm", "0.59 mm", "0.88 mm", "1.30 mm", "2.09″", "3.28″",
-                  "4.58″"):
+    for shown in ("3.61 mm", "3.87 mm", "0.59 mm", "0.88 mm", "1.30 mm", "2.09″", "3.28″", "4.58″"):
         assert shown in TEXT, f"the manual no longer states {shown}"
 
 
@@ -273,10 +270,15 @@ def test_the_worked_traverse_closure_once_closures_are_computed():
     """Section 13's closure of the section 16 traverse, carried by hand here: azimuths
     forward through the booked angles from MON-B→MON-A, legs laid off from MON-B."""
     block = _block_titled("Quarry road - traverse from MON-B to MON-C")
-    known = {"MON-A": (5000.000, 8000.000), "MON-B": (5320.417, 7912.336),
-             "MON-C": (6502.918, 7890.071), "MON-D": (6780.552, 8140.225)}
-    angles = [_dms(v) for v in ("131:12:39.1", "242:32:38.2", "130:33:56.1", "234:15:51.6",
-                                "104:05:49.7")]
+    known = {
+        "MON-A": (5000.000, 8000.000),
+        "MON-B": (5320.417, 7912.336),
+        "MON-C": (6502.918, 7890.071),
+        "MON-D": (6780.552, 8140.225),
+    }
+    angles = [
+        _dms(v) for v in ("131:12:39.1", "242:32:38.2", "130:33:56.1", "234:15:51.6", "104:05:49.7")
+    ]
     legs = [348.7595, 336.1301, 357.9607, 315.9046]
 
     def azimuth(a, b):

@@ -19,8 +19,9 @@ PYPROJECT = tomllib.loads((ROOT / "pyproject.toml").read_text())
 
 def test_every_subpackage_is_listed_for_the_wheel():
     listed = set(PYPROJECT["tool"]["setuptools"]["packages"])
-    found = {".".join(p.parent.relative_to(ROOT).parts)
-             for p in (ROOT / "server").rglob("__init__.py")}
+    found = {
+        ".".join(p.parent.relative_to(ROOT).parts) for p in (ROOT / "server").rglob("__init__.py")
+    }
     assert found - listed == set(), "add these to [tool.setuptools] packages in pyproject.toml"
 
 
@@ -41,11 +42,29 @@ def installed(tmp_path_factory) -> Path:
     for name in ("pyproject.toml", "README.md", "server", "templates", "static", "demo_projects"):
         copy = shutil.copytree if (ROOT / name).is_dir() else shutil.copy2
         (source / name).parent.mkdir(parents=True, exist_ok=True)
-        copy(ROOT / name, source / name, **({"ignore": shutil.ignore_patterns("__pycache__")}
-                                            if (ROOT / name).is_dir() else {}))
-    subprocess.run([sys.executable, "-m", "pip", "wheel", "--quiet", "--no-deps",
-                    "--no-build-isolation", "--disable-pip-version-check", "-w", str(out),
-                    str(source)], check=True, capture_output=True, cwd=out)
+        copy(
+            ROOT / name,
+            source / name,
+            **({"ignore": shutil.ignore_patterns("__pycache__")} if (ROOT / name).is_dir() else {}),
+        )
+    subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "pip",
+            "wheel",
+            "--quiet",
+            "--no-deps",
+            "--no-build-isolation",
+            "--disable-pip-version-check",
+            "-w",
+            str(out),
+            str(source),
+        ],
+        check=True,
+        capture_output=True,
+        cwd=out,
+    )
     wheel = next(out.glob("stationfit-*.whl"))
     target = out / "site"
     with zipfile.ZipFile(wheel) as archive:
@@ -73,8 +92,14 @@ assert "xml_mixed_job" in client.get(imported.headers["location"]).text
 print("served")
 """
     env = dict(os.environ, PYTHONPATH=str(installed))
-    proc = subprocess.run([sys.executable, "-c", script, str(installed), str(tmp_path / "data")],
-                          cwd=tmp_path, env=env, capture_output=True, text=True, timeout=120)
+    proc = subprocess.run(
+        [sys.executable, "-c", script, str(installed), str(tmp_path / "data")],
+        cwd=tmp_path,
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
     assert proc.returncode == 0, proc.stderr
     assert "served" in proc.stdout
 

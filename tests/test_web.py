@@ -26,10 +26,33 @@ DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"
 BLUNDER = DEMOS / "leveling_blunder.fieldbook"
 BLUNDER_LINE = 38  # tools/DEMOS.md: +10 mm on level KR-106 KR-107
 
-CONTRACT_KEYS = {"format", "units", "summary", "points", "observations", "misclosures",
-                 "relative", "warnings", "caution"}
-OBSERVATION_KEYS = {"line", "kind", "from", "at", "to", "observed", "adjusted", "residual", "sd",
-                    "redundancy", "w", "mdb", "flagged", "ignored"}
+CONTRACT_KEYS = {
+    "format",
+    "units",
+    "summary",
+    "points",
+    "observations",
+    "misclosures",
+    "relative",
+    "warnings",
+    "caution",
+}
+OBSERVATION_KEYS = {
+    "line",
+    "kind",
+    "from",
+    "at",
+    "to",
+    "observed",
+    "adjusted",
+    "residual",
+    "sd",
+    "redundancy",
+    "w",
+    "mdb",
+    "flagged",
+    "ignored",
+}
 
 # Point names a spreadsheet would run, and one a browser would run; all valid field book names.
 HOSTILE = """fieldbook 1
@@ -57,8 +80,12 @@ def client(app: FastAPI) -> TestClient:
 
 
 def _upload(client: TestClient, data: bytes, filename: str = "upload.fieldbook", **form: str):
-    return client.post("/projects", files={"fieldbook": (filename, data, "text/plain")},
-                       data=form, follow_redirects=False)
+    return client.post(
+        "/projects",
+        files={"fieldbook": (filename, data, "text/plain")},
+        data=form,
+        follow_redirects=False,
+    )
 
 
 def _project_url(response) -> str:
@@ -100,8 +127,11 @@ def test_upload_shows_verdict_caution_and_the_flagged_observation(client):
 
 def test_downloads_are_attachments_with_safe_names(client):
     url = _project_url(_upload(client, BLUNDER.read_bytes(), 'C:\\tmp\\../"evil"; name.fieldbook'))
-    for suffix, kind in (("report.html", "text/html"), ("points.csv", "text/csv"),
-                         ("result.json", "application/json")):
+    for suffix, kind in (
+        ("report.html", "text/html"),
+        ("points.csv", "text/csv"),
+        ("result.json", "application/json"),
+    ):
         response = client.get(f"{url}/{suffix}")
         assert response.status_code == 200
         assert response.headers["content-type"].startswith(kind)
@@ -136,8 +166,11 @@ def test_original_field_book_is_kept_byte_for_byte(client):
 
 
 def test_pasted_text_is_adjusted_like_a_file(client):
-    response = client.post("/projects", data={"text": BLUNDER.read_text(), "name": "Pasted run"},
-                           follow_redirects=False)
+    response = client.post(
+        "/projects",
+        data={"text": BLUNDER.read_text(), "name": "Pasted run"},
+        follow_redirects=False,
+    )
     html = client.get(_project_url(response)).text
     assert "Pasted run" in html
     assert "is-flagged" in _row_of_line(html, BLUNDER_LINE)
@@ -167,7 +200,7 @@ def test_field_book_errors_are_listed_with_line_numbers_and_the_upload_is_kept(c
 
 
 def test_non_utf8_upload_gets_the_line_numbered_message(client):
-    raw = b"defaults level=1mm\npoint A height=1 fix\nlevel A B 1.0 note=\"caf\xe9\"\n"
+    raw = b'defaults level=1mm\npoint A height=1 fix\nlevel A B 1.0 note="caf\xe9"\n'
     url = _project_url(_upload(client, raw, "latin1.fieldbook"))
     html = client.get(url).text
     assert "Line 3" in html and "UTF-8" in html
@@ -181,7 +214,7 @@ def test_network_errors_name_the_points(client):
     url = _project_url(_upload(client, b"defaults level=1mm\nlevel A B 1.0\n", "nodatum.fieldbook"))
     html = client.get(url).text
     assert "The network cannot be adjusted" in html
-    assert "<code class=\"mark\">A</code>" in html and "<code class=\"mark\">B</code>" in html
+    assert '<code class="mark">A</code>' in html and '<code class="mark">B</code>' in html
 
 
 def test_demo_opens_as_a_new_project(client):
@@ -195,9 +228,16 @@ def test_demo_opens_as_a_new_project(client):
 
 @pytest.mark.parametrize(
     "name",
-    ["..%2F..%2Fetc%2Fpasswd", "..%2Fserver%2F__init__", "%2Fetc%2Fpasswd", "%2e%2e",
-     "%2e%2e%2f%2e%2e%2fetc%2fpasswd", "leveling_blunder.fieldbook", "leveling_blunder%00",
-     "LEVELING_BLUNDER"],
+    [
+        "..%2F..%2Fetc%2Fpasswd",
+        "..%2Fserver%2F__init__",
+        "%2Fetc%2Fpasswd",
+        "%2e%2e",
+        "%2e%2e%2f%2e%2e%2fetc%2fpasswd",
+        "leveling_blunder.fieldbook",
+        "leveling_blunder%00",
+        "LEVELING_BLUNDER",
+    ],
 )
 def test_demo_route_never_opens_a_path_from_the_request(client, name):
     for method in ("GET", "POST"):
@@ -359,8 +399,10 @@ def test_oversize_upload_is_refused_by_content_length(tmp_path):
 def test_oversize_upload_is_refused_while_reading_without_content_length(tmp_path):
     app = create_app(tmp_path, max_upload_bytes=2000)
     boundary = "sfboundary"
-    head = (f"--{boundary}\r\nContent-Disposition: form-data; name=\"fieldbook\"; "
-            f"filename=\"big.fieldbook\"\r\nContent-Type: text/plain\r\n\r\n").encode()
+    head = (
+        f'--{boundary}\r\nContent-Disposition: form-data; name="fieldbook"; '
+        f'filename="big.fieldbook"\r\nContent-Type: text/plain\r\n\r\n'
+    ).encode()
 
     def chunks():
         yield head
@@ -370,7 +412,8 @@ def test_oversize_upload_is_refused_while_reading_without_content_length(tmp_pat
 
     with TestClient(app) as client:
         response = client.post(
-            "/api/projects", content=chunks(),
+            "/api/projects",
+            content=chunks(),
             headers={"content-type": f"multipart/form-data; boundary={boundary}"},
         )
         assert response.status_code == 413
@@ -387,8 +430,16 @@ def test_upload_just_under_the_limit_is_accepted(tmp_path):
 
 def test_security_headers_on_every_response(client):
     url = _project_url(_upload(client, BLUNDER.read_bytes()))
-    for path in ("/", "/projects", url, f"{url}/points.csv", "/static/app.css", "/static/app.js",
-                 "/projects/" + "0" * 32, "/api/projects"):
+    for path in (
+        "/",
+        "/projects",
+        url,
+        f"{url}/points.csv",
+        "/static/app.css",
+        "/static/app.js",
+        "/projects/" + "0" * 32,
+        "/api/projects",
+    ):
         response = client.get(path)
         headers = response.headers
         assert headers["x-content-type-options"] == "nosniff", path
@@ -438,6 +489,7 @@ def test_adjustment_runs_off_the_event_loop(client, monkeypatch):
             except RuntimeError:
                 seen.append(False)
             return real(*args, **kwargs)
+
         return spy
 
     # /api/adjust adjusts the text; an upload parses first (for the title), then adjusts

@@ -76,8 +76,16 @@ distance <b>C</b> D 300.0008
 """.encode()
 EXAMPLES_PER_OPERATION = examples(10)
 NUMBERED_EXAMPLES = examples(60)
-RAW_MARKUP = [SCRIPT, "<script>alert(2)</script>", "<img src=x", "<svg onload", "<iframe",
-              "<b>", "</title><script>", "alert(7)</script>"]
+RAW_MARKUP = [
+    SCRIPT,
+    "<script>alert(2)</script>",
+    "<img src=x",
+    "<svg onload",
+    "<iframe",
+    "<b>",
+    "</title><script>",
+    "alert(7)</script>",
+]
 
 
 # ---------------------------------------------------------------------------------------
@@ -138,8 +146,10 @@ def test_openapi_operations_never_answer_5xx(tmp_path):
         numbered = re.search(r"\{(run|edit)_id\}", operation.path) is not None
         for mode in (GenerationMode.POSITIVE, GenerationMode.NEGATIVE):
 
-            @settings(max_examples=NUMBERED_EXAMPLES if numbered else EXAMPLES_PER_OPERATION,
-                      suppress_health_check=list(HealthCheck))
+            @settings(
+                max_examples=NUMBERED_EXAMPLES if numbered else EXAMPLES_PER_OPERATION,
+                suppress_health_check=list(HealthCheck),
+            )
             @given(case=operation.as_strategy(generation_mode=mode), real=st.booleans())
             def run(case, real) -> None:
                 parameters = case.path_parameters or {}
@@ -153,8 +163,11 @@ def test_openapi_operations_never_answer_5xx(tmp_path):
                 statuses[response.status_code] += 1
                 if real_project in case.formatted_path:
                     reached[case.path] += 1
-                assert response.status_code < 500, (where, response.status_code,
-                                                     response.text[:500])
+                assert response.status_code < 500, (
+                    where,
+                    response.status_code,
+                    response.text[:500],
+                )
                 _assert_security_headers(response, where)
                 if case.path.startswith("/api/"):
                     assert _header(response, "content-type").startswith("application/json"), where
@@ -181,8 +194,11 @@ def test_ids_beyond_the_database_integer_range_are_not_found(client):
         assert api.status_code == 404, (number, api.status_code)
         assert api.headers["content-type"].startswith("application/json")
         assert "error" in api.json()
-        undo = client.post(f"/projects/{project_id}/edits/{number}/undo",
-                           data={"token": token}, follow_redirects=False)
+        undo = client.post(
+            f"/projects/{project_id}/edits/{number}/undo",
+            data={"token": token},
+            follow_redirects=False,
+        )
         assert undo.status_code == 404, (number, undo.status_code)
         assert "Not found" in undo.text
     # the largest id SQLite stores is a valid number that names no run
@@ -196,8 +212,12 @@ def test_head_is_answered_wherever_get_is(client):
     project_id = _create(client, BLUNDER, "leveling_blunder.fieldbook")
     paths = client.get("/api/openapi.json").json()["paths"]
     gets = [p for p, ops in paths.items() if "get" in ops]
-    urls = [p.replace("{project_id}", project_id).replace("{name}", "leveling_blunder")
-            .replace("{run_id}", "1") for p in gets]
+    urls = [
+        p.replace("{project_id}", project_id)
+        .replace("{name}", "leveling_blunder")
+        .replace("{run_id}", "1")
+        for p in gets
+    ]
     urls += ["/static/app.js", "/projects/" + "f" * 32, "/no/such/page"]
     assert len(urls) >= 13
     for url in urls:
@@ -229,24 +249,68 @@ _OPENED: list[str] | None = None
 
 def _audit(event: str, args: tuple) -> None:
     if _OPENED is not None and event == "open" and isinstance(args[0], (str, bytes, Path)):
-        _OPENED.append(str(args[0], "utf-8", "replace") if isinstance(args[0], bytes)
-                       else str(args[0]))
+        _OPENED.append(
+            str(args[0], "utf-8", "replace") if isinstance(args[0], bytes) else str(args[0])
+        )
 
 
 sys.addaudithook(_audit)  # process-wide and permanent; records only while _OPENED is a list
 _AUDIT_LOCK = threading.Lock()
 
-TRAVERSALS = ["../", "..%2f", "..%2F", "%2e%2e%2f", "%2e%2e/", "..\\", "..%5c", "%252e%252e%252f",
-              "....//", "/", "//", "%2f", "%00", "\x00", "%c0%af", "．．／", "~", "$HOME",
-              "etc/passwd", "server/__init__.py", DATABASE_NAME, "secret.fieldbook", ".",
-              "leveling_blunder", "static/app.js", "C:\\Windows\\win.ini", "%0a", "?", "#"]
+TRAVERSALS = [
+    "../",
+    "..%2f",
+    "..%2F",
+    "%2e%2e%2f",
+    "%2e%2e/",
+    "..\\",
+    "..%5c",
+    "%252e%252e%252f",
+    "....//",
+    "/",
+    "//",
+    "%2f",
+    "%00",
+    "\x00",
+    "%c0%af",
+    "．．／",
+    "~",
+    "$HOME",
+    "etc/passwd",
+    "server/__init__.py",
+    DATABASE_NAME,
+    "secret.fieldbook",
+    ".",
+    "leveling_blunder",
+    "static/app.js",
+    "C:\\Windows\\win.ini",
+    "%0a",
+    "?",
+    "#",
+]
 SECRET = "SENTINEL-9c41-not-for-the-web"
-ROUTES = ["/projects/{p}", "/projects/{p}/report.html", "/projects/{p}/report.pdf",
-          "/projects/{p}/points.csv", "/projects/{p}/points.geojson", "/projects/{p}/result.json",
-          "/projects/{p}/fieldbook", "/projects/{p}/review", "/projects/{p}/compare",
-          "/projects/{p}/fieldbook/edited", "/projects/{p}/edits", "/projects/{p}/runs",
-          "/projects/{p}/edits/{p}/undo", "/projects/{p}/delete", "/projects/{p}/confirm-delete",
-          "/demos/{p}", "/api/projects/{p}", "/api/projects/{p}/runs/{p}", "/static/{p}", "/{p}"]
+ROUTES = [
+    "/projects/{p}",
+    "/projects/{p}/report.html",
+    "/projects/{p}/report.pdf",
+    "/projects/{p}/points.csv",
+    "/projects/{p}/points.geojson",
+    "/projects/{p}/result.json",
+    "/projects/{p}/fieldbook",
+    "/projects/{p}/review",
+    "/projects/{p}/compare",
+    "/projects/{p}/fieldbook/edited",
+    "/projects/{p}/edits",
+    "/projects/{p}/runs",
+    "/projects/{p}/edits/{p}/undo",
+    "/projects/{p}/delete",
+    "/projects/{p}/confirm-delete",
+    "/demos/{p}",
+    "/api/projects/{p}",
+    "/api/projects/{p}/runs/{p}",
+    "/static/{p}",
+    "/{p}",
+]
 
 
 @pytest.fixture(scope="module")
@@ -256,8 +320,16 @@ def walled(tmp_path_factory: pytest.TempPathFactory):
     (top / "secret.fieldbook").write_text(SECRET)
     data = top / "data"
     app = create_app(data)
-    allowed = [REPO / "static", REPO / "templates", REPO / "demo_projects", REPO / "server",
-               data, Path(sys.prefix), Path(sys.base_prefix), Path(sys.exec_prefix)]
+    allowed = [
+        REPO / "static",
+        REPO / "templates",
+        REPO / "demo_projects",
+        REPO / "server",
+        data,
+        Path(sys.prefix),
+        Path(sys.base_prefix),
+        Path(sys.exec_prefix),
+    ]
     with TestClient(app) as c:
         project_id = _create(c, BLUNDER, "leveling_blunder.fieldbook")
         yield c, project_id, [a.resolve() for a in allowed], top
@@ -272,11 +344,13 @@ def _inside(path: str, roots: list[Path]) -> bool:
     return any(resolved == root or root in resolved.parents for root in roots)
 
 
-@settings(max_examples=examples(120),
-          suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(route=st.sampled_from(ROUTES),
-       pieces=st.lists(st.sampled_from(TRAVERSALS), min_size=1, max_size=4),
-       encode=st.booleans(), method=st.sampled_from(["GET", "POST"]))
+@settings(max_examples=examples(120), suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(
+    route=st.sampled_from(ROUTES),
+    pieces=st.lists(st.sampled_from(TRAVERSALS), min_size=1, max_size=4),
+    encode=st.booleans(),
+    method=st.sampled_from(["GET", "POST"]),
+)
 def test_route_parameters_never_reach_the_file_system(walled, route, pieces, encode, method):
     global _OPENED
     client, project_id, roots, top = walled
@@ -323,12 +397,15 @@ def test_the_audit_hook_sees_what_the_service_opens(walled):
 def _decide(client: TestClient, project_id: str, line: int, reason: str) -> None:
     """Leave one observation out with a reason, and re-run (the review workflow)."""
     token = client.app.state.store.get_project(project_id).form_token
-    queued = client.post(f"/projects/{project_id}/edits", follow_redirects=False,
-                         data={"token": token, "line": str(line), "action": "exclude",
-                               "reason": reason})
+    queued = client.post(
+        f"/projects/{project_id}/edits",
+        follow_redirects=False,
+        data={"token": token, "line": str(line), "action": "exclude", "reason": reason},
+    )
     assert queued.status_code == 303, queued.text[:2000]
-    rerun = client.post(f"/projects/{project_id}/runs", data={"token": token},
-                        follow_redirects=False)
+    rerun = client.post(
+        f"/projects/{project_id}/runs", data={"token": token}, follow_redirects=False
+    )
     assert rerun.status_code == 303, rerun.text[:2000]
 
 
@@ -341,9 +418,15 @@ def _no_live_markup(html: str, where: str) -> None:
 
 def test_user_strings_are_escaped_in_every_page_plot_and_report(client):
     project_id = _create(client, HOSTILE_BOOK)
-    _decide(client, project_id, 9, "<script>alert(6)</script> said \"the chief\"")
-    pages = ["/", "/projects", f"/projects/{project_id}", f"/projects/{project_id}/review",
-             f"/projects/{project_id}/compare", f"/projects/{project_id}/report.html"]
+    _decide(client, project_id, 9, '<script>alert(6)</script> said "the chief"')
+    pages = [
+        "/",
+        "/projects",
+        f"/projects/{project_id}",
+        f"/projects/{project_id}/review",
+        f"/projects/{project_id}/compare",
+        f"/projects/{project_id}/report.html",
+    ]
     for path in pages:
         response = client.get(path)
         assert response.status_code == 200, path
@@ -369,15 +452,21 @@ def test_user_strings_are_escaped_in_every_page_plot_and_report(client):
         svg = re.search(r'<svg[^>]*class="np-[^"]*".*?</svg>', html, re.DOTALL)
         assert svg, f"{path}: no network plot"
         assert "&lt;script&gt;alert(1)&lt;/script&gt;" in svg.group(0), path
-    data = re.search(r'<script type="application/json" id="np-data">(.*?)</script>',
-                     client.get(f"/projects/{plotted}").text, re.DOTALL)
+    data = re.search(
+        r'<script type="application/json" id="np-data">(.*?)</script>',
+        client.get(f"/projects/{plotted}").text,
+        re.DOTALL,
+    )
     assert data and "<" not in data.group(1)  # the data block cannot close its element
 
 
 def test_json_downloads_are_never_sniffed_as_html(client):
     project_id = _create(client, HOSTILE_BOOK)
-    for path in (f"/projects/{project_id}/result.json", f"/api/projects/{project_id}",
-                 f"/projects/{project_id}/fieldbook"):
+    for path in (
+        f"/projects/{project_id}/result.json",
+        f"/api/projects/{project_id}",
+        f"/projects/{project_id}/fieldbook",
+    ):
         response = client.get(path)
         assert response.status_code == 200, path
         assert response.headers["x-content-type-options"] == "nosniff", path
@@ -399,9 +488,13 @@ def test_security_headers_on_every_route_and_error(client, tmp_path):
         response = client.get(path)
         assert response.status_code < 500, path
         _assert_security_headers(response, path)
-    errors = [client.get("/projects/" + "f" * 32), client.get("/no/such/page"),
-              client.get("/api/adjust"), client.post("/projects", data={"x": "1" * 10}),
-              client.get(f"/api/projects/{project_id}/runs/not-a-number")]
+    errors = [
+        client.get("/projects/" + "f" * 32),
+        client.get("/no/such/page"),
+        client.get("/api/adjust"),
+        client.post("/projects", data={"x": "1" * 10}),
+        client.get(f"/api/projects/{project_id}/runs/not-a-number"),
+    ]
     assert [r.status_code for r in errors] == [404, 404, 405, 400, 404]
     for response in errors:
         _assert_security_headers(response, str(response.url))

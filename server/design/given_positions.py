@@ -32,18 +32,27 @@ def check_given_positions(fieldbook: Fieldbook) -> None:
         raise NetworkError(
             "a design needs the approximate coordinates of every point on its point line "
             "(planned observations have no values to compute them from); missing: "
-            f"{listing}{more}", tuple(names))
+            f"{listing}{more}",
+            tuple(names),
+        )
 
 
 def _lacking(point: PointStatement | None, kind: str, spatial: bool) -> str:
     """What this observation needs of the point and the book does not give ("" if nothing)."""
     placed = point is not None and (
-        point.latitude is not None or (point.east is not None and point.north is not None))
+        point.latitude is not None or (point.east is not None and point.north is not None)
+    )
     height = point is not None and point.height is not None
     needs_place = kind in HORIZONTAL_KINDS or kind in SPATIAL_KINDS
     needs_height = kind == "level" or (spatial and needs_place)
-    wanted = [what for what, need, has in (("east, north", needs_place, placed),
-                                           ("height", needs_height, height)) if need and not has]
+    wanted = [
+        what
+        for what, need, has in (
+            ("east, north", needs_place, placed),
+            ("height", needs_height, height),
+        )
+        if need and not has
+    ]
     if point is None:
         return "no point line"
     return " and ".join(wanted)

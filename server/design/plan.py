@@ -45,17 +45,24 @@ from server.units import LENGTH_FACTORS
 WEAK_REDUNDANCY = 0.3
 
 
-def plan_fieldbook(text: str | bytes, *, source: str = "", switched_off: Collection[int] = (),
-                   limits: WorkLimits = UNLIMITED) -> AdjustmentResult:
+def plan_fieldbook(
+    text: str | bytes,
+    *,
+    source: str = "",
+    switched_off: Collection[int] = (),
+    limits: WorkLimits = UNLIMITED,
+) -> AdjustmentResult:
     """Parse a design book and compute its figures; ``switched_off`` are observation lines left
     out (as if marked ignore).  Raises ``FieldbookError`` or ``NetworkError`` like ``adjust``."""
     with paused_gc():
-        return plan_parsed(parse_fieldbook(text, source=source), switched_off=switched_off,
-                           limits=limits)
+        return plan_parsed(
+            parse_fieldbook(text, source=source), switched_off=switched_off, limits=limits
+        )
 
 
-def plan_parsed(fieldbook: Fieldbook, *, switched_off: Collection[int] = (),
-                limits: WorkLimits = UNLIMITED) -> AdjustmentResult:
+def plan_parsed(
+    fieldbook: Fieldbook, *, switched_off: Collection[int] = (), limits: WorkLimits = UNLIMITED
+) -> AdjustmentResult:
     """The design figures of an already parsed book (the design page re-evaluates here)."""
     check_observation_limit(fieldbook, limits)
     book = design_book(fieldbook, switched_off)
@@ -75,7 +82,8 @@ def design_book(fieldbook: Fieldbook, switched_off: Collection[int] = ()) -> Fie
     off = set(switched_off)
     observations = tuple(
         dataclasses.replace(o, ignored=True) if o.line in off and not o.ignored else o
-        for o in fieldbook.observations)
+        for o in fieldbook.observations
+    )
     tests = dataclasses.replace(fieldbook.tests, precision="prior")
     return dataclasses.replace(fieldbook, observations=observations, tests=tests)
 
@@ -90,8 +98,14 @@ def design_state(network: Network) -> State:
         state = GeodeticState(network)
     else:
         nan = math.nan
-        given = {p.name: (nan if p.east is None else p.east, nan if p.north is None else p.north,
-                          nan if p.height is None else p.height) for p in network.points}
+        given = {
+            p.name: (
+                nan if p.east is None else p.east,
+                nan if p.north is None else p.north,
+                nan if p.height is None else p.height,
+            )
+            for p in network.points
+        }
         state = State(network, given)
     state.orientation[:] = 0.0
     return state
@@ -133,32 +147,53 @@ def with_design_lengths(network: Network, state: State) -> Network:
     return dataclasses.replace(network, used=used, fieldbook=book)
 
 
-def design_result(result: AdjustmentResult, network: Network,
-                  linear: Linearisation) -> AdjustmentResult:
+def design_result(
+    result: AdjustmentResult, network: Network, linear: Linearisation
+) -> AdjustmentResult:
     """The adjustment-shaped result of a design: values emptied, external reliability and the
     weakly controlled observations added."""
     reliability = external_reliability(network, linear)
     observations = tuple(_planned(o, reliability.get(o.line)) for o in result.observations)
-    weak = [o for o in observations if o.redundancy is not None and o.redundancy < WEAK_REDUNDANCY
-            and o.component is None and o.redundancy >= UNCONTROLLED]
+    weak = [
+        o
+        for o in observations
+        if o.redundancy is not None
+        and o.redundancy < WEAK_REDUNDANCY
+        and o.component is None
+        and o.redundancy >= UNCONTROLLED
+    ]
     warnings = list(result.warnings)
     if weak:
-        shown = "; ".join(f"line {o.line} ({o.kind} {o.from_point}–{o.to}, r = {o.redundancy:.2f})"
-                          for o in weak[:10])
+        shown = "; ".join(
+            f"line {o.line} ({o.kind} {o.from_point}–{o.to}, r = {o.redundancy:.2f})"
+            for o in weak[:10]
+        )
         more = f" and {len(weak) - 10} more" if len(weak) > 10 else ""
-        warnings.append(f"weakly controlled observations (redundancy number below "
-                        f"{WEAK_REDUNDANCY}): {shown}{more}")
-    summary = dataclasses.replace(result.summary, design=True, variance_factor=None,
-                                  global_test=None, iterations=0)
-    return dataclasses.replace(result, summary=summary, observations=observations,
-                               warnings=tuple(warnings), baseline_tests=())
+        warnings.append(
+            f"weakly controlled observations (redundancy number below "
+            f"{WEAK_REDUNDANCY}): {shown}{more}"
+        )
+    summary = dataclasses.replace(
+        result.summary, design=True, variance_factor=None, global_test=None, iterations=0
+    )
+    return dataclasses.replace(
+        result,
+        summary=summary,
+        observations=observations,
+        warnings=tuple(warnings),
+        baseline_tests=(),
+    )
 
 
 def weak_lines(result: AdjustmentResult) -> list[int]:
     """Lines of the used observations with 0.001 ≤ r < 0.3 (weakly controlled)."""
-    return [o.line for o in result.observations
-            if o.redundancy is not None and UNCONTROLLED <= o.redundancy < WEAK_REDUNDANCY
-            and o.component is None]
+    return [
+        o.line
+        for o in result.observations
+        if o.redundancy is not None
+        and UNCONTROLLED <= o.redundancy < WEAK_REDUNDANCY
+        and o.component is None
+    ]
 
 
 def external_reliability(network: Network, linear: Linearisation) -> dict[int, float]:
@@ -188,7 +223,14 @@ def _first_rows(used: tuple[Observation, ...]) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _planned(o: ObservationResult, reliability: float | None) -> ObservationResult:
-    return dataclasses.replace(o, observed=None, adjusted=None, residual=None, w=None,
-                               estimated_bias=None, booked=None, flagged=False,
-                               external_reliability=reliability)
-
+    return dataclasses.replace(
+        o,
+        observed=None,
+        adjusted=None,
+        residual=None,
+        w=None,
+        estimated_bias=None,
+        booked=None,
+        flagged=False,
+        external_reliability=reliability,
+    )

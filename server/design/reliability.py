@@ -23,14 +23,19 @@ CHUNK = 512
 def point_shift_rows(network: Network) -> tuple[np.ndarray, np.ndarray]:
     """(unknown index, point index) of every coordinate unknown, orientations left out."""
     points = {p.name: k for k, p in enumerate(network.points)}
-    pairs = [(k, points[p.point]) for k, p in enumerate(network.parameters)
-             if p.kind != "O" and p.point is not None]
+    pairs = [
+        (k, points[p.point])
+        for k, p in enumerate(network.parameters)
+        if p.kind != "O" and p.point is not None
+    ]
     table = np.array(pairs, dtype=np.int64).reshape(-1, 2)
     return table[:, 0], table[:, 1]
 
 
 def largest_point_shifts(
-    network: Network, shifts: Callable[[np.ndarray], np.ndarray], rows: np.ndarray,
+    network: Network,
+    shifts: Callable[[np.ndarray], np.ndarray],
+    rows: np.ndarray,
     mdb: np.ndarray,
 ) -> np.ndarray:
     """Per row in ``rows`` (with its MDB in SI): the largest point shift in metres."""

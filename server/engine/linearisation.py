@@ -36,8 +36,9 @@ class Linearisation:
     shifts: Callable[[np.ndarray], np.ndarray]
 
 
-def linearise_once(network: Network, state: State, *, method: str = "auto",
-                   factorization: str | None = None) -> Linearisation:
+def linearise_once(
+    network: Network, state: State, *, method: str = "auto", factorization: str | None = None
+) -> Linearisation:
     """Evaluate A at ``state`` once and factorize N; no misclosure enters anywhere.
 
     Raises ``NetworkError`` (naming the points) when N is singular, as the adjustment does.
@@ -60,17 +61,25 @@ def linearise_once(network: Network, state: State, *, method: str = "auto",
     for array in (evaluation.sigmas, evaluation.computed, residuals, explained):
         array.flags.writeable = False
     solution = Solution(
-        network=network, coordinates=state.coordinates(),
-        orientations=state.orientation_dict(), control=state.control_rows,
-        sigmas=evaluation.sigmas, residuals=residuals, adjusted=evaluation.computed,
-        adjusted_cofactor=explained, iterations=0, status=DESIGN_STATUS, cofactor=cofactor,
-        method=engine.name, hat=hat, positions=state.positions(),
+        network=network,
+        coordinates=state.coordinates(),
+        orientations=state.orientation_dict(),
+        control=state.control_rows,
+        sigmas=evaluation.sigmas,
+        residuals=residuals,
+        adjusted=evaluation.computed,
+        adjusted_cofactor=explained,
+        iterations=0,
+        status=DESIGN_STATUS,
+        cofactor=cofactor,
+        method=engine.name,
+        hat=hat,
+        positions=state.positions(),
     )
     return Linearisation(solution, _shift_operator(engine, evaluation))
 
 
-def _shift_operator(engine: _Engine, evaluation: Evaluation
-                    ) -> Callable[[np.ndarray], np.ndarray]:
+def _shift_operator(engine: _Engine, evaluation: Evaluation) -> Callable[[np.ndarray], np.ndarray]:
     """rows ↦ Qxx·Aᵀ·P·E_rows: dx for a unit error in each row (S-transformed if free)."""
     design = engine.normals.design(evaluation).tocsc()
     weights = evaluation.weights
@@ -83,7 +92,7 @@ def _shift_operator(engine: _Engine, evaluation: Evaluation
         if kept.size == 0 or rows.size == 0:
             return out
         # Aᵀ·P·e_r is row r of A (transposed) times its weight
-        rhs = (design[rows, :].T.toarray() * weights[rows][None, :])
+        rhs = design[rows, :].T.toarray() * weights[rows][None, :]
         with _one_blas_thread():
             out[kept, :] = np.asarray(solve(np.ascontiguousarray(rhs))).reshape(kept.size, -1)
         if engine._datum is not None:

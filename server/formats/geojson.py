@@ -26,9 +26,11 @@ Position = list[float]
 
 
 #: Why a result without a CRS has no GeoJSON (shown on the page and returned by the route).
-NO_CRS = ("GeoJSON holds longitude and latitude, and this field book has no crs line to give "
-          "them: add 'crs EPSG:CODE' (or a site grid, 'crs local lat= lon=') to the field book, "
-          "or download the points CSV, which carries the grid coordinates")
+NO_CRS = (
+    "GeoJSON holds longitude and latitude, and this field book has no crs line to give "
+    "them: add 'crs EPSG:CODE' (or a site grid, 'crs local lat= lon=') to the field book, "
+    "or download the points CSV, which carries the grid coordinates"
+)
 
 
 class GeoJsonUnavailable(ValueError):
@@ -64,9 +66,14 @@ def _point_feature(p: PointResult, position: Position | None) -> dict[str, objec
         "ellipse_confidence": p.ellipse.confidence if p.ellipse else None,
     }
     if p.latitude is not None or p.longitude is not None:
-        properties.update(latitude=p.latitude, longitude=p.longitude,
-                          ellipsoidal_height=p.ellipsoidal_height, geoid=p.geoid,
-                          scale_factor=p.scale_factor, convergence_deg=p.convergence)
+        properties.update(
+            latitude=p.latitude,
+            longitude=p.longitude,
+            ellipsoidal_height=p.ellipsoidal_height,
+            geoid=p.geoid,
+            scale_factor=p.scale_factor,
+            convergence_deg=p.convergence,
+        )
     return {
         "type": "Feature",
         "id": f"point:{p.name}",
@@ -120,10 +127,12 @@ def geojson(result: AdjustmentResult) -> dict[str, object]:
     positions = {name: xy for name, xy in located.items() if xy is not None}
     features = [_point_feature(p, located[p.name]) for p in result.points]
     features += [_line_feature(o, positions) for o in result.observations]
-    system = (f"longitude, latitude (decimal degrees) and ellipsoidal height (m) on the "
-              f"geodetic datum of {crs}; where that datum is not WGS 84 they are not "
-              "transformed to it (the two may differ by up to about 2 m); grid east, north "
-              f"and orthometric height in the properties, in {result.length_unit}")
+    system = (
+        f"longitude, latitude (decimal degrees) and ellipsoidal height (m) on the "
+        f"geodetic datum of {crs}; where that datum is not WGS 84 they are not "
+        "transformed to it (the two may differ by up to about 2 m); grid east, north "
+        f"and orthometric height in the properties, in {result.length_unit}"
+    )
     return {
         "type": "FeatureCollection",
         "coordinate_system": system,

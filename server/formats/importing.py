@@ -104,9 +104,13 @@ def import_with_summary(
     used = [r for r in survey.readings if not r.unused]
     # a reduced value's note names every line it was meaned from: "xml lines 16,20: …"
     # (a round's own header lists all its lines, and is no reduction)
-    reductions = sum(1 for line in imported.text.splitlines()
-                     if not line.lstrip().startswith(("#", "directions "))
-                     and ' lines ' in line and 'note="' in line)
+    reductions = sum(
+        1
+        for line in imported.text.splitlines()
+        if not line.lstrip().startswith(("#", "directions "))
+        and " lines " in line
+        and 'note="' in line
+    )
     summary = ImportSummary(
         kind="xml" if is_xml(data, source) else "csv",
         setups=len({(r.setup, r.station) for r in used}),

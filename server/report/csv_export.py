@@ -22,15 +22,31 @@ def _number(value: float | None, decimals: int) -> str:
 
 
 POINT_CSV_HEADER = (
-    "name", "east", "north", "height", "sd_east", "sd_north", "sd_height",
-    "fixed", "weighted", "semi_major", "semi_minor", "azimuth", "note",
+    "name",
+    "east",
+    "north",
+    "height",
+    "sd_east",
+    "sd_north",
+    "sd_height",
+    "fixed",
+    "weighted",
+    "semi_major",
+    "semi_minor",
+    "azimuth",
+    "note",
 )
 
 
 #: Columns after ``height`` when the result has a CRS: degrees to 9 decimals (about 0.1 mm),
 #: heights in the file's unit, the scale factor to 9 and the convergence (degrees) to 7.
 GEODETIC_CSV_HEADER = (
-    "latitude", "longitude", "ellipsoidal_height", "geoid", "scale_factor", "convergence",
+    "latitude",
+    "longitude",
+    "ellipsoidal_height",
+    "geoid",
+    "scale_factor",
+    "convergence",
 )
 
 
@@ -49,23 +65,34 @@ def points_csv(result: AdjustmentResult) -> str:
     places = LENGTH_DECIMALS.get(result.length_unit, 4)
     for p in result.points:
         e = p.ellipse
-        extra = [_number(p.latitude, 9), _number(p.longitude, 9),
-                 _number(p.ellipsoidal_height, places), _number(p.geoid, places),
-                 _number(p.scale_factor, 9), _number(p.convergence, 7)] if geodetic else []
-        writer.writerow([
-            safe_cell(p.name),
-            _number(p.east, places),
-            _number(p.north, places),
-            _number(p.height, places),
-            *extra,
-            _number(p.sd_east, places),
-            _number(p.sd_north, places),
-            _number(p.sd_height, places),
-            safe_cell(p.fixed),
-            safe_cell(p.weighted),
-            _number(e.semi_major if e else None, places),
-            _number(e.semi_minor if e else None, places),
-            _number(e.azimuth if e else None, 4),
-            safe_cell(p.note),
-        ])
+        extra = (
+            [
+                _number(p.latitude, 9),
+                _number(p.longitude, 9),
+                _number(p.ellipsoidal_height, places),
+                _number(p.geoid, places),
+                _number(p.scale_factor, 9),
+                _number(p.convergence, 7),
+            ]
+            if geodetic
+            else []
+        )
+        writer.writerow(
+            [
+                safe_cell(p.name),
+                _number(p.east, places),
+                _number(p.north, places),
+                _number(p.height, places),
+                *extra,
+                _number(p.sd_east, places),
+                _number(p.sd_north, places),
+                _number(p.sd_height, places),
+                safe_cell(p.fixed),
+                safe_cell(p.weighted),
+                _number(e.semi_major if e else None, places),
+                _number(e.semi_minor if e else None, places),
+                _number(e.azimuth if e else None, 4),
+                safe_cell(p.note),
+            ]
+        )
     return buffer.getvalue()

@@ -54,10 +54,15 @@ def _planned_row(o: ObservationResult, unit: str) -> PlannedRow:
     r = o.redundancy
     lines = ", ".join(str(line) for line in o.inseparable[:8])
     return PlannedRow(
-        line=o.line, kind=o.kind + (f" {o.component}" if o.component else ""),
-        stations=stations(o), sd=small(o.sd), redundancy=fmt_ratio(r, 3),
-        mdb=small(o.mdb), external=fmt_length(o.external_reliability, unit),
-        used=used and not o.ignored, weak=r is not None and UNCONTROLLED <= r < WEAK_REDUNDANCY,
+        line=o.line,
+        kind=o.kind + (f" {o.component}" if o.component else ""),
+        stations=stations(o),
+        sd=small(o.sd),
+        redundancy=fmt_ratio(r, 3),
+        mdb=small(o.mdb),
+        external=fmt_length(o.external_reliability, unit),
+        used=used and not o.ignored,
+        weak=r is not None and UNCONTROLLED <= r < WEAK_REDUNDANCY,
         uncontrolled=r is not None and r < UNCONTROLLED,
         inseparable=f"same test as {lines}" if lines else "",
     )
@@ -101,19 +106,30 @@ def design_figures(result: AdjustmentResult) -> dict[str, Any]:
     data = design_context(result)
     return {
         "summary": [[label, value] for label, value in data["summary_rows"]],
-        "points": {p.name: [p.sd_east, p.sd_north, p.sd_height, p.semi_major, p.semi_minor,
-                            p.azimuth] for p in data["points"]},
-        "observations": {str(o.line): {"sd": o.sd, "redundancy": o.redundancy, "mdb": o.mdb,
-                                       "external": o.external, "note": planned_note(o)}
-                         for o in data["planned"]},
-        "relative": [[r.from_point, r.to_point, r.semi_major, r.semi_minor, r.allowed, r.status]
-                     for r in data["relative"]],
+        "points": {
+            p.name: [p.sd_east, p.sd_north, p.sd_height, p.semi_major, p.semi_minor, p.azimuth]
+            for p in data["points"]
+        },
+        "observations": {
+            str(o.line): {
+                "sd": o.sd,
+                "redundancy": o.redundancy,
+                "mdb": o.mdb,
+                "external": o.external,
+                "note": planned_note(o),
+            }
+            for o in data["planned"]
+        },
+        "relative": [
+            [r.from_point, r.to_point, r.semi_major, r.semi_minor, r.allowed, r.status]
+            for r in data["relative"]
+        ],
         "warnings": list(result.warnings),
     }
 
 
 def planned_note(o: PlannedRow) -> str:
-    """"switched off", "uncontrolled", "weak" and the inseparable lines, as the tables say."""
+    """ "switched off", "uncontrolled", "weak" and the inseparable lines, as the tables say."""
     if not o.used:
         return "switched off"
     words = ["uncontrolled"] if o.uncontrolled else ["weak"] if o.weak else []

@@ -74,19 +74,29 @@ def model_rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:
     s = result.summary
     if not s.geodetic_keys:
         return []
-    out = [("Model", "geodetic 3D (Earth-centred positions)" if result.geodetic
-            else "plane (grid coordinates)", "")]
+    out = [
+        (
+            "Model",
+            "geodetic 3D (Earth-centred positions)"
+            if result.geodetic
+            else "plane (grid coordinates)",
+            "",
+        )
+    ]
     out.append(("Coordinate reference system", s.crs or NOT_APPLICABLE, ""))
     if result.geodetic:
         k = NOT_APPLICABLE if s.refraction is None else f"{s.refraction:g}"
-        out += [("Refraction coefficient k", k, ""),
-                ("Geoid", GEOID_SOURCE, ""),
-                ("Vertical", DEFLECTION_NOTE, "")]
+        out += [
+            ("Refraction coefficient k", k, ""),
+            ("Geoid", GEOID_SOURCE, ""),
+            ("Vertical", DEFLECTION_NOTE, ""),
+        ]
     return out
 
 
-def geodetic_point_rows(result: AdjustmentResult,
-                        window: slice = slice(None)) -> list[GeodeticPointRow]:
+def geodetic_point_rows(
+    result: AdjustmentResult, window: slice = slice(None)
+) -> list[GeodeticPointRow]:
     """Latitude, longitude, h, N, H, scale factor and convergence of each point (with a CRS)."""
     if not result.summary.geodetic_keys:
         return []
@@ -110,9 +120,13 @@ def baseline_test_rows(result: AdjustmentResult) -> list[BaselineTestRow]:
     """One row per tested baseline, in file order."""
     return [
         BaselineTestRow(
-            line=t.line, from_point=t.from_point, to_point=t.to_point,
-            statistic=fmt_ratio(t.statistic), critical=fmt_ratio(t.critical),
-            flagged=t.flagged, status="flagged" if t.flagged else "ok",
+            line=t.line,
+            from_point=t.from_point,
+            to_point=t.to_point,
+            statistic=fmt_ratio(t.statistic),
+            critical=fmt_ratio(t.critical),
+            flagged=t.flagged,
+            status="flagged" if t.flagged else "ok",
         )
         for t in result.baseline_tests
     ]
@@ -123,13 +137,17 @@ def geodetic_note(result: AdjustmentResult) -> str:
     if not result.summary.geodetic_keys:
         return ""
     unit = length_label(result.length_unit)
-    text = (f"Latitude and longitude in decimal degrees (south and west negative); heights in "
-            f"{unit}: ellipsoidal h, geoid undulation N and orthometric H = h − N. Scale factor: "
-            "the projection's point scale factor; convergence: grid north minus true north.")
+    text = (
+        f"Latitude and longitude in decimal degrees (south and west negative); heights in "
+        f"{unit}: ellipsoidal h, geoid undulation N and orthometric H = h − N. Scale factor: "
+        "the projection's point scale factor; convergence: grid north minus true north."
+    )
     if result.geodetic:
-        text += (" Standard deviations and ellipses are along local east, north and up (the "
-                 "ellipsoid normal); ellipse azimuths are clockwise from true north, and a "
-                 "relative ellipse is in the local axes at the first point of its pair.")
+        text += (
+            " Standard deviations and ellipses are along local east, north and up (the "
+            "ellipsoid normal); ellipse azimuths are clockwise from true north, and a "
+            "relative ellipse is in the local axes at the first point of its pair."
+        )
     return text
 
 
@@ -138,11 +156,13 @@ def baseline_test_note(result: AdjustmentResult) -> str:
     if not result.baseline_tests:
         return ""
     critical = fmt_ratio(result.baseline_tests[0].critical)
-    return ("Each baseline's three residual components tested together: vᵀ·Qv⁺·v (Qv the "
-            "baseline's 3×3 cofactor block of the residuals, pseudo-inverse where it is "
-            "singular; components with redundancy below 0.001 left out), flagged above the "
-            f"χ²(3) quantile at 1 − α₀ = {critical}. Each component also has its own w-test in "
-            "the observations table, which allows for the correlations within the baseline.")
+    return (
+        "Each baseline's three residual components tested together: vᵀ·Qv⁺·v (Qv the "
+        "baseline's 3×3 cofactor block of the residuals, pseudo-inverse where it is "
+        "singular; components with redundancy below 0.001 left out), flagged above the "
+        f"χ²(3) quantile at 1 − α₀ = {critical}. Each component also has its own w-test in "
+        "the observations table, which allows for the correlations within the baseline."
+    )
 
 
 def geodetic_context(result: AdjustmentResult, window: slice = slice(None)) -> dict[str, object]:

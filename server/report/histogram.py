@@ -164,9 +164,15 @@ def _w_label(w: float) -> str:
     return f"{w:+g}".replace("-", "−") if w else "0"
 
 
-def layout(histogram: Histogram, width: float, height: float, *,
-           margin: tuple[float, float, float, float] = (14.0, 10.0, 30.0, 34.0)) -> Layout:
-    """Place the histogram in a ``width`` × ``height`` box; ``margin`` is (top, right, bottom, left).
+def layout(
+    histogram: Histogram,
+    width: float,
+    height: float,
+    *,
+    margin: tuple[float, float, float, float] = (14.0, 10.0, 30.0, 34.0),
+) -> Layout:
+    """Place the histogram in a ``width`` × ``height`` box; ``margin`` is (top, right, bottom,
+    left).
 
     Overflow bins sit one and a half bin widths beyond the ends of the axis,
     labelled "< −8" and "> +8".
@@ -177,8 +183,7 @@ def layout(histogram: Histogram, width: float, height: float, *,
     low, high = histogram.edges[0], histogram.edges[-1]
     start = low - (2 * delta if histogram.below else 0.0)
     end = high + (2 * delta if histogram.above else 0.0)
-    peak = max(*histogram.counts, histogram.below, histogram.above,
-               expected_count(histogram, 0.0))
+    peak = max(*histogram.counts, histogram.below, histogram.above, expected_count(histogram, 0.0))
     step = _count_step(peak)
     y_max = step * math.ceil(peak * 1.08 / step)
 
@@ -192,18 +197,38 @@ def layout(histogram: Histogram, width: float, height: float, *,
     for k, count in enumerate(histogram.counts):
         a, b = histogram.edges[k], histogram.edges[k + 1]
         y = y_of(count)
-        bars.append(Bar(x=x_of(a), y=y, width=x_of(b) - x_of(a), height=bottom - y, count=count,
-                        low=a, high=b, beyond=histogram.flagged_counts[k] > 0))
+        bars.append(
+            Bar(
+                x=x_of(a),
+                y=y,
+                width=x_of(b) - x_of(a),
+                height=bottom - y,
+                count=count,
+                low=a,
+                high=b,
+                beyond=histogram.flagged_counts[k] > 0,
+            )
+        )
     ticks = []
-    for count, a, b, label in ((histogram.below, start, start + delta, f"< {_w_label(low)}"),
-                               (histogram.above, end - delta, end, f"> {_w_label(high)}")):
+    for count, a, b, label in (
+        (histogram.below, start, start + delta, f"< {_w_label(low)}"),
+        (histogram.above, end - delta, end, f"> {_w_label(high)}"),
+    ):
         if count:
             y = y_of(count)
-            bars.append(Bar(x=x_of(a), y=y, width=x_of(b) - x_of(a), height=bottom - y,
-                            count=count, low=-math.inf if a == start else high,
-                            high=low if a == start else math.inf,
-                            beyond=abs(low if a == start else high) >= histogram.critical,
-                            overflow=True))
+            bars.append(
+                Bar(
+                    x=x_of(a),
+                    y=y,
+                    width=x_of(b) - x_of(a),
+                    height=bottom - y,
+                    count=count,
+                    low=-math.inf if a == start else high,
+                    high=low if a == start else math.inf,
+                    beyond=abs(low if a == start else high) >= histogram.critical,
+                    overflow=True,
+                )
+            )
             ticks.append((x_of((a + b) / 2), label))
     samples = max(2, int((high - low) * CURVE_SAMPLES) + 1)
     curve = tuple(
@@ -213,16 +238,27 @@ def layout(histogram: Histogram, width: float, height: float, *,
     w_step = 1 if high - low <= 12 else 2
     first = math.ceil(low / w_step) * w_step
     # an overflow bin's "< −8" stands for the end of the axis; a "−8" beside it would crowd it
-    x_ticks = tuple((x_of(float(w)), _w_label(w))
-                    for w in range(first, math.floor(high) + 1, w_step)
-                    if not (w == low and histogram.below) and not (w == high and histogram.above)
-                    ) + tuple(ticks)
+    x_ticks = tuple(
+        (x_of(float(w)), _w_label(w))
+        for w in range(first, math.floor(high) + 1, w_step)
+        if not (w == low and histogram.below) and not (w == high and histogram.above)
+    ) + tuple(ticks)
     y_ticks = tuple((y_of(float(c)), str(c)) for c in range(0, int(y_max) + 1, step))
     c = histogram.critical
     return Layout(
-        width=width, height=height, left=left, top=top, right=right, bottom=bottom,
-        bars=tuple(bars), curve=curve, x_ticks=x_ticks, y_ticks=y_ticks,
-        critical_x=(x_of(-c), x_of(c)), critical_label=f"{c:.2f}", zero_x=x_of(0.0),
+        width=width,
+        height=height,
+        left=left,
+        top=top,
+        right=right,
+        bottom=bottom,
+        bars=tuple(bars),
+        curve=curve,
+        x_ticks=x_ticks,
+        y_ticks=y_ticks,
+        critical_x=(x_of(-c), x_of(c)),
+        critical_label=f"{c:.2f}",
+        zero_x=x_of(0.0),
     )
 
 

@@ -40,8 +40,9 @@ def _env() -> jinja2.Environment:
 def _make_environment() -> jinja2.Environment:
     return jinja2.Environment(
         # the report's own folder first, then the shared partials (network plot, histogram)
-        loader=jinja2.ChoiceLoader([jinja2.FileSystemLoader(TEMPLATE_DIR),
-                                    jinja2.FileSystemLoader(TEMPLATE_DIR.parent)]),
+        loader=jinja2.ChoiceLoader(
+            [jinja2.FileSystemLoader(TEMPLATE_DIR), jinja2.FileSystemLoader(TEMPLATE_DIR.parent)]
+        ),
         autoescape=True,
         undefined=jinja2.StrictUndefined,
         trim_blocks=True,
@@ -74,7 +75,7 @@ def report_warnings(result: AdjustmentResult) -> list[str]:
     if name == result.source:
         return list(result.warnings)
     prefix = f"{result.source}:"
-    return [f"{name}:{w[len(prefix):]}" if w.startswith(prefix) else w for w in result.warnings]
+    return [f"{name}:{w[len(prefix) :]}" if w.startswith(prefix) else w for w in result.warnings]
 
 
 def generated_text(generated: datetime | None) -> str:
@@ -85,8 +86,13 @@ def generated_text(generated: datetime | None) -> str:
     return moment.astimezone(UTC).strftime("%Y-%m-%d %H:%M UTC")
 
 
-def report_html(result: AdjustmentResult, *, generated: datetime | None = None,
-                presets: Sequence[Preset] = (), imported_from: ImportedFrom | None = None) -> str:
+def report_html(
+    result: AdjustmentResult,
+    *,
+    generated: datetime | None = None,
+    presets: Sequence[Preset] = (),
+    imported_from: ImportedFrom | None = None,
+) -> str:
     """A self-contained printable HTML report (inline CSS and SVG, no scripts, nothing external).
 
     ``imported_from`` names the survey XML or CSV the field book was imported from.

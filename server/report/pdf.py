@@ -100,14 +100,16 @@ def _header_footer(furniture: Furniture, styles: Styles) -> Callable[[Canvas, An
         top = height - 26
         canvas.setFillColor(MUTED)
         canvas.setFont(fonts.regular, 7)
-        left_text = plain(f"Stationfit {__version__} · {furniture.kind} · {furniture.generated}",
-                          fonts)
+        left_text = plain(
+            f"Stationfit {__version__} · {furniture.kind} · {furniture.generated}", fonts
+        )
         canvas.drawString(MARGIN_X, top, left_text)
         room = right - MARGIN_X - pdfmetrics.stringWidth(left_text, fonts.regular, 7) - 18
         canvas.setFont(fonts.bold, 7.4)
         canvas.setFillColor(INK)
-        canvas.drawRightString(right, top, _fit(plain(furniture.title, fonts), fonts.bold, 7.4,
-                                                room))
+        canvas.drawRightString(
+            right, top, _fit(plain(furniture.title, fonts), fonts.bold, 7.4, room)
+        )
         canvas.setStrokeColor(RULE)
         canvas.setLineWidth(0.6)
         canvas.line(MARGIN_X, top - 6, right, top - 6)
@@ -151,8 +153,9 @@ def _numbered_canvas(fonts: Fonts) -> type[Canvas]:
                 self.__dict__.update(state)
                 self.setFont(fonts.bold, 7.6)
                 self.setFillColor(INK)
-                self.drawRightString(self._pagesize[0] - MARGIN_X, 22,
-                                     f"Page {self.getPageNumber()} of {total}")
+                self.drawRightString(
+                    self._pagesize[0] - MARGIN_X, 22, f"Page {self.getPageNumber()} of {total}"
+                )
                 super().showPage()
             super().save()
 
@@ -167,9 +170,14 @@ def _heading(text: str, styles: Styles) -> list[Flowable]:
     return [CondPageBreak(90), styles.para(text, styles.h2)]
 
 
-def _title_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles,
-                 width: float, generated: str,
-                 imported_from: ImportedFrom | None = None) -> list[Flowable]:
+def _title_block(
+    result: AdjustmentResult,
+    data: dict[str, Any],
+    styles: Styles,
+    width: float,
+    generated: str,
+    imported_from: ImportedFrom | None = None,
+) -> list[Flowable]:
     title = result.title or html_report.source_name(result.source) or "Untitled field book"
     facts = [
         ("Generated", generated),
@@ -184,20 +192,35 @@ def _title_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles,
     facts += [(label, value) for label, value, _ in data["units_rows"]]
     half = (len(facts) + 1) // 2
     left, right = facts[:half], facts[half:]
-    columns = Table([[kv_table(styles, left, width / 2 - 8, 0.34),
-                      kv_table(styles, right, width / 2 - 8, 0.44)]],
-                    colWidths=[width / 2, width / 2], hAlign="LEFT")
-    columns.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "TOP"),
-                                 ("LEFTPADDING", (0, 0), (-1, -1), 0),
-                                 ("RIGHTPADDING", (0, 0), (-1, -1), 0)]))
+    columns = Table(
+        [
+            [
+                kv_table(styles, left, width / 2 - 8, 0.34),
+                kv_table(styles, right, width / 2 - 8, 0.44),
+            ]
+        ],
+        colWidths=[width / 2, width / 2],
+        hAlign="LEFT",
+    )
+    columns.setStyle(
+        TableStyle(
+            [
+                ("VALIGN", (0, 0), (-1, -1), "TOP"),
+                ("LEFTPADDING", (0, 0), (-1, -1), 0),
+                ("RIGHTPADDING", (0, 0), (-1, -1), 0),
+            ]
+        )
+    )
     return [
         styles.para("LEAST-SQUARES ADJUSTMENT REPORT", styles.kicker),
         styles.para(title, styles.title),
         columns,
         Spacer(1, 4),
-        styles.markup(f'<font color="{hex_colour(MUTED)}">SHA-256 of the field book</font>  '
-                      f'<font name="{styles.fonts.mono}">{styles.text(result.text_sha256)}</font>',
-                      styles.small),
+        styles.markup(
+            f'<font color="{hex_colour(MUTED)}">SHA-256 of the field book</font>  '
+            f'<font name="{styles.fonts.mono}">{styles.text(result.text_sha256)}</font>',
+            styles.small,
+        ),
         *_imported_hash(imported_from, styles),
         Spacer(1, 8),
     ]
@@ -208,16 +231,22 @@ def _imported_hash(imported_from: ImportedFrom | None, styles: Styles) -> list[F
     if imported_from is None:
         return []
     label = f"SHA-256 of the {imported_from.kind} file"
-    return [styles.markup(f'<font color="{hex_colour(MUTED)}">{styles.text(label)}</font>  '
-                          f'<font name="{styles.fonts.mono}">'
-                          f'{styles.text(imported_from.sha256)}</font>', styles.small)]
+    return [
+        styles.markup(
+            f'<font color="{hex_colour(MUTED)}">{styles.text(label)}</font>  '
+            f'<font name="{styles.fonts.mono}">'
+            f"{styles.text(imported_from.sha256)}</font>",
+            styles.small,
+        )
+    ]
 
 
 def _verdict_block(data: dict[str, Any], styles: Styles, width: float) -> list[Flowable]:
     v = data["verdict"]
     symbol = {"pass": "✓", "fail": "✕"}.get(v.state, "!")
-    lines: list[Flowable] = [styles.markup(f"<b>Global test. {styles.text(v.headline)}.</b>",
-                                           styles.body)]
+    lines: list[Flowable] = [
+        styles.markup(f"<b>Global test. {styles.text(v.headline)}.</b>", styles.body)
+    ]
     lines += [styles.para(note, styles.small) for note in v.notes]
     return [state_box(styles, v.state, symbol, lines, width), Spacer(1, 6)]
 
@@ -233,48 +262,82 @@ def _standards_block(data: dict[str, Any], styles: Styles, width: float) -> list
     return out
 
 
-def _statistics_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles,
-                      width: float) -> list[Flowable]:
+def _statistics_block(
+    result: AdjustmentResult, data: dict[str, Any], styles: Styles, width: float
+) -> list[Flowable]:
     half = width / 2 - 8
-    left: list[Flowable] = [styles.para("Statistics", styles.h2),
-                            kv_table(styles, [(a, b) for a, b, _ in data["summary_rows"]], half)]
-    right: list[Flowable] = [styles.para("Test settings", styles.h2),
-                             kv_table(styles, [(a, b) for a, b, _ in data["settings_rows"]], half)]
+    left: list[Flowable] = [
+        styles.para("Statistics", styles.h2),
+        kv_table(styles, [(a, b) for a, b, _ in data["summary_rows"]], half),
+    ]
+    right: list[Flowable] = [
+        styles.para("Test settings", styles.h2),
+        kv_table(styles, [(a, b) for a, b, _ in data["settings_rows"]], half),
+    ]
     left += [styles.para("Datum", styles.h2)]
     if data["datum_rows"]:
-        left.append(kv_table(styles, [(name, f"{how} — {what}")
-                                      for name, how, what in data["datum_rows"]], half, 0.4))
+        left.append(
+            kv_table(
+                styles,
+                [(name, f"{how} — {what}") for name, how, what in data["datum_rows"]],
+                half,
+                0.4,
+            )
+        )
     else:
         left.append(styles.para("No point is held fixed or weighted.", styles.small))
     if data["a_priori_rows"]:
-        right += [styles.para("A priori standard deviations", styles.h2),
-                  kv_table(styles, [(f"{kind} ({count})", value)
-                                    for kind, count, value in data["a_priori_rows"]], half, 0.5),
-                  styles.para("As used for each observation, centering and distance-dependent "
-                              "parts included; σ₀ = 1 a priori.", styles.note)]
+        right += [
+            styles.para("A priori standard deviations", styles.h2),
+            kv_table(
+                styles,
+                [(f"{kind} ({count})", value) for kind, count, value in data["a_priori_rows"]],
+                half,
+                0.5,
+            ),
+            styles.para(
+                "As used for each observation, centering and distance-dependent "
+                "parts included; σ₀ = 1 a priori.",
+                styles.note,
+            ),
+        ]
     table = Table([[left, right]], colWidths=[width / 2, width / 2], hAlign="LEFT")
-    table.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "TOP"),
-                               ("LEFTPADDING", (0, 0), (-1, -1), 0),
-                               ("RIGHTPADDING", (0, 0), (-1, -1), 0)]))
+    table.setStyle(
+        TableStyle(
+            [
+                ("VALIGN", (0, 0), (-1, -1), "TOP"),
+                ("LEFTPADDING", (0, 0), (-1, -1), 0),
+                ("RIGHTPADDING", (0, 0), (-1, -1), 0),
+            ]
+        )
+    )
     out: list[Flowable] = [table, styles.para(data["precision_note"], styles.note)]
     if data["ellipse_note"]:
         out.append(styles.para(data["ellipse_note"], styles.note))
     return out
 
 
-def _points_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles,
-                  width: float) -> list[Flowable]:
+def _points_block(
+    result: AdjustmentResult, data: dict[str, Any], styles: Styles, width: float
+) -> list[Flowable]:
     cols = data["columns"]
     unit = data["length_unit"]
     columns = [Column("Point", None, weight=1.2)]
     if cols.positions:
-        columns += [Column(f"East ({unit})", 62, True), Column(f"North ({unit})", 62, True),
-                    Column("sd E", 34, True), Column("sd N", 34, True)]
+        columns += [
+            Column(f"East ({unit})", 62, True),
+            Column(f"North ({unit})", 62, True),
+            Column("sd E", 34, True),
+            Column("sd N", 34, True),
+        ]
     if cols.heights:
         columns += [Column(f"Height ({unit})", 54, True), Column("sd H", 34, True)]
     if cols.ellipses:
-        columns += [Column(f"Ellipse a ({data['confidence']})", 44, True),
-                    Column("b", 34, True), Column("Azimuth a", 44, True)]
+        columns += [
+            Column(f"Ellipse a ({data['confidence']})", 44, True),
+            Column("b", 34, True),
+            Column("Azimuth a", 44, True),
+        ]
     columns.append(Column("Datum / note" if data["point_notes"] else "Datum", None))
     rows, states = [], []
     for p in data["point_rows"]:
@@ -292,24 +355,38 @@ def _points_block(result: AdjustmentResult, data: dict[str, Any], styles: Styles
         rows.append(row)
         states.append("" if p.in_use else "muted")
     scaled = "a posteriori" if result.summary.precision_estimated else "a priori (σ₀² = 1)"
-    note = (f"Coordinates and standard deviations in {unit}; standard deviations are {scaled}"
-            + (("; ellipse azimuths of the major axis from true north, axes along local east "
-                "and north" if result.geodetic else
-                "; ellipse azimuths of the major axis from grid north") if cols.ellipses else "")
-            + ".")
-    return [*_heading("Adjusted points", styles),
-            data_table(styles, columns, rows, width, row_states=states),
-            styles.para(note, styles.note)]
+    note = (
+        f"Coordinates and standard deviations in {unit}; standard deviations are {scaled}"
+        + (
+            (
+                "; ellipse azimuths of the major axis from true north, axes along local east "
+                "and north"
+                if result.geodetic
+                else "; ellipse azimuths of the major axis from grid north"
+            )
+            if cols.ellipses
+            else ""
+        )
+        + "."
+    )
+    return [
+        *_heading("Adjusted points", styles),
+        data_table(styles, columns, rows, width, row_states=states),
+        styles.para(note, styles.note),
+    ]
 
 
-def _check_cell(styles: Styles, passed: bool | None, good: str, bad: str,
-                other: str) -> Paragraph:
+def _check_cell(styles: Styles, passed: bool | None, good: str, bad: str, other: str) -> Paragraph:
     if passed is False:
-        return styles.markup(f'<font color="{hex_colour(FAIL)}"><b>{styles.text("✕ " + bad)}</b>'
-                             "</font>", styles.cell)
+        return styles.markup(
+            f'<font color="{hex_colour(FAIL)}"><b>{styles.text("✕ " + bad)}</b></font>', styles.cell
+        )
     if passed:
-        return styles.markup(f'<font color="{hex_colour(STATE_COLOURS["pass"][0])}">'
-                             f"{styles.text('✓ ' + good)}</font>", styles.cell)
+        return styles.markup(
+            f'<font color="{hex_colour(STATE_COLOURS["pass"][0])}">'
+            f"{styles.text('✓ ' + good)}</font>",
+            styles.cell,
+        )
     return Paragraph(styles.text(other), styles.cell_muted)
 
 
@@ -319,91 +396,152 @@ def _relative_block(data: dict[str, Any], styles: Styles, width: float) -> list[
     unit = data["length_unit"]
     # without an allowance the last two columns would only repeat "no allowance set"
     checked = any(r.passed is not None for r in data["relative_rows"])
-    columns = [Column("From", None), Column("To", None), Column("Pair", 44),
-               Column(f"Distance ({unit})", 54, True),
-               Column("sd distance", 40, True),
-               Column(f"Ellipse a ({data['confidence']})", 46, True),
-               Column("b", 36, True), Column("Azimuth a", 44, True)]
+    columns = [
+        Column("From", None),
+        Column("To", None),
+        Column("Pair", 44),
+        Column(f"Distance ({unit})", 54, True),
+        Column("sd distance", 40, True),
+        Column(f"Ellipse a ({data['confidence']})", 46, True),
+        Column("b", 36, True),
+        Column("Azimuth a", 44, True),
+    ]
     if checked:
         columns += [Column(f"Allowed ({unit})", 46, True), Column("Check", 58)]
     rows, states = [], []
     for r in data["relative_rows"]:
-        row = [Paragraph(styles.text(r.from_point), styles.cell_bold),
-               Paragraph(styles.text(r.to_point), styles.cell), r.origin,
-               r.distance, r.sd_distance, r.semi_major, r.semi_minor, r.azimuth]
+        row = [
+            Paragraph(styles.text(r.from_point), styles.cell_bold),
+            Paragraph(styles.text(r.to_point), styles.cell),
+            r.origin,
+            r.distance,
+            r.sd_distance,
+            r.semi_major,
+            r.semi_minor,
+            r.azimuth,
+        ]
         if checked:
             row += [r.allowed, _check_cell(styles, r.passed, "meets", "fails", r.status)]
         rows.append(row)
         states.append("bad" if r.passed is False else "")
-    note = ("Semi-major axis a of the relative confidence ellipse between the two points, from "
-            "the full covariance of their coordinate difference; a pair meets the allowance "
-            "when a ≤ allowed." if checked else
-            "Semi-major axis a of the relative confidence ellipse between the two points, from "
-            "the full covariance of their coordinate difference. No allowance was set (no "
-            "“tolerance relative=” in the field book and no preset), so no pair was checked.")
-    note += (" “Joined” pairs share an observation; “requested” pairs were named in a "
-             "“relative A B” line. No other pair is checked.")
-    return [*_heading("Relative precision between point pairs", styles),
-            data_table(styles, columns, rows, width, row_states=states),
-            styles.para(note, styles.note)]
+    note = (
+        "Semi-major axis a of the relative confidence ellipse between the two points, from "
+        "the full covariance of their coordinate difference; a pair meets the allowance "
+        "when a ≤ allowed."
+        if checked
+        else "Semi-major axis a of the relative confidence ellipse between the two points, from "
+        "the full covariance of their coordinate difference. No allowance was set (no "
+        "“tolerance relative=” in the field book and no preset), so no pair was checked."
+    )
+    note += (
+        " “Joined” pairs share an observation; “requested” pairs were named in a "
+        "“relative A B” line. No other pair is checked."
+    )
+    return [
+        *_heading("Relative precision between point pairs", styles),
+        data_table(styles, columns, rows, width, row_states=states),
+        styles.para(note, styles.note),
+    ]
 
 
 def _traverse_block(data: dict[str, Any], styles: Styles, width: float) -> list[Flowable]:
     if not data["traverse_rows"]:
         return []
     unit = data["length_unit"]
-    columns = [Column("Route", None, widest=300), Column("n", 20, True),
-               Column("Angular", 44, True), Column("Allowed", 44, True),
-               Column(f"Linear ({unit})", 50, True), Column(f"Length ({unit})", 54, True),
-               Column("Precision", 56, True), Column("Required", 56, True), Column("Check", 50)]
+    columns = [
+        Column("Route", None, widest=300),
+        Column("n", 20, True),
+        Column("Angular", 44, True),
+        Column("Allowed", 44, True),
+        Column(f"Linear ({unit})", 50, True),
+        Column(f"Length ({unit})", 54, True),
+        Column("Precision", 56, True),
+        Column("Required", 56, True),
+        Column("Check", 50),
+    ]
     rows, states = [], []
     for m in data["traverse_rows"]:
         passed = None if m.status == "no allowance set" else not m.exceeds
-        rows.append([Paragraph(styles.text(m.route), styles.cell), m.stations, m.angular,
-                     m.angular_allowed, m.misclosure, m.length, m.ratio, m.ratio_allowed,
-                     _check_cell(styles, passed, "within", "exceeds", m.status)])
+        rows.append(
+            [
+                Paragraph(styles.text(m.route), styles.cell),
+                m.stations,
+                m.angular,
+                m.angular_allowed,
+                m.misclosure,
+                m.length,
+                m.ratio,
+                m.ratio_allowed,
+                _check_cell(styles, passed, "within", "exceeds", m.status),
+            ]
+        )
         states.append("bad" if m.exceeds else "")
-    note = ("From the booked angles and the distances after any scale factor, before adjustment. "
-            "The angular misclosure is spread equally over the n angle stations before latitudes "
-            "and departures are summed; the angular allowance is K·√n, the precision the traverse "
-            "length over the linear misclosure, rounded down.")
-    return [*_heading("Traverse closures before adjustment", styles),
-            data_table(styles, columns, rows, width, row_states=states),
-            styles.para(note, styles.note)]
+    note = (
+        "From the booked angles and the distances after any scale factor, before adjustment. "
+        "The angular misclosure is spread equally over the n angle stations before latitudes "
+        "and departures are summed; the angular allowance is K·√n, the precision the traverse "
+        "length over the linear misclosure, rounded down."
+    )
+    return [
+        *_heading("Traverse closures before adjustment", styles),
+        data_table(styles, columns, rows, width, row_states=states),
+        styles.para(note, styles.note),
+    ]
 
 
 def _misclosure_block(data: dict[str, Any], styles: Styles, width: float) -> list[Flowable]:
     if not data["leveling_rows"]:
         return []
     unit = data["length_unit"]
-    columns = [Column("Kind", 34), Column("Route", None, widest=400),
-               Column(f"Misclosure ({unit})", 56, True),
-               Column(f"Length ({unit})", 54, True), Column(f"Allowed ({unit})", 50, True),
-               Column("Check", 56)]
+    columns = [
+        Column("Kind", 34),
+        Column("Route", None, widest=400),
+        Column(f"Misclosure ({unit})", 56, True),
+        Column(f"Length ({unit})", 54, True),
+        Column(f"Allowed ({unit})", 50, True),
+        Column("Check", 56),
+    ]
     rows, states = [], []
     for m in data["leveling_rows"]:
         passed = None if m.status == "no allowance set" else not m.exceeds
-        rows.append([m.kind, Paragraph(styles.text(m.route), styles.cell), m.misclosure, m.length,
-                     m.allowed, _check_cell(styles, passed, "within", "exceeds", m.status)])
+        rows.append(
+            [
+                m.kind,
+                Paragraph(styles.text(m.route), styles.cell),
+                m.misclosure,
+                m.length,
+                m.allowed,
+                _check_cell(styles, passed, "within", "exceeds", m.status),
+            ]
+        )
         states.append("bad" if m.exceeds else "")
-    note = ("From the observed height differences before adjustment; a loop repeats its first "
-            "mark. The allowance adds its parts linearly (c + k·√L with L in km).")
-    return [*_heading("Leveling misclosures before adjustment", styles),
-            data_table(styles, columns, rows, width, row_states=states),
-            styles.para(note, styles.note)]
+    note = (
+        "From the observed height differences before adjustment; a loop repeats its first "
+        "mark. The allowance adds its parts linearly (c + k·√L with L in km)."
+    )
+    return [
+        *_heading("Leveling misclosures before adjustment", styles),
+        data_table(styles, columns, rows, width, row_states=states),
+        styles.para(note, styles.note),
+    ]
 
 
 def _plot_block(result: AdjustmentResult, styles: Styles, width: float) -> list[Flowable]:
     data = network_plot_data(result)
     if data is None:
         return []
-    parts: list[Flowable] = [styles.para("Network", styles.h2),
-                             network_drawing(data, width, styles.fonts),
-                             Spacer(1, 4), network_legend(data, styles, width)]
+    parts: list[Flowable] = [
+        styles.para("Network", styles.h2),
+        network_drawing(data, width, styles.fonts),
+        Spacer(1, 4),
+        network_legend(data, styles, width),
+    ]
     note = "Grid north up."
     if data["has_ellipses"]:
-        note += (f" Ellipses are drawn {data['exaggeration_label']} their true size; "
-                 "the ellipse scale bar reads in true lengths.")
+        note += (
+            f" Ellipses are drawn {data['exaggeration_label']} their true size; "
+            "the ellipse scale bar reads in true lengths."
+        )
     if data["not_drawn"]:
         note += " Not drawn (no horizontal position): " + ", ".join(data["not_drawn"]) + "."
     parts.append(styles.para(note, styles.note))
@@ -414,28 +552,44 @@ def _histogram_block(data: dict[str, Any], styles: Styles, width: float) -> list
     h = data["histogram"]
     if h is None:
         return []
-    apart = (f"; the bars set apart at the ends count the w beyond the axis, the largest |w| "
-             f"being {h.largest:.2f}" if h.below or h.above else "")
-    caption = (f"Bars: the {h.tested} tested observations by their w (bins {h.bin_width:g} wide"
-               f"{apart}). "
-               "Curve: how many a bin should hold if every w were standard normal (no blunder, "
-               "a priori standard deviations right). Dashed: the critical values "
-               f"±{report.fmt_w(h.critical)}; "
-               + (f"⚑ {h.beyond} beyond them." if h.beyond else "none beyond them."))
-    parts = [styles.para("Standardized residuals", styles.h2),
-             histogram_drawing(h, width, 190, styles.fonts), styles.para(caption, styles.note)]
+    apart = (
+        f"; the bars set apart at the ends count the w beyond the axis, the largest |w| "
+        f"being {h.largest:.2f}"
+        if h.below or h.above
+        else ""
+    )
+    caption = (
+        f"Bars: the {h.tested} tested observations by their w (bins {h.bin_width:g} wide"
+        f"{apart}). "
+        "Curve: how many a bin should hold if every w were standard normal (no blunder, "
+        "a priori standard deviations right). Dashed: the critical values "
+        f"±{report.fmt_w(h.critical)}; "
+        + (f"⚑ {h.beyond} beyond them." if h.beyond else "none beyond them.")
+    )
+    parts = [
+        styles.para("Standardized residuals", styles.h2),
+        histogram_drawing(h, width, 190, styles.fonts),
+        styles.para(caption, styles.note),
+    ]
     return [KeepTogether(parts)]
 
 
 def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> list[Flowable]:
     cols = data["columns"]
-    columns = [Column("Line", 22, True), Column("Kind", 38), Column("Marks", None, widest=400),
-               Column(f"Booked\n({cols.values_unit})", 58, True), Column("Used", 58, True),
-               Column(f"Residual\n({cols.small_unit})", 44, True),
-               Column(f"sd\n({cols.small_unit})", 36, True), Column("r", 24, True),
-               Column("w", 30, True), Column(f"Est. bias\n({cols.small_unit})", 40, True),
-               Column(f"MDB\n({cols.small_unit})", 40, True),
-               Column("Test", 46)]
+    columns = [
+        Column("Line", 22, True),
+        Column("Kind", 38),
+        Column("Marks", None, widest=400),
+        Column(f"Booked\n({cols.values_unit})", 58, True),
+        Column("Used", 58, True),
+        Column(f"Residual\n({cols.small_unit})", 44, True),
+        Column(f"sd\n({cols.small_unit})", 36, True),
+        Column("r", 24, True),
+        Column("w", 30, True),
+        Column(f"Est. bias\n({cols.small_unit})", 40, True),
+        Column(f"MDB\n({cols.small_unit})", 40, True),
+        Column("Test", 46),
+    ]
     rows, states = [], []
     arcsec = data["arcsec"]
     for o in data["observation_rows"]:
@@ -444,8 +598,10 @@ def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> li
         if o.note:
             marks += f'<br/><font color="{hex_colour(MUTED)}">{styles.text(o.note)}</font>'
         if o.flagged:
-            test = styles.markup(f'<font color="{hex_colour(FAIL)}"><b>{styles.text("⚑ flagged")}'
-                                 "</b></font>", styles.cell)
+            test = styles.markup(
+                f'<font color="{hex_colour(FAIL)}"><b>{styles.text("⚑ flagged")}</b></font>',
+                styles.cell,
+            )
         elif o.ignored:
             test = Paragraph("ignored", styles.cell_muted)
         elif o.uncontrolled:
@@ -456,33 +612,51 @@ def _observation_block(data: dict[str, Any], styles: Styles, width: float) -> li
         # a column of its own beside the test figures)
         booked: Any = o.booked
         if o.reduction != report.NOT_APPLICABLE:
-            booked = Paragraph(f"{styles.text(o.booked)}<br/>{styles.text(o.reduction)}",
-                               styles.cell_right)
+            booked = Paragraph(
+                f"{styles.text(o.booked)}<br/>{styles.text(o.reduction)}", styles.cell_right
+            )
         if o.inseparable:
             test = [test, Paragraph(styles.text(o.inseparable_text), styles.cell_muted)]
         w_cell: Any = o.w
         if o.flagged:
             w_cell = Paragraph(f"<b>{styles.text(o.w)}</b>", styles.cell_right)
-        rows.append([str(o.line), o.kind,
-                     Paragraph(marks, styles.cell_muted if o.ignored else styles.cell),
-                     booked, o.observed, o.residual + sfx, o.sd + sfx, o.redundancy,
-                     w_cell,
-                     o.estimated_bias + (sfx if o.estimated_bias != report.NOT_APPLICABLE else ""),
-                     o.mdb + sfx, test])
+        rows.append(
+            [
+                str(o.line),
+                o.kind,
+                Paragraph(marks, styles.cell_muted if o.ignored else styles.cell),
+                booked,
+                o.observed,
+                o.residual + sfx,
+                o.sd + sfx,
+                o.redundancy,
+                w_cell,
+                o.estimated_bias + (sfx if o.estimated_bias != report.NOT_APPLICABLE else ""),
+                o.mdb + sfx,
+                test,
+            ]
+        )
         states.append("bad" if o.flagged else ("muted" if o.ignored else ""))
-    note = ("Booked: the value as written in the field book, with the reduction that turned it "
-            "into the value used beneath it (× the scale factor for a distance)."
-            + (f" {data['reductions_note']}" if data["reductions_note"] else "")
-            + " Residual = adjusted − used (the adjusted value is used + residual; the HTML "
-            "report and the CSV list it). r: redundancy number. w: standardized residual, "
-            f"flagged when |w| > {data['critical_w']}. Est. bias: −v/r, the blunder that alone "
-            "would explain the residual. \u201cSame test as\u201d: w-tests correlated at "
-            "|ρ| ≥ 0.99, which the data cannot tell apart. MDB: minimal detectable bias."
-            + (" Angular figures are marked ″ (arc-seconds); the others are in "
-               f"{data['length_unit']}." if cols.mixed else ""))
-    return [*_heading("Observations", styles),
-            data_table(styles, columns, rows, width, row_states=states),
-            styles.para(note, styles.note)]
+    note = (
+        "Booked: the value as written in the field book, with the reduction that turned it "
+        "into the value used beneath it (× the scale factor for a distance)."
+        + (f" {data['reductions_note']}" if data["reductions_note"] else "")
+        + " Residual = adjusted − used (the adjusted value is used + residual; the HTML "
+        "report and the CSV list it). r: redundancy number. w: standardized residual, "
+        f"flagged when |w| > {data['critical_w']}. Est. bias: −v/r, the blunder that alone "
+        "would explain the residual. \u201cSame test as\u201d: w-tests correlated at "
+        "|ρ| ≥ 0.99, which the data cannot tell apart. MDB: minimal detectable bias."
+        + (
+            f" Angular figures are marked ″ (arc-seconds); the others are in {data['length_unit']}."
+            if cols.mixed
+            else ""
+        )
+    )
+    return [
+        *_heading("Observations", styles),
+        data_table(styles, columns, rows, width, row_states=states),
+        styles.para(note, styles.note),
+    ]
 
 
 def _warnings_block(result: AdjustmentResult, styles: Styles) -> list[Flowable]:
@@ -495,31 +669,41 @@ def _warnings_block(result: AdjustmentResult, styles: Styles) -> list[Flowable]:
     return out
 
 
-def _notes_block(result: AdjustmentResult, data: dict[str, Any], presets: Sequence[Preset],
-                 styles: Styles) -> list[Flowable]:
+def _notes_block(
+    result: AdjustmentResult, data: dict[str, Any], presets: Sequence[Preset], styles: Styles
+) -> list[Flowable]:
     s = result.summary
     notes = [
-        ("The a priori standard deviation of unit weight σ₀ is 1. The global test compares "
-        "vᵀPv with the two-sided χ² bounds for the redundancy at the level α of the test "
-        "settings."),
-        ("w is Baarda's standardized residual v / (σ·√r) with the a priori σ; an observation is "
-        f"flagged when |w| exceeds {report.fmt_w(s.critical_w)} (two-sided, α₀ = {s.snooping:g}). "
-        f"The minimal detectable bias is σ·√(λ₀ / r) with λ₀ = {report.fmt_ratio(s.lambda0)} "
-        f"(α₀ = {s.snooping:g}, power {report.fmt_percent(s.power)}). Observations with a "
-        "redundancy number below 0.001 are uncontrolled: a blunder in them cannot be detected."),
+        (
+            "The a priori standard deviation of unit weight σ₀ is 1. The global test compares "
+            "vᵀPv with the two-sided χ² bounds for the redundancy at the level α of the test "
+            "settings."
+        ),
+        (
+            "w is Baarda's standardized residual v / (σ·√r) with the a priori σ; an observation is "
+            f"flagged when |w| exceeds {report.fmt_w(s.critical_w)} "
+            f"(two-sided, α₀ = {s.snooping:g}). "
+            f"The minimal detectable bias is σ·√(λ₀ / r) with λ₀ = {report.fmt_ratio(s.lambda0)} "
+            f"(α₀ = {s.snooping:g}, power {report.fmt_percent(s.power)}). Observations with a "
+            "redundancy number below 0.001 are uncontrolled: a blunder in them cannot be detected."
+        ),
     ]
     if data["ellipse_note"]:
         notes.append(data["ellipse_note"])
     if result.relative:
-        notes.append("Relative precision: the semi-major axis of the relative confidence ellipse "
-                     "of each pair of points joined by an observation or named in a “relative A B” "
-                     "line (no other pair is checked), compared with an allowance "
-                     "of a fixed part plus parts per million of the distance between them, the "
-                     "parts added.")
+        notes.append(
+            "Relative precision: the semi-major axis of the relative confidence ellipse "
+            "of each pair of points joined by an observation or named in a “relative A B” "
+            "line (no other pair is checked), compared with an allowance "
+            "of a fixed part plus parts per million of the distance between them, the "
+            "parts added."
+        )
     for preset in presets:
-        status = ("constants checked against the published text" if preset.verified
-                  else "constants recalled from memory and not yet checked against the "
-                       "published document")
+        status = (
+            "constants checked against the published text"
+            if preset.verified
+            else "constants recalled from memory and not yet checked against the published document"
+        )
         notes.append(f"Preset {preset.label}: {preset.source}; {status}.")
     out = _heading("Notes", styles)
     for note in notes:
@@ -528,13 +712,20 @@ def _notes_block(result: AdjustmentResult, data: dict[str, Any], presets: Sequen
 
 
 def _review_block(styles: Styles, width: float) -> list[Flowable]:
-    rows = [[styles.para(label, styles.small), ""] for label in
-            ("Reviewed by", "License number and jurisdiction", "Date", "Signature")]
-    table = Table(rows, colWidths=[150, width - 150], rowHeights=[20] * len(rows),
-                  hAlign="LEFT")
-    table.setStyle(TableStyle([("LINEBELOW", (1, 0), (1, -1), 0.6, INK),
-                               ("VALIGN", (0, 0), (-1, -1), "BOTTOM"),
-                               ("LEFTPADDING", (0, 0), (-1, -1), 0)]))
+    rows = [
+        [styles.para(label, styles.small), ""]
+        for label in ("Reviewed by", "License number and jurisdiction", "Date", "Signature")
+    ]
+    table = Table(rows, colWidths=[150, width - 150], rowHeights=[20] * len(rows), hAlign="LEFT")
+    table.setStyle(
+        TableStyle(
+            [
+                ("LINEBELOW", (1, 0), (1, -1), 0.6, INK),
+                ("VALIGN", (0, 0), (-1, -1), "BOTTOM"),
+                ("LEFTPADDING", (0, 0), (-1, -1), 0),
+            ]
+        )
+    )
     return [CondPageBreak(130), KeepTogether([styles.para("Review record", styles.h2), table])]
 
 
@@ -542,9 +733,15 @@ def _review_block(styles: Styles, width: float) -> list[Flowable]:
 # the document
 
 
-def report_pdf(result: AdjustmentResult, *, generated: datetime | None = None,
-               presets: Sequence[Preset] = (), page_size: str = "letter",
-               font_dir: Path | None = None, imported_from: ImportedFrom | None = None) -> bytes:
+def report_pdf(
+    result: AdjustmentResult,
+    *,
+    generated: datetime | None = None,
+    presets: Sequence[Preset] = (),
+    page_size: str = "letter",
+    font_dir: Path | None = None,
+    imported_from: ImportedFrom | None = None,
+) -> bytes:
     """The adjustment report as PDF bytes.
 
     Parameters
@@ -573,17 +770,34 @@ def report_pdf(result: AdjustmentResult, *, generated: datetime | None = None,
     width = size[0] - 2 * MARGIN_X
     buffer = io.BytesIO()
     doc = BaseDocTemplate(
-        buffer, pagesize=size, leftMargin=MARGIN_X, rightMargin=MARGIN_X,
-        topMargin=HEADER_HEIGHT, bottomMargin=FOOTER_HEIGHT,
-        title=plain(f"Adjustment report — {title}", fonts), author=f"Stationfit {__version__}",
-        subject=f"Field book SHA-256 {result.text_sha256}", creator=f"Stationfit {__version__}",
+        buffer,
+        pagesize=size,
+        leftMargin=MARGIN_X,
+        rightMargin=MARGIN_X,
+        topMargin=HEADER_HEIGHT,
+        bottomMargin=FOOTER_HEIGHT,
+        title=plain(f"Adjustment report — {title}", fonts),
+        author=f"Stationfit {__version__}",
+        subject=f"Field book SHA-256 {result.text_sha256}",
+        creator=f"Stationfit {__version__}",
     )
-    frame = Frame(MARGIN_X, FOOTER_HEIGHT, width, size[1] - HEADER_HEIGHT - FOOTER_HEIGHT,
-                  leftPadding=0, rightPadding=0, topPadding=0, bottomPadding=0, id="body")
-    furniture = Furniture(title=title, caution=result.caution, sha256=result.text_sha256,
-                          generated=when)
-    doc.addPageTemplates([PageTemplate(id="page", frames=[frame],
-                                       onPage=_header_footer(furniture, styles))])
+    frame = Frame(
+        MARGIN_X,
+        FOOTER_HEIGHT,
+        width,
+        size[1] - HEADER_HEIGHT - FOOTER_HEIGHT,
+        leftPadding=0,
+        rightPadding=0,
+        topPadding=0,
+        bottomPadding=0,
+        id="body",
+    )
+    furniture = Furniture(
+        title=title, caution=result.caution, sha256=result.text_sha256, generated=when
+    )
+    doc.addPageTemplates(
+        [PageTemplate(id="page", frames=[frame], onPage=_header_footer(furniture, styles))]
+    )
     story: list[Flowable] = []
     story += _title_block(result, data, styles, width, when, imported_from)
     story += _verdict_block(data, styles, width)

@@ -75,8 +75,15 @@ _DEJAVU_EXTRA = {
     "narrow": ("DejaVuSansCondensed.ttf", "regular"),
     "narrow_bold": ("DejaVuSansCondensed-Bold.ttf", "bold"),
 }
-_BUILT_IN = Fonts("Helvetica", "Helvetica-Bold", "Helvetica-Oblique", "Courier",
-                  "Helvetica", "Helvetica-Bold", unicode=False)
+_BUILT_IN = Fonts(
+    "Helvetica",
+    "Helvetica-Bold",
+    "Helvetica-Oblique",
+    "Courier",
+    "Helvetica",
+    "Helvetica-Bold",
+    unicode=False,
+)
 _registered: dict[Path, Fonts] = {}
 
 
@@ -99,8 +106,13 @@ def load_fonts(folder: Path | None = None) -> Fonts:
         names[role] = name
     for role, (_, instead) in _DEJAVU_EXTRA.items():
         names.setdefault(role, names[instead])
-    pdfmetrics.registerFontFamily(names["regular"], normal=names["regular"], bold=names["bold"],
-                                  italic=names["italic"], boldItalic=names["bold"])
+    pdfmetrics.registerFontFamily(
+        names["regular"],
+        normal=names["regular"],
+        bold=names["bold"],
+        italic=names["italic"],
+        boldItalic=names["bold"],
+    )
     fonts = Fonts(unicode=True, **names)
     _registered[folder] = fonts
     return fonts
@@ -108,9 +120,28 @@ def load_fonts(folder: Path | None = None) -> Fonts:
 
 #: ASCII stand-ins for the characters Helvetica (WinAnsi) cannot show.
 ASCII_STAND_INS = {
-    "σ": "s", "\u0302": "", "ᵀ": "T", "₀": "0", "χ": "chi ", "√": "sqrt ", "″": '"', "′": "'",
-    "✓": "OK", "✕": "X", "⚑": "!", "→": "->", "−": "-", "≤": "<=", "≥": ">=", "λ": "lambda",
-    "α": "alpha", "β": "beta", "Δ": "D", "φ": "phi", "\u2009": " ", "\u2011": "-",
+    "σ": "s",
+    "\u0302": "",
+    "ᵀ": "T",
+    "₀": "0",
+    "χ": "chi ",
+    "√": "sqrt ",
+    "″": '"',
+    "′": "'",
+    "✓": "OK",
+    "✕": "X",
+    "⚑": "!",
+    "→": "->",
+    "−": "-",
+    "≤": "<=",
+    "≥": ">=",
+    "λ": "lambda",
+    "α": "alpha",
+    "β": "beta",
+    "Δ": "D",
+    "φ": "phi",
+    "\u2009": " ",
+    "\u2011": "-",
 }
 _ASCII_TABLE = str.maketrans(ASCII_STAND_INS)
 
@@ -161,21 +192,29 @@ class Styles:
 
 def make_styles(fonts: Fonts) -> Styles:
     """The report's paragraph styles."""
-    body = ParagraphStyle("body", fontName=fonts.regular, fontSize=8.6, leading=11.2,
-                          textColor=INK)
+    body = ParagraphStyle("body", fontName=fonts.regular, fontSize=8.6, leading=11.2, textColor=INK)
     cell = ParagraphStyle("cell", parent=body, fontName=fonts.narrow, fontSize=6.9, leading=8.3)
     head = ParagraphStyle("head", parent=cell, fontName=fonts.narrow_bold)
     return Styles(
         fonts=fonts,
         body=body,
         small=ParagraphStyle("small", parent=body, fontSize=7.6, leading=9.6),
-        note=ParagraphStyle("note", parent=body, fontSize=7.4, leading=9.4, textColor=MUTED,
-                            spaceBefore=3),
-        title=ParagraphStyle("title", parent=body, fontName=fonts.bold, fontSize=16,
-                             leading=19.5, spaceAfter=6),
+        note=ParagraphStyle(
+            "note", parent=body, fontSize=7.4, leading=9.4, textColor=MUTED, spaceBefore=3
+        ),
+        title=ParagraphStyle(
+            "title", parent=body, fontName=fonts.bold, fontSize=16, leading=19.5, spaceAfter=6
+        ),
         kicker=ParagraphStyle("kicker", parent=body, fontSize=7.4, textColor=MUTED, leading=9),
-        h2=ParagraphStyle("h2", parent=body, fontName=fonts.bold, fontSize=10.6, leading=13,
-                          spaceBefore=11, spaceAfter=5),
+        h2=ParagraphStyle(
+            "h2",
+            parent=body,
+            fontName=fonts.bold,
+            fontSize=10.6,
+            leading=13,
+            spaceBefore=11,
+            spaceAfter=5,
+        ),
         cell=cell,
         cell_muted=ParagraphStyle("cell_muted", parent=cell, textColor=MUTED),
         cell_bold=ParagraphStyle("cell_bold", parent=cell, fontName=fonts.narrow_bold),
@@ -183,8 +222,9 @@ def make_styles(fonts: Fonts) -> Styles:
         head=head,
         head_right=ParagraphStyle("head_right", parent=head, alignment=TA_RIGHT),
         mono=ParagraphStyle("mono", parent=body, fontName=fonts.mono, fontSize=7.6, leading=9.6),
-        footer=ParagraphStyle("footer", parent=body, fontName=fonts.italic, fontSize=6.7,
-                              leading=8.2, textColor=INK),
+        footer=ParagraphStyle(
+            "footer", parent=body, fontName=fonts.italic, fontSize=6.7, leading=8.2, textColor=INK
+        ),
     )
 
 
@@ -208,16 +248,28 @@ def _widths(columns: Sequence[Column], total: float) -> list[float]:
     fixed = sum(c.width for c in columns if c.width is not None)
     weights = sum(c.weight for c in columns if c.width is None)
     rest = max(total - fixed, 0.0)
-    return [c.width if c.width is not None else min(rest * c.weight / weights, c.widest)
-            for c in columns]
+    return [
+        c.width if c.width is not None else min(rest * c.weight / weights, c.widest)
+        for c in columns
+    ]
 
 
-def data_table(styles: Styles, columns: Sequence[Column], rows: Sequence[Sequence[Any]],
-               width: float, *, row_states: Sequence[str] = ()) -> LongTable:
+def data_table(
+    styles: Styles,
+    columns: Sequence[Column],
+    rows: Sequence[Sequence[Any]],
+    width: float,
+    *,
+    row_states: Sequence[str] = (),
+) -> LongTable:
     """A table whose header repeats on every page; ``row_states`` may mark rows "bad" or "muted"."""
-    header = [Paragraph("<br/>".join(styles.text(part) for part in c.heading.split("\n")),
-                        styles.head_right if c.numeric else styles.head)
-              for c in columns]
+    header = [
+        Paragraph(
+            "<br/>".join(styles.text(part) for part in c.heading.split("\n")),
+            styles.head_right if c.numeric else styles.head,
+        )
+        for c in columns
+    ]
     body = []
     for row in rows:
         cells = []
@@ -246,51 +298,65 @@ def data_table(styles: Styles, columns: Sequence[Column], rows: Sequence[Sequenc
             commands.append(("LINEBEFORE", (0, i), (0, i), 2.4, FAIL))
         elif state == "muted":
             commands.append(("TEXTCOLOR", (0, i), (-1, i), MUTED))
-    table = LongTable([header, *body], colWidths=_widths(columns, width), repeatRows=1,
-                      hAlign="LEFT")
+    table = LongTable(
+        [header, *body], colWidths=_widths(columns, width), repeatRows=1, hAlign="LEFT"
+    )
     table.setStyle(TableStyle(commands))
     return table
 
 
-def kv_table(styles: Styles, rows: Sequence[tuple[str, str]], width: float,
-             label_share: float = 0.58) -> Table:
+def kv_table(
+    styles: Styles, rows: Sequence[tuple[str, str]], width: float, label_share: float = 0.58
+) -> Table:
     """Label–value pairs, labels muted, values right-aligned."""
-    data = [[styles.para(label, styles.small), styles.para(value, styles.small)]
-            for label, value in rows]
-    table = Table(data, colWidths=[width * label_share, width * (1 - label_share)],
-                  hAlign="LEFT")
-    table.setStyle(TableStyle([
-        ("VALIGN", (0, 0), (-1, -1), "TOP"),
-        ("LEFTPADDING", (0, 0), (-1, -1), 0),
-        ("RIGHTPADDING", (0, 0), (-1, -1), 3),
-        ("TOPPADDING", (0, 0), (-1, -1), 1.4),
-        ("BOTTOMPADDING", (0, 0), (-1, -1), 1.6),
-        ("LINEBELOW", (0, 0), (-1, -1), 0.4, STRIPE),
-        ("TEXTCOLOR", (0, 0), (0, -1), MUTED),
-    ]))
+    data = [
+        [styles.para(label, styles.small), styles.para(value, styles.small)]
+        for label, value in rows
+    ]
+    table = Table(data, colWidths=[width * label_share, width * (1 - label_share)], hAlign="LEFT")
+    table.setStyle(
+        TableStyle(
+            [
+                ("VALIGN", (0, 0), (-1, -1), "TOP"),
+                ("LEFTPADDING", (0, 0), (-1, -1), 0),
+                ("RIGHTPADDING", (0, 0), (-1, -1), 3),
+                ("TOPPADDING", (0, 0), (-1, -1), 1.4),
+                ("BOTTOMPADDING", (0, 0), (-1, -1), 1.6),
+                ("LINEBELOW", (0, 0), (-1, -1), 0.4, STRIPE),
+                ("TEXTCOLOR", (0, 0), (0, -1), MUTED),
+            ]
+        )
+    )
     return table
 
 
-def state_box(styles: Styles, state: str, symbol: str, paragraphs: list[Flowable],
-              width: float) -> Table:
+def state_box(
+    styles: Styles, state: str, symbol: str, paragraphs: list[Flowable], width: float
+) -> Table:
     """A banner with a symbol and words (never colour alone), tinted by ``state``."""
     ink, background = STATE_COLOURS.get(state, STATE_COLOURS["none"])
     # the ASCII stand-ins of the fallback font ("OK", "X") need a wider, smaller mark
     size, mark_width = (15, 24) if styles.fonts.unicode else (10, 32)
-    mark = Paragraph(f'<font color="{hex_colour(ink)}"><b>{styles.text(symbol)}</b></font>',
-                     ParagraphStyle("mark", parent=styles.body, fontName=styles.fonts.bold,
-                                    fontSize=size, leading=size + 2))
-    table = Table([[mark, paragraphs]], colWidths=[mark_width, width - mark_width],
-                  hAlign="LEFT")
-    table.setStyle(TableStyle([
-        ("BACKGROUND", (0, 0), (-1, -1), background),
-        ("BOX", (0, 0), (-1, -1), 0.6, ink),
-        ("LINEBEFORE", (0, 0), (0, -1), 4.5, ink),
-        ("VALIGN", (0, 0), (-1, -1), "TOP"),
-        ("LEFTPADDING", (0, 0), (0, -1), 7),
-        ("TOPPADDING", (0, 0), (-1, -1), 5),
-        ("BOTTOMPADDING", (0, 0), (-1, -1), 6),
-    ]))
+    mark = Paragraph(
+        f'<font color="{hex_colour(ink)}"><b>{styles.text(symbol)}</b></font>',
+        ParagraphStyle(
+            "mark", parent=styles.body, fontName=styles.fonts.bold, fontSize=size, leading=size + 2
+        ),
+    )
+    table = Table([[mark, paragraphs]], colWidths=[mark_width, width - mark_width], hAlign="LEFT")
+    table.setStyle(
+        TableStyle(
+            [
+                ("BACKGROUND", (0, 0), (-1, -1), background),
+                ("BOX", (0, 0), (-1, -1), 0.6, ink),
+                ("LINEBEFORE", (0, 0), (0, -1), 4.5, ink),
+                ("VALIGN", (0, 0), (-1, -1), "TOP"),
+                ("LEFTPADDING", (0, 0), (0, -1), 7),
+                ("TOPPADDING", (0, 0), (-1, -1), 5),
+                ("BOTTOMPADDING", (0, 0), (-1, -1), 6),
+            ]
+        )
+    )
     return table
 
 

@@ -49,9 +49,7 @@ ELLIPSE_BAR_PX = 110
 #: Exaggeration factors offered: 1, 2, 5, 10 … 5 000 000.
 EXAGGERATIONS: tuple[int, ...] = tuple(m * 10**k for k in range(7) for m in (1, 2, 5))
 #: Lengths a scale bar may show: 1-2-5 steps from 0.0001 to 50 000 length units.
-BAR_LENGTHS: tuple[float, ...] = tuple(
-    float(f"{m}e{k}") for k in range(-4, 5) for m in (1, 2, 5)
-)
+BAR_LENGTHS: tuple[float, ...] = tuple(float(f"{m}e{k}") for k in range(-4, 5) for m in (1, 2, 5))
 
 #: GNSS baselines: drawn in a colour and dash of their own, whatever else joins the pair.
 BASELINE_KINDS = frozenset({"baseline"})
@@ -146,8 +144,9 @@ def _unit_suffix(row: report.ObservationRow, unit: str) -> str:
     return report.ARCSEC if row.angular else f" {unit}"
 
 
-def _point_detail(row: report.PointRow, point: PointResult, unit: str,
-                  confidence: str) -> list[list[str]]:
+def _point_detail(
+    row: report.PointRow, point: PointResult, unit: str, confidence: str
+) -> list[list[str]]:
     """(label, value) rows for the side panel, every value formatted by ``report``."""
     out = [["Role", row.role], ["East", f"{row.east} {unit}"], ["North", f"{row.north} {unit}"]]
     if row.note:
@@ -176,12 +175,15 @@ def _observation_detail(row: report.ObservationRow, unit: str) -> dict[str, Any]
         "line": row.line,
         "kind": row.kind,
         "marks": row.stations,
-        "observed": row.observed + observed_suffix if row.observed != report.NOT_APPLICABLE
+        "observed": row.observed + observed_suffix
+        if row.observed != report.NOT_APPLICABLE
         else row.observed,
-        "booked": row.booked + observed_suffix if row.booked != report.NOT_APPLICABLE
+        "booked": row.booked + observed_suffix
+        if row.booked != report.NOT_APPLICABLE
         else row.booked,
         "reduction": row.reduction,
-        "residual": row.residual + suffix if row.residual != report.NOT_APPLICABLE
+        "residual": row.residual + suffix
+        if row.residual != report.NOT_APPLICABLE
         else row.residual,
         "w": row.w,
         "status": row.status or "ok",
@@ -197,12 +199,20 @@ def _relative_detail(result: AdjustmentResult) -> dict[frozenset[str], list[list
         rows = [
             ["Between", f"{r.from_point} – {r.to_point}"],
             ["Distance", f"{report.fmt_length(r.distance, result.length_unit)} {unit}"],
-            ["sd of the distance", f"{report.fmt_length(r.sd_distance, result.length_unit)} {unit}"],
-            [f"Relative ellipse a ({report.fmt_percent(r.confidence)})",
-             f"{report.fmt_length(r.semi_major, result.length_unit)} {unit}"],
+            [
+                "sd of the distance",
+                f"{report.fmt_length(r.sd_distance, result.length_unit)} {unit}",
+            ],
+            [
+                f"Relative ellipse a ({report.fmt_percent(r.confidence)})",
+                f"{report.fmt_length(r.semi_major, result.length_unit)} {unit}",
+            ],
             ["Relative ellipse b", f"{report.fmt_length(r.semi_minor, result.length_unit)} {unit}"],
-            ["Azimuth of a", report.fmt_azimuth(r.azimuth, result.angle_unit)
-             + ("" if result.angle_unit == "dms" else "°")],
+            [
+                "Azimuth of a",
+                report.fmt_azimuth(r.azimuth, result.angle_unit)
+                + ("" if result.angle_unit == "dms" else "°"),
+            ],
         ]
         if r.allowed is not None:
             rows.append(["Allowed", f"{report.fmt_length(r.allowed, result.length_unit)} {unit}"])
@@ -235,8 +245,7 @@ def _label_box(px: float, py: float, direction: float, width: float) -> tuple[fl
     return (left, top, left + width, top + _LABEL_HEIGHT_PX)
 
 
-def _segment_hits_box(x1: float, y1: float, x2: float, y2: float,
-                      box: Sequence[float]) -> bool:
+def _segment_hits_box(x1: float, y1: float, x2: float, y2: float, box: Sequence[float]) -> bool:
     """Liang–Barsky clipping: does the segment pass through the box?"""
     left, top, right, bottom = box
     t0, t1 = 0.0, 1.0
@@ -285,9 +294,15 @@ class _Grid:
         return found
 
 
-def _label_cost(i: int, rank: int, box: tuple[float, ...], px: list[tuple[float, float]],
-                segments: list[tuple[int, int]], placed: list[tuple[float, ...]],
-                grids: tuple[_Grid, _Grid, _Grid]) -> float:
+def _label_cost(
+    i: int,
+    rank: int,
+    box: tuple[float, ...],
+    px: list[tuple[float, float]],
+    segments: list[tuple[int, int]],
+    placed: list[tuple[float, ...]],
+    grids: tuple[_Grid, _Grid, _Grid],
+) -> float:
     """Badness of a label box of point ``i``: lines crossed, symbols and labels covered."""
     segment_grid, symbol_grid, label_grid = grids
     total = rank * 0.5  # the order of preference breaks ties
@@ -297,8 +312,12 @@ def _label_cost(i: int, rank: int, box: tuple[float, ...], px: list[tuple[float,
             total += 20.0 if i in (a, b) else 8.0
     for j in symbol_grid.near(box):
         x, y = px[j]
-        symbol = (x - _SYMBOL_RADIUS_PX, y - _SYMBOL_RADIUS_PX,
-                  x + _SYMBOL_RADIUS_PX, y + _SYMBOL_RADIUS_PX)
+        symbol = (
+            x - _SYMBOL_RADIUS_PX,
+            y - _SYMBOL_RADIUS_PX,
+            x + _SYMBOL_RADIUS_PX,
+            y + _SYMBOL_RADIUS_PX,
+        )
         if j != i and _overlap(box, symbol):
             total += 40.0
     return total + sum(_overlap(box, placed[k]) for k in label_grid.near(box)) * 0.5
@@ -315,8 +334,15 @@ def _place_labels(
         (x1, y1), (x2, y2) = px[a], px[b]
         segment_grid.add(k, (min(x1, x2), min(y1, y2), max(x1, x2), max(y1, y2)))
     for j, (x, y) in enumerate(px):
-        symbol_grid.add(j, (x - _SYMBOL_RADIUS_PX, y - _SYMBOL_RADIUS_PX,
-                            x + _SYMBOL_RADIUS_PX, y + _SYMBOL_RADIUS_PX))
+        symbol_grid.add(
+            j,
+            (
+                x - _SYMBOL_RADIUS_PX,
+                y - _SYMBOL_RADIUS_PX,
+                x + _SYMBOL_RADIUS_PX,
+                y + _SYMBOL_RADIUS_PX,
+            ),
+        )
     grids = (segment_grid, symbol_grid, label_grid)
     placed: list[tuple[float, ...]] = []
     out: list[dict[str, Any]] = []
@@ -336,14 +362,16 @@ def _place_labels(
         dx = math.sin(math.radians(_LABEL_DIRECTIONS[rank]))
         anchor = "start" if dx > 0.3 else ("end" if dx < -0.3 else "middle")
         text_x = {"start": box[0], "end": box[2], "middle": (box[0] + box[2]) / 2}[anchor]
-        out.append({
-            "anchor": anchor,
-            "dx": round(text_x - px[i][0], 2),
-            # the baseline sits about a quarter of the line height above the box bottom
-            "dy": round(box[3] - 3.5 - px[i][1], 2),
-            # where the label sits at the nominal whole-network view, in canvas pixels
-            "box": [round(v, 1) for v in box],
-        })
+        out.append(
+            {
+                "anchor": anchor,
+                "dx": round(text_x - px[i][0], 2),
+                # the baseline sits about a quarter of the line height above the box bottom
+                "dy": round(box[3] - 3.5 - px[i][1], 2),
+                # where the label sits at the nominal whole-network view, in canvas pixels
+                "box": [round(v, 1) for v in box],
+            }
+        )
     return out
 
 
@@ -368,8 +396,9 @@ def _view(width: float, height: float, px_width: float, px_height: float) -> dic
     }
 
 
-def _joined_pairs(result: AdjustmentResult,
-                  position: dict[str, tuple[float, float]]) -> dict[frozenset[str], dict[str, Any]]:
+def _joined_pairs(
+    result: AdjustmentResult, position: dict[str, tuple[float, float]]
+) -> dict[frozenset[str], dict[str, Any]]:
     """Drawn point pairs with the indices and kinds of their observations, first-seen order."""
     pairs: dict[frozenset[str], dict[str, Any]] = {}
     for k, obs in enumerate(result.observations):
@@ -379,8 +408,15 @@ def _joined_pairs(result: AdjustmentResult,
             key = frozenset((a, b))
             record = pairs.get(key)
             if record is None:
-                record = pairs[key] = {"a": a, "b": b, "observations": [], "used": set(),
-                                       "all": set(), "flagged": False, "has_ignored": False}
+                record = pairs[key] = {
+                    "a": a,
+                    "b": b,
+                    "observations": [],
+                    "used": set(),
+                    "all": set(),
+                    "flagged": False,
+                    "has_ignored": False,
+                }
             if k not in record["observations"]:
                 record["observations"].append(k)
             record["all"].add(obs.kind)
@@ -396,8 +432,11 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
     """Everything the network plot draws, or None for a 1D network or one without positions."""
     if result.summary.dimension < 2:
         return None
-    grid = {p.name: (p.east, p.north) for p in result.points
-            if p.east is not None and p.north is not None}
+    grid = {
+        p.name: (p.east, p.north)
+        for p in result.points
+        if p.east is not None and p.north is not None
+    }
     drawn = [(i, p) for i, p in enumerate(result.points) if p.name in grid]
     if not drawn:
         return None
@@ -429,37 +468,48 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
         flagged_rows = [obs_rows[k] for k in record["observations"] if obs_rows[k].flagged]
         worst = max(flagged_rows, key=lambda r: abs(r.w_raw or 0.0), default=None)
         kinds = sorted(record["all"])
-        lines.append({
-            "id": n,
-            "a": index_of[a],
-            "b": index_of[b],
-            "names": [a, b],
-            "x1": round(x1, 4), "y1": round(y1, 4), "x2": round(x2, 4), "y2": round(y2, 4),
-            "mx": round((x1 + x2) / 2, 4), "my": round((y1 + y2) / 2, 4),
-            # an ignored-observation mark sits a third of the way along when a flag takes the middle
-            "ix": round(x1 + (x2 - x1) * (0.35 if record["flagged"] else 0.5), 4),
-            "iy": round(y1 + (y2 - y1) * (0.35 if record["flagged"] else 0.5), 4),
-            "kinds": kinds,
-            "style": _line_style(record["used"]) if used else "ignored",
-            "used": used,
-            "has_ignored": record["has_ignored"] and used,
-            "flagged": record["flagged"],
-            "observations": record["observations"],
-            "detail": [_observation_detail(obs_rows[k], unit) for k in record["observations"]],
-            "relative": relative.get(key),
-            "title": f"{a} – {b}: " + ", ".join(kinds)
-            + ("" if used else " (not used)")
-            + (f"; flagged, line {worst.line} w = {worst.w}" if worst is not None else ""),
-            "flag_title": "" if worst is None else
-            f"Flagged: line {worst.line}, {worst.kind} {worst.stations}, w = {worst.w}",
-        })
+        lines.append(
+            {
+                "id": n,
+                "a": index_of[a],
+                "b": index_of[b],
+                "names": [a, b],
+                "x1": round(x1, 4),
+                "y1": round(y1, 4),
+                "x2": round(x2, 4),
+                "y2": round(y2, 4),
+                "mx": round((x1 + x2) / 2, 4),
+                "my": round((y1 + y2) / 2, 4),
+                # an ignored-observation mark sits a third of the way along when a flag takes
+                # the middle
+                "ix": round(x1 + (x2 - x1) * (0.35 if record["flagged"] else 0.5), 4),
+                "iy": round(y1 + (y2 - y1) * (0.35 if record["flagged"] else 0.5), 4),
+                "kinds": kinds,
+                "style": _line_style(record["used"]) if used else "ignored",
+                "used": used,
+                "has_ignored": record["has_ignored"] and used,
+                "flagged": record["flagged"],
+                "observations": record["observations"],
+                "detail": [_observation_detail(obs_rows[k], unit) for k in record["observations"]],
+                "relative": relative.get(key),
+                "title": f"{a} – {b}: "
+                + ", ".join(kinds)
+                + ("" if used else " (not used)")
+                + (f"; flagged, line {worst.line} w = {worst.w}" if worst is not None else ""),
+                "flag_title": ""
+                if worst is None
+                else f"Flagged: line {worst.line}, {worst.kind} {worst.stations}, w = {worst.w}",
+            }
+        )
     # draw unused lines first and flagged ones last, so a flag is never hidden
     lines.sort(key=lambda line: (line["used"], line["flagged"], line["id"]))
 
     point_rows = report.point_rows(result)
     names = [p.name for _, p in drawn]
-    px = [((position[nm][0] - view["x"]) / per_px, (position[nm][1] - view["y"]) / per_px)
-          for nm in names]
+    px = [
+        ((position[nm][0] - view["x"]) / per_px, (position[nm][1] - view["y"]) / per_px)
+        for nm in names
+    ]
     labels = _place_labels(names, px, [(line["a"], line["b"]) for line in lines if line["used"]])
     points = []
     for k, (i, p) in enumerate(drawn):
@@ -474,19 +524,21 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
                 "rx": _round_sig(p.ellipse.semi_minor * factor),
                 "ry": _round_sig(p.ellipse.semi_major * factor),
             }
-        points.append({
-            "id": k,
-            "index": i,
-            "name": p.name,
-            "x": round(x, 4),
-            "y": round(y, 4),
-            "kind": point_kind(p),
-            "in_use": p.in_use,
-            "label": labels[k],
-            "ellipse": ellipse,
-            "detail": _point_detail(row, p, unit, confidence),
-            "title": f"{p.name} ({row.role}): E {row.east}, N {row.north} {unit}",
-        })
+        points.append(
+            {
+                "id": k,
+                "index": i,
+                "name": p.name,
+                "x": round(x, 4),
+                "y": round(y, 4),
+                "kind": point_kind(p),
+                "in_use": p.in_use,
+                "label": labels[k],
+                "ellipse": ellipse,
+                "detail": _point_detail(row, p, unit, confidence),
+                "title": f"{p.name} ({row.role}): E {row.east}, N {row.north} {unit}",
+            }
+        )
 
     map_bar = bar_length(MAP_BAR_PX * per_px)
     ellipse_bar = bar_length(ELLIPSE_BAR_PX * per_px / factor)
@@ -498,15 +550,28 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
         "origin": {"east": east0, "north": north0},
         "extent": {"width": round(width, 4), "height": round(height, 4)},
         "view": view,
-        "nominal": {"width": NOMINAL_WIDTH_PX, "height": NOMINAL_HEIGHT_PX, "margin": MARGIN_PX,
-                    "per_px": _round_sig(per_px)},
-        "bars": {"map_px": MAP_BAR_PX, "ellipse_px": ELLIPSE_BAR_PX,
-                 "lengths": list(BAR_LENGTHS),
-                 "labels": [length_text(v, result.length_unit) for v in BAR_LENGTHS]},
-        "map_bar": {"length": map_bar, "px": round(map_bar / per_px, 2),
-                    "label": length_text(map_bar, result.length_unit)},
-        "ellipse_bar": {"length": ellipse_bar, "px": round(ellipse_bar * factor / per_px, 2),
-                        "label": length_text(ellipse_bar, result.length_unit)},
+        "nominal": {
+            "width": NOMINAL_WIDTH_PX,
+            "height": NOMINAL_HEIGHT_PX,
+            "margin": MARGIN_PX,
+            "per_px": _round_sig(per_px),
+        },
+        "bars": {
+            "map_px": MAP_BAR_PX,
+            "ellipse_px": ELLIPSE_BAR_PX,
+            "lengths": list(BAR_LENGTHS),
+            "labels": [length_text(v, result.length_unit) for v in BAR_LENGTHS],
+        },
+        "map_bar": {
+            "length": map_bar,
+            "px": round(map_bar / per_px, 2),
+            "label": length_text(map_bar, result.length_unit),
+        },
+        "ellipse_bar": {
+            "length": ellipse_bar,
+            "px": round(ellipse_bar * factor / per_px, 2),
+            "label": length_text(ellipse_bar, result.length_unit),
+        },
         "has_ellipses": largest > 0,
         "exaggeration": factor,
         "exaggeration_index": EXAGGERATIONS.index(factor),

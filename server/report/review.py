@@ -53,8 +53,12 @@ _DATUM_COMPONENTS = {1: "h", 2: "en", 3: "enh"}
 
 def edit_to_json(edit: ObservationEdit) -> dict[str, Any]:
     """A decision as the JSON object stored with a run."""
-    data: dict[str, Any] = {"line": edit.line, "action": edit.action, "reason": edit.reason,
-                            "date": edit.date}
+    data: dict[str, Any] = {
+        "line": edit.line,
+        "action": edit.action,
+        "reason": edit.reason,
+        "date": edit.date,
+    }
     if edit.sd is not None:
         data["sd"] = edit.sd
     if edit.value is not None:
@@ -84,8 +88,16 @@ def edit_from_json(data: Any) -> ObservationEdit:
         isinstance(p, list) and len(p) == 2 and all(isinstance(n, str) for n in p) for p in pairs
     ):
         raise EditError("a stored decision on relative precision is not readable")
-    return ObservationEdit(line=line, action=action, reason=reason, date=date, sd=sd,
-                           value=value, previous=previous, pairs=tuple((a, b) for a, b in pairs))
+    return ObservationEdit(
+        line=line,
+        action=action,
+        reason=reason,
+        date=date,
+        sd=sd,
+        value=value,
+        previous=previous,
+        pairs=tuple((a, b) for a, b in pairs),
+    )
 
 
 def edits_from_json(items: Iterable[Any]) -> list[ObservationEdit]:
@@ -116,16 +128,21 @@ def decision_rows(
     out = []
     for k, edit in enumerate(edits):
         obs = by_line.get(edit.line)
-        out.append(DecisionRow(
-            line=edit.line,
-            action=edit.action,
-            words=decision_words(edit),
-            reason=edit.reason,
-            date=edit.date,
-            stations=_pairs_text(edit.pairs) if edit.action == "relative"
-            else f"{obs.kind} {stations(obs)}" if obs is not None else "",
-            edit_id=ids[k] if ids is not None else None,
-        ))
+        out.append(
+            DecisionRow(
+                line=edit.line,
+                action=edit.action,
+                words=decision_words(edit),
+                reason=edit.reason,
+                date=edit.date,
+                stations=_pairs_text(edit.pairs)
+                if edit.action == "relative"
+                else f"{obs.kind} {stations(obs)}"
+                if obs is not None
+                else "",
+                edit_id=ids[k] if ids is not None else None,
+            )
+        )
     return out
 
 
@@ -151,7 +168,8 @@ def _pairs_text(pairs: Sequence[tuple[str, str]], shown: int = 8) -> str:
 
 
 def ignored_after(result: AdjustmentResult, edits: Iterable[ObservationEdit]) -> dict[int, bool]:
-    """Whether each observation is left out once ``edits`` (applied after ``result``) take effect."""
+    """Whether each observation is left out once ``edits`` (applied after ``result``) take
+    effect."""
     state = {o.line: o.ignored for o in result.observations}
     for edit in edits:
         if edit.line in state and edit.action in ("exclude", "include"):
@@ -187,13 +205,16 @@ class ReviewRow:
 
 def review_order(result: AdjustmentResult) -> list[ObservationResult]:
     """Flagged observations first, largest |w| first; then the others in file order."""
-    flagged = sorted((o for o in result.observations if o.flagged),
-                     key=lambda o: (-abs(o.w or 0.0), o.line))
+    flagged = sorted(
+        (o for o in result.observations if o.flagged), key=lambda o: (-abs(o.w or 0.0), o.line)
+    )
     return flagged + [o for o in result.observations if not o.flagged]
 
 
 def review_rows(
-    result: AdjustmentResult, lines: Sequence[str], tau: TauTest | None,
+    result: AdjustmentResult,
+    lines: Sequence[str],
+    tau: TauTest | None,
     window: slice = slice(None),
 ) -> list[ReviewRow]:
     """The rows of ``review_order`` in ``window`` (one page), built only for that page."""
@@ -202,13 +223,15 @@ def review_rows(
     for figures in observation_rows_of(result, review_order(result)[window]):
         t = taus.get(figures.line)
         source = lines[figures.line - 1] if 0 < figures.line <= len(lines) else ""
-        rows.append(ReviewRow(
-            figures=figures,
-            tau=fmt_w(t.tau if t is not None else None),
-            tau_flagged=bool(t is not None and t.flagged),
-            source=source.strip()[:MAX_SOURCE_CHARS],
-            value=value_token(source, figures.kind),
-        ))
+        rows.append(
+            ReviewRow(
+                figures=figures,
+                tau=fmt_w(t.tau if t is not None else None),
+                tau_flagged=bool(t is not None and t.flagged),
+                source=source.strip()[:MAX_SOURCE_CHARS],
+                value=value_token(source, figures.kind),
+            )
+        )
     return rows
 
 
@@ -233,13 +256,15 @@ def robust_rows(robust: RobustResult, result: AdjustmentResult) -> list[RobustRo
     out = []
     for o in robust.down_weighted:
         obs = by_line.get(o.line)
-        out.append(RobustRow(
-            line=o.line,
-            observation=f"{obs.kind} {stations(obs)}" if obs is not None else "",
-            weight=fmt_ratio(o.weight),
-            u=fmt_w(o.u),
-            suspect=o.suspect,
-        ))
+        out.append(
+            RobustRow(
+                line=o.line,
+                observation=f"{obs.kind} {stations(obs)}" if obs is not None else "",
+                weight=fmt_ratio(o.weight),
+                u=fmt_w(o.u),
+                suspect=o.suspect,
+            )
+        )
     return out
 
 
@@ -259,8 +284,13 @@ def tau_rows(tau: TauTest, result: AdjustmentResult) -> list[TauRow]:
     out = []
     for line in tau.flagged_lines:
         obs = by_line.get(line)
-        out.append(TauRow(line=line, observation=f"{obs.kind} {stations(obs)}" if obs else "",
-                          tau=fmt_w(taus[line])))
+        out.append(
+            TauRow(
+                line=line,
+                observation=f"{obs.kind} {stations(obs)}" if obs else "",
+                tau=fmt_w(taus[line]),
+            )
+        )
     return out
 
 
@@ -282,18 +312,23 @@ def snooping_rows(plan: SnoopingPlan) -> list[SnoopingRow]:
     """The proposed sequence, numbered from 1, each with a suggested reason."""
     out = []
     for k, step in enumerate(plan.steps, 1):
-        marks = (f"{step.from_point} – {step.at} – {step.to}" if step.kind == "angle" and step.at
-                 else f"{step.from_point} → {step.to}")
-        out.append(SnoopingRow(
-            step=k,
-            line=step.line,
-            observation=f"{step.kind} {marks}",
-            w=fmt_w(abs(step.w)),
-            variance_factor_after=fmt_ratio(step.variance_factor_after, 3),
-            passed_after=step.global_test_passed_after,
-            flagged_after=step.flagged_after,
-            reason=f"data snooping step {k}: |w| = {abs(step.w):.2f}",
-        ))
+        marks = (
+            f"{step.from_point} – {step.at} – {step.to}"
+            if step.kind == "angle" and step.at
+            else f"{step.from_point} → {step.to}"
+        )
+        out.append(
+            SnoopingRow(
+                step=k,
+                line=step.line,
+                observation=f"{step.kind} {marks}",
+                w=fmt_w(abs(step.w)),
+                variance_factor_after=fmt_ratio(step.variance_factor_after, 3),
+                passed_after=step.global_test_passed_after,
+                flagged_after=step.flagged_after,
+                reason=f"data snooping step {k}: |w| = {abs(step.w):.2f}",
+            )
+        )
     return out
 
 
@@ -383,11 +418,16 @@ def _corrected(a: AdjustmentResult, b: AdjustmentResult) -> tuple[CorrectedValue
         if before is None or before.booked == row.booked:
             continue
         sfx = "″" if row.angular else f" {length_label(b.length_unit)}"
-        out.append(CorrectedValue(
-            line=row.line, observation=f"{row.kind} {row.stations}",
-            booked_a=before.booked, booked_b=row.booked,
-            residual_a=before.residual + sfx, residual_b=row.residual + sfx,
-        ))
+        out.append(
+            CorrectedValue(
+                line=row.line,
+                observation=f"{row.kind} {row.stations}",
+                booked_a=before.booked,
+                booked_b=row.booked,
+                residual_a=before.residual + sfx,
+                residual_b=row.residual + sfx,
+            )
+        )
     return tuple(out)
 
 
@@ -451,14 +491,23 @@ def compare(a: AdjustmentResult, b: AdjustmentResult) -> Comparison:
     flagged_a = {line for line, o in obs_a.items() if o.flagged}
     flagged_b = {line for line, o in obs_b.items() if o.flagged}
     # a flag that went away because nothing checks the observation any more is not cleared
-    unchecked_b = {line for line, o in obs_b.items()
-                   if not o.ignored and o.redundancy is not None and o.w is None
-                   and not (line in obs_a and obs_a[line].w is None)}
+    unchecked_b = {
+        line
+        for line, o in obs_b.items()
+        if not o.ignored
+        and o.redundancy is not None
+        and o.w is None
+        and not (line in obs_a and obs_a[line].w is None)
+    }
 
     def change(line: int) -> FlagChange:
         obs = obs_b.get(line) or obs_a[line]
-        return FlagChange(line=line, observation=f"{obs.kind} {stations(obs)}",
-                          w_a=_w_text(obs_a.get(line)), w_b=_w_text(obs_b.get(line)))
+        return FlagChange(
+            line=line,
+            observation=f"{obs.kind} {stations(obs)}",
+            w_a=_w_text(obs_a.get(line)),
+            w_b=_w_text(obs_b.get(line)),
+        )
 
     unit, factor = shift_unit(b.length_unit)
     decimals = 1 if unit == "mm" else 4
@@ -485,18 +534,19 @@ def compare(a: AdjustmentResult, b: AdjustmentResult) -> Comparison:
         parts = [d for d in (d_e, d_n, d_h) if d is not None]
         total = math.sqrt(sum(d * d for d in parts)) if parts else None
         horizontal = math.hypot(d_e, d_n) if d_e is not None and d_n is not None else None
-        shifts.append(PointShift(
-            name=p.name,
-            d_east=scaled(d_e),
-            d_north=scaled(d_n),
-            horizontal=scaled(horizontal, signed=False),
-            d_height=scaled(d_h),
-            d_height_file_unit=NOT_APPLICABLE if d_h is None else _signed(
-                d_h, 4),
-            total=scaled(total, signed=False),
-            total_file_unit=fmt_length(total, b.length_unit),
-            total_raw=total,
-        ))
+        shifts.append(
+            PointShift(
+                name=p.name,
+                d_east=scaled(d_e),
+                d_north=scaled(d_n),
+                horizontal=scaled(horizontal, signed=False),
+                d_height=scaled(d_h),
+                d_height_file_unit=NOT_APPLICABLE if d_h is None else _signed(d_h, 4),
+                total=scaled(total, signed=False),
+                total_file_unit=fmt_length(total, b.length_unit),
+                total_raw=total,
+            )
+        )
     shifts.sort(key=lambda s: (s.total_raw is None, -(s.total_raw or 0.0), s.name))
     return Comparison(
         a=_run_figures(a),
@@ -511,8 +561,6 @@ def compare(a: AdjustmentResult, b: AdjustmentResult) -> Comparison:
         heights="h" in held and any(p.height is not None for p in b.points),
         fixed_points=fixed,
         corrected=_corrected(a, b),
-
-
         unchecked=tuple(change(line) for line in sorted(unchecked_b)),
     )
 
@@ -522,5 +570,5 @@ def decisions_between(
 ) -> tuple[list[ObservationEdit], list[ObservationEdit]]:
     """(made, withdrawn): decisions in force in ``after`` but not ``before``, and the reverse."""
     if list(after[: len(before)]) == list(before):
-        return list(after[len(before):]), []
+        return list(after[len(before) :]), []
     return ([e for e in after if e not in before], [e for e in before if e not in after])

@@ -100,8 +100,7 @@ def reduction_text(o: ObservationResult) -> str:
     "± n·360°" for an angle booked outside one turn, else "—" (used as booked)."""
     if o.scale_factor is not None and o.scale_factor != 1.0:
         return f"× {fmt_scale(o.scale_factor)}"
-    if o.angular and o.kind != "zenith" and o.booked is not None \
-            and o.observed is not None:
+    if o.angular and o.kind != "zenith" and o.booked is not None and o.observed is not None:
         turns = round((o.observed - o.booked) / 360.0)
         if turns:
             return f"{'+' if turns > 0 else '−'} {abs(turns) * 360}°"
@@ -110,16 +109,24 @@ def reduction_text(o: ObservationResult) -> str:
 
 def reductions_note(result: AdjustmentResult) -> str:
     """One sentence naming the scale factors applied to distances, or "" when none was."""
-    factors = sorted({o.scale_factor for o in result.observations
-                      if o.scale_factor is not None and o.scale_factor != 1.0})
+    factors = sorted(
+        {
+            o.scale_factor
+            for o in result.observations
+            if o.scale_factor is not None and o.scale_factor != 1.0
+        }
+    )
     if not factors:
         return ""
     listed = ", ".join(fmt_scale(f) for f in factors)
     noun = "factor" if len(factors) == 1 else "factors"
-    count = sum(1 for o in result.observations
-                if o.scale_factor is not None and o.scale_factor != 1.0)
-    return (f"{count} booked distance{'s' if count != 1 else ''} reduced by the scale {noun} "
-            f"{listed} (used = booked × factor).")
+    count = sum(
+        1 for o in result.observations if o.scale_factor is not None and o.scale_factor != 1.0
+    )
+    return (
+        f"{count} booked distance{'s' if count != 1 else ''} reduced by the scale {noun} "
+        f"{listed} (used = booked × factor)."
+    )
 
 
 def fmt_arcsec(value: float | None, *, blank: str = NOT_APPLICABLE) -> str:
@@ -261,8 +268,9 @@ class MisclosureRow:
     stations: str = NOT_APPLICABLE
 
 
-def verdict_state(*, converged: bool, passed: bool | None, flagged: int = 0, exceeded: int = 0,
-                  unchecked: int = 0) -> str:
+def verdict_state(
+    *, converged: bool, passed: bool | None, flagged: int = 0, exceeded: int = 0, unchecked: int = 0
+) -> str:
     """The one rule for a verdict's state: "pass", "warn", "fail" or "none" (``passed`` None:
     not tested).  The results banner, the review, the comparison and the project list use it."""
     if not converged:
@@ -303,27 +311,48 @@ def verdict(result: AdjustmentResult) -> Verdict:
     if unchecked:
         notes.append(unchecked_note(result, unchecked))
     detail = tuple(notes)
-    state = verdict_state(converged=s.converged, passed=None if test is None else test.passed,
-                          flagged=len(flagged), exceeded=exceeded, unchecked=len(unchecked))
+    state = verdict_state(
+        converged=s.converged,
+        passed=None if test is None else test.passed,
+        flagged=len(flagged),
+        exceeded=exceeded,
+        unchecked=len(unchecked),
+    )
     if not s.converged:
-        return Verdict(state, "Not converged: the iterations did not settle — do not use these "
-                       "results", detail, len(flagged), exceeded, len(unchecked))
+        return Verdict(
+            state,
+            "Not converged: the iterations did not settle — do not use these results",
+            detail,
+            len(flagged),
+            exceeded,
+            len(unchecked),
+        )
     if test is None:
-        return Verdict(state, "Not tested: there are no redundant observations, so a blunder "
-                       "cannot be detected", detail, len(flagged), exceeded, len(unchecked))
+        return Verdict(
+            state,
+            "Not tested: there are no redundant observations, so a blunder cannot be detected",
+            detail,
+            len(flagged),
+            exceeded,
+            len(unchecked),
+        )
     if test.passed:
         headline = "Passes: the residuals agree with the a priori standard deviations"
         if unchecked:
-            headline = (f"Passes, but {_count(len(unchecked))} can no longer be checked: a blunder "
-                        f"in {'it' if len(unchecked) == 1 else 'them'} would go unseen")
+            headline = (
+                f"Passes, but {_count(len(unchecked))} can no longer be checked: a blunder "
+                f"in {'it' if len(unchecked) == 1 else 'them'} would go unseen"
+            )
         if flagged:
             headline += " — but check the flagged observations"
         return Verdict(state, headline, detail, len(flagged), exceeded, len(unchecked))
     if test.statistic > test.upper:
         headline = "Fails: residuals too large — look for blunders"
     else:
-        headline = ("Fails: residuals smaller than expected — the a priori standard deviations "
-                    "may be too pessimistic")
+        headline = (
+            "Fails: residuals smaller than expected — the a priori standard deviations "
+            "may be too pessimistic"
+        )
     return Verdict(state, headline, detail, len(flagged), exceeded, len(unchecked))
 
 
@@ -335,8 +364,9 @@ def _flagged_line_labels(result: AdjustmentResult) -> list[str]:
             components.setdefault(o.line, [])
             if o.component is not None:
                 components[o.line].append(o.component)
-    return [f"{line} ({', '.join(parts)})" if parts else str(line)
-            for line, parts in components.items()]
+    return [
+        f"{line} ({', '.join(parts)})" if parts else str(line) for line, parts in components.items()
+    ]
 
 
 def _inseparable_notes(result: AdjustmentResult) -> list[str]:
@@ -347,16 +377,23 @@ def _inseparable_notes(result: AdjustmentResult) -> list[str]:
             groups.setdefault(tuple(sorted({o.line, *o.inseparable})), None)
     notes = []
     for group in list(groups)[:5]:
-        shown = ", ".join(map(str, group[:-1])) + f" and {group[-1]}" if len(group) <= 12 else (
-            ", ".join(map(str, group[:12])) + f" and {len(group) - 12} more")
-        notes.append(f"Lines {shown} are tested by the same check: the data cannot tell which of "
-                     "them is wrong (re-observe them, or check the field notes).")
+        shown = (
+            ", ".join(map(str, group[:-1])) + f" and {group[-1]}"
+            if len(group) <= 12
+            else (", ".join(map(str, group[:12])) + f" and {len(group) - 12} more")
+        )
+        notes.append(
+            f"Lines {shown} are tested by the same check: the data cannot tell which of "
+            "them is wrong (re-observe them, or check the field notes)."
+        )
     return notes
 
 
 def unchecked_observations(result: AdjustmentResult) -> list[ObservationResult]:
     """Used observations that no test can check (redundancy number below 0.001, w null)."""
-    return [o for o in result.observations if not o.ignored and o.redundancy is not None and o.w is None]
+    return [
+        o for o in result.observations if not o.ignored and o.redundancy is not None and o.w is None
+    ]
 
 
 def _count(n: int) -> str:
@@ -371,12 +408,15 @@ def unchecked_note(result: AdjustmentResult, unchecked: list[ObservationResult])
     left_out = [o.line for o in result.observations if o.ignored]
     cause = ""
     if left_out:
-        lines = ", ".join(str(line) for line in left_out[:12]) + (" …" if len(left_out) > 12 else "")
+        lines = ", ".join(str(line) for line in left_out[:12]) + (
+            " …" if len(left_out) > 12 else ""
+        )
         cause = f"With line{'s' if len(left_out) > 1 else ''} {lines} left out,"
     verb = "is" if len(unchecked) == 1 else "are"
     return (
         f"{cause}{' t' if cause else 'T'}he following {verb} no longer checked by any other "
-        f"observation (redundancy number below 0.001): a blunder in {'it' if len(unchecked) == 1 else 'them'} "
+        "observation (redundancy number below 0.001): a blunder in "
+        f"{'it' if len(unchecked) == 1 else 'them'} "
         f"would go unseen — {shown}."
     )
 
@@ -435,8 +475,9 @@ def datum_rows(result: AdjustmentResult) -> list[tuple[str, str, str]]:
     fixed = [p for p in result.points if p.fixed]
     weighted = [p for p in result.points if p.weighted]
     out = [(p.name, "held fixed", COMPONENT_LABELS.get(p.fixed, p.fixed)) for p in fixed]
-    out += [(p.name, "weighted control", COMPONENT_LABELS.get(p.weighted, p.weighted))
-            for p in weighted]
+    out += [
+        (p.name, "weighted control", COMPONENT_LABELS.get(p.weighted, p.weighted)) for p in weighted
+    ]
     return out
 
 
@@ -457,21 +498,23 @@ def point_rows(result: AdjustmentResult, window: slice = slice(None)) -> list[Po
     out = []
     for p in result.points[window]:
         e = p.ellipse
-        out.append(PointRow(
-            name=p.name,
-            east=fmt_length(p.east, unit),
-            north=fmt_length(p.north, unit),
-            height=fmt_length(p.height, unit),
-            sd_east=fmt_length(p.sd_east, unit),
-            sd_north=fmt_length(p.sd_north, unit),
-            sd_height=fmt_length(p.sd_height, unit),
-            role=_role(p),
-            semi_major=fmt_length(e.semi_major if e else None, unit),
-            semi_minor=fmt_length(e.semi_minor if e else None, unit),
-            azimuth=fmt_azimuth(e.azimuth if e else None, result.angle_unit),
-            in_use=p.in_use,
-            note=p.note,
-        ))
+        out.append(
+            PointRow(
+                name=p.name,
+                east=fmt_length(p.east, unit),
+                north=fmt_length(p.north, unit),
+                height=fmt_length(p.height, unit),
+                sd_east=fmt_length(p.sd_east, unit),
+                sd_north=fmt_length(p.sd_north, unit),
+                sd_height=fmt_length(p.sd_height, unit),
+                role=_role(p),
+                semi_major=fmt_length(e.semi_major if e else None, unit),
+                semi_minor=fmt_length(e.semi_minor if e else None, unit),
+                azimuth=fmt_azimuth(e.azimuth if e else None, result.angle_unit),
+                in_use=p.in_use,
+                note=p.note,
+            )
+        )
     return out
 
 
@@ -505,8 +548,9 @@ def observation_rows(result: AdjustmentResult, window: slice = slice(None)) -> l
     return observation_rows_of(result, result.observations[window])
 
 
-def observation_rows_of(result: AdjustmentResult,
-                        observations: Iterable[ObservationResult]) -> list[ObservationRow]:
+def observation_rows_of(
+    result: AdjustmentResult, observations: Iterable[ObservationResult]
+) -> list[ObservationRow]:
     """``observations`` (some of the result's, in the order given) formatted as table rows."""
     unit, angle_unit = result.length_unit, result.angle_unit
     out = []
@@ -525,33 +569,35 @@ def observation_rows_of(result: AdjustmentResult,
             sd, mdb = fmt_length(o.sd, unit), fmt_length(o.mdb, unit)
             bias = fmt_length(o.estimated_bias, unit)
         uncontrolled = not o.ignored and o.redundancy is not None and o.w is None
-        out.append(ObservationRow(
-            line=o.line,
-            kind=o.kind if o.component is None else f"{o.kind} {o.component}",
-            stations=stations(o),
-            marks=_marks(o),
-            separator=" – " if o.kind == "angle" and o.at is not None else " → ",
-            observed=value,
-            adjusted=adjusted,
-            residual=residual,
-            sd=sd,
-            redundancy=fmt_ratio(o.redundancy),
-            w=fmt_w(o.w),
-            mdb=mdb,
-            flagged=o.flagged,
-            ignored=o.ignored,
-            uncontrolled=uncontrolled,
-            status=_status(o, uncontrolled),
-            angular=o.angular,
-            w_raw=o.w,
-            residual_raw=o.residual,
-            redundancy_raw=o.redundancy,
-            note=o.note,
-            booked=booked,
-            reduction=reduction_text(o),
-            estimated_bias=bias,
-            inseparable=o.inseparable,
-        ))
+        out.append(
+            ObservationRow(
+                line=o.line,
+                kind=o.kind if o.component is None else f"{o.kind} {o.component}",
+                stations=stations(o),
+                marks=_marks(o),
+                separator=" – " if o.kind == "angle" and o.at is not None else " → ",
+                observed=value,
+                adjusted=adjusted,
+                residual=residual,
+                sd=sd,
+                redundancy=fmt_ratio(o.redundancy),
+                w=fmt_w(o.w),
+                mdb=mdb,
+                flagged=o.flagged,
+                ignored=o.ignored,
+                uncontrolled=uncontrolled,
+                status=_status(o, uncontrolled),
+                angular=o.angular,
+                w_raw=o.w,
+                residual_raw=o.residual,
+                redundancy_raw=o.redundancy,
+                note=o.note,
+                booked=booked,
+                reduction=reduction_text(o),
+                estimated_bias=bias,
+                inseparable=o.inseparable,
+            )
+        )
     return out
 
 
@@ -564,21 +610,23 @@ def misclosure_rows(result: AdjustmentResult) -> list[MisclosureRow]:
             status = "no allowance set"
         else:
             status = "exceeds" if m.exceeds else "within"
-        out.append(MisclosureRow(
-            kind=m.kind,
-            route=" → ".join(m.points),
-            marks=tuple(m.points),
-            misclosure=fmt_length(m.misclosure, unit),
-            length=fmt_route_length(m.length),
-            allowed=fmt_length(m.allowed, unit),
-            exceeds=m.exceeds,
-            status=status,
-            angular=fmt_closure_angle(m.angular_misclosure, result.angle_unit),
-            angular_allowed=fmt_closure_angle(m.angular_allowed, result.angle_unit),
-            ratio=fmt_precision_ratio(m.ratio, floor=True),
-            ratio_allowed=fmt_precision_ratio(m.ratio_allowed),
-            stations=NOT_APPLICABLE if m.angle_stations is None else str(m.angle_stations),
-        ))
+        out.append(
+            MisclosureRow(
+                kind=m.kind,
+                route=" → ".join(m.points),
+                marks=tuple(m.points),
+                misclosure=fmt_length(m.misclosure, unit),
+                length=fmt_route_length(m.length),
+                allowed=fmt_length(m.allowed, unit),
+                exceeds=m.exceeds,
+                status=status,
+                angular=fmt_closure_angle(m.angular_misclosure, result.angle_unit),
+                angular_allowed=fmt_closure_angle(m.angular_allowed, result.angle_unit),
+                ratio=fmt_precision_ratio(m.ratio, floor=True),
+                ratio_allowed=fmt_precision_ratio(m.ratio_allowed),
+                stations=NOT_APPLICABLE if m.angle_stations is None else str(m.angle_stations),
+            )
+        )
     return out
 
 
@@ -627,7 +675,8 @@ class RelativeRow:
 
 
 def relative_rows(result: AdjustmentResult) -> list[RelativeRow]:
-    """Relative precision per pair; ``status`` is "meets", "fails", "held points" or "no allowance set"."""
+    """Relative precision per pair; ``status`` is "meets", "fails", "held points" or
+    "no allowance set"."""
     unit = result.length_unit
     out = []
     for r in result.relative:
@@ -637,19 +686,21 @@ def relative_rows(result: AdjustmentResult) -> list[RelativeRow]:
             status = "no allowance set"
         else:
             status = "meets" if r.passed else "fails"
-        out.append(RelativeRow(
-            from_point=r.from_point,
-            to_point=r.to_point,
-            distance=fmt_length(r.distance, unit),
-            sd_distance=fmt_length(r.sd_distance, unit),
-            semi_major=fmt_length(r.semi_major, unit),
-            semi_minor=fmt_length(r.semi_minor, unit),
-            azimuth=fmt_azimuth(r.azimuth, result.angle_unit),
-            allowed=fmt_length(r.allowed, unit),
-            passed=r.passed,
-            status=status,
-            origin="requested" if r.requested else "joined",
-        ))
+        out.append(
+            RelativeRow(
+                from_point=r.from_point,
+                to_point=r.to_point,
+                distance=fmt_length(r.distance, unit),
+                sd_distance=fmt_length(r.sd_distance, unit),
+                semi_major=fmt_length(r.semi_major, unit),
+                semi_minor=fmt_length(r.semi_minor, unit),
+                azimuth=fmt_azimuth(r.azimuth, result.angle_unit),
+                allowed=fmt_length(r.allowed, unit),
+                passed=r.passed,
+                status=status,
+                origin="requested" if r.requested else "joined",
+            )
+        )
     return out
 
 
@@ -700,19 +751,23 @@ class StandardCheck:
         return {"pass": "✓", "fail": "✕"}.get(self.state, "–")
 
 
-def _allowance_source(presets: Sequence[Preset], kind: str, statement: str,
-                      any_allowed: bool) -> str:
+def _allowance_source(
+    presets: Sequence[Preset], kind: str, statement: str, any_allowed: bool
+) -> str:
     for preset in presets:
         if preset.kind == kind:
             return f"{preset.label} (preset): {preset.source}"
     if any_allowed:
         return f"the field book's own “tolerance {statement}=” statement"
-    return (f"none: the field book sets no “tolerance {statement}=” and no preset was chosen, "
-            "so nothing was checked")
+    return (
+        f"none: the field book sets no “tolerance {statement}=” and no preset was chosen, "
+        "so nothing was checked"
+    )
 
 
-def _check(name: str, noun: str, nouns: str, outcomes: list[bool | None],
-           allowance: str) -> StandardCheck:
+def _check(
+    name: str, noun: str, nouns: str, outcomes: list[bool | None], allowance: str
+) -> StandardCheck:
     total = len(outcomes)
     passed = sum(1 for o in outcomes if o is True)
     failed = sum(1 for o in outcomes if o is False)
@@ -725,11 +780,22 @@ def _check(name: str, noun: str, nouns: str, outcomes: list[bool | None],
         state, words = "fail", f"Fail: {failed} of {passed + failed} {counted} {verb} the allowance"
     else:
         every = "all " if passed > 1 else ""
-        state, words = "pass", f"Pass: {every}{passed} {nouns if passed != 1 else noun} within the allowance"
+        state, words = (
+            "pass",
+            f"Pass: {every}{passed} {nouns if passed != 1 else noun} within the allowance",
+        )
     if unchecked and passed + failed:
         words += f" ({unchecked} without an allowance)"
-    return StandardCheck(name=name, total=total, passed=passed, failed=failed,
-                         unchecked=unchecked, allowance=allowance, state=state, words=words)
+    return StandardCheck(
+        name=name,
+        total=total,
+        passed=passed,
+        failed=failed,
+        unchecked=unchecked,
+        allowance=allowance,
+        state=state,
+        words=words,
+    )
 
 
 def pairs_checked(relative: Sequence[RelativeResult]) -> str:
@@ -741,8 +807,11 @@ def pairs_checked(relative: Sequence[RelativeResult]) -> str:
     live = [r for r in relative if not r.held]
     requested = sum(1 for r in live if r.requested)
     joined = len(live) - requested
-    parts = [f"{n} {word} pair{'s' if n != 1 else ''}"
-             for n, word in ((joined, "joined"), (requested, "requested")) if n]
+    parts = [
+        f"{n} {word} pair{'s' if n != 1 else ''}"
+        for n, word in ((joined, "joined"), (requested, "requested"))
+        if n
+    ]
     return " and ".join(parts) or "no pairs"
 
 
@@ -759,11 +828,15 @@ def _relative_check(check: StandardCheck, relative: Sequence[RelativeResult]) ->
     elif check.state == "fail":
         verb = "exceed" if check.failed != 1 else "exceeds"
         total = check.passed + check.failed
-        words = (f"Fail: {check.failed} of {total} pair{'s' if total != 1 else ''} {verb} "
-                 f"the allowance ({which} checked)")
+        words = (
+            f"Fail: {check.failed} of {total} pair{'s' if total != 1 else ''} {verb} "
+            f"the allowance ({which} checked)"
+        )
     else:
-        words = (f"Pass: {which} within the allowance; pairs neither joined by an observation "
-                 "nor requested with “relative A B” were not checked")
+        words = (
+            f"Pass: {which} within the allowance; pairs neither joined by an observation "
+            "nor requested with “relative A B” were not checked"
+        )
     if held:
         words += f"; {held} pair{'s' if held != 1 else ''} of held points not checked"
     elif check.unchecked and check.state != "none":
@@ -771,33 +844,45 @@ def _relative_check(check: StandardCheck, relative: Sequence[RelativeResult]) ->
     return replace(check, words=words)
 
 
-def standards_summary(result: AdjustmentResult,
-                      presets: Sequence[Preset] = ()) -> list[StandardCheck]:
+def standards_summary(
+    result: AdjustmentResult, presets: Sequence[Preset] = ()
+) -> list[StandardCheck]:
     """Pass and fail counts per accuracy standard that applies to the network."""
     out = []
     if result.relative:
         outcomes = [r.passed for r in result.relative]
-        allowance = _allowance_source(presets, "relative", "relative",
-                                      any(r.allowed is not None for r in result.relative))
-        check = _check("Relative positional precision at "
-                       f"{fmt_percent(result.relative[0].confidence)}",
-                       "pair of joined points", "pairs of joined points", outcomes, allowance)
+        allowance = _allowance_source(
+            presets, "relative", "relative", any(r.allowed is not None for r in result.relative)
+        )
+        check = _check(
+            f"Relative positional precision at {fmt_percent(result.relative[0].confidence)}",
+            "pair of joined points",
+            "pairs of joined points",
+            outcomes,
+            allowance,
+        )
         out.append(_relative_check(check, result.relative))
     leveling = [m for m in result.misclosures if m.kind != "traverse"]
     if leveling:
         # the contract records exceeds; an allowance of None means the loop was not checked
         outcomes = [None if m.allowed is None else not m.exceeds for m in leveling]
-        allowance = _allowance_source(presets, "misclosure", "misclosure",
-                                      any(m.allowed is not None for m in leveling))
-        out.append(_check("Leveling misclosures", "loop or run", "loops and runs", outcomes,
-                          allowance))
+        allowance = _allowance_source(
+            presets, "misclosure", "misclosure", any(m.allowed is not None for m in leveling)
+        )
+        out.append(
+            _check("Leveling misclosures", "loop or run", "loops and runs", outcomes, allowance)
+        )
     traverses = [m for m in result.misclosures if m.kind == "traverse"]
     if traverses:
-        outcomes = [None if m.allowed is None and m.angular_allowed is None else not m.exceeds
-                    for m in traverses]
-        allowance = ("the field book's own “tolerance angular= ratio=” statement"
-                     if any(o is not None for o in outcomes) else
-                     "none: the field book sets no “tolerance angular=” or “ratio=”")
+        outcomes = [
+            None if m.allowed is None and m.angular_allowed is None else not m.exceeds
+            for m in traverses
+        ]
+        allowance = (
+            "the field book's own “tolerance angular= ratio=” statement"
+            if any(o is not None for o in outcomes)
+            else "none: the field book sets no “tolerance angular=” or “ratio=”"
+        )
         out.append(_check("Traverse closures", "traverse", "traverses", outcomes, allowance))
     return out
 
@@ -866,23 +951,33 @@ def precision_note(result: AdjustmentResult) -> str:
     method, posterior = s.precision_method, s.variance_factor
     setting = f"tests precision={method}" + (" (the default)" if method == "posterior" else "")
     if posterior is None:
-        return (f"Precisions use the a priori variance factor 1 (standard deviations × 1.000, as "
-                "propagated from the a priori standard deviations): with no redundancy the a "
-                f"posteriori variance factor cannot be estimated, whatever {setting} asks for.")
+        return (
+            f"Precisions use the a priori variance factor 1 (standard deviations × 1.000, as "
+            "propagated from the a priori standard deviations): with no redundancy the a "
+            f"posteriori variance factor cannot be estimated, whatever {setting} asks for."
+        )
     effect = f"standard deviations × {_sd_times(posterior)}"
     if method == "posterior":
-        return (f"Precisions scaled by the a posteriori variance factor {fmt_ratio(posterior, 3)} "
-                f"({effect}); set by {setting}.")
+        return (
+            f"Precisions scaled by the a posteriori variance factor {fmt_ratio(posterior, 3)} "
+            f"({effect}); set by {setting}."
+        )
     if method == "prior":
-        return ("Precisions scaled by the a priori variance factor 1 (standard deviations × 1.000, "
-                "as propagated from the a priori standard deviations); the a posteriori variance "
-                f"factor {fmt_ratio(posterior, 3)} would have given {effect}. Set by {setting}.")
+        return (
+            "Precisions scaled by the a priori variance factor 1 (standard deviations × 1.000, "
+            "as propagated from the a priori standard deviations); the a posteriori variance "
+            f"factor {fmt_ratio(posterior, 3)} would have given {effect}. Set by {setting}."
+        )
     if s.precision_estimated:
-        return (f"Precisions scaled by {PRECISION_WORDS['larger']} (1 and "
-                f"{fmt_ratio(posterior, 3)}): the a posteriori one, {effect}; set by {setting}.")
-    return (f"Precisions scaled by {PRECISION_WORDS['larger']} (1 and {fmt_ratio(posterior, 3)}): "
-            "the a priori one, standard deviations × 1.000; the a posteriori factor alone would "
-            f"have given {effect}, smaller than the a priori model supports. Set by {setting}.")
+        return (
+            f"Precisions scaled by {PRECISION_WORDS['larger']} (1 and "
+            f"{fmt_ratio(posterior, 3)}): the a posteriori one, {effect}; set by {setting}."
+        )
+    return (
+        f"Precisions scaled by {PRECISION_WORDS['larger']} (1 and {fmt_ratio(posterior, 3)}): "
+        "the a priori one, standard deviations × 1.000; the a posteriori factor alone would "
+        f"have given {effect}, smaller than the a priori model supports. Set by {setting}."
+    )
 
 
 def ellipse_convention(result: AdjustmentResult) -> str:
@@ -890,17 +985,23 @@ def ellipse_convention(result: AdjustmentResult) -> str:
     s = result.summary
     p = fmt_percent(s.confidence)
     if s.redundancy > 0 and not s.precision_estimated:
-        return (f"Confidence ellipses ({p}) are the standard ellipse of Qxx (a priori σ₀² = 1, "
-                f"as tests precision={s.precision_method} chose) multiplied by "
-                f"k = √χ²({p}; 2) = {s.ellipse_factor:.4f}: the variance is taken as known, "
-                "not estimated from the observations, so the χ² quantile applies rather than F.")
+        return (
+            f"Confidence ellipses ({p}) are the standard ellipse of Qxx (a priori σ₀² = 1, "
+            f"as tests precision={s.precision_method} chose) multiplied by "
+            f"k = √χ²({p}; 2) = {s.ellipse_factor:.4f}: the variance is taken as known, "
+            "not estimated from the observations, so the χ² quantile applies rather than F."
+        )
     if s.redundancy > 0:
-        return (f"Confidence ellipses ({p}) are the standard ellipse of σ̂₀²·Qxx multiplied by "
-                f"k = √(2·F({p}; 2, r)) = {s.ellipse_factor:.4f} for r = {s.redundancy} degrees "
-                "of freedom. The F quantile allows for σ₀ being estimated from the same "
-                f"observations; k tends to √χ²({p}; 2) as r grows (2.4477 at 95%).")
-    return (f"Confidence ellipses ({p}) are the standard ellipse of Qxx (a priori σ₀ = 1, "
-            f"no redundancy) multiplied by k = √χ²({p}; 2) = {s.ellipse_factor:.4f}.")
+        return (
+            f"Confidence ellipses ({p}) are the standard ellipse of σ̂₀²·Qxx multiplied by "
+            f"k = √(2·F({p}; 2, r)) = {s.ellipse_factor:.4f} for r = {s.redundancy} degrees "
+            "of freedom. The F quantile allows for σ₀ being estimated from the same "
+            f"observations; k tends to √χ²({p}; 2) as r grows (2.4477 at 95%)."
+        )
+    return (
+        f"Confidence ellipses ({p}) are the standard ellipse of Qxx (a priori σ₀ = 1, "
+        f"no redundancy) multiplied by k = √χ²({p}; 2) = {s.ellipse_factor:.4f}."
+    )
 
 
 @dataclass(frozen=True, slots=True)
@@ -947,6 +1048,7 @@ PAGE_SIZE = 500
 @dataclass(frozen=True)
 class Page:
     """One page of a long table: ``number`` of ``count`` (both from 1), rows start..stop-1."""
+
     number: int
     count: int
     total: int
@@ -981,8 +1083,12 @@ def flagged_lines(result: AdjustmentResult) -> list[int]:
     return list(dict.fromkeys(o.line for o in result.observations if o.flagged))
 
 
-def context(result: AdjustmentResult, presets: Sequence[Preset] = (),
-            obs_page: int | None = None, pt_page: int | None = None) -> dict[str, object]:
+def context(
+    result: AdjustmentResult,
+    presets: Sequence[Preset] = (),
+    obs_page: int | None = None,
+    pt_page: int | None = None,
+) -> dict[str, object]:
     """Everything the report and the results page lay out; ``presets`` name the allowances chosen.
 
     ``obs_page`` / ``pt_page`` (results page only) show one page of the observation and
@@ -1004,7 +1110,8 @@ def context(result: AdjustmentResult, presets: Sequence[Preset] = (),
         "ellipse_note": ellipse_convention(result) if result.summary.dimension != 1 else "",
         "precision_note": precision_note(result),
         "histogram": histogram,
-        "histogram_layout": None if histogram is None
+        "histogram_layout": None
+        if histogram is None
         else histogram_layout(histogram, *HISTOGRAM_SIZE),
         "verdict": verdict(result),
         "summary_rows": rows(result),

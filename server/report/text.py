@@ -43,8 +43,10 @@ def _table(header: Iterable[str], body: list[list[str]], right: set[int]) -> lis
         widths = [max(w, len(c)) for w, c in zip(widths, row, strict=True)]
 
     def line(cells: list[str]) -> str:
-        parts = [c.rjust(w) if i in right else c.ljust(w)
-                 for i, (c, w) in enumerate(zip(cells, widths, strict=True))]
+        parts = [
+            c.rjust(w) if i in right else c.ljust(w)
+            for i, (c, w) in enumerate(zip(cells, widths, strict=True))
+        ]
         return "  ".join(parts).rstrip()
 
     return [line(head), line(["-" * w for w in widths])] + [line(r) for r in body]
@@ -59,8 +61,10 @@ def report_text(result: AdjustmentResult, imported_from: ImportedFrom | None = N
     out = [f"Stationfit {__version__} — {title}"]
     out.append(f"SHA-256 of the field book: {result.text_sha256}")
     if imported_from is not None:
-        out.append(f"Imported from {imported_from.kind} {imported_from.filename}, "
-                   f"SHA-256 {imported_from.sha256}")
+        out.append(
+            f"Imported from {imported_from.kind} {imported_from.filename}, "
+            f"SHA-256 {imported_from.sha256}"
+        )
     out.append("")
     head, _, rest = v.headline.partition(": ")
     out.append(f"{head.upper()}: {rest}")
@@ -80,38 +84,96 @@ def report_text(result: AdjustmentResult, imported_from: ImportedFrom | None = N
     out += _geodetic_points(result)
     heights = relative_height_rows(result)
     if heights:
-        rows_h = [[h.from_point, h.to_point, h.height_difference, h.sd,
-                   h.half_width + (" (held)" if h.held else "")] for h in heights]
+        rows_h = [
+            [
+                h.from_point,
+                h.to_point,
+                h.height_difference,
+                h.sd,
+                h.half_width + (" (held)" if h.held else ""),
+            ]
+            for h in heights
+        ]
         out += ["", "Relative precision of height differences (relative lines)"] + _table(
             ["from", "to", f"ΔH {unit}", "sd ΔH", f"± {fmt_percent(result.summary.confidence)}"],
-            rows_h, {2, 3, 4})
+            rows_h,
+            {2, 3, 4},
+        )
 
     exceeded = [m for m in leveling_rows(result) if m.exceeds]
     if exceeded:
         out += ["", "Misclosures over the allowance"]
-        out += _table(["kind", "route", f"misclosure {unit}", "allowed"],
-                      [[m.kind, m.route, m.misclosure, m.allowed] for m in exceeded], {2, 3})
+        out += _table(
+            ["kind", "route", f"misclosure {unit}", "allowed"],
+            [[m.kind, m.route, m.misclosure, m.allowed] for m in exceeded],
+            {2, 3},
+        )
     traverses = traverse_rows(result)
     if traverses:
         out += ["", "Traverse closures before adjustment"]
-        out += _table(["route", "n", "angular", "allowed", f"linear {unit}", "precision",
-                       "required", "check"],
-                      [[m.route, m.stations, m.angular, m.angular_allowed, m.misclosure, m.ratio,
-                        m.ratio_allowed, m.status] for m in traverses], {1, 2, 3, 4})
+        out += _table(
+            [
+                "route",
+                "n",
+                "angular",
+                "allowed",
+                f"linear {unit}",
+                "precision",
+                "required",
+                "check",
+            ],
+            [
+                [
+                    m.route,
+                    m.stations,
+                    m.angular,
+                    m.angular_allowed,
+                    m.misclosure,
+                    m.ratio,
+                    m.ratio_allowed,
+                    m.status,
+                ]
+                for m in traverses
+            ],
+            {1, 2, 3, 4},
+        )
 
     # the largest |w| first: that is the observation to suspect first
-    flagged = sorted((o for o in observation_rows(result) if o.flagged),
-                     key=lambda o: -abs(o.w_raw or 0.0))
+    flagged = sorted(
+        (o for o in observation_rows(result) if o.flagged), key=lambda o: -abs(o.w_raw or 0.0)
+    )
     out += ["", f"Flagged observations (|w| > {fmt_w(s.critical_w)}, largest first)"]
     if flagged:
         out += _table(
-            ["line", "kind", "marks", "booked", "reduction", "used", "residual", "w",
-             "est. bias", "MDB", "same test as"],
-            [[str(o.line), o.kind, o.stations, o.booked, o.reduction, o.observed,
-              o.residual + (ARCSEC if o.angular else f" {unit}"), o.w,
-              o.estimated_bias + (ARCSEC if o.angular else f" {unit}"),
-              o.mdb + (ARCSEC if o.angular else f" {unit}"),
-              ", ".join(map(str, o.inseparable)) or "-"] for o in flagged],
+            [
+                "line",
+                "kind",
+                "marks",
+                "booked",
+                "reduction",
+                "used",
+                "residual",
+                "w",
+                "est. bias",
+                "MDB",
+                "same test as",
+            ],
+            [
+                [
+                    str(o.line),
+                    o.kind,
+                    o.stations,
+                    o.booked,
+                    o.reduction,
+                    o.observed,
+                    o.residual + (ARCSEC if o.angular else f" {unit}"),
+                    o.w,
+                    o.estimated_bias + (ARCSEC if o.angular else f" {unit}"),
+                    o.mdb + (ARCSEC if o.angular else f" {unit}"),
+                    ", ".join(map(str, o.inseparable)) or "-",
+                ]
+                for o in flagged
+            ],
             {0, 3, 4, 5, 6, 7, 8, 9},
         )
     else:
@@ -137,12 +199,34 @@ def _geodetic_points(result: AdjustmentResult) -> list[str]:
     if not rows:
         return []
     unit = length_label(result.length_unit)
-    body = [[g.name, g.latitude, g.longitude, g.ellipsoidal_height, g.geoid, g.height,
-             g.scale_factor, g.convergence] for g in rows]
-    header = ["point", "latitude °", "longitude °", f"h {unit}", f"N {unit}", f"H {unit}",
-              "scale factor", "convergence"]
-    return ["", "Geodetic coordinates"] + _table(header, body, set(range(1, 8))) + [
-        geodetic_note(result)]
+    body = [
+        [
+            g.name,
+            g.latitude,
+            g.longitude,
+            g.ellipsoidal_height,
+            g.geoid,
+            g.height,
+            g.scale_factor,
+            g.convergence,
+        ]
+        for g in rows
+    ]
+    header = [
+        "point",
+        "latitude °",
+        "longitude °",
+        f"h {unit}",
+        f"N {unit}",
+        f"H {unit}",
+        "scale factor",
+        "convergence",
+    ]
+    return (
+        ["", "Geodetic coordinates"]
+        + _table(header, body, set(range(1, 8)))
+        + [geodetic_note(result)]
+    )
 
 
 def _baseline_tests(result: AdjustmentResult) -> list[str]:
@@ -150,8 +234,10 @@ def _baseline_tests(result: AdjustmentResult) -> list[str]:
     rows = baseline_test_rows(result)
     if not rows:
         return []
-    body = [[str(t.line), f"{t.from_point} → {t.to_point}", t.statistic, t.critical, t.status]
-            for t in rows]
+    body = [
+        [str(t.line), f"{t.from_point} → {t.to_point}", t.statistic, t.critical, t.status]
+        for t in rows
+    ]
     table = _table(["line", "baseline", "vTQv+v", "critical", "test"], body, {0, 2, 3})
     return ["", "Baseline tests"] + table + [baseline_test_note(result)]
 

@@ -38,8 +38,14 @@ class BaselineFigures:
     tests: tuple[BaselineTestResult, ...]
 
 
-def baseline_figures(network: Network, solution: Solution, lambda0: float, critical_w: float,
-                     snooping: float, per_m: float) -> BaselineFigures:
+def baseline_figures(
+    network: Network,
+    solution: Solution,
+    lambda0: float,
+    critical_w: float,
+    snooping: float,
+    per_m: float,
+) -> BaselineFigures:
     """Entries and tests of every baseline of a geodetic solution (used and ignored)."""
     frame = network.geodetic
     baselines = [o for o in network.fieldbook.observations if o.kind == "baseline"]
@@ -74,12 +80,19 @@ def baseline_figures(network: Network, solution: Solution, lambda0: float, criti
     for k, obs in enumerate(placed):
         entries[id(obs)] = tuple(
             _entry(obs, i, observed[k, i], adjusted[k, i], v[k, i], sd[k, i], comp, k, per_m)
-            for i in range(3))
+            for i in range(3)
+        )
         if not obs.ignored:
-            tests.append(BaselineTestResult(
-                line=obs.line, from_point=obs.from_point, to_point=obs.to,
-                statistic=float(blocks.statistic[k]), critical=blocks.critical,
-                flagged=bool(blocks.flagged[k])))
+            tests.append(
+                BaselineTestResult(
+                    line=obs.line,
+                    from_point=obs.from_point,
+                    to_point=obs.to,
+                    statistic=float(blocks.statistic[k]),
+                    critical=blocks.critical,
+                    flagged=bool(blocks.flagged[k]),
+                )
+            )
     return BaselineFigures(entries, tuple(tests))
 
 
@@ -87,9 +100,14 @@ def _cofactors(network: Network, solution: Solution, used: Sequence[Observation]
     """Qxx (m, 6, 6) of each baseline's unknowns in the order of the kind's columns (E, N, H
     of TO, then of FROM); rows and columns of held components are zero."""
     column = {(p.point, p.kind): k for k, p in enumerate(network.parameters)}
-    index = np.array([[column.get((o.to, c), -1) for c in "ENH"]
-                      + [column.get((o.from_point, c), -1) for c in "ENH"] for o in used],
-                     dtype=np.int64)
+    index = np.array(
+        [
+            [column.get((o.to, c), -1) for c in "ENH"]
+            + [column.get((o.from_point, c), -1) for c in "ENH"]
+            for o in used
+        ],
+        dtype=np.int64,
+    )
     rows = np.repeat(index, 6, axis=1)
     cols = np.tile(index, (1, 6))
     present = (rows >= 0) & (cols >= 0)
@@ -99,8 +117,17 @@ def _cofactors(network: Network, solution: Solution, used: Sequence[Observation]
     return values.reshape(-1, 6, 6)
 
 
-def _entry(obs: Observation, i: int, observed: float, adjusted: float, residual: float,
-           sd: float, tests: ComponentTests, k: int, per_m: float) -> ObservationResult:
+def _entry(
+    obs: Observation,
+    i: int,
+    observed: float,
+    adjusted: float,
+    residual: float,
+    sd: float,
+    tests: ComponentTests,
+    k: int,
+    per_m: float,
+) -> ObservationResult:
     """One component's entry; statistics only for a used baseline's controlled components."""
     used = not obs.ignored
     controlled = used and bool(tests.controlled[k, i])
@@ -109,12 +136,24 @@ def _entry(obs: Observation, i: int, observed: float, adjusted: float, residual:
         return float(getattr(tests, name)[k, i]) * scale if controlled else None
 
     return ObservationResult(
-        line=obs.line, kind=obs.kind, from_point=obs.from_point, at=obs.at, to=obs.to,
-        observed=float(observed) * per_m, adjusted=float(adjusted) * per_m,
-        residual=float(residual) * per_m, sd=float(sd) * per_m,
+        line=obs.line,
+        kind=obs.kind,
+        from_point=obs.from_point,
+        at=obs.at,
+        to=obs.to,
+        observed=float(observed) * per_m,
+        adjusted=float(adjusted) * per_m,
+        residual=float(residual) * per_m,
+        sd=float(sd) * per_m,
         redundancy=float(tests.redundancy[k, i]) if used else None,
-        w=figure("w", 1.0), mdb=figure("mdb"),
+        w=figure("w", 1.0),
+        mdb=figure("mdb"),
         flagged=bool(tests.flagged[k, i]) if used else False,
-        ignored=obs.ignored, note=obs.note, booked=float(observed) * per_m, scale_factor=None,
-        estimated_bias=figure("estimated_bias"), inseparable=(), component=COMPONENTS[i],
+        ignored=obs.ignored,
+        note=obs.note,
+        booked=float(observed) * per_m,
+        scale_factor=None,
+        estimated_bias=figure("estimated_bias"),
+        inseparable=(),
+        component=COMPONENTS[i],
     )

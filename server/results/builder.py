@@ -39,6 +39,7 @@ from server.units import ARCSEC_PER_RAD, LENGTH_FACTORS, wrap_2pi, wrap_pi
 
 def _misclosure_result(m: Misclosure, per_m: float) -> MisclosureResult:
     """One misclosure in output units; a traverse also gets its angular part in arcsec."""
+
     def length(value: float | None) -> float | None:
         return None if value is None else value * per_m
 
@@ -91,7 +92,10 @@ def build_result(
     elif redundancy > 0:
         lower, upper = st.chi_square_bounds(redundancy, tests.alpha)
         global_test = GlobalTest(
-            statistic=vtpv, lower=lower, upper=upper, alpha=tests.alpha,
+            statistic=vtpv,
+            lower=lower,
+            upper=upper,
+            alpha=tests.alpha,
             passed=bool(lower <= vtpv <= upper),
         )
     critical = st.normal_critical_value(tests.snooping)
@@ -113,8 +117,12 @@ def build_result(
         side = "large" if vtpv > global_test.upper else "small"
         warnings.append(
             f"the global test fails: the residuals are too {side} for the a priori standard "
-            "deviations" + (" (look for blunders or optimistic standard deviations)" if side == "large"
-                            else " (the standard deviations may be pessimistic)")
+            "deviations"
+            + (
+                " (look for blunders or optimistic standard deviations)"
+                if side == "large"
+                else " (the standard deviations may be pessimistic)"
+            )
         )
     summary = Summary(
         dimension=network.dimension,
@@ -145,9 +153,13 @@ def build_result(
         network, solution, scale_variance, factor, tests.confidence, per_m, horizontal_pairs
     )
     relative_heights = _relative_height_results(
-        network, solution, scale_variance, tests.confidence,
+        network,
+        solution,
+        scale_variance,
+        tests.confidence,
         redundancy if estimated else 0,  # Student's t only when σ₀² is the estimate
-        per_m, height_pairs,
+        per_m,
+        height_pairs,
     )
     return AdjustmentResult(
         title=fb.title,
@@ -245,8 +257,6 @@ def _observation_results(
                     note=obs.note,
                     booked=booked[row],
                     scale_factor=_scale_factor(obs),
-
-
                     estimated_bias=bias[row] if controlled_list[row] else None,
                     inseparable=partners[row],
                 )
@@ -287,7 +297,9 @@ def _observation_results(
             )
         )
     if uncontrolled:
-        shown = "; ".join(uncontrolled[:10]) + (f" and {len(uncontrolled) - 10} more" if len(uncontrolled) > 10 else "")
+        shown = "; ".join(uncontrolled[:10]) + (
+            f" and {len(uncontrolled) - 10} more" if len(uncontrolled) > 10 else ""
+        )
         warnings.append(
             "uncontrolled observations (redundancy number below 0.001), a blunder in them "
             f"cannot be detected: {shown}"
@@ -311,7 +323,10 @@ def _scale_factor(obs: Observation) -> float | None:
 
 
 def _inseparable_lines(
-    network: Network, solution: Solution, r_i: np.ndarray, components: np.ndarray,
+    network: Network,
+    solution: Solution,
+    r_i: np.ndarray,
+    components: np.ndarray,
     first: np.ndarray,
 ) -> list[tuple[int, ...]]:
     """For each used observation, the lines whose w-test is the same test as its own
@@ -324,14 +339,19 @@ def _inseparable_lines(
     controlled = (r_rows >= UNCONTROLLED) & scalar
     sigmas = np.asarray(solution.sigmas, dtype=float)
     w_rows = np.asarray(solution.residuals[:n_rows], dtype=float) / (
-        sigmas[:n_rows] * np.sqrt(np.where(controlled, r_rows, 1.0)))
-    flagged = controlled & (np.abs(w_rows) > st.normal_critical_value(
-        network.fieldbook.tests.snooping))
+        sigmas[:n_rows] * np.sqrt(np.where(controlled, r_rows, 1.0))
+    )
+    flagged = controlled & (
+        np.abs(w_rows) > st.normal_critical_value(network.fieldbook.tests.snooping)
+    )
     candidates = np.flatnonzero(controlled)
     if solution.hat is None or candidates.size < 2:
         return [()] * len(used)
     rows = separability.correlated_rows(
-        solution.hat, sigmas, np.asarray(r_i, dtype=float), candidates,
+        solution.hat,
+        sigmas,
+        np.asarray(r_i, dtype=float),
+        candidates,
         np.flatnonzero(flagged).tolist(),
     )
     # each scalar row has its own line (a round's directions too)
@@ -408,7 +428,9 @@ def _point_results(
     ellipses = {
         name: Ellipse(semi_major=a, semi_minor=b, azimuth=t, confidence=confidence)
         for (name, _, _), a, b, t in zip(
-            en_points, (major * factor * per_m).tolist(), (minor * factor * per_m).tolist(),
+            en_points,
+            (major * factor * per_m).tolist(),
+            (minor * factor * per_m).tolist(),
             azimuth.tolist(),
         )
     }
@@ -434,7 +456,9 @@ def _point_results(
             else:
                 out[index] = None if original is None else original * per_m
                 if original is not None and (
-                    ("h" in p.fixed and vertical) if index == 2 else ("en" in p.fixed and horizontal)
+                    ("h" in p.fixed and vertical)
+                    if index == 2
+                    else ("en" in p.fixed and horizontal)
                 ):
                     sds[index] = 0.0
         results.append(
@@ -605,9 +629,7 @@ def _relative_results(
     else:
         allowed = ((tolerance.constant + tolerance.ppm * 1e-6 * distance_m) * per_m).tolist()
     results = []
-    for k, ((a, b, _, asked_for), distance) in enumerate(
-        zip(pairs, (distance_m * per_m).tolist())
-    ):
+    for k, ((a, b, _, asked_for), distance) in enumerate(zip(pairs, (distance_m * per_m).tolist())):
         allow = None if held[k] else allowed[k]
         results.append(
             RelativeResult(

@@ -70,8 +70,14 @@ class PairValues:
     sd_distance: np.ndarray  # along the line A→B in the horizon plane at A, output unit
 
 
-def point_values(crs: Crs, xyz: np.ndarray, covariance: np.ndarray, geoid: np.ndarray,
-                 ellipse_factor: float, per_metre: float = 1.0) -> PointValues:
+def point_values(
+    crs: Crs,
+    xyz: np.ndarray,
+    covariance: np.ndarray,
+    geoid: np.ndarray,
+    ellipse_factor: float,
+    per_metre: float = 1.0,
+) -> PointValues:
     """The point figures above for positions (n, 3), covariances (n, 3, 3), undulations (n,)."""
     xyz = np.atleast_2d(np.asarray(xyz, dtype=float))
     lat, lon, h = crs.ecef_to_geodetic(xyz)
@@ -82,12 +88,18 @@ def point_values(crs: Crs, xyz: np.ndarray, covariance: np.ndarray, geoid: np.nd
     factors = crs.factors(lat, lon)
     undulation = np.broadcast_to(np.asarray(geoid, dtype=float), h.shape)
     return PointValues(
-        east=east, north=north,
-        latitude=lat * _DEG_PER_RAD, longitude=lon * _DEG_PER_RAD,
-        ellipsoidal_height=h * per_metre, geoid=undulation * per_metre,
+        east=east,
+        north=north,
+        latitude=lat * _DEG_PER_RAD,
+        longitude=lon * _DEG_PER_RAD,
+        ellipsoidal_height=h * per_metre,
+        geoid=undulation * per_metre,
         height=(h - undulation) * per_metre,
-        sd_east=sd[:, 0], sd_north=sd[:, 1], sd_up=sd[:, 2],
-        standard_major=major * per_metre, standard_minor=minor * per_metre,
+        sd_east=sd[:, 0],
+        sd_north=sd[:, 1],
+        sd_up=sd[:, 2],
+        standard_major=major * per_metre,
+        standard_minor=minor * per_metre,
         semi_major=major * ellipse_factor * per_metre,
         semi_minor=minor * ellipse_factor * per_metre,
         azimuth=azimuth,
@@ -96,16 +108,27 @@ def point_values(crs: Crs, xyz: np.ndarray, covariance: np.ndarray, geoid: np.nd
     )
 
 
-def pair_values(crs: Crs, xyz_a: np.ndarray, xyz_b: np.ndarray, cov_aa: np.ndarray,
-                cov_bb: np.ndarray, cov_ab: np.ndarray, ellipse_factor: float,
-                per_metre: float = 1.0) -> PairValues:
+def pair_values(
+    crs: Crs,
+    xyz_a: np.ndarray,
+    xyz_b: np.ndarray,
+    cov_aa: np.ndarray,
+    cov_bb: np.ndarray,
+    cov_ab: np.ndarray,
+    ellipse_factor: float,
+    per_metre: float = 1.0,
+) -> PairValues:
     """Relative ellipses of B − A (positions (n, 3), covariance blocks (n, 3, 3), Σ_AB =
     cov(A, B)) in the local east, north at A, and the grid distances."""
     xyz_a = np.atleast_2d(np.asarray(xyz_a, dtype=float))
     xyz_b = np.atleast_2d(np.asarray(xyz_b, dtype=float))
     cov_ab = np.reshape(cov_ab, (-1, 3, 3))
-    delta = (np.reshape(cov_aa, (-1, 3, 3)) + np.reshape(cov_bb, (-1, 3, 3))
-             - cov_ab - np.swapaxes(cov_ab, 1, 2))
+    delta = (
+        np.reshape(cov_aa, (-1, 3, 3))
+        + np.reshape(cov_bb, (-1, 3, 3))
+        - cov_ab
+        - np.swapaxes(cov_ab, 1, 2)
+    )
     lat, lon, _ = crs.ecef_to_geodetic(xyz_a)
     enu = ecef_to_enu_covariance(lat, lon, delta)
     major, minor, azimuth = st.standard_ellipses(enu[:, 0, 0], enu[:, 0, 1], enu[:, 1, 1])

@@ -21,8 +21,9 @@ from server.results.geodetic import point_values
 from server.results.types import PointResult
 
 
-def with_geodetic_figures(network: Network, solution: Solution,
-                          points: Sequence[PointResult], per_m: float) -> tuple[PointResult, ...]:
+def with_geodetic_figures(
+    network: Network, solution: Solution, points: Sequence[PointResult], per_m: float
+) -> tuple[PointResult, ...]:
     """``points`` with their geodetic figures when the book has a crs line, else unchanged."""
     fieldbook = network.fieldbook
     if fieldbook.crs is None:
@@ -41,16 +42,28 @@ def with_geodetic_figures(network: Network, solution: Solution,
         if not placed[k]:
             out.append(replace(p, ellipsoidal_height=h, geoid=float(geoid[k]) * per_m))
             continue
-        out.append(replace(
-            p, latitude=float(values.latitude[k]), longitude=float(values.longitude[k]),
-            ellipsoidal_height=h, geoid=float(geoid[k]) * per_m,
-            scale_factor=float(values.scale_factor[k]),
-            convergence=float(values.convergence[k])))
+        out.append(
+            replace(
+                p,
+                latitude=float(values.latitude[k]),
+                longitude=float(values.longitude[k]),
+                ellipsoidal_height=h,
+                geoid=float(geoid[k]) * per_m,
+                scale_factor=float(values.scale_factor[k]),
+                convergence=float(values.convergence[k]),
+            )
+        )
     return tuple(out)
 
 
-def _positions(network: Network, solution: Solution, points: Sequence[PointResult],
-               placed: np.ndarray, h: np.ndarray, per_m: float) -> np.ndarray:
+def _positions(
+    network: Network,
+    solution: Solution,
+    points: Sequence[PointResult],
+    placed: np.ndarray,
+    h: np.ndarray,
+    per_m: float,
+) -> np.ndarray:
     """Earth-centred positions (n, 3) of the placed points (NaN for the others)."""
     xyz = np.full((len(points), 3), np.nan)
     if network.geodetic is not None and solution.positions is not None:
@@ -61,13 +74,15 @@ def _positions(network: Network, solution: Solution, points: Sequence[PointResul
     else:
         missing = placed
     if missing.any():
-        crs = network.geodetic.crs if network.geodetic is not None else resolve_crs(
-            network.fieldbook)
+        crs = (
+            network.geodetic.crs if network.geodetic is not None else resolve_crs(network.fieldbook)
+        )
         assert crs is not None
         per_unit = crs.metres_per_unit
         east = np.array([(p.east or 0.0) / per_m / per_unit for p in points])
         north = np.array([(p.north or 0.0) / per_m / per_unit for p in points])
-        grid = np.asarray(crs.grid_to_ecef(east[missing], north[missing],
-                                           np.nan_to_num(h[missing])))
+        grid = np.asarray(
+            crs.grid_to_ecef(east[missing], north[missing], np.nan_to_num(h[missing]))
+        )
         xyz[missing] = grid.reshape(-1, 3)
     return xyz

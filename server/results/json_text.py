@@ -67,7 +67,9 @@ def _records(items: Sequence[Any], level: int) -> str:
     body = text[2:-2].replace(
         boundary, "\n" + list_indent + "},\n" + list_indent + "{\n" + item_indent
     )
-    return "[\n" + list_indent + "{\n" + item_indent + body + "\n" + list_indent + "}\n" + outer + "]"
+    return (
+        "[\n" + list_indent + "{\n" + item_indent + body + "\n" + list_indent + "}\n" + outer + "]"
+    )
 
 
 _encode_str = json.encoder.encode_basestring_ascii  # what json.dumps uses (ensure_ascii)
@@ -97,8 +99,10 @@ def _spelled(column: Sequence[Any], kinds: set[type], level: int) -> list[str] |
             # lists of plain ints (the lines of an observation's group): spelled directly
             inner = "\n" + _INDENT * (level + 1)
             head, sep, tail = "[" + inner, "," + inner, "\n" + _INDENT * level + "]"
-            return ["null" if v is None else head + sep.join(map(int.__repr__, v)) + tail if v else "[]"
-                    for v in column]
+            return [
+                "null" if v is None else head + sep.join(map(int.__repr__, v)) + tail if v else "[]"
+                for v in column
+            ]
         return ["null" if v is None else "".join(_chunks(v, level)) for v in column]
     if dict in kinds:
         if not kinds <= {dict, _NONE}:

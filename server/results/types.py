@@ -149,7 +149,6 @@ class ObservationResult:
     #: The scale factor applied to a booked distance (1.0 when none); None for other kinds.
     scale_factor: float | None = None
 
-
     #: −residual/redundancy: the blunder that alone would explain the residual (None without w)
     estimated_bias: float | None = None
     #: lines of the used observations whose w-test has |ρ| ≥ 0.99 with this one's
@@ -178,8 +177,14 @@ class BaselineTestResult:
     flagged: bool
 
     def to_dict(self) -> dict[str, Any]:
-        return {"line": self.line, "from": self.from_point, "to": self.to_point,
-                "statistic": self.statistic, "critical": self.critical, "flagged": self.flagged}
+        return {
+            "line": self.line,
+            "from": self.from_point,
+            "to": self.to_point,
+            "statistic": self.statistic,
+            "critical": self.critical,
+            "flagged": self.flagged,
+        }
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -416,10 +421,18 @@ def _add_geodetic_keys(result: AdjustmentResult, out: dict[str, Any]) -> None:
     s = result.summary
     out["summary"].update(model=s.model, crs=s.crs, refraction=s.refraction)
     out["points"] = [
-        _inserted(entry, "height", [
-            ("latitude", p.latitude), ("longitude", p.longitude),
-            ("ellipsoidal_height", p.ellipsoidal_height), ("geoid", p.geoid),
-            ("scale_factor", p.scale_factor), ("convergence", p.convergence)])
+        _inserted(
+            entry,
+            "height",
+            [
+                ("latitude", p.latitude),
+                ("longitude", p.longitude),
+                ("ellipsoidal_height", p.ellipsoidal_height),
+                ("geoid", p.geoid),
+                ("scale_factor", p.scale_factor),
+                ("convergence", p.convergence),
+            ],
+        )
         for entry, p in zip(out["points"], result.points, strict=True)
     ]
     out["observations"] = [
@@ -442,8 +455,7 @@ def _add_design_keys(result: AdjustmentResult, out: dict[str, Any]) -> None:
     ]
 
 
-def _inserted(entry: dict[str, Any], after: str,
-              pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+def _inserted(entry: dict[str, Any], after: str, pairs: list[tuple[str, Any]]) -> dict[str, Any]:
     """A copy of ``entry`` with ``pairs`` placed right after the key ``after``."""
     items = list(entry.items())
     at = [key for key, _ in items].index(after) + 1

@@ -50,8 +50,9 @@ class ParsedBooks:
         return book
 
 
-def design_of(books: ParsedBooks, project: Project, switched_off: Collection[int],
-              limits: WorkLimits) -> AdjustmentResult:
+def design_of(
+    books: ParsedBooks, project: Project, switched_off: Collection[int], limits: WorkLimits
+) -> AdjustmentResult:
     """The design figures with ``switched_off`` lines left out (``SurveyError`` as ``plan``)."""
     return plan_parsed(books.book(project), switched_off=switched_off, limits=limits)
 

@@ -78,9 +78,11 @@ def display_name(name: str, filename: str, title: str = "") -> str:
 def check_room(store: Store, max_projects: int) -> None:
     """Refuse a new project once the store holds ``max_projects`` of them (0: no limit)."""
     if max_projects and len(store.list_projects()) >= max_projects:
-        raise StoreFull(f"The project store is full ({max_projects} projects). Ask the "
-                        "administrator to archive the data folder and delete old projects, or "
-                        "to raise STATIONFIT_MAX_PROJECTS.")
+        raise StoreFull(
+            f"The project store is full ({max_projects} projects). Ask the "
+            "administrator to archive the data folder and delete old projects, or "
+            "to raise STATIONFIT_MAX_PROJECTS."
+        )
 
 
 def store_upload(
@@ -107,7 +109,10 @@ def store_upload(
 
 
 def adjust_run(
-    store: Store, run_id: int, book: Fieldbook, progress: Callable[[str, int], None] | None = None,
+    store: Store,
+    run_id: int,
+    book: Fieldbook,
+    progress: Callable[[str, int], None] | None = None,
     limits: WorkLimits = UNLIMITED,
 ) -> tuple[AdjustmentResult | None, SurveyError | None]:
     """Adjust a stored run's field book and finish the run with its result or error."""
@@ -125,7 +130,10 @@ def adjust_run(
 
 
 def submit(
-    store: Store, upload: Upload, max_projects: int = 0, limits: WorkLimits = UNLIMITED,
+    store: Store,
+    upload: Upload,
+    max_projects: int = 0,
+    limits: WorkLimits = UNLIMITED,
     queue: Slots | None = None,
 ) -> tuple[str, AdjustmentResult | None, SurveyError | None]:
     """Store the upload, then adjust it as a run marked ``running`` until it ends.
@@ -146,8 +154,9 @@ def submit(
 def adjust_upload(upload: Upload, limits: WorkLimits, queue: Slots) -> AdjustmentResult:
     """Adjust without storing, once a slot in ``queue`` is free."""
     with queue.slot():
-        return adjust_fieldbook(upload.data, source=upload.filename or "upload.fieldbook",
-                                limits=limits)
+        return adjust_fieldbook(
+            upload.data, source=upload.filename or "upload.fieldbook", limits=limits
+        )
 
 
 # --------------------------------------------------------------------------------------
@@ -185,8 +194,10 @@ class StandardsChoice:
         for kind, key in (("relative", relative or None), ("misclosure", misclosure or None)):
             if key is not None and (key not in PRESETS or PRESETS[key].kind != kind):
                 choices = ", ".join(k for k, p in PRESETS.items() if p.kind == kind)
-                raise UnknownPreset(f"There is no {kind} preset '{key[:60]}'. Choose one of "
-                                    f"{choices}, or leave it empty for the field book's own.")
+                raise UnknownPreset(
+                    f"There is no {kind} preset '{key[:60]}'. Choose one of "
+                    f"{choices}, or leave it empty for the field book's own."
+                )
             chosen[kind] = key
         return cls(**chosen)
 
@@ -198,19 +209,24 @@ class StandardsChoice:
     @property
     def query(self) -> str:
         """The query string that carries the choice to the downloads ("" for none)."""
-        parts = [f"{name}={key}" for name, key in
-                 (("relative", self.relative), ("misclosure", self.misclosure)) if key]
+        parts = [
+            f"{name}={key}"
+            for name, key in (("relative", self.relative), ("misclosure", self.misclosure))
+            if key
+        ]
         return "?" + "&".join(parts) if parts else ""
 
 
 def preset_options() -> dict[str, list[Preset]]:
     """The presets offered on the results page, by kind."""
-    return {kind: [p for p in PRESETS.values() if p.kind == kind]
-            for kind in ("relative", "misclosure")}
+    return {
+        kind: [p for p in PRESETS.values() if p.kind == kind] for kind in ("relative", "misclosure")
+    }
 
 
-def result_with_presets(project: Project, run: Run | None, choice: StandardsChoice,
-                        queue: Slots | None = None) -> AdjustmentResult | None:
+def result_with_presets(
+    project: Project, run: Run | None, choice: StandardsChoice, queue: Slots | None = None
+) -> AdjustmentResult | None:
     """The latest run adjusted again with the chosen presets as its tolerances (decisions kept).
 
     That adjustment waits for a slot in ``queue`` like any other (``QueueFull`` when full).
@@ -223,19 +239,27 @@ def result_with_presets(project: Project, run: Run | None, choice: StandardsChoi
     source = project.filename or "pasted.fieldbook"
     try:
         text = apply_edits(project.text, edits, source=source) if edits else project.text
-        fieldbook = with_presets(parse_fieldbook(text, source=source),
-                                 relative=choice.relative, misclosure=choice.misclosure)
+        fieldbook = with_presets(
+            parse_fieldbook(text, source=source),
+            relative=choice.relative,
+            misclosure=choice.misclosure,
+        )
         with queue.slot() if queue is not None else contextlib.nullcontext():
             return adjust_parsed(fieldbook)
     except SurveyError:
         return None
 
 
-def latest_result(store: Store, project: Project, choice: StandardsChoice | None = None,
-                  queue: Slots | None = None) -> AdjustmentResult | None:
+def latest_result(
+    store: Store,
+    project: Project,
+    choice: StandardsChoice | None = None,
+    queue: Slots | None = None,
+) -> AdjustmentResult | None:
     """The latest finished run's result (with the presets of ``choice``), or None."""
-    return result_with_presets(project, store.latest_run(project.id),
-                               choice or StandardsChoice(), queue)
+    return result_with_presets(
+        project, store.latest_run(project.id), choice or StandardsChoice(), queue
+    )
 
 
 def issues_with_text(project: Project, issues: list[dict[str, Any]]) -> list[dict[str, Any]]:
@@ -266,8 +290,7 @@ def list_verdict(run: Run | None) -> tuple[str, str]:
     converged = summary.get("converged", True)
     # the stored summary has no misclosure count: the list decides on flags and checks alone
     passed = None if test is None else bool(test.get("passed"))
-    state = verdict_state(converged=converged, passed=passed, flagged=flagged,
-                          unchecked=unchecked)
+    state = verdict_state(converged=converged, passed=passed, flagged=flagged, unchecked=unchecked)
     if not converged:
         return state, "Not converged"
     if test is None:
@@ -296,15 +319,25 @@ def project_list_items(store: Store) -> list[dict[str, Any]]:
     for p in store.list_projects():
         summary = (p.latest.summary or {}) if p.latest else {}
         state, words = list_verdict(p.latest)
-        items.append({"id": p.id, "name": display_name(p.name, p.filename), "filename": p.filename,
-                      "created": p.created, "points": summary.get("points"),
-                      "observations": summary.get("observations"), "state": state,
-                      "verdict": words, "failed": p.latest is not None and not p.latest.finished})
+        items.append(
+            {
+                "id": p.id,
+                "name": display_name(p.name, p.filename),
+                "filename": p.filename,
+                "created": p.created,
+                "points": summary.get("points"),
+                "observations": summary.get("observations"),
+                "state": state,
+                "verdict": words,
+                "failed": p.latest is not None and not p.latest.finished,
+            }
+        )
     return items
 
 
-def project_json(project_id: str, name: str, filename: str, created: str, sha256: str,
-                 run: Run | None) -> dict[str, Any]:
+def project_json(
+    project_id: str, name: str, filename: str, created: str, sha256: str, run: Run | None
+) -> dict[str, Any]:
     """A project's record in the JSON API."""
     return {
         "id": project_id,
@@ -346,23 +379,40 @@ def run_payload(run: Run | None) -> dict[str, Any]:
 def project_detail_json(store: Store, project: Project) -> dict[str, Any]:
     """One project with its latest result and every run's settings and summary."""
     run = store.latest_run(project.id)
-    body = project_json(project.id, project.name, project.filename, project.created,
-                        project.sha256, run)
+    body = project_json(
+        project.id, project.name, project.filename, project.created, project.sha256, run
+    )
     body.update(run_payload(run))
     # the imported file (survey XML, CSV) beside the field book; null for an uploaded book
-    body["source"] = None if project.source is None else {
-        "filename": project.source.filename, "sha256": project.source.sha256}
-    body["runs"] = [{"id": r.id, "number": r.number, "created": r.created, "status": r.status,
-                     "edits": r.edits, "summary": r.summary} for r in store.runs(project.id)]
+    body["source"] = (
+        None
+        if project.source is None
+        else {"filename": project.source.filename, "sha256": project.source.sha256}
+    )
+    body["runs"] = [
+        {
+            "id": r.id,
+            "number": r.number,
+            "created": r.created,
+            "status": r.status,
+            "edits": r.edits,
+            "summary": r.summary,
+        }
+        for r in store.runs(project.id)
+    ]
     return body
 
 
 def run_json(run: Run) -> dict[str, Any]:
     """One run: its settings (the decisions in force) and its result or error."""
-    body: dict[str, Any] = {"id": run.id, "number": run.number, "created": run.created,
-                            "status": run.status,
-                            "settings": run.settings or {"edits": []},
-                            "result": run.result_json}
+    body: dict[str, Any] = {
+        "id": run.id,
+        "number": run.number,
+        "created": run.created,
+        "status": run.status,
+        "settings": run.settings or {"edits": []},
+        "result": run.result_json,
+    }
     if run.error is not None:
         body["error"] = run.error.get("message", "")
     return body
@@ -418,8 +468,9 @@ def load_state(store: Store, project: Project) -> ReviewState:
     return ReviewState(project, base, result, in_force, pending, pending_edits, text, problems)
 
 
-def prepare_decision(state: ReviewState, line: int, values: dict[str, str], day: str
-                     ) -> tuple[ObservationEdit, str]:
+def prepare_decision(
+    state: ReviewState, line: int, values: dict[str, str], day: str
+) -> tuple[ObservationEdit, str]:
     """The decision a review form asks for, and why it cannot be queued ("" when it can).
 
     ``values`` holds the form's action, reason, sd and value.  The decision must name an
@@ -442,22 +493,30 @@ def prepare_decision(state: ReviewState, line: int, values: dict[str, str], day:
             message = f"line {line} is already left out"
         elif action == "include" and left_out is False:
             message = f"line {line} is already used in the adjustment"
-    edit = ObservationEdit(line=line, action=action, reason=clean_reason(values["reason"]),
-                           date=day, sd=values["sd"] if action == "sd" else None,
-                           value=values["value"] if action == "correct" else None)
+    edit = ObservationEdit(
+        line=line,
+        action=action,
+        reason=clean_reason(values["reason"]),
+        date=day,
+        sd=values["sd"] if action == "sd" else None,
+        value=values["value"] if action == "correct" else None,
+    )
     if not message and action == "correct":
         # the value it replaces, as the line reads once the earlier decisions are written in
         try:
-            text = apply_edits(project.text, [*state.in_force, *state.pending_edits],
-                               source=project.filename)
+            text = apply_edits(
+                project.text, [*state.in_force, *state.pending_edits], source=project.filename
+            )
             edit = dataclasses.replace(
-                edit, previous=booked_value(text, line, source=project.filename))
+                edit, previous=booked_value(text, line, source=project.filename)
+            )
         except SurveyError as exc:
             message = str(exc)
     if not message:
         try:
-            apply_edits(project.text, [*state.in_force, *state.pending_edits, edit],
-                        source=project.filename)
+            apply_edits(
+                project.text, [*state.in_force, *state.pending_edits, edit], source=project.filename
+            )
         except SurveyError as exc:
             message = str(exc)
     return edit, message
@@ -474,8 +533,10 @@ def rerun(store: Store, state: ReviewState) -> tuple[int | None, str]:
         text = apply_edits(project.text, edits, source=project.filename)
     except SurveyError as exc:
         return None, str(exc)
-    settings = {"edits": [review.edit_to_json(e) for e in edits],
-                "based_on": state.base.id if state.base else None}
+    settings = {
+        "edits": [review.edit_to_json(e) for e in edits],
+        "based_on": state.base.id if state.base else None,
+    }
     run_id = store.start_run(project.id, settings)
     try:
         result = adjust_fieldbook(text, source=project.filename or "edited.fieldbook")
@@ -514,8 +575,9 @@ def _finished_run(store: Store, project: Project, value: str | None) -> Run:
     return run
 
 
-def compare_runs(store: Store, project: Project, a_arg: str | None, b_arg: str | None
-                 ) -> dict[str, Any]:
+def compare_runs(
+    store: Store, project: Project, a_arg: str | None, b_arg: str | None
+) -> dict[str, Any]:
     """The comparison page's context: runs ``a`` and ``b`` (by default the last two finished).
 
     Raises ``NoSuchRun`` for a number that names no finished run, or no earlier run.
@@ -543,15 +605,17 @@ def compare_runs(store: Store, project: Project, a_arg: str | None, b_arg: str |
     result_a, result_b = run_result(project, a), run_result(project, b)
     edits_a, edits_b = review.edits_from_json(a.edits), review.edits_from_json(b.edits)
     made, withdrawn = review.decisions_between(edits_a, edits_b)
-    context.update({
-        "name": display_name(project.name, project.filename, result_b.title),
-        "a": a,
-        "b": b,
-        "latest_id": finished[-1].id,
-        "comparison": review.compare(result_a, result_b),
-        "made": review.decision_rows(made, result_b),
-        "withdrawn": review.decision_rows(withdrawn, result_a),
-    })
+    context.update(
+        {
+            "name": display_name(project.name, project.filename, result_b.title),
+            "a": a,
+            "b": b,
+            "latest_id": finished[-1].id,
+            "comparison": review.compare(result_a, result_b),
+            "made": review.decision_rows(made, result_b),
+            "withdrawn": review.decision_rows(withdrawn, result_a),
+        }
+    )
     return context
 
 
@@ -564,8 +628,13 @@ def edited_fieldbook(store: Store, project: Project) -> str | bytes:
     return project.fieldbook
 
 
-def retry_interrupted(store: Store, project: Project, interrupted: Run,
-                      progress: Callable[[str, int], None], run_id: int) -> None:
+def retry_interrupted(
+    store: Store,
+    project: Project,
+    interrupted: Run,
+    progress: Callable[[str, int], None],
+    run_id: int,
+) -> None:
     """Adjust with the interrupted run's decisions and finish ``run_id``.
 
     Decisions that were queued for the interrupted re-run are still queued (it never
@@ -573,8 +642,7 @@ def retry_interrupted(store: Store, project: Project, interrupted: Run,
     """
     try:
         edits = review.edits_from_json(interrupted.edits)
-        text = (apply_edits(project.text, edits, source=project.filename) if edits
-                else project.text)
+        text = apply_edits(project.text, edits, source=project.filename) if edits else project.text
         book = parse_fieldbook(text, source=project.filename or "pasted.fieldbook")
         result = adjust_parsed(book, progress=progress)
     except SurveyError as exc:
@@ -591,9 +659,14 @@ def retry_interrupted(store: Store, project: Project, interrupted: Run,
 def purge_deleted(store: Store, keep_days: int, *, who: str = "the retention") -> None:
     """Erase the projects deleted ``keep_days`` days ago or more, one log line each."""
     for project in store.purge_deleted(keep_days):
-        logger.info("project %s (%r) purged for good by %s (deleted %s, kept %d days)",
-                    project.id, display_name(project.name, project.filename), who,
-                    project.deleted, keep_days)
+        logger.info(
+            "project %s (%r) purged for good by %s (deleted %s, kept %d days)",
+            project.id,
+            display_name(project.name, project.filename),
+            who,
+            project.deleted,
+            keep_days,
+        )
 
 
 class ProposalCache:

@@ -366,8 +366,13 @@ class Store:
 
     # -- projects --------------------------------------------------------------------
 
-    def create_project(self, name: str, filename: str, fieldbook: str | bytes,
-                       source: tuple[str, bytes] | None = None) -> str:
+    def create_project(
+        self,
+        name: str,
+        filename: str,
+        fieldbook: str | bytes,
+        source: tuple[str, bytes] | None = None,
+    ) -> str:
         """Store a field book unchanged (and the ``(filename, bytes)`` it was imported from,
         in the same transaction); returns the new project's id."""
         raw = fieldbook.encode("utf-8") if isinstance(fieldbook, str) else bytes(fieldbook)
@@ -376,8 +381,15 @@ class Store:
             db.execute(
                 "INSERT INTO projects (id, name, filename, created, fieldbook, sha256, form_token) "
                 "VALUES (?, ?, ?, ?, ?, ?, ?)",
-                (project_id, name, filename, _now(), raw, hashlib.sha256(raw).hexdigest(),
-                 secrets.token_hex(16)),
+                (
+                    project_id,
+                    name,
+                    filename,
+                    _now(),
+                    raw,
+                    hashlib.sha256(raw).hexdigest(),
+                    secrets.token_hex(16),
+                ),
             )
             if source is not None:
                 content = bytes(source[1])
@@ -403,8 +415,16 @@ class Store:
         if row is None:
             return None
         source = None if row[8] is None else SourceFile(row[7], bytes(row[8]), row[9])
-        return Project(id=row[0], name=row[1], filename=row[2], created=row[3], sha256=row[4],
-                       fieldbook=bytes(row[5]), form_token=row[6], source=source)
+        return Project(
+            id=row[0],
+            name=row[1],
+            filename=row[2],
+            created=row[3],
+            sha256=row[4],
+            fieldbook=bytes(row[5]),
+            form_token=row[6],
+            source=source,
+        )
 
     def list_projects(self) -> list[ProjectListing]:
         """All projects, newest first, with their latest run's summary (no books, no results)."""
@@ -422,11 +442,26 @@ class Store:
         for row in rows:
             latest = None
             if row[5] is not None:
-                latest = Run(id=row[5], project_id=row[0], created=row[6], status=row[7],
-                             result_json=None, error=_loads(row[9]), summary=_loads(row[8]),
-                             number=row[10])
-            listings.append(ProjectListing(id=row[0], name=row[1], filename=row[2],
-                                           created=row[3], sha256=row[4], latest=latest))
+                latest = Run(
+                    id=row[5],
+                    project_id=row[0],
+                    created=row[6],
+                    status=row[7],
+                    result_json=None,
+                    error=_loads(row[9]),
+                    summary=_loads(row[8]),
+                    number=row[10],
+                )
+            listings.append(
+                ProjectListing(
+                    id=row[0],
+                    name=row[1],
+                    filename=row[2],
+                    created=row[3],
+                    sha256=row[4],
+                    latest=latest,
+                )
+            )
         return listings
 
     def delete_project(self, project_id: str) -> bool:
@@ -434,8 +469,10 @@ class Store:
         if not is_valid_id(project_id):
             return False
         with self._write() as db:
-            cursor = db.execute("UPDATE projects SET deleted = ? WHERE id = ? AND deleted IS NULL",
-                                (_now(), project_id))
+            cursor = db.execute(
+                "UPDATE projects SET deleted = ? WHERE id = ? AND deleted IS NULL",
+                (_now(), project_id),
+            )
         return cursor.rowcount > 0
 
     def deleted_projects(self) -> list[DeletedProject]:
@@ -446,29 +483,35 @@ class Store:
                 "(SELECT COUNT(*) FROM runs WHERE project_id = projects.id), form_token "
                 "FROM projects WHERE deleted IS NOT NULL ORDER BY deleted DESC, rowid DESC"
             ).fetchall()
-        return [DeletedProject(id=r[0], name=r[1], filename=r[2], deleted=r[3], runs=r[4],
-                               form_token=r[5])
-                for r in rows]
+        return [
+            DeletedProject(
+                id=r[0], name=r[1], filename=r[2], deleted=r[3], runs=r[4], form_token=r[5]
+            )
+            for r in rows
+        ]
 
     def restore_project(self, project_id: str) -> bool:
         """Bring a deleted project back with its runs; True if it was deleted."""
         if not is_valid_id(project_id):
             return False
         with self._write() as db:
-            cursor = db.execute("UPDATE projects SET deleted = NULL "
-                                "WHERE id = ? AND deleted IS NOT NULL", (project_id,))
+            cursor = db.execute(
+                "UPDATE projects SET deleted = NULL WHERE id = ? AND deleted IS NOT NULL",
+                (project_id,),
+            )
         return cursor.rowcount > 0
 
-    def purge_deleted(self, keep_days: int, *, now: datetime | None = None
-                      ) -> list[DeletedProject]:
+    def purge_deleted(self, keep_days: int, *, now: datetime | None = None) -> list[DeletedProject]:
         """Remove for good the projects deleted ``keep_days`` days ago or earlier; returns them."""
-        cutoff = ((now or datetime.now(UTC)) - timedelta(days=keep_days)
-                  ).isoformat(timespec="seconds")
+        cutoff = ((now or datetime.now(UTC)) - timedelta(days=keep_days)).isoformat(
+            timespec="seconds"
+        )
         gone = [p for p in self.deleted_projects() if p.deleted <= cutoff]
         with self._write() as db:
             for project in gone:
-                db.execute("DELETE FROM projects WHERE id = ? AND deleted IS NOT NULL",
-                           (project.id,))
+                db.execute(
+                    "DELETE FROM projects WHERE id = ? AND deleted IS NOT NULL", (project.id,)
+                )
         return gone
 
     # -- runs ------------------------------------------------------------------------
@@ -527,8 +570,7 @@ class Store:
             ).fetchone()
             if row is None:
                 raise RunGone(f"run {run_id} no longer exists; its project was deleted")
-            deleted = db.execute("SELECT deleted FROM projects WHERE id = ?",
-                                 (row[0],)).fetchone()
+            deleted = db.execute("SELECT deleted FROM projects WHERE id = ?", (row[0],)).fetchone()
             if deleted is not None and deleted[0] is not None:
                 # Dropped (not left running): a restored project shows no orphan run.
                 db.execute("DELETE FROM runs WHERE id = ?", (run_id,))
@@ -549,8 +591,10 @@ class Store:
                     (*outcome, run_id),
                 )
                 for edit_id in consumed or ():
-                    db.execute("DELETE FROM pending_edits WHERE id = ? AND project_id = ?",
-                               (edit_id, project_id))
+                    db.execute(
+                        "DELETE FROM pending_edits WHERE id = ? AND project_id = ?",
+                        (edit_id, project_id),
+                    )
         if gone:
             raise RunGone(f"run {run_id} was dropped: its project was deleted")
         if change:
@@ -566,10 +610,14 @@ class Store:
         is ``running`` between ``start_run`` and ``finish_run`` of one live process.
         """
         with self._write() as db:
-            ids = [row[0] for row in db.execute(
-                "SELECT id FROM runs WHERE status = 'running' ORDER BY id")]
-            db.execute("UPDATE runs SET status = 'interrupted', error = ? "
-                       "WHERE status = 'running'", (json.dumps(INTERRUPTED_ERROR),))
+            ids = [
+                row[0]
+                for row in db.execute("SELECT id FROM runs WHERE status = 'running' ORDER BY id")
+            ]
+            db.execute(
+                "UPDATE runs SET status = 'interrupted', error = ? WHERE status = 'running'",
+                (json.dumps(INTERRUPTED_ERROR),),
+            )
         return ids
 
     def latest_run(self, project_id: str, *, finished: bool = False) -> Run | None:
@@ -611,10 +659,20 @@ class Store:
                 "FROM runs WHERE project_id = ? ORDER BY id",
                 (project_id,),
             ).fetchall()
-        return [Run(id=r[0], project_id=r[1], created=r[2], status=r[3],
-                    result_json=_loads(r[4]), error=_loads(r[5]), summary=_loads(r[6]),
-                    settings=_loads(r[7]), number=number)
-                for number, r in enumerate(rows, start=1)]
+        return [
+            Run(
+                id=r[0],
+                project_id=r[1],
+                created=r[2],
+                status=r[3],
+                result_json=_loads(r[4]),
+                error=_loads(r[5]),
+                summary=_loads(r[6]),
+                settings=_loads(r[7]),
+                number=number,
+            )
+            for number, r in enumerate(rows, start=1)
+        ]
 
     # -- decisions waiting for a re-run ---------------------------------------------
 
@@ -633,18 +691,21 @@ class Store:
             if based_on is not None:
                 (latest,) = db.execute(
                     "SELECT MAX(id) FROM runs WHERE project_id = ? AND status = 'finished'",
-                    (project_id,)).fetchone()
+                    (project_id,),
+                ).fetchone()
                 if latest != based_on:
                     raise DecisionsChanged(
                         "A re-run finished while this decision was made; "
-                        "reload the page and decide again on the new run.")
+                        "reload the page and decide again on the new run."
+                    )
             for (text,) in db.execute(
                 "SELECT edit FROM pending_edits WHERE project_id = ?", (project_id,)
             ):
                 if _decision_key(json.loads(text)) == key:
                     where = f"line {edit['line']}: t" if edit.get("line") else "T"
                     raise AlreadyQueued(
-                        f"{where}he same decision is already queued for the next re-run.")
+                        f"{where}he same decision is already queued for the next re-run."
+                    )
             cursor = db.execute(
                 "INSERT INTO pending_edits (project_id, created, edit) VALUES (?, ?, ?)",
                 (project_id, _now(), json.dumps(edit)),
@@ -662,8 +723,9 @@ class Store:
                 "WHERE project_id = ? ORDER BY id",
                 (project_id,),
             ).fetchall()
-        return [PendingEdit(id=r[0], project_id=r[1], created=r[2], edit=json.loads(r[3]))
-                for r in rows]
+        return [
+            PendingEdit(id=r[0], project_id=r[1], created=r[2], edit=json.loads(r[3])) for r in rows
+        ]
 
     def remove_pending_edit(self, project_id: str, edit_id: int) -> bool:
         """Withdraw one queued decision; True if it was there."""
@@ -689,15 +751,22 @@ def _decision_key(edit: Any) -> tuple[Any, ...]:
     """What makes two decisions the same (who wrote it, why and when do not)."""
     if not isinstance(edit, dict):
         return (repr(edit),)
-    return tuple(json.dumps(edit.get(k), sort_keys=True)
-                 for k in ("line", "action", "sd", "value", "pairs"))
+    return tuple(
+        json.dumps(edit.get(k), sort_keys=True) for k in ("line", "action", "sd", "value", "pairs")
+    )
 
 
-def _queue_change(db: sqlite3.Connection, project_id: str, run_id: int,
-                  settings: dict[str, Any], consumed: tuple[int, ...]) -> str:
+def _queue_change(
+    db: sqlite3.Connection,
+    project_id: str,
+    run_id: int,
+    settings: dict[str, Any],
+    consumed: tuple[int, ...],
+) -> str:
     """Why a re-run started with queue ``consumed`` may no longer commit ('' when it may)."""
-    queued = {r[0] for r in db.execute(
-        "SELECT id FROM pending_edits WHERE project_id = ?", (project_id,))}
+    queued = {
+        r[0] for r in db.execute("SELECT id FROM pending_edits WHERE project_id = ?", (project_id,))
+    }
     if set(consumed) - queued:
         return "a decision it used was undone or applied by another re-run"
     if queued - set(consumed):
@@ -706,7 +775,8 @@ def _queue_change(db: sqlite3.Connection, project_id: str, run_id: int,
     if based_on is not None:
         (latest,) = db.execute(
             "SELECT MAX(id) FROM runs WHERE project_id = ? AND status = 'finished' AND id != ?",
-            (project_id, run_id)).fetchone()
+            (project_id, run_id),
+        ).fetchone()
         if latest != based_on:
             return "another re-run finished first"
     return ""
@@ -714,9 +784,18 @@ def _queue_change(db: sqlite3.Connection, project_id: str, run_id: int,
 
 def _run(row: tuple[Any, ...]) -> Run:
     """A ``Run`` from a row selected with ``_RUN_COLUMNS``."""
-    return Run(id=row[0], project_id=row[1], created=row[2], status=row[3],
-               result_json=_loads(row[4]), error=_loads(row[5]), detail=_loads(row[6]),
-               summary=_loads(row[7]), settings=_loads(row[8]), number=row[9])
+    return Run(
+        id=row[0],
+        project_id=row[1],
+        created=row[2],
+        status=row[3],
+        result_json=_loads(row[4]),
+        error=_loads(row[5]),
+        detail=_loads(row[6]),
+        summary=_loads(row[7]),
+        settings=_loads(row[8]),
+        number=row[9],
+    )
 
 
 def _outcome(
@@ -735,8 +814,13 @@ def _outcome(
     summary["uncontrolled"] = sum(
         1 for o in result.observations if not o.ignored and o.redundancy is not None and o.w is None
     )
-    return ("finished", _pack(contract), _pack(dataclasses.asdict(result)),
-            json.dumps(summary), None)
+    return (
+        "finished",
+        _pack(contract),
+        _pack(dataclasses.asdict(result)),
+        json.dumps(summary),
+        None,
+    )
 
 
 def _pack(data: dict[str, Any]) -> bytes:
@@ -767,24 +851,26 @@ def _result_from_detail(data: dict[str, Any]) -> AdjustmentResult:
         PointResult(**{**p, "ellipse": None if p["ellipse"] is None else Ellipse(**p["ellipse"])})
         for p in data["points"]
     )
-    return AdjustmentResult(**{
-        **data,
-        "summary": Summary(**summary),
-        "points": points,
-        "observations": tuple(
-            ObservationResult(**{**o, "inseparable": tuple(o.get("inseparable", ()))})
-            for o in data["observations"]
-        ),
-        "misclosures": tuple(
-            MisclosureResult(**{**m, "points": tuple(m["points"])}) for m in data["misclosures"]
-        ),
-        "relative": tuple(RelativeResult(**r) for r in data["relative"]),
-        "relative_heights": tuple(
-            RelativeHeightResult(**h) for h in data.get("relative_heights", ())
-        ),
-        "warnings": tuple(data["warnings"]),
-        # results stored before the geodetic model have no baseline tests
-        "baseline_tests": tuple(
-            BaselineTestResult(**t) for t in data.get("baseline_tests", ())
-        ),
-    })
+    return AdjustmentResult(
+        **{
+            **data,
+            "summary": Summary(**summary),
+            "points": points,
+            "observations": tuple(
+                ObservationResult(**{**o, "inseparable": tuple(o.get("inseparable", ()))})
+                for o in data["observations"]
+            ),
+            "misclosures": tuple(
+                MisclosureResult(**{**m, "points": tuple(m["points"])}) for m in data["misclosures"]
+            ),
+            "relative": tuple(RelativeResult(**r) for r in data["relative"]),
+            "relative_heights": tuple(
+                RelativeHeightResult(**h) for h in data.get("relative_heights", ())
+            ),
+            "warnings": tuple(data["warnings"]),
+            # results stored before the geodetic model have no baseline tests
+            "baseline_tests": tuple(
+                BaselineTestResult(**t) for t in data.get("baseline_tests", ())
+            ),
+        }
+    )

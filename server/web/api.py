@@ -34,23 +34,44 @@ _MISSING_FIELD = {"error": "send the field book in the multipart field 'fieldboo
 
 def _fieldbook_body(created: str) -> dict[str, Any]:
     """OpenAPI: the multipart upload these routes read by hand, and what they answer."""
-    error = {"content": {"application/json": {"schema": {
-        "type": "object", "properties": {"error": {"type": "string"}}, "required": ["error"]}}}}
+    error = {
+        "content": {
+            "application/json": {
+                "schema": {
+                    "type": "object",
+                    "properties": {"error": {"type": "string"}},
+                    "required": ["error"],
+                }
+            }
+        }
+    }
     return {
-        "requestBody": {"required": True, "content": {"multipart/form-data": {"schema": {
-            "type": "object",
-            "required": ["fieldbook"],
-            "properties": {
-                "fieldbook": {"type": "string", "format": "binary",
-                              "description": "The field book (UTF-8 text, docs/fieldbook.md)"},
-                "name": {"type": "string", "maxLength": 200},
+        "requestBody": {
+            "required": True,
+            "content": {
+                "multipart/form-data": {
+                    "schema": {
+                        "type": "object",
+                        "required": ["fieldbook"],
+                        "properties": {
+                            "fieldbook": {
+                                "type": "string",
+                                "format": "binary",
+                                "description": "The field book (UTF-8 text, docs/fieldbook.md)",
+                            },
+                            "name": {"type": "string", "maxLength": 200},
+                        },
+                    }
+                }
             },
-        }}}},
+        },
         "responses": {
             "200" if created == "200" else "201": {"description": "Adjusted (result contract)"},
             "413": {"description": "The upload is larger than the limit", **error},
-            "422": {"description": "Field book or network errors, with line numbers or points",
-                    **error},
+            "422": {
+                "description": "Field book or network errors, with line numbers or points",
+                **error,
+            },
         },
     }
 
@@ -63,15 +84,17 @@ def _adjusted_json(upload: Upload, limits: WorkLimits, queue: AdjustmentQueue) -
     return JSONResponse(result.to_json_dict())
 
 
-def _stored_json(store: Store, upload: Upload, max_projects: int, limits: WorkLimits,
-                 queue: AdjustmentQueue) -> JSONResponse:
+def _stored_json(
+    store: Store, upload: Upload, max_projects: int, limits: WorkLimits, queue: AdjustmentQueue
+) -> JSONResponse:
     project_id, result, error = service.submit(store, upload, max_projects, limits, queue)
-    body: dict[str, Any] = {"id": project_id,
-                            "result": None if result is None else result.to_json_dict()}
+    body: dict[str, Any] = {
+        "id": project_id,
+        "result": None if result is None else result.to_json_dict(),
+    }
     if error is not None:
         body.update(survey_error_payload(error))
-    return JSONResponse(body, status_code=201,
-                        headers={"Location": f"/api/projects/{project_id}"})
+    return JSONResponse(body, status_code=201, headers={"Location": f"/api/projects/{project_id}"})
 
 
 @router.post("/api/adjust", openapi_extra=_fieldbook_body("200"))
@@ -84,15 +107,17 @@ async def api_adjust(request: Request, limits: LimitsDep, queue: QueueDep) -> JS
 
 
 @router.post("/api/projects", status_code=201, openapi_extra=_fieldbook_body("201"))
-async def api_create_project(request: Request, store: StoreDep, limits: LimitsDep,
-                             queue: QueueDep) -> JSONResponse:
+async def api_create_project(
+    request: Request, store: StoreDep, limits: LimitsDep, queue: QueueDep
+) -> JSONResponse:
     """Store and adjust: ``{"id", "result"}``, with ``result`` null and the error when it failed."""
     upload = await read_upload(request, with_text=False)
     if upload is None:
         return JSONResponse(_MISSING_FIELD, status_code=422)
     room_in_queue(queue)
-    return await run_in_threadpool(_stored_json, store, upload, request.app.state.max_projects,
-                                   limits, queue)
+    return await run_in_threadpool(
+        _stored_json, store, upload, request.app.state.max_projects, limits, queue
+    )
 
 
 @router.get("/api/projects")

@@ -82,8 +82,10 @@ def busy(exc: QueueFull) -> HTTPException:
     waiting = exc.args[0] if exc.args else 0
     return HTTPException(
         status_code=503,
-        detail=(f"The service is busy: {waiting} adjustments are already waiting their turn. "
-                "Nothing was stored or changed; please try again in a minute."),
+        detail=(
+            f"The service is busy: {waiting} adjustments are already waiting their turn. "
+            "Nothing was stored or changed; please try again in a minute."
+        ),
         headers={"Retry-After": str(RETRY_AFTER_SECONDS)},
     )
 
@@ -99,8 +101,9 @@ def room_in_queue(queue: AdjustmentQueue) -> None:
 def standards_choice(request: Request) -> StandardsChoice:
     """Presets from the query (400 for an unknown one)."""
     try:
-        return StandardsChoice.from_query(request.query_params.get("relative"),
-                                          request.query_params.get("misclosure"))
+        return StandardsChoice.from_query(
+            request.query_params.get("relative"), request.query_params.get("misclosure")
+        )
     except UnknownPreset as exc:
         raise HTTPException(status_code=400, detail=str(exc)) from None
 
@@ -140,7 +143,7 @@ def check_form(request: Request, project: Project, form: FormData) -> None:
         raise HTTPException(
             status_code=403,
             detail="This form is out of date or did not come from this page. "
-                   "Reload the page and try again.",
+            "Reload the page and try again.",
         )
 
 
@@ -191,8 +194,7 @@ async def read_upload(request: Request, *, with_text: bool) -> Upload | None:
 # responses
 
 
-def render(request: Request, name: str, context: dict[str, Any], status: int = 200
-           ) -> HTMLResponse:
+def render(request: Request, name: str, context: dict[str, Any], status: int = 200) -> HTMLResponse:
     templates: Jinja2Templates = request.app.state.templates
     return templates.TemplateResponse(request, name, context, status_code=status)
 
@@ -215,8 +217,11 @@ def safe_filename(filename: str, fallback: str) -> str:
 
 
 def attachment(content: str | bytes, media_type: str, filename: str) -> Response:
-    return Response(content, media_type=media_type,
-                    headers={"Content-Disposition": f'attachment; filename="{filename}"'})
+    return Response(
+        content,
+        media_type=media_type,
+        headers={"Content-Disposition": f'attachment; filename="{filename}"'},
+    )
 
 
 def page_number(request: Request, key: str) -> int:
@@ -227,8 +232,9 @@ def page_number(request: Request, key: str) -> int:
     return min(int(raw), MAX_PAGE_PARAMETER)
 
 
-def page_links(request: Request, key: str, page: Page | None,
-               anchor: str, path: str) -> dict[str, str]:
+def page_links(
+    request: Request, key: str, page: Page | None, anchor: str, path: str
+) -> dict[str, str]:
     """Previous/next addresses of a paged table at ``path``, keeping the other parameters."""
     if page is None or not page.paged:
         return {}
@@ -250,8 +256,11 @@ def survey_error_payload(exc: SurveyError) -> dict[str, Any]:
     """The JSON body for an input error: line-numbered ``errors`` or ``error`` with ``points``."""
     record = error_record(exc)
     if isinstance(exc, FieldbookError):
-        return {"error": record["message"], "errors": record["issues"],
-                "error_count": record["count"]}
+        return {
+            "error": record["message"],
+            "errors": record["issues"],
+            "error_count": record["count"],
+        }
     if isinstance(exc, NetworkError):
         return {"error": exc.message, "points": list(exc.points)}
     return {"error": str(exc)}

@@ -50,8 +50,11 @@ def _design(project: Project, off: frozenset[int], limits: LimitsDep) -> Adjustm
 @router.get("/projects/{project_id}/design", response_class=HTMLResponse)
 async def design_page(request: Request, project: ProjectDep, limits: LimitsDep) -> Response:
     """The planned observations with a switch each, and the figures of the design."""
-    context: dict[str, Any] = {"project": project, "error": None,
-                               "name": display_name(project.name, project.filename)}
+    context: dict[str, Any] = {
+        "project": project,
+        "error": None,
+        "name": display_name(project.name, project.filename),
+    }
     try:
         off = await run_in_threadpool(switched_off, request, project)
         result = await run_in_threadpool(_design, project, off, limits)
@@ -82,12 +85,14 @@ async def design_report(request: Request, project: ProjectDep, limits: LimitsDep
     """The design report as a download (switched-off lines as on the page)."""
     off = parse_lines(request.query_params.get("off", ""))
     result = await run_in_threadpool(_design, project, off, limits)
-    response = attachment(design_html(result), "text/html; charset=utf-8",
-                          download_name(project, "-design.html"))
+    response = attachment(
+        design_html(result), "text/html; charset=utf-8", download_name(project, "-design.html")
+    )
     # as the adjustment report: its one inline style allowed by hash, nothing else
     response.headers["Content-Security-Policy"] = (
         f"default-src 'none'; style-src {style_hash(report_css())}; base-uri 'none'; "
-        "form-action 'none'; frame-ancestors 'none'")
+        "form-action 'none'; frame-ancestors 'none'"
+    )
     return response
 
 
@@ -107,5 +112,8 @@ def design_redirect(project: Project) -> RedirectResponse | None:
         book = _books.book(project)
     except SurveyError:
         return None
-    return RedirectResponse(f"/projects/{project.id}/design", status_code=303) \
-        if is_design(book) else None
+    return (
+        RedirectResponse(f"/projects/{project.id}/design", status_code=303)
+        if is_design(book)
+        else None
+    )

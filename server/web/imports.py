@@ -44,8 +44,12 @@ def store_import(store: Store, upload: Upload, max_projects: int = 0) -> str:
         title = parse_fieldbook(imported.text, source=imported_book_name(source)).title
     except SurveyError:
         title = ""  # the preview shows the book; adjusting it names what is wrong
-    return store.create_project(upload.name or title or "", imported_book_name(source),
-                                imported.text, source=(source, upload.data))
+    return store.create_project(
+        upload.name or title or "",
+        imported_book_name(source),
+        imported.text,
+        source=(source, upload.data),
+    )
 
 
 def import_preview(project: Project) -> ImportSummary | None:

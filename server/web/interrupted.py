@@ -27,13 +27,15 @@ router = APIRouter()
 
 
 @router.post("/projects/{project_id}/runs/{run_id}/retry")
-async def retry_interrupted(project: ProjectDep, store: StoreDep, form: CheckedForm,
-                            jobs: JobsDep, run_id: RowId) -> Response:
+async def retry_interrupted(
+    project: ProjectDep, store: StoreDep, form: CheckedForm, jobs: JobsDep, run_id: RowId
+) -> Response:
     """Start the interrupted run again as a new run with the same settings."""
     interrupted = await run_in_threadpool(store.run, project.id, run_id)
     if interrupted is None or interrupted.status != "interrupted":
-        raise HTTPException(status_code=404,
-                            detail="This project has no interrupted run with this number.")
+        raise HTTPException(
+            status_code=404, detail="This project has no interrupted run with this number."
+        )
     settings = {**(interrupted.settings or {}), "retry_of": interrupted.id}
     new_id = await run_in_threadpool(store.start_run, project.id, settings)
     job = jobs.start(

@@ -67,8 +67,11 @@ class AdjustmentQueue:
                 raise QueueFull(self._waiting_count())
 
     def _full(self) -> bool:
-        return bool(self.max_waiting) and self._running >= self.size and (
-            len(self._waiting) >= self.max_waiting)
+        return (
+            bool(self.max_waiting)
+            and self._running >= self.size
+            and (len(self._waiting) >= self.max_waiting)
+        )
 
     def _waiting_count(self) -> int:
         return len(self._waiting)
@@ -139,8 +142,10 @@ class Job:
         ahead = self.ahead if self.stage == "queued" else None
         if ahead is not None:
             running = self.queue.running if self.queue is not None else 0
-            return (f"waiting: {ahead} ahead of this one "
-                    f"({running} adjustment{'' if running == 1 else 's'} running)")
+            return (
+                f"waiting: {ahead} ahead of this one "
+                f"({running} adjustment{'' if running == 1 else 's'} running)"
+            )
         text = STAGE_WORDS.get(self.stage, self.stage)
         return f"{text} (iteration {self.step})" if self.stage == "iteration" else text
 
@@ -175,8 +180,10 @@ class Jobs:
                     work(job.progress)
             except RunGone:
                 # Deleting a project while it adjusts is allowed: the result has nowhere to go.
-                logger.info("run %s: its project was deleted during the adjustment; "
-                            "the result was dropped", run_id)
+                logger.info(
+                    "run %s: its project was deleted during the adjustment; the result was dropped",
+                    run_id,
+                )
             except Exception:
                 logger.exception("run %s: the background adjustment failed", run_id)
             finally:

@@ -49,6 +49,7 @@ from server.web.design import design_redirect
 
 router = APIRouter()
 
+
 async def _submit_in_background(request: Request, upload: Upload) -> str:
     """Store and start adjusting; wait briefly so small jobs open straight on their results."""
     store, limits, jobs = deps.get_store(request), deps.get_limits(request), deps.get_jobs(request)
@@ -70,7 +71,8 @@ async def _import_in_background(request: Request, upload: Upload) -> Response:
     store = deps.get_store(request)
     try:
         project_id = await run_in_threadpool(
-            imports.store_import, store, upload, request.app.state.max_projects)
+            imports.store_import, store, upload, request.app.state.max_projects
+        )
     except FieldbookError as exc:
         return import_refused(request, upload.filename, exc)
     return RedirectResponse(f"/projects/{project_id}/import", status_code=303)
@@ -80,12 +82,22 @@ def import_refused(request: Request, filename: str, exc: FieldbookError) -> Resp
     """422: the file could not be imported; each problem with its line of that file."""
     kind = "XML" if not filename.lower().endswith(".csv") else "CSV"
     issues = [{"line": i.line, "message": i.message} for i in exc.issues]
-    return render(request, "error.html", {
-        "status": 422, "heading": f"The {kind} file could not be imported",
-        "message": (f"{filename or 'The pasted text'}: nothing was stored. Correct the file "
-                    "at the line named below and upload it again."),
-        "issues": issues, "points": [], "line_label": f"{kind} line",
-    }, status=422)
+    return render(
+        request,
+        "error.html",
+        {
+            "status": 422,
+            "heading": f"The {kind} file could not be imported",
+            "message": (
+                f"{filename or 'The pasted text'}: nothing was stored. Correct the file "
+                "at the line named below and upload it again."
+            ),
+            "issues": issues,
+            "points": [],
+            "line_label": f"{kind} line",
+        },
+        status=422,
+    )
 
 
 def imported_from(project: Project) -> ImportedFrom | None:
@@ -95,8 +107,9 @@ def imported_from(project: Project) -> ImportedFrom | None:
     return ImportedFrom(project.source.filename, project.source.sha256)
 
 
-def finished_result(store: Store, project: Project, choice: StandardsChoice,
-                    queue: QueueDep) -> AdjustmentResult:
+def finished_result(
+    store: Store, project: Project, choice: StandardsChoice, queue: QueueDep
+) -> AdjustmentResult:
     """The latest result with the chosen presets, or 404."""
     result = service.latest_result(store, project, choice, queue)
     if result is None:
@@ -115,9 +128,12 @@ def _demos(request: Request) -> dict[str, Path]:
 
 def _upload_page_context(request: Request, problem: str) -> dict[str, Any]:
     demos = _demos(request)
-    return {"demos": list(demos), "problem": problem,
-            "xml_demos": [name for name, path in demos.items() if path.suffix == ".xml"],
-            "limit": request.app.state.max_upload_bytes}
+    return {
+        "demos": list(demos),
+        "problem": problem,
+        "xml_demos": [name for name, path in demos.items() if path.suffix == ".xml"],
+        "limit": request.app.state.max_upload_bytes,
+    }
 
 
 def _demo_or_404(request: Request, name: str) -> Path:
@@ -127,22 +143,29 @@ def _demo_or_404(request: Request, name: str) -> Path:
     return path
 
 
-def _results_context(request: Request, project: Project, result: AdjustmentResult,
-                     choice: StandardsChoice) -> dict[str, Any]:
+def _results_context(
+    request: Request, project: Project, result: AdjustmentResult, choice: StandardsChoice
+) -> dict[str, Any]:
     """The results page's tables, plot, links and the presets offered."""
-    context = report.context(result, choice.presets, obs_page=page_number(request, "obs_page"),
-                             pt_page=page_number(request, "pt_page"))
+    context = report.context(
+        result,
+        choice.presets,
+        obs_page=page_number(request, "obs_page"),
+        pt_page=page_number(request, "pt_page"),
+    )
     here = f"/projects/{project.id}"
     observation_page = context["observation_page"]
     point_page = context["point_page"]
     assert isinstance(observation_page, Page | None) and isinstance(point_page, Page | None)
     context["observation_links"] = page_links(
-        request, "obs_page", observation_page, "observations", here)
+        request, "obs_page", observation_page, "observations", here
+    )
     context["point_links"] = page_links(request, "pt_page", point_page, "points", here)
     context["network_plot"] = plot.network_plot_data(result)
     context["geojson_unavailable"] = "No GeoJSON: " + NO_CRS[0].lower() + NO_CRS[1:] + "."
-    context.update(choice=choice, download_query=choice.query,
-                   preset_options=service.preset_options())
+    context.update(
+        choice=choice, download_query=choice.query, preset_options=service.preset_options()
+    )
     return context
 
 
@@ -162,9 +185,14 @@ async def create_project(request: Request) -> Response:
     of readings is imported and previewed first."""
     upload = await read_upload(request, with_text=True)
     if upload is None:
-        return render(request, "index.html", _upload_page_context(
-            request, "Choose a field book file or paste its text, then press Adjust."),
-            status=400)
+        return render(
+            request,
+            "index.html",
+            _upload_page_context(
+                request, "Choose a field book file or paste its text, then press Adjust."
+            ),
+            status=400,
+        )
     if imports.is_import(upload):
         return await _import_in_background(request, upload)
     project_id = await _submit_in_background(request, upload)
@@ -177,11 +205,17 @@ def import_page(request: Request, project: ProjectDep, store: StoreDep) -> Respo
     if project.source is None or store.runs(project.id):
         return RedirectResponse(f"/projects/{project.id}", status_code=303)
     summary = imports.import_preview(project)
-    return render(request, "import_preview.html", {
-        "project": project, "summary": summary, "source": project.source,
-        "name": display_name(project.name, project.filename),
-        "kind": "CSV" if summary is not None and summary.kind == "csv" else "XML",
-    })
+    return render(
+        request,
+        "import_preview.html",
+        {
+            "project": project,
+            "summary": summary,
+            "source": project.source,
+            "name": display_name(project.name, project.filename),
+            "kind": "CSV" if summary is not None and summary.kind == "csv" else "XML",
+        },
+    )
 
 
 @router.post("/projects/{project_id}/adjust")
@@ -190,8 +224,7 @@ async def adjust_imported(request: Request, project: ProjectDep, form: CheckedFo
     store, limits, jobs = deps.get_store(request), deps.get_limits(request), deps.get_jobs(request)
     if not store.runs(project.id):
         deps.room_in_queue(jobs.queue)
-        book, run_id = await run_in_threadpool(imports.start_imported_run, store, project,
-                                               limits)
+        book, run_id = await run_in_threadpool(imports.start_imported_run, store, project, limits)
         if book is not None and run_id is not None:
             job = jobs.start(
                 run_id, lambda progress: service.adjust_run(store, run_id, book, progress, limits)
@@ -216,8 +249,9 @@ def project_list(request: Request, store: StoreDep) -> HTMLResponse:
 
 
 @router.get("/projects/{project_id}", response_class=HTMLResponse)
-def project_page(request: Request, project: ProjectDep, store: StoreDep, jobs: JobsDep,
-                 choice: ChoiceDep) -> Response:
+def project_page(
+    request: Request, project: ProjectDep, store: StoreDep, jobs: JobsDep, choice: ChoiceDep
+) -> Response:
     """The results of a project's latest adjustment, or what stopped it."""
     runs = store.runs(project.id)
     if project.source is not None and not runs:
@@ -231,15 +265,25 @@ def project_page(request: Request, project: ProjectDep, store: StoreDep, jobs: J
     if newest is not None and newest.status in ("running", "interrupted"):
         job = jobs.get(newest.id)
         if job is not None and newest.status == "running":
-            return render(request, "progress.html", {
-                "project": project, "run": newest, "job": job,
-                "name": display_name(project.name, project.filename),
-            })
+            return render(
+                request,
+                "progress.html",
+                {
+                    "project": project,
+                    "run": newest,
+                    "job": job,
+                    "name": display_name(project.name, project.filename),
+                },
+            )
         interrupted = newest  # the service stopped before this run finished
     run = store.latest_run(project.id)
     result = service.result_with_presets(project, run, choice, jobs.queue)
     context: dict[str, Any] = {
-        "project": project, "run": run, "error": None, "issues": [], "interrupted": interrupted,
+        "project": project,
+        "run": run,
+        "error": None,
+        "issues": [],
+        "interrupted": interrupted,
         "name": display_name(project.name, project.filename, result.title if result else ""),
     }
     if result is not None:
@@ -251,14 +295,19 @@ def project_page(request: Request, project: ProjectDep, store: StoreDep, jobs: J
 
 
 @router.get("/projects/{project_id}/report.html")
-def project_report(choice: ChoiceDep, project: ProjectDep, store: StoreDep,
-                   queue: QueueDep) -> Response:
+def project_report(
+    choice: ChoiceDep, project: ProjectDep, store: StoreDep, queue: QueueDep
+) -> Response:
     """The printable report, as a download; its inline style is allowed by hash only."""
     result = finished_result(store, project, choice, queue)
     css = html_report.report_css()
-    response = attachment(html_report.report_html(result, presets=choice.presets,
-                                                  imported_from=imported_from(project)),
-                          "text/html; charset=utf-8", download_name(project, "-report.html"))
+    response = attachment(
+        html_report.report_html(
+            result, presets=choice.presets, imported_from=imported_from(project)
+        ),
+        "text/html; charset=utf-8",
+        download_name(project, "-report.html"),
+    )
     response.headers["Content-Security-Policy"] = (
         f"default-src 'none'; style-src {html_report.style_hash(css)}; base-uri 'none'; "
         "form-action 'none'; frame-ancestors 'none'"
@@ -267,36 +316,48 @@ def project_report(choice: ChoiceDep, project: ProjectDep, store: StoreDep,
 
 
 @router.get("/projects/{project_id}/report.pdf")
-def project_report_pdf(choice: ChoiceDep, project: ProjectDep, store: StoreDep,
-                       queue: QueueDep) -> Response:
+def project_report_pdf(
+    choice: ChoiceDep, project: ProjectDep, store: StoreDep, queue: QueueDep
+) -> Response:
     """The report as PDF, drawn on the server."""
     result = finished_result(store, project, choice, queue)
-    return attachment(report_pdf(result, presets=choice.presets,
-                                 imported_from=imported_from(project)),
-                      "application/pdf", download_name(project, "-report.pdf"))
+    return attachment(
+        report_pdf(result, presets=choice.presets, imported_from=imported_from(project)),
+        "application/pdf",
+        download_name(project, "-report.pdf"),
+    )
 
 
 @router.get("/projects/{project_id}/report.txt")
-def project_report_text(choice: ChoiceDep, project: ProjectDep, store: StoreDep,
-                        queue: QueueDep) -> Response:
+def project_report_text(
+    choice: ChoiceDep, project: ProjectDep, store: StoreDep, queue: QueueDep
+) -> Response:
     """The plain-text summary, as the terminal prints it."""
     result = finished_result(store, project, choice, queue)
-    return attachment(report_text(result, imported_from(project)), "text/plain; charset=utf-8",
-                      download_name(project, "-report.txt"))
+    return attachment(
+        report_text(result, imported_from(project)),
+        "text/plain; charset=utf-8",
+        download_name(project, "-report.txt"),
+    )
 
 
 @router.get("/projects/{project_id}/points.csv")
-def project_points_csv(project: ProjectDep, choice: ChoiceDep, store: StoreDep,
-                       queue: QueueDep) -> Response:
+def project_points_csv(
+    project: ProjectDep, choice: ChoiceDep, store: StoreDep, queue: QueueDep
+) -> Response:
     """The adjusted points as CSV."""
     result = finished_result(store, project, choice, queue)
-    return attachment(csv_export.points_csv(result), "text/csv; charset=utf-8",
-                      download_name(project, "-points.csv"))
+    return attachment(
+        csv_export.points_csv(result),
+        "text/csv; charset=utf-8",
+        download_name(project, "-points.csv"),
+    )
 
 
 @router.get("/projects/{project_id}/points.geojson")
-def project_geojson(project: ProjectDep, choice: ChoiceDep, store: StoreDep,
-                    queue: QueueDep) -> Response:
+def project_geojson(
+    project: ProjectDep, choice: ChoiceDep, store: StoreDep, queue: QueueDep
+) -> Response:
     """Points and observation lines as GeoJSON in longitude and latitude; 409 without a CRS
     (there is nothing RFC 7946 can hold)."""
     result = finished_result(store, project, choice, queue)
@@ -308,8 +369,9 @@ def project_geojson(project: ProjectDep, choice: ChoiceDep, store: StoreDep,
 
 
 @router.get("/projects/{project_id}/result.json")
-def project_result_json(project: ProjectDep, store: StoreDep, request: Request,
-                        queue: QueueDep) -> Response:
+def project_result_json(
+    project: ProjectDep, store: StoreDep, request: Request, queue: QueueDep
+) -> Response:
     """The contract JSON of the latest finished run; with a preset asked for, adjusted again."""
     run = store.latest_run(project.id)
     if run is None or run.result_json is None:
@@ -318,16 +380,18 @@ def project_result_json(project: ProjectDep, store: StoreDep, request: Request,
     body = run.result_json
     if choice.presets:
         body = finished_result(store, project, choice, queue).to_json_dict()
-    return JSONResponse(body, headers={
-        "Content-Disposition": f'attachment; filename="{download_name(project, "-result.json")}"'
-    })
+    return JSONResponse(
+        body,
+        headers={"Content-Disposition": _attachment_header(project, "-result.json")},
+    )
 
 
 @router.get("/projects/{project_id}/fieldbook")
 def project_fieldbook(project: ProjectDep) -> Response:
     """The field book exactly as uploaded."""
-    return attachment(project.fieldbook, "text/plain; charset=utf-8",
-                      download_name(project, ".fieldbook"))
+    return attachment(
+        project.fieldbook, "text/plain; charset=utf-8", download_name(project, ".fieldbook")
+    )
 
 
 @router.get("/projects/{project_id}/source")
@@ -355,3 +419,8 @@ async def demo_open(name: str, request: Request) -> Response:
         return await _import_in_background(request, upload)
     project_id = await _submit_in_background(request, upload)
     return RedirectResponse(f"/projects/{project_id}", status_code=303)
+
+
+def _attachment_header(project: Project, suffix: str) -> str:
+    """Content-Disposition of a download named after the project."""
+    return f'attachment; filename="{download_name(project, suffix)}"'

@@ -36,7 +36,8 @@ def pickable_points(result: AdjustmentResult) -> list[str]:
     """Points a pair may name: tied to the survey, with a position (a height in 1D)."""
     vertical = result.summary.dimension == 1
     return [
-        p.name for p in result.points
+        p.name
+        for p in result.points
         if p.in_use and (p.height is not None if vertical else p.east is not None)
     ]
 
@@ -129,34 +130,52 @@ async def ask_relative_pairs(request: Request, project: ProjectDep, store: Store
         first = next(iter(_strings(form, "from")), "").strip()
         second = next(iter(_strings(form, "to")), "").strip()
         try:
-            pairs = requested_pairs(pickable_points(state.result), _strings(form, "pair")[:MAX_PAIRS + 1],
-                                    first, second, _strings(form, "among")[:MAX_AMONG + 1])
+            pairs = requested_pairs(
+                pickable_points(state.result),
+                _strings(form, "pair")[: MAX_PAIRS + 1],
+                first,
+                second,
+                _strings(form, "among")[: MAX_AMONG + 1],
+            )
         except PairRequestError as exc:
             message = str(exc)
         if not message and not reason:
             message = "give a reason (it is written into the field book beside the pairs)"
     if not message:
-        edit = ObservationEdit(line=0, action="relative", reason=reason, date=today(),
-                               pairs=tuple(pairs))
+        edit = ObservationEdit(
+            line=0, action="relative", reason=reason, date=today(), pairs=tuple(pairs)
+        )
         try:
-            await run_in_threadpool(apply_edits, project.text,
-                                    [*state.in_force, *state.pending_edits, edit],
-                                    source=project.filename)
+            await run_in_threadpool(
+                apply_edits,
+                project.text,
+                [*state.in_force, *state.pending_edits, edit],
+                source=project.filename,
+            )
         except SurveyError as exc:
             message = str(exc)
     if message:
-        return render(request, "relative_refused.html", {
-            "project": project,
-            "name": display_name(project.name, project.filename),
-            "message": message,
-        }, status=422)
+        return render(
+            request,
+            "relative_refused.html",
+            {
+                "project": project,
+                "name": display_name(project.name, project.filename),
+                "message": message,
+            },
+            status=422,
+        )
     try:
         await run_in_threadpool(store.add_pending_edit, project.id, review.edit_to_json(edit))
     except AlreadyQueued as exc:
-        return render(request, "relative_refused.html", {
-            "project": project,
-            "name": display_name(project.name, project.filename),
-            "message": str(exc),
-        }, status=409)
+        return render(
+            request,
+            "relative_refused.html",
+            {
+                "project": project,
+                "name": display_name(project.name, project.filename),
+                "message": str(exc),
+            },
+            status=409,
+        )
     return RedirectResponse(f"/projects/{project.id}/review#decisions", status_code=303)
-

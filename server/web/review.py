@@ -82,8 +82,14 @@ def _rejected(values: list[str]) -> list[int]:
     return sorted(set(lines))
 
 
-def _review_url(project_id: str, *, suggest: bool = False, rejected: list[int] | None = None,
-                anchor: str = "", page: int = 1) -> str:
+def _review_url(
+    project_id: str,
+    *,
+    suggest: bool = False,
+    rejected: list[int] | None = None,
+    anchor: str = "",
+    page: int = 1,
+) -> str:
     """The review page's address, built from checked values only (never echoed from a request)."""
     query: list[tuple[str, str]] = [("obs_page", str(page))] if page > 1 else []
     if suggest:
@@ -95,8 +101,9 @@ def _review_url(project_id: str, *, suggest: bool = False, rejected: list[int] |
     return url + (f"#{anchor}" if anchor else "")
 
 
-def _proposal(request: Request, state: ReviewState, kind: str,
-              propose: Callable[..., Any], failure: str) -> Any:
+def _proposal(
+    request: Request, state: ReviewState, kind: str, propose: Callable[..., Any], failure: str
+) -> Any:
     """A proposal computed from the reviewed run's field book, cached per run."""
     assert state.base is not None and state.result is not None
     result = state.result
@@ -113,14 +120,24 @@ def _proposal(request: Request, state: ReviewState, kind: str,
 
 def _robust(request: Request, state: ReviewState) -> RobustResult | str:
     """The robust second opinion, or why it could not be computed."""
-    return _proposal(request, state, "robust", robust_adjustment,  # type: ignore[no-any-return]
-                     "The robust adjustment could not be computed")
+    return _proposal(
+        request,
+        state,
+        "robust",
+        robust_adjustment,  # type: ignore[no-any-return]
+        "The robust adjustment could not be computed",
+    )
 
 
 def _snooping(request: Request, state: ReviewState) -> SnoopingPlan | str:
     """The proposed snooping sequence, or why none could be proposed."""
-    return _proposal(request, state, "snooping", propose_snooping,  # type: ignore[no-any-return]
-                     "No sequence could be proposed")
+    return _proposal(
+        request,
+        state,
+        "snooping",
+        propose_snooping,  # type: ignore[no-any-return]
+        "No sequence could be proposed",
+    )
 
 
 def _page_of(result: AdjustmentResult | None, line: int) -> int:
@@ -161,49 +178,58 @@ def _review_context(
         "rejected": rejected or [],
         "token": project.form_token,
         "in_force": review.decision_rows(state.in_force, result),
-        "pending": review.decision_rows(state.pending_edits, result,
-                                        [p.id for p in state.pending]),
+        "pending": review.decision_rows(state.pending_edits, result, [p.id for p in state.pending]),
     }
     if result is None:
         return context
     tau = tau_test(result)
     # a refused decision is drawn on the page of its line, so its message sits beside it
-    wanted = (_page_of(result, next(iter(errors))) if errors and "obs_page" not in
-              request.query_params else page_number(request, "obs_page"))
+    wanted = (
+        _page_of(result, next(iter(errors)))
+        if errors and "obs_page" not in request.query_params
+        else page_number(request, "obs_page")
+    )
     page = report.page(len(result.observations), wanted)
     rows = review.review_rows(result, review.source_lines(state.text), tau, page.window)
     shown = {row.line for row in rows}
-    context["problems"] += [message for line, message in (errors or {}).items()
-                            if line not in shown]
+    context["problems"] += [
+        message for line, message in (errors or {}).items() if line not in shown
+    ]
     pending_by_line: dict[int, list[review.DecisionRow]] = {}
     for row in context["pending"]:
         pending_by_line.setdefault(row.line, []).append(row)
-    context.update({
-        "verdict": verdict(result),
-        "rows": rows,
-        "observation_page": page,
-        # a form's answer is drawn at its own address: the links go back to the review page
-        "observation_links": page_links(request, "obs_page", page, "observations",
-                                         f"/projects/{project.id}/review"),
-        "pending_by_line": pending_by_line,
-        "ignored_after": review.ignored_after(result, state.pending_edits),
-        "critical_w": fmt_ratio(result.summary.critical_w),
-        "tau": tau,
-        "tau_critical": fmt_ratio(tau.critical) if tau else "",
-        "tau_rows": review.tau_rows(tau, result) if tau else [],
-        "huber_k": f"{HUBER_K:g}",
-        "arcsec": ARCSEC,
-        "cols": columns(result),
-        "length_unit": length_label(result.length_unit),
-    })
+    context.update(
+        {
+            "verdict": verdict(result),
+            "rows": rows,
+            "observation_page": page,
+            # a form's answer is drawn at its own address: the links go back to the review page
+            "observation_links": page_links(
+                request, "obs_page", page, "observations", f"/projects/{project.id}/review"
+            ),
+            "pending_by_line": pending_by_line,
+            "ignored_after": review.ignored_after(result, state.pending_edits),
+            "critical_w": fmt_ratio(result.summary.critical_w),
+            "tau": tau,
+            "tau_critical": fmt_ratio(tau.critical) if tau else "",
+            "tau_rows": review.tau_rows(tau, result) if tau else [],
+            "huber_k": f"{HUBER_K:g}",
+            "arcsec": ARCSEC,
+            "cols": columns(result),
+            "length_unit": length_label(result.length_unit),
+        }
+    )
     context["robust_applies"] = result.summary.redundancy > 0
     robust = _robust(request, state) if context["robust_applies"] else ""
     if isinstance(robust, str):
         context.update(robust=None, robust_problem=robust, robust_rows=[], robust_suspects=[])
     else:
-        context.update(robust=robust, robust_problem="",
-                       robust_rows=review.robust_rows(robust, result),
-                       robust_suspects=list(robust.suspects))
+        context.update(
+            robust=robust,
+            robust_problem="",
+            robust_rows=review.robust_rows(robust, result),
+            robust_suspects=list(robust.suspects),
+        )
     context.update(plan=None, plan_problem="", plan_items=[])
     if suggest:
         plan = _snooping(request, state)
@@ -211,8 +237,9 @@ def _review_context(
             context["plan_problem"] = plan
         else:
             context["plan"] = plan
-            context["plan_items"] = _plan_items(project.id, review.snooping_rows(plan),
-                                                state.pending_edits, rejected or [])
+            context["plan_items"] = _plan_items(
+                project.id, review.snooping_rows(plan), state.pending_edits, rejected or []
+            )
     return context
 
 
@@ -235,16 +262,25 @@ def _plan_items(
             state = "blocked"
         else:
             state = "open"
-        items.append({
-            "row": row,
-            "state": state,
-            "blocked_by": blocked_by,
-            "reject_url": _review_url(project_id, suggest=True, rejected=[*rejected, row.line],
-                                      anchor=f"step-{row.step}"),
-            "reconsider_url": _review_url(project_id, suggest=True,
-                                          rejected=[n for n in rejected if n != row.line],
-                                          anchor=f"step-{row.step}"),
-        })
+        items.append(
+            {
+                "row": row,
+                "state": state,
+                "blocked_by": blocked_by,
+                "reject_url": _review_url(
+                    project_id,
+                    suggest=True,
+                    rejected=[*rejected, row.line],
+                    anchor=f"step-{row.step}",
+                ),
+                "reconsider_url": _review_url(
+                    project_id,
+                    suggest=True,
+                    rejected=[n for n in rejected if n != row.line],
+                    anchor=f"step-{row.step}",
+                ),
+            }
+        )
         if state == "rejected" and blocked_by is None:
             blocked_by = row.step
     return items
@@ -260,13 +296,15 @@ def review_page(request: Request, project: ProjectDep, store: StoreDep) -> HTMLR
     state = _load_state(store, project)
     suggest = request.query_params.get("suggest") == "1"
     rejected = _rejected(request.query_params.getlist("reject"))
-    return _render(request, "review.html",
-                   _review_context(request, state, suggest=suggest, rejected=rejected))
+    return _render(
+        request, "review.html", _review_context(request, state, suggest=suggest, rejected=rejected)
+    )
 
 
 @router.post("/projects/{project_id}/edits")
-async def queue_edit(request: Request, project: ProjectDep, store: StoreDep,
-                    form: CheckedForm) -> Response:
+async def queue_edit(
+    request: Request, project: ProjectDep, store: StoreDep, form: CheckedForm
+) -> Response:
     """Queue one decision after checking it reads; a refusal is shown beside its observation."""
     suggest = _text(form, "back", 20) == "suggest"
     rejected = _rejected([v for v in form.getlist("reject") if isinstance(v, str)])
@@ -274,53 +312,77 @@ async def queue_edit(request: Request, project: ProjectDep, store: StoreDep,
     if line is None:
         raise HTTPException(status_code=400, detail="The decision does not name a line.")
     action = _text(form, "action", 20)
-    values = {"action": action, "reason": _text(form, "reason", 1000),
-              "sd": _text(form, "sd", 200).strip(), "value": _text(form, "value", 200).strip()}
+    values = {
+        "action": action,
+        "reason": _text(form, "reason", 1000),
+        "sd": _text(form, "sd", 200).strip(),
+        "value": _text(form, "value", 200).strip(),
+    }
     state = await run_in_threadpool(_load_state, store, project)
-    edit, message = await run_in_threadpool(service.prepare_decision, state, line, values,
-                                            today())
+    edit, message = await run_in_threadpool(service.prepare_decision, state, line, values, today())
     status = 422
     if not message:
         try:  # checked again and inserted in one transaction: another client may be deciding
-            await run_in_threadpool(store.add_pending_edit, project.id, review.edit_to_json(edit),
-                                    based_on=state.base.id if state.base else None)
+            await run_in_threadpool(
+                store.add_pending_edit,
+                project.id,
+                review.edit_to_json(edit),
+                based_on=state.base.id if state.base else None,
+            )
         except (AlreadyQueued, DecisionsChanged) as exc:
             message, status = str(exc), 409
             state = await run_in_threadpool(_load_state, store, project)
     if message:
         context = await run_in_threadpool(
-            lambda: _review_context(request, state, suggest=suggest, rejected=rejected,
-                                    errors={line: message}, values={line: values}))
+            lambda: _review_context(
+                request,
+                state,
+                suggest=suggest,
+                rejected=rejected,
+                errors={line: message},
+                values={line: values},
+            )
+        )
         return _render(request, "review.html", context, status=status)
     anchor = "snooping" if suggest else f"line-{line}"
     page = 1 if suggest else _page_of(state.result, line)
-    return RedirectResponse(_review_url(project.id, suggest=suggest, rejected=rejected,
-                                        anchor=anchor, page=page), status_code=303)
+    return RedirectResponse(
+        _review_url(project.id, suggest=suggest, rejected=rejected, anchor=anchor, page=page),
+        status_code=303,
+    )
 
 
 @router.post("/projects/{project_id}/edits/{edit_id}/undo")
-async def undo_edit(request: Request, project: ProjectDep, store: StoreDep,
-                   form: CheckedForm, edit_id: RowId) -> Response:
+async def undo_edit(
+    request: Request, project: ProjectDep, store: StoreDep, form: CheckedForm, edit_id: RowId
+) -> Response:
     """Withdraw a queued decision."""
     suggest = _text(form, "back", 20) == "suggest"
     rejected = _rejected([v for v in form.getlist("reject") if isinstance(v, str)])
     if not await run_in_threadpool(store.remove_pending_edit, project.id, edit_id):
         # another client's re-run applied it, or it was already withdrawn: never say "done"
         state = await run_in_threadpool(_load_state, store, project)
-        problem = ("This decision is no longer queued: a re-run has already applied it, or it "
-                   "was withdrawn. The decisions in force are listed below; to reverse one, "
-                   "make a new decision on its line.")
+        problem = (
+            "This decision is no longer queued: a re-run has already applied it, or it "
+            "was withdrawn. The decisions in force are listed below; to reverse one, "
+            "make a new decision on its line."
+        )
         context = await run_in_threadpool(
-            lambda: _review_context(request, state, suggest=suggest, rejected=rejected,
-                                    problem=problem))
+            lambda: _review_context(
+                request, state, suggest=suggest, rejected=rejected, problem=problem
+            )
+        )
         return _render(request, "review.html", context, status=409)
-    return RedirectResponse(_review_url(project.id, suggest=suggest, rejected=rejected,
-                                        anchor="decisions"), status_code=303)
+    return RedirectResponse(
+        _review_url(project.id, suggest=suggest, rejected=rejected, anchor="decisions"),
+        status_code=303,
+    )
 
 
 @router.post("/projects/{project_id}/runs")
-async def rerun(request: Request, project: ProjectDep, store: StoreDep,
-               form: CheckedForm) -> Response:
+async def rerun(
+    request: Request, project: ProjectDep, store: StoreDep, form: CheckedForm
+) -> Response:
     """Re-run with the decisions, then show what changed."""
     state = await run_in_threadpool(_load_state, store, project)
     if state.base is None or not state.pending:
@@ -337,16 +399,18 @@ async def rerun(request: Request, project: ProjectDep, store: StoreDep,
     new = store.run(project.id, run_id) if run_id is not None else None
     if new is None or not new.finished or state.base is None:
         return RedirectResponse(_review_url(project.id), status_code=303)
-    return RedirectResponse(f"/projects/{project.id}/compare?a={state.base.id}&b={new.id}",
-                            status_code=303)
+    return RedirectResponse(
+        f"/projects/{project.id}/compare?a={state.base.id}&b={new.id}", status_code=303
+    )
 
 
 @router.get("/projects/{project_id}/compare", response_class=HTMLResponse)
 def compare_page(request: Request, project: ProjectDep, store: StoreDep) -> HTMLResponse:
     """Two runs side by side: variance factor, global test, flags, point shifts."""
     try:
-        context = service.compare_runs(store, project, request.query_params.get("a"),
-                                       request.query_params.get("b"))
+        context = service.compare_runs(
+            store, project, request.query_params.get("a"), request.query_params.get("b")
+        )
     except service.NoSuchRun as exc:
         raise HTTPException(status_code=404, detail=str(exc)) from None
     return _render(request, "compare.html", context)
@@ -355,8 +419,11 @@ def compare_page(request: Request, project: ProjectDep, store: StoreDep) -> HTML
 @router.get("/projects/{project_id}/fieldbook/edited")
 def edited_fieldbook(project: ProjectDep, store: StoreDep) -> Response:
     """The upload with the decisions in force written into their lines (the original is kept)."""
-    return attachment(service.edited_fieldbook(store, project), "text/plain; charset=utf-8",
-                      download_name(project, "-edited.fieldbook"))
+    return attachment(
+        service.edited_fieldbook(store, project),
+        "text/plain; charset=utf-8",
+        download_name(project, "-edited.fieldbook"),
+    )
 
 
 # --------------------------------------------------------------------------------------
@@ -367,23 +434,32 @@ def edited_fieldbook(project: ProjectDep, store: StoreDep) -> Response:
 def confirm_delete(request: Request, project: ProjectDep, store: StoreDep) -> HTMLResponse:
     """Ask before deleting: what will be lost, with the download of the field book."""
     runs = store.runs(project.id)
-    return _render(request, "confirm_delete.html", {
-        "project": project,
-        "name": display_name(project.name, project.filename),
-        "runs": len(runs),
-        "pending": len(store.pending_edits(project.id)),
-        "token": project.form_token,
-        "keep_days": request.app.state.keep_deleted_days,
-    })
+    return _render(
+        request,
+        "confirm_delete.html",
+        {
+            "project": project,
+            "name": display_name(project.name, project.filename),
+            "runs": len(runs),
+            "pending": len(store.pending_edits(project.id)),
+            "token": project.form_token,
+            "keep_days": request.app.state.keep_deleted_days,
+        },
+    )
 
 
 @router.post("/projects/{project_id}/delete")
-async def delete_project(request: Request, project: ProjectDep, store: StoreDep,
-                         form: CheckedForm) -> Response:
+async def delete_project(
+    request: Request, project: ProjectDep, store: StoreDep, form: CheckedForm
+) -> Response:
     """Move the project to the recently deleted ones (or erase it when none are kept)."""
     store.delete_project(project.id)
-    logger.info("project %s (%r) deleted by %s", project.id,
-                display_name(project.name, project.filename), client(request))
+    logger.info(
+        "project %s (%r) deleted by %s",
+        project.id,
+        display_name(project.name, project.filename),
+        client(request),
+    )
     keep_days = request.app.state.keep_deleted_days
     if keep_days == 0:
         service.purge_deleted(store, 0, who=client(request))
@@ -393,10 +469,14 @@ async def delete_project(request: Request, project: ProjectDep, store: StoreDep,
 @router.get("/deleted-projects", response_class=HTMLResponse)
 def deleted_projects(request: Request, store: StoreDep) -> HTMLResponse:
     """The projects deleted within the retention time, each with a Restore button."""
-    return _render(request, "deleted_projects.html", {
-        "projects": [(p, display_name(p.name, p.filename)) for p in store.deleted_projects()],
-        "keep_days": request.app.state.keep_deleted_days,
-    })
+    return _render(
+        request,
+        "deleted_projects.html",
+        {
+            "projects": [(p, display_name(p.name, p.filename)) for p in store.deleted_projects()],
+            "keep_days": request.app.state.keep_deleted_days,
+        },
+    )
 
 
 @router.post("/deleted-projects/{project_id}/restore")
@@ -408,6 +488,10 @@ async def restore_project(request: Request, project_id: str, store: StoreDep) ->
     form = await read_form(request)
     check_form(request, project, form)
     store.restore_project(project.id)
-    logger.info("project %s (%r) restored by %s", project.id,
-                display_name(project.name, project.filename), client(request))
+    logger.info(
+        "project %s (%r) restored by %s",
+        project.id,
+        display_name(project.name, project.filename),
+        client(request),
+    )
     return RedirectResponse(f"/projects/{project.id}", status_code=303)

@@ -70,5 +70,8 @@ class HeaderTimeoutProtocol(H11Protocol):
 def uvicorn_options(header_timeout: float = HEADER_TIMEOUT) -> dict[str, Any]:
     """The keyword arguments ``serve`` gives ``uvicorn.run`` for slow or oversized clients."""
     protocol = type("ServeProtocol", (HeaderTimeoutProtocol,), {"header_timeout": header_timeout})
-    return {"http": protocol, "timeout_keep_alive": KEEP_ALIVE_TIMEOUT,
-            "h11_max_incomplete_event_size": MAX_HEADER_BYTES}
+    return {
+        "http": protocol,
+        "timeout_keep_alive": KEEP_ALIVE_TIMEOUT,
+        "h11_max_incomplete_event_size": MAX_HEADER_BYTES,
+    }
