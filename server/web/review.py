@@ -120,24 +120,18 @@ def _proposal(
 
 def _robust(request: Request, state: ReviewState) -> RobustResult | str:
     """The robust second opinion, or why it could not be computed."""
-    return _proposal(
-        request,
-        state,
-        "robust",
-        robust_adjustment,  # type: ignore[no-any-return]
-        "The robust adjustment could not be computed",
+    found = _proposal(
+        request, state, "robust", robust_adjustment, "The robust adjustment could not be computed"
     )
+    assert isinstance(found, RobustResult | str)
+    return found
 
 
 def _snooping(request: Request, state: ReviewState) -> SnoopingPlan | str:
     """The proposed snooping sequence, or why none could be proposed."""
-    return _proposal(
-        request,
-        state,
-        "snooping",
-        propose_snooping,  # type: ignore[no-any-return]
-        "No sequence could be proposed",
-    )
+    found = _proposal(request, state, "snooping", propose_snooping, "No sequence could be proposed")
+    assert isinstance(found, SnoopingPlan | str)
+    return found
 
 
 def _page_of(result: AdjustmentResult | None, line: int) -> int:
