@@ -33,21 +33,49 @@ def _book(tmp_path: Path, name: str, text: str) -> str:
 
 
 def test_the_demo_finds_the_settling_mark_and_its_rate(capsys):
-    status = main(["monitor", *map(str, DEMO), "--json", "--period", "365.25",
-                   "--threshold", "3mm"])
+    status = main(
+        ["monitor", *map(str, DEMO), "--json", "--period", "365.25", "--threshold", "3mm"]
+    )
     out = capsys.readouterr().out
     assert status == 0
     data = json.loads(out)
-    assert set(data) == {"format", "length_unit", "dimension", "components", "settings",
-                         "epochs", "marks", "left_out", "comparisons", "datum", "series",
-                         "notes", "caution"}
+    assert set(data) == {
+        "format",
+        "length_unit",
+        "dimension",
+        "components",
+        "settings",
+        "epochs",
+        "marks",
+        "left_out",
+        "comparisons",
+        "datum",
+        "series",
+        "notes",
+        "caution",
+    }
     assert len(data["epochs"]) == 8 and data["components"] == ["H"]
     last = data["comparisons"][-1]
-    assert set(last) >= {"epochs", "steps", "stable", "moved", "displacements",
-                         "variance_factor", "degrees_of_freedom", "congruent_set_found"}
+    assert set(last) >= {
+        "epochs",
+        "steps",
+        "stable",
+        "moved",
+        "displacements",
+        "variance_factor",
+        "degrees_of_freedom",
+        "congruent_set_found",
+    }
     assert last["moved"] == ["W-3"]
-    assert set(last["steps"][0]) == {"stable", "omega", "rank", "statistic", "critical",
-                                     "passed", "removed"}
+    assert set(last["steps"][0]) == {
+        "stable",
+        "omega",
+        "rank",
+        "statistic",
+        "critical",
+        "passed",
+        "removed",
+    }
     series = {(s["mark"], s["component"]): s for s in data["series"]}
     w3 = series[("W-3", "H")]
     # simulated truth: −4 mm/year (tools/make_monitoring_demos.py)
@@ -86,8 +114,13 @@ def test_epochs_without_common_marks_exit_3_naming_them(tmp_path, capsys):
 
 def test_three_epochs_need_an_epoch_line(tmp_path, capsys):
     books = [
-        _book(tmp_path, f"{i}.fieldbook", BOOK.format(epoch="2026-01-10", ab="+1.2340")
-              .replace("epoch 2026-01-10\n", "" if i == 2 else f"epoch 2026-0{i + 1}-10\n"))
+        _book(
+            tmp_path,
+            f"{i}.fieldbook",
+            BOOK.format(epoch="2026-01-10", ab="+1.2340").replace(
+                "epoch 2026-01-10\n", "" if i == 2 else f"epoch 2026-0{i + 1}-10\n"
+            ),
+        )
         for i in range(3)
     ]
     assert main(["monitor", *books]) == 2

@@ -27,8 +27,13 @@ level C D +2.0010 sd=1mm
 level D A -1.2760 sd=1.5mm
 """
 #: (from, to, dh m, sd m): the same lines as LEVELING
-LINES = (("A", "B", 1.2340, 1e-3), ("B", "C", -0.5120, 1e-3), ("C", "A", -0.7230, 2e-3),
-         ("C", "D", 2.0010, 1e-3), ("D", "A", -1.2760, 1.5e-3))
+LINES = (
+    ("A", "B", 1.2340, 1e-3),
+    ("B", "C", -0.5120, 1e-3),
+    ("C", "A", -0.7230, 2e-3),
+    ("C", "D", 2.0010, 1e-3),
+    ("D", "A", -1.2760, 1.5e-3),
+)
 NAMES = ("A", "B", "C", "D")
 
 
@@ -97,9 +102,14 @@ def test_two_epochs_held_at_different_marks_are_congruent():
     i1 = [first.marks.index(n) for n in names]
     i2 = [second.marks.index(n) for n in names]
     pair = cg.EpochPair(
-        marks=tuple(names), dimension=1, first=x1, second=x2,
-        q_first=first.cofactor[np.ix_(i1, i1)], q_second=second.cofactor[np.ix_(i2, i2)],
-        plan=np.zeros((4, 2)), vtpv=first.vtpv + second.vtpv,
+        marks=tuple(names),
+        dimension=1,
+        first=x1,
+        second=x2,
+        q_first=first.cofactor[np.ix_(i1, i1)],
+        q_second=second.cofactor[np.ix_(i2, i2)],
+        plan=np.zeros((4, 2)),
+        vtpv=first.vtpv + second.vtpv,
         dof=first.redundancy + second.redundancy,
     )
     result = cg.congruence_test(pair)
@@ -152,8 +162,17 @@ def _simulate(rng, plan, q, dof, shift=None):
         x2 = x2 + shift
     vtpv = float(np.sum(rng.standard_normal(dof) ** 2))
     marks = tuple(f"P{i}" for i in range(6))
-    return cg.EpochPair(marks=marks, dimension=2, first=x1, second=x2, q_first=q,
-                        q_second=q, plan=plan, vtpv=vtpv, dof=dof)
+    return cg.EpochPair(
+        marks=marks,
+        dimension=2,
+        first=x1,
+        second=x2,
+        q_first=q,
+        q_second=q,
+        plan=plan,
+        vtpv=vtpv,
+        dof=dof,
+    )
 
 
 def test_without_movement_the_test_rejects_at_its_size():
@@ -229,8 +248,17 @@ def test_a_common_rotation_and_translation_is_no_movement():
     centred = plan - plan.mean(axis=0)
     eps = 2e-6
     moved = plan + eps * np.column_stack([centred[:, 1], -centred[:, 0]]) + (0.05, -0.03)
-    pair = cg.EpochPair(marks=tuple("ABCDEF"), dimension=2, first=plan, second=moved,
-                        q_first=q, q_second=q, plan=plan, vtpv=10.0, dof=10)
+    pair = cg.EpochPair(
+        marks=tuple("ABCDEF"),
+        dimension=2,
+        first=plan,
+        second=moved,
+        q_first=q,
+        q_second=q,
+        plan=plan,
+        vtpv=10.0,
+        dof=10,
+    )
     result = cg.congruence_test(pair)
     assert result.steps[0].omega == pytest.approx(0.0, abs=1e-12)
     assert result.moved == ()

@@ -55,8 +55,12 @@ def test_the_fit_equals_numpy_and_scipy_least_squares_on_the_same_design():
     # scipy's curve_fit with sigma and absolute_sigma=False scales the covariance by the
     # variance factor, as the fit does with redundancy > 0
     def model(t, c, r, s, k):
-        return (c + r * (t - days.mean()) / DAYS_PER_YEAR + s * np.sin(2 * math.pi * t / PERIOD)
-                + k * np.cos(2 * math.pi * t / PERIOD))
+        return (
+            c
+            + r * (t - days.mean()) / DAYS_PER_YEAR
+            + s * np.sin(2 * math.pi * t / PERIOD)
+            + k * np.cos(2 * math.pi * t / PERIOD)
+        )
 
     popt, pcov = scipy.optimize.curve_fit(model, days, y, sigma=sd, absolute_sigma=False)
     assert popt == pytest.approx(p, abs=1e-9)
@@ -95,8 +99,17 @@ def test_prediction_and_alarm_follow_their_definitions():
     rng = np.random.default_rng(13)
     days, y, sd = _series(rng, n=10)
     when = 900.0
-    fit = fit_series("W-3", "H", days, y, sd, period_days=PERIOD, predict_days=when,
-                     threshold=0.003, confidence=0.95)
+    fit = fit_series(
+        "W-3",
+        "H",
+        days,
+        y,
+        sd,
+        period_days=PERIOD,
+        predict_days=when,
+        threshold=0.003,
+        confidence=0.95,
+    )
     a = design(np.array([when, days[0]]), PERIOD, float(days.mean()))
     aw = design(days, PERIOD, float(days.mean())) / sd[:, None]
     q = np.linalg.inv(aw.T @ aw)
@@ -117,6 +130,7 @@ def test_prediction_and_alarm_follow_their_definitions():
 
 def test_fewer_than_five_epochs_leave_the_periodic_term_out():
     days = np.array([0.0, 100.0, 200.0, 300.0])
-    fit = fit_series("M", "H", days, np.array([0.0, 1e-3, 2e-3, 3.1e-3]), np.full(4, 1e-4),
-                     period_days=PERIOD)
+    fit = fit_series(
+        "M", "H", days, np.array([0.0, 1e-3, 2e-3, 3.1e-3]), np.full(4, 1e-4), period_days=PERIOD
+    )
     assert fit.periodic is None and fit.redundancy == 2

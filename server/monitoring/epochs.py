@@ -50,6 +50,8 @@ class Epoch:
     redundancy: int
     #: Earth-centred positions of the geodetic model (None in the plane model)
     positions: dict[str, tuple[float, float, float]] | None = None
+    #: marks without every component (a height-only mark of a 3D network): not compared
+    partial: tuple[str, ...] = ()
 
     @property
     def length_unit(self) -> str:
@@ -111,6 +113,7 @@ def adjust_epoch(fieldbook: Fieldbook, reference: Epoch | None = None) -> Epoch:
         vtpv=vtpv,
         redundancy=redundancy,
         positions=solution.positions if geodetic else None,
+        partial=tuple(name for name in solution.coordinates if name not in marks),
     )
 
 
@@ -119,8 +122,9 @@ def metres_per_unit(unit: str) -> float:
 
 
 def _has_all(solution: Solution, name: str, letters: tuple[str, ...], geodetic: bool) -> bool:
-    if geodetic:
-        return solution.positions is not None and name in solution.positions
+    if geodetic and (solution.positions is None or name not in solution.positions):
+        return False
+    # a height-only mark of the geodetic model has no grid position: it is left out
     east, north, height = solution.coordinates[name]
     have = {"E": math.isfinite(east), "N": math.isfinite(north), "H": math.isfinite(height)}
     return all(have[k] for k in letters)

@@ -94,6 +94,12 @@ def monitor(fieldbooks: list[Fieldbook], options: MonitoringOptions) -> Monitori
     series: tuple[SeriesFit, ...] = ()
     if len(epochs) >= 3:
         series = _series(epochs, common, datum, dimension, per_unit, options, notes)
+    partial = sorted({m for e in epochs for m in e.partial})
+    if partial:
+        notes.append(
+            f"not compared, without every component ({'/'.join(COMPONENTS[dimension])}): "
+            f"{', '.join(partial)}"
+        )
     if left_out:
         notes.append(f"left out, not in every epoch: {', '.join(left_out)}")
     return Monitoring(
