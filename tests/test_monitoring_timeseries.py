@@ -90,8 +90,8 @@ def test_rate_t_test_uses_students_t_on_the_redundancy():
     fit = fit_series("M", "E", days, y, sd)
     assert fit.redundancy == 5 and fit.periodic is None
     assert fit.rate_critical == pytest.approx(scipy.stats.t.ppf(0.975, 5))
-    # published t table: t(0.975; 5) = 2.571 (docs/references.md "F quantiles of the
-    # congruence test", from memory)
+    # published t table, t(0.975; 5) = 2.571, from memory:
+    # docs/references.md "F quantiles of the congruence test"
     assert fit.rate_critical == pytest.approx(2.571, abs=0.001)
 
 
