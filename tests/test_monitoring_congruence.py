@@ -262,3 +262,18 @@ def test_a_common_rotation_and_translation_is_no_movement():
     result = cg.congruence_test(pair)
     assert result.steps[0].omega == pytest.approx(0.0, abs=1e-12)
     assert result.moved == ()
+
+
+def test_the_alarm_is_the_one_sided_lower_bound_above_the_threshold():
+    """Definition (docs/monitoring.md): |d| − t(P; f)·σ_|d| > threshold, and in 3D the height
+    change is judged apart from the plan length."""
+    cov = np.diag([1e-6, 1e-6, 4e-6])
+    q = float(scipy.stats.t.ppf(0.95, 10))
+    d = np.array([0.003, 0.004, 0.0])  # 5 mm in plan, σ along it 1 mm
+    below = cg._displacement("M", False, d, cov, 0.05, 10, 0.005 - q * 1e-3 + 1e-5, 0.95)
+    above = cg._displacement("M", False, d, cov, 0.05, 10, 0.005 - q * 1e-3 - 1e-5, 0.95)
+    assert (below.alarm, above.alarm) == (False, True)
+    settling = cg._displacement(
+        "M", False, np.array([0.0, 0.0, -0.012]), cov, 0.05, 10, 0.005, 0.95
+    )
+    assert settling.length == 0.0 and settling.alarm  # 12 mm − 1.81·2 mm > 5 mm

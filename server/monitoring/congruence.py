@@ -301,7 +301,12 @@ def _displacement(
         significant = statistic > critical
     alarm = False
     if threshold is not None:
-        alarm = length - one_sided_quantile(confidence, dof) * sd_length > threshold
+        q = one_sided_quantile(confidence, dof)
+        alarm = length - q * sd_length > threshold
+        if k == 3:  # plan and height are judged apart: a settlement is not a plan movement
+            alarm = (
+                alarm or abs(float(d[2])) - q * math.sqrt(max(float(cov[2, 2]), 0.0)) > threshold
+            )
     return Displacement(
         mark=mark,
         stable=stable,
