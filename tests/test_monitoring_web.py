@@ -69,3 +69,17 @@ def test_bad_options_are_refused_with_a_sentence(client):
     a, b = _store(client, DEMO[0]), _store(client, DEMO[1])
     response = client.get(f"/monitoring?project={a}&project={b}&confidence=2")
     assert response.status_code == 422 and "confidence" in response.text
+
+
+def test_the_service_limits_apply_to_the_epochs(tmp_path):
+    from server.settings import WorkLimits
+
+    app = create_app(tmp_path / "data", limits=WorkLimits(max_observations=20))
+    with TestClient(app) as client:
+        a, b = _store(client, DEMO[0]), _store(client, DEMO[1])
+        response = client.get(f"/monitoring?project={a}&project={b}")
+        assert response.status_code == 200, response.text
+        small = WorkLimits(max_observations=5)
+        app.state.limits = small
+        response = client.get(f"/monitoring?project={a}&project={b}")
+        assert response.status_code == 422 and "observations" in response.text

@@ -22,10 +22,16 @@ from server.engine.gauss_newton import Solution, adjust
 from server.errors import NetworkError
 from server.fieldbook.model import Fieldbook
 from server.model.network import build_network
-from server.pipeline import check_adjustable_now, paused_gc
+from server.pipeline import (
+    UNLIMITED,
+    check_adjustable_now,
+    check_observation_limit,
+    check_unknown_limit,
+    paused_gc,
+)
 from server.results.result import AdjustmentResult, build_result
+from server.settings import WorkLimits
 from server.statistics import quality as st
-from server.units import LENGTH_FACTORS
 
 #: Component letters by the comparison's dimension.
 COMPONENTS = {1: ("H",), 2: ("E", "N"), 3: ("E", "N", "H")}
@@ -74,15 +80,20 @@ def epoch_time(fieldbook: Fieldbook) -> datetime | None:
     return datetime(when.year, when.month, when.day, tzinfo=UTC)
 
 
-def adjust_epoch(fieldbook: Fieldbook, reference: Epoch | None = None) -> Epoch:
+def adjust_epoch(
+    fieldbook: Fieldbook, reference: Epoch | None = None, limits: WorkLimits = UNLIMITED
+) -> Epoch:
     """Adjust one epoch's book and keep its marks' coordinates and cofactor block.
 
     ``reference`` (the first epoch) gives the geodetic model its local axes.
-    Raises ``NetworkError`` when the book cannot be adjusted.
+    Raises ``NetworkError`` when the book cannot be adjusted, ``FieldbookError`` or
+    ``NetworkError`` when it is larger than ``limits`` allow.
     """
     with paused_gc():
+        check_observation_limit(fieldbook, limits)
         check_adjustable_now(fieldbook)
         network = build_network(fieldbook)
+        check_unknown_limit(network, limits)
         solution = adjust(network)
         result = build_result(network, solution, (), [])
     geodetic = network.geodetic is not None
@@ -115,10 +126,6 @@ def adjust_epoch(fieldbook: Fieldbook, reference: Epoch | None = None) -> Epoch:
         positions=solution.positions if geodetic else None,
         partial=tuple(name for name in solution.coordinates if name not in marks),
     )
-
-
-def metres_per_unit(unit: str) -> float:
-    return LENGTH_FACTORS[unit]
 
 
 def _has_all(solution: Solution, name: str, letters: tuple[str, ...], geodetic: bool) -> bool:

@@ -20,6 +20,8 @@ from server.fieldbook.model import Fieldbook
 from server.monitoring import congruence as cg
 from server.monitoring.epochs import COMPONENTS, CannotCompare, Epoch, adjust_epoch
 from server.monitoring.timeseries import SeriesFit, fit_series
+from server.pipeline import UNLIMITED
+from server.settings import WorkLimits
 from server.units import LENGTH_FACTORS
 
 
@@ -50,11 +52,13 @@ class Monitoring:
     notes: tuple[str, ...]
 
 
-def monitor(fieldbooks: list[Fieldbook], options: MonitoringOptions) -> Monitoring:
+def monitor(
+    fieldbooks: list[Fieldbook], options: MonitoringOptions, limits: WorkLimits = UNLIMITED
+) -> Monitoring:
     """Adjust and compare; raises ``FieldbookError``, ``NetworkError`` or ``CannotCompare``."""
     books = _ordered(fieldbooks)
-    first = _adjust(books[0], None)
-    epochs = [first] + [_adjust(book, first) for book in books[1:]]
+    first = _adjust(books[0], None, limits)
+    epochs = [first] + [_adjust(book, first, limits) for book in books[1:]]
     dims = {e.dimension for e in epochs}
     if len(dims) > 1:
         kinds = ", ".join(f"{e.source}: {'/'.join(COMPONENTS[e.dimension])}" for e in epochs)
@@ -116,9 +120,9 @@ def monitor(fieldbooks: list[Fieldbook], options: MonitoringOptions) -> Monitori
     )
 
 
-def _adjust(book: Fieldbook, first: Epoch | None) -> Epoch:
+def _adjust(book: Fieldbook, first: Epoch | None, limits: WorkLimits) -> Epoch:
     try:
-        return adjust_epoch(book, first)
+        return adjust_epoch(book, first, limits)
     except CannotCompare:
         raise
     except NetworkError as exc:

@@ -19,10 +19,12 @@ from server.fieldbook.parser import parse_fieldbook
 from server.monitoring.command import UsageError, read_period, read_threshold
 from server.monitoring.job import Monitoring, MonitoringOptions, monitor
 from server.monitoring.plot import displacement_plot
+from server.settings import WorkLimits
 from server.store import projects as service
+from server.store.projects import Slots
 from server.store.sqlite import Store
 from server.units import UnitError
-from server.web.dependencies import StoreDep, render
+from server.web.dependencies import LimitsDep, QueueDep, StoreDep, render
 
 router = APIRouter()
 
@@ -34,6 +36,8 @@ MAX_EPOCHS = 24
 async def monitoring_page(
     request: Request,
     store: StoreDep,
+    queue: QueueDep,
+    limits: LimitsDep,
     project: list[str] = Query(default=[]),  # noqa: B008 (FastAPI's way to read a list)
     confidence: str = "0.95",
     period: str = "",
@@ -51,7 +55,9 @@ async def monitoring_page(
         return render(request, "monitoring.html", context)
     try:
         context.update(
-            await run_in_threadpool(_compare, store, project, confidence, period, threshold)
+            await run_in_threadpool(
+                _compare, store, queue, limits, project, confidence, period, threshold
+            )
         )
     except (UsageError, UnitError, ValueError) as exc:
         context["error"] = str(exc)
@@ -64,7 +70,13 @@ async def monitoring_page(
 
 
 def _compare(
-    store: Store, ids: list[str], confidence: str, period: str, threshold: str
+    store: Store,
+    queue: Slots,
+    limits: WorkLimits,
+    ids: list[str],
+    confidence: str,
+    period: str,
+    threshold: str,
 ) -> dict[str, Any]:
     if len(ids) < 2 or len(ids) > MAX_EPOCHS:
         raise UsageError(f"choose from 2 to {MAX_EPOCHS} projects, one per epoch")
@@ -82,7 +94,9 @@ def _compare(
         period_days=read_period(period) if period.strip() else None,
         threshold=read_threshold(threshold, books[0].length_unit) if threshold.strip() else None,
     )
-    job = monitor(books, options)
+    # one slot of the service's adjustment queue for the whole comparison, and its limits
+    with queue.slot():
+        job = monitor(books, options, limits)
     return {"job": job, "plots": _plots(job)}
 
 
