@@ -150,3 +150,15 @@ def test_help_lists_the_exit_statuses(capsys):
     for status in ("0 ", "2 ", "3 ", "64"):
         assert f"  {status}" in out
     assert "--period" in out and "--threshold" in out and "--confidence" in out
+
+
+def test_prediction_date_and_a_period_in_hours_are_read(capsys):
+    books = list(map(str, DEMO))
+    status = main(["monitor", *books, "--json", "--period", "8766h", "--predict", "2027-03-10"])
+    assert status == 0
+    data = json.loads(capsys.readouterr().out)
+    assert data["settings"]["period_days"] == 8766 / 24  # 365.25 days
+    assert data["settings"]["predict"] == "2027-03-10T00:00:00+00:00"
+    prediction = data["series"][0]["prediction"]
+    assert prediction["days"] == 730.0  # 2025-03-10 to 2027-03-10
+    assert prediction["lower"] < prediction["value"] < prediction["upper"]
