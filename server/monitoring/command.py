@@ -1,6 +1,6 @@
 """``stationfit monitor``: read the books, run the job, write JSON or text (cli.py dispatches).
 
-Kept beside the job so that the shared command-line module only declares the options.
+Kept beside the job so that ``server/cli.py`` only declares the options.
 """
 
 from __future__ import annotations
