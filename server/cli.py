@@ -80,6 +80,7 @@ def main(argv: list[str] | None = None) -> int:
                             "(default: $STATIONFIT_KEEP_DELETED_DAYS, else 30; 0: erase at once)")
     _import_command(commands)
     _plan_command(commands)
+    _monitor_command(commands)
     args = parser.parse_args(argv)
     if args.command == "serve":
         return _serve(args)
@@ -87,6 +88,8 @@ def main(argv: list[str] | None = None) -> int:
         return _import(args)
     if args.command == "plan":
         return _plan(args)
+    if args.command == "monitor":
+        return _monitor(args)
     return _adjust(args)
 
 
@@ -210,6 +213,50 @@ def _plan(args: argparse.Namespace) -> int:
 
         sys.stdout.write(design_text(result))
     return EXIT_OK
+MONITOR_HELP = """Compare field books of the same marks observed at different epochs.
+
+Each BOOK is adjusted; the epochs are ordered by their 'epoch' line. The first epoch is
+compared with every later one by the congruence test: both are laid on the datum of the marks
+assumed stable, the global test of "no mark moved" is made, and while it fails the mark whose
+removal lowers the test most leaves the stable set. Each mark's displacement is given with
+its standard deviation, ellipse and own test. With three or more epochs each mark's
+components are fitted with an offset, a rate and, given --period, a periodic term
+(see docs/monitoring.md)."""
+
+MONITOR_STATUSES = """exit statuses:
+  0   compared (whether or not marks moved or alarms rang)
+  2   a field book has errors: each on stderr as FILE:LINE: message
+  3   the epochs cannot be compared (no common marks, different components), or a book's
+      network cannot be adjusted: what is wrong, naming the marks
+  64  the command line cannot be followed (unknown option, unreadable file)"""
+
+
+def _monitor_command(commands: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    command = commands.add_parser(
+        "monitor", help="compare epochs: congruence test, displacements, time series",
+        epilog=MONITOR_STATUSES, formatter_class=argparse.RawDescriptionHelpFormatter,
+        description=MONITOR_HELP)
+    command.add_argument("books", type=Path, nargs="+", metavar="BOOK",
+                         help="two or more field books, one per epoch")
+    command.add_argument("--json", action="store_true",
+                         help="print the JSON of docs/monitoring.md alone on stdout")
+    command.add_argument("--period", default=None, metavar="DAYS",
+                         help="period of a periodic term in days (365.25), or in hours "
+                              "with h (12.42h); needs five epochs")
+    command.add_argument("--threshold", default=None, metavar="LENGTH",
+                         help="alarm when a movement exceeds this at the chosen confidence "
+                              "(the first book's length unit, or with a unit: 5mm)")
+    command.add_argument("--confidence", type=float, default=0.95, metavar="P",
+                         help="confidence of the tests, intervals and alarms (default 0.95)")
+    command.add_argument("--predict", default=None, metavar="DATE",
+                         help="date (or UTC time) of the prediction and the alarm's movement "
+                              "(default: the last epoch)")
+
+
+def _monitor(args: argparse.Namespace) -> int:
+    from server.monitoring.command import run_monitor
+
+    return run_monitor(args, EXIT_OK, EXIT_FIELDBOOK, EXIT_NETWORK, EXIT_USAGE)
 
 
 def _limit_options(command: argparse.ArgumentParser, observations: str, unknowns: str) -> None:

@@ -36,7 +36,7 @@ from server.settings import (
 )
 from server.store.projects import ProposalCache, StoreFull, purge_deleted
 from server.store.sqlite import RunGone, Store
-from server.web import api, design, interrupted, pages, relative, review
+from server.web import api, design, interrupted, monitoring, pages, relative, review
 from server.web.dependencies import busy, survey_error_payload
 from server.web.jobs import AdjustmentQueue, Jobs, QueueFull
 
@@ -509,7 +509,7 @@ def create_app(
     app.state.proposals = ProposalCache()
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
-    for module in (pages, api, review, relative, interrupted, design):
+    for module in (pages, api, review, relative, interrupted, design, monitoring):
         app.include_router(module.router)
     _install_handlers(app, templates)
     app.add_middleware(UploadLimitMiddleware, max_bytes=max_upload_bytes, templates=templates)

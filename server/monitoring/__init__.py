@@ -1,0 +1,1 @@
+"""Deformation monitoring: epochs compared by the congruence test, and time series per mark."""
