@@ -13,8 +13,8 @@ from __future__ import annotations
 import argparse
 import sqlite3
 import sys
-from typing import NoReturn, TextIO
 from pathlib import Path
+from typing import NoReturn, TextIO
 
 from server import __version__
 from server.errors import FieldbookError, NetworkError
@@ -45,39 +45,68 @@ class _Parser(argparse.ArgumentParser):
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     parser = _Parser(
-        prog="stationfit", epilog=EXIT_STATUSES, formatter_class=argparse.RawDescriptionHelpFormatter,
+        prog="stationfit",
+        epilog=EXIT_STATUSES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
         description="Least-squares adjustment of survey control networks. The results must be "
-                    "reviewed and certified by a licensed surveyor; local codes and standards govern.")
+        "reviewed and certified by a licensed surveyor; local codes and standards govern.",
+    )
     parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
     commands = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
     adjust = commands.add_parser(
-        "adjust", help="adjust a field book", epilog=EXIT_STATUSES,
+        "adjust",
+        help="adjust a field book",
+        epilog=EXIT_STATUSES,
         formatter_class=argparse.RawDescriptionHelpFormatter,
-        description="Adjust FILE and print the result (text, or --json for the JSON result).")
+        description="Adjust FILE and print the result (text, or --json for the JSON result).",
+    )
     adjust.add_argument("file", type=Path)
     adjust.add_argument("--json", action="store_true", help="print the JSON result alone on stdout")
     adjust.add_argument("--report", type=Path, metavar="FILE.html", help="write the HTML report")
     adjust.add_argument("--pdf", type=Path, metavar="FILE.pdf", help="write the PDF report")
-    adjust.add_argument("--csv", type=Path, metavar="FILE.csv", help="write the adjusted points as CSV")
+    adjust.add_argument(
+        "--csv", type=Path, metavar="FILE.csv", help="write the adjusted points as CSV"
+    )
     _limit_options(adjust, "(default: no limit)", "(default: no limit)")
     serve = commands.add_parser(
-        "serve", help="start the web service", epilog=EXIT_STATUSES,
+        "serve",
+        help="start the web service",
+        epilog=EXIT_STATUSES,
         formatter_class=argparse.RawDescriptionHelpFormatter,
-        description="Start the web service: upload field books, review, re-run, download reports.")
+        description="Start the web service: upload field books, review, re-run, download reports.",
+    )
     serve.add_argument("--host", default="127.0.0.1")
     serve.add_argument("--port", type=int, default=8000)
     serve.add_argument("--data", type=Path, default=None, help="where projects are stored")
-    _limit_options(serve, "(default: $STATIONFIT_MAX_OBSERVATIONS, else 200000; 0: no limit)",
-                   "(default: $STATIONFIT_MAX_UNKNOWNS, else 100000; 0: no limit)")
-    serve.add_argument("--adjustments-at-once", type=_whole, default=None, metavar="N",
-                       help="adjustments run at the same time, the others wait their turn "
-                            "(default: $STATIONFIT_ADJUSTMENTS_AT_ONCE, else 1)")
-    serve.add_argument("--max-waiting", type=_whole, default=None, metavar="N",
-                       help="adjustments allowed to wait; more get 503 "
-                            "(default: $STATIONFIT_MAX_WAITING, else 20; 0: no bound)")
-    serve.add_argument("--keep-deleted-days", type=_whole, default=None, metavar="DAYS",
-                       help="days a deleted project can be restored before it is erased "
-                            "(default: $STATIONFIT_KEEP_DELETED_DAYS, else 30; 0: erase at once)")
+    _limit_options(
+        serve,
+        "(default: $STATIONFIT_MAX_OBSERVATIONS, else 200000; 0: no limit)",
+        "(default: $STATIONFIT_MAX_UNKNOWNS, else 100000; 0: no limit)",
+    )
+    serve.add_argument(
+        "--adjustments-at-once",
+        type=_whole,
+        default=None,
+        metavar="N",
+        help="adjustments run at the same time, the others wait their turn "
+        "(default: $STATIONFIT_ADJUSTMENTS_AT_ONCE, else 1)",
+    )
+    serve.add_argument(
+        "--max-waiting",
+        type=_whole,
+        default=None,
+        metavar="N",
+        help="adjustments allowed to wait; more get 503 "
+        "(default: $STATIONFIT_MAX_WAITING, else 20; 0: no bound)",
+    )
+    serve.add_argument(
+        "--keep-deleted-days",
+        type=_whole,
+        default=None,
+        metavar="DAYS",
+        help="days a deleted project can be restored before it is erased "
+        "(default: $STATIONFIT_KEEP_DELETED_DAYS, else 30; 0: erase at once)",
+    )
     _import_command(commands)
     _plan_command(commands)
     _monitor_command(commands)
@@ -109,20 +138,43 @@ as 0mm and missing accuracies are left for you to add."""
 
 def _import_command(commands: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
     command = commands.add_parser(
-        "import", help="survey XML or CSV of readings → field book text", epilog=EXIT_STATUSES,
-        formatter_class=argparse.RawDescriptionHelpFormatter, description=IMPORT_HELP)
+        "import",
+        help="survey XML or CSV of readings → field book text",
+        epilog=EXIT_STATUSES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description=IMPORT_HELP,
+    )
     command.add_argument("file", type=Path, metavar="FILE.xml|FILE.csv")
-    command.add_argument("--face-tolerance", default="20sec", metavar="ANGLE",
-                         help="largest face I / face II difference, 2c or 2i (default 20sec)")
-    command.add_argument("--set-tolerance", default="5sec", metavar="ANGLE",
-                         help="largest spread of a direction or zenith over the sets "
-                              "(default 5sec)")
-    command.add_argument("--distance-tolerance", default="5mm", metavar="LENGTH",
-                         help="largest spread of a slope distance over the sets (default 5mm)")
-    command.add_argument("--length-unit", choices=("m", "ft", "usft"), default="m",
-                         help="CSV only: unit of lengths (default m)")
-    command.add_argument("--angle-unit", choices=("dms", "deg", "gon"), default="dms",
-                         help="CSV only: unit of angles (default dms, D:M:S)")
+    command.add_argument(
+        "--face-tolerance",
+        default="20sec",
+        metavar="ANGLE",
+        help="largest face I / face II difference, 2c or 2i (default 20sec)",
+    )
+    command.add_argument(
+        "--set-tolerance",
+        default="5sec",
+        metavar="ANGLE",
+        help="largest spread of a direction or zenith over the sets (default 5sec)",
+    )
+    command.add_argument(
+        "--distance-tolerance",
+        default="5mm",
+        metavar="LENGTH",
+        help="largest spread of a slope distance over the sets (default 5mm)",
+    )
+    command.add_argument(
+        "--length-unit",
+        choices=("m", "ft", "usft"),
+        default="m",
+        help="CSV only: unit of lengths (default m)",
+    )
+    command.add_argument(
+        "--angle-unit",
+        choices=("dms", "deg", "gon"),
+        default="dms",
+        help="CSV only: unit of angles (default dms, D:M:S)",
+    )
 
 
 def _import(args: argparse.Namespace) -> int:
@@ -132,8 +184,12 @@ def _import(args: argparse.Namespace) -> int:
     path: Path = args.file
     try:
         options = ImportOptions.from_text(
-            args.face_tolerance, args.set_tolerance, args.distance_tolerance,
-            args.length_unit, args.angle_unit)
+            args.face_tolerance,
+            args.set_tolerance,
+            args.distance_tolerance,
+            args.length_unit,
+            args.angle_unit,
+        )
     except UnitError as exc:
         print(f"stationfit import: error: {exc}", file=sys.stderr)
         return EXIT_USAGE
@@ -171,9 +227,12 @@ A value booked instead of ? is read but not used. See docs/design.md."""
 
 def _plan_command(commands: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
     command = commands.add_parser(
-        "plan", help="design of a planned network: precision and reliability, no values",
+        "plan",
+        help="design of a planned network: precision and reliability, no values",
         epilog=PLAN_STATUSES,
-        formatter_class=argparse.RawDescriptionHelpFormatter, description=PLAN_HELP)
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description=PLAN_HELP,
+    )
     command.add_argument("file", type=Path)
     command.add_argument("--json", action="store_true", help="print the JSON result alone")
     command.add_argument("--report", type=Path, metavar="FILE.html", help="write the HTML report")
@@ -213,6 +272,8 @@ def _plan(args: argparse.Namespace) -> int:
 
         sys.stdout.write(design_text(result))
     return EXIT_OK
+
+
 MONITOR_HELP = """Compare field books of the same marks observed at different epochs.
 
 Each BOOK is adjusted; the epochs are ordered by their 'epoch' line. The first epoch is
@@ -233,24 +294,46 @@ MONITOR_STATUSES = """exit statuses:
 
 def _monitor_command(commands: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
     command = commands.add_parser(
-        "monitor", help="compare epochs: congruence test, displacements, time series",
-        epilog=MONITOR_STATUSES, formatter_class=argparse.RawDescriptionHelpFormatter,
-        description=MONITOR_HELP)
-    command.add_argument("books", type=Path, nargs="+", metavar="BOOK",
-                         help="two or more field books, one per epoch")
-    command.add_argument("--json", action="store_true",
-                         help="print the JSON of docs/monitoring.md alone on stdout")
-    command.add_argument("--period", default=None, metavar="DAYS",
-                         help="period of a periodic term in days (365.25), or in hours "
-                              "with h (12.42h); needs five epochs")
-    command.add_argument("--threshold", default=None, metavar="LENGTH",
-                         help="alarm when a movement exceeds this at the chosen confidence "
-                              "(the first book's length unit, or with a unit: 5mm)")
-    command.add_argument("--confidence", type=float, default=0.95, metavar="P",
-                         help="confidence of the tests, intervals and alarms (default 0.95)")
-    command.add_argument("--predict", default=None, metavar="DATE",
-                         help="date (or UTC time) of the prediction and the alarm's movement "
-                              "(default: the last epoch)")
+        "monitor",
+        help="compare epochs: congruence test, displacements, time series",
+        epilog=MONITOR_STATUSES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description=MONITOR_HELP,
+    )
+    command.add_argument(
+        "books", type=Path, nargs="+", metavar="BOOK", help="two or more field books, one per epoch"
+    )
+    command.add_argument(
+        "--json", action="store_true", help="print the JSON of docs/monitoring.md alone on stdout"
+    )
+    command.add_argument(
+        "--period",
+        default=None,
+        metavar="DAYS",
+        help="period of a periodic term in days (365.25), or in hours "
+        "with h (12.42h); needs five epochs",
+    )
+    command.add_argument(
+        "--threshold",
+        default=None,
+        metavar="LENGTH",
+        help="alarm when a movement exceeds this at the chosen confidence "
+        "(the first book's length unit, or with a unit: 5mm)",
+    )
+    command.add_argument(
+        "--confidence",
+        type=float,
+        default=0.95,
+        metavar="P",
+        help="confidence of the tests, intervals and alarms (default 0.95)",
+    )
+    command.add_argument(
+        "--predict",
+        default=None,
+        metavar="DATE",
+        help="date (or UTC time) of the prediction and the alarm's movement "
+        "(default: the last epoch)",
+    )
 
 
 def _monitor(args: argparse.Namespace) -> int:
@@ -260,10 +343,20 @@ def _monitor(args: argparse.Namespace) -> int:
 
 
 def _limit_options(command: argparse.ArgumentParser, observations: str, unknowns: str) -> None:
-    command.add_argument("--max-observations", type=_whole, default=None, metavar="N",
-                         help=f"refuse field books with more observations {observations}")
-    command.add_argument("--max-unknowns", type=_whole, default=None, metavar="N",
-                         help=f"refuse networks with more unknowns {unknowns}")
+    command.add_argument(
+        "--max-observations",
+        type=_whole,
+        default=None,
+        metavar="N",
+        help=f"refuse field books with more observations {observations}",
+    )
+    command.add_argument(
+        "--max-unknowns",
+        type=_whole,
+        default=None,
+        metavar="N",
+        help=f"refuse networks with more unknowns {unknowns}",
+    )
 
 
 def _whole(text: str) -> int:
@@ -374,16 +467,26 @@ def _serve(args: argparse.Namespace) -> int:
     data_dir = data if data is not None else default_data_dir()
     try:
         data_dir.mkdir(parents=True, exist_ok=True)
-        app = create_app(data_dir, allowed_hosts=serve_allowed_hosts(host), limits=limits,
-                         adjustments_at_once=args.adjustments_at_once or None,
-                         max_waiting=args.max_waiting,
-                         keep_deleted_days=args.keep_deleted_days)
+        app = create_app(
+            data_dir,
+            allowed_hosts=serve_allowed_hosts(host),
+            limits=limits,
+            adjustments_at_once=args.adjustments_at_once or None,
+            max_waiting=args.max_waiting,
+            keep_deleted_days=args.keep_deleted_days,
+        )
     except (OSError, sqlite3.Error, RuntimeError) as exc:
         # one line for the administrator: which folder, and what the system said
         reason = getattr(exc, "strerror", None) or str(exc)
-        print(f"Stationfit: cannot use the data folder {data_dir}: {reason}. Give --data a "
-              "folder the service may write to, or fix this one.", file=sys.stderr)
+        print(
+            f"Stationfit: cannot use the data folder {data_dir}: {reason}. Give --data a "
+            "folder the service may write to, or fix this one.",
+            file=sys.stderr,
+        )
         return EXIT_DATA
-    print(f"Stationfit: projects are stored in {data_dir}; open http://{host}:{port}/", file=sys.stderr)
+    print(
+        f"Stationfit: projects are stored in {data_dir}; open http://{host}:{port}/",
+        file=sys.stderr,
+    )
     uvicorn.run(app, host=host, port=port, log_level="warning", **uvicorn_options())
     return EXIT_OK

@@ -209,20 +209,28 @@ class SameOriginMiddleware:
         self.templates = templates
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
-        if (scope["type"] != "http" or scope["method"] not in UNSAFE_METHODS
-                or not foreign_origin(Headers(scope=scope))):
+        if (
+            scope["type"] != "http"
+            or scope["method"] not in UNSAFE_METHODS
+            or not foreign_origin(Headers(scope=scope))
+        ):
             await self.app(scope, receive, send)
             return
         headers = Headers(scope=scope)
-        logger.warning("refused %s %s from another site (Origin %r, Sec-Fetch-Site %r)",
-                       scope["method"], scope.get("path", ""), headers.get("origin"),
-                       headers.get("sec-fetch-site"))
+        logger.warning(
+            "refused %s %s from another site (Origin %r, Sec-Fetch-Site %r)",
+            scope["method"],
+            scope.get("path", ""),
+            headers.get("origin"),
+            headers.get("sec-fetch-site"),
+        )
         response: Response
         if is_api(scope.get("path", "")):
             response = JSONResponse({"error": FOREIGN_ORIGIN_MESSAGE}, status_code=403)
         else:
-            response = _error_page(self.templates, scope, 403, "Request refused (403)",
-                                   FOREIGN_ORIGIN_MESSAGE)
+            response = _error_page(
+                self.templates, scope, 403, "Request refused (403)", FOREIGN_ORIGIN_MESSAGE
+            )
         await response(scope, receive, send)
 
 
@@ -280,8 +288,10 @@ class UploadLimitMiddleware:
 
     async def _refuse(self, scope: Scope, receive: Receive, send: Send) -> None:
         limit = _megabytes(self.max_bytes)
-        message = (f"The upload is larger than the limit of {limit}. Split the field book, "
-                   "or ask the administrator to raise the limit.")
+        message = (
+            f"The upload is larger than the limit of {limit}. Split the field book, "
+            "or ask the administrator to raise the limit."
+        )
         response: Response
         if is_api(scope.get("path", "")):
             response = JSONResponse({"error": message}, status_code=413)
@@ -308,8 +318,14 @@ def _error_page(
     **extra: Any,
 ) -> HTMLResponse:
     request = Request(scope)
-    context = {"status": status, "heading": heading, "message": message, "issues": [],
-               "points": [], **extra}
+    context = {
+        "status": status,
+        "heading": heading,
+        "message": message,
+        "issues": [],
+        "points": [],
+        **extra,
+    }
     return templates.TemplateResponse(request, "error.html", context, status_code=status)
 
 
@@ -328,9 +344,15 @@ def _install_request_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
         if is_api(request.url.path):
             return JSONResponse(survey_error_payload(exc), status_code=422)
         payload = survey_error_payload(exc)
-        return _error_page(templates, request.scope, 422, "The field book could not be adjusted",
-                           payload["error"], issues=payload.get("errors", []),
-                           points=payload.get("points", []))
+        return _error_page(
+            templates,
+            request.scope,
+            422,
+            "The field book could not be adjusted",
+            payload["error"],
+            issues=payload.get("errors", []),
+            points=payload.get("points", []),
+        )
 
     @app.exception_handler(RunGone)
     async def run_gone(request: Request, exc: RunGone) -> Response:
@@ -345,8 +367,11 @@ def _install_request_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
         """404, 405, 400 and friends."""
         detail = str(exc.detail) if exc.detail else "Request refused"
         if is_api(request.url.path):
-            return JSONResponse({"error": detail}, status_code=exc.status_code,
-                                headers=getattr(exc, "headers", None))
+            return JSONResponse(
+                {"error": detail},
+                status_code=exc.status_code,
+                headers=getattr(exc, "headers", None),
+            )
         heading = "Not found" if exc.status_code == 404 else f"Request refused ({exc.status_code})"
         return _error_page(templates, request.scope, exc.status_code, heading, detail)
 
@@ -374,7 +399,6 @@ def _install_request_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
         return await http_error(request, StarletteHTTPException(507, str(exc)))
 
 
-
 def _install_failure_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
     """The service itself failed: its store is unusable, or an unexpected error (500)."""
 
@@ -382,33 +406,47 @@ def _install_failure_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
     async def storage_error(request: Request, exc: sqlite3.Error) -> Response:
         """The project store cannot be read or written: say so, and name the folder in the log."""
         folder = request.app.state.store.path.parent
-        logger.error("%s %s: the data folder %s cannot be used (%s); check that it exists, "
-                     "that the service's user may write to it and that the disk has room",
-                     request.method, request.url.path, folder, exc)
+        logger.error(
+            "%s %s: the data folder %s cannot be used (%s); check that it exists, "
+            "that the service's user may write to it and that the disk has room",
+            request.method,
+            request.url.path,
+            folder,
+            exc,
+        )
         if request.method in UNSAFE_METHODS:
-            message = ("Your request could not be stored: the service cannot write to its "
-                       "data folder. Nothing was saved. Please tell the administrator; the "
-                       "service's log names the folder and the reason.")
+            message = (
+                "Your request could not be stored: the service cannot write to its "
+                "data folder. Nothing was saved. Please tell the administrator; the "
+                "service's log names the folder and the reason."
+            )
         else:
-            message = ("The stored projects cannot be read right now: the service cannot use "
-                       "its data folder. Please tell the administrator; the service's log "
-                       "names the folder and the reason.")
+            message = (
+                "The stored projects cannot be read right now: the service cannot use "
+                "its data folder. Please tell the administrator; the service's log "
+                "names the folder and the reason."
+            )
         if is_api(request.url.path):
             return JSONResponse({"error": message}, status_code=503)
-        return _error_page(templates, request.scope, 503, "The project store is unavailable",
-                           message)
+        return _error_page(
+            templates, request.scope, 503, "The project store is unavailable", message
+        )
 
     @app.exception_handler(Exception)
     async def server_error(request: Request, exc: Exception) -> Response:
         """The generic 500: logged on the server, never shown to the user."""
         logger.error("unhandled error on %s %s", request.method, request.url.path, exc_info=exc)
         if request.method in UNSAFE_METHODS:
-            message = ("Something went wrong on the server before this request was finished. "
-                       "Check the project list to see whether it was stored, then try again; "
-                       "report the problem if it persists.")
+            message = (
+                "Something went wrong on the server before this request was finished. "
+                "Check the project list to see whether it was stored, then try again; "
+                "report the problem if it persists."
+            )
         else:
-            message = ("Something went wrong on the server. Nothing was changed; please try "
-                       "again, and report the problem if it persists.")
+            message = (
+                "Something went wrong on the server. Nothing was changed; please try "
+                "again, and report the problem if it persists."
+            )
         response: Response
         if is_api(request.url.path):
             response = JSONResponse({"error": "internal server error"}, status_code=500)
@@ -494,9 +532,11 @@ def create_app(
     # This process has not started any run yet: one still ``running`` was cut off.
     stopped = app.state.store.mark_interrupted()
     if stopped:
-        logger.warning("the service stopped before finishing run(s) %s; stored as "
-                       "interrupted (each can be re-run from its project's page)",
-                       ", ".join(map(str, stopped)))
+        logger.warning(
+            "the service stopped before finishing run(s) %s; stored as "
+            "interrupted (each can be re-run from its project's page)",
+            ", ".join(map(str, stopped)),
+        )
     # Deleted projects past their retention are erased at each start (and each deletion).
     purge_deleted(app.state.store, keep_deleted_days)
     app.state.keep_deleted_days = keep_deleted_days
@@ -516,11 +556,16 @@ def create_app(
     # Before the upload limit, so another site's request is refused without reading its body.
     app.add_middleware(SameOriginMiddleware, templates=templates)
     # Pages, JSON and CSV compress to a tenth or less when the browser accepts gzip.
-    app.add_middleware(GZipMiddleware, minimum_size=GZIP_MINIMUM_BYTES, compresslevel=GZIP_LEVEL,
-                       exclude_content_types=GZIP_EXCLUDED)
+    app.add_middleware(
+        GZipMiddleware,
+        minimum_size=GZIP_MINIMUM_BYTES,
+        compresslevel=GZIP_LEVEL,
+        exclude_content_types=GZIP_EXCLUDED,
+    )
     if allowed_hosts is not None and "*" not in allowed_hosts:
-        app.add_middleware(TrustedHostMiddleware, allowed_hosts=list(allowed_hosts),
-                           www_redirect=False)
+        app.add_middleware(
+            TrustedHostMiddleware, allowed_hosts=list(allowed_hosts), www_redirect=False
+        )
     app.add_middleware(SecurityHeadersMiddleware)
     app.add_middleware(HeadAsGetMiddleware)
     return app
