@@ -421,3 +421,21 @@ def test_a_geodetic_design_equals_adjust_on_error_free_values():
         assert (d.line, d.component) == (a.line, a.component)
         assert d.redundancy == pytest.approx(a.redundancy, rel=1e-6)
         assert d.mdb == pytest.approx(a.mdb, rel=1e-6)
+
+
+def test_the_monitoring_demo_has_its_design():
+    """The weir's design book (demo_projects/design/corran_weir_design.fieldbook) plans the
+    same level runs as its epochs: every section of the first epoch is planned, and the design
+    places each crest mark to better than a millimetre (a priori, σ0 = 1), so a settlement of a
+    few millimetres is within reach of the monitoring."""
+    from pathlib import Path
+
+    from server.design.plan import plan_fieldbook
+
+    root = Path(__file__).resolve().parents[1] / "demo_projects"
+    design = plan_fieldbook((root / "design" / "corran_weir_design.fieldbook").read_text())
+    epoch = (root / "monitoring" / "corran_weir_2025-03-10.fieldbook").read_text()
+    sections = {tuple(l.split()[1:3]) for l in epoch.splitlines() if l.startswith("level ")}
+    assert {(o.from_point, o.to) for o in design.observations} == sections
+    crest = [p for p in design.points if p.name.startswith("W-")]
+    assert len(crest) == 4 and all(p.sd_height is not None and p.sd_height < 0.001 for p in crest)
