@@ -277,3 +277,24 @@ def test_the_alarm_is_the_one_sided_lower_bound_above_the_threshold():
         "M", False, np.array([0.0, 0.0, -0.012]), cov, 0.05, 10, 0.005, 0.95
     )
     assert settling.length == 0.0 and settling.alarm  # 12 mm − 1.81·2 mm > 5 mm
+
+
+def test_an_exact_fit_gives_an_infinite_statistic_not_a_crash():
+    """vᵀPv = 0 (error-free books): any displacement is infinitely significant, none is 0/0."""
+    q = np.eye(3) * 1e-6
+    first = np.zeros((3, 1))
+    second = np.array([[0.0], [0.0], [0.002]])
+    pair = cg.EpochPair(
+        marks=("A", "B", "C"),
+        dimension=1,
+        first=first,
+        second=second,
+        q_first=q,
+        q_second=q,
+        plan=np.zeros((3, 2)),
+        vtpv=0.0,
+        dof=4,
+    )
+    result = cg.congruence_test(pair)
+    assert not result.steps[0].passed and result.moved == ("C",)
+    assert all(np.isfinite(d.components[0]) for d in result.displacements)

@@ -36,6 +36,8 @@ from server.statistics import quality as st
 
 #: Relative eigenvalue below which a direction of Q counts as singular (rank and pseudo-inverse).
 RANK_TOLERANCE = 1e-9
+#: Floor of a variance factor, so that an exact fit gives a huge statistic, not 0/0.
+TINY_VARIANCE = 1e-300
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -193,6 +195,7 @@ def congruence_test(
     q_sum = pair.q_first + pair.q_second
     h = datum_directions(k, pair.plan)
     s0sq = pair.vtpv / pair.dof if pair.dof > 0 else 1.0
+    s0sq = max(s0sq, TINY_VARIANCE)  # residuals all zero: the tests say 'infinite'
     stable = np.ones(len(pair.marks), dtype=bool)
     steps: list[Step] = []
     found = False

@@ -124,7 +124,7 @@ def fit_series(
     a = design(days, period_days, mean_days)
     p, q, omega = _solve(a, values, sd)
     dof = n - a.shape[1]
-    s2 = omega / dof if dof > 0 else 1.0
+    s2 = max(omega / dof, 1e-300) if dof > 0 else 1.0  # an exact fit: no 0/0
     t_two = _t(1.0 - alpha / 2.0, dof)
     sd_rate = math.sqrt(s2 * q[1, 1])
     rate_stat = abs(p[1]) / sd_rate if sd_rate > 0 else math.inf
