@@ -53,6 +53,11 @@ def test_the_page_lists_projects_and_compares_the_chosen_ones(client):
     assert " style=" not in html  # no inline style either
     assert "<ellipse" not in html  # leveling: bars with intervals, no ellipses
     assert "Time series" in html and "Alarm" in html
+    # one time-series figure per mark, each with a value and a residual stem per epoch
+    assert html.count('class="series-svg"') == html.count('class="series-figure"') >= 5
+    first = html[html.index('class="series-svg"') :]
+    first = first[: first.index("</svg>")]
+    assert first.count('class="series-value"') == first.count('class="series-residual"') == 4
     assert CAUTION in html
     assert "script-src 'self'" in page.headers["content-security-policy"]
 

@@ -83,6 +83,16 @@ class SeriesFit:
     fitted: tuple[float, ...]
     residuals: tuple[float, ...]
     prediction: Prediction | None
+    #: the epochs (days from the first), the adjusted values and their sd, for plotting
+    days: tuple[float, ...] = ()
+    values: tuple[float, ...] = ()
+    sd: tuple[float, ...] = ()
+    #: the fitted curve sampled between the first and the last epoch: (day, value) pairs
+    curve: tuple[tuple[float, float], ...] = ()
+
+
+#: Points of the fitted curve drawn between the first and the last epoch.
+CURVE_SAMPLES = 121
 
 
 def design(days: np.ndarray, period_days: float | None, mean_days: float) -> np.ndarray:
@@ -148,6 +158,9 @@ def fit_series(
             threshold,
         )
     fitted = a @ p
+    # enough samples that a yearly term over two years draws as a smooth line
+    dense = np.linspace(float(days.min()), float(days.max()), CURVE_SAMPLES)
+    curve_values = design(dense, period_days, mean_days) @ p
     return SeriesFit(
         mark=mark,
         component=component,
@@ -164,6 +177,10 @@ def fit_series(
         fitted=tuple(float(x) for x in fitted),
         residuals=tuple(float(x) for x in values - fitted),
         prediction=prediction,
+        days=tuple(float(x) for x in days),
+        values=tuple(float(x) for x in values),
+        sd=tuple(float(x) for x in sd),
+        curve=tuple(zip(dense.tolist(), curve_values.tolist())),
     )
 
 

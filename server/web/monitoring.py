@@ -19,6 +19,7 @@ from server.fieldbook.parser import parse_fieldbook
 from server.monitoring.command import UsageError, read_period, read_threshold
 from server.monitoring.job import Monitoring, MonitoringOptions, monitor
 from server.monitoring.plot import displacement_plot
+from server.monitoring.series_plot import series_plot
 from server.settings import WorkLimits
 from server.store import projects as service
 from server.store.projects import Slots
@@ -97,7 +98,12 @@ def _compare(
     # one slot of the service's adjustment queue for the whole comparison, and its limits
     with queue.slot():
         job = monitor(books, options, limits)
-    return {"job": job, "plots": _plots(job)}
+    return {
+        "job": job,
+        "plots": _plots(job),
+        "series_plots": [series_plot(f, options.confidence) for f in job.series],
+        "confidence": options.confidence,
+    }
 
 
 def _plots(job: Monitoring) -> list[Any]:
