@@ -3,25 +3,14 @@ and "page N of M" on every page), the design's tables."""
 
 from __future__ import annotations
 
-import io
 from datetime import datetime
 from typing import Any
 
-from reportlab.platypus import BaseDocTemplate, Flowable, Frame, PageTemplate, Spacer
+from reportlab.platypus import Flowable, Spacer
 
-from server import __version__
 from server.report import html as html_report
 from server.report.design_tables import design_context
-from server.report.pdf import (
-    FOOTER_HEIGHT,
-    HEADER_HEIGHT,
-    MARGIN_X,
-    PAGE_SIZES,
-    Furniture,
-    _header_footer,
-    _heading,
-    _numbered_canvas,
-)
+from server.report.pdf import _heading, _numbered_canvas, report_pages
 from server.report.pdf_kit import (
     Column,
     Styles,
@@ -29,7 +18,6 @@ from server.report.pdf_kit import (
     kv_table,
     load_fonts,
     make_styles,
-    plain,
 )
 from server.results.result import AdjustmentResult
 
@@ -41,44 +29,10 @@ def design_pdf(
     fonts = load_fonts(None)
     styles = make_styles(fonts)
     data = design_context(result)
-    when = html_report.generated_text(generated)
-    title = result.title or html_report.source_name(result.source) or "Untitled field book"
-    size = PAGE_SIZES[page_size]
-    width = size[0] - 2 * MARGIN_X
-    buffer = io.BytesIO()
-    doc = BaseDocTemplate(
-        buffer,
-        pagesize=size,
-        leftMargin=MARGIN_X,
-        rightMargin=MARGIN_X,
-        topMargin=HEADER_HEIGHT,
-        bottomMargin=FOOTER_HEIGHT,
-        title=plain(f"Network design — {title}", fonts),
-        author=f"Stationfit {__version__}",
-        subject=f"Field book SHA-256 {result.text_sha256}",
-        creator=f"Stationfit {__version__}",
+    page = report_pages(
+        result, fonts, styles, page_size, generated, "Network design", kind="network design"
     )
-    frame = Frame(
-        MARGIN_X,
-        FOOTER_HEIGHT,
-        width,
-        size[1] - HEADER_HEIGHT - FOOTER_HEIGHT,
-        leftPadding=0,
-        rightPadding=0,
-        topPadding=0,
-        bottomPadding=0,
-        id="body",
-    )
-    furniture = Furniture(
-        title=title,
-        caution=result.caution,
-        sha256=result.text_sha256,
-        generated=when,
-        kind="network design",
-    )
-    doc.addPageTemplates(
-        [PageTemplate(id="page", frames=[frame], onPage=_header_footer(furniture, styles))]
-    )
+    buffer, doc, width, title = page.buffer, page.doc, page.width, page.title
     story: list[Flowable] = [styles.para(f"Network design — {title}", styles.h2)]
     story += [
         styles.para(

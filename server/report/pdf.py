@@ -733,6 +733,65 @@ def _review_block(styles: Styles, width: float) -> list[Flowable]:
 # the document
 
 
+@dataclass(frozen=True)
+class ReportPages:
+    """A report's document with its page furniture, ready for a story."""
+
+    buffer: io.BytesIO
+    doc: BaseDocTemplate
+    width: float  # of the text column, points
+    title: str
+    generated: str
+
+
+def report_pages(
+    result: AdjustmentResult,
+    fonts: Fonts,
+    styles: Styles,
+    page_size: str,
+    generated: datetime | None,
+    heading: str,
+    kind: str = "adjustment report",
+) -> ReportPages:
+    """The page size, margins, metadata and the header and footer every page repeats (the
+    caution and the field book's hash), for the adjustment and the design reports alike."""
+    when = html_report.generated_text(generated)
+    title = result.title or html_report.source_name(result.source) or "Untitled field book"
+    size = PAGE_SIZES[page_size]
+    width = size[0] - 2 * MARGIN_X
+    buffer = io.BytesIO()
+    doc = BaseDocTemplate(
+        buffer,
+        pagesize=size,
+        leftMargin=MARGIN_X,
+        rightMargin=MARGIN_X,
+        topMargin=HEADER_HEIGHT,
+        bottomMargin=FOOTER_HEIGHT,
+        title=plain(f"{heading} — {title}", fonts),
+        author=f"Stationfit {__version__}",
+        subject=f"Field book SHA-256 {result.text_sha256}",
+        creator=f"Stationfit {__version__}",
+    )
+    frame = Frame(
+        MARGIN_X,
+        FOOTER_HEIGHT,
+        width,
+        size[1] - HEADER_HEIGHT - FOOTER_HEIGHT,
+        leftPadding=0,
+        rightPadding=0,
+        topPadding=0,
+        bottomPadding=0,
+        id="body",
+    )
+    furniture = Furniture(
+        title=title, caution=result.caution, sha256=result.text_sha256, generated=when, kind=kind
+    )
+    doc.addPageTemplates(
+        [PageTemplate(id="page", frames=[frame], onPage=_header_footer(furniture, styles))]
+    )
+    return ReportPages(buffer, doc, width, title, when)
+
+
 def report_pdf(
     result: AdjustmentResult,
     *,
@@ -764,40 +823,8 @@ def report_pdf(
     fonts = load_fonts(font_dir)
     styles = make_styles(fonts)
     data = report.context(result, presets)
-    when = html_report.generated_text(generated)
-    title = result.title or html_report.source_name(result.source) or "Untitled field book"
-    size = PAGE_SIZES[page_size]
-    width = size[0] - 2 * MARGIN_X
-    buffer = io.BytesIO()
-    doc = BaseDocTemplate(
-        buffer,
-        pagesize=size,
-        leftMargin=MARGIN_X,
-        rightMargin=MARGIN_X,
-        topMargin=HEADER_HEIGHT,
-        bottomMargin=FOOTER_HEIGHT,
-        title=plain(f"Adjustment report — {title}", fonts),
-        author=f"Stationfit {__version__}",
-        subject=f"Field book SHA-256 {result.text_sha256}",
-        creator=f"Stationfit {__version__}",
-    )
-    frame = Frame(
-        MARGIN_X,
-        FOOTER_HEIGHT,
-        width,
-        size[1] - HEADER_HEIGHT - FOOTER_HEIGHT,
-        leftPadding=0,
-        rightPadding=0,
-        topPadding=0,
-        bottomPadding=0,
-        id="body",
-    )
-    furniture = Furniture(
-        title=title, caution=result.caution, sha256=result.text_sha256, generated=when
-    )
-    doc.addPageTemplates(
-        [PageTemplate(id="page", frames=[frame], onPage=_header_footer(furniture, styles))]
-    )
+    page = report_pages(result, fonts, styles, page_size, generated, "Adjustment report")
+    buffer, doc, width, when = page.buffer, page.doc, page.width, page.generated
     story: list[Flowable] = []
     story += _title_block(result, data, styles, width, when, imported_from)
     story += _verdict_block(data, styles, width)
