@@ -55,12 +55,12 @@ import numpy as np
 from pyproj import Geod
 
 from server.geodesy import frames
-from server.geodesy.ellipsoid import Ellipsoid
+from server.geodesy.ellipsoid import GRS80, Ellipsoid
 
-GRS80_A = 6_378_137.0
-GRS80_F = 1.0 / 298.257222101
-#: Earth radius of the curvature and refraction terms, metres.
-EARTH_RADIUS = 6_371_000.0
+GRS80_A, GRS80_F = GRS80.a, GRS80.f
+#: Earth radius of the curvature and refraction terms, metres (the model's, ``frames.py``).
+EARTH_RADIUS = frames.REFRACTION_RADIUS
+#: The field book's default coefficient of refraction (common practice).
 DEFAULT_REFRACTION = 0.13
 
 XYZ = tuple[float, float, float]
@@ -247,9 +247,11 @@ class _State:
         return self.ell.to_ecef(lat, lon, self.height[name])
 
     def place(self, name: str, xyz: np.ndarray, method: str) -> None:
+        """Place a point found by ``method``; a height the book gives is kept (a benchmark
+        sighted from the instrument must start, and if held stay, at its booked height)."""
         lat, lon, h = self.ell.from_ecef(xyz)
         self.horizontal[name] = (lat, lon)
-        self.height[name] = h
+        self.height.setdefault(name, h)
         self.methods[name] = method
 
     def azimuth(self, station: str, target: str) -> float:

@@ -121,7 +121,7 @@ def geodetic_frame(fieldbook: Fieldbook) -> GeodeticFrame:
             "or lat= lon=) or connect them",
             exc.points,
         ) from None
-    start = _with_given_heights(fieldbook, crs, und, dict(found.positions))
+    start = dict(found.positions)
     geoid_given = fieldbook.geoid_undulation is not None or any(
         p.geoid is not None for p in fieldbook.points
     )
@@ -134,24 +134,6 @@ def geodetic_frame(fieldbook: Fieldbook) -> GeodeticFrame:
         start=start,
         methods=dict(found.methods),
     )
-
-
-def _with_given_heights(
-    fieldbook: Fieldbook, crs: Crs, und: Mapping[str, float], start: dict[str, XYZ]
-) -> dict[str, XYZ]:
-    """Start positions at the booked heights: a benchmark placed by sights keeps its latitude
-    and longitude from them but its height from the book (held, it must be exactly that)."""
-    booked = [
-        (p.name, p.height) for p in fieldbook.points if p.height is not None and p.name in start
-    ]
-    if not booked:
-        return start
-    names = [name for name, _ in booked]
-    lat, lon, _ = crs.ecef_to_geodetic(np.array([start[n] for n in names], dtype=float))
-    h = np.array([height + und.get(name, 0.0) for name, height in booked])
-    xyz = np.asarray(crs.geodetic_to_ecef(lat, lon, h)).reshape(-1, 3)
-    start.update({name: (x, y, z) for name, (x, y, z) in zip(names, xyz.tolist())})
-    return start
 
 
 def grid_to_ecef(crs: Crs, east_m: float, north_m: float, h: float) -> XYZ:

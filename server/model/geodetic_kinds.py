@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from functools import partial
+from functools import lru_cache, partial
 
 import numpy as np
 
@@ -148,6 +148,7 @@ def _baseline_sigma(m: _Model, b: Batch, at: Positions) -> Array:
     return np.sqrt(np.einsum("mii->mi", _baseline_covariance(m, b, at))).reshape(-1)
 
 
+@lru_cache(maxsize=16)  # the engine, the results builder and the baseline tests share one
 def geodetic_kinds(crs: Crs, refraction: float) -> dict[str, Kind]:
     """The table of every kind the geodetic model adjusts, for one CRS and one k.
 
