@@ -15,6 +15,7 @@ from dataclasses import replace
 import numpy as np
 
 from server.engine.gauss_newton import Solution
+from server.geodesy.crs import Crs
 from server.model.geodetic import resolve_crs, undulations
 from server.model.network import Network
 from server.results.geodetic import point_values
@@ -34,7 +35,7 @@ def with_geodetic_figures(
     geoid = np.array([und.get(p.name, 0.0) for p in points], dtype=float)
     height = np.array([np.nan if p.height is None else p.height / per_m for p in points])
     placed = np.array([p.east is not None and p.north is not None for p in points], dtype=bool)
-    xyz = _positions(network, solution, points, placed, height + geoid, per_m)
+    xyz = _positions(network, solution, crs, points, placed, height + geoid, per_m)
     out = []
     values = point_values(crs, xyz, np.zeros((len(points), 3, 3)), geoid, 1.0, per_m)
     for k, p in enumerate(points):
@@ -59,6 +60,7 @@ def with_geodetic_figures(
 def _positions(
     network: Network,
     solution: Solution,
+    crs: Crs,
     points: Sequence[PointResult],
     placed: np.ndarray,
     h: np.ndarray,
@@ -74,10 +76,6 @@ def _positions(
     else:
         missing = placed
     if missing.any():
-        crs = (
-            network.geodetic.crs if network.geodetic is not None else resolve_crs(network.fieldbook)
-        )
-        assert crs is not None
         per_unit = crs.metres_per_unit
         east = np.array([(p.east or 0.0) / per_m / per_unit for p in points])
         north = np.array([(p.north or 0.0) / per_m / per_unit for p in points])
