@@ -83,10 +83,18 @@ def undulations(fieldbook: Fieldbook) -> dict[str, float]:
     """Each point's geoid undulation in metres: its own, else the file's, else 0."""
     default = fieldbook.geoid_undulation or 0.0
     named = {p.name: p.geoid for p in fieldbook.points if p.geoid is not None}
-    names = {p.name for p in fieldbook.points}
-    for obs in fieldbook.observations:
-        names.update(n for n in (obs.from_point, obs.at, obs.to) if n)
+    names = touched_names(fieldbook.observations)
+    names.update(p.name for p in fieldbook.points)
     return {name: float(named.get(name, default)) for name in sorted(names)}
+
+
+def touched_names(observations: Sequence[Observation]) -> set[str]:
+    """The names an observation's FROM, AT or TO gives (empty names left out)."""
+    names = {o.from_point for o in observations}
+    names.update([o.to for o in observations])
+    names.update([o.at for o in observations if o.at])
+    names.discard("")
+    return names
 
 
 def geodetic_frame(fieldbook: Fieldbook) -> GeodeticFrame:
@@ -189,19 +197,17 @@ def _given_points(
 def height_only_points(fieldbook: Fieldbook) -> set[str]:
     """Points that only used level lines touch and that have no given position: they
     carry a height alone (their place on the ellipsoid is only a reference)."""
-    spatial: set[str] = set()
-    leveled: set[str] = set()
-    for obs in fieldbook.observations:
-        if obs.ignored or obs.planned:
-            continue
-        names = leveled if obs.kind == "level" else spatial
-        names.update(n for n in (obs.from_point, obs.at, obs.to) if n)
+    active = [obs for obs in fieldbook.observations if not (obs.ignored or obs.planned)]
+    levels = [obs for obs in active if obs.kind == "level"]
+    if not levels:
+        return set()
+    spatial = touched_names([obs for obs in active if obs.kind != "level"])
     placed = {
         p.name
         for p in fieldbook.points
         if p.latitude is not None or (p.east is not None and p.north is not None)
     }
-    return leveled - spatial - placed
+    return touched_names(levels) - spatial - placed
 
 
 def _height_only(
