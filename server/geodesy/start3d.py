@@ -507,7 +507,9 @@ class _Round:
     orientation: float | None = None  # fixed for azimuths
 
 
-def _rounds(observations: Sequence[Observation]) -> list[_Round]:
+def _rounds(
+    observations: Sequence[DirectionRound | HorizontalAngle | Azimuth | Observation],
+) -> list[_Round]:
     rounds: list[_Round] = []
     for obs in observations:
         if isinstance(obs, DirectionRound):
@@ -577,10 +579,11 @@ def _polar(
     grids: _Pairs[GridDistance],
 ) -> bool:
     grew = False
+    horizontal, height = state.horizontal, state.height
     for rnd in rounds:
         s = rnd.station
-        if s not in state.horizontal or all(
-            t == s or state.placed(t) for t in rnd.directions
+        if s not in horizontal or all(
+            t == s or (t in horizontal and t in height) for t in rnd.directions
         ):  # nothing to place from this round now
             continue
         orientation: _Orientation | _Fixed
@@ -644,26 +647,58 @@ def _heights(
     return grew
 
 
-def _names(
+@dataclass(slots=True)
+class _Inputs:
+    """The observations sorted by what each method reads, and every name in order."""
+
+    names: dict[str, None] = field(default_factory=dict)
+    baselines: list[Baseline] = field(default_factory=list)
+    slopes: dict[tuple[str, str], SlopeDistance] = field(default_factory=dict)
+    zeniths: dict[tuple[str, str], ZenithAngle] = field(default_factory=dict)
+    grids: dict[tuple[str, str], GridDistance] = field(default_factory=dict)
+    levels: list[HeightDifference] = field(default_factory=list)
+    sightings: list[DirectionRound | HorizontalAngle | Azimuth] = field(default_factory=list)
+
+
+def _inputs(
     known: Sequence[KnownPoint],
     heights: Sequence[KnownHeight],
     observations: Sequence[Observation],
-) -> list[str]:
-    order: dict[str, None] = {}
+) -> _Inputs:
+    """One pass over the observations (names in the order they first appear)."""
+    found = _Inputs()
+    order = found.names
     for p in known:
         order[p.name] = None
     for hp in heights:
         order[hp.name] = None
     for obs in observations:
-        if isinstance(obs, DirectionRound):
+        if isinstance(obs, SlopeDistance):
+            found.slopes[(obs.frm, obs.to)] = obs
+        elif isinstance(obs, ZenithAngle):
+            found.zeniths[(obs.frm, obs.to)] = obs
+        elif isinstance(obs, DirectionRound):
+            found.sightings.append(obs)
             order[obs.station] = None
             for t, _ in obs.directions:
                 order[t] = None
+            continue
         elif isinstance(obs, HorizontalAngle):
+            found.sightings.append(obs)
             order[obs.at] = order[obs.frm] = order[obs.to] = None
-        else:
-            order[obs.frm] = order[obs.to] = None
-    return list(order)
+            continue
+        elif isinstance(obs, Baseline):
+            found.baselines.append(obs)
+        elif isinstance(obs, HeightDifference):
+            found.levels.append(obs)
+        elif isinstance(obs, GridDistance):
+            found.grids[(obs.frm, obs.to)] = obs
+        elif isinstance(obs, Azimuth):
+            found.sightings.append(obs)
+        order[obs.frm] = order[obs.to] = None
+    grids = found.grids
+    grids.update({(o.to, o.frm): o for o in grids.values() if (o.to, o.frm) not in grids})
+    return found
 
 
 def start_positions(
@@ -693,21 +728,17 @@ def start_positions(
             if p.height_known:
                 state.height[p.name] = given
             state.methods[p.name] = "control" if p.control else "given"
-    names = _names(known, heights, observations)
+    inputs = _inputs(known, heights, observations)
+    names = list(inputs.names)
     control = [p.name for p in known if p.control]
     held = set(control)
     order = control + [n for n in names if n not in held]
-    baselines = [o for o in observations if isinstance(o, Baseline)]
-    slopes = {(o.frm, o.to): o for o in observations if isinstance(o, SlopeDistance)}
-    zeniths = {(o.frm, o.to): o for o in observations if isinstance(o, ZenithAngle)}
-    grids = {(o.frm, o.to): o for o in observations if isinstance(o, GridDistance)}
-    grids.update({(o.to, o.frm): o for o in grids.values() if (o.to, o.frm) not in grids})
-    levels = [o for o in observations if isinstance(o, HeightDifference)]
-    rounds = _rounds(observations)
+    slopes, zeniths = inputs.slopes, inputs.zeniths
+    rounds = _rounds(inputs.sightings)
     while True:
-        grew = _baselines(state, baselines, order)
-        grew |= _polar(state, rounds, slopes, zeniths, grids)
-        grew |= _heights(state, slopes, zeniths, levels)
+        grew = _baselines(state, inputs.baselines, order)
+        grew |= _polar(state, rounds, slopes, zeniths, inputs.grids)
+        grew |= _heights(state, slopes, zeniths, inputs.levels)
         if not grew:
             break
     missing = [n for n in names if not state.placed(n)]

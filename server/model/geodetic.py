@@ -247,33 +247,35 @@ def _start_observations(
     values); they are taken at the first given point.
     """
     convergence, scale = _rough_factors(crs, known)
+    refraction = fieldbook.refraction
     by_round: dict[int, list[Observation]] = {}
     out: list[start3d.Observation] = []
     for obs in fieldbook.observations:
         if obs.ignored or obs.planned:
             continue
+        kind = obs.kind
+        if kind == "direction":
+            if obs.round_line is not None:
+                by_round.setdefault(obs.round_line, []).append(obs)
+            continue
         hi, ht = obs.instrument_height or 0.0, obs.target_height or 0.0
-        if obs.kind == "slope":
+        if kind == "slope":
             out.append(start3d.SlopeDistance(obs.from_point, obs.to, obs.value, hi, ht))
-        elif obs.kind == "zenith":
-            out.append(
-                start3d.ZenithAngle(obs.from_point, obs.to, obs.value, hi, ht, fieldbook.refraction)
-            )
-        elif obs.kind == "baseline":
+        elif kind == "zenith":
+            out.append(start3d.ZenithAngle(obs.from_point, obs.to, obs.value, hi, ht, refraction))
+        elif kind == "baseline":
             assert obs.baseline is not None
             dx, dy, dz = obs.baseline.components
             out.append(start3d.Baseline(obs.from_point, obs.to, dx, dy, dz))
-        elif obs.kind == "level":
+        elif kind == "level":
             out.append(start3d.HeightDifference(obs.from_point, obs.to, obs.value))
-        elif obs.kind == "distance":
+        elif kind == "distance":
             out.append(start3d.GridDistance(obs.from_point, obs.to, obs.value, scale))
-        elif obs.kind == "azimuth":
+        elif kind == "azimuth":
             out.append(start3d.Azimuth(obs.from_point, obs.to, obs.value, convergence))
-        elif obs.kind == "angle":
+        elif kind == "angle":
             assert obs.at is not None
             out.append(start3d.HorizontalAngle(obs.at, obs.from_point, obs.to, obs.value))
-        elif obs.kind == "direction" and obs.round_line is not None:
-            by_round.setdefault(obs.round_line, []).append(obs)
     for line in sorted(by_round):
         entries = by_round[line]
         out.append(
