@@ -170,6 +170,7 @@ def _epsg(code: int) -> Crs:
     return _build(label, crs, check_point=_area_centre(crs))
 
 
+@functools.lru_cache(maxsize=32)  # one Crs (and its pyproj transformers) per site grid
 def local_crs(
     lat: float,
     lon: float,

@@ -157,41 +157,65 @@ def grid_to_ecef(crs: Crs, east_m: float, north_m: float, h: float) -> XYZ:
 def _given_points(
     points: Sequence[PointStatement], crs: Crs, und: Mapping[str, float]
 ) -> tuple[list[start3d.KnownPoint], list[start3d.KnownHeight]]:
-    """Points with a given position (grid or lat/lon) and benchmarks with a height only."""
+    """Points with a given position (grid or lat/lon) and benchmarks with a height only.
+
+    The positions are converted together: one pyproj call for all grid points, one for all
+    points given by latitude and longitude (each point's numbers are those of a call of its
+    own).
+    """
+    geographic = [p for p in points if p.latitude is not None and p.longitude is not None]
+    grid = [
+        p
+        for p in points
+        if not (p.latitude is not None and p.longitude is not None)
+        and p.east is not None
+        and p.north is not None
+    ]
+    position: dict[int, tuple[float, float, float]] = {}
+    if geographic:
+        xyz = crs.geodetic_to_ecef(
+            np.array([p.latitude for p in geographic]),
+            np.array([p.longitude for p in geographic]),
+            np.array([_ellipsoidal(p, und) for p in geographic]),
+        )
+        position.update(zip(map(id, geographic), map(tuple, np.asarray(xyz).tolist())))
+    if grid:
+        per_unit = crs.metres_per_unit
+        xyz = crs.grid_to_ecef(
+            np.array([p.east / per_unit for p in grid if p.east is not None]),
+            np.array([p.north / per_unit for p in grid if p.north is not None]),
+            np.array([_ellipsoidal(p, und) for p in grid]),
+        )
+        position.update(zip(map(id, grid), map(tuple, np.asarray(xyz).reshape(-1, 3).tolist())))
     known: list[start3d.KnownPoint] = []
     heights: list[start3d.KnownHeight] = []
     for p in points:
-        n = und.get(p.name, 0.0)
-        has_height = p.height is not None
-        h = (p.height if p.height is not None else 0.0) + n
-        control = bool(p.fixed or p.weighted)
-        if p.latitude is not None and p.longitude is not None:
-            xyz = crs.geodetic_to_ecef(
-                np.array([p.latitude]), np.array([p.longitude]), np.array([h])
-            )
-            x, y, z = (float(c) for c in np.asarray(xyz).reshape(3))
-            position = (x, y, z)
-        elif p.east is not None and p.north is not None:
-            position = grid_to_ecef(crs, p.east, p.north, h)
-        else:
+        found = position.get(id(p))
+        if found is None:
             if p.height is not None:
                 heights.append(start3d.KnownHeight(p.name, p.height))
             continue
-        if not all(math.isfinite(c) for c in position):
+        if not all(math.isfinite(c) for c in found):
             raise NetworkError(
                 f"point {p.name} (line {p.line}) lies where the CRS {crs.definition} cannot "
                 "place it on its ellipsoid; check its coordinates and the crs line",
                 (p.name,),
             )
+        x, y, z = found
         known.append(
             start3d.KnownPoint(
                 p.name,
-                position,
-                control=control,
-                height_known=has_height,
+                (x, y, z),
+                control=bool(p.fixed or p.weighted),
+                height_known=p.height is not None,
             )
         )
     return known, heights
+
+
+def _ellipsoidal(p: PointStatement, und: Mapping[str, float]) -> float:
+    """h = H + N of a given point (H taken as 0 where the book gives none)."""
+    return (p.height if p.height is not None else 0.0) + und.get(p.name, 0.0)
 
 
 def height_only_points(fieldbook: Fieldbook) -> set[str]:
