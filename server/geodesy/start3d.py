@@ -45,17 +45,20 @@ Methods, repeated until a pass reaches nothing new:
 
 from __future__ import annotations
 
+import functools
 import math
 from collections import deque
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import TypeVar
+from typing import TYPE_CHECKING, TypeVar
 
 import numpy as np
-from pyproj import Geod
 
 from server.geodesy import frames
 from server.geodesy.ellipsoid import GRS80, Ellipsoid
+
+if TYPE_CHECKING:
+    from pyproj import Geod
 
 GRS80_A, GRS80_F = GRS80.a, GRS80.f
 #: Earth radius of the curvature and refraction terms, metres (the model's, ``frames.py``).
@@ -214,7 +217,13 @@ class _Ellipsoid:
     def __init__(self, a: float, f: float) -> None:
         self.shape = Ellipsoid(a, f)
         self.a, self.f, self.e2 = a, f, self.shape.e2
-        self.geod = Geod(a=a, f=f)
+
+    @functools.cached_property
+    def geod(self) -> Geod:
+        """pyproj's geodesics on this ellipsoid (imported when a grid distance needs them)."""
+        from pyproj import Geod
+
+        return Geod(a=self.a, f=self.f)
 
     def to_ecef(self, lat: float, lon: float, h: float) -> np.ndarray:
         return np.asarray(self.shape.to_ecef(lat, lon, h), dtype=float).reshape(3)
