@@ -133,3 +133,24 @@ def test_angles_with_frames_taken_by_row_equal_the_row_by_row_angles(seed):
     assert np.array_equal(taken.value, plain.value)
     for role in ("to", "from", "at"):
         assert np.array_equal(taken.partials[role], plain.partials[role]), role
+
+
+def test_the_azimuth_alone_is_the_azimuth_of_the_full_equation():
+    """The rounds' start orientations need the horizon azimuth without its partials."""
+    rng = np.random.default_rng(3)
+    lat = math.radians(47.05) + rng.uniform(-0.015, 0.015, 30)
+    lon = math.radians(-122.89) + rng.uniform(-0.02, 0.02, 30)
+    xyz = GRS80.to_ecef(lat, lon, rng.uniform(20.0, 180.0, 30))
+    frm, to = xyz[:15], xyz[15:]
+    every = frames.local_frames(GRS80, xyz)
+    alone = frames.horizon_azimuth_value(
+        GRS80,
+        frm,
+        to,
+        frames_from=every.take(np.arange(15)),
+        frames_to=every.take(15 + np.arange(15)),
+    )
+    assert np.array_equal(alone, frames.horizon_azimuth(GRS80, frm, to).value)
+    assert np.array_equal(frames.horizon_azimuth_value(GRS80, frm, to), alone)
+    with pytest.raises(ZeroDivisionError):
+        frames.horizon_azimuth_value(GRS80, frm[:1], frm[:1].copy())  # coincident marks

@@ -120,9 +120,13 @@ class GeodeticState(State):
         points = np.unique(np.concatenate([i[ok], j[ok]]))  # each point's frame once
         at_points = frames.local_frames(ell, self._xyz(points))
         row_i, row_j = np.searchsorted(points, i[ok]), np.searchsorted(points, j[ok])
-        azimuth = ge.direction(
-            ell, xyz_i[ok], xyz_j[ok], at_points.take(row_i), at_points.take(row_j)
-        ).value
+        azimuth = frames.horizon_azimuth_value(
+            ell,
+            xyz_i[ok],
+            xyz_j[ok],
+            frames_from=at_points.take(row_i),
+            frames_to=at_points.take(row_j),
+        )
         offset = azimuth - table[ok, 3]
         sines = np.bincount(r[ok], weights=np.sin(offset), minlength=len(self.round_lines))
         cosines = np.bincount(r[ok], weights=np.cos(offset), minlength=len(self.round_lines))

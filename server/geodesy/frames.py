@@ -206,9 +206,8 @@ def local_vector(
     hi, ht = _column(hi, count), _column(ht, count)
     at = frames_at(ellipsoid, frm, frames_from)
     target = frames_at(ellipsoid, to, frames_to)
-    d = (to + ht * target.up) - (frm + hi * at.up)
+    enu = _local_components(at, target, frm, to, hi, ht)
     rot = at.rotation
-    enu = _apply(rot, d)
     identity = np.eye(3)
     d_to = rot @ (identity + ht[:, :, None] * target.up_derivative())
     a, b, c = enu[:, 0:1], enu[:, 1:2], enu[:, 2:3]
@@ -225,6 +224,19 @@ def local_vector(
     )
     d_from = turning - rot @ (identity + hi[:, :, None] * at.up_derivative())
     return LocalVector(enu=enu, d_from=d_from, d_to=d_to, frames=at)
+
+
+def _local_components(
+    at: LocalFrames,
+    target: LocalFrames,
+    frm: np.ndarray,
+    to: np.ndarray,
+    hi: np.ndarray,
+    ht: np.ndarray,
+) -> np.ndarray:
+    """(a, b, c) = R_i (P_t − P_i), shape (n, 3)."""
+    d = (to + ht * target.up) - (frm + hi * at.up)
+    return _apply(at.rotation, d)
 
 
 def slope_distance(
@@ -297,6 +309,26 @@ def horizon_azimuth(
     s2 = _nonzero(a * a + b * b, "the target is straight above or below the instrument")
     grad = np.stack([b, -a, np.zeros_like(a)], axis=1) / s2[:, None]
     return _chain(np.mod(np.arctan2(a, b), TWO_PI), grad, vec)
+
+
+def horizon_azimuth_value(
+    ellipsoid: Ellipsoid,
+    frm: np.ndarray,
+    to: np.ndarray,
+    *,
+    frames_from: LocalFrames | None = None,
+    frames_to: LocalFrames | None = None,
+) -> np.ndarray:
+    """The azimuth of ``horizon_azimuth`` toward the marks (hi = ht = 0), without partials."""
+    frm, to = _points(frm), _points(to)
+    count = len(frm)
+    zero = _column(0.0, count)
+    at = frames_at(ellipsoid, frm, frames_from)
+    target = frames_at(ellipsoid, to, frames_to)
+    enu = _local_components(at, target, frm, to, zero, zero)
+    a, b = enu[:, 0], enu[:, 1]
+    _nonzero(a * a + b * b, "the target is straight above or below the instrument")
+    return np.mod(np.arctan2(a, b), TWO_PI)
 
 
 def horizon_distance(
