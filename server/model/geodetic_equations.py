@@ -87,10 +87,7 @@ def slope(
     at_from = frames.frames_at(ellipsoid, frm, frames_from)
     at_to = frames.frames_at(ellipsoid, to, frames_to)
     eq = frames.slope_distance(ellipsoid, frm, to, hi, ht, frames_from=at_from, frames_to=at_to)
-    return Rows(
-        eq.value,
-        {"from": _local(at_from.rotation, eq.d_from), "to": _local(at_to.rotation, eq.d_to)},
-    )
+    return _in_local_axes(eq, at_from, at_to, "from")
 
 
 def zenith(
@@ -106,10 +103,7 @@ def zenith(
     at_from = frames.frames_at(ellipsoid, frm, frames_from)
     at_to = frames.frames_at(ellipsoid, to, frames_to)
     eq = frames.zenith_angle(ellipsoid, frm, to, hi, ht, k, frames_from=at_from, frames_to=at_to)
-    return Rows(
-        eq.value,
-        {"from": _local(at_from.rotation, eq.d_from), "to": _local(at_to.rotation, eq.d_to)},
-    )
+    return _in_local_axes(eq, at_from, at_to, "from")
 
 
 def direction(
@@ -119,9 +113,16 @@ def direction(
     at_at = frames.frames_at(ellipsoid, at, frames_at)
     at_to = frames.frames_at(ellipsoid, to, frames_to)
     eq = frames.horizon_azimuth(ellipsoid, at, to, frames_from=at_at, frames_to=at_to)
+    return _in_local_axes(eq, at_at, at_to, "at")
+
+
+def _in_local_axes(
+    eq: frames.Equation, at_from: frames.LocalFrames, at_to: frames.LocalFrames, role: str
+) -> Rows:
+    """An equation's partials turned to the local corrections of its two marks."""
     return Rows(
         eq.value,
-        {"at": _local(at_at.rotation, eq.d_from), "to": _local(at_to.rotation, eq.d_to)},
+        {role: _local(at_from.rotation, eq.d_from), "to": _local(at_to.rotation, eq.d_to)},
     )
 
 
