@@ -57,24 +57,24 @@ class _PointFrames:
     """The local frames at every point for the positions of one evaluation.
 
     Every kind needs the frames at its rows' marks; computed once per point and taken by
-    row, they are the same numbers as computed row by row.  The last positions seen are
-    kept with a copy of their coordinates, so positions changed in place are never served
-    stale frames.
+    row, they are the same numbers as computed row by row.  The frames of the last
+    coordinates seen are kept with a copy of those coordinates, so the kinds of one
+    evaluation share them and coordinates changed in place are never served stale frames.
     """
 
     __slots__ = ("_last",)
 
     def __init__(self) -> None:
-        self._last: tuple[Positions, Array, frames.LocalFrames] | None = None
+        self._last: tuple[Array, frames.LocalFrames] | None = None
 
     def at(self, ellipsoid: Ellipsoid, positions: Positions) -> frames.LocalFrames:
         xyz = np.stack([positions.east, positions.north, positions.height], axis=1)
         last = self._last  # one read: another thread may replace it meanwhile
-        if last is not None and last[0] is positions and np.array_equal(last[1], xyz):
-            return last[2]
+        if last is not None and last[0].shape == xyz.shape and last[0].tobytes() == xyz.tobytes():
+            return last[1]  # the same bits (a −0.0 or a NaN is not taken for another)
         with np.errstate(invalid="ignore"):  # points no row of this kind may touch
             found = frames.local_frames(ellipsoid, xyz).with_up_derivative()
-        self._last = (positions, xyz, found)
+        self._last = (xyz, found)
         return found
 
 
