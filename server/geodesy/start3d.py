@@ -41,6 +41,14 @@ Methods, repeated until a pass reaches nothing new:
    h_to = h_from + ΔH + N_to − N_from (deflections of the vertical taken as zero).
 4. Whatever is still missing a horizontal position or a height is named in
    ``UnreachablePointsError``.
+
+How it runs.  Which method reaches which point depends only on which points are already
+placed, never on their coordinates, and a placed point never moves again.  So the passes
+above run on names alone and record each number to compute as a step (a position, a
+round's orientation as the round stands before it places anything, a polar tie, a point
+one baseline further, a grid tie, a height); then the steps are evaluated level by level,
+all steps of a kind and level in one numpy batch.  Each point gets the arithmetic it would
+get on its own, in the same order, so the batches do not change a bit of the result.
 """
 
 from __future__ import annotations
