@@ -195,3 +195,15 @@ def test_a_benchmark_network_of_400_points_starts_where_the_point_by_point_place
     result = start_positions(known, observations, **options)
     assert_same(result, reference_start_positions(known, observations, **options))
     assert len(result.positions) == 400
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_any_order_of_the_observations_gives_the_numbers_of_the_point_by_point_placement(seed):
+    """The order of the observations decides which point is placed from which: shuffled,
+    the placement changes, and the batched numbers must still follow it bit for bit."""
+    import random
+
+    known, heights, obs = every_method()
+    random.Random(seed).shuffle(obs)
+    result = start_positions(known, obs, heights=heights, undulations=UND)
+    assert_same(result, reference_start_positions(known, obs, heights=heights, undulations=UND))
