@@ -99,7 +99,12 @@ def report_html(
     """
 
     data = context(result, presets)
-    data["network_plot"] = network_plot_data(result)
+    # the drawing only (no side panel in a report), from the rows formatted above
+    data["network_plot"] = network_plot_data(
+        result,
+        obs_rows=data["observation_rows"],  # type: ignore[arg-type]
+        details=False,
+    )
     data["np_static"] = True
     # The CSS is our own file, never user input; Markup keeps autoescape off its '>' selectors.
     data["css"] = Markup(report_css())  # noqa: S704 (our own file, see above)

@@ -428,8 +428,17 @@ def _joined_pairs(
     return pairs
 
 
-def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
-    """Everything the network plot draws, or None for a 1D network or one without positions."""
+def network_plot_data(
+    result: AdjustmentResult,
+    *,
+    obs_rows: Sequence[report.ObservationRow] | None = None,
+    details: bool = True,
+) -> dict[str, Any] | None:
+    """Everything the network plot draws, or None for a 1D network or one without positions.
+
+    ``obs_rows`` are every observation's rows when the caller has them already (formatted
+    once per request); ``details=False`` leaves out the side panel's figures (a drawing
+    without the panel, as in the printable report, does not need them)."""
     if result.summary.dimension < 2:
         return None
     grid = {
@@ -457,8 +466,9 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
     else:
         factor = EXAGGERATIONS[0]
 
-    obs_rows = report.observation_rows(result)
-    relative = _relative_detail(result)
+    if obs_rows is None:
+        obs_rows = report.observation_rows(result)
+    relative = _relative_detail(result) if details else {}
     pairs = _joined_pairs(result, position)
     lines = []
     for n, (key, record) in enumerate(pairs.items()):
@@ -490,7 +500,9 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
                 "has_ignored": record["has_ignored"] and used,
                 "flagged": record["flagged"],
                 "observations": record["observations"],
-                "detail": [_observation_detail(obs_rows[k], unit) for k in record["observations"]],
+                "detail": [_observation_detail(obs_rows[k], unit) for k in record["observations"]]
+                if details
+                else [],
                 "relative": relative.get(key),
                 "title": f"{a} – {b}: "
                 + ", ".join(kinds)
@@ -535,7 +547,7 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
                 "in_use": p.in_use,
                 "label": labels[k],
                 "ellipse": ellipse,
-                "detail": _point_detail(row, p, unit, confidence),
+                "detail": _point_detail(row, p, unit, confidence) if details else [],
                 "title": f"{p.name} ({row.role}): E {row.east}, N {row.north} {unit}",
             }
         )
@@ -595,3 +607,45 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
             "flagged": any(line["flagged"] for line in lines),
         },
     }
+
+
+#: What ``static/plot.js`` reads of the plot: the view, the bars, the exaggeration series.
+_SCRIPT_KEYS = (
+    "view",
+    "nominal",
+    "extent",
+    "bars",
+    "exaggeration_index",
+    "exaggerations",
+    "exaggeration_labels",
+)
+
+
+def script_data(data: dict[str, Any]) -> dict[str, Any]:
+    """The part of the plot the page's script needs: the panel's figures of each point and
+    line and the ellipse axes, by id.  The geometry, symbols and titles are in the SVG
+    already, so they are not written a second time."""
+    points = [
+        {
+            "id": p["id"],
+            "name": p["name"],
+            "detail": p["detail"],
+            **(
+                {"ellipse": {"a": p["ellipse"]["a"], "b": p["ellipse"]["b"]}}
+                if p["ellipse"]
+                else {}
+            ),
+        }
+        for p in data["points"]
+    ]
+    lines = [
+        {
+            "id": line["id"],
+            "names": line["names"],
+            "used": line["used"],
+            "detail": line["detail"],
+            **({"relative": line["relative"]} if line["relative"] else {}),
+        }
+        for line in data["lines"]
+    ]
+    return {**{key: data[key] for key in _SCRIPT_KEYS}, "points": points, "lines": lines}

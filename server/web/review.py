@@ -39,6 +39,7 @@ from server.store import projects as service
 from server.store.projects import ReviewState, display_name
 from server.store.projects import load_state as _load_state
 from server.store.sqlite import AlreadyQueued, DecisionsChanged, is_valid_id
+from server.web import run_parts
 from server.web.dependencies import (
     CheckedForm,
     ProjectDep,
@@ -155,8 +156,8 @@ def _review_context(
     """Everything the review page lays out."""
     store = _store(request)
     project, result = state.project, state.result
-    latest = store.latest_run(project.id)
     runs = store.runs(project.id)
+    latest = run_parts.latest_completed(runs)  # its status, number and error are shown
     context: dict[str, Any] = {
         "project": project,
         "name": display_name(project.name, project.filename, result.title if result else ""),
