@@ -185,7 +185,7 @@ def _review_context(
         else page_number(request, "obs_page")
     )
     page = report.page(len(result.observations), wanted)
-    rows = review.review_rows(result, review.source_lines(state.text), tau, page.window)
+    rows = run_parts.review_rows(request, state, tau, page)
     shown = {row.line for row in rows}
     context["problems"] += [
         message for line, message in (errors or {}).items() if line not in shown

@@ -10,21 +10,28 @@ unescaped: the plot fragment is rendered by the autoescaping templates.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from typing import Any
+from collections.abc import Callable, Sequence
+from typing import Any, TypeVar
 
 from fastapi import Request
 from markupsafe import Markup
 
-from server.report import plot
+from server.report import plot, review
 from server.report import tables as report
 from server.results.result import AdjustmentResult
+from server.review.tau import TauTest
 from server.store import projects as service
-from server.store.projects import ProposalCache, Slots, StandardsChoice
+from server.store.projects import ProposalCache, ReviewState, Slots, StandardsChoice
 from server.store.sqlite import Project, Run
 
-#: Entries kept per application: a result, its rows and its plot are three entries of a run.
-CACHED_PARTS = 24
+T = TypeVar("T")
+
+#: Entries kept per application: a result, its rows, its plot and each review page seen are
+#: entries of a run.
+CACHED_PARTS = 32
+#: Runs of more observations are not kept (their parts are made for each request as before):
+#: thirty-two entries of a few megabytes each, never of a hundred.
+MAX_KEPT_OBSERVATIONS = 20_000
 
 
 def parts_cache() -> ProposalCache:
@@ -38,6 +45,14 @@ def _cache(request: Request) -> ProposalCache:
 
 def _key(project: Project, run: Run, choice: StandardsChoice) -> tuple[Any, ...]:
     return (project.id, run.id, run.created, choice.query)
+
+
+def _kept(request: Request, run: Run, key: tuple[Any, ...], make: Callable[[], T]) -> T:
+    """``make()`` kept under ``key``, unless the run is too large to keep."""
+    observations = (run.summary or {}).get("observations")
+    if not isinstance(observations, int) or observations > MAX_KEPT_OBSERVATIONS:
+        return make()
+    return _cache(request).get(key, make)  # type: ignore[no-any-return]
 
 
 def latest_completed(runs: Sequence[Run]) -> Run | None:
@@ -65,15 +80,18 @@ def result(
             full = request.app.state.store.run(project.id, run.id) or run
         return service.result_with_presets(project, full, choice, queue)
 
-    return _cache(request).get(("result", *_key(project, run, choice)), make)  # type: ignore[no-any-return]
+    return _kept(request, run, ("result", *_key(project, run, choice)), make)
 
 
 def observation_rows(
     request: Request, project: Project, run: Run, choice: StandardsChoice, found: AdjustmentResult
 ) -> list[report.ObservationRow]:
     """Every observation of the run formatted as a table row (the pages slice them)."""
-    return _cache(request).get(  # type: ignore[no-any-return]
-        ("rows", *_key(project, run, choice)), lambda: report.observation_rows(found)
+    return _kept(
+        request,
+        run,
+        ("rows", *_key(project, run, choice)),
+        lambda: report.observation_rows(found),
     )
 
 
@@ -91,4 +109,20 @@ def plot_fragment(
         html = template.render(network_plot=data)
         return Markup(html)  # noqa: S704 (rendered by the autoescaping environment)
 
-    return _cache(request).get(("plot", *_key(project, run, choice)), draw)  # type: ignore[no-any-return]
+    return _kept(request, run, ("plot", *_key(project, run, choice)), draw)
+
+
+def review_rows(
+    request: Request, state: ReviewState, tau: TauTest | None, page: report.Page
+) -> list[review.ReviewRow]:
+    """One page of the review's rows of the run under review (its field book text and result
+    are those of that run, so the rows are the same until another run is reviewed)."""
+    assert state.base is not None and state.result is not None
+    found, text = state.result, state.text
+
+    def make() -> list[review.ReviewRow]:
+        return review.review_rows(found, review.source_lines(text), tau, page.window)
+
+    base = state.base
+    key = ("review", state.project.id, base.id, base.created, page.start, page.stop)
+    return _kept(request, base, key, make)
