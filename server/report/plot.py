@@ -265,12 +265,6 @@ def _segment_hits_box(x1: float, y1: float, x2: float, y2: float, box: Sequence[
     return True
 
 
-def _overlap(a: Sequence[float], b: Sequence[float]) -> float:
-    w = min(a[2], b[2]) - max(a[0], b[0])
-    h = min(a[3], b[3]) - max(a[1], b[1])
-    return w * h if w > 0 and h > 0 else 0.0
-
-
 class _Grid:
     """A uniform bucket grid over canvas pixels: which items' boxes may touch a box."""
 
@@ -278,19 +272,23 @@ class _Grid:
         self.cell = cell
         self.buckets: dict[tuple[int, int], list[int]] = {}
 
-    def _cells(self, box: Sequence[float]) -> list[tuple[int, int]]:
+    def cells(self, box: Sequence[float]) -> list[tuple[int, int]]:
         c = self.cell
         x0, y0, x1, y1 = (math.floor(v / c) for v in box)
         return [(x, y) for x in range(x0, x1 + 1) for y in range(y0, y1 + 1)]
 
     def add(self, item: int, box: Sequence[float]) -> None:
-        for key in self._cells(box):
+        for key in self.cells(box):
             self.buckets.setdefault(key, []).append(item)
 
-    def near(self, box: Sequence[float]) -> set[int]:
+    def near(self, cells: list[tuple[int, int]]) -> set[int]:
+        """The items in any of ``cells`` (of ``cells(box)``: the three grids share a size)."""
         found: set[int] = set()
-        for key in self._cells(box):
-            found.update(self.buckets.get(key, ()))
+        buckets = self.buckets
+        for key in cells:
+            items = buckets.get(key)
+            if items:
+                found.update(items)
         return found
 
 
@@ -305,22 +303,37 @@ def _label_cost(
 ) -> float:
     """Badness of a label box of point ``i``: lines crossed, symbols and labels covered."""
     segment_grid, symbol_grid, label_grid = grids
+    cells = segment_grid.cells(box)
+    left, top, right, bottom = box
     total = rank * 0.5  # the order of preference breaks ties
-    for k in segment_grid.near(box):
+    for k in segment_grid.near(cells):
         a, b = segments[k]
-        if _segment_hits_box(*px[a], *px[b], box):
+        (x1, y1), (x2, y2) = px[a], px[b]
+        # both ends beyond one side of the box: it cannot cross (most candidates end here)
+        if (
+            (x1 < left and x2 < left)
+            or (x1 > right and x2 > right)
+            or (y1 < top and y2 < top)
+            or (y1 > bottom and y2 > bottom)
+        ):
+            continue
+        if _segment_hits_box(x1, y1, x2, y2, box):
             total += 20.0 if i in (a, b) else 8.0
-    for j in symbol_grid.near(box):
+    r = _SYMBOL_RADIUS_PX
+    for j in symbol_grid.near(cells):
         x, y = px[j]
-        symbol = (
-            x - _SYMBOL_RADIUS_PX,
-            y - _SYMBOL_RADIUS_PX,
-            x + _SYMBOL_RADIUS_PX,
-            y + _SYMBOL_RADIUS_PX,
-        )
-        if j != i and _overlap(box, symbol):
+        # the symbol's square and the box overlap
+        if j != i and min(right, x + r) > max(left, x - r) and min(bottom, y + r) > max(top, y - r):
             total += 40.0
-    return total + sum(_overlap(box, placed[k]) for k in label_grid.near(box)) * 0.5
+    covered = 0.0  # the area shared with each label placed nearby (written out: the inner loop)
+    for k in label_grid.near(cells):
+        other = placed[k]
+        w = (right if right < other[2] else other[2]) - (left if left > other[0] else other[0])
+        if w > 0:
+            h = (bottom if bottom < other[3] else other[3]) - (top if top > other[1] else other[1])
+            if h > 0:
+                covered += w * h
+    return total + covered * 0.5
 
 
 def _place_labels(
