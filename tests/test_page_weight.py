@@ -74,6 +74,12 @@ def test_plot_data_block_holds_no_geometry_the_svg_already_has(large):
     # drawn once, in the SVG: coordinates, titles, styles and symbols are not in the JSON
     assert not {"x1", "y1", "x2", "y2", "mx", "my", "title", "style"} & set(line)
     assert not {"x", "y", "title", "kind", "label"} & set(point)
+    assert "ellipse" not in point  # its axes are the ellipse's data-a and data-b
     # what the side panel shows is: every observation of the network once, by line
-    lines = [o["line"] for ln in data["lines"] for o in ln["detail"]]
+    at = data["observation_keys"].index("line")
+    lines = [o[at] for ln in data["lines"] for o in ln["detail"]]
     assert len(lines) == len(set(lines)) == 2052
+    # a point's figures are values with the index of their labels, shared by the points
+    labels = data["label_sets"][point["detail"][0]]
+    assert labels[:3] == ["Role", "East", "North"] and len(labels) == len(point["detail"][1])
+    assert len(data["label_sets"]) < 10

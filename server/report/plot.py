@@ -632,33 +632,49 @@ _SCRIPT_KEYS = (
     "exaggerations",
     "exaggeration_labels",
 )
+#: The figures of an observation in the side panel, in the order of its list in the script data.
+OBSERVATION_KEYS = (
+    "line",
+    "kind",
+    "marks",
+    "booked",
+    "reduction",
+    "observed",
+    "residual",
+    "w",
+    "status",
+)
 
 
 def script_data(data: dict[str, Any]) -> dict[str, Any]:
-    """The part of the plot the page's script needs: the panel's figures of each point and
-    line and the ellipse axes, by id.  The geometry, symbols and titles are in the SVG
-    already, so they are not written a second time."""
+    """The part of the plot the page's script needs: the side panel's figures of each point
+    and line, by id.  The geometry, symbols, titles and ellipse axes are in the SVG already,
+    so they are not written a second time; an observation's figures are a list in the order
+    of ``observation_keys`` and a list of (label, value) rows is its values with the index of
+    its labels in ``label_sets``, so no name is repeated for each of thousands of rows."""
+    label_sets: dict[tuple[str, ...], int] = {}
+
+    def packed(rows: list[list[str]]) -> list[Any]:
+        labels = tuple(label for label, _ in rows)
+        return [label_sets.setdefault(labels, len(label_sets)), [value for _, value in rows]]
+
     points = [
-        {
-            "id": p["id"],
-            "name": p["name"],
-            "detail": p["detail"],
-            **(
-                {"ellipse": {"a": p["ellipse"]["a"], "b": p["ellipse"]["b"]}}
-                if p["ellipse"]
-                else {}
-            ),
-        }
-        for p in data["points"]
+        {"id": p["id"], "name": p["name"], "detail": packed(p["detail"])} for p in data["points"]
     ]
     lines = [
         {
             "id": line["id"],
             "names": line["names"],
             "used": line["used"],
-            "detail": line["detail"],
-            **({"relative": line["relative"]} if line["relative"] else {}),
+            "detail": [[o[key] for key in OBSERVATION_KEYS] for o in line["detail"]],
+            **({"relative": packed(line["relative"])} if line["relative"] else {}),
         }
         for line in data["lines"]
     ]
-    return {**{key: data[key] for key in _SCRIPT_KEYS}, "points": points, "lines": lines}
+    return {
+        **{key: data[key] for key in _SCRIPT_KEYS},
+        "observation_keys": list(OBSERVATION_KEYS),
+        "label_sets": [list(labels) for labels in label_sets],
+        "points": points,
+        "lines": lines,
+    }
