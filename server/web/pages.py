@@ -107,14 +107,22 @@ def imported_from(project: Project) -> ImportedFrom | None:
     return ImportedFrom(project.source.filename, project.source.sha256)
 
 
+def finished_run(
+    request: Request, store: Store, project: Project, choice: StandardsChoice, queue: QueueDep
+) -> tuple[Run, AdjustmentResult]:
+    """The latest run and its result with the chosen presets (made once per run), or 404."""
+    run = store.latest_run(project.id)
+    result = run_parts.result(request, project, run, choice, queue)
+    if run is None or result is None:
+        raise HTTPException(status_code=404, detail="This project has no adjustment result.")
+    return run, result
+
+
 def finished_result(
     request: Request, store: Store, project: Project, choice: StandardsChoice, queue: QueueDep
 ) -> AdjustmentResult:
     """The latest result with the chosen presets (made once per run), or 404."""
-    result = run_parts.result(request, project, store.latest_run(project.id), choice, queue)
-    if result is None:
-        raise HTTPException(status_code=404, detail="This project has no adjustment result.")
-    return result
+    return finished_run(request, store, project, choice, queue)[1]
 
 
 def _demos(request: Request) -> dict[str, Path]:
@@ -300,11 +308,16 @@ def project_report(
     request: Request, choice: ChoiceDep, project: ProjectDep, store: StoreDep, queue: QueueDep
 ) -> Response:
     """The printable report, as a download; its inline style is allowed by hash only."""
-    result = finished_result(request, store, project, choice, queue)
+    run, result = finished_run(request, store, project, choice, queue)
     css = html_report.report_css()
     response = attachment(
         html_report.report_html(
-            result, presets=choice.presets, imported_from=imported_from(project)
+            result,
+            presets=choice.presets,
+            imported_from=imported_from(project),
+            # the rows and the plot the results page of this run has made already
+            observation_rows=run_parts.observation_rows(request, project, run, choice, result),
+            plot_data=run_parts.plot_data(request, project, run, choice, result),
         ),
         "text/html; charset=utf-8",
         download_name(project, "-report.html"),

@@ -1,11 +1,12 @@
 """What the pages of one stored run show, made once per run and kept for the next request.
 
 A finished run never changes, so its result (adjusted again when presets are chosen), its
-formatted observation rows and its drawn network plot are the same for every request that
-shows it.  They are kept in a small per-application cache (least recently used first out),
-keyed by the project, the run's id and creation time and the presets chosen: a new run, a
-re-run after decisions or another preset is another key.  Nothing user-typed is kept
-unescaped: the plot fragment is rendered by the autoescaping templates.
+formatted observation rows and its network plot (laid out and drawn) are the same for every
+request that shows it (the results and review pages, the downloads).  They are kept in a
+small per-application cache (least recently used first out), keyed by the project, the
+run's id and creation time and the presets chosen: a new run, a re-run after decisions or
+another preset is another key.  Nothing user-typed is kept unescaped: the plot fragment is
+rendered by the autoescaping templates.
 """
 
 from __future__ import annotations
@@ -26,9 +27,9 @@ from server.store.sqlite import Project, Run
 
 T = TypeVar("T")
 
-#: Entries kept per application: a result, its rows, its plot and each review page seen are
-#: entries of a run.
-CACHED_PARTS = 32
+#: Entries kept per application: a result, its rows, its plot's layout and drawing and each
+#: review page seen are entries of a run.
+CACHED_PARTS = 40
 #: Runs of more observations are not kept (their parts are made for each request as before):
 #: thirty-two entries of a few megabytes each, never of a hundred.
 MAX_KEPT_OBSERVATIONS = 20_000
@@ -95,14 +96,25 @@ def observation_rows(
     )
 
 
+def plot_data(
+    request: Request, project: Project, run: Run, choice: StandardsChoice, found: AdjustmentResult
+) -> dict[str, Any] | None:
+    """The network plot's layout with the side panel's figures (``network_plot_data``)."""
+
+    def lay_out() -> dict[str, Any] | None:
+        rows = observation_rows(request, project, run, choice, found)
+        return plot.network_plot_data(found, obs_rows=rows)
+
+    return _kept(request, run, ("plot data", *_key(project, run, choice)), lay_out)
+
+
 def plot_fragment(
     request: Request, project: Project, run: Run, choice: StandardsChoice, found: AdjustmentResult
 ) -> Markup:
     """The network plot of the results page (SVG, legend and the panel's data), rendered."""
 
     def draw() -> Markup:
-        rows = observation_rows(request, project, run, choice, found)
-        data = plot.network_plot_data(found, obs_rows=rows)
+        data = plot_data(request, project, run, choice, found)
         if data is None:
             return Markup("")
         template = request.app.state.templates.env.get_template("partials/network_plot.html")
