@@ -11,6 +11,8 @@ rendered by the autoescaping templates.
 
 from __future__ import annotations
 
+import threading
+from collections import OrderedDict
 from collections.abc import Callable, Sequence
 from typing import Any, TypeVar
 
@@ -22,25 +24,57 @@ from server.report import tables as report
 from server.results.result import AdjustmentResult
 from server.review.tau import TauTest
 from server.store import projects as service
-from server.store.projects import ProposalCache, ReviewState, Slots, StandardsChoice
+from server.store.projects import ReviewState, Slots, StandardsChoice
 from server.store.sqlite import Project, Run
 
 T = TypeVar("T")
 
-#: Entries kept per application: a result, its rows, its plot's layout and drawing and each
-#: review page seen are entries of a run.
-CACHED_PARTS = 40
-#: Runs of more observations are not kept (their parts are made for each request as before):
-#: thirty-two entries of a few megabytes each, never of a hundred.
-MAX_KEPT_OBSERVATIONS = 20_000
+#: What the cache may hold, in observations of the runs its entries belong to (a run's
+#: result, rows, plot layout, plot drawing and review pages are each about 1-2 kB per
+#: observation): some 60-100 MB at most, five or six runs of 2,000 observations.
+KEPT_OBSERVATIONS = 60_000
+#: Runs of more observations are not kept (their parts are made for each request as before).
+MAX_KEPT_OBSERVATIONS = 10_000
 
 
-def parts_cache() -> ProposalCache:
+class RunPartsCache:
+    """Least recently used first out, bounded by the observations of what it holds.
+
+    Shared by the worker threads: a value is made outside the lock (it may take a second);
+    two threads asking for the same key at once may both make it, and one value is kept.
+    """
+
+    def __init__(self, budget: int = KEPT_OBSERVATIONS) -> None:
+        self._budget = budget
+        self._held = 0
+        self._values: OrderedDict[tuple[Any, ...], tuple[int, Any]] = OrderedDict()
+        self._lock = threading.Lock()
+
+    def get(self, key: tuple[Any, ...], weight: int, make: Callable[[], T]) -> T:
+        """The value kept under ``key``, else ``make()``, kept if it fits."""
+        with self._lock:
+            if key in self._values:
+                self._values.move_to_end(key)
+                return self._values[key][1]  # type: ignore[no-any-return]
+        value = make()
+        if weight > self._budget:
+            return value
+        with self._lock:
+            previous = self._values.pop(key, None)
+            self._held += weight - (previous[0] if previous else 0)
+            self._values[key] = (weight, value)
+            while self._held > self._budget:
+                _, (dropped, _) = self._values.popitem(last=False)
+                self._held -= dropped
+        return value
+
+
+def parts_cache() -> RunPartsCache:
     """A new cache for ``app.state.run_parts``."""
-    return ProposalCache(size=CACHED_PARTS)
+    return RunPartsCache()
 
 
-def _cache(request: Request) -> ProposalCache:
+def _cache(request: Request) -> RunPartsCache:
     return request.app.state.run_parts  # type: ignore[no-any-return]
 
 
@@ -53,7 +87,7 @@ def _kept(request: Request, run: Run, key: tuple[Any, ...], make: Callable[[], T
     observations = (run.summary or {}).get("observations")
     if not isinstance(observations, int) or observations > MAX_KEPT_OBSERVATIONS:
         return make()
-    return _cache(request).get(key, make)  # type: ignore[no-any-return]
+    return _cache(request).get(key, max(observations, 1), make)
 
 
 def latest_completed(runs: Sequence[Run]) -> Run | None:
