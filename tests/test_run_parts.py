@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import warnings
 from pathlib import Path
 
@@ -78,3 +79,27 @@ def test_pages_and_downloads_of_a_stored_run_make_its_parts_once(tmp_path, count
         client.get(url + "/report.html?relative=alta-nsps-2026")
         client.get(url + "/points.csv?relative=alta-nsps-2026")
         assert counted == {"plot": 2, "adjusted": 1}
+
+
+def test_review_page_keeps_its_state_until_a_decision_is_queued_or_undone(tmp_path, monkeypatch):
+    from server.web import run_parts
+
+    loads = []
+    load = run_parts.load_state
+    monkeypatch.setattr(run_parts, "load_state", lambda *a: loads.append(1) or load(*a))
+    with TestClient(create_app(tmp_path / "data")) as client:
+        url = client.post("/demos/leveling_blunder", follow_redirects=False).headers["location"]
+        page = client.get(url + "/review").text
+        assert client.get(url + "/review").text == page and len(loads) == 1
+        token = re.search(r'name="token" value="([0-9a-f]{32})"', page).group(1)
+        line = re.findall(r'id="line-(\d+)"', page)[0]
+        queued = client.post(
+            url + "/edits",
+            data={"token": token, "line": line, "action": "exclude", "reason": "checked"},
+        )
+        assert queued.status_code == 200 and "Queued: leave out" in queued.text
+        assert len(loads) == 2  # the queue changed: read afresh
+        undo = re.search(r'action="(/projects/[0-9a-f]+/edits/\d+/undo)"', queued.text).group(1)
+        undone = client.post(undo, data={"token": token})
+        assert undone.status_code == 200 and "Queued: leave out" not in undone.text
+        assert len(loads) == 2  # the queue is as at first: that state was kept

@@ -11,6 +11,7 @@ rendered by the autoescaping templates.
 
 from __future__ import annotations
 
+import dataclasses
 import threading
 from collections import OrderedDict
 from collections.abc import Callable, Sequence
@@ -24,8 +25,8 @@ from server.report import tables as report
 from server.results.result import AdjustmentResult
 from server.review.tau import TauTest
 from server.store import projects as service
-from server.store.projects import ReviewState, Slots, StandardsChoice
-from server.store.sqlite import Project, Run
+from server.store.projects import ReviewState, Slots, StandardsChoice, load_state
+from server.store.sqlite import Project, Run, Store
 
 T = TypeVar("T")
 
@@ -50,14 +51,20 @@ class RunPartsCache:
         self._values: OrderedDict[tuple[Any, ...], tuple[int, Any]] = OrderedDict()
         self._lock = threading.Lock()
 
-    def get(self, key: tuple[Any, ...], weight: int, make: Callable[[], T]) -> T:
-        """The value kept under ``key``, else ``make()``, kept if it fits."""
+    def get(
+        self,
+        key: tuple[Any, ...],
+        weight: int,
+        make: Callable[[], T],
+        keep: Callable[[T], bool] | None = None,
+    ) -> T:
+        """The value kept under ``key``, else ``make()``, kept if it fits (and ``keep`` of it)."""
         with self._lock:
             if key in self._values:
                 self._values.move_to_end(key)
                 return self._values[key][1]  # type: ignore[no-any-return]
         value = make()
-        if weight > self._budget:
+        if weight > self._budget or (keep is not None and not keep(value)):
             return value
         with self._lock:
             previous = self._values.pop(key, None)
@@ -82,12 +89,18 @@ def _key(project: Project, run: Run, choice: StandardsChoice) -> tuple[Any, ...]
     return (project.id, run.id, run.created, choice.query)
 
 
-def _kept(request: Request, run: Run, key: tuple[Any, ...], make: Callable[[], T]) -> T:
+def _kept(
+    request: Request,
+    run: Run,
+    key: tuple[Any, ...],
+    make: Callable[[], T],
+    keep: Callable[[T], bool] | None = None,
+) -> T:
     """``make()`` kept under ``key``, unless the run is too large to keep."""
     observations = (run.summary or {}).get("observations")
     if not isinstance(observations, int) or observations > MAX_KEPT_OBSERVATIONS:
         return make()
-    return _cache(request).get(key, max(observations, 1), make)
+    return _cache(request).get(key, max(observations, 1), make, keep)
 
 
 def latest_completed(runs: Sequence[Run]) -> Run | None:
@@ -172,3 +185,28 @@ def review_rows(
     base = state.base
     key = ("review", state.project.id, base.id, base.created, page.start, page.stop)
     return _kept(request, base, key, make)
+
+
+def review_state(request: Request, store: Store, project: Project, runs: list[Run]) -> ReviewState:
+    """The review's state (``load_state``: the run under review, its result, the decisions in
+    force and queued, the field book they give), kept per run under review and queue.
+
+    A decision queued or undone changes the queue and a re-run the run under review, so
+    either is another key; a state read while another run finished or the queue changed
+    is used for this request and not kept.  Forms that change the review read the state
+    afresh (``load_state``); this serves the page only."""
+    base = next((r for r in reversed(runs) if r.finished), None)
+    if base is None:
+        return load_state(store, project)
+    pending = tuple(p.id for p in store.pending_edits(project.id))
+    key = ("review state", project.id, base.id, base.created, pending)
+
+    def current(state: ReviewState) -> bool:
+        return (
+            state.base is not None
+            and (state.base.id, state.base.created) == (base.id, base.created)
+            and tuple(p.id for p in state.pending) == pending
+        )
+
+    state = _kept(request, base, key, lambda: load_state(store, project), current)
+    return dataclasses.replace(state, project=project)  # the project as read for this request
