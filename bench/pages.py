@@ -14,7 +14,7 @@ sent without and with gzip (the service compresses pages; the compressed size is
 the bytes the client actually downloaded) and the median server time of
 ``--repeat`` requests after one warm-up (the time of the whole request through
 the application, which for a stored result includes reading it from the store),
-with the fastest and the median CPU time of the process (steadier on a shared
+with the fastest one and the median CPU time of the process (steadier on a shared
 machine: the request runs on this process's threads, the client's part is small),
 and the median time of a first view (the application's cache of the run's parts
 emptied before each of three requests: the page as it is first opened after
@@ -51,7 +51,7 @@ with warnings.catch_warnings():
     warnings.simplefilter("ignore")
     from fastapi.testclient import TestClient
 
-#: The projects measured: name -> (points asked of the generator, fixed every).
+#: The projects measured: name -> points asked of ``networks.horizontal``.
 PROJECTS = {"typical": 200, "2000": 361}
 PAGES = {"results": "", "review": "/review", "report": "/report.html"}
 BUDGET_KB = 300
