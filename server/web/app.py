@@ -25,6 +25,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from server import __version__
 from server.errors import SurveyError
+from server.report.plot import script_data
 from server.resources import DEMO_DIR, STATIC_DIR, TEMPLATE_DIR
 from server.results.result import CAUTION
 from server.settings import (
@@ -39,6 +40,7 @@ from server.store.sqlite import RunGone, Store
 from server.web import api, design, interrupted, monitoring, pages, relative, review
 from server.web.dependencies import busy, survey_error_payload
 from server.web.jobs import AdjustmentQueue, Jobs, QueueFull
+from server.web.run_parts import parts_cache
 
 logger = logging.getLogger("stationfit.web")
 
@@ -93,6 +95,7 @@ def make_templates() -> Jinja2Templates:
     env.globals.update(caution=CAUTION, version=__version__)
     env.filters["when"] = _when
     env.filters["sentence"] = _sentence
+    env.filters["plot_script"] = script_data
     return Jinja2Templates(env=env)
 
 
@@ -547,6 +550,7 @@ def create_app(
     app.state.jobs = Jobs(AdjustmentQueue(*service_queue(adjustments_at_once, max_waiting)))
     # the review's second opinions (robust, snooping) of recent runs, shared by worker threads
     app.state.proposals = ProposalCache()
+    app.state.run_parts = parts_cache()  # results, rows and plots of recent runs
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
     for module in (pages, api, review, relative, interrupted, design, monitoring):
