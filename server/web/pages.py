@@ -29,8 +29,8 @@ from server.results.result import AdjustmentResult
 from server.store import projects as service
 from server.store.projects import StandardsChoice, Upload, display_name
 from server.store.sqlite import Project, Store
+from server.web import access, imports
 from server.web import dependencies as deps
-from server.web import imports
 from server.web.dependencies import (
     CheckedForm,
     ChoiceDep,
@@ -55,7 +55,12 @@ async def _submit_in_background(request: Request, upload: Upload) -> str:
     store, limits, jobs = deps.get_store(request), deps.get_limits(request), deps.get_jobs(request)
     deps.room_in_queue(jobs.queue)
     project_id, book, run_id, _ = await run_in_threadpool(
-        service.store_upload, store, upload, request.app.state.max_projects, limits
+        service.store_upload,
+        store,
+        upload,
+        request.app.state.max_projects,
+        limits,
+        access.actor(request),
     )
     if book is not None and run_id is not None:
         job = jobs.start(
@@ -71,7 +76,11 @@ async def _import_in_background(request: Request, upload: Upload) -> Response:
     store = deps.get_store(request)
     try:
         project_id = await run_in_threadpool(
-            imports.store_import, store, upload, request.app.state.max_projects
+            imports.store_import,
+            store,
+            upload,
+            request.app.state.max_projects,
+            access.actor(request),
         )
     except FieldbookError as exc:
         return import_refused(request, upload.filename, exc)
@@ -224,7 +233,9 @@ async def adjust_imported(request: Request, project: ProjectDep, form: CheckedFo
     store, limits, jobs = deps.get_store(request), deps.get_limits(request), deps.get_jobs(request)
     if not store.runs(project.id):
         deps.room_in_queue(jobs.queue)
-        book, run_id = await run_in_threadpool(imports.start_imported_run, store, project, limits)
+        book, run_id = await run_in_threadpool(
+            imports.start_imported_run, store, project, limits, access.actor(request)
+        )
         if book is not None and run_id is not None:
             job = jobs.start(
                 run_id, lambda progress: service.adjust_run(store, run_id, book, progress, limits)
@@ -238,14 +249,18 @@ async def discard_import(request: Request, project: ProjectDep, form: CheckedFor
     """Go back: an imported project not yet adjusted is deleted (restorable like any other)."""
     store = deps.get_store(request)
     if project.source is not None and not store.runs(project.id):
-        store.delete_project(project.id)
+        store.delete_project(project.id, actor=access.actor(request))
     return RedirectResponse("/", status_code=303)
 
 
 @router.get("/projects", response_class=HTMLResponse)
 def project_list(request: Request, store: StoreDep) -> HTMLResponse:
     """Every stored project with its latest verdict."""
-    return render(request, "projects.html", {"projects": service.project_list_items(store)})
+    return render(
+        request,
+        "projects.html",
+        {"projects": service.project_list_items(store, access.viewer(request))},
+    )
 
 
 @router.get("/projects/{project_id}", response_class=HTMLResponse)
