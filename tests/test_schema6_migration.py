@@ -68,9 +68,7 @@ def _schema_5_folder(folder: Path) -> dict[str, str]:
     with closing(sqlite3.connect(old)) as raw:
         raw.execute("ATTACH DATABASE ? AS today", (str(work.path),))
         for table, columns in SCHEMA_5_COLUMNS.items():
-            raw.execute(
-                f"INSERT INTO {table} ({columns}) SELECT {columns} FROM today.{table}"
-            )
+            raw.execute(f"INSERT INTO {table} ({columns}) SELECT {columns} FROM today.{table}")
         raw.commit()
         raw.execute("DETACH DATABASE today")
     return ids

@@ -20,8 +20,9 @@ from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import RedirectResponse, Response
 from starlette.concurrency import run_in_threadpool
 
+from server.report.origin import ApprovalNote
 from server.store.projects import display_name
-from server.store.sqlite import NotApprovable
+from server.store.sqlite import Approval, NotApprovable, Store, TrailEntry
 from server.web import access
 from server.web.dependencies import CheckedForm, ProjectDep, RowId, StoreDep, form_text, render
 
@@ -55,6 +56,62 @@ async def approve_run(
         who.name,
     )
     return RedirectResponse(f"/projects/{project.id}/review#approval", status_code=303)
+
+
+def note(approval: Approval) -> ApprovalNote:
+    """What the reports print of an approval."""
+    return ApprovalNote(
+        approval.approved_by, approval.approved, approval.run_number, approval.fieldbook_sha256
+    )
+
+
+def approval_of(store: Store, project_id: str, run_id: int | None) -> ApprovalNote | None:
+    """The approval of one run, as the reports print it (None: not approved)."""
+    if run_id is None:
+        return None
+    found = store.approvals(project_id).get(run_id)
+    return None if found is None else note(found)
+
+
+#: What each trail event says, after who did it.
+_EVENT_WORDS = {
+    "created": "stored the project",
+    "run": "started",
+    "proposed": "proposed a decision on",
+    "withdrawn": "withdrew the decision on",
+    "approved": "approved for issue",
+    "deleted": "deleted the project",
+    "restored": "restored the project",
+    "shared": "shared the project with",
+}
+
+
+def trail_rows(entries: list[TrailEntry]) -> list[dict[str, str]]:
+    """The review trail as the pages list it: when, who (and their role), what."""
+    from server.store.accounts import ROLE_TITLES
+
+    rows = []
+    for entry in entries:
+        who = entry.actor or "the workstation user"
+        role = ROLE_TITLES.get(entry.role, "")
+        rows.append(
+            {
+                "when": entry.created,
+                "who": f"{who} ({role})" if entry.actor and role else who,
+                "what": f"{_EVENT_WORDS.get(entry.event, entry.event)} {entry.detail}".strip(),
+            }
+        )
+    return rows
+
+
+def page_context(request: Request, store: Store, project_id: str) -> dict[str, object]:
+    """What the approval and trail panels of the project and review pages show."""
+    return {
+        "approvals": {k: note(v) for k, v in store.approvals(project_id).items()},
+        "trail": trail_rows(store.trail(project_id)),
+        "shares": store.shares(project_id),
+        "who": access.signed_in(request),
+    }
 
 
 _NAMES = re.compile(r"[\s,;]+")

@@ -21,7 +21,7 @@ from server.formats.geojson import NO_CRS, GeoJsonUnavailable, geojson_text
 from server.report import csv_export, plot
 from server.report import html as html_report
 from server.report import tables as report
-from server.report.origin import ImportedFrom
+from server.report.origin import ApprovalNote, ImportedFrom
 from server.report.pdf import report_pdf
 from server.report.tables import Page
 from server.report.text import report_text
@@ -29,7 +29,7 @@ from server.results.result import AdjustmentResult
 from server.store import projects as service
 from server.store.projects import StandardsChoice, Upload, display_name
 from server.store.sqlite import Project, Store
-from server.web import access, imports
+from server.web import access, approval, imports
 from server.web import dependencies as deps
 from server.web.dependencies import (
     CheckedForm,
@@ -114,6 +114,18 @@ def imported_from(project: Project) -> ImportedFrom | None:
     if project.source is None:
         return None
     return ImportedFrom(project.source.filename, project.source.sha256)
+
+
+def approved(store: Store, project: Project, choice: StandardsChoice) -> ApprovalNote | None:
+    """The approval of the run a report is of (the latest), if it was approved for issue.
+
+    A report with accuracy presets chosen afterwards is a new evaluation that the approval
+    did not cover: it carries none.
+    """
+    if choice.presets:
+        return None
+    run = store.latest_run(project.id)
+    return approval.approval_of(store, project.id, run.id if run is not None else None)
 
 
 def finished_result(
@@ -294,6 +306,7 @@ def project_page(
     run = store.latest_run(project.id)
     result = service.result_with_presets(project, run, choice, jobs.queue)
     context: dict[str, Any] = {
+        **approval.page_context(request, store, project.id),
         "project": project,
         "run": run,
         "error": None,
@@ -318,7 +331,10 @@ def project_report(
     css = html_report.report_css()
     response = attachment(
         html_report.report_html(
-            result, presets=choice.presets, imported_from=imported_from(project)
+            result,
+            presets=choice.presets,
+            imported_from=imported_from(project),
+            approval=approved(store, project, choice),
         ),
         "text/html; charset=utf-8",
         download_name(project, "-report.html"),
@@ -337,7 +353,12 @@ def project_report_pdf(
     """The report as PDF, drawn on the server."""
     result = finished_result(store, project, choice, queue)
     return attachment(
-        report_pdf(result, presets=choice.presets, imported_from=imported_from(project)),
+        report_pdf(
+            result,
+            presets=choice.presets,
+            imported_from=imported_from(project),
+            approval=approved(store, project, choice),
+        ),
         "application/pdf",
         download_name(project, "-report.pdf"),
     )
@@ -350,7 +371,7 @@ def project_report_text(
     """The plain-text summary, as the terminal prints it."""
     result = finished_result(store, project, choice, queue)
     return attachment(
-        report_text(result, imported_from(project)),
+        report_text(result, imported_from(project), approved(store, project, choice)),
         "text/plain; charset=utf-8",
         download_name(project, "-report.txt"),
     )

@@ -39,7 +39,7 @@ from server.store import projects as service
 from server.store.projects import ReviewState, display_name
 from server.store.projects import load_state as _load_state
 from server.store.sqlite import AlreadyQueued, DecisionsChanged, Project, is_valid_id
-from server.web import access
+from server.web import access, approval
 from server.web.dependencies import (
     CheckedForm,
     ProjectDep,
@@ -174,6 +174,7 @@ def _review_context(
         "token": project.form_token,
         "in_force": review.decision_rows(state.in_force, result),
         "pending": review.decision_rows(state.pending_edits, result, [p.id for p in state.pending]),
+        **approval.page_context(request, store, project.id),
     }
     if result is None:
         return context
