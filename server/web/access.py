@@ -24,6 +24,7 @@ import hmac
 import json
 import logging
 import secrets
+import sqlite3
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -353,18 +354,24 @@ class AccessMiddleware:
         router_app: Any,
         settings: AccessSettings,
         error_page: Callable[[Scope, int, str, str], Response],
+        store_failure: Callable[[Scope, sqlite3.Error], Response],
     ) -> None:
         self.app = app
         self.router_app = router_app
         self.settings = settings
         self.error_page = error_page
+        self.store_failure = store_failure
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
         cookie = _cookie(Headers(scope=scope).get("cookie", ""), SESSION_COOKIE)
-        who, why = await run_in_threadpool(resolve, self.settings, cookie)
+        try:
+            who, why = await run_in_threadpool(resolve, self.settings, cookie)
+        except sqlite3.Error as exc:  # no store, no knowing who may: refused, with a 503
+            await self.store_failure(scope, exc)(scope, receive, send)
+            return
         scope.setdefault("state", {})
         if who is not None:
             scope["state"]["principal"] = who

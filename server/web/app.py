@@ -412,38 +412,42 @@ def _install_request_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
         return await http_error(request, StarletteHTTPException(507, str(exc)))
 
 
+def storage_failure(templates: Jinja2Templates, scope: Scope, exc: sqlite3.Error) -> Response:
+    """503: the store cannot be read or written (the folder and reason go to the log only)."""
+    request = Request(scope)
+    folder = request.app.state.store.path.parent
+    logger.error(
+        "%s %s: the data folder %s cannot be used (%s); check that it exists, "
+        "that the service's user may write to it and that the disk has room",
+        request.method,
+        request.url.path,
+        folder,
+        exc,
+    )
+    if request.method in UNSAFE_METHODS:
+        message = (
+            "Your request could not be stored: the service cannot write to its "
+            "data folder. Nothing was saved. Please tell the administrator; the "
+            "service's log names the folder and the reason."
+        )
+    else:
+        message = (
+            "The stored projects cannot be read right now: the service cannot use "
+            "its data folder. Please tell the administrator; the service's log "
+            "names the folder and the reason."
+        )
+    if is_api(request.url.path):
+        return JSONResponse({"error": message}, status_code=503)
+    return _error_page(templates, scope, 503, "The project store is unavailable", message)
+
+
 def _install_failure_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
     """The service itself failed: its store is unusable, or an unexpected error (500)."""
 
     @app.exception_handler(sqlite3.Error)
     async def storage_error(request: Request, exc: sqlite3.Error) -> Response:
         """The project store cannot be read or written: say so, and name the folder in the log."""
-        folder = request.app.state.store.path.parent
-        logger.error(
-            "%s %s: the data folder %s cannot be used (%s); check that it exists, "
-            "that the service's user may write to it and that the disk has room",
-            request.method,
-            request.url.path,
-            folder,
-            exc,
-        )
-        if request.method in UNSAFE_METHODS:
-            message = (
-                "Your request could not be stored: the service cannot write to its "
-                "data folder. Nothing was saved. Please tell the administrator; the "
-                "service's log names the folder and the reason."
-            )
-        else:
-            message = (
-                "The stored projects cannot be read right now: the service cannot use "
-                "its data folder. Please tell the administrator; the service's log "
-                "names the folder and the reason."
-            )
-        if is_api(request.url.path):
-            return JSONResponse({"error": message}, status_code=503)
-        return _error_page(
-            templates, request.scope, 503, "The project store is unavailable", message
-        )
+        return storage_failure(templates, request.scope, exc)
 
     @app.exception_handler(Exception)
     async def server_error(request: Request, exc: Exception) -> Response:
@@ -631,6 +635,7 @@ def create_app(
         error_page=lambda scope, status, heading, message: _error_page(
             templates, scope, status, heading, message
         ),
+        store_failure=lambda scope, exc: storage_failure(templates, scope, exc),
     )
     # Before the upload limit, so another site's request is refused without reading its body.
     app.add_middleware(SameOriginMiddleware, templates=templates)
