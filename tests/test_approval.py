@@ -121,6 +121,16 @@ def test_an_approved_run_is_frozen_and_a_change_makes_a_new_run(office):
     assert "Run #3 is not approved for issue" in review and "Run #2 was approved by sam" in review
     assert "Approve run #3 for issue" in review
     assert "Approved for issue" not in sam.get(f"/projects/{project}/report.txt").text
+    # the approved run's own reports stay at hand, and say so; run #3's say nothing of it
+    kept = tom.get(f"/projects/{project}/runs/{second.id}/report.txt")
+    assert kept.status_code == 200 and "run2-report.txt" in kept.headers["content-disposition"]
+    assert SENTENCE.search(kept.text).group(2) == "2"
+    assert "Approved" not in tom.get(f"/projects/{project}/runs/{third.id}/report.txt").text
+    assert SENTENCE.search(
+        " ".join(
+            _pdf_text(tom.get(f"/projects/{project}/runs/{second.id}/report.pdf").content).split()
+        )
+    )
 
     trail = [(t.actor, t.event, t.detail) for t in store.trail(project)]
     assert trail[0][:2] == ("tom", "created")

@@ -130,6 +130,10 @@ ROUTE_RULES: dict[tuple[str, str], str] = {
     # approval and sharing (server/web/approval.py)
     ("POST", "/projects/{project_id}/runs/{run_id}/approve"): APPROVE,
     ("POST", "/projects/{project_id}/sharing"): MANAGE,
+    # one run's reports (server/web/run_reports.py)
+    ("GET", "/projects/{project_id}/runs/{run_id}/report.html"): READ,
+    ("GET", "/projects/{project_id}/runs/{run_id}/report.pdf"): READ,
+    ("GET", "/projects/{project_id}/runs/{run_id}/report.txt"): READ,
     # design and monitoring
     ("GET", "/projects/{project_id}/design"): READ,
     ("GET", "/projects/{project_id}/design.json"): READ,

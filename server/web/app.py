@@ -48,6 +48,7 @@ from server.web import (
     pages,
     relative,
     review,
+    run_reports,
     sign_in,
 )
 from server.web.dependencies import busy, survey_error_payload
@@ -623,6 +624,7 @@ def create_app(
         monitoring,
         sign_in,
         approval,
+        run_reports,
     ):
         app.include_router(module.router)
     _install_handlers(app, templates)
