@@ -132,6 +132,9 @@ def test_an_approved_run_is_frozen_and_a_change_makes_a_new_run(office):
         )
     )
 
+    runs = sam.get(f"/api/projects/{project}").json()["runs"]
+    assert [(r["number"], r["started_by"]) for r in runs] == [(1, "tom"), (2, "tom"), (3, "tom")]
+    assert [r["approval"] and r["approval"]["approved_by"] for r in runs] == [None, "sam", None]
     trail = [(t.actor, t.event, t.detail) for t in store.trail(project)]
     assert trail[0][:2] == ("tom", "created")
     assert ("tom", "run", "run #2") in trail and ("sam", "approved", "run #2") in trail

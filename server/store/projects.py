@@ -38,7 +38,7 @@ from server.results.result import AdjustmentResult
 from server.review.standards import PRESETS, Preset, with_presets
 from server.settings import WorkLimits
 from server.store.designs import is_design
-from server.store.sqlite import NO_EDITS, Actor, PendingEdit, Project, Run, Store
+from server.store.sqlite import NO_EDITS, Actor, Approval, PendingEdit, Project, Run, Store
 
 logger = logging.getLogger("stationfit.web")
 
@@ -397,6 +397,7 @@ def project_detail_json(store: Store, project: Project) -> dict[str, Any]:
         if project.source is None
         else {"filename": project.source.filename, "sha256": project.source.sha256}
     )
+    approvals = store.approvals(project.id)
     body["runs"] = [
         {
             "id": r.id,
@@ -405,10 +406,25 @@ def project_detail_json(store: Store, project: Project) -> dict[str, Any]:
             "status": r.status,
             "edits": r.edits,
             "summary": r.summary,
+            # who started it (null: before accounts; "" on the workstation) and its approval
+            "started_by": r.started_by,
+            "approval": approval_json(approvals.get(r.id)),
         }
         for r in store.runs(project.id)
     ]
     return body
+
+
+def approval_json(approval: Approval | None) -> dict[str, Any] | None:
+    """A run's approval for issue in the JSON API (null when it is not approved)."""
+    if approval is None:
+        return None
+    return {
+        "approved_by": approval.approved_by,
+        "approved": approval.approved,
+        "run_number": approval.run_number,
+        "fieldbook_sha256": approval.fieldbook_sha256,
+    }
 
 
 def run_json(run: Run) -> dict[str, Any]:
