@@ -15,6 +15,7 @@ import re
 import uuid
 import warnings
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -356,3 +357,19 @@ def test_a_technician_may_not_delete_another_ones_project(office):
     )
     assert response.status_code == 403
     assert office.app.state.store.get_project(project) is not None
+
+
+def test_the_roles_table_in_the_security_docs_is_this_table():
+    """docs/security.md lists every route with a mark per role; it must say what is enforced."""
+    docs = (Path(__file__).resolve().parents[1] / "docs" / "security.md").read_text()
+    row = re.compile(r"^\| `(GET|POST) ([^`]+)` \| [^|]+ \| (.+) \|$")
+    documented = {}
+    for line in docs.splitlines():
+        found = row.match(line)
+        if found:
+            marks = [m.strip() for m in found.group(3).split("|")]
+            roles = [r for r, m in zip(ACCOUNTS, marks, strict=True) if m in ("✓", "own")]
+            documented[(found.group(1), found.group(2))] = frozenset(roles)
+    assert set(documented) == set(EXPECTED)
+    for key, allowed in EXPECTED.items():
+        assert documented[key] == allowed - {ANONYMOUS}, key
