@@ -105,6 +105,16 @@ def test_a_password_role_or_status_change_ends_the_sessions(office):
     assert _sign_in(client, "tom", new).status_code == 303
 
 
+def test_an_accounts_pages_are_never_kept_by_a_cache(office):
+    _, client = office
+    _sign_in(client)
+    for path in ("/projects", "/api/projects", "/"):
+        response = client.get(path)
+        assert response.headers["cache-control"] == "no-store", path
+        assert "Cookie" in response.headers["vary"]
+    assert "no-store" not in client.get("/static/app.css").headers.get("cache-control", "")
+
+
 def test_a_forged_or_altered_cookie_is_not_a_session(office):
     _, client = office
     good = _sign_in(client).cookies[SESSION_COOKIE]

@@ -34,9 +34,9 @@ from urllib.parse import quote
 from fastapi import Request
 from fastapi.responses import JSONResponse, RedirectResponse, Response
 from starlette.concurrency import run_in_threadpool
-from starlette.datastructures import Headers
+from starlette.datastructures import Headers, MutableHeaders
 from starlette.routing import Match, Mount
-from starlette.types import ASGIApp, Receive, Scope, Send
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from server.store.accounts import ROLE_TITLES, Accounts, User
 from server.store.sqlite import WORKSTATION, Actor, Project
@@ -401,12 +401,26 @@ class AccessMiddleware:
         if response is not None:
             await response(scope, receive, send)
             return
-        await self.app(scope, receive, send)
+        await self.app(scope, receive, _private(send) if rule != PUBLIC else send)
 
     def _refused(self, scope: Scope, message: str) -> Response:
         if _is_api(scope.get("path", "/")):
             return JSONResponse({"error": message}, status_code=403)
         return self.error_page(scope, 403, "Not allowed for your role", message)
+
+
+def _private(send: Send) -> Send:
+    """Mark an account's pages and downloads as not to be kept by any cache (a shared proxy
+    must not serve them to another, nor the browser show them again after signing out)."""
+
+    async def send_private(message: Message) -> None:
+        if message["type"] == "http.response.start":
+            headers = MutableHeaders(scope=message)
+            headers["Cache-Control"] = "no-store"
+            headers.append("Vary", "Cookie")
+        await send(message)
+
+    return send_private
 
 
 def _cookie(header: str, name: str) -> str | None:
