@@ -25,7 +25,15 @@ with warnings.catch_warnings():  # starlette's notice about httpx, as tests/test
     from fastapi.testclient import TestClient
 
 from server.web import create_app
-from server.web.access import PUBLIC, ROUTE_RULES, SESSION_COOKIE, flat_routes
+from server.web.access import (
+    ANONYMOUS_PRINCIPAL,
+    PUBLIC,
+    READ,
+    ROUTE_RULES,
+    SESSION_COOKIE,
+    WORKSTATION_PRINCIPAL,
+    flat_routes,
+)
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
 
 PASSWORD = "level loops close nicely"
@@ -319,6 +327,17 @@ def test_lists_show_only_what_the_account_may_see(office):
         assert compared.status_code == 422 and "no project" in compared.text
     listed = {p["id"] for p in office.send("surveyor", "GET", "/api/projects").json()["projects"]}
     assert {office.shared, office.private} <= listed
+
+
+def test_a_request_without_a_session_sees_no_project_even_where_it_is_let_through(office):
+    """The principal of a signed-out request (public routes only) may read nothing, and the
+    store gives it nothing: a public route added later cannot leak a project."""
+    store = office.app.state.store
+    nobody = ANONYMOUS_PRINCIPAL
+    assert not nobody.workstation and not nobody.may(READ) and nobody.viewer is not None
+    assert store.list_projects(nobody.viewer) == []
+    assert store.get_project(office.shared, visible_to=nobody.viewer) is None
+    assert store.list_projects(WORKSTATION_PRINCIPAL.viewer) != []  # the workstation: all
 
 
 def test_static_files_are_served_to_the_sign_in_page(office):

@@ -9,8 +9,10 @@ disabled account counts as configured, so disabling everyone never reopens the s
 
 from __future__ import annotations
 
+import math
 import re
 import secrets
+import time
 from dataclasses import dataclass
 from datetime import UTC, datetime
 
@@ -137,16 +139,27 @@ def generated_password() -> str:
 class Accounts:
     """The accounts in one store's database."""
 
+    #: Seconds a "no accounts" answer is trusted before the database is asked again: an
+    #: account added from the command line takes effect within this, without every
+    #: request of a workstation paying a query.
+    RECHECK_SECONDS = 1.0
+
     def __init__(self, store: Store) -> None:
         self.store = store
         self._configured = False
+        self._checked = -math.inf
 
     def configured(self) -> bool:
         """True once any account exists (then it stays true: accounts are never deleted)."""
-        if not self._configured:
+        if not self._configured and not self.known_workstation():
             with self.store.reading() as db:
                 self._configured = db.execute("SELECT 1 FROM users LIMIT 1").fetchone() is not None
+            self._checked = time.monotonic()
         return self._configured
+
+    def known_workstation(self) -> bool:
+        """True when the store was found without accounts within ``RECHECK_SECONDS`` (no I/O)."""
+        return not self._configured and time.monotonic() - self._checked < self.RECHECK_SECONDS
 
     # -- reading ---------------------------------------------------------------------
 

@@ -245,8 +245,10 @@ _VISIBLE = (
 
 def _visibility(viewer: Actor | None) -> tuple[str, tuple[Any, ...]]:
     """(`` AND condition``, parameters) limiting a query over ``projects p`` to ``viewer``."""
-    if viewer is None or viewer.user_id is None:
+    if viewer is None or viewer == WORKSTATION:
         return "", ()
+    if viewer.user_id is None:  # no account (signed out): nothing at all
+        return " AND 0", ()
     return " AND " + _VISIBLE, (viewer.user_id, viewer.user_id)
 
 

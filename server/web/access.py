@@ -155,7 +155,7 @@ class Principal:
 
     @property
     def workstation(self) -> bool:
-        return self.actor.user_id is None
+        return self.actor.user_id is None and self.actor.role == WORKSTATION.role
 
     @property
     def name(self) -> str:
@@ -185,6 +185,8 @@ class Principal:
 
 
 WORKSTATION_PRINCIPAL = Principal(WORKSTATION, WORKSTATION_CAPABILITIES)
+#: A request with accounts but no session (only public routes let it through): may nothing.
+ANONYMOUS_PRINCIPAL = Principal(Actor(None, "", "signed out"), frozenset())
 
 
 # -- session cookies --------------------------------------------------------------------
@@ -371,14 +373,17 @@ class AccessMiddleware:
             await self.app(scope, receive, send)
             return
         cookie = _cookie(Headers(scope=scope).get("cookie", ""), SESSION_COOKIE)
+        who: Principal | None
         try:
-            who, why = await run_in_threadpool(resolve, self.settings, cookie)
+            if self.settings.accounts.known_workstation():  # no database to ask
+                who, why = WORKSTATION_PRINCIPAL, ""
+            else:
+                who, why = await run_in_threadpool(resolve, self.settings, cookie)
         except sqlite3.Error as exc:  # no store, no knowing who may: refused, with a 503
             await self.store_failure(scope, exc)(scope, receive, send)
             return
         scope.setdefault("state", {})
-        if who is not None:
-            scope["state"]["principal"] = who
+        scope["state"]["principal"] = who if who is not None else ANONYMOUS_PRINCIPAL
         if who is not None and who.workstation:  # no accounts: everything as before them
             await self.app(scope, receive, send)
             return
