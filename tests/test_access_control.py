@@ -59,6 +59,7 @@ EXPECTED: dict[tuple[str, str], frozenset[str]] = {
     ("GET", "/sign-in"): EVERYONE,
     ("POST", "/sign-in"): EVERYONE,
     ("POST", "/sign-out"): EVERYONE,
+    ("GET", "/users"): frozenset({"administrator"}),
     ("GET", "/"): READERS,
     ("POST", "/projects"): WORKERS,
     ("GET", "/projects"): READERS,

@@ -5,6 +5,7 @@ workstation mode without accounts and ``serve`` refusing to be reachable without
 from __future__ import annotations
 
 import io
+import re
 import sqlite3
 import warnings
 
@@ -384,3 +385,18 @@ def test_serve_on_loopback_without_accounts_starts_as_a_workstation(tmp_path, mo
     monkeypatch.setattr("uvicorn.run", lambda *a, **k: started.append(k))
     assert cli.main(["serve", "--data", str(tmp_path)]) == 0 and len(started) == 1
     assert "workstation mode" in capsys.readouterr().err
+
+
+def test_the_administrator_lists_the_accounts_and_never_sees_a_hash(office):
+    app, client = office
+    app.state.accounts.add("ada", "administrator", PASSWORD)
+    app.state.accounts.set_disabled("vera", True)
+    assert _sign_in(client, "ada").status_code == 303
+    page = client.get("/users").text
+    assert "surveyor in responsible charge" in page and "technician" in page
+    assert re.search(r"vera</td><td>viewer</td><td>disabled \d{4}-\d{2}-\d{2}", page)
+    assert "$argon2" not in page
+    assert 'href="/users"' in client.get("/projects").text  # in the user menu
+    assert _sign_in(client, "sam").status_code == 303
+    assert client.get("/users").status_code == 403
+    assert 'href="/users"' not in client.get("/projects").text

@@ -89,6 +89,7 @@ ROUTE_RULES: dict[tuple[str, str], str] = {
     ("GET", "/sign-in"): PUBLIC,
     ("POST", "/sign-in"): PUBLIC,
     ("POST", "/sign-out"): PUBLIC,
+    ("GET", "/users"): USERS,
     # pages and downloads (server/web/pages.py)
     ("GET", "/"): READ,
     ("POST", "/projects"): UPLOAD,
