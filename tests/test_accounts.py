@@ -144,6 +144,8 @@ def test_sign_out_ends_the_session_in_this_browser_only_with_its_token(office):
     out = client.post("/sign-out", data={"token": token}, follow_redirects=False)
     assert out.headers["location"] == "/sign-in"
     assert client.get("/projects", follow_redirects=False).status_code == 303
+    signed_out = client.get("/sign-in").text  # no user menu for no one
+    assert "Sign out" not in signed_out and "user-menu" not in signed_out
 
 
 def test_sign_in_goes_back_only_to_a_page_of_this_service(office):

@@ -314,9 +314,10 @@ def actor(request: Request) -> Actor:
 
 
 def signed_in(request: Request) -> Principal | None:
-    """The signed-in account for the pages' user menu (None on the workstation)."""
+    """The signed-in account for the pages' user menu (None on the workstation, or when
+    no one is signed in)."""
     found = principal(request)
-    return None if found.workstation else found
+    return None if found.actor.user_id is None else found
 
 
 def flat_routes(routes: list[Any]) -> list[Any]:
