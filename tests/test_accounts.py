@@ -402,3 +402,39 @@ def test_the_administrator_lists_the_accounts_and_never_sees_a_hash(office):
     assert _sign_in(client, "sam").status_code == 303
     assert client.get("/users").status_code == 403
     assert 'href="/users"' not in client.get("/projects").text
+
+
+def test_at_most_two_passwords_are_checked_at_once(tmp_path, monkeypatch):
+    """argon2 takes 64 MiB a check: a burst of sign-ins queues instead of taking the memory."""
+    import threading
+    import time
+
+    from server.store import accounts as module
+
+    accounts = Accounts(Store(tmp_path / DATABASE_NAME))
+    accounts.add("sam", "surveyor", PASSWORD)
+    running, peak, lock = [0], [0], threading.Lock()
+    real = module._HASHER
+
+    class Slow:
+        def verify(self, digest, password):
+            with lock:
+                running[0] += 1
+                peak[0] = max(peak[0], running[0])
+            time.sleep(0.05)
+            with lock:
+                running[0] -= 1
+            return real.verify(digest, password)
+
+        def check_needs_rehash(self, digest):
+            return False
+
+    monkeypatch.setattr(module, "_HASHER", Slow())
+    threads = [
+        threading.Thread(target=accounts.authenticate, args=("sam", PASSWORD)) for _ in range(8)
+    ]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    assert peak[0] == 2

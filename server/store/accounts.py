@@ -12,6 +12,7 @@ from __future__ import annotations
 import math
 import re
 import secrets
+import threading
 import time
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -59,6 +60,9 @@ _COMMON = frozenset(
     }
 )
 _HASHER = PasswordHasher()
+#: Password checks at once: each takes argon2's 64 MiB, so a burst of sign-ins (from many
+#: addresses, before the failure limit counts them) waits here instead of taking the memory.
+_CHECKS_AT_ONCE = threading.BoundedSemaphore(2)
 #: Verified when the name is unknown, so that a wrong name costs as long as a wrong password.
 _DUMMY_HASH = _HASHER.hash("not a password of anyone " + secrets.token_hex(8))
 
@@ -257,7 +261,8 @@ class Accounts:
             ).fetchone()
         digest = row[-1] if row is not None else _DUMMY_HASH
         try:
-            _HASHER.verify(digest, password[:MAX_PASSWORD])
+            with _CHECKS_AT_ONCE:
+                _HASHER.verify(digest, password[:MAX_PASSWORD])
         except (VerifyMismatchError, VerificationError, InvalidHashError):
             return None
         if row is None:
