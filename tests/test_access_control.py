@@ -66,7 +66,7 @@ EXPECTED: dict[tuple[str, str], frozenset[str]] = {
     ("GET", "/projects/{project_id}"): READERS,
     ("GET", "/projects/{project_id}/import"): READERS,
     ("POST", "/projects/{project_id}/adjust"): WORKERS,
-    ("POST", "/projects/{project_id}/discard"): WORKERS,
+    ("POST", "/projects/{project_id}/discard"): OWNER_OR_SURVEYOR,
     ("GET", "/projects/{project_id}/report.html"): READERS,
     ("GET", "/projects/{project_id}/report.pdf"): READERS,
     ("GET", "/projects/{project_id}/report.txt"): READERS,

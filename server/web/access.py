@@ -97,7 +97,7 @@ ROUTE_RULES: dict[tuple[str, str], str] = {
     ("GET", "/projects/{project_id}"): READ,
     ("GET", "/projects/{project_id}/import"): READ,
     ("POST", "/projects/{project_id}/adjust"): UPLOAD,
-    ("POST", "/projects/{project_id}/discard"): UPLOAD,
+    ("POST", "/projects/{project_id}/discard"): MANAGE,
     ("GET", "/projects/{project_id}/report.html"): READ,
     ("GET", "/projects/{project_id}/report.pdf"): READ,
     ("GET", "/projects/{project_id}/report.txt"): READ,
