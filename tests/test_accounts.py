@@ -438,3 +438,14 @@ def test_at_most_two_passwords_are_checked_at_once(tmp_path, monkeypatch):
     for thread in threads:
         thread.join()
     assert peak[0] == 2
+
+
+def test_a_reading_role_is_not_offered_the_forms_it_may_not_use(office):
+    _, client = office
+    readonly = '<link rel="stylesheet" href="/static/readonly.css'
+    for name, offered in (("vera", False), ("tom", True), ("sam", True)):
+        assert _sign_in(client, name).status_code == 303
+        assert (readonly not in client.get("/").text) is offered, name
+    css = client.get("/static/readonly.css").text
+    for form in ("form.upload", "details.decide", "form.rerun", "form.decision-undo"):
+        assert form in css
