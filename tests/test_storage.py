@@ -363,7 +363,7 @@ def test_a_database_of_schema_3_is_upgraded_and_its_projects_stay_live(db):
         )
         raw.commit()
     store = Store(db)
-    assert _query(db, "PRAGMA user_version") == (SCHEMA_VERSION,) == (5,)
+    assert _query(db, "PRAGMA user_version") == (SCHEMA_VERSION,) == (6,)
     assert [p.id for p in store.list_projects()] == ["b" * 32]
     assert store.deleted_projects() == []
     assert store.delete_project("b" * 32) is True

@@ -13,7 +13,7 @@ import jinja2
 from markupsafe import Markup
 
 from server import resources
-from server.report.origin import ImportedFrom
+from server.report.origin import ApprovalNote, ImportedFrom
 from server.report.plot import network_plot_data
 from server.report.tables import ObservationRow, context
 from server.results.result import AdjustmentResult
@@ -95,10 +95,12 @@ def report_html(
     imported_from: ImportedFrom | None = None,
     observation_rows: Sequence[ObservationRow] | None = None,
     plot_data: dict[str, Any] | None = None,
+    approval: ApprovalNote | None = None,
 ) -> str:
     """A self-contained printable HTML report (inline CSS and SVG, no scripts, nothing external).
 
-    ``imported_from`` names the survey XML or CSV the field book was imported from.
+    ``imported_from`` names the survey XML or CSV the field book was imported from;
+    ``approval`` states who approved the run for issue, when, and of which field book.
     ``observation_rows`` (every observation's) and ``plot_data`` (``network_plot_data``) of
     this result, when the caller has them already, are used instead of being made again.
     """
@@ -120,4 +122,5 @@ def report_html(
     data["report_warnings"] = report_warnings(result)
     data["imported_from"] = imported_from
     data["imported_name"] = source_name(imported_from.filename) if imported_from else ""
+    data["approval"] = approval
     return _env().get_template("report.html").render(data)

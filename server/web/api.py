@@ -13,7 +13,8 @@ from starlette.concurrency import run_in_threadpool
 from server.settings import WorkLimits
 from server.store import projects as service
 from server.store.projects import Upload
-from server.store.sqlite import Store
+from server.store.sqlite import Actor, Store
+from server.web import access
 from server.web.dependencies import (
     LimitsDep,
     ProjectDep,
@@ -85,9 +86,14 @@ def _adjusted_json(upload: Upload, limits: WorkLimits, queue: AdjustmentQueue) -
 
 
 def _stored_json(
-    store: Store, upload: Upload, max_projects: int, limits: WorkLimits, queue: AdjustmentQueue
+    store: Store,
+    upload: Upload,
+    max_projects: int,
+    limits: WorkLimits,
+    queue: AdjustmentQueue,
+    owner: Actor,
 ) -> JSONResponse:
-    project_id, result, error = service.submit(store, upload, max_projects, limits, queue)
+    project_id, result, error = service.submit(store, upload, max_projects, limits, queue, owner)
     body: dict[str, Any] = {
         "id": project_id,
         "result": None if result is None else result.to_json_dict(),
@@ -116,14 +122,20 @@ async def api_create_project(
         return JSONResponse(_MISSING_FIELD, status_code=422)
     room_in_queue(queue)
     return await run_in_threadpool(
-        _stored_json, store, upload, request.app.state.max_projects, limits, queue
+        _stored_json,
+        store,
+        upload,
+        request.app.state.max_projects,
+        limits,
+        queue,
+        access.actor(request),
     )
 
 
 @router.get("/api/projects")
-def api_projects(store: StoreDep) -> JSONResponse:
-    """Every stored project with the summary of its latest run."""
-    return JSONResponse({"projects": service.projects_json(store)})
+def api_projects(request: Request, store: StoreDep) -> JSONResponse:
+    """Every stored project (that the account may see) with the summary of its latest run."""
+    return JSONResponse({"projects": service.projects_json(store, access.viewer(request))})
 
 
 @router.get("/api/projects/{project_id}")
