@@ -1,9 +1,10 @@
 """The fast paths give exactly what the careful paths give.
 
 * The parser reads common well-formed observation lines (``level``,
-  ``distance``, a direction of a round) without tokens
-  (``fieldbook._Parser.fast_line``) and hands everything else to the careful
-  path: both must give equal ``Fieldbook`` objects, or equal issues.
+  ``distance``, ``slope``/``zenith`` with ``hi=``/``ht=``, a direction of a
+  round) without tokens (``fieldbook._Parser.fast_line``) and hands
+  everything else to the careful path: both must give equal ``Fieldbook``
+  objects, equal observation tables column by column, or equal issues.
 * ``json_output`` spells lists of flat records column by column: the text
   must be ``json.dumps(..., indent=2)`` byte for byte.
 """
@@ -15,6 +16,7 @@ import math
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -22,6 +24,8 @@ from hypothesis import strategies as st
 from server.errors import FieldbookError
 from server.fieldbook import parser as fieldbook_module
 from server.fieldbook.parser import parse_fieldbook
+from server.fieldbook.table import _ARRAYS as TABLE_ARRAYS
+from server.fieldbook.table import ObservationTable
 from server.results.json_text import dumps_indented
 from tests.hypothesis_profiles import examples
 
@@ -46,6 +50,22 @@ def assert_same(text: str, monkeypatch: pytest.MonkeyPatch) -> None:
     careful = _outcome(text, False, monkeypatch)
     fast = _outcome(text, True, monkeypatch)
     assert fast == careful
+    if not isinstance(fast, tuple):
+        assert_same_table(fast.table, careful.table)
+        # the lazy objects are those of the table, row by row
+        assert list(fast.observations) == [
+            fast.table.observation(k) for k in range(len(fast.table))
+        ]
+
+
+def assert_same_table(fast: ObservationTable, careful: ObservationTable) -> None:
+    """Every column equal, NaN where NaN (an absent value), same dtype."""
+    for name in ("names", "sigmas", "kinds", "notes", "baselines"):
+        assert getattr(fast, name) == getattr(careful, name), name
+    for name in TABLE_ARRAYS:
+        a, b = getattr(fast, name), getattr(careful, name)
+        assert a.dtype == b.dtype, name
+        np.testing.assert_array_equal(a, b, err_msg=name, strict=True)
 
 
 def _tokenized_lines(text: str, monkeypatch: pytest.MonkeyPatch) -> int:
@@ -108,6 +128,16 @@ def test_demo_projects_parse_alike(name, monkeypatch):
 def test_benchmark_networks_parse_alike(monkeypatch):
     assert_same(networks.leveling(1_000), monkeypatch)
     assert_same(networks.horizontal(200, sparse=True, fixed_every=50), monkeypatch)
+    assert_same(networks.geodetic(60), monkeypatch)
+
+
+def test_the_fast_path_reads_slope_and_zenith_lines_after_the_first(monkeypatch):
+    text = networks.geodetic(60)
+    spatial = sum(1 for line in text.splitlines() if line.split()[:1] in (["slope"], ["zenith"]))
+    careful = _tokenized_lines(text, monkeypatch)
+    monkeypatch.setattr(fieldbook_module, "_FAST_SPATIAL", fieldbook_module.re.compile("(?!)"))
+    # every slope and zenith line but the first is read without tokens
+    assert _tokenized_lines(text, monkeypatch) - careful == spatial - 1
 
 
 _BASE = """fieldbook 1
@@ -238,6 +268,15 @@ _LENGTHS = st.sampled_from(
         "  # comment",
         "\t",
         " hi=1m",
+        " hi=1.5m ht=1.8m",
+        " ht=2ft hi=0.5m",
+        " ht=1.8m",
+        " hi=1.5",
+        " hi=1.5m hi=1.6m",
+        " HI=1m",
+        " hi=1e400m",
+        " hi=1.5xx",
+        " hi=-0.2m  # low",
     ]
 )
 _SPACE = st.sampled_from([" ", "  ", "\t", " \t"])
@@ -246,7 +285,9 @@ _LEAD = st.sampled_from(["", " ", "  ", "\t"])
 
 @st.composite
 def _observation_line(draw) -> str:
-    kind = draw(st.sampled_from(["level", "distance", "Level", "angle", "azimuth"]))
+    kind = draw(
+        st.sampled_from(["level", "distance", "Level", "angle", "azimuth", "slope", "zenith"])
+    )
     names = draw(st.lists(_NAMES, min_size=2, max_size=3))
     sep = draw(_SPACE)
     return draw(_LEAD) + sep.join([kind, *names, draw(_NUMBERS)]) + draw(_LENGTHS)
@@ -285,9 +326,17 @@ _DEFAULTS = st.sampled_from(
 )
 
 
+_SPATIAL_DEFAULTS = st.sampled_from(
+    ["defaults slope=2mm+2ppm zenith=1.5sec", "defaults zenith=3sec", "defaults slope=1mm", ""]
+)
+
+
 @st.composite
 def _book(draw) -> str:
     lines = ["fieldbook 1", draw(_HEADERS), draw(_DEFAULTS)]
+    if draw(st.booleans()):
+        lines.insert(1, "crs local lat=47 lon=8")
+        lines.append(draw(_SPATIAL_DEFAULTS))
     if draw(st.booleans()):
         lines.append("scale factor=" + draw(st.sampled_from(["0.9996", "1.02", "1.5"])))
     lines.append("point A height=10 east=0 north=0 fix")

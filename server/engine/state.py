@@ -92,6 +92,7 @@ class State:
             self.control,
             self.kinds,
             self.correlated,
+            table=self.network.used_table,
         )
 
     def apply(self, correction: np.ndarray) -> None:
@@ -119,27 +120,20 @@ class State:
 
     def _start_orientations(self) -> np.ndarray:
         """Each round's orientation as the mean of (azimuth − direction) over its targets."""
-        rounds = [
-            (
-                self.round_index[o.round_line],
-                self.point_index[o.from_point],
-                self.point_index[o.to],
-                o.value,
-            )
-            for o in self.network.used
-            if o.round_line in self.round_index
-            and o.kind in self.kinds
-            and self.kinds[o.kind].has_round
-        ]
+        table = self.network.used_table
+        with_round = [name for name, kind in self.kinds.items() if kind.has_round]
+        lines = table.round_line
+        pick = table.is_kind(*with_round) & np.isin(lines, self.round_lines)
         orientation = np.zeros(len(self.round_lines))
-        if not rounds:
+        if not pick.any():
             return orientation
-        table = np.array(rounds, dtype=float)
-        r, i, j = (table[:, c].astype(np.int64) for c in range(3))
+        point = self.network.name_point
+        r = np.searchsorted(self.round_lines, lines[pick])  # round_lines is sorted
+        i, j, value = point[table.frm[pick]], point[table.to[pick]], table.value[pick]
         d_east = self.east[j] - self.east[i]
         d_north = self.north[j] - self.north[i]
         ok = np.isfinite(d_east) & np.isfinite(d_north)
-        offset = np.arctan2(d_east[ok], d_north[ok]) - table[ok, 3]
+        offset = np.arctan2(d_east[ok], d_north[ok]) - value[ok]
         # average on the circle: offsets near 0 and 2π must not cancel
         sines = np.bincount(r[ok], weights=np.sin(offset), minlength=len(self.round_lines))
         cosines = np.bincount(r[ok], weights=np.cos(offset), minlength=len(self.round_lines))

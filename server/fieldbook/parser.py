@@ -83,6 +83,7 @@ from server.fieldbook.model import (
     TraverseTolerance,
 )
 from server.fieldbook.point_names import near_miss_warnings
+from server.fieldbook.table import FIELDS, ObservationRows, ObservationTable, Row, row_of
 from server.units import (
     FILE_ANGLE_UNITS,
     FILE_LENGTH_UNITS,
@@ -160,9 +161,11 @@ def parse_fieldbook(text: str | bytes, *, source: str = "") -> Fieldbook:
     parser.run(lines, bad_lines)
     if parser.errors.count:
         raise FieldbookError(parser.errors.result(), source, count=parser.errors.count)
-    for issue in near_miss_warnings(parser.points, parser.observations):
+    table = ObservationTable.from_rows(parser.rows)
+    del parser.rows  # the table holds them now
+    for issue in near_miss_warnings(parser.points, table):
         parser.warnings.add(issue.line, issue.token, issue.message)
-    return parser.fieldbook(source, digest)
+    return parser.fieldbook(source, digest, table)
 
 
 @dataclass(frozen=True, slots=True)
@@ -211,7 +214,8 @@ class _Parser:
         self.statements = 0
         self.points: list[PointStatement] = []
         self.point_lines: dict[str, int] = {}
-        self.observations: list[Observation] = []
+        #: each observation read, as the tuple of its ``Observation`` fields (``table.FIELDS``)
+        self.rows: list[Row] = []
         self.rounds: list[DirectionRound] = []
         self.round: _Round | None = None
         self.relative_pairs: list[RelativePair] = []
@@ -267,7 +271,7 @@ class _Parser:
                 "or 'crs local lat=LAT lon=LON' for a site grid centred near the survey",
             )
 
-    def fieldbook(self, source: str, digest: str) -> Fieldbook:
+    def fieldbook(self, source: str, digest: str, table: ObservationTable) -> Fieldbook:
         return Fieldbook(
             source=source,
             version=1,
@@ -279,7 +283,7 @@ class _Parser:
             relative_tolerance=self.relative,
             traverse_tolerance=self.traverse,
             points=tuple(self.points),
-            observations=tuple(self.observations),
+            observations=ObservationRows(table),
             rounds=tuple(self.rounds),
             relative_pairs=tuple(self.relative_pairs),
             warnings=self.warnings.result(),
@@ -290,19 +294,25 @@ class _Parser:
             epoch=self.epoch,
         )
 
+    def add(self, obs: Observation) -> None:
+        """Keep an observation read by the careful path (as its row of fields)."""
+        self.rows.append(row_of(obs))
+
     def error(self, line: int, token: str, message: str) -> None:
         self.errors.add(line, token, message)
 
     # ---- the fast path: the common well-formed observation lines
 
     def fast_line(self, line: int, text: str) -> bool:
-        """Read a plain ``level``/``distance`` line or a direction of a round, if it is one.
+        """Read a plain observation line or a direction of a round, if it is one.
 
-        True when the line was taken (its observation appended); False, with
-        nothing changed, whenever anything is unusual, so that the careful
-        path reads the line and reports exactly what it always reports.  Only
-        lines the careful path would accept without a word are taken here, and
-        they give the same ``Observation`` (``tests/test_fast_paths.py``).
+        Plain lines: ``level``/``distance`` (``len=`` on a level), ``slope``/``zenith``
+        (``hi=``/``ht=``), and ``TO VALUE`` inside a round.  True when the line was
+        taken (its row appended); False, with nothing changed, whenever anything
+        is unusual, so that the careful path reads the line and reports exactly
+        what it always reports.  Only lines the careful path would accept without
+        a word are taken here, and they give the same ``Observation``
+        (``tests/test_fast_paths.py`` compares both paths field by field).
         """
         if self.round is not None:
             match = _FAST_DIRECTION.match(text)
@@ -311,21 +321,19 @@ class _Parser:
             return False
         match = _FAST_OBSERVATION.match(text)
         if match is None:
-            return False
+            match = _FAST_SPATIAL.match(text)
+            return match is not None and self.fast_spatial(line, *match.groups())
         kind, from_point, to, value_text, length_text, length_unit = match.groups()
-        if from_point == to or from_point.lower() == "end" or to.lower() == "end":
+        if from_point == to:
             return False
         default = self.defaults.get(kind)
         if default is None or default.sigma is None:
             return False
         sigma = default.sigma
         # as units.parse_number, file_number and bounded_length read them (the pattern
-        # has checked the spelling of the numbers)
-        number = float(value_text)
-        if not math.isfinite(number):
-            return False
-        value = number * self.length_factor
-        if abs(value) > MAX_LENGTH_M:
+        # has checked the spelling of the numbers; an overflow to inf fails the bound)
+        value = float(value_text) * self.length_factor
+        if not abs(value) <= MAX_LENGTH_M:
             return False
         length_km = None
         if kind == "level":
@@ -336,22 +344,21 @@ class _Parser:
                     return False
             else:
                 factor = LENGTH_FACTORS.get(length_unit.lower())
-                number = float(length_text)
-                if factor is None or not math.isfinite(number):
+                if factor is None:
                     return False
-                length_m = number * factor  # as units.parse_length and option_length
-                if abs(length_m) > MAX_LENGTH_M or length_m <= 0.0 or length_m < MIN_DISTANCE_M:
+                length_m = float(length_text) * factor  # as parse_length and option_length
+                if not MIN_DISTANCE_M <= length_m <= MAX_LENGTH_M:
                     return False
                 length_km = length_m / 1000.0
             scale = 1.0
             centering = 0.0
         else:
-            if length_text is not None or value <= 0.0 or value < MIN_DISTANCE_M:
+            if length_text is not None or not value >= MIN_DISTANCE_M:
                 return False
             scale = self.scale
             centering = self.centering
-        self.observations.append(
-            Observation(
+        self.rows.append(
+            (
                 line,
                 kind,
                 from_point,
@@ -362,7 +369,86 @@ class _Parser:
                 centering,
                 scale,
                 length_km,
-                booked=value,
+                None,
+                None,
+                None,
+                None,
+                False,
+                "",
+                value,
+                False,
+                None,
+            )
+        )
+        self.statements += 1
+        return True
+
+    def fast_spatial(
+        self,
+        line: int,
+        kind: str,
+        from_point: str,
+        to: str,
+        value_text: str,
+        *heights: str | None,
+    ) -> bool:
+        """``slope``/``zenith FROM TO VALUE [hi=H] [ht=H]`` after the first 3D line (see
+        ``fast_line``; the first one goes the careful way, which notes it for the crs check)."""
+        if from_point == to or self.first_spatial is None:
+            return False
+        default = self.defaults.get(kind)
+        if default is None or default.sigma is None:
+            return False
+        options: dict[str, float] = {}
+        for key, number, unit in (heights[0:3], heights[3:6]):
+            if key is None:
+                continue
+            factor = LENGTH_FACTORS.get(unit.lower())  # type: ignore[union-attr]
+            if factor is None or key in options:
+                return False  # a wrong unit, or an option given twice
+            height = float(number) * factor  # type: ignore[arg-type]  # as option_length
+            if not abs(height) <= MAX_LENGTH_M:
+                return False
+            options[key] = height
+        if kind == "slope":
+            if _FAST_NUMBER.match(value_text) is None:
+                return False
+            value = float(value_text) * self.length_factor  # as read_distance
+            if not MIN_DISTANCE_M <= value <= MAX_LENGTH_M:
+                return False
+            centering = self.centering
+        else:
+            if not self.angle_unit_known:
+                return False
+            try:
+                value = observed_angle(value_text, self.angle_unit)
+            except UnitError:
+                return False
+            if not -_ZENITH_SLACK <= value <= math.pi + _ZENITH_SLACK:
+                return False
+            value = min(max(value, 0.0), math.pi)  # as read_zenith
+            centering = 0.0
+        self.rows.append(
+            (
+                line,
+                kind,
+                from_point,
+                None,
+                to,
+                value,
+                default.sigma,
+                centering,
+                1.0,
+                None,
+                None,
+                options.get("hi"),
+                options.get("ht"),
+                None,
+                False,
+                "",
+                value,
+                False,
+                None,
             )
         )
         self.statements += 1
@@ -382,22 +468,28 @@ class _Parser:
             booked = observed_angle(value_text, self.angle_unit)
         except UnitError:
             return False
-        value = wrap_2pi(booked)
         round_.lines.append(line)
-        self.observations.append(
-            Observation(
-                line=line,
-                kind="direction",
-                from_point=at,
-                at=at,
-                to=to,
-                value=value,
-                sigma=sigma.sigma,
-                centering=self.centering,
-                round_line=round_.line,
-                ignored=round_.ignored,
-                note=round_.note,
-                booked=booked,
+        self.rows.append(
+            (
+                line,
+                "direction",
+                at,
+                at,
+                to,
+                wrap_2pi(booked),
+                sigma.sigma,
+                self.centering,
+                1.0,
+                None,
+                None,
+                None,
+                None,
+                round_.line,
+                round_.ignored,
+                round_.note,
+                booked,
+                False,
+                None,
             )
         )
         self.statements += 1
@@ -907,7 +999,7 @@ class _Parser:
         scale = self.scale if kind == "distance" else 1.0
         if not planned:
             value *= scale
-        self.observations.append(
+        self.add(
             Observation(
                 line=st.line,
                 kind=kind,
@@ -946,7 +1038,7 @@ class _Parser:
         vector = baseline_vector(components, sd, correlations, self.baseline_scale)
         planned = math.isnan(components[0])
         rms = math.sqrt(sum(vector.covariance[i][i] for i in range(3)) / 3.0)
-        self.observations.append(
+        self.add(
             Observation(
                 line=st.line,
                 kind="baseline",
@@ -1121,7 +1213,7 @@ class _Parser:
             return
         if round_.at is None or to is None or value is None:
             return
-        self.observations.append(
+        self.add(
             Observation(
                 line=line,
                 kind="direction",
@@ -1187,11 +1279,9 @@ class _Parser:
     def check_relative_names(self) -> None:
         """Both points of a pair must be named elsewhere in the file (declared or observed)."""
         known: set[str] = set(self.point_lines)
-        for obs in self.observations:
-            known.add(obs.from_point)
-            known.add(obs.to)
-            if obs.at is not None:
-                known.add(obs.at)
+        for row in self.rows:
+            known.update(row[_NAME_FIELDS])
+        known.discard(None)  # an absent AT
         kept = []
         for pair in self.relative_pairs:
             missing = [name for name in (pair.first, pair.second) if name not in known]
@@ -1217,7 +1307,7 @@ class _Parser:
 _FAST_LINES = True
 # A point name the careful path accepts without a word: printable ASCII, no space, '"', '#'
 # or '='; a value or option value: no space, '"' or '#'; then at most a comment.
-_NAME = r"([!$-<>-~]{1,64})"
+_NAME = r"(?![eE][nN][dD][ \t])([!$-<>-~]{1,64})"
 _VALUE = r'([^ \t#"=]+)'
 _TAIL = r"[ \t]*(?:#.*)?\Z"
 _NUMBER = r"([+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?)"  # as units._NUMBER
@@ -1227,6 +1317,14 @@ _FAST_OBSERVATION = re.compile(
     re.DOTALL,
 )
 _FAST_DIRECTION = re.compile(rf"[ \t]*{_NAME}[ \t]+{_VALUE}{_TAIL}", re.DOTALL)
+_HEIGHT = rf"(?:[ \t]+(hi|ht)={_NUMBER}([a-zA-Z]+))?"
+_FAST_SPATIAL = re.compile(
+    rf"[ \t]*(slope|zenith)[ \t]+{_NAME}[ \t]+{_NAME}[ \t]+{_VALUE}{_HEIGHT}{_HEIGHT}{_TAIL}",
+    re.DOTALL,
+)
+_FAST_NUMBER = re.compile(rf"{_NUMBER}\Z")
+#: FROM, AT and TO of a row of fields
+_NAME_FIELDS = slice(FIELDS.index("from_point"), FIELDS.index("to") + 1)
 
 #: Kinds that take a default standard deviation (``centering`` is not one).
 _SD_KINDS = tuple(kind for kind in SD_RULES if kind != "centering")
