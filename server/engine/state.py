@@ -20,6 +20,7 @@ from server.model.network import Network
 from server.model.whitening import CorrelatedBlock
 
 _COMPONENT = {"E": 0, "N": 1, "H": 2}
+_CODE = {**_COMPONENT, "O": 3}
 #: Codes of the unknowns in ``State.kind``.
 EAST, NORTH, HEIGHT, ORIENTATION = 0, 1, 2, 3
 
@@ -40,7 +41,7 @@ class State:
     def __init__(
         self,
         network: Network,
-        coords: dict[str, tuple[float, float, float]],
+        coords: Mapping[str, tuple[float, float, float]] | np.ndarray,
         kinds: Mapping[str, Kind] = KINDS,
         correlated: Sequence[CorrelatedBlock] = (),
     ) -> None:
@@ -48,7 +49,10 @@ class State:
         self.network = network
         self.names = [p.name for p in network.points]
         self.point_index = {name: k for k, name in enumerate(self.names)}
-        values = np.array([coords[name] for name in self.names], dtype=float).reshape(-1, 3)
+        if isinstance(coords, np.ndarray):  # points × (east, north, height), in point order
+            values = np.asarray(coords, dtype=float).reshape(-1, 3)
+        else:
+            values = np.array([coords[name] for name in self.names], dtype=float).reshape(-1, 3)
         self.east, self.north, self.height = (values[:, c].copy() for c in range(3))
         params = network.parameters
         self.round_lines = sorted({p.round_line for p in params if p.kind == "O" and p.round_line})
@@ -56,19 +60,21 @@ class State:
         n_points = len(self.names)
         self.column = {c: np.full(n_points, -1, np.int64) for c in "ENH"}
         self.column["O"] = np.full(len(self.round_lines), -1, np.int64)
-        kind = np.empty(len(params), np.int64)  # EAST, NORTH, HEIGHT or ORIENTATION
-        target = np.empty(len(params), np.int64)  # point or round index
-        for k, p in enumerate(params):
-            if p.kind == "O":
-                assert p.round_line is not None
-                index = self.round_index[p.round_line]
-                kind[k] = ORIENTATION
-            else:
-                assert p.point is not None
-                index = self.point_index[p.point]
-                kind[k] = _COMPONENT[p.kind]
-            self.column[p.kind][index] = k
-            target[k] = index
+        # EAST, NORTH, HEIGHT or ORIENTATION, and the point or round index of each unknown
+        kind = np.fromiter((_CODE[p.kind] for p in params), np.int64, len(params))
+        target = np.fromiter(
+            (
+                self.round_index[p.round_line]  # type: ignore[index]  # an "O" has its round
+                if p.kind == "O"
+                else self.point_index[p.point]  # type: ignore[index]  # the others a point
+                for p in params
+            ),
+            np.int64,
+            len(params),
+        )
+        for code, letter in enumerate("ENHO"):
+            pick = np.flatnonzero(kind == code)
+            self.column[letter][target[pick]] = pick
         self.kind, self.target = kind, target
         self.orientation = self._start_orientations()
         self.control_rows = control_rows(network)
