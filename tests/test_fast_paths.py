@@ -365,6 +365,90 @@ def test_fast_and_careful_paths_agree_on_edge_lines(monkeypatch, text):
     assert_same(text, monkeypatch)
 
 
+_PLAIN = st.sampled_from(
+    [
+        "level A B +1.2345 len=0.5km",
+        "level B C -0.5 len=420m",
+        "distance A B 141.42",
+        "level C A -0.734 len=0.3km  # comment",
+        "distance B C 100.0",
+        "\tlevel C D 2 len=1km",
+    ]
+)
+
+
+# lines of the shape a run reads at once that fail one of its checks
+_RUN_EDGES = st.sampled_from(
+    [
+        "distance A B 0.0001",
+        "distance A B 0",
+        "distance A B -5",
+        "distance A A 10",
+        "distance A B 10 len=1km",
+        "distance A B 1e999",
+        "level A B 1e999 len=1km",
+        "level A B 1 len=0.0005m",
+        "level A B 1 len=1xx",
+        "level A B 1 len=1e999km",
+        "level A B 1",
+        "level B B 1 len=1km",
+        "level A B 1 len=0.001m",
+        "distance A B 0.001",
+        "level A B -0 len=1ft",
+    ]
+)
+_RUN_DEFAULTS = st.sampled_from(
+    [
+        "defaults level=1mm/sqrtkm distance=2mm+2ppm centering=0.5mm",
+        "defaults level=1mm distance=3mm",
+        "defaults level=1mm/sqrtkm+0.2mm/setup distance=2mm",
+        "defaults level=1mm",
+        "defaults distance=2mm",
+    ]
+)
+
+
+@st.composite
+def _run_book(draw) -> str:
+    """Long runs of plain lines (read a chunk at a time) with edge lines among them."""
+    lines = ["fieldbook 1", draw(_HEADERS), draw(_RUN_DEFAULTS)]
+    if draw(st.booleans()):
+        lines.append("scale factor=" + draw(st.sampled_from(["0.9996", "1.02"])))
+    lines.append("point A height=10 east=0 north=0 fix")
+    for _ in range(draw(st.integers(1, 3))):
+        for _ in range(draw(st.integers(10, 60))):
+            choice = draw(st.integers(0, 29))  # mostly plain lines
+            edge = draw(_RUN_EDGES) if choice % 2 else draw(_observation_line())
+            lines.append(draw(_PLAIN) if choice > 1 else edge)
+        lines.append(draw(st.sampled_from(["", "# a comment", "defaults level=2mm/sqrtkm"])))
+    return "\n".join(lines) + "\n"
+
+
+@settings(
+    max_examples=examples(60),
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
+@given(_run_book())
+def test_fast_and_careful_paths_agree_on_long_runs(monkeypatch, text):
+    assert_same(text, monkeypatch)
+
+
+def test_a_long_run_is_read_without_tokens_up_to_its_edge_lines(monkeypatch):
+    body = [f"level M{k} M{k + 1} 0.{k:03d} len=0.{k % 9 + 1}km" for k in range(100)]
+    body[40] = "level M40 M40 1 len=1km"  # to itself: the careful path reports it
+    body[70] = "level M70 M71 1 len=1xx"  # not a length unit
+    text = LEVELING + "\n".join(body) + "\n"
+    with pytest.raises(FieldbookError) as caught:
+        parse_fieldbook(text)
+    assert [issue.line for issue in caught.value.issues] == [48, 78]
+    assert_same(text, monkeypatch)
+    good = LEVELING + "\n".join(body[:40] + body[41:70] + body[71:]) + "\n"
+    assert_same(good, monkeypatch)
+    observations = len(parse_fieldbook(good).observations)
+    lines = sum(1 for line in good.splitlines() if line.strip())
+    assert _tokenized_lines(good, monkeypatch) == lines - observations
+
+
 # --------------------------------------------------------------------------- JSON
 
 _SCALAR = st.one_of(

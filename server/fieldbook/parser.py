@@ -17,11 +17,16 @@ from __future__ import annotations
 import difflib
 import hashlib
 import math
+import operator
 import re
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import date, datetime
-from typing import TypeVar
+from itertools import repeat, takewhile
+from operator import itemgetter
+from typing import TypeVar, cast
+
+import numpy as np
 
 from server.errors import FieldbookError
 from server.fieldbook.baselines import (
@@ -83,7 +88,15 @@ from server.fieldbook.model import (
     TraverseTolerance,
 )
 from server.fieldbook.point_names import near_miss_warnings
-from server.fieldbook.table import FIELDS, ObservationRows, ObservationTable, Row, row_of
+from server.fieldbook.table import (
+    FIELDS,
+    Columns,
+    ObservationRows,
+    ObservationTable,
+    Row,
+    columns_of,
+    row_of,
+)
 from server.units import (
     FILE_ANGLE_UNITS,
     FILE_LENGTH_UNITS,
@@ -161,8 +174,7 @@ def parse_fieldbook(text: str | bytes, *, source: str = "") -> Fieldbook:
     parser.run(lines, bad_lines)
     if parser.errors.count:
         raise FieldbookError(parser.errors.result(), source, count=parser.errors.count)
-    table = ObservationTable.from_rows(parser.rows)
-    del parser.rows  # the table holds them now
+    table = parser.table()
     for issue in near_miss_warnings(parser.points, table):
         parser.warnings.add(issue.line, issue.token, issue.message)
     return parser.fieldbook(source, digest, table)
@@ -214,8 +226,11 @@ class _Parser:
         self.statements = 0
         self.points: list[PointStatement] = []
         self.point_lines: dict[str, int] = {}
-        #: each observation read, as the tuple of its ``Observation`` fields (``table.FIELDS``)
+        #: the observations read: blocks of columns in file order (``table.FIELDS``), and
+        #: after them the rows read one at a time, each the tuple of its fields
+        self.blocks: list[Columns] = []
         self.rows: list[Row] = []
+        self.no_run_before = 0  # lines up to here are known not to start a long run
         self.rounds: list[DirectionRound] = []
         self.round: _Round | None = None
         self.relative_pairs: list[RelativePair] = []
@@ -231,24 +246,25 @@ class _Parser:
 
     def run(self, lines: list[str], bad_lines: dict[int, tuple[str, str]]) -> None:
         fast = self.fast_line if self.fast else None
-        for index, text in enumerate(lines):
+        runs = self.fast and not bad_lines
+        index, count = 0, len(lines)
+        while index < count:
+            if runs and self.round is None and self.body_line is not None:
+                taken = self.fast_run(lines, index)
+                if taken:
+                    index += taken
+                    self.statements += taken
+                    continue
             number = index + 1
             if index in bad_lines:
                 self.error(number, *bad_lines[index])
-            elif fast is not None and fast(number, text):
-                pass  # a plain, well-formed observation line, read without tokens
-            else:
-                try:
-                    tokens = tokenize(text)
-                except LexError as exc:
-                    self.error(number, exc.token, f"'{show(exc.token)}': {exc.message}")
-                    if _DEFAULTS_LINE.match(text):
-                        self.defaults_unread(number, _KEY_WORDS.findall(text))
-                else:
-                    if not tokens:
-                        continue
-                    self.statement(number, tokens)
+            elif (fast is None or not fast(number, lines[index])) and not self.careful_line(
+                number, lines[index]
+            ):
+                index += 1
+                continue  # a blank line or a comment is no statement
             self.statements += 1
+            index += 1
         if self.round is not None:
             at, line = self.round.at or "?", self.round.line
             self.error(
@@ -270,6 +286,33 @@ class _Parser:
                 "'crs EPSG:CODE' for the projected CRS of the coordinates (e.g. crs EPSG:32633), "
                 "or 'crs local lat=LAT lon=LON' for a site grid centred near the survey",
             )
+
+    def careful_line(self, number: int, text: str) -> bool:
+        """Read one line token by token; False for a line with no statement (blank, comment)."""
+        try:
+            tokens = tokenize(text)
+        except LexError as exc:
+            self.error(number, exc.token, f"'{show(exc.token)}': {exc.message}")
+            if _DEFAULTS_LINE.match(text):
+                self.defaults_unread(number, _KEY_WORDS.findall(text))
+            return True
+        if not tokens:
+            return False
+        self.statement(number, tokens)
+        return True
+
+    def table(self) -> ObservationTable:
+        """The observations read, as one table (the parser keeps none of them after)."""
+        self.flush()
+        table = ObservationTable.from_blocks(self.blocks)
+        self.blocks = []
+        return table
+
+    def flush(self) -> None:
+        """The rows read one at a time, as a block of columns after the blocks before."""
+        if self.rows:
+            self.blocks.append(columns_of(self.rows))
+            self.rows = []
 
     def fieldbook(self, source: str, digest: str, table: ObservationTable) -> Fieldbook:
         return Fieldbook(
@@ -382,6 +425,100 @@ class _Parser:
         )
         self.statements += 1
         return True
+
+    def fast_run(self, lines: list[str], start: int) -> int:
+        """Read a long run of plain ``level``/``distance`` lines at once, from ``start``.
+
+        The lines ``fast_line`` takes one by one, taken here a chunk at a time with
+        the checks done on arrays: nothing else is read between them, so what is in
+        force stays the same.  Returns how many lines were taken; the first line not
+        taken (it fails a check, or is no such line) is left to ``fast_line`` and the
+        careful path.  A run shorter than ``_RUN_MIN`` lines is left to ``fast_line``
+        too (arrays cost more than they save there).
+        """
+        if start < self.no_run_before:
+            return 0
+        taken, size = 0, _RUN_MIN
+        while True:
+            chunk = map(_FAST_OBSERVATION.match, lines[start : start + size])
+            matches = cast(list[re.Match[str]], list(takewhile(bool, chunk)))
+            if taken == 0 and len(matches) < _RUN_MIN:
+                self.no_run_before = start + len(matches) + 1
+                return 0
+            count = self.take_run(start, matches) if matches else 0
+            taken += count
+            if count < size:
+                return taken
+            start += count
+            size = min(4 * size, _RUN_MAX)
+
+    def take_run(self, start: int, matches: list[re.Match[str]]) -> int:
+        """The rows of the matched lines from line ``start + 1`` up to the first that fails
+        one of ``fast_line``'s checks; how many were taken."""
+        n = len(matches)
+        groups = list(map(_GROUPS, matches))
+        kind, frm, to, value_text, length_text, length_unit = (
+            list(map(itemgetter(k), groups)) for k in range(6)
+        )
+        bad = np.fromiter(map(operator.eq, frm, to), bool, n)
+        level = np.fromiter(map(_LEVEL.__eq__, kind), bool, n)
+        has_length = np.fromiter(map(operator.is_not, length_text, repeat(None)), bool, n)
+        # as units.parse_number, file_number and bounded_length read them (an overflow to
+        # inf fails the bound)
+        value = np.array(list(map(float, value_text)), dtype=float) * self.length_factor
+        bad |= ~(np.abs(value) <= MAX_LENGTH_M)
+        sigmas: dict[str, Quantity] = {}
+        for name, rows in ((_LEVEL, level), ("distance", ~level)):
+            default = self.defaults.get(name)
+            if default is None or default.sigma is None:
+                bad |= rows
+            else:
+                sigmas[name] = default.sigma
+        level_sigma = sigmas.get(_LEVEL)
+        if level_sigma is not None and level_sigma.per_setup:
+            bad |= level  # needs setups=
+        elif level_sigma is not None and level_sigma.per_sqrtkm:
+            bad |= level & ~has_length
+        bad |= ~level & (has_length | ~(value >= MIN_DISTANCE_M))
+        length_km = np.full(n, np.nan)
+        rows = np.flatnonzero(level & has_length)
+        if rows.size:
+            factors = [LENGTH_FACTORS.get(length_unit[k].lower(), math.nan) for k in rows.tolist()]
+            numbers = [float(length_text[k]) for k in rows.tolist()]
+            length_m = np.array(numbers) * np.array(factors)  # as parse_length and option_length
+            bad[rows] |= ~((length_m >= MIN_DISTANCE_M) & (length_m <= MAX_LENGTH_M))
+            length_km[rows] = length_m / 1000.0
+        taken = int(np.argmax(bad)) if bad.any() else n
+        if not taken:
+            return 0
+        level, value, length_km = level[:taken], value[:taken], length_km[:taken]
+        scale = np.where(level, 1.0, self.scale)
+        none = [None] * taken
+        self.flush()
+        self.blocks.append(
+            [
+                list(range(start + 1, start + 1 + taken)),
+                kind[:taken],
+                frm[:taken],
+                none,
+                to[:taken],
+                (value * scale).tolist(),
+                [sigmas[k] for k in kind[:taken]],
+                np.where(level, 0.0, self.centering).tolist(),
+                scale.tolist(),
+                [None if v != v else v for v in length_km.tolist()],
+                none,
+                none,
+                none,
+                none,
+                [False] * taken,
+                [""] * taken,
+                value.tolist(),
+                [False] * taken,
+                none,
+            ]
+        )
+        return taken
 
     def fast_spatial(
         self,
@@ -1279,8 +1416,10 @@ class _Parser:
     def check_relative_names(self) -> None:
         """Both points of a pair must be named elsewhere in the file (declared or observed)."""
         known: set[str] = set(self.point_lines)
-        for row in self.rows:
-            known.update(row[_NAME_FIELDS])
+        self.flush()
+        for block in self.blocks:
+            for column in block[_NAME_FIELDS]:
+                known.update(column)
         known.discard(None)  # an absent AT
         kept = []
         for pair in self.relative_pairs:
@@ -1323,6 +1462,11 @@ _FAST_SPATIAL = re.compile(
     re.DOTALL,
 )
 _FAST_NUMBER = re.compile(rf"{_NUMBER}\Z")
+#: A run of at least this many plain lines is read at once (``_Parser.fast_run``), in chunks
+#: growing up to ``_RUN_MAX`` lines.
+_RUN_MIN, _RUN_MAX = 16, 65536
+_GROUPS = re.Match.groups
+_LEVEL = "level"
 #: FROM, AT and TO of a row of fields
 _NAME_FIELDS = slice(FIELDS.index("from_point"), FIELDS.index("to") + 1)
 

@@ -48,11 +48,18 @@ KIND_CODE: dict[str, int] = {kind: code for code, kind in enumerate(OBSERVATION_
 NONE = -1
 
 Row = tuple[Any, ...]
+#: A block of rows as its columns: one list per field of ``FIELDS``, in that order.
+Columns = Sequence[list[Any]]
 
 
 def row_of(obs: Observation) -> Row:
     """The tuple of an observation's fields, in ``FIELDS`` order (what the parser collects)."""
     return tuple(getattr(obs, name) for name in FIELDS)
+
+
+def columns_of(rows: Sequence[Row]) -> list[list[Any]]:
+    """Rows as columns (one C-level pass per field; ``zip(*rows)`` costs twice as much)."""
+    return [list(map(itemgetter(k), rows)) for k in range(len(FIELDS))]
 
 
 @dataclass(frozen=True, eq=False)
@@ -98,10 +105,19 @@ class ObservationTable:
     @classmethod
     def from_rows(cls, rows: Sequence[Row]) -> ObservationTable:
         """The table of parsed rows (tuples of the ``Observation`` fields, ``FIELDS`` order)."""
-        n = len(rows)
+        return cls.from_blocks([columns_of(rows)])
+
+    @classmethod
+    def from_blocks(cls, blocks: Sequence[Columns]) -> ObservationTable:
+        """The table of blocks of rows in order, each given as its columns (``FIELDS`` order,
+        one list per field; None where a value is absent)."""
+        if len(blocks) == 1:
+            columns = blocks[0]
+        else:
+            columns = [list(chain.from_iterable(b[k] for b in blocks)) for k in range(len(FIELDS))]
+        n = len(columns[0]) if columns else 0
         if n == 0:
             return _empty()
-        # column by column (one C-level pass each; zip(*rows) costs twice as much)
         (
             line,
             kind,
@@ -122,7 +138,7 @@ class ObservationTable:
             booked,
             planned,
             baseline,
-        ) = (list(map(itemgetter(k), rows)) for k in range(len(FIELDS)))
+        ) = columns
         # names in order of first appearance: FROM, AT, TO of each row in turn
         seen = dict.fromkeys(chain.from_iterable(zip(frm, at, to)))
         seen.pop(None, None)  # an absent AT
