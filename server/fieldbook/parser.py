@@ -483,9 +483,13 @@ class _Parser:
         length_km = np.full(n, np.nan)
         rows = np.flatnonzero(level & has_length)
         if rows.size:
-            factors = [LENGTH_FACTORS.get(length_unit[k].lower(), math.nan) for k in rows.tolist()]
-            numbers = [float(length_text[k]) for k in rows.tolist()]
-            length_m = np.array(numbers) * np.array(factors)  # as parse_length and option_length
+            units, texts = length_unit, length_text
+            if rows.size < n:
+                units, texts = [units[k] for k in rows.tolist()], [texts[k] for k in rows.tolist()]
+            # an unknown unit's factor is None, NaN in the array: it fails the bounds
+            factors = np.array(list(map(LENGTH_FACTORS.get, map(str.lower, units))), dtype=float)
+            numbers = np.array(list(map(float, texts)), dtype=float)
+            length_m = numbers * factors  # as parse_length and option_length
             bad[rows] |= ~((length_m >= MIN_DISTANCE_M) & (length_m <= MAX_LENGTH_M))
             length_km[rows] = length_m / 1000.0
         taken = int(np.argmax(bad)) if bad.any() else n
@@ -503,10 +507,10 @@ class _Parser:
                 none,
                 to[:taken],
                 (value * scale).tolist(),
-                [sigmas[k] for k in kind[:taken]],
+                list(map(sigmas.__getitem__, kind[:taken])),
                 np.where(level, 0.0, self.centering).tolist(),
                 scale.tolist(),
-                [None if v != v else v for v in length_km.tolist()],
+                length_km.tolist(),  # NaN where there is none, as the table has it
                 none,
                 none,
                 none,

@@ -140,9 +140,11 @@ class ObservationTable:
             baseline,
         ) = columns
         # names in order of first appearance: FROM, AT, TO of each row in turn
-        seen = dict.fromkeys(chain.from_iterable(zip(frm, at, to)))
+        interleaved: list[str | None] = [None] * (3 * n)
+        interleaved[0::3], interleaved[1::3], interleaved[2::3] = frm, at, to
+        seen = dict.fromkeys(interleaved)
         seen.pop(None, None)  # an absent AT
-        names: tuple[str, ...] = tuple(seen)
+        names: tuple[str, ...] = tuple(seen)  # type: ignore[arg-type]  # None popped
         codes = dict(KIND_CODE)
         for other in set(kind) - codes.keys():  # a kind of a model built in code (tests)
             codes[other] = len(codes)
