@@ -464,16 +464,15 @@ class _Walker:
         run = _DATUM in at_junction
         start = _DATUM if run else min(map(self.first_mark, cycle), key=self.order.__getitem__)
         marks, rises = self._walk(cycle, first, start, at_junction)
+        sections = list(chain.from_iterable(map(lines.members.__getitem__, cycle)))
         if run:
             marks = marks[1:-1]  # a run from one fixed benchmark to another
-            members = (k for k in chain.from_iterable(map(lines.members.__getitem__, cycle)))
-            sections = [k for k in members if k < self.sections]  # not the datum links
-        else:
-            sections = list(chain.from_iterable(map(lines.members.__getitem__, cycle)))
+            sections = [k for k in sections if k < self.sections]  # not the datum links
         lengths = list(map(self.edges.length_km.__getitem__, sections))
         setups = list(map(self.edges.setups.__getitem__, sections))
-        length_km = None if None in lengths else sum(v or 0.0 for v in lengths)
-        total_setups = None if None in setups else sum(v or 0 for v in setups)
+        # as sum(v or 0.0 ...) adds them: v or 0.0 is v for every length and count here
+        length_km = None if None in lengths else sum(lengths)  # type: ignore[arg-type]
+        total_setups = None if None in setups else sum(setups)  # type: ignore[arg-type]
         allowed = tolerance.allowance_level(length_km, total_setups) if tolerance else None
         misclosure = Misclosure(
             kind="run" if run else "loop",
