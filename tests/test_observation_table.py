@@ -72,6 +72,9 @@ def test_absent_values_planned_observations_and_own_kinds_round_trip():
     assert table.at.tolist() == [-1, -1, table.names.index("C"), -1]
     assert table.setups.tolist() == [-1, 6, -1, -1]
     assert table.notes == {0: "first"}
+    picked = table.take(np.array([2, 0]))  # rows renumbered, the note follows its row
+    assert picked.notes == {1: "first"} and picked.observation(1).note == "first"
+    assert picked.line.tolist() == [5, 3] and table.take(np.array([1])).notes == {}
     for row, obs in enumerate(made):
         _same(table.observation(row), obs)
     assert math.copysign(1.0, table.observation(3).value) == -1.0  # -0.0 stays -0.0

@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 from functools import cached_property
 from itertools import chain
 from operator import itemgetter
-from typing import Any, overload
+from typing import Any, TypeVar, overload
 
 import numpy as np
 
@@ -48,6 +48,7 @@ KIND_CODE: dict[str, int] = {kind: code for code, kind in enumerate(OBSERVATION_
 NONE = -1
 
 Row = tuple[Any, ...]
+T = TypeVar("T")
 #: A block of rows as its columns: one list per field of ``FIELDS``, in that order.
 Columns = Sequence[list[Any]]
 
@@ -202,14 +203,15 @@ class ObservationTable:
         """The table of the given rows (in that order); names and σ stay as they are."""
         rows = np.asarray(rows, dtype=np.int64)
         picked = {name: getattr(self, name)[rows] for name in _ARRAYS}
-        position = {int(old): new for new, old in enumerate(rows.tolist())}
+        position = np.full(len(self), NONE, np.int64)  # new row of each old one, −1: not taken
+        position[rows] = np.arange(rows.size)
         table = ObservationTable(
             names=self.names,
             sigmas=self.sigmas,
             kinds=self.kinds,
             **picked,
-            notes={position[k]: v for k, v in self.notes.items() if k in position},
-            baselines={position[k]: v for k, v in self.baselines.items() if k in position},
+            notes=_moved(self.notes, position),
+            baselines=_moved(self.baselines, position),
         )
         table.freeze()
         made = self._made
@@ -330,6 +332,13 @@ _ARRAYS = (
     "booked",
     "booked_given",
 )
+
+
+def _moved(extras: Mapping[int, T], position: np.ndarray) -> dict[int, T]:
+    """Sparse extras by row, renumbered by ``position`` (old row → new row, −1: dropped)."""
+    moved = {int(position[k]): value for k, value in extras.items()}
+    moved.pop(NONE, None)
+    return moved
 
 
 def _empty() -> ObservationTable:
