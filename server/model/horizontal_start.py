@@ -24,6 +24,7 @@ import itertools
 import math
 from collections import defaultdict
 from collections.abc import Callable
+from functools import partial
 from typing import NamedTuple
 
 import numpy as np
@@ -55,15 +56,18 @@ def _horizontal(network: Network) -> list[_Obs]:
     rows = np.flatnonzero(table.is_kind(*HORIZONTAL_KINDS))
     names = table.names
     kinds = table.kinds
+    # tuple.__new__ makes each record in C (the class's own __new__ is Python)
     return list(
         map(
-            _Obs,
-            [kinds[k] for k in table.kind[rows].tolist()],
-            [names[k] for k in table.frm[rows].tolist()],
-            [names[k] if k >= 0 else None for k in table.at[rows].tolist()],
-            [names[k] for k in table.to[rows].tolist()],
-            table.value[rows].tolist(),
-            [k if k >= 0 else None for k in table.round_line[rows].tolist()],
+            partial(tuple.__new__, _Obs),
+            zip(
+                [kinds[k] for k in table.kind[rows].tolist()],
+                [names[k] for k in table.frm[rows].tolist()],
+                [names[k] if k >= 0 else None for k in table.at[rows].tolist()],
+                [names[k] for k in table.to[rows].tolist()],
+                table.value[rows].tolist(),
+                [k if k >= 0 else None for k in table.round_line[rows].tolist()],
+            ),
         )
     )
 
