@@ -149,7 +149,7 @@ class ObservationTable:
         codes = dict(KIND_CODE)
         for other in set(kind) - codes.keys():  # a kind of a model built in code (tests)
             codes[other] = len(codes)
-        ids: dict[str | None, int] = {name: k for k, name in enumerate(names)}
+        ids: dict[str | None, int] = dict(zip(names, range(len(names))))  # made in C
         ids[None] = NONE
         sigmas, sigma_index = _interned(sigma)
         table = cls(
