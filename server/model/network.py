@@ -11,6 +11,7 @@ from __future__ import annotations
 from collections import defaultdict
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
+from itertools import repeat
 
 import numpy as np
 from scipy.sparse import coo_matrix
@@ -109,9 +110,9 @@ class Network:
         """Index into ``points`` of each name of ``used_table.names`` (int64; −1: none)."""
         cached = self._columns.get("name_point")
         if cached is None:
-            index = {p.name: k for k, p in enumerate(self.points)}
+            index = dict(zip((p.name for p in self.points), range(len(self.points))))
             names = self.used_table.names
-            cached = np.fromiter((index.get(n, -1) for n in names), np.int64, len(names))
+            cached = np.fromiter(map(index.get, names, repeat(-1)), np.int64, len(names))
             self._columns["name_point"] = cached
         return cached  # type: ignore[return-value]
 
@@ -222,7 +223,7 @@ def _collect_points(fieldbook: Fieldbook, used: Sequence[Observation]) -> tuple[
     touched_ids = np.zeros(len(table.names) + 1, bool)  # the last entry: an absent AT
     for column in (table.frm, table.at, table.to):
         touched_ids[column if rows is None else column[rows]] = True
-    touched = {table.names[k] for k in np.flatnonzero(touched_ids[:-1]).tolist()}
+    touched = set(map(table.names.__getitem__, np.flatnonzero(touched_ids[:-1]).tolist()))
     points = []
     for name in ordered:
         stmt = declared.get(name)
