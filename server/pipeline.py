@@ -93,7 +93,8 @@ def check_adjustable_now(fieldbook: Fieldbook) -> None:
     Planned observations (``?``) have no value (exit 2, every such line): they are for
     designing a network, not for adjusting one.
     """
-    planned = sorted({obs.line for obs in fieldbook.observations if obs.planned})
+    table = fieldbook.table
+    planned = sorted(set(table.line[table.planned].tolist()))
     if planned:
         message = (
             "'?' marks a planned observation: it has a standard deviation but no value "

@@ -1,9 +1,10 @@
 """The fast paths give exactly what the careful paths give.
 
 * The parser reads common well-formed observation lines (``level``,
-  ``distance``, a direction of a round) without tokens
-  (``fieldbook._Parser.fast_line``) and hands everything else to the careful
-  path: both must give equal ``Fieldbook`` objects, or equal issues.
+  ``distance``, ``slope``/``zenith`` with ``hi=``/``ht=``, a direction of a
+  round) without tokens (``fieldbook._Parser.fast_line``) and hands
+  everything else to the careful path: both must give equal ``Fieldbook``
+  objects, equal observation tables column by column, or equal issues.
 * ``json_output`` spells lists of flat records column by column: the text
   must be ``json.dumps(..., indent=2)`` byte for byte.
 """
@@ -15,6 +16,7 @@ import math
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -22,6 +24,8 @@ from hypothesis import strategies as st
 from server.errors import FieldbookError
 from server.fieldbook import parser as fieldbook_module
 from server.fieldbook.parser import parse_fieldbook
+from server.fieldbook.table import _ARRAYS as TABLE_ARRAYS
+from server.fieldbook.table import ObservationTable
 from server.results.json_text import dumps_indented
 from tests.hypothesis_profiles import examples
 
@@ -46,6 +50,22 @@ def assert_same(text: str, monkeypatch: pytest.MonkeyPatch) -> None:
     careful = _outcome(text, False, monkeypatch)
     fast = _outcome(text, True, monkeypatch)
     assert fast == careful
+    if not isinstance(fast, tuple):
+        assert_same_table(fast.table, careful.table)
+        # the lazy objects are those of the table, row by row
+        assert list(fast.observations) == [
+            fast.table.observation(k) for k in range(len(fast.table))
+        ]
+
+
+def assert_same_table(fast: ObservationTable, careful: ObservationTable) -> None:
+    """Every column equal, NaN where NaN (an absent value), same dtype."""
+    for name in ("names", "sigmas", "kinds", "notes", "baselines"):
+        assert getattr(fast, name) == getattr(careful, name), name
+    for name in TABLE_ARRAYS:
+        a, b = getattr(fast, name), getattr(careful, name)
+        assert a.dtype == b.dtype, name
+        np.testing.assert_array_equal(a, b, err_msg=name, strict=True)
 
 
 def _tokenized_lines(text: str, monkeypatch: pytest.MonkeyPatch) -> int:
@@ -108,6 +128,16 @@ def test_demo_projects_parse_alike(name, monkeypatch):
 def test_benchmark_networks_parse_alike(monkeypatch):
     assert_same(networks.leveling(1_000), monkeypatch)
     assert_same(networks.horizontal(200, sparse=True, fixed_every=50), monkeypatch)
+    assert_same(networks.geodetic(60), monkeypatch)
+
+
+def test_the_fast_path_reads_slope_and_zenith_lines_after_the_first(monkeypatch):
+    text = networks.geodetic(60)
+    spatial = sum(1 for line in text.splitlines() if line.split()[:1] in (["slope"], ["zenith"]))
+    careful = _tokenized_lines(text, monkeypatch)
+    monkeypatch.setattr(fieldbook_module, "_FAST_SPATIAL", fieldbook_module.re.compile("(?!)"))
+    # every slope and zenith line but the first is read without tokens
+    assert _tokenized_lines(text, monkeypatch) - careful == spatial - 1
 
 
 _BASE = """fieldbook 1
@@ -238,6 +268,15 @@ _LENGTHS = st.sampled_from(
         "  # comment",
         "\t",
         " hi=1m",
+        " hi=1.5m ht=1.8m",
+        " ht=2ft hi=0.5m",
+        " ht=1.8m",
+        " hi=1.5",
+        " hi=1.5m hi=1.6m",
+        " HI=1m",
+        " hi=1e400m",
+        " hi=1.5xx",
+        " hi=-0.2m  # low",
     ]
 )
 _SPACE = st.sampled_from([" ", "  ", "\t", " \t"])
@@ -246,7 +285,9 @@ _LEAD = st.sampled_from(["", " ", "  ", "\t"])
 
 @st.composite
 def _observation_line(draw) -> str:
-    kind = draw(st.sampled_from(["level", "distance", "Level", "angle", "azimuth"]))
+    kind = draw(
+        st.sampled_from(["level", "distance", "Level", "angle", "azimuth", "slope", "zenith"])
+    )
     names = draw(st.lists(_NAMES, min_size=2, max_size=3))
     sep = draw(_SPACE)
     return draw(_LEAD) + sep.join([kind, *names, draw(_NUMBERS)]) + draw(_LENGTHS)
@@ -285,9 +326,17 @@ _DEFAULTS = st.sampled_from(
 )
 
 
+_SPATIAL_DEFAULTS = st.sampled_from(
+    ["defaults slope=2mm+2ppm zenith=1.5sec", "defaults zenith=3sec", "defaults slope=1mm", ""]
+)
+
+
 @st.composite
 def _book(draw) -> str:
     lines = ["fieldbook 1", draw(_HEADERS), draw(_DEFAULTS)]
+    if draw(st.booleans()):
+        lines.insert(1, "crs local lat=47 lon=8")
+        lines.append(draw(_SPATIAL_DEFAULTS))
     if draw(st.booleans()):
         lines.append("scale factor=" + draw(st.sampled_from(["0.9996", "1.02", "1.5"])))
     lines.append("point A height=10 east=0 north=0 fix")
@@ -314,6 +363,90 @@ def _book(draw) -> str:
 @given(_book())
 def test_fast_and_careful_paths_agree_on_edge_lines(monkeypatch, text):
     assert_same(text, monkeypatch)
+
+
+_PLAIN = st.sampled_from(
+    [
+        "level A B +1.2345 len=0.5km",
+        "level B C -0.5 len=420m",
+        "distance A B 141.42",
+        "level C A -0.734 len=0.3km  # comment",
+        "distance B C 100.0",
+        "\tlevel C D 2 len=1km",
+    ]
+)
+
+
+# lines of the shape a run reads at once that fail one of its checks
+_RUN_EDGES = st.sampled_from(
+    [
+        "distance A B 0.0001",
+        "distance A B 0",
+        "distance A B -5",
+        "distance A A 10",
+        "distance A B 10 len=1km",
+        "distance A B 1e999",
+        "level A B 1e999 len=1km",
+        "level A B 1 len=0.0005m",
+        "level A B 1 len=1xx",
+        "level A B 1 len=1e999km",
+        "level A B 1",
+        "level B B 1 len=1km",
+        "level A B 1 len=0.001m",
+        "distance A B 0.001",
+        "level A B -0 len=1ft",
+    ]
+)
+_RUN_DEFAULTS = st.sampled_from(
+    [
+        "defaults level=1mm/sqrtkm distance=2mm+2ppm centering=0.5mm",
+        "defaults level=1mm distance=3mm",
+        "defaults level=1mm/sqrtkm+0.2mm/setup distance=2mm",
+        "defaults level=1mm",
+        "defaults distance=2mm",
+    ]
+)
+
+
+@st.composite
+def _run_book(draw) -> str:
+    """Long runs of plain lines (read a chunk at a time) with edge lines among them."""
+    lines = ["fieldbook 1", draw(_HEADERS), draw(_RUN_DEFAULTS)]
+    if draw(st.booleans()):
+        lines.append("scale factor=" + draw(st.sampled_from(["0.9996", "1.02"])))
+    lines.append("point A height=10 east=0 north=0 fix")
+    for _ in range(draw(st.integers(1, 3))):
+        for _ in range(draw(st.integers(10, 60))):
+            choice = draw(st.integers(0, 29))  # mostly plain lines
+            edge = draw(_RUN_EDGES) if choice % 2 else draw(_observation_line())
+            lines.append(draw(_PLAIN) if choice > 1 else edge)
+        lines.append(draw(st.sampled_from(["", "# a comment", "defaults level=2mm/sqrtkm"])))
+    return "\n".join(lines) + "\n"
+
+
+@settings(
+    max_examples=examples(60),
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
+@given(_run_book())
+def test_fast_and_careful_paths_agree_on_long_runs(monkeypatch, text):
+    assert_same(text, monkeypatch)
+
+
+def test_a_long_run_is_read_without_tokens_up_to_its_edge_lines(monkeypatch):
+    body = [f"level M{k} M{k + 1} 0.{k:03d} len=0.{k % 9 + 1}km" for k in range(100)]
+    body[40] = "level M40 M40 1 len=1km"  # to itself: the careful path reports it
+    body[70] = "level M70 M71 1 len=1xx"  # not a length unit
+    text = LEVELING + "\n".join(body) + "\n"
+    with pytest.raises(FieldbookError) as caught:
+        parse_fieldbook(text)
+    assert [issue.line for issue in caught.value.issues] == [48, 78]
+    assert_same(text, monkeypatch)
+    good = LEVELING + "\n".join(body[:40] + body[41:70] + body[71:]) + "\n"
+    assert_same(good, monkeypatch)
+    observations = len(parse_fieldbook(good).observations)
+    lines = sum(1 for line in good.splitlines() if line.strip())
+    assert _tokenized_lines(good, monkeypatch) == lines - observations
 
 
 # --------------------------------------------------------------------------- JSON

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Collection
+from collections.abc import Collection, Sequence
 
 import numpy as np
 
@@ -215,7 +215,7 @@ def external_reliability(network: Network, linear: Linearisation) -> dict[int, f
     return {line_of_row[int(row)]: float(s) * per_m for row, s in zip(rows, shift)}
 
 
-def _first_rows(used: tuple[Observation, ...]) -> tuple[np.ndarray, np.ndarray]:
+def _first_rows(used: Sequence[Observation]) -> tuple[np.ndarray, np.ndarray]:
     """First row of each used observation, and whether it is a single-row one."""
     components = np.array([3 if o.kind == "baseline" else 1 for o in used], dtype=np.int64)
     first = np.concatenate([[0], np.cumsum(components)[:-1]]).astype(np.int64)

@@ -56,7 +56,7 @@ from server.errors import ConvergenceError, NetworkError
 from server.model.assembly import Assembly, Evaluation
 from server.model.kinds import KINDS, Kind
 from server.model.network import Network
-from server.model.start_values import approximate_coordinates
+from server.model.start_values import start_coordinates
 from server.model.whitening import CorrelatedBlock
 
 #: Engine status → message; ``converged = status > 0``.
@@ -197,7 +197,7 @@ def adjust(
 
         state = GeodeticState(network, correlated)
     else:
-        state = State(network, approximate_coordinates(network), kinds, correlated)
+        state = State(network, start_coordinates(network), kinds, correlated)
     n_unknowns = len(network.parameters)
     if method == "auto" or n_unknowns == 0:
         method = "dense" if n_unknowns <= DENSE_LIMIT else "sparse"

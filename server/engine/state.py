@@ -20,6 +20,7 @@ from server.model.network import Network
 from server.model.whitening import CorrelatedBlock
 
 _COMPONENT = {"E": 0, "N": 1, "H": 2}
+_CODE = {**_COMPONENT, "O": 3}
 #: Codes of the unknowns in ``State.kind``.
 EAST, NORTH, HEIGHT, ORIENTATION = 0, 1, 2, 3
 
@@ -40,7 +41,7 @@ class State:
     def __init__(
         self,
         network: Network,
-        coords: dict[str, tuple[float, float, float]],
+        coords: Mapping[str, tuple[float, float, float]] | np.ndarray,
         kinds: Mapping[str, Kind] = KINDS,
         correlated: Sequence[CorrelatedBlock] = (),
     ) -> None:
@@ -48,7 +49,10 @@ class State:
         self.network = network
         self.names = [p.name for p in network.points]
         self.point_index = {name: k for k, name in enumerate(self.names)}
-        values = np.array([coords[name] for name in self.names], dtype=float).reshape(-1, 3)
+        if isinstance(coords, np.ndarray):  # points × (east, north, height), in point order
+            values = np.asarray(coords, dtype=float).reshape(-1, 3)
+        else:
+            values = np.array([coords[name] for name in self.names], dtype=float).reshape(-1, 3)
         self.east, self.north, self.height = (values[:, c].copy() for c in range(3))
         params = network.parameters
         self.round_lines = sorted({p.round_line for p in params if p.kind == "O" and p.round_line})
@@ -56,19 +60,21 @@ class State:
         n_points = len(self.names)
         self.column = {c: np.full(n_points, -1, np.int64) for c in "ENH"}
         self.column["O"] = np.full(len(self.round_lines), -1, np.int64)
-        kind = np.empty(len(params), np.int64)  # EAST, NORTH, HEIGHT or ORIENTATION
-        target = np.empty(len(params), np.int64)  # point or round index
-        for k, p in enumerate(params):
-            if p.kind == "O":
-                assert p.round_line is not None
-                index = self.round_index[p.round_line]
-                kind[k] = ORIENTATION
-            else:
-                assert p.point is not None
-                index = self.point_index[p.point]
-                kind[k] = _COMPONENT[p.kind]
-            self.column[p.kind][index] = k
-            target[k] = index
+        # EAST, NORTH, HEIGHT or ORIENTATION, and the point or round index of each unknown
+        kind = np.fromiter((_CODE[p.kind] for p in params), np.int64, len(params))
+        target = np.fromiter(
+            (
+                self.round_index[p.round_line]  # type: ignore[index]  # an "O" has its round
+                if p.kind == "O"
+                else self.point_index[p.point]  # type: ignore[index]  # the others a point
+                for p in params
+            ),
+            np.int64,
+            len(params),
+        )
+        for code, letter in enumerate("ENHO"):
+            pick = np.flatnonzero(kind == code)
+            self.column[letter][target[pick]] = pick
         self.kind, self.target = kind, target
         self.orientation = self._start_orientations()
         self.control_rows = control_rows(network)
@@ -92,6 +98,7 @@ class State:
             self.control,
             self.kinds,
             self.correlated,
+            table=self.network.used_table,
         )
 
     def apply(self, correction: np.ndarray) -> None:
@@ -119,27 +126,20 @@ class State:
 
     def _start_orientations(self) -> np.ndarray:
         """Each round's orientation as the mean of (azimuth − direction) over its targets."""
-        rounds = [
-            (
-                self.round_index[o.round_line],
-                self.point_index[o.from_point],
-                self.point_index[o.to],
-                o.value,
-            )
-            for o in self.network.used
-            if o.round_line in self.round_index
-            and o.kind in self.kinds
-            and self.kinds[o.kind].has_round
-        ]
+        table = self.network.used_table
+        with_round = [name for name, kind in self.kinds.items() if kind.has_round]
+        lines = table.round_line
+        pick = table.is_kind(*with_round) & np.isin(lines, self.round_lines)
         orientation = np.zeros(len(self.round_lines))
-        if not rounds:
+        if not pick.any():
             return orientation
-        table = np.array(rounds, dtype=float)
-        r, i, j = (table[:, c].astype(np.int64) for c in range(3))
+        point = self.network.name_point
+        r = np.searchsorted(self.round_lines, lines[pick])  # round_lines is sorted
+        i, j, value = point[table.frm[pick]], point[table.to[pick]], table.value[pick]
         d_east = self.east[j] - self.east[i]
         d_north = self.north[j] - self.north[i]
         ok = np.isfinite(d_east) & np.isfinite(d_north)
-        offset = np.arctan2(d_east[ok], d_north[ok]) - table[ok, 3]
+        offset = np.arctan2(d_east[ok], d_north[ok]) - value[ok]
         # average on the circle: offsets near 0 and 2π must not cancel
         sines = np.bincount(r[ok], weights=np.sin(offset), minlength=len(self.round_lines))
         cosines = np.bincount(r[ok], weights=np.cos(offset), minlength=len(self.round_lines))

@@ -8,11 +8,16 @@ the same units.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import date, datetime
+from typing import TYPE_CHECKING
 
 from server.errors import Issue
 from server.units import Quantity
+
+if TYPE_CHECKING:
+    from server.fieldbook.table import ObservationTable
 
 #: Observation kinds as they appear in results (``direction`` for each line of a round).
 OBSERVATION_KINDS = (
@@ -197,6 +202,11 @@ class Fieldbook:
     (metres; None without a ``geoid`` line, then points without their own ``geoid=``
     have undulation 0), ``refraction`` (the coefficient k in force) and ``epoch``
     (a ``date``, or a ``datetime`` in UTC when a time was given; None without one).
+
+    ``observations`` is a sequence of ``Observation`` in file order: the parser gives a
+    lazy view (``table.ObservationRows``) whose objects are made only when read, and
+    ``table`` holds the same observations as arrays, which the stages on the way to the
+    adjustment read instead.  A field book built in code may give any sequence (a tuple).
     """
 
     source: str = ""
@@ -209,7 +219,7 @@ class Fieldbook:
     relative_tolerance: Quantity | None = None
     traverse_tolerance: TraverseTolerance = field(default_factory=TraverseTolerance)
     points: tuple[PointStatement, ...] = ()
-    observations: tuple[Observation, ...] = ()
+    observations: Sequence[Observation] = ()
     rounds: tuple[DirectionRound, ...] = ()
     relative_pairs: tuple[RelativePair, ...] = ()
     warnings: tuple[Issue, ...] = ()
@@ -218,3 +228,20 @@ class Fieldbook:
     geoid_undulation: float | None = None
     refraction: float = DEFAULT_REFRACTION
     epoch: date | datetime | None = None
+    _table: ObservationTable | None = field(default=None, init=False, repr=False, compare=False)
+
+    @property
+    def table(self) -> ObservationTable:
+        """Every observation as columns (``fieldbook/table.py``), row k = ``observations[k]``.
+
+        Made once: the parser's own, or tabled from the objects of a book built in code.
+        """
+        table = self._table
+        if table is None:
+            from server.fieldbook.table import table_of
+
+            table, rows = table_of(self.observations)
+            if rows is not None:
+                table = table.take(rows)
+            object.__setattr__(self, "_table", table)
+        return table

@@ -17,11 +17,16 @@ from __future__ import annotations
 import difflib
 import hashlib
 import math
+import operator
 import re
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import date, datetime
-from typing import TypeVar
+from itertools import repeat, takewhile
+from operator import itemgetter
+from typing import TypeVar, cast
+
+import numpy as np
 
 from server.errors import FieldbookError
 from server.fieldbook.baselines import (
@@ -83,6 +88,15 @@ from server.fieldbook.model import (
     TraverseTolerance,
 )
 from server.fieldbook.point_names import near_miss_warnings
+from server.fieldbook.table import (
+    FIELDS,
+    Columns,
+    ObservationRows,
+    ObservationTable,
+    Row,
+    columns_of,
+    row_of,
+)
 from server.units import (
     FILE_ANGLE_UNITS,
     FILE_LENGTH_UNITS,
@@ -160,9 +174,10 @@ def parse_fieldbook(text: str | bytes, *, source: str = "") -> Fieldbook:
     parser.run(lines, bad_lines)
     if parser.errors.count:
         raise FieldbookError(parser.errors.result(), source, count=parser.errors.count)
-    for issue in near_miss_warnings(parser.points, parser.observations):
+    table = parser.table()
+    for issue in near_miss_warnings(parser.points, table):
         parser.warnings.add(issue.line, issue.token, issue.message)
-    return parser.fieldbook(source, digest)
+    return parser.fieldbook(source, digest, table)
 
 
 @dataclass(frozen=True, slots=True)
@@ -211,7 +226,11 @@ class _Parser:
         self.statements = 0
         self.points: list[PointStatement] = []
         self.point_lines: dict[str, int] = {}
-        self.observations: list[Observation] = []
+        #: the observations read: blocks of columns in file order (``table.FIELDS``), and
+        #: after them the rows read one at a time, each the tuple of its fields
+        self.blocks: list[Columns] = []
+        self.rows: list[Row] = []
+        self.no_run_before = 0  # lines up to here are known not to start a long run
         self.rounds: list[DirectionRound] = []
         self.round: _Round | None = None
         self.relative_pairs: list[RelativePair] = []
@@ -227,24 +246,25 @@ class _Parser:
 
     def run(self, lines: list[str], bad_lines: dict[int, tuple[str, str]]) -> None:
         fast = self.fast_line if self.fast else None
-        for index, text in enumerate(lines):
+        runs = self.fast and not bad_lines
+        index, count = 0, len(lines)
+        while index < count:
+            if runs and self.round is None and self.body_line is not None:
+                taken = self.fast_run(lines, index)
+                if taken:
+                    index += taken
+                    self.statements += taken
+                    continue
             number = index + 1
             if index in bad_lines:
                 self.error(number, *bad_lines[index])
-            elif fast is not None and fast(number, text):
-                pass  # a plain, well-formed observation line, read without tokens
-            else:
-                try:
-                    tokens = tokenize(text)
-                except LexError as exc:
-                    self.error(number, exc.token, f"'{show(exc.token)}': {exc.message}")
-                    if _DEFAULTS_LINE.match(text):
-                        self.defaults_unread(number, _KEY_WORDS.findall(text))
-                else:
-                    if not tokens:
-                        continue
-                    self.statement(number, tokens)
+            elif (fast is None or not fast(number, lines[index])) and not self.careful_line(
+                number, lines[index]
+            ):
+                index += 1
+                continue  # a blank line or a comment is no statement
             self.statements += 1
+            index += 1
         if self.round is not None:
             at, line = self.round.at or "?", self.round.line
             self.error(
@@ -267,7 +287,34 @@ class _Parser:
                 "or 'crs local lat=LAT lon=LON' for a site grid centred near the survey",
             )
 
-    def fieldbook(self, source: str, digest: str) -> Fieldbook:
+    def careful_line(self, number: int, text: str) -> bool:
+        """Read one line token by token; False for a line with no statement (blank, comment)."""
+        try:
+            tokens = tokenize(text)
+        except LexError as exc:
+            self.error(number, exc.token, f"'{show(exc.token)}': {exc.message}")
+            if _DEFAULTS_LINE.match(text):
+                self.defaults_unread(number, _KEY_WORDS.findall(text))
+            return True
+        if not tokens:
+            return False
+        self.statement(number, tokens)
+        return True
+
+    def table(self) -> ObservationTable:
+        """The observations read, as one table (the parser keeps none of them after)."""
+        self.flush()
+        table = ObservationTable.from_blocks(self.blocks)
+        self.blocks = []
+        return table
+
+    def flush(self) -> None:
+        """The rows read one at a time, as a block of columns after the blocks before."""
+        if self.rows:
+            self.blocks.append(columns_of(self.rows))
+            self.rows = []
+
+    def fieldbook(self, source: str, digest: str, table: ObservationTable) -> Fieldbook:
         return Fieldbook(
             source=source,
             version=1,
@@ -279,7 +326,7 @@ class _Parser:
             relative_tolerance=self.relative,
             traverse_tolerance=self.traverse,
             points=tuple(self.points),
-            observations=tuple(self.observations),
+            observations=ObservationRows(table),
             rounds=tuple(self.rounds),
             relative_pairs=tuple(self.relative_pairs),
             warnings=self.warnings.result(),
@@ -290,19 +337,25 @@ class _Parser:
             epoch=self.epoch,
         )
 
+    def add(self, obs: Observation) -> None:
+        """Keep an observation read by the careful path (as its row of fields)."""
+        self.rows.append(row_of(obs))
+
     def error(self, line: int, token: str, message: str) -> None:
         self.errors.add(line, token, message)
 
     # ---- the fast path: the common well-formed observation lines
 
     def fast_line(self, line: int, text: str) -> bool:
-        """Read a plain ``level``/``distance`` line or a direction of a round, if it is one.
+        """Read a plain observation line or a direction of a round, if it is one.
 
-        True when the line was taken (its observation appended); False, with
-        nothing changed, whenever anything is unusual, so that the careful
-        path reads the line and reports exactly what it always reports.  Only
-        lines the careful path would accept without a word are taken here, and
-        they give the same ``Observation`` (``tests/test_fast_paths.py``).
+        Plain lines: ``level``/``distance`` (``len=`` on a level), ``slope``/``zenith``
+        (``hi=``/``ht=``), and ``TO VALUE`` inside a round.  True when the line was
+        taken (its row appended); False, with nothing changed, whenever anything
+        is unusual, so that the careful path reads the line and reports exactly
+        what it always reports.  Only lines the careful path would accept without
+        a word are taken here, and they give the same ``Observation``
+        (``tests/test_fast_paths.py`` compares both paths field by field).
         """
         if self.round is not None:
             match = _FAST_DIRECTION.match(text)
@@ -311,21 +364,19 @@ class _Parser:
             return False
         match = _FAST_OBSERVATION.match(text)
         if match is None:
-            return False
+            match = _FAST_SPATIAL.match(text)
+            return match is not None and self.fast_spatial(line, *match.groups())
         kind, from_point, to, value_text, length_text, length_unit = match.groups()
-        if from_point == to or from_point.lower() == "end" or to.lower() == "end":
+        if from_point == to:
             return False
         default = self.defaults.get(kind)
         if default is None or default.sigma is None:
             return False
         sigma = default.sigma
         # as units.parse_number, file_number and bounded_length read them (the pattern
-        # has checked the spelling of the numbers)
-        number = float(value_text)
-        if not math.isfinite(number):
-            return False
-        value = number * self.length_factor
-        if abs(value) > MAX_LENGTH_M:
+        # has checked the spelling of the numbers; an overflow to inf fails the bound)
+        value = float(value_text) * self.length_factor
+        if not abs(value) <= MAX_LENGTH_M:
             return False
         length_km = None
         if kind == "level":
@@ -336,22 +387,21 @@ class _Parser:
                     return False
             else:
                 factor = LENGTH_FACTORS.get(length_unit.lower())
-                number = float(length_text)
-                if factor is None or not math.isfinite(number):
+                if factor is None:
                     return False
-                length_m = number * factor  # as units.parse_length and option_length
-                if abs(length_m) > MAX_LENGTH_M or length_m <= 0.0 or length_m < MIN_DISTANCE_M:
+                length_m = float(length_text) * factor  # as parse_length and option_length
+                if not MIN_DISTANCE_M <= length_m <= MAX_LENGTH_M:
                     return False
                 length_km = length_m / 1000.0
             scale = 1.0
             centering = 0.0
         else:
-            if length_text is not None or value <= 0.0 or value < MIN_DISTANCE_M:
+            if length_text is not None or not value >= MIN_DISTANCE_M:
                 return False
             scale = self.scale
             centering = self.centering
-        self.observations.append(
-            Observation(
+        self.rows.append(
+            (
                 line,
                 kind,
                 from_point,
@@ -362,7 +412,184 @@ class _Parser:
                 centering,
                 scale,
                 length_km,
-                booked=value,
+                None,
+                None,
+                None,
+                None,
+                False,
+                "",
+                value,
+                False,
+                None,
+            )
+        )
+        self.statements += 1
+        return True
+
+    def fast_run(self, lines: list[str], start: int) -> int:
+        """Read a long run of plain ``level``/``distance`` lines at once, from ``start``.
+
+        The lines ``fast_line`` takes one by one, taken here a chunk at a time with
+        the checks done on arrays: nothing else is read between them, so what is in
+        force stays the same.  Returns how many lines were taken; the first line not
+        taken (it fails a check, or is no such line) is left to ``fast_line`` and the
+        careful path.  A run shorter than ``_RUN_MIN`` lines is left to ``fast_line``
+        too (arrays cost more than they save there).
+        """
+        if start < self.no_run_before:
+            return 0
+        taken, size = 0, _RUN_MIN
+        while True:
+            chunk = map(_FAST_OBSERVATION.match, lines[start : start + size])
+            matches = cast(list[re.Match[str]], list(takewhile(bool, chunk)))
+            if taken == 0 and len(matches) < _RUN_MIN:
+                self.no_run_before = start + len(matches) + 1
+                return 0
+            count = self.take_run(start, matches) if matches else 0
+            taken += count
+            if count < size:
+                return taken
+            start += count
+            size = min(4 * size, _RUN_MAX)
+
+    def take_run(self, start: int, matches: list[re.Match[str]]) -> int:
+        """The rows of the matched lines from line ``start + 1`` up to the first that fails
+        one of ``fast_line``'s checks; how many were taken."""
+        n = len(matches)
+        groups = list(map(_GROUPS, matches))
+        kind, frm, to, value_text, length_text, length_unit = (
+            list(map(itemgetter(k), groups)) for k in range(6)
+        )
+        bad = np.fromiter(map(operator.eq, frm, to), bool, n)
+        level = np.fromiter(map(_LEVEL.__eq__, kind), bool, n)
+        has_length = np.fromiter(map(operator.is_not, length_text, repeat(None)), bool, n)
+        # as units.parse_number, file_number and bounded_length read them (an overflow to
+        # inf fails the bound)
+        value = np.array(list(map(float, value_text)), dtype=float) * self.length_factor
+        bad |= ~(np.abs(value) <= MAX_LENGTH_M)
+        sigmas: dict[str, Quantity] = {}
+        for name, rows in ((_LEVEL, level), ("distance", ~level)):
+            default = self.defaults.get(name)
+            if default is None or default.sigma is None:
+                bad |= rows
+            else:
+                sigmas[name] = default.sigma
+        level_sigma = sigmas.get(_LEVEL)
+        if level_sigma is not None and level_sigma.per_setup:
+            bad |= level  # needs setups=
+        elif level_sigma is not None and level_sigma.per_sqrtkm:
+            bad |= level & ~has_length
+        bad |= ~level & (has_length | ~(value >= MIN_DISTANCE_M))
+        length_km = np.full(n, np.nan)
+        rows = np.flatnonzero(level & has_length)
+        if rows.size:
+            units, texts = length_unit, length_text
+            if rows.size < n:
+                units, texts = [units[k] for k in rows.tolist()], [texts[k] for k in rows.tolist()]
+            # an unknown unit's factor is None, NaN in the array: it fails the bounds
+            factors = np.array(list(map(LENGTH_FACTORS.get, map(str.lower, units))), dtype=float)
+            numbers = np.array(list(map(float, texts)), dtype=float)
+            length_m = numbers * factors  # as parse_length and option_length
+            bad[rows] |= ~((length_m >= MIN_DISTANCE_M) & (length_m <= MAX_LENGTH_M))
+            length_km[rows] = length_m / 1000.0
+        taken = int(np.argmax(bad)) if bad.any() else n
+        if not taken:
+            return 0
+        level, value, length_km = level[:taken], value[:taken], length_km[:taken]
+        scale = np.where(level, 1.0, self.scale)
+        none = [None] * taken
+        self.flush()
+        self.blocks.append(
+            [
+                list(range(start + 1, start + 1 + taken)),
+                kind[:taken],
+                frm[:taken],
+                none,
+                to[:taken],
+                (value * scale).tolist(),
+                list(map(sigmas.__getitem__, kind[:taken])),
+                np.where(level, 0.0, self.centering).tolist(),
+                scale.tolist(),
+                length_km.tolist(),  # NaN where there is none, as the table has it
+                none,
+                none,
+                none,
+                none,
+                [False] * taken,
+                [""] * taken,
+                value.tolist(),
+                [False] * taken,
+                none,
+            ]
+        )
+        return taken
+
+    def fast_spatial(
+        self,
+        line: int,
+        kind: str,
+        from_point: str,
+        to: str,
+        value_text: str,
+        *heights: str | None,
+    ) -> bool:
+        """``slope``/``zenith FROM TO VALUE [hi=H] [ht=H]`` after the first 3D line (see
+        ``fast_line``; the first one goes the careful way, which notes it for the crs check)."""
+        if from_point == to or self.first_spatial is None:
+            return False
+        default = self.defaults.get(kind)
+        if default is None or default.sigma is None:
+            return False
+        options: dict[str, float] = {}
+        for key, number, unit in (heights[0:3], heights[3:6]):
+            if key is None:
+                continue
+            factor = LENGTH_FACTORS.get(unit.lower())  # type: ignore[union-attr]
+            if factor is None or key in options:
+                return False  # a wrong unit, or an option given twice
+            height = float(number) * factor  # type: ignore[arg-type]  # as option_length
+            if not abs(height) <= MAX_LENGTH_M:
+                return False
+            options[key] = height
+        if kind == "slope":
+            if _FAST_NUMBER.match(value_text) is None:
+                return False
+            value = float(value_text) * self.length_factor  # as read_distance
+            if not MIN_DISTANCE_M <= value <= MAX_LENGTH_M:
+                return False
+            centering = self.centering
+        else:
+            if not self.angle_unit_known:
+                return False
+            try:
+                value = observed_angle(value_text, self.angle_unit)
+            except UnitError:
+                return False
+            if not -_ZENITH_SLACK <= value <= math.pi + _ZENITH_SLACK:
+                return False
+            value = min(max(value, 0.0), math.pi)  # as read_zenith
+            centering = 0.0
+        self.rows.append(
+            (
+                line,
+                kind,
+                from_point,
+                None,
+                to,
+                value,
+                default.sigma,
+                centering,
+                1.0,
+                None,
+                None,
+                options.get("hi"),
+                options.get("ht"),
+                None,
+                False,
+                "",
+                value,
+                False,
+                None,
             )
         )
         self.statements += 1
@@ -382,22 +609,28 @@ class _Parser:
             booked = observed_angle(value_text, self.angle_unit)
         except UnitError:
             return False
-        value = wrap_2pi(booked)
         round_.lines.append(line)
-        self.observations.append(
-            Observation(
-                line=line,
-                kind="direction",
-                from_point=at,
-                at=at,
-                to=to,
-                value=value,
-                sigma=sigma.sigma,
-                centering=self.centering,
-                round_line=round_.line,
-                ignored=round_.ignored,
-                note=round_.note,
-                booked=booked,
+        self.rows.append(
+            (
+                line,
+                "direction",
+                at,
+                at,
+                to,
+                wrap_2pi(booked),
+                sigma.sigma,
+                self.centering,
+                1.0,
+                None,
+                None,
+                None,
+                None,
+                round_.line,
+                round_.ignored,
+                round_.note,
+                booked,
+                False,
+                None,
             )
         )
         self.statements += 1
@@ -907,7 +1140,7 @@ class _Parser:
         scale = self.scale if kind == "distance" else 1.0
         if not planned:
             value *= scale
-        self.observations.append(
+        self.add(
             Observation(
                 line=st.line,
                 kind=kind,
@@ -946,7 +1179,7 @@ class _Parser:
         vector = baseline_vector(components, sd, correlations, self.baseline_scale)
         planned = math.isnan(components[0])
         rms = math.sqrt(sum(vector.covariance[i][i] for i in range(3)) / 3.0)
-        self.observations.append(
+        self.add(
             Observation(
                 line=st.line,
                 kind="baseline",
@@ -1121,7 +1354,7 @@ class _Parser:
             return
         if round_.at is None or to is None or value is None:
             return
-        self.observations.append(
+        self.add(
             Observation(
                 line=line,
                 kind="direction",
@@ -1187,11 +1420,11 @@ class _Parser:
     def check_relative_names(self) -> None:
         """Both points of a pair must be named elsewhere in the file (declared or observed)."""
         known: set[str] = set(self.point_lines)
-        for obs in self.observations:
-            known.add(obs.from_point)
-            known.add(obs.to)
-            if obs.at is not None:
-                known.add(obs.at)
+        self.flush()
+        for block in self.blocks:
+            for column in block[_NAME_FIELDS]:
+                known.update(column)
+        known.discard(None)  # an absent AT
         kept = []
         for pair in self.relative_pairs:
             missing = [name for name in (pair.first, pair.second) if name not in known]
@@ -1217,7 +1450,7 @@ class _Parser:
 _FAST_LINES = True
 # A point name the careful path accepts without a word: printable ASCII, no space, '"', '#'
 # or '='; a value or option value: no space, '"' or '#'; then at most a comment.
-_NAME = r"([!$-<>-~]{1,64})"
+_NAME = r"(?![eE][nN][dD][ \t])([!$-<>-~]{1,64})"
 _VALUE = r'([^ \t#"=]+)'
 _TAIL = r"[ \t]*(?:#.*)?\Z"
 _NUMBER = r"([+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?)"  # as units._NUMBER
@@ -1227,6 +1460,19 @@ _FAST_OBSERVATION = re.compile(
     re.DOTALL,
 )
 _FAST_DIRECTION = re.compile(rf"[ \t]*{_NAME}[ \t]+{_VALUE}{_TAIL}", re.DOTALL)
+_HEIGHT = rf"(?:[ \t]+(hi|ht)={_NUMBER}([a-zA-Z]+))?"
+_FAST_SPATIAL = re.compile(
+    rf"[ \t]*(slope|zenith)[ \t]+{_NAME}[ \t]+{_NAME}[ \t]+{_VALUE}{_HEIGHT}{_HEIGHT}{_TAIL}",
+    re.DOTALL,
+)
+_FAST_NUMBER = re.compile(rf"{_NUMBER}\Z")
+#: A run of at least this many plain lines is read at once (``_Parser.fast_run``), in chunks
+#: growing up to ``_RUN_MAX`` lines.
+_RUN_MIN, _RUN_MAX = 16, 65536
+_GROUPS = re.Match.groups
+_LEVEL = "level"
+#: FROM, AT and TO of a row of fields
+_NAME_FIELDS = slice(FIELDS.index("from_point"), FIELDS.index("to") + 1)
 
 #: Kinds that take a default standard deviation (``centering`` is not one).
 _SD_KINDS = tuple(kind for kind in SD_RULES if kind != "centering")

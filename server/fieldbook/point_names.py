@@ -24,11 +24,13 @@ declared names, so the search is bounded whatever the size of the network.
 
 from __future__ import annotations
 
-from collections import Counter
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Iterator, Sequence
+
+import numpy as np
 
 from server.errors import Issue
-from server.fieldbook.model import Observation, PointStatement
+from server.fieldbook.model import PointStatement
+from server.fieldbook.table import ObservationTable
 
 #: Characters that only separate the parts of a name.
 _SEPARATORS = str.maketrans("", "", "-_.:/")
@@ -39,20 +41,18 @@ _SAME_LOOK = str.maketrans("oil", "011")
 _MAX_CHOICES = 3
 
 
-def near_miss_warnings(
-    points: Sequence[PointStatement], observations: Sequence[Observation]
-) -> list[Issue]:
+def near_miss_warnings(points: Sequence[PointStatement], table: ObservationTable) -> list[Issue]:
     """One warning per undeclared name used once that is a likely slip for a declared name.
 
     Each warning is on the line of the observation that uses the name, with the
     name as its token, in line order.
     """
-    if not points or not observations:
+    if not points or not len(table):
         return []
     declared = {p.name for p in points}
-    once = [
-        name for name, count in _uses(observations).items() if count == 1 and name not in declared
-    ]
+    names = table.names
+    uses = _uses(table)
+    once = [names[k] for k in np.flatnonzero(uses == 1).tolist() if names[k] not in declared]
     if not once:
         return []
     index = _index(points)
@@ -66,29 +66,33 @@ def near_miss_warnings(
             matches[name] = found
     if not matches:
         return []
+    matched = np.zeros(len(names) + 1, bool)  # the last entry stands for an absent AT (−1)
+    matched[[names.index(name) for name in matches]] = True
+    rows = np.flatnonzero(matched[table.frm] | matched[table.at] | matched[table.to])
     warnings = []
-    for observation in observations:
-        for name in _names(observation):
+    for row in rows.tolist():
+        for name in _names(table, row):
             if name in matches:
-                warnings.append(Issue(observation.line, name, _message(name, matches[name])))
+                warnings.append(Issue(int(table.line[row]), name, _message(name, matches[name])))
     return warnings
 
 
-def _names(observation: Observation) -> Iterator[str]:
+def _names(table: ObservationTable, row: int) -> Iterator[str]:
     """The distinct points an observation names (a direction's AT is also its FROM)."""
-    yield observation.from_point
-    if observation.at is not None and observation.at != observation.from_point:
-        yield observation.at
-    if observation.to != observation.from_point:
-        yield observation.to
+    frm, at, to = int(table.frm[row]), int(table.at[row]), int(table.to[row])
+    yield table.names[frm]
+    if at >= 0 and at != frm:
+        yield table.names[at]
+    if to != frm:
+        yield table.names[to]
 
 
-def _uses(observations: Iterable[Observation]) -> Counter[str]:
-    """How many observations name each point (three C-level passes, no per-name Python work)."""
-    counts = Counter(o.from_point for o in observations)
-    counts.update(o.to for o in observations)
-    counts.update(o.at for o in observations if o.at is not None and o.at != o.from_point)
-    return counts
+def _uses(table: ObservationTable) -> np.ndarray:
+    """How many observations name each point (by name index): FROM, TO, and a separate AT."""
+    count = len(table.names)
+    uses = np.bincount(table.frm, minlength=count) + np.bincount(table.to, minlength=count)
+    station = table.at[(table.at >= 0) & (table.at != table.frm)]
+    return uses + np.bincount(station, minlength=count)
 
 
 def _key(name: str) -> str:

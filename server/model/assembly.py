@@ -25,6 +25,7 @@ import numpy as np
 
 from server.errors import NetworkError
 from server.fieldbook.model import Observation
+from server.fieldbook.table import ObservationTable, table_of
 from server.model.kinds import (
     KINDS,
     Batch,
@@ -32,7 +33,7 @@ from server.model.kinds import (
     Covariance,
     Kind,
     Positions,
-    batch_of,
+    table_batch,
 )
 from server.model.whitening import BlockSet, CorrelatedBlock, Whitening, constant_blocks
 
@@ -138,6 +139,9 @@ class Assembly:
     model : GeodeticRows, optional
         The geodetic model's kinds, undulations and control equation; without it the
         plane kinds of ``kinds.KINDS`` and control rows that observe a coordinate directly.
+    table : ObservationTable, optional
+        ``used`` as columns (``Network.used_table``); tabled from ``used`` when not given.
+        The layout is read from it, never from the objects.
     """
 
     row_ptr: np.ndarray  # slots of row r: row_ptr[r] … row_ptr[r+1]−1
@@ -156,30 +160,37 @@ class Assembly:
         kinds: Mapping[str, Kind] = KINDS,
         correlated: Sequence[CorrelatedBlock] = (),
         model: GeodeticRows | None = None,
+        table: ObservationTable | None = None,
     ) -> None:
         self.model = model
         if model is not None:
             kinds = model.kinds
         self.kinds = kinds
-        unknown_kinds = sorted({o.kind for o in used} - set(kinds))
+        if table is None:
+            whole, rows = table_of(used)
+            table = whole if rows is None else whole.take(rows)
+        present = [table.kinds[code] for code in np.unique(table.kind).tolist()]
+        unknown_kinds = sorted(set(present) - set(kinds))
         if unknown_kinds:
             raise ValueError(f"no observation equation for {unknown_kinds}")
-        components = np.array([kinds[o.kind].components for o in used], dtype=np.int64)
+        per_code = np.ones(len(table.kinds), np.int64)
+        for name in present:
+            per_code[table.code(name)] = kinds[name].components
         #: first row of each used observation (one row per component)
-        self.first_row = np.zeros(len(used) + 1, np.int64)
-        np.cumsum(components, out=self.first_row[1:])
+        self.first_row = np.zeros(len(table) + 1, np.int64)
+        np.cumsum(per_code[table.kind], out=self.first_row[1:])
         self.n_used = int(self.first_row[-1])
         self.n_rows = self.n_used + len(control)
         self.used = used
         self.control = tuple(control)
         columns = {"E": column_e, "N": column_n, "H": column_h, "O": column_o}
-        by_kind: dict[str, list[int]] = {}
-        for row, obs in enumerate(used):
-            by_kind.setdefault(obs.kind, []).append(row)
+        point = np.fromiter(
+            (point_index.get(name, -1) for name in table.names), np.int64, len(table.names)
+        )
         self.groups = [
-            self._group(kind, by_kind[name], used, point_index, round_index, columns)
+            self._group(kind, members, table, point, round_index, columns)
             for name, kind in kinds.items()
-            if name in by_kind
+            if name in present and (members := np.flatnonzero(table.is_kind(name))).size
         ]
         self._controls = self._control_group(columns)
         self._layout()
@@ -202,18 +213,15 @@ class Assembly:
     def _group(
         self,
         kind: Kind,
-        members_list: list[int],
-        used: Sequence[Observation],
-        point_index: dict[str, int],
+        members: np.ndarray,
+        table: ObservationTable,
+        point: np.ndarray,
         round_index: dict[int, int],
         columns: dict[str, np.ndarray],
     ) -> _Group:
         """The rows of one kind, their batch and the columns of their partials."""
-        members = np.array(members_list, np.int64)
         undulation = None if self.model is None else self.model.undulation
-        batch = batch_of(
-            kind, [used[k] for k in members_list], point_index, round_index, undulation
-        )
+        batch = table_batch(kind, table, members, point, round_index, undulation)
         cols = np.stack(
             [columns[unknown][batch.role(role)] for role, unknown in kind.columns], axis=1
         )

@@ -24,11 +24,13 @@ import itertools
 import math
 from collections import defaultdict
 from collections.abc import Callable
+from functools import partial
+from typing import NamedTuple
 
 import numpy as np
 
 from server.errors import NetworkError
-from server.fieldbook.model import HORIZONTAL_KINDS, Observation
+from server.fieldbook.model import HORIZONTAL_KINDS
 from server.model.network import Network
 
 Position = tuple[float, float]
@@ -37,9 +39,42 @@ Position = tuple[float, float]
 _MIN_CUT_ANGLE = math.radians(5.0)
 
 
+class _Obs(NamedTuple):
+    """What the propagation reads of a used horizontal observation."""
+
+    kind: str
+    from_point: str
+    at: str | None
+    to: str
+    value: float
+    round_line: int | None
+
+
+def _horizontal(network: Network) -> list[_Obs]:
+    """The used horizontal observations in file order, read from the network's table."""
+    table = network.used_table
+    rows = np.flatnonzero(table.is_kind(*HORIZONTAL_KINDS))
+    names = table.names
+    kinds = table.kinds
+    # tuple.__new__ makes each record in C (the class's own __new__ is Python)
+    return list(
+        map(
+            partial(tuple.__new__, _Obs),
+            zip(
+                [kinds[k] for k in table.kind[rows].tolist()],
+                [names[k] for k in table.frm[rows].tolist()],
+                [names[k] if k >= 0 else None for k in table.at[rows].tolist()],
+                [names[k] for k in table.to[rows].tolist()],
+                table.value[rows].tolist(),
+                [k if k >= 0 else None for k in table.round_line[rows].tolist()],
+            ),
+        )
+    )
+
+
 def start_positions(network: Network, given: dict[str, Position]) -> dict[str, Position]:
     """Positions (metres) for every horizontally observed point; given ones are kept."""
-    used = [o for o in network.used if o.kind in HORIZONTAL_KINDS]
+    used = _horizontal(network)
     needed = {n for o in used for n in _names(o)}
     known = {n: p for n, p in given.items() if n in needed and not math.isnan(p[0])}
     tables = _Tables(used)  # what the observations say, read once for every propagation
@@ -76,7 +111,7 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
     return {n: known[n] for n in needed}
 
 
-def _seed(used: list[Observation], known: set[str]) -> tuple[str, str]:
+def _seed(used: list[_Obs], known: set[str]) -> tuple[str, str]:
     """A station to start a local frame from: one with a distance, preferring unplaced ones."""
     measured = {frozenset((o.from_point, o.to)) for o in used if o.kind == "distance"}
     links = [
@@ -106,7 +141,7 @@ def _similarity(source: list[Position], target: list[Position]) -> Callable[[Pos
     return apply
 
 
-def _names(o: Observation) -> tuple[str, ...]:
+def _names(o: _Obs) -> tuple[str, ...]:
     return (o.from_point, o.to) if o.at is None else (o.from_point, o.at, o.to)
 
 
@@ -114,9 +149,9 @@ class _Tables:
     """The observations sorted for propagation: distances by pair, rounds, angles, azimuths,
     links."""
 
-    def __init__(self, used: list[Observation]) -> None:
+    def __init__(self, used: list[_Obs]) -> None:
         self.distances: dict[frozenset[str], list[float]] = defaultdict(list)
-        self.rounds: dict[int, list[Observation]] = defaultdict(list)
+        self.rounds: dict[int, list[_Obs]] = defaultdict(list)
         self.angles = [o for o in used if o.kind == "angle"]
         self.azimuth_obs = [o for o in used if o.kind == "azimuth"]
         for o in used:

@@ -46,6 +46,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from server.fieldbook.model import Observation
+from server.fieldbook.table import NONE, ObservationTable
 
 #: Point roles of an observation; ``round`` indexes the orientation unknowns.
 ROLES = ("from", "at", "to")
@@ -329,6 +330,79 @@ def batch_of(
         geoid_from=np.array([und.get(o.from_point, 0.0) for o in observations], dtype=float),
         geoid_to=np.array([und.get(o.to, 0.0) for o in observations], dtype=float),
     )
+
+
+def table_batch(
+    kind: Kind,
+    table: ObservationTable,
+    rows: np.ndarray,
+    point: np.ndarray,
+    round_index: Mapping[int, int],
+    undulation: Mapping[str, float] | None = None,
+) -> Batch:
+    """The arrays of some rows of an observation table, all of ``kind``: ``batch_of`` without
+    the objects, giving the same numbers.
+
+    ``point`` is the point index of each name of ``table.names`` (−1: not a point, a
+    KeyError naming it if a row uses it); ``round_index`` and ``undulation`` are as for
+    ``batch_of``.
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    frm = _points(point, table, table.frm[rows])
+    to = _points(point, table, table.to[rows])
+    at = _points(point, table, table.at[rows]) if kind.has_station else frm
+    rnd = np.zeros(rows.size, np.int64)
+    if kind.has_round:
+        lines = np.maximum(table.round_line[rows], 0)  # an absent round as line 0
+        distinct, inverse = np.unique(lines, return_inverse=True)
+        rnd = np.array([round_index[line] for line in distinct.tolist()], np.int64)[inverse]
+    value = table.value[rows]
+    covariance = None
+    if kind.components > 1:  # a vector observation: its components and their covariance
+        vectors = [table.baselines.get(k) for k in rows.tolist()]
+        if any(v is None for v in vectors):
+            raise ValueError(f"a {kind.name} observation lacks its {kind.components} components")
+        value = np.array([v.components for v in vectors if v], dtype=float).reshape(-1)
+        covariance = np.array([v.covariance for v in vectors if v], dtype=float)
+    und = undulation or {}
+    names = table.names
+    return Batch(
+        frm=frm,
+        at=at,
+        to=to,
+        rnd=rnd,
+        value=value,
+        constant=table.sigma_part("constant")[rows],
+        ppm=table.sigma_part("ppm")[rows],
+        per_sqrtkm=table.sigma_part("per_sqrtkm")[rows],
+        per_setup=table.sigma_part("per_setup")[rows],
+        length_km=_zero_where_nan(table.length_km[rows]),
+        setups=np.maximum(table.setups[rows], 0).astype(float),
+        centering=table.centering[rows],
+        instrument_height=_zero_where_nan(table.instrument_height[rows]),
+        target_height=_zero_where_nan(table.target_height[rows]),
+        covariance=covariance,
+        geoid_from=np.array([und.get(names[k], 0.0) for k in table.frm[rows].tolist()])
+        if und
+        else np.zeros(rows.size),
+        geoid_to=np.array([und.get(names[k], 0.0) for k in table.to[rows].tolist()])
+        if und
+        else np.zeros(rows.size),
+    )
+
+
+def _zero_where_nan(values: np.ndarray) -> np.ndarray:
+    """0 for an absent value (NaN in the table), as ``batch_of`` reads ``value or 0.0``."""
+    return np.where(np.isnan(values), 0.0, values)
+
+
+def _points(point: np.ndarray, table: ObservationTable, names: np.ndarray) -> np.ndarray:
+    """Point indices of name indices; KeyError naming the first that is not a point."""
+    index = np.where(names >= 0, point[names], NONE)
+    if index.size and index.min() < 0:
+        bad = int(names[np.flatnonzero(index < 0)[0]])
+        raise KeyError(table.names[bad] if bad >= 0 else "")
+    return index
 
 
 def _one(

@@ -18,15 +18,18 @@ from __future__ import annotations
 import heapq
 import math
 import operator
-from collections.abc import Callable
+from collections.abc import Container, Iterable
 from dataclasses import dataclass
-from functools import partial
-from itertools import repeat
+from functools import reduce
+from itertools import chain
+
+import numpy as np
 
 from server.fieldbook.model import Fieldbook
 from server.units import Quantity
 
-_DATUM = "\x00datum"
+#: The datum node: no point has this index (points are the names of the field book's table).
+_DATUM = -1
 #: Above this many lines between junctions, use the spanning-tree cycles directly
 #: (the shortest-path candidates cost one bounded search per line).
 _CANDIDATE_LIMIT = 3000
@@ -75,10 +78,11 @@ class Misclosure:
 
 @dataclass(slots=True)
 class _Edges:
-    """The sections (and datum links) as parallel lists, indexed by edge number."""
+    """The sections (and datum links) as parallel lists, indexed by edge number; the marks
+    are indices into the field book table's names (``_DATUM`` for the datum)."""
 
-    start: list[str]
-    end: list[str]
+    start: list[int]
+    end: list[int]
     rise: list[float]  # height change from start to end
     length_km: list[float | None]
     setups: list[int | None]
@@ -89,55 +93,76 @@ class _Edges:
 
 def leveling_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
     """An independent set of loop and run misclosures from the used level sections."""
-    sections = [o for o in fieldbook.observations if o.kind == "level" and not o.ignored]
-    if not sections:
+    table = fieldbook.table
+    rows = np.flatnonzero(table.is_kind("level") & ~table.ignored)
+    if not rows.size:
         return ()
+    names = list(table.names)
+    length_km = table.length_km[rows]
+    setups = table.setups[rows]
     edges = _Edges(
-        [o.from_point for o in sections],
-        [o.to for o in sections],
-        [o.value for o in sections],
-        [o.length_km for o in sections],
-        [o.setups for o in sections],
+        table.frm[rows].tolist(),
+        table.to[rows].tolist(),
+        table.value[rows].tolist(),
+        [None if v != v else v for v in length_km.tolist()],  # NaN: no len=
+        [None if v < 0 else v for v in setups.tolist()],  # −1: no setups=
     )
+    sections = len(edges)
     fixed = [p for p in fieldbook.points if "h" in p.fixed and p.height is not None]
     if len(fixed) >= 2:
+        index = {name: k for k, name in enumerate(names)}
         for p in fixed:
+            if p.name not in index:  # a benchmark no observation names
+                index[p.name] = len(names)
+                names.append(p.name)
             edges.start.append(_DATUM)
-            edges.end.append(p.name)
+            edges.end.append(index[p.name])
             edges.rise.append(p.height or 0.0)
             edges.length_km.append(0.0)
             edges.setups.append(0)
-    adjacency: dict[str, list[tuple[int, str]]] = {}
+    adjacency: dict[int, list[tuple[int, int]]] = {}
     for k, (start, end) in enumerate(zip(edges.start, edges.end)):
         adjacency.setdefault(start, []).append((k, end))
         adjacency.setdefault(end, []).append((k, start))
-    use_length = all(o.length_km is not None for o in sections)
+    use_length = not np.isnan(length_km).any()
     if use_length:
         weights = [length or 0.0 for length in edges.length_km]
     else:
         weights = [
             0.0 if _DATUM in (start, end) else 1.0 for start, end in zip(edges.start, edges.end)
         ]
-    cycles = _contracted_basis(edges, adjacency, weights)
-    order = _first_appearance(fieldbook)
-    results = [_describe(cycle, edges, order, fieldbook.misclosure_tolerance) for cycle in cycles]
+    lines, cycles = _contracted_basis(edges, adjacency, weights)
+    order = _first_appearance(fieldbook, names)
+    walker = _Walker(lines, edges, order, sections)
+    tolerance = fieldbook.misclosure_tolerance
+    described = [walker.describe(cycle, names, tolerance) for cycle in cycles]
     # the loops as the crew ran them first, then the runs from benchmark to benchmark
-    results.sort(key=lambda m: (m.kind == "run", min(map(order.get, m.points, repeat(0)))))
-    return tuple(results)
+    described.sort(key=lambda item: item[0])
+    return tuple(m for _, m in described)
 
 
-def _first_appearance(fieldbook: Fieldbook) -> dict[str, int]:
-    order: dict[str, int] = {}
-    for p in fieldbook.points:
-        order.setdefault(p.name, len(order))
-    for o in fieldbook.observations:
-        for name in (o.from_point, o.to):
-            order.setdefault(name, len(order))
-    return order
+def _first_appearance(fieldbook: Fieldbook, names: list[str]) -> list[int]:
+    """The rank of each mark (by index into ``names``) in order of first appearance: the
+    declared points, then the FROM and TO of every observation in turn (0 for neither)."""
+    table = fieldbook.table
+    rank = [0] * len(names)
+    index = {name: k for k, name in enumerate(names)}
+    declared: set[int] = set()
+    for position, p in enumerate(fieldbook.points):
+        k = index.get(p.name)
+        if k is not None and k not in declared:
+            rank[k] = position
+            declared.add(k)
+    ends = np.stack([table.frm, table.to], axis=1).ravel()
+    seen, first = np.unique(ends, return_index=True)
+    observed = (k for k in seen[np.argsort(first)].tolist() if k not in declared)
+    for offset, k in enumerate(observed):
+        rank[k] = len(fieldbook.points) + offset
+    return rank
 
 
 def _cycle_basis(
-    edges: _Edges, adjacency: dict[str, list[tuple[int, str]]], weights: list[float]
+    edges: _Edges, adjacency: dict[int, list[tuple[int, int]]], weights: list[float]
 ) -> list[list[int]]:
     """Independent simple cycles, each as the list of its edge indices."""
     forest = _spanning_forest(adjacency)
@@ -204,71 +229,78 @@ class _Independent:
             self.chosen.append(cycle)
 
 
+@dataclass(slots=True)
+class _Lines:
+    """The lines between junctions: ends, sections in order from ``start``, and the marks
+    passed (``marks[l]`` runs from ``start[l]`` to ``end[l]``, one more than its sections)."""
+
+    start: list[int]
+    end: list[int]
+    members: list[list[int]]
+    marks: list[list[int]]
+
+
 def _contracted_basis(
-    edges: _Edges, adjacency: dict[str, list[tuple[int, str]]], weights: list[float]
-) -> list[list[int]]:
-    """The cycle basis found on the lines between junctions, then spelled in sections.
+    edges: _Edges, adjacency: dict[int, list[tuple[int, int]]], weights: list[float]
+) -> tuple[_Lines, list[list[int]]]:
+    """The cycle basis found on the lines between junctions, each cycle as its lines.
 
     A mark with exactly two sections (not a fixed benchmark, which also has its
     datum link) only carries a line on, so each chain of them becomes one line:
     the cycles are the same and the searches run on a graph of junctions, ten
-    or more times smaller in a regional network.
+    or more times smaller in a regional network.  A cycle's sections are its
+    lines' members, line after line.
     """
-    start, end, members = _chains(adjacency)
-    lines = _Edges(start, end, [], [], [])
-    line_adjacency: dict[str, list[tuple[int, str]]] = {}
-    for k, (a, b) in enumerate(zip(start, end)):
+    lines = _chains(adjacency)
+    graph = _Edges(lines.start, lines.end, [], [], [])
+    line_adjacency: dict[int, list[tuple[int, int]]] = {}
+    for k, (a, b) in enumerate(zip(lines.start, lines.end)):
         line_adjacency.setdefault(a, []).append((k, b))
         if a != b:
             line_adjacency.setdefault(b, []).append((k, a))
-    line_weights = [sum(weights[j] for j in chain) for chain in members]
-    return [
-        [j for k in cycle for j in members[k]]
-        for cycle in _cycle_basis(lines, line_adjacency, line_weights)
-    ]
+    line_weights = [sum(weights[j] for j in chain) for chain in lines.members]
+    return lines, _cycle_basis(graph, line_adjacency, line_weights)
 
 
-def _chains(
-    adjacency: dict[str, list[tuple[int, str]]],
-) -> tuple[list[str], list[str], list[list[int]]]:
-    """Lines between junctions (marks of other than two sections): ends and sections."""
-    start: list[str] = []
-    end: list[str] = []
-    members: list[list[int]] = []
+def _chains(adjacency: dict[int, list[tuple[int, int]]]) -> _Lines:
+    """Lines between junctions (marks of other than two sections, and the datum)."""
+    lines = _Lines([], [], [], [])
     done: set[int] = set()
 
-    def follow(origin: str, k: int, node: str, junction: Callable[[str], bool]) -> None:
+    def follow(origin: int, k: int, node: int, stops: Container[int]) -> None:
         chain = [k]
+        marks = [origin, node]
         done.add(k)
-        while not junction(node):
+        while node not in stops:
             (k1, n1), (k2, n2) = adjacency[node]
             k, node = (k2, n2) if k1 == k else (k1, n1)
             chain.append(k)
+            marks.append(node)
             done.add(k)
-        start.append(origin)
-        end.append(node)
-        members.append(chain)
+        lines.start.append(origin)
+        lines.end.append(node)
+        lines.members.append(chain)
+        lines.marks.append(marks)
 
-    def is_junction(node: str) -> bool:
-        return len(adjacency[node]) != 2 or node == _DATUM
-
+    junctions = {node for node, links in adjacency.items() if len(links) != 2}
+    junctions.add(_DATUM)
     for node, links in adjacency.items():
-        if is_junction(node):
+        if node in junctions:
             for k, nxt in links:
                 if k not in done:
-                    follow(node, k, nxt, is_junction)
+                    follow(node, k, nxt, junctions)
     for node, links in adjacency.items():  # rings with no junction at all
         for k, nxt in links:
             if k not in done:
-                follow(node, k, nxt, partial(operator.eq, node))  # back at the ring's start
-    return start, end, members
+                follow(node, k, nxt, (node,))  # back at the ring's start
+    return lines
 
 
 def _candidates(
     edges: _Edges,
-    adjacency: dict[str, list[tuple[int, str]]],
+    adjacency: dict[int, list[tuple[int, int]]],
     weights: list[float],
-    blocked: str | None,
+    blocked: int | None,
 ) -> list[list[int]]:
     """Each section's cycle with the shortest path between its ends, shortest first.
 
@@ -291,17 +323,17 @@ def _candidates(
 
 
 def _shortest_path(
-    adjacency: dict[str, list[tuple[int, str]]],
+    adjacency: dict[int, list[tuple[int, int]]],
     weights: list[float],
-    source: str,
-    target: str,
+    source: int,
+    target: int,
     excluded: int,
-    blocked: str | None = None,
+    blocked: int | None = None,
 ) -> list[int] | None:
     """Edge indices of a shortest path (Dijkstra) from source to target avoiding one edge
     (and the node ``blocked``)."""
     best = {source: 0.0}
-    previous: dict[str, tuple[str, int]] = {}
+    previous: dict[int, tuple[int, int]] = {}
     heap = [(0.0, 0, source)]
     counter = 1
     while heap:
@@ -327,14 +359,14 @@ def _shortest_path(
     return path
 
 
-_Forest = tuple[dict[str, "tuple[str, int] | None"], dict[str, int], int]
+_Forest = tuple[dict[int, "tuple[int, int] | None"], dict[int, int], int]
 
 
-def _spanning_forest(adjacency: dict[str, list[tuple[int, str]]]) -> _Forest:
+def _spanning_forest(adjacency: dict[int, list[tuple[int, int]]]) -> _Forest:
     """A breadth-first spanning forest: each mark's (parent, section), its depth, and the
     number of trees (connected parts)."""
-    parent: dict[str, tuple[str, int] | None] = {}
-    depth: dict[str, int] = {}
+    parent: dict[int, tuple[int, int] | None] = {}
+    depth: dict[int, int] = {}
     parts = 0
     for root in adjacency:
         if root in parent:
@@ -375,82 +407,128 @@ def _fundamental_cycles(edges: _Edges, forest: _Forest) -> list[list[int]]:
     return cycles
 
 
-def _walk(
-    cycle: list[int], edges: _Edges, start_mark: str, at_mark: dict[str, list[tuple[int, int]]]
-) -> tuple[list[str], float]:
-    """Walk a simple cycle from ``start``: the marks in order and the summed rise.
+class _Walker:
+    """Each basis cycle walked and described: its marks in order, its summed rise, length,
+    setups and allowance.
 
-    At each mark the walk leaves by the first cycle section (in the cycle's
-    own order) that touches it and is not yet used.  ``at_mark`` lists, for
-    every mark of the cycle, its (position in the cycle, section) in that order.
+    The walk starts at the datum (a run) or at the cycle's mark seen first in the
+    field book (a loop) and leaves each mark by the first of its two cycle sections
+    in the cycle's own order (its lines' members, line after line).  Inside a line
+    the way is forced, so the walk goes line by line: from a mark inside a line
+    it first heads for the line's start (the earlier of its two sections), and at a
+    junction it takes the line whose section there comes first.  The rise is summed
+    section by section in walking order, exactly as one section at a time would.
     """
-    starts, ends, rises = edges.start, edges.end, edges.rise
-    used = [False] * len(cycle)
-    node, marks, rise = start_mark, [start_mark], 0.0
-    append = marks.append
-    for _ in range(len(cycle)):
-        for entry in at_mark.get(node, ()):  # (position in the cycle, section)
-            if not used[entry[0]]:
-                break
-        else:  # not a simple cycle through start; cannot happen for basis cycles
-            raise RuntimeError("cycle walk lost its way")
-        position, k = entry
-        used[position] = True
-        if starts[k] == node:
-            rise += rises[k]
-            node = ends[k]
-        else:
-            rise += -rises[k]
-            node = starts[k]
-        append(node)
-    return marks, rise
 
+    def __init__(self, lines: _Lines, edges: _Edges, order: list[int], sections: int) -> None:
+        self.lines, self.edges, self.order, self.sections = lines, edges, order, sections
+        self._rises: dict[tuple[int, bool], list[float]] = {}
+        self._first: dict[int, int] = {}
 
-def _marks_of(cycle: list[int], edges: _Edges) -> dict[str, list[tuple[int, int]]]:
-    """Every mark of a cycle with its (position in the cycle, section), in cycle order."""
-    starts, ends = edges.start, edges.end
-    at_mark: dict[str, list[tuple[int, int]]] = {}
-    for position, k in enumerate(cycle):
-        start, end = starts[k], ends[k]
-        here = at_mark.get(start)
-        if here is None:
-            at_mark[start] = [(position, k)]
-        else:
-            here.append((position, k))
-        if end != start:
-            here = at_mark.get(end)
-            if here is None:
-                at_mark[end] = [(position, k)]
+    def rises(self, line: int, forward: bool) -> list[float]:
+        """The rise of each section of a line in walking order, forward (from its start)
+        or backward."""
+        key = (line, forward)
+        cached = self._rises.get(key)
+        if cached is None:
+            starts, rise = self.edges.start, self.edges.rise
+            marks, members = self.lines.marks[line], self.lines.members[line]
+            ahead = [rise[k] if starts[k] == mark else -rise[k] for k, mark in zip(members, marks)]
+            cached = ahead if forward else [-r for r in reversed(ahead)]
+            self._rises[key] = cached
+        return cached
+
+    def first_mark(self, line: int) -> int:
+        """The mark of a line seen first in the field book."""
+        cached = self._first.get(line)
+        if cached is None:
+            cached = min(self.lines.marks[line], key=self.order.__getitem__)
+            self._first[line] = cached
+        return cached
+
+    def describe(
+        self, cycle: list[int], names: list[str], tolerance: Quantity | None
+    ) -> tuple[tuple[bool, int], Misclosure]:
+        """The misclosure of a cycle of lines, with its place in the listing."""
+        lines = self.lines
+        # each junction's two cycle sections: (position in the cycle, line, leaving forward)
+        at_junction: dict[int, list[tuple[int, int, bool]]] = {}
+        first: dict[int, int] = {}
+        position = 0
+        for line in cycle:
+            first[line] = position
+            count = len(lines.members[line])
+            at_junction.setdefault(lines.start[line], []).append((position, line, True))
+            at_junction.setdefault(lines.end[line], []).append((position + count - 1, line, False))
+            position += count
+        run = _DATUM in at_junction
+        start = _DATUM if run else min(map(self.first_mark, cycle), key=self.order.__getitem__)
+        marks, rises = self._walk(cycle, first, start, at_junction)
+        sections = list(chain.from_iterable(map(lines.members.__getitem__, cycle)))
+        if run:
+            marks = marks[1:-1]  # a run from one fixed benchmark to another
+            sections = [k for k in sections if k < self.sections]  # not the datum links
+        lengths = list(map(self.edges.length_km.__getitem__, sections))
+        setups = list(map(self.edges.setups.__getitem__, sections))
+        # as sum(v or 0.0 ...) adds them: v or 0.0 is v for every length and count here
+        length_km = None if None in lengths else sum(lengths)  # type: ignore[arg-type]
+        total_setups = None if None in setups else sum(setups)  # type: ignore[arg-type]
+        allowed = tolerance.allowance_level(length_km, total_setups) if tolerance else None
+        misclosure = Misclosure(
+            kind="run" if run else "loop",
+            points=tuple(map(names.__getitem__, marks)),
+            misclosure=reduce(operator.add, rises, 0.0),
+            length=None if length_km is None else length_km * 1000.0,
+            setups=total_setups,
+            allowed=allowed,
+        )
+        return (run, min(map(self.order.__getitem__, marks))), misclosure
+
+    def _walk(
+        self,
+        cycle: list[int],
+        first: dict[int, int],
+        start: int,
+        at_junction: dict[int, list[tuple[int, int, bool]]],
+    ) -> tuple[list[int], Iterable[float]]:
+        """The marks from ``start`` round the cycle back to it, and the rises in that order.
+
+        ``first`` gives each line's position in the cycle (of its first section).
+        """
+        lines = self.lines
+        marks = [start]
+        pieces: list[list[float]] = []
+        home, inside = -1, 0  # the line a start inside a line lies on, and its place there
+        arrived: tuple[int, int, bool] | None = None
+        node = start
+        if start not in at_junction:  # a mark inside a line: to the line's start first
+            home = next(line for line in cycle if start in lines.marks[line])
+            inside = lines.marks[home].index(start)
+            marks += lines.marks[home][inside - 1 :: -1]
+            pieces.append(self.rises(home, False)[len(lines.members[home]) - inside :])
+            node, arrived = lines.start[home], (first[home], home, True)
+        while True:
+            choices = at_junction.get(node, [])
+            if len(choices) != 2 or (arrived is not None and arrived not in choices):
+                raise RuntimeError("cycle walk lost its way")  # cannot happen for basis cycles
+            if arrived is None:
+                leave = min(choices)
             else:
-                here.append((position, k))
-    return at_mark
-
-
-def _describe(
-    cycle: list[int], edges: _Edges, order: dict[str, int], tolerance: Quantity | None
-) -> Misclosure:
-    at_mark = _marks_of(cycle, edges)  # its keys are the marks of the cycle
-    if _DATUM in at_mark:
-        marks, rise = _walk(cycle, edges, _DATUM, at_mark)
-        marks = marks[1:-1]  # a run from one fixed benchmark to another
-        kind = "run"
-        starts, ends = edges.start, edges.end
-        sections = [k for k in cycle if starts[k] != _DATUM and ends[k] != _DATUM]
-    else:
-        first = min(at_mark, key=lambda n: order.get(n, 0))
-        marks, rise = _walk(cycle, edges, first, at_mark)
-        kind = "loop"
-        sections = cycle
-    lengths = [edges.length_km[k] for k in sections]
-    setups = [edges.setups[k] for k in sections]
-    length_km = None if None in lengths else sum(v or 0.0 for v in lengths)
-    total_setups = None if None in setups else sum(v or 0 for v in setups)
-    allowed = tolerance.allowance_level(length_km, total_setups) if tolerance else None
-    return Misclosure(
-        kind=kind,
-        points=tuple(marks),
-        misclosure=rise,
-        length=None if length_km is None else length_km * 1000.0,
-        setups=total_setups,
-        allowed=allowed,
-    )
+                leave = choices[1] if choices[0] == arrived else choices[0]
+            position, line, forward = leave
+            path, count = lines.marks[line], len(lines.members[line])
+            if line == home:  # the last leg: back along the start's own line
+                marks += path[-2 : inside - 1 : -1]
+                pieces.append(self.rises(line, False)[: count - inside])
+                break
+            if forward:
+                marks += path[1:]
+                pieces.append(self.rises(line, True))
+                node, arrived = path[-1], (position + count - 1, line, False)
+            else:
+                marks += path[-2::-1]
+                pieces.append(self.rises(line, False))
+                node, arrived = path[0], (position - count + 1, line, True)
+            if node == start:
+                break
+        return marks, chain.from_iterable(pieces)

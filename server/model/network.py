@@ -9,10 +9,13 @@ adjusted and says why, naming the points.
 from __future__ import annotations
 
 from collections import defaultdict
-from dataclasses import dataclass, replace
-from itertools import pairwise
+from collections.abc import Sequence
+from dataclasses import dataclass, field, replace
+from itertools import repeat
 
 import numpy as np
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
 
 from server.errors import NetworkError
 from server.fieldbook.model import (
@@ -22,6 +25,7 @@ from server.fieldbook.model import (
     Observation,
     PointStatement,
 )
+from server.fieldbook.table import NONE, ObservationRows, ObservationTable, table_of
 from server.geodesy.crs import Crs
 from server.model.geodetic import GeodeticFrame
 
@@ -57,17 +61,60 @@ class Parameter:
 
 @dataclass(frozen=True, slots=True)
 class Network:
-    """The adjustment model derived from a field book (immutable)."""
+    """The adjustment model derived from a field book (immutable).
+
+    ``used`` are the observations adjusted (not ignored), in file order: a lazy view
+    of the field book's table when built here (``fieldbook/table.py``), any sequence
+    otherwise.  The array stages read them as columns: ``used_table`` (row k is
+    ``used[k]``), ``used_rows`` (their rows of ``fieldbook.table``) and
+    ``name_point`` (the network point of each name of those tables).
+    """
 
     fieldbook: Fieldbook
     dimension: int
     points: tuple[NetworkPoint, ...]
-    used: tuple[Observation, ...]
+    used: Sequence[Observation]
     parameters: tuple[Parameter, ...]
     warnings: tuple[str, ...]
     free_datum: tuple[str, ...] = ()  # "translation", "rotation": removed by inner constraints
     #: the geodetic 3D model's CRS, undulations and start positions (None: plane model)
     geodetic: GeodeticFrame | None = None
+    _columns: dict[str, object] = field(default_factory=dict, init=False, repr=False, compare=False)
+
+    @property
+    def used_table(self) -> ObservationTable:
+        """The used observations as columns (``fieldbook/table.py``): row k is ``used[k]``."""
+        cached = self._columns.get("table")
+        if cached is None:
+            table, rows = table_of(self.used)
+            cached = table if rows is None else table.take(rows)
+            self._columns["table"] = cached
+        return cached  # type: ignore[return-value]
+
+    @property
+    def used_rows(self) -> np.ndarray:
+        """Rows of ``fieldbook.table`` of the used observations, in ``used`` order (int64)."""
+        cached = self._columns.get("rows")
+        if cached is None:
+            used = self.used
+            if isinstance(used, ObservationRows) and used.table is self.fieldbook.table:
+                cached = np.arange(len(used)) if used.rows is None else used.rows
+            else:  # a sequence built elsewhere: its rows by line (one observation a line)
+                row_of_line = {line: k for k, line in enumerate(self.fieldbook.table.line.tolist())}
+                cached = np.array([row_of_line[o.line] for o in used], dtype=np.int64)
+            self._columns["rows"] = cached
+        return cached  # type: ignore[return-value]
+
+    @property
+    def name_point(self) -> np.ndarray:
+        """Index into ``points`` of each name of ``used_table.names`` (int64; −1: none)."""
+        cached = self._columns.get("name_point")
+        if cached is None:
+            index = dict(zip((p.name for p in self.points), range(len(self.points))))
+            names = self.used_table.names
+            cached = np.fromiter(map(index.get, names, repeat(-1)), np.int64, len(names))
+            self._columns["name_point"] = cached
+        return cached  # type: ignore[return-value]
 
     @property
     def datum_defect(self) -> int:
@@ -87,10 +134,10 @@ class Network:
 
 def network_dimension(fieldbook: Fieldbook) -> int:
     """1 for leveling only, 2 for horizontal kinds only, 3 for both (ignored ones count)."""
-    kinds = {obs.kind for obs in fieldbook.observations}
-    has_level = "level" in kinds
-    has_horizontal = bool(kinds & HORIZONTAL_KINDS)
-    if kinds & SPATIAL_KINDS or (has_level and has_horizontal):
+    table = fieldbook.table
+    has_level = bool(table.is_kind("level").any())
+    has_horizontal = bool(table.is_kind(*HORIZONTAL_KINDS).any())
+    if table.is_kind(*SPATIAL_KINDS).any() or (has_level and has_horizontal):
         return 3
     if has_horizontal:
         return 2
@@ -99,15 +146,17 @@ def network_dimension(fieldbook: Fieldbook) -> int:
 
 def build_network(fieldbook: Fieldbook) -> Network:
     """Derive the network model, or raise ``NetworkError`` naming the points at fault."""
-    if not fieldbook.observations:
+    table = fieldbook.table
+    if not len(table):
         raise NetworkError("the field book has no observations, so there is nothing to adjust")
-    used = tuple(obs for obs in fieldbook.observations if not obs.ignored)
-    if not used:
+    rows = np.flatnonzero(~table.ignored)
+    if not rows.size:
         raise NetworkError("every observation is marked ignore, so there is nothing to adjust")
-    if any(obs.kind in SPATIAL_KINDS for obs in fieldbook.observations):
+    used = ObservationRows(table, rows)
+    if table.is_kind(*SPATIAL_KINDS).any():
         from server.model.geodetic_network import build_geodetic_network  # it builds on this
 
-        return build_geodetic_network(fieldbook, used)
+        return build_geodetic_network(fieldbook, used)  # type: ignore[arg-type]
     dimension = network_dimension(fieldbook)
     points = _collect_points(fieldbook, used)
     if any(p.latitude is not None for p in fieldbook.points):
@@ -122,37 +171,59 @@ def build_network(fieldbook: Fieldbook) -> Network:
         for p in points
         if not p.in_use
     ]
-    parameters = _parameters(points, used, dimension)
-    free_datum: tuple[str, ...] = ()
-    if any(o.kind == "level" for o in used):
-        warnings += _check_height_datum(points, used)
-    if any(o.kind in HORIZONTAL_KINDS for o in used):
-        _check_coincident(points, used)
-        free_datum, more = _check_horizontal_datum(points, used)
-        warnings += more
-    return Network(
+    network = Network(
         fieldbook=fieldbook,
         dimension=dimension,
         points=points,
         used=used,
-        parameters=parameters,
-        warnings=tuple(warnings),
-        free_datum=free_datum,
+        parameters=(),
+        warnings=(),
     )
+    columns = _UsedColumns(network)
+    parameters = _parameters(points, columns)
+    free_datum: tuple[str, ...] = ()
+    if columns.level.any():
+        warnings += _check_height_datum(points, columns)
+    if columns.horizontal.any():
+        _check_coincident(points, columns)
+        free_datum, more = _check_horizontal_datum(points, columns)
+        warnings += more
+    built = replace(network, parameters=parameters, warnings=tuple(warnings), free_datum=free_datum)
+    built._columns.update(network._columns)  # the used table and its names stay valid
+    return built
 
 
-def _collect_points(
-    fieldbook: Fieldbook, used: tuple[Observation, ...]
-) -> tuple[NetworkPoint, ...]:
+@dataclass(frozen=True)
+class _UsedColumns:
+    """What the network checks read of the used observations: point indices and kinds."""
+
+    table: ObservationTable
+    frm: np.ndarray  # index into the network's points
+    at: np.ndarray  # index into the network's points, −1: none
+    to: np.ndarray
+    level: np.ndarray  # bool: a level row
+    horizontal: np.ndarray  # bool: a row of a horizontal kind
+
+    def __init__(self, network: Network) -> None:
+        table = network.used_table
+        point = np.append(network.name_point, -1)  # an absent AT (−1) stays −1
+        object.__setattr__(self, "table", table)
+        object.__setattr__(self, "frm", point[table.frm])
+        object.__setattr__(self, "at", point[table.at])
+        object.__setattr__(self, "to", point[table.to])
+        object.__setattr__(self, "level", table.is_kind("level"))
+        object.__setattr__(self, "horizontal", table.is_kind(*HORIZONTAL_KINDS))
+
+
+def _collect_points(fieldbook: Fieldbook, used: Sequence[Observation]) -> tuple[NetworkPoint, ...]:
     """Every point in order of first appearance (declared or observed)."""
     declared: dict[str, PointStatement] = {p.name: p for p in fieldbook.points}
     ordered = _first_appearance(fieldbook)
-    touched: set[str] = set()
-    for obs in used:
-        touched.add(obs.from_point)
-        touched.add(obs.to)
-        if obs.at is not None:
-            touched.add(obs.at)
+    table, rows = table_of(used)
+    touched_ids = np.zeros(len(table.names) + 1, bool)  # the last entry: an absent AT
+    for column in (table.frm, table.at, table.to):
+        touched_ids[column if rows is None else column[rows]] = True
+    touched = set(map(table.names.__getitem__, np.flatnonzero(touched_ids[:-1]).tolist()))
     points = []
     for name in ordered:
         stmt = declared.get(name)
@@ -199,70 +270,86 @@ def with_grid_positions(
 def _first_appearance(fieldbook: Fieldbook) -> dict[str, None]:
     """Point names ordered by (line, place on the line): declarations and observations merged.
 
-    Parsed field books list both in line order, one statement a line, so one
-    merge does; anything else (equal or unordered lines) is sorted as events.
+    Parsed field books list both in line order, one statement a line, and the
+    table numbers the observed names in order of first appearance, so sorting
+    each name's first (line, place) with the declarations does; anything else
+    (equal or unordered lines) is sorted as events.
     """
-    points, observations = fieldbook.points, fieldbook.observations
-    point_lines = [p.line for p in points]
-    obs_lines = [o.line for o in observations]
+    points, table = fieldbook.points, fieldbook.table
+    point_lines = np.array([p.line for p in points], dtype=np.int64)
+    lines = table.line
+    in_order = bool(np.all(np.diff(point_lines) > 0) and np.all(np.diff(lines) > 0))
+    if in_order and not np.intersect1d(point_lines, lines).size:
+        count = len(table)
+        ids = np.stack([table.frm, table.at, table.to], axis=1).ravel()
+        place = np.tile(np.array([1, 2, 3], dtype=np.int64), count)
+        row = np.repeat(np.arange(count, dtype=np.int64), 3)
+        given = ids >= 0
+        ids, place, row = ids[given], place[given], row[given]
+        seen, first = np.unique(ids, return_index=True)  # name seen[k] first at first[k]
+        order = np.lexsort(
+            (
+                np.concatenate([np.zeros(len(points), np.int64), place[first]]),
+                np.concatenate([point_lines, lines[row[first]]]),
+            )
+        )
+        names = [p.name for p in points] + [table.names[k] for k in seen.tolist()]
+        return dict.fromkeys(map(names.__getitem__, order.tolist()))
     ordered: dict[str, None] = {}
-    ordered_lines = _increasing(point_lines) and _increasing(obs_lines)
-    if ordered_lines and not set(point_lines) & set(obs_lines):
-        i, count = 0, len(points)
-        for obs, line in zip(observations, obs_lines):
-            while i < count and point_lines[i] < line:
-                ordered.setdefault(points[i].name)
-                i += 1
-            ordered.setdefault(obs.from_point)
-            if obs.at is not None:
-                ordered.setdefault(obs.at)
-            ordered.setdefault(obs.to)
-        for p in points[i:]:
-            ordered.setdefault(p.name)
-        return ordered
     events: list[tuple[int, int, str]] = [(p.line, 0, p.name) for p in points]
-    for obs in observations:
-        for order, name in enumerate(_observed_names(obs)):
-            events.append((obs.line, order + 1, name))
+    for obs in fieldbook.observations:
+        for order_, name in enumerate(_observed_names(obs)):
+            events.append((obs.line, order_ + 1, name))
     for _, _, name in sorted(events):
         ordered.setdefault(name)
     return ordered
-
-
-def _increasing(values: list[int]) -> bool:
-    return all(a < b for a, b in pairwise(values))
 
 
 #: Two marks closer than this (metres) are taken as the same position.
 COINCIDENT_M = 1e-6
 
 
-def _check_coincident(points: tuple[NetworkPoint, ...], used: tuple[Observation, ...]) -> None:
+def _check_coincident(points: tuple[NetworkPoint, ...], columns: _UsedColumns) -> None:
     """Refuse a horizontal observation between two points given the same position.
 
     Directions and partial derivatives between coincident marks are undefined,
     so the adjustment could not even start; the surveyor must correct the
     coordinates (usually a copied line) or leave out the approximate ones.
     """
-    given: dict[str, tuple[float, float]] = {
-        p.name: (p.east, p.north) for p in points if p.east is not None and p.north is not None
-    }
-    for obs in used:
-        if obs.kind not in HORIZONTAL_KINDS:
-            continue
-        station = obs.at if obs.kind == "angle" else obs.from_point
-        for a, b in ((station, obs.to), (station, obs.from_point)):
-            if a is None or a == b or a not in given or b not in given:
-                continue
-            (ea, na), (eb, nb) = given[a], given[b]
-            if abs(ea - eb) <= COINCIDENT_M and abs(na - nb) <= COINCIDENT_M:
-                raise NetworkError(
-                    f"points {a} and {b} are given the same position (east {ea:.4f}, north "
-                    f"{na:.4f} m) but the {obs.kind} on line {obs.line} joins them; two marks "
-                    "an instrument sees apart need different coordinates: correct the "
-                    "coordinates, or leave out the approximate ones of the new point",
-                    [a, b],
-                )
+    given = np.array([p.east is not None and p.north is not None for p in points] + [False])
+    east = np.array([p.east if p.east is not None else np.nan for p in points] + [np.nan])
+    north = np.array([p.north if p.north is not None else np.nan for p in points] + [np.nan])
+    rows = np.flatnonzero(columns.horizontal)
+    kind = columns.table.kind[rows]
+    station = np.where(kind == columns.table.code("angle"), columns.at[rows], columns.frm[rows])
+    # per row the pairs (station, TO) then (station, FROM); −1 (no point) indexes the last entry
+    a = np.repeat(station, 2)
+    b = np.stack([columns.to[rows], columns.frm[rows]], axis=1).ravel()
+    with np.errstate(invalid="ignore"):
+        hit = (
+            (a >= 0)
+            & (a != b)
+            & given[a]
+            & given[b]
+            & (np.abs(east[a] - east[b]) <= COINCIDENT_M)
+            & (np.abs(north[a] - north[b]) <= COINCIDENT_M)
+        )
+    if not hit.any():
+        return
+    first = int(np.flatnonzero(hit)[0])
+    row = int(rows[first // 2])
+    i, j = int(a[first]), int(b[first])
+    names = [points[i].name, points[j].name]
+    ea, na = float(east[i]), float(north[i])
+    obs_kind = columns.table.kind_names[row]
+    line = int(columns.table.line[row])
+    raise NetworkError(
+        f"points {names[0]} and {names[1]} are given the same position (east {ea:.4f}, north "
+        f"{na:.4f} m) but the {obs_kind} on line {line} joins them; two marks "
+        "an instrument sees apart need different coordinates: correct the "
+        "coordinates, or leave out the approximate ones of the new point",
+        names,
+    )
 
 
 def _observed_names(obs: Observation) -> tuple[str, ...]:
@@ -273,37 +360,37 @@ def _observed_names(obs: Observation) -> tuple[str, ...]:
     return tuple(names)
 
 
-def _parameters(
-    points: tuple[NetworkPoint, ...], used: tuple[Observation, ...], dimension: int
-) -> tuple[Parameter, ...]:
+def _touched(columns: _UsedColumns, rows: np.ndarray, count: int) -> np.ndarray:
+    """Boolean mask over the points: named (FROM, AT or TO) by any of ``rows``."""
+    mask = np.zeros(count + 1, bool)  # the last entry: an absent AT
+    for column in (columns.frm, columns.at, columns.to):
+        mask[column[rows]] = True
+    return mask[:count]
+
+
+def _parameters(points: tuple[NetworkPoint, ...], columns: _UsedColumns) -> tuple[Parameter, ...]:
     """Unknowns in point order (E, N, H), then one orientation per direction round."""
-    horizontal_points: set[str] = set()
-    vertical_points: set[str] = set()
-    for o in used:
-        names = (
-            vertical_points
-            if o.kind == "level"
-            else (horizontal_points if o.kind in HORIZONTAL_KINDS else None)
-        )
-        if names is not None:
-            names.add(o.from_point)
-            names.add(o.to)
-            if o.at is not None:
-                names.add(o.at)
+    count = len(points)
+    horizontal_points = _touched(columns, columns.horizontal, count).tolist()
+    vertical_points = _touched(columns, columns.level, count).tolist()
     params: list[Parameter] = []
-    for p in points:
-        if p.name in horizontal_points and "en" not in p.fixed:
+    for p, horizontal, vertical in zip(points, horizontal_points, vertical_points):
+        if horizontal and "en" not in p.fixed:
             params += [Parameter(EAST, p.name), Parameter(NORTH, p.name)]
-        if p.name in vertical_points and "h" not in p.fixed:
+        if vertical and "h" not in p.fixed:
             params.append(Parameter(HEIGHT, p.name))
-    rounds = sorted({o.round_line for o in used if o.kind == "direction" and o.round_line})
-    first_at: dict[int, str | None] = {}  # station of each round (one pass, not one per round)
-    for o in used:
-        if o.round_line is not None:
-            first_at.setdefault(o.round_line, o.at)
-    for line in rounds:
-        params.append(Parameter("O", first_at[line], round_line=line))
-    del dimension  # the kinds of the used observations decide the unknowns
+    table = columns.table
+    round_line = table.round_line
+    in_round = round_line != NONE
+    rounds = np.unique(round_line[in_round & (round_line != 0) & table.is_kind("direction")])
+    if rounds.size:
+        # the station of each round: the AT of its first observation (one pass, not one per round)
+        lines, first = np.unique(round_line[in_round], return_index=True)
+        station = table.at[np.flatnonzero(in_round)[first]]
+        first_at = dict(zip(lines.tolist(), station.tolist()))
+        for line in rounds.tolist():
+            at = first_at[line]
+            params.append(Parameter("O", table.names[at] if at >= 0 else None, round_line=line))
     return tuple(params)
 
 
@@ -313,34 +400,51 @@ def _shown(names: list[str], limit: int = 12) -> str:
     return ", ".join(names[:limit]) + extra
 
 
-def _graph(used: tuple[Observation, ...], kinds: frozenset[str]) -> dict[str, set[str]]:
-    graph: dict[str, set[str]] = defaultdict(set)
-    for obs in used:
-        if obs.kind in kinds:
-            a, b = obs.from_point, obs.to
-            if obs.at is None or obs.at == a:
-                if a != b:
-                    graph[a].add(b)
-                    graph[b].add(a)
-                else:
-                    graph[a].update(())  # the point is in the graph, with no neighbour
-                continue
-            names = _observed_names(obs)
-            for a in names:
-                graph[a].update(n for n in names if n != a)
-    return graph
+@dataclass(frozen=True, slots=True)
+class _Parts:
+    """The connected parts of the graph of some observations (points as nodes).
+
+    ``label`` gives each point's part (meaningful where ``inside``); ``order`` lists
+    the parts in the order their first point appears among the observations.
+    """
+
+    label: np.ndarray
+    inside: np.ndarray
+    order: list[int]
+
+    def names(self, points: tuple[NetworkPoint, ...], part: int) -> list[str]:
+        """The names of a part's points, sorted."""
+        members = np.flatnonzero(self.inside & (self.label == part))
+        return sorted(points[k].name for k in members.tolist())
 
 
-def _check_height_datum(
-    points: tuple[NetworkPoint, ...], used: tuple[Observation, ...]
-) -> list[str]:
+def _parts(columns: _UsedColumns, rows_mask: np.ndarray, count: int) -> _Parts:
+    """Connected parts of the observations of ``rows_mask``: FROM–TO joined, and an angle's
+    AT joined to both."""
+    frm, at, to = columns.frm[rows_mask], columns.at[rows_mask], columns.to[rows_mask]
+    station = np.where(at != frm, at, NONE)
+    sequence = np.stack([frm, station, to], axis=1).ravel()
+    sequence = sequence[sequence >= 0]  # the points in order of appearance
+    has_station = station >= 0
+    start = np.concatenate([frm, station[has_station], station[has_station]])
+    end = np.concatenate([to, frm[has_station], to[has_station]])
+    graph = coo_matrix((np.ones(start.size), (start, end)), shape=(count, count))
+    _, label = connected_components(graph, directed=False)
+    inside = np.zeros(count, bool)
+    inside[sequence] = True
+    labels, first = np.unique(label[sequence], return_index=True)
+    return _Parts(label, inside, labels[np.argsort(first)].tolist())
+
+
+def _check_height_datum(points: tuple[NetworkPoint, ...], columns: _UsedColumns) -> list[str]:
     """Every part of the leveling needs a fixed or weighted height; else name its points."""
-    parts = connected_parts(_graph(used, frozenset({"level"})))
-    controlled = {p.name for p in points if "h" in p.fixed or "h" in p.weighted}
-    for part in parts:
-        if not part & controlled:
-            names = sorted(part)
-            if len(parts) == 1:
+    parts = _parts(columns, columns.level, len(points))
+    controlled = np.array(["h" in p.fixed or "h" in p.weighted for p in points], dtype=bool)
+    held = set(parts.label[parts.inside & controlled].tolist())
+    for part in parts.order:
+        if part not in held:
+            names = parts.names(points, part)
+            if len(parts.order) == 1:
                 message = (
                     "the leveling has no height datum: no point is held fixed (fix or fix=h) "
                     f"or given a weighted height (sd=); points: {_shown(names)}"
@@ -351,16 +455,16 @@ def _check_height_datum(
                     + _shown(names)
                 )
             raise NetworkError(message, names)
-    if len(parts) > 1:
+    if len(parts.order) > 1:
         return [
-            f"the leveling falls into {len(parts)} separate parts, each with its own "
+            f"the leveling falls into {len(parts.order)} separate parts, each with its own "
             "control; they are adjusted together but do not check one another"
         ]
     return []
 
 
 def _check_horizontal_datum(
-    points: tuple[NetworkPoint, ...], used: tuple[Observation, ...]
+    points: tuple[NetworkPoint, ...], columns: _UsedColumns
 ) -> tuple[tuple[str, ...], list[str]]:
     """Say what the horizontal control leaves undetermined, or choose a free network.
 
@@ -370,20 +474,21 @@ def _check_horizontal_datum(
     control anywhere and a single part, the network is adjusted free, with
     inner constraints removing translation (and rotation without azimuths).
     """
-    horizontal = frozenset(HORIZONTAL_KINDS)
-    parts = connected_parts(_graph(used, horizontal))
-    control = {p.name for p in points if "en" in p.fixed or "en" in p.weighted}
-    kinds_in = {
-        frozenset(part): {o.kind for o in used if o.kind in horizontal and o.to in part}
-        for part in parts
-    }
-    if not control and len(parts) == 1:
-        kinds = kinds_in[frozenset(parts[0])]
+    parts = _parts(columns, columns.horizontal, len(points))
+    control = np.array(["en" in p.fixed or "en" in p.weighted for p in points], dtype=bool)
+    # the kinds observed to a point of each part
+    to_part = parts.label[columns.to[columns.horizontal]]
+    kind_codes = columns.table.kind[columns.horizontal]
+    kinds_in: dict[int, set[str]] = defaultdict(set)
+    for part, code in set(zip(to_part.tolist(), kind_codes.tolist())):
+        kinds_in[part].add(columns.table.kinds[code])
+    if not control.any() and len(parts.order) == 1:
+        kinds = kinds_in[parts.order[0]]
         if "distance" not in kinds:
             raise NetworkError(
                 "no point is held and no distance is observed, so the network has neither "
                 "position nor scale: hold two points (fix=en) or observe distances",
-                sorted(parts[0]),
+                parts.names(points, parts.order[0]),
             )
         free = ("translation",) if "azimuth" in kinds else ("translation", "rotation")
         return free, [
@@ -391,46 +496,30 @@ def _check_horizontal_datum(
             f"constrained: inner constraints on {' and '.join(free)}) so that the "
             "observations can be checked; its coordinates are in an arbitrary datum"
         ]
-    for part in parts:
-        held = part & control
-        kinds = kinds_in[frozenset(part)]
+    held_count = np.bincount(parts.label[parts.inside & control], minlength=len(points))
+    for part in parts.order:
+        held = int(held_count[part])
+        kinds = kinds_in[part]
         missing = []
         if not held:
             missing = ["translation (no point held)"]
-        if len(held) < 2 and "azimuth" not in kinds:
+        if held < 2 and "azimuth" not in kinds:
             missing.append("rotation (fewer than two points held and no azimuth observed)")
-        if len(held) < 2 and "distance" not in kinds:
+        if held < 2 and "distance" not in kinds:
             missing.append("scale (fewer than two points held and no distance observed)")
         if missing:
-            names = sorted(part - control) or sorted(part)
+            members = np.flatnonzero(parts.inside & (parts.label == part))
+            free_names = sorted(points[k].name for k in members.tolist() if not control[k])
+            names = free_names or parts.names(points, part)
             raise NetworkError(
                 "the horizontal datum is incomplete: "
                 + "; ".join(missing)
                 + f". Points affected: {_shown(names)}",
                 names,
             )
-    if len(parts) > 1:
+    if len(parts.order) > 1:
         return (), [
-            f"the horizontal network falls into {len(parts)} separate parts, each with its "
+            f"the horizontal network falls into {len(parts.order)} separate parts, each with its "
             "own control; they are adjusted together but do not check one another"
         ]
     return (), []
-
-
-def connected_parts(graph: dict[str, set[str]]) -> list[set[str]]:
-    """Connected components of an undirected graph, in first-seen order."""
-    seen: set[str] = set()
-    parts: list[set[str]] = []
-    for start in graph:
-        if start in seen:
-            continue
-        part = {start}
-        stack = [start]
-        while stack:
-            for nxt in graph[stack.pop()]:
-                if nxt not in part:
-                    part.add(nxt)
-                    stack.append(nxt)
-        seen |= part
-        parts.append(part)
-    return parts

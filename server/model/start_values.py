@@ -11,6 +11,8 @@ from __future__ import annotations
 import math
 from collections import deque
 
+import numpy as np
+
 from server.errors import NetworkError
 from server.model.network import Network
 
@@ -19,47 +21,80 @@ NAN = math.nan
 
 def approximate_coordinates(network: Network) -> dict[str, tuple[float, float, float]]:
     """Start values (east, north, height) in metres for every point, NaN where not needed."""
-    coords = {
-        p.name: (
-            p.east if p.east is not None else NAN,
-            p.north if p.north is not None else NAN,
-            p.height if p.height is not None else NAN,
-        )
-        for p in network.points
-    }
-    heights = _start_heights(network, {n: c[2] for n, c in coords.items()})
-    for name, height in heights.items():
-        e, n, _ = coords[name]
-        coords[name] = (e, n, height)
+    table = start_coordinates(network)
+    rows = map(tuple, table.tolist())
+    return dict(zip((p.name for p in network.points), rows))
+
+
+def start_coordinates(network: Network) -> np.ndarray:
+    """Start values as an array (points × east, north, height; metres, NaN where not needed),
+    rows in the order of ``network.points``."""
+    points = network.points
+    coords = np.array(
+        [
+            (
+                p.east if p.east is not None else NAN,
+                p.north if p.north is not None else NAN,
+                p.height if p.height is not None else NAN,
+            )
+            for p in points
+        ],
+        dtype=float,
+    ).reshape(-1, 3)
+    coords[:, 2] = _start_heights(network, coords[:, 2])
     if network.horizontal:
         from server.model.horizontal_start import start_positions
 
-        positions = start_positions(network, {n: (c[0], c[1]) for n, c in coords.items()})
-        for name, (east, north) in positions.items():
-            coords[name] = (east, north, coords[name][2])
+        given = {p.name: (float(e), float(n)) for p, (e, n) in zip(points, coords[:, :2].tolist())}
+        positions = start_positions(network, given)
+        index = {p.name: k for k, p in enumerate(points)}
+        for name, position in positions.items():
+            coords[index[name], :2] = position
     return coords
 
 
-def _start_heights(network: Network, heights: dict[str, float]) -> dict[str, float]:
-    """Carry heights along the used level observations, breadth first from known heights."""
-    edges: dict[str, list[tuple[str, float]]] = {}
-    for obs in network.used:
-        if obs.kind == "level":
-            edges.setdefault(obs.from_point, []).append((obs.to, obs.value))
-            edges.setdefault(obs.to, []).append((obs.from_point, -obs.value))
-    known = {name: h for name, h in heights.items() if not math.isnan(h)}
-    queue = deque(name for name in edges if name in known)
+def _start_heights(network: Network, given: np.ndarray) -> np.ndarray:
+    """Carry heights along the used level observations, breadth first from known heights.
+
+    ``given`` holds each point's height (NaN: none).  Each mark's sections are taken in
+    file order (FROM's before TO's on one line), and the search starts from the known
+    marks in order of first appearance, so every height is carried along the same
+    sections on every run.  Returns the heights with the carried ones filled in.
+    """
+    table = network.used_table
+    rows = np.flatnonzero(table.is_kind("level"))
+    if not rows.size:
+        return given
+    point = network.name_point
+    frm, to, value = point[table.frm[rows]], point[table.to[rows]], table.value[rows]
+    # every section twice: FROM → TO rising by the value, TO → FROM by its negation
+    source = np.stack([frm, to], axis=1).ravel()
+    target = np.stack([to, frm], axis=1).ravel()
+    rise = np.stack([value, -value], axis=1).ravel()
+    marks, first = np.unique(source, return_index=True)
+    marks = marks[np.argsort(first)]  # the level marks in order of first appearance
+    by_mark = np.argsort(source, kind="stable")
+    count = given.shape[0]
+    start = np.zeros(count + 1, np.int64)
+    np.cumsum(np.bincount(source, minlength=count), out=start[1:])
+    neighbour, step, begin = target[by_mark].tolist(), rise[by_mark].tolist(), start.tolist()
+    height = given.tolist()
+    known = [h == h for h in height]  # not NaN
+    queue = deque(k for k in marks.tolist() if known[k])
     while queue:
-        name = queue.popleft()
-        for other, rise in edges[name]:
-            if other not in known:
-                known[other] = known[name] + rise
+        mark = queue.popleft()
+        here = height[mark]
+        for slot in range(begin[mark], begin[mark + 1]):
+            other = neighbour[slot]
+            if not known[other]:
+                known[other] = True
+                height[other] = here + step[slot]
                 queue.append(other)
-    missing = sorted(name for name in edges if name not in known)
+    missing = sorted(network.points[k].name for k in marks.tolist() if not known[k])
     if missing:
         raise NetworkError(
             "no height can be carried to these points from any point with a known height: "
             + ", ".join(missing[:12]),
             missing,
         )
-    return {name: known[name] for name in edges}
+    return np.array(height, dtype=float)

@@ -31,7 +31,10 @@ from dataclasses import dataclass
 from functools import partial
 from itertools import pairwise
 
-from server.fieldbook.model import Fieldbook, Observation, TraverseTolerance
+import numpy as np
+
+from server.fieldbook.model import Fieldbook, TraverseTolerance
+from server.fieldbook.table import NONE, ObservationTable
 from server.model.misclosures import Misclosure
 from server.units import wrap_2pi, wrap_pi
 
@@ -69,36 +72,44 @@ class _Graph:
         self.angles: dict[tuple[str, str, str], float] = {}  # (back, at, fore) → clockwise angle
         self.booked: set[tuple[str, str, str]] = set()  # the angles as the lines state them
         self.azimuths: dict[tuple[str, str], float] = {}
-        self.order: dict[str, int] = {}
-        rounds: dict[int, list[Observation]] = {}
-        for o in fieldbook.observations:
-            if o.ignored:
-                continue
-            if o.kind == "distance":
-                sums.setdefault(frozenset((o.from_point, o.to)), []).append(o.value)
-            elif o.kind == "angle" and o.at is not None:
-                self._angle(o.from_point, o.at, o.to, o.value)
-            elif o.kind == "azimuth":
-                self.azimuths.setdefault((o.from_point, o.to), o.value)
-                self.azimuths.setdefault((o.to, o.from_point), wrap_2pi(o.value + math.pi))
-            elif o.kind == "direction" and o.round_line is not None:
-                rounds.setdefault(o.round_line, []).append(o)
-            for name in (o.from_point, o.at, o.to):
-                if name is not None:
-                    self.order.setdefault(name, len(self.order))
+        table = fieldbook.table
+        rows = np.flatnonzero(~table.ignored)  # the used observations, read as columns
+        names = table.names
+        frm = [names[k] for k in table.frm[rows].tolist()]
+        to = [names[k] for k in table.to[rows].tolist()]
+        at = table.at[rows].tolist()
+        value = table.value[rows].tolist()
+        kind = table.kind[rows].tolist()
+        round_line = table.round_line[rows].tolist()
+        self.order = _first_seen(table, rows)
+        codes = {name: table.code(name) for name in ("distance", "angle", "azimuth", "direction")}
+        rounds: dict[int, list[int]] = {}
+        for k, code in enumerate(kind):
+            if code == codes["distance"]:
+                sums.setdefault(frozenset((frm[k], to[k])), []).append(value[k])
+            elif code == codes["angle"] and at[k] >= 0:
+                self._angle(frm[k], names[at[k]], to[k], value[k])
+            elif code == codes["azimuth"]:
+                self.azimuths.setdefault((frm[k], to[k]), value[k])
+                self.azimuths.setdefault((to[k], frm[k]), wrap_2pi(value[k] + math.pi))
+            elif code == codes["direction"] and round_line[k] != NONE:
+                rounds.setdefault(round_line[k], []).append(k)
         # a round gives the angle between any two of its directions; looked up when needed
         self.rounds_at: dict[str, list[dict[str, float]]] = {}
         for members in rounds.values():
             readings: dict[str, float] = {}
-            for o in members:
-                readings.setdefault(o.to, o.value)
-            self.rounds_at.setdefault(members[0].from_point, []).append(readings)
+            for k in members:
+                readings.setdefault(to[k], value[k])
+            self.rounds_at.setdefault(frm[members[0]], []).append(readings)
         self.legs = {
             pair: sum(values) / len(values) for pair, values in sums.items() if len(pair) == 2
         }
         self.neighbours: dict[str, list[str]] = {}
+        order = self.order
         for pair in self.legs:
-            a, b = sorted(pair, key=lambda n: self.order.get(n, 0))
+            a, b = pair  # the two in file order (as sorted() by order would give them)
+            if order.get(b, 0) < order.get(a, 0):
+                a, b = b, a
             self.neighbours.setdefault(a, []).append(b)
             self.neighbours.setdefault(b, []).append(a)
         self.fixed = {
@@ -151,6 +162,15 @@ class _Graph:
                 return angle, self.bearing(end, fore)
         observed = self.azimuths.get((last, end))
         return None if observed is None else (None, observed)
+
+
+def _first_seen(table: ObservationTable, rows: np.ndarray) -> dict[str, int]:
+    """The rank of every name in order of first appearance among ``rows`` (FROM, AT, TO)."""
+    ids = np.stack([table.frm[rows], table.at[rows], table.to[rows]], axis=1).ravel()
+    ids = ids[ids >= 0]
+    seen, first = np.unique(ids, return_index=True)
+    ordered = seen[np.argsort(first)].tolist()
+    return {table.names[k]: rank for rank, k in enumerate(ordered)}
 
 
 def traverse_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
