@@ -27,6 +27,13 @@ _NONE = type(None)
 _SCALARS = frozenset({float, str, int, bool, _NONE})
 
 
+class FiniteRecords(list[dict[str, Any]]):
+    """JSON records whose floats were found finite where they were made (from arrays, at
+    C speed): ``refuse_non_finite`` does not look at them again."""
+
+    __slots__ = ()
+
+
 def json_bytes(obj: object, *, compact: bool = False) -> bytes:
     """``obj`` as JSON text (UTF-8, no final newline); ValueError for NaN or infinity."""
     # no cyclic garbage collection meanwhile: the check makes large short-lived lists,
@@ -70,6 +77,9 @@ def refuse_non_finite(obj: object) -> None:
 
 def _check_values(values: list[Any]) -> None:
     kinds = set(map(type, values))
+    if FiniteRecords in kinds:
+        values = [v for v in values if type(v) is not FiniteRecords]
+        kinds.discard(FiniteRecords)
     if kinds <= _SCALARS:
         if float in kinds:
             _check_floats(values if len(kinds) == 1 else [v for v in values if type(v) is float])
