@@ -400,7 +400,9 @@ def _adjust(args: argparse.Namespace) -> int:
 
         args.csv.write_text(points_csv(result), encoding="utf-8", newline="")
     if args.json:
-        write_json(result.to_json_dict())
+        from server.results.json_result import write_result_json
+
+        write_result_json(result)
     else:
         from server.report.text import report_text
 

@@ -20,7 +20,9 @@ import pytest
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook, adjust_parsed
 from server.results import columns as columns_module
+from server.results import json_result
 from server.results.columns import ObservationColumns, PointColumns
+from server.results.json_result import result_json_chunks
 from server.results.json_writer import json_bytes
 from server.review.snooping import with_ignored
 
@@ -115,3 +117,28 @@ def test_nan_in_a_reported_value_is_refused_and_in_an_absent_one_is_null():
     bad = dataclasses.replace(result, points=dataclasses.replace(points, coordinates=coordinates))
     with pytest.raises(ValueError, match="not JSON compliant"):
         json_bytes(bad.to_json_dict())
+
+
+@pytest.mark.parametrize("name", [*PLANE_DEMOS, "dam_control_3d"])
+def test_json_written_in_chunks_is_the_json_of_the_dict(name, monkeypatch):
+    monkeypatch.setattr(columns_module, "CHUNK", 3)
+    monkeypatch.setattr(json_result, "CHUNK", 3)  # the records cross chunk boundaries
+    result = _demo(name)
+    assert b"".join(result_json_chunks(result)) == json_bytes(result.to_json_dict())
+
+
+def test_a_large_result_in_chunks_and_a_nan_in_it_refused(monkeypatch):
+    monkeypatch.setattr(json_result, "CHUNK", 1000)
+    result = adjust_fieldbook(networks.leveling(3_000))
+    pieces = list(result_json_chunks(result))
+    assert len(pieces) > 6  # written in parts, not as one document
+    assert b"".join(pieces) == json_bytes(result.to_json_dict())
+    columns = result.observations
+    assert isinstance(columns, ObservationColumns)
+    residual = columns.residual.copy()
+    residual[-1] = math.nan
+    broken = dataclasses.replace(
+        result, observations=dataclasses.replace(columns, residual=residual)
+    )
+    with pytest.raises(ValueError, match="not JSON compliant"):
+        b"".join(result_json_chunks(broken))

@@ -32,9 +32,7 @@ import warnings
 from typing import Any
 
 import numpy as np
-import scipy.linalg
 import scipy.sparse
-import scipy.sparse.linalg
 
 from server.engine import kernels
 
@@ -171,6 +169,8 @@ class DenseLapack(Factorization):
     def factorize(self, matrix: Any, check: bool) -> None:
         # the pivots are always examined: for a full N that costs nothing
         del check
+        import scipy.linalg  # here: the sparse path need not load LAPACK's wrappers at start
+
         try:
             self._factor = scipy.linalg.cho_factor(matrix, lower=True, check_finite=False)
         except np.linalg.LinAlgError:
@@ -183,6 +183,8 @@ class DenseLapack(Factorization):
 
     def solve(self, rhs: np.ndarray) -> np.ndarray:
         assert self._factor is not None
+        import scipy.linalg
+
         return scipy.linalg.cho_solve(self._factor, rhs, check_finite=False)
 
     def cofactor(self, n: int) -> DenseCofactor:
@@ -286,6 +288,8 @@ class _SuperLU(Factorization):
 
     @staticmethod
     def _splu(matrix: scipy.sparse.csc_matrix, ordering: str) -> Any:
+        import scipy.sparse.linalg  # here: only this back end needs it
+
         try:
             return scipy.sparse.linalg.splu(
                 matrix,

@@ -15,6 +15,7 @@ from __future__ import annotations
 import gc
 import math
 import sys
+from collections.abc import Iterable
 from itertools import chain
 from operator import itemgetter
 from typing import IO, Any
@@ -49,20 +50,26 @@ def json_bytes(obj: object, *, compact: bool = False) -> bytes:
 
 
 def write_json(obj: object, stream: IO[str] | None = None) -> None:
-    """Write ``obj`` as indented JSON and a newline to a text stream (stdout by default).
+    """Write ``obj`` as indented JSON and a newline to a text stream (stdout by default)."""
+    write_bytes([json_bytes(obj), b"\n"], stream)
+
+
+def write_bytes(pieces: Iterable[bytes], stream: IO[str] | None = None) -> None:
+    """Write UTF-8 text pieces to a text stream (stdout by default).
 
     The bytes go to the stream's binary buffer when it has one (no decoding and
     re-encoding of a large text), else they are decoded and written as text.
     """
     out = sys.stdout if stream is None else stream
-    data = json_bytes(obj) + b"\n"
     buffer = getattr(out, "buffer", None)
-    if buffer is None:
-        out.write(data.decode("utf-8"))
-        return
     out.flush()  # text written before stays before
-    buffer.write(data)
-    buffer.flush()
+    for piece in pieces:
+        if buffer is None:
+            out.write(piece.decode("utf-8"))
+        else:
+            buffer.write(piece)
+    if buffer is not None:
+        buffer.flush()
 
 
 def refuse_non_finite(obj: object) -> None:

@@ -290,13 +290,15 @@ class AdjustmentResult:
         """True for a result of the geodetic 3D model."""
         return self.summary.model == "geodetic"
 
-    def to_json_dict(self) -> dict[str, object]:
+    def to_json_dict(self, *, records: bool = True) -> dict[str, object]:
         """The JSON object of the result contract.
 
         The geodetic keys are written only when the book has a ``crs`` line or the geodetic
         model is in use, so that every other result keeps its text byte for byte.
+        ``records=False``: "points" and "observations" hold None, for a writer that makes
+        those records itself a chunk at a time (``json_result.py``; plane results only).
         """
-        out = self._plane_json_dict()
+        out = self._plane_json_dict(records)
         if self.summary.geodetic_keys:
             _add_geodetic_keys(self, out)
         if self.summary.design:
@@ -310,7 +312,7 @@ class AdjustmentResult:
         )
         return dataclasses.asdict(rows)
 
-    def _plane_json_dict(self) -> dict[str, object]:
+    def _plane_json_dict(self, records: bool = True) -> dict[str, object]:
         s = self.summary
         return {
             "format": 1,
@@ -346,8 +348,8 @@ class AdjustmentResult:
                 },
                 "precision_scaling": {"method": s.precision_method, "factor": s.precision_factor},
             },
-            "points": _point_records(self.points),
-            "observations": _observation_records(self.observations),
+            "points": _point_records(self.points) if records else None,
+            "observations": _observation_records(self.observations) if records else None,
             "misclosures": [m.to_dict() for m in self.misclosures],
             "relative": [
                 {
