@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from itertools import chain, repeat
 from typing import Any
 
 import numpy as np
@@ -429,33 +430,41 @@ def _point_results(
     """
     points = network.points
     names = [p.name for p in points]
+    fixed = [p.fixed for p in points]
+    n_points = len(names)
     n_unknowns = len(network.parameters)
     # the unknown of each component of each point (−1: none)
-    by_component: tuple[dict[str, int], ...] = ({}, {}, {})
-    component_index = {"E": 0, "N": 1, "H": 2}
-    for k, parameter in enumerate(network.parameters):
-        index = component_index.get(parameter.kind)
-        if index is not None and isinstance(parameter.point, str):
-            by_component[index][parameter.point] = k
-    unknown = np.array(
-        [[by_component[c].get(name, -1) for c in range(3)] for name in names], dtype=np.int64
-    ).reshape(-1, 3)
+    row_of = {name: k for k, name in enumerate(names)}
+    parameters = network.parameters
+    component = np.fromiter(
+        map(_COMPONENT.get, [p.kind for p in parameters], repeat(-1)), np.int64, n_unknowns
+    )
+    owner = np.fromiter(
+        map(row_of.get, [p.point for p in parameters], repeat(-1)), np.int64, n_unknowns
+    )
+    found = (component >= 0) & (owner >= 0)
+    unknown = np.full((n_points, 3), -1, dtype=np.int64)
+    unknown[owner[found], component[found]] = np.flatnonzero(found)
     # the elements of Qxx the points need, fetched at once: the diagonal and each E–N pair
     q_diagonal = solution.covariance_entries(np.arange(n_unknowns), np.arange(n_unknowns))
     sd_all = np.sqrt(np.maximum(variance * q_diagonal, 0.0)) * per_m
     estimated = unknown >= 0
     absent = (math.nan,) * 3
-    adjusted = np.array(
-        [solution.coordinates.get(name, absent) for name in names], dtype=float
+    adjusted = np.fromiter(
+        chain.from_iterable(map(solution.coordinates.get, names, repeat(absent))),
+        float,
+        3 * n_points,
     ).reshape(-1, 3)
+    # a coordinate not given is None: NaN here
     given = np.array(
-        [[_or_nan(p.east), _or_nan(p.north), _or_nan(p.height)] for p in points], dtype=float
-    ).reshape(-1, 3)
+        [[p.east for p in points], [p.north for p in points], [p.height for p in points]],
+        dtype=float,
+    ).T.reshape(-1, 3)
     has_given = ~np.isnan(given)
     coordinates = np.where(estimated, adjusted, given) * per_m
     has_coordinate = estimated | has_given
-    held_en = np.array(["en" in p.fixed for p in points], dtype=bool) & network.horizontal
-    held_h = np.array(["h" in p.fixed for p in points], dtype=bool) & network.vertical
+    held_en = np.array(["en" in f for f in fixed], dtype=bool) & network.horizontal
+    held_h = np.array(["h" in f for f in fixed], dtype=bool) & network.vertical
     held = np.column_stack([held_en, held_en, held_h]) & has_given & ~estimated
     sds = np.where(estimated, sd_all[np.maximum(unknown, 0)] if n_unknowns else 0.0, 0.0)
     has_sd = estimated | held
@@ -479,7 +488,7 @@ def _point_results(
         has_coordinate=has_coordinate,
         sds=sds,
         has_sd=has_sd,
-        fixed=[p.fixed for p in points],
+        fixed=fixed,
         weighted=[p.weighted for p in points],
         note=[p.note for p in points],
         in_use=np.array([p.in_use for p in points], dtype=bool),
@@ -491,8 +500,8 @@ def _point_results(
     )
 
 
-def _or_nan(value: float | None) -> float:
-    return math.nan if value is None else value
+#: The column of ``unknown`` of each coordinate unknown's kind.
+_COMPONENT = {"E": 0, "N": 1, "H": 2}
 
 
 def _joined_pairs(network: Network) -> list[tuple[str, str]]:

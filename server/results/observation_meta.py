@@ -8,6 +8,7 @@ network uses; everything else in ``builder.py`` works on these columns.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from operator import is_
 
 import numpy as np
 
@@ -38,29 +39,33 @@ class ObservationMetadata:
     @property
     def angular(self) -> np.ndarray:
         """True for the kinds whose value is an angle."""
-        return np.array([kind in ANGULAR_KINDS for kind in self.kind], dtype=bool)
+        return self._among(ANGULAR_KINDS)
 
     def of_kind(self, kind: str) -> np.ndarray:
         """True for the observations of ``kind``."""
-        return np.array([k == kind for k in self.kind], dtype=bool)
+        return self._among(frozenset({kind}))
+
+    def _among(self, kinds: frozenset[str]) -> np.ndarray:
+        present = set(self.kind)
+        if not present & kinds:
+            return np.zeros(len(self.kind), dtype=bool)
+        if present <= kinds:
+            return np.ones(len(self.kind), dtype=bool)
+        return np.array([kind in kinds for kind in self.kind], dtype=bool)
 
 
 def observation_metadata(network: Network) -> ObservationMetadata:
     """The field book's observations as columns, and where the used ones are among them."""
     observations = network.fieldbook.observations
-    book_index = {id(obs): k for k, obs in enumerate(observations)}
-    used_position = np.array([book_index[id(obs)] for obs in network.used], dtype=np.int64)
-    value = np.array([obs.value for obs in observations], dtype=float)
-    scale = np.array([obs.scale for obs in observations], dtype=float)
-    booked = np.array(
-        [
-            obs.booked
-            if obs.booked is not None
-            else (obs.value / obs.scale if obs.scale else obs.value)
-            for obs in observations
-        ],
-        dtype=float,
-    )
+    used = network.used
+    if len(used) == len(observations) and all(map(is_, used, observations)):
+        used_position = np.arange(len(used), dtype=np.int64)  # every observation is used
+    else:
+        book_index = {id(obs): k for k, obs in enumerate(observations)}
+        used_position = np.array([book_index[id(obs)] for obs in used], dtype=np.int64)
+    value = [obs.value for obs in observations]
+    scale = [obs.scale for obs in observations]
+    booked = [obs.booked for obs in observations]
     return ObservationMetadata(
         line=np.array([obs.line for obs in observations], dtype=np.int64),
         kind=[obs.kind for obs in observations],
@@ -68,9 +73,16 @@ def observation_metadata(network: Network) -> ObservationMetadata:
         at=[obs.at for obs in observations],
         to=[obs.to for obs in observations],
         note=[obs.note for obs in observations],
-        value=value,
-        booked=booked,
-        scale=scale,
+        value=np.array(value, dtype=float),
+        # the value as written: booked, else before the scale factor
+        booked=np.array(
+            [
+                b if b is not None else (v / s if s else v)
+                for b, v, s in zip(booked, value, scale, strict=True)
+            ],
+            dtype=float,
+        ),
+        scale=np.array(scale, dtype=float),
         ignored=np.array([obs.ignored for obs in observations], dtype=bool),
         used_position=used_position.reshape(-1),
     )
