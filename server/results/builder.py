@@ -434,7 +434,7 @@ def _point_results(
     n_points = len(names)
     n_unknowns = len(network.parameters)
     # the unknown of each component of each point (−1: none)
-    row_of = {name: k for k, name in enumerate(names)}
+    row_of: dict[str | None, int] = {name: k for k, name in enumerate(names)}
     parameters = network.parameters
     component = np.fromiter(
         map(_COMPONENT.get, [p.kind for p in parameters], repeat(-1)), np.int64, n_unknowns
