@@ -189,10 +189,13 @@ def _pairs(
     """
     unit = np.zeros((root_p.shape[0], rows.size))
     unit[rows, np.arange(rows.size)] = root_p[rows]
-    r_columns = (root_p[:, None] * hat(unit))[candidates]  # −R off the diagonal
+    # −R off the diagonal, on the candidates' rows only, worked in place (the same products)
+    r_columns = hat(unit)[candidates]
+    r_columns *= root_p[candidates][:, None]
+    np.abs(r_columns, out=r_columns)
     scale = np.sqrt(np.maximum(redundancy, 0.0))
     bound = threshold * scale[candidates][:, None] * scale[rows][None, :]
-    second, first = np.nonzero(np.abs(r_columns) >= bound)
+    second, first = np.nonzero(r_columns >= bound)
     return rows[first], candidates[second]
 
 
