@@ -21,7 +21,7 @@ from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook, adjust_parsed
 from server.results import columns as columns_module
 from server.results import json_result
-from server.results.columns import ObservationColumns, PointColumns
+from server.results.columns import ObservationColumns, PointColumns, RelativeColumns
 from server.results.json_result import result_json_chunks
 from server.results.json_writer import json_bytes
 from server.review.snooping import with_ignored
@@ -41,7 +41,10 @@ PLANE_DEMOS = [
 
 def _as_rows(result):
     return dataclasses.replace(
-        result, points=tuple(result.points), observations=tuple(result.observations)
+        result,
+        points=tuple(result.points),
+        observations=tuple(result.observations),
+        relative=tuple(result.relative),
     )
 
 
@@ -54,6 +57,7 @@ def test_json_from_columns_is_the_json_of_the_rows(name):
     result = _demo(name)
     assert isinstance(result.points, PointColumns)
     assert isinstance(result.observations, ObservationColumns)
+    assert isinstance(result.relative, RelativeColumns)
     from_columns = result.to_json_dict()
     from_rows = _as_rows(result).to_json_dict()
     assert from_columns == from_rows
@@ -68,6 +72,18 @@ def test_ignored_observations_read_alike_from_columns_and_rows():
     assert [o.line for o in ignored] == lines
     # left out: no redundancy, no test, a value computed from the adjusted coordinates
     assert all(o.redundancy is None and o.w is None and o.adjusted is not None for o in ignored)
+    assert result.to_json_dict() == _as_rows(result).to_json_dict()
+
+
+def test_relative_ellipses_with_a_tolerance_and_requested_pairs_read_alike():
+    text = networks.horizontal(40, seed=5)  # with a relative tolerance
+    assert "tolerance relative=" in text
+    result = adjust_fieldbook(text + "relative P0_1 P4_3\nrelative P0_0 P5_5\n")
+    relative = result.relative
+    assert isinstance(relative, RelativeColumns) and len(relative) > 10
+    assert any(r.requested for r in relative) and any(r.held for r in relative)
+    # two held points: no allowance, no verdict; every other pair checked
+    assert all((r.allowed is None) == r.held == (r.passed is None) for r in relative)
     assert result.to_json_dict() == _as_rows(result).to_json_dict()
 
 

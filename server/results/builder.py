@@ -20,7 +20,7 @@ from server.model.kinds import CoincidentPointsError, evaluate_one, sigma_one
 from server.model.misclosures import Misclosure
 from server.model.network import Network
 from server.results.baselines import BaselineFigures, baseline_figures
-from server.results.columns import ObservationColumns, PointColumns
+from server.results.columns import ObservationColumns, PointColumns, RelativeColumns
 from server.results.geodetic_points import with_geodetic_figures
 from server.results.observation_meta import ObservationMetadata, observation_metadata
 from server.results.types import (
@@ -31,7 +31,6 @@ from server.results.types import (
     ObservationResult,
     PointResult,
     RelativeHeightResult,
-    RelativeResult,
     Summary,
 )
 from server.statistics import quality as st
@@ -156,7 +155,14 @@ def build_result(
     )
     horizontal_pairs, height_pairs = _requested_pairs(network, solution, warnings)
     relative = _relative_results(
-        network, solution, scale_variance, factor, tests.confidence, per_m, horizontal_pairs
+        network,
+        solution,
+        meta,
+        scale_variance,
+        factor,
+        tests.confidence,
+        per_m,
+        horizontal_pairs,
     )
     relative_heights = _relative_height_results(
         network,
@@ -504,24 +510,29 @@ def _point_results(
 _COMPONENT = {"E": 0, "N": 1, "H": 2}
 
 
-def _joined_pairs(network: Network) -> list[tuple[str, str]]:
+def _joined_pairs(meta: ObservationMetadata) -> list[tuple[str, str]]:
     """Point pairs joined by a used observation of any kind but level and zenith, first-seen
     order, no repeats."""
     pairs: dict[tuple[str, str], tuple[str, str]] = {}
-    for obs in network.used:
-        if obs.kind == "angle":
-            assert obs.at is not None
-            candidates = [(obs.at, obs.from_point), (obs.at, obs.to)]
-        elif obs.kind in ("distance", "azimuth", "direction", "slope", "baseline"):
+    kind, at, from_point, to = meta.kind, meta.at, meta.from_point, meta.to
+    for k in meta.used_position.tolist():
+        if kind[k] == "angle":
+            station = at[k]
+            assert station is not None
+            candidates = [(station, from_point[k]), (station, to[k])]
+        elif kind[k] in _JOINING_KINDS:
             # (the geodetic model's slope distances and baselines join marks too; a zenith
             # angle or a level line does not fix a horizontal position between them)
-            candidates = [(obs.from_point, obs.to)]
+            candidates = [(from_point[k], to[k])]
         else:
             continue
         for a, b in candidates:
             # the unordered pair as its key (as a frozenset would be, made faster)
             pairs.setdefault((a, b) if a <= b else (b, a), (a, b))
     return list(pairs.values())
+
+
+_JOINING_KINDS = frozenset({"distance", "azimuth", "direction", "slope", "baseline"})
 
 
 def _requested_pairs(
@@ -583,12 +594,13 @@ def _requested_pairs(
 def _relative_results(
     network: Network,
     solution: Solution,
+    meta: ObservationMetadata,
     variance: float,
     factor: float,
     confidence: float,
     per_m: float,
     requested: Sequence[tuple[str, str]] = (),
-) -> tuple[RelativeResult, ...]:
+) -> RelativeColumns:
     """Relative confidence ellipses: Σ_Δ = Σ_ii + Σ_jj − Σ_ij − Σ_ji over (E, N).
 
     Pairs joined by a used observation (two held points left out), then the
@@ -605,7 +617,7 @@ def _relative_results(
     asked = {(a, b) if a <= b else (b, a) for a, b in requested}
     pairs = []
     seen = set()
-    for a, b in _joined_pairs(network):
+    for a, b in _joined_pairs(meta):
         ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
         key = (a, b) if a <= b else (b, a)
         if max(ends) >= 0 or key in asked:  # else both ends held fixed
@@ -644,34 +656,28 @@ def _relative_results(
     along = u_east * (cov[:, 0, 0] * u_east + cov[:, 0, 1] * u_north) + u_north * (
         cov[:, 1, 0] * u_east + cov[:, 1, 1] * u_north
     )
-    sd_distance = (np.sqrt(np.maximum(along, 0.0)) * per_m).tolist()
-    semi_major = (major * factor * per_m).tolist()
-    semi_minor = (minor * factor * per_m).tolist()
-    azimuths = azimuth.tolist()
+    has_allowed = ~np.array(held, dtype=bool).reshape(-1)
     if tolerance is None:
-        allowed: list[float | None] = [None] * len(pairs)
+        allowed = np.zeros(len(pairs))
+        has_allowed[:] = False
     else:
-        allowed = ((tolerance.constant + tolerance.ppm * 1e-6 * distance_m) * per_m).tolist()
-    results = []
-    for k, ((a, b, _, asked_for), distance) in enumerate(zip(pairs, (distance_m * per_m).tolist())):
-        allow = None if held[k] else allowed[k]
-        results.append(
-            RelativeResult(
-                from_point=a,
-                to_point=b,
-                distance=distance,
-                semi_major=semi_major[k],
-                semi_minor=semi_minor[k],
-                azimuth=azimuths[k],
-                confidence=confidence,
-                allowed=allow,
-                passed=None if allow is None else bool(semi_major[k] <= allow),
-                sd_distance=sd_distance[k],
-                requested=asked_for,
-                held=held[k],
-            )
-        )
-    return tuple(results)
+        allowed = (tolerance.constant + tolerance.ppm * 1e-6 * distance_m) * per_m
+    semi_major = major * factor * per_m
+    return RelativeColumns(
+        from_point=[a for a, _, _, _ in pairs],
+        to_point=[b for _, b, _, _ in pairs],
+        distance=distance_m * per_m,
+        semi_major=semi_major,
+        semi_minor=minor * factor * per_m,
+        azimuth=azimuth,
+        confidence=confidence,
+        allowed=allowed,
+        has_allowed=has_allowed,
+        passed=semi_major <= allowed,
+        sd_distance=np.sqrt(np.maximum(along, 0.0)) * per_m,
+        requested=np.array([asked for _, _, _, asked in pairs], dtype=bool),
+        held=np.array(held, dtype=bool).reshape(-1),
+    )
 
 
 def _relative_height_results(

@@ -19,7 +19,7 @@ from typing import Any, overload
 
 import numpy as np
 
-from server.results.types import Ellipse, ObservationResult, PointResult
+from server.results.types import Ellipse, ObservationResult, PointResult, RelativeResult
 
 #: Rows made per step when a whole column store is iterated or written.
 CHUNK = 20_000
@@ -409,4 +409,105 @@ class PointColumns(_Columns):
                 ellipses,
                 strict=True,
             )
+        ]
+
+
+@dataclass(frozen=True, eq=False, repr=False, slots=True, kw_only=True)
+class RelativeColumns(_Columns):
+    """Every relative confidence ellipse of a result, as columns (output units).
+
+    ``allowed`` exists where ``has_allowed`` (a tolerance, and not two held points);
+    ``passed`` is reported exactly there.
+    """
+
+    from_point: list[str]
+    to_point: list[str]
+    distance: np.ndarray
+    semi_major: np.ndarray
+    semi_minor: np.ndarray
+    azimuth: np.ndarray
+    confidence: float
+    allowed: np.ndarray
+    has_allowed: np.ndarray
+    passed: np.ndarray
+    sd_distance: np.ndarray
+    requested: np.ndarray
+    held: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.from_point)
+
+    def _fields(self, start: int, stop: int) -> dict[str, list[Any]]:
+        s = slice(start, stop)
+        has_allowed = self.has_allowed[s]
+        return {
+            "from_point": self.from_point[s],
+            "to_point": self.to_point[s],
+            "distance": self.distance[s].tolist(),
+            "semi_major": self.semi_major[s].tolist(),
+            "semi_minor": self.semi_minor[s].tolist(),
+            "azimuth": self.azimuth[s].tolist(),
+            "confidence": [self.confidence] * (stop - start),
+            "allowed": _nullable(self.allowed[s], has_allowed),
+            "passed": _nullable(self.passed[s], has_allowed),
+            "sd_distance": self.sd_distance[s].tolist(),
+            "requested": self.requested[s].tolist(),
+            "held": self.held[s].tolist(),
+        }
+
+    def _rows(self, start: int, stop: int) -> list[RelativeResult]:
+        fields = self._fields(start, stop)
+        names = tuple(fields)
+        return [
+            RelativeResult(**dict(zip(names, values)))
+            for values in zip(*fields.values(), strict=True)
+        ]
+
+    def all_finite(self) -> bool:
+        """True when every reported float is finite (as JSON can write it)."""
+        return bool(np.isfinite(self.confidence) or not len(self)) and all(
+            _finite(values, mask)
+            for values, mask in (
+                (self.distance, None),
+                (self.semi_major, None),
+                (self.semi_minor, None),
+                (self.azimuth, None),
+                (self.allowed, self.has_allowed),
+                (self.sd_distance, None),
+            )
+        )
+
+    def json_records(self, start: int = 0, stop: int | None = None) -> list[dict[str, Any]]:
+        """The contract's relative records, keys in their order."""
+        stop = len(self) if stop is None else stop
+        f = self._fields(start, stop)
+        return [
+            {
+                "from": a,
+                "to": b,
+                "distance": distance,
+                "semi_major": major,
+                "semi_minor": minor,
+                "azimuth": azimuth,
+                "confidence": confidence,
+                "allowed": allowed,
+                "passed": passed,
+                "sd_distance": sd_distance,
+                "requested": requested,
+                "held": held,
+            }
+            for (
+                a,
+                b,
+                distance,
+                major,
+                minor,
+                azimuth,
+                confidence,
+                allowed,
+                passed,
+                sd_distance,
+                requested,
+                held,
+            ) in zip(*f.values(), strict=True)
         ]

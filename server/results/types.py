@@ -279,7 +279,7 @@ class AdjustmentResult:
     points: Sequence[PointResult]
     observations: Sequence[ObservationResult]
     misclosures: tuple[MisclosureResult, ...]
-    relative: tuple[RelativeResult, ...]
+    relative: Sequence[RelativeResult]
     warnings: tuple[str, ...]
     caution: str = CAUTION
     relative_heights: tuple[RelativeHeightResult, ...] = ()
@@ -308,7 +308,10 @@ class AdjustmentResult:
     def detail_dict(self) -> dict[str, Any]:
         """``dataclasses.asdict`` of the result with its rows made (what the store keeps)."""
         rows = dataclasses.replace(
-            self, points=tuple(self.points), observations=tuple(self.observations)
+            self,
+            points=tuple(self.points),
+            observations=tuple(self.observations),
+            relative=tuple(self.relative),
         )
         return dataclasses.asdict(rows)
 
@@ -351,23 +354,7 @@ class AdjustmentResult:
             "points": _point_records(self.points) if records else None,
             "observations": _observation_records(self.observations) if records else None,
             "misclosures": [m.to_dict() for m in self.misclosures],
-            "relative": [
-                {
-                    "from": r.from_point,
-                    "to": r.to_point,
-                    "distance": r.distance,
-                    "semi_major": r.semi_major,
-                    "semi_minor": r.semi_minor,
-                    "azimuth": r.azimuth,
-                    "confidence": r.confidence,
-                    "allowed": r.allowed,
-                    "passed": r.passed,
-                    "sd_distance": r.sd_distance,
-                    "requested": r.requested,
-                    "held": r.held,
-                }
-                for r in self.relative
-            ],
+            "relative": _relative_records(self.relative),
             "relative_heights": [
                 {
                     "from": h.from_point,
@@ -446,6 +433,32 @@ def _observation_records(observations: Sequence[ObservationResult]) -> list[dict
             "ignored": o.ignored,
         }
         for o in observations
+    ]
+
+
+def _relative_records(relative: Sequence[RelativeResult]) -> list[dict[str, Any]]:
+    """The relative ellipses of the contract: straight from the columns when built here."""
+    from server.results.columns import RelativeColumns
+
+    if isinstance(relative, RelativeColumns):
+        records = relative.json_records()
+        return FiniteRecords(records) if relative.all_finite() else records
+    return [
+        {
+            "from": r.from_point,
+            "to": r.to_point,
+            "distance": r.distance,
+            "semi_major": r.semi_major,
+            "semi_minor": r.semi_minor,
+            "azimuth": r.azimuth,
+            "confidence": r.confidence,
+            "allowed": r.allowed,
+            "passed": r.passed,
+            "sd_distance": r.sd_distance,
+            "requested": r.requested,
+            "held": r.held,
+        }
+        for r in relative
     ]
 
 
