@@ -253,10 +253,13 @@ def _observation_results(
     flagged = np.zeros(n, dtype=bool)
     flagged[used_at] = controlled & (np.abs(w_all) > critical)
     has_adjusted = used.copy()
-    inseparable: list[tuple[int, ...]] = [()] * n
     partners = _inseparable_lines(network, solution, meta.line[used_at], r_i, components, first)
-    for row in np.flatnonzero([bool(p) for p in partners]).tolist():
-        inseparable[int(used_at[row])] = partners[row]
+    if len(partners) == n and np.array_equal(used_at, np.arange(n)):  # all used, book order
+        inseparable = partners
+    else:
+        inseparable = [()] * n
+        for row in np.flatnonzero([bool(p) for p in partners]).tolist():
+            inseparable[int(used_at[row])] = partners[row]
     # the observations the adjustment left out: their values from the adjusted coordinates
     entries = _baseline_rows(network, baselines)
     observations = network.fieldbook.observations
