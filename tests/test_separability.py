@@ -249,7 +249,7 @@ def test_inseparable_lists_match_a_dense_numpy_solution():
     assert plan.steps and plan.steps[0].line == _line_of(LOOPS_WITH_BLUNDER, "level N3 N2")
 
 
-def test_large_network_path_agrees_with_the_dense_one():
+def test_large_network_path_agrees_with_the_dense_one(monkeypatch):
     result = adjust_fieldbook(LOOPS_WITH_BLUNDER)
     _used, a, p, rho, r = _dense_rho(result, LOOPS_WITH_BLUNDER)
     qxx = np.linalg.inv(a.T @ p @ a)
@@ -277,6 +277,12 @@ def test_large_network_path_agrees_with_the_dense_one():
     rows = separability.correlated_rows(hat, sigmas, r, candidates, [], dense_rows=0)
     assert {(i, j) for i, js in enumerate(rows) for j in js} == exact_ones
     # with every row exact (as every flagged row is): every pair at |ρ| ≥ 0.99
+    rows = separability.correlated_rows(
+        hat, sigmas, r, candidates, candidates.tolist(), dense_rows=0
+    )
+    assert {(i, j) for i, js in enumerate(rows) for j in js} == near
+    # in blocks of two right-hand sides (as a million-row network is solved): the same pairs
+    monkeypatch.setattr(separability, "MAX_BLOCK_ELEMENTS", 2 * len(sigmas))
     rows = separability.correlated_rows(
         hat, sigmas, r, candidates, candidates.tolist(), dense_rows=0
     )
