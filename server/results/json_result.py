@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import gc
 from collections.abc import Iterator
+from itertools import chain
 from typing import IO
 
 from server.results.columns import CHUNK, ObservationColumns, PointColumns
@@ -25,7 +26,8 @@ def write_result_json(result: AdjustmentResult, stream: IO[str] | None = None) -
     was_enabled = gc.isenabled()
     gc.disable()  # every record lives briefly: no collection walks them again and again
     try:
-        write_bytes([*result_json_chunks(result), b"\n"], stream)
+        # a piece is written as soon as it is made: the whole text is never held at once
+        write_bytes(chain(result_json_chunks(result), (b"\n",)), stream)
     finally:
         if was_enabled:
             gc.enable()
@@ -58,12 +60,15 @@ def result_json_chunks(result: AdjustmentResult) -> Iterator[bytes]:
     before = {key: document[key] for key in keys[:at]}
     after = {key: document[key] for key in keys[at + 2 :]}
     # {"a": …, <- before, its closing brace cut; the lists; after, its opening brace cut
-    yield json_bytes(before)[: -len(b"\n}")]
+    # (both encoded first, so that a value JSON cannot hold stops the text before it starts)
+    head = json_bytes(before)[: -len(b"\n}")]
+    tail = b",\n" + json_bytes(after)[len(b"{\n") :]
+    yield head
     yield b',\n  "points": '
     yield from _records(points)
     yield b',\n  "observations": '
     yield from _records(observations)
-    yield b",\n" + json_bytes(after)[len(b"{\n") :]
+    yield tail
 
 
 def _records(columns: PointColumns | ObservationColumns) -> Iterator[bytes]:
