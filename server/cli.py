@@ -18,7 +18,7 @@ from typing import NoReturn, TextIO
 
 from server import __version__
 from server.errors import FieldbookError, NetworkError
-from server.results.json_text import dumps_indented
+from server.results.json_writer import write_json
 
 EXIT_OK, EXIT_FIELDBOOK, EXIT_NETWORK, EXIT_USAGE = 0, 2, 3, 64
 #: ``serve`` cannot open or create its data folder (sysexits' EX_CANTCREAT).
@@ -279,8 +279,7 @@ def _plan(args: argparse.Namespace) -> int:
 
         args.report.write_text(design_html(result), encoding="utf-8")
     if args.json:
-        sys.stdout.write(dumps_indented(result.to_json_dict()))
-        sys.stdout.write("\n")
+        write_json(result.to_json_dict())
     else:
         from server.report.design_text import design_text
 
@@ -415,9 +414,9 @@ def _adjust(args: argparse.Namespace) -> int:
 
         args.csv.write_text(points_csv(result), encoding="utf-8", newline="")
     if args.json:
-        # the same text as json.dump(..., indent=2), written faster for large networks
-        sys.stdout.write(dumps_indented(result.to_json_dict()))
-        sys.stdout.write("\n")
+        from server.results.json_result import write_result_json
+
+        write_result_json(result)
     else:
         from server.report.text import report_text
 

@@ -13,9 +13,9 @@ from pathlib import Path
 
 import httpx
 import pytest
-from starlette.responses import JSONResponse
 
 from server.web import create_app
+from server.web.api import ResultJSONResponse
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_projects" / "leveling_clean.fieldbook"
 #: Generous: only reached when the loop is blocked (the bug), never on a working service.
@@ -27,7 +27,7 @@ def _encoding_waits_for_the_home_page(
 ) -> tuple[threading.Event, threading.Event, list[bool]]:
     """Make the first large JSON encoding wait until the test says the home page answered."""
     started, home_served, outcome = threading.Event(), threading.Event(), []
-    render = JSONResponse.render
+    render = ResultJSONResponse.render  # the result JSON's own encoding
 
     def waiting_render(self, content):
         if (
@@ -39,7 +39,7 @@ def _encoding_waits_for_the_home_page(
             outcome.append(home_served.wait(GIVE_UP_AFTER))
         return render(self, content)
 
-    monkeypatch.setattr(JSONResponse, "render", waiting_render)
+    monkeypatch.setattr(ResultJSONResponse, "render", waiting_render)
     return started, home_served, outcome
 
 

@@ -5,14 +5,10 @@
   round) without tokens (``fieldbook._Parser.fast_line``) and hands
   everything else to the careful path: both must give equal ``Fieldbook``
   objects, equal observation tables column by column, or equal issues.
-* ``json_output`` spells lists of flat records column by column: the text
-  must be ``json.dumps(..., indent=2)`` byte for byte.
 """
 
 from __future__ import annotations
 
-import json
-import math
 import sys
 from pathlib import Path
 
@@ -26,7 +22,6 @@ from server.fieldbook import parser as fieldbook_module
 from server.fieldbook.parser import parse_fieldbook
 from server.fieldbook.table import _ARRAYS as TABLE_ARRAYS
 from server.fieldbook.table import ObservationTable
-from server.results.json_text import dumps_indented
 from tests.hypothesis_profiles import examples
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -447,89 +442,3 @@ def test_a_long_run_is_read_without_tokens_up_to_its_edge_lines(monkeypatch):
     observations = len(parse_fieldbook(good).observations)
     lines = sum(1 for line in good.splitlines() if line.strip())
     assert _tokenized_lines(good, monkeypatch) == lines - observations
-
-
-# --------------------------------------------------------------------------- JSON
-
-_SCALAR = st.one_of(
-    st.none(),
-    st.booleans(),
-    st.integers(-(10**20), 10**20),
-    st.floats(allow_nan=False, allow_infinity=False),
-    st.text(max_size=8),
-)
-_KEYS = st.lists(st.text(max_size=6), min_size=2, max_size=6, unique=True)
-
-
-@st.composite
-def _records(draw):
-    keys = draw(_KEYS)
-    # per column: one kind for every record, or anything at all
-    kinds = {
-        key: draw(
-            st.sampled_from(
-                ["float", "float-or-none", "str", "int", "any", "record-or-none", "list"]
-            )
-        )
-        for key in keys
-    }
-    makers = {
-        "float": st.floats(allow_nan=False, allow_infinity=False),
-        "float-or-none": st.one_of(st.none(), st.floats(allow_nan=False, allow_infinity=False)),
-        "str": st.text(max_size=8),
-        "int": st.integers(-(10**20), 10**20),
-        "any": _SCALAR,
-        # as the marks of a misclosure: a list of scalars (or None, or a nested list)
-        "list": st.one_of(
-            st.none(),
-            st.lists(_SCALAR, max_size=3),
-            st.lists(st.lists(_SCALAR, max_size=2), max_size=2),
-        ),
-        # as the ellipse of a point: a small record, or None
-        "record-or-none": st.one_of(
-            st.none(),
-            st.fixed_dictionaries(
-                {"semi_major": st.floats(allow_nan=False, allow_infinity=False), "azimuth": _SCALAR}
-            ),
-            st.dictionaries(st.text(max_size=3), _SCALAR, max_size=2),
-        ),
-    }
-    count = draw(st.integers(1, 6))
-    records = [{key: draw(makers[kinds[key]]) for key in keys} for _ in range(count)]
-    if draw(st.integers(0, 4)) == 0 and count > 1:
-        # a record whose keys come in another order, or differ
-        last = records[-1]
-        records[-1] = (
-            dict(reversed(list(last.items()))) if draw(st.booleans()) else {**last, "extra%s": 1}
-        )
-    if draw(st.integers(0, 4)) == 0:
-        records[0][keys[0]] = [1.5, "x", None]  # a container: the general path
-    return records
-
-
-@settings(max_examples=examples(300))
-@given(_records(), st.integers(0, 2))
-def test_records_are_spelled_as_json_dumps_spells_them(records, depth):
-    document: object = records
-    for _ in range(depth):
-        document = {"level": document, "n": 1}
-    assert dumps_indented(document) == json.dumps(document, indent=2)
-
-
-@pytest.mark.parametrize("bad", [math.nan, math.inf, -math.inf])
-def test_non_finite_values_in_records_are_refused_as_json_dumps_refuses_them(bad):
-    records = [{"a": 1.0, "b": "x"}, {"a": bad, "b": "y"}]
-    with pytest.raises(ValueError) as expected:
-        json.dumps(records, indent=2, allow_nan=False)
-    with pytest.raises(ValueError) as ours:
-        dumps_indented(records)
-    # the C encoder's sentence (json.dumps with indent adds the value to it)
-    assert str(ours.value) == "Out of range float values are not JSON compliant"
-    assert str(expected.value).startswith(str(ours.value))
-
-
-def test_a_benchmark_result_is_written_as_json_dumps_writes_it():
-    from server.pipeline import adjust_fieldbook
-
-    result = adjust_fieldbook(networks.leveling(1_000)).to_json_dict()
-    assert dumps_indented(result) == json.dumps(result, indent=2)

@@ -17,7 +17,6 @@ ones with ``HYPOTHESIS_PROFILE=random``.
 
 from __future__ import annotations
 
-import dataclasses
 import json
 import math
 import re
@@ -281,7 +280,7 @@ def _user_strings(result: AdjustmentResult) -> str:
             for item in value:
                 walk(item)
 
-    walk(dataclasses.asdict(result))
+    walk(result.detail_dict())
     return " ".join(found)
 
 

@@ -406,9 +406,8 @@ def test_results_page_states_choice(tmp_path: Path, tight):
 def test_runs_stored_before_the_choice_read_back_as_posterior(tight):
     """A stored run without the new fields was scaled by σ̂₀², as every run then was."""
     _, results = tight
-    import dataclasses
 
-    detail = json.loads(json.dumps(dataclasses.asdict(results["posterior"])))
+    detail = json.loads(json.dumps(results["posterior"].detail_dict()))
     detail["summary"].pop("precision_method")
     detail["summary"].pop("precision_factor")
     old = _result_from_detail(detail)

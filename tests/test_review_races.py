@@ -9,7 +9,6 @@ must give one queued decision, the second told it is already queued.
 
 from __future__ import annotations
 
-import dataclasses
 import json
 import re
 import threading
@@ -291,7 +290,7 @@ def test_runs_stored_as_json_text_before_compression_are_still_read(store_projec
     store, project_id, base = store_project
     result = adjust_fieldbook(TEXT)
     contract = json.dumps(result.to_json_dict())
-    detail = json.dumps(dataclasses.asdict(result))
+    detail = json.dumps(result.detail_dict())
     with closing(sqlite3.connect(store.path)) as raw:  # a row as the earlier version wrote it
         raw.execute(
             "INSERT INTO runs (project_id, created, status, result, detail, summary, "

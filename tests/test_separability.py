@@ -249,7 +249,7 @@ def test_inseparable_lists_match_a_dense_numpy_solution():
     assert plan.steps and plan.steps[0].line == _line_of(LOOPS_WITH_BLUNDER, "level N3 N2")
 
 
-def test_large_network_path_agrees_with_the_dense_one():
+def test_large_network_path_agrees_with_the_dense_one(monkeypatch):
     result = adjust_fieldbook(LOOPS_WITH_BLUNDER)
     _used, a, p, rho, r = _dense_rho(result, LOOPS_WITH_BLUNDER)
     qxx = np.linalg.inv(a.T @ p @ a)
@@ -277,6 +277,12 @@ def test_large_network_path_agrees_with_the_dense_one():
     rows = separability.correlated_rows(hat, sigmas, r, candidates, [], dense_rows=0)
     assert {(i, j) for i, js in enumerate(rows) for j in js} == exact_ones
     # with every row exact (as every flagged row is): every pair at |ρ| ≥ 0.99
+    rows = separability.correlated_rows(
+        hat, sigmas, r, candidates, candidates.tolist(), dense_rows=0
+    )
+    assert {(i, j) for i, js in enumerate(rows) for j in js} == near
+    # in blocks of two right-hand sides (as a million-row network is solved): the same pairs
+    monkeypatch.setattr(separability, "MAX_BLOCK_ELEMENTS", 2 * len(sigmas))
     rows = separability.correlated_rows(
         hat, sigmas, r, candidates, candidates.tolist(), dense_rows=0
     )
@@ -454,14 +460,14 @@ def test_large_network_lists_agree_with_the_dense_computation(monkeypatch):
     assert same >= 0.95 * len(large.observations)
 
 
-def test_json_text_of_the_new_keys_is_what_the_standard_library_writes():
+def test_json_text_of_the_new_keys_reads_back_as_written():
     import json
 
-    from server.results.json_text import dumps_indented
+    from server.results.json_writer import json_bytes
 
     result = adjust_fieldbook(CHAIN_AND_LOOP)
     data = result.to_json_dict()
-    assert dumps_indented(data) == json.dumps(data, indent=2)
+    assert json.loads(json_bytes(data)) == data
     # a column mixing empty lists, null and lists of lines
     rows = [{"a": 1, "inseparable": v} for v in ([], [3, 4], None, [12])]
-    assert dumps_indented({"x": rows}) == json.dumps({"x": rows}, indent=2)
+    assert json.loads(json_bytes({"x": rows})) == {"x": rows}

@@ -331,12 +331,11 @@ def test_unknown_tolerance_option_lists_the_new_ones() -> None:
 
 
 def test_stored_result_keeps_the_traverse_figures() -> None:
-    import dataclasses
 
     from server.store.sqlite import _result_from_detail
 
     result = adjust_text(_purdue_fieldbook(WAC_PLAIN))
-    again = _result_from_detail(dataclasses.asdict(result))
+    again = _result_from_detail(result.detail_dict())
     assert again.misclosures == result.misclosures
     assert again.to_json_dict()["misclosures"] == result.to_json_dict()["misclosures"]
 

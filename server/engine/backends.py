@@ -29,14 +29,11 @@ from __future__ import annotations
 
 import os
 import warnings
+from types import ModuleType
 from typing import Any
 
 import numpy as np
-import scipy.linalg
 import scipy.sparse
-import scipy.sparse.linalg
-
-from server.engine import kernels
 
 #: Environment variable that forces a factorization back end.
 BACKEND_VARIABLE = "STATIONFIT_FACTORIZATION"
@@ -45,6 +42,21 @@ BACKEND_VARIABLE = "STATIONFIT_FACTORIZATION"
 #: largest, so weights many orders apart (1″ directions with 1 km distances) are not
 #: mistaken for a datum defect.
 SINGULAR_PIVOT = 1e-12
+
+
+def _kernels() -> ModuleType:
+    """The compiled kernels, loaded on first use: importing them loads numba (about a third
+    of a second), which the dense back end of small networks never needs."""
+    from server.engine import kernels
+
+    return kernels
+
+
+def __getattr__(name: str) -> ModuleType:
+    # ``backends.kernels`` as before the kernels were loaded lazily (the benchmark patches it)
+    if name == "kernels":
+        return _kernels()
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 class SingularMatrixError(Exception):
@@ -79,7 +91,7 @@ class NormalPattern:
     def __init__(self, n: int, row_ptr: np.ndarray, slot_col: np.ndarray) -> None:
         self.n = n
         self.row_ptr = row_ptr
-        self.indptr, self.indices, self.pair_ptr, self.targets = kernels.normal_pattern(
+        self.indptr, self.indices, self.pair_ptr, self.targets = _kernels().normal_pattern(
             n, row_ptr, slot_col
         )
         self.indptr32 = self.indptr.astype(np.int32)
@@ -91,7 +103,7 @@ class NormalPattern:
 
     def fill(self, slot_val: np.ndarray, weights: np.ndarray) -> np.ndarray:
         """The data of N = AᵀPA on the pattern."""
-        return kernels.fill_normal(
+        return _kernels().fill_normal(
             self.nnz, self.row_ptr, slot_val, weights, self.pair_ptr, self.targets
         )
 
@@ -102,11 +114,11 @@ class NormalPattern:
 
     def diagonal_positions(self) -> np.ndarray:
         columns = np.arange(self.n, dtype=np.int64)
-        return kernels.lookup(self.indptr, self.indices, columns, columns)
+        return _kernels().lookup(self.indptr, self.indices, columns, columns)
 
     def row_quadratic(self, slot_val: np.ndarray, q_data: np.ndarray) -> np.ndarray:
         """a_r·Q·a_rᵀ for each row, Q given on N's pattern."""
-        return kernels.row_quadratic(self.row_ptr, slot_val, self.pair_ptr, self.targets, q_data)
+        return _kernels().row_quadratic(self.row_ptr, slot_val, self.pair_ptr, self.targets, q_data)
 
 
 class Factorization:
@@ -171,6 +183,8 @@ class DenseLapack(Factorization):
     def factorize(self, matrix: Any, check: bool) -> None:
         # the pivots are always examined: for a full N that costs nothing
         del check
+        import scipy.linalg  # here: the sparse path need not load LAPACK's wrappers at start
+
         try:
             self._factor = scipy.linalg.cho_factor(matrix, lower=True, check_finite=False)
         except np.linalg.LinAlgError:
@@ -183,6 +197,8 @@ class DenseLapack(Factorization):
 
     def solve(self, rhs: np.ndarray) -> np.ndarray:
         assert self._factor is not None
+        import scipy.linalg
+
         return scipy.linalg.cho_solve(self._factor, rhs, check_finite=False)
 
     def cofactor(self, n: int) -> DenseCofactor:
@@ -286,6 +302,8 @@ class _SuperLU(Factorization):
 
     @staticmethod
     def _splu(matrix: scipy.sparse.csc_matrix, ordering: str) -> Any:
+        import scipy.sparse.linalg  # here: only this back end needs it
+
         try:
             return scipy.sparse.linalg.splu(
                 matrix,
@@ -360,7 +378,7 @@ class Cofactor:
         self.n = n
         self._factorization = factorization
         self._indptr, self._indices = indptr, indices
-        self._z = kernels.selected_inverse(indptr, indices, unit, pivots)
+        self._z = _kernels().selected_inverse(indptr, indices, unit, pivots)
         self._position = np.empty(n, np.int64)  # unknown → row/column of the factor
         self._position[order] = np.arange(n, dtype=np.int64)
 
@@ -369,7 +387,7 @@ class Cofactor:
         cols = np.asarray(cols, dtype=np.int64)
         a, b = self._position[rows], self._position[cols]
         low, high = np.minimum(a, b), np.maximum(a, b)
-        where = kernels.lookup(self._indptr, self._indices, high, low)
+        where = _kernels().lookup(self._indptr, self._indices, high, low)
         out = np.empty(rows.shape[0])
         found = where >= 0
         out[found] = self._z[where[found]]

@@ -17,7 +17,7 @@ from server.fieldbook.model import Fieldbook
 from server.fieldbook.parser import parse_fieldbook
 from server.monitoring.job import MonitoringOptions, monitor
 from server.monitoring.output import monitoring_json, monitoring_text
-from server.results.json_text import dumps_indented
+from server.results.json_writer import write_json
 from server.units import LENGTH_FACTORS, UnitError, parse_length, parse_number
 
 PROGRAM = "stationfit monitor"
@@ -62,8 +62,7 @@ def run_monitor(args: argparse.Namespace, ok: int, fieldbook: int, network: int,
         print(f"{PROGRAM}: the epochs cannot be compared: {exc}", file=sys.stderr)
         return network
     if args.json:
-        sys.stdout.write(dumps_indented(monitoring_json(job)))
-        sys.stdout.write("\n")
+        write_json(monitoring_json(job))
     else:
         sys.stdout.write(monitoring_text(job))
     return ok

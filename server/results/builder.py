@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from itertools import chain, repeat
 from typing import Any
 
 import numpy as np
@@ -19,17 +20,17 @@ from server.model.kinds import CoincidentPointsError, evaluate_one, sigma_one
 from server.model.misclosures import Misclosure
 from server.model.network import Network
 from server.results.baselines import BaselineFigures, baseline_figures
+from server.results.columns import ObservationColumns, PointColumns, RelativeColumns
 from server.results.geodetic_points import with_geodetic_figures
+from server.results.observation_meta import ObservationMetadata, observation_metadata
 from server.results.types import (
     UNCONTROLLED,
     AdjustmentResult,
-    Ellipse,
     GlobalTest,
     MisclosureResult,
     ObservationResult,
     PointResult,
     RelativeHeightResult,
-    RelativeResult,
     Summary,
 )
 from server.statistics import quality as st
@@ -106,11 +107,15 @@ def build_result(
     warnings = list(warnings)
 
     baselines = baseline_figures(network, solution, lambda0, critical, tests.snooping, per_m)
+    meta = observation_metadata(network)
     observations = _observation_results(
-        network, solution, r_i, critical, lambda0, per_m, warnings, baselines
+        network, solution, meta, r_i, critical, lambda0, per_m, warnings, baselines
     )
-    points = _point_results(network, solution, scale_variance, factor, tests.confidence, per_m)
-    points = with_geodetic_figures(network, solution, points, per_m)
+    points: Sequence[PointResult] = _point_results(
+        network, solution, scale_variance, factor, tests.confidence, per_m
+    )
+    if fb.crs is not None:  # the geodetic figures are added row by row
+        points = with_geodetic_figures(network, solution, points, per_m)
     if not solution.converged:
         warnings.append(solution.message)
     if global_test is not None and not global_test.passed:
@@ -127,8 +132,8 @@ def build_result(
     summary = Summary(
         dimension=network.dimension,
         points=len(points),
-        observations=_counted(fb.observations),
-        used_observations=_counted(network.used),
+        observations=_counted(meta.kind),
+        used_observations=_counted([meta.kind[k] for k in meta.used_position.tolist()]),
         unknowns=n_unknowns,
         redundancy=redundancy,
         iterations=solution.iterations,
@@ -150,7 +155,14 @@ def build_result(
     )
     horizontal_pairs, height_pairs = _requested_pairs(network, solution, warnings)
     relative = _relative_results(
-        network, solution, scale_variance, factor, tests.confidence, per_m, horizontal_pairs
+        network,
+        solution,
+        meta,
+        scale_variance,
+        factor,
+        tests.confidence,
+        per_m,
+        horizontal_pairs,
     )
     relative_heights = _relative_height_results(
         network,
@@ -178,153 +190,163 @@ def build_result(
     )
 
 
-def _counted(observations: Sequence[Observation]) -> int:
+def _counted(kinds: Sequence[str]) -> int:
     """Observations as the result counts them: a baseline is three."""
-    return sum(3 if obs.kind == "baseline" else 1 for obs in observations)
+    return len(kinds) + 2 * kinds.count("baseline")
 
 
 def _observation_results(
     network: Network,
     solution: Solution,
+    meta: ObservationMetadata,
     r_i: np.ndarray,
     critical: float,
     lambda0: float,
     per_m: float,
     warnings: list[str],
     baselines: BaselineFigures,
-) -> tuple[ObservationResult, ...]:
-    used = network.used
+) -> Sequence[ObservationResult]:
+    """Every observation's figures as columns in field book order (``ObservationColumns``);
+    with GNSS baselines, whose three entries come as rows, a tuple of rows."""
+    n = len(meta.kind)
+    used_at = meta.used_position
+    angular_all = meta.angular
     # a baseline takes three rows (one per component); every other observation one
-    components = np.array([3 if obs.kind == "baseline" else 1 for obs in used], dtype=np.int64)
-    first = np.concatenate([[0], np.cumsum(components)[:-1]]).astype(np.int64)
-    # every figure of the used rows at once, then one object per observation
-    angular = np.array([obs.kind in ANGULAR_KINDS for obs in used], dtype=bool)
-    wrapped = angular & np.array([obs.kind != "zenith" for obs in used], dtype=bool)
-    observed_si = np.array([obs.value for obs in used], dtype=float)
-    booked_si = np.array([_booked_si(obs) for obs in used], dtype=float)
+    components = np.where(meta.of_kind("baseline")[used_at], 3, 1).astype(np.int64)
+    first = np.cumsum(components) - components
+    # every figure of the used rows at once
+    angular = angular_all[used_at]
+    wrapped = angular & ~meta.of_kind("zenith")[used_at]
     adjusted_si = np.array(solution.adjusted[first], dtype=float)
     adjusted_si[wrapped] = _wrap_2pi(adjusted_si[wrapped])
     residual_si = np.asarray(solution.residuals[first], dtype=float)
     sd_si = np.asarray(solution.sigmas[first], dtype=float)
-    redundancy = np.asarray(r_i[first], dtype=float)
-    controlled = redundancy >= UNCONTROLLED
-    safe = np.where(controlled, redundancy, 1.0)
+    redundancy_used = np.asarray(r_i[first], dtype=float)
+    controlled = redundancy_used >= UNCONTROLLED
+    safe = np.where(controlled, redundancy_used, 1.0)
     w_all = residual_si / (sd_si * np.sqrt(safe))
     mdb_si = sd_si * np.sqrt(lambda0 / safe)
     small = np.where(angular, ARCSEC_PER_RAD, per_m)
     # math.degrees multiplies by 180/π; so does this, for the same last bit
-    observed = np.where(angular, observed_si * _DEG_PER_RAD, observed_si * per_m).tolist()
-    booked = np.where(angular, booked_si * _DEG_PER_RAD, booked_si * per_m).tolist()
-    adjusted = np.where(angular, adjusted_si * _DEG_PER_RAD, adjusted_si * per_m).tolist()
-    residual = (residual_si * small).tolist()
-    sd = (sd_si * small).tolist()
-    w_list = np.where(controlled, w_all, np.nan).tolist()
-    mdb = np.where(controlled, mdb_si * small, np.nan).tolist()
-    flagged_rows = controlled & (np.abs(w_all) > critical)
-    flagged = flagged_rows.tolist()
-    bias = np.where(controlled, -residual_si / safe * small, np.nan).tolist()
-    partners = _inseparable_lines(network, solution, r_i, components, first)
-    redundancy_list = redundancy.tolist()
-    controlled_list = controlled.tolist()
-
-    row_of = {id(obs): row for row, obs in enumerate(used)}
-    results: list[ObservationResult] = []
-    uncontrolled: list[str] = []
-    for obs in network.fieldbook.observations:
-        if id(obs) in baselines.entries:
-            results.extend(baselines.entries[id(obs)])
+    value_unit = np.where(angular_all, _DEG_PER_RAD, per_m)
+    small_unit = np.where(angular_all, ARCSEC_PER_RAD, per_m)
+    observed = np.where(angular_all, meta.value * _DEG_PER_RAD, meta.value * per_m)
+    booked = np.where(angular_all, meta.booked * _DEG_PER_RAD, meta.booked * per_m)
+    adjusted = np.full(n, np.nan)
+    adjusted[used_at] = np.where(angular, adjusted_si * _DEG_PER_RAD, adjusted_si * per_m)
+    residual = np.full(n, np.nan)
+    residual[used_at] = residual_si * small
+    sd = np.full(n, np.nan)
+    sd[used_at] = sd_si * small
+    redundancy = np.full(n, np.nan)
+    redundancy[used_at] = redundancy_used
+    w = np.full(n, np.nan)
+    w[used_at] = w_all
+    mdb = np.full(n, np.nan)
+    mdb[used_at] = mdb_si * small
+    bias = np.full(n, np.nan)
+    bias[used_at] = -residual_si / safe * small
+    used = np.zeros(n, dtype=bool)
+    used[used_at] = True
+    tested = np.zeros(n, dtype=bool)
+    tested[used_at] = controlled
+    flagged = np.zeros(n, dtype=bool)
+    flagged[used_at] = controlled & (np.abs(w_all) > critical)
+    has_adjusted = used.copy()
+    partners = _inseparable_lines(network, solution, meta.line[used_at], r_i, components, first)
+    if len(partners) == n and np.array_equal(used_at, np.arange(n)):  # all used, book order
+        inseparable = partners
+    else:
+        inseparable = [()] * n
+        for row in np.flatnonzero([bool(p) for p in partners]).tolist():
+            inseparable[int(used_at[row])] = partners[row]
+    # the observations the adjustment left out: their values from the adjusted coordinates
+    entries = _baseline_rows(network, baselines)
+    observations = network.fieldbook.observations
+    for k in np.flatnonzero(~used).tolist():
+        if k in entries:
             continue
-        row = row_of.get(id(obs))
-        if row is not None:
-            if not controlled_list[row]:
-                uncontrolled.append(f"line {obs.line} ({obs.kind} {obs.from_point}–{obs.to})")
-            results.append(
-                ObservationResult(
-                    line=obs.line,
-                    kind=obs.kind,
-                    from_point=obs.from_point,
-                    at=obs.at,
-                    to=obs.to,
-                    observed=observed[row],
-                    adjusted=adjusted[row],
-                    residual=residual[row],
-                    sd=sd[row],
-                    redundancy=redundancy_list[row],
-                    w=w_list[row] if controlled_list[row] else None,
-                    mdb=mdb[row] if controlled_list[row] else None,
-                    flagged=flagged[row],
-                    ignored=obs.ignored,
-                    note=obs.note,
-                    booked=booked[row],
-                    scale_factor=_scale_factor(obs),
-                    estimated_bias=bias[row] if controlled_list[row] else None,
-                    inseparable=partners[row],
-                )
-            )
-            continue
-        is_angle = obs.kind in ANGULAR_KINDS
-        value_unit, small_unit = (_DEG_PER_RAD, ARCSEC_PER_RAD) if is_angle else (per_m, per_m)
-
-        def to_value(x: float, unit: float = value_unit) -> float:
-            return x * unit
-
-        def to_small(x: float, unit: float = small_unit) -> float:
-            return x * unit
-
+        obs = observations[k]
         value_si = _evaluate(obs, solution)
-        residual_one = None if value_si is None else _difference(obs, value_si)
-        if value_si is not None and is_angle and obs.kind != "zenith":
+        sd[k] = _sigma_of_ignored(obs, solution) * small_unit[k]
+        if value_si is None:
+            continue
+        residual[k] = _difference(obs, value_si) * small_unit[k]
+        if angular_all[k] and obs.kind != "zenith":
             value_si = wrap_2pi(value_si)
-        results.append(
-            ObservationResult(
-                line=obs.line,
-                kind=obs.kind,
-                from_point=obs.from_point,
-                at=obs.at,
-                to=obs.to,
-                observed=to_value(obs.value),
-                adjusted=None if value_si is None else to_value(value_si),
-                residual=None if residual_one is None else to_small(residual_one),
-                sd=to_small(_sigma_of_ignored(obs, solution)),
-                redundancy=None,
-                w=None,
-                mdb=None,
-                flagged=False,
-                ignored=obs.ignored,
-                note=obs.note,
-                booked=to_value(_booked_si(obs)),
-                scale_factor=_scale_factor(obs),
-            )
-        )
-    if uncontrolled:
-        shown = "; ".join(uncontrolled[:10]) + (
-            f" and {len(uncontrolled) - 10} more" if len(uncontrolled) > 10 else ""
-        )
-        warnings.append(
-            "uncontrolled observations (redundancy number below 0.001), a blunder in them "
-            f"cannot be detected: {shown}"
-        )
-    return tuple(results)
+        adjusted[k] = value_si * value_unit[k]
+        has_adjusted[k] = True
+    columns = ObservationColumns(
+        line=meta.line,
+        kind=meta.kind,
+        from_point=meta.from_point,
+        at=meta.at,
+        to=meta.to,
+        note=meta.note,
+        observed=observed,
+        booked=booked,
+        scale_factor=meta.scale,
+        has_scale=meta.of_kind("distance"),
+        adjusted=adjusted,
+        has_adjusted=has_adjusted,
+        residual=residual,
+        sd=sd,
+        redundancy=redundancy,
+        used=used,
+        w=w,
+        mdb=mdb,
+        estimated_bias=bias,
+        tested=tested,
+        flagged=flagged,
+        ignored=meta.ignored,
+        inseparable=inseparable,
+    )
+    uncontrolled = np.sort(used_at[~controlled])
+    if entries:
+        uncontrolled = uncontrolled[[k not in entries for k in uncontrolled.tolist()]]
+    _warn_uncontrolled(meta, uncontrolled.tolist(), warnings)
+    if not entries:
+        return columns
+    rows: list[ObservationResult] = []
+    for k, row in enumerate(columns):
+        rows.extend(entries.get(k, (row,)))
+    return tuple(rows)
+
+
+def _baseline_rows(
+    network: Network, baselines: BaselineFigures
+) -> dict[int, tuple[ObservationResult, ...]]:
+    """The three entries of each baseline by its index in field book order."""
+    if not baselines.entries:
+        return {}
+    return {
+        k: baselines.entries[id(obs)]
+        for k, obs in enumerate(network.fieldbook.observations)
+        if id(obs) in baselines.entries
+    }
+
+
+def _warn_uncontrolled(meta: ObservationMetadata, rows: list[int], warnings: list[str]) -> None:
+    """One warning naming the used observations no test can check (the first ten)."""
+    if not rows:
+        return
+    named = [
+        f"line {meta.line[k]} ({meta.kind[k]} {meta.from_point[k]}–{meta.to[k]})" for k in rows[:10]
+    ]
+    shown = "; ".join(named) + (f" and {len(rows) - 10} more" if len(rows) > 10 else "")
+    warnings.append(
+        "uncontrolled observations (redundancy number below 0.001), a blunder in them "
+        f"cannot be detected: {shown}"
+    )
 
 
 _DEG_PER_RAD = 180.0 / math.pi
 
 
-def _booked_si(obs: Observation) -> float:
-    """The value as written, in SI, before the scale factor and the reduction into [0, 2π)."""
-    if obs.booked is not None:
-        return obs.booked
-    return obs.value / obs.scale if obs.scale else obs.value
-
-
-def _scale_factor(obs: Observation) -> float | None:
-    """The scale factor a distance was multiplied by; None where no scale applies."""
-    return obs.scale if obs.kind == "distance" else None
-
-
 def _inseparable_lines(
     network: Network,
     solution: Solution,
+    lines: np.ndarray,
     r_i: np.ndarray,
     components: np.ndarray,
     first: np.ndarray,
@@ -332,8 +354,8 @@ def _inseparable_lines(
     """For each used observation, the lines whose w-test is the same test as its own
     (|ρ| ≥ 0.99).  Rows of a baseline (a whitened block) take no part: their components are
     tested in ``baselines.py``."""
-    used = network.used
-    n_rows = int(first[-1] + components[-1]) if len(used) else 0
+    n_used = len(lines)
+    n_rows = int(first[-1] + components[-1]) if n_used else 0
     scalar = np.repeat(components == 1, components)
     r_rows = np.asarray(r_i[:n_rows], dtype=float)
     controlled = (r_rows >= UNCONTROLLED) & scalar
@@ -346,7 +368,7 @@ def _inseparable_lines(
     )
     candidates = np.flatnonzero(controlled)
     if solution.hat is None or candidates.size < 2:
-        return [()] * len(used)
+        return [()] * n_used
     rows = separability.correlated_rows(
         solution.hat,
         sigmas,
@@ -355,7 +377,7 @@ def _inseparable_lines(
         np.flatnonzero(flagged).tolist(),
     )
     # each scalar row has its own line (a round's directions too)
-    line_of = np.repeat([obs.line for obs in used], components).tolist().__getitem__
+    line_of = np.repeat(lines, components).tolist().__getitem__
     return [tuple(map(line_of, rows[row])) if rows[row] else () for row in first.tolist()]
 
 
@@ -408,96 +430,112 @@ def _point_results(
     factor: float,
     confidence: float,
     per_m: float,
-) -> tuple[PointResult, ...]:
-    column = {(p.point, p.kind): k for k, p in enumerate(network.parameters)}
+) -> PointColumns:
+    """Every point's coordinates, standard deviations and ellipse, as columns.
+
+    An adjusted component comes from the solution with its σ; one that is not adjusted
+    keeps its given value, with σ 0 when it is held fixed in a dimension the network
+    adjusts, else no σ.
+    """
+    points = network.points
+    names = [p.name for p in points]
+    fixed = [p.fixed for p in points]
+    n_points = len(names)
     n_unknowns = len(network.parameters)
+    # the unknown of each component of each point (−1: none)
+    row_of: dict[str | None, int] = {name: k for k, name in enumerate(names)}
+    parameters = network.parameters
+    component = np.fromiter(
+        map(_COMPONENT.get, [p.kind for p in parameters], repeat(-1)), np.int64, n_unknowns
+    )
+    owner = np.fromiter(
+        map(row_of.get, [p.point for p in parameters], repeat(-1)), np.int64, n_unknowns
+    )
+    found = (component >= 0) & (owner >= 0)
+    unknown = np.full((n_points, 3), -1, dtype=np.int64)
+    unknown[owner[found], component[found]] = np.flatnonzero(found)
     # the elements of Qxx the points need, fetched at once: the diagonal and each E–N pair
     q_diagonal = solution.covariance_entries(np.arange(n_unknowns), np.arange(n_unknowns))
-    sd_all = (np.sqrt(np.maximum(variance * q_diagonal, 0.0)) * per_m).tolist()
-    en_points = [
-        (p.name, column[(p.name, "E")], column[(p.name, "N")])
-        for p in network.points
-        if (p.name, "E") in column and (p.name, "N") in column
-    ]
-    ke_all = np.array([ke for _, ke, _ in en_points], dtype=np.int64)
-    kn_all = np.array([kn for _, _, kn in en_points], dtype=np.int64)
+    sd_all = np.sqrt(np.maximum(variance * q_diagonal, 0.0)) * per_m
+    estimated = unknown >= 0
+    absent = (math.nan,) * 3
+    adjusted = np.fromiter(
+        chain.from_iterable(map(solution.coordinates.get, names, repeat(absent))),
+        float,
+        3 * n_points,
+    ).reshape(-1, 3)
+    # a coordinate not given is None: NaN here
+    given = np.array(
+        [[p.east for p in points], [p.north for p in points], [p.height for p in points]],
+        dtype=float,
+    ).T.reshape(-1, 3)
+    has_given = ~np.isnan(given)
+    coordinates = np.where(estimated, adjusted, given) * per_m
+    has_coordinate = estimated | has_given
+    held_en = np.array(["en" in f for f in fixed], dtype=bool) & network.horizontal
+    held_h = np.array(["h" in f for f in fixed], dtype=bool) & network.vertical
+    held = np.column_stack([held_en, held_en, held_h]) & has_given & ~estimated
+    sds = np.where(estimated, sd_all[np.maximum(unknown, 0)] if n_unknowns else 0.0, 0.0)
+    has_sd = estimated | held
+    with_ellipse = estimated[:, 0] & estimated[:, 1]
+    ke_all, kn_all = unknown[with_ellipse, 0], unknown[with_ellipse, 1]
     q_en = solution.covariance_entries(ke_all, kn_all)
     major, minor, azimuth = st.standard_ellipses(
         variance * q_diagonal[ke_all], variance * q_en, variance * q_diagonal[kn_all]
     )
-    ellipses = {
-        name: Ellipse(semi_major=a, semi_minor=b, azimuth=t, confidence=confidence)
-        for (name, _, _), a, b, t in zip(
-            en_points,
-            (major * factor * per_m).tolist(),
-            (minor * factor * per_m).tolist(),
-            azimuth.tolist(),
-        )
-    }
-    results = []
-    horizontal, vertical = network.horizontal, network.vertical
-    coordinates = solution.coordinates
-    absent = (math.nan,) * 3
-    # the unknown of each component by point name (one lookup by name, not by pair)
-    by_component: tuple[dict[str, int], ...] = ({}, {}, {})
-    component_index = {"E": 0, "N": 1, "H": 2}
-    for (name, comp), k in column.items():
-        if comp in component_index and isinstance(name, str):
-            by_component[component_index[comp]][name] = k
-    for p in network.points:
-        adjusted = coordinates.get(p.name, absent)
-        out: list[float | None] = [None, None, None]
-        sds: list[float | None] = [None, None, None]
-        for index, original in ((0, p.east), (1, p.north), (2, p.height)):
-            found = by_component[index].get(p.name)
-            if found is not None:
-                out[index] = float(adjusted[index]) * per_m
-                sds[index] = sd_all[found]
-            else:
-                out[index] = None if original is None else original * per_m
-                if original is not None and (
-                    ("h" in p.fixed and vertical)
-                    if index == 2
-                    else ("en" in p.fixed and horizontal)
-                ):
-                    sds[index] = 0.0
-        results.append(
-            PointResult(
-                name=p.name,
-                east=out[0],
-                north=out[1],
-                height=out[2],
-                sd_east=sds[0],
-                sd_north=sds[1],
-                sd_height=sds[2],
-                fixed=p.fixed,
-                weighted=p.weighted,
-                ellipse=ellipses.get(p.name),
-                in_use=p.in_use,
-                note=p.note,
-            )
-        )
-    return tuple(results)
+    semi_major, semi_minor, azimuths = (
+        np.zeros(len(points)),
+        np.zeros(len(points)),
+        np.zeros(len(points)),
+    )
+    semi_major[with_ellipse] = major * factor * per_m
+    semi_minor[with_ellipse] = minor * factor * per_m
+    azimuths[with_ellipse] = azimuth
+    return PointColumns(
+        name=names,
+        coordinates=coordinates,
+        has_coordinate=has_coordinate,
+        sds=sds,
+        has_sd=has_sd,
+        fixed=fixed,
+        weighted=[p.weighted for p in points],
+        note=[p.note for p in points],
+        in_use=np.array([p.in_use for p in points], dtype=bool),
+        semi_major=semi_major,
+        semi_minor=semi_minor,
+        azimuth=azimuths,
+        has_ellipse=with_ellipse,
+        confidence=confidence,
+    )
 
 
-def _joined_pairs(network: Network) -> list[tuple[str, str]]:
+#: The column of ``unknown`` of each coordinate unknown's kind.
+_COMPONENT = {"E": 0, "N": 1, "H": 2}
+
+
+def _joined_pairs(meta: ObservationMetadata) -> list[tuple[str, str]]:
     """Point pairs joined by a used observation of any kind but level and zenith, first-seen
     order, no repeats."""
     pairs: dict[tuple[str, str], tuple[str, str]] = {}
-    for obs in network.used:
-        if obs.kind == "angle":
-            assert obs.at is not None
-            candidates = [(obs.at, obs.from_point), (obs.at, obs.to)]
-        elif obs.kind in ("distance", "azimuth", "direction", "slope", "baseline"):
+    kind, at, from_point, to = meta.kind, meta.at, meta.from_point, meta.to
+    for k in meta.used_position.tolist():
+        if kind[k] == "angle":
+            station = at[k]
+            assert station is not None
+            candidates = [(station, from_point[k]), (station, to[k])]
+        elif kind[k] in _JOINING_KINDS:
             # (the geodetic model's slope distances and baselines join marks too; a zenith
             # angle or a level line does not fix a horizontal position between them)
-            candidates = [(obs.from_point, obs.to)]
+            candidates = [(from_point[k], to[k])]
         else:
             continue
         for a, b in candidates:
             # the unordered pair as its key (as a frozenset would be, made faster)
             pairs.setdefault((a, b) if a <= b else (b, a), (a, b))
     return list(pairs.values())
+
+
+_JOINING_KINDS = frozenset({"distance", "azimuth", "direction", "slope", "baseline"})
 
 
 def _requested_pairs(
@@ -559,12 +597,13 @@ def _requested_pairs(
 def _relative_results(
     network: Network,
     solution: Solution,
+    meta: ObservationMetadata,
     variance: float,
     factor: float,
     confidence: float,
     per_m: float,
     requested: Sequence[tuple[str, str]] = (),
-) -> tuple[RelativeResult, ...]:
+) -> RelativeColumns:
     """Relative confidence ellipses: Σ_Δ = Σ_ii + Σ_jj − Σ_ij − Σ_ji over (E, N).
 
     Pairs joined by a used observation (two held points left out), then the
@@ -581,7 +620,7 @@ def _relative_results(
     asked = {(a, b) if a <= b else (b, a) for a, b in requested}
     pairs = []
     seen = set()
-    for a, b in _joined_pairs(network):
+    for a, b in _joined_pairs(meta):
         ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
         key = (a, b) if a <= b else (b, a)
         if max(ends) >= 0 or key in asked:  # else both ends held fixed
@@ -620,34 +659,28 @@ def _relative_results(
     along = u_east * (cov[:, 0, 0] * u_east + cov[:, 0, 1] * u_north) + u_north * (
         cov[:, 1, 0] * u_east + cov[:, 1, 1] * u_north
     )
-    sd_distance = (np.sqrt(np.maximum(along, 0.0)) * per_m).tolist()
-    semi_major = (major * factor * per_m).tolist()
-    semi_minor = (minor * factor * per_m).tolist()
-    azimuths = azimuth.tolist()
+    has_allowed = ~np.array(held, dtype=bool).reshape(-1)
     if tolerance is None:
-        allowed: list[float | None] = [None] * len(pairs)
+        allowed = np.zeros(len(pairs))
+        has_allowed[:] = False
     else:
-        allowed = ((tolerance.constant + tolerance.ppm * 1e-6 * distance_m) * per_m).tolist()
-    results = []
-    for k, ((a, b, _, asked_for), distance) in enumerate(zip(pairs, (distance_m * per_m).tolist())):
-        allow = None if held[k] else allowed[k]
-        results.append(
-            RelativeResult(
-                from_point=a,
-                to_point=b,
-                distance=distance,
-                semi_major=semi_major[k],
-                semi_minor=semi_minor[k],
-                azimuth=azimuths[k],
-                confidence=confidence,
-                allowed=allow,
-                passed=None if allow is None else bool(semi_major[k] <= allow),
-                sd_distance=sd_distance[k],
-                requested=asked_for,
-                held=held[k],
-            )
-        )
-    return tuple(results)
+        allowed = (tolerance.constant + tolerance.ppm * 1e-6 * distance_m) * per_m
+    semi_major = major * factor * per_m
+    return RelativeColumns(
+        from_point=[a for a, _, _, _ in pairs],
+        to_point=[b for _, b, _, _ in pairs],
+        distance=distance_m * per_m,
+        semi_major=semi_major,
+        semi_minor=minor * factor * per_m,
+        azimuth=azimuth,
+        confidence=confidence,
+        allowed=allowed,
+        has_allowed=has_allowed,
+        passed=semi_major <= allowed,
+        sd_distance=np.sqrt(np.maximum(along, 0.0)) * per_m,
+        requested=np.array([asked for _, _, _, asked in pairs], dtype=bool),
+        held=np.array(held, dtype=bool).reshape(-1),
+    )
 
 
 def _relative_height_results(

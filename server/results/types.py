@@ -7,10 +7,13 @@
 
 from __future__ import annotations
 
+import dataclasses
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
 from server.fieldbook.model import ANGULAR_KINDS
+from server.results.json_writer import FiniteRecords
 from server.statistics import quality as st
 
 CAUTION = (
@@ -271,10 +274,12 @@ class AdjustmentResult:
     angle_unit: str
     text_sha256: str
     summary: Summary
-    points: tuple[PointResult, ...]
-    observations: tuple[ObservationResult, ...]
+    #: rows made on demand from columns (``columns.py``) when built here; any sequence of
+    #: rows otherwise (results read back from the store, edited copies)
+    points: Sequence[PointResult]
+    observations: Sequence[ObservationResult]
     misclosures: tuple[MisclosureResult, ...]
-    relative: tuple[RelativeResult, ...]
+    relative: Sequence[RelativeResult]
     warnings: tuple[str, ...]
     caution: str = CAUTION
     relative_heights: tuple[RelativeHeightResult, ...] = ()
@@ -285,20 +290,32 @@ class AdjustmentResult:
         """True for a result of the geodetic 3D model."""
         return self.summary.model == "geodetic"
 
-    def to_json_dict(self) -> dict[str, object]:
+    def to_json_dict(self, *, records: bool = True) -> dict[str, object]:
         """The JSON object of the result contract.
 
         The geodetic keys are written only when the book has a ``crs`` line or the geodetic
         model is in use, so that every other result keeps its text byte for byte.
+        ``records=False``: "points" and "observations" hold None, for a writer that makes
+        those records itself a chunk at a time (``json_result.py``; plane results only).
         """
-        out = self._plane_json_dict()
+        out = self._plane_json_dict(records)
         if self.summary.geodetic_keys:
             _add_geodetic_keys(self, out)
         if self.summary.design:
             _add_design_keys(self, out)
         return out
 
-    def _plane_json_dict(self) -> dict[str, object]:
+    def detail_dict(self) -> dict[str, Any]:
+        """``dataclasses.asdict`` of the result with its rows made (what the store keeps)."""
+        rows = dataclasses.replace(
+            self,
+            points=tuple(self.points),
+            observations=tuple(self.observations),
+            relative=tuple(self.relative),
+        )
+        return dataclasses.asdict(rows)
+
+    def _plane_json_dict(self, records: bool = True) -> dict[str, object]:
         s = self.summary
         return {
             "format": 1,
@@ -334,70 +351,10 @@ class AdjustmentResult:
                 },
                 "precision_scaling": {"method": s.precision_method, "factor": s.precision_factor},
             },
-            "points": [
-                {
-                    "name": p.name,
-                    "east": p.east,
-                    "north": p.north,
-                    "height": p.height,
-                    "sd_east": p.sd_east,
-                    "sd_north": p.sd_north,
-                    "sd_height": p.sd_height,
-                    "fixed": p.fixed,
-                    "weighted": p.weighted,
-                    "note": p.note,
-                    "ellipse": None
-                    if p.ellipse is None
-                    else {
-                        "semi_major": p.ellipse.semi_major,
-                        "semi_minor": p.ellipse.semi_minor,
-                        "azimuth": p.ellipse.azimuth,
-                        "confidence": p.ellipse.confidence,
-                    },
-                }
-                for p in self.points
-            ],
-            "observations": [
-                {
-                    "line": o.line,
-                    "kind": o.kind,
-                    "from": o.from_point,
-                    "at": o.at,
-                    "to": o.to,
-                    "observed": o.observed,
-                    "booked": o.booked,
-                    "scale_factor": o.scale_factor,
-                    "adjusted": o.adjusted,
-                    "residual": o.residual,
-                    "sd": o.sd,
-                    "redundancy": o.redundancy,
-                    "w": o.w,
-                    "mdb": o.mdb,
-                    "estimated_bias": o.estimated_bias,
-                    "inseparable": list(o.inseparable),
-                    "flagged": o.flagged,
-                    "ignored": o.ignored,
-                }
-                for o in self.observations
-            ],
+            "points": _point_records(self.points) if records else None,
+            "observations": _observation_records(self.observations) if records else None,
             "misclosures": [m.to_dict() for m in self.misclosures],
-            "relative": [
-                {
-                    "from": r.from_point,
-                    "to": r.to_point,
-                    "distance": r.distance,
-                    "semi_major": r.semi_major,
-                    "semi_minor": r.semi_minor,
-                    "azimuth": r.azimuth,
-                    "confidence": r.confidence,
-                    "allowed": r.allowed,
-                    "passed": r.passed,
-                    "sd_distance": r.sd_distance,
-                    "requested": r.requested,
-                    "held": r.held,
-                }
-                for r in self.relative
-            ],
+            "relative": _relative_records(self.relative),
             "relative_heights": [
                 {
                     "from": h.from_point,
@@ -413,6 +370,96 @@ class AdjustmentResult:
             "warnings": list(self.warnings),
             "caution": self.caution,
         }
+
+
+def _point_records(points: Sequence[PointResult]) -> list[dict[str, Any]]:
+    """The points of the plane contract: straight from the columns when built here."""
+    from server.results.columns import PointColumns
+
+    if isinstance(points, PointColumns):
+        records = points.json_records()
+        return FiniteRecords(records) if points.all_finite() else records
+    return [
+        {
+            "name": p.name,
+            "east": p.east,
+            "north": p.north,
+            "height": p.height,
+            "sd_east": p.sd_east,
+            "sd_north": p.sd_north,
+            "sd_height": p.sd_height,
+            "fixed": p.fixed,
+            "weighted": p.weighted,
+            "note": p.note,
+            "ellipse": None
+            if p.ellipse is None
+            else {
+                "semi_major": p.ellipse.semi_major,
+                "semi_minor": p.ellipse.semi_minor,
+                "azimuth": p.ellipse.azimuth,
+                "confidence": p.ellipse.confidence,
+            },
+        }
+        for p in points
+    ]
+
+
+def _observation_records(observations: Sequence[ObservationResult]) -> list[dict[str, Any]]:
+    """The observations of the contract: straight from the columns when built here."""
+    from server.results.columns import ObservationColumns
+
+    if isinstance(observations, ObservationColumns):
+        records = observations.json_records()
+        return FiniteRecords(records) if observations.all_finite() else records
+    return [
+        {
+            "line": o.line,
+            "kind": o.kind,
+            "from": o.from_point,
+            "at": o.at,
+            "to": o.to,
+            "observed": o.observed,
+            "booked": o.booked,
+            "scale_factor": o.scale_factor,
+            "adjusted": o.adjusted,
+            "residual": o.residual,
+            "sd": o.sd,
+            "redundancy": o.redundancy,
+            "w": o.w,
+            "mdb": o.mdb,
+            "estimated_bias": o.estimated_bias,
+            "inseparable": list(o.inseparable),
+            "flagged": o.flagged,
+            "ignored": o.ignored,
+        }
+        for o in observations
+    ]
+
+
+def _relative_records(relative: Sequence[RelativeResult]) -> list[dict[str, Any]]:
+    """The relative ellipses of the contract: straight from the columns when built here."""
+    from server.results.columns import RelativeColumns
+
+    if isinstance(relative, RelativeColumns):
+        records = relative.json_records()
+        return FiniteRecords(records) if relative.all_finite() else records
+    return [
+        {
+            "from": r.from_point,
+            "to": r.to_point,
+            "distance": r.distance,
+            "semi_major": r.semi_major,
+            "semi_minor": r.semi_minor,
+            "azimuth": r.azimuth,
+            "confidence": r.confidence,
+            "allowed": r.allowed,
+            "passed": r.passed,
+            "sd_distance": r.sd_distance,
+            "requested": r.requested,
+            "held": r.held,
+        }
+        for r in relative
+    ]
 
 
 def _add_geodetic_keys(result: AdjustmentResult, out: dict[str, Any]) -> None:

@@ -37,7 +37,8 @@ How the pairs are found (``correlated_rows``):
      O(k·(solve + n log n)).
   2. Every flagged observation (the only ones the review acts on) gets its
      whole row of ρ exactly: A·Qxx·a_iᵀ for the flagged rows, solved in
-     blocks of ``BLOCK`` right-hand sides.  So a flagged observation's list
+     blocks of ``BLOCK`` right-hand sides (fewer where the rows are so many that a
+     block would exceed ``MAX_BLOCK_ELEMENTS``).  So a flagged observation's list
      is complete at 0.99, not only at 1.  One solve serves a whole |ρ| = 1
      group (its members' columns of R are parallel, so their rows of ρ are
      equal up to sign): a blunder flags its whole series chain, and the
@@ -74,6 +75,9 @@ KEY_COLUMNS = 4
 GRID = 1e-5
 #: Right-hand sides per block solve for the exact rows of flagged observations.
 BLOCK = 256
+#: ... but no more than this many elements in one rows × block array (128 MB): at a million
+#: rows a block of 256 would take 2 GB, and the solve returns another.
+MAX_BLOCK_ELEMENTS = 16_000_000
 #: Above this many flagged observations only the |ρ| = 1 groups are searched for the rest.
 MAX_EXACT_ROWS = 4096
 
@@ -120,9 +124,10 @@ def correlated_rows(
     else:
         _simulated_groups(hat, root_p, redundancy, candidates, out)
         exact = _representatives(exact_rows, candidates, out, n)
-        for start in range(0, exact.size, BLOCK):
+        block = max(1, min(BLOCK, MAX_BLOCK_ELEMENTS // n))
+        for start in range(0, exact.size, block):
             pairs.append(
-                _pairs(hat, root_p, redundancy, exact[start : start + BLOCK], candidates, threshold)
+                _pairs(hat, root_p, redundancy, exact[start : start + block], candidates, threshold)
             )
     groups = list(out)
     extra: dict[int, set[int]] = {}
@@ -189,10 +194,13 @@ def _pairs(
     """
     unit = np.zeros((root_p.shape[0], rows.size))
     unit[rows, np.arange(rows.size)] = root_p[rows]
-    r_columns = (root_p[:, None] * hat(unit))[candidates]  # −R off the diagonal
+    # −R off the diagonal, on the candidates' rows only, worked in place (the same products)
+    r_columns = hat(unit)[candidates]
+    r_columns *= root_p[candidates][:, None]
+    np.abs(r_columns, out=r_columns)
     scale = np.sqrt(np.maximum(redundancy, 0.0))
     bound = threshold * scale[candidates][:, None] * scale[rows][None, :]
-    second, first = np.nonzero(np.abs(r_columns) >= bound)
+    second, first = np.nonzero(r_columns >= bound)
     return rows[first], candidates[second]
 
 

@@ -26,7 +26,6 @@ Decisions queued for the next re-run are kept in ``pending_edits``.
 from __future__ import annotations
 
 import contextlib
-import dataclasses
 import hashlib
 import json
 import re
@@ -1190,7 +1189,7 @@ def _outcome(
     return (
         "finished",
         _pack(contract),
-        _pack(dataclasses.asdict(result)),
+        _pack(result.detail_dict()),
         json.dumps(summary),
         None,
     )

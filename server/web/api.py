@@ -10,6 +10,7 @@ from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import JSONResponse
 from starlette.concurrency import run_in_threadpool
 
+from server.results.json_writer import json_bytes
 from server.settings import WorkLimits
 from server.store import projects as service
 from server.store.projects import Upload
@@ -29,6 +30,14 @@ from server.web.dependencies import (
 from server.web.jobs import AdjustmentQueue, QueueFull
 
 router = APIRouter()
+
+
+class ResultJSONResponse(JSONResponse):
+    """A result's JSON encoded as the command line encodes it (orjson, NaN refused), compact."""
+
+    def render(self, content: Any) -> bytes:
+        return json_bytes(content, compact=True)
+
 
 _MISSING_FIELD = {"error": "send the field book in the multipart field 'fieldbook'"}
 
@@ -82,7 +91,7 @@ def _adjusted_json(upload: Upload, limits: WorkLimits, queue: AdjustmentQueue) -
         result = service.adjust_upload(upload, limits, queue)
     except QueueFull as exc:
         raise busy(exc) from None
-    return JSONResponse(result.to_json_dict())
+    return ResultJSONResponse(result.to_json_dict())
 
 
 def _stored_json(
@@ -100,7 +109,9 @@ def _stored_json(
     }
     if error is not None:
         body.update(survey_error_payload(error))
-    return JSONResponse(body, status_code=201, headers={"Location": f"/api/projects/{project_id}"})
+    return ResultJSONResponse(
+        body, status_code=201, headers={"Location": f"/api/projects/{project_id}"}
+    )
 
 
 @router.post("/api/adjust", openapi_extra=_fieldbook_body("200"))

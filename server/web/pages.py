@@ -9,7 +9,6 @@ from typing import Any
 from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import (
     HTMLResponse,
-    JSONResponse,
     PlainTextResponse,
     RedirectResponse,
     Response,
@@ -31,6 +30,7 @@ from server.store.projects import StandardsChoice, Upload, display_name
 from server.store.sqlite import Project, Run, Store
 from server.web import access, approval, imports, run_parts
 from server.web import dependencies as deps
+from server.web.api import ResultJSONResponse
 from server.web.dependencies import (
     CheckedForm,
     ChoiceDep,
@@ -434,7 +434,7 @@ def project_result_json(
     body = run.result_json
     if choice.presets:
         body = finished_result(request, store, project, choice, queue).to_json_dict()
-    return JSONResponse(
+    return ResultJSONResponse(
         body,
         headers={"Content-Disposition": _attachment_header(project, "-result.json")},
     )

@@ -1,0 +1,88 @@
+"""What the result reports of each observation as the field book gives it, as columns.
+
+``observation_metadata`` is the one place where the result builder reads the field
+book's observations (line, kind, marks, values, note, ignored) and which of them the
+network uses; everything else in ``builder.py`` works on these columns.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from operator import is_
+
+import numpy as np
+
+from server.fieldbook.model import ANGULAR_KINDS
+from server.model.network import Network
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class ObservationMetadata:
+    """Per-observation columns in field book order (values in SI: metres, radians)."""
+
+    line: np.ndarray  # int64
+    kind: list[str]
+    from_point: list[str]
+    at: list[str | None]
+    to: list[str]
+    note: list[str]
+    #: the value the adjustment uses (scale factor applied, horizontal angles in [0, 2π))
+    value: np.ndarray
+    #: the value as written, before the scale factor and the reduction into [0, 2π)
+    booked: np.ndarray
+    #: the scale factor a distance was multiplied by (1.0 when none)
+    scale: np.ndarray
+    ignored: np.ndarray  # bool
+    #: for each row of ``network.used``, the observation's index in field book order
+    used_position: np.ndarray  # int64
+
+    @property
+    def angular(self) -> np.ndarray:
+        """True for the kinds whose value is an angle."""
+        return self._among(ANGULAR_KINDS)
+
+    def of_kind(self, kind: str) -> np.ndarray:
+        """True for the observations of ``kind``."""
+        return self._among(frozenset({kind}))
+
+    def _among(self, kinds: frozenset[str]) -> np.ndarray:
+        present = set(self.kind)
+        if not present & kinds:
+            return np.zeros(len(self.kind), dtype=bool)
+        if present <= kinds:
+            return np.ones(len(self.kind), dtype=bool)
+        return np.array([kind in kinds for kind in self.kind], dtype=bool)
+
+
+def observation_metadata(network: Network) -> ObservationMetadata:
+    """The field book's observations as columns, and where the used ones are among them."""
+    observations = network.fieldbook.observations
+    used = network.used
+    if len(used) == len(observations) and all(map(is_, used, observations)):
+        used_position = np.arange(len(used), dtype=np.int64)  # every observation is used
+    else:
+        book_index = {id(obs): k for k, obs in enumerate(observations)}
+        used_position = np.array([book_index[id(obs)] for obs in used], dtype=np.int64)
+    value = [obs.value for obs in observations]
+    scale = [obs.scale for obs in observations]
+    booked = [obs.booked for obs in observations]
+    return ObservationMetadata(
+        line=np.array([obs.line for obs in observations], dtype=np.int64),
+        kind=[obs.kind for obs in observations],
+        from_point=[obs.from_point for obs in observations],
+        at=[obs.at for obs in observations],
+        to=[obs.to for obs in observations],
+        note=[obs.note for obs in observations],
+        value=np.array(value, dtype=float),
+        # the value as written: booked, else before the scale factor
+        booked=np.array(
+            [
+                b if b is not None else (v / s if s else v)
+                for b, v, s in zip(booked, value, scale, strict=True)
+            ],
+            dtype=float,
+        ),
+        scale=np.array(scale, dtype=float),
+        ignored=np.array([obs.ignored for obs in observations], dtype=bool),
+        used_position=used_position.reshape(-1),
+    )
