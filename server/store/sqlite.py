@@ -1,8 +1,10 @@
-"""A small project store on SQLite: field books as uploaded, and the runs of their adjustment.
+"""The project store: field books as uploaded, and the runs of their adjustment.
 
-Everything about persistence stays behind ``Store`` so that another backend
-can replace it later.  Each call opens its own connection, so a ``Store`` is
-safe to share between threads; every write is one transaction.  The field
+Everything about persistence stays behind ``Store``: one SQLite file on a workstation
+(the default), or a PostgreSQL database for a team (``Store("postgresql://…")``); the
+same SQL, schema and migrations serve both (``server/store/backends.py``,
+``server/store/schema.py``).  A ``Store`` is safe to share between threads; every
+write is one transaction.  The field
 book is kept byte for byte as uploaded (even when it is not valid UTF-8), so
 nothing the surveyor sent is lost.
 
@@ -30,10 +32,9 @@ import hashlib
 import json
 import re
 import secrets
-import sqlite3
 import uuid
 import zlib
-from collections.abc import Iterator
+from collections.abc import Collection, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
@@ -53,90 +54,20 @@ from server.results.types import (
     RelativeResult,
     Summary,
 )
+from server.store import schema
+from server.store.backends import (
+    PostgresBackend,
+    SqliteBackend,
+    Transaction,
+    is_database_url,
+)
+from server.store.schema import upgrade_postgresql, upgrade_sqlite
 
-SCHEMA_VERSION = 5
+#: The schema this program writes (``server/store/schema.py`` holds its migrations).
+SCHEMA_VERSION = schema.SCHEMA_VERSION
 _ID_RE = re.compile(r"^[0-9a-f]{32}$")
 #: Settings of a run made without any decision (an upload as it is).
 NO_EDITS: dict[str, Any] = {"edits": []}
-
-_RUNS_TABLE = """
-CREATE TABLE {name} (
-    id         INTEGER PRIMARY KEY AUTOINCREMENT,
-    project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
-    created    TEXT NOT NULL,
-    status     TEXT NOT NULL
-               CHECK (status IN ('running', 'finished', 'failed', 'interrupted')),
-    result     TEXT,
-    detail     TEXT,
-    summary    TEXT,
-    error      TEXT,
-    settings   TEXT NOT NULL DEFAULT '{{"edits": []}}',
-    CHECK ((status = 'finished') = (result IS NOT NULL))
-)"""
-
-#: Statements creating the current schema in an empty database.
-_SCHEMA = (
-    """CREATE TABLE projects (
-    id         TEXT PRIMARY KEY,
-    name       TEXT NOT NULL,
-    filename   TEXT NOT NULL,
-    created    TEXT NOT NULL,
-    fieldbook  BLOB NOT NULL,
-    sha256     TEXT NOT NULL,
-    form_token TEXT NOT NULL DEFAULT '',
-    deleted    TEXT
-)""",
-    _RUNS_TABLE.format(name="runs"),
-    "CREATE INDEX runs_by_project ON runs(project_id, id)",
-    """CREATE TABLE pending_edits (
-    id         INTEGER PRIMARY KEY AUTOINCREMENT,
-    project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
-    created    TEXT NOT NULL,
-    edit       TEXT NOT NULL
-)""",
-    "CREATE INDEX pending_by_project ON pending_edits(project_id, id)",
-    # the file a field book was imported from (survey XML, CSV), kept byte for byte
-    """CREATE TABLE source_files (
-    project_id TEXT PRIMARY KEY REFERENCES projects(id) ON DELETE CASCADE,
-    filename   TEXT NOT NULL,
-    content    BLOB NOT NULL,
-    sha256     TEXT NOT NULL
-)""",
-)
-
-#: Statements bringing a schema-1 database (no settings, no tokens, no pending edits) to 2.
-_MIGRATE_1_TO_2 = (
-    "ALTER TABLE projects ADD COLUMN form_token TEXT NOT NULL DEFAULT ''",
-    "UPDATE projects SET form_token = lower(hex(randomblob(16)))",
-    _RUNS_TABLE.format(name="runs_v2"),
-    (
-        "INSERT INTO runs_v2 (id, project_id, created, status, result, detail, summary, error) "
-        "SELECT id, project_id, created, status, result, detail, summary, error FROM runs"
-    ),
-    "DROP TABLE runs",
-    "ALTER TABLE runs_v2 RENAME TO runs",
-    "CREATE INDEX runs_by_project ON runs(project_id, id)",
-    _SCHEMA[3],
-    _SCHEMA[4],
-)
-
-#: Statements bringing schema 2 to 3: a run may be stored as ``interrupted`` (rebuilding
-#: the table is SQLite's only way to change a CHECK constraint).
-_MIGRATE_2_TO_3 = (
-    _RUNS_TABLE.format(name="runs_v3"),
-    "INSERT INTO runs_v3 SELECT id, project_id, created, status, result, detail, summary, "
-    "error, settings FROM runs",
-    "DROP TABLE runs",
-    "ALTER TABLE runs_v3 RENAME TO runs",
-    "CREATE INDEX runs_by_project ON runs(project_id, id)",
-)
-
-#: Statements bringing schema 3 to 4: a deleted project is kept, marked with the time.
-_MIGRATE_3_TO_4 = ("ALTER TABLE projects ADD COLUMN deleted TEXT",)
-
-#: Statements bringing schema 4 to 5: the imported source file beside its field book.  A table
-#: of its own keeps older projects (which have none) as they are.
-_MIGRATE_4_TO_5 = (_SCHEMA[5],)
 
 #: Runs a stopped service left ``running``: what is stored for them once found.
 INTERRUPTED_ERROR = {
@@ -274,8 +205,25 @@ class DeletedProject:
     form_token: str
 
 
+@dataclass(frozen=True, slots=True)
+class RunProgress:
+    """A worker's run as the progress page shows it; ``ahead`` is None once it has started."""
+
+    run_id: int
+    stage: str
+    step: int
+    started: str | None
+    ahead: int | None
+    adjusting: int
+
+
 class RunGone(LookupError):
     """The run to finish no longer exists: its project was deleted while it was adjusted."""
+
+
+class RunEnded(ValueError):
+    """The run to finish has already ended (finished, failed or interrupted): a second
+    attempt at the same run, such as a worker's job retried, stores nothing."""
 
 
 class DecisionsChanged(RuntimeError):
@@ -287,82 +235,55 @@ class AlreadyQueued(ValueError):
 
 
 class Store:
-    """Projects and runs in one SQLite file (WAL mode, one connection per call)."""
+    """Projects and runs in one SQLite file (WAL mode, one connection per call), or in a
+    PostgreSQL database when ``location`` is a ``postgresql://`` address."""
 
-    def __init__(self, path: Path) -> None:
-        self.path = Path(path)
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        connection = self._connect()
-        try:
-            connection.execute("PRAGMA journal_mode=WAL")
-            connection.execute("BEGIN IMMEDIATE")
-            try:
-                self._create_or_upgrade(connection)
-            except BaseException:
-                connection.execute("ROLLBACK")
-                raise
-            connection.execute("COMMIT")
-        finally:
-            connection.close()
-
-    def _create_or_upgrade(self, db: sqlite3.Connection) -> None:
-        """Create the schema, or bring an older one up to date (inside the caller's transaction)."""
-        (version,) = db.execute("PRAGMA user_version").fetchone()
-        if version > SCHEMA_VERSION:
-            raise RuntimeError(
-                f"{self.path} was written by a newer Stationfit (schema {version}); "
-                "upgrade before opening it"
-            )
-        if version == SCHEMA_VERSION:
-            return
-        has_projects = db.execute(
-            "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'projects'"
-        ).fetchone()
-        statements: tuple[str, ...]
-        if not has_projects:
-            statements = _SCHEMA
-        elif version <= 1:
-            statements = _MIGRATE_1_TO_2 + _MIGRATE_2_TO_3 + _MIGRATE_3_TO_4 + _MIGRATE_4_TO_5
-        elif version == 2:
-            statements = _MIGRATE_2_TO_3 + _MIGRATE_3_TO_4 + _MIGRATE_4_TO_5
-        elif version == 3:
-            statements = _MIGRATE_3_TO_4 + _MIGRATE_4_TO_5
+    def __init__(self, location: Path | str) -> None:
+        self.backend: SqliteBackend | PostgresBackend
+        if is_database_url(location):
+            self.path: Path | None = None
+            self.backend = PostgresBackend(str(location))
         else:
-            statements = _MIGRATE_4_TO_5
-        for statement in statements:
-            db.execute(statement)
-        db.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
+            self.path = Path(location)
+            self.backend = SqliteBackend(self.path)
+        self.dialect = self.backend.dialect
+        self.backend.prepare()
+        with self.backend.write() as db:
+            self.upgraded_from = self._create_or_upgrade(db)
+
+    @property
+    def location(self) -> str:
+        """Where the projects are, as the log may name it (no password)."""
+        return self.backend.location
+
+    @property
+    def postgresql(self) -> bool:
+        """True when the projects are in PostgreSQL (workers may adjust on other machines)."""
+        return isinstance(self.backend, PostgresBackend)
+
+    def close(self) -> None:
+        """Let go of kept connections (PostgreSQL); the store stays usable."""
+        self.backend.close()
+
+    def _create_or_upgrade(self, db: Transaction) -> int:
+        """Create the schema, or bring an older one up to date (inside the caller's
+        transaction); the version found (0: a new database)."""
+        if isinstance(self.backend, PostgresBackend):
+            return upgrade_postgresql(db, self.location, _now())
+        return upgrade_sqlite(db, str(self.path))
 
     # -- connections -----------------------------------------------------------------
 
-    def _connect(self) -> sqlite3.Connection:
-        connection = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
-        connection.execute("PRAGMA foreign_keys = ON")
-        connection.execute("PRAGMA busy_timeout = 30000")
-        return connection
+    @contextmanager
+    def _write(self) -> Iterator[Transaction]:
+        """One transaction: committed on success, rolled back on error."""
+        with self.backend.write() as db:
+            yield db
 
     @contextmanager
-    def _write(self) -> Iterator[sqlite3.Connection]:
-        """One transaction on a fresh connection: committed on success, rolled back on error."""
-        connection = self._connect()
-        try:
-            connection.execute("BEGIN IMMEDIATE")
-            try:
-                yield connection
-            except BaseException:
-                connection.execute("ROLLBACK")
-                raise
-            connection.execute("COMMIT")
-        finally:
-            connection.close()
-
-    @contextmanager
-    def _read(self) -> Iterator[sqlite3.Connection]:
-        connection = self._connect()
-        try:
-            yield connection
-        finally:
-            connection.close()
+    def _read(self) -> Iterator[Transaction]:
+        with self.backend.read() as db:
+            yield db
 
     # -- projects --------------------------------------------------------------------
 
@@ -436,7 +357,7 @@ class Store:
                 "FROM projects p LEFT JOIN runs r ON r.id = "
                 "(SELECT MAX(id) FROM runs WHERE project_id = p.id AND " + _COMPLETED + ") "
                 "WHERE p.deleted IS NULL "
-                "ORDER BY p.created DESC, p.rowid DESC"
+                f"ORDER BY p.created DESC, p.{self.dialect.row_order} DESC"
             ).fetchall()
         listings = []
         for row in rows:
@@ -473,15 +394,16 @@ class Store:
                 "UPDATE projects SET deleted = ? WHERE id = ? AND deleted IS NULL",
                 (_now(), project_id),
             )
-        return cursor.rowcount > 0
+        return int(cursor.rowcount) > 0
 
     def deleted_projects(self) -> list[DeletedProject]:
         """Projects deleted but not yet purged, most recently deleted first."""
         with self._read() as db:
-            rows = db.execute(
-                "SELECT id, name, filename, deleted, "
+            rows = db.execute(  # the dialect's column name is a constant
+                "SELECT id, name, filename, deleted, "  # noqa: S608
                 "(SELECT COUNT(*) FROM runs WHERE project_id = projects.id), form_token "
-                "FROM projects WHERE deleted IS NOT NULL ORDER BY deleted DESC, rowid DESC"
+                "FROM projects WHERE deleted IS NOT NULL "
+                f"ORDER BY deleted DESC, {self.dialect.row_order} DESC"
             ).fetchall()
         return [
             DeletedProject(
@@ -499,19 +421,25 @@ class Store:
                 "UPDATE projects SET deleted = NULL WHERE id = ? AND deleted IS NOT NULL",
                 (project_id,),
             )
-        return cursor.rowcount > 0
+        return int(cursor.rowcount) > 0
 
     def purge_deleted(self, keep_days: int, *, now: datetime | None = None) -> list[DeletedProject]:
         """Remove for good the projects deleted ``keep_days`` days ago or earlier; returns them."""
         cutoff = ((now or datetime.now(UTC)) - timedelta(days=keep_days)).isoformat(
             timespec="seconds"
         )
-        gone = [p for p in self.deleted_projects() if p.deleted <= cutoff]
+        candidates = [p for p in self.deleted_projects() if p.deleted <= cutoff]
+        gone = []
         with self._write() as db:
-            for project in gone:
-                db.execute(
-                    "DELETE FROM projects WHERE id = ? AND deleted IS NOT NULL", (project.id,)
-                )
+            for project in candidates:
+                # checked again in the transaction: one restored meanwhile stays
+                erased = db.execute(
+                    "DELETE FROM projects WHERE id = ? AND deleted IS NOT NULL AND deleted <= ? "
+                    "RETURNING id",
+                    (project.id, cutoff),
+                ).fetchone()
+                if erased is not None:
+                    gone.append(project)
         return gone
 
     # -- runs ------------------------------------------------------------------------
@@ -527,24 +455,24 @@ class Store:
         """Record an adjustment: finished with ``result``, or failed with ``error``."""
         outcome = _outcome(result, error)
         with self._write() as db:
-            cursor = db.execute(
+            db.lock_project(project_id)  # runs of one project are numbered in commit order
+            (run_id,) = db.execute(
                 "INSERT INTO runs (project_id, created, status, result, detail, summary, error, "
-                "settings) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                "settings) VALUES (?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
                 (project_id, _now(), *outcome, json.dumps(settings or NO_EDITS)),
-            )
-        assert cursor.lastrowid is not None
-        return cursor.lastrowid
+            ).fetchone()
+        return int(run_id)
 
     def start_run(self, project_id: str, settings: dict[str, Any]) -> int:
         """Record a run as ``running`` before adjusting; ``finish_run`` completes it."""
         with self._write() as db:
-            cursor = db.execute(
+            db.lock_project(project_id)
+            (run_id,) = db.execute(
                 "INSERT INTO runs (project_id, created, status, settings) "
-                "VALUES (?, ?, 'running', ?)",
+                "VALUES (?, ?, 'running', ?) RETURNING id",
                 (project_id, _now(), json.dumps(settings)),
-            )
-        assert cursor.lastrowid is not None
-        return cursor.lastrowid
+            ).fetchone()
+        return int(run_id)
 
     def finish_run(
         self,
@@ -565,18 +493,21 @@ class Store:
         change = ""
         gone = False
         with self._write() as db:
+            owner = db.execute("SELECT project_id FROM runs WHERE id = ?", (run_id,)).fetchone()
+            # the project's row held first, then the run read again under it: two attempts
+            # at finishing the same run (a worker's job retried) commit one outcome
+            deleted = None if owner is None else db.lock_project(owner[0])
             row = db.execute(
                 "SELECT project_id, status, settings FROM runs WHERE id = ?", (run_id,)
             ).fetchone()
             if row is None:
                 raise RunGone(f"run {run_id} no longer exists; its project was deleted")
-            deleted = db.execute("SELECT deleted FROM projects WHERE id = ?", (row[0],)).fetchone()
             if deleted is not None and deleted[0] is not None:
                 # Dropped (not left running): a restored project shows no orphan run.
                 db.execute("DELETE FROM runs WHERE id = ?", (run_id,))
                 gone = True
             elif row[1] != "running":
-                raise ValueError(f"run {run_id} is not running")
+                raise RunEnded(f"run {run_id} is not running")
             project_id = row[0]
             if not gone and result is not None and consumed is not None:
                 change = _queue_change(db, project_id, run_id, _loads(row[2]) or {}, consumed)
@@ -603,22 +534,92 @@ class Store:
                 "nothing was stored. Check the decisions and re-run again."
             )
 
-    def mark_interrupted(self) -> list[int]:
-        """Store every run left ``running`` as ``interrupted``; returns their ids.
+    def mark_interrupted(self, keep: Collection[int] = ()) -> list[int]:
+        """Store every run left ``running`` as ``interrupted``, except those in ``keep``;
+        returns their ids.
 
         Call only when no process is adjusting on this data folder (at start-up): a run
-        is ``running`` between ``start_run`` and ``finish_run`` of one live process.
+        is ``running`` between ``start_run`` and ``finish_run`` of one live process.  With
+        workers (PostgreSQL), ``keep`` holds the runs the task queue still has.
         """
+        kept = set(keep)
         with self._write() as db:
             ids = [
                 row[0]
                 for row in db.execute("SELECT id FROM runs WHERE status = 'running' ORDER BY id")
+                if row[0] not in kept
             ]
-            db.execute(
-                "UPDATE runs SET status = 'interrupted', error = ? WHERE status = 'running'",
-                (json.dumps(INTERRUPTED_ERROR),),
-            )
+            for run_id in ids:
+                db.execute(
+                    "UPDATE runs SET status = 'interrupted', error = ? "
+                    "WHERE id = ? AND status = 'running'",
+                    (json.dumps(INTERRUPTED_ERROR), run_id),
+                )
         return ids
+
+    def interrupt_run(self, run_id: int, message: str) -> bool:
+        """Store one running run as ``interrupted`` with ``message``; True if it was running.
+
+        For a run whose adjustment keeps stopping its worker (the queue gave up on it):
+        the project's page then offers the re-run as for any interrupted run.
+        """
+        error = {**INTERRUPTED_ERROR, "message": message}
+        with self._write() as db:
+            cursor = db.execute(
+                "UPDATE runs SET status = 'interrupted', error = ? "
+                "WHERE id = ? AND status = 'running'",
+                (json.dumps(error), run_id),
+            )
+        return bool(cursor.rowcount)
+
+    def run_status(self, run_id: int) -> tuple[str, str] | None:
+        """(project id, status) of a run by its id alone, or None when it does not exist."""
+        with self._read() as db:
+            row = db.execute(
+                "SELECT project_id, status FROM runs WHERE id = ?", (run_id,)
+            ).fetchone()
+        return None if row is None else (row[0], row[1])
+
+    # -- progress of runs adjusted by workers -----------------------------------------
+
+    def set_progress(self, run_id: int, stage: str, step: int) -> None:
+        """Record the stage a worker's adjustment of ``run_id`` has reached (pages read it)."""
+        now = _now()
+        with self._write() as db:
+            db.execute(
+                "INSERT INTO run_progress (run_id, stage, step, started, updated) "
+                "VALUES (?, ?, ?, ?, ?) ON CONFLICT (run_id) DO UPDATE SET "
+                "stage = excluded.stage, step = excluded.step, updated = excluded.updated",
+                (run_id, stage, step, now, now),
+            )
+
+    def progress(self, run_id: int) -> RunProgress:
+        """Where a running run is: its stage (``queued`` until a worker has taken it), and
+        the runs waiting ahead of it and being adjusted, read from the database."""
+        with self._read() as db:
+            row = db.execute(
+                "SELECT stage, step, started FROM run_progress WHERE run_id = ?", (run_id,)
+            ).fetchone()
+            waiting, adjusting = db.execute(
+                "SELECT "
+                "COALESCE(SUM(CASE WHEN g.run_id IS NULL AND r.id < ? THEN 1 ELSE 0 END), 0), "
+                "COALESCE(SUM(CASE WHEN g.run_id IS NULL THEN 0 ELSE 1 END), 0) "
+                "FROM runs r LEFT JOIN run_progress g ON g.run_id = r.id "
+                "WHERE r.status = 'running'",
+                (run_id,),
+            ).fetchone()
+        if row is None:
+            return RunProgress(run_id, "queued", 0, None, int(waiting), int(adjusting))
+        return RunProgress(run_id, row[0], int(row[1]), row[2], None, int(adjusting))
+
+    def waiting_runs(self) -> int:
+        """Runs stored as ``running`` that no worker has taken yet."""
+        with self._read() as db:
+            (count,) = db.execute(
+                "SELECT COUNT(*) FROM runs r WHERE r.status = 'running' AND NOT EXISTS "
+                "(SELECT 1 FROM run_progress g WHERE g.run_id = r.id)"
+            ).fetchone()
+        return int(count)
 
     def latest_run(self, project_id: str, *, finished: bool = False) -> Run | None:
         """The most recent completed run (or finished one) with its full result dump, or None.
@@ -688,6 +689,7 @@ class Store:
         """
         key = _decision_key(edit)
         with self._write() as db:
+            db.lock_project(project_id)
             if based_on is not None:
                 (latest,) = db.execute(
                     "SELECT MAX(id) FROM runs WHERE project_id = ? AND status = 'finished'",
@@ -706,12 +708,12 @@ class Store:
                     raise AlreadyQueued(
                         f"{where}he same decision is already queued for the next re-run."
                     )
-            cursor = db.execute(
-                "INSERT INTO pending_edits (project_id, created, edit) VALUES (?, ?, ?)",
+            (edit_id,) = db.execute(
+                "INSERT INTO pending_edits (project_id, created, edit) VALUES (?, ?, ?) "
+                "RETURNING id",
                 (project_id, _now(), json.dumps(edit)),
-            )
-        assert cursor.lastrowid is not None
-        return cursor.lastrowid
+            ).fetchone()
+        return int(edit_id)
 
     def pending_edits(self, project_id: str) -> list[PendingEdit]:
         """The project's queued decisions, oldest first."""
@@ -732,10 +734,11 @@ class Store:
         if not is_valid_id(project_id):
             return False
         with self._write() as db:
+            db.lock_project(project_id)  # not between a re-run's check of the queue and its commit
             cursor = db.execute(
                 "DELETE FROM pending_edits WHERE id = ? AND project_id = ?", (edit_id, project_id)
             )
-        return cursor.rowcount > 0
+        return int(cursor.rowcount) > 0
 
 
 #: Runs that ended with a result or an error (not in progress, not interrupted).
@@ -757,7 +760,7 @@ def _decision_key(edit: Any) -> tuple[Any, ...]:
 
 
 def _queue_change(
-    db: sqlite3.Connection,
+    db: Transaction,
     project_id: str,
     run_id: int,
     settings: dict[str, Any],

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import logging
 import os
-import sqlite3
 from collections.abc import Collection
 from datetime import datetime
 from pathlib import Path
@@ -34,11 +33,13 @@ from server.settings import (
     service_limits,
     service_queue,
 )
+from server.store.backends import storage_errors
 from server.store.projects import ProposalCache, StoreFull, purge_deleted
 from server.store.sqlite import RunGone, Store
 from server.web import api, design, interrupted, monitoring, pages, relative, review
 from server.web.dependencies import busy, survey_error_payload
-from server.web.jobs import AdjustmentQueue, Jobs, QueueFull
+from server.web.jobs import AdjustmentQueue, BackgroundAdjustments, Jobs, QueueFull
+from server.web.workers import RemoteJobs
 
 logger = logging.getLogger("stationfit.web")
 
@@ -402,16 +403,15 @@ def _install_request_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
 def _install_failure_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
     """The service itself failed: its store is unusable, or an unexpected error (500)."""
 
-    @app.exception_handler(sqlite3.Error)
-    async def storage_error(request: Request, exc: sqlite3.Error) -> Response:
-        """The project store cannot be read or written: say so, and name the folder in the log."""
-        folder = request.app.state.store.path.parent
+    async def storage_error(request: Request, exc: Exception) -> Response:
+        """The project store cannot be read or written: say so, and name the folder (or the
+        database) in the log."""
         logger.error(
-            "%s %s: the data folder %s cannot be used (%s); check that it exists, "
+            "%s %s: %s cannot be used (%s); check that it exists, "
             "that the service's user may write to it and that the disk has room",
             request.method,
             request.url.path,
-            folder,
+            request.app.state.store.location,
             exc,
         )
         if request.method in UNSAFE_METHODS:
@@ -431,6 +431,9 @@ def _install_failure_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
         return _error_page(
             templates, request.scope, 503, "The project store is unavailable", message
         )
+
+    for error in storage_errors():  # SQLite's, and psycopg's when it is installed
+        app.add_exception_handler(error, storage_error)
 
     @app.exception_handler(Exception)
     async def server_error(request: Request, exc: Exception) -> Response:
@@ -502,8 +505,15 @@ def create_app(
     adjustments_at_once: int | None = None,
     max_waiting: int | None = None,
     keep_deleted_days: int | None = None,
+    database: str | None = None,
+    workers: bool | None = None,
 ) -> FastAPI:
-    """Build the web application storing projects under ``data_dir``.
+    """Build the web application storing projects under ``data_dir``, or in the PostgreSQL
+    database at ``database`` (``postgresql://…``).
+
+    ``workers`` (default: True with PostgreSQL) hands the adjustments of stored runs to
+    ``python -m server worker`` processes through the task queue; otherwise they run on
+    this process's threads.
 
     Limits not given come from STATIONFIT_MAX_UPLOAD_BYTES and STATIONFIT_MAX_PROJECTS,
     else the defaults (docs/security.md).  ``allowed_hosts`` (None: any) are the Host
@@ -528,9 +538,21 @@ def create_app(
         openapi_url="/api/openapi.json",
     )
     templates = make_templates()
-    app.state.store = Store(Path(data_dir) / DATABASE_NAME)
-    # This process has not started any run yet: one still ``running`` was cut off.
-    stopped = app.state.store.mark_interrupted()
+    store = Store(database) if database else Store(Path(data_dir) / DATABASE_NAME)
+    app.state.store = store
+    queue = AdjustmentQueue(*service_queue(adjustments_at_once, max_waiting))
+    jobs: BackgroundAdjustments
+    if workers if workers is not None else store.postgresql:
+        if not store.postgresql:
+            raise ValueError("adjustment workers need the projects in PostgreSQL (--database)")
+        jobs = RemoteJobs(store, str(database), queue, queue.max_waiting)
+    else:
+        jobs = Jobs(queue)
+    app.state.jobs = jobs
+    # This process has not started any run yet: one still ``running`` was cut off, unless
+    # the task queue still has it (a worker adjusts it, or will).
+    keep = jobs.live_runs() if isinstance(jobs, RemoteJobs) else set()
+    stopped = store.mark_interrupted(keep)
     if stopped:
         logger.warning(
             "the service stopped before finishing run(s) %s; stored as "
@@ -544,7 +566,6 @@ def create_app(
     app.state.max_upload_bytes = max_upload_bytes
     app.state.max_projects = max_projects
     app.state.limits = limits if limits is not None else service_limits()
-    app.state.jobs = Jobs(AdjustmentQueue(*service_queue(adjustments_at_once, max_waiting)))
     # the review's second opinions (robust, snooping) of recent runs, shared by worker threads
     app.state.proposals = ProposalCache()
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR

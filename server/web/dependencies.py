@@ -21,7 +21,7 @@ from server.report.tables import Page
 from server.settings import RETRY_AFTER_SECONDS, WorkLimits
 from server.store.projects import ProposalCache, StandardsChoice, UnknownPreset, Upload
 from server.store.sqlite import Project, Store, error_record
-from server.web.jobs import AdjustmentQueue, Jobs, QueueFull
+from server.web.jobs import AdjustmentQueue, BackgroundAdjustments, QueueFull
 
 #: The largest row id SQLite stores (a signed 64-bit integer).
 SQLITE_MAX_ROWID = 2**63 - 1
@@ -47,7 +47,8 @@ def get_limits(request: Request) -> WorkLimits:
     return request.app.state.limits  # type: ignore[no-any-return]
 
 
-def get_jobs(request: Request) -> Jobs:
+def get_jobs(request: Request) -> BackgroundAdjustments:
+    """This process's background adjustments, or the workers' queue (PostgreSQL)."""
     return request.app.state.jobs  # type: ignore[no-any-return]
 
 
@@ -61,7 +62,7 @@ def get_proposals(request: Request) -> ProposalCache:
 
 StoreDep = Annotated[Store, Depends(get_store)]
 LimitsDep = Annotated[WorkLimits, Depends(get_limits)]
-JobsDep = Annotated[Jobs, Depends(get_jobs)]
+JobsDep = Annotated[BackgroundAdjustments, Depends(get_jobs)]
 QueueDep = Annotated[AdjustmentQueue, Depends(get_queue)]
 ProposalsDep = Annotated[ProposalCache, Depends(get_proposals)]
 
@@ -90,8 +91,9 @@ def busy(exc: QueueFull) -> HTTPException:
     )
 
 
-def room_in_queue(queue: AdjustmentQueue) -> None:
-    """Refuse (503) before storing anything when the adjustment queue is full."""
+def room_in_queue(queue: AdjustmentQueue | BackgroundAdjustments) -> None:
+    """Refuse (503) before storing anything when the adjustment queue is full (for a
+    stored run, ``jobs``: the workers' queue with PostgreSQL)."""
     try:
         queue.check_room()
     except QueueFull as exc:

@@ -38,7 +38,8 @@ async def retry_interrupted(
         )
     settings = {**(interrupted.settings or {}), "retry_of": interrupted.id}
     new_id = await run_in_threadpool(store.start_run, project.id, settings)
-    job = jobs.start(
+    job = await run_in_threadpool(
+        jobs.start,
         new_id,
         lambda progress: service.retry_interrupted(store, project, interrupted, progress, new_id),
     )
