@@ -21,6 +21,7 @@ from server.web.dependencies import (
     ProjectDep,
     RowId,
     StoreDep,
+    wait_briefly,
 )
 
 router = APIRouter()
@@ -43,5 +44,5 @@ async def retry_interrupted(
         new_id,
         lambda progress: service.retry_interrupted(store, project, interrupted, progress, new_id),
     )
-    await run_in_threadpool(job.done.wait, WAIT_FOR_SMALL_JOBS)
+    await wait_briefly(job, WAIT_FOR_SMALL_JOBS)
     return RedirectResponse(f"/projects/{project.id}", status_code=303)

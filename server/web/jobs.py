@@ -133,6 +133,8 @@ class Waiter(Protocol):
 
     def wait(self, timeout: float | None = None) -> bool: ...
 
+    def is_set(self) -> bool: ...
+
 
 class RunJob(Protocol):
     """A background adjustment of a stored run, as the routes and the progress page use it."""

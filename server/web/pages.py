@@ -63,7 +63,7 @@ async def _submit_in_background(request: Request, upload: Upload) -> str:
             run_id,
             lambda progress: service.adjust_run(store, run_id, book, progress, limits),
         )
-        await run_in_threadpool(job.done.wait, deps.WAIT_FOR_SMALL_JOBS)
+        await deps.wait_briefly(job, deps.WAIT_FOR_SMALL_JOBS)
     return project_id
 
 
@@ -233,7 +233,7 @@ async def adjust_imported(request: Request, project: ProjectDep, form: CheckedFo
                 run_id,
                 lambda progress: service.adjust_run(store, run_id, book, progress, limits),
             )
-            await run_in_threadpool(job.done.wait, deps.WAIT_FOR_SMALL_JOBS)
+            await deps.wait_briefly(job, deps.WAIT_FOR_SMALL_JOBS)
     return RedirectResponse(f"/projects/{project.id}", status_code=303)
 
 
