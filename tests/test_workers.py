@@ -216,3 +216,70 @@ def test_a_worker_killed_mid_job_loses_nothing_and_the_run_ends_once(
         f"finished the run {recovered_in:.1f} s later (heartbeat 0.5 s, stalled after 3 s); "
         "one run, one result"
     )
+
+
+@pytest.mark.postgresql
+def test_a_restart_keeps_runs_the_queue_holds_and_interrupts_the_others(tmp_path, postgresql_url):
+    """``serve`` starting on PostgreSQL: a run with a job waiting stays ``running`` (a worker
+    will adjust it); a run with no job (a re-run in a process that died) is interrupted."""
+    from server.web import create_app
+
+    store = Store(postgresql_url)
+    text = (DEMOS / "leveling_clean.fieldbook").read_bytes()
+    queued_project = store.create_project("Queued", "q.fieldbook", text)
+    orphan_project = store.create_project("Orphan", "o.fieldbook", text)
+    first = create_app(tmp_path, database=postgresql_url)
+    queued = store.start_run(queued_project, NO_EDITS)
+    first.state.jobs.start(queued, None)  # deferred; no worker runs in this test
+    orphan = store.start_run(orphan_project, NO_EDITS)  # its process died before deferring
+    first.state.jobs.close()
+
+    again = create_app(tmp_path, database=postgresql_url)  # the restart
+    again.state.jobs.close()
+    assert store.run_status(queued) == (queued_project, "running")
+    assert store.run_status(orphan) == (orphan_project, "interrupted")
+
+
+@pytest.mark.postgresql
+def test_the_service_killed_while_a_worker_adjusts_loses_nothing(
+    tmp_path: Path, postgresql_url: str
+):
+    big = leveling_grid(np.random.default_rng(23), side=90).encode()
+    small = (DEMOS / "leveling_blunder.fieldbook").read_bytes()
+    with WorkerProcess(postgresql_url, tmp_path / "worker.log") as worker:
+        with (
+            _serve(tmp_path, postgresql_url) as service,
+            httpx.Client(base_url=service.url, timeout=TIMEOUT_S) as http,
+        ):
+            earlier = http.post("/api/projects", files={"fieldbook": ("b.fieldbook", small)})
+            earlier_id = earlier.json()["id"]
+            before = http.get(f"/api/projects/{earlier_id}").json()
+            response = http.post(
+                "/projects", files={"fieldbook": ("grid.fieldbook", big)}, follow_redirects=False
+            )
+            project = response.headers["location"].rsplit("/", 1)[1]
+            ((run_id, _, _),) = [r for r in _states(postgresql_url) if r[1] == project]
+            _wait_until(
+                lambda: f"run {run_id}: adjusting".encode() in worker.log.read_bytes(),
+                TIMEOUT_S,
+                "the worker to take the run",
+            )
+            service.kill()  # the web service dies; the worker goes on
+        restarted = ServiceProcess(
+            tmp_path / "unused-data", tmp_path / "serve-2.log", args=("--database", postgresql_url)
+        )
+        with restarted as service, httpx.Client(base_url=service.url, timeout=TIMEOUT_S) as http:
+            assert http.get(f"/api/projects/{earlier_id}").json() == before
+            assert http.get(f"/projects/{project}/fieldbook").content == big
+            body = _wait_until(
+                lambda: (
+                    (b := http.get(f"/api/projects/{project}").json())["runs"][-1]["status"]
+                    != "running"
+                    and b
+                ),
+                TIMEOUT_S,
+                "the run to end",
+            )
+    assert [r["status"] for r in body["runs"]] == ["finished"]
+    expected = adjust_fieldbook(big, source="grid.fieldbook").to_json_dict()
+    assert body["result"]["summary"] == expected["summary"]
