@@ -491,7 +491,7 @@ def _serve(args: argparse.Namespace) -> int:
         )
     except _failures(storage_errors()) as exc:
         # one line for the administrator: which folder, and what the system said
-        reason = (getattr(exc, "strerror", None) or str(exc)).strip().replace("\n", " ")
+        reason = " ".join((getattr(exc, "strerror", None) or str(exc)).split())
         if database is not None:
             print(
                 f"Stationfit: cannot use the database {without_password(database)}: {reason}. "
@@ -598,7 +598,7 @@ def _worker(args: argparse.Namespace) -> int:
     try:
         asyncio.run(run_worker(database, settings, ready))
     except _failures(storage_errors()) as exc:
-        reason = str(exc).strip().replace("\n", " ")
+        reason = " ".join(str(exc).split())
         print(f"Stationfit worker: cannot use the database {shown}: {reason}", file=sys.stderr)
         return EXIT_DATA
     except KeyboardInterrupt:

@@ -35,7 +35,7 @@ from server.settings import (
 )
 from server.store.backends import storage_errors
 from server.store.projects import ProposalCache, StoreFull, purge_deleted
-from server.store.sqlite import RunGone, Store
+from server.store.sqlite import SCHEMA_VERSION, RunGone, Store
 from server.web import api, design, interrupted, monitoring, pages, relative, review
 from server.web.dependencies import busy, survey_error_payload
 from server.web.jobs import AdjustmentQueue, BackgroundAdjustments, Jobs, QueueFull
@@ -540,6 +540,13 @@ def create_app(
     templates = make_templates()
     store = Store(database) if database else Store(Path(data_dir) / DATABASE_NAME)
     app.state.store = store
+    if 0 < store.upgraded_from < SCHEMA_VERSION:
+        logger.warning(
+            "%s was upgraded from schema %d to %d",
+            store.location,
+            store.upgraded_from,
+            SCHEMA_VERSION,
+        )
     queue = AdjustmentQueue(*service_queue(adjustments_at_once, max_waiting))
     jobs: BackgroundAdjustments
     if workers if workers is not None else store.postgresql:
