@@ -370,3 +370,34 @@ def test_a_job_whose_workers_keep_dying_is_handed_back_then_given_up(postgresql_
     ]
     run = store.run(project, run_id)
     assert run.status == "interrupted" and "stopped its worker 3 times" in run.error["message"]
+
+
+def test_a_worker_repeats_an_interrupted_run_with_its_decisions(store_location):
+    """The job of a retried interrupted run: the interrupted run's decisions written in,
+    and the decisions it had queued taken off the queue once it finishes."""
+    from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
+
+    text = leveling_with_blunders(TWO_BLUNDERS)
+    line = next(k for k, t in enumerate(text.splitlines(), 1) if t.startswith("level M2 M4"))
+    exclude = {"line": line, "action": "exclude", "reason": "misread", "date": "2026-12-04"}
+    store = Store(store_location)
+    project = store.create_project("Retry", "r.fieldbook", text)
+    first = store.add_run(project, result=adjust_fieldbook(text))
+    store.add_pending_edit(project, exclude)
+    cut = store.start_run(project, {"edits": [exclude], "based_on": first})
+    assert store.mark_interrupted() == [cut]
+    retry = store.start_run(project, {"edits": [exclude], "based_on": first, "retry_of": cut})
+    assert adjust_job(store, retry, NO_LIMITS) == "ended finished"
+    result = store.latest_run(project).result()
+    assert next(o for o in result.observations if o.line == line).ignored
+    assert store.pending_edits(project) == []
+    assert [r.status for r in store.runs(project)] == ["finished", "interrupted", "finished"]
+
+
+def test_a_worker_reports_a_field_book_that_does_not_read_as_a_failed_run(store_location):
+    store = Store(store_location)
+    project = store.create_project("Bad", "bad.fieldbook", b"level A\n")
+    run_id = store.start_run(project, NO_EDITS)
+    assert adjust_job(store, run_id, NO_LIMITS) == "failed: the field book does not read"
+    run = store.latest_run(project)
+    assert run.status == "failed" and run.error["issues"][0]["line"] == 1
