@@ -23,6 +23,8 @@ from server.results.json_text import dumps_indented
 EXIT_OK, EXIT_FIELDBOOK, EXIT_NETWORK, EXIT_USAGE = 0, 2, 3, 64
 #: ``serve`` cannot open or create its data folder (sysexits' EX_CANTCREAT).
 EXIT_DATA = 73
+#: ``serve`` would be reachable by others without accounts (sysexits' EX_CONFIG).
+EXIT_CONFIG = 78
 
 
 EXIT_STATUSES = """exit statuses:
@@ -30,8 +32,10 @@ EXIT_STATUSES = """exit statuses:
   2   the field book has errors: each on stderr as FILE:LINE: message
       (import: the errors of the XML or CSV file, the same way)
   3   the network cannot be adjusted: what is wrong, naming the points
-  64  the command line cannot be followed (unknown option, unreadable file)
-  73  serve: the data folder cannot be created or written"""
+  64  the command line cannot be followed (unknown option, unreadable file;
+      users: a name, role or password refused)
+  73  serve, users: the data folder cannot be created or written
+  78  serve: others could reach the service and it has no accounts"""
 
 
 class _Parser(argparse.ArgumentParser):
@@ -107,6 +111,13 @@ def main(argv: list[str] | None = None) -> int:
         "(default: $STATIONFIT_MAX_WAITING, else 20; 0: no bound)",
     )
     serve.add_argument(
+        "--https",
+        action="store_true",
+        default=None,
+        help="a reverse proxy serves it over https: session cookies are sent over https only "
+        "(default: $STATIONFIT_HTTPS); needs accounts",
+    )
+    serve.add_argument(
         "--keep-deleted-days",
         type=_whole,
         default=None,
@@ -118,11 +129,14 @@ def main(argv: list[str] | None = None) -> int:
     _import_command(commands)
     _plan_command(commands)
     _monitor_command(commands)
+    _users_command(commands)
     args = parser.parse_args(argv)
     if args.command == "serve":
         return _serve(args)
     if args.command == "worker":
         return _worker(args)
+    if args.command == "users":
+        return _users(args)
     if args.command == "import":
         return _import(args)
     if args.command == "plan":
@@ -469,25 +483,38 @@ def _serve(args: argparse.Namespace) -> int:
 
     from server.settings import default_data_dir, service_limits
     from server.store.backends import storage_errors, without_password
-    from server.web.app import create_app, serve_allowed_hosts
+    from server.web.app import behind_https, create_app, needs_accounts, serve_allowed_hosts
     from server.web.serving import uvicorn_options
 
     host, port, data = args.host, args.port, args.data
     _log_to_stderr()
     limits = service_limits(args.max_observations, args.max_unknowns)
     data_dir = data if data is not None else default_data_dir()
+    https = args.https or behind_https()
+    allowed_hosts = serve_allowed_hosts(host)
     database = _database_option(args.database)
+    where = f"--data {data_dir}" if database is None else "--database URL"
     try:
         if database is None:
             data_dir.mkdir(parents=True, exist_ok=True)
+        reachable = needs_accounts(host, allowed_hosts, https)
+        if reachable and not _accounts(data_dir, database).configured():
+            print(
+                f"Stationfit: not starting: {reachable}, and there are no accounts, so anyone "
+                "could read, change and delete every project. Add one first: "
+                f"python -m server users add NAME --role surveyor {where}",
+                file=sys.stderr,
+            )
+            return EXIT_CONFIG
         app = create_app(
             data_dir,
-            allowed_hosts=serve_allowed_hosts(host),
+            allowed_hosts=allowed_hosts,
             limits=limits,
             adjustments_at_once=args.adjustments_at_once or None,
             max_waiting=args.max_waiting,
             keep_deleted_days=args.keep_deleted_days,
             database=database,
+            secure_cookies=https,
         )
     except _failures(storage_errors()) as exc:
         # one line for the administrator: which folder, and what the system said
@@ -505,9 +532,14 @@ def _serve(args: argparse.Namespace) -> int:
                 file=sys.stderr,
             )
         return EXIT_DATA
-    where = data_dir if database is None else without_password(database)
+    mode = (
+        "accounts: sign-in required"
+        if app.state.accounts.configured()
+        else "workstation mode: no accounts, no sign-in, this computer only"
+    )
+    stored = data_dir if database is None else without_password(database)
     print(
-        f"Stationfit: projects are stored in {where}; open http://{host}:{port}/",
+        f"Stationfit: projects are stored in {stored} ({mode}); open http://{host}:{port}/",
         file=sys.stderr,
     )
     uvicorn.run(app, host=host, port=port, log_level="warning", **uvicorn_options())
@@ -609,3 +641,149 @@ def _worker(args: argparse.Namespace) -> int:
 def _failures(storage: tuple[type[Exception], ...]) -> tuple[type[Exception], ...]:
     """What a command reports in one line when its store cannot be used."""
     return (OSError, RuntimeError, *storage)
+
+
+# --------------------------------------------------------------------------------------
+# users: the office's accounts, in the same data folder ``serve --data DIR`` uses
+
+USERS_HELP = """Manage the accounts of an office service (stored in the data folder's database).
+
+With no account, `serve` on 127.0.0.1 is a single-user workstation without sign-in, and
+refuses to serve others. Roles: viewer (reads), technician (uploads, proposes decisions,
+re-runs), surveyor (the surveyor in responsible charge: also decides and approves runs),
+administrator (manages accounts). A password is read from standard input (asked twice
+on a terminal), or made with --generate and printed once. Accounts are never deleted
+(the review trail names them): disable them."""
+
+
+def _users_command(commands: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    users = commands.add_parser(
+        "users",
+        help="manage the accounts of an office service",
+        description=USERS_HELP,
+        epilog=EXIT_STATUSES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    actions = users.add_subparsers(dest="action", required=True, parser_class=_Parser)
+    data_help = "the data folder, as given to serve --data (default: $STATIONFIT_DATA)"
+    database_help = (
+        "the PostgreSQL database, as given to serve --database (default: $STATIONFIT_DATABASE)"
+    )
+
+    def action(name: str, help_text: str) -> argparse.ArgumentParser:
+        parser: argparse.ArgumentParser = actions.add_parser(name, help=help_text)
+        parser.add_argument("--data", type=Path, default=None, help=data_help)
+        parser.add_argument(
+            "--database", default=None, metavar="postgresql://…", help=database_help
+        )
+        return parser
+
+    add = action("add", "add an account")
+    add.add_argument("name")
+    add.add_argument("--role", required=True, choices=_roles())
+    add.add_argument("--generate", action="store_true", help="make a password and print it once")
+    action("list", "list the accounts")
+    set_role = action("set-role", "change an account's role (its sessions end)")
+    set_role.add_argument("name")
+    set_role.add_argument("role", choices=_roles())
+    action("disable", "stop an account signing in (its sessions end)").add_argument("name")
+    action("enable", "let a disabled account sign in again").add_argument("name")
+    password = action("password", "set a new password (its sessions end)")
+    password.add_argument("name")
+    password.add_argument(
+        "--generate", action="store_true", help="make a password and print it once"
+    )
+
+
+def _roles() -> tuple[str, ...]:
+    from server.store.accounts import ROLES
+
+    return ROLES
+
+
+def _accounts(data_dir: Path, database: str | None = None):  # type: ignore[no-untyped-def]
+    """The accounts of the data folder's store, or of the PostgreSQL database (created or
+    upgraded like ``serve`` does)."""
+    from server.store.accounts import Accounts
+    from server.store.sqlite import Store
+    from server.web.app import DATABASE_NAME
+
+    return Accounts(Store(database) if database else Store(data_dir / DATABASE_NAME))
+
+
+def _read_password(generate: bool) -> tuple[str, bool]:
+    """(password, generated): made, asked twice on a terminal, or the first line of stdin."""
+    from server.store.accounts import generated_password
+
+    if generate:
+        return generated_password(), True
+    if sys.stdin.isatty():
+        import getpass
+
+        first = getpass.getpass("Password: ")
+        if getpass.getpass("Again: ") != first:
+            raise _UsersError("The two passwords differ; nothing was changed.")
+        return first, False
+    line = sys.stdin.readline().rstrip("\r\n")
+    if not line:
+        raise _UsersError(
+            "No password on standard input: pipe one in, or give --generate to have one made."
+        )
+    return line, False
+
+
+class _UsersError(Exception):
+    """A users command that cannot be followed: the message, exit 64."""
+
+
+def _users(args: argparse.Namespace) -> int:
+    from server.settings import default_data_dir
+    from server.store.accounts import ROLE_TITLES, AccountError
+    from server.store.backends import storage_errors, without_password
+
+    data_dir = args.data if args.data is not None else default_data_dir()
+    database = _database_option(args.database)
+    try:
+        if database is None:
+            data_dir.mkdir(parents=True, exist_ok=True)
+        accounts = _accounts(data_dir, database)
+    except _failures(storage_errors()) as exc:
+        reason = " ".join((getattr(exc, "strerror", None) or str(exc)).split())
+        where = (
+            f"the data folder {data_dir}"
+            if database is None
+            else f"the database {without_password(database)}"
+        )
+        print(f"stationfit users: cannot use {where}: {reason}", file=sys.stderr)
+        return EXIT_DATA
+    try:
+        if args.action == "list":
+            for user in accounts.all():
+                state = "active" if user.active else f"disabled {user.disabled}"
+                last = user.last_sign_in or "never signed in"
+                print(f"{user.name}\t{ROLE_TITLES[user.role]}\t{state}\tlast sign-in: {last}")
+            return EXIT_OK
+        if args.action == "add":
+            password, generated = _read_password(args.generate)
+            user = accounts.add(args.name, args.role, password)
+            place = data_dir if database is None else without_password(database)
+            print(f"added {user.name} ({ROLE_TITLES[user.role]}) in {place}", file=sys.stderr)
+        elif args.action == "password":
+            password, generated = _read_password(args.generate)
+            user = accounts.set_password(args.name, password)
+            print(f"new password for {user.name}; their sessions have ended", file=sys.stderr)
+        else:
+            generated, password = False, ""
+            if args.action == "set-role":
+                user = accounts.set_role(args.name, args.role)
+                what = f"is now {ROLE_TITLES[user.role]}"
+            else:
+                user = accounts.set_disabled(args.name, args.action == "disable")
+                what = "is disabled" if args.action == "disable" else "may sign in again"
+            print(f"{user.name} {what}; their sessions have ended", file=sys.stderr)
+    except (AccountError, _UsersError) as exc:
+        print(f"stationfit users: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    if generated:
+        print(f"password for {user.name} (shown once, pass it on safely): {password}")
+    return EXIT_OK

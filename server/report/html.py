@@ -12,7 +12,7 @@ import jinja2
 from markupsafe import Markup
 
 from server import resources
-from server.report.origin import ImportedFrom
+from server.report.origin import ApprovalNote, ImportedFrom
 from server.report.plot import network_plot_data
 from server.report.tables import context
 from server.results.result import AdjustmentResult
@@ -92,10 +92,12 @@ def report_html(
     generated: datetime | None = None,
     presets: Sequence[Preset] = (),
     imported_from: ImportedFrom | None = None,
+    approval: ApprovalNote | None = None,
 ) -> str:
     """A self-contained printable HTML report (inline CSS and SVG, no scripts, nothing external).
 
-    ``imported_from`` names the survey XML or CSV the field book was imported from.
+    ``imported_from`` names the survey XML or CSV the field book was imported from;
+    ``approval`` states who approved the run for issue, when, and of which field book.
     """
 
     data = context(result, presets)
@@ -108,4 +110,5 @@ def report_html(
     data["report_warnings"] = report_warnings(result)
     data["imported_from"] = imported_from
     data["imported_name"] = source_name(imported_from.filename) if imported_from else ""
+    data["approval"] = approval
     return _env().get_template("report.html").render(data)

@@ -43,7 +43,7 @@ from reportlab.platypus import (
 from server import __version__
 from server.report import html as html_report
 from server.report import tables as report
-from server.report.origin import ImportedFrom
+from server.report.origin import ApprovalNote, ImportedFrom
 from server.report.pdf_drawings import histogram_drawing, network_drawing, network_legend
 from server.report.pdf_geodetic import baseline_tests_block, geodetic_points_block, model_block
 from server.report.pdf_kit import (
@@ -800,6 +800,7 @@ def report_pdf(
     page_size: str = "letter",
     font_dir: Path | None = None,
     imported_from: ImportedFrom | None = None,
+    approval: ApprovalNote | None = None,
 ) -> bytes:
     """The adjustment report as PDF bytes.
 
@@ -817,6 +818,8 @@ def report_pdf(
         Where to look for the DejaVu fonts (default ``FONT_DIR``); Helvetica without them.
     imported_from
         The survey XML or CSV the field book was imported from, named with its SHA-256.
+    approval
+        Who approved the run for issue, when, and of which field book (under the title).
     """
     if page_size not in PAGE_SIZES:
         raise ValueError(f"page_size must be one of {', '.join(PAGE_SIZES)}, not {page_size!r}")
@@ -827,6 +830,9 @@ def report_pdf(
     buffer, doc, width, when = page.buffer, page.doc, page.width, page.generated
     story: list[Flowable] = []
     story += _title_block(result, data, styles, width, when, imported_from)
+    if approval is not None:
+        story += [styles.markup(f"<b>{styles.text(approval.sentence)}</b>", styles.small)]
+        story += [Spacer(1, 8)]
     story += _verdict_block(data, styles, width)
     story += _standards_block(data, styles, width)
     story += _statistics_block(result, data, styles, width)

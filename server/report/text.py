@@ -12,7 +12,7 @@ from server.report.geodetic_tables import (
     geodetic_point_rows,
     model_rows,
 )
-from server.report.origin import ImportedFrom
+from server.report.origin import ApprovalNote, ImportedFrom
 from server.report.tables import (
     ARCSEC,
     columns,
@@ -52,8 +52,13 @@ def _table(header: Iterable[str], body: list[list[str]], right: set[int]) -> lis
     return [line(head), line(["-" * w for w in widths])] + [line(r) for r in body]
 
 
-def report_text(result: AdjustmentResult, imported_from: ImportedFrom | None = None) -> str:
-    """A compact plain-text summary for the terminal (naming the imported file, if any)."""
+def report_text(
+    result: AdjustmentResult,
+    imported_from: ImportedFrom | None = None,
+    approval: ApprovalNote | None = None,
+) -> str:
+    """A compact plain-text summary for the terminal (naming the imported file, if any, and
+    the approval of the run, if it was approved for issue)."""
     v = verdict(result)
     s = result.summary
     unit = length_label(result.length_unit)
@@ -65,6 +70,8 @@ def report_text(result: AdjustmentResult, imported_from: ImportedFrom | None = N
             f"Imported from {imported_from.kind} {imported_from.filename}, "
             f"SHA-256 {imported_from.sha256}"
         )
+    if approval is not None:
+        out.append(approval.sentence)
     out.append("")
     head, _, rest = v.headline.partition(": ")
     out.append(f"{head.upper()}: {rest}")

@@ -38,7 +38,7 @@ from server.results.result import AdjustmentResult
 from server.review.standards import PRESETS, Preset, with_presets
 from server.settings import WorkLimits
 from server.store.designs import is_design
-from server.store.sqlite import NO_EDITS, PendingEdit, Project, Run, Store
+from server.store.sqlite import NO_EDITS, Actor, Approval, PendingEdit, Project, Run, Store
 
 logger = logging.getLogger("stationfit.web")
 
@@ -86,7 +86,11 @@ def check_room(store: Store, max_projects: int) -> None:
 
 
 def store_upload(
-    store: Store, upload: Upload, max_projects: int = 0, limits: WorkLimits = UNLIMITED
+    store: Store,
+    upload: Upload,
+    max_projects: int = 0,
+    limits: WorkLimits = UNLIMITED,
+    owner: Actor | None = None,
 ) -> tuple[str, Fieldbook | None, int | None, SurveyError | None]:
     """Store the upload and open its run; a field book that does not read gets a failed run.
 
@@ -98,14 +102,16 @@ def store_upload(
     try:
         book = parse_fieldbook(upload.data, source=source)
     except SurveyError as exc:
-        project_id = store.create_project(upload.name, upload.filename, upload.data)
-        store.add_run(project_id, error=exc)
+        project_id = store.create_project(upload.name, upload.filename, upload.data, owner=owner)
+        store.add_run(project_id, error=exc, by=owner)
         return project_id, None, None, exc
     check_observation_limit(book, limits)
-    project_id = store.create_project(upload.name or book.title, upload.filename, upload.data)
+    project_id = store.create_project(
+        upload.name or book.title, upload.filename, upload.data, owner=owner
+    )
     if is_design(book):  # planned observations: designed on its own page, no run
         return project_id, book, None, None
-    return project_id, book, store.start_run(project_id, NO_EDITS), None
+    return project_id, book, store.start_run(project_id, NO_EDITS, by=owner), None
 
 
 def adjust_run(
@@ -179,6 +185,7 @@ def submit(
     max_projects: int = 0,
     limits: WorkLimits = UNLIMITED,
     queue: Slots | None = None,
+    owner: Actor | None = None,
 ) -> tuple[str, AdjustmentResult | None, SurveyError | None]:
     """Store the upload, then adjust it as a run marked ``running`` until it ends.
 
@@ -187,7 +194,7 @@ def submit(
     finished, never shown as a result); the runs before it are untouched.
     With a ``queue``, the adjustment waits for a slot (the run is stored meanwhile).
     """
-    project_id, book, run_id, error = store_upload(store, upload, max_projects, limits)
+    project_id, book, run_id, error = store_upload(store, upload, max_projects, limits, owner)
     if book is None or run_id is None:
         return project_id, None, error
     with queue.slot(bounded=False) if queue is not None else contextlib.nullcontext():
@@ -357,10 +364,10 @@ def _failure_words(run: Run) -> str:
     return f"{head}: {what[kind]}" if kind in what else head
 
 
-def project_list_items(store: Store) -> list[dict[str, Any]]:
-    """Every stored project with its latest verdict, as the list page shows it."""
+def project_list_items(store: Store, viewer: Actor | None = None) -> list[dict[str, Any]]:
+    """Every stored project (``viewer`` may see) with its latest verdict, as the list shows it."""
     items = []
-    for p in store.list_projects():
+    for p in store.list_projects(viewer):
         summary = (p.latest.summary or {}) if p.latest else {}
         state, words = list_verdict(p.latest)
         items.append(
@@ -374,6 +381,7 @@ def project_list_items(store: Store) -> list[dict[str, Any]]:
                 "state": state,
                 "verdict": words,
                 "failed": p.latest is not None and not p.latest.finished,
+                "owner": p.owner,
             }
         )
     return items
@@ -393,10 +401,10 @@ def project_json(
     }
 
 
-def projects_json(store: Store) -> list[dict[str, Any]]:
-    """Every stored project with the summary of its latest run."""
+def projects_json(store: Store, viewer: Actor | None = None) -> list[dict[str, Any]]:
+    """Every stored project (``viewer`` may see) with the summary of its latest run."""
     projects = []
-    for p in store.list_projects():
+    for p in store.list_projects(viewer):
         item = project_json(p.id, p.name, p.filename, p.created, p.sha256, p.latest)
         item["summary"] = p.latest.summary if p.latest else None
         projects.append(item)
@@ -433,6 +441,7 @@ def project_detail_json(store: Store, project: Project) -> dict[str, Any]:
         if project.source is None
         else {"filename": project.source.filename, "sha256": project.source.sha256}
     )
+    approvals = store.approvals(project.id)
     body["runs"] = [
         {
             "id": r.id,
@@ -441,10 +450,25 @@ def project_detail_json(store: Store, project: Project) -> dict[str, Any]:
             "status": r.status,
             "edits": r.edits,
             "summary": r.summary,
+            # who started it (null: before accounts; "" on the workstation) and its approval
+            "started_by": r.started_by,
+            "approval": approval_json(approvals.get(r.id)),
         }
         for r in store.runs(project.id)
     ]
     return body
+
+
+def approval_json(approval: Approval | None) -> dict[str, Any] | None:
+    """A run's approval for issue in the JSON API (null when it is not approved)."""
+    if approval is None:
+        return None
+    return {
+        "approved_by": approval.approved_by,
+        "approved": approval.approved,
+        "run_number": approval.run_number,
+        "fieldbook_sha256": approval.fieldbook_sha256,
+    }
 
 
 def run_json(run: Run) -> dict[str, Any]:
@@ -566,7 +590,7 @@ def prepare_decision(
     return edit, message
 
 
-def rerun(store: Store, state: ReviewState) -> tuple[int | None, str]:
+def rerun(store: Store, state: ReviewState, by: Actor | None = None) -> tuple[int | None, str]:
     """Adjust with every decision in force and queued; (new run id or None, problem).
 
     Raises ``DecisionsChanged`` when the queue changed since ``state`` was read.
@@ -581,7 +605,7 @@ def rerun(store: Store, state: ReviewState) -> tuple[int | None, str]:
         "edits": [review.edit_to_json(e) for e in edits],
         "based_on": state.base.id if state.base else None,
     }
-    run_id = store.start_run(project.id, settings)
+    run_id = store.start_run(project.id, settings, by=by)
     try:
         result = adjust_fieldbook(text, source=project.filename or "edited.fieldbook")
     except SurveyError as exc:

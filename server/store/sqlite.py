@@ -27,6 +27,7 @@ Decisions queued for the next re-run are kept in ``pending_edits``.
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import hashlib
 import json
@@ -86,6 +87,56 @@ def _now() -> str:
 
 
 @dataclass(frozen=True, slots=True)
+class Actor:
+    """Who acts on the store: an account (``user_id``, name, role), or the workstation's one
+    user (no accounts: ``user_id`` None).  Written beside runs, decisions and approvals."""
+
+    user_id: int | None
+    name: str
+    role: str
+
+    @property
+    def label(self) -> str:
+        """The name the review trail shows."""
+        return self.name or "the workstation user"
+
+
+#: The single user of a service without accounts.
+WORKSTATION = Actor(None, "", "workstation")
+
+#: Projects an account may see: its own, those shared with it or with the whole office, and
+#: those stored before accounts (no owner).  Parameters: the account's id, twice.
+_VISIBLE = (
+    "(p.owner_id IS NULL OR p.owner_id = ? OR p.shared_with_office = 1 OR EXISTS "
+    "(SELECT 1 FROM project_shares s WHERE s.project_id = p.id AND s.user_id = ?))"
+)
+
+
+def _visibility(viewer: Actor | None) -> tuple[str, tuple[Any, ...]]:
+    """(`` AND condition``, parameters) limiting a query over ``projects p`` to ``viewer``."""
+    if viewer is None or viewer.user_id is None:
+        return "", ()
+    return " AND " + _VISIBLE, (viewer.user_id, viewer.user_id)
+
+
+def _trail(
+    db: Transaction,
+    project_id: str,
+    actor: Actor | None,
+    event: str,
+    detail: str = "",
+    run_id: int | None = None,
+) -> None:
+    """One line of a project's review trail, in the caller's transaction."""
+    who = actor or WORKSTATION
+    db.execute(
+        "INSERT INTO trail (project_id, created, actor, role, event, run_id, detail) "
+        "VALUES (?, ?, ?, ?, ?, ?, ?)",
+        (project_id, _now(), who.name, who.role, event, run_id, detail[:500]),
+    )
+
+
+@dataclass(frozen=True, slots=True)
 class Run:
     """One adjustment of a project: the contract JSON when it finished, the error when it failed.
 
@@ -105,6 +156,8 @@ class Run:
     #: The run's place among its project's runs (1, 2, …): what "Run #" shows.  ``id`` is
     #: unique across projects and stays the run's address in URLs and the API.
     number: int = 0
+    #: The account that started it ('' on the workstation, None before schema 6).
+    started_by: str | None = None
 
     @property
     def finished(self) -> bool:
@@ -148,6 +201,10 @@ class Project:
     fieldbook: bytes
     form_token: str = ""
     source: SourceFile | None = None
+    #: The owning account (None: stored before accounts, shared with the whole office).
+    owner_id: int | None = None
+    owner: str = ""
+    shared_with_office: bool = False
 
     @property
     def text(self) -> str:
@@ -165,6 +222,7 @@ class ProjectListing:
     created: str
     sha256: str
     latest: Run | None
+    owner: str = ""
 
 
 @dataclass(frozen=True, slots=True)
@@ -175,6 +233,8 @@ class PendingEdit:
     project_id: str
     created: str
     edit: dict[str, Any]
+    #: The account that queued it ('' on the workstation, None before schema 6).
+    proposed_by: str | None = None
 
 
 def error_record(error: BaseException | str) -> dict[str, Any]:
@@ -215,6 +275,34 @@ class RunProgress:
     started: str | None
     ahead: int | None
     adjusting: int
+
+
+@dataclass(frozen=True, slots=True)
+class Approval:
+    """A run approved for issue: by whom, when, and the SHA-256 of the field book it adjusted."""
+
+    run_id: int
+    project_id: str
+    run_number: int
+    approved_by: str
+    approved: str
+    fieldbook_sha256: str
+
+
+@dataclass(frozen=True, slots=True)
+class TrailEntry:
+    """One action on a project: when, who (name and role), what, and on which run."""
+
+    created: str
+    actor: str
+    role: str
+    event: str
+    run_id: int | None
+    detail: str
+
+
+class NotApprovable(ValueError):
+    """The run cannot be approved (not finished, not the latest, already approved…)."""
 
 
 class RunGone(LookupError):
@@ -293,15 +381,18 @@ class Store:
         filename: str,
         fieldbook: str | bytes,
         source: tuple[str, bytes] | None = None,
+        *,
+        owner: Actor | None = None,
     ) -> str:
         """Store a field book unchanged (and the ``(filename, bytes)`` it was imported from,
-        in the same transaction); returns the new project's id."""
+        in the same transaction); returns the new project's id.  ``owner`` (an account)
+        owns it; without one it is the workstation's (or the whole office's)."""
         raw = fieldbook.encode("utf-8") if isinstance(fieldbook, str) else bytes(fieldbook)
         project_id = uuid.uuid4().hex
         with self._write() as db:
             db.execute(
-                "INSERT INTO projects (id, name, filename, created, fieldbook, sha256, form_token) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?)",
+                "INSERT INTO projects (id, name, filename, created, fieldbook, sha256, form_token, "
+                "owner_id) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
                 (
                     project_id,
                     name,
@@ -310,8 +401,10 @@ class Store:
                     raw,
                     hashlib.sha256(raw).hexdigest(),
                     secrets.token_hex(16),
+                    owner.user_id if owner is not None else None,
                 ),
             )
+            _trail(db, project_id, owner, "created", filename or name)
             if source is not None:
                 content = bytes(source[1])
                 db.execute(
@@ -321,17 +414,26 @@ class Store:
                 )
         return project_id
 
-    def get_project(self, project_id: str, *, deleted: bool = False) -> Project | None:
-        """The project with its field book, or None (``deleted``: a deleted one instead)."""
+    def get_project(
+        self, project_id: str, *, deleted: bool = False, visible_to: Actor | None = None
+    ) -> Project | None:
+        """The project with its field book, or None (``deleted``: a deleted one instead).
+
+        With ``visible_to`` (an account), None also when that account may not see it.
+        """
         if not is_valid_id(project_id):
             return None
+        condition, parameters = _visibility(visible_to)
         with self._read() as db:
-            row = db.execute(
-                "SELECT p.id, p.name, p.filename, p.created, p.sha256, p.fieldbook, p.form_token, "
-                "s.filename, s.content, s.sha256 "
+            row = db.execute(  # the condition is a constant of this module
+                "SELECT p.id, p.name, p.filename, p.created, p.sha256, p.fieldbook, "  # noqa: S608
+                "p.form_token, s.filename, s.content, s.sha256, p.owner_id, "
+                "(SELECT name FROM users WHERE id = p.owner_id), p.shared_with_office "
                 "FROM projects p LEFT JOIN source_files s ON s.project_id = p.id "
-                "WHERE p.id = ? AND p.deleted IS " + ("NOT NULL" if deleted else "NULL"),
-                (project_id,),
+                "WHERE p.id = ? AND p.deleted IS "
+                + ("NOT NULL" if deleted else "NULL")
+                + condition,
+                (project_id, *parameters),
             ).fetchone()
         if row is None:
             return None
@@ -345,19 +447,26 @@ class Store:
             fieldbook=bytes(row[5]),
             form_token=row[6],
             source=source,
+            owner_id=row[10],
+            owner=row[11] or "",
+            shared_with_office=bool(row[12]),
         )
 
-    def list_projects(self) -> list[ProjectListing]:
-        """All projects, newest first, with their latest run's summary (no books, no results)."""
+    def list_projects(self, visible_to: Actor | None = None) -> list[ProjectListing]:
+        """All projects (those ``visible_to`` may see), newest first, with their latest run's
+        summary (no books, no results)."""
+        condition, parameters = _visibility(visible_to)
         with self._read() as db:
-            rows = db.execute(  # _COMPLETED below is a constant of this module
+            rows = db.execute(  # _COMPLETED and the condition are constants of this module
                 "SELECT p.id, p.name, p.filename, p.created, p.sha256, "  # noqa: S608
                 "r.id, r.created, r.status, r.summary, r.error, "
-                "(SELECT COUNT(*) FROM runs n WHERE n.project_id = p.id AND n.id <= r.id) "
+                "(SELECT COUNT(*) FROM runs n WHERE n.project_id = p.id AND n.id <= r.id), "
+                "(SELECT name FROM users WHERE id = p.owner_id) "
                 "FROM projects p LEFT JOIN runs r ON r.id = "
                 "(SELECT MAX(id) FROM runs WHERE project_id = p.id AND " + _COMPLETED + ") "
-                "WHERE p.deleted IS NULL "
-                f"ORDER BY p.created DESC, p.{self.dialect.row_order} DESC"
+                "WHERE p.deleted IS NULL" + condition + " "
+                f"ORDER BY p.created DESC, p.{self.dialect.row_order} DESC",
+                parameters,
             ).fetchall()
         listings = []
         for row in rows:
@@ -381,11 +490,12 @@ class Store:
                     created=row[3],
                     sha256=row[4],
                     latest=latest,
+                    owner=row[11] or "",
                 )
             )
         return listings
 
-    def delete_project(self, project_id: str) -> bool:
+    def delete_project(self, project_id: str, *, actor: Actor | None = None) -> bool:
         """Mark a project deleted (kept for ``restore_project`` until purged); True if live."""
         if not is_valid_id(project_id):
             return False
@@ -394,16 +504,21 @@ class Store:
                 "UPDATE projects SET deleted = ? WHERE id = ? AND deleted IS NULL",
                 (_now(), project_id),
             )
+            if cursor.rowcount > 0:
+                _trail(db, project_id, actor, "deleted")
         return int(cursor.rowcount) > 0
 
-    def deleted_projects(self) -> list[DeletedProject]:
-        """Projects deleted but not yet purged, most recently deleted first."""
+    def deleted_projects(self, visible_to: Actor | None = None) -> list[DeletedProject]:
+        """Projects deleted but not yet purged (those ``visible_to`` may see), most recently
+        deleted first."""
+        condition, parameters = _visibility(visible_to)
         with self._read() as db:
-            rows = db.execute(  # the dialect's column name is a constant
-                "SELECT id, name, filename, deleted, "  # noqa: S608
-                "(SELECT COUNT(*) FROM runs WHERE project_id = projects.id), form_token "
-                "FROM projects WHERE deleted IS NOT NULL "
-                f"ORDER BY deleted DESC, {self.dialect.row_order} DESC"
+            rows = db.execute(  # the condition is a constant of this module
+                "SELECT p.id, p.name, p.filename, p.deleted, "  # noqa: S608
+                "(SELECT COUNT(*) FROM runs WHERE project_id = p.id), p.form_token "
+                "FROM projects p WHERE p.deleted IS NOT NULL" + condition + " "
+                f"ORDER BY p.deleted DESC, p.{self.dialect.row_order} DESC",
+                parameters,
             ).fetchall()
         return [
             DeletedProject(
@@ -412,7 +527,7 @@ class Store:
             for r in rows
         ]
 
-    def restore_project(self, project_id: str) -> bool:
+    def restore_project(self, project_id: str, *, actor: Actor | None = None) -> bool:
         """Bring a deleted project back with its runs; True if it was deleted."""
         if not is_valid_id(project_id):
             return False
@@ -421,6 +536,8 @@ class Store:
                 "UPDATE projects SET deleted = NULL WHERE id = ? AND deleted IS NOT NULL",
                 (project_id,),
             )
+            if cursor.rowcount > 0:
+                _trail(db, project_id, actor, "restored")
         return int(cursor.rowcount) > 0
 
     def purge_deleted(self, keep_days: int, *, now: datetime | None = None) -> list[DeletedProject]:
@@ -451,6 +568,7 @@ class Store:
         error: BaseException | str | None = None,
         *,
         settings: dict[str, Any] | None = None,
+        by: Actor | None = None,
     ) -> int:
         """Record an adjustment: finished with ``result``, or failed with ``error``."""
         outcome = _outcome(result, error)
@@ -458,20 +576,30 @@ class Store:
             db.lock_project(project_id)  # runs of one project are numbered in commit order
             (run_id,) = db.execute(
                 "INSERT INTO runs (project_id, created, status, result, detail, summary, error, "
-                "settings) VALUES (?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
-                (project_id, _now(), *outcome, json.dumps(settings or NO_EDITS)),
+                "settings, started_by) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
+                (
+                    project_id,
+                    _now(),
+                    *outcome,
+                    json.dumps(settings or NO_EDITS),
+                    (by or WORKSTATION).name,
+                ),
             ).fetchone()
+            _trail_run(db, project_id, by, run_id)
         return int(run_id)
 
-    def start_run(self, project_id: str, settings: dict[str, Any]) -> int:
+    def start_run(
+        self, project_id: str, settings: dict[str, Any], *, by: Actor | None = None
+    ) -> int:
         """Record a run as ``running`` before adjusting; ``finish_run`` completes it."""
         with self._write() as db:
-            db.lock_project(project_id)
+            db.lock_project(project_id)  # runs of one project are numbered in commit order
             (run_id,) = db.execute(
-                "INSERT INTO runs (project_id, created, status, settings) "
-                "VALUES (?, ?, 'running', ?) RETURNING id",
-                (project_id, _now(), json.dumps(settings)),
+                "INSERT INTO runs (project_id, created, status, settings, started_by) "
+                "VALUES (?, ?, 'running', ?, ?) RETURNING id",
+                (project_id, _now(), json.dumps(settings), (by or WORKSTATION).name),
             ).fetchone()
+            _trail_run(db, project_id, by, run_id)
         return int(run_id)
 
     def finish_run(
@@ -656,8 +784,8 @@ class Store:
             return []
         with self._read() as db:
             rows = db.execute(
-                "SELECT id, project_id, created, status, result, error, summary, settings "
-                "FROM runs WHERE project_id = ? ORDER BY id",
+                "SELECT id, project_id, created, status, result, error, summary, settings, "
+                "started_by FROM runs WHERE project_id = ? ORDER BY id",
                 (project_id,),
             ).fetchall()
         return [
@@ -671,6 +799,7 @@ class Store:
                 summary=_loads(r[6]),
                 settings=_loads(r[7]),
                 number=number,
+                started_by=r[8],
             )
             for number, r in enumerate(rows, start=1)
         ]
@@ -678,7 +807,12 @@ class Store:
     # -- decisions waiting for a re-run ---------------------------------------------
 
     def add_pending_edit(
-        self, project_id: str, edit: dict[str, Any], *, based_on: int | None = None
+        self,
+        project_id: str,
+        edit: dict[str, Any],
+        *,
+        based_on: int | None = None,
+        by: Actor | None = None,
     ) -> int:
         """Queue a decision (a JSON object) for the project's next re-run.
 
@@ -709,10 +843,11 @@ class Store:
                         f"{where}he same decision is already queued for the next re-run."
                     )
             (edit_id,) = db.execute(
-                "INSERT INTO pending_edits (project_id, created, edit) VALUES (?, ?, ?) "
-                "RETURNING id",
-                (project_id, _now(), json.dumps(edit)),
+                "INSERT INTO pending_edits (project_id, created, edit, proposed_by) "
+                "VALUES (?, ?, ?, ?) RETURNING id",
+                (project_id, _now(), json.dumps(edit), (by or WORKSTATION).name),
             ).fetchone()
+            _trail(db, project_id, by, "proposed", _decision_words(edit), based_on)
         return int(edit_id)
 
     def pending_edits(self, project_id: str) -> list[PendingEdit]:
@@ -721,24 +856,166 @@ class Store:
             return []
         with self._read() as db:
             rows = db.execute(
-                "SELECT id, project_id, created, edit FROM pending_edits "
+                "SELECT id, project_id, created, edit, proposed_by FROM pending_edits "
                 "WHERE project_id = ? ORDER BY id",
                 (project_id,),
             ).fetchall()
         return [
-            PendingEdit(id=r[0], project_id=r[1], created=r[2], edit=json.loads(r[3])) for r in rows
+            PendingEdit(
+                id=r[0], project_id=r[1], created=r[2], edit=json.loads(r[3]), proposed_by=r[4]
+            )
+            for r in rows
         ]
 
-    def remove_pending_edit(self, project_id: str, edit_id: int) -> bool:
-        """Withdraw one queued decision; True if it was there."""
+    def remove_pending_edit(
+        self, project_id: str, edit_id: int, *, by: Actor | None = None, only_by: str | None = None
+    ) -> bool:
+        """Withdraw one queued decision; True if it was there (and, with ``only_by``, queued
+        by that account: a technician withdraws only their own proposals)."""
         if not is_valid_id(project_id):
             return False
         with self._write() as db:
             db.lock_project(project_id)  # not between a re-run's check of the queue and its commit
-            cursor = db.execute(
-                "DELETE FROM pending_edits WHERE id = ? AND project_id = ?", (edit_id, project_id)
+            row = db.execute(
+                "SELECT edit, proposed_by FROM pending_edits WHERE id = ? AND project_id = ?",
+                (edit_id, project_id),
+            ).fetchone()
+            if row is None or (only_by is not None and (row[1] or "").lower() != only_by.lower()):
+                return False
+            db.execute("DELETE FROM pending_edits WHERE id = ?", (edit_id,))
+            _trail(db, project_id, by, "withdrawn", _decision_words(json.loads(row[0])))
+        return True
+
+    # -- approval, sharing and the review trail ---------------------------------------
+
+    def approve_run(self, project_id: str, run_id: int, by: Actor) -> Approval:
+        """Approve a finished run for issue; it is frozen from then on (schema 6's trigger).
+
+        Only the project's latest finished run, with no decision queued after it, may be
+        approved, and only once: ``NotApprovable`` says why not.
+        """
+        with self._write() as db:
+            db.lock_project(project_id)  # checked against the queue and the runs as they stand
+            row = db.execute(
+                f"SELECT {_RUN_COLUMNS} FROM runs WHERE project_id = ? AND id = ?",  # noqa: S608
+                (project_id, run_id),
+            ).fetchone()
+            if row is None or row[3] != "finished":
+                raise NotApprovable("Only a run that finished with a result can be approved.")
+            (latest,) = db.execute(
+                "SELECT MAX(id) FROM runs WHERE project_id = ? AND status = 'finished'",
+                (project_id,),
+            ).fetchone()
+            if latest != run_id:
+                raise NotApprovable(
+                    "A later run has finished; approve the latest run, or review it first."
+                )
+            if db.execute("SELECT 1 FROM approvals WHERE run_id = ?", (run_id,)).fetchone():
+                raise NotApprovable(f"Run #{row[9]} is already approved; it stays as it is.")
+            if db.execute(
+                "SELECT 1 FROM pending_edits WHERE project_id = ?", (project_id,)
+            ).fetchone():
+                raise NotApprovable(
+                    "Decisions are queued for a next run: re-run with them or withdraw them "
+                    "before approving, so that what is approved is what was reviewed."
+                )
+            detail = _loads(row[6]) or {}  # the full result: the hash of the text it adjusted
+            sha = str(detail.get("text_sha256") or "")
+            if not sha:
+                (sha,) = db.execute(
+                    "SELECT sha256 FROM projects WHERE id = ?", (project_id,)
+                ).fetchone()
+            approval = Approval(run_id, project_id, row[9], by.name, _now(), sha)
+            db.execute(
+                "INSERT INTO approvals (run_id, project_id, run_number, approved_by, user_id, "
+                "approved, fieldbook_sha256) VALUES (?, ?, ?, ?, ?, ?, ?)",
+                (
+                    run_id,
+                    project_id,
+                    approval.run_number,
+                    by.name,
+                    by.user_id,
+                    approval.approved,
+                    sha,
+                ),
             )
-        return int(cursor.rowcount) > 0
+            _trail(db, project_id, by, "approved", f"run #{approval.run_number}", run_id)
+        return approval
+
+    def approvals(self, project_id: str) -> dict[int, Approval]:
+        """The project's approved runs by run id."""
+        if not is_valid_id(project_id):
+            return {}
+        with self._read() as db:
+            rows = db.execute(
+                "SELECT run_id, project_id, run_number, approved_by, approved, fieldbook_sha256 "
+                "FROM approvals WHERE project_id = ? ORDER BY run_id",
+                (project_id,),
+            ).fetchall()
+        return {r[0]: Approval(*r) for r in rows}
+
+    def trail(self, project_id: str) -> list[TrailEntry]:
+        """Everything done to a project, oldest first."""
+        if not is_valid_id(project_id):
+            return []
+        with self._read() as db:
+            rows = db.execute(
+                "SELECT created, actor, role, event, run_id, detail FROM trail "
+                "WHERE project_id = ? ORDER BY id",
+                (project_id,),
+            ).fetchall()
+        return [TrailEntry(*r) for r in rows]
+
+    def shares(self, project_id: str) -> list[str]:
+        """Names of the accounts a project is shared with, by name."""
+        with self._read() as db:
+            rows = db.execute(
+                "SELECT u.name FROM project_shares s JOIN users u ON u.id = s.user_id "
+                "WHERE s.project_id = ? ORDER BY lower(u.name)",
+                (project_id,),
+            ).fetchall()
+        return [r[0] for r in rows]
+
+    def set_sharing(
+        self, project_id: str, office: bool, names: list[str], *, by: Actor | None = None
+    ) -> list[str]:
+        """Share a project with the whole office or not, and with exactly the accounts
+        ``names``; returns the names that are no account (nothing changed then)."""
+        with self._write() as db:
+            ids, unknown = [], []
+            for name in names:
+                row = db.execute(  # names are one whatever their letter case
+                    "SELECT id FROM users WHERE lower(name) = lower(?)", (name,)
+                ).fetchone()
+                if row is None:
+                    unknown.append(name)
+                else:
+                    ids.append(row[0])
+            if unknown:
+                return unknown
+            db.execute(
+                "UPDATE projects SET shared_with_office = ? WHERE id = ?", (int(office), project_id)
+            )
+            db.execute("DELETE FROM project_shares WHERE project_id = ?", (project_id,))
+            for user_id in dict.fromkeys(ids):
+                db.execute(
+                    "INSERT INTO project_shares (project_id, user_id) VALUES (?, ?)",
+                    (project_id, user_id),
+                )
+            who = ", ".join(names) or "no one by name"
+            detail = f"the whole office and {who}" if office else who
+            _trail(db, project_id, by, "shared", detail)
+        return []
+
+    # -- for the accounts module: the same one-transaction connections ---------------
+
+    def writing(self) -> contextlib.AbstractContextManager[Transaction]:
+        """One write transaction (``server.store.accounts`` keeps its tables with it)."""
+        return self._write()
+
+    def reading(self) -> contextlib.AbstractContextManager[Transaction]:
+        """One read connection."""
+        return self._read()
 
 
 #: Runs that ended with a result or an error (not in progress, not interrupted).
@@ -746,8 +1023,26 @@ _COMPLETED = "status IN ('finished', 'failed')"
 
 _RUN_COLUMNS = (
     "id, project_id, created, status, result, error, detail, summary, settings, "
-    "(SELECT COUNT(*) FROM runs n WHERE n.project_id = runs.project_id AND n.id <= runs.id)"
+    "(SELECT COUNT(*) FROM runs n WHERE n.project_id = runs.project_id AND n.id <= runs.id), "
+    "started_by"
 )
+
+
+def _trail_run(db: Transaction, project_id: str, by: Actor | None, run_id: int) -> None:
+    """The trail's line for a run just stored: which number it got and who started it."""
+    (number,) = db.execute(
+        "SELECT COUNT(*) FROM runs WHERE project_id = ? AND id <= ?", (project_id, run_id)
+    ).fetchone()
+    _trail(db, project_id, by, "run", f"run #{number}", run_id)
+
+
+def _decision_words(edit: Any) -> str:
+    """A queued decision in a few words for the trail: its line, action and reason."""
+    if not isinstance(edit, dict):
+        return ""
+    where = f"line {edit['line']}" if edit.get("line") else "relative pairs"
+    reason = str(edit.get("reason") or "")
+    return f"{where}: {edit.get('action', '')}" + (f" ({reason})" if reason else "")
 
 
 def _decision_key(edit: Any) -> tuple[Any, ...]:
@@ -798,6 +1093,7 @@ def _run(row: tuple[Any, ...]) -> Run:
         summary=_loads(row[7]),
         settings=_loads(row[8]),
         number=row[9],
+        started_by=row[10],
     )
 
 

@@ -13,7 +13,8 @@ from starlette.concurrency import run_in_threadpool
 from server.settings import WorkLimits
 from server.store import projects as service
 from server.store.projects import Upload
-from server.store.sqlite import Store
+from server.store.sqlite import Actor, Store
+from server.web import access
 from server.web.dependencies import (
     JobsDep,
     LimitsDep,
@@ -97,15 +98,18 @@ def _stored_json(
     max_projects: int,
     limits: WorkLimits,
     jobs: BackgroundAdjustments,
+    owner: Actor,
 ) -> JSONResponse:
     headers = {"Location": ""}
     if isinstance(jobs, RemoteJobs):  # workers adjust it: wait for the run to end
-        project_id, run = jobs.submit(upload, max_projects, limits, API_WAIT_FOR_WORKERS)
+        project_id, run = jobs.submit(upload, max_projects, limits, API_WAIT_FOR_WORKERS, owner)
         body: dict[str, Any] = {"id": project_id, **service.run_payload(run)}
         if run is not None and run.status == "running":
             body["status"] = "running"
     else:
-        project_id, result, error = service.submit(store, upload, max_projects, limits, jobs.queue)
+        project_id, result, error = service.submit(
+            store, upload, max_projects, limits, jobs.queue, owner
+        )
         body = {"id": project_id, "result": None if result is None else result.to_json_dict()}
         if error is not None:
             body.update(survey_error_payload(error))
@@ -132,14 +136,20 @@ async def api_create_project(
         return JSONResponse(_MISSING_FIELD, status_code=422)
     await run_in_threadpool(room_in_queue, jobs)
     return await run_in_threadpool(
-        _stored_json, store, upload, request.app.state.max_projects, limits, jobs
+        _stored_json,
+        store,
+        upload,
+        request.app.state.max_projects,
+        limits,
+        jobs,
+        access.actor(request),
     )
 
 
 @router.get("/api/projects")
-def api_projects(store: StoreDep) -> JSONResponse:
-    """Every stored project with the summary of its latest run."""
-    return JSONResponse({"projects": service.projects_json(store)})
+def api_projects(request: Request, store: StoreDep) -> JSONResponse:
+    """Every stored project (that the account may see) with the summary of its latest run."""
+    return JSONResponse({"projects": service.projects_json(store, access.viewer(request))})
 
 
 @router.get("/api/projects/{project_id}")

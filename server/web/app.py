@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import ipaddress
 import logging
 import os
 from collections.abc import Collection
@@ -33,10 +34,23 @@ from server.settings import (
     service_limits,
     service_queue,
 )
+from server.store.accounts import Accounts
 from server.store.backends import storage_errors
 from server.store.projects import ProposalCache, StoreFull, purge_deleted
 from server.store.sqlite import SCHEMA_VERSION, RunGone, Store
-from server.web import api, design, interrupted, monitoring, pages, relative, review
+from server.web import (
+    access,
+    api,
+    approval,
+    design,
+    interrupted,
+    monitoring,
+    pages,
+    relative,
+    review,
+    run_reports,
+    sign_in,
+)
 from server.web.dependencies import busy, survey_error_payload
 from server.web.jobs import AdjustmentQueue, BackgroundAdjustments, Jobs, QueueFull
 from server.web.workers import RemoteJobs
@@ -91,7 +105,7 @@ def make_templates() -> Jinja2Templates:
         trim_blocks=True,
         lstrip_blocks=True,
     )
-    env.globals.update(caution=CAUTION, version=__version__)
+    env.globals.update(caution=CAUTION, version=__version__, signed_in=access.signed_in)
     env.filters["when"] = _when
     env.filters["sentence"] = _sentence
     return Jinja2Templates(env=env)
@@ -400,37 +414,45 @@ def _install_request_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
         return await http_error(request, StarletteHTTPException(507, str(exc)))
 
 
+def storage_failure(templates: Jinja2Templates, scope: Scope, exc: Exception) -> Response:
+    """503: the store cannot be read or written (the folder or database and the reason go
+    to the log only)."""
+    request = Request(scope)
+    logger.error(
+        "%s %s: %s cannot be used (%s); check that it exists, "
+        "that the service's user may write to it and that the disk has room",
+        request.method,
+        request.url.path,
+        request.app.state.store.location,
+        exc,
+    )
+    if request.method in UNSAFE_METHODS:
+        message = (
+            "Your request could not be stored: the service cannot write to its "
+            "data folder. Nothing was saved. Please tell the administrator; the "
+            "service's log names the folder and the reason."
+        )
+    else:
+        message = (
+            "The stored projects cannot be read right now: the service cannot use "
+            "its data folder. Please tell the administrator; the service's log "
+            "names the folder and the reason."
+        )
+    if is_api(request.url.path):
+        return JSONResponse({"error": message}, status_code=503)
+    return _error_page(templates, scope, 503, "The project store is unavailable", message)
+
+
 def _install_failure_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
     """The service itself failed: its store is unusable, or an unexpected error (500)."""
 
     async def storage_error(request: Request, exc: Exception) -> Response:
         """The project store cannot be read or written: say so, and name the folder (or the
         database) in the log."""
-        logger.error(
-            "%s %s: %s cannot be used (%s); check that it exists, "
-            "that the service's user may write to it and that the disk has room",
-            request.method,
-            request.url.path,
-            request.app.state.store.location,
-            exc,
-        )
-        if request.method in UNSAFE_METHODS:
-            message = (
-                "Your request could not be stored: the service cannot write to its "
-                "data folder. Nothing was saved. Please tell the administrator; the "
-                "service's log names the folder and the reason."
-            )
-        else:
-            message = (
-                "The stored projects cannot be read right now: the service cannot use "
-                "its data folder. Please tell the administrator; the service's log "
-                "names the folder and the reason."
-            )
-        if is_api(request.url.path):
-            return JSONResponse({"error": message}, status_code=503)
-        return _error_page(
-            templates, request.scope, 503, "The project store is unavailable", message
-        )
+        return storage_failure(templates, request.scope, exc)
+
+    for error in storage_errors():  # SQLite's, and psycopg's when it is installed
+        app.add_exception_handler(error, storage_error)
 
     for error in storage_errors():  # SQLite's, and psycopg's when it is installed
         app.add_exception_handler(error, storage_error)
@@ -481,6 +503,38 @@ DEFAULT_KEEP_DELETED_DAYS = 30
 LOOPBACK_HOSTS = ("127.0.0.1", "localhost")
 
 
+def behind_https() -> bool:
+    """True when STATIONFIT_HTTPS says a reverse proxy serves the service over https."""
+    return os.environ.get("STATIONFIT_HTTPS", "").strip().lower() in ("1", "true", "yes")
+
+
+def is_loopback(host: str) -> bool:
+    """True for an address only this machine reaches (127.0.0.0/8, ::1, localhost)."""
+    name = host.strip().strip("[]").lower()
+    if name == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(name).is_loopback
+    except ValueError:
+        return False
+
+
+def needs_accounts(host: str, allowed_hosts: Collection[str], https: bool) -> str:
+    """Why serving this way needs accounts ('' for the workstation mode: loopback only).
+
+    Others reach the service when it binds a non-loopback address, when it answers a host
+    name that is not this machine's (a reverse proxy passes it on), or behind https.
+    """
+    if not is_loopback(host):
+        return f"it would listen on {host}, which other computers can reach"
+    public = [h for h in allowed_hosts if h == "*" or not is_loopback(h)]
+    if public:
+        return f"it would answer for {public[0]} (STATIONFIT_ALLOWED_HOSTS), through a proxy"
+    if https:
+        return "it is served behind https (STATIONFIT_HTTPS), for others to reach"
+    return ""
+
+
 def serve_allowed_hosts(host: str) -> tuple[str, ...]:
     """Host names to accept when serving on ``host``: STATIONFIT_ALLOWED_HOSTS, else loopback.
 
@@ -507,6 +561,8 @@ def create_app(
     keep_deleted_days: int | None = None,
     database: str | None = None,
     workers: bool | None = None,
+    session_hours: float | None = None,
+    secure_cookies: bool | None = None,
 ) -> FastAPI:
     """Build the web application storing projects under ``data_dir``, or in the PostgreSQL
     database at ``database`` (``postgresql://…``).
@@ -521,7 +577,9 @@ def create_app(
     ``limits`` (observations and unknowns per field book) default to ``service_limits()``;
     ``adjustments_at_once`` and ``max_waiting`` (the adjustment queue) to ``service_queue()``.
     ``keep_deleted_days`` (how long a deleted project can be restored; 0: erased at once)
-    defaults to STATIONFIT_KEEP_DELETED_DAYS, else 30.
+    defaults to STATIONFIT_KEEP_DELETED_DAYS, else 30.  With accounts in the store, a
+    session lasts ``session_hours`` (STATIONFIT_SESSION_HOURS, else 12) and its cookie is
+    ``Secure`` when ``secure_cookies`` (STATIONFIT_HTTPS=1: served behind https).
     """
     if max_upload_bytes is None:
         max_upload_bytes = env_int("STATIONFIT_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES)
@@ -529,6 +587,10 @@ def create_app(
         max_projects = env_int("STATIONFIT_MAX_PROJECTS", DEFAULT_MAX_PROJECTS)
     if keep_deleted_days is None:
         keep_deleted_days = env_int("STATIONFIT_KEEP_DELETED_DAYS", DEFAULT_KEEP_DELETED_DAYS)
+    if session_hours is None:
+        session_hours = env_int("STATIONFIT_SESSION_HOURS", access.DEFAULT_SESSION_HOURS)
+    if secure_cookies is None:
+        secure_cookies = behind_https()
 
     app = FastAPI(
         title="Stationfit",
@@ -576,11 +638,39 @@ def create_app(
     # the review's second opinions (robust, snooping) of recent runs, shared by worker threads
     app.state.proposals = ProposalCache()
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
+    # accounts, sessions and the sign-in limit (none in the store: the workstation mode)
+    app.state.accounts = Accounts(app.state.store)
+    app.state.access = access.AccessSettings(
+        app.state.accounts, int(session_hours * 3600), secure_cookies
+    )
+    # looked up on each call: a test may replace the settings' clock
+    app.state.sign_in_limiter = sign_in.SignInLimiter(lambda: app.state.access.clock())  # noqa: PLW0108
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
-    for module in (pages, api, review, relative, interrupted, design, monitoring):
+    for module in (
+        pages,
+        api,
+        review,
+        relative,
+        interrupted,
+        design,
+        monitoring,
+        sign_in,
+        approval,
+        run_reports,
+    ):
         app.include_router(module.router)
     _install_handlers(app, templates)
     app.add_middleware(UploadLimitMiddleware, max_bytes=max_upload_bytes, templates=templates)
+    # Who is asking, and may they: before any route reads a body or looks a project up.
+    app.add_middleware(
+        access.AccessMiddleware,
+        router_app=app,
+        settings=app.state.access,
+        error_page=lambda scope, status, heading, message: _error_page(
+            templates, scope, status, heading, message
+        ),
+        store_failure=lambda scope, exc: storage_failure(templates, scope, exc),
+    )
     # Before the upload limit, so another site's request is refused without reading its body.
     app.add_middleware(SameOriginMiddleware, templates=templates)
     # Pages, JSON and CSV compress to a tenth or less when the browser accepts gzip.

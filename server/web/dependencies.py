@@ -25,6 +25,7 @@ from server.report.tables import Page
 from server.settings import RETRY_AFTER_SECONDS, WorkLimits
 from server.store.projects import ProposalCache, StandardsChoice, UnknownPreset, Upload
 from server.store.sqlite import Project, Store, error_record
+from server.web import access
 from server.web.jobs import AdjustmentQueue, BackgroundAdjustments, QueueFull, RunJob
 
 #: The largest row id SQLite stores (a signed 64-bit integer).
@@ -73,9 +74,10 @@ QueueDep = Annotated[AdjustmentQueue, Depends(get_queue)]
 ProposalsDep = Annotated[ProposalCache, Depends(get_proposals)]
 
 
-def project_or_404(project_id: str, store: StoreDep) -> Project:
-    """The project named in the path, or 404."""
-    project = store.get_project(project_id)
+def project_or_404(project_id: str, store: StoreDep, request: Request) -> Project:
+    """The project named in the path, or 404: also when the signed-in account may not see
+    it, so that an id never tells whether a project exists."""
+    project = store.get_project(project_id, visible_to=access.viewer(request))
     if project is None:
         raise HTTPException(status_code=404, detail="There is no project with this id.")
     return project
@@ -271,8 +273,14 @@ def page_links(
 
 
 def client(request: Request) -> str:
-    """Who acted, until there are accounts: the client's address."""
+    """The client's address (who acted, on the workstation without accounts)."""
     return request.client.host if request.client is not None else "unknown client"
+
+
+def acting(request: Request) -> str:
+    """Who acted, for the log: the account and its address, or the address alone."""
+    who = access.signed_in(request)
+    return f"{who.name} from {client(request)}" if who is not None else client(request)
 
 
 def survey_error_payload(exc: SurveyError) -> dict[str, Any]:

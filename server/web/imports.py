@@ -11,7 +11,7 @@ from server.formats.importing import ImportSummary, import_with_summary, is_xml
 from server.pipeline import UNLIMITED, check_observation_limit
 from server.settings import WorkLimits
 from server.store.projects import Upload, check_room
-from server.store.sqlite import NO_EDITS, Project, Store
+from server.store.sqlite import NO_EDITS, Actor, Project, Store
 
 #: Upload names that are imported rather than read as a field book.
 IMPORTED_SUFFIXES = (".xml", ".csv")
@@ -31,7 +31,9 @@ def imported_book_name(filename: str) -> str:
     return f"{stem or 'imported'}.fieldbook"
 
 
-def store_import(store: Store, upload: Upload, max_projects: int = 0) -> str:
+def store_import(
+    store: Store, upload: Upload, max_projects: int = 0, owner: Actor | None = None
+) -> str:
     """Import the upload and store the produced field book beside the original bytes.
 
     No run is started: the surveyor reads the preview first (``import_preview``).  An
@@ -49,6 +51,7 @@ def store_import(store: Store, upload: Upload, max_projects: int = 0) -> str:
         imported_book_name(source),
         imported.text,
         source=(source, upload.data),
+        owner=owner,
     )
 
 
@@ -63,14 +66,14 @@ def import_preview(project: Project) -> ImportSummary | None:
 
 
 def start_imported_run(
-    store: Store, project: Project, limits: WorkLimits = UNLIMITED
+    store: Store, project: Project, limits: WorkLimits = UNLIMITED, by: Actor | None = None
 ) -> tuple[Fieldbook | None, int | None]:
     """Open the first run of an imported project; a book that does not read gets a failed run."""
     source = project.filename or "imported.fieldbook"
     try:
         book = parse_fieldbook(project.fieldbook, source=source)
     except SurveyError as exc:
-        store.add_run(project.id, error=exc)
+        store.add_run(project.id, error=exc, by=by)
         return None, None
     check_observation_limit(book, limits)
-    return book, store.start_run(project.id, NO_EDITS)
+    return book, store.start_run(project.id, NO_EDITS, by=by)

@@ -9,11 +9,12 @@ run was given.  The new run goes through the same background job as an upload.
 
 from __future__ import annotations
 
-from fastapi import APIRouter, HTTPException
+from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import RedirectResponse, Response
 from starlette.concurrency import run_in_threadpool
 
 from server.store import projects as service
+from server.web import access
 from server.web.dependencies import (
     WAIT_FOR_SMALL_JOBS,
     CheckedForm,
@@ -29,7 +30,12 @@ router = APIRouter()
 
 @router.post("/projects/{project_id}/runs/{run_id}/retry")
 async def retry_interrupted(
-    project: ProjectDep, store: StoreDep, form: CheckedForm, jobs: JobsDep, run_id: RowId
+    request: Request,
+    project: ProjectDep,
+    store: StoreDep,
+    form: CheckedForm,
+    jobs: JobsDep,
+    run_id: RowId,
 ) -> Response:
     """Start the interrupted run again as a new run with the same settings."""
     interrupted = await run_in_threadpool(store.run, project.id, run_id)
@@ -38,7 +44,9 @@ async def retry_interrupted(
             status_code=404, detail="This project has no interrupted run with this number."
         )
     settings = {**(interrupted.settings or {}), "retry_of": interrupted.id}
-    new_id = await run_in_threadpool(store.start_run, project.id, settings)
+    new_id = await run_in_threadpool(
+        lambda: store.start_run(project.id, settings, by=access.actor(request))
+    )
     job = await run_in_threadpool(
         jobs.start,
         new_id,

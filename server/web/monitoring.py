@@ -23,8 +23,9 @@ from server.monitoring.series_plot import series_plot
 from server.settings import WorkLimits
 from server.store import projects as service
 from server.store.projects import Slots
-from server.store.sqlite import Store
+from server.store.sqlite import Actor, Store
 from server.units import UnitError
+from server.web import access
 from server.web.dependencies import LimitsDep, QueueDep, StoreDep, render
 
 router = APIRouter()
@@ -46,7 +47,7 @@ async def monitoring_page(
 ) -> HTMLResponse:
     """Choose two or more projects (one per epoch); with them, the comparison."""
     context: dict[str, Any] = {
-        "projects": service.project_list_items(store),
+        "projects": service.project_list_items(store, access.viewer(request)),
         "chosen": set(project),
         "form": {"confidence": confidence, "period": period, "threshold": threshold},
         "error": None,
@@ -57,7 +58,15 @@ async def monitoring_page(
     try:
         context.update(
             await run_in_threadpool(
-                _compare, store, queue, limits, project, confidence, period, threshold
+                _compare,
+                store,
+                queue,
+                limits,
+                project,
+                confidence,
+                period,
+                threshold,
+                access.viewer(request),
             )
         )
     except (UsageError, UnitError, ValueError) as exc:
@@ -78,12 +87,13 @@ def _compare(
     confidence: str,
     period: str,
     threshold: str,
+    viewer: Actor | None = None,
 ) -> dict[str, Any]:
     if len(ids) < 2 or len(ids) > MAX_EPOCHS:
         raise UsageError(f"choose from 2 to {MAX_EPOCHS} projects, one per epoch")
     books = []
     for project_id in dict.fromkeys(ids):
-        stored = store.get_project(project_id)
+        stored = store.get_project(project_id, visible_to=viewer)
         if stored is None:
             raise UsageError(f"there is no project {project_id!r}")
         books.append(parse_fieldbook(stored.fieldbook, source=stored.filename or stored.name))

@@ -21,7 +21,7 @@ from server.formats.geojson import NO_CRS, GeoJsonUnavailable, geojson_text
 from server.report import csv_export, plot
 from server.report import html as html_report
 from server.report import tables as report
-from server.report.origin import ImportedFrom
+from server.report.origin import ApprovalNote, ImportedFrom
 from server.report.pdf import report_pdf
 from server.report.tables import Page
 from server.report.text import report_text
@@ -29,8 +29,8 @@ from server.results.result import AdjustmentResult
 from server.store import projects as service
 from server.store.projects import StandardsChoice, Upload, display_name
 from server.store.sqlite import Project, Store
+from server.web import access, approval, imports
 from server.web import dependencies as deps
-from server.web import imports
 from server.web.dependencies import (
     CheckedForm,
     ChoiceDep,
@@ -55,7 +55,12 @@ async def _submit_in_background(request: Request, upload: Upload) -> str:
     store, limits, jobs = deps.get_store(request), deps.get_limits(request), deps.get_jobs(request)
     await run_in_threadpool(deps.room_in_queue, jobs)
     project_id, book, run_id, _ = await run_in_threadpool(
-        service.store_upload, store, upload, request.app.state.max_projects, limits
+        service.store_upload,
+        store,
+        upload,
+        request.app.state.max_projects,
+        limits,
+        access.actor(request),
     )
     if book is not None and run_id is not None:
         job = await run_in_threadpool(
@@ -73,7 +78,11 @@ async def _import_in_background(request: Request, upload: Upload) -> Response:
     store = deps.get_store(request)
     try:
         project_id = await run_in_threadpool(
-            imports.store_import, store, upload, request.app.state.max_projects
+            imports.store_import,
+            store,
+            upload,
+            request.app.state.max_projects,
+            access.actor(request),
         )
     except FieldbookError as exc:
         return import_refused(request, upload.filename, exc)
@@ -107,6 +116,18 @@ def imported_from(project: Project) -> ImportedFrom | None:
     if project.source is None:
         return None
     return ImportedFrom(project.source.filename, project.source.sha256)
+
+
+def approved(store: Store, project: Project, choice: StandardsChoice) -> ApprovalNote | None:
+    """The approval of the run a report is of (the latest), if it was approved for issue.
+
+    A report with accuracy presets chosen afterwards is a new evaluation that the approval
+    did not cover: it carries none.
+    """
+    if choice.presets:
+        return None
+    run = store.latest_run(project.id)
+    return approval.approval_of(store, project.id, run.id if run is not None else None)
 
 
 def finished_result(
@@ -226,7 +247,9 @@ async def adjust_imported(request: Request, project: ProjectDep, form: CheckedFo
     store, limits, jobs = deps.get_store(request), deps.get_limits(request), deps.get_jobs(request)
     if not store.runs(project.id):
         await run_in_threadpool(deps.room_in_queue, jobs)
-        book, run_id = await run_in_threadpool(imports.start_imported_run, store, project, limits)
+        book, run_id = await run_in_threadpool(
+            imports.start_imported_run, store, project, limits, access.actor(request)
+        )
         if book is not None and run_id is not None:
             job = await run_in_threadpool(
                 jobs.start,
@@ -242,14 +265,18 @@ async def discard_import(request: Request, project: ProjectDep, form: CheckedFor
     """Go back: an imported project not yet adjusted is deleted (restorable like any other)."""
     store = deps.get_store(request)
     if project.source is not None and not store.runs(project.id):
-        store.delete_project(project.id)
+        store.delete_project(project.id, actor=access.actor(request))
     return RedirectResponse("/", status_code=303)
 
 
 @router.get("/projects", response_class=HTMLResponse)
 def project_list(request: Request, store: StoreDep) -> HTMLResponse:
     """Every stored project with its latest verdict."""
-    return render(request, "projects.html", {"projects": service.project_list_items(store)})
+    return render(
+        request,
+        "projects.html",
+        {"projects": service.project_list_items(store, access.viewer(request))},
+    )
 
 
 @router.get("/projects/{project_id}", response_class=HTMLResponse)
@@ -283,6 +310,7 @@ def project_page(
     run = store.latest_run(project.id)
     result = service.result_with_presets(project, run, choice, jobs.queue)
     context: dict[str, Any] = {
+        **approval.page_context(request, store, project.id),
         "project": project,
         "run": run,
         "error": None,
@@ -307,7 +335,10 @@ def project_report(
     css = html_report.report_css()
     response = attachment(
         html_report.report_html(
-            result, presets=choice.presets, imported_from=imported_from(project)
+            result,
+            presets=choice.presets,
+            imported_from=imported_from(project),
+            approval=approved(store, project, choice),
         ),
         "text/html; charset=utf-8",
         download_name(project, "-report.html"),
@@ -326,7 +357,12 @@ def project_report_pdf(
     """The report as PDF, drawn on the server."""
     result = finished_result(store, project, choice, queue)
     return attachment(
-        report_pdf(result, presets=choice.presets, imported_from=imported_from(project)),
+        report_pdf(
+            result,
+            presets=choice.presets,
+            imported_from=imported_from(project),
+            approval=approved(store, project, choice),
+        ),
         "application/pdf",
         download_name(project, "-report.pdf"),
     )
@@ -339,7 +375,7 @@ def project_report_text(
     """The plain-text summary, as the terminal prints it."""
     result = finished_result(store, project, choice, queue)
     return attachment(
-        report_text(result, imported_from(project)),
+        report_text(result, imported_from(project), approved(store, project, choice)),
         "text/plain; charset=utf-8",
         download_name(project, "-report.txt"),
     )

@@ -22,6 +22,7 @@ from server.report import review
 from server.results.result import AdjustmentResult
 from server.store.projects import display_name, load_state
 from server.store.sqlite import AlreadyQueued
+from server.web import access
 from server.web.dependencies import ProjectDep, StoreDep, check_form, read_form, render, today
 
 router = APIRouter()
@@ -166,7 +167,11 @@ async def ask_relative_pairs(request: Request, project: ProjectDep, store: Store
             status=422,
         )
     try:
-        await run_in_threadpool(store.add_pending_edit, project.id, review.edit_to_json(edit))
+        await run_in_threadpool(
+            lambda: store.add_pending_edit(
+                project.id, review.edit_to_json(edit), by=access.actor(request)
+            )
+        )
     except AlreadyQueued as exc:
         return render(
             request,

@@ -38,15 +38,16 @@ from server.review.tau import tau_test
 from server.store import projects as service
 from server.store.projects import ReviewState, display_name
 from server.store.projects import load_state as _load_state
-from server.store.sqlite import AlreadyQueued, DecisionsChanged, is_valid_id
+from server.store.sqlite import AlreadyQueued, DecisionsChanged, Project, is_valid_id
+from server.web import access, approval
 from server.web.dependencies import (
     CheckedForm,
     ProjectDep,
     RowId,
     StoreDep,
+    acting,
     attachment,
     check_form,
-    client,
     download_name,
     get_proposals,
     page_links,
@@ -173,6 +174,7 @@ def _review_context(
         "token": project.form_token,
         "in_force": review.decision_rows(state.in_force, result),
         "pending": review.decision_rows(state.pending_edits, result, [p.id for p in state.pending]),
+        **approval.page_context(request, store, project.id),
     }
     if result is None:
         return context
@@ -318,10 +320,12 @@ async def queue_edit(
     if not message:
         try:  # checked again and inserted in one transaction: another client may be deciding
             await run_in_threadpool(
-                store.add_pending_edit,
-                project.id,
-                review.edit_to_json(edit),
-                based_on=state.base.id if state.base else None,
+                lambda: store.add_pending_edit(
+                    project.id,
+                    review.edit_to_json(edit),
+                    based_on=state.base.id if state.base else None,
+                    by=access.actor(request),
+                )
             )
         except (AlreadyQueued, DecisionsChanged) as exc:
             message, status = str(exc), 409
@@ -353,7 +357,21 @@ async def undo_edit(
     """Withdraw a queued decision."""
     suggest = _text(form, "back", 20) == "suggest"
     rejected = _rejected([v for v in form.getlist("reject") if isinstance(v, str)])
-    if not await run_in_threadpool(store.remove_pending_edit, project.id, edit_id):
+    who = access.principal(request)
+    # a technician withdraws their own proposals; deciding on others' is the surveyor's
+    only_by = None if who.may(access.DECIDE) else who.name
+    if only_by is not None:
+        queued = await run_in_threadpool(store.pending_edits, project.id)
+        mine = {p.id for p in queued if (p.proposed_by or "").lower() == only_by.lower()}
+        if edit_id in {p.id for p in queued} - mine:
+            raise HTTPException(
+                status_code=403,
+                detail="Only whoever proposed this decision, or the surveyor in responsible "
+                "charge, may withdraw it.",
+            )
+    if not await run_in_threadpool(
+        lambda: store.remove_pending_edit(project.id, edit_id, by=who.actor, only_by=only_by)
+    ):
         # another client's re-run applied it, or it was already withdrawn: never say "done"
         state = await run_in_threadpool(_load_state, store, project)
         problem = (
@@ -383,7 +401,9 @@ async def rerun(
         return RedirectResponse(_review_url(project.id), status_code=303)
     status = 422
     try:
-        run_id, problem = await run_in_threadpool(service.rerun, store, state)
+        run_id, problem = await run_in_threadpool(
+            service.rerun, store, state, access.actor(request)
+        )
     except DecisionsChanged as exc:  # another client undid or queued a decision meanwhile
         run_id, problem, status = None, str(exc), 409
         state = await run_in_threadpool(_load_state, store, project)
@@ -427,6 +447,7 @@ def edited_fieldbook(project: ProjectDep, store: StoreDep) -> Response:
 @router.post("/projects/{project_id}/confirm-delete", response_class=HTMLResponse)
 def confirm_delete(request: Request, project: ProjectDep, store: StoreDep) -> HTMLResponse:
     """Ask before deleting: what will be lost, with the download of the field book."""
+    _may_manage(request, project)
     runs = store.runs(project.id)
     return _render(
         request,
@@ -447,17 +468,28 @@ async def delete_project(
     request: Request, project: ProjectDep, store: StoreDep, form: CheckedForm
 ) -> Response:
     """Move the project to the recently deleted ones (or erase it when none are kept)."""
-    store.delete_project(project.id)
+    _may_manage(request, project)
+    store.delete_project(project.id, actor=access.actor(request))
     logger.info(
         "project %s (%r) deleted by %s",
         project.id,
         display_name(project.name, project.filename),
-        client(request),
+        acting(request),
     )
     keep_days = request.app.state.keep_deleted_days
     if keep_days == 0:
-        service.purge_deleted(store, 0, who=client(request))
+        service.purge_deleted(store, 0, who=acting(request))
     return RedirectResponse("/projects", status_code=303)
+
+
+def _may_manage(request: Request, project: Project) -> None:
+    """403 unless the account may delete or restore this project (a technician: their own)."""
+    if not access.principal(request).may_manage(project):
+        raise HTTPException(
+            status_code=403,
+            detail="Only the project's owner or a surveyor in responsible charge may delete "
+            "or restore it.",
+        )
 
 
 @router.get("/deleted-projects", response_class=HTMLResponse)
@@ -467,7 +499,10 @@ def deleted_projects(request: Request, store: StoreDep) -> HTMLResponse:
         request,
         "deleted_projects.html",
         {
-            "projects": [(p, display_name(p.name, p.filename)) for p in store.deleted_projects()],
+            "projects": [
+                (p, display_name(p.name, p.filename))
+                for p in store.deleted_projects(access.viewer(request))
+            ],
             "keep_days": request.app.state.keep_deleted_days,
         },
     )
@@ -476,16 +511,22 @@ def deleted_projects(request: Request, store: StoreDep) -> HTMLResponse:
 @router.post("/deleted-projects/{project_id}/restore")
 async def restore_project(request: Request, project_id: str, store: StoreDep) -> Response:
     """Bring a deleted project back with its runs and queued decisions."""
-    project = store.get_project(project_id, deleted=True) if is_valid_id(project_id) else None
+    viewer = access.viewer(request)
+    project = (
+        store.get_project(project_id, deleted=True, visible_to=viewer)
+        if is_valid_id(project_id)
+        else None
+    )
     if project is None:
         raise HTTPException(status_code=404, detail="No recently deleted project has this id.")
     form = await read_form(request)
     check_form(request, project, form)
-    store.restore_project(project.id)
+    _may_manage(request, project)
+    store.restore_project(project.id, actor=access.actor(request))
     logger.info(
         "project %s (%r) restored by %s",
         project.id,
         display_name(project.name, project.filename),
-        client(request),
+        acting(request),
     )
     return RedirectResponse(f"/projects/{project.id}", status_code=303)

@@ -34,7 +34,7 @@ from typing import Any
 from server.settings import WorkLimits
 from server.store import projects as service
 from server.store.projects import Upload
-from server.store.sqlite import Run, RunEnded, RunGone, RunProgress, Store
+from server.store.sqlite import Actor, Run, RunEnded, RunGone, RunProgress, Store
 from server.web.jobs import AdjustmentQueue, QueueFull, stage_words
 
 logger = logging.getLogger("stationfit.worker")
@@ -186,11 +186,18 @@ class RemoteJobs:
         return live
 
     def submit(
-        self, upload: Upload, max_projects: int, limits: WorkLimits, wait: float
+        self,
+        upload: Upload,
+        max_projects: int,
+        limits: WorkLimits,
+        wait: float,
+        owner: Actor | None = None,
     ) -> tuple[str, Run | None]:
-        """Store the upload, defer its adjustment and wait up to ``wait`` seconds for it:
-        (project id, the run as it then stands)."""
-        project_id, book, run_id, _ = service.store_upload(self.store, upload, max_projects, limits)
+        """Store the upload (owned by ``owner``), defer its adjustment and wait up to ``wait``
+        seconds for it: (project id, the run as it then stands)."""
+        project_id, book, run_id, _ = service.store_upload(
+            self.store, upload, max_projects, limits, owner
+        )
         if book is not None and run_id is not None:
             self.start(run_id).done.wait(wait)
         return project_id, self.store.latest_run(project_id) or _first_run(self.store, project_id)
