@@ -210,3 +210,14 @@ class Provider:
 
     def close(self) -> None:
         self._stack.close()
+
+
+def app_on(location: Path | str, data_dir: Path, **options):  # type: ignore[no-untyped-def]
+    """The web service on a test's store (``store_location``): the SQLite file's folder, or
+    the PostgreSQL database with adjustments on the service's own threads (the workers'
+    own tests start worker processes)."""
+    from server.web import create_app
+
+    if isinstance(location, str):
+        return create_app(data_dir, database=location, workers=False, **options)
+    return create_app(location.parent, **options)

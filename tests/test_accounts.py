@@ -17,6 +17,7 @@ from server.web import create_app
 from server.web.access import SESSION_COOKIE
 from server.web.app import DATABASE_NAME, needs_accounts
 from server.web.sign_in import ACCOUNT_FAILURES, ADDRESS_FAILURES, WINDOW_SECONDS
+from tests.postgres import app_on
 
 with warnings.catch_warnings():  # starlette's notice about httpx, as tests/test_web.py
     warnings.simplefilter("ignore")
@@ -37,8 +38,9 @@ class Clock:
 
 
 @pytest.fixture
-def office(tmp_path):
-    app = create_app(tmp_path, session_hours=12)
+def office(tmp_path, store_location):
+    """Three accounts on either back end (tests/conftest.py's ``store_location``)."""
+    app = app_on(store_location, tmp_path, session_hours=12)
     app.state.access.clock = Clock()
     for name, role in (("sam", "surveyor"), ("tom", "technician"), ("vera", "viewer")):
         app.state.accounts.add(name, role, PASSWORD)
