@@ -18,8 +18,8 @@ from pathlib import Path
 import pytest
 
 from server.store.sqlite import NO_EDITS, Store
-from server.web import create_app
 from server.web.app import DATABASE_NAME
+from tests.postgres import app_on
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
 
 with warnings.catch_warnings():
@@ -45,13 +45,6 @@ def _statuses(database: Path | str) -> list[tuple[int, str]]:
             return db.execute("SELECT id, status FROM runs ORDER BY id").fetchall()
     with closing(sqlite3.connect(database)) as db:
         return db.execute("SELECT id, status FROM runs ORDER BY id").fetchall()
-
-
-def _app(location: Path | str):
-    """The service on the test's store (adjusting in its own threads on either back end)."""
-    if isinstance(location, str):
-        return create_app(Path("/nonexistent"), database=location, workers=False)
-    return create_app(location.parent)
 
 
 def _retry_form(html: str) -> tuple[str, str]:
@@ -88,7 +81,7 @@ def test_an_interrupted_first_run_is_re_run_from_the_results_page(store_location
     project = killed.create_project("Cut off", "cut.fieldbook", TEXT)
     cut = killed.start_run(project, NO_EDITS)  # the process dies here
 
-    with TestClient(_app(store_location)) as client:
+    with TestClient(app_on(store_location, Path("/nonexistent"))) as client:
         assert _statuses(store_location) == [(cut, "interrupted")]
         page = client.get(f"/projects/{project}").text
         assert "was interrupted" in page
@@ -115,7 +108,7 @@ def test_an_interrupted_first_run_is_re_run_from_the_results_page(store_location
 
 
 def test_an_interrupted_re_run_is_repeated_with_the_same_decisions(store_location):
-    with TestClient(_app(store_location)) as client:
+    with TestClient(app_on(store_location, Path("/nonexistent"))) as client:
         upload = client.post("/api/projects", files={"fieldbook": ("b.fieldbook", TEXT)})
         project = upload.json()["id"]
         before = client.get(f"/api/projects/{project}").json()
@@ -126,7 +119,7 @@ def test_an_interrupted_re_run_is_repeated_with_the_same_decisions(store_locatio
         store.add_pending_edit(project, EXCLUDE_FIRST)
         cut = store.start_run(project, {"edits": [EXCLUDE_FIRST], "based_on": first})
 
-    with TestClient(_app(store_location)) as client:  # the restart
+    with TestClient(app_on(store_location, Path("/nonexistent"))) as client:  # the restart
         assert _statuses(store_location)[-1] == (cut, "interrupted")
         review = client.get(f"/projects/{project}/review").text
         action, token = _retry_form(review)

@@ -32,6 +32,7 @@ from hypothesis.errors import Unsatisfiable
 from server.web import create_app
 from server.web.app import DATABASE_NAME, SECURITY_HEADERS, serve_allowed_hosts
 from tests.hypothesis_profiles import examples
+from tests.postgres import app_on
 
 with warnings.catch_warnings():
     # starlette's test client prefers httpx2 and warns when it finds only httpx
@@ -124,13 +125,6 @@ def _assert_security_headers(response, where: str) -> None:
 # the OpenAPI contract, fuzzed by schemathesis (in process, no network)
 
 
-def _app_on(location: Path | str, tmp_path: Path, **options):
-    """The service on either back end (``store_location``), adjusting in its own threads."""
-    if isinstance(location, str):
-        return create_app(tmp_path / "data", database=location, workers=False, **options)
-    return create_app(location.parent, **options)
-
-
 def test_openapi_operations_never_answer_5xx(tmp_path, store_location):
     """Every documented operation, with generated paths, queries and bodies: never a 5xx.
 
@@ -140,7 +134,7 @@ def test_openapi_operations_never_answer_5xx(tmp_path, store_location):
     numbers) reach the database instead of stopping at "no such project"; the schemathesis
     pytest plugin is not used (it does not load under this pytest).
     """
-    app = _app_on(store_location, tmp_path, max_upload_bytes=64 * 1024)
+    app = app_on(store_location, tmp_path, max_upload_bytes=64 * 1024)
     with TestClient(app) as seed:
         real_project = _create(seed, BLUNDER, "leveling_blunder.fieldbook")
     schema = schemathesis.openapi.from_asgi("/api/openapi.json", app)
@@ -193,7 +187,7 @@ def test_openapi_operations_never_answer_5xx(tmp_path, store_location):
 def test_ids_beyond_the_database_integer_range_are_not_found(tmp_path, store_location):
     """Run and decision numbers SQLite (or PostgreSQL's bigint) cannot hold name nothing:
     404, never a 500."""
-    with TestClient(_app_on(store_location, tmp_path)) as client:
+    with TestClient(app_on(store_location, tmp_path)) as client:
         _ids_beyond_range(client)
 
 
