@@ -87,7 +87,7 @@ def _as_cluster_owner(command: list[str]) -> list[str]:
 
 
 @contextlib.contextmanager
-def _throwaway_cluster() -> Iterator[Server]:
+def _throwaway_cluster(*, durable: bool = False) -> Iterator[Server]:
     binaries = _binaries()
     if binaries is None:
         raise RuntimeError(
@@ -121,9 +121,10 @@ def _throwaway_cluster() -> Iterator[Server]:
         port = 5432
         options = (
             f"-c listen_addresses='' -c unix_socket_directories={socket_dir} -c port={port} "
-            "-c fsync=off -c synchronous_commit=off -c full_page_writes=off "
             "-c max_connections=200"
         )
+        if not durable:  # the tests kill Stationfit's processes, never this server
+            options += " -c fsync=off -c synchronous_commit=off -c full_page_writes=off"
         subprocess.run(
             _as_cluster_owner(
                 [
