@@ -414,3 +414,32 @@ CREATE TABLE pending_edits (id INTEGER PRIMARY KEY AUTOINCREMENT,
 CREATE INDEX pending_by_project ON pending_edits(project_id, id);
 PRAGMA user_version = 3;
 """
+
+
+def test_runs_started_at_once_on_one_project_are_numbered_one_to_n_in_order(db):
+    """Eight clients start runs on one project at the same moment: every run gets its own
+    number, 1 to 40, in the order of its id, the same in the list and run by run."""
+    store = Store(db)
+    project_id = store.create_project("busy", "b.fieldbook", "x")
+    start = threading.Barrier(8)
+    errors: list[BaseException] = []
+
+    def work() -> None:
+        try:
+            start.wait()
+            for _ in range(5):
+                run_id = store.start_run(project_id, {"edits": []})
+                store.finish_run(run_id, error="stopped")
+        except BaseException as exc:
+            errors.append(exc)
+
+    threads = [threading.Thread(target=work) for _ in range(8)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert errors == []
+    runs = store.runs(project_id)
+    assert [r.number for r in runs] == list(range(1, 41))
+    assert [r.id for r in runs] == sorted(r.id for r in runs)
+    assert all(store.run(project_id, r.id).number == r.number for r in runs)
