@@ -1,7 +1,8 @@
 /* Stationfit network plot: pan, zoom, ellipse exaggeration and the detail panel.
    The SVG is drawn by the server (templates/partials/network_plot.html); this file only
    moves the viewBox, keeps symbols a constant size on screen and shows the figures that
-   the server formatted (the JSON block #np-data).  No figure is computed here, and user
+   the server formatted (the JSON block #np-data, packed: see plot.script_data; the ellipse
+   axes are read from the SVG).  No figure is computed here, and user
    text only ever goes through textContent. */
 (function () {
   "use strict";
@@ -28,6 +29,21 @@
       list.appendChild(element("dd", "", row[1]));
     });
     return list;
+  }
+
+  /* (label, value) rows from the data block's packing: [index of the labels, values]. */
+  function unpack(labelSets, packed) {
+    var labels = labelSets[packed[0]];
+    return packed[1].map(function (value, i) { return [labels[i], value]; });
+  }
+
+  /* An observation's figures from its list, named by the data block's observation_keys. */
+  function named(keys, values) {
+    var o = {};
+    keys.forEach(function (key, i) { o[key] = values[i]; });
+    o.flagged = o.status === "flagged";
+    o.ignored = o.status === "ignored";
+    return o;
   }
 
   /* The longest 1-2-5 bar length (from the server's list) not over `longest`. */
@@ -159,9 +175,8 @@
       factorIndex = Math.min(Math.max(index, 0), data.exaggerations.length - 1);
       var f = factor();
       Array.prototype.forEach.call(ellipses, function (e) {
-        var p = points[e.getAttribute("data-point")];
-        e.setAttribute("rx", round(p.ellipse.b * f));
-        e.setAttribute("ry", round(p.ellipse.a * f));
+        e.setAttribute("rx", round(parseFloat(e.getAttribute("data-b")) * f));
+        e.setAttribute("ry", round(parseFloat(e.getAttribute("data-a")) * f));
       });
       var label = data.exaggeration_labels[factorIndex];
       if (range) {
@@ -199,7 +214,7 @@
       panel.textContent = "";
       panel.appendChild(element("p", "np-panel-name", p.name));
       panel.appendChild(element("p", "np-panel-sub", "Point"));
-      panel.appendChild(facts(p.detail));
+      panel.appendChild(facts(unpack(data.label_sets, p.detail)));
     }
 
     function locate(lineNumber) {
@@ -248,11 +263,13 @@
       panel.appendChild(element("p", "np-panel-sub",
         count + (count === 1 ? " observation" : " observations") + (l.used ? "" : ", none used")));
       var list = element("ul", "np-obs");
-      l.detail.forEach(function (o) { list.appendChild(observationItem(o)); });
+      l.detail.forEach(function (values) {
+        list.appendChild(observationItem(named(data.observation_keys, values)));
+      });
       panel.appendChild(list);
       if (l.relative) {
         panel.appendChild(element("p", "np-section", "Relative precision"));
-        panel.appendChild(facts(l.relative));
+        panel.appendChild(facts(unpack(data.label_sets, l.relative)));
       }
     }
 

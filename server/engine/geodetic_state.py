@@ -14,6 +14,7 @@ from collections.abc import Sequence
 import numpy as np
 
 from server.engine.state import State
+from server.geodesy import frames
 from server.model import geodetic_equations as ge
 from server.model.assembly import Assembly, GeodeticRows
 from server.model.geodetic import GeodeticFrame, height_only_points
@@ -115,7 +116,17 @@ class GeodeticState(State):
         r, i, j = (table[:, c].astype(np.int64) for c in range(3))
         xyz_i, xyz_j = self._xyz(i), self._xyz(j)
         ok = np.isfinite(xyz_i).all(axis=1) & np.isfinite(xyz_j).all(axis=1) & (i != j)
-        azimuth = ge.direction(self.frame.crs.ellipsoid, xyz_i[ok], xyz_j[ok]).value
+        ell = self.frame.crs.ellipsoid
+        points = np.unique(np.concatenate([i[ok], j[ok]]))  # each point's frame once
+        at_points = frames.local_frames(ell, self._xyz(points))
+        row_i, row_j = np.searchsorted(points, i[ok]), np.searchsorted(points, j[ok])
+        azimuth = frames.horizon_azimuth_value(
+            ell,
+            xyz_i[ok],
+            xyz_j[ok],
+            frames_from=at_points.take(row_i),
+            frames_to=at_points.take(row_j),
+        )
         offset = azimuth - table[ok, 3]
         sines = np.bincount(r[ok], weights=np.sin(offset), minlength=len(self.round_lines))
         cosines = np.bincount(r[ok], weights=np.cos(offset), minlength=len(self.round_lines))

@@ -49,13 +49,12 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 import numpy.typing as npt
-import pyproj
-from pyproj.exceptions import CRSError, ProjError
 
 from server.geodesy.ellipsoid import GRS80, Ellipsoid
 
-if TYPE_CHECKING:  # the type is defined in pyproj's compiled part
-    from pyproj._crs import Ellipsoid as Ellipsoid_
+if TYPE_CHECKING:  # pyproj itself is imported where a CRS is built: plane runs never pay
+    import pyproj
+    from pyproj._crs import Ellipsoid as Ellipsoid_  # defined in pyproj's compiled part
 
 #: Exact metres per unit of the length units a field book uses, keyed by the file's spelling
 #: (international foot 0.3048 m; US survey foot 1200/3937 m: NIST and NOAA/NGS, 85 FR 62698).
@@ -158,6 +157,9 @@ def crs_from_epsg(text: str) -> Crs:
 
 @functools.lru_cache(maxsize=32)
 def _epsg(code: int) -> Crs:
+    import pyproj
+    from pyproj.exceptions import CRSError
+
     label = f"EPSG:{code}"
     try:
         crs = pyproj.CRS.from_epsg(code)
@@ -170,6 +172,7 @@ def _epsg(code: int) -> Crs:
     return _build(label, crs, check_point=_area_centre(crs))
 
 
+@functools.lru_cache(maxsize=32)  # one Crs (and its pyproj transformers) per site grid
 def local_crs(
     lat: float,
     lon: float,
@@ -197,6 +200,8 @@ def local_crs(
         raise CrsError(
             f"the site grid's longitude {math.degrees(lon):.6f}° is not between -180° and 180°"
         )
+    import pyproj
+
     mpu = _EXACT_UNITS[unit]
     # PROJ takes the false easting and northing in metres whatever +units says
     proj = (
@@ -268,6 +273,9 @@ def _check_projected(label: str, crs: pyproj.CRS) -> None:
 def _build(
     label: str, crs: pyproj.CRS, check_point: tuple[float, float] | None, name: str | None = None
 ) -> Crs:
+    import pyproj
+    from pyproj.exceptions import CRSError, ProjError
+
     geodetic, spheroid = crs.geodetic_crs, crs.ellipsoid
     if geodetic is None or spheroid is None:
         raise CrsError(f"{label} ({crs.name}) has no geodetic CRS and ellipsoid")
@@ -331,6 +339,8 @@ def _require_conversion(label: str, crs: pyproj.CRS, transformer: pyproj.Transfo
 
 def _check_proj_agrees(built: Crs, lon_lat_deg: tuple[float, float]) -> None:
     """``Proj`` (factors) and the transformer (coordinates) must project alike."""
+    import pyproj
+
     lon, lat = lon_lat_deg
     east, north = built.geodetic_to_grid(np.radians([lat]), np.radians([lon]))
     with warnings.catch_warnings():

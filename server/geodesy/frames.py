@@ -64,7 +64,7 @@ end (horizontal only).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -85,6 +85,7 @@ class LocalFrames:
     rotation: np.ndarray  # (n, 3, 3): rows east, north, up
     meridian: np.ndarray  # (n,) M + h, metres
     prime_vertical: np.ndarray  # (n,) N + h, metres
+    up_rate: np.ndarray | None = None  # (n, 3, 3) U = ∂û/∂X where already computed
 
     @property
     def east(self) -> np.ndarray:
@@ -100,10 +101,28 @@ class LocalFrames:
 
     def up_derivative(self) -> np.ndarray:
         """U = ∂û/∂X, shape (n, 3, 3)."""
+        if self.up_rate is not None:
+            return self.up_rate
         n, e = self.north, self.east
         return (
             n[:, :, None] * n[:, None, :] / self.meridian[:, None, None]
             + e[:, :, None] * e[:, None, :] / self.prime_vertical[:, None, None]
+        )
+
+    def with_up_derivative(self) -> LocalFrames:
+        """The same frames holding U, for frames whose rows are taken many times."""
+        return replace(self, up_rate=self.up_derivative())
+
+    def take(self, index: np.ndarray) -> LocalFrames:
+        """The frames at rows ``index`` (the same numbers as computing them there)."""
+        return LocalFrames(
+            lat=self.lat[index],
+            lon=self.lon[index],
+            h=self.h[index],
+            rotation=self.rotation[index],
+            meridian=self.meridian[index],
+            prime_vertical=self.prime_vertical[index],
+            up_rate=None if self.up_rate is None else self.up_rate[index],
         )
 
 
@@ -157,6 +176,11 @@ def local_frames(ellipsoid: Ellipsoid, xyz: np.ndarray) -> LocalFrames:
     )
 
 
+def frames_at(ellipsoid: Ellipsoid, xyz: np.ndarray, given: LocalFrames | None) -> LocalFrames:
+    """``given`` (the frames at ``xyz`` already computed), else the frames computed here."""
+    return given if given is not None else local_frames(ellipsoid, xyz)
+
+
 def lifted(ellipsoid: Ellipsoid, xyz: np.ndarray, height: np.ndarray | float) -> np.ndarray:
     """Points ``height`` metres above ``xyz`` along their ellipsoid normals."""
     frames = local_frames(ellipsoid, xyz)
@@ -169,16 +193,21 @@ def local_vector(
     to: np.ndarray,
     hi: np.ndarray | float = 0.0,
     ht: np.ndarray | float = 0.0,
+    *,
+    frames_from: LocalFrames | None = None,
+    frames_to: LocalFrames | None = None,
 ) -> LocalVector:
-    """(a, b, c): target (TO + ht) minus instrument (FROM + hi) in FROM's east, north, up."""
+    """(a, b, c): target (TO + ht) minus instrument (FROM + hi) in FROM's east, north, up.
+
+    ``frames_from``/``frames_to``: the local frames at FROM and TO when the caller has them.
+    """
     frm, to = _points(frm), _points(to)
     count = len(frm)
     hi, ht = _column(hi, count), _column(ht, count)
-    at = local_frames(ellipsoid, frm)
-    target = local_frames(ellipsoid, to)
-    d = (to + ht * target.up) - (frm + hi * at.up)
+    at = frames_at(ellipsoid, frm, frames_from)
+    target = frames_at(ellipsoid, to, frames_to)
+    enu = _local_components(at, target, frm, to, hi, ht)
     rot = at.rotation
-    enu = _apply(rot, d)
     identity = np.eye(3)
     d_to = rot @ (identity + ht[:, :, None] * target.up_derivative())
     a, b, c = enu[:, 0:1], enu[:, 1:2], enu[:, 2:3]
@@ -197,17 +226,33 @@ def local_vector(
     return LocalVector(enu=enu, d_from=d_from, d_to=d_to, frames=at)
 
 
+def _local_components(
+    at: LocalFrames,
+    target: LocalFrames,
+    frm: np.ndarray,
+    to: np.ndarray,
+    hi: np.ndarray,
+    ht: np.ndarray,
+) -> np.ndarray:
+    """(a, b, c) = R_i (P_t − P_i), shape (n, 3)."""
+    d = (to + ht * target.up) - (frm + hi * at.up)
+    return _apply(at.rotation, d)
+
+
 def slope_distance(
     ellipsoid: Ellipsoid,
     frm: np.ndarray,
     to: np.ndarray,
     hi: np.ndarray | float = 0.0,
     ht: np.ndarray | float = 0.0,
+    *,
+    frames_from: LocalFrames | None = None,
+    frames_to: LocalFrames | None = None,
 ) -> Equation:
     """Straight-line distance from the instrument (FROM + hi) to the target (TO + ht)."""
     frm, to = _points(frm), _points(to)
     count = len(frm)
-    at, target = local_frames(ellipsoid, frm), local_frames(ellipsoid, to)
+    at, target = frames_at(ellipsoid, frm, frames_from), frames_at(ellipsoid, to, frames_to)
     hi, ht = _column(hi, count), _column(ht, count)
     d = (to + ht * target.up) - (frm + hi * at.up)
     s = np.linalg.norm(d, axis=1)
@@ -225,9 +270,12 @@ def zenith_angle(
     hi: np.ndarray | float = 0.0,
     ht: np.ndarray | float = 0.0,
     k: np.ndarray | float = 0.0,
+    *,
+    frames_from: LocalFrames | None = None,
+    frames_to: LocalFrames | None = None,
 ) -> Equation:
     """Zenith angle at the instrument from its normal to the target, less k·S/(2R)."""
-    vec = local_vector(ellipsoid, frm, to, hi, ht)
+    vec = local_vector(ellipsoid, frm, to, hi, ht, frames_from=frames_from, frames_to=frames_to)
     a, b, c = vec.enu[:, 0], vec.enu[:, 1], vec.enu[:, 2]
     s = np.hypot(a, b)
     slope2 = s * s + c * c
@@ -247,22 +295,52 @@ def horizon_azimuth(
     to: np.ndarray,
     hi: np.ndarray | float = 0.0,
     ht: np.ndarray | float = 0.0,
+    *,
+    frames_from: LocalFrames | None = None,
+    frames_to: LocalFrames | None = None,
 ) -> Equation:
     """Azimuth in the horizon plane at the instrument, clockwise from geodetic north, [0, 2π).
 
     For horizontal directions and angles toward the marks leave ``ht`` at 0; ``hi`` moves the
     instrument along its own normal and so changes only the (tiny) turning terms.
     """
-    vec = local_vector(ellipsoid, frm, to, hi, ht)
+    vec = local_vector(ellipsoid, frm, to, hi, ht, frames_from=frames_from, frames_to=frames_to)
     a, b = vec.enu[:, 0], vec.enu[:, 1]
     s2 = _nonzero(a * a + b * b, "the target is straight above or below the instrument")
     grad = np.stack([b, -a, np.zeros_like(a)], axis=1) / s2[:, None]
     return _chain(np.mod(np.arctan2(a, b), TWO_PI), grad, vec)
 
 
-def horizon_distance(ellipsoid: Ellipsoid, frm: np.ndarray, to: np.ndarray) -> np.ndarray:
+def horizon_azimuth_value(
+    ellipsoid: Ellipsoid,
+    frm: np.ndarray,
+    to: np.ndarray,
+    *,
+    frames_from: LocalFrames | None = None,
+    frames_to: LocalFrames | None = None,
+) -> np.ndarray:
+    """The azimuth of ``horizon_azimuth`` toward the marks (hi = ht = 0), without partials."""
+    frm, to = _points(frm), _points(to)
+    count = len(frm)
+    zero = _column(0.0, count)
+    at = frames_at(ellipsoid, frm, frames_from)
+    target = frames_at(ellipsoid, to, frames_to)
+    enu = _local_components(at, target, frm, to, zero, zero)
+    a, b = enu[:, 0], enu[:, 1]
+    _nonzero(a * a + b * b, "the target is straight above or below the instrument")
+    return np.mod(np.arctan2(a, b), TWO_PI)
+
+
+def horizon_distance(
+    ellipsoid: Ellipsoid,
+    frm: np.ndarray,
+    to: np.ndarray,
+    *,
+    frames_from: LocalFrames | None = None,
+    frames_to: LocalFrames | None = None,
+) -> np.ndarray:
     """Distance D in the horizon plane at FROM to TO's mark, √(a² + b²) (centering terms)."""
-    enu = local_vector(ellipsoid, frm, to).enu
+    enu = local_vector(ellipsoid, frm, to, frames_from=frames_from, frames_to=frames_to).enu
     return np.hypot(enu[:, 0], enu[:, 1])
 
 

@@ -41,21 +41,32 @@ Methods, repeated until a pass reaches nothing new:
    h_to = h_from + ΔH + N_to − N_from (deflections of the vertical taken as zero).
 4. Whatever is still missing a horizontal position or a height is named in
    ``UnreachablePointsError``.
+
+How it runs.  Which method reaches which point depends only on which points are already
+placed, never on their coordinates, and a placed point never moves again.  So the passes
+above run on names alone and record each number to compute as a step (a position, a
+round's orientation as the round stands before it places anything, a polar tie, a point
+one baseline further, a grid tie, a height); then the steps are evaluated level by level,
+all steps of a kind and level in one numpy batch.  Each point gets the arithmetic it would
+get on its own, in the same order, so the batches do not change a bit of the result.
 """
 
 from __future__ import annotations
 
+import functools
 import math
 from collections import deque
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import TypeVar
+from typing import TYPE_CHECKING, TypeVar
 
 import numpy as np
-from pyproj import Geod
 
 from server.geodesy import frames
 from server.geodesy.ellipsoid import GRS80, Ellipsoid
+
+if TYPE_CHECKING:
+    from pyproj import Geod
 
 GRS80_A, GRS80_F = GRS80.a, GRS80.f
 #: Earth radius of the curvature and refraction terms, metres (the model's, ``frames.py``).
@@ -214,7 +225,13 @@ class _Ellipsoid:
     def __init__(self, a: float, f: float) -> None:
         self.shape = Ellipsoid(a, f)
         self.a, self.f, self.e2 = a, f, self.shape.e2
-        self.geod = Geod(a=a, f=f)
+
+    @functools.cached_property
+    def geod(self) -> Geod:
+        """pyproj's geodesics on this ellipsoid (imported when a grid distance needs them)."""
+        from pyproj import Geod
+
+        return Geod(a=self.a, f=self.f)
 
     def to_ecef(self, lat: float, lon: float, h: float) -> np.ndarray:
         return np.asarray(self.shape.to_ecef(lat, lon, h), dtype=float).reshape(3)
@@ -229,35 +246,271 @@ def enu_rotation(lat: float, lon: float) -> np.ndarray:
     return frames.enu_rotation(np.array([lat]), np.array([lon]))[0]
 
 
-class _State:
-    """Horizontal positions (φ, λ) and ellipsoidal heights found so far."""
+# --------------------------------------------------------------------------------------
+# The numbers of the placement, as steps evaluated later in batches.  Each step holds its
+# inputs (earlier steps and the observations) and, once evaluated, its outputs: φ, λ, h
+# (NaN where the step gives none), and for a position also X and R.  A step's level is one
+# more than the highest level among its inputs, so the steps of one level never depend on
+# each other and are evaluated together.
 
-    def __init__(self, ell: _Ellipsoid, undulations: Mapping[str, float]) -> None:
-        self.ell = ell
+
+class _Step:
+    __slots__ = ("h", "lat", "level", "lon")
+
+    def __init__(self, level: int = 0) -> None:
+        self.level = level
+        self.lat = self.lon = self.h = math.nan
+
+
+class _Known(_Step):
+    """A given value (level 0): a given position's φ, λ, h, or a benchmark's h."""
+
+    __slots__ = ()
+
+    def __init__(self, lat: float, lon: float, h: float) -> None:
+        super().__init__()
+        self.lat, self.lon, self.h = lat, lon, h
+
+
+class _Position(_Step):
+    """X (3,) and R (3, 3) of a placed point from its latitude, longitude and height."""
+
+    __slots__ = ("horizontal", "rot", "vertical", "xyz")
+
+    def __init__(self, horizontal: _Step, vertical: _Step) -> None:
+        super().__init__(1 + max(horizontal.level, vertical.level))
+        self.horizontal, self.vertical = horizontal, vertical
+        self.xyz = self.rot = np.zeros(0)
+
+
+class _Orientation(_Step):
+    """A round's orientation: circular mean of (azimuth to a placed target − direction)."""
+
+    __slots__ = ("omega", "station", "terms")
+
+    def __init__(self, station: _Position, terms: list[tuple[_Position, float]]) -> None:
+        super().__init__(1 + max([station.level] + [t.level for t, _ in terms]))
+        self.station, self.terms = station, terms
+        self.omega = math.nan
+
+
+class _Fixed(_Step):
+    """The orientation of an azimuth (known, level 0)."""
+
+    __slots__ = ("omega",)
+
+    def __init__(self, omega: float) -> None:
+        super().__init__()
+        self.omega = omega
+
+
+class _Polar(_Step):
+    """A target placed along the line of sight: zenith z, sight length L, lift c = hi − ht."""
+
+    __slots__ = ("cos_z", "length", "lift", "orientation", "r", "sin_z", "station")
+
+    def __init__(
+        self,
+        station: _Position,
+        orientation: _Orientation | _Fixed,
+        r: float,
+        slope: SlopeDistance,
+        zen: ZenithAngle,
+    ) -> None:
+        super().__init__(1 + max(station.level, orientation.level))
+        self.station, self.orientation, self.r = station, orientation, r
+        z = zen.value + zen.k * slope.value / (2.0 * EARTH_RADIUS)
+        self.length = _sight_length(slope, zen, z)
+        self.sin_z, self.cos_z = math.sin(z), math.cos(z)
+        self.lift = zen.hi - zen.ht
+
+
+class _Chained(_Step):
+    """A point one baseline away from ``parent`` (a placed position or another chained one):
+    its X is the parent's X plus the components, without a round trip through φ, λ, h."""
+
+    __slots__ = ("delta", "parent", "raw")
+
+    def __init__(self, parent: _Position | _Chained, delta: np.ndarray) -> None:
+        super().__init__(1 + parent.level)
+        self.parent, self.delta = parent, delta
+        self.raw = np.zeros(0)
+
+
+class _GridTie(_Step):
+    """Latitude and longitude from a direction and a grid distance (geodesic forward)."""
+
+    __slots__ = ("distance", "orientation", "r", "station")
+
+    def __init__(
+        self, station: _Step, orientation: _Orientation | _Fixed, r: float, grid: GridDistance
+    ) -> None:
+        super().__init__(1 + max(station.level, orientation.level))
+        self.station, self.orientation, self.r = station, orientation, r
+        self.distance = grid.value / grid.scale
+
+
+class _Height(_Step):
+    """h = source's h + each addend in turn (trigonometric heighting, leveling)."""
+
+    __slots__ = ("addends", "source")
+
+    def __init__(self, source: _Step, addends: tuple[float, ...]) -> None:
+        super().__init__(1 + source.level)
+        self.source, self.addends = source, addends
+
+
+def _evaluate(ell: _Ellipsoid, steps: list[_Step]) -> None:
+    """Evaluate the steps level by level, every kind of step of a level in one batch.
+
+    The arithmetic of each point is the one the placement would do one point at a time
+    (the same formulas in the same order, element-wise), so the numbers do not depend on
+    how the points are grouped.
+    """
+    by_level: dict[int, dict[type, list[_Step]]] = {}
+    for s in steps:
+        by_level.setdefault(s.level, {}).setdefault(type(s), []).append(s)
+    for level in sorted(by_level):
+        for kind, group in by_level[level].items():
+            _EVALUATORS[kind](ell, group)
+
+
+def _geodetic_of(ell: _Ellipsoid, steps: Sequence[_Step], xyz: np.ndarray) -> None:
+    lat, lon, h = ell.shape.from_ecef(xyz)
+    for s, a, b, c in zip(steps, lat.tolist(), lon.tolist(), h.tolist()):
+        s.lat, s.lon, s.h = a, b, c
+
+
+def _evaluate_positions(ell: _Ellipsoid, steps: Sequence[_Step]) -> None:
+    group = [s for s in steps if isinstance(s, _Position)]
+    lat = np.array([s.horizontal.lat for s in group])
+    lon = np.array([s.horizontal.lon for s in group])
+    xyz = ell.shape.to_ecef(lat, lon, np.array([s.vertical.h for s in group]))
+    rot = frames.enu_rotation(lat, lon)
+    for k, s in enumerate(group):
+        s.xyz, s.rot = xyz[k], rot[k]
+
+
+def _evaluate_orientations(ell: _Ellipsoid, steps: Sequence[_Step]) -> None:
+    group = [s for s in steps if isinstance(s, _Orientation)]
+    station = np.array([s.station.xyz for s in group for _ in s.terms])
+    rot = np.array([s.station.rot for s in group for _ in s.terms])
+    target = np.array([t.xyz for s in group for t, _ in s.terms])
+    local = (rot @ (target - station)[:, :, None])[:, :, 0]
+    azimuths = iter(map(math.atan2, local[:, 0].tolist(), local[:, 1].tolist()))
+    for s in group:
+        s.omega = _circular_mean([next(azimuths) - r for _, r in s.terms])
+
+
+def _evaluate_polar(ell: _Ellipsoid, steps: Sequence[_Step]) -> None:
+    group = [s for s in steps if isinstance(s, _Polar)]
+    sight = []
+    for s in group:
+        alpha = s.r + _omega(s.orientation)
+        sight.append([s.sin_z * math.sin(alpha), s.sin_z * math.cos(alpha), s.cos_z])
+    enu = np.array([s.length for s in group])[:, None] * np.array(sight)
+    rot = np.array([s.station.rot for s in group])
+    lift = np.array([s.lift for s in group])[:, None] * rot[:, 2, :]
+    xyz = np.array([s.station.xyz for s in group]) + lift
+    xyz = xyz + (np.swapaxes(rot, 1, 2) @ enu[:, :, None])[:, :, 0]
+    _geodetic_of(ell, group, xyz)
+
+
+def _evaluate_chained(ell: _Ellipsoid, steps: Sequence[_Step]) -> None:
+    group = [s for s in steps if isinstance(s, _Chained)]
+    parent = np.array([_raw(s.parent) for s in group])
+    raw = parent + np.array([s.delta for s in group])
+    for k, s in enumerate(group):
+        s.raw = raw[k]
+    _geodetic_of(ell, group, raw)
+
+
+def _evaluate_grid_ties(ell: _Ellipsoid, steps: Sequence[_Step]) -> None:
+    for s in steps:
+        assert isinstance(s, _GridTie)
+        alpha = s.r + _omega(s.orientation)
+        lon2, lat2, _ = ell.geod.fwd(
+            math.degrees(s.station.lon),
+            math.degrees(s.station.lat),
+            math.degrees(alpha),
+            s.distance,
+        )
+        s.lat, s.lon = math.radians(lat2), math.radians(lon2)
+
+
+def _evaluate_heights(ell: _Ellipsoid, steps: Sequence[_Step]) -> None:
+    for s in steps:
+        assert isinstance(s, _Height)
+        h = s.source.h
+        for addend in s.addends:
+            h = h + addend
+        s.h = h
+
+
+def _evaluate_known(ell: _Ellipsoid, steps: Sequence[_Step]) -> None:
+    """Given values and fixed orientations are set when they are made."""
+
+
+_EVALUATORS = {
+    _Known: _evaluate_known,
+    _Fixed: _evaluate_known,
+    _Position: _evaluate_positions,
+    _Orientation: _evaluate_orientations,
+    _Polar: _evaluate_polar,
+    _Chained: _evaluate_chained,
+    _GridTie: _evaluate_grid_ties,
+    _Height: _evaluate_heights,
+}
+
+
+def _omega(orientation: _Orientation | _Fixed) -> float:
+    return orientation.omega
+
+
+def _raw(step: _Position | _Chained) -> np.ndarray:
+    return step.xyz if isinstance(step, _Position) else step.raw
+
+
+class _State:
+    """Which step last gave each point its horizontal position and its ellipsoidal height.
+
+    Which points a method reaches depends on which points are already placed, never on
+    their coordinates, so the placement runs on names first, recording steps; the numbers
+    follow in batches (``_evaluate``).  Once a point is placed it never changes.
+    """
+
+    def __init__(self, undulations: Mapping[str, float]) -> None:
         self.und = undulations
-        self.horizontal: dict[str, tuple[float, float]] = {}
-        self.height: dict[str, float] = {}
+        self.horizontal: dict[str, _Step] = {}
+        self.height: dict[str, _Step] = {}
         self.methods: dict[str, str] = {}
+        self.steps: list[_Step] = []
+        self._positions: dict[str, _Position] = {}
+
+    def add(self, step: _S) -> _S:
+        self.steps.append(step)
+        return step
 
     def placed(self, name: str) -> bool:
         return name in self.horizontal and name in self.height
 
-    def xyz(self, name: str) -> np.ndarray:
-        lat, lon = self.horizontal[name]
-        return self.ell.to_ecef(lat, lon, self.height[name])
+    def position(self, name: str) -> _Position:
+        """The position step of a placed point (made once: a placed point stays)."""
+        found = self._positions.get(name)
+        if found is None:
+            found = self.add(_Position(self.horizontal[name], self.height[name]))
+            self._positions[name] = found
+        return found
 
-    def place(self, name: str, xyz: np.ndarray, method: str) -> None:
+    def place(self, name: str, step: _Step, method: str) -> None:
         """Place a point found by ``method``; a height the book gives is kept (a benchmark
         sighted from the instrument must start, and if held stay, at its booked height)."""
-        lat, lon, h = self.ell.from_ecef(xyz)
-        self.horizontal[name] = (lat, lon)
-        self.height.setdefault(name, h)
+        self.horizontal[name] = step
+        self.height.setdefault(name, step)
         self.methods[name] = method
 
-    def azimuth(self, station: str, target: str) -> float:
-        lat, lon = self.horizontal[station]
-        e, n, _ = enu_rotation(lat, lon) @ (self.xyz(target) - self.xyz(station))
-        return math.atan2(e, n)
+
+_S = TypeVar("_S", bound=_Step)
 
 
 def _circular_mean(angles: list[float]) -> float:
@@ -271,7 +524,9 @@ class _Round:
     orientation: float | None = None  # fixed for azimuths
 
 
-def _rounds(observations: Sequence[Observation]) -> list[_Round]:
+def _rounds(
+    observations: Sequence[DirectionRound | HorizontalAngle | Azimuth | Observation],
+) -> list[_Round]:
     rounds: list[_Round] = []
     for obs in observations:
         if isinstance(obs, DirectionRound):
@@ -283,17 +538,16 @@ def _rounds(observations: Sequence[Observation]) -> list[_Round]:
     return rounds
 
 
-def _orientation(state: _State, rnd: _Round) -> float | None:
-    if rnd.orientation is not None:
-        return rnd.orientation
+def _orientation_terms(state: _State, rnd: _Round) -> list[tuple[_Position, float]] | None:
+    """The placed targets that orient the round now, or None when the station is not placed."""
     if not state.placed(rnd.station):
         return None
-    terms = [
-        state.azimuth(rnd.station, t) - r
+    station = rnd.station
+    return [
+        (state.position(t), r)
         for t, r in rnd.directions.items()
-        if t != rnd.station and state.placed(t)
+        if t != station and state.placed(t)
     ]
-    return _circular_mean(terms) if terms else None
 
 
 def _baselines(state: _State, baselines: list[Baseline], order: list[str]) -> bool:
@@ -303,15 +557,20 @@ def _baselines(state: _State, baselines: list[Baseline], order: list[str]) -> bo
         d = np.array([b.dx, b.dy, b.dz])
         links.setdefault(b.frm, []).append((b.to, d))
         links.setdefault(b.to, []).append((b.frm, -d))
+    if not links:
+        return False
     queue = deque(p for p in order if state.placed(p))
-    xyz = {p: state.xyz(p) for p in queue}
+    reached: dict[str, _Position | _Chained] = {}
+    seen = set(queue)
     grew = False
     while queue:
         p = queue.popleft()
         for q, d in links.get(p, ()):
-            if q not in xyz and not state.placed(q):
-                xyz[q] = xyz[p] + d
-                state.place(q, xyz[q], f"baseline from {p}")
+            if q not in seen and not state.placed(q):
+                parent = reached.get(p) or state.position(p)
+                reached[q] = state.add(_Chained(parent, d))
+                seen.add(q)
+                state.place(q, reached[q], f"baseline from {p}")
                 queue.append(q)
                 grew = True
     return grew
@@ -337,34 +596,32 @@ def _polar(
     grids: _Pairs[GridDistance],
 ) -> bool:
     grew = False
+    horizontal, height = state.horizontal, state.height
     for rnd in rounds:
-        omega = _orientation(state, rnd)
-        if omega is None or rnd.station not in state.horizontal:
-            continue
         s = rnd.station
+        if s not in horizontal or all(
+            t == s or (t in horizontal and t in height) for t in rnd.directions
+        ):  # nothing to place from this round now
+            continue
+        orientation: _Orientation | _Fixed
+        if rnd.orientation is not None:
+            orientation = _Fixed(rnd.orientation)
+        else:
+            terms = _orientation_terms(state, rnd)  # as the round stands before it places
+            if not terms:
+                continue
+            orientation = state.add(_Orientation(state.position(s), terms))
         for t, r in rnd.directions.items():
             if state.placed(t) or t == s:
                 continue
-            alpha = r + omega
             slope, zen = _slope_from(slopes, s, t), zeniths.get((s, t))
             if slope is not None and zen is not None and state.placed(s):
-                z = zen.value + zen.k * slope.value / (2.0 * EARTH_RADIUS)
-                length = _sight_length(slope, zen, z)
-                lat, lon = state.horizontal[s]
-                rot = enu_rotation(lat, lon)
-                enu = length * np.array(
-                    [math.sin(z) * math.sin(alpha), math.sin(z) * math.cos(alpha), math.cos(z)]
-                )
-                xyz = state.xyz(s) + (zen.hi - zen.ht) * rot[2] + rot.T @ enu
-                state.place(t, xyz, f"polar tie from {s}")
+                step = _Polar(state.position(s), orientation, r, slope, zen)
+                state.place(t, state.add(step), f"polar tie from {s}")
                 grew = True
             elif t not in state.horizontal and (s, t) in grids:
-                g = grids[(s, t)]
-                lat, lon = state.horizontal[s]
-                lon2, lat2, _ = state.ell.geod.fwd(
-                    math.degrees(lon), math.degrees(lat), math.degrees(alpha), g.value / g.scale
-                )
-                state.horizontal[t] = (math.radians(lat2), math.radians(lon2))
+                tie = _GridTie(state.horizontal[s], orientation, r, grids[(s, t)])
+                state.horizontal[t] = state.add(tie)
                 state.methods.setdefault(t, f"direction and grid distance from {s}")
                 grew = True
     return grew
@@ -377,53 +634,88 @@ def _heights(
     levels: list[HeightDifference],
 ) -> bool:
     grew = False
+    height = state.height
     for (s, t), zen in zeniths.items():
+        if (s in height) == (t in height):
+            continue
         slope = _slope_from(slopes, s, t)
-        if slope is None or (s in state.height) == (t in state.height):
+        if slope is None:
             continue
         z = zen.value + zen.k * slope.value / (2.0 * EARTH_RADIUS)
         length = _sight_length(slope, zen, z)
         dh = trigonometric_height_difference(length, zen.value, zen.hi, zen.ht, zen.k)
-        if s in state.height:
-            state.height[t] = state.height[s] + dh
+        if s in height:
+            height[t] = state.add(_Height(height[s], (dh,)))
         else:
-            state.height[s] = state.height[t] - dh
+            height[s] = state.add(_Height(height[t], (-dh,)))
         grew = True
     changed = True
     while changed:  # leveling lines chain in either direction
         changed = False
         for lv in levels:
             n_from, n_to = state.und.get(lv.frm, 0.0), state.und.get(lv.to, 0.0)
-            if lv.frm in state.height and lv.to not in state.height:
-                state.height[lv.to] = state.height[lv.frm] + lv.value + n_to - n_from
-            elif lv.to in state.height and lv.frm not in state.height:
-                state.height[lv.frm] = state.height[lv.to] - lv.value - n_to + n_from
+            if lv.frm in height and lv.to not in height:
+                height[lv.to] = state.add(_Height(height[lv.frm], (lv.value, n_to, -n_from)))
+            elif lv.to in height and lv.frm not in height:
+                height[lv.frm] = state.add(_Height(height[lv.to], (-lv.value, -n_to, n_from)))
             else:
                 continue
             changed = grew = True
     return grew
 
 
-def _names(
+@dataclass(slots=True)
+class _Inputs:
+    """The observations sorted by what each method reads, and every name in order."""
+
+    names: dict[str, None] = field(default_factory=dict)
+    baselines: list[Baseline] = field(default_factory=list)
+    slopes: dict[tuple[str, str], SlopeDistance] = field(default_factory=dict)
+    zeniths: dict[tuple[str, str], ZenithAngle] = field(default_factory=dict)
+    grids: dict[tuple[str, str], GridDistance] = field(default_factory=dict)
+    levels: list[HeightDifference] = field(default_factory=list)
+    sightings: list[DirectionRound | HorizontalAngle | Azimuth] = field(default_factory=list)
+
+
+def _inputs(
     known: Sequence[KnownPoint],
     heights: Sequence[KnownHeight],
     observations: Sequence[Observation],
-) -> list[str]:
-    order: dict[str, None] = {}
+) -> _Inputs:
+    """One pass over the observations (names in the order they first appear)."""
+    found = _Inputs()
+    order = found.names
     for p in known:
         order[p.name] = None
     for hp in heights:
         order[hp.name] = None
     for obs in observations:
-        if isinstance(obs, DirectionRound):
+        if isinstance(obs, SlopeDistance):
+            found.slopes[(obs.frm, obs.to)] = obs
+        elif isinstance(obs, ZenithAngle):
+            found.zeniths[(obs.frm, obs.to)] = obs
+        elif isinstance(obs, DirectionRound):
+            found.sightings.append(obs)
             order[obs.station] = None
             for t, _ in obs.directions:
                 order[t] = None
+            continue
         elif isinstance(obs, HorizontalAngle):
-            order.update(dict.fromkeys((obs.at, obs.frm, obs.to)))
-        else:
-            order.update(dict.fromkeys((obs.frm, obs.to)))
-    return list(order)
+            found.sightings.append(obs)
+            order[obs.at] = order[obs.frm] = order[obs.to] = None
+            continue
+        elif isinstance(obs, Baseline):
+            found.baselines.append(obs)
+        elif isinstance(obs, HeightDifference):
+            found.levels.append(obs)
+        elif isinstance(obs, GridDistance):
+            found.grids[(obs.frm, obs.to)] = obs
+        elif isinstance(obs, Azimuth):
+            found.sightings.append(obs)
+        order[obs.frm] = order[obs.to] = None
+    grids = found.grids
+    grids.update({(o.to, o.frm): o for o in grids.values() if (o.to, o.frm) not in grids})
+    return found
 
 
 def start_positions(
@@ -440,36 +732,38 @@ def start_positions(
     Raises ``UnreachablePointsError`` naming the points no method reaches.
     """
     und = dict(undulations or {})
-    state = _State(_Ellipsoid(a, f), und)
+    ell = _Ellipsoid(a, f)
+    state = _State(und)
     for hp in heights:
-        state.height[hp.name] = hp.height + und.get(hp.name, 0.0)
+        state.height[hp.name] = _Known(math.nan, math.nan, hp.height + und.get(hp.name, 0.0))
         state.methods[hp.name] = "given height"
-    for p in known:
-        lat, lon, h = state.ell.from_ecef(p.xyz)
-        state.horizontal[p.name] = (lat, lon)
-        if p.height_known:
-            state.height[p.name] = h
-        state.methods[p.name] = "control" if p.control else "given"
-    names = _names(known, heights, observations)
+    if known:
+        lat, lon, h = ell.shape.from_ecef(np.array([p.xyz for p in known], dtype=float))
+        for p, values in zip(known, zip(lat.tolist(), lon.tolist(), h.tolist())):
+            given = _Known(*values)
+            state.horizontal[p.name] = given
+            if p.height_known:
+                state.height[p.name] = given
+            state.methods[p.name] = "control" if p.control else "given"
+    inputs = _inputs(known, heights, observations)
+    names = list(inputs.names)
     control = [p.name for p in known if p.control]
-    order = control + [n for n in names if n not in set(control)]
-    baselines = [o for o in observations if isinstance(o, Baseline)]
-    slopes = {(o.frm, o.to): o for o in observations if isinstance(o, SlopeDistance)}
-    zeniths = {(o.frm, o.to): o for o in observations if isinstance(o, ZenithAngle)}
-    grids = {(o.frm, o.to): o for o in observations if isinstance(o, GridDistance)}
-    grids.update({(o.to, o.frm): o for o in grids.values() if (o.to, o.frm) not in grids})
-    levels = [o for o in observations if isinstance(o, HeightDifference)]
-    rounds = _rounds(observations)
+    held = set(control)
+    order = control + [n for n in names if n not in held]
+    slopes, zeniths = inputs.slopes, inputs.zeniths
+    rounds = _rounds(inputs.sightings)
     while True:
-        grew = _baselines(state, baselines, order)
-        grew |= _polar(state, rounds, slopes, zeniths, grids)
-        grew |= _heights(state, slopes, zeniths, levels)
+        grew = _baselines(state, inputs.baselines, order)
+        grew |= _polar(state, rounds, slopes, zeniths, inputs.grids)
+        grew |= _heights(state, slopes, zeniths, inputs.levels)
         if not grew:
             break
     missing = [n for n in names if not state.placed(n)]
     if missing:
         raise UnreachablePointsError(missing)
+    final = [state.position(n) for n in names]
+    _evaluate(ell, state.steps)
     return StartValues(
-        positions={n: tuple(float(c) for c in state.xyz(n)) for n in names},  # type: ignore[misc]
+        positions={n: (x, y, z) for n, (x, y, z) in zip(names, (p.xyz.tolist() for p in final))},
         methods=dict(state.methods),
     )

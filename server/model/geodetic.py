@@ -83,10 +83,18 @@ def undulations(fieldbook: Fieldbook) -> dict[str, float]:
     """Each point's geoid undulation in metres: its own, else the file's, else 0."""
     default = fieldbook.geoid_undulation or 0.0
     named = {p.name: p.geoid for p in fieldbook.points if p.geoid is not None}
-    names = {p.name for p in fieldbook.points}
-    for obs in fieldbook.observations:
-        names.update(n for n in (obs.from_point, obs.at, obs.to) if n)
+    names = touched_names(fieldbook.observations)
+    names.update(p.name for p in fieldbook.points)
     return {name: float(named.get(name, default)) for name in sorted(names)}
+
+
+def touched_names(observations: Sequence[Observation]) -> set[str]:
+    """The names an observation's FROM, AT or TO gives (empty names left out)."""
+    names = {o.from_point for o in observations}
+    names.update([o.to for o in observations])
+    names.update([o.at for o in observations if o.at])
+    names.discard("")
+    return names
 
 
 def geodetic_frame(fieldbook: Fieldbook) -> GeodeticFrame:
@@ -149,59 +157,81 @@ def grid_to_ecef(crs: Crs, east_m: float, north_m: float, h: float) -> XYZ:
 def _given_points(
     points: Sequence[PointStatement], crs: Crs, und: Mapping[str, float]
 ) -> tuple[list[start3d.KnownPoint], list[start3d.KnownHeight]]:
-    """Points with a given position (grid or lat/lon) and benchmarks with a height only."""
+    """Points with a given position (grid or lat/lon) and benchmarks with a height only.
+
+    The positions are converted together: one pyproj call for all grid points, one for all
+    points given by latitude and longitude (each point's numbers are those of a call of its
+    own).
+    """
+    geographic = [p for p in points if p.latitude is not None and p.longitude is not None]
+    grid = [
+        p
+        for p in points
+        if not (p.latitude is not None and p.longitude is not None)
+        and p.east is not None
+        and p.north is not None
+    ]
+    position: dict[int, tuple[float, float, float]] = {}
+    if geographic:
+        xyz = crs.geodetic_to_ecef(
+            np.array([p.latitude for p in geographic]),
+            np.array([p.longitude for p in geographic]),
+            np.array([_ellipsoidal(p, und) for p in geographic]),
+        )
+        position.update(zip(map(id, geographic), map(tuple, np.asarray(xyz).tolist())))
+    if grid:
+        per_unit = crs.metres_per_unit
+        xyz = crs.grid_to_ecef(
+            np.array([p.east / per_unit for p in grid if p.east is not None]),
+            np.array([p.north / per_unit for p in grid if p.north is not None]),
+            np.array([_ellipsoidal(p, und) for p in grid]),
+        )
+        position.update(zip(map(id, grid), map(tuple, np.asarray(xyz).reshape(-1, 3).tolist())))
     known: list[start3d.KnownPoint] = []
     heights: list[start3d.KnownHeight] = []
     for p in points:
-        n = und.get(p.name, 0.0)
-        has_height = p.height is not None
-        h = (p.height if p.height is not None else 0.0) + n
-        control = bool(p.fixed or p.weighted)
-        if p.latitude is not None and p.longitude is not None:
-            xyz = crs.geodetic_to_ecef(
-                np.array([p.latitude]), np.array([p.longitude]), np.array([h])
-            )
-            x, y, z = (float(c) for c in np.asarray(xyz).reshape(3))
-            position = (x, y, z)
-        elif p.east is not None and p.north is not None:
-            position = grid_to_ecef(crs, p.east, p.north, h)
-        else:
+        found = position.get(id(p))
+        if found is None:
             if p.height is not None:
                 heights.append(start3d.KnownHeight(p.name, p.height))
             continue
-        if not all(math.isfinite(c) for c in position):
+        if not all(math.isfinite(c) for c in found):
             raise NetworkError(
                 f"point {p.name} (line {p.line}) lies where the CRS {crs.definition} cannot "
                 "place it on its ellipsoid; check its coordinates and the crs line",
                 (p.name,),
             )
+        x, y, z = found
         known.append(
             start3d.KnownPoint(
                 p.name,
-                position,
-                control=control,
-                height_known=has_height,
+                (x, y, z),
+                control=bool(p.fixed or p.weighted),
+                height_known=p.height is not None,
             )
         )
     return known, heights
 
 
+def _ellipsoidal(p: PointStatement, und: Mapping[str, float]) -> float:
+    """h = H + N of a given point (H taken as 0 where the book gives none)."""
+    return (p.height if p.height is not None else 0.0) + und.get(p.name, 0.0)
+
+
 def height_only_points(fieldbook: Fieldbook) -> set[str]:
     """Points that only used level lines touch and that have no given position: they
     carry a height alone (their place on the ellipsoid is only a reference)."""
-    spatial: set[str] = set()
-    leveled: set[str] = set()
-    for obs in fieldbook.observations:
-        if obs.ignored or obs.planned:
-            continue
-        names = leveled if obs.kind == "level" else spatial
-        names.update(n for n in (obs.from_point, obs.at, obs.to) if n)
+    active = [obs for obs in fieldbook.observations if not (obs.ignored or obs.planned)]
+    levels = [obs for obs in active if obs.kind == "level"]
+    if not levels:
+        return set()
+    spatial = touched_names([obs for obs in active if obs.kind != "level"])
     placed = {
         p.name
         for p in fieldbook.points
         if p.latitude is not None or (p.east is not None and p.north is not None)
     }
-    return leveled - spatial - placed
+    return touched_names(levels) - spatial - placed
 
 
 def _height_only(
@@ -241,33 +271,35 @@ def _start_observations(
     values); they are taken at the first given point.
     """
     convergence, scale = _rough_factors(crs, known)
+    refraction = fieldbook.refraction
     by_round: dict[int, list[Observation]] = {}
     out: list[start3d.Observation] = []
     for obs in fieldbook.observations:
         if obs.ignored or obs.planned:
             continue
+        kind = obs.kind
+        if kind == "direction":
+            if obs.round_line is not None:
+                by_round.setdefault(obs.round_line, []).append(obs)
+            continue
         hi, ht = obs.instrument_height or 0.0, obs.target_height or 0.0
-        if obs.kind == "slope":
+        if kind == "slope":
             out.append(start3d.SlopeDistance(obs.from_point, obs.to, obs.value, hi, ht))
-        elif obs.kind == "zenith":
-            out.append(
-                start3d.ZenithAngle(obs.from_point, obs.to, obs.value, hi, ht, fieldbook.refraction)
-            )
-        elif obs.kind == "baseline":
+        elif kind == "zenith":
+            out.append(start3d.ZenithAngle(obs.from_point, obs.to, obs.value, hi, ht, refraction))
+        elif kind == "baseline":
             assert obs.baseline is not None
             dx, dy, dz = obs.baseline.components
             out.append(start3d.Baseline(obs.from_point, obs.to, dx, dy, dz))
-        elif obs.kind == "level":
+        elif kind == "level":
             out.append(start3d.HeightDifference(obs.from_point, obs.to, obs.value))
-        elif obs.kind == "distance":
+        elif kind == "distance":
             out.append(start3d.GridDistance(obs.from_point, obs.to, obs.value, scale))
-        elif obs.kind == "azimuth":
+        elif kind == "azimuth":
             out.append(start3d.Azimuth(obs.from_point, obs.to, obs.value, convergence))
-        elif obs.kind == "angle":
+        elif kind == "angle":
             assert obs.at is not None
             out.append(start3d.HorizontalAngle(obs.at, obs.from_point, obs.to, obs.value))
-        elif obs.kind == "direction" and obs.round_line is not None:
-            by_round.setdefault(obs.round_line, []).append(obs)
     for line in sorted(by_round):
         entries = by_round[line]
         out.append(

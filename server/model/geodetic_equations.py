@@ -49,6 +49,8 @@ from server.geodesy.ellipsoid import Ellipsoid
 from server.geodesy.grid import grid_position
 
 Array = np.ndarray
+#: The local frames at the rows' marks when the caller has them (else they are computed).
+Frames = frames.LocalFrames | None
 
 
 @dataclass(frozen=True, slots=True)
@@ -63,9 +65,9 @@ class Rows:
     partials: dict[str, Array]
 
 
-def rotation_at(ellipsoid: Ellipsoid, xyz: Array) -> Array:
+def rotation_at(ellipsoid: Ellipsoid, xyz: Array, given: Frames = None) -> Array:
     """R (m, 3, 3), rows east, north, up, at Earth-centred points (m, 3)."""
-    return frames.local_frames(ellipsoid, xyz).rotation
+    return frames.frames_at(ellipsoid, xyz, given).rotation
 
 
 def _local(rot: Array, gradient: Array) -> Array:
@@ -73,59 +75,94 @@ def _local(rot: Array, gradient: Array) -> Array:
     return np.einsum("mij,mj->mi", rot, gradient)
 
 
-def slope(ellipsoid: Ellipsoid, frm: Array, to: Array, hi: Array, ht: Array) -> Rows:
-    eq = frames.slope_distance(ellipsoid, frm, to, hi, ht)
-    return Rows(
-        eq.value,
-        {
-            "from": _local(rotation_at(ellipsoid, frm), eq.d_from),
-            "to": _local(rotation_at(ellipsoid, to), eq.d_to),
-        },
-    )
+def slope(
+    ellipsoid: Ellipsoid,
+    frm: Array,
+    to: Array,
+    hi: Array,
+    ht: Array,
+    frames_from: Frames = None,
+    frames_to: Frames = None,
+) -> Rows:
+    at_from = frames.frames_at(ellipsoid, frm, frames_from)
+    at_to = frames.frames_at(ellipsoid, to, frames_to)
+    eq = frames.slope_distance(ellipsoid, frm, to, hi, ht, frames_from=at_from, frames_to=at_to)
+    return _in_local_axes(eq, at_from, at_to, "from")
 
 
-def zenith(ellipsoid: Ellipsoid, frm: Array, to: Array, hi: Array, ht: Array, k: float) -> Rows:
-    eq = frames.zenith_angle(ellipsoid, frm, to, hi, ht, k)
-    return Rows(
-        eq.value,
-        {
-            "from": _local(rotation_at(ellipsoid, frm), eq.d_from),
-            "to": _local(rotation_at(ellipsoid, to), eq.d_to),
-        },
-    )
+def zenith(
+    ellipsoid: Ellipsoid,
+    frm: Array,
+    to: Array,
+    hi: Array,
+    ht: Array,
+    k: float,
+    frames_from: Frames = None,
+    frames_to: Frames = None,
+) -> Rows:
+    at_from = frames.frames_at(ellipsoid, frm, frames_from)
+    at_to = frames.frames_at(ellipsoid, to, frames_to)
+    eq = frames.zenith_angle(ellipsoid, frm, to, hi, ht, k, frames_from=at_from, frames_to=at_to)
+    return _in_local_axes(eq, at_from, at_to, "from")
 
 
-def direction(ellipsoid: Ellipsoid, at: Array, to: Array) -> Rows:
+def direction(
+    ellipsoid: Ellipsoid, at: Array, to: Array, frames_at: Frames = None, frames_to: Frames = None
+) -> Rows:
     """Horizon azimuth AT → TO's mark in [0, 2π) (the caller subtracts the orientation)."""
-    eq = frames.horizon_azimuth(ellipsoid, at, to)
+    at_at = frames.frames_at(ellipsoid, at, frames_at)
+    at_to = frames.frames_at(ellipsoid, to, frames_to)
+    eq = frames.horizon_azimuth(ellipsoid, at, to, frames_from=at_at, frames_to=at_to)
+    return _in_local_axes(eq, at_at, at_to, "at")
+
+
+def _in_local_axes(
+    eq: frames.Equation, at_from: frames.LocalFrames, at_to: frames.LocalFrames, role: str
+) -> Rows:
+    """An equation's partials turned to the local corrections of its two marks."""
     return Rows(
         eq.value,
-        {
-            "at": _local(rotation_at(ellipsoid, at), eq.d_from),
-            "to": _local(rotation_at(ellipsoid, to), eq.d_to),
-        },
+        {role: _local(at_from.rotation, eq.d_from), "to": _local(at_to.rotation, eq.d_to)},
     )
 
 
-def angle(ellipsoid: Ellipsoid, back: Array, at: Array, fore: Array) -> Rows:
+def angle(
+    ellipsoid: Ellipsoid,
+    back: Array,
+    at: Array,
+    fore: Array,
+    frames_back: Frames = None,
+    frames_at: Frames = None,
+    frames_fore: Frames = None,
+) -> Rows:
     """Clockwise angle at AT from BACK to FORE in AT's horizon plane."""
-    f = frames.horizon_azimuth(ellipsoid, at, fore)
-    b = frames.horizon_azimuth(ellipsoid, at, back)
-    rot_at = rotation_at(ellipsoid, at)
+    at_back = frames.frames_at(ellipsoid, back, frames_back)
+    at_at = frames.frames_at(ellipsoid, at, frames_at)
+    at_fore = frames.frames_at(ellipsoid, fore, frames_fore)
+    f = frames.horizon_azimuth(ellipsoid, at, fore, frames_from=at_at, frames_to=at_fore)
+    b = frames.horizon_azimuth(ellipsoid, at, back, frames_from=at_at, frames_to=at_back)
     return Rows(
         f.value - b.value,
         {
-            "to": _local(rotation_at(ellipsoid, fore), f.d_to),
-            "from": -_local(rotation_at(ellipsoid, back), b.d_to),
-            "at": _local(rot_at, f.d_from - b.d_from),
+            "to": _local(at_fore.rotation, f.d_to),
+            "from": -_local(at_back.rotation, b.d_to),
+            "at": _local(at_at.rotation, f.d_from - b.d_from),
         },
     )
 
 
-def level(ellipsoid: Ellipsoid, frm: Array, to: Array, n_from: Array, n_to: Array) -> Rows:
+def level(
+    ellipsoid: Ellipsoid,
+    frm: Array,
+    to: Array,
+    n_from: Array,
+    n_to: Array,
+    frames_from: Frames = None,
+    frames_to: Frames = None,
+) -> Rows:
     """Orthometric height difference; h moves by exactly δu (X + û·δu keeps φ and λ)."""
-    h_from = ellipsoid.from_ecef(frm)[2]
-    h_to = ellipsoid.from_ecef(to)[2]
+    h_from = ellipsoid.from_ecef(frm)[2] if frames_from is None else frames_from.h
+    h_to = ellipsoid.from_ecef(to)[2] if frames_to is None else frames_to.h
     up = np.zeros((len(h_from), 3))
     up[:, 2] = 1.0
     return Rows((h_to - n_to) - (h_from - n_from), {"from": -up, "to": up.copy()})
@@ -168,10 +205,16 @@ def grid_azimuth(crs: Crs, frm: Array, to: Array) -> Rows:
     )
 
 
-def baseline(ellipsoid: Ellipsoid, frm: Array, to: Array) -> Rows:
+def baseline(
+    ellipsoid: Ellipsoid,
+    frm: Array,
+    to: Array,
+    frames_from: Frames = None,
+    frames_to: Frames = None,
+) -> Rows:
     """X_TO − X_FROM (m, 3); partials (m, 3, 3): ∂(TO − FROM)/∂δ = ±Rᵀ."""
-    rot_from = rotation_at(ellipsoid, frm)
-    rot_to = rotation_at(ellipsoid, to)
+    rot_from = rotation_at(ellipsoid, frm, frames_from)
+    rot_to = rotation_at(ellipsoid, to, frames_to)
     return Rows(
         np.asarray(to, dtype=float) - np.asarray(frm, dtype=float),
         {"from": -np.transpose(rot_from, (0, 2, 1)), "to": np.transpose(rot_to, (0, 2, 1)).copy()},
@@ -201,11 +244,17 @@ def slope_sigma(constant: Array, ppm: Array, value: Array, centering: Array) -> 
 
 
 def direction_sigma(
-    ellipsoid: Ellipsoid, constant: Array, centering: Array, at: Array, to: Array
+    ellipsoid: Ellipsoid,
+    constant: Array,
+    centering: Array,
+    at: Array,
+    to: Array,
+    frames_at: Frames = None,
+    frames_to: Frames = None,
 ) -> Array:
     if not np.any(centering):
         return np.asarray(constant, dtype=float)
-    d = frames.horizon_distance(ellipsoid, at, to)
+    d = frames.horizon_distance(ellipsoid, at, to, frames_from=frames_at, frames_to=frames_to)
     with np.errstate(divide="ignore", invalid="ignore"):
         centred = np.sqrt(constant**2 + 2.0 * centering**2 / (d * d))
     return np.where(centering != 0.0, centred, constant)
@@ -232,14 +281,20 @@ def angle_sigma(
 
 
 def baseline_covariance(
-    ellipsoid: Ellipsoid, booked: Array, centering: Array, frm: Array, to: Array
+    ellipsoid: Ellipsoid,
+    booked: Array,
+    centering: Array,
+    frm: Array,
+    to: Array,
+    frames_from: Frames = None,
+    frames_to: Frames = None,
 ) -> Array:
     """Σ (m, 3, 3): the booked covariance plus horizontal centering at both ends."""
     booked = np.asarray(booked, dtype=float).reshape(-1, 3, 3)
     if not np.any(centering):
         return booked
-    a = frames.local_frames(ellipsoid, frm)
-    b = frames.local_frames(ellipsoid, to)
+    a = frames.frames_at(ellipsoid, frm, frames_from)
+    b = frames.frames_at(ellipsoid, to, frames_to)
     return booked + frames.baseline_centering_covariance(a.lat, a.lon, b.lat, b.lon, centering)
 
 

@@ -10,11 +10,12 @@ them; everything else (hi, ht, undulations, booked covariances) travels in the `
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import lru_cache, partial
 
 import numpy as np
 
+from server.geodesy import frames
 from server.geodesy.crs import Crs
 from server.geodesy.ellipsoid import Ellipsoid
 from server.model import geodetic_equations as ge
@@ -52,16 +53,47 @@ def _guarded(
     return equation
 
 
+class _PointFrames:
+    """The local frames at every point for the positions of one evaluation.
+
+    Every kind needs the frames at its rows' marks; computed once per point and taken by
+    row, they are the same numbers as computed row by row.  The frames of the last
+    coordinates seen are kept with a copy of those coordinates, so the kinds of one
+    evaluation share them and coordinates changed in place are never served stale frames.
+    """
+
+    __slots__ = ("_last",)
+
+    def __init__(self) -> None:
+        self._last: tuple[Array, frames.LocalFrames] | None = None
+
+    def at(self, ellipsoid: Ellipsoid, positions: Positions) -> frames.LocalFrames:
+        xyz = np.stack([positions.east, positions.north, positions.height], axis=1)
+        last = self._last  # one read: another thread may replace it meanwhile
+        if last is not None and last[0].shape == xyz.shape and last[0].tobytes() == xyz.tobytes():
+            return last[1]  # the same bits (a −0.0 or a NaN is not taken for another)
+        with np.errstate(invalid="ignore"):  # points no row of this kind may touch
+            found = frames.local_frames(ellipsoid, xyz).with_up_derivative()
+        self._last = (xyz, found)
+        return found
+
+
 @dataclass(frozen=True, eq=False)
 class _Model:
     """What every geodetic kind closes over: the CRS (and its ellipsoid) and k."""
 
     crs: Crs
     refraction: float
+    point_frames: _PointFrames = field(default_factory=_PointFrames)
 
     @property
     def ell(self) -> Ellipsoid:
         return self.crs.ellipsoid
+
+    def frames(self, at: Positions, *index: Array) -> list[frames.LocalFrames]:
+        """The local frames at the marks of each index array (rows of one batch)."""
+        every = self.point_frames.at(self.ell, at)
+        return [every.take(i) for i in index]
 
 
 def _two_ends(rows: ge.Rows) -> Linearised:
@@ -69,12 +101,22 @@ def _two_ends(rows: ge.Rows) -> Linearised:
 
 
 def _slope(m: _Model, b: Batch, at: Positions) -> Linearised:
+    f_from, f_to = m.frames(at, b.frm, b.to)
     return _two_ends(
-        ge.slope(m.ell, _xyz(at, b.frm), _xyz(at, b.to), b.instrument_height, b.target_height)
+        ge.slope(
+            m.ell,
+            _xyz(at, b.frm),
+            _xyz(at, b.to),
+            b.instrument_height,
+            b.target_height,
+            f_from,
+            f_to,
+        )
     )
 
 
 def _zenith(m: _Model, b: Batch, at: Positions) -> Linearised:
+    f_from, f_to = m.frames(at, b.frm, b.to)
     return _two_ends(
         ge.zenith(
             m.ell,
@@ -83,24 +125,29 @@ def _zenith(m: _Model, b: Batch, at: Positions) -> Linearised:
             b.instrument_height,
             b.target_height,
             m.refraction,
+            f_from,
+            f_to,
         )
     )
 
 
 def _direction(m: _Model, b: Batch, at: Positions) -> Linearised:
-    rows = ge.direction(m.ell, _xyz(at, b.frm), _xyz(at, b.to))
+    f_at, f_to = m.frames(at, b.frm, b.to)
+    rows = ge.direction(m.ell, _xyz(at, b.frm), _xyz(at, b.to), f_at, f_to)
     partials = np.hstack([rows.partials["to"], rows.partials["at"], -np.ones((b.size, 1))])
     return Linearised(rows.value - at.orientation[b.rnd], partials)
 
 
 def _angle(m: _Model, b: Batch, at: Positions) -> Linearised:
-    rows = ge.angle(m.ell, _xyz(at, b.frm), _xyz(at, b.at), _xyz(at, b.to))
+    f_back, f_at, f_fore = m.frames(at, b.frm, b.at, b.to)
+    rows = ge.angle(m.ell, _xyz(at, b.frm), _xyz(at, b.at), _xyz(at, b.to), f_back, f_at, f_fore)
     p = rows.partials
     return Linearised(rows.value, np.hstack([p["to"], p["from"], p["at"]]))
 
 
 def _level(m: _Model, b: Batch, at: Positions) -> Linearised:
-    rows = ge.level(m.ell, _xyz(at, b.frm), _xyz(at, b.to), b.geoid_from, b.geoid_to)
+    f_from, f_to = m.frames(at, b.frm, b.to)
+    rows = ge.level(m.ell, _xyz(at, b.frm), _xyz(at, b.to), b.geoid_from, b.geoid_to, f_from, f_to)
     return Linearised(
         rows.value, np.stack([rows.partials["to"][:, 2], rows.partials["from"][:, 2]], axis=1)
     )
@@ -115,7 +162,8 @@ def _azimuth(m: _Model, b: Batch, at: Positions) -> Linearised:
 
 
 def _baseline(m: _Model, b: Batch, at: Positions) -> Linearised:
-    rows = ge.baseline(m.ell, _xyz(at, b.frm), _xyz(at, b.to))
+    f_from, f_to = m.frames(at, b.frm, b.to)
+    rows = ge.baseline(m.ell, _xyz(at, b.frm), _xyz(at, b.to), f_from, f_to)
     # one row per component: (m, 3, 6) → (3m, 6), observation-major
     partials = np.concatenate([rows.partials["to"], rows.partials["from"]], axis=2)
     return Linearised(rows.value.reshape(-1), partials.reshape(-1, 6))
@@ -130,7 +178,12 @@ def _constant_sigma(m: _Model, b: Batch, at: Positions) -> Array:
 
 
 def _direction_sigma(m: _Model, b: Batch, at: Positions) -> Array:
-    return ge.direction_sigma(m.ell, b.constant, b.centering, _xyz(at, b.frm), _xyz(at, b.to))
+    if not np.any(b.centering):  # (as direction_sigma would say) no frames needed
+        return np.asarray(b.constant, dtype=float)
+    f_at, f_to = m.frames(at, b.frm, b.to)
+    return ge.direction_sigma(
+        m.ell, b.constant, b.centering, _xyz(at, b.frm), _xyz(at, b.to), f_at, f_to
+    )
 
 
 def _angle_sigma(m: _Model, b: Batch, at: Positions) -> Array:
@@ -141,7 +194,10 @@ def _angle_sigma(m: _Model, b: Batch, at: Positions) -> Array:
 
 def _baseline_covariance(m: _Model, b: Batch, at: Positions) -> Array:
     assert b.covariance is not None
-    return ge.baseline_covariance(m.ell, b.covariance, b.centering, _xyz(at, b.frm), _xyz(at, b.to))
+    f_from, f_to = m.frames(at, b.frm, b.to)
+    return ge.baseline_covariance(
+        m.ell, b.covariance, b.centering, _xyz(at, b.frm), _xyz(at, b.to), f_from, f_to
+    )
 
 
 def _baseline_sigma(m: _Model, b: Batch, at: Positions) -> Array:

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 from server.errors import NetworkError
 from server.fieldbook.model import Fieldbook, Observation
-from server.model.geodetic import geodetic_frame
+from server.model.geodetic import geodetic_frame, touched_names
 from server.model.network import (
     EAST,
     HEIGHT,
@@ -66,11 +66,8 @@ def _parameters(
 ) -> tuple[Parameter, ...]:
     """E, N, H per spatially observed point (H alone where only level lines touch it),
     then one orientation per direction round."""
-    spatial: set[str] = set()
-    leveled: set[str] = set()
-    for o in used:
-        names = leveled if o.kind == "level" else spatial
-        names.update(n for n in (o.from_point, o.at, o.to) if n)
+    spatial = touched_names([o for o in used if o.kind != "level"])
+    leveled = touched_names([o for o in used if o.kind == "level"])
     params: list[Parameter] = []
     for p in points:
         if p.name in spatial and "en" not in p.fixed:
@@ -78,9 +75,9 @@ def _parameters(
         if (p.name in spatial or p.name in leveled) and "h" not in p.fixed:
             params.append(Parameter(HEIGHT, p.name))
     first_at: dict[int, str | None] = {}
-    for o in used:
-        if o.kind == "direction" and o.round_line is not None:
-            first_at.setdefault(o.round_line, o.at)
+    for o in reversed(used):  # the first entry of each round is written last
+        if o.round_line is not None and o.kind == "direction":
+            first_at[o.round_line] = o.at
     for line in sorted(first_at):
         params.append(Parameter("O", first_at[line], round_line=line))
     return tuple(params)
@@ -88,7 +85,7 @@ def _parameters(
 
 def _check_datum(points: tuple[NetworkPoint, ...], used: tuple[Observation, ...]) -> None:
     """Refuse a geodetic network with no position or no height control, naming candidates."""
-    touched = {n for o in used for n in (o.from_point, o.at, o.to) if n}
+    touched = touched_names(used)
     held_en = [p for p in points if p.in_use and ("en" in p.fixed or "en" in p.weighted)]
     held_h = [p for p in points if p.in_use and ("h" in p.fixed or "h" in p.weighted)]
     given = [p.name for p in points if p.name in touched and p.east is not None]

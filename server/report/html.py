@@ -7,6 +7,7 @@ import hashlib
 import threading
 from collections.abc import Sequence
 from datetime import UTC, datetime
+from typing import Any
 
 import jinja2
 from markupsafe import Markup
@@ -14,7 +15,7 @@ from markupsafe import Markup
 from server import resources
 from server.report.origin import ApprovalNote, ImportedFrom
 from server.report.plot import network_plot_data
-from server.report.tables import context
+from server.report.tables import ObservationRow, context
 from server.results.result import AdjustmentResult
 from server.review.standards import Preset
 
@@ -93,15 +94,26 @@ def report_html(
     presets: Sequence[Preset] = (),
     imported_from: ImportedFrom | None = None,
     approval: ApprovalNote | None = None,
+    observation_rows: Sequence[ObservationRow] | None = None,
+    plot_data: dict[str, Any] | None = None,
 ) -> str:
     """A self-contained printable HTML report (inline CSS and SVG, no scripts, nothing external).
 
     ``imported_from`` names the survey XML or CSV the field book was imported from;
     ``approval`` states who approved the run for issue, when, and of which field book.
+    ``observation_rows`` (every observation's) and ``plot_data`` (``network_plot_data``) of
+    this result, when the caller has them already, are used instead of being made again.
     """
 
-    data = context(result, presets)
-    data["network_plot"] = network_plot_data(result)
+    data = context(result, presets, all_observation_rows=observation_rows)
+    if plot_data is None:
+        # the drawing only (no side panel in a report), from the rows formatted above
+        plot_data = network_plot_data(
+            result,
+            obs_rows=data["observation_rows"],  # type: ignore[arg-type]
+            details=False,
+        )
+    data["network_plot"] = plot_data
     data["np_static"] = True
     # The CSS is our own file, never user input; Markup keeps autoescape off its '>' selectors.
     data["css"] = Markup(report_css())  # noqa: S704 (our own file, see above)

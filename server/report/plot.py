@@ -265,12 +265,6 @@ def _segment_hits_box(x1: float, y1: float, x2: float, y2: float, box: Sequence[
     return True
 
 
-def _overlap(a: Sequence[float], b: Sequence[float]) -> float:
-    w = min(a[2], b[2]) - max(a[0], b[0])
-    h = min(a[3], b[3]) - max(a[1], b[1])
-    return w * h if w > 0 and h > 0 else 0.0
-
-
 class _Grid:
     """A uniform bucket grid over canvas pixels: which items' boxes may touch a box."""
 
@@ -278,19 +272,23 @@ class _Grid:
         self.cell = cell
         self.buckets: dict[tuple[int, int], list[int]] = {}
 
-    def _cells(self, box: Sequence[float]) -> list[tuple[int, int]]:
+    def cells(self, box: Sequence[float]) -> list[tuple[int, int]]:
         c = self.cell
         x0, y0, x1, y1 = (math.floor(v / c) for v in box)
         return [(x, y) for x in range(x0, x1 + 1) for y in range(y0, y1 + 1)]
 
     def add(self, item: int, box: Sequence[float]) -> None:
-        for key in self._cells(box):
+        for key in self.cells(box):
             self.buckets.setdefault(key, []).append(item)
 
-    def near(self, box: Sequence[float]) -> set[int]:
+    def near(self, cells: list[tuple[int, int]]) -> set[int]:
+        """The items in any of ``cells`` (of ``cells(box)``: the three grids share a size)."""
         found: set[int] = set()
-        for key in self._cells(box):
-            found.update(self.buckets.get(key, ()))
+        buckets = self.buckets
+        for key in cells:
+            items = buckets.get(key)
+            if items:
+                found.update(items)
         return found
 
 
@@ -305,22 +303,37 @@ def _label_cost(
 ) -> float:
     """Badness of a label box of point ``i``: lines crossed, symbols and labels covered."""
     segment_grid, symbol_grid, label_grid = grids
+    cells = segment_grid.cells(box)
+    left, top, right, bottom = box
     total = rank * 0.5  # the order of preference breaks ties
-    for k in segment_grid.near(box):
+    for k in segment_grid.near(cells):
         a, b = segments[k]
-        if _segment_hits_box(*px[a], *px[b], box):
+        (x1, y1), (x2, y2) = px[a], px[b]
+        # both ends beyond one side of the box: it cannot cross (most candidates end here)
+        if (
+            (x1 < left and x2 < left)
+            or (x1 > right and x2 > right)
+            or (y1 < top and y2 < top)
+            or (y1 > bottom and y2 > bottom)
+        ):
+            continue
+        if _segment_hits_box(x1, y1, x2, y2, box):
             total += 20.0 if i in (a, b) else 8.0
-    for j in symbol_grid.near(box):
+    r = _SYMBOL_RADIUS_PX
+    for j in symbol_grid.near(cells):
         x, y = px[j]
-        symbol = (
-            x - _SYMBOL_RADIUS_PX,
-            y - _SYMBOL_RADIUS_PX,
-            x + _SYMBOL_RADIUS_PX,
-            y + _SYMBOL_RADIUS_PX,
-        )
-        if j != i and _overlap(box, symbol):
+        # the symbol's square and the box overlap
+        if j != i and min(right, x + r) > max(left, x - r) and min(bottom, y + r) > max(top, y - r):
             total += 40.0
-    return total + sum(_overlap(box, placed[k]) for k in label_grid.near(box)) * 0.5
+    covered = 0.0  # the area shared with each label placed nearby (written out: the inner loop)
+    for k in label_grid.near(cells):
+        other = placed[k]
+        w = (right if right < other[2] else other[2]) - (left if left > other[0] else other[0])
+        if w > 0:
+            h = (bottom if bottom < other[3] else other[3]) - (top if top > other[1] else other[1])
+            if h > 0:
+                covered += w * h
+    return total + covered * 0.5
 
 
 def _place_labels(
@@ -428,8 +441,17 @@ def _joined_pairs(
     return pairs
 
 
-def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
-    """Everything the network plot draws, or None for a 1D network or one without positions."""
+def network_plot_data(
+    result: AdjustmentResult,
+    *,
+    obs_rows: Sequence[report.ObservationRow] | None = None,
+    details: bool = True,
+) -> dict[str, Any] | None:
+    """Everything the network plot draws, or None for a 1D network or one without positions.
+
+    ``obs_rows`` are every observation's rows when the caller has them already (formatted
+    once per request); ``details=False`` leaves out the side panel's figures (a drawing
+    without the panel, as in the printable report, does not need them)."""
     if result.summary.dimension < 2:
         return None
     grid = {
@@ -457,8 +479,9 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
     else:
         factor = EXAGGERATIONS[0]
 
-    obs_rows = report.observation_rows(result)
-    relative = _relative_detail(result)
+    if obs_rows is None:
+        obs_rows = report.observation_rows(result)
+    relative = _relative_detail(result) if details else {}
     pairs = _joined_pairs(result, position)
     lines = []
     for n, (key, record) in enumerate(pairs.items()):
@@ -490,7 +513,9 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
                 "has_ignored": record["has_ignored"] and used,
                 "flagged": record["flagged"],
                 "observations": record["observations"],
-                "detail": [_observation_detail(obs_rows[k], unit) for k in record["observations"]],
+                "detail": [_observation_detail(obs_rows[k], unit) for k in record["observations"]]
+                if details
+                else [],
                 "relative": relative.get(key),
                 "title": f"{a} – {b}: "
                 + ", ".join(kinds)
@@ -535,7 +560,7 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
                 "in_use": p.in_use,
                 "label": labels[k],
                 "ellipse": ellipse,
-                "detail": _point_detail(row, p, unit, confidence),
+                "detail": _point_detail(row, p, unit, confidence) if details else [],
                 "title": f"{p.name} ({row.role}): E {row.east}, N {row.north} {unit}",
             }
         )
@@ -594,4 +619,62 @@ def network_plot_data(result: AdjustmentResult) -> dict[str, Any] | None:
             "ignored": "ignored" in styles_present or any(ln["has_ignored"] for ln in lines),
             "flagged": any(line["flagged"] for line in lines),
         },
+    }
+
+
+#: What ``static/plot.js`` reads of the plot: the view, the bars, the exaggeration series.
+_SCRIPT_KEYS = (
+    "view",
+    "nominal",
+    "extent",
+    "bars",
+    "exaggeration_index",
+    "exaggerations",
+    "exaggeration_labels",
+)
+#: The figures of an observation in the side panel, in the order of its list in the script data.
+OBSERVATION_KEYS = (
+    "line",
+    "kind",
+    "marks",
+    "booked",
+    "reduction",
+    "observed",
+    "residual",
+    "w",
+    "status",
+)
+
+
+def script_data(data: dict[str, Any]) -> dict[str, Any]:
+    """The part of the plot the page's script needs: the side panel's figures of each point
+    and line, by id.  The geometry, symbols, titles and ellipse axes are in the SVG already,
+    so they are not written a second time; an observation's figures are a list in the order
+    of ``observation_keys`` and a list of (label, value) rows is its values with the index of
+    its labels in ``label_sets``, so no name is repeated for each of thousands of rows."""
+    label_sets: dict[tuple[str, ...], int] = {}
+
+    def packed(rows: list[list[str]]) -> list[Any]:
+        labels = tuple(label for label, _ in rows)
+        return [label_sets.setdefault(labels, len(label_sets)), [value for _, value in rows]]
+
+    points = [
+        {"id": p["id"], "name": p["name"], "detail": packed(p["detail"])} for p in data["points"]
+    ]
+    lines = [
+        {
+            "id": line["id"],
+            "names": line["names"],
+            "used": line["used"],
+            "detail": [[o[key] for key in OBSERVATION_KEYS] for o in line["detail"]],
+            **({"relative": packed(line["relative"])} if line["relative"] else {}),
+        }
+        for line in data["lines"]
+    ]
+    return {
+        **{key: data[key] for key in _SCRIPT_KEYS},
+        "observation_keys": list(OBSERVATION_KEYS),
+        "label_sets": [list(labels) for labels in label_sets],
+        "points": points,
+        "lines": lines,
     }

@@ -1088,11 +1088,13 @@ def context(
     presets: Sequence[Preset] = (),
     obs_page: int | None = None,
     pt_page: int | None = None,
+    all_observation_rows: Sequence[ObservationRow] | None = None,
 ) -> dict[str, object]:
     """Everything the report and the results page lay out; ``presets`` name the allowances chosen.
 
     ``obs_page`` / ``pt_page`` (results page only) show one page of the observation and
-    point tables; without them every row is laid out, as the downloads need."""
+    point tables; without them every row is laid out, as the downloads need.
+    ``all_observation_rows``: every observation's row when the caller keeps them already."""
     # imported here: geodetic_tables formats with this module's helpers
     from server.report.geodetic_tables import geodetic_context
 
@@ -1122,7 +1124,9 @@ def context(
         "point_page": pts,
         "point_notes": any(p.note for p in result.points),
         "reductions_note": reductions_note(result),
-        "observation_rows": observation_rows(result, obs.window if obs else slice(None)),
+        "observation_rows": observation_rows(result, obs.window if obs else slice(None))
+        if all_observation_rows is None
+        else list(all_observation_rows[obs.window if obs else slice(None)]),
         "observation_page": obs,
         "flagged_lines": flagged_lines(result) if obs and obs.paged else [],
         "misclosure_rows": misclosure_rows(result),

@@ -25,6 +25,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from server import __version__
 from server.errors import SurveyError
+from server.report.plot import script_data
 from server.resources import DEMO_DIR, STATIC_DIR, TEMPLATE_DIR
 from server.results.result import CAUTION
 from server.settings import (
@@ -53,6 +54,7 @@ from server.web import (
 )
 from server.web.dependencies import busy, survey_error_payload
 from server.web.jobs import AdjustmentQueue, BackgroundAdjustments, Jobs, QueueFull
+from server.web.run_parts import parts_cache
 from server.web.workers import RemoteJobs
 
 logger = logging.getLogger("stationfit.web")
@@ -108,6 +110,7 @@ def make_templates() -> Jinja2Templates:
     env.globals.update(caution=CAUTION, version=__version__, signed_in=access.signed_in)
     env.filters["when"] = _when
     env.filters["sentence"] = _sentence
+    env.filters["plot_script"] = script_data
     return Jinja2Templates(env=env)
 
 
@@ -637,6 +640,7 @@ def create_app(
     app.state.limits = limits if limits is not None else service_limits()
     # the review's second opinions (robust, snooping) of recent runs, shared by worker threads
     app.state.proposals = ProposalCache()
+    app.state.run_parts = parts_cache()  # results, rows and plots of recent runs
     app.state.demo_dir = Path(demo_dir) if demo_dir is not None else DEMO_DIR
     # accounts, sessions and the sign-in limit (none in the store: the workstation mode)
     app.state.accounts = Accounts(app.state.store)

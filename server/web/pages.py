@@ -18,7 +18,7 @@ from starlette.concurrency import run_in_threadpool
 
 from server.errors import FieldbookError
 from server.formats.geojson import NO_CRS, GeoJsonUnavailable, geojson_text
-from server.report import csv_export, plot
+from server.report import csv_export
 from server.report import html as html_report
 from server.report import tables as report
 from server.report.origin import ApprovalNote, ImportedFrom
@@ -28,8 +28,8 @@ from server.report.text import report_text
 from server.results.result import AdjustmentResult
 from server.store import projects as service
 from server.store.projects import StandardsChoice, Upload, display_name
-from server.store.sqlite import Project, Store
-from server.web import access, approval, imports
+from server.store.sqlite import Project, Run, Store
+from server.web import access, approval, imports, run_parts
 from server.web import dependencies as deps
 from server.web.dependencies import (
     CheckedForm,
@@ -130,14 +130,22 @@ def approved(store: Store, project: Project, choice: StandardsChoice) -> Approva
     return approval.approval_of(store, project.id, run.id if run is not None else None)
 
 
-def finished_result(
-    store: Store, project: Project, choice: StandardsChoice, queue: QueueDep
-) -> AdjustmentResult:
-    """The latest result with the chosen presets, or 404."""
-    result = service.latest_result(store, project, choice, queue)
-    if result is None:
+def finished_run(
+    request: Request, store: Store, project: Project, choice: StandardsChoice, queue: QueueDep
+) -> tuple[Run, AdjustmentResult]:
+    """The latest run and its result with the chosen presets (made once per run), or 404."""
+    run = store.latest_run(project.id)
+    result = run_parts.result(request, project, run, choice, queue)
+    if run is None or result is None:
         raise HTTPException(status_code=404, detail="This project has no adjustment result.")
-    return result
+    return run, result
+
+
+def finished_result(
+    request: Request, store: Store, project: Project, choice: StandardsChoice, queue: QueueDep
+) -> AdjustmentResult:
+    """The latest result with the chosen presets (made once per run), or 404."""
+    return finished_run(request, store, project, choice, queue)[1]
 
 
 def _demos(request: Request) -> dict[str, Path]:
@@ -167,7 +175,7 @@ def _demo_or_404(request: Request, name: str) -> Path:
 
 
 def _results_context(
-    request: Request, project: Project, result: AdjustmentResult, choice: StandardsChoice
+    request: Request, project: Project, run: Run, result: AdjustmentResult, choice: StandardsChoice
 ) -> dict[str, Any]:
     """The results page's tables, plot, links and the presets offered."""
     context = report.context(
@@ -175,6 +183,7 @@ def _results_context(
         choice.presets,
         obs_page=page_number(request, "obs_page"),
         pt_page=page_number(request, "pt_page"),
+        all_observation_rows=run_parts.observation_rows(request, project, run, choice, result),
     )
     here = f"/projects/{project.id}"
     observation_page = context["observation_page"]
@@ -184,7 +193,7 @@ def _results_context(
         request, "obs_page", observation_page, "observations", here
     )
     context["point_links"] = page_links(request, "pt_page", point_page, "points", here)
-    context["network_plot"] = plot.network_plot_data(result)
+    context["network_plot_html"] = run_parts.plot_fragment(request, project, run, choice, result)
     context["geojson_unavailable"] = "No GeoJSON: " + NO_CRS[0].lower() + NO_CRS[1:] + "."
     context.update(
         choice=choice, download_query=choice.query, preset_options=service.preset_options()
@@ -307,8 +316,8 @@ def project_page(
                 },
             )
         interrupted = newest  # the service stopped before this run finished
-    run = store.latest_run(project.id)
-    result = service.result_with_presets(project, run, choice, jobs.queue)
+    run = run_parts.latest_completed(runs)  # read in full only if its result is not kept
+    result = run_parts.result(request, project, run, choice, jobs.queue)
     context: dict[str, Any] = {
         **approval.page_context(request, store, project.id),
         "project": project,
@@ -318,8 +327,8 @@ def project_page(
         "interrupted": interrupted,
         "name": display_name(project.name, project.filename, result.title if result else ""),
     }
-    if result is not None:
-        context.update(_results_context(request, project, result, choice))
+    if result is not None and run is not None:
+        context.update(_results_context(request, project, run, result, choice))
     elif run is not None and run.error is not None:
         context["error"] = run.error
         context["issues"] = service.issues_with_text(project, run.error.get("issues", []))
@@ -328,10 +337,10 @@ def project_page(
 
 @router.get("/projects/{project_id}/report.html")
 def project_report(
-    choice: ChoiceDep, project: ProjectDep, store: StoreDep, queue: QueueDep
+    request: Request, choice: ChoiceDep, project: ProjectDep, store: StoreDep, queue: QueueDep
 ) -> Response:
     """The printable report, as a download; its inline style is allowed by hash only."""
-    result = finished_result(store, project, choice, queue)
+    run, result = finished_run(request, store, project, choice, queue)
     css = html_report.report_css()
     response = attachment(
         html_report.report_html(
@@ -339,6 +348,9 @@ def project_report(
             presets=choice.presets,
             imported_from=imported_from(project),
             approval=approved(store, project, choice),
+            # the rows and the plot the results page of this run has made already
+            observation_rows=run_parts.observation_rows(request, project, run, choice, result),
+            plot_data=run_parts.plot_data(request, project, run, choice, result),
         ),
         "text/html; charset=utf-8",
         download_name(project, "-report.html"),
@@ -352,10 +364,10 @@ def project_report(
 
 @router.get("/projects/{project_id}/report.pdf")
 def project_report_pdf(
-    choice: ChoiceDep, project: ProjectDep, store: StoreDep, queue: QueueDep
+    request: Request, choice: ChoiceDep, project: ProjectDep, store: StoreDep, queue: QueueDep
 ) -> Response:
     """The report as PDF, drawn on the server."""
-    result = finished_result(store, project, choice, queue)
+    result = finished_result(request, store, project, choice, queue)
     return attachment(
         report_pdf(
             result,
@@ -370,10 +382,10 @@ def project_report_pdf(
 
 @router.get("/projects/{project_id}/report.txt")
 def project_report_text(
-    choice: ChoiceDep, project: ProjectDep, store: StoreDep, queue: QueueDep
+    request: Request, choice: ChoiceDep, project: ProjectDep, store: StoreDep, queue: QueueDep
 ) -> Response:
     """The plain-text summary, as the terminal prints it."""
-    result = finished_result(store, project, choice, queue)
+    result = finished_result(request, store, project, choice, queue)
     return attachment(
         report_text(result, imported_from(project), approved(store, project, choice)),
         "text/plain; charset=utf-8",
@@ -383,10 +395,10 @@ def project_report_text(
 
 @router.get("/projects/{project_id}/points.csv")
 def project_points_csv(
-    project: ProjectDep, choice: ChoiceDep, store: StoreDep, queue: QueueDep
+    request: Request, project: ProjectDep, choice: ChoiceDep, store: StoreDep, queue: QueueDep
 ) -> Response:
     """The adjusted points as CSV."""
-    result = finished_result(store, project, choice, queue)
+    result = finished_result(request, store, project, choice, queue)
     return attachment(
         csv_export.points_csv(result),
         "text/csv; charset=utf-8",
@@ -396,11 +408,11 @@ def project_points_csv(
 
 @router.get("/projects/{project_id}/points.geojson")
 def project_geojson(
-    project: ProjectDep, choice: ChoiceDep, store: StoreDep, queue: QueueDep
+    request: Request, project: ProjectDep, choice: ChoiceDep, store: StoreDep, queue: QueueDep
 ) -> Response:
     """Points and observation lines as GeoJSON in longitude and latitude; 409 without a CRS
     (there is nothing RFC 7946 can hold)."""
-    result = finished_result(store, project, choice, queue)
+    result = finished_result(request, store, project, choice, queue)
     try:
         text = geojson_text(result)
     except GeoJsonUnavailable as exc:
@@ -419,7 +431,7 @@ def project_result_json(
     choice = deps.standards_choice(request)
     body = run.result_json
     if choice.presets:
-        body = finished_result(store, project, choice, queue).to_json_dict()
+        body = finished_result(request, store, project, choice, queue).to_json_dict()
     return JSONResponse(
         body,
         headers={"Content-Disposition": _attachment_header(project, "-result.json")},

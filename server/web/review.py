@@ -38,8 +38,8 @@ from server.review.tau import tau_test
 from server.store import projects as service
 from server.store.projects import ReviewState, display_name
 from server.store.projects import load_state as _load_state
-from server.store.sqlite import AlreadyQueued, DecisionsChanged, Project, is_valid_id
-from server.web import access, approval
+from server.store.sqlite import AlreadyQueued, DecisionsChanged, Project, Run, is_valid_id
+from server.web import access, approval, run_parts
 from server.web.dependencies import (
     CheckedForm,
     ProjectDep,
@@ -152,12 +152,14 @@ def _review_context(
     errors: dict[int, str] | None = None,
     values: dict[int, dict[str, str]] | None = None,
     problem: str = "",
+    runs: list[Run] | None = None,
 ) -> dict[str, Any]:
-    """Everything the review page lays out."""
+    """Everything the review page lays out (``runs``: the project's, when read already)."""
     store = _store(request)
     project, result = state.project, state.result
-    latest = store.latest_run(project.id)
-    runs = store.runs(project.id)
+    if runs is None:
+        runs = store.runs(project.id)
+    latest = run_parts.latest_completed(runs)  # its status, number and error are shown
     context: dict[str, Any] = {
         "project": project,
         "name": display_name(project.name, project.filename, result.title if result else ""),
@@ -186,7 +188,7 @@ def _review_context(
         else page_number(request, "obs_page")
     )
     page = report.page(len(result.observations), wanted)
-    rows = review.review_rows(result, review.source_lines(state.text), tau, page.window)
+    rows = run_parts.review_rows(request, state, tau, page)
     shown = {row.line for row in rows}
     context["problems"] += [
         message for line, message in (errors or {}).items() if line not in shown
@@ -289,12 +291,12 @@ def _plan_items(
 @router.get("/projects/{project_id}/review", response_class=HTMLResponse)
 def review_page(request: Request, project: ProjectDep, store: StoreDep) -> HTMLResponse:
     """The observations to look at first, the decisions queued, and the second opinions."""
-    state = _load_state(store, project)
+    runs = store.runs(project.id)
+    state = run_parts.review_state(request, store, project, runs)
     suggest = request.query_params.get("suggest") == "1"
     rejected = _rejected(request.query_params.getlist("reject"))
-    return _render(
-        request, "review.html", _review_context(request, state, suggest=suggest, rejected=rejected)
-    )
+    context = _review_context(request, state, suggest=suggest, rejected=rejected, runs=runs)
+    return _render(request, "review.html", context)
 
 
 @router.post("/projects/{project_id}/edits")
