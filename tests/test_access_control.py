@@ -15,6 +15,7 @@ import re
 import uuid
 import warnings
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -24,7 +25,15 @@ with warnings.catch_warnings():  # starlette's notice about httpx, as tests/test
     from fastapi.testclient import TestClient
 
 from server.web import create_app
-from server.web.access import PUBLIC, ROUTE_RULES, SESSION_COOKIE, flat_routes
+from server.web.access import (
+    ANONYMOUS_PRINCIPAL,
+    PUBLIC,
+    READ,
+    ROUTE_RULES,
+    SESSION_COOKIE,
+    WORKSTATION_PRINCIPAL,
+    flat_routes,
+)
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
 
 PASSWORD = "level loops close nicely"
@@ -50,13 +59,14 @@ EXPECTED: dict[tuple[str, str], frozenset[str]] = {
     ("GET", "/sign-in"): EVERYONE,
     ("POST", "/sign-in"): EVERYONE,
     ("POST", "/sign-out"): EVERYONE,
+    ("GET", "/users"): frozenset({"administrator"}),
     ("GET", "/"): READERS,
     ("POST", "/projects"): WORKERS,
     ("GET", "/projects"): READERS,
     ("GET", "/projects/{project_id}"): READERS,
     ("GET", "/projects/{project_id}/import"): READERS,
     ("POST", "/projects/{project_id}/adjust"): WORKERS,
-    ("POST", "/projects/{project_id}/discard"): WORKERS,
+    ("POST", "/projects/{project_id}/discard"): OWNER_OR_SURVEYOR,
     ("GET", "/projects/{project_id}/report.html"): READERS,
     ("GET", "/projects/{project_id}/report.pdf"): READERS,
     ("GET", "/projects/{project_id}/report.txt"): READERS,
@@ -320,6 +330,17 @@ def test_lists_show_only_what_the_account_may_see(office):
     assert {office.shared, office.private} <= listed
 
 
+def test_a_request_without_a_session_sees_no_project_even_where_it_is_let_through(office):
+    """The principal of a signed-out request (public routes only) may read nothing, and the
+    store gives it nothing: a public route added later cannot leak a project."""
+    store = office.app.state.store
+    nobody = ANONYMOUS_PRINCIPAL
+    assert not nobody.workstation and not nobody.may(READ) and nobody.viewer is not None
+    assert store.list_projects(nobody.viewer) == []
+    assert store.get_project(office.shared, visible_to=nobody.viewer) is None
+    assert store.list_projects(WORKSTATION_PRINCIPAL.viewer) != []  # the workstation: all
+
+
 def test_static_files_are_served_to_the_sign_in_page(office):
     assert office.send(ANONYMOUS, "GET", "/static/app.css").status_code == 200
     assert office.send(ANONYMOUS, "HEAD", "/projects").status_code == 303
@@ -356,3 +377,19 @@ def test_a_technician_may_not_delete_another_ones_project(office):
     )
     assert response.status_code == 403
     assert office.app.state.store.get_project(project) is not None
+
+
+def test_the_roles_table_in_the_security_docs_is_this_table():
+    """docs/security.md lists every route with a mark per role; it must say what is enforced."""
+    docs = (Path(__file__).resolve().parents[1] / "docs" / "security.md").read_text()
+    row = re.compile(r"^\| `(GET|POST) ([^`]+)` \| [^|]+ \| (.+) \|$")
+    documented = {}
+    for line in docs.splitlines():
+        found = row.match(line)
+        if found:
+            marks = [m.strip() for m in found.group(3).split("|")]
+            roles = [r for r, m in zip(ACCOUNTS, marks, strict=True) if m in ("✓", "own")]
+            documented[(found.group(1), found.group(2))] = frozenset(roles)
+    assert set(documented) == set(EXPECTED)
+    for key, allowed in EXPECTED.items():
+        assert documented[key] == allowed - {ANONYMOUS}, key

@@ -5,6 +5,7 @@ workstation mode without accounts and ``serve`` refusing to be reachable without
 from __future__ import annotations
 
 import io
+import re
 import sqlite3
 import warnings
 
@@ -107,6 +108,16 @@ def test_a_password_role_or_status_change_ends_the_sessions(office):
     assert _sign_in(client, "tom", new).status_code == 303
 
 
+def test_an_accounts_pages_are_never_kept_by_a_cache(office):
+    _, client = office
+    _sign_in(client)
+    for path in ("/projects", "/api/projects", "/"):
+        response = client.get(path)
+        assert response.headers["cache-control"] == "no-store", path
+        assert "Cookie" in response.headers["vary"]
+    assert "no-store" not in client.get("/static/app.css").headers.get("cache-control", "")
+
+
 def test_a_forged_or_altered_cookie_is_not_a_session(office):
     _, client = office
     good = _sign_in(client).cookies[SESSION_COOKIE]
@@ -135,6 +146,8 @@ def test_sign_out_ends_the_session_in_this_browser_only_with_its_token(office):
     out = client.post("/sign-out", data={"token": token}, follow_redirects=False)
     assert out.headers["location"] == "/sign-in"
     assert client.get("/projects", follow_redirects=False).status_code == 303
+    signed_out = client.get("/sign-in").text  # no user menu for no one
+    assert "Sign out" not in signed_out and "user-menu" not in signed_out
 
 
 def test_sign_in_goes_back_only_to_a_page_of_this_service(office):
@@ -376,3 +389,65 @@ def test_serve_on_loopback_without_accounts_starts_as_a_workstation(tmp_path, mo
     monkeypatch.setattr("uvicorn.run", lambda *a, **k: started.append(k))
     assert cli.main(["serve", "--data", str(tmp_path)]) == 0 and len(started) == 1
     assert "workstation mode" in capsys.readouterr().err
+
+
+def test_the_administrator_lists_the_accounts_and_never_sees_a_hash(office):
+    app, client = office
+    app.state.accounts.add("ada", "administrator", PASSWORD)
+    app.state.accounts.set_disabled("vera", True)
+    assert _sign_in(client, "ada").status_code == 303
+    page = client.get("/users").text
+    assert "surveyor in responsible charge" in page and "technician" in page
+    assert re.search(r"vera</td><td>viewer</td><td>disabled \d{4}-\d{2}-\d{2}", page)
+    assert "$argon2" not in page
+    assert 'href="/users"' in client.get("/projects").text  # in the user menu
+    assert _sign_in(client, "sam").status_code == 303
+    assert client.get("/users").status_code == 403
+    assert 'href="/users"' not in client.get("/projects").text
+
+
+def test_at_most_two_passwords_are_checked_at_once(tmp_path, monkeypatch):
+    """argon2 takes 64 MiB a check: a burst of sign-ins queues instead of taking the memory."""
+    import threading
+    import time
+
+    from server.store import accounts as module
+
+    accounts = Accounts(Store(tmp_path / DATABASE_NAME))
+    accounts.add("sam", "surveyor", PASSWORD)
+    running, peak, lock = [0], [0], threading.Lock()
+    real = module._HASHER
+
+    class Slow:
+        def verify(self, digest, password):
+            with lock:
+                running[0] += 1
+                peak[0] = max(peak[0], running[0])
+            time.sleep(0.05)
+            with lock:
+                running[0] -= 1
+            return real.verify(digest, password)
+
+        def check_needs_rehash(self, digest):
+            return False
+
+    monkeypatch.setattr(module, "_HASHER", Slow())
+    threads = [
+        threading.Thread(target=accounts.authenticate, args=("sam", PASSWORD)) for _ in range(8)
+    ]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    assert peak[0] == 2
+
+
+def test_a_reading_role_is_not_offered_the_forms_it_may_not_use(office):
+    _, client = office
+    readonly = '<link rel="stylesheet" href="/static/readonly.css'
+    for name, offered in (("vera", False), ("tom", True), ("sam", True)):
+        assert _sign_in(client, name).status_code == 303
+        assert (readonly not in client.get("/").text) is offered, name
+    css = client.get("/static/readonly.css").text
+    for form in ("form.upload", "details.decide", "form.rerun", "form.decision-undo"):
+        assert form in css

@@ -151,8 +151,9 @@ def test_an_approved_run_is_frozen_and_a_change_makes_a_new_run(office):
     assert [r["approval"] and r["approval"]["approved_by"] for r in runs] == [None, "sam", None]
     trail = [(t.actor, t.event, t.detail) for t in store.trail(project)]
     assert trail[0][:2] == ("tom", "created")
-    assert ("tom", "run", "run #2") in trail and ("sam", "approved", "run #2") in trail
-    assert ("tom", "run", "run #3") in trail
+    assert ("tom", "run", "run #2 with 1 decision in force") in trail
+    assert ("sam", "approved", "run #2") in trail
+    assert ("tom", "run", "run #3 with 2 decisions in force") in trail
 
 
 def test_the_reports_of_an_approved_run_say_who_approved_which_run_of_which_book(office):

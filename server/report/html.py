@@ -93,9 +93,9 @@ def report_html(
     generated: datetime | None = None,
     presets: Sequence[Preset] = (),
     imported_from: ImportedFrom | None = None,
-    approval: ApprovalNote | None = None,
     observation_rows: Sequence[ObservationRow] | None = None,
     plot_data: dict[str, Any] | None = None,
+    approval: ApprovalNote | None = None,
 ) -> str:
     """A self-contained printable HTML report (inline CSS and SVG, no scripts, nothing external).
 

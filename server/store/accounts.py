@@ -9,8 +9,11 @@ disabled account counts as configured, so disabling everyone never reopens the s
 
 from __future__ import annotations
 
+import math
 import re
 import secrets
+import threading
+import time
 from dataclasses import dataclass
 from datetime import UTC, datetime
 
@@ -57,6 +60,9 @@ _COMMON = frozenset(
     }
 )
 _HASHER = PasswordHasher()
+#: Password checks at once: each takes argon2's 64 MiB, so a burst of sign-ins (from many
+#: addresses, before the failure limit counts them) waits here instead of taking the memory.
+_CHECKS_AT_ONCE = threading.BoundedSemaphore(2)
 #: Verified when the name is unknown, so that a wrong name costs as long as a wrong password.
 _DUMMY_HASH = _HASHER.hash("not a password of anyone " + secrets.token_hex(8))
 
@@ -137,16 +143,27 @@ def generated_password() -> str:
 class Accounts:
     """The accounts in one store's database."""
 
+    #: Seconds a "no accounts" answer is trusted before the database is asked again: an
+    #: account added from the command line takes effect within this, without every
+    #: request of a workstation paying a query.
+    RECHECK_SECONDS = 1.0
+
     def __init__(self, store: Store) -> None:
         self.store = store
         self._configured = False
+        self._checked = -math.inf
 
     def configured(self) -> bool:
         """True once any account exists (then it stays true: accounts are never deleted)."""
-        if not self._configured:
+        if not self._configured and not self.known_workstation():
             with self.store.reading() as db:
                 self._configured = db.execute("SELECT 1 FROM users LIMIT 1").fetchone() is not None
+            self._checked = time.monotonic()
         return self._configured
+
+    def known_workstation(self) -> bool:
+        """True when the store was found without accounts within ``RECHECK_SECONDS`` (no I/O)."""
+        return not self._configured and time.monotonic() - self._checked < self.RECHECK_SECONDS
 
     # -- reading ---------------------------------------------------------------------
 
@@ -244,7 +261,8 @@ class Accounts:
             ).fetchone()
         digest = row[-1] if row is not None else _DUMMY_HASH
         try:
-            _HASHER.verify(digest, password[:MAX_PASSWORD])
+            with _CHECKS_AT_ONCE:
+                _HASHER.verify(digest, password[:MAX_PASSWORD])
         except (VerifyMismatchError, VerificationError, InvalidHashError):
             return None
         if row is None:

@@ -114,8 +114,10 @@ _VISIBLE = (
 
 def _visibility(viewer: Actor | None) -> tuple[str, tuple[Any, ...]]:
     """(`` AND condition``, parameters) limiting a query over ``projects p`` to ``viewer``."""
-    if viewer is None or viewer.user_id is None:
+    if viewer is None or viewer == WORKSTATION:
         return "", ()
+    if viewer.user_id is None:  # no account (signed out): nothing at all
+        return " AND 0", ()
     return " AND " + _VISIBLE, (viewer.user_id, viewer.user_id)
 
 
@@ -1029,11 +1031,17 @@ _RUN_COLUMNS = (
 
 
 def _trail_run(db: Transaction, project_id: str, by: Actor | None, run_id: int) -> None:
-    """The trail's line for a run just stored: which number it got and who started it."""
-    (number,) = db.execute(
-        "SELECT COUNT(*) FROM runs WHERE project_id = ? AND id <= ?", (project_id, run_id)
+    """The trail's line for a run just stored: its number, who started it and how many
+    decisions it applies."""
+    (number, settings) = db.execute(
+        "SELECT (SELECT COUNT(*) FROM runs WHERE project_id = ? AND id <= ?), settings "
+        "FROM runs WHERE id = ?",
+        (project_id, run_id, run_id),
     ).fetchone()
-    _trail(db, project_id, by, "run", f"run #{number}", run_id)
+    edits = (_loads(settings) or {}).get("edits") or []
+    count = len(edits) if isinstance(edits, list) else 0
+    decisions = f" with {count} decision{'s' if count != 1 else ''} in force" if count else ""
+    _trail(db, project_id, by, "run", f"run #{number}{decisions}", run_id)
 
 
 def _decision_words(edit: Any) -> str:

@@ -33,9 +33,9 @@ from urllib.parse import quote
 from fastapi import Request
 from fastapi.responses import JSONResponse, RedirectResponse, Response
 from starlette.concurrency import run_in_threadpool
-from starlette.datastructures import Headers
+from starlette.datastructures import Headers, MutableHeaders
 from starlette.routing import Match, Mount
-from starlette.types import ASGIApp, Receive, Scope, Send
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from server.store.accounts import ROLE_TITLES, Accounts, User
 from server.store.backends import storage_errors
@@ -89,6 +89,7 @@ ROUTE_RULES: dict[tuple[str, str], str] = {
     ("GET", "/sign-in"): PUBLIC,
     ("POST", "/sign-in"): PUBLIC,
     ("POST", "/sign-out"): PUBLIC,
+    ("GET", "/users"): USERS,
     # pages and downloads (server/web/pages.py)
     ("GET", "/"): READ,
     ("POST", "/projects"): UPLOAD,
@@ -96,7 +97,7 @@ ROUTE_RULES: dict[tuple[str, str], str] = {
     ("GET", "/projects/{project_id}"): READ,
     ("GET", "/projects/{project_id}/import"): READ,
     ("POST", "/projects/{project_id}/adjust"): UPLOAD,
-    ("POST", "/projects/{project_id}/discard"): UPLOAD,
+    ("POST", "/projects/{project_id}/discard"): MANAGE,
     ("GET", "/projects/{project_id}/report.html"): READ,
     ("GET", "/projects/{project_id}/report.pdf"): READ,
     ("GET", "/projects/{project_id}/report.txt"): READ,
@@ -158,7 +159,7 @@ class Principal:
 
     @property
     def workstation(self) -> bool:
-        return self.actor.user_id is None
+        return self.actor.user_id is None and self.actor.role == WORKSTATION.role
 
     @property
     def name(self) -> str:
@@ -188,6 +189,8 @@ class Principal:
 
 
 WORKSTATION_PRINCIPAL = Principal(WORKSTATION, WORKSTATION_CAPABILITIES)
+#: A request with accounts but no session (only public routes let it through): may nothing.
+ANONYMOUS_PRINCIPAL = Principal(Actor(None, "", "signed out"), frozenset())
 
 
 # -- session cookies --------------------------------------------------------------------
@@ -314,9 +317,10 @@ def actor(request: Request) -> Actor:
 
 
 def signed_in(request: Request) -> Principal | None:
-    """The signed-in account for the pages' user menu (None on the workstation)."""
+    """The signed-in account for the pages' user menu (None on the workstation, or when
+    no one is signed in)."""
     found = principal(request)
-    return None if found.workstation else found
+    return None if found.actor.user_id is None else found
 
 
 def flat_routes(routes: list[Any]) -> list[Any]:
@@ -374,14 +378,17 @@ class AccessMiddleware:
             await self.app(scope, receive, send)
             return
         cookie = _cookie(Headers(scope=scope).get("cookie", ""), SESSION_COOKIE)
+        who: Principal | None
         try:
-            who, why = await run_in_threadpool(resolve, self.settings, cookie)
+            if self.settings.accounts.known_workstation():  # no database to ask
+                who, why = WORKSTATION_PRINCIPAL, ""
+            else:
+                who, why = await run_in_threadpool(resolve, self.settings, cookie)
         except STORAGE_ERRORS as exc:  # no store, no knowing who may: refused, with a 503
             await self.store_failure(scope, exc)(scope, receive, send)
             return
         scope.setdefault("state", {})
-        if who is not None:
-            scope["state"]["principal"] = who
+        scope["state"]["principal"] = who if who is not None else ANONYMOUS_PRINCIPAL
         if who is not None and who.workstation:  # no accounts: everything as before them
             await self.app(scope, receive, send)
             return
@@ -404,12 +411,26 @@ class AccessMiddleware:
         if response is not None:
             await response(scope, receive, send)
             return
-        await self.app(scope, receive, send)
+        await self.app(scope, receive, _private(send) if rule != PUBLIC else send)
 
     def _refused(self, scope: Scope, message: str) -> Response:
         if _is_api(scope.get("path", "/")):
             return JSONResponse({"error": message}, status_code=403)
         return self.error_page(scope, 403, "Not allowed for your role", message)
+
+
+def _private(send: Send) -> Send:
+    """Mark an account's pages and downloads as not to be kept by any cache (a shared proxy
+    must not serve them to another, nor the browser show them again after signing out)."""
+
+    async def send_private(message: Message) -> None:
+        if message["type"] == "http.response.start":
+            headers = MutableHeaders(scope=message)
+            headers["Cache-Control"] = "no-store"
+            headers.append("Vary", "Cookie")
+        await send(message)
+
+    return send_private
 
 
 def _cookie(header: str, name: str) -> str | None:

@@ -77,7 +77,9 @@ ProposalsDep = Annotated[ProposalCache, Depends(get_proposals)]
 def project_or_404(project_id: str, store: StoreDep, request: Request) -> Project:
     """The project named in the path, or 404: also when the signed-in account may not see
     it, so that an id never tells whether a project exists."""
-    project = store.get_project(project_id, visible_to=access.viewer(request))
+    who = access.principal(request)
+    # fail closed: only an account that may read (or the workstation) looks projects up
+    project = store.get_project(project_id, visible_to=who.viewer) if who.may(access.READ) else None
     if project is None:
         raise HTTPException(status_code=404, detail="There is no project with this id.")
     return project

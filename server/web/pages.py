@@ -271,8 +271,14 @@ async def adjust_imported(request: Request, project: ProjectDep, form: CheckedFo
 
 @router.post("/projects/{project_id}/discard")
 async def discard_import(request: Request, project: ProjectDep, form: CheckedForm) -> Response:
-    """Go back: an imported project not yet adjusted is deleted (restorable like any other)."""
+    """Go back: an imported project not yet adjusted is deleted (restorable like any other);
+    only by whoever may delete it (its owner, or a surveyor in responsible charge)."""
     store = deps.get_store(request)
+    if not access.principal(request).may_manage(project):
+        raise HTTPException(
+            status_code=403,
+            detail="Only the project's owner or a surveyor in responsible charge may discard it.",
+        )
     if project.source is not None and not store.runs(project.id):
         store.delete_project(project.id, actor=access.actor(request))
     return RedirectResponse("/", status_code=303)
@@ -347,10 +353,10 @@ def project_report(
             result,
             presets=choice.presets,
             imported_from=imported_from(project),
-            approval=approved(store, project, choice),
             # the rows and the plot the results page of this run has made already
             observation_rows=run_parts.observation_rows(request, project, run, choice, result),
             plot_data=run_parts.plot_data(request, project, run, choice, result),
+            approval=approved(store, project, choice),
         ),
         "text/html; charset=utf-8",
         download_name(project, "-report.html"),

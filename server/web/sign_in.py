@@ -24,6 +24,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from starlette.concurrency import run_in_threadpool
 
+from server.store.accounts import ROLE_TITLES
 from server.web import access
 from server.web.dependencies import client, form_text, read_form, render
 
@@ -179,3 +180,12 @@ async def sign_out(request: Request) -> Response:
         secure=access.access_settings(request).secure_cookies,
     )
     return response
+
+
+@router.get("/users", response_class=HTMLResponse)
+def users_page(request: Request) -> Response:
+    """The office's accounts for the administrator: names, roles, status and last sign-in.
+    Changes are made on the server's command line (``python -m server users …``), so the
+    web offers no way to raise a role."""
+    accounts = access.access_settings(request).accounts
+    return render(request, "users.html", {"users": accounts.all(), "titles": ROLE_TITLES})
