@@ -1,7 +1,8 @@
 """A throwaway PostgreSQL server for the tests, and a fresh database for each test.
 
-``STATIONFIT_TEST_POSTGRESQL=postgresql://…`` names a server to use (its user must be
-allowed to create databases).  Otherwise the first test that asks starts one: Debian's
+``STATIONFIT_TEST_POSTGRESQL=postgresql://USER@HOST:PORT/`` names a server to use (its user
+must be allowed to create databases; a password comes from ``PGPASSWORD`` or ``~/.pgpass``,
+which libpq reads).  Otherwise the first test that asks starts one: Debian's
 ``initdb`` and ``pg_ctl`` (``/usr/lib/postgresql/*/bin``) make a cluster in a temporary
 folder, run as the ``postgres`` user when the tests run as root (PostgreSQL refuses to run
 as root), listening on a Unix socket in that folder only, with durability settings off
