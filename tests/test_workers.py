@@ -401,3 +401,39 @@ def test_a_worker_reports_a_field_book_that_does_not_read_as_a_failed_run(store_
     assert adjust_job(store, run_id, NO_LIMITS) == "failed: the field book does not read"
     run = store.latest_run(project)
     assert run.status == "failed" and run.error["issues"][0]["line"] == 1
+
+
+@pytest.mark.postgresql
+def test_an_upload_the_queue_cannot_take_is_kept_with_its_run_interrupted(
+    tmp_path, postgresql_url, monkeypatch
+):
+    """The task queue failing at the moment of an upload: the field book is kept, its run
+    stored as interrupted with the re-run button, and the browser sent to the project (no
+    500, nothing lost)."""
+    import warnings
+
+    import procrastinate
+
+    from server.web import create_app
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        from fastapi.testclient import TestClient
+
+    app = create_app(tmp_path, database=postgresql_url)
+
+    def refuse(*args, **kwargs):
+        raise procrastinate.exceptions.ConnectorException("the queue is away")
+
+    monkeypatch.setattr(app.state.jobs.app, "configure_task", refuse)
+    text = (DEMOS / "leveling_blunder.fieldbook").read_bytes()
+    with TestClient(app, base_url="http://127.0.0.1:8000") as client:
+        response = client.post(
+            "/projects", files={"fieldbook": ("b.fieldbook", text)}, follow_redirects=False
+        )
+        assert response.status_code == 303
+        project = response.headers["location"].rsplit("/", 1)[1]
+        page = client.get(f"/projects/{project}").text
+        assert "was interrupted" in page and "/retry" in page
+        assert client.get(f"/projects/{project}/fieldbook").content == text
+    app.state.jobs.close()

@@ -52,7 +52,8 @@ def without_password(url: str) -> str:
 
 
 def storage_errors() -> tuple[type[Exception], ...]:
-    """The exceptions that mean "the database cannot be used" for the installed back ends."""
+    """The exceptions that mean "the database cannot be used" for the installed back ends
+    (with PostgreSQL also the task queue's, which wraps psycopg's when it cannot connect)."""
     errors: list[type[Exception]] = [sqlite3.Error]
     try:
         import psycopg
@@ -60,6 +61,12 @@ def storage_errors() -> tuple[type[Exception], ...]:
         pass
     else:
         errors.append(psycopg.Error)
+    try:
+        from procrastinate.exceptions import ConnectorException
+    except ImportError:
+        pass
+    else:
+        errors.append(ConnectorException)
     return tuple(errors)
 
 

@@ -165,7 +165,17 @@ class RemoteJobs:
         ``work`` (the in-process closure) is not used: a worker rebuilds the same work
         from the stored run (``projects.adjust_stored_run``).
         """
-        self.app.configure_task(TASK_NAME, queue=QUEUE_NAME).defer(run_id=run_id)
+        try:
+            self.app.configure_task(TASK_NAME, queue=QUEUE_NAME).defer(run_id=run_id)
+        except _procrastinate().exceptions.ConnectorException as exc:
+            # The upload is stored; without a job no worker would end its run: say so on
+            # the project's page, with the re-run button of an interrupted run.
+            logger.warning("run %s: could not be handed to the workers: %s", run_id, exc)
+            self.store.interrupt_run(
+                run_id,
+                "The adjustment could not be handed to the workers (the task queue did not "
+                "answer). The field book is stored; re-run it.",
+            )
         return RemoteJob(run_id, _RunDone(self.store, run_id))
 
     def get(self, run_id: int) -> RemoteJob | None:
