@@ -11,7 +11,7 @@ sentences, never as a traceback.
 from __future__ import annotations
 
 import argparse
-import sqlite3
+import os
 import sys
 from pathlib import Path
 from typing import NoReturn, TextIO
@@ -82,6 +82,13 @@ def main(argv: list[str] | None = None) -> int:
     serve.add_argument("--host", default="127.0.0.1")
     serve.add_argument("--port", type=int, default=8000)
     serve.add_argument("--data", type=Path, default=None, help="where projects are stored")
+    serve.add_argument(
+        "--database",
+        default=None,
+        metavar="postgresql://…",
+        help="keep the projects in this PostgreSQL database instead of the data folder "
+        "(default: $STATIONFIT_DATABASE); adjustments then go to `worker` processes",
+    )
     _limit_options(
         serve,
         "(default: $STATIONFIT_MAX_OBSERVATIONS, else 200000; 0: no limit)",
@@ -118,6 +125,7 @@ def main(argv: list[str] | None = None) -> int:
         help="days a deleted project can be restored before it is erased "
         "(default: $STATIONFIT_KEEP_DELETED_DAYS, else 30; 0: erase at once)",
     )
+    _worker_command(commands)
     _import_command(commands)
     _plan_command(commands)
     _monitor_command(commands)
@@ -125,6 +133,8 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     if args.command == "serve":
         return _serve(args)
+    if args.command == "worker":
+        return _worker(args)
     if args.command == "users":
         return _users(args)
     if args.command == "import":
@@ -471,6 +481,7 @@ def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
     from server.settings import default_data_dir, service_limits
+    from server.store.backends import storage_errors, without_password
     from server.web.app import behind_https, create_app, needs_accounts, serve_allowed_hosts
     from server.web.serving import uvicorn_options
 
@@ -480,14 +491,17 @@ def _serve(args: argparse.Namespace) -> int:
     data_dir = data if data is not None else default_data_dir()
     https = args.https or behind_https()
     allowed_hosts = serve_allowed_hosts(host)
+    database = _database_option(args.database)
+    where = f"--data {data_dir}" if database is None else "--database URL"
     try:
-        data_dir.mkdir(parents=True, exist_ok=True)
+        if database is None:
+            data_dir.mkdir(parents=True, exist_ok=True)
         reachable = needs_accounts(host, allowed_hosts, https)
-        if reachable and not _accounts(data_dir).configured():
+        if reachable and not _accounts(data_dir, database).configured():
             print(
                 f"Stationfit: not starting: {reachable}, and there are no accounts, so anyone "
                 "could read, change and delete every project. Add one first: "
-                f"python -m server users add NAME --role surveyor --data {data_dir}",
+                f"python -m server users add NAME --role surveyor {where}",
                 file=sys.stderr,
             )
             return EXIT_CONFIG
@@ -498,28 +512,134 @@ def _serve(args: argparse.Namespace) -> int:
             adjustments_at_once=args.adjustments_at_once or None,
             max_waiting=args.max_waiting,
             keep_deleted_days=args.keep_deleted_days,
+            database=database,
             secure_cookies=https,
         )
-    except (OSError, sqlite3.Error, RuntimeError) as exc:
+    except _failures(storage_errors()) as exc:
         # one line for the administrator: which folder, and what the system said
-        reason = getattr(exc, "strerror", None) or str(exc)
-        print(
-            f"Stationfit: cannot use the data folder {data_dir}: {reason}. Give --data a "
-            "folder the service may write to, or fix this one.",
-            file=sys.stderr,
-        )
+        reason = " ".join((getattr(exc, "strerror", None) or str(exc)).split())
+        if database is not None:
+            print(
+                f"Stationfit: cannot use the database {without_password(database)}: {reason}. "
+                "Check the address, that PostgreSQL runs and that this user may connect.",
+                file=sys.stderr,
+            )
+        else:
+            print(
+                f"Stationfit: cannot use the data folder {data_dir}: {reason}. Give --data a "
+                "folder the service may write to, or fix this one.",
+                file=sys.stderr,
+            )
         return EXIT_DATA
     mode = (
         "accounts: sign-in required"
         if app.state.accounts.configured()
         else "workstation mode: no accounts, no sign-in, this computer only"
     )
+    stored = data_dir if database is None else without_password(database)
     print(
-        f"Stationfit: projects are stored in {data_dir} ({mode}); open http://{host}:{port}/",
+        f"Stationfit: projects are stored in {stored} ({mode}); open http://{host}:{port}/",
         file=sys.stderr,
     )
     uvicorn.run(app, host=host, port=port, log_level="warning", **uvicorn_options())
     return EXIT_OK
+
+
+def _database_option(value: str | None) -> str | None:
+    """``--database``, else $STATIONFIT_DATABASE; None for the data folder's SQLite file."""
+    value = value or os.environ.get("STATIONFIT_DATABASE") or None
+    return value.strip() if value else None
+
+
+def _worker_command(commands: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    command = commands.add_parser(
+        "worker",
+        help="adjust uploads for a service whose projects are in PostgreSQL",
+        epilog=EXIT_STATUSES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Take adjustment jobs from the task queue in the PostgreSQL database "
+        "that `serve --database` uses, on this machine or another, until stopped (SIGTERM "
+        "or Ctrl-C: the job in hand is finished first). A worker that dies mid-job loses "
+        "nothing: another worker adjusts the run again.",
+    )
+    command.add_argument(
+        "--database",
+        default=None,
+        metavar="postgresql://…",
+        help="the service's database (default: $STATIONFIT_DATABASE)",
+    )
+    command.add_argument(
+        "--concurrency",
+        type=_whole,
+        default=1,
+        metavar="N",
+        help="adjustments this worker runs at once (default 1; run one worker per core)",
+    )
+    _limit_options(
+        command,
+        "(default: $STATIONFIT_MAX_OBSERVATIONS, else 200000; 0: no limit)",
+        "(default: $STATIONFIT_MAX_UNKNOWNS, else 100000; 0: no limit)",
+    )
+    command.add_argument(
+        "--heartbeat-seconds",
+        type=float,
+        default=10.0,
+        metavar="S",
+        help="seconds between this worker's heartbeats (default 10)",
+    )
+    command.add_argument(
+        "--stalled-after-seconds",
+        type=float,
+        default=30.0,
+        metavar="S",
+        help="a worker silent this long is taken for dead and its job given to another "
+        "(default 30; keep it several heartbeats long)",
+    )
+
+
+def _worker(args: argparse.Namespace) -> int:
+    import asyncio
+    import logging
+
+    from server.settings import service_limits
+    from server.store.backends import storage_errors, without_password
+    from server.web.workers import WorkerSettings, run_worker
+
+    database = _database_option(args.database)
+    if database is None or not database.startswith(("postgresql://", "postgres://")):
+        print(
+            "Stationfit: a worker needs the service's PostgreSQL database: --database "
+            "postgresql://USER@HOST/NAME (or $STATIONFIT_DATABASE).",
+            file=sys.stderr,
+        )
+        return EXIT_USAGE
+    _log_to_stderr()
+    logging.getLogger("procrastinate").setLevel(logging.WARNING)
+    settings = WorkerSettings(
+        concurrency=max(1, args.concurrency),
+        limits=service_limits(args.max_observations, args.max_unknowns),
+        heartbeat_seconds=args.heartbeat_seconds,
+        stalled_after_seconds=args.stalled_after_seconds,
+    )
+    shown = without_password(database)
+
+    def ready() -> None:
+        print(f"Stationfit worker: taking adjustments from {shown}", file=sys.stderr, flush=True)
+
+    try:
+        asyncio.run(run_worker(database, settings, ready))
+    except _failures(storage_errors()) as exc:
+        reason = " ".join(str(exc).split())
+        print(f"Stationfit worker: cannot use the database {shown}: {reason}", file=sys.stderr)
+        return EXIT_DATA
+    except KeyboardInterrupt:
+        pass
+    return EXIT_OK
+
+
+def _failures(storage: tuple[type[Exception], ...]) -> tuple[type[Exception], ...]:
+    """What a command reports in one line when its store cannot be used."""
+    return (OSError, RuntimeError, *storage)
 
 
 # --------------------------------------------------------------------------------------
@@ -545,10 +665,16 @@ def _users_command(commands: argparse._SubParsersAction) -> None:  # type: ignor
     )
     actions = users.add_subparsers(dest="action", required=True, parser_class=_Parser)
     data_help = "the data folder, as given to serve --data (default: $STATIONFIT_DATA)"
+    database_help = (
+        "the PostgreSQL database, as given to serve --database (default: $STATIONFIT_DATABASE)"
+    )
 
     def action(name: str, help_text: str) -> argparse.ArgumentParser:
         parser: argparse.ArgumentParser = actions.add_parser(name, help=help_text)
         parser.add_argument("--data", type=Path, default=None, help=data_help)
+        parser.add_argument(
+            "--database", default=None, metavar="postgresql://…", help=database_help
+        )
         return parser
 
     add = action("add", "add an account")
@@ -574,13 +700,14 @@ def _roles() -> tuple[str, ...]:
     return ROLES
 
 
-def _accounts(data_dir: Path):  # type: ignore[no-untyped-def]
-    """The accounts of the data folder's store (created or upgraded like ``serve`` does)."""
+def _accounts(data_dir: Path, database: str | None = None):  # type: ignore[no-untyped-def]
+    """The accounts of the data folder's store, or of the PostgreSQL database (created or
+    upgraded like ``serve`` does)."""
     from server.store.accounts import Accounts
     from server.store.sqlite import Store
     from server.web.app import DATABASE_NAME
 
-    return Accounts(Store(data_dir / DATABASE_NAME))
+    return Accounts(Store(database) if database else Store(data_dir / DATABASE_NAME))
 
 
 def _read_password(generate: bool) -> tuple[str, bool]:
@@ -611,14 +738,22 @@ class _UsersError(Exception):
 def _users(args: argparse.Namespace) -> int:
     from server.settings import default_data_dir
     from server.store.accounts import ROLE_TITLES, AccountError
+    from server.store.backends import storage_errors, without_password
 
     data_dir = args.data if args.data is not None else default_data_dir()
+    database = _database_option(args.database)
     try:
-        data_dir.mkdir(parents=True, exist_ok=True)
-        accounts = _accounts(data_dir)
-    except (OSError, sqlite3.Error, RuntimeError) as exc:
-        reason = getattr(exc, "strerror", None) or str(exc)
-        print(f"stationfit users: cannot use the data folder {data_dir}: {reason}", file=sys.stderr)
+        if database is None:
+            data_dir.mkdir(parents=True, exist_ok=True)
+        accounts = _accounts(data_dir, database)
+    except _failures(storage_errors()) as exc:
+        reason = " ".join((getattr(exc, "strerror", None) or str(exc)).split())
+        where = (
+            f"the data folder {data_dir}"
+            if database is None
+            else f"the database {without_password(database)}"
+        )
+        print(f"stationfit users: cannot use {where}: {reason}", file=sys.stderr)
         return EXIT_DATA
     try:
         if args.action == "list":
@@ -630,7 +765,8 @@ def _users(args: argparse.Namespace) -> int:
         if args.action == "add":
             password, generated = _read_password(args.generate)
             user = accounts.add(args.name, args.role, password)
-            print(f"added {user.name} ({ROLE_TITLES[user.role]}) in {data_dir}", file=sys.stderr)
+            place = data_dir if database is None else without_password(database)
+            print(f"added {user.name} ({ROLE_TITLES[user.role]}) in {place}", file=sys.stderr)
         elif args.action == "password":
             password, generated = _read_password(args.generate)
             user = accounts.set_password(args.name, password)

@@ -7,7 +7,7 @@ import sqlite3
 from contextlib import closing
 from pathlib import Path
 
-from server.store.sqlite import _SCHEMA  # the schema-5 statements, unchanged since version 5
+from server.store.schema import SQLITE_BASELINE as _SCHEMA  # the schema-5 statements
 
 
 def make_schema_5(path: Path) -> None:

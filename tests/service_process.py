@@ -30,9 +30,17 @@ def free_port() -> int:
 class ServiceProcess:
     """One ``serve`` child; use as a context manager (stopped, or killed, on exit)."""
 
-    def __init__(self, data: Path, log: Path, *, env: dict[str, str] | None = None) -> None:
+    def __init__(
+        self,
+        data: Path,
+        log: Path,
+        *,
+        env: dict[str, str] | None = None,
+        args: tuple[str, ...] = (),
+    ) -> None:
         self.data, self.log, self.port = data, log, free_port()
         self.env = {**os.environ, **(env or {})}
+        self.args = args
         self.process: subprocess.Popen[bytes] | None = None
 
     @property
@@ -57,6 +65,7 @@ class ServiceProcess:
                     str(self.port),
                     "--data",
                     str(self.data),
+                    *self.args,
                 ],
                 cwd=REPO,
                 stdout=sink,
@@ -116,3 +125,51 @@ def run_states(database: Path) -> list[tuple[int, str, str]]:
         return list(connection.execute("SELECT id, project_id, status FROM runs ORDER BY id"))
     finally:
         connection.close()
+
+
+class WorkerProcess:
+    """One ``python -m server worker --database URL`` child, ready once it says so."""
+
+    def __init__(self, database: str, log: Path, *args: str) -> None:
+        self.database, self.log, self.args = database, log, args
+        self.process: subprocess.Popen[bytes] | None = None
+
+    def __enter__(self) -> Self:
+        with self.log.open("ab") as sink:
+            self.process = subprocess.Popen(
+                [sys.executable, "-m", "server", "worker", "--database", self.database, *self.args],
+                cwd=REPO,
+                stdout=sink,
+                stderr=sink,
+            )
+        deadline = time.monotonic() + 60
+        while b"taking adjustments" not in self.log.read_bytes():
+            if self.process.poll() is not None or time.monotonic() > deadline:
+                self.kill()
+                raise RuntimeError(f"the worker did not start: {self.log.read_text()}")
+            time.sleep(0.05)
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+
+    @property
+    def pid(self) -> int:
+        assert self.process is not None
+        return self.process.pid
+
+    def stop(self) -> None:
+        """SIGTERM (the worker finishes the job in hand), then SIGKILL after 30 s."""
+        if self.process is None or self.process.poll() is not None:
+            return
+        self.process.terminate()
+        try:
+            self.process.wait(timeout=30)
+        except subprocess.TimeoutExpired:
+            self.kill()
+
+    def kill(self) -> None:
+        if self.process is None or self.process.poll() is not None:
+            return
+        os.kill(self.process.pid, signal.SIGKILL)
+        self.process.wait(timeout=15)

@@ -18,6 +18,7 @@ from server.web import create_app
 from server.web.access import SESSION_COOKIE
 from server.web.app import DATABASE_NAME, needs_accounts
 from server.web.sign_in import ACCOUNT_FAILURES, ADDRESS_FAILURES, WINDOW_SECONDS
+from tests.postgres import app_on
 
 with warnings.catch_warnings():  # starlette's notice about httpx, as tests/test_web.py
     warnings.simplefilter("ignore")
@@ -38,8 +39,9 @@ class Clock:
 
 
 @pytest.fixture
-def office(tmp_path):
-    app = create_app(tmp_path, session_hours=12)
+def office(tmp_path, store_location):
+    """Three accounts on either back end (tests/conftest.py's ``store_location``)."""
+    app = app_on(store_location, tmp_path, session_hours=12)
     app.state.access.clock = Clock()
     for name, role in (("sam", "surveyor"), ("tom", "technician"), ("vera", "viewer")):
         app.state.accounts.add(name, role, PASSWORD)
@@ -449,3 +451,30 @@ def test_a_reading_role_is_not_offered_the_forms_it_may_not_use(office):
     css = client.get("/static/readonly.css").text
     for form in ("form.upload", "details.decide", "form.rerun", "form.decision-undo"):
         assert form in css
+
+
+@pytest.mark.postgresql
+def test_the_users_command_and_serve_share_a_postgresql_database(
+    tmp_path, monkeypatch, capsys, postgresql_url
+):
+    """``users add --database URL`` writes the account where ``serve --database URL`` reads
+    it; a name is one account whatever its letter case, as in SQLite."""
+    status, _, err = _users(
+        monkeypatch,
+        capsys,
+        ["add", "sam", "--role", "surveyor", "--database", postgresql_url],
+        PASSWORD + "\n",
+    )
+    assert status == 0 and "added sam" in err and "postgresql://" in err
+    status, _, err = _users(
+        monkeypatch,
+        capsys,
+        ["add", "SAM", "--role", "viewer", "--database", postgresql_url],
+        PASSWORD + "\n",
+    )
+    assert status == cli.EXIT_USAGE and "already an account" in err
+    app = app_on(postgresql_url, tmp_path)
+    with TestClient(app, base_url="http://127.0.0.1:8000") as client:
+        assert client.get("/", follow_redirects=False).status_code == 303
+        assert _sign_in(client, name="Sam").status_code == 303
+        assert client.get("/").status_code == 200

@@ -13,8 +13,10 @@ import pypdf
 import pytest
 
 from server.results.result import CAUTION
+from server.store.backends import integrity_errors
 from server.store.sqlite import NotApprovable
 from server.web import create_app
+from tests.postgres import app_on
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
 
 with warnings.catch_warnings():  # starlette's notice about httpx, as tests/test_web.py
@@ -31,8 +33,9 @@ SENTENCE = re.compile(
 
 
 @pytest.fixture
-def office(tmp_path):
-    app = create_app(tmp_path)
+def office(tmp_path, store_location):
+    """A surveyor and a technician on either back end (``store_location``)."""
+    app = app_on(store_location, tmp_path)
     app.state.accounts.add("sam", "surveyor", PASSWORD)
     app.state.accounts.add("tom", "technician", PASSWORD)
     clients = {}
@@ -55,6 +58,18 @@ def office(tmp_path):
     )
     assert shared.status_code == 303
     return app, clients, project, token
+
+
+def _raw_update(store, statement: str, run_id: int) -> None:
+    """One statement on a connection of its own, around the store (either back end)."""
+    if store.path is None:
+        import psycopg
+
+        with psycopg.connect(store.backend.url) as raw:
+            raw.execute(statement.replace("?", "%s"), (run_id,))
+        return
+    with sqlite3.connect(store.path) as raw:
+        raw.execute(statement, (run_id,))
 
 
 def _approve(client, project, run_id, token):
@@ -100,14 +115,13 @@ def test_an_approved_run_is_frozen_and_a_change_makes_a_new_run(office):
     assert "approved for issue run #2" in review  # the review trail
 
     # frozen in the database: the approved run and its approval are never updated
-    with sqlite3.connect(store.path) as raw:
-        for statement in (
-            "UPDATE runs SET status = 'failed' WHERE id = ?",
-            "UPDATE runs SET settings = '{}' WHERE id = ?",
-            "UPDATE approvals SET approved_by = 'someone else' WHERE run_id = ?",
-        ):
-            with pytest.raises(sqlite3.IntegrityError, match=r"frozen|never changed"):
-                raw.execute(statement, (second.id,))
+    for statement in (
+        "UPDATE runs SET status = 'failed' WHERE id = ?",
+        "UPDATE runs SET settings = '{}' WHERE id = ?",
+        "UPDATE approvals SET approved_by = 'someone else' WHERE run_id = ?",
+    ):
+        with pytest.raises(integrity_errors(), match=r"frozen|never changed"):
+            _raw_update(store, statement, second.id)
     assert store.run(project, second.id).settings == second.settings
 
     # a later decision makes run #3, which is not approved; run #2 stays approved

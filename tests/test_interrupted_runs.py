@@ -18,8 +18,8 @@ from pathlib import Path
 import pytest
 
 from server.store.sqlite import NO_EDITS, Store
-from server.web import create_app
 from server.web.app import DATABASE_NAME
+from tests.postgres import app_on
 from tests.test_review import TWO_BLUNDERS, leveling_with_blunders
 
 with warnings.catch_warnings():
@@ -37,7 +37,12 @@ EXCLUDE_FIRST = {
 }
 
 
-def _statuses(database: Path) -> list[tuple[int, str]]:
+def _statuses(database: Path | str) -> list[tuple[int, str]]:
+    if isinstance(database, str):
+        import psycopg
+
+        with psycopg.connect(database) as db:
+            return db.execute("SELECT id, status FROM runs ORDER BY id").fetchall()
     with closing(sqlite3.connect(database)) as db:
         return db.execute("SELECT id, status FROM runs ORDER BY id").fetchall()
 
@@ -53,14 +58,14 @@ def _retry_form(html: str) -> tuple[str, str]:
     return match.group(1), match.group(2)
 
 
-def test_a_restart_stores_the_cut_off_run_as_interrupted(tmp_path):
-    store = Store(tmp_path / DATABASE_NAME)
+def test_a_restart_stores_the_cut_off_run_as_interrupted(store_location):
+    store = Store(store_location)
     project = store.create_project("p", "p.fieldbook", TEXT)
     done = store.start_run(project, NO_EDITS)
     cut = store.start_run(project, {"edits": [EXCLUDE_FIRST]})
     store.finish_run(done, error="an earlier failure")
     assert store.mark_interrupted() == [cut]
-    assert _statuses(store.path) == [(done, "failed"), (cut, "interrupted")]
+    assert _statuses(store_location) == [(done, "failed"), (cut, "interrupted")]
     run = store.run(project, cut)
     assert run.error["kind"] == "interrupted" and run.result_json is None
     assert run.edits == [EXCLUDE_FIRST]  # the decisions it was given are kept
@@ -71,14 +76,13 @@ def test_a_restart_stores_the_cut_off_run_as_interrupted(tmp_path):
     assert store.mark_interrupted() == []
 
 
-def test_an_interrupted_first_run_is_re_run_from_the_results_page(tmp_path):
-    data = tmp_path / "data"
-    killed = Store(data / DATABASE_NAME)
+def test_an_interrupted_first_run_is_re_run_from_the_results_page(store_location):
+    killed = Store(store_location)
     project = killed.create_project("Cut off", "cut.fieldbook", TEXT)
     cut = killed.start_run(project, NO_EDITS)  # the process dies here
 
-    with TestClient(create_app(data)) as client:
-        assert _statuses(data / DATABASE_NAME) == [(cut, "interrupted")]
+    with TestClient(app_on(store_location, Path("/nonexistent"))) as client:
+        assert _statuses(store_location) == [(cut, "interrupted")]
         page = client.get(f"/projects/{project}").text
         assert "was interrupted" in page
         action, token = _retry_form(page)
@@ -103,9 +107,8 @@ def test_an_interrupted_first_run_is_re_run_from_the_results_page(tmp_path):
         assert again.status_code == 404
 
 
-def test_an_interrupted_re_run_is_repeated_with_the_same_decisions(tmp_path):
-    data = tmp_path / "data"
-    with TestClient(create_app(data)) as client:
+def test_an_interrupted_re_run_is_repeated_with_the_same_decisions(store_location):
+    with TestClient(app_on(store_location, Path("/nonexistent"))) as client:
         upload = client.post("/api/projects", files={"fieldbook": ("b.fieldbook", TEXT)})
         project = upload.json()["id"]
         before = client.get(f"/api/projects/{project}").json()
@@ -116,8 +119,8 @@ def test_an_interrupted_re_run_is_repeated_with_the_same_decisions(tmp_path):
         store.add_pending_edit(project, EXCLUDE_FIRST)
         cut = store.start_run(project, {"edits": [EXCLUDE_FIRST], "based_on": first})
 
-    with TestClient(create_app(data)) as client:  # the restart
-        assert _statuses(data / DATABASE_NAME)[-1] == (cut, "interrupted")
+    with TestClient(app_on(store_location, Path("/nonexistent"))) as client:  # the restart
+        assert _statuses(store_location)[-1] == (cut, "interrupted")
         review = client.get(f"/projects/{project}/review").text
         action, token = _retry_form(review)
         assert client.post(action, data={"token": token}).status_code == 200

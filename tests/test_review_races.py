@@ -5,6 +5,9 @@ exactly the decisions in force when it is stored: a decision undone while the
 re-run adjusts must never come back in its result, so such a re-run is refused
 with a message and nothing is stored.  Two clients leaving out the same line
 must give one queued decision, the second told it is already queued.
+
+Each test runs on SQLite and on PostgreSQL (``store_location`` in conftest.py); the web
+tests then adjust in the service's own threads, as ``serve`` does with SQLite.
 """
 
 from __future__ import annotations
@@ -39,8 +42,10 @@ def _exclude(line: int) -> dict:
 
 
 @pytest.fixture
-def app(tmp_path: Path) -> FastAPI:
-    return create_app(tmp_path / "data")
+def app(tmp_path: Path, store_location: Path | str) -> FastAPI:
+    if isinstance(store_location, str):
+        return create_app(tmp_path / "data", database=store_location, workers=False)
+    return create_app(store_location.parent)
 
 
 @pytest.fixture
@@ -153,8 +158,8 @@ def test_a_decision_queued_during_a_rerun_is_not_swallowed(app, client, project,
 
 
 @pytest.fixture
-def store_project(tmp_path: Path) -> tuple[Store, str, int]:
-    store = Store(tmp_path / "store.sqlite3")
+def store_project(store_location: Path | str) -> tuple[Store, str, int]:
+    store = Store(store_location)
     project_id = store.create_project("p", "f.fieldbook", TEXT)
     base = store.add_run(project_id, result=adjust_fieldbook(TEXT))
     return store, project_id, base
@@ -283,11 +288,39 @@ def test_a_rerun_of_a_large_field_book_adds_a_few_times_its_size_not_thirty(tmp_
     assert stored.result_json == json.loads(json.dumps(result.to_json_dict()))
 
 
-def test_runs_stored_as_json_text_before_compression_are_still_read(store_project):
+def test_results_are_stored_compressed_on_both_back_ends(store_location):
+    from bench.networks import leveling
+
+    text = leveling(1500)
+    result = adjust_fieldbook(text)
+    store = Store(store_location)
+    project_id = store.create_project("big", "big.fieldbook", text)
+    run_id = store.add_run(project_id, result=result)
+    sql = f"SELECT {{f}}(result) + {{f}}(detail) FROM runs WHERE id = {run_id}"
+    if isinstance(store_location, str):
+        import psycopg
+
+        with psycopg.connect(store_location) as raw:
+            (stored,) = raw.execute(sql.format(f="octet_length")).fetchone()
+    else:
+        import sqlite3
+        from contextlib import closing
+
+        with closing(sqlite3.connect(store_location)) as raw:
+            (stored,) = raw.execute(sql.format(f="length")).fetchone()
+    as_text = len(json.dumps(result.to_json_dict())) + len(json.dumps(dataclasses.asdict(result)))
+    assert stored < as_text / 4  # zlib on the numbers and repeated keys: measured about 1/6
+    assert store.run(project_id, run_id).result() == result
+
+
+def test_runs_stored_as_json_text_before_compression_are_still_read(tmp_path):
+    """SQLite only: a PostgreSQL database never held runs from before compression."""
     import sqlite3
     from contextlib import closing
 
-    store, project_id, base = store_project
+    store = Store(tmp_path / "store.sqlite3")
+    project_id = store.create_project("p", "f.fieldbook", TEXT)
+    base = store.add_run(project_id, result=adjust_fieldbook(TEXT))
     result = adjust_fieldbook(TEXT)
     contract = json.dumps(result.to_json_dict())
     detail = json.dumps(result.detail_dict())

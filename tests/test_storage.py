@@ -1,4 +1,8 @@
-"""The project store: field books kept byte for byte, runs kept with their results or errors."""
+"""The project store: field books kept byte for byte, runs kept with their results or errors.
+
+Every test runs on both back ends (``store_location`` in conftest.py: a SQLite file and a
+PostgreSQL database), except those about SQLite's own file (WAL mode, data folders
+written by earlier versions)."""
 
 from __future__ import annotations
 
@@ -12,13 +16,20 @@ import pytest
 
 from server.errors import FieldbookError, NetworkError
 from server.pipeline import adjust_fieldbook
+from server.store.backends import integrity_errors
 from server.store.sqlite import SCHEMA_VERSION, Store, is_valid_id
 
 DEMOS = Path(__file__).resolve().parents[1] / "demo_projects"
 
 
-def _query(db: Path, sql: str) -> tuple | None:
+def _query(db: Path | str, sql: str) -> tuple | None:
     """Run one statement on a separate raw connection, closed afterwards."""
+    if isinstance(db, str):
+        import psycopg
+
+        with psycopg.connect(db, autocommit=True) as raw:
+            cursor = raw.execute(sql)
+            return cursor.fetchone() if cursor.description else None
     with closing(sqlite3.connect(db)) as raw:
         row = raw.execute(sql).fetchone()
         raw.commit()
@@ -26,7 +37,13 @@ def _query(db: Path, sql: str) -> tuple | None:
 
 
 @pytest.fixture
-def db(tmp_path: Path) -> Path:
+def db(store_location: Path | str) -> Path | str:
+    """The store's location, on each back end in turn."""
+    return store_location
+
+
+@pytest.fixture
+def sqlite_db(tmp_path: Path) -> Path:
     return tmp_path / "data" / "stationfit.sqlite3"
 
 
@@ -148,7 +165,7 @@ def test_a_purge_keeps_projects_deleted_less_than_the_retention_ago(db):
 
 def test_a_run_needs_an_existing_project_and_leaves_nothing_behind_on_failure(db):
     store = Store(db)
-    with pytest.raises(sqlite3.IntegrityError):
+    with pytest.raises(integrity_errors()):
         store.add_run("0" * 32, error="orphan")
     assert _query(db, "SELECT COUNT(*) FROM runs") == (0,)
 
@@ -177,9 +194,9 @@ def test_ids_are_unguessable_hex(db):
     assert len(ids) == 20 and all(is_valid_id(i) for i in ids)
 
 
-def test_database_is_in_wal_mode(db):
-    Store(db)
-    assert _query(db, "PRAGMA journal_mode") == ("wal",)
+def test_database_is_in_wal_mode(sqlite_db):
+    Store(sqlite_db)
+    assert _query(sqlite_db, "PRAGMA journal_mode") == ("wal",)
 
 
 def test_concurrent_writers_from_threads_lose_nothing(db):
@@ -207,9 +224,15 @@ def test_concurrent_writers_from_threads_lose_nothing(db):
 
 def test_newer_schema_is_refused(db):
     Store(db)
-    _query(db, "PRAGMA user_version = 99")
+    if isinstance(db, str):
+        _query(db, "INSERT INTO stationfit_migrations VALUES (99, 'future', '2030-01-01')")
+        before = _query(db, "SELECT COUNT(*) FROM stationfit_migrations")
+    else:
+        _query(db, "PRAGMA user_version = 99")
     with pytest.raises(RuntimeError, match="newer"):
         Store(db)
+    if isinstance(db, str):  # refused before anything was written
+        assert _query(db, "SELECT COUNT(*) FROM stationfit_migrations") == before
 
 
 # -- runs with settings, running runs, queued decisions, schema upgrade ---------------------
@@ -319,7 +342,8 @@ PRAGMA user_version = 1;
 """
 
 
-def test_a_database_of_schema_1_is_upgraded_keeping_projects_and_runs(db):
+def test_a_database_of_schema_1_is_upgraded_keeping_projects_and_runs(sqlite_db):
+    db = sqlite_db
     db.parent.mkdir(parents=True)
     with closing(sqlite3.connect(db)) as raw:
         raw.executescript(SCHEMA_1)
@@ -345,8 +369,9 @@ def test_a_database_of_schema_1_is_upgraded_keeping_projects_and_runs(db):
     assert [r.id for r in Store(db).runs("a" * 32)] == [run.id, new]
 
 
-def test_a_database_of_schema_3_is_upgraded_and_its_projects_stay_live(db):
+def test_a_database_of_schema_3_is_upgraded_and_its_projects_stay_live(sqlite_db):
     """Schema 3 had no deletion time: every project it holds is live after the upgrade."""
+    db = sqlite_db
     db.parent.mkdir(parents=True)
     with closing(sqlite3.connect(db)) as raw:
         raw.executescript(SCHEMA_3)
@@ -363,7 +388,7 @@ def test_a_database_of_schema_3_is_upgraded_and_its_projects_stay_live(db):
         )
         raw.commit()
     store = Store(db)
-    assert _query(db, "PRAGMA user_version") == (SCHEMA_VERSION,) == (6,)
+    assert _query(db, "PRAGMA user_version") == (SCHEMA_VERSION,)
     assert [p.id for p in store.list_projects()] == ["b" * 32]
     assert store.deleted_projects() == []
     assert store.delete_project("b" * 32) is True
@@ -389,3 +414,32 @@ CREATE TABLE pending_edits (id INTEGER PRIMARY KEY AUTOINCREMENT,
 CREATE INDEX pending_by_project ON pending_edits(project_id, id);
 PRAGMA user_version = 3;
 """
+
+
+def test_runs_started_at_once_on_one_project_are_numbered_one_to_n_in_order(db):
+    """Eight clients start runs on one project at the same moment: every run gets its own
+    number, 1 to 40, in the order of its id, the same in the list and run by run."""
+    store = Store(db)
+    project_id = store.create_project("busy", "b.fieldbook", "x")
+    start = threading.Barrier(8)
+    errors: list[BaseException] = []
+
+    def work() -> None:
+        try:
+            start.wait()
+            for _ in range(5):
+                run_id = store.start_run(project_id, {"edits": []})
+                store.finish_run(run_id, error="stopped")
+        except BaseException as exc:
+            errors.append(exc)
+
+    threads = [threading.Thread(target=work) for _ in range(8)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert errors == []
+    runs = store.runs(project_id)
+    assert [r.number for r in runs] == list(range(1, 41))
+    assert [r.id for r in runs] == sorted(r.id for r in runs)
+    assert all(store.run(project_id, r.id).number == r.number for r in runs)

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import pytest
 
-import server.store.sqlite as storage
+import server.store.backends as storage
 from server.web import create_app
 
 with warnings.catch_warnings():

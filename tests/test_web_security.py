@@ -32,6 +32,7 @@ from hypothesis.errors import Unsatisfiable
 from server.web import create_app
 from server.web.app import DATABASE_NAME, SECURITY_HEADERS, serve_allowed_hosts
 from tests.hypothesis_profiles import examples
+from tests.postgres import app_on
 
 with warnings.catch_warnings():
     # starlette's test client prefers httpx2 and warns when it finds only httpx
@@ -124,7 +125,7 @@ def _assert_security_headers(response, where: str) -> None:
 # the OpenAPI contract, fuzzed by schemathesis (in process, no network)
 
 
-def test_openapi_operations_never_answer_5xx(tmp_path):
+def test_openapi_operations_never_answer_5xx(tmp_path, store_location):
     """Every documented operation, with generated paths, queries and bodies: never a 5xx.
 
     Valid (positive) and invalid (negative) requests per operation, with the examples fixed
@@ -133,7 +134,7 @@ def test_openapi_operations_never_answer_5xx(tmp_path):
     numbers) reach the database instead of stopping at "no such project"; the schemathesis
     pytest plugin is not used (it does not load under this pytest).
     """
-    app = create_app(tmp_path / "data", max_upload_bytes=64 * 1024)
+    app = app_on(store_location, tmp_path, max_upload_bytes=64 * 1024)
     with TestClient(app) as seed:
         real_project = _create(seed, BLUNDER, "leveling_blunder.fieldbook")
     schema = schemathesis.openapi.from_asgi("/api/openapi.json", app)
@@ -183,8 +184,14 @@ def test_openapi_operations_never_answer_5xx(tmp_path):
     assert len(reached) >= 5, reached
 
 
-def test_ids_beyond_the_database_integer_range_are_not_found(client):
-    """Run and decision numbers SQLite cannot hold name nothing: 404, never a 500."""
+def test_ids_beyond_the_database_integer_range_are_not_found(tmp_path, store_location):
+    """Run and decision numbers SQLite (or PostgreSQL's bigint) cannot hold name nothing:
+    404, never a 500."""
+    with TestClient(app_on(store_location, tmp_path)) as client:
+        _ids_beyond_range(client)
+
+
+def _ids_beyond_range(client: TestClient) -> None:
     project_id = _create(client, BLUNDER, "leveling_blunder.fieldbook")
     review = client.get(f"/projects/{project_id}/review").text
     token = re.search(r'name="token" value="([0-9a-f]{32})"', review).group(1)

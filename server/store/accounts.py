@@ -171,7 +171,7 @@ class Accounts:
         """Every account, by name."""
         with self.store.reading() as db:
             rows = db.execute(
-                f"SELECT {_COLUMNS} FROM users ORDER BY name COLLATE NOCASE"  # noqa: S608
+                f"SELECT {_COLUMNS} FROM users ORDER BY lower(name)"  # noqa: S608
             ).fetchall()
         return [User(*r) for r in rows]
 
@@ -187,7 +187,7 @@ class Accounts:
         """The account of this name (letter case aside), or None."""
         with self.store.reading() as db:
             row = db.execute(
-                f"SELECT {_COLUMNS} FROM users WHERE name = ?",  # noqa: S608
+                f"SELECT {_COLUMNS} FROM users WHERE lower(name) = lower(?)",  # noqa: S608
                 (name,),
             ).fetchone()
         return None if row is None else User(*row)
@@ -203,7 +203,7 @@ class Accounts:
             raise AccountError(problem)
         digest = _HASHER.hash(password)
         with self.store.writing() as db:
-            if db.execute("SELECT 1 FROM users WHERE name = ?", (name,)).fetchone():
+            if db.execute("SELECT 1 FROM users WHERE lower(name) = lower(?)", (name,)).fetchone():
                 raise AccountError(f"There is already an account named '{name}'.")
             db.execute(
                 "INSERT INTO users (name, role, password_hash, created) VALUES (?, ?, ?, ?)",
@@ -256,7 +256,7 @@ class Accounts:
         """The active account whose password this is, else None (same cost either way)."""
         with self.store.reading() as db:
             row = db.execute(
-                f"SELECT {_COLUMNS}, password_hash FROM users WHERE name = ?",  # noqa: S608
+                f"SELECT {_COLUMNS}, password_hash FROM users WHERE lower(name) = lower(?)",  # noqa: S608
                 (name[:64],),
             ).fetchone()
         digest = row[-1] if row is not None else _DUMMY_HASH
@@ -282,12 +282,15 @@ class Accounts:
     def session_secret(self) -> bytes:
         """The key that signs session cookies: made once per data folder, kept in it."""
         with self.store.writing() as db:
-            row = db.execute("SELECT value FROM service_keys WHERE name = 'session'").fetchone()
-            if row is None:
-                value = secrets.token_hex(32)
-                db.execute("INSERT INTO service_keys (name, value) VALUES ('session', ?)", (value,))
-            else:
-                value = row[0]
+            # made by whichever process comes first (a service and its command line at once)
+            db.execute(
+                "INSERT INTO service_keys (name, value) VALUES ('session', ?) "
+                "ON CONFLICT (name) DO NOTHING",
+                (secrets.token_hex(32),),
+            )
+            (value,) = db.execute(
+                "SELECT value FROM service_keys WHERE name = 'session'"
+            ).fetchone()
         return bytes.fromhex(value)
 
 

@@ -135,6 +135,50 @@ def adjust_run(
     return result, None
 
 
+def adjust_stored_run(
+    store: Store,
+    run_id: int,
+    progress: Callable[[str, int], None] | None = None,
+    limits: WorkLimits = UNLIMITED,
+) -> str:
+    """Adjust a run stored as ``running`` from what is stored, and finish it; what happened.
+
+    What an adjustment worker does with a job: the project's field book with the run's
+    decisions written in, or, for a retry of an interrupted run (``retry_of`` in its
+    settings), ``retry_interrupted``.  A run that is no longer running is left alone
+    (another attempt ended it); ``RunEnded`` when one ends it while this one adjusts,
+    ``RunGone`` when its project was deleted meanwhile.
+    """
+    found = store.run_status(run_id)
+    if found is None:
+        return "no such run (its project was erased)"
+    project_id, status = found
+    if status != "running":
+        return f"already {status}; nothing to do"
+    project = store.get_project(project_id)
+    run = store.run(project_id, run_id)
+    if project is None or run is None:  # deleted: finish_run drops the run, RunGone
+        store.finish_run(run_id, error="the project was deleted")
+        return "dropped"
+    report = progress or (lambda stage, step: None)
+    retry_of = (run.settings or {}).get("retry_of")
+    interrupted = store.run(project_id, retry_of) if isinstance(retry_of, int) else None
+    if interrupted is not None:
+        retry_interrupted(store, project, interrupted, report, run_id)
+    else:
+        source = project.filename or "pasted.fieldbook"
+        try:
+            edits = review.edits_from_json(run.edits)
+            text = apply_edits(project.text, edits, source=source) if edits else project.fieldbook
+            book = parse_fieldbook(text, source=source)
+        except SurveyError as exc:
+            store.finish_run(run_id, error=exc)
+            return "failed: the field book does not read"
+        adjust_run(store, run_id, book, progress, limits)
+    ended = store.run_status(run_id)
+    return "ended " + (ended[1] if ended else "(gone)")
+
+
 def submit(
     store: Store,
     upload: Upload,

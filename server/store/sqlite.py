@@ -1,8 +1,10 @@
-"""A small project store on SQLite: field books as uploaded, and the runs of their adjustment.
+"""The project store: field books as uploaded, and the runs of their adjustment.
 
-Everything about persistence stays behind ``Store`` so that another backend
-can replace it later.  Each call opens its own connection, so a ``Store`` is
-safe to share between threads; every write is one transaction.  The field
+Everything about persistence stays behind ``Store``: one SQLite file on a workstation
+(the default), or a PostgreSQL database for a team (``Store("postgresql://…")``); the
+same SQL, schema and migrations serve both (``server/store/backends.py``,
+``server/store/schema.py``).  A ``Store`` is safe to share between threads; every
+write is one transaction.  The field
 book is kept byte for byte as uploaded (even when it is not valid UTF-8), so
 nothing the surveyor sent is lost.
 
@@ -30,10 +32,9 @@ import hashlib
 import json
 import re
 import secrets
-import sqlite3
 import uuid
 import zlib
-from collections.abc import Iterator
+from collections.abc import Collection, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
@@ -53,152 +54,20 @@ from server.results.types import (
     RelativeResult,
     Summary,
 )
+from server.store import schema
+from server.store.backends import (
+    PostgresBackend,
+    SqliteBackend,
+    Transaction,
+    is_database_url,
+)
+from server.store.schema import upgrade_postgresql, upgrade_sqlite
 
-SCHEMA_VERSION = 6
+#: The schema this program writes (``server/store/schema.py`` holds its migrations).
+SCHEMA_VERSION = schema.SCHEMA_VERSION
 _ID_RE = re.compile(r"^[0-9a-f]{32}$")
 #: Settings of a run made without any decision (an upload as it is).
 NO_EDITS: dict[str, Any] = {"edits": []}
-
-_RUNS_TABLE = """
-CREATE TABLE {name} (
-    id         INTEGER PRIMARY KEY AUTOINCREMENT,
-    project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
-    created    TEXT NOT NULL,
-    status     TEXT NOT NULL
-               CHECK (status IN ('running', 'finished', 'failed', 'interrupted')),
-    result     TEXT,
-    detail     TEXT,
-    summary    TEXT,
-    error      TEXT,
-    settings   TEXT NOT NULL DEFAULT '{{"edits": []}}',
-    CHECK ((status = 'finished') = (result IS NOT NULL))
-)"""
-
-#: Statements creating the current schema in an empty database.
-_SCHEMA = (
-    """CREATE TABLE projects (
-    id         TEXT PRIMARY KEY,
-    name       TEXT NOT NULL,
-    filename   TEXT NOT NULL,
-    created    TEXT NOT NULL,
-    fieldbook  BLOB NOT NULL,
-    sha256     TEXT NOT NULL,
-    form_token TEXT NOT NULL DEFAULT '',
-    deleted    TEXT
-)""",
-    _RUNS_TABLE.format(name="runs"),
-    "CREATE INDEX runs_by_project ON runs(project_id, id)",
-    """CREATE TABLE pending_edits (
-    id         INTEGER PRIMARY KEY AUTOINCREMENT,
-    project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
-    created    TEXT NOT NULL,
-    edit       TEXT NOT NULL
-)""",
-    "CREATE INDEX pending_by_project ON pending_edits(project_id, id)",
-    # the file a field book was imported from (survey XML, CSV), kept byte for byte
-    """CREATE TABLE source_files (
-    project_id TEXT PRIMARY KEY REFERENCES projects(id) ON DELETE CASCADE,
-    filename   TEXT NOT NULL,
-    content    BLOB NOT NULL,
-    sha256     TEXT NOT NULL
-)""",
-)
-
-#: Statements bringing a schema-1 database (no settings, no tokens, no pending edits) to 2.
-_MIGRATE_1_TO_2 = (
-    "ALTER TABLE projects ADD COLUMN form_token TEXT NOT NULL DEFAULT ''",
-    "UPDATE projects SET form_token = lower(hex(randomblob(16)))",
-    _RUNS_TABLE.format(name="runs_v2"),
-    (
-        "INSERT INTO runs_v2 (id, project_id, created, status, result, detail, summary, error) "
-        "SELECT id, project_id, created, status, result, detail, summary, error FROM runs"
-    ),
-    "DROP TABLE runs",
-    "ALTER TABLE runs_v2 RENAME TO runs",
-    "CREATE INDEX runs_by_project ON runs(project_id, id)",
-    _SCHEMA[3],
-    _SCHEMA[4],
-)
-
-#: Statements bringing schema 2 to 3: a run may be stored as ``interrupted`` (rebuilding
-#: the table is SQLite's only way to change a CHECK constraint).
-_MIGRATE_2_TO_3 = (
-    _RUNS_TABLE.format(name="runs_v3"),
-    "INSERT INTO runs_v3 SELECT id, project_id, created, status, result, detail, summary, "
-    "error, settings FROM runs",
-    "DROP TABLE runs",
-    "ALTER TABLE runs_v3 RENAME TO runs",
-    "CREATE INDEX runs_by_project ON runs(project_id, id)",
-)
-
-#: Statements bringing schema 3 to 4: a deleted project is kept, marked with the time.
-_MIGRATE_3_TO_4 = ("ALTER TABLE projects ADD COLUMN deleted TEXT",)
-
-#: Statements bringing schema 4 to 5: the imported source file beside its field book.  A table
-#: of its own keeps older projects (which have none) as they are.
-_MIGRATE_4_TO_5 = (_SCHEMA[5],)
-
-# ======================================================================================
-# Schema 6 (issue 17): accounts, roles, sharing, who did what, and approvals.
-# One migration, written as plain statements so that it ports to another database:
-# - users: local accounts (argon2 hash; ``session_epoch`` rises on every password, role
-#   or status change so that older session cookies stop working);
-# - projects.owner_id / shared_with_office and project_shares: who may see a project
-#   (a project with no owner was stored before accounts and is shared with the office);
-# - runs.started_by, pending_edits.proposed_by: who started a run, who queued a decision;
-# - approvals: a run approved for issue by the surveyor in responsible charge; the run is
-#   frozen by trigger (never updated) and the approval itself is never changed;
-# - trail: every action on a project, who and when, in order (the review trail);
-# - service_keys: the secret that signs session cookies, made once per data folder.
-# ======================================================================================
-_MIGRATE_5_TO_6 = (
-    """CREATE TABLE users (
-    id            INTEGER PRIMARY KEY AUTOINCREMENT,
-    name          TEXT NOT NULL UNIQUE COLLATE NOCASE,
-    role          TEXT NOT NULL
-                  CHECK (role IN ('viewer', 'technician', 'surveyor', 'administrator')),
-    password_hash TEXT NOT NULL,
-    disabled      TEXT,
-    session_epoch INTEGER NOT NULL DEFAULT 0,
-    created       TEXT NOT NULL,
-    last_sign_in  TEXT
-)""",
-    "ALTER TABLE projects ADD COLUMN owner_id INTEGER REFERENCES users(id)",
-    "ALTER TABLE projects ADD COLUMN shared_with_office INTEGER NOT NULL DEFAULT 0",
-    """CREATE TABLE project_shares (
-    project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
-    user_id    INTEGER NOT NULL REFERENCES users(id) ON DELETE CASCADE,
-    PRIMARY KEY (project_id, user_id)
-)""",
-    "ALTER TABLE runs ADD COLUMN started_by TEXT",
-    "ALTER TABLE pending_edits ADD COLUMN proposed_by TEXT",
-    """CREATE TABLE approvals (
-    run_id           INTEGER PRIMARY KEY REFERENCES runs(id) ON DELETE CASCADE,
-    project_id       TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
-    run_number       INTEGER NOT NULL,
-    approved_by      TEXT NOT NULL,
-    user_id          INTEGER REFERENCES users(id),
-    approved         TEXT NOT NULL,
-    fieldbook_sha256 TEXT NOT NULL
-)""",
-    """CREATE TRIGGER approved_runs_frozen BEFORE UPDATE ON runs
-WHEN EXISTS (SELECT 1 FROM approvals WHERE run_id = OLD.id)
-BEGIN SELECT RAISE(ABORT, 'an approved run is frozen'); END""",
-    """CREATE TRIGGER approvals_never_change BEFORE UPDATE ON approvals
-BEGIN SELECT RAISE(ABORT, 'an approval is a record and is never changed'); END""",
-    """CREATE TABLE trail (
-    id         INTEGER PRIMARY KEY AUTOINCREMENT,
-    project_id TEXT NOT NULL REFERENCES projects(id) ON DELETE CASCADE,
-    created    TEXT NOT NULL,
-    actor      TEXT NOT NULL,
-    role       TEXT NOT NULL,
-    event      TEXT NOT NULL,
-    run_id     INTEGER,
-    detail     TEXT NOT NULL DEFAULT ''
-)""",
-    "CREATE INDEX trail_by_project ON trail(project_id, id)",
-    "CREATE TABLE service_keys (name TEXT PRIMARY KEY, value TEXT NOT NULL)",
-)
 
 #: Runs a stopped service left ``running``: what is stored for them once found.
 INTERRUPTED_ERROR = {
@@ -252,7 +121,7 @@ def _visibility(viewer: Actor | None) -> tuple[str, tuple[Any, ...]]:
 
 
 def _trail(
-    db: sqlite3.Connection,
+    db: Transaction,
     project_id: str,
     actor: Actor | None,
     event: str,
@@ -398,6 +267,18 @@ class DeletedProject:
 
 
 @dataclass(frozen=True, slots=True)
+class RunProgress:
+    """A worker's run as the progress page shows it; ``ahead`` is None once it has started."""
+
+    run_id: int
+    stage: str
+    step: int
+    started: str | None
+    ahead: int | None
+    adjusting: int
+
+
+@dataclass(frozen=True, slots=True)
 class Approval:
     """A run approved for issue: by whom, when, and the SHA-256 of the field book it adjusted."""
 
@@ -429,6 +310,11 @@ class RunGone(LookupError):
     """The run to finish no longer exists: its project was deleted while it was adjusted."""
 
 
+class RunEnded(ValueError):
+    """The run to finish has already ended (finished, failed or interrupted): a second
+    attempt at the same run, such as a worker's job retried, stores nothing."""
+
+
 class DecisionsChanged(RuntimeError):
     """A re-run was refused at commit: the decisions changed while it was adjusting."""
 
@@ -438,90 +324,55 @@ class AlreadyQueued(ValueError):
 
 
 class Store:
-    """Projects and runs in one SQLite file (WAL mode, one connection per call)."""
+    """Projects and runs in one SQLite file (WAL mode, one connection per call), or in a
+    PostgreSQL database when ``location`` is a ``postgresql://`` address."""
 
-    def __init__(self, path: Path) -> None:
-        self.path = Path(path)
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        connection = self._connect()
-        try:
-            connection.execute("PRAGMA journal_mode=WAL")
-            connection.execute("BEGIN IMMEDIATE")
-            try:
-                self._create_or_upgrade(connection)
-            except BaseException:
-                connection.execute("ROLLBACK")
-                raise
-            connection.execute("COMMIT")
-        finally:
-            connection.close()
-
-    def _create_or_upgrade(self, db: sqlite3.Connection) -> None:
-        """Create the schema, or bring an older one up to date (inside the caller's transaction)."""
-        (version,) = db.execute("PRAGMA user_version").fetchone()
-        if version > SCHEMA_VERSION:
-            raise RuntimeError(
-                f"{self.path} was written by a newer Stationfit (schema {version}); "
-                "upgrade before opening it"
-            )
-        if version == SCHEMA_VERSION:
-            return
-        has_projects = db.execute(
-            "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'projects'"
-        ).fetchone()
-        statements: tuple[str, ...]
-        if not has_projects:
-            statements = _SCHEMA + _MIGRATE_5_TO_6
-        elif version <= 1:
-            statements = (
-                _MIGRATE_1_TO_2
-                + _MIGRATE_2_TO_3
-                + _MIGRATE_3_TO_4
-                + _MIGRATE_4_TO_5
-                + _MIGRATE_5_TO_6
-            )
-        elif version == 2:
-            statements = _MIGRATE_2_TO_3 + _MIGRATE_3_TO_4 + _MIGRATE_4_TO_5 + _MIGRATE_5_TO_6
-        elif version == 3:
-            statements = _MIGRATE_3_TO_4 + _MIGRATE_4_TO_5 + _MIGRATE_5_TO_6
-        elif version == 4:
-            statements = _MIGRATE_4_TO_5 + _MIGRATE_5_TO_6
+    def __init__(self, location: Path | str) -> None:
+        self.backend: SqliteBackend | PostgresBackend
+        if is_database_url(location):
+            self.path: Path | None = None
+            self.backend = PostgresBackend(str(location))
         else:
-            statements = _MIGRATE_5_TO_6
-        for statement in statements:
-            db.execute(statement)
-        db.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
+            self.path = Path(location)
+            self.backend = SqliteBackend(self.path)
+        self.dialect = self.backend.dialect
+        self.backend.prepare()
+        with self.backend.write() as db:
+            self.upgraded_from = self._create_or_upgrade(db)
+
+    @property
+    def location(self) -> str:
+        """Where the projects are, as the log may name it (no password)."""
+        return self.backend.location
+
+    @property
+    def postgresql(self) -> bool:
+        """True when the projects are in PostgreSQL (workers may adjust on other machines)."""
+        return isinstance(self.backend, PostgresBackend)
+
+    def close(self) -> None:
+        """Let go of kept connections (PostgreSQL); the store stays usable."""
+        self.backend.close()
+
+    def _create_or_upgrade(self, db: Transaction) -> int:
+        """Create the schema, or bring an older one up to date (inside the caller's
+        transaction); the version found (0: a new database)."""
+        if isinstance(self.backend, PostgresBackend):
+            return upgrade_postgresql(db, self.location, _now())
+        return upgrade_sqlite(db, str(self.path))
 
     # -- connections -----------------------------------------------------------------
 
-    def _connect(self) -> sqlite3.Connection:
-        connection = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
-        connection.execute("PRAGMA foreign_keys = ON")
-        connection.execute("PRAGMA busy_timeout = 30000")
-        return connection
+    @contextmanager
+    def _write(self) -> Iterator[Transaction]:
+        """One transaction: committed on success, rolled back on error."""
+        with self.backend.write() as db:
+            yield db
 
     @contextmanager
-    def _write(self) -> Iterator[sqlite3.Connection]:
-        """One transaction on a fresh connection: committed on success, rolled back on error."""
-        connection = self._connect()
-        try:
-            connection.execute("BEGIN IMMEDIATE")
-            try:
-                yield connection
-            except BaseException:
-                connection.execute("ROLLBACK")
-                raise
-            connection.execute("COMMIT")
-        finally:
-            connection.close()
-
-    @contextmanager
-    def _read(self) -> Iterator[sqlite3.Connection]:
-        connection = self._connect()
-        try:
-            yield connection
-        finally:
-            connection.close()
+    def _read(self) -> Iterator[Transaction]:
+        with self.backend.read() as db:
+            yield db
 
     # -- projects --------------------------------------------------------------------
 
@@ -615,7 +466,7 @@ class Store:
                 "FROM projects p LEFT JOIN runs r ON r.id = "
                 "(SELECT MAX(id) FROM runs WHERE project_id = p.id AND " + _COMPLETED + ") "
                 "WHERE p.deleted IS NULL" + condition + " "
-                "ORDER BY p.created DESC, p.rowid DESC",
+                f"ORDER BY p.created DESC, p.{self.dialect.row_order} DESC",
                 parameters,
             ).fetchall()
         listings = []
@@ -656,7 +507,7 @@ class Store:
             )
             if cursor.rowcount > 0:
                 _trail(db, project_id, actor, "deleted")
-        return cursor.rowcount > 0
+        return int(cursor.rowcount) > 0
 
     def deleted_projects(self, visible_to: Actor | None = None) -> list[DeletedProject]:
         """Projects deleted but not yet purged (those ``visible_to`` may see), most recently
@@ -667,7 +518,7 @@ class Store:
                 "SELECT p.id, p.name, p.filename, p.deleted, "  # noqa: S608
                 "(SELECT COUNT(*) FROM runs WHERE project_id = p.id), p.form_token "
                 "FROM projects p WHERE p.deleted IS NOT NULL" + condition + " "
-                "ORDER BY p.deleted DESC, p.rowid DESC",
+                f"ORDER BY p.deleted DESC, p.{self.dialect.row_order} DESC",
                 parameters,
             ).fetchall()
         return [
@@ -688,19 +539,25 @@ class Store:
             )
             if cursor.rowcount > 0:
                 _trail(db, project_id, actor, "restored")
-        return cursor.rowcount > 0
+        return int(cursor.rowcount) > 0
 
     def purge_deleted(self, keep_days: int, *, now: datetime | None = None) -> list[DeletedProject]:
         """Remove for good the projects deleted ``keep_days`` days ago or earlier; returns them."""
         cutoff = ((now or datetime.now(UTC)) - timedelta(days=keep_days)).isoformat(
             timespec="seconds"
         )
-        gone = [p for p in self.deleted_projects() if p.deleted <= cutoff]
+        candidates = [p for p in self.deleted_projects() if p.deleted <= cutoff]
+        gone = []
         with self._write() as db:
-            for project in gone:
-                db.execute(
-                    "DELETE FROM projects WHERE id = ? AND deleted IS NOT NULL", (project.id,)
-                )
+            for project in candidates:
+                # checked again in the transaction: one restored meanwhile stays
+                erased = db.execute(
+                    "DELETE FROM projects WHERE id = ? AND deleted IS NOT NULL AND deleted <= ? "
+                    "RETURNING id",
+                    (project.id, cutoff),
+                ).fetchone()
+                if erased is not None:
+                    gone.append(project)
         return gone
 
     # -- runs ------------------------------------------------------------------------
@@ -717,9 +574,10 @@ class Store:
         """Record an adjustment: finished with ``result``, or failed with ``error``."""
         outcome = _outcome(result, error)
         with self._write() as db:
-            cursor = db.execute(
+            db.lock_project(project_id)  # runs of one project are numbered in commit order
+            (run_id,) = db.execute(
                 "INSERT INTO runs (project_id, created, status, result, detail, summary, error, "
-                "settings, started_by) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                "settings, started_by) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
                 (
                     project_id,
                     _now(),
@@ -727,24 +585,23 @@ class Store:
                     json.dumps(settings or NO_EDITS),
                     (by or WORKSTATION).name,
                 ),
-            )
-            assert cursor.lastrowid is not None
-            _trail_run(db, project_id, by, cursor.lastrowid)
-        return cursor.lastrowid
+            ).fetchone()
+            _trail_run(db, project_id, by, run_id)
+        return int(run_id)
 
     def start_run(
         self, project_id: str, settings: dict[str, Any], *, by: Actor | None = None
     ) -> int:
         """Record a run as ``running`` before adjusting; ``finish_run`` completes it."""
         with self._write() as db:
-            cursor = db.execute(
+            db.lock_project(project_id)  # runs of one project are numbered in commit order
+            (run_id,) = db.execute(
                 "INSERT INTO runs (project_id, created, status, settings, started_by) "
-                "VALUES (?, ?, 'running', ?, ?)",
+                "VALUES (?, ?, 'running', ?, ?) RETURNING id",
                 (project_id, _now(), json.dumps(settings), (by or WORKSTATION).name),
-            )
-            assert cursor.lastrowid is not None
-            _trail_run(db, project_id, by, cursor.lastrowid)
-        return cursor.lastrowid
+            ).fetchone()
+            _trail_run(db, project_id, by, run_id)
+        return int(run_id)
 
     def finish_run(
         self,
@@ -765,18 +622,21 @@ class Store:
         change = ""
         gone = False
         with self._write() as db:
+            owner = db.execute("SELECT project_id FROM runs WHERE id = ?", (run_id,)).fetchone()
+            # the project's row held first, then the run read again under it: two attempts
+            # at finishing the same run (a worker's job retried) commit one outcome
+            deleted = None if owner is None else db.lock_project(owner[0])
             row = db.execute(
                 "SELECT project_id, status, settings FROM runs WHERE id = ?", (run_id,)
             ).fetchone()
             if row is None:
                 raise RunGone(f"run {run_id} no longer exists; its project was deleted")
-            deleted = db.execute("SELECT deleted FROM projects WHERE id = ?", (row[0],)).fetchone()
             if deleted is not None and deleted[0] is not None:
                 # Dropped (not left running): a restored project shows no orphan run.
                 db.execute("DELETE FROM runs WHERE id = ?", (run_id,))
                 gone = True
             elif row[1] != "running":
-                raise ValueError(f"run {run_id} is not running")
+                raise RunEnded(f"run {run_id} is not running")
             project_id = row[0]
             if not gone and result is not None and consumed is not None:
                 change = _queue_change(db, project_id, run_id, _loads(row[2]) or {}, consumed)
@@ -803,22 +663,92 @@ class Store:
                 "nothing was stored. Check the decisions and re-run again."
             )
 
-    def mark_interrupted(self) -> list[int]:
-        """Store every run left ``running`` as ``interrupted``; returns their ids.
+    def mark_interrupted(self, keep: Collection[int] = ()) -> list[int]:
+        """Store every run left ``running`` as ``interrupted``, except those in ``keep``;
+        returns their ids.
 
         Call only when no process is adjusting on this data folder (at start-up): a run
-        is ``running`` between ``start_run`` and ``finish_run`` of one live process.
+        is ``running`` between ``start_run`` and ``finish_run`` of one live process.  With
+        workers (PostgreSQL), ``keep`` holds the runs the task queue still has.
         """
+        kept = set(keep)
         with self._write() as db:
             ids = [
                 row[0]
                 for row in db.execute("SELECT id FROM runs WHERE status = 'running' ORDER BY id")
+                if row[0] not in kept
             ]
-            db.execute(
-                "UPDATE runs SET status = 'interrupted', error = ? WHERE status = 'running'",
-                (json.dumps(INTERRUPTED_ERROR),),
-            )
+            for run_id in ids:
+                db.execute(
+                    "UPDATE runs SET status = 'interrupted', error = ? "
+                    "WHERE id = ? AND status = 'running'",
+                    (json.dumps(INTERRUPTED_ERROR), run_id),
+                )
         return ids
+
+    def interrupt_run(self, run_id: int, message: str) -> bool:
+        """Store one running run as ``interrupted`` with ``message``; True if it was running.
+
+        For a run whose adjustment keeps stopping its worker (the queue gave up on it):
+        the project's page then offers the re-run as for any interrupted run.
+        """
+        error = {**INTERRUPTED_ERROR, "message": message}
+        with self._write() as db:
+            cursor = db.execute(
+                "UPDATE runs SET status = 'interrupted', error = ? "
+                "WHERE id = ? AND status = 'running'",
+                (json.dumps(error), run_id),
+            )
+        return bool(cursor.rowcount)
+
+    def run_status(self, run_id: int) -> tuple[str, str] | None:
+        """(project id, status) of a run by its id alone, or None when it does not exist."""
+        with self._read() as db:
+            row = db.execute(
+                "SELECT project_id, status FROM runs WHERE id = ?", (run_id,)
+            ).fetchone()
+        return None if row is None else (row[0], row[1])
+
+    # -- progress of runs adjusted by workers -----------------------------------------
+
+    def set_progress(self, run_id: int, stage: str, step: int) -> None:
+        """Record the stage a worker's adjustment of ``run_id`` has reached (pages read it)."""
+        now = _now()
+        with self._write() as db:
+            db.execute(
+                "INSERT INTO run_progress (run_id, stage, step, started, updated) "
+                "VALUES (?, ?, ?, ?, ?) ON CONFLICT (run_id) DO UPDATE SET "
+                "stage = excluded.stage, step = excluded.step, updated = excluded.updated",
+                (run_id, stage, step, now, now),
+            )
+
+    def progress(self, run_id: int) -> RunProgress:
+        """Where a running run is: its stage (``queued`` until a worker has taken it), and
+        the runs waiting ahead of it and being adjusted, read from the database."""
+        with self._read() as db:
+            row = db.execute(
+                "SELECT stage, step, started FROM run_progress WHERE run_id = ?", (run_id,)
+            ).fetchone()
+            waiting, adjusting = db.execute(
+                "SELECT "
+                "COALESCE(SUM(CASE WHEN g.run_id IS NULL AND r.id < ? THEN 1 ELSE 0 END), 0), "
+                "COALESCE(SUM(CASE WHEN g.run_id IS NULL THEN 0 ELSE 1 END), 0) "
+                "FROM runs r LEFT JOIN run_progress g ON g.run_id = r.id "
+                "WHERE r.status = 'running'",
+                (run_id,),
+            ).fetchone()
+        if row is None:
+            return RunProgress(run_id, "queued", 0, None, int(waiting), int(adjusting))
+        return RunProgress(run_id, row[0], int(row[1]), row[2], None, int(adjusting))
+
+    def waiting_runs(self) -> int:
+        """Runs stored as ``running`` that no worker has taken yet."""
+        with self._read() as db:
+            (count,) = db.execute(
+                "SELECT COUNT(*) FROM runs r WHERE r.status = 'running' AND NOT EXISTS "
+                "(SELECT 1 FROM run_progress g WHERE g.run_id = r.id)"
+            ).fetchone()
+        return int(count)
 
     def latest_run(self, project_id: str, *, finished: bool = False) -> Run | None:
         """The most recent completed run (or finished one) with its full result dump, or None.
@@ -894,6 +824,7 @@ class Store:
         """
         key = _decision_key(edit)
         with self._write() as db:
+            db.lock_project(project_id)
             if based_on is not None:
                 (latest,) = db.execute(
                     "SELECT MAX(id) FROM runs WHERE project_id = ? AND status = 'finished'",
@@ -912,14 +843,13 @@ class Store:
                     raise AlreadyQueued(
                         f"{where}he same decision is already queued for the next re-run."
                     )
-            cursor = db.execute(
+            (edit_id,) = db.execute(
                 "INSERT INTO pending_edits (project_id, created, edit, proposed_by) "
-                "VALUES (?, ?, ?, ?)",
+                "VALUES (?, ?, ?, ?) RETURNING id",
                 (project_id, _now(), json.dumps(edit), (by or WORKSTATION).name),
-            )
+            ).fetchone()
             _trail(db, project_id, by, "proposed", _decision_words(edit), based_on)
-        assert cursor.lastrowid is not None
-        return cursor.lastrowid
+        return int(edit_id)
 
     def pending_edits(self, project_id: str) -> list[PendingEdit]:
         """The project's queued decisions, oldest first."""
@@ -946,6 +876,7 @@ class Store:
         if not is_valid_id(project_id):
             return False
         with self._write() as db:
+            db.lock_project(project_id)  # not between a re-run's check of the queue and its commit
             row = db.execute(
                 "SELECT edit, proposed_by FROM pending_edits WHERE id = ? AND project_id = ?",
                 (edit_id, project_id),
@@ -965,6 +896,7 @@ class Store:
         approved, and only once: ``NotApprovable`` says why not.
         """
         with self._write() as db:
+            db.lock_project(project_id)  # checked against the queue and the runs as they stand
             row = db.execute(
                 f"SELECT {_RUN_COLUMNS} FROM runs WHERE project_id = ? AND id = ?",  # noqa: S608
                 (project_id, run_id),
@@ -1040,7 +972,7 @@ class Store:
         with self._read() as db:
             rows = db.execute(
                 "SELECT u.name FROM project_shares s JOIN users u ON u.id = s.user_id "
-                "WHERE s.project_id = ? ORDER BY u.name COLLATE NOCASE",
+                "WHERE s.project_id = ? ORDER BY lower(u.name)",
                 (project_id,),
             ).fetchall()
         return [r[0] for r in rows]
@@ -1053,7 +985,9 @@ class Store:
         with self._write() as db:
             ids, unknown = [], []
             for name in names:
-                row = db.execute("SELECT id FROM users WHERE name = ?", (name,)).fetchone()
+                row = db.execute(  # names are one whatever their letter case
+                    "SELECT id FROM users WHERE lower(name) = lower(?)", (name,)
+                ).fetchone()
                 if row is None:
                     unknown.append(name)
                 else:
@@ -1076,11 +1010,11 @@ class Store:
 
     # -- for the accounts module: the same one-transaction connections ---------------
 
-    def writing(self) -> contextlib.AbstractContextManager[sqlite3.Connection]:
+    def writing(self) -> contextlib.AbstractContextManager[Transaction]:
         """One write transaction (``server.store.accounts`` keeps its tables with it)."""
         return self._write()
 
-    def reading(self) -> contextlib.AbstractContextManager[sqlite3.Connection]:
+    def reading(self) -> contextlib.AbstractContextManager[Transaction]:
         """One read connection."""
         return self._read()
 
@@ -1095,7 +1029,7 @@ _RUN_COLUMNS = (
 )
 
 
-def _trail_run(db: sqlite3.Connection, project_id: str, by: Actor | None, run_id: int) -> None:
+def _trail_run(db: Transaction, project_id: str, by: Actor | None, run_id: int) -> None:
     """The trail's line for a run just stored: its number, who started it and how many
     decisions it applies."""
     (number, settings) = db.execute(
@@ -1128,7 +1062,7 @@ def _decision_key(edit: Any) -> tuple[Any, ...]:
 
 
 def _queue_change(
-    db: sqlite3.Connection,
+    db: Transaction,
     project_id: str,
     run_id: int,
     settings: dict[str, Any],

@@ -24,7 +24,6 @@ import hmac
 import json
 import logging
 import secrets
-import sqlite3
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -39,6 +38,7 @@ from starlette.routing import Match, Mount
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from server.store.accounts import ROLE_TITLES, Accounts, User
+from server.store.backends import storage_errors
 from server.store.sqlite import WORKSTATION, Actor, Project
 
 logger = logging.getLogger("stationfit.web")
@@ -142,6 +142,9 @@ ROUTE_RULES: dict[tuple[str, str], str] = {
     ("GET", "/projects/{project_id}/design.pdf"): READ,
     ("GET", "/monitoring"): READ,
 }
+
+#: The database errors of the installed back ends (SQLite, and psycopg's when present).
+STORAGE_ERRORS = storage_errors()
 
 
 @dataclass(frozen=True, slots=True)
@@ -362,7 +365,7 @@ class AccessMiddleware:
         router_app: Any,
         settings: AccessSettings,
         error_page: Callable[[Scope, int, str, str], Response],
-        store_failure: Callable[[Scope, sqlite3.Error], Response],
+        store_failure: Callable[[Scope, Exception], Response],
     ) -> None:
         self.app = app
         self.router_app = router_app
@@ -381,7 +384,7 @@ class AccessMiddleware:
                 who, why = WORKSTATION_PRINCIPAL, ""
             else:
                 who, why = await run_in_threadpool(resolve, self.settings, cookie)
-        except sqlite3.Error as exc:  # no store, no knowing who may: refused, with a 503
+        except STORAGE_ERRORS as exc:  # no store, no knowing who may: refused, with a 503
             await self.store_failure(scope, exc)(scope, receive, send)
             return
         scope.setdefault("state", {})

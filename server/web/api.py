@@ -17,6 +17,7 @@ from server.store.projects import Upload
 from server.store.sqlite import Actor, Store
 from server.web import access
 from server.web.dependencies import (
+    JobsDep,
     LimitsDep,
     ProjectDep,
     QueueDep,
@@ -27,7 +28,8 @@ from server.web.dependencies import (
     room_in_queue,
     survey_error_payload,
 )
-from server.web.jobs import AdjustmentQueue, QueueFull
+from server.web.jobs import AdjustmentQueue, BackgroundAdjustments, QueueFull
+from server.web.workers import RemoteJobs
 
 router = APIRouter()
 
@@ -94,24 +96,34 @@ def _adjusted_json(upload: Upload, limits: WorkLimits, queue: AdjustmentQueue) -
     return ResultJSONResponse(result.to_json_dict())
 
 
+#: Seconds ``POST /api/projects`` waits for a worker's adjustment (PostgreSQL) before it
+#: answers with the run still ``running`` (the project's address then gives the result).
+API_WAIT_FOR_WORKERS = 900.0
+
+
 def _stored_json(
     store: Store,
     upload: Upload,
     max_projects: int,
     limits: WorkLimits,
-    queue: AdjustmentQueue,
+    jobs: BackgroundAdjustments,
     owner: Actor,
 ) -> JSONResponse:
-    project_id, result, error = service.submit(store, upload, max_projects, limits, queue, owner)
-    body: dict[str, Any] = {
-        "id": project_id,
-        "result": None if result is None else result.to_json_dict(),
-    }
-    if error is not None:
-        body.update(survey_error_payload(error))
-    return ResultJSONResponse(
-        body, status_code=201, headers={"Location": f"/api/projects/{project_id}"}
-    )
+    headers = {"Location": ""}
+    if isinstance(jobs, RemoteJobs):  # workers adjust it: wait for the run to end
+        project_id, run = jobs.submit(upload, max_projects, limits, API_WAIT_FOR_WORKERS, owner)
+        body: dict[str, Any] = {"id": project_id, **service.run_payload(run)}
+        if run is not None and run.status == "running":
+            body["status"] = "running"
+    else:
+        project_id, result, error = service.submit(
+            store, upload, max_projects, limits, jobs.queue, owner
+        )
+        body = {"id": project_id, "result": None if result is None else result.to_json_dict()}
+        if error is not None:
+            body.update(survey_error_payload(error))
+    headers["Location"] = f"/api/projects/{project_id}"
+    return ResultJSONResponse(body, status_code=201, headers=headers)
 
 
 @router.post("/api/adjust", openapi_extra=_fieldbook_body("200"))
@@ -125,20 +137,20 @@ async def api_adjust(request: Request, limits: LimitsDep, queue: QueueDep) -> JS
 
 @router.post("/api/projects", status_code=201, openapi_extra=_fieldbook_body("201"))
 async def api_create_project(
-    request: Request, store: StoreDep, limits: LimitsDep, queue: QueueDep
+    request: Request, store: StoreDep, limits: LimitsDep, jobs: JobsDep
 ) -> JSONResponse:
     """Store and adjust: ``{"id", "result"}``, with ``result`` null and the error when it failed."""
     upload = await read_upload(request, with_text=False)
     if upload is None:
         return JSONResponse(_MISSING_FIELD, status_code=422)
-    room_in_queue(queue)
+    await run_in_threadpool(room_in_queue, jobs)
     return await run_in_threadpool(
         _stored_json,
         store,
         upload,
         request.app.state.max_projects,
         limits,
-        queue,
+        jobs,
         access.actor(request),
     )
 

@@ -5,7 +5,6 @@ from __future__ import annotations
 import ipaddress
 import logging
 import os
-import sqlite3
 from collections.abc import Collection
 from datetime import datetime
 from pathlib import Path
@@ -37,8 +36,9 @@ from server.settings import (
     service_queue,
 )
 from server.store.accounts import Accounts
+from server.store.backends import storage_errors
 from server.store.projects import ProposalCache, StoreFull, purge_deleted
-from server.store.sqlite import RunGone, Store
+from server.store.sqlite import SCHEMA_VERSION, RunGone, Store
 from server.web import (
     access,
     api,
@@ -53,8 +53,9 @@ from server.web import (
     sign_in,
 )
 from server.web.dependencies import busy, survey_error_payload
-from server.web.jobs import AdjustmentQueue, Jobs, QueueFull
+from server.web.jobs import AdjustmentQueue, BackgroundAdjustments, Jobs, QueueFull
 from server.web.run_parts import parts_cache
+from server.web.workers import RemoteJobs
 
 logger = logging.getLogger("stationfit.web")
 
@@ -416,16 +417,16 @@ def _install_request_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
         return await http_error(request, StarletteHTTPException(507, str(exc)))
 
 
-def storage_failure(templates: Jinja2Templates, scope: Scope, exc: sqlite3.Error) -> Response:
-    """503: the store cannot be read or written (the folder and reason go to the log only)."""
+def storage_failure(templates: Jinja2Templates, scope: Scope, exc: Exception) -> Response:
+    """503: the store cannot be read or written (the folder or database and the reason go
+    to the log only)."""
     request = Request(scope)
-    folder = request.app.state.store.path.parent
     logger.error(
-        "%s %s: the data folder %s cannot be used (%s); check that it exists, "
+        "%s %s: %s cannot be used (%s); check that it exists, "
         "that the service's user may write to it and that the disk has room",
         request.method,
         request.url.path,
-        folder,
+        request.app.state.store.location,
         exc,
     )
     if request.method in UNSAFE_METHODS:
@@ -448,10 +449,16 @@ def storage_failure(templates: Jinja2Templates, scope: Scope, exc: sqlite3.Error
 def _install_failure_handlers(app: FastAPI, templates: Jinja2Templates) -> None:
     """The service itself failed: its store is unusable, or an unexpected error (500)."""
 
-    @app.exception_handler(sqlite3.Error)
-    async def storage_error(request: Request, exc: sqlite3.Error) -> Response:
-        """The project store cannot be read or written: say so, and name the folder in the log."""
+    async def storage_error(request: Request, exc: Exception) -> Response:
+        """The project store cannot be read or written: say so, and name the folder (or the
+        database) in the log."""
         return storage_failure(templates, request.scope, exc)
+
+    for error in storage_errors():  # SQLite's, and psycopg's when it is installed
+        app.add_exception_handler(error, storage_error)
+
+    for error in storage_errors():  # SQLite's, and psycopg's when it is installed
+        app.add_exception_handler(error, storage_error)
 
     @app.exception_handler(Exception)
     async def server_error(request: Request, exc: Exception) -> Response:
@@ -555,10 +562,17 @@ def create_app(
     adjustments_at_once: int | None = None,
     max_waiting: int | None = None,
     keep_deleted_days: int | None = None,
+    database: str | None = None,
+    workers: bool | None = None,
     session_hours: float | None = None,
     secure_cookies: bool | None = None,
 ) -> FastAPI:
-    """Build the web application storing projects under ``data_dir``.
+    """Build the web application storing projects under ``data_dir``, or in the PostgreSQL
+    database at ``database`` (``postgresql://…``).
+
+    ``workers`` (default: True with PostgreSQL) hands the adjustments of stored runs to
+    ``python -m server worker`` processes through the task queue; otherwise they run on
+    this process's threads.
 
     Limits not given come from STATIONFIT_MAX_UPLOAD_BYTES and STATIONFIT_MAX_PROJECTS,
     else the defaults (docs/security.md).  ``allowed_hosts`` (None: any) are the Host
@@ -589,9 +603,28 @@ def create_app(
         openapi_url="/api/openapi.json",
     )
     templates = make_templates()
-    app.state.store = Store(Path(data_dir) / DATABASE_NAME)
-    # This process has not started any run yet: one still ``running`` was cut off.
-    stopped = app.state.store.mark_interrupted()
+    store = Store(database) if database else Store(Path(data_dir) / DATABASE_NAME)
+    app.state.store = store
+    if 0 < store.upgraded_from < SCHEMA_VERSION:
+        logger.warning(
+            "%s was upgraded from schema %d to %d",
+            store.location,
+            store.upgraded_from,
+            SCHEMA_VERSION,
+        )
+    queue = AdjustmentQueue(*service_queue(adjustments_at_once, max_waiting))
+    jobs: BackgroundAdjustments
+    if workers if workers is not None else store.postgresql:
+        if not store.postgresql:
+            raise ValueError("adjustment workers need the projects in PostgreSQL (--database)")
+        jobs = RemoteJobs(store, str(database), queue, queue.max_waiting)
+    else:
+        jobs = Jobs(queue)
+    app.state.jobs = jobs
+    # This process has not started any run yet: one still ``running`` was cut off, unless
+    # the task queue still has it (a worker adjusts it, or will).
+    keep = jobs.live_runs() if isinstance(jobs, RemoteJobs) else set()
+    stopped = store.mark_interrupted(keep)
     if stopped:
         logger.warning(
             "the service stopped before finishing run(s) %s; stored as "
@@ -605,7 +638,6 @@ def create_app(
     app.state.max_upload_bytes = max_upload_bytes
     app.state.max_projects = max_projects
     app.state.limits = limits if limits is not None else service_limits()
-    app.state.jobs = Jobs(AdjustmentQueue(*service_queue(adjustments_at_once, max_waiting)))
     # the review's second opinions (robust, snooping) of recent runs, shared by worker threads
     app.state.proposals = ProposalCache()
     app.state.run_parts = parts_cache()  # results, rows and plots of recent runs

@@ -3,8 +3,11 @@ and the small response helpers the route modules share."""
 
 from __future__ import annotations
 
+import asyncio
 import hmac
 import re
+import threading
+import time
 from datetime import date
 from pathlib import Path
 from typing import Annotated, Any
@@ -14,6 +17,7 @@ from fastapi import Depends, HTTPException, Request
 from fastapi import Path as PathParameter
 from fastapi.responses import HTMLResponse, Response
 from fastapi.templating import Jinja2Templates
+from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import FormData, UploadFile
 
 from server.errors import FieldbookError, NetworkError, SurveyError
@@ -22,7 +26,7 @@ from server.settings import RETRY_AFTER_SECONDS, WorkLimits
 from server.store.projects import ProposalCache, StandardsChoice, UnknownPreset, Upload
 from server.store.sqlite import Project, Store, error_record
 from server.web import access
-from server.web.jobs import AdjustmentQueue, Jobs, QueueFull
+from server.web.jobs import AdjustmentQueue, BackgroundAdjustments, QueueFull, RunJob
 
 #: The largest row id SQLite stores (a signed 64-bit integer).
 SQLITE_MAX_ROWID = 2**63 - 1
@@ -32,6 +36,8 @@ SQLITE_MAX_ROWID = 2**63 - 1
 RowId = Annotated[int, PathParameter(ge=1, le=SQLITE_MAX_ROWID)]
 #: Seconds an upload from the browser waits for its adjustment before showing progress instead.
 WAIT_FOR_SMALL_JOBS = 2.0
+#: Seconds between two looks at the database while an upload waits for a worker's result.
+POLL_FOR_WORKERS = 0.2
 #: Page numbers beyond this are clamped (to the last page) like any other too-large one.
 MAX_PAGE_PARAMETER = 1_000_000
 
@@ -48,7 +54,8 @@ def get_limits(request: Request) -> WorkLimits:
     return request.app.state.limits  # type: ignore[no-any-return]
 
 
-def get_jobs(request: Request) -> Jobs:
+def get_jobs(request: Request) -> BackgroundAdjustments:
+    """This process's background adjustments, or the workers' queue (PostgreSQL)."""
     return request.app.state.jobs  # type: ignore[no-any-return]
 
 
@@ -62,7 +69,7 @@ def get_proposals(request: Request) -> ProposalCache:
 
 StoreDep = Annotated[Store, Depends(get_store)]
 LimitsDep = Annotated[WorkLimits, Depends(get_limits)]
-JobsDep = Annotated[Jobs, Depends(get_jobs)]
+JobsDep = Annotated[BackgroundAdjustments, Depends(get_jobs)]
 QueueDep = Annotated[AdjustmentQueue, Depends(get_queue)]
 ProposalsDep = Annotated[ProposalCache, Depends(get_proposals)]
 
@@ -81,6 +88,21 @@ def project_or_404(project_id: str, store: StoreDep, request: Request) -> Projec
 ProjectDep = Annotated[Project, Depends(project_or_404)]
 
 
+async def wait_briefly(job: RunJob, seconds: float) -> None:
+    """Wait up to ``seconds`` for a background run to end, so that a small one opens straight
+    on its results: on a worker thread for this process's jobs; for a worker's job by
+    polling the database from the event loop, so that many waiting uploads do not take
+    every thread that pages need."""
+    if isinstance(job.done, threading.Event):
+        await run_in_threadpool(job.done.wait, seconds)
+        return
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline:
+        if await run_in_threadpool(job.done.is_set):
+            return
+        await asyncio.sleep(POLL_FOR_WORKERS)
+
+
 def busy(exc: QueueFull) -> HTTPException:
     """503 with Retry-After: the queue of adjustments is full; nothing was stored."""
     waiting = exc.args[0] if exc.args else 0
@@ -94,8 +116,9 @@ def busy(exc: QueueFull) -> HTTPException:
     )
 
 
-def room_in_queue(queue: AdjustmentQueue) -> None:
-    """Refuse (503) before storing anything when the adjustment queue is full."""
+def room_in_queue(queue: AdjustmentQueue | BackgroundAdjustments) -> None:
+    """Refuse (503) before storing anything when the adjustment queue is full (for a
+    stored run, ``jobs``: the workers' queue with PostgreSQL)."""
     try:
         queue.check_room()
     except QueueFull as exc:

@@ -22,6 +22,7 @@ from server.web.dependencies import (
     ProjectDep,
     RowId,
     StoreDep,
+    wait_briefly,
 )
 
 router = APIRouter()
@@ -46,9 +47,10 @@ async def retry_interrupted(
     new_id = await run_in_threadpool(
         lambda: store.start_run(project.id, settings, by=access.actor(request))
     )
-    job = jobs.start(
+    job = await run_in_threadpool(
+        jobs.start,
         new_id,
         lambda progress: service.retry_interrupted(store, project, interrupted, progress, new_id),
     )
-    await run_in_threadpool(job.done.wait, WAIT_FOR_SMALL_JOBS)
+    await wait_briefly(job, WAIT_FOR_SMALL_JOBS)
     return RedirectResponse(f"/projects/{project.id}", status_code=303)

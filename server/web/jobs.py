@@ -21,6 +21,7 @@ import time
 from collections import deque
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
+from typing import Protocol
 
 from server.store.sqlite import RunGone
 
@@ -37,6 +38,17 @@ STAGE_WORDS = {
     "statistics": "computing the statistics",
     "result": "writing the results",
 }
+
+
+def stage_words(stage: str, step: int, ahead: int | None, running: int) -> str:
+    """A job's stage as a person reads it (``ahead``: adjustments waiting before it)."""
+    if stage == "queued" and ahead is not None:
+        return (
+            f"waiting: {ahead} ahead of this one "
+            f"({running} adjustment{'' if running == 1 else 's'} running)"
+        )
+    text = STAGE_WORDS.get(stage, stage)
+    return f"{text} (iteration {step})" if stage == "iteration" else text
 
 
 class QueueFull(Exception):
@@ -116,6 +128,38 @@ class AdjustmentQueue:
             return self._running
 
 
+class Waiter(Protocol):
+    """``job.done``: wait for the run to end (True) or for ``timeout`` seconds (False)."""
+
+    def wait(self, timeout: float | None = None) -> bool: ...
+
+    def is_set(self) -> bool: ...
+
+
+class RunJob(Protocol):
+    """A background adjustment of a stored run, as the routes and the progress page use it."""
+
+    @property
+    def done(self) -> Waiter: ...
+
+
+class BackgroundAdjustments(Protocol):
+    """Where stored runs are adjusted: this process's threads (``Jobs``) or worker
+    processes through the task queue (``server.web.workers.RemoteJobs``)."""
+
+    queue: AdjustmentQueue
+
+    def check_room(self) -> None: ...
+
+    def start(
+        self, run_id: int, work: Callable[[Callable[[str, int], None]], object]
+    ) -> RunJob: ...
+
+    def get(self, run_id: int) -> RunJob | None: ...
+
+    def close(self) -> None: ...
+
+
 @dataclass
 class Job:
     """One background adjustment: where it is and whether it has ended."""
@@ -140,14 +184,8 @@ class Job:
     def words(self) -> str:
         """The stage as a person reads it."""
         ahead = self.ahead if self.stage == "queued" else None
-        if ahead is not None:
-            running = self.queue.running if self.queue is not None else 0
-            return (
-                f"waiting: {ahead} ahead of this one "
-                f"({running} adjustment{'' if running == 1 else 's'} running)"
-            )
-        text = STAGE_WORDS.get(self.stage, self.stage)
-        return f"{text} (iteration {self.step})" if self.stage == "iteration" else text
+        running = self.queue.running if self.queue is not None and ahead is not None else 0
+        return stage_words(self.stage, self.step, ahead, running)
 
     @property
     def elapsed(self) -> float:
@@ -162,6 +200,13 @@ class Jobs:
         self._lock = threading.Lock()
         self._jobs: dict[int, Job] = {}
         self.queue = queue if queue is not None else AdjustmentQueue(1)
+
+    def check_room(self) -> None:
+        """``QueueFull`` when a new upload's adjustment would have to wait and the queue is full."""
+        self.queue.check_room()
+
+    def close(self) -> None:
+        """Nothing to let go: the threads end with their jobs."""
 
     def start(self, run_id: int, work: Callable[[Callable[[str, int], None]], object]) -> Job:
         """Run ``work(progress)`` on a new thread once the queue gives it a slot.

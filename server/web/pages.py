@@ -53,7 +53,7 @@ router = APIRouter()
 async def _submit_in_background(request: Request, upload: Upload) -> str:
     """Store and start adjusting; wait briefly so small jobs open straight on their results."""
     store, limits, jobs = deps.get_store(request), deps.get_limits(request), deps.get_jobs(request)
-    deps.room_in_queue(jobs.queue)
+    await run_in_threadpool(deps.room_in_queue, jobs)
     project_id, book, run_id, _ = await run_in_threadpool(
         service.store_upload,
         store,
@@ -63,10 +63,12 @@ async def _submit_in_background(request: Request, upload: Upload) -> str:
         access.actor(request),
     )
     if book is not None and run_id is not None:
-        job = jobs.start(
-            run_id, lambda progress: service.adjust_run(store, run_id, book, progress, limits)
+        job = await run_in_threadpool(
+            jobs.start,
+            run_id,
+            lambda progress: service.adjust_run(store, run_id, book, progress, limits),
         )
-        await run_in_threadpool(job.done.wait, deps.WAIT_FOR_SMALL_JOBS)
+        await deps.wait_briefly(job, deps.WAIT_FOR_SMALL_JOBS)
     return project_id
 
 
@@ -253,15 +255,17 @@ async def adjust_imported(request: Request, project: ProjectDep, form: CheckedFo
     """Adjust an imported field book once (a second press only opens the project)."""
     store, limits, jobs = deps.get_store(request), deps.get_limits(request), deps.get_jobs(request)
     if not store.runs(project.id):
-        deps.room_in_queue(jobs.queue)
+        await run_in_threadpool(deps.room_in_queue, jobs)
         book, run_id = await run_in_threadpool(
             imports.start_imported_run, store, project, limits, access.actor(request)
         )
         if book is not None and run_id is not None:
-            job = jobs.start(
-                run_id, lambda progress: service.adjust_run(store, run_id, book, progress, limits)
+            job = await run_in_threadpool(
+                jobs.start,
+                run_id,
+                lambda progress: service.adjust_run(store, run_id, book, progress, limits),
             )
-            await run_in_threadpool(job.done.wait, deps.WAIT_FOR_SMALL_JOBS)
+            await deps.wait_briefly(job, deps.WAIT_FOR_SMALL_JOBS)
     return RedirectResponse(f"/projects/{project.id}", status_code=303)
 
 
