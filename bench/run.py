@@ -263,7 +263,10 @@ start = clock()
 from server.pipeline import adjust_fieldbook
 imported = clock() - start
 try:
-    from server.results.json_output import result_json_bytes as encode
+    from server.results.json_result import result_json_chunks
+    def encode(result):
+        for _ in result_json_chunks(result):
+            pass
 except ImportError:
     from server.results.json_text import dumps_indented
     def encode(result):
