@@ -372,13 +372,21 @@ class AdjustmentResult:
         }
 
 
+def _column_records(rows: Sequence[Any]) -> list[dict[str, Any]] | None:
+    """The records straight from a column store built here (checked finite once), else None."""
+    from server.results.columns import ObservationColumns, PointColumns, RelativeColumns
+
+    if not isinstance(rows, (PointColumns, ObservationColumns, RelativeColumns)):
+        return None
+    records = rows.json_records()
+    return FiniteRecords(records) if rows.all_finite() else records
+
+
 def _point_records(points: Sequence[PointResult]) -> list[dict[str, Any]]:
     """The points of the plane contract: straight from the columns when built here."""
-    from server.results.columns import PointColumns
-
-    if isinstance(points, PointColumns):
-        records = points.json_records()
-        return FiniteRecords(records) if points.all_finite() else records
+    columns = _column_records(points)
+    if columns is not None:
+        return columns
     return [
         {
             "name": p.name,
@@ -406,11 +414,9 @@ def _point_records(points: Sequence[PointResult]) -> list[dict[str, Any]]:
 
 def _observation_records(observations: Sequence[ObservationResult]) -> list[dict[str, Any]]:
     """The observations of the contract: straight from the columns when built here."""
-    from server.results.columns import ObservationColumns
-
-    if isinstance(observations, ObservationColumns):
-        records = observations.json_records()
-        return FiniteRecords(records) if observations.all_finite() else records
+    columns = _column_records(observations)
+    if columns is not None:
+        return columns
     return [
         {
             "line": o.line,
@@ -438,11 +444,9 @@ def _observation_records(observations: Sequence[ObservationResult]) -> list[dict
 
 def _relative_records(relative: Sequence[RelativeResult]) -> list[dict[str, Any]]:
     """The relative ellipses of the contract: straight from the columns when built here."""
-    from server.results.columns import RelativeColumns
-
-    if isinstance(relative, RelativeColumns):
-        records = relative.json_records()
-        return FiniteRecords(records) if relative.all_finite() else records
+    columns = _column_records(relative)
+    if columns is not None:
+        return columns
     return [
         {
             "from": r.from_point,
