@@ -9,12 +9,15 @@ run was given.  The new run goes through the same background job as an upload.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import RedirectResponse, Response
 from starlette.concurrency import run_in_threadpool
 
 from server.store import projects as service
-from server.web import access
+from server.store.sqlite import Project, Run, Store
+from server.web import access, run_parts
 from server.web.dependencies import (
     WAIT_FOR_SMALL_JOBS,
     CheckedForm,
@@ -50,7 +53,20 @@ async def retry_interrupted(
     job = await run_in_threadpool(
         jobs.start,
         new_id,
-        lambda progress: service.retry_interrupted(store, project, interrupted, progress, new_id),
+        lambda progress: _retry(request, store, project, interrupted, progress, new_id),
     )
     await wait_briefly(job, WAIT_FOR_SMALL_JOBS)
     return RedirectResponse(f"/projects/{project.id}", status_code=303)
+
+
+def _retry(
+    request: Request,
+    store: Store,
+    project: Project,
+    interrupted: Run,
+    progress: Callable[[str, int], None],
+    run_id: int,
+) -> None:
+    """The retry's job: adjust again, then make its pages' parts for the first view."""
+    service.retry_interrupted(store, project, interrupted, progress, run_id)
+    run_parts.prepare(request.app, project.id, run_id)

@@ -3,6 +3,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -16,6 +17,7 @@ from fastapi.responses import (
 from starlette.concurrency import run_in_threadpool
 
 from server.errors import FieldbookError
+from server.fieldbook.model import Fieldbook
 from server.formats.geojson import NO_CRS, GeoJsonUnavailable, geojson_text
 from server.report import csv_export
 from server.report import html as html_report
@@ -25,6 +27,7 @@ from server.report.pdf import report_pdf
 from server.report.tables import Page
 from server.report.text import report_text
 from server.results.result import AdjustmentResult
+from server.settings import WorkLimits
 from server.store import projects as service
 from server.store.projects import StandardsChoice, Upload, display_name
 from server.store.sqlite import Project, Run, Store
@@ -64,12 +67,23 @@ async def _submit_in_background(request: Request, upload: Upload) -> str:
     )
     if book is not None and run_id is not None:
         job = await run_in_threadpool(
-            jobs.start,
-            run_id,
-            lambda progress: service.adjust_run(store, run_id, book, progress, limits),
+            jobs.start, run_id, _adjusting(request, project_id, run_id, book, limits)
         )
         await deps.wait_briefly(job, deps.WAIT_FOR_SMALL_JOBS)
     return project_id
+
+
+def _adjusting(
+    request: Request, project_id: str, run_id: int, book: Fieldbook, limits: WorkLimits
+) -> Callable[[Callable[[str, int], None]], None]:
+    """The job of a stored run: adjust it, then make its pages' parts for the first view."""
+    app, store = request.app, deps.get_store(request)
+
+    def work(progress: Callable[[str, int], None]) -> None:
+        service.adjust_run(store, run_id, book, progress, limits)
+        run_parts.prepare(app, project_id, run_id)
+
+    return work
 
 
 async def _import_in_background(request: Request, upload: Upload) -> Response:
@@ -261,9 +275,7 @@ async def adjust_imported(request: Request, project: ProjectDep, form: CheckedFo
         )
         if book is not None and run_id is not None:
             job = await run_in_threadpool(
-                jobs.start,
-                run_id,
-                lambda progress: service.adjust_run(store, run_id, book, progress, limits),
+                jobs.start, run_id, _adjusting(request, project.id, run_id, book, limits)
             )
             await deps.wait_briefly(job, deps.WAIT_FOR_SMALL_JOBS)
     return RedirectResponse(f"/projects/{project.id}", status_code=303)

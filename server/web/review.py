@@ -15,6 +15,7 @@ browser says it came from another site.
 from __future__ import annotations
 
 import logging
+import threading
 from collections.abc import Callable
 from typing import Any
 from urllib.parse import urlencode
@@ -415,6 +416,10 @@ async def rerun(
     new = store.run(project.id, run_id) if run_id is not None else None
     if new is None or not new.finished or state.base is None:
         return RedirectResponse(_review_url(project.id), status_code=303)
+    # the results and review pages of the new run are made while the comparison is read
+    threading.Thread(
+        target=run_parts.prepare, args=(request.app, project.id, new.id), daemon=True
+    ).start()
     return RedirectResponse(
         f"/projects/{project.id}/compare?a={state.base.id}&b={new.id}", status_code=303
     )

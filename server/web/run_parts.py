@@ -12,23 +12,33 @@ rendered by the autoescaping templates.
 from __future__ import annotations
 
 import dataclasses
+import logging
 import threading
 from collections import OrderedDict
 from collections.abc import Callable, Sequence
-from typing import Any, TypeVar
+from typing import Any, Protocol, TypeVar
 
-from fastapi import Request
 from markupsafe import Markup
 
 from server.report import plot, review
 from server.report import tables as report
 from server.results.result import AdjustmentResult
-from server.review.tau import TauTest
+from server.review.tau import TauTest, tau_test
 from server.store import projects as service
 from server.store.projects import ReviewState, Slots, StandardsChoice, load_state
 from server.store.sqlite import Project, Run, Store
 
 T = TypeVar("T")
+
+logger = logging.getLogger(__name__)
+
+
+class AppBound(Protocol):
+    """What the parts need of a request: its application (store, cache, templates)."""
+
+    @property
+    def app(self) -> Any: ...
+
 
 #: What the cache may hold, in observations of the runs its entries belong to (a run's
 #: result, rows, plot layout, plot drawing and review pages are each about 1-2 kB per
@@ -81,7 +91,7 @@ def parts_cache() -> RunPartsCache:
     return RunPartsCache()
 
 
-def _cache(request: Request) -> RunPartsCache:
+def _cache(request: AppBound) -> RunPartsCache:
     return request.app.state.run_parts  # type: ignore[no-any-return]
 
 
@@ -90,7 +100,7 @@ def _key(project: Project, run: Run, choice: StandardsChoice) -> tuple[Any, ...]
 
 
 def _kept(
-    request: Request,
+    request: AppBound,
     run: Run,
     key: tuple[Any, ...],
     make: Callable[[], T],
@@ -109,7 +119,7 @@ def latest_completed(runs: Sequence[Run]) -> Run | None:
 
 
 def result(
-    request: Request,
+    request: AppBound,
     project: Project,
     run: Run | None,
     choice: StandardsChoice,
@@ -132,7 +142,7 @@ def result(
 
 
 def observation_rows(
-    request: Request, project: Project, run: Run, choice: StandardsChoice, found: AdjustmentResult
+    request: AppBound, project: Project, run: Run, choice: StandardsChoice, found: AdjustmentResult
 ) -> list[report.ObservationRow]:
     """Every observation of the run formatted as a table row (the pages slice them)."""
     return _kept(
@@ -144,7 +154,7 @@ def observation_rows(
 
 
 def plot_data(
-    request: Request, project: Project, run: Run, choice: StandardsChoice, found: AdjustmentResult
+    request: AppBound, project: Project, run: Run, choice: StandardsChoice, found: AdjustmentResult
 ) -> dict[str, Any] | None:
     """The network plot's layout with the side panel's figures (``network_plot_data``)."""
 
@@ -156,7 +166,7 @@ def plot_data(
 
 
 def plot_fragment(
-    request: Request, project: Project, run: Run, choice: StandardsChoice, found: AdjustmentResult
+    request: AppBound, project: Project, run: Run, choice: StandardsChoice, found: AdjustmentResult
 ) -> Markup:
     """The network plot of the results page (SVG, legend and the panel's data), rendered."""
 
@@ -172,7 +182,7 @@ def plot_fragment(
 
 
 def review_rows(
-    request: Request, state: ReviewState, tau: TauTest | None, page: report.Page
+    request: AppBound, state: ReviewState, tau: TauTest | None, page: report.Page
 ) -> list[review.ReviewRow]:
     """One page of the review's rows of the run under review (its field book text and result
     are those of that run, so the rows are the same until another run is reviewed)."""
@@ -187,7 +197,7 @@ def review_rows(
     return _kept(request, base, key, make)
 
 
-def review_state(request: Request, store: Store, project: Project, runs: list[Run]) -> ReviewState:
+def review_state(request: AppBound, store: Store, project: Project, runs: list[Run]) -> ReviewState:
     """The review's state (``load_state``: the run under review, its result, the decisions in
     force and queued, the field book they give), kept per run under review and queue.
 
@@ -210,3 +220,38 @@ def review_state(request: Request, store: Store, project: Project, runs: list[Ru
 
     state = _kept(request, base, key, lambda: load_state(store, project), current)
     return dataclasses.replace(state, project=project)  # the project as read for this request
+
+
+class _Made:
+    """The application without a request: parts made on the thread that adjusted the run."""
+
+    def __init__(self, app: Any) -> None:
+        self.app = app
+
+
+def prepare(app: Any, project_id: str, run_id: int) -> None:
+    """Make the results and review pages' parts of a run that has just finished, so the
+    page the surveyor opens next is drawn from the cache (the result read back from the
+    store, its rows, the network plot, the review's state and first page of rows).
+
+    Called on the adjusting thread after the run is stored; a part that cannot be made
+    is left to the page, which makes it (and reports any problem) as before.
+    """
+    store: Store = app.state.store
+    made = _Made(app)
+    try:
+        project = store.get_project(project_id)
+        run = store.run(project_id, run_id)
+        if project is None or run is None or not run.finished:
+            return
+        choice = StandardsChoice()
+        found = result(made, project, run, choice)
+        if found is None:
+            return
+        plot_fragment(made, project, run, choice, found)
+        state = review_state(made, store, project, store.runs(project_id))
+        if state.result is not None and state.base is not None and state.base.id == run_id:
+            first = report.page(len(state.result.observations), 1)
+            review_rows(made, state, tau_test(state.result), first)
+    except Exception:  # the pages make what is missing themselves
+        logger.exception("run %s: its pages' parts could not be made ahead", run_id)
