@@ -695,7 +695,7 @@ def _users_command(commands: argparse._SubParsersAction) -> None:  # type: ignor
 
 
 def _roles() -> tuple[str, ...]:
-    from server.store.accounts import ROLES
+    from server.store.roles import ROLES  # not the accounts: every command builds this help
 
     return ROLES
 
@@ -737,8 +737,9 @@ class _UsersError(Exception):
 
 def _users(args: argparse.Namespace) -> int:
     from server.settings import default_data_dir
-    from server.store.accounts import ROLE_TITLES, AccountError
+    from server.store.accounts import AccountError
     from server.store.backends import storage_errors, without_password
+    from server.store.roles import ROLE_TITLES
 
     data_dir = args.data if args.data is not None else default_data_dir()
     database = _database_option(args.database)

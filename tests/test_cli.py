@@ -191,3 +191,21 @@ def test_version_is_the_package_version():
 
     proc = run("--version")
     assert proc.returncode == 0 and proc.stdout.strip() == f"stationfit {__version__}"
+
+
+def test_adjust_command_loads_neither_the_office_service_nor_the_web_layer():
+    # start-up is part of every command's time: the accounts (argon2), the store and the
+    # web framework belong to serve, worker and users only
+    book = str(ROOT / "demo_projects" / "control_network.fieldbook")
+    code = (
+        "import contextlib, io, sys\n"
+        "from server.cli import main\n"
+        "with contextlib.redirect_stdout(io.StringIO()):\n"
+        f"    status = main(['adjust', {book!r}, '--json'])\n"
+        "heavy = ('argon2', 'server.store.sqlite', 'server.store.accounts', 'fastapi')\n"
+        "print(status, [m for m in heavy if m in sys.modules])\n"
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, check=False
+    )
+    assert done.stdout.strip() == "0 []", done.stderr[-800:]

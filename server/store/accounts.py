@@ -20,17 +20,9 @@ from datetime import UTC, datetime
 from argon2 import PasswordHasher
 from argon2.exceptions import InvalidHashError, VerificationError, VerifyMismatchError
 
+from server.store.roles import ROLES
 from server.store.sqlite import Actor, Store
 
-#: The roles, least to most trusted in projects; the administrator manages accounts only.
-ROLES = ("viewer", "technician", "surveyor", "administrator")
-#: How the pages name each role.
-ROLE_TITLES = {
-    "viewer": "viewer",
-    "technician": "technician",
-    "surveyor": "surveyor in responsible charge",
-    "administrator": "administrator",
-}
 #: Password length bounds: long enough to resist guessing, short enough to hash cheaply.
 MIN_PASSWORD, MAX_PASSWORD = 10, 256
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._@-]{0,63}$")

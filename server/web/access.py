@@ -37,8 +37,9 @@ from starlette.datastructures import Headers, MutableHeaders
 from starlette.routing import Match, Mount
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
-from server.store.accounts import ROLE_TITLES, Accounts, User
+from server.store.accounts import Accounts, User
 from server.store.backends import storage_errors
+from server.store.roles import ROLE_TITLES
 from server.store.sqlite import WORKSTATION, Actor, Project
 
 logger = logging.getLogger("stationfit.web")

@@ -88,7 +88,7 @@ _EVENT_WORDS = {
 
 def trail_rows(entries: list[TrailEntry]) -> list[dict[str, str]]:
     """The review trail as the pages list it: when, who (and their role), what."""
-    from server.store.accounts import ROLE_TITLES
+    from server.store.roles import ROLE_TITLES
 
     rows = []
     for entry in entries:

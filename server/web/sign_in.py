@@ -24,7 +24,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from starlette.concurrency import run_in_threadpool
 
-from server.store.accounts import ROLE_TITLES
+from server.store.roles import ROLE_TITLES
 from server.web import access
 from server.web.dependencies import client, form_text, read_form, render
 
