@@ -182,10 +182,11 @@ def test_results_page_shows_the_geodetic_parts(result, tmp_path, monkeypatch):
     """The real route and template, with the stored result swapped for the geodetic one."""
     from server.web import pages
 
+    # swapped before the upload: the adjusting thread makes the page's parts from it
+    monkeypatch.setattr(pages.service, "result_with_presets", lambda *args, **kwargs: result)
     with TestClient(create_app(tmp_path / "data")) as client:
         response = client.post("/demos/leveling_clean", follow_redirects=False)
         url = response.headers["location"]
-        monkeypatch.setattr(pages.service, "result_with_presets", lambda *args, **kwargs: result)
         html = client.get(url).text
     _check_page(html, result)
     assert 'id="geodetic-points"' in html and 'id="baseline-tests"' in html
