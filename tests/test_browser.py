@@ -106,7 +106,8 @@ def test_field_book_errors_in_the_browser(page, base_url):
     row = page.locator("tr.row-failed")
     assert row.count() == 1
     assert "Upload failed: field book errors" in row.inner_text()
-    row.get_by_role("link", name="Errors").click()
+    with page.expect_navigation():
+        row.get_by_role("link", name="Errors").click()
     assert page.locator("ol.issues li").count() == 1
 
 
