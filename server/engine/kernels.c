@@ -239,13 +239,14 @@ static void numba_dot(const double *x, int x_fortran, const double *y, double *o
 /* normal_pattern                                                                             */
 
 static PyObject *pair_count(PyObject *self, PyObject *args) {
-    PyObject *o_row_ptr;
-    if (!PyArg_ParseTuple(args, "O", &o_row_ptr)) return NULL;
+    PyObject *o_row_ptr, *o_slot_col;
+    if (!PyArg_ParseTuple(args, "OO", &o_row_ptr, &o_slot_col)) return NULL;
     Buffers b = {.held = 0};
-    Py_ssize_t len;
+    Py_ssize_t len, nnz_a;
     const i64 *row_ptr = take(&b, o_row_ptr, 'i', 0, "row_ptr", &len);
+    const i64 *slot_col = row_ptr ? take(&b, o_slot_col, 'i', 0, "slot_col", &nnz_a) : NULL;
     i64 total = 0;
-    if (row_ptr == NULL || check_pointers(row_ptr, len, 1, PY_SSIZE_T_MAX, "row_ptr") < 0) {
+    if (slot_col == NULL || check_pointers(row_ptr, len, 1, nnz_a, "row_ptr") < 0) {
         release_all(&b);
         return NULL;
     }
@@ -1044,7 +1045,7 @@ static PyObject *lookup(PyObject *self, PyObject *args) {
 
 static PyMethodDef methods[] = {
     {"pair_count", pair_count, METH_VARARGS,
-     "pair_count(row_ptr) -> Σ k_r², the number of slot products (validates row_ptr)."},
+     "pair_count(row_ptr, slot_col) -> Σ k_r², the number of slot products."},
     {"normal_pattern", normal_pattern, METH_VARARGS,
      "normal_pattern(n, row_ptr, slot_col, indptr, indices, pair_ptr, targets) -> nnz"},
     {"fill_normal", fill_normal, METH_VARARGS,

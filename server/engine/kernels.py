@@ -63,7 +63,7 @@ def normal_pattern(
     slot count; ``targets`` gives its position in N's data (N_{col(s), col(t)}).
     """
     row_ptr, slot_col = _contiguous(row_ptr), _contiguous(slot_col)
-    pairs = _c.pair_count(row_ptr)
+    pairs = _c.pair_count(row_ptr, slot_col)
     indptr = np.empty(int(n) + 1, np.int64)
     pair_ptr = np.empty(row_ptr.shape[0], np.int64)
     targets = np.empty(pairs, np.int64)
