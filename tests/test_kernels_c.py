@@ -211,12 +211,20 @@ def test_bad_index_arrays_raise_value_error():
         lambda: kernels.normal_pattern(-1, row_ptr, slot_col),
         lambda: kernels.normal_pattern(n, row_ptr, slot_col.astype(np.float64)),
         lambda: kernels.normal_pattern(n, row_ptr, slot_col.astype(np.int32)),
-        lambda: kernels.fill_normal(nnz, row_ptr, values, weights, pair_ptr, _corrupt(targets, 9, nnz)),
-        lambda: kernels.fill_normal(nnz, row_ptr, values, weights, pair_ptr, _corrupt(targets, 0, -5)),
-        lambda: kernels.fill_normal(nnz, row_ptr, values, weights, _corrupt(pair_ptr, 4, big), targets),
+        lambda: kernels.fill_normal(
+            nnz, row_ptr, values, weights, pair_ptr, _corrupt(targets, 9, nnz)
+        ),
+        lambda: kernels.fill_normal(
+            nnz, row_ptr, values, weights, pair_ptr, _corrupt(targets, 0, -5)
+        ),
+        lambda: kernels.fill_normal(
+            nnz, row_ptr, values, weights, _corrupt(pair_ptr, 4, big), targets
+        ),
         lambda: kernels.fill_normal(nnz, row_ptr, values[:-3], weights, pair_ptr, targets),
         lambda: kernels.fill_normal(nnz, row_ptr, values, weights[:-1], pair_ptr, targets),
-        lambda: kernels.fill_normal(nnz, _corrupt(row_ptr, 2, -4), values, weights, pair_ptr, targets),
+        lambda: kernels.fill_normal(
+            nnz, _corrupt(row_ptr, 2, -4), values, weights, pair_ptr, targets
+        ),
         lambda: kernels.row_quadratic(row_ptr, values, pair_ptr, targets, np.ones(nnz - 1)),
         lambda: kernels.row_quadratic(row_ptr, values, pair_ptr[:5], targets, np.ones(nnz)),
         lambda: kernels.supernodes(_corrupt(indptr, -1, indptr[-1] + 1), indices),
@@ -228,7 +236,9 @@ def test_bad_index_arrays_raise_value_error():
         lambda: kernels.selected_inverse(indptr, indices, unit, pivots[:-1]),
         lambda: kernels.selected_inverse(indptr, indices, unit[:-1], pivots),
         lambda: kernels.selected_inverse_columns(indptr, _corrupt(indices, 2, big), unit, pivots),
-        lambda: kernels.selected_inverse_columns(_corrupt(indptr, 4, indptr[6]), indices, unit, pivots),
+        lambda: kernels.selected_inverse_columns(
+            _corrupt(indptr, 4, indptr[6]), indices, unit, pivots
+        ),
         lambda: kernels.lookup(indptr, indices, np.array([0]), np.array([n])),
         lambda: kernels.lookup(indptr, indices, np.array([0]), np.array([-1])),
         lambda: kernels.lookup(indptr, indices, np.array([0, 1]), np.array([0])),

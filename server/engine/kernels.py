@@ -46,8 +46,8 @@ from __future__ import annotations
 
 import numpy as np
 
-try:
-    from server.engine import _kernels_c as _c
+try:  # (a compiled module: mypy sees no source for it)
+    from server.engine import _kernels_c as _c  # type: ignore[attr-defined]
 except ImportError:  # not built: numba's kernels below
     _c = None
 
@@ -86,9 +86,7 @@ def fill_normal(
     symmetric to the last bit.
     """
     data = np.empty(nnz, np.float64)
-    _c.fill_normal(
-        *map(_contiguous, (row_ptr, slot_val, weights, pair_ptr, targets)), data
-    )
+    _c.fill_normal(*map(_contiguous, (row_ptr, slot_val, weights, pair_ptr, targets)), data)
     return data
 
 
