@@ -319,3 +319,33 @@ def test_numba_is_not_imported_with_the_c_kernels():
         "assert kernels.IMPLEMENTATION == 'C'\nassert 'numba' not in sys.modules\n"
     )
     subprocess.run([sys.executable, "-c", script], check=True, timeout=60, cwd=ROOT)
+
+
+def test_without_the_extension_numba_serves_the_same_numbers(tmp_path):
+    """The fallback's wiring: with the extension unavailable, kernels.py serves numba's
+    kernels (or plain Python), and they give this build's selected inverse bit for bit."""
+    _, n, row_ptr, slot_col, values, weights = _problem(1)
+    _, (indptr, indices, unit, pivots, _) = _factor(
+        n, row_ptr, slot_col, values, weights, "superlu"
+    )
+    expected = kernels.selected_inverse(indptr, indices, unit, pivots)
+    script = (
+        "import sys\nimport numpy as np\n"
+        "sys.modules['server.engine._kernels_c'] = None  # import fails: not built\n"
+        "from server.engine import kernels\n"
+        "assert kernels.IMPLEMENTATION in ('numba', 'Python'), kernels.IMPLEMENTATION\n"
+        "arrays = np.load(sys.argv[1])\n"
+        "z = kernels.selected_inverse(*(arrays[k] for k in ('p', 'i', 'l', 'd')))\n"
+        "sys.stdout.write(z.tobytes().hex())\n"
+    )
+    saved = tmp_path / "factor.npz"
+    np.savez(saved, p=indptr, i=indices, l=unit, d=pivots)
+    proc = subprocess.run(
+        [sys.executable, "-c", script, str(saved)],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        cwd=ROOT,
+    )
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert proc.stdout == expected.tobytes().hex()

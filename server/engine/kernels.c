@@ -70,6 +70,7 @@ static void *take(Buffers *b, PyObject *obj, char kind, int writable, const char
 
 /* An output must not share memory with an input (it is written while the inputs are read). */
 static int overlaps(Buffers *b, int output) {
+    if (b->views[output].len == 0) return 0;
     const char *o0 = b->views[output].buf, *o1 = o0 + b->views[output].len;
     for (int i = 0; i < b->held; i++) {
         if (i == output || b->views[i].len == 0) continue;
@@ -1062,9 +1063,11 @@ static PyMethodDef methods[] = {
 };
 
 static struct PyModuleDef module = {
-    PyModuleDef_HEAD_INIT, "_kernels_c",
-    "The sparse engine's kernels in C (see kernels.py; outputs are allocated by the caller).",
-    -1, methods,
+    PyModuleDef_HEAD_INIT,
+    .m_name = "_kernels_c",
+    .m_doc = "The sparse engine's kernels in C (see kernels.py; the caller allocates outputs).",
+    .m_size = -1,
+    .m_methods = methods,
 };
 
 PyMODINIT_FUNC PyInit__kernels_c(void) { return PyModule_Create(&module); }
