@@ -39,13 +39,18 @@ def installed(tmp_path_factory) -> Path:
     """The wheel built from this checkout, unpacked into a folder of its own."""
     out = tmp_path_factory.mktemp("wheel")
     source = out / "source"  # a copy, so the build leaves nothing in the checkout
-    for name in ("pyproject.toml", "README.md", "server", "templates", "static", "demo_projects"):
+    names = ("pyproject.toml", "setup.py", "README.md", "server", "templates", "static")
+    for name in (*names, "demo_projects"):
         copy = shutil.copytree if (ROOT / name).is_dir() else shutil.copy2
         (source / name).parent.mkdir(parents=True, exist_ok=True)
         copy(
             ROOT / name,
             source / name,
-            **({"ignore": shutil.ignore_patterns("__pycache__")} if (ROOT / name).is_dir() else {}),
+            **(
+                {"ignore": shutil.ignore_patterns("__pycache__", "*.so")}
+                if (ROOT / name).is_dir()
+                else {}
+            ),
         )
     subprocess.run(
         [
@@ -107,3 +112,23 @@ print("served")
 def test_wheel_installs_the_stationfit_command(installed):
     entry_points = next(installed.glob("stationfit-*.dist-info")) / "entry_points.txt"
     assert "stationfit = server.cli:main" in entry_points.read_text()
+
+
+def test_installed_wheel_carries_the_compiled_kernels(installed):
+    """The engine's kernels are compiled into the wheel (setup.py), not left to numba."""
+    assert list((installed / "server" / "engine").glob("_kernels_c*.so"))
+    script = (
+        "import sys\nimport server\nfrom server.engine import kernels\n"
+        "assert server.__file__.startswith(sys.argv[1]), server.__file__\n"
+        "kernels.warm_up()\nprint(kernels.IMPLEMENTATION)\n"
+    )
+    proc = subprocess.run(
+        [sys.executable, "-c", script, str(installed)],
+        env=dict(os.environ, PYTHONPATH=str(installed)),
+        cwd=installed,
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.strip() == "C"
