@@ -44,6 +44,16 @@ How the pairs are found (``correlated_rows``):
      equal up to sign): a blunder flags its whole series chain, and the
      chain costs one right-hand side.
 
+  The exact rows cost one solve and one product with A each, both in proportion
+  to the network, and a bigger network has proportionally more flagged groups: so
+  their number is capped at ``EXACT_WORK`` / rows (at least ``MIN_EXACT_ROWS``,
+  at most ``MAX_EXACT_ROWS``), which keeps this part linear in the size.  With
+  ``priority`` (the |w| of each row) the groups of the largest w-tests come
+  first, as a surveyor works through them; without it, the order given.  The
+  cap does not bind on the benchmark books (79 groups at a million rows, the
+  cap is 128 there) nor on anything under 2,000 rows (every pair exact).
+  Flagged observations past the cap get their |ρ| = 1 partners only.
+
   What the large-network path does not search is a pair of two unflagged
   observations with 0.99 ≤ |ρ| < 1 (nearly, but not exactly, the same
   test, as two series chains joined by a much weaker tie): their lists
@@ -81,6 +91,10 @@ BLOCK = 256
 MAX_BLOCK_ELEMENTS = 16_000_000
 #: Above this many flagged observations only the |ρ| = 1 groups are searched for the rest.
 MAX_EXACT_ROWS = 4096
+#: Exact rows × network rows allowed (128 exact rows at a million rows, about 3 s) ...
+EXACT_WORK = 1 << 27
+#: ... but never fewer exact rows than this.
+MIN_EXACT_ROWS = 64
 #: Candidates × exact rows compared at a time (2 MB of products: stays in cache).
 CHUNK_ELEMENTS = 1 << 18
 
@@ -96,12 +110,14 @@ def correlated_rows(
     *,
     dense_rows: int = DENSE_ROWS,
     threshold: float = THRESHOLD,
+    priority: np.ndarray | None = None,
 ) -> list[tuple[int, ...]]:
     """For each row, the other rows in ``candidates`` whose w-test has |ρ| ≥ threshold.
 
     ``sigmas`` and ``redundancy`` cover every row of A (control rows too);
     ``candidates`` are the rows that have a w-test (controlled field
-    observations); ``exact_rows`` (a subset) get their whole row exactly.
+    observations); ``exact_rows`` (a subset) get their whole row exactly, within the
+    cap of large networks, taken by descending ``priority`` (per row) when it is given.
     Each tuple is in ascending order; rows outside ``candidates`` get ().
     """
     n = sigmas.shape[0]
@@ -120,7 +136,11 @@ def correlated_rows(
             pairs.append(_pairs(columns, root_p, scale, rows, candidates, threshold))
     else:
         _simulated_groups(hat, root_p, redundancy, candidates, out)
-        exact = _representatives(exact_rows, candidates, out, n)
+        if priority is not None:
+            ranked = np.asarray(exact_rows, dtype=np.int64)
+            exact_rows = ranked[np.argsort(-priority[ranked], kind="stable")].tolist()
+        limit = min(MAX_EXACT_ROWS, max(MIN_EXACT_ROWS, EXACT_WORK // n))
+        exact = _representatives(exact_rows, candidates, out, n, limit)
         block = max(1, min(BLOCK, MAX_BLOCK_ELEMENTS // n))
         for start in range(0, exact.size, block):
             rows = exact[start : start + block]
@@ -140,20 +160,26 @@ def correlated_rows(
 
 
 def _representatives(
-    exact_rows: Sequence[int], candidates: np.ndarray, groups: Sequence[Sequence[int]], n: int
+    exact_rows: Sequence[int],
+    candidates: np.ndarray,
+    groups: Sequence[Sequence[int]],
+    n: int,
+    limit: int = MAX_EXACT_ROWS,
 ) -> np.ndarray:
     """The rows to solve for exactly: one per |ρ| = 1 group, since its members share
-    their column of R up to scale; at most ``MAX_EXACT_ROWS``."""
+    their column of R up to scale; the first ``limit`` in the order given."""
     member = np.zeros(n, bool)
     member[candidates] = True
     covered: set[int] = set()
     chosen: list[int] = []
     for i in exact_rows:
+        if len(chosen) >= limit:
+            break
         if member[i] and i not in covered:
             chosen.append(i)
             covered.add(i)
             covered.update(groups[i])
-    return np.array(chosen[:MAX_EXACT_ROWS], dtype=np.int64)
+    return np.array(chosen, dtype=np.int64)
 
 
 def correlation_rows(
