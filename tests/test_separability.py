@@ -292,6 +292,106 @@ def test_large_network_path_agrees_with_the_dense_one(monkeypatch):
     assert np.allclose(got[:, candidates], rho[np.ix_(candidates[:3], candidates)], atol=1e-9)
 
 
+def _engine_solution(text: str, backend: str):
+    from server.engine import gauss_newton as engine
+    from server.model.network import build_network
+
+    return engine.adjust(
+        build_network(parse_fieldbook(text)), method="sparse", factorization=backend
+    )
+
+
+def _backends() -> list[str]:
+    from server.engine.backends import cholmod_available
+
+    return ["superlu"] + (["cholmod"] if cholmod_available() else [])
+
+
+@pytest.mark.parametrize("backend", _backends())
+def test_hat_product_halves_match_numpy(backend):
+    # check values: A·(AᵀPA)⁻¹·Aᵀ·B built here with numpy from the sections (_dense_rho)
+    result = adjust_fieldbook(LOOPS_WITH_BLUNDER)
+    _used, a, p, _rho, _r = _dense_rho(result, LOOPS_WITH_BLUNDER)
+    solution = _engine_solution(LOOPS_WITH_BLUNDER, backend)
+    hat = solution.hat
+    np.testing.assert_allclose(np.asarray(solution.sigmas), 1.0 / np.sqrt(np.diag(p)))
+    rows = np.array([0, 4, 9, 13])
+    scale = np.array([2.0, -1.0, 0.5, 3.0])
+    block = np.zeros((a.shape[0], rows.size))
+    block[rows, np.arange(rows.size)] = scale
+    expected = a @ np.linalg.solve(a.T @ p @ a, a.T @ block)
+    np.testing.assert_allclose(hat(block), expected, atol=1e-12)
+    got = hat.design @ hat.solve_rows(rows, scale)
+    np.testing.assert_allclose(got, expected, atol=1e-12)
+    # the halves give the product's own numbers, bit for bit
+    assert np.array_equal(got, hat(block))
+
+
+@pytest.mark.parametrize("backend", _backends())
+def test_pairs_through_the_engine_in_small_slices_match_numpy(monkeypatch, backend):
+    result = adjust_fieldbook(LOOPS_WITH_BLUNDER)
+    _used, _a, _p, rho, r = _dense_rho(result, LOOPS_WITH_BLUNDER)
+    solution = _engine_solution(LOOPS_WITH_BLUNDER, backend)
+    sigmas = np.asarray(solution.sigmas)
+    candidates = np.flatnonzero(r >= 0.001)
+    near = {
+        (int(i), int(j))
+        for i in candidates
+        for j in candidates
+        if i != j and abs(rho[i, j]) >= 0.99
+    }
+    assert near
+    # three products per slice: every slice boundary is crossed
+    monkeypatch.setattr(separability, "CHUNK_ELEMENTS", 3)
+    for dense_rows in (0, separability.DENSE_ROWS):
+        rows = separability.correlated_rows(
+            solution.hat, sigmas, r, candidates, candidates.tolist(), dense_rows=dense_rows
+        )
+        assert {(i, j) for i, js in enumerate(rows) for j in js} == near
+
+
+def test_capped_exact_rows_take_the_largest_w_first(monkeypatch):
+    result = adjust_fieldbook(LOOPS_WITH_BLUNDER)
+    _used, a, p, rho, r = _dense_rho(result, LOOPS_WITH_BLUNDER)
+    qxx = np.linalg.inv(a.T @ p @ a)
+
+    def hat(block):
+        return a @ (qxx @ (a.T @ block))
+
+    sigmas = 1.0 / np.sqrt(np.diag(p))
+    candidates = np.flatnonzero(r >= 0.001)
+
+    def partners(i, low):
+        return {int(j) for j in candidates if j != i and abs(rho[i, j]) >= low}
+
+    # a row with a partner at 0.99 ≤ |ρ| < 1 (the weakly tied chain), given the largest |w|
+    top = next(int(i) for i in candidates if partners(i, 0.99) - partners(i, 1.0 - 1e-9))
+    priority = np.zeros(len(sigmas))
+    priority[top] = 5.0
+    priority[candidates[candidates != top]] = 1.0
+    monkeypatch.setattr(separability, "EXACT_WORK", 0)
+    monkeypatch.setattr(separability, "MIN_EXACT_ROWS", 1)
+    rows = separability.correlated_rows(
+        hat, sigmas, r, candidates, candidates.tolist(), dense_rows=0, priority=priority
+    )
+    # the one exact row is the largest w-test's, whatever its place in the book ...
+    assert set(rows[top]) == partners(top, 0.99)
+    group = {top} | partners(top, 1.0 - 1e-9)
+    for i in candidates.tolist():
+        expected = partners(i, 1.0 - 1e-9)  # ... the rest: their |ρ| = 1 partners
+        if i in group:
+            expected |= partners(top, 0.99) - {i}
+        if i in partners(top, 0.99):
+            expected |= group - {i}
+        assert set(rows[i]) == expected, i
+    # without the priority the first flagged row in the book is the exact one
+    rows = separability.correlated_rows(
+        hat, sigmas, r, candidates, candidates.tolist(), dense_rows=0
+    )
+    first = int(candidates[0])
+    assert set(rows[first]) == partners(first, 0.99)
+
+
 # ---------------------------------------------------------------------------------
 # through the web pages
 

@@ -77,7 +77,7 @@ IMPLAUSIBLE_CORRECTION = 1e4
 #: or "statistics"; the pipeline adds "parse", "network" and "result".
 ProgressCallback = Callable[[str, int], None]
 
-__all__ = ["ControlRow", "DenseCofactor", "Solution", "adjust"]
+__all__ = ["ControlRow", "DenseCofactor", "HatProduct", "Solution", "adjust"]
 
 
 @dataclass(frozen=True)
@@ -108,7 +108,7 @@ class Solution:
     cofactor: object  # DenseCofactor or backends.Cofactor (or FreeDatumCofactor)
     method: str = "dense"  # "dense", "cholmod" or "superlu"
     #: hat(B) = A·Qxx·Aᵀ·B for a block B of rows × k (``separability.py``); None if not kept
-    hat: Callable[[np.ndarray], np.ndarray] | None = None
+    hat: HatProduct | None = None
     #: geodetic model: Earth-centred X, Y, Z of each point (``coordinates`` then hold grid
     #: east, north in metres and orthometric heights); None in the plane model
     positions: dict[str, tuple[float, float, float]] | None = None
@@ -349,18 +349,45 @@ class _Engine:
         free = FreeDatumCofactor(cofactor, self.factorization, self.factor_column, g, h)
         return free, explained
 
-    def hat(self, evaluation: Evaluation) -> Callable[[np.ndarray], np.ndarray]:
+    def hat(self, evaluation: Evaluation) -> HatProduct:
         """B ↦ A·N⁻¹·Aᵀ·B with the last factor.  In a free network the minimal-datum factor
         gives the same product as the inner-constraint Qxx (A·H = 0)."""
-        design = self.normals.design(evaluation)
-        solve = self.factorization.solve
+        return HatProduct(self.normals.design(evaluation), self.factorization.solve, self.kept.size)
 
-        def apply(block: np.ndarray) -> np.ndarray:
-            if self.kept.size == 0:
-                return np.zeros_like(block)
-            return design @ solve(np.ascontiguousarray(design.T @ block))
 
-        return apply
+class HatProduct:
+    """``hat(B) = A·N⁻¹·Aᵀ·B`` with the adjustment's last factor (``separability.py``).
+
+    Besides the product of a dense block, its two halves for unit columns: ``solve_rows``
+    gives N⁻¹·Aᵀ·B for B = scale·e_rows straight from those rows of A (no rows × k block
+    of zeros to multiply), and ``design`` is A (CSR), so ``design[rows] @ solved`` gives any
+    rows of the product.  They are the same operations in the same order as ``hat``'s, so
+    the same numbers to the last bit.  The solves run on one BLAS/OpenMP thread.
+    """
+
+    def __init__(self, design: Any, solve: Callable[[np.ndarray], np.ndarray], n: int) -> None:
+        self.design = design
+        self._solve = solve
+        self._n = n
+
+    def __call__(self, block: np.ndarray) -> np.ndarray:
+        if self._n == 0:
+            return np.zeros_like(block)
+        with _one_blas_thread():
+            return self.design @ self._solve(np.ascontiguousarray(self.design.T @ block))
+
+    def solve_rows(self, rows: np.ndarray, scale: np.ndarray) -> np.ndarray:
+        """N⁻¹·Aᵀ·B, B the n × k block with B[rows[c], c] = scale[c] and zeros elsewhere."""
+        rows = np.asarray(rows, dtype=np.int64)
+        if self._n == 0:
+            return np.zeros((0, rows.size))
+        picked = self.design[rows]
+        # Aᵀ·B column c is row rows[c] of A times scale[c]: the products the dense
+        # Aᵀ·B forms (every other term is an exact zero), summed in the same order
+        picked.data = picked.data * np.repeat(scale, np.diff(picked.indptr))
+        rhs = picked.T.toarray(order="F")  # column order: the solver copies any other
+        with _one_blas_thread():
+            return self._solve(rhs)
 
 
 def _divergence_message(network: Network, correction: np.ndarray, limit: int) -> str:
