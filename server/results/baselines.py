@@ -48,9 +48,15 @@ def baseline_figures(
 ) -> BaselineFigures:
     """Entries and tests of every baseline of a geodetic solution (used and ignored)."""
     frame = network.geodetic
-    baselines = [o for o in network.fieldbook.observations if o.kind == "baseline"]
-    if frame is None or solution.positions is None or not baselines:
+    if frame is None or solution.positions is None:
         return BaselineFigures({}, ())
+    # the table's kind column first: making every Observation of a big book costs seconds
+    table = network.fieldbook.table
+    rows = np.flatnonzero(table.is_kind("baseline")).tolist()
+    if not rows:
+        return BaselineFigures({}, ())
+    observations = network.fieldbook.observations
+    baselines = [observations[k] for k in rows]
     kind = geodetic_kinds(frame.crs, frame.refraction)["baseline"]
     names = list(solution.positions)
     index = {name: k for k, name in enumerate(names)}

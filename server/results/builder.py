@@ -612,15 +612,22 @@ def _relative_results(
     from ``Solution.covariance_entries`` like the others (off the factor's
     pattern they are solved for).
     """
-    column = {(p.point, p.kind): k for k, p in enumerate(network.parameters)}
     tolerance = network.fieldbook.relative_tolerance
+    joined = _joined_pairs(meta)
     # each pair's unknowns (E_a, N_a, E_b, N_b), −1 where held; signs of the difference b − a
-    east = {name: k for (name, kind), k in column.items() if kind == "E"}
-    north = {name: k for (name, kind), k in column.items() if kind == "N"}
+    # (looked up only when there are pairs: a large leveling network has none)
+    east: dict[str | None, int] = {}
+    north: dict[str | None, int] = {}
+    if joined or requested:
+        for k, p in enumerate(network.parameters):
+            if p.kind == "E":
+                east[p.point] = k
+            elif p.kind == "N":
+                north[p.point] = k
     asked = {(a, b) if a <= b else (b, a) for a, b in requested}
     pairs = []
     seen = set()
-    for a, b in _joined_pairs(meta):
+    for a, b in joined:
         ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
         key = (a, b) if a <= b else (b, a)
         if max(ends) >= 0 or key in asked:  # else both ends held fixed

@@ -19,6 +19,9 @@ from server.results.json_writer import FiniteRecords, json_bytes, write_bytes
 from server.results.types import AdjustmentResult
 
 _RECORD_LISTS = ("points", "observations")
+#: what encloses the records of ``_records``'s one-key object
+_OPEN = b'{\n  "": [\n  '
+_CLOSE = b"\n  ]\n}"
 
 
 def write_result_json(result: AdjustmentResult, stream: IO[str] | None = None) -> None:
@@ -77,8 +80,8 @@ def _records(columns: PointColumns | ObservationColumns) -> Iterator[bytes]:
     for start in range(0, len(columns), CHUNK):
         # finite: checked on the columns before the first piece
         chunk = FiniteRecords(columns.json_records(start, min(start + CHUNK, len(columns))))
-        # "[\n  {…},\n  {…}\n]" at the top level, moved one level in: a raw newline is only
-        # ever layout (inside strings it is escaped)
-        inner = json_bytes(chunk)[len(b"[\n") : -len(b"\n]")]
-        yield (b",\n  " if start else b"  ") + inner.replace(b"\n", b"\n  ")
+        # encoded as the value of a one-key object, the records come out already indented for
+        # the document's second level: '{\n  "": [\n    {…},\n    {…}\n  ]\n}'
+        inner = json_bytes({"": chunk})[len(_OPEN) : -len(_CLOSE)]
+        yield (b",\n  " if start else b"  ") + inner
     yield b"\n  ]"

@@ -13,6 +13,7 @@ from operator import is_
 import numpy as np
 
 from server.fieldbook.model import ANGULAR_KINDS
+from server.fieldbook.table import ObservationRows
 from server.model.network import Network
 
 
@@ -55,34 +56,40 @@ class ObservationMetadata:
 
 
 def observation_metadata(network: Network) -> ObservationMetadata:
-    """The field book's observations as columns, and where the used ones are among them."""
-    observations = network.fieldbook.observations
+    """The field book's observations as columns, and where the used ones are among them.
+
+    Read from the field book's table (``fieldbook/table.py``): making an ``Observation``
+    object per row costs more than the rest of this stage on a large book.
+    """
+    table = network.fieldbook.table
     used = network.used
-    if len(used) == len(observations) and all(map(is_, used, observations)):
-        used_position = np.arange(len(used), dtype=np.int64)  # every observation is used
+    if isinstance(used, ObservationRows) and used.table is table:
+        rows = used.rows
+        used_position = np.arange(len(used), dtype=np.int64) if rows is None else rows
     else:
-        book_index = {id(obs): k for k, obs in enumerate(observations)}
-        used_position = np.array([book_index[id(obs)] for obs in used], dtype=np.int64)
-    value = [obs.value for obs in observations]
-    scale = [obs.scale for obs in observations]
-    booked = [obs.booked for obs in observations]
+        observations = network.fieldbook.observations
+        if len(used) == len(observations) and all(map(is_, used, observations)):
+            used_position = np.arange(len(used), dtype=np.int64)  # every observation is used
+        else:
+            book_index = {id(obs): k for k, obs in enumerate(observations)}
+            used_position = np.array([book_index[id(obs)] for obs in used], dtype=np.int64)
+    names = table.names
+    value = np.array(table.value, dtype=float)
+    scale = np.array(table.scale, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        unscaled = np.where(scale != 0.0, value / np.where(scale != 0.0, scale, 1.0), value)
+    notes = table.notes
     return ObservationMetadata(
-        line=np.array([obs.line for obs in observations], dtype=np.int64),
-        kind=[obs.kind for obs in observations],
-        from_point=[obs.from_point for obs in observations],
-        at=[obs.at for obs in observations],
-        to=[obs.to for obs in observations],
-        note=[obs.note for obs in observations],
-        value=np.array(value, dtype=float),
+        line=np.array(table.line, dtype=np.int64),
+        kind=list(table.kind_names),
+        from_point=[names[k] for k in table.frm.tolist()],
+        at=[None if k < 0 else names[k] for k in table.at.tolist()],
+        to=[names[k] for k in table.to.tolist()],
+        note=[notes.get(k, "") for k in range(len(table))] if notes else [""] * len(table),
+        value=value,
         # the value as written: booked, else before the scale factor
-        booked=np.array(
-            [
-                b if b is not None else (v / s if s else v)
-                for b, v, s in zip(booked, value, scale, strict=True)
-            ],
-            dtype=float,
-        ),
-        scale=np.array(scale, dtype=float),
-        ignored=np.array([obs.ignored for obs in observations], dtype=bool),
-        used_position=used_position.reshape(-1),
+        booked=np.where(table.booked_given, table.booked, unscaled),
+        scale=scale,
+        ignored=np.array(table.ignored, dtype=bool),
+        used_position=np.asarray(used_position, dtype=np.int64).reshape(-1),
     )
