@@ -23,8 +23,8 @@ from __future__ import annotations
 import itertools
 import math
 from collections import defaultdict
-from collections.abc import Callable
-from functools import partial
+from collections.abc import Callable, Collection
+from functools import cached_property, partial
 from typing import NamedTuple
 
 import numpy as np
@@ -34,6 +34,10 @@ from server.fieldbook.model import HORIZONTAL_KINDS
 from server.model.network import Network
 
 Position = tuple[float, float]
+
+#: Kinds whose station and target link two points for a local frame (``_seed``).
+_LINK_KINDS = ("direction", "angle", "distance")
+_TWO_PI = 2 * math.pi
 
 #: Rays closer than this to parallel (radians) are not intersected.
 _MIN_CUT_ANGLE = math.radians(5.0)
@@ -86,7 +90,7 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
         if not needed - set(known):
             break
         local = _Propagator(tables, {})
-        local.arbitrary_datum(_seed(used, set(known)))
+        local.arbitrary_datum(_seed(used, set(known), tables.distances.keys()))
         local.run()
         common = [n for n in local.known if n in known]
         if not known:
@@ -111,16 +115,30 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
     return {n: known[n] for n in needed}
 
 
-def _seed(used: list[_Obs], known: set[str]) -> tuple[str, str]:
-    """A station to start a local frame from: one with a distance, preferring unplaced ones."""
-    measured = {frozenset((o.from_point, o.to)) for o in used if o.kind == "distance"}
-    links = [
-        ((o.at or o.from_point), o.to) for o in used if o.kind in ("direction", "angle", "distance")
-    ]
-    links.sort(
-        key=lambda link: (frozenset(link) not in measured, link[0] in known and link[1] in known)
-    )
-    return links[0]
+def _seed(
+    used: list[_Obs], known: set[str], measured: Collection[frozenset[str]]
+) -> tuple[str, str]:
+    """A station to start a local frame from: one with a distance, preferring unplaced ones.
+
+    The first link in file order (station to target of a direction, angle or distance)
+    that is best by: its pair has a distance in ``measured``, then not both ends known.
+    """
+    best: tuple[str, str] | None = None
+    best_rank = (True, True)
+    for o in used:
+        if o.kind in _LINK_KINDS:
+            station, target = o.at or o.from_point, o.to
+            rank = (
+                frozenset((station, target)) not in measured,
+                station in known and target in known,
+            )
+            if best is None or rank < best_rank:
+                best, best_rank = (station, target), rank
+                if rank == (False, False):
+                    break  # none can be better
+    if best is None:
+        raise IndexError("no direction, angle or distance to start a local frame from")
+    return best
 
 
 def _similarity(source: list[Position], target: list[Position]) -> Callable[[Position], Position]:
@@ -169,12 +187,22 @@ class _Tables:
                     linked[(station, n)] = None
         self.linked = linked
 
+    @cached_property
+    def arcs(self) -> list[tuple[str, str, float]]:
+        """Each measured pair (in file order, ends in set order) and its mean distance."""
+        arcs = []
+        for pair, lengths in self.distances.items():
+            a, b = pair
+            arcs.append((a, b, sum(lengths) / len(lengths)))
+        return arcs
+
 
 class _Propagator:
     """Breadth of facts (azimuths, distances, orientations) grown until every point is placed."""
 
     def __init__(self, tables: _Tables, known: dict[str, Position]) -> None:
         self.known = known
+        self.tables = tables
         self.distances = tables.distances
         self.rounds = tables.rounds
         self.angles = tables.angles
@@ -209,8 +237,8 @@ class _Propagator:
 
     def _set_azimuth(self, i: str, j: str, value: float) -> None:
         if (i, j) not in self.azimuths:
-            self.azimuths[(i, j)] = value % (2 * math.pi)
-            self.azimuths[(j, i)] = (value + math.pi) % (2 * math.pi)
+            self.azimuths[(i, j)] = value % _TWO_PI
+            self.azimuths[(j, i)] = (value + math.pi) % _TWO_PI
 
     def _learn_azimuths(self) -> None:
         known, azimuths = self.known, self.azimuths
@@ -228,16 +256,24 @@ class _Propagator:
         for o in self.azimuth_obs:
             self._set_azimuth(o.from_point, o.to, o.value)
         done: list[int] = []
+        orientations, pi = self.orientations, math.pi
         for line, directions in self.unoriented.items():
-            if line not in self.orientations:
+            orientation = orientations.get(line)
+            if orientation is None:
                 for d in directions:
-                    if (d.from_point, d.to) in self.azimuths:
-                        self.orientations[line] = self.azimuths[(d.from_point, d.to)] - d.value
+                    azimuth = azimuths.get((d.from_point, d.to))
+                    if azimuth is not None:
+                        orientation = orientations[line] = azimuth - d.value
                         break
-            if line in self.orientations:
-                for d in directions:
-                    self._set_azimuth(d.from_point, d.to, self.orientations[line] + d.value)
-                done.append(line)  # every azimuth of the round is known from now on
+                else:
+                    continue
+            for d in directions:  # as _set_azimuth does it, written out: the hot loop
+                i, j = d.from_point, d.to
+                if (i, j) not in azimuths:
+                    value = orientation + d.value
+                    azimuths[(i, j)] = value % _TWO_PI
+                    azimuths[(j, i)] = (value + pi) % _TWO_PI
+            done.append(line)  # every azimuth of the round is known from now on
         for line in done:
             del self.unoriented[line]
         open_angles = []
@@ -309,11 +345,13 @@ class _Propagator:
     def _place_arcs(self) -> bool:
         """Two distances from known points; keep the mirror image that fits other observations."""
         reach: dict[str, list[tuple[str, float]]] = defaultdict(list)
-        for pair, lengths in self.distances.items():
-            a, b = tuple(pair)
-            for x, y in ((a, b), (b, a)):
-                if x in self.known and y not in self.known:
-                    reach[y].append((x, sum(lengths) / len(lengths)))
+        known = self.known
+        for a, b, mean in self.tables.arcs:
+            if a in known:
+                if b not in known:
+                    reach[b].append((a, mean))
+            elif b in known:
+                reach[a].append((b, mean))
         for target, arcs in reach.items():
             if len(arcs) < 2:
                 continue
