@@ -54,34 +54,65 @@ class _Obs(NamedTuple):
     round_line: int | None
 
 
-def _horizontal(network: Network) -> list[_Obs]:
-    """The used horizontal observations in file order, read from the network's table."""
+class _Columns(NamedTuple):
+    """The used horizontal observations as columns: names, and the table's codes."""
+
+    frm: list[str]
+    to: list[str]
+    value: list[float]
+    round_line: list[int | None]
+    kind_code: np.ndarray  # the table's kind codes
+    code: dict[str, int]  # kind name → code (−1: none of that kind)
+    frm_code: np.ndarray  # the table's name indices
+    at_code: np.ndarray  # −1: none
+    to_code: np.ndarray
+
+
+def _horizontal(network: Network) -> tuple[list[_Obs], _Columns]:
+    """The used horizontal observations in file order, read from the network's table, as
+    records and as columns."""
     table = network.used_table
     rows = np.flatnonzero(table.is_kind(*HORIZONTAL_KINDS))
     names = table.names
     kinds = table.kinds
+    kind_code, frm_code, at_code, to_code = (
+        table.kind[rows],
+        table.frm[rows],
+        table.at[rows],
+        table.to[rows],
+    )
+    frm = [names[k] for k in frm_code.tolist()]
+    to = [names[k] for k in to_code.tolist()]
+    value = table.value[rows].tolist()
+    round_line = [k if k >= 0 else None for k in table.round_line[rows].tolist()]
     # tuple.__new__ makes each record in C (the class's own __new__ is Python)
-    return list(
+    used = list(
         map(
             partial(tuple.__new__, _Obs),
             zip(
-                [kinds[k] for k in table.kind[rows].tolist()],
-                [names[k] for k in table.frm[rows].tolist()],
-                [names[k] if k >= 0 else None for k in table.at[rows].tolist()],
-                [names[k] for k in table.to[rows].tolist()],
-                table.value[rows].tolist(),
-                [k if k >= 0 else None for k in table.round_line[rows].tolist()],
+                [kinds[k] for k in kind_code.tolist()],
+                frm,
+                [names[k] if k >= 0 else None for k in at_code.tolist()],
+                to,
+                value,
+                round_line,
             ),
         )
     )
+    code = {kind: table.code(kind) for kind in HORIZONTAL_KINDS}
+    columns = _Columns(frm, to, value, round_line, kind_code, code, frm_code, at_code, to_code)
+    return used, columns
 
 
 def start_positions(network: Network, given: dict[str, Position]) -> dict[str, Position]:
     """Positions (metres) for every horizontally observed point; given ones are kept."""
-    used = _horizontal(network)
-    needed = {n for o in used for n in _names(o)}
+    used, columns = _horizontal(network)
+    table = network.used_table
+    at_code = columns.at_code
+    named = np.concatenate((columns.frm_code, at_code[at_code >= 0], columns.to_code))
+    needed = {table.names[k] for k in np.unique(named).tolist()}
     known = {n: p for n, p in given.items() if n in needed and not math.isnan(p[0])}
-    tables = _Tables(used)  # what the observations say, read once for every propagation
+    tables = _Tables(used, columns)  # what the observations say, read once for every propagation
     _Propagator(tables, known).run()
     # Control that is not tied together directly (no backsight between held points)
     # stalls the propagation: build the figure in a local frame from one station,
@@ -167,18 +198,33 @@ class _Tables:
     """The observations sorted for propagation: distances by pair, rounds, angles, azimuths,
     links."""
 
-    def __init__(self, used: list[_Obs]) -> None:
+    def __init__(self, used: list[_Obs], columns: _Columns) -> None:
+        kind, frm, to, value = columns.kind_code, columns.frm, columns.to, columns.value
+
+        def rows_of(name: str) -> list[int]:
+            """The rows of one kind, in file order (each kind fills its own tables)."""
+            return np.flatnonzero(kind == columns.code[name]).tolist()
+
         self.distances: dict[frozenset[str], list[float]] = defaultdict(list)
         self.rounds: dict[int, list[_Obs]] = defaultdict(list)
-        self.angles = [o for o in used if o.kind == "angle"]
-        self.azimuth_obs = [o for o in used if o.kind == "azimuth"]
-        for o in used:
-            if o.kind == "distance":
-                self.distances[frozenset((o.from_point, o.to))].append(o.value)
-            elif o.kind == "direction" and o.round_line is not None:
-                self.rounds[o.round_line].append(o)
+        self.angles = [used[k] for k in rows_of("angle")]
+        self.azimuth_obs = [used[k] for k in rows_of("azimuth")]
+        for k in rows_of("distance"):
+            self.distances[frozenset((frm[k], to[k]))].append(value[k])
+        round_line = columns.round_line
+        for k in rows_of("direction"):
+            line = round_line[k]
+            if line is not None:
+                self.rounds[line].append(used[k])
         # a dict, not a set: file order makes the start values (and so the last bits of
         # the results) the same on every run, whatever the string hash seed
+        at = columns.at_code
+        if not np.any((at >= 0) & (at != columns.frm_code)) and not np.any(
+            columns.frm_code == columns.to_code
+        ):
+            # every station is the FROM point: one link FROM → TO per line, made in C
+            self.linked = dict.fromkeys(zip(frm, to))
+            return
         linked: dict[tuple[str, str], None] = {}
         for o in used:
             station = o.at or o.from_point
