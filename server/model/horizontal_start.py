@@ -113,14 +113,14 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
     needed = {table.names[k] for k in np.unique(named).tolist()}
     known = {n: p for n, p in given.items() if n in needed and not math.isnan(p[0])}
     tables = _Tables(used, columns)  # what the observations say, read once for every propagation
-    _Propagator(tables, known).run()
+    _Propagator(tables, known, needed).run()
     # Control that is not tied together directly (no backsight between held points)
     # stalls the propagation: build the figure in a local frame from one station,
     # then move it onto the control by a similarity transformation.
     for _ in range(10):
         if not needed - set(known):
             break
-        local = _Propagator(tables, {})
+        local = _Propagator(tables, {}, needed)
         local.arbitrary_datum(_seed(used, set(known), tables.distances.keys()))
         local.run()
         common = [n for n in local.known if n in known]
@@ -132,7 +132,7 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
                 known.setdefault(name, transform(position))
         else:
             break
-        _Propagator(tables, known).run()
+        _Propagator(tables, known, needed).run()
     missing = sorted(needed - set(known))
     if missing:
         more = f" and {len(missing) - 12} more" if len(missing) > 12 else ""
@@ -246,8 +246,11 @@ class _Tables:
 class _Propagator:
     """Breadth of facts (azimuths, distances, orientations) grown until every point is placed."""
 
-    def __init__(self, tables: _Tables, known: dict[str, Position]) -> None:
+    def __init__(
+        self, tables: _Tables, known: dict[str, Position], needed: Collection[str]
+    ) -> None:
         self.known = known
+        self.needed = frozenset(needed)
         self.tables = tables
         self.distances = tables.distances
         self.rounds = tables.rounds
@@ -270,8 +273,10 @@ class _Propagator:
         self._set_azimuth(station, neighbour, 0.0)
 
     def run(self) -> None:
-        """Alternate learning azimuths and placing points until neither makes progress."""
-        while True:
+        """Alternate learning azimuths and placing points until neither makes progress,
+        or until every point needed is placed (a placed point never moves, so nothing
+        after that could change what the propagation gives)."""
+        while not self.needed.issubset(self.known):
             before = (len(self.known), len(self.azimuths), len(self.orientations))
             self._learn_azimuths()
             self._place_polar()
