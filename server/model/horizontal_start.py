@@ -24,7 +24,7 @@ import itertools
 import math
 from collections import defaultdict
 from collections.abc import Callable, Collection
-from functools import cached_property, partial
+from functools import partial
 from typing import NamedTuple
 
 import numpy as np
@@ -233,15 +233,6 @@ class _Tables:
                     linked[(station, n)] = None
         self.linked = linked
 
-    @cached_property
-    def arcs(self) -> list[tuple[str, str, float]]:
-        """Each measured pair (in file order, ends in set order) and its mean distance."""
-        arcs = []
-        for pair, lengths in self.distances.items():
-            a, b = pair
-            arcs.append((a, b, sum(lengths) / len(lengths)))
-        return arcs
-
 
 class _Propagator:
     """Breadth of facts (azimuths, distances, orientations) grown until every point is placed."""
@@ -397,12 +388,13 @@ class _Propagator:
         """Two distances from known points; keep the mirror image that fits other observations."""
         reach: dict[str, list[tuple[str, float]]] = defaultdict(list)
         known = self.known
-        for a, b, mean in self.tables.arcs:
+        for pair, lengths in self.distances.items():
+            a, b = pair
             if a in known:
                 if b not in known:
-                    reach[b].append((a, mean))
+                    reach[b].append((a, sum(lengths) / len(lengths)))
             elif b in known:
-                reach[a].append((b, mean))
+                reach[a].append((b, sum(lengths) / len(lengths)))
         for target, arcs in reach.items():
             if len(arcs) < 2:
                 continue
