@@ -527,7 +527,7 @@ def test_whole_rounds_are_read_without_tokens(monkeypatch):
     lines = text.splitlines()
     last_point = max(k for k, line in enumerate(lines) if line.startswith("point "))
     # the header, the point lines and the few after them (a stretch is tried again
-    # _RUN_MIN lines after one that failed) go through the tokenizer, no line after that
+    # _CHUNK_MIN lines after one that failed) go through the tokenizer, no line after that
     tokenized = _tokenized_lines(text, monkeypatch)
-    assert last_point + 1 <= tokenized <= last_point + 1 + fieldbook_module._RUN_MIN
-    assert tokenized < len(lines) / 50
+    assert last_point + 1 <= tokenized <= last_point + 1 + fieldbook_module._CHUNK_MIN
+    assert tokenized < len(lines) / 25  # line by line, every directions and end line

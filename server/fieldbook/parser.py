@@ -234,6 +234,7 @@ class _Parser:
         self.rows: list[Row] = []
         self.no_run_before = 0  # lines up to here are known not to start a long run
         self.no_block_before = 0  # ... nor a long stretch of plain lines and rounds
+        self.block_wait = _CHUNK_MIN  # lines to wait after a short stretch (doubles each time)
         self.rounds: list[DirectionRound] = []
         self.round: _Round | None = None
         self.relative_pairs: list[RelativePair] = []
@@ -253,12 +254,13 @@ class _Parser:
         index, count = 0, len(lines)
         while index < count:
             if runs and self.round is None and self.body_line is not None:
-                taken = self.fast_run(lines, index)
+                # (the two tests save a call on each line known not to start a run)
+                taken = self.fast_run(lines, index) if index >= self.no_run_before else 0
                 if taken:
                     index += taken
                     self.statements += taken
                     continue
-                taken = self.fast_block(lines, index)
+                taken = self.fast_block(lines, index) if index >= self.no_block_before else 0
                 if taken:
                     index += taken
                     continue
@@ -512,8 +514,9 @@ class _Parser:
         force.  Returns how many lines were taken; the stretch ends before the first line
         that fails a check (or before the round holding it), which is left to ``fast_line``
         and the careful path.  After a stretch shorter than ``_RUN_MIN`` lines, the next try
-        waits for a 'directions' or plain line after the failing one, ``_RUN_MIN`` lines on
-        at least (arrays cost more than they save on a few lines).
+        waits for a 'directions' or plain line after the failing one, and ``block_wait``
+        lines at least, twice as many after each short stretch in a row (arrays cost more
+        than they save on a few lines).
         """
         if start < self.no_block_before:
             return 0
@@ -527,7 +530,12 @@ class _Parser:
             start += count
             size = min(4 * size, _RUN_MAX)
         if taken < _RUN_MIN:
-            self.no_block_before = max(start + (resume or 0), first + _RUN_MIN)
+            # wait ever longer after each short stretch: where rounds alternate with lines
+            # read otherwise, chunks would cost more than they save
+            self.no_block_before = max(start + (resume or 0), first + self.block_wait)
+            self.block_wait = min(2 * self.block_wait, _RUN_MAX)
+        else:
+            self.block_wait = _CHUNK_MIN
         return taken
 
     def take_block(self, chunk: list[str], start: int) -> tuple[int, int | None]:
@@ -539,6 +547,9 @@ class _Parser:
         found = _BLOCK_LINE.findall("\n".join(chunk))
         if len(found) != n:  # every line matches one alternative; this is a safeguard
             return 0, n
+        others = list(map(bool, map(_OTHER, found)))
+        if True in others[:_RUN_MIN]:  # a line read otherwise comes soon: not worth arrays
+            return 0, others.index(True) + 1
         (
             opens,
             round_at,
@@ -554,7 +565,7 @@ class _Parser:
             degrees,
             minutes,
             seconds,
-            other,
+            _other,
         ) = zip(*found)
         is_d = np.fromiter(map(bool, opens), bool, n)
         is_e = np.fromiter(map(bool, ends), bool, n)
@@ -564,7 +575,7 @@ class _Parser:
         # out of place)
         step = is_d.astype(np.int64) - is_e
         depth = np.cumsum(step)
-        bad = np.fromiter(map(bool, other), bool, n)
+        bad = np.array(others, dtype=bool)
         bad |= (depth < 0) | (depth > 1) | (is_n & (depth != 1)) | (is_o & (depth != 0))
         d_rows = np.flatnonzero(is_d)
         n_rows = np.flatnonzero(is_n)
@@ -1697,6 +1708,7 @@ _BLOCK_LINE = re.compile(
 #: of ``_CHUNK_MIN`` lines growing up to ``_RUN_MAX``.
 _RUN_MIN, _CHUNK_MIN, _RUN_MAX = 16, 64, 65536
 _DIRECTION = "direction"
+_OTHER = itemgetter(14)  # the group of _BLOCK_LINE that holds any other line
 _KEYWORD = GRAMMARS.__contains__
 _GROUPS = re.Match.groups
 _LEVEL = "level"
