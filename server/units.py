@@ -17,6 +17,8 @@ import math
 import re
 from dataclasses import dataclass
 
+import numpy as np
+
 #: Metres per length unit accepted in a field book.
 LENGTH_FACTORS: dict[str, float] = {
     "mm": 1e-3,
@@ -142,6 +144,13 @@ def wrap_2pi(angle_rad: float) -> float:
         reduced += TWO_PI
     # fmod of a tiny negative value can round up to exactly 2π
     return 0.0 if reduced >= TWO_PI else reduced
+
+
+def wrap_2pi_array(angles_rad: np.ndarray) -> np.ndarray:
+    """``wrap_2pi`` of each angle, by the same operations (so to the same bits)."""
+    reduced = np.fmod(angles_rad, TWO_PI)
+    reduced = np.where(reduced < 0.0, reduced + TWO_PI, reduced)
+    return np.where(reduced >= TWO_PI, 0.0, reduced)
 
 
 def wrap_pi(angle_rad: float) -> float:

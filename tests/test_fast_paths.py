@@ -442,3 +442,92 @@ def test_a_long_run_is_read_without_tokens_up_to_its_edge_lines(monkeypatch):
     observations = len(parse_fieldbook(good).observations)
     lines = sum(1 for line in good.splitlines() if line.strip())
     assert _tokenized_lines(good, monkeypatch) == lines - observations
+
+
+# Stretches of plain lines and whole rounds, read a chunk at a time (``_Parser.fast_block``),
+# with edge lines among them; small chunks put chunk ends inside rounds and at their edges.
+_ROUND_ENTRIES = st.sampled_from(
+    [
+        "  P1 12:00:00",
+        "  P2 359:59:59.99",
+        "\tP3 -1:00:00",
+        "  P4 0:0:0.5  # c",
+        "  P5 180:00:00#c",
+        "  P6 007:08:09.123456789",
+    ]
+)
+_ROUND_EDGES = st.sampled_from(
+    [
+        "  A 12:00:00",  # to the occupied point
+        "  P1 12:60:00",
+        "  P1 12:00:60",
+        "  P1 12:00:00.1234567890123456789012345678901234567890",
+        "  Level 1:00:00",
+        "  P1 12:00:00 ignore",
+        "  P1 12:00:00 sd=2sec",
+        "  P1 12",
+        "  P1 100gon",
+        "  P1 ?",
+        "  END",
+        "end # closed",
+        "END",
+        "directions B",
+        "distance A B 10",
+        "",
+        "# note",
+        "  P1\u00a012:00:00",
+        "point Q east=1 north=2",
+    ]
+)
+
+
+@st.composite
+def _round_book(draw) -> str:
+    lines = ["fieldbook 1", draw(_HEADERS), draw(_DEFAULTS)]
+    if draw(st.booleans()):
+        lines.append("scale factor=" + draw(st.sampled_from(["0.9996", "1.02"])))
+    lines.append("point A height=10 east=0 north=0 fix")
+    for _ in range(draw(st.integers(1, 12))):
+        choice = draw(st.integers(0, 9))
+        if choice < 5:
+            at = draw(st.sampled_from(["A", "B", "A", "end", "directions", "1:2:3"]))
+            option = draw(st.sampled_from(["", "", "", "", " sd=2sec", " # c", " x"]))
+            lines.append(f"directions {at}{option}")
+            for _ in range(draw(st.integers(0, 5))):
+                edge = draw(st.integers(0, 9)) == 0
+                lines.append(draw(_ROUND_EDGES) if edge else draw(_ROUND_ENTRIES))
+            if draw(st.integers(0, 9)):
+                lines.append("end")
+        elif choice < 8:
+            lines.append(draw(_PLAIN) if choice < 7 else draw(_RUN_EDGES))
+        else:
+            lines.append(draw(_ROUND_EDGES))
+    return "\n".join(lines) + "\n"
+
+
+@settings(
+    max_examples=examples(300),
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
+@given(_round_book(), st.sampled_from([1, 2, 3, 5, 64]))
+def test_fast_and_careful_paths_agree_on_rounds_read_at_once(monkeypatch, text, chunk):
+    monkeypatch.setattr(fieldbook_module, "_CHUNK_MIN", chunk)
+    monkeypatch.setattr(fieldbook_module, "_RUN_MIN", 1)  # try again at almost every line
+    assert_same(text, monkeypatch)
+
+
+@pytest.mark.parametrize("chunk", [1, 4, 7, 64])
+def test_benchmark_rounds_parse_alike_in_any_chunks(chunk, monkeypatch):
+    monkeypatch.setattr(fieldbook_module, "_CHUNK_MIN", chunk)
+    assert_same(networks.horizontal(120, sparse=False, fixed_every=40), monkeypatch)
+
+
+def test_whole_rounds_are_read_without_tokens(monkeypatch):
+    text = networks.horizontal(200, sparse=True, fixed_every=50)
+    lines = text.splitlines()
+    last_point = max(k for k, line in enumerate(lines) if line.startswith("point "))
+    # the header, the point lines and the few after them (a stretch is tried again
+    # _CHUNK_MIN lines after one that failed) go through the tokenizer, no line after that
+    tokenized = _tokenized_lines(text, monkeypatch)
+    assert last_point + 1 <= tokenized <= last_point + 1 + fieldbook_module._CHUNK_MIN
+    assert tokenized < len(lines) / 25  # line by line, every directions and end line

@@ -19,12 +19,12 @@ import hashlib
 import math
 import operator
 import re
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from datetime import date, datetime
-from itertools import repeat, takewhile
+from itertools import islice, takewhile
 from operator import itemgetter
-from typing import TypeVar, cast
+from typing import Any, TypeVar, cast
 
 import numpy as np
 
@@ -101,12 +101,14 @@ from server.units import (
     FILE_ANGLE_UNITS,
     FILE_LENGTH_UNITS,
     LENGTH_FACTORS,
+    RAD_PER_DEG,
     Quantity,
     UnitError,
     parse_angular_allowance,
     parse_number,
     parse_ratio,
     wrap_2pi,
+    wrap_2pi_array,
 )
 
 #: A combined grid scale factor outside this range is a unit mix-up or a typo, not a projection.
@@ -231,6 +233,8 @@ class _Parser:
         self.blocks: list[Columns] = []
         self.rows: list[Row] = []
         self.no_run_before = 0  # lines up to here are known not to start a long run
+        self.no_block_before = 0  # ... nor a long stretch of plain lines and rounds
+        self.block_wait = _CHUNK_MIN  # lines to wait after a short stretch (doubles each time)
         self.rounds: list[DirectionRound] = []
         self.round: _Round | None = None
         self.relative_pairs: list[RelativePair] = []
@@ -250,10 +254,15 @@ class _Parser:
         index, count = 0, len(lines)
         while index < count:
             if runs and self.round is None and self.body_line is not None:
-                taken = self.fast_run(lines, index)
+                # (the two tests save a call on each line known not to start a run)
+                taken = self.fast_run(lines, index) if index >= self.no_run_before else 0
                 if taken:
                     index += taken
                     self.statements += taken
+                    continue
+                taken = self.fast_block(lines, index) if index >= self.no_block_before else 0
+                if taken:
+                    index += taken
                     continue
             number = index + 1
             if index in bad_lines:
@@ -460,38 +469,9 @@ class _Parser:
         kind, frm, to, value_text, length_text, length_unit = (
             list(map(itemgetter(k), groups)) for k in range(6)
         )
-        bad = np.fromiter(map(operator.eq, frm, to), bool, n)
-        level = np.fromiter(map(_LEVEL.__eq__, kind), bool, n)
-        has_length = np.fromiter(map(operator.is_not, length_text, repeat(None)), bool, n)
-        # as units.parse_number, file_number and bounded_length read them (an overflow to
-        # inf fails the bound)
-        value = np.array(list(map(float, value_text)), dtype=float) * self.length_factor
-        bad |= ~(np.abs(value) <= MAX_LENGTH_M)
-        sigmas: dict[str, Quantity] = {}
-        for name, rows in ((_LEVEL, level), ("distance", ~level)):
-            default = self.defaults.get(name)
-            if default is None or default.sigma is None:
-                bad |= rows
-            else:
-                sigmas[name] = default.sigma
-        level_sigma = sigmas.get(_LEVEL)
-        if level_sigma is not None and level_sigma.per_setup:
-            bad |= level  # needs setups=
-        elif level_sigma is not None and level_sigma.per_sqrtkm:
-            bad |= level & ~has_length
-        bad |= ~level & (has_length | ~(value >= MIN_DISTANCE_M))
-        length_km = np.full(n, np.nan)
-        rows = np.flatnonzero(level & has_length)
-        if rows.size:
-            units, texts = length_unit, length_text
-            if rows.size < n:
-                units, texts = [units[k] for k in rows.tolist()], [texts[k] for k in rows.tolist()]
-            # an unknown unit's factor is None, NaN in the array: it fails the bounds
-            factors = np.array(list(map(LENGTH_FACTORS.get, map(str.lower, units))), dtype=float)
-            numbers = np.array(list(map(float, texts)), dtype=float)
-            length_m = numbers * factors  # as parse_length and option_length
-            bad[rows] |= ~((length_m >= MIN_DISTANCE_M) & (length_m <= MAX_LENGTH_M))
-            length_km[rows] = length_m / 1000.0
+        bad, level, value, length_km, sigmas = self.plain_checks(
+            kind, frm, to, value_text, length_text, length_unit
+        )
         taken = int(np.argmax(bad)) if bad.any() else n
         if not taken:
             return 0
@@ -523,6 +503,248 @@ class _Parser:
             ]
         )
         return taken
+
+    def fast_block(self, lines: list[str], start: int) -> int:
+        """Read a long stretch of plain lines at once, from ``start``: ``level``/``distance``
+        lines and whole directions rounds (``directions AT``, ``TO D:M:S`` lines, ``end``),
+        with blank and comment lines among them.
+
+        The lines ``fast_line`` and the careful path read one by one, taken here a chunk
+        at a time with the checks done on arrays: nothing between them changes what is in
+        force.  Returns how many lines were taken; the stretch ends before the first line
+        that fails a check (or before the round holding it), which is left to ``fast_line``
+        and the careful path.  After a stretch shorter than ``_RUN_MIN`` lines, the next try
+        waits for a 'directions' or plain line after the failing one, and ``block_wait``
+        lines at least, twice as many after each short stretch in a row (arrays cost more
+        than they save on a few lines).
+        """
+        if start < self.no_block_before:
+            return 0
+        first, taken, size = start, 0, _CHUNK_MIN
+        while True:
+            chunk = lines[start : start + size]
+            count, resume = self.take_block(chunk, start)
+            taken += count
+            if resume is not None or start + len(chunk) >= len(lines):
+                break
+            start += count
+            size = min(4 * size, _RUN_MAX)
+        if taken < _RUN_MIN:
+            # wait ever longer after each short stretch: where rounds alternate with lines
+            # read otherwise, chunks would cost more than they save
+            self.no_block_before = max(start + (resume or 0), first + self.block_wait)
+            self.block_wait = min(2 * self.block_wait, _RUN_MAX)
+        else:
+            self.block_wait = _CHUNK_MIN
+        return taken
+
+    def take_block(self, chunk: list[str], start: int) -> tuple[int, int | None]:
+        """How many of the ``chunk`` lines (the first is line ``start + 1``) are read at once,
+        their observations and rounds kept; and, if a line failed a check, where in the
+        chunk the next stretch might start (the next 'directions' or plain line after it;
+        None: the chunk ended, perhaps inside a round, which is left to the next chunk)."""
+        n = len(chunk)
+        found = _BLOCK_LINE.findall("\n".join(chunk))
+        if len(found) != n:  # every line matches one alternative; this is a safeguard
+            return 0, n
+        others = list(map(bool, map(_OTHER, found)))
+        if True in others[:_RUN_MIN]:  # a line read otherwise comes soon: not worth arrays
+            return 0, others.index(True) + 1
+        (
+            opens,
+            round_at,
+            ends,
+            kind,
+            frm,
+            to,
+            value_text,
+            length_text,
+            length_unit,
+            target,
+            sign,
+            degrees,
+            minutes,
+            seconds,
+            _other,
+        ) = zip(*found)
+        is_d = np.fromiter(map(bool, opens), bool, n)
+        is_e = np.fromiter(map(bool, ends), bool, n)
+        is_o = np.fromiter(map(bool, kind), bool, n)
+        is_n = np.fromiter(map(bool, target), bool, n)
+        # inside a round after the line: 1, else 0 (anything else: 'directions' or 'end'
+        # out of place)
+        step = is_d.astype(np.int64) - is_e
+        depth = np.cumsum(step)
+        bad = np.array(others, dtype=bool)
+        bad |= (depth < 0) | (depth > 1) | (is_n & (depth != 1)) | (is_o & (depth != 0))
+        d_rows = np.flatnonzero(is_d)
+        n_rows = np.flatnonzero(is_n)
+        o_rows = np.flatnonzero(is_o)
+        # the directions of the rounds
+        round_of = np.cumsum(is_d)[n_rows] - 1  # index among the chunk's rounds; −1: none
+        ats = _picked(round_at, d_rows)
+        sigma = self.defaults.get("direction")
+        if n_rows.size:
+            to_n = _picked(target, n_rows)
+            at_n = _picked(ats, np.maximum(round_of, 0)) if ats else [""] * n_rows.size
+            bad_n = round_of < 0
+            if sigma is None or sigma.sigma is None or not self.dms_known:
+                bad_n[:] = True
+            bad_n |= np.fromiter(map(operator.eq, to_n, at_n), bool, n_rows.size)
+            bad_n |= np.fromiter(map(_KEYWORD, map(str.lower, to_n)), bool, n_rows.size)
+            # as units.parse_dms reads them
+            deg = np.array(list(map(float, _picked(degrees, n_rows))), dtype=float)
+            mins = np.array(list(map(float, _picked(minutes, n_rows))), dtype=float)
+            secs = np.array(list(map(float, _picked(seconds, n_rows))), dtype=float)
+            bad_n |= ~((mins < 60.0) & (secs < 60.0))
+            booked = (deg + mins / 60.0 + secs / 3600.0) * RAD_PER_DEG
+            negative = np.fromiter(map(bool, _picked(sign, n_rows)), bool, n_rows.size)
+            booked = np.where(negative, -booked, booked)
+            bad[n_rows] |= bad_n
+            # a round with no direction or only one is reported: the careful path does that
+            inside = round_of[(round_of >= 0) & (depth[n_rows] == 1)]
+            entries = np.bincount(inside, minlength=d_rows.size)
+        else:
+            entries = np.zeros(d_rows.size, np.int64)
+        short = entries < 2
+        if short.size and depth[-1] == 1:
+            short[-1] = False  # the chunk ends inside this round: its count is not known yet
+        bad[d_rows[short]] = True
+        # the plain level and distance lines
+        if o_rows.size:
+            plain = _picked(kind, o_rows), _picked(frm, o_rows), _picked(to, o_rows)
+            lengths = _picked(length_text, o_rows), _picked(length_unit, o_rows)
+            checked = self.plain_checks(*plain, _picked(value_text, o_rows), *lengths)
+            bad[o_rows] |= checked[0]
+        # the first line failing a check ends the stretch, before its round if it is in one
+        first = int(np.argmax(bad)) if bad.any() else n
+        within = (depth[first] - step[first]) if first < n else depth[-1]
+        end = first if not within else int(d_rows[np.searchsorted(d_rows, first) - 1])
+        resume = None
+        if first < n:
+            after = np.flatnonzero((is_d | is_o)[first + 1 :])
+            resume = first + 1 + int(after[0]) if after.size else n
+        if end == 0:
+            return 0, resume
+        rows_n, rows_o = n_rows < end, o_rows < end
+        kept_n, kept_o = n_rows[rows_n], o_rows[rows_o]
+        rows = np.sort(np.concatenate((kept_n, kept_o)))
+        m = rows.size
+        if m:
+            pos_n, pos_o = np.searchsorted(rows, kept_n), np.searchsorted(rows, kept_o)
+            k_n, k_o = kept_n.size, kept_o.size
+
+            def merged(for_n: object, for_o: object, dtype: type = object) -> list[Any]:
+                column: np.ndarray = np.empty(m, dtype)
+                column[pos_n], column[pos_o] = for_n, for_o
+                return column.tolist()
+
+            if k_n:
+                at_n, to_n = at_n[:k_n], to_n[:k_n]
+                booked = booked[:k_n]
+                value_n = wrap_2pi_array(booked)
+                round_lines = (d_rows[round_of[:k_n]] + start + 1).tolist()
+            else:
+                at_n = to_n = round_lines = []
+                booked = value_n = np.zeros(0)
+            if k_o:
+                level, value, length_km, sigmas = checked[1:]
+                kind_o, frm_o, to_o = (names[:k_o] for names in plain)
+                level, value, length_km = level[:k_o], value[:k_o], length_km[:k_o]
+                scale = np.where(level, 1.0, self.scale)
+                sigma_o = list(map(sigmas.__getitem__, kind_o))
+            else:
+                kind_o = frm_o = to_o = sigma_o = []
+                level = np.zeros(0, bool)
+                value = length_km = scale = np.zeros(0)
+            none = [None] * m
+            self.flush()
+            self.blocks.append(
+                [
+                    (rows + (start + 1)).tolist(),
+                    merged(_DIRECTION, kind_o),
+                    merged(at_n, frm_o),
+                    merged(at_n, None),
+                    merged(to_n, to_o),
+                    merged(value_n, value * scale, float),
+                    merged(sigma.sigma if k_n else None, sigma_o),  # type: ignore[union-attr]
+                    merged(self.centering, np.where(level, 0.0, self.centering), float),
+                    merged(1.0, scale, float),
+                    merged(math.nan, length_km, float),  # NaN where there is none
+                    none,
+                    none,
+                    none,
+                    merged(round_lines, None),
+                    [False] * m,
+                    [""] * m,
+                    merged(booked, value, float),
+                    [False] * m,
+                    none,
+                ]
+            )
+        kept_d = d_rows[d_rows < end]
+        if kept_d.size:
+            lines = iter((kept_n + (start + 1)).tolist())
+            self.rounds.extend(
+                map(
+                    DirectionRound,
+                    (kept_d + (start + 1)).tolist(),
+                    ats[: kept_d.size],
+                    [tuple(islice(lines, count)) for count in entries[: kept_d.size].tolist()],
+                )
+            )
+        self.statements += m + 2 * kept_d.size
+        return end, resume
+
+    @property
+    def dms_known(self) -> bool:
+        return self.angle_unit == "dms" and self.angle_unit_known
+
+    def plain_checks(
+        self,
+        kind: list[str],
+        frm: list[str],
+        to: list[str],
+        value_text: list[str],
+        length_text: list[str],
+        length_unit: list[str],
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, dict[str, Quantity]]:
+        """``fast_line``'s checks on plain ``level``/``distance`` lines, done on arrays: the
+        lines failing one, which are level lines, the values (file unit times its factor),
+        ``len=`` in km (NaN where not given), and the standard deviation of each kind.
+        An empty or None ``length_text`` means no ``len=``."""
+        n = len(kind)
+        bad = np.fromiter(map(operator.eq, frm, to), bool, n)
+        level = np.fromiter(map(_LEVEL.__eq__, kind), bool, n)
+        has_length = np.fromiter(map(bool, length_text), bool, n)
+        # as units.parse_number, file_number and bounded_length read them (an overflow to
+        # inf fails the bound)
+        value = np.array(list(map(float, value_text)), dtype=float) * self.length_factor
+        bad |= ~(np.abs(value) <= MAX_LENGTH_M)
+        sigmas: dict[str, Quantity] = {}
+        for name, rows in ((_LEVEL, level), ("distance", ~level)):
+            default = self.defaults.get(name)
+            if default is None or default.sigma is None:
+                bad |= rows
+            else:
+                sigmas[name] = default.sigma
+        level_sigma = sigmas.get(_LEVEL)
+        if level_sigma is not None and level_sigma.per_setup:
+            bad |= level  # needs setups=
+        elif level_sigma is not None and level_sigma.per_sqrtkm:
+            bad |= level & ~has_length
+        bad |= ~level & (has_length | ~(value >= MIN_DISTANCE_M))
+        length_km = np.full(n, np.nan)
+        rows = np.flatnonzero(level & has_length)
+        if rows.size:
+            units, texts = _picked(length_unit, rows), _picked(length_text, rows)
+            # an unknown unit's factor is None, NaN in the array: it fails the bounds
+            factors = np.array(list(map(LENGTH_FACTORS.get, map(str.lower, units))), dtype=float)
+            numbers = np.array(list(map(float, texts)), dtype=float)
+            length_m = numbers * factors  # as parse_length and option_length
+            bad[rows] |= ~((length_m >= MIN_DISTANCE_M) & (length_m <= MAX_LENGTH_M))
+            length_km[rows] = length_m / 1000.0
+        return bad, level, value, length_km, sigmas
 
     def fast_spatial(
         self,
@@ -1466,9 +1688,28 @@ _FAST_SPATIAL = re.compile(
     re.DOTALL,
 )
 _FAST_NUMBER = re.compile(rf"{_NUMBER}\Z")
-#: A run of at least this many plain lines is read at once (``_Parser.fast_run``), in chunks
-#: growing up to ``_RUN_MAX`` lines.
-_RUN_MIN, _RUN_MAX = 16, 65536
+# Any line, as one of: 'directions AT', 'end', a plain level or distance line, 'TO D:M:S' (a
+# direction of a round), a blank or comment line, or anything else (``_Parser.take_block``).
+# A name is not 'end' here; the seconds' decimals are bounded, so no angle is too long.
+_ANY_NAME = r"(?![eE][nN][dD](?![!$-<>-~]))([!$-<>-~]{1,64})"
+_LINE_TAIL = r"[ \t]*(?:#.*)?"
+_BLOCK_LINE = re.compile(
+    rf"^(?:[ \t]*(directions)[ \t]+{_ANY_NAME}{_LINE_TAIL}"
+    rf"|[ \t]*(end){_LINE_TAIL}"
+    rf"|[ \t]*(level|distance)[ \t]+{_ANY_NAME}[ \t]+{_ANY_NAME}[ \t]+{_NUMBER}"
+    rf"(?:[ \t]+len={_NUMBER}([a-zA-Z]+))?{_LINE_TAIL}"
+    rf"|[ \t]*{_ANY_NAME}[ \t]+(-?)([0-9]{{1,6}}):([0-9]{{1,6}}):([0-9]{{1,6}}(?:\.[0-9]{{0,30}})?)"
+    rf"{_LINE_TAIL}"
+    rf"|{_LINE_TAIL}"
+    r"|(.+))$",
+    re.MULTILINE,
+)
+#: A stretch of at least this many lines is read at once (``_Parser.fast_block``), in chunks
+#: of ``_CHUNK_MIN`` lines growing up to ``_RUN_MAX``.
+_RUN_MIN, _CHUNK_MIN, _RUN_MAX = 16, 64, 65536
+_DIRECTION = "direction"
+_OTHER = itemgetter(14)  # the group of _BLOCK_LINE that holds any other line
+_KEYWORD = GRAMMARS.__contains__
 _GROUPS = re.Match.groups
 _LEVEL = "level"
 #: FROM, AT and TO of a row of fields
@@ -1519,6 +1760,13 @@ _HANDLERS: dict[str, Callable[[_Parser, Statement], None]] = {
     "relative": _Parser.relative_pair,
     "end": _Parser.end_without_round,
 }
+
+
+def _picked(values: Sequence[T], rows: np.ndarray) -> list[T]:
+    """``values[k]`` for each k of ``rows``, as a list (in one C-level pass)."""
+    if rows.size > 1:
+        return list(itemgetter(*rows.tolist())(values))
+    return [values[int(k)] for k in rows]
 
 
 def _planned(token: Token) -> bool:

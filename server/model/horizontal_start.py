@@ -23,7 +23,7 @@ from __future__ import annotations
 import itertools
 import math
 from collections import defaultdict
-from collections.abc import Callable
+from collections.abc import Callable, Collection
 from functools import partial
 from typing import NamedTuple
 
@@ -34,6 +34,10 @@ from server.fieldbook.model import HORIZONTAL_KINDS
 from server.model.network import Network
 
 Position = tuple[float, float]
+
+#: Kinds whose station and target link two points for a local frame (``_seed``).
+_LINK_KINDS = ("direction", "angle", "distance")
+_TWO_PI = 2 * math.pi
 
 #: Rays closer than this to parallel (radians) are not intersected.
 _MIN_CUT_ANGLE = math.radians(5.0)
@@ -50,43 +54,74 @@ class _Obs(NamedTuple):
     round_line: int | None
 
 
-def _horizontal(network: Network) -> list[_Obs]:
-    """The used horizontal observations in file order, read from the network's table."""
+class _Columns(NamedTuple):
+    """The used horizontal observations as columns: names, and the table's codes."""
+
+    frm: list[str]
+    to: list[str]
+    value: list[float]
+    round_line: list[int | None]
+    kind_code: np.ndarray  # the table's kind codes
+    code: dict[str, int]  # kind name → code (−1: none of that kind)
+    frm_code: np.ndarray  # the table's name indices
+    at_code: np.ndarray  # −1: none
+    to_code: np.ndarray
+
+
+def _horizontal(network: Network) -> tuple[list[_Obs], _Columns]:
+    """The used horizontal observations in file order, read from the network's table, as
+    records and as columns."""
     table = network.used_table
     rows = np.flatnonzero(table.is_kind(*HORIZONTAL_KINDS))
     names = table.names
     kinds = table.kinds
+    kind_code, frm_code, at_code, to_code = (
+        table.kind[rows],
+        table.frm[rows],
+        table.at[rows],
+        table.to[rows],
+    )
+    frm = [names[k] for k in frm_code.tolist()]
+    to = [names[k] for k in to_code.tolist()]
+    value = table.value[rows].tolist()
+    round_line = [k if k >= 0 else None for k in table.round_line[rows].tolist()]
     # tuple.__new__ makes each record in C (the class's own __new__ is Python)
-    return list(
+    used = list(
         map(
             partial(tuple.__new__, _Obs),
             zip(
-                [kinds[k] for k in table.kind[rows].tolist()],
-                [names[k] for k in table.frm[rows].tolist()],
-                [names[k] if k >= 0 else None for k in table.at[rows].tolist()],
-                [names[k] for k in table.to[rows].tolist()],
-                table.value[rows].tolist(),
-                [k if k >= 0 else None for k in table.round_line[rows].tolist()],
+                [kinds[k] for k in kind_code.tolist()],
+                frm,
+                [names[k] if k >= 0 else None for k in at_code.tolist()],
+                to,
+                value,
+                round_line,
             ),
         )
     )
+    code = {kind: table.code(kind) for kind in HORIZONTAL_KINDS}
+    columns = _Columns(frm, to, value, round_line, kind_code, code, frm_code, at_code, to_code)
+    return used, columns
 
 
 def start_positions(network: Network, given: dict[str, Position]) -> dict[str, Position]:
     """Positions (metres) for every horizontally observed point; given ones are kept."""
-    used = _horizontal(network)
-    needed = {n for o in used for n in _names(o)}
+    used, columns = _horizontal(network)
+    table = network.used_table
+    at_code = columns.at_code
+    named = np.concatenate((columns.frm_code, at_code[at_code >= 0], columns.to_code))
+    needed = {table.names[k] for k in np.unique(named).tolist()}
     known = {n: p for n, p in given.items() if n in needed and not math.isnan(p[0])}
-    tables = _Tables(used)  # what the observations say, read once for every propagation
-    _Propagator(tables, known).run()
+    tables = _Tables(used, columns)  # what the observations say, read once for every propagation
+    _Propagator(tables, known, needed).run()
     # Control that is not tied together directly (no backsight between held points)
     # stalls the propagation: build the figure in a local frame from one station,
     # then move it onto the control by a similarity transformation.
     for _ in range(10):
         if not needed - set(known):
             break
-        local = _Propagator(tables, {})
-        local.arbitrary_datum(_seed(used, set(known)))
+        local = _Propagator(tables, {}, needed)
+        local.arbitrary_datum(_seed(used, set(known), tables.distances.keys()))
         local.run()
         common = [n for n in local.known if n in known]
         if not known:
@@ -97,7 +132,7 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
                 known.setdefault(name, transform(position))
         else:
             break
-        _Propagator(tables, known).run()
+        _Propagator(tables, known, needed).run()
     missing = sorted(needed - set(known))
     if missing:
         more = f" and {len(missing) - 12} more" if len(missing) > 12 else ""
@@ -111,16 +146,30 @@ def start_positions(network: Network, given: dict[str, Position]) -> dict[str, P
     return {n: known[n] for n in needed}
 
 
-def _seed(used: list[_Obs], known: set[str]) -> tuple[str, str]:
-    """A station to start a local frame from: one with a distance, preferring unplaced ones."""
-    measured = {frozenset((o.from_point, o.to)) for o in used if o.kind == "distance"}
-    links = [
-        ((o.at or o.from_point), o.to) for o in used if o.kind in ("direction", "angle", "distance")
-    ]
-    links.sort(
-        key=lambda link: (frozenset(link) not in measured, link[0] in known and link[1] in known)
-    )
-    return links[0]
+def _seed(
+    used: list[_Obs], known: set[str], measured: Collection[frozenset[str]]
+) -> tuple[str, str]:
+    """A station to start a local frame from: one with a distance, preferring unplaced ones.
+
+    The first link in file order (station to target of a direction, angle or distance)
+    that is best by: its pair has a distance in ``measured``, then not both ends known.
+    """
+    best: tuple[str, str] | None = None
+    best_rank = (True, True)
+    for o in used:
+        if o.kind in _LINK_KINDS:
+            station, target = o.at or o.from_point, o.to
+            rank = (
+                frozenset((station, target)) not in measured,
+                station in known and target in known,
+            )
+            if best is None or rank < best_rank:
+                best, best_rank = (station, target), rank
+                if rank == (False, False):
+                    break  # none can be better
+    if best is None:
+        raise IndexError("no direction, angle or distance to start a local frame from")
+    return best
 
 
 def _similarity(source: list[Position], target: list[Position]) -> Callable[[Position], Position]:
@@ -149,18 +198,33 @@ class _Tables:
     """The observations sorted for propagation: distances by pair, rounds, angles, azimuths,
     links."""
 
-    def __init__(self, used: list[_Obs]) -> None:
+    def __init__(self, used: list[_Obs], columns: _Columns) -> None:
+        kind, frm, to, value = columns.kind_code, columns.frm, columns.to, columns.value
+
+        def rows_of(name: str) -> list[int]:
+            """The rows of one kind, in file order (each kind fills its own tables)."""
+            return np.flatnonzero(kind == columns.code[name]).tolist()
+
         self.distances: dict[frozenset[str], list[float]] = defaultdict(list)
         self.rounds: dict[int, list[_Obs]] = defaultdict(list)
-        self.angles = [o for o in used if o.kind == "angle"]
-        self.azimuth_obs = [o for o in used if o.kind == "azimuth"]
-        for o in used:
-            if o.kind == "distance":
-                self.distances[frozenset((o.from_point, o.to))].append(o.value)
-            elif o.kind == "direction" and o.round_line is not None:
-                self.rounds[o.round_line].append(o)
+        self.angles = [used[k] for k in rows_of("angle")]
+        self.azimuth_obs = [used[k] for k in rows_of("azimuth")]
+        for k in rows_of("distance"):
+            self.distances[frozenset((frm[k], to[k]))].append(value[k])
+        round_line = columns.round_line
+        for k in rows_of("direction"):
+            line = round_line[k]
+            if line is not None:
+                self.rounds[line].append(used[k])
         # a dict, not a set: file order makes the start values (and so the last bits of
         # the results) the same on every run, whatever the string hash seed
+        at = columns.at_code
+        if not np.any((at >= 0) & (at != columns.frm_code)) and not np.any(
+            columns.frm_code == columns.to_code
+        ):
+            # every station is the FROM point: one link FROM → TO per line, made in C
+            self.linked = dict.fromkeys(zip(frm, to))
+            return
         linked: dict[tuple[str, str], None] = {}
         for o in used:
             station = o.at or o.from_point
@@ -173,8 +237,12 @@ class _Tables:
 class _Propagator:
     """Breadth of facts (azimuths, distances, orientations) grown until every point is placed."""
 
-    def __init__(self, tables: _Tables, known: dict[str, Position]) -> None:
+    def __init__(
+        self, tables: _Tables, known: dict[str, Position], needed: Collection[str]
+    ) -> None:
         self.known = known
+        self.needed = frozenset(needed)
+        self.tables = tables
         self.distances = tables.distances
         self.rounds = tables.rounds
         self.angles = tables.angles
@@ -196,8 +264,10 @@ class _Propagator:
         self._set_azimuth(station, neighbour, 0.0)
 
     def run(self) -> None:
-        """Alternate learning azimuths and placing points until neither makes progress."""
-        while True:
+        """Alternate learning azimuths and placing points until neither makes progress,
+        or until every point needed is placed (a placed point never moves, so nothing
+        after that could change what the propagation gives)."""
+        while not self.needed.issubset(self.known):
             before = (len(self.known), len(self.azimuths), len(self.orientations))
             self._learn_azimuths()
             self._place_polar()
@@ -209,8 +279,8 @@ class _Propagator:
 
     def _set_azimuth(self, i: str, j: str, value: float) -> None:
         if (i, j) not in self.azimuths:
-            self.azimuths[(i, j)] = value % (2 * math.pi)
-            self.azimuths[(j, i)] = (value + math.pi) % (2 * math.pi)
+            self.azimuths[(i, j)] = value % _TWO_PI
+            self.azimuths[(j, i)] = (value + math.pi) % _TWO_PI
 
     def _learn_azimuths(self) -> None:
         known, azimuths = self.known, self.azimuths
@@ -228,16 +298,24 @@ class _Propagator:
         for o in self.azimuth_obs:
             self._set_azimuth(o.from_point, o.to, o.value)
         done: list[int] = []
+        orientations, pi = self.orientations, math.pi
         for line, directions in self.unoriented.items():
-            if line not in self.orientations:
+            orientation = orientations.get(line)
+            if orientation is None:
                 for d in directions:
-                    if (d.from_point, d.to) in self.azimuths:
-                        self.orientations[line] = self.azimuths[(d.from_point, d.to)] - d.value
+                    azimuth = azimuths.get((d.from_point, d.to))
+                    if azimuth is not None:
+                        orientation = orientations[line] = azimuth - d.value
                         break
-            if line in self.orientations:
-                for d in directions:
-                    self._set_azimuth(d.from_point, d.to, self.orientations[line] + d.value)
-                done.append(line)  # every azimuth of the round is known from now on
+                else:
+                    continue
+            for d in directions:  # as _set_azimuth does it, written out: the hot loop
+                i, j = d.from_point, d.to
+                if (i, j) not in azimuths:
+                    value = orientation + d.value
+                    azimuths[(i, j)] = value % _TWO_PI
+                    azimuths[(j, i)] = (value + pi) % _TWO_PI
+            done.append(line)  # every azimuth of the round is known from now on
         for line in done:
             del self.unoriented[line]
         open_angles = []
@@ -309,11 +387,14 @@ class _Propagator:
     def _place_arcs(self) -> bool:
         """Two distances from known points; keep the mirror image that fits other observations."""
         reach: dict[str, list[tuple[str, float]]] = defaultdict(list)
+        known = self.known
         for pair, lengths in self.distances.items():
-            a, b = tuple(pair)
-            for x, y in ((a, b), (b, a)):
-                if x in self.known and y not in self.known:
-                    reach[y].append((x, sum(lengths) / len(lengths)))
+            a, b = pair
+            if a in known:
+                if b not in known:
+                    reach[b].append((a, sum(lengths) / len(lengths)))
+            elif b in known:
+                reach[a].append((b, sum(lengths) / len(lengths)))
         for target, arcs in reach.items():
             if len(arcs) < 2:
                 continue

@@ -77,30 +77,38 @@ class _Graph:
         names = table.names
         frm = [names[k] for k in table.frm[rows].tolist()]
         to = [names[k] for k in table.to[rows].tolist()]
-        at = table.at[rows].tolist()
+        at = table.at[rows]
         value = table.value[rows].tolist()
-        kind = table.kind[rows].tolist()
-        round_line = table.round_line[rows].tolist()
+        kind = table.kind[rows]
+        round_line = table.round_line[rows]
         self.order = _first_seen(table, rows)
-        codes = {name: table.code(name) for name in ("distance", "angle", "azimuth", "direction")}
-        rounds: dict[int, list[int]] = {}
-        for k, code in enumerate(kind):
-            if code == codes["distance"]:
-                sums.setdefault(frozenset((frm[k], to[k])), []).append(value[k])
-            elif code == codes["angle"] and at[k] >= 0:
-                self._angle(frm[k], names[at[k]], to[k], value[k])
-            elif code == codes["azimuth"]:
-                self.azimuths.setdefault((frm[k], to[k]), value[k])
-                self.azimuths.setdefault((to[k], frm[k]), wrap_2pi(value[k] + math.pi))
-            elif code == codes["direction"] and round_line[k] != NONE:
-                rounds.setdefault(round_line[k], []).append(k)
+
+        def rows_of(name: str, also: np.ndarray | bool = True) -> list[int]:
+            """The rows of one kind, in file order (each kind fills its own tables)."""
+            return np.flatnonzero((kind == table.code(name)) & also).tolist()
+
+        for k in rows_of("distance"):
+            sums.setdefault(frozenset((frm[k], to[k])), []).append(value[k])
+        at_list = at.tolist()
+        for k in rows_of("angle", at >= 0):
+            self._angle(frm[k], names[at_list[k]], to[k], value[k])
+        for k in rows_of("azimuth"):
+            self.azimuths.setdefault((frm[k], to[k]), value[k])
+            self.azimuths.setdefault((to[k], frm[k]), wrap_2pi(value[k] + math.pi))
         # a round gives the angle between any two of its directions; looked up when needed
+        readings_of: dict[int, dict[str, float]] = {}  # by round, in order of first direction
+        station_of: dict[int, str] = {}
+        lines = round_line.tolist()
+        for k in rows_of("direction", round_line != NONE):
+            line = lines[k]
+            readings = readings_of.get(line)
+            if readings is None:
+                readings = readings_of[line] = {}
+                station_of[line] = frm[k]
+            readings.setdefault(to[k], value[k])
         self.rounds_at: dict[str, list[dict[str, float]]] = {}
-        for members in rounds.values():
-            readings: dict[str, float] = {}
-            for k in members:
-                readings.setdefault(to[k], value[k])
-            self.rounds_at.setdefault(frm[members[0]], []).append(readings)
+        for line, readings in readings_of.items():
+            self.rounds_at.setdefault(station_of[line], []).append(readings)
         self.legs = {
             pair: sum(values) / len(values) for pair, values in sums.items() if len(pair) == 2
         }
