@@ -26,6 +26,7 @@ import numpy as np
 
 from server.errors import FieldbookError, Issue, NetworkError
 from server.fieldbook.model import SPATIAL_KINDS, Fieldbook, Observation, PointStatement
+from server.fieldbook.table import ObservationTable, table_of
 from server.geodesy import start3d
 from server.geodesy.crs import Crs, CrsError, crs_from_epsg, local_crs
 from server.units import LENGTH_FACTORS
@@ -90,11 +91,24 @@ def undulations(fieldbook: Fieldbook) -> dict[str, float]:
 
 def touched_names(observations: Sequence[Observation]) -> set[str]:
     """The names an observation's FROM, AT or TO gives (empty names left out)."""
-    names = {o.from_point for o in observations}
-    names.update([o.to for o in observations])
-    names.update([o.at for o in observations if o.at])
-    names.discard("")
-    return names
+    table, rows = observation_columns(observations)
+    return names_in(table, rows)
+
+
+def observation_columns(observations: Sequence[Observation]) -> tuple[ObservationTable, np.ndarray]:
+    """The table behind ``observations`` and their rows in it, in order (read as arrays, the
+    observations need no objects made)."""
+    table, rows = table_of(observations)
+    return table, (np.arange(len(table), dtype=np.int64) if rows is None else rows)
+
+
+def names_in(table: ObservationTable, rows: np.ndarray) -> set[str]:
+    """The names FROM, AT or TO of the table's ``rows`` give (empty names left out)."""
+    ids = np.concatenate([table.frm[rows], table.to[rows], table.at[rows]])
+    names = table.names
+    found = {names[k] for k in np.unique(ids[ids >= 0]).tolist()}
+    found.discard("")
+    return found
 
 
 def geodetic_frame(fieldbook: Fieldbook) -> GeodeticFrame:
@@ -221,17 +235,19 @@ def _ellipsoidal(p: PointStatement, und: Mapping[str, float]) -> float:
 def height_only_points(fieldbook: Fieldbook) -> set[str]:
     """Points that only used level lines touch and that have no given position: they
     carry a height alone (their place on the ellipsoid is only a reference)."""
-    active = [obs for obs in fieldbook.observations if not (obs.ignored or obs.planned)]
-    levels = [obs for obs in active if obs.kind == "level"]
-    if not levels:
+    table = fieldbook.table
+    active = ~(table.ignored | table.planned)
+    level = table.is_kind("level")
+    levels = np.flatnonzero(active & level)
+    if not levels.size:
         return set()
-    spatial = touched_names([obs for obs in active if obs.kind != "level"])
+    spatial = names_in(table, np.flatnonzero(active & ~level))
     placed = {
         p.name
         for p in fieldbook.points
         if p.latitude is not None or (p.east is not None and p.north is not None)
     }
-    return touched_names(levels) - spatial - placed
+    return names_in(table, levels) - spatial - placed
 
 
 def _height_only(
