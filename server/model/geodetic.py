@@ -288,39 +288,51 @@ def _start_observations(
     """
     convergence, scale = _rough_factors(crs, known)
     refraction = fieldbook.refraction
-    by_round: dict[int, list[Observation]] = {}
+    table = fieldbook.table
+    rows = np.flatnonzero(~(table.ignored | table.planned))
+    names, kinds = table.names, table.kinds
+    # ``or 0.0`` of an absent (NaN) or zero height: 0.0 (a −0.0 too, as on the objects)
+    heights = [table.instrument_height[rows], table.target_height[rows]]
+    hi, ht = (np.where(np.isnan(h) | (h == 0.0), 0.0, h).tolist() for h in heights)
+    by_round: dict[int, list[tuple[str, float]]] = {}
+    stations: dict[int, str] = {}
     out: list[start3d.Observation] = []
-    for obs in fieldbook.observations:
-        if obs.ignored or obs.planned:
-            continue
-        kind = obs.kind
+    for row, kind_code, f, a, t, value, i_h, t_h, line in zip(
+        rows.tolist(),
+        table.kind[rows].tolist(),
+        table.frm[rows].tolist(),
+        table.at[rows].tolist(),
+        table.to[rows].tolist(),
+        table.value[rows].tolist(),
+        hi,
+        ht,
+        table.round_line[rows].tolist(),
+    ):
+        kind = kinds[kind_code]
+        frm, to = names[f], names[t]
         if kind == "direction":
-            if obs.round_line is not None:
-                by_round.setdefault(obs.round_line, []).append(obs)
+            if line >= 0:
+                by_round.setdefault(line, []).append((to, value))
+                stations.setdefault(line, frm)
             continue
-        hi, ht = obs.instrument_height or 0.0, obs.target_height or 0.0
         if kind == "slope":
-            out.append(start3d.SlopeDistance(obs.from_point, obs.to, obs.value, hi, ht))
+            out.append(start3d.SlopeDistance(frm, to, value, i_h, t_h))
         elif kind == "zenith":
-            out.append(start3d.ZenithAngle(obs.from_point, obs.to, obs.value, hi, ht, refraction))
+            out.append(start3d.ZenithAngle(frm, to, value, i_h, t_h, refraction))
         elif kind == "baseline":
-            assert obs.baseline is not None
-            dx, dy, dz = obs.baseline.components
-            out.append(start3d.Baseline(obs.from_point, obs.to, dx, dy, dz))
+            dx, dy, dz = table.baselines[row].components
+            out.append(start3d.Baseline(frm, to, dx, dy, dz))
         elif kind == "level":
-            out.append(start3d.HeightDifference(obs.from_point, obs.to, obs.value))
+            out.append(start3d.HeightDifference(frm, to, value))
         elif kind == "distance":
-            out.append(start3d.GridDistance(obs.from_point, obs.to, obs.value, scale))
+            out.append(start3d.GridDistance(frm, to, value, scale))
         elif kind == "azimuth":
-            out.append(start3d.Azimuth(obs.from_point, obs.to, obs.value, convergence))
+            out.append(start3d.Azimuth(frm, to, value, convergence))
         elif kind == "angle":
-            assert obs.at is not None
-            out.append(start3d.HorizontalAngle(obs.at, obs.from_point, obs.to, obs.value))
+            assert a >= 0
+            out.append(start3d.HorizontalAngle(names[a], frm, to, value))
     for line in sorted(by_round):
-        entries = by_round[line]
-        out.append(
-            start3d.DirectionRound(entries[0].from_point, tuple((o.to, o.value) for o in entries))
-        )
+        out.append(start3d.DirectionRound(stations[line], tuple(by_round[line])))
     return out
 
 
