@@ -20,7 +20,8 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -30,6 +31,9 @@ from server.fieldbook.table import ObservationTable, table_of
 from server.geodesy import start3d
 from server.geodesy.crs import Crs, CrsError, crs_from_epsg, local_crs
 from server.units import LENGTH_FACTORS
+
+if TYPE_CHECKING:  # network.py builds on this module
+    from server.model.network import NetworkPoint
 
 XYZ = tuple[float, float, float]
 
@@ -225,6 +229,36 @@ def _given_points(
             )
         )
     return known, heights
+
+
+def with_grid_positions(
+    points: Sequence[NetworkPoint], fieldbook: Fieldbook, crs: Crs
+) -> tuple[NetworkPoint, ...]:
+    """Points given by latitude and longitude get their grid east and north (metres).
+
+    One pyproj call converts them all; each point's numbers are those of a call of its own
+    (``tests/test_geodetic_grid_positions.py`` compares them bit for bit).
+    """
+    by_name = {p.name: p for p in fieldbook.points}
+    given = [
+        k
+        for k, p in enumerate(points)
+        if (stmt := by_name.get(p.name)) is not None
+        and stmt.latitude is not None
+        and stmt.longitude is not None
+    ]
+    if not given:
+        return tuple(points)
+    statements = [by_name[points[k].name] for k in given]
+    east, north = crs.geodetic_to_grid(
+        np.array([s.latitude for s in statements], dtype=float),
+        np.array([s.longitude for s in statements], dtype=float),
+    )
+    per_unit = crs.metres_per_unit
+    out = list(points)
+    for k, e, n in zip(given, np.asarray(east).tolist(), np.asarray(north).tolist()):
+        out[k] = replace(out[k], east=e * per_unit, north=n * per_unit)
+    return tuple(out)
 
 
 def _ellipsoidal(p: PointStatement, und: Mapping[str, float]) -> float:

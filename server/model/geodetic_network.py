@@ -17,7 +17,12 @@ import numpy as np
 
 from server.errors import NetworkError
 from server.fieldbook.model import Fieldbook, Observation
-from server.model.geodetic import geodetic_frame, names_in, observation_columns
+from server.model.geodetic import (
+    geodetic_frame,
+    names_in,
+    observation_columns,
+    with_grid_positions,
+)
 from server.model.network import (
     EAST,
     HEIGHT,
@@ -27,7 +32,6 @@ from server.model.network import (
     Parameter,
     _collect_points,
     _shown,
-    with_grid_positions,
 )
 
 
