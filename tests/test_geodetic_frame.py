@@ -100,3 +100,73 @@ def test_a_given_point_the_grid_cannot_place_is_named():
         geodetic_frame(parse(text + "baseline RIDGE FAR +1.0 +1.0 +1.0\n"))
     assert caught.value.points == ("FAR",)
     assert "point FAR (line 11) lies where the CRS" in str(caught.value)
+
+
+def _start_observations_from_objects(book, crs, known):
+    """The former reading of ``_start_observations``, one ``Observation`` object at a time:
+    the reference the column reading must give exactly (a regression check)."""
+    from server.geodesy import start3d
+    from server.model.geodetic import _rough_factors
+
+    convergence, scale = _rough_factors(crs, known)
+    by_round: dict[int, list] = {}
+    out: list = []
+    for obs in book.observations:
+        if obs.ignored or obs.planned:
+            continue
+        hi, ht = obs.instrument_height or 0.0, obs.target_height or 0.0
+        if obs.kind == "direction":
+            if obs.round_line is not None:
+                by_round.setdefault(obs.round_line, []).append(obs)
+        elif obs.kind == "slope":
+            out.append(start3d.SlopeDistance(obs.from_point, obs.to, obs.value, hi, ht))
+        elif obs.kind == "zenith":
+            out.append(
+                start3d.ZenithAngle(obs.from_point, obs.to, obs.value, hi, ht, book.refraction)
+            )
+        elif obs.kind == "baseline":
+            out.append(start3d.Baseline(obs.from_point, obs.to, *obs.baseline.components))
+        elif obs.kind == "level":
+            out.append(start3d.HeightDifference(obs.from_point, obs.to, obs.value))
+        elif obs.kind == "distance":
+            out.append(start3d.GridDistance(obs.from_point, obs.to, obs.value, scale))
+        elif obs.kind == "azimuth":
+            out.append(start3d.Azimuth(obs.from_point, obs.to, obs.value, convergence))
+        elif obs.kind == "angle":
+            out.append(start3d.HorizontalAngle(obs.at, obs.from_point, obs.to, obs.value))
+    for line in sorted(by_round):
+        entries = by_round[line]
+        out.append(
+            start3d.DirectionRound(entries[0].from_point, tuple((o.to, o.value) for o in entries))
+        )
+    return out
+
+
+def test_the_start_value_inputs_read_from_columns_are_those_of_the_objects():
+    """Every kind, heights absent, zero and negative zero, ignored and planned lines, two
+    rounds: the column reading gives the very objects (and bits) the object reading gave."""
+    from server.geodesy.crs import crs_from_epsg
+    from server.model.geodetic import _given_points, _start_observations
+
+    text = (
+        "crs EPSG:32633\ndefaults level=1mm/sqrtkm distance=2mm+2ppm angle=1sec azimuth=2sec "
+        "direction=1sec slope=2mm zenith=1sec baseline=3mm\n"
+        "point A east=500000 north=4982900 height=100 fix\n"
+        "point B east=500100 north=4982950 height=101 fix\n"
+        "level A C 1.25 len=0.4km\nlevel C B ? len=0.4km\ndistance A C 60.1\n"
+        "angle A B C 31:00:00\nazimuth A C 45:00:00\nazimuth B C 12:00:00 ignore\n"
+        "slope A C 60.2 hi=1.5m ht=0m\nslope B C 61.0 hi=-0m ht=1.7m\nslope C A ?\n"
+        "zenith A C 89:00:00 hi=1.5m\nzenith C B 91:00:00\n"
+        "baseline A B 100.0 50.0 1.0\nbaseline A C 1 2 3 ignore\n"
+        "directions A\n  B 0:00:00\n  C 40:00:00\nend\n"
+        "directions B\n  C 0:00:00\n  A ?\n  A 180:00:00\nend\n"
+    )
+    book = parse(text)
+    crs = crs_from_epsg("EPSG:32633")
+    known, _ = _given_points(book.points, crs, undulations(book))
+    found = _start_observations(book, crs, known)
+    reference = _start_observations_from_objects(book, crs, known)
+    assert found == reference
+    for a, b in zip(found, reference, strict=True):  # equal floats, and equal bits
+        assert repr(a) == repr(b)
+    assert {type(o).__name__ for o in found} >= {"SlopeDistance", "DirectionRound", "Azimuth"}

@@ -17,7 +17,7 @@ from server.engine.state import State
 from server.geodesy import frames
 from server.model import geodetic_equations as ge
 from server.model.assembly import Assembly, GeodeticRows
-from server.model.geodetic import GeodeticFrame, height_only_points
+from server.model.geodetic import GeodeticFrame, height_only_points, observation_columns
 from server.model.geodetic_kinds import geodetic_kinds
 from server.model.network import Network
 from server.model.whitening import CorrelatedBlock
@@ -99,21 +99,20 @@ class GeodeticState(State):
 
     def _start_orientations(self) -> np.ndarray:
         """Each round's orientation: circular mean of (horizon azimuth − direction)."""
-        rows = [
-            (
-                self.round_index[o.round_line],
-                self.point_index[o.from_point],
-                self.point_index[o.to],
-                o.value,
-            )
-            for o in self.network.used
-            if o.kind == "direction" and o.round_line in self.round_index
-        ]
+        table, used = observation_columns(self.network.used)
+        line = table.round_line[used]
+        rows = used[(table.kind[used] == table.code("direction")) & (line >= 0)]
+        round_of = np.array(
+            [self.round_index.get(k, -1) for k in table.round_line[rows].tolist()], dtype=np.int64
+        )
+        rows, r = rows[round_of >= 0], round_of[round_of >= 0]
         orientation = np.zeros(len(self.round_lines))
-        if not rows:
+        if not rows.size:
             return orientation
-        table = np.array(rows, dtype=float)
-        r, i, j = (table[:, c].astype(np.int64) for c in range(3))
+        point_of = np.array([self.point_index.get(name, -1) for name in table.names])
+        i, j = point_of[table.frm[rows]], point_of[table.to[rows]]
+        assert (i >= 0).all() and (j >= 0).all(), "every used observation's points are in the state"
+        value = table.value[rows]
         xyz_i, xyz_j = self._xyz(i), self._xyz(j)
         ok = np.isfinite(xyz_i).all(axis=1) & np.isfinite(xyz_j).all(axis=1) & (i != j)
         ell = self.frame.crs.ellipsoid
@@ -127,7 +126,7 @@ class GeodeticState(State):
             frames_from=at_points.take(row_i),
             frames_to=at_points.take(row_j),
         )
-        offset = azimuth - table[ok, 3]
+        offset = azimuth - value[ok]
         sines = np.bincount(r[ok], weights=np.sin(offset), minlength=len(self.round_lines))
         cosines = np.bincount(r[ok], weights=np.cos(offset), minlength=len(self.round_lines))
         return np.arctan2(sines, cosines)

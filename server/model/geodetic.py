@@ -20,15 +20,20 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from server.errors import FieldbookError, Issue, NetworkError
 from server.fieldbook.model import SPATIAL_KINDS, Fieldbook, Observation, PointStatement
+from server.fieldbook.table import ObservationTable, table_of
 from server.geodesy import start3d
 from server.geodesy.crs import Crs, CrsError, crs_from_epsg, local_crs
 from server.units import LENGTH_FACTORS
+
+if TYPE_CHECKING:  # network.py builds on this module
+    from server.model.network import NetworkPoint
 
 XYZ = tuple[float, float, float]
 
@@ -90,11 +95,24 @@ def undulations(fieldbook: Fieldbook) -> dict[str, float]:
 
 def touched_names(observations: Sequence[Observation]) -> set[str]:
     """The names an observation's FROM, AT or TO gives (empty names left out)."""
-    names = {o.from_point for o in observations}
-    names.update([o.to for o in observations])
-    names.update([o.at for o in observations if o.at])
-    names.discard("")
-    return names
+    table, rows = observation_columns(observations)
+    return names_in(table, rows)
+
+
+def observation_columns(observations: Sequence[Observation]) -> tuple[ObservationTable, np.ndarray]:
+    """The table behind ``observations`` and their rows in it, in order (read as arrays, the
+    observations need no objects made)."""
+    table, rows = table_of(observations)
+    return table, (np.arange(len(table), dtype=np.int64) if rows is None else rows)
+
+
+def names_in(table: ObservationTable, rows: np.ndarray) -> set[str]:
+    """The names FROM, AT or TO of the table's ``rows`` give (empty names left out)."""
+    ids = np.concatenate([table.frm[rows], table.to[rows], table.at[rows]])
+    names = table.names
+    found = {names[k] for k in np.unique(ids[ids >= 0]).tolist()}
+    found.discard("")
+    return found
 
 
 def geodetic_frame(fieldbook: Fieldbook) -> GeodeticFrame:
@@ -213,6 +231,36 @@ def _given_points(
     return known, heights
 
 
+def with_grid_positions(
+    points: Sequence[NetworkPoint], fieldbook: Fieldbook, crs: Crs
+) -> tuple[NetworkPoint, ...]:
+    """Points given by latitude and longitude get their grid east and north (metres).
+
+    One pyproj call converts them all; each point's numbers are those of a call of its own
+    (``tests/test_geodetic_grid_positions.py`` compares them bit for bit).
+    """
+    by_name = {p.name: p for p in fieldbook.points}
+    given = [
+        k
+        for k, p in enumerate(points)
+        if (stmt := by_name.get(p.name)) is not None
+        and stmt.latitude is not None
+        and stmt.longitude is not None
+    ]
+    if not given:
+        return tuple(points)
+    statements = [by_name[points[k].name] for k in given]
+    east, north = crs.geodetic_to_grid(
+        np.array([s.latitude for s in statements], dtype=float),
+        np.array([s.longitude for s in statements], dtype=float),
+    )
+    per_unit = crs.metres_per_unit
+    out = list(points)
+    for k, e, n in zip(given, np.asarray(east).tolist(), np.asarray(north).tolist()):
+        out[k] = replace(out[k], east=e * per_unit, north=n * per_unit)
+    return tuple(out)
+
+
 def _ellipsoidal(p: PointStatement, und: Mapping[str, float]) -> float:
     """h = H + N of a given point (H taken as 0 where the book gives none)."""
     return (p.height if p.height is not None else 0.0) + und.get(p.name, 0.0)
@@ -221,17 +269,19 @@ def _ellipsoidal(p: PointStatement, und: Mapping[str, float]) -> float:
 def height_only_points(fieldbook: Fieldbook) -> set[str]:
     """Points that only used level lines touch and that have no given position: they
     carry a height alone (their place on the ellipsoid is only a reference)."""
-    active = [obs for obs in fieldbook.observations if not (obs.ignored or obs.planned)]
-    levels = [obs for obs in active if obs.kind == "level"]
-    if not levels:
+    table = fieldbook.table
+    active = ~(table.ignored | table.planned)
+    level = table.is_kind("level")
+    levels = np.flatnonzero(active & level)
+    if not levels.size:
         return set()
-    spatial = touched_names([obs for obs in active if obs.kind != "level"])
+    spatial = names_in(table, np.flatnonzero(active & ~level))
     placed = {
         p.name
         for p in fieldbook.points
         if p.latitude is not None or (p.east is not None and p.north is not None)
     }
-    return touched_names(levels) - spatial - placed
+    return names_in(table, levels) - spatial - placed
 
 
 def _height_only(
@@ -272,39 +322,51 @@ def _start_observations(
     """
     convergence, scale = _rough_factors(crs, known)
     refraction = fieldbook.refraction
-    by_round: dict[int, list[Observation]] = {}
+    table = fieldbook.table
+    rows = np.flatnonzero(~(table.ignored | table.planned))
+    names, kinds = table.names, table.kinds
+    # ``or 0.0`` of an absent (NaN) or zero height: 0.0 (a −0.0 too, as on the objects)
+    heights = [table.instrument_height[rows], table.target_height[rows]]
+    hi, ht = (np.where(np.isnan(h) | (h == 0.0), 0.0, h).tolist() for h in heights)
+    by_round: dict[int, list[tuple[str, float]]] = {}
+    stations: dict[int, str] = {}
     out: list[start3d.Observation] = []
-    for obs in fieldbook.observations:
-        if obs.ignored or obs.planned:
-            continue
-        kind = obs.kind
+    for row, kind_code, f, a, t, value, i_h, t_h, line in zip(
+        rows.tolist(),
+        table.kind[rows].tolist(),
+        table.frm[rows].tolist(),
+        table.at[rows].tolist(),
+        table.to[rows].tolist(),
+        table.value[rows].tolist(),
+        hi,
+        ht,
+        table.round_line[rows].tolist(),
+    ):
+        kind = kinds[kind_code]
+        frm, to = names[f], names[t]
         if kind == "direction":
-            if obs.round_line is not None:
-                by_round.setdefault(obs.round_line, []).append(obs)
+            if line >= 0:
+                by_round.setdefault(line, []).append((to, value))
+                stations.setdefault(line, frm)
             continue
-        hi, ht = obs.instrument_height or 0.0, obs.target_height or 0.0
         if kind == "slope":
-            out.append(start3d.SlopeDistance(obs.from_point, obs.to, obs.value, hi, ht))
+            out.append(start3d.SlopeDistance(frm, to, value, i_h, t_h))
         elif kind == "zenith":
-            out.append(start3d.ZenithAngle(obs.from_point, obs.to, obs.value, hi, ht, refraction))
+            out.append(start3d.ZenithAngle(frm, to, value, i_h, t_h, refraction))
         elif kind == "baseline":
-            assert obs.baseline is not None
-            dx, dy, dz = obs.baseline.components
-            out.append(start3d.Baseline(obs.from_point, obs.to, dx, dy, dz))
+            dx, dy, dz = table.baselines[row].components
+            out.append(start3d.Baseline(frm, to, dx, dy, dz))
         elif kind == "level":
-            out.append(start3d.HeightDifference(obs.from_point, obs.to, obs.value))
+            out.append(start3d.HeightDifference(frm, to, value))
         elif kind == "distance":
-            out.append(start3d.GridDistance(obs.from_point, obs.to, obs.value, scale))
+            out.append(start3d.GridDistance(frm, to, value, scale))
         elif kind == "azimuth":
-            out.append(start3d.Azimuth(obs.from_point, obs.to, obs.value, convergence))
+            out.append(start3d.Azimuth(frm, to, value, convergence))
         elif kind == "angle":
-            assert obs.at is not None
-            out.append(start3d.HorizontalAngle(obs.at, obs.from_point, obs.to, obs.value))
+            assert a >= 0
+            out.append(start3d.HorizontalAngle(names[a], frm, to, value))
     for line in sorted(by_round):
-        entries = by_round[line]
-        out.append(
-            start3d.DirectionRound(entries[0].from_point, tuple((o.to, o.value) for o in entries))
-        )
+        out.append(start3d.DirectionRound(stations[line], tuple(by_round[line])))
     return out
 
 

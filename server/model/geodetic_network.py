@@ -13,9 +13,16 @@ there is no datum, and the network is refused naming the points it could be held
 
 from __future__ import annotations
 
+import numpy as np
+
 from server.errors import NetworkError
 from server.fieldbook.model import Fieldbook, Observation
-from server.model.geodetic import geodetic_frame, touched_names
+from server.model.geodetic import (
+    geodetic_frame,
+    names_in,
+    observation_columns,
+    with_grid_positions,
+)
 from server.model.network import (
     EAST,
     HEIGHT,
@@ -25,7 +32,6 @@ from server.model.network import (
     Parameter,
     _collect_points,
     _shown,
-    with_grid_positions,
 )
 
 
@@ -66,30 +72,33 @@ def _parameters(
 ) -> tuple[Parameter, ...]:
     """E, N, H per spatially observed point (H alone where only level lines touch it),
     then one orientation per direction round."""
-    spatial = touched_names([o for o in used if o.kind != "level"])
-    leveled = touched_names([o for o in used if o.kind == "level"])
+    table, rows = observation_columns(used)
+    level = table.kind[rows] == table.code("level")
+    spatial = names_in(table, rows[~level])
+    leveled = names_in(table, rows[level])
     params: list[Parameter] = []
     for p in points:
         if p.name in spatial and "en" not in p.fixed:
             params += [Parameter(EAST, p.name), Parameter(NORTH, p.name)]
         if (p.name in spatial or p.name in leveled) and "h" not in p.fixed:
             params.append(Parameter(HEIGHT, p.name))
-    first_at: dict[int, str | None] = {}
-    for o in reversed(used):  # the first entry of each round is written last
-        if o.round_line is not None and o.kind == "direction":
-            first_at[o.round_line] = o.at
-    for line in sorted(first_at):
-        params.append(Parameter("O", first_at[line], round_line=line))
+    # each round's orientation at the AT of its first entry (in the order of ``used``)
+    rounds = rows[(table.kind[rows] == table.code("direction")) & (table.round_line[rows] >= 0)]
+    lines, first = np.unique(table.round_line[rounds], return_index=True)
+    names = table.names
+    for line, at in zip(lines.tolist(), table.at[rounds[first]].tolist()):
+        params.append(Parameter("O", None if at < 0 else names[at], round_line=line))
     return tuple(params)
 
 
 def _check_datum(points: tuple[NetworkPoint, ...], used: tuple[Observation, ...]) -> None:
     """Refuse a geodetic network with no position or no height control, naming candidates."""
-    touched = touched_names(used)
+    table, rows = observation_columns(used)
+    touched = names_in(table, rows)
     held_en = [p for p in points if p.in_use and ("en" in p.fixed or "en" in p.weighted)]
     held_h = [p for p in points if p.in_use and ("h" in p.fixed or "h" in p.weighted)]
     given = [p.name for p in points if p.name in touched and p.east is not None]
-    spatial = any(o.kind != "level" for o in used)
+    spatial = bool((table.kind[rows] != table.code("level")).any())
     if not held_en and spatial:
         raise NetworkError(
             "the geodetic network has no control in position: hold at least one point fixed "

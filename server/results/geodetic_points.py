@@ -29,6 +29,7 @@ def with_geodetic_figures(
     fieldbook = network.fieldbook
     if fieldbook.crs is None:
         return tuple(points)
+    points = tuple(points)  # a column store makes its rows on each pass: once here
     crs = network.geodetic.crs if network.geodetic is not None else resolve_crs(fieldbook)
     assert crs is not None
     und = network.geodetic.undulation if network.geodetic is not None else undulations(fieldbook)
