@@ -45,8 +45,8 @@ SINGULAR_PIVOT = 1e-12
 
 
 def _kernels() -> ModuleType:
-    """The compiled kernels, loaded on first use: importing them loads numba (about a third
-    of a second), which the dense back end of small networks never needs."""
+    """The compiled kernels, loaded on first use: the dense back end of small networks never
+    needs them (and where the C extension is missing, importing them loads numba)."""
     from server.engine import kernels
 
     return kernels

@@ -369,12 +369,17 @@ def _inseparable_lines(
     candidates = np.flatnonzero(controlled)
     if solution.hat is None or candidates.size < 2:
         return [()] * n_used
+    # when a large network flags more rows than are worked exactly, the largest w-tests
+    # (the ones reviewed first) get their partners exactly
+    priority = np.zeros(sigmas.shape[0])
+    priority[:n_rows] = np.abs(np.where(controlled, w_rows, 0.0))
     rows = separability.correlated_rows(
         solution.hat,
         sigmas,
         np.asarray(r_i, dtype=float),
         candidates,
         np.flatnonzero(flagged).tolist(),
+        priority=priority,
     )
     # each scalar row has its own line (a round's directions too)
     line_of = np.repeat(lines, components).tolist().__getitem__
