@@ -571,3 +571,30 @@ def test_json_text_of_the_new_keys_reads_back_as_written():
     # a column mixing empty lists, null and lists of lines
     rows = [{"a": 1, "inseparable": v} for v in ([], [3, 4], None, [12])]
     assert json.loads(json_bytes({"x": rows})) == {"x": rows}
+
+
+@pytest.mark.parametrize("name", ["2D free network with an azimuth", "loops with a blunder"])
+def test_small_network_pairs_from_the_full_inverse_match_the_block_solves(name):
+    """Small networks take every pair from N⁻¹ in full (one solve of the identity); the
+    block solves, one per observation, are the reference: the same lists, free datum too."""
+    from server.engine import gauss_newton as engine
+    from server.model.network import build_network
+    from tests.test_sparse import NETWORKS
+
+    text = LOOPS_WITH_BLUNDER if name == "loops with a blunder" else NETWORKS[name]
+    network = build_network(parse_fieldbook(text))
+    solution = engine.adjust(network, method="sparse")
+    sigmas = np.asarray(solution.sigmas)
+    r = 1.0 - np.asarray(solution.adjusted_cofactor) / sigmas**2
+    candidates = np.flatnonzero(r >= 0.001)
+    assert hasattr(solution.hat, "inverse")
+    from_inverse = separability.correlated_rows(
+        solution.hat, sigmas, r, candidates, candidates.tolist()
+    )
+
+    def blocks(block):  # the same product without the engine's halves: the block path
+        return solution.hat(block)
+
+    from_blocks = separability.correlated_rows(blocks, sigmas, r, candidates, [])
+    assert any(from_inverse)  # each network has inseparable pairs to agree on
+    assert from_inverse == from_blocks

@@ -376,6 +376,12 @@ class HatProduct:
         with _one_blas_thread():
             return self.design @ self._solve(np.ascontiguousarray(self.design.T @ block))
 
+    def inverse(self) -> np.ndarray:
+        """N⁻¹ in full (u × u): for small networks, where one solve of the identity is
+        cheaper than a solve for every observation."""
+        with _one_blas_thread():
+            return np.asarray(self._solve(np.eye(self._n, order="F")))
+
     def solve_rows(self, rows: np.ndarray, scale: np.ndarray) -> np.ndarray:
         """N⁻¹·Aᵀ·B, B the n × k block with B[rows[c], c] = scale[c] and zeros elsewhere."""
         rows = np.asarray(rows, dtype=np.int64)

@@ -60,8 +60,8 @@ def baseline_figures(
     kind = geodetic_kinds(frame.crs, frame.refraction)["baseline"]
     names = list(solution.positions)
     index = {name: k for k, name in enumerate(names)}
-    table = np.array([solution.positions[n] for n in names], dtype=float).reshape(-1, 3)
-    at = Positions(table[:, 0], table[:, 1], table[:, 2], np.zeros(0))
+    xyz = np.array([solution.positions[n] for n in names], dtype=float).reshape(-1, 3)
+    at = Positions(xyz[:, 0], xyz[:, 1], xyz[:, 2], np.zeros(0))
     placed = [o for o in baselines if o.from_point in index and o.to in index and not o.planned]
     if not placed:
         return BaselineFigures({}, ())

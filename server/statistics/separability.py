@@ -129,7 +129,9 @@ def correlated_rows(
     scale = np.sqrt(np.maximum(redundancy, 0.0))
     columns = _ExactColumns(hat, root_p, candidates)
     pairs: list[tuple[np.ndarray, np.ndarray]] = []
-    if n <= dense_rows:
+    if n <= dense_rows and columns.direct and hasattr(hat, "inverse"):
+        pairs.append(_all_pairs(hat, root_p, scale, candidates, threshold))
+    elif n <= dense_rows:
         # every row exact, in blocks so that no n×n array is held
         for start in range(0, candidates.size, BLOCK):
             rows = candidates[start : start + BLOCK]
@@ -232,6 +234,33 @@ def _pairs(
         firsts.append(rows[first])
         seconds.append(part[second])
     return np.concatenate(firsts), np.concatenate(seconds)
+
+
+def _all_pairs(
+    hat: Any, root_p: np.ndarray, scale: np.ndarray, candidates: np.ndarray, threshold: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """Every (i, j), i < j, of the candidates with |ρ_ij| ≥ threshold, from R in full.
+
+    Off the diagonal R = −P^½·A·Qxx·Aᵀ·P^½, and with Qxx = N⁻¹ in full (one solve of the
+    identity: u right-hand sides, where a solve per observation takes n) the candidates'
+    block is two products with their sparse rows of P^½·A.  At most ``DENSE_ROWS`` rows:
+    three arrays of at most 2,000² (32 MB each) while it runs.
+    """
+    import scipy.sparse
+
+    # the rows of P^½·A divided by √r: the products below are then ρ itself
+    design = scipy.sparse.csr_matrix(hat.design[candidates])
+    row_scale = root_p[candidates] / scale[candidates]
+    design.data = design.data * np.repeat(row_scale, np.diff(design.indptr))
+    left = np.asarray(design @ hat.inverse())
+    rho = np.asarray(design @ np.ascontiguousarray(left.T))  # −ρ off the diagonal
+    del left
+    np.abs(rho, out=rho)
+    np.fill_diagonal(rho, 0.0)
+    first, second = np.divmod(np.flatnonzero(rho >= threshold), candidates.size)
+    upper = first < second
+    first, second = first[upper], second[upper]
+    return candidates[first], candidates[second]
 
 
 class _ExactColumns:
