@@ -143,6 +143,7 @@ def main() -> int:
     folder = args.keep or Path(tempfile.mkdtemp(prefix="stationfit-bench-"))
     folder.mkdir(parents=True, exist_ok=True)
     releases = {"this": ROOT}
+    _compile(ROOT)
     if args.previous != "none":
         releases["previous"] = _export(args.previous, folder / "previous")
 
@@ -200,7 +201,18 @@ def _export(ref: str, folder: Path) -> Path:
         capture_output=True,
     ).stdout
     subprocess.run(["tar", "-x", "-C", str(folder)], input=archive, check=True)
+    _compile(folder)
     return folder
+
+
+def _compile(root: Path) -> None:
+    """Bytecode for a release's package, as an install writes it: without it (and with
+    PYTHONDONTWRITEBYTECODE set) every command compiles the source again."""
+    subprocess.run(
+        [sys.executable, "-m", "compileall", "-q", str(root / "server")],
+        check=False,
+        capture_output=True,
+    )
 
 
 # The command lines are started by a small helper process started first: a child
