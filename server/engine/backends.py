@@ -251,8 +251,9 @@ class _Cholmod(Factorization):
         diagonal = lower.data[indptr[:-1]]
         pivots = diagonal * diagonal
         _check_pivots(pivots, self._diagonal)
-        counts = np.diff(indptr)
-        unit = lower.data / np.repeat(diagonal, counts)
+        # in place: the factor is our copy, and fresh memory costs more than the division
+        unit = lower.data
+        unit /= np.repeat(diagonal, np.diff(indptr))
         return indptr, indices, unit, pivots, np.asarray(factor.P(), dtype=np.int64)
 
 
