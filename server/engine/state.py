@@ -99,6 +99,7 @@ class State:
             self.kinds,
             self.correlated,
             table=self.network.used_table,
+            name_point=self.network.name_point,  # the same lookup, made once by the network
         )
 
     def apply(self, correction: np.ndarray) -> None:
@@ -149,8 +150,11 @@ class State:
 def control_rows(network: Network) -> tuple[ControlRow, ...]:
     """Weighted control of estimated components, as rows: E and N together, then H."""
     rows: list[ControlRow] = []
+    weighted = [p for p in network.points if p.weighted]
+    if not weighted:  # the usual case: spares a set of every unknown
+        return ()
     estimated = {(p.point, p.kind) for p in network.parameters}
-    for p in network.points:
+    for p in weighted:
         if "en" in p.weighted and (p.name, "E") in estimated:
             assert p.east is not None and p.north is not None and p.sd_en is not None
             rows += [
