@@ -4,6 +4,7 @@ walk mark by mark finds: the same sections and marks, in the same order and dire
 from __future__ import annotations
 
 import random
+from itertools import pairwise
 
 import pytest
 
@@ -56,7 +57,7 @@ def _graph(seed: int) -> _Edges:
     while at < len(marks):  # lines and rings of marks, then a few joins, loops and repeats
         size = rng.randint(1, 8)
         run = marks[at : at + size]
-        pairs += list(zip(run, run[1:]))
+        pairs += list(pairwise(run))
         if rng.random() < 0.3 and len(run) > 1:
             pairs.append((run[-1], run[0]))
         at += size
