@@ -110,7 +110,7 @@ def leveling_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
     sections = len(edges)
     fixed = [p for p in fieldbook.points if "h" in p.fixed and p.height is not None]
     if len(fixed) >= 2:
-        index = {name: k for k, name in enumerate(names)}
+        index = dict(zip(names, range(len(names))))
         for p in fixed:
             if p.name not in index:  # a benchmark no observation names
                 index[p.name] = len(names)
@@ -141,20 +141,20 @@ def _first_appearance(fieldbook: Fieldbook, names: list[str]) -> list[int]:
     """The rank of each mark (by index into ``names``) in order of first appearance: the
     declared points, then the FROM and TO of every observation in turn (0 for neither)."""
     table = fieldbook.table
-    rank = [0] * len(names)
-    index = {name: k for k, name in enumerate(names)}
-    declared: set[int] = set()
+    rank = np.zeros(len(names), np.int64)
+    declared = np.zeros(len(names), bool)
+    index = dict(zip(names, range(len(names))))
     for position, p in enumerate(fieldbook.points):
         k = index.get(p.name)
-        if k is not None and k not in declared:
+        if k is not None and not declared[k]:
             rank[k] = position
-            declared.add(k)
+            declared[k] = True
     ends = np.stack([table.frm, table.to], axis=1).ravel()
     seen, first = np.unique(ends, return_index=True)
-    observed = (k for k in seen[np.argsort(first)].tolist() if k not in declared)
-    for offset, k in enumerate(observed):
-        rank[k] = len(fieldbook.points) + offset
-    return rank
+    observed = seen[np.argsort(first)]
+    observed = observed[~declared[observed]]
+    rank[observed] = len(fieldbook.points) + np.arange(observed.size)
+    return rank.tolist()
 
 
 def _cycle_basis(
