@@ -296,7 +296,7 @@ def _first_appearance(fieldbook: Fieldbook) -> dict[str, None]:
                 np.concatenate([point_lines, lines[row[first]]]),
             )
         )
-        names = [p.name for p in points] + [table.names[k] for k in seen.tolist()]
+        names = [p.name for p in points] + list(map(table.names.__getitem__, seen.tolist()))
         return dict.fromkeys(map(names.__getitem__, order.tolist()))
     ordered: dict[str, None] = {}
     events: list[tuple[int, int, str]] = [(p.line, 0, p.name) for p in points]
@@ -319,9 +319,10 @@ def _check_coincident(points: tuple[NetworkPoint, ...], columns: _UsedColumns) -
     so the adjustment could not even start; the surveyor must correct the
     coordinates (usually a copied line) or leave out the approximate ones.
     """
-    given = np.array([p.east is not None and p.north is not None for p in points] + [False])
-    east = np.array([p.east if p.east is not None else np.nan for p in points] + [np.nan])
-    north = np.array([p.north if p.north is not None else np.nan for p in points] + [np.nan])
+    # a last entry for "no point" (−1); None becomes NaN, which no comparison passes
+    east = np.array([*map(attrgetter("east"), points), None], dtype=float)
+    north = np.array([*map(attrgetter("north"), points), None], dtype=float)
+    given = ~np.isnan(east) & ~np.isnan(north)
     rows = np.flatnonzero(columns.horizontal)
     kind = columns.table.kind[rows]
     station = np.where(kind == columns.table.code("angle"), columns.at[rows], columns.frm[rows])
@@ -400,6 +401,14 @@ def _parameters(points: tuple[NetworkPoint, ...], columns: _UsedColumns) -> tupl
     return tuple(params)
 
 
+def _held(points: tuple[NetworkPoint, ...], component: str) -> np.ndarray:
+    """Per point: ``component`` ("en" or "h") held fixed or weighted (bool)."""
+    count = len(points)
+    fixed = map(contains, map(attrgetter("fixed"), points), repeat(component))
+    weighted = map(contains, map(attrgetter("weighted"), points), repeat(component))
+    return np.fromiter(fixed, bool, count) | np.fromiter(weighted, bool, count)
+
+
 def _shown(names: list[str], limit: int = 12) -> str:
     """A list of point names for a message, shortened past ``limit``."""
     extra = f" and {len(names) - limit} more" if len(names) > limit else ""
@@ -445,7 +454,7 @@ def _parts(columns: _UsedColumns, rows_mask: np.ndarray, count: int) -> _Parts:
 def _check_height_datum(points: tuple[NetworkPoint, ...], columns: _UsedColumns) -> list[str]:
     """Every part of the leveling needs a fixed or weighted height; else name its points."""
     parts = _parts(columns, columns.level, len(points))
-    controlled = np.array(["h" in p.fixed or "h" in p.weighted for p in points], dtype=bool)
+    controlled = _held(points, "h")
     held = set(parts.label[parts.inside & controlled].tolist())
     for part in parts.order:
         if part not in held:
@@ -481,7 +490,7 @@ def _check_horizontal_datum(
     inner constraints removing translation (and rotation without azimuths).
     """
     parts = _parts(columns, columns.horizontal, len(points))
-    control = np.array(["en" in p.fixed or "en" in p.weighted for p in points], dtype=bool)
+    control = _held(points, "en")
     # the kinds observed to a point of each part
     to_part = parts.label[columns.to[columns.horizontal]]
     kind_codes = columns.table.kind[columns.horizontal]
