@@ -8,7 +8,7 @@ named in a ``NetworkError``: a surveyor never types approximate values.
 
 from __future__ import annotations
 
-import math
+from operator import attrgetter
 
 import numpy as np
 from scipy.sparse import csr_matrix
@@ -17,7 +17,7 @@ from scipy.sparse.csgraph import breadth_first_order
 from server.errors import NetworkError
 from server.model.network import Network
 
-NAN = math.nan
+_POSITION = attrgetter("east", "north", "height")
 
 
 def approximate_coordinates(network: Network) -> dict[str, tuple[float, float, float]]:
@@ -31,24 +31,16 @@ def start_coordinates(network: Network) -> np.ndarray:
     """Start values as an array (points × east, north, height; metres, NaN where not needed),
     rows in the order of ``network.points``."""
     points = network.points
-    coords = np.array(
-        [
-            (
-                p.east if p.east is not None else NAN,
-                p.north if p.north is not None else NAN,
-                p.height if p.height is not None else NAN,
-            )
-            for p in points
-        ],
-        dtype=float,
-    ).reshape(-1, 3)
+    # None (not given) becomes NaN
+    coords = np.array(list(map(_POSITION, points)), dtype=float).reshape(-1, 3)
     coords[:, 2] = _start_heights(network, coords[:, 2])
     if network.horizontal:
         from server.model.horizontal_start import start_positions
 
-        given = {p.name: (float(e), float(n)) for p, (e, n) in zip(points, coords[:, :2].tolist())}
+        names = list(map(attrgetter("name"), points))
+        given = dict(zip(names, map(tuple, coords[:, :2].tolist())))
         positions = start_positions(network, given)
-        index = {p.name: k for k, p in enumerate(points)}
+        index = dict(zip(names, range(len(names))))
         for name, position in positions.items():
             coords[index[name], :2] = position
     return coords
