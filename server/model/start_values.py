@@ -17,8 +17,6 @@ from scipy.sparse.csgraph import breadth_first_order
 from server.errors import NetworkError
 from server.model.network import Network
 
-_POSITION = attrgetter("east", "north", "height")
-
 
 def approximate_coordinates(network: Network) -> dict[str, tuple[float, float, float]]:
     """Start values (east, north, height) in metres for every point, NaN where not needed."""
@@ -31,8 +29,9 @@ def start_coordinates(network: Network) -> np.ndarray:
     """Start values as an array (points × east, north, height; metres, NaN where not needed),
     rows in the order of ``network.points``."""
     points = network.points
-    # None (not given) becomes NaN
-    coords = np.array(list(map(_POSITION, points)), dtype=float).reshape(-1, 3)
+    coords = np.empty((len(points), 3))
+    for column, field in enumerate(("east", "north", "height")):  # None (not given): NaN
+        coords[:, column] = np.array(list(map(attrgetter(field), points)), dtype=float)
     coords[:, 2] = _start_heights(network, coords[:, 2])
     if network.horizontal:
         from server.model.horizontal_start import start_positions
