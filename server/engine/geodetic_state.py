@@ -60,6 +60,8 @@ class GeodeticState(State):
             self.kinds,
             self.correlated,
             model,
+            table=self.network.used_table,  # the table it would make of ``used``, made once
+            name_point=self.network.name_point,
         )
 
     def apply(self, correction: np.ndarray) -> None:

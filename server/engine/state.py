@@ -11,12 +11,14 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from itertools import repeat
+from operator import attrgetter
 
 import numpy as np
 
 from server.model.assembly import Assembly, ControlEquation
 from server.model.kinds import KINDS, Kind
-from server.model.network import Network
+from server.model.network import Network, Parameter
 from server.model.whitening import CorrelatedBlock
 
 _COMPONENT = {"E": 0, "N": 1, "H": 2}
@@ -47,31 +49,17 @@ class State:
     ) -> None:
         self.kinds, self.correlated = kinds, correlated
         self.network = network
-        self.names = [p.name for p in network.points]
-        self.point_index = {name: k for k, name in enumerate(self.names)}
+        self.names = list(map(attrgetter("name"), network.points))
+        self.point_index = dict(zip(self.names, range(len(self.names))))
         if isinstance(coords, np.ndarray):  # points × (east, north, height), in point order
             values = np.asarray(coords, dtype=float).reshape(-1, 3)
         else:
             values = np.array([coords[name] for name in self.names], dtype=float).reshape(-1, 3)
         self.east, self.north, self.height = (values[:, c].copy() for c in range(3))
-        params = network.parameters
-        self.round_lines = sorted({p.round_line for p in params if p.kind == "O" and p.round_line})
-        self.round_index = {line: k for k, line in enumerate(self.round_lines)}
+        kind, target = self._unknowns(network.parameters)
         n_points = len(self.names)
         self.column = {c: np.full(n_points, -1, np.int64) for c in "ENH"}
         self.column["O"] = np.full(len(self.round_lines), -1, np.int64)
-        # EAST, NORTH, HEIGHT or ORIENTATION, and the point or round index of each unknown
-        kind = np.fromiter((_CODE[p.kind] for p in params), np.int64, len(params))
-        target = np.fromiter(
-            (
-                self.round_index[p.round_line]  # type: ignore[index]  # an "O" has its round
-                if p.kind == "O"
-                else self.point_index[p.point]  # type: ignore[index]  # the others a point
-                for p in params
-            ),
-            np.int64,
-            len(params),
-        )
         for code, letter in enumerate("ENHO"):
             pick = np.flatnonzero(kind == code)
             self.column[letter][target[pick]] = pick
@@ -82,6 +70,25 @@ class State:
             ControlEquation(self.point_index[c.point], _COMPONENT[c.component], c.given, c.sigma)
             for c in self.control_rows
         ]
+
+    def _unknowns(self, params: Sequence[Parameter]) -> tuple[np.ndarray, np.ndarray]:
+        """EAST, NORTH, HEIGHT or ORIENTATION, and the point or round index, of each unknown;
+        sets the rounds (``round_lines``, sorted, and ``round_index``)."""
+        count = len(params)
+        letters = list(map(attrgetter("kind"), params))
+        kind = np.fromiter(map(_CODE.__getitem__, letters), np.int64, count)
+        # C-level lookups per unknown (a network has one per coordinate component)
+        points = map(self.point_index.get, map(attrgetter("point"), params), repeat(-1))
+        target = np.fromiter(points, np.int64, count)
+        rounds = np.flatnonzero(kind == ORIENTATION).tolist()
+        lines = [params[k].round_line for k in rounds]
+        self.round_lines = sorted({line for line in lines if line})
+        self.round_index = {line: k for k, line in enumerate(self.round_lines)}
+        target[rounds] = [self.round_index[line] for line in lines]  # type: ignore[index]
+        missing = np.flatnonzero(target < 0)
+        if missing.size:  # as a lookup by name would: an unknown of no point is an error
+            raise KeyError(params[int(missing[0])].point)
+        return kind, target
 
     def arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         return self.east, self.north, self.height, self.orientation
@@ -99,6 +106,7 @@ class State:
             self.kinds,
             self.correlated,
             table=self.network.used_table,
+            name_point=self.network.name_point,  # the same lookup, made once by the network
         )
 
     def apply(self, correction: np.ndarray) -> None:
@@ -149,8 +157,11 @@ class State:
 def control_rows(network: Network) -> tuple[ControlRow, ...]:
     """Weighted control of estimated components, as rows: E and N together, then H."""
     rows: list[ControlRow] = []
+    weighted = [p for p in network.points if p.weighted]
+    if not weighted:  # the usual case: spares a set of every unknown
+        return ()
     estimated = {(p.point, p.kind) for p in network.parameters}
-    for p in network.points:
+    for p in weighted:
         if "en" in p.weighted and (p.name, "E") in estimated:
             assert p.east is not None and p.north is not None and p.sd_en is not None
             rows += [

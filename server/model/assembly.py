@@ -142,6 +142,9 @@ class Assembly:
     table : ObservationTable, optional
         ``used`` as columns (``Network.used_table``); tabled from ``used`` when not given.
         The layout is read from it, never from the objects.
+    name_point : ndarray, optional
+        ``point_index`` of each name of ``table.names`` (−1: none), as ``Network.name_point``
+        holds it; looked up name by name when not given.
     """
 
     row_ptr: np.ndarray  # slots of row r: row_ptr[r] … row_ptr[r+1]−1
@@ -161,6 +164,7 @@ class Assembly:
         correlated: Sequence[CorrelatedBlock] = (),
         model: GeodeticRows | None = None,
         table: ObservationTable | None = None,
+        name_point: np.ndarray | None = None,
     ) -> None:
         self.model = model
         if model is not None:
@@ -184,9 +188,10 @@ class Assembly:
         self.used = used
         self.control = tuple(control)
         columns = {"E": column_e, "N": column_n, "H": column_h, "O": column_o}
-        point = np.fromiter(
-            (point_index.get(name, -1) for name in table.names), np.int64, len(table.names)
-        )
+        point = name_point
+        if point is None:
+            names = table.names
+            point = np.fromiter((point_index.get(name, -1) for name in names), np.int64, len(names))
         self.groups = [
             self._group(kind, members, table, point, round_index, columns)
             for name, kind in kinds.items()

@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -257,7 +257,7 @@ def with_grid_positions(
     per_unit = crs.metres_per_unit
     out = list(points)
     for k, e, n in zip(given, np.asarray(east).tolist(), np.asarray(north).tolist()):
-        out[k] = replace(out[k], east=e * per_unit, north=n * per_unit)
+        out[k] = out[k]._replace(east=e * per_unit, north=n * per_unit)
     return tuple(out)
 
 

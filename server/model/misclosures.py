@@ -18,7 +18,7 @@ from __future__ import annotations
 import heapq
 import math
 import operator
-from collections.abc import Container, Iterable
+from collections.abc import Iterable
 from dataclasses import dataclass
 from functools import reduce
 from itertools import chain
@@ -110,7 +110,7 @@ def leveling_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
     sections = len(edges)
     fixed = [p for p in fieldbook.points if "h" in p.fixed and p.height is not None]
     if len(fixed) >= 2:
-        index = {name: k for k, name in enumerate(names)}
+        index = dict(zip(names, range(len(names))))
         for p in fixed:
             if p.name not in index:  # a benchmark no observation names
                 index[p.name] = len(names)
@@ -120,10 +120,6 @@ def leveling_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
             edges.rise.append(p.height or 0.0)
             edges.length_km.append(0.0)
             edges.setups.append(0)
-    adjacency: dict[int, list[tuple[int, int]]] = {}
-    for k, (start, end) in enumerate(zip(edges.start, edges.end)):
-        adjacency.setdefault(start, []).append((k, end))
-        adjacency.setdefault(end, []).append((k, start))
     use_length = not np.isnan(length_km).any()
     if use_length:
         weights = [length or 0.0 for length in edges.length_km]
@@ -131,7 +127,7 @@ def leveling_misclosures(fieldbook: Fieldbook) -> tuple[Misclosure, ...]:
         weights = [
             0.0 if _DATUM in (start, end) else 1.0 for start, end in zip(edges.start, edges.end)
         ]
-    lines, cycles = _contracted_basis(edges, adjacency, weights)
+    lines, cycles = _contracted_basis(edges, weights)
     order = _first_appearance(fieldbook, names)
     walker = _Walker(lines, edges, order, sections)
     tolerance = fieldbook.misclosure_tolerance
@@ -145,20 +141,20 @@ def _first_appearance(fieldbook: Fieldbook, names: list[str]) -> list[int]:
     """The rank of each mark (by index into ``names``) in order of first appearance: the
     declared points, then the FROM and TO of every observation in turn (0 for neither)."""
     table = fieldbook.table
-    rank = [0] * len(names)
-    index = {name: k for k, name in enumerate(names)}
-    declared: set[int] = set()
+    rank = np.zeros(len(names), np.int64)
+    declared = np.zeros(len(names), bool)
+    index = dict(zip(names, range(len(names))))
     for position, p in enumerate(fieldbook.points):
         k = index.get(p.name)
-        if k is not None and k not in declared:
+        if k is not None and not declared[k]:
             rank[k] = position
-            declared.add(k)
+            declared[k] = True
     ends = np.stack([table.frm, table.to], axis=1).ravel()
     seen, first = np.unique(ends, return_index=True)
-    observed = (k for k in seen[np.argsort(first)].tolist() if k not in declared)
-    for offset, k in enumerate(observed):
-        rank[k] = len(fieldbook.points) + offset
-    return rank
+    observed = seen[np.argsort(first)]
+    observed = observed[~declared[observed]]
+    rank[observed] = len(fieldbook.points) + np.arange(observed.size)
+    return rank.tolist()
 
 
 def _cycle_basis(
@@ -240,9 +236,7 @@ class _Lines:
     marks: list[list[int]]
 
 
-def _contracted_basis(
-    edges: _Edges, adjacency: dict[int, list[tuple[int, int]]], weights: list[float]
-) -> tuple[_Lines, list[list[int]]]:
+def _contracted_basis(edges: _Edges, weights: list[float]) -> tuple[_Lines, list[list[int]]]:
     """The cycle basis found on the lines between junctions, each cycle as its lines.
 
     A mark with exactly two sections (not a fixed benchmark, which also has its
@@ -251,7 +245,7 @@ def _contracted_basis(
     or more times smaller in a regional network.  A cycle's sections are its
     lines' members, line after line.
     """
-    lines = _chains(adjacency)
+    lines = _chains(edges)
     graph = _Edges(lines.start, lines.end, [], [], [])
     line_adjacency: dict[int, list[tuple[int, int]]] = {}
     for k, (a, b) in enumerate(zip(lines.start, lines.end)):
@@ -262,38 +256,117 @@ def _contracted_basis(
     return lines, _cycle_basis(graph, line_adjacency, line_weights)
 
 
-def _chains(adjacency: dict[int, list[tuple[int, int]]]) -> _Lines:
-    """Lines between junctions (marks of other than two sections, and the datum)."""
-    lines = _Lines([], [], [], [])
-    done: set[int] = set()
+def _chains(edges: _Edges) -> _Lines:
+    """Lines between junctions (marks of other than two sections, and the datum).
 
-    def follow(origin: int, k: int, node: int, stops: Container[int]) -> None:
-        chain = [k]
-        marks = [origin, node]
-        done.add(k)
-        while node not in stops:
-            (k1, n1), (k2, n2) = adjacency[node]
-            k, node = (k2, n2) if k1 == k else (k1, n1)
-            chain.append(k)
-            marks.append(node)
-            done.add(k)
-        lines.start.append(origin)
-        lines.end.append(node)
-        lines.members.append(chain)
-        lines.marks.append(marks)
-
-    junctions = {node for node, links in adjacency.items() if len(links) != 2}
-    junctions.add(_DATUM)
-    for node, links in adjacency.items():
-        if node in junctions:
-            for k, nxt in links:
-                if k not in done:
-                    follow(node, k, nxt, junctions)
-    for node, links in adjacency.items():  # rings with no junction at all
-        for k, nxt in links:
-            if k not in done:
-                follow(node, k, nxt, (node,))  # back at the ring's start
+    Each section is two half-edges, ``2k`` from its start and ``2k + 1`` from its end;
+    a mark's sections are taken in that order, and the marks in the order their first
+    half-edge comes.  A line is followed from a junction through marks of two sections
+    (leaving each by its other section) to the next junction; the lines are listed as
+    they are met taking the junctions and their sections in that order, each from the
+    end met first.  The walks run as arrays (``_Walks``); rings with no junction at all
+    are walked one by one after them, each from its first mark.
+    """
+    walks = _Walks(edges)
+    lines = walks.between_junctions()
+    walks.rings(lines)
     return lines
+
+
+class _Walks:
+    """The half-edges of the sections and, through each mark of two sections, the next."""
+
+    def __init__(self, edges: _Edges) -> None:
+        start = np.array(edges.start, dtype=np.int64) + 1  # the datum (−1) as node 0
+        end = np.array(edges.end, dtype=np.int64) + 1
+        count = 2 * len(start)
+        self.origin = np.stack([start, end], axis=1).ravel()  # half-edge h leaves origin[h]
+        self.target = np.stack([end, start], axis=1).ravel()
+        nodes = int(self.origin.max()) + 1
+        degree = np.bincount(self.origin, minlength=nodes)
+        self.junction = degree != 2
+        self.junction[0] = True  # the datum
+        # each node's first half-edge ranks it; a mark of two has just its first and last
+        first = np.full(nodes, count, np.int64)
+        seen, at = np.unique(self.origin, return_index=True)
+        first[seen] = at
+        last = np.full(nodes, -1, np.int64)
+        seen, at = np.unique(self.origin[::-1], return_index=True)
+        last[seen] = count - 1 - at
+        self.rank = first
+        half = np.arange(count)
+        there = self.target
+        # arriving by h at a mark of two, leave by its half-edge of another section (the
+        # second when both are h's own section, a ring of one section)
+        other = np.where(first[there] >> 1 == half >> 1, last[there], first[there])
+        self.terminal = self.junction[there]
+        self.next = np.where(self.terminal, half, other)
+
+    def _ends(self) -> tuple[np.ndarray, np.ndarray]:
+        """Per half-edge: the last half-edge of its walk (itself at a junction) and the
+        number of steps there, by pointer doubling; a ring's half-edges never arrive."""
+        jump, steps = self.next.copy(), (~self.terminal).astype(np.int64)
+        for _ in range(max(1, int(jump.size).bit_length() + 1)):
+            if self.terminal[jump].all():
+                break
+            steps += steps[jump]
+            jump = jump[jump]
+        return jump, steps
+
+    def between_junctions(self) -> _Lines:
+        """The lines with a junction at each end, in the order they are met."""
+        jump, steps = self._ends()
+        self.arrives = self.terminal[jump]
+        count = self.origin.size
+        # the walks from a junction: each line twice, once from each end
+        begins = np.flatnonzero(self.junction[self.origin])
+        key = self.rank[self.origin] * count + np.arange(count)  # the order they are met
+        back = jump[begins] ^ 1  # the same line from its other end
+        begins = begins[key[begins] <= key[back]]  # a one-section loop: met from its start
+        begins = begins[np.argsort(key[begins], kind="stable")]
+        # every half-edge of those walks: its walk's place in the list, then its own
+        place = np.full(count, -1, np.int64)
+        place[jump[begins]] = np.arange(begins.size)
+        line_of = np.where(self.arrives, place[jump], -1)
+        members = np.flatnonzero(line_of >= 0)
+        members = members[np.lexsort((-steps[members], line_of[members]))]
+        sizes = (steps[begins] + 1).tolist()
+        sections = (members >> 1).tolist()
+        targets = (self.target[members] - 1).tolist()
+        lines = _Lines((self.origin[begins] - 1).tolist(), [], [], [])
+        at = 0
+        for origin, size in zip(lines.start, sizes):
+            lines.members.append(sections[at : at + size])
+            lines.marks.append([origin, *targets[at : at + size]])
+            at += size
+            lines.end.append(targets[at - 1])
+        return lines
+
+    def rings(self, lines: _Lines) -> None:
+        """Append the rings with no junction, each from the first half-edge of its first
+        mark, round to that mark again."""
+        ring = np.flatnonzero(~self.arrives)
+        if not ring.size:
+            return
+        order = ring[np.lexsort((ring, self.rank[self.origin[ring]]))]
+        done: set[int] = set()
+        following, target, origin = self.next.tolist(), self.target.tolist(), self.origin.tolist()
+        for first in order.tolist():
+            if first >> 1 in done:
+                continue
+            h = first
+            home = origin[h]
+            chain, marks = [h >> 1], [home - 1, target[h] - 1]
+            done.add(h >> 1)
+            while target[h] != home:
+                h = following[h]
+                chain.append(h >> 1)
+                marks.append(target[h] - 1)
+                done.add(h >> 1)
+            lines.start.append(home - 1)
+            lines.end.append(home - 1)
+            lines.members.append(chain)
+            lines.marks.append(marks)
 
 
 def _candidates(

@@ -12,6 +12,8 @@ from collections import defaultdict
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
 from itertools import repeat
+from operator import attrgetter, contains
+from typing import NamedTuple
 
 import numpy as np
 from scipy.sparse import coo_matrix
@@ -33,9 +35,12 @@ from server.model.geodetic import GeodeticFrame
 EAST, NORTH, HEIGHT = "E", "N", "H"
 
 
-@dataclass(frozen=True, slots=True)
-class NetworkPoint:
-    """A mark as the network sees it; coordinates in metres, None where not given."""
+class NetworkPoint(NamedTuple):
+    """A mark as the network sees it; coordinates in metres, None where not given.
+
+    A named tuple (immutable like a frozen dataclass) because a network has one per mark
+    and a tuple is made several times faster than a frozen dataclass.
+    """
 
     name: str
     east: float | None
@@ -50,9 +55,9 @@ class NetworkPoint:
     note: str = ""
 
 
-@dataclass(frozen=True, slots=True)
-class Parameter:
-    """One unknown: a coordinate component of a point, or a round's orientation."""
+class Parameter(NamedTuple):
+    """One unknown: a coordinate component of a point, or a round's orientation (a named
+    tuple, like ``NetworkPoint``: one per unknown)."""
 
     kind: str  # "E", "N", "H" or "O"
     point: str | None
@@ -110,7 +115,7 @@ class Network:
         """Index into ``points`` of each name of ``used_table.names`` (int64; −1: none)."""
         cached = self._columns.get("name_point")
         if cached is None:
-            index = dict(zip((p.name for p in self.points), range(len(self.points))))
+            index = dict(zip(map(attrgetter("name"), self.points), range(len(self.points))))
             names = self.used_table.names
             cached = np.fromiter(map(index.get, names, repeat(-1)), np.int64, len(names))
             self._columns["name_point"] = cached
@@ -224,28 +229,26 @@ def _collect_points(fieldbook: Fieldbook, used: Sequence[Observation]) -> tuple[
     for column in (table.frm, table.at, table.to):
         touched_ids[column if rows is None else column[rows]] = True
     touched = set(map(table.names.__getitem__, np.flatnonzero(touched_ids[:-1]).tolist()))
-    points = []
-    for name in ordered:
-        stmt = declared.get(name)
-        if stmt is None:
-            points.append(
-                NetworkPoint(name, None, None, None, "", "", None, None, None, name in touched)
-            )
-        else:
-            points.append(
-                NetworkPoint(
-                    name=name,
-                    east=stmt.east,
-                    north=stmt.north,
-                    height=stmt.height,
-                    fixed=stmt.fixed,
-                    weighted=stmt.weighted,
-                    sd_en=stmt.sd_en,
-                    sd_h=stmt.sd_h,
-                    line=stmt.line,
-                    in_use=name in touched,
-                    note=stmt.note,
-                )
+    names = list(ordered)
+    # one tuple a mark without a point line, made in C (a network may have 100k marks)
+    none, empty = repeat(None), repeat("")  # endless: zip may draw on each many times a row
+    blank = (none, none, none, empty, empty, none, none, none)  # east … line
+    fields = zip(names, *blank, map(touched.__contains__, names), empty)  # … in_use, note
+    points = list(map(tuple.__new__, repeat(NetworkPoint), fields))
+    for k, stmt in enumerate(map(declared.get, names)):
+        if stmt is not None:
+            points[k] = NetworkPoint(
+                name=stmt.name,
+                east=stmt.east,
+                north=stmt.north,
+                height=stmt.height,
+                fixed=stmt.fixed,
+                weighted=stmt.weighted,
+                sd_en=stmt.sd_en,
+                sd_h=stmt.sd_h,
+                line=stmt.line,
+                in_use=points[k].in_use,
+                note=stmt.note,
             )
     return tuple(points)
 
@@ -263,7 +266,7 @@ def with_grid_positions(
             out.append(p)
             continue
         east, north = crs.geodetic_to_grid(np.array([stmt.latitude]), np.array([stmt.longitude]))
-        out.append(replace(p, east=float(east[0]) * per_unit, north=float(north[0]) * per_unit))
+        out.append(p._replace(east=float(east[0]) * per_unit, north=float(north[0]) * per_unit))
     return tuple(out)
 
 
@@ -293,7 +296,7 @@ def _first_appearance(fieldbook: Fieldbook) -> dict[str, None]:
                 np.concatenate([point_lines, lines[row[first]]]),
             )
         )
-        names = [p.name for p in points] + [table.names[k] for k in seen.tolist()]
+        names = [p.name for p in points] + list(map(table.names.__getitem__, seen.tolist()))
         return dict.fromkeys(map(names.__getitem__, order.tolist()))
     ordered: dict[str, None] = {}
     events: list[tuple[int, int, str]] = [(p.line, 0, p.name) for p in points]
@@ -316,9 +319,10 @@ def _check_coincident(points: tuple[NetworkPoint, ...], columns: _UsedColumns) -
     so the adjustment could not even start; the surveyor must correct the
     coordinates (usually a copied line) or leave out the approximate ones.
     """
-    given = np.array([p.east is not None and p.north is not None for p in points] + [False])
-    east = np.array([p.east if p.east is not None else np.nan for p in points] + [np.nan])
-    north = np.array([p.north if p.north is not None else np.nan for p in points] + [np.nan])
+    # a last entry for "no point" (−1); None becomes NaN, which no comparison passes
+    east = np.array([*map(attrgetter("east"), points), None], dtype=float)
+    north = np.array([*map(attrgetter("north"), points), None], dtype=float)
+    given = ~np.isnan(east) & ~np.isnan(north)
     rows = np.flatnonzero(columns.horizontal)
     kind = columns.table.kind[rows]
     station = np.where(kind == columns.table.code("angle"), columns.at[rows], columns.frm[rows])
@@ -371,14 +375,17 @@ def _touched(columns: _UsedColumns, rows: np.ndarray, count: int) -> np.ndarray:
 def _parameters(points: tuple[NetworkPoint, ...], columns: _UsedColumns) -> tuple[Parameter, ...]:
     """Unknowns in point order (E, N, H), then one orientation per direction round."""
     count = len(points)
-    horizontal_points = _touched(columns, columns.horizontal, count).tolist()
-    vertical_points = _touched(columns, columns.level, count).tolist()
-    params: list[Parameter] = []
-    for p, horizontal, vertical in zip(points, horizontal_points, vertical_points):
-        if horizontal and "en" not in p.fixed:
-            params += [Parameter(EAST, p.name), Parameter(NORTH, p.name)]
-        if vertical and "h" not in p.fixed:
-            params.append(Parameter(HEIGHT, p.name))
+    fixed = list(map(attrgetter("fixed"), points))
+    free_en = ~np.fromiter(map(contains, fixed, repeat("en")), bool, count)
+    free_h = ~np.fromiter(map(contains, fixed, repeat("h")), bool, count)
+    estimated = np.empty((count, 3), bool)  # per point: E, N, H estimated
+    estimated[:, 0] = estimated[:, 1] = _touched(columns, columns.horizontal, count) & free_en
+    estimated[:, 2] = _touched(columns, columns.level, count) & free_h
+    point, component = np.nonzero(estimated)  # in point order, E N H within a point
+    names = map(attrgetter("name"), map(points.__getitem__, point.tolist()))
+    letters = map((EAST, NORTH, HEIGHT).__getitem__, component.tolist())
+    # one tuple an unknown, made in C (a network may have 100k unknowns)
+    params = list(map(tuple.__new__, repeat(Parameter), zip(letters, names, repeat(None))))
     table = columns.table
     round_line = table.round_line
     in_round = round_line != NONE
@@ -392,6 +399,14 @@ def _parameters(points: tuple[NetworkPoint, ...], columns: _UsedColumns) -> tupl
             at = first_at[line]
             params.append(Parameter("O", table.names[at] if at >= 0 else None, round_line=line))
     return tuple(params)
+
+
+def _held(points: tuple[NetworkPoint, ...], component: str) -> np.ndarray:
+    """Per point: ``component`` ("en" or "h") held fixed or weighted (bool)."""
+    count = len(points)
+    fixed = map(contains, map(attrgetter("fixed"), points), repeat(component))
+    weighted = map(contains, map(attrgetter("weighted"), points), repeat(component))
+    return np.fromiter(fixed, bool, count) | np.fromiter(weighted, bool, count)
 
 
 def _shown(names: list[str], limit: int = 12) -> str:
@@ -439,7 +454,7 @@ def _parts(columns: _UsedColumns, rows_mask: np.ndarray, count: int) -> _Parts:
 def _check_height_datum(points: tuple[NetworkPoint, ...], columns: _UsedColumns) -> list[str]:
     """Every part of the leveling needs a fixed or weighted height; else name its points."""
     parts = _parts(columns, columns.level, len(points))
-    controlled = np.array(["h" in p.fixed or "h" in p.weighted for p in points], dtype=bool)
+    controlled = _held(points, "h")
     held = set(parts.label[parts.inside & controlled].tolist())
     for part in parts.order:
         if part not in held:
@@ -475,7 +490,7 @@ def _check_horizontal_datum(
     inner constraints removing translation (and rotation without azimuths).
     """
     parts = _parts(columns, columns.horizontal, len(points))
-    control = np.array(["en" in p.fixed or "en" in p.weighted for p in points], dtype=bool)
+    control = _held(points, "en")
     # the kinds observed to a point of each part
     to_part = parts.label[columns.to[columns.horizontal]]
     kind_codes = columns.table.kind[columns.horizontal]
