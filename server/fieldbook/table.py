@@ -97,6 +97,8 @@ class ObservationTable:
     baselines: Mapping[int, BaselineVector] = field(default_factory=dict)  # row → vector
     #: the Observation objects made so far, by row (shared by every view of this table)
     _made: list[Observation | None] = field(default_factory=list, repr=False)
+    #: True once every row's object is made (``None in _made`` would call each one's __eq__)
+    _complete: bool = field(default=False, repr=False)
 
     def __len__(self) -> int:
         return int(self.line.shape[0])
@@ -190,6 +192,7 @@ class ObservationTable:
         table = cls.from_rows([row_of(obs) for obs in objects])
         if objects:
             table._made[:] = objects
+            table._mark_complete()
         return table
 
     def freeze(self) -> None:
@@ -217,6 +220,8 @@ class ObservationTable:
         made = self._made
         if any(made):
             table._made[:] = [made[k] for k in rows.tolist()]
+            if self._complete:
+                table._mark_complete()
         return table
 
     # ---- columns derived on demand
@@ -257,11 +262,15 @@ class ObservationTable:
     def observations(self) -> list[Observation]:
         """Every row as an ``Observation``, made where not made yet."""
         made = self._made
-        if None in made:
+        if not self._complete:
             missing = [k for k, obs in enumerate(made) if obs is None]
             for k, obs in zip(missing, self._make_many(missing)):
                 made[k] = obs
+            self._mark_complete()
         return made  # type: ignore[return-value]  # no None left
+
+    def _mark_complete(self) -> None:
+        object.__setattr__(self, "_complete", True)  # a cache flag, not a field of the value
 
     def _make(self, row: int) -> Observation:
         return self._make_many([row])[0]
