@@ -107,6 +107,7 @@ from server.units import (
     parse_angular_allowance,
     parse_number,
     parse_ratio,
+    plain_dms,
     wrap_2pi,
     wrap_2pi_array,
 )
@@ -234,6 +235,7 @@ class _Parser:
         self.rows: list[Row] = []
         self.no_run_before = 0  # lines up to here are known not to start a long run
         self.no_block_before = 0  # ... nor a long stretch of plain lines and rounds
+        self.not_plain = -1  # a line known not to be a plain level or distance line (index)
         self.block_wait = _CHUNK_MIN  # lines to wait after a short stretch (doubles each time)
         self.rounds: list[DirectionRound] = []
         self.round: _Round | None = None
@@ -371,7 +373,8 @@ class _Parser:
             return match is not None and self.fast_direction(line, *match.groups())
         if self.body_line is None:
             return False
-        match = _FAST_OBSERVATION.match(text)
+        # (fast_run may just have found that the line is not a plain one)
+        match = None if line == self.not_plain + 1 else _FAST_OBSERVATION.match(text)
         if match is None:
             match = _FAST_SPATIAL.match(text)
             return match is not None and self.fast_spatial(line, *match.groups())
@@ -446,6 +449,11 @@ class _Parser:
         too (arrays cost more than they save there).
         """
         if start < self.no_run_before:
+            return 0
+        if _FAST_OBSERVATION.match(lines[start]) is None:
+            # most often the case (a slope or zenith line, a point): no chunk is worth making
+            self.no_run_before = start + 1
+            self.not_plain = start
             return 0
         taken, size = 0, _RUN_MIN
         while True:
@@ -783,13 +791,10 @@ class _Parser:
         else:
             if not self.angle_unit_known:
                 return False
-            try:
-                value = observed_angle(value_text, self.angle_unit)
-            except UnitError:
+            angle = self.fast_angle(value_text)
+            if angle is None or not -_ZENITH_SLACK <= angle <= math.pi + _ZENITH_SLACK:
                 return False
-            if not -_ZENITH_SLACK <= value <= math.pi + _ZENITH_SLACK:
-                return False
-            value = min(max(value, 0.0), math.pi)  # as read_zenith
+            value = min(max(angle, 0.0), math.pi)  # as read_zenith
             centering = 0.0
         self.rows.append(
             (
@@ -817,6 +822,17 @@ class _Parser:
         self.statements += 1
         return True
 
+    def fast_angle(self, text: str) -> float | None:
+        """An observed angle as ``observed_angle`` reads it; None where it refuses it."""
+        if self.angle_unit == "dms" and len(text) <= _LONGEST_ANGLE:
+            value = plain_dms(text)  # the common case, without the suffix and overflow tests
+            if value is not None:
+                return value
+        try:
+            return observed_angle(text, self.angle_unit)
+        except UnitError:
+            return None
+
     def fast_direction(self, line: int, to: str, value_text: str) -> bool:
         """``TO D:M:S`` inside a round with its standard deviation in force (see ``fast_line``)."""
         round_ = self.round
@@ -827,9 +843,8 @@ class _Parser:
         sigma = round_.sigma or self.defaults.get("direction")
         if sigma is None or sigma.sigma is None:
             return False
-        try:
-            booked = observed_angle(value_text, self.angle_unit)
-        except UnitError:
+        booked = self.fast_angle(value_text)
+        if booked is None:
             return False
         round_.lines.append(line)
         self.rows.append(
@@ -1688,6 +1703,7 @@ _FAST_SPATIAL = re.compile(
     re.DOTALL,
 )
 _FAST_NUMBER = re.compile(rf"{_NUMBER}\Z")
+_LONGEST_ANGLE = 64  # as lexer.observed_angle allows
 # Any line, as one of: 'directions AT', 'end', a plain level or distance line, 'TO D:M:S' (a
 # direction of a round), a blank or comment line, or anything else (``_Parser.take_block``).
 # A name is not 'end' here; the seconds' decimals are bounded, so no angle is too long.
