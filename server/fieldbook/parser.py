@@ -1712,14 +1712,16 @@ _LONGEST_ANGLE = 64  # as lexer.observed_angle allows
 # Any line, as one of: 'directions AT', 'end', a plain level or distance line, 'TO D:M:S' (a
 # direction of a round), a blank or comment line, or anything else (``_Parser.take_block``).
 # A name is not 'end' here; the seconds' decimals are bounded, so no angle is too long.
-_ANY_NAME = r"(?![eE][nN][dD](?![!$-<>-~]))([!$-<>-~]{1,64})"
-_LINE_TAIL = r"[ \t]*(?:#.*)?"
+# Repeats are possessive, as in _PLAIN.
+_ANY_NAME = r"(?![eE][nN][dD](?![!$-<>-~]))([!$-<>-~]{1,64}+)"
+_LINE_TAIL = r"[ \t]*+(?:#.*)?"
+_DIGITS = r"([0-9]{1,6}+)"
 _BLOCK_LINE = re.compile(
-    rf"^(?:[ \t]*(directions)[ \t]+{_ANY_NAME}{_LINE_TAIL}"
-    rf"|[ \t]*(end){_LINE_TAIL}"
-    rf"|[ \t]*(level|distance)[ \t]+{_ANY_NAME}[ \t]+{_ANY_NAME}[ \t]+{_NUMBER}"
-    rf"(?:[ \t]+len={_NUMBER}([a-zA-Z]+))?{_LINE_TAIL}"
-    rf"|[ \t]*{_ANY_NAME}[ \t]+(-?)([0-9]{{1,6}}):([0-9]{{1,6}}):([0-9]{{1,6}}(?:\.[0-9]{{0,30}})?)"
+    rf"^(?:[ \t]*+(directions)[ \t]++{_ANY_NAME}{_LINE_TAIL}"
+    rf"|[ \t]*+(end){_LINE_TAIL}"
+    rf"|[ \t]*+(level|distance)[ \t]++{_ANY_NAME}[ \t]++{_ANY_NAME}[ \t]++{_NUMBER_P}"
+    rf"(?:[ \t]++len={_NUMBER_P}([a-zA-Z]++))?+{_LINE_TAIL}"
+    rf"|[ \t]*+{_ANY_NAME}[ \t]++(-?){_DIGITS}:{_DIGITS}:([0-9]{{1,6}}+(?:\.[0-9]{{0,30}}+)?+)"
     rf"{_LINE_TAIL}"
     rf"|{_LINE_TAIL}"
     r"|(.+))$",
