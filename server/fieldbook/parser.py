@@ -487,24 +487,21 @@ class _Parser:
         self.flush()
         self.blocks.append(
             [
-                list(range(start + 1, start + 1 + taken)),
+                np.arange(start + 1, start + 1 + taken, dtype=np.int64),
                 kind[:taken],
                 frm[:taken],
                 none,
                 to[:taken],
-                (value * scale).tolist(),
+                value * scale,
                 list(map(sigmas.__getitem__, kind[:taken])),
-                np.where(level, 0.0, self.centering).tolist(),
-                scale.tolist(),
-                length_km.tolist(),  # NaN where there is none, as the table has it
-                none,
-                none,
-                none,
-                none,
-                [False] * taken,
+                np.where(level, 0.0, self.centering),
+                scale,
+                length_km,  # NaN where there is none, as the table has it
+                *_absent_numbers(taken),
+                np.zeros(taken, bool),
                 [""] * taken,
-                value.tolist(),
-                [False] * taken,
+                value,
+                np.zeros(taken, bool),
                 none,
             ]
         )
@@ -640,10 +637,15 @@ class _Parser:
             pos_n, pos_o = np.searchsorted(rows, kept_n), np.searchsorted(rows, kept_o)
             k_n, k_o = kept_n.size, kept_o.size
 
-            def merged(for_n: object, for_o: object, dtype: type = object) -> list[Any]:
-                column: np.ndarray = np.empty(m, dtype)
+            def merged(for_n: object, for_o: object) -> list[Any]:
+                column: np.ndarray = np.empty(m, object)
                 column[pos_n], column[pos_o] = for_n, for_o
                 return column.tolist()
+
+            def numbers(for_n: object, for_o: object) -> np.ndarray:
+                column: np.ndarray = np.empty(m)
+                column[pos_n], column[pos_o] = for_n, for_o
+                return column
 
             if k_n:
                 at_n, to_n = at_n[:k_n], to_n[:k_n]
@@ -667,24 +669,22 @@ class _Parser:
             self.flush()
             self.blocks.append(
                 [
-                    (rows + (start + 1)).tolist(),
+                    rows + (start + 1),
                     merged(_DIRECTION, kind_o),
                     merged(at_n, frm_o),
                     merged(at_n, None),
                     merged(to_n, to_o),
-                    merged(value_n, value * scale, float),
+                    numbers(value_n, value * scale),
                     merged(sigma.sigma if k_n else None, sigma_o),  # type: ignore[union-attr]
-                    merged(self.centering, np.where(level, 0.0, self.centering), float),
-                    merged(1.0, scale, float),
-                    merged(math.nan, length_km, float),  # NaN where there is none
-                    none,
-                    none,
-                    none,
+                    numbers(self.centering, np.where(level, 0.0, self.centering)),
+                    numbers(1.0, scale),
+                    numbers(math.nan, length_km),  # NaN where there is none
+                    *_absent_numbers(m)[:3],
                     merged(round_lines, None),
-                    [False] * m,
+                    np.zeros(m, bool),
                     [""] * m,
-                    merged(booked, value, float),
-                    [False] * m,
+                    numbers(booked, value),
+                    np.zeros(m, bool),
                     none,
                 ]
             )
@@ -1782,6 +1782,17 @@ _HANDLERS: dict[str, Callable[[_Parser, Statement], None]] = {
     "relative": _Parser.relative_pair,
     "end": _Parser.end_without_round,
 }
+
+
+def _absent_numbers(n: int) -> tuple[np.ndarray, ...]:
+    """The columns ``setups``, ``instrument_height``, ``target_height``, ``round_line`` of
+    ``n`` rows that have none of them (−1 or NaN, as the table has them)."""
+    return (
+        np.full(n, -1, np.int64),
+        np.full(n, math.nan),
+        np.full(n, math.nan),
+        np.full(n, -1, np.int64),
+    )
 
 
 def _plain_groups(chunk: list[str]) -> list[tuple[str, ...]]:
