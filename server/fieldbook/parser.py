@@ -90,6 +90,7 @@ from server.fieldbook.model import (
 from server.fieldbook.point_names import near_miss_warnings
 from server.fieldbook.table import (
     FIELDS,
+    NONE,
     Columns,
     ObservationRows,
     ObservationTable,
@@ -680,7 +681,7 @@ class _Parser:
                     numbers(1.0, scale),
                     numbers(math.nan, length_km),  # NaN where there is none
                     *_absent_numbers(m)[:3],
-                    merged(round_lines, None),
+                    _round_lines(m, pos_n, round_lines),
                     np.zeros(m, bool),
                     [""] * m,
                     numbers(booked, value),
@@ -1788,11 +1789,18 @@ def _absent_numbers(n: int) -> tuple[np.ndarray, ...]:
     """The columns ``setups``, ``instrument_height``, ``target_height``, ``round_line`` of
     ``n`` rows that have none of them (−1 or NaN, as the table has them)."""
     return (
-        np.full(n, -1, np.int64),
+        np.full(n, NONE, np.int64),
         np.full(n, math.nan),
         np.full(n, math.nan),
-        np.full(n, -1, np.int64),
+        np.full(n, NONE, np.int64),
     )
+
+
+def _round_lines(m: int, rows: np.ndarray, lines: list[int]) -> np.ndarray:
+    """The ``round_line`` column of ``m`` rows: ``lines`` at ``rows``, −1 elsewhere."""
+    column = np.full(m, NONE, np.int64)
+    column[rows] = lines
+    return column
 
 
 def _plain_groups(chunk: list[str]) -> list[tuple[str, ...]]:
