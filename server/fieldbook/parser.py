@@ -533,6 +533,9 @@ class _Parser:
                 break
             start += count
             size = min(4 * size, _RUN_MAX)
+            rest = len(lines) - start
+            if rest < 2 * size:  # one chunk to the end rather than two (each has a fixed cost)
+                size = min(rest, _RUN_MAX)
         if taken < _RUN_MIN:
             # wait ever longer after each short stretch: where rounds alternate with lines
             # read otherwise, chunks would cost more than they save
@@ -554,6 +557,9 @@ class _Parser:
         others = list(map(bool, map(_OTHER, found)))
         if True in others[:_RUN_MIN]:  # a line read otherwise comes soon: not worth arrays
             return 0, others.index(True) + 1
+        if True in others:  # no line after one read otherwise is taken: leave them out
+            n = others.index(True) + 1
+            found, others = found[:n], others[:n]
         (
             opens,
             round_at,
