@@ -557,9 +557,8 @@ class _Parser:
         others = list(map(bool, map(_OTHER, found)))
         if True in others[:_RUN_MIN]:  # a line read otherwise comes soon: not worth arrays
             return 0, others.index(True) + 1
-        if True in others:  # no line after one read otherwise is taken: leave them out
-            n = others.index(True) + 1
-            found, others = found[:n], others[:n]
+        found, others = _up_to_other(found, others)
+        n = len(found)
         (
             opens,
             round_at,
@@ -1800,6 +1799,15 @@ def _absent_numbers(n: int) -> tuple[np.ndarray, ...]:
         np.full(n, math.nan),
         np.full(n, NONE, np.int64),
     )
+
+
+def _up_to_other(found: list[T], others: list[bool]) -> tuple[list[T], list[bool]]:
+    """The lines of a chunk up to the first one read otherwise (no line after it is taken,
+    and each line in the arrays costs time)."""
+    if True not in others:
+        return found, others
+    n = others.index(True) + 1
+    return found[:n], others[:n]
 
 
 def _round_lines(m: int, rows: np.ndarray, lines: list[int]) -> np.ndarray:
