@@ -28,10 +28,11 @@ view of the table.
 from __future__ import annotations
 
 import math
+import operator
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
-from itertools import chain
+from itertools import chain, repeat
 from operator import itemgetter
 from typing import Any, TypeVar, overload
 
@@ -170,8 +171,8 @@ class ObservationTable:
             planned=joined("planned", _flags),
             booked=booked,
             booked_given=np.concatenate([_given(b[_INDEX["booked"]]) for b in blocks]),
-            notes=_sparse(listed("note"), bool),
-            baselines=_sparse(listed("baseline"), _is_given),
+            notes=_sparse(listed("note"), ""),
+            baselines=_sparse(listed("baseline"), None),
         )
         table.freeze()
         return table
@@ -395,16 +396,14 @@ def _given(values: list[object] | np.ndarray) -> np.ndarray:
     """True where a value is not None (everywhere in an array of numbers)."""
     if isinstance(values, np.ndarray) or values.count(None) == 0:
         return np.ones(len(values), bool)
-    return np.fromiter(map(_is_given, values), bool, len(values))
+    return np.fromiter(map(operator.is_not, values, repeat(None)), bool, len(values))
 
 
-def _is_given(value: object) -> bool:
-    return value is not None
-
-
-def _sparse(values: list[T], keep: Callable[[T], bool]) -> dict[int, T]:
-    """The values to keep, by row (found in one C-level pass: they are rare)."""
-    rows = np.flatnonzero(np.fromiter(map(keep, values), bool, len(values)))
+def _sparse(values: list[T], absent: object) -> dict[int, T]:
+    """The values other than ``absent`` (None or ""), by row (found in one C-level pass:
+    they are rare)."""
+    given = map(operator.is_not, values, repeat(absent)) if absent is None else map(bool, values)
+    rows = np.flatnonzero(np.fromiter(given, bool, len(values)))
     return {k: values[k] for k in rows.tolist()}
 
 
