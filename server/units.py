@@ -109,6 +109,22 @@ def parse_dms(text: str) -> float:
         raise UnitError(f"'{text}': minutes must be below 60")
     if float(seconds) >= 60.0:
         raise UnitError(f"'{text}': seconds must be below 60")
+    return _dms_radians(sign, degrees, minutes, seconds)
+
+
+def plain_dms(text: str) -> float | None:
+    """``parse_dms`` of a D:M:S it accepts, in radians; None for anything else (no message:
+    the caller reads such a text the careful way)."""
+    match = _DMS_RE.match(text)
+    if match is None:
+        return None
+    sign, degrees, minutes, seconds = match.groups()
+    if int(minutes) >= 60 or float(seconds) >= 60.0:
+        return None
+    return _dms_radians(sign, degrees, minutes, seconds)
+
+
+def _dms_radians(sign: str | None, degrees: str, minutes: str, seconds: str) -> float:
     value = (int(degrees) + int(minutes) / 60.0 + float(seconds) / 3600.0) * RAD_PER_DEG
     return -value if sign else value
 

@@ -303,10 +303,7 @@ class Binder:
     def __init__(self, grammars: Mapping[str, Grammar], log: IssueLog) -> None:
         self.grammars = grammars
         self.log = log
-        self.option_owners = _owners(grammars, "options")
-        self.flag_owners = _owners(grammars, "flags")
-        self.all_options = frozenset().union(*(g.options for g in grammars.values()))
-        self.all_flags = frozenset().union(*(g.flags for g in grammars.values()))
+        self.option_owners, self.flag_owners, self.all_options, self.all_flags = _tables(grammars)
 
     def bind(self, line: int, word: str, grammar: Grammar, tokens: list[Token]) -> Statement | None:
         """The statement, or None (reported) when values are missing or wrongly quoted."""
@@ -439,6 +436,28 @@ class Binder:
             f" (it takes {join_words(sorted(grammar.options))})" if grammar.options else ""
         )
         return f"'{show(key)}' is not an option of {grammar.name}{hint}"
+
+
+#: What ``_tables`` made, by the identity of the grammars (kept alive here, so the id is
+#: not reused); each parse makes a Binder, and the grammars of the format never change.
+_TABLES: dict[int, tuple[Mapping[str, Grammar], _GrammarTables]] = {}
+_GrammarTables = tuple[dict[str, str], dict[str, str], frozenset[str], frozenset[str]]
+
+
+def _tables(grammars: Mapping[str, Grammar]) -> _GrammarTables:
+    """Owners of each option and flag, and every option and flag, of these grammars."""
+    kept = _TABLES.get(id(grammars))
+    if kept is not None and kept[0] is grammars:
+        return kept[1]
+    tables = (
+        _owners(grammars, "options"),
+        _owners(grammars, "flags"),
+        frozenset().union(*(g.options for g in grammars.values())),
+        frozenset().union(*(g.flags for g in grammars.values())),
+    )
+    if len(_TABLES) < 8:  # the format's grammars, and the few a test may make
+        _TABLES[id(grammars)] = (grammars, tables)
+    return tables
 
 
 def _owners(grammars: Mapping[str, Grammar], attribute: str) -> dict[str, str]:

@@ -19,7 +19,7 @@ import hashlib
 import math
 import operator
 import re
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import date, datetime
 from itertools import islice, takewhile
@@ -90,6 +90,7 @@ from server.fieldbook.model import (
 from server.fieldbook.point_names import near_miss_warnings
 from server.fieldbook.table import (
     FIELDS,
+    NONE,
     Columns,
     ObservationRows,
     ObservationTable,
@@ -107,6 +108,7 @@ from server.units import (
     parse_angular_allowance,
     parse_number,
     parse_ratio,
+    plain_dms,
     wrap_2pi,
     wrap_2pi_array,
 )
@@ -234,6 +236,7 @@ class _Parser:
         self.rows: list[Row] = []
         self.no_run_before = 0  # lines up to here are known not to start a long run
         self.no_block_before = 0  # ... nor a long stretch of plain lines and rounds
+        self.not_plain = -1  # a line known not to be a plain level or distance line (index)
         self.block_wait = _CHUNK_MIN  # lines to wait after a short stretch (doubles each time)
         self.rounds: list[DirectionRound] = []
         self.round: _Round | None = None
@@ -371,7 +374,8 @@ class _Parser:
             return match is not None and self.fast_direction(line, *match.groups())
         if self.body_line is None:
             return False
-        match = _FAST_OBSERVATION.match(text)
+        # (fast_run may just have found that the line is not a plain one)
+        match = None if line == self.not_plain + 1 else _FAST_OBSERVATION.match(text)
         if match is None:
             match = _FAST_SPATIAL.match(text)
             return match is not None and self.fast_spatial(line, *match.groups())
@@ -447,25 +451,28 @@ class _Parser:
         """
         if start < self.no_run_before:
             return 0
+        if _FAST_OBSERVATION.match(lines[start]) is None:
+            # most often the case (a slope or zenith line, a point): no chunk is worth making
+            self.no_run_before = start + 1
+            self.not_plain = start
+            return 0
         taken, size = 0, _RUN_MIN
         while True:
-            chunk = map(_FAST_OBSERVATION.match, lines[start : start + size])
-            matches = cast(list[re.Match[str]], list(takewhile(bool, chunk)))
-            if taken == 0 and len(matches) < _RUN_MIN:
-                self.no_run_before = start + len(matches) + 1
+            found = _plain_groups(lines[start : start + size])
+            if taken == 0 and len(found) < _RUN_MIN:
+                self.no_run_before = start + len(found) + 1
                 return 0
-            count = self.take_run(start, matches) if matches else 0
+            count = self.take_run(start, found) if found else 0
             taken += count
             if count < size:
                 return taken
             start += count
             size = min(4 * size, _RUN_MAX)
 
-    def take_run(self, start: int, matches: list[re.Match[str]]) -> int:
-        """The rows of the matched lines from line ``start + 1`` up to the first that fails
-        one of ``fast_line``'s checks; how many were taken."""
-        n = len(matches)
-        groups = list(map(_GROUPS, matches))
+    def take_run(self, start: int, groups: list[tuple[str, ...]]) -> int:
+        """The rows of the matched lines (their groups) from line ``start + 1`` up to the
+        first that fails one of ``fast_line``'s checks; how many were taken."""
+        n = len(groups)
         kind, frm, to, value_text, length_text, length_unit = (
             list(map(itemgetter(k), groups)) for k in range(6)
         )
@@ -481,24 +488,21 @@ class _Parser:
         self.flush()
         self.blocks.append(
             [
-                list(range(start + 1, start + 1 + taken)),
+                np.arange(start + 1, start + 1 + taken, dtype=np.int64),
                 kind[:taken],
                 frm[:taken],
                 none,
                 to[:taken],
-                (value * scale).tolist(),
+                value * scale,
                 list(map(sigmas.__getitem__, kind[:taken])),
-                np.where(level, 0.0, self.centering).tolist(),
-                scale.tolist(),
-                length_km.tolist(),  # NaN where there is none, as the table has it
-                none,
-                none,
-                none,
-                none,
-                [False] * taken,
+                np.where(level, 0.0, self.centering),
+                scale,
+                length_km,  # NaN where there is none, as the table has it
+                *_absent_numbers(taken),
+                np.zeros(taken, bool),
                 [""] * taken,
-                value.tolist(),
-                [False] * taken,
+                value,
+                np.zeros(taken, bool),
                 none,
             ]
         )
@@ -529,6 +533,9 @@ class _Parser:
                 break
             start += count
             size = min(4 * size, _RUN_MAX)
+            rest = len(lines) - start
+            if rest < 2 * size:  # one chunk to the end rather than two (each has a fixed cost)
+                size = min(rest, _RUN_MAX)
         if taken < _RUN_MIN:
             # wait ever longer after each short stretch: where rounds alternate with lines
             # read otherwise, chunks would cost more than they save
@@ -550,6 +557,8 @@ class _Parser:
         others = list(map(bool, map(_OTHER, found)))
         if True in others[:_RUN_MIN]:  # a line read otherwise comes soon: not worth arrays
             return 0, others.index(True) + 1
+        found, others = _up_to_other(found, others)
+        n = len(found)
         (
             opens,
             round_at,
@@ -634,10 +643,15 @@ class _Parser:
             pos_n, pos_o = np.searchsorted(rows, kept_n), np.searchsorted(rows, kept_o)
             k_n, k_o = kept_n.size, kept_o.size
 
-            def merged(for_n: object, for_o: object, dtype: type = object) -> list[Any]:
-                column: np.ndarray = np.empty(m, dtype)
+            def merged(for_n: object, for_o: object) -> list[Any]:
+                column: np.ndarray = np.empty(m, object)
                 column[pos_n], column[pos_o] = for_n, for_o
                 return column.tolist()
+
+            def numbers(for_n: object, for_o: object) -> np.ndarray:
+                column: np.ndarray = np.empty(m)
+                column[pos_n], column[pos_o] = for_n, for_o
+                return column
 
             if k_n:
                 at_n, to_n = at_n[:k_n], to_n[:k_n]
@@ -661,24 +675,22 @@ class _Parser:
             self.flush()
             self.blocks.append(
                 [
-                    (rows + (start + 1)).tolist(),
+                    rows + (start + 1),
                     merged(_DIRECTION, kind_o),
                     merged(at_n, frm_o),
                     merged(at_n, None),
                     merged(to_n, to_o),
-                    merged(value_n, value * scale, float),
+                    numbers(value_n, value * scale),
                     merged(sigma.sigma if k_n else None, sigma_o),  # type: ignore[union-attr]
-                    merged(self.centering, np.where(level, 0.0, self.centering), float),
-                    merged(1.0, scale, float),
-                    merged(math.nan, length_km, float),  # NaN where there is none
-                    none,
-                    none,
-                    none,
-                    merged(round_lines, None),
-                    [False] * m,
+                    numbers(self.centering, np.where(level, 0.0, self.centering)),
+                    numbers(1.0, scale),
+                    numbers(math.nan, length_km),  # NaN where there is none
+                    *_absent_numbers(m)[:3],
+                    _round_lines(m, pos_n, round_lines),
+                    np.zeros(m, bool),
                     [""] * m,
-                    merged(booked, value, float),
-                    [False] * m,
+                    numbers(booked, value),
+                    np.zeros(m, bool),
                     none,
                 ]
             )
@@ -783,13 +795,10 @@ class _Parser:
         else:
             if not self.angle_unit_known:
                 return False
-            try:
-                value = observed_angle(value_text, self.angle_unit)
-            except UnitError:
+            angle = self.fast_angle(value_text)
+            if angle is None or not -_ZENITH_SLACK <= angle <= math.pi + _ZENITH_SLACK:
                 return False
-            if not -_ZENITH_SLACK <= value <= math.pi + _ZENITH_SLACK:
-                return False
-            value = min(max(value, 0.0), math.pi)  # as read_zenith
+            value = min(max(angle, 0.0), math.pi)  # as read_zenith
             centering = 0.0
         self.rows.append(
             (
@@ -817,6 +826,17 @@ class _Parser:
         self.statements += 1
         return True
 
+    def fast_angle(self, text: str) -> float | None:
+        """An observed angle as ``observed_angle`` reads it; None where it refuses it."""
+        if self.angle_unit == "dms" and len(text) <= _LONGEST_ANGLE:
+            value = plain_dms(text)  # the common case, without the suffix and overflow tests
+            if value is not None:
+                return value
+        try:
+            return observed_angle(text, self.angle_unit)
+        except UnitError:
+            return None
+
     def fast_direction(self, line: int, to: str, value_text: str) -> bool:
         """``TO D:M:S`` inside a round with its standard deviation in force (see ``fast_line``)."""
         round_ = self.round
@@ -827,9 +847,8 @@ class _Parser:
         sigma = round_.sigma or self.defaults.get("direction")
         if sigma is None or sigma.sigma is None:
             return False
-        try:
-            booked = observed_angle(value_text, self.angle_unit)
-        except UnitError:
+        booked = self.fast_angle(value_text)
+        if booked is None:
             return False
         round_.lines.append(line)
         self.rows.append(
@@ -1676,11 +1695,18 @@ _NAME = r"(?![eE][nN][dD][ \t])([!$-<>-~]{1,64})"
 _VALUE = r'([^ \t#"=]+)'
 _TAIL = r"[ \t]*(?:#.*)?\Z"
 _NUMBER = r"([+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?)"  # as units._NUMBER
-_FAST_OBSERVATION = re.compile(
-    rf"[ \t]*(level|distance)[ \t]+{_NAME}[ \t]+{_NAME}[ \t]+{_NUMBER}"
-    rf"(?:[ \t]+len={_NUMBER}([a-zA-Z]+))?{_TAIL}",
-    re.DOTALL,
+# The same with possessive repeats (a fifth faster): each token is followed by a character
+# it cannot hold (a blank, '#' or the end), so giving characters back never made a match.
+_NAME_P = r"(?![eE][nN][dD][ \t])([!$-<>-~]{1,64}+)"
+_NUMBER_P = r"([+-]?+(?:[0-9]++\.?+[0-9]*+|\.[0-9]++)(?:[eE][+-]?+[0-9]++)?+)"
+_PLAIN = (
+    rf"[ \t]*+(level|distance)[ \t]++{_NAME_P}[ \t]++{_NAME_P}[ \t]++{_NUMBER_P}"
+    rf"(?:[ \t]++len={_NUMBER_P}([a-zA-Z]++))?+[ \t]*+(?:#.*)?"
 )
+_FAST_OBSERVATION = re.compile(rf"{_PLAIN}\Z", re.DOTALL)
+# Every line of a chunk joined by newlines: its _FAST_OBSERVATION groups ('' where absent),
+# all empty for any other line (a line holds no newline, so '$' is the line's end)
+_PLAIN_LINES = re.compile(rf"^(?:{_PLAIN}$|.*)", re.MULTILINE)
 _FAST_DIRECTION = re.compile(rf"[ \t]*{_NAME}[ \t]+{_VALUE}{_TAIL}", re.DOTALL)
 _HEIGHT = rf"(?:[ \t]+(hi|ht)={_NUMBER}([a-zA-Z]+))?"
 _FAST_SPATIAL = re.compile(
@@ -1688,17 +1714,20 @@ _FAST_SPATIAL = re.compile(
     re.DOTALL,
 )
 _FAST_NUMBER = re.compile(rf"{_NUMBER}\Z")
+_LONGEST_ANGLE = 64  # as lexer.observed_angle allows
 # Any line, as one of: 'directions AT', 'end', a plain level or distance line, 'TO D:M:S' (a
 # direction of a round), a blank or comment line, or anything else (``_Parser.take_block``).
 # A name is not 'end' here; the seconds' decimals are bounded, so no angle is too long.
-_ANY_NAME = r"(?![eE][nN][dD](?![!$-<>-~]))([!$-<>-~]{1,64})"
-_LINE_TAIL = r"[ \t]*(?:#.*)?"
+# Repeats are possessive, as in _PLAIN.
+_ANY_NAME = r"(?![eE][nN][dD](?![!$-<>-~]))([!$-<>-~]{1,64}+)"
+_LINE_TAIL = r"[ \t]*+(?:#.*)?"
+_DIGITS = r"([0-9]{1,6}+)"
 _BLOCK_LINE = re.compile(
-    rf"^(?:[ \t]*(directions)[ \t]+{_ANY_NAME}{_LINE_TAIL}"
-    rf"|[ \t]*(end){_LINE_TAIL}"
-    rf"|[ \t]*(level|distance)[ \t]+{_ANY_NAME}[ \t]+{_ANY_NAME}[ \t]+{_NUMBER}"
-    rf"(?:[ \t]+len={_NUMBER}([a-zA-Z]+))?{_LINE_TAIL}"
-    rf"|[ \t]*{_ANY_NAME}[ \t]+(-?)([0-9]{{1,6}}):([0-9]{{1,6}}):([0-9]{{1,6}}(?:\.[0-9]{{0,30}})?)"
+    rf"^(?:[ \t]*+(directions)[ \t]++{_ANY_NAME}{_LINE_TAIL}"
+    rf"|[ \t]*+(end){_LINE_TAIL}"
+    rf"|[ \t]*+(level|distance)[ \t]++{_ANY_NAME}[ \t]++{_ANY_NAME}[ \t]++{_NUMBER_P}"
+    rf"(?:[ \t]++len={_NUMBER_P}([a-zA-Z]++))?+{_LINE_TAIL}"
+    rf"|[ \t]*+{_ANY_NAME}[ \t]++(-?){_DIGITS}:{_DIGITS}:([0-9]{{1,6}}+(?:\.[0-9]{{0,30}}+)?+)"
     rf"{_LINE_TAIL}"
     rf"|{_LINE_TAIL}"
     r"|(.+))$",
@@ -1710,7 +1739,6 @@ _RUN_MIN, _CHUNK_MIN, _RUN_MAX = 16, 64, 65536
 _DIRECTION = "direction"
 _OTHER = itemgetter(14)  # the group of _BLOCK_LINE that holds any other line
 _KEYWORD = GRAMMARS.__contains__
-_GROUPS = re.Match.groups
 _LEVEL = "level"
 #: FROM, AT and TO of a row of fields
 _NAME_FIELDS = slice(FIELDS.index("from_point"), FIELDS.index("to") + 1)
@@ -1760,6 +1788,44 @@ _HANDLERS: dict[str, Callable[[_Parser, Statement], None]] = {
     "relative": _Parser.relative_pair,
     "end": _Parser.end_without_round,
 }
+
+
+def _absent_numbers(n: int) -> tuple[np.ndarray, ...]:
+    """The columns ``setups``, ``instrument_height``, ``target_height``, ``round_line`` of
+    ``n`` rows that have none of them (−1 or NaN, as the table has them)."""
+    return (
+        np.full(n, NONE, np.int64),
+        np.full(n, math.nan),
+        np.full(n, math.nan),
+        np.full(n, NONE, np.int64),
+    )
+
+
+def _up_to_other(found: list[T], others: list[bool]) -> tuple[list[T], list[bool]]:
+    """The lines of a chunk up to the first one read otherwise (no line after it is taken,
+    and each line in the arrays costs time)."""
+    if True not in others:
+        return found, others
+    n = others.index(True) + 1
+    return found[:n], others[:n]
+
+
+def _round_lines(m: int, rows: np.ndarray, lines: list[int]) -> np.ndarray:
+    """The ``round_line`` column of ``m`` rows: ``lines`` at ``rows``, −1 elsewhere."""
+    column = np.full(m, NONE, np.int64)
+    column[rows] = lines
+    return column
+
+
+def _plain_groups(chunk: list[str]) -> list[tuple[str, ...]]:
+    """The ``_FAST_OBSERVATION`` groups ('' where absent) of the leading plain level and
+    distance lines of ``chunk``, up to the first line that is not one (one C-level pass)."""
+    found = _PLAIN_LINES.findall("\n".join(chunk))
+    if len(found) != len(chunk):  # every line matches once; this is a safeguard
+        matches = takewhile(bool, map(_FAST_OBSERVATION.match, chunk))
+        return [match.groups("") for match in cast(Iterator[re.Match[str]], matches)]
+    kinds = list(map(itemgetter(0), found))
+    return found[: kinds.index("")] if "" in kinds else found
 
 
 def _picked(values: Sequence[T], rows: np.ndarray) -> list[T]:

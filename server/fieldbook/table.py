@@ -28,10 +28,11 @@ view of the table.
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+import operator
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
-from itertools import chain
+from itertools import chain, repeat
 from operator import itemgetter
 from typing import Any, TypeVar, overload
 
@@ -42,6 +43,8 @@ from server.units import Quantity
 
 #: The ``Observation`` fields in their order: a parsed row is the tuple of these values.
 FIELDS = Observation.__slots__
+#: Position of each field in a row.
+_INDEX = {name: k for k, name in enumerate(FIELDS)}
 #: ``kind`` code of each observation kind (its index in ``OBSERVATION_KINDS``).
 KIND_CODE: dict[str, int] = {kind: code for code, kind in enumerate(OBSERVATION_KINDS)}
 #: Marks an absent integer (``setups``, ``round_line``) or point (``at``).
@@ -49,8 +52,8 @@ NONE = -1
 
 Row = tuple[Any, ...]
 T = TypeVar("T")
-#: A block of rows as its columns: one list per field of ``FIELDS``, in that order.
-Columns = Sequence[list[Any]]
+#: A block of rows as its columns: one list (or array) per field of ``FIELDS``, in that order.
+Columns = Sequence[list[Any] | np.ndarray]
 
 
 def row_of(obs: Observation) -> Row:
@@ -97,6 +100,8 @@ class ObservationTable:
     baselines: Mapping[int, BaselineVector] = field(default_factory=dict)  # row → vector
     #: the Observation objects made so far, by row (shared by every view of this table)
     _made: list[Observation | None] = field(default_factory=list, repr=False)
+    #: True once every row's object is made (``None in _made`` would call each one's __eq__)
+    _complete: bool = field(default=False, repr=False)
 
     def __len__(self) -> int:
         return int(self.line.shape[0])
@@ -111,35 +116,26 @@ class ObservationTable:
     @classmethod
     def from_blocks(cls, blocks: Sequence[Columns]) -> ObservationTable:
         """The table of blocks of rows in order, each given as its columns (``FIELDS`` order,
-        one list per field; None where a value is absent)."""
-        if len(blocks) == 1:
-            columns = blocks[0]
-        else:
-            columns = [list(chain.from_iterable(b[k] for b in blocks)) for k in range(len(FIELDS))]
-        n = len(columns[0]) if columns else 0
-        if n == 0:
+        one list per field, None where a value is absent; a number or flag column may
+        also be an array, as the parser's fast paths give them)."""
+        blocks = [block for block in blocks if len(block[0])]
+        if not blocks:
             return _empty()
-        (
-            line,
-            kind,
-            frm,
-            at,
-            to,
-            value,
-            sigma,
-            centering,
-            scale,
-            length_km,
-            setups,
-            hi,
-            ht,
-            round_line,
-            ignored,
-            note,
-            booked,
-            planned,
-            baseline,
-        ) = columns
+
+        def listed(field: str) -> list[Any]:
+            k = _INDEX[field]
+            if len(blocks) == 1:
+                return blocks[0][k]  # type: ignore[return-value]  # names and objects: lists
+            return list(chain.from_iterable(block[k] for block in blocks))
+
+        def joined(field: str, convert: Callable[[Any], np.ndarray]) -> np.ndarray:
+            # arrays pass through; each list is converted apart, then the pieces joined
+            k = _INDEX[field]
+            parts = [_array(b[k], convert) for b in blocks]
+            return parts[0] if len(parts) == 1 else np.concatenate(parts)
+
+        kind, frm, at, to = listed("kind"), listed("from_point"), listed("at"), listed("to")
+        n = len(kind)
         # names in order of first appearance: FROM, AT, TO of each row in turn
         interleaved: list[str | None] = [None] * (3 * n)
         interleaved[0::3], interleaved[1::3], interleaved[2::3] = frm, at, to
@@ -151,31 +147,32 @@ class ObservationTable:
             codes[other] = len(codes)
         ids: dict[str | None, int] = dict(zip(names, range(len(names))))  # made in C
         ids[None] = NONE
-        sigmas, sigma_index = _interned(sigma)
+        sigmas, sigma_index = _interned(listed("sigma"))
+        booked = joined("booked", _floats)
         table = cls(
             names=names,
             sigmas=sigmas,
             kinds=tuple(codes),
-            line=np.array(line, dtype=np.int64),
+            line=joined("line", _whole),
             kind=np.fromiter(map(codes.__getitem__, kind), np.int8, n),
             frm=np.fromiter(map(ids.__getitem__, frm), np.int64, n),
-            at=np.fromiter(map(ids.__getitem__, at), np.int64, n),
+            at=_absent(n) if at.count(None) == n else _ids(at, ids),
             to=np.fromiter(map(ids.__getitem__, to), np.int64, n),
-            value=np.array(value, dtype=float),
+            value=joined("value", _floats),
             sigma=sigma_index,
-            centering=np.array(centering, dtype=float),
-            scale=np.array(scale, dtype=float),
-            length_km=_floats(length_km),
-            setups=_integers(setups),
-            instrument_height=_floats(hi),
-            target_height=_floats(ht),
-            round_line=_integers(round_line),
-            ignored=np.array(ignored, dtype=bool),
-            planned=np.array(planned, dtype=bool),
-            booked=_floats(booked),
-            booked_given=_given(booked),
-            notes={k: text for k, text in enumerate(note) if text},
-            baselines={k: vector for k, vector in enumerate(baseline) if vector is not None},
+            centering=joined("centering", _floats),
+            scale=joined("scale", _floats),
+            length_km=joined("length_km", _floats),
+            setups=joined("setups", _integers),
+            instrument_height=joined("instrument_height", _floats),
+            target_height=joined("target_height", _floats),
+            round_line=joined("round_line", _integers),
+            ignored=joined("ignored", _flags),
+            planned=joined("planned", _flags),
+            booked=booked,
+            booked_given=np.concatenate([_given(b[_INDEX["booked"]]) for b in blocks]),
+            notes=_sparse(listed("note"), ""),
+            baselines=_sparse(listed("baseline"), None),
         )
         table.freeze()
         return table
@@ -190,6 +187,7 @@ class ObservationTable:
         table = cls.from_rows([row_of(obs) for obs in objects])
         if objects:
             table._made[:] = objects
+            table._mark_complete()
         return table
 
     def freeze(self) -> None:
@@ -217,6 +215,8 @@ class ObservationTable:
         made = self._made
         if any(made):
             table._made[:] = [made[k] for k in rows.tolist()]
+            if self._complete:
+                table._mark_complete()
         return table
 
     # ---- columns derived on demand
@@ -257,11 +257,15 @@ class ObservationTable:
     def observations(self) -> list[Observation]:
         """Every row as an ``Observation``, made where not made yet."""
         made = self._made
-        if None in made:
+        if not self._complete:
             missing = [k for k, obs in enumerate(made) if obs is None]
             for k, obs in zip(missing, self._make_many(missing)):
                 made[k] = obs
+            self._mark_complete()
         return made  # type: ignore[return-value]  # no None left
+
+    def _mark_complete(self) -> None:
+        object.__setattr__(self, "_complete", True)  # a cache flag, not a field of the value
 
     def _make(self, row: int) -> Observation:
         return self._make_many([row])[0]
@@ -388,11 +392,39 @@ def _interned(sigmas: list[Quantity]) -> tuple[tuple[Quantity, ...], np.ndarray]
     return tuple(distinct), code[inverse.reshape(-1)]
 
 
-def _given(values: list[object]) -> np.ndarray:
-    """True where a value is not None."""
-    if values.count(None) == 0:
+def _given(values: list[object] | np.ndarray) -> np.ndarray:
+    """True where a value is not None (everywhere in an array of numbers)."""
+    if isinstance(values, np.ndarray) or values.count(None) == 0:
         return np.ones(len(values), bool)
-    return np.fromiter((v is not None for v in values), bool, len(values))
+    return np.fromiter(map(operator.is_not, values, repeat(None)), bool, len(values))
+
+
+def _sparse(values: list[T], absent: object) -> dict[int, T]:
+    """The values other than ``absent`` (None or ""), by row (found in one C-level pass:
+    they are rare)."""
+    given = map(operator.is_not, values, repeat(absent)) if absent is None else map(bool, values)
+    rows = np.flatnonzero(np.fromiter(given, bool, len(values)))
+    return {k: values[k] for k in rows.tolist()}
+
+
+def _array(values: list[Any] | np.ndarray, convert: Callable[[Any], np.ndarray]) -> np.ndarray:
+    return values if isinstance(values, np.ndarray) else convert(values)
+
+
+def _whole(values: list[int]) -> np.ndarray:
+    return np.array(values, dtype=np.int64)
+
+
+def _flags(values: list[bool]) -> np.ndarray:
+    return np.array(values, dtype=bool)
+
+
+def _absent(n: int) -> np.ndarray:
+    return np.full(n, NONE, np.int64)
+
+
+def _ids(names: list[str | None], ids: dict[str | None, int]) -> np.ndarray:
+    return np.fromiter(map(ids.__getitem__, names), np.int64, len(names))
 
 
 def _floats(values: list[float | None]) -> np.ndarray:
