@@ -518,26 +518,24 @@ def _point_results(
 _COMPONENT = {"E": 0, "N": 1, "H": 2}
 
 
-def _joined_pairs(meta: ObservationMetadata) -> list[tuple[str, str]]:
+def _joined_pairs(meta: ObservationMetadata) -> tuple[np.ndarray, np.ndarray]:
     """Point pairs joined by a used observation of any kind but level and zenith, first-seen
-    order, no repeats."""
-    pairs: dict[tuple[str, str], tuple[str, str]] = {}
-    kind, at, from_point, to = meta.kind, meta.at, meta.from_point, meta.to
-    for k in meta.used_position.tolist():
-        if kind[k] == "angle":
-            station = at[k]
-            assert station is not None
-            candidates = [(station, from_point[k]), (station, to[k])]
-        elif kind[k] in _JOINING_KINDS:
-            # (the geodetic model's slope distances and baselines join marks too; a zenith
-            # angle or a level line does not fix a horizontal position between them)
-            candidates = [(from_point[k], to[k])]
-        else:
-            continue
-        for a, b in candidates:
-            # the unordered pair as its key (as a frozenset would be, made faster)
-            pairs.setdefault((a, b) if a <= b else (b, a), (a, b))
-    return list(pairs.values())
+    order and orientation, no repeats: their two ends as indices into ``meta.point_names``."""
+    used = meta.used_position
+    angle = meta.of_kind("angle")[used]
+    # (the geodetic model's slope distances and baselines join marks too; a zenith angle or
+    # a level line does not fix a horizontal position between them)
+    joining = meta.among(_JOINING_KINDS)[used]
+    at, from_point, to = meta.at_index[used], meta.from_index[used], meta.to_index[used]
+    # each observation's candidates in turn: an angle joins its station to both targets
+    first = np.column_stack([np.where(angle, at, from_point), np.where(angle, at, to)])
+    second = np.column_stack([np.where(angle, from_point, to), to])
+    present = np.column_stack([angle | joining, angle])
+    a, b = first[present], second[present]
+    # the unordered pair as its key; the first occurrence of each, in order
+    key = np.minimum(a, b) * max(len(meta.point_names), 1) + np.maximum(a, b)
+    seen = np.sort(np.unique(key, return_index=True)[1])
+    return a[seen], b[seen]
 
 
 _JOINING_KINDS = frozenset({"distance", "azimuth", "direction", "slope", "baseline"})
@@ -618,31 +616,45 @@ def _relative_results(
     pattern they are solved for).
     """
     tolerance = network.fieldbook.relative_tolerance
-    joined = _joined_pairs(meta)
+    names = meta.point_names
+    joined_a, joined_b = _joined_pairs(meta)
     # each pair's unknowns (E_a, N_a, E_b, N_b), −1 where held; signs of the difference b − a
     # (looked up only when there are pairs: a large leveling network has none)
     east: dict[str | None, int] = {}
     north: dict[str | None, int] = {}
-    if joined or requested:
+    if joined_a.size or requested:
         for k, p in enumerate(network.parameters):
             if p.kind == "E":
                 east[p.point] = k
             elif p.kind == "N":
                 north[p.point] = k
+    unknowns = np.zeros((0, 4), dtype=np.int64)
+    if joined_a.size:
+        east_of = np.fromiter(map(east.get, names, repeat(-1)), np.int64, len(names))
+        north_of = np.fromiter(map(north.get, names, repeat(-1)), np.int64, len(names))
+        unknowns = np.column_stack(
+            [east_of[joined_a], north_of[joined_a], east_of[joined_b], north_of[joined_b]]
+        )
+    from_points = [names[k] for k in joined_a.tolist()]
+    to_points = [names[k] for k in joined_b.tolist()]
     asked = {(a, b) if a <= b else (b, a) for a, b in requested}
-    pairs = []
-    seen = set()
-    for a, b in joined:
-        ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
-        key = (a, b) if a <= b else (b, a)
-        if max(ends) >= 0 or key in asked:  # else both ends held fixed
-            pairs.append((a, b, ends, key in asked))
-            seen.add(key)
-    for a, b in requested:
-        if ((a, b) if a <= b else (b, a)) not in seen:
-            ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
-            pairs.append((a, b, ends, True))
-    unknowns = np.array([ends for _, _, ends, _ in pairs], dtype=np.int64).reshape(-1, 4)
+    is_asked = [((a, b) if a <= b else (b, a)) in asked for a, b in zip(from_points, to_points)]
+    # a joined pair is left out when both ends are held fixed, unless it is requested
+    kept = np.flatnonzero((unknowns.max(axis=1, initial=-1) >= 0) | np.array(is_asked, bool))
+    unknowns = unknowns[kept]
+    from_points = [from_points[k] for k in kept.tolist()]
+    to_points = [to_points[k] for k in kept.tolist()]
+    is_asked = [is_asked[k] for k in kept.tolist()]
+    if requested:  # then the requested pairs not joined
+        seen = {(a, b) if a <= b else (b, a) for a, b in zip(from_points, to_points)}
+        extra = [(a, b) for a, b in requested if ((a, b) if a <= b else (b, a)) not in seen]
+        ends = [
+            [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)] for a, b in extra
+        ]
+        unknowns = np.concatenate([unknowns, np.array(ends, dtype=np.int64).reshape(-1, 4)])
+        from_points += [a for a, _ in extra]
+        to_points += [b for _, b in extra]
+        is_asked += [True] * len(extra)
     held = [bool(x) for x in np.all(unknowns < 0, axis=1).tolist()]
     sign = np.array([-1.0, -1.0, 1.0, 1.0])
     # Σ_Δ over (E, N) from the 4×4 block of the pair's unknowns, held ones contributing nothing
@@ -654,15 +666,16 @@ def _relative_results(
     block[valid] = solution.covariance_entries(rows[valid], cols[valid])
     block = block.reshape(-1, 4, 4) * (sign[:, None] * sign[None, :])
     axis_of = np.array([0, 1, 0, 1])  # E, N, E, N
-    covariances = np.zeros((len(pairs), 2, 2))
+    covariances = np.zeros((len(from_points), 2, 2))
     for s_ in range(4):
         for t_ in range(4):
             covariances[:, axis_of[s_], axis_of[t_]] += block[:, s_, t_]
     cov = variance * covariances
     major, minor, azimuth = st.standard_ellipses(cov[:, 0, 0], cov[:, 0, 1], cov[:, 1, 1])
     coordinates = solution.coordinates
-    ends_a = np.array([coordinates[a][:2] for a, _, _, _ in pairs], dtype=float).reshape(-1, 2)
-    ends_b = np.array([coordinates[b][:2] for _, b, _, _ in pairs], dtype=float).reshape(-1, 2)
+    ends_a = np.array(list(map(coordinates.__getitem__, from_points)), dtype=float)
+    ends_b = np.array(list(map(coordinates.__getitem__, to_points)), dtype=float)
+    ends_a, ends_b = ends_a.reshape(-1, 3)[:, :2], ends_b.reshape(-1, 3)[:, :2]
     d_east, d_north = ends_b[:, 0] - ends_a[:, 0], ends_b[:, 1] - ends_a[:, 1]
     distance_m = np.hypot(d_east, d_north)
     length = np.where(distance_m > 0.0, distance_m, 1.0)
@@ -673,14 +686,14 @@ def _relative_results(
     )
     has_allowed = ~np.array(held, dtype=bool).reshape(-1)
     if tolerance is None:
-        allowed = np.zeros(len(pairs))
+        allowed = np.zeros(len(from_points))
         has_allowed[:] = False
     else:
         allowed = (tolerance.constant + tolerance.ppm * 1e-6 * distance_m) * per_m
     semi_major = major * factor * per_m
     return RelativeColumns(
-        from_point=[a for a, _, _, _ in pairs],
-        to_point=[b for _, b, _, _ in pairs],
+        from_point=from_points,
+        to_point=to_points,
         distance=distance_m * per_m,
         semi_major=semi_major,
         semi_minor=minor * factor * per_m,
@@ -690,7 +703,7 @@ def _relative_results(
         has_allowed=has_allowed,
         passed=semi_major <= allowed,
         sd_distance=np.sqrt(np.maximum(along, 0.0)) * per_m,
-        requested=np.array([asked for _, _, _, asked in pairs], dtype=bool),
+        requested=np.array(is_asked, dtype=bool),
         held=np.array(held, dtype=bool).reshape(-1),
     )
 
