@@ -9,6 +9,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from itertools import chain, repeat
+from operator import is_
 from typing import Any
 
 import numpy as np
@@ -448,7 +449,7 @@ def _point_results(
     n_points = len(names)
     n_unknowns = len(network.parameters)
     # the unknown of each component of each point (−1: none)
-    row_of: dict[str | None, int] = {name: k for k, name in enumerate(names)}
+    row_of: dict[str | None, int] = dict(zip(names, range(n_points)))
     parameters = network.parameters
     component = np.fromiter(
         map(_COMPONENT.get, [p.kind for p in parameters], repeat(-1)), np.int64, n_unknowns
@@ -463,12 +464,7 @@ def _point_results(
     q_diagonal = solution.covariance_entries(np.arange(n_unknowns), np.arange(n_unknowns))
     sd_all = np.sqrt(np.maximum(variance * q_diagonal, 0.0)) * per_m
     estimated = unknown >= 0
-    absent = (math.nan,) * 3
-    adjusted = np.fromiter(
-        chain.from_iterable(map(solution.coordinates.get, names, repeat(absent))),
-        float,
-        3 * n_points,
-    ).reshape(-1, 3)
+    adjusted = _coordinates_of(solution.coordinates, names)
     # a coordinate not given is None: NaN here
     given = np.array(
         [[p.east for p in points], [p.north for p in points], [p.height for p in points]],
@@ -512,6 +508,19 @@ def _point_results(
         has_ellipse=with_ellipse,
         confidence=confidence,
     )
+
+
+def _coordinates_of(
+    coordinates: dict[str, tuple[float, float, float]], names: list[str]
+) -> np.ndarray:
+    """(n, 3) adjusted coordinates of the named points, NaN for a point with none."""
+    n = len(names)
+    if len(coordinates) == n and all(map(is_, coordinates, names)):
+        # the engine keeps the points in the network's order: no look-up by name
+        values = chain.from_iterable(coordinates.values())
+    else:
+        values = chain.from_iterable(map(coordinates.get, names, repeat((math.nan,) * 3)))
+    return np.fromiter(values, float, 3 * n).reshape(-1, 3)
 
 
 #: The column of ``unknown`` of each coordinate unknown's kind.

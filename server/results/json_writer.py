@@ -54,7 +54,7 @@ def write_json(obj: object, stream: IO[str] | None = None) -> None:
     write_bytes([json_bytes(obj), b"\n"], stream)
 
 
-def write_bytes(pieces: Iterable[bytes], stream: IO[str] | None = None) -> None:
+def write_bytes(pieces: Iterable[bytes | memoryview], stream: IO[str] | None = None) -> None:
     """Write UTF-8 text pieces to a text stream (stdout by default).
 
     The bytes go to the stream's binary buffer when it has one (no decoding and
@@ -65,7 +65,7 @@ def write_bytes(pieces: Iterable[bytes], stream: IO[str] | None = None) -> None:
     out.flush()  # text written before stays before
     for piece in pieces:
         if buffer is None:
-            out.write(piece.decode("utf-8"))
+            out.write(str(piece, "utf-8"))
         else:
             buffer.write(piece)
     if buffer is not None:
