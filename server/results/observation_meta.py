@@ -41,6 +41,9 @@ class ObservationMetadata:
     from_index: np.ndarray  # int64
     at_index: np.ndarray  # int64
     to_index: np.ndarray  # int64
+    #: each observation's kind as an index into ``kind_names`` (masks without a string test)
+    kind_code: np.ndarray
+    kind_names: tuple[str, ...]
 
     @property
     def angular(self) -> np.ndarray:
@@ -53,12 +56,10 @@ class ObservationMetadata:
 
     def among(self, kinds: frozenset[str]) -> np.ndarray:
         """True for the observations of any of ``kinds``."""
-        present = set(self.kind)
-        if not present & kinds:
-            return np.zeros(len(self.kind), dtype=bool)
-        if present <= kinds:
-            return np.ones(len(self.kind), dtype=bool)
-        return np.array([kind in kinds for kind in self.kind], dtype=bool)
+        codes = [code for code, name in enumerate(self.kind_names) if name in kinds]
+        if len(codes) == 1:
+            return self.kind_code == codes[0]
+        return np.isin(self.kind_code, codes)
 
 
 def observation_metadata(network: Network) -> ObservationMetadata:
@@ -102,4 +103,6 @@ def observation_metadata(network: Network) -> ObservationMetadata:
         from_index=np.asarray(table.frm, dtype=np.int64),
         at_index=np.asarray(table.at, dtype=np.int64),
         to_index=np.asarray(table.to, dtype=np.int64),
+        kind_code=np.asarray(table.kind),
+        kind_names=tuple(table.kinds),
     )
