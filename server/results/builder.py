@@ -384,6 +384,8 @@ def _inseparable_lines(
     )
     # each scalar row has its own line (a round's directions too)
     line_of = np.repeat(lines, components).tolist().__getitem__
+    if n_rows == n_used:  # one row per observation: its rows in turn, no look-up by index
+        return [tuple(map(line_of, partners)) if partners else () for partners in rows[:n_used]]
     return [tuple(map(line_of, rows[row])) if rows[row] else () for row in first.tolist()]
 
 
