@@ -19,7 +19,7 @@ from server.fieldbook.model import ANGULAR_KINDS, Observation
 from server.model.geodetic_kinds import geodetic_kinds
 from server.model.kinds import CoincidentPointsError, evaluate_one, sigma_one
 from server.model.misclosures import Misclosure
-from server.model.network import Network
+from server.model.network import Network, NetworkPoint
 from server.results.baselines import BaselineFigures, baseline_figures
 from server.results.columns import ObservationColumns, PointColumns, RelativeColumns
 from server.results.geodetic_points import with_geodetic_figures
@@ -467,11 +467,7 @@ def _point_results(
     sd_all = np.sqrt(np.maximum(variance * q_diagonal, 0.0)) * per_m
     estimated = unknown >= 0
     adjusted = _coordinates_of(solution.coordinates, names)
-    # a coordinate not given is None: NaN here
-    given = np.array(
-        [[p.east for p in points], [p.north for p in points], [p.height for p in points]],
-        dtype=float,
-    ).T.reshape(-1, 3)
+    given = _given_coordinates(points)
     has_given = ~np.isnan(given)
     coordinates = np.where(estimated, adjusted, given) * per_m
     has_coordinate = estimated | has_given
@@ -510,6 +506,16 @@ def _point_results(
         has_ellipse=with_ellipse,
         confidence=confidence,
     )
+
+
+def _given_coordinates(points: Sequence[NetworkPoint]) -> np.ndarray:
+    """(n, 3) given east, north and height of the points, NaN where not given (None)."""
+    nan = math.nan
+    columns = ([p.east for p in points], [p.north for p in points], [p.height for p in points])
+    # None made NaN here: NumPy's own conversion of a list holding None is slower
+    return np.column_stack(
+        [np.fromiter([nan if v is None else v for v in c], float, len(c)) for c in columns]
+    ).reshape(-1, 3)
 
 
 def _coordinates_of(
