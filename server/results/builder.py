@@ -262,7 +262,7 @@ def _observation_results(
         for row in np.flatnonzero([bool(p) for p in partners]).tolist():
             inseparable[int(used_at[row])] = partners[row]
     # the observations the adjustment left out: their values from the adjusted coordinates
-    entries = _baseline_rows(network, baselines)
+    entries = _baseline_rows(network, meta, baselines)
     observations = network.fieldbook.observations
     for k in np.flatnonzero(~used).tolist():
         if k in entries:
@@ -315,16 +315,20 @@ def _observation_results(
 
 
 def _baseline_rows(
-    network: Network, baselines: BaselineFigures
+    network: Network, meta: ObservationMetadata, baselines: BaselineFigures
 ) -> dict[int, tuple[ObservationResult, ...]]:
     """The three entries of each baseline by its index in field book order."""
     if not baselines.entries:
         return {}
-    return {
-        k: baselines.entries[id(obs)]
-        for k, obs in enumerate(network.fieldbook.observations)
-        if id(obs) in baselines.entries
-    }
+    # only the baselines' rows: making every other observation object of the book costs more
+    # than the rest of the result (the table's row k is the book's observation k)
+    observations = network.fieldbook.observations
+    found = {}
+    for k in np.flatnonzero(meta.of_kind("baseline")).tolist():
+        entry = baselines.entries.get(id(observations[k]))
+        if entry is not None:
+            found[k] = entry
+    return found
 
 
 def _warn_uncontrolled(meta: ObservationMetadata, rows: list[int], warnings: list[str]) -> None:

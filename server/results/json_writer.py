@@ -92,12 +92,8 @@ def _check_values(values: list[Any]) -> None:
             _check_floats(values if len(kinds) == 1 else [v for v in values if type(v) is float])
         return
     if kinds <= {dict, _NONE}:
-        records = values if _NONE not in kinds else [v for v in values if v is not None]
-        keys = tuple(records[0])
-        if all(map(keys.__eq__, map(tuple, records))):
-            for key in keys:
-                _check_values(list(map(itemgetter(key), records)))
-            return
+        _check_records(values if _NONE not in kinds else [v for v in values if v is not None])
+        return
     if kinds <= {list, tuple, _NONE}:
         _check_values(list(chain.from_iterable(v for v in values if v is not None)))
         return
@@ -108,6 +104,21 @@ def _check_values(values: list[Any]) -> None:
             _check_values(list(value))
         elif isinstance(value, float):
             _check_floats([value])
+
+
+def _check_records(records: list[dict[str, Any]]) -> None:
+    """Records looked at column by column, those of each shape (key order) apart."""
+    shapes = list(map(tuple, records))
+    keys = shapes[0]
+    if all(map(keys.__eq__, shapes)):
+        groups = {keys: records}
+    else:  # records of a few shapes (some with an extra key)
+        groups = {}
+        for shape, record in zip(shapes, records):
+            groups.setdefault(shape, []).append(record)
+    for shape, members in groups.items():
+        for key in shape:
+            _check_values(list(map(itemgetter(key), members)))
 
 
 def _check_floats(floats: list[float]) -> None:
