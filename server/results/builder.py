@@ -662,10 +662,11 @@ def _relative_results(
     is_asked = [((a, b) if a <= b else (b, a)) in asked for a, b in zip(from_points, to_points)]
     # a joined pair is left out when both ends are held fixed, unless it is requested
     kept = np.flatnonzero((unknowns.max(axis=1, initial=-1) >= 0) | np.array(is_asked, bool))
-    unknowns = unknowns[kept]
-    from_points = [from_points[k] for k in kept.tolist()]
-    to_points = [to_points[k] for k in kept.tolist()]
-    is_asked = [is_asked[k] for k in kept.tolist()]
+    if kept.size < len(from_points):
+        unknowns = unknowns[kept]
+        from_points = [from_points[k] for k in kept.tolist()]
+        to_points = [to_points[k] for k in kept.tolist()]
+        is_asked = [is_asked[k] for k in kept.tolist()]
     if requested:  # then the requested pairs not joined
         seen = {(a, b) if a <= b else (b, a) for a, b in zip(from_points, to_points)}
         extra = [(a, b) for a, b in requested if ((a, b) if a <= b else (b, a)) not in seen]
@@ -694,9 +695,12 @@ def _relative_results(
     cov = variance * covariances
     major, minor, azimuth = st.standard_ellipses(cov[:, 0, 0], cov[:, 0, 1], cov[:, 1, 1])
     coordinates = solution.coordinates
-    ends_a = np.array(list(map(coordinates.__getitem__, from_points)), dtype=float)
-    ends_b = np.array(list(map(coordinates.__getitem__, to_points)), dtype=float)
-    ends_a, ends_b = ends_a.reshape(-1, 3)[:, :2], ends_b.reshape(-1, 3)[:, :2]
+    ends_a, ends_b = (
+        np.fromiter(
+            chain.from_iterable(map(coordinates.__getitem__, ends)), float, 3 * len(ends)
+        ).reshape(-1, 3)[:, :2]
+        for ends in (from_points, to_points)
+    )
     d_east, d_north = ends_b[:, 0] - ends_a[:, 0], ends_b[:, 1] - ends_a[:, 1]
     distance_m = np.hypot(d_east, d_north)
     length = np.where(distance_m > 0.0, distance_m, 1.0)
