@@ -41,28 +41,25 @@ from server.units import ARCSEC_PER_RAD, LENGTH_FACTORS, wrap_2pi, wrap_pi
 
 def _misclosure_result(m: Misclosure, per_m: float) -> MisclosureResult:
     """One misclosure in output units; a traverse also gets its angular part in arcsec."""
-
-    def length(value: float | None) -> float | None:
-        return None if value is None else value * per_m
-
-    def arcsec(value: float | None) -> float | None:
-        return None if value is None else value * ARCSEC_PER_RAD
-
     return MisclosureResult(
         kind=m.kind,
         points=m.points,
         misclosure=m.misclosure * per_m,
-        length=length(m.length),
-        allowed=length(m.allowed),
+        length=_scaled(m.length, per_m),
+        allowed=_scaled(m.allowed, per_m),
         exceeds=m.exceeds,
-        angular_misclosure=arcsec(m.angular),
-        angular_allowed=arcsec(m.angular_allowed),
+        angular_misclosure=_scaled(m.angular, ARCSEC_PER_RAD),
+        angular_allowed=_scaled(m.angular_allowed, ARCSEC_PER_RAD),
         angle_stations=m.angle_stations,
-        misclosure_east=length(m.misclosure_east),
-        misclosure_north=length(m.misclosure_north),
+        misclosure_east=_scaled(m.misclosure_east, per_m),
+        misclosure_north=_scaled(m.misclosure_north, per_m),
         ratio=m.ratio,
         ratio_allowed=m.ratio_allowed,
     )
+
+
+def _scaled(value: float | None, factor: float) -> float | None:
+    return None if value is None else value * factor
 
 
 def build_result(
@@ -133,8 +130,8 @@ def build_result(
     summary = Summary(
         dimension=network.dimension,
         points=len(points),
-        observations=_counted(meta.kind),
-        used_observations=_counted([meta.kind[k] for k in meta.used_position.tolist()]),
+        observations=_counted(meta, np.arange(len(meta.kind))),
+        used_observations=_counted(meta, meta.used_position),
         unknowns=n_unknowns,
         redundancy=redundancy,
         iterations=solution.iterations,
@@ -191,9 +188,9 @@ def build_result(
     )
 
 
-def _counted(kinds: Sequence[str]) -> int:
-    """Observations as the result counts them: a baseline is three."""
-    return len(kinds) + 2 * kinds.count("baseline")
+def _counted(meta: ObservationMetadata, rows: np.ndarray) -> int:
+    """Observations (``rows`` of the book) as the result counts them: a baseline is three."""
+    return len(rows) + 2 * int(np.count_nonzero(meta.of_kind("baseline")[rows]))
 
 
 def _observation_results(
