@@ -9,6 +9,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from itertools import chain, repeat
+from operator import is_
 from typing import Any
 
 import numpy as np
@@ -18,7 +19,7 @@ from server.fieldbook.model import ANGULAR_KINDS, Observation
 from server.model.geodetic_kinds import geodetic_kinds
 from server.model.kinds import CoincidentPointsError, evaluate_one, sigma_one
 from server.model.misclosures import Misclosure
-from server.model.network import Network
+from server.model.network import Network, NetworkPoint
 from server.results.baselines import BaselineFigures, baseline_figures
 from server.results.columns import ObservationColumns, PointColumns, RelativeColumns
 from server.results.geodetic_points import with_geodetic_figures
@@ -40,28 +41,25 @@ from server.units import ARCSEC_PER_RAD, LENGTH_FACTORS, wrap_2pi, wrap_pi
 
 def _misclosure_result(m: Misclosure, per_m: float) -> MisclosureResult:
     """One misclosure in output units; a traverse also gets its angular part in arcsec."""
-
-    def length(value: float | None) -> float | None:
-        return None if value is None else value * per_m
-
-    def arcsec(value: float | None) -> float | None:
-        return None if value is None else value * ARCSEC_PER_RAD
-
     return MisclosureResult(
         kind=m.kind,
         points=m.points,
         misclosure=m.misclosure * per_m,
-        length=length(m.length),
-        allowed=length(m.allowed),
+        length=_scaled(m.length, per_m),
+        allowed=_scaled(m.allowed, per_m),
         exceeds=m.exceeds,
-        angular_misclosure=arcsec(m.angular),
-        angular_allowed=arcsec(m.angular_allowed),
+        angular_misclosure=_scaled(m.angular, ARCSEC_PER_RAD),
+        angular_allowed=_scaled(m.angular_allowed, ARCSEC_PER_RAD),
         angle_stations=m.angle_stations,
-        misclosure_east=length(m.misclosure_east),
-        misclosure_north=length(m.misclosure_north),
+        misclosure_east=_scaled(m.misclosure_east, per_m),
+        misclosure_north=_scaled(m.misclosure_north, per_m),
         ratio=m.ratio,
         ratio_allowed=m.ratio_allowed,
     )
+
+
+def _scaled(value: float | None, factor: float) -> float | None:
+    return None if value is None else value * factor
 
 
 def build_result(
@@ -132,8 +130,8 @@ def build_result(
     summary = Summary(
         dimension=network.dimension,
         points=len(points),
-        observations=_counted(meta.kind),
-        used_observations=_counted([meta.kind[k] for k in meta.used_position.tolist()]),
+        observations=_counted(meta, np.arange(len(meta.kind))),
+        used_observations=_counted(meta, meta.used_position),
         unknowns=n_unknowns,
         redundancy=redundancy,
         iterations=solution.iterations,
@@ -190,9 +188,9 @@ def build_result(
     )
 
 
-def _counted(kinds: Sequence[str]) -> int:
-    """Observations as the result counts them: a baseline is three."""
-    return len(kinds) + 2 * kinds.count("baseline")
+def _counted(meta: ObservationMetadata, rows: np.ndarray) -> int:
+    """Observations (``rows`` of the book) as the result counts them: a baseline is three."""
+    return len(rows) + 2 * int(np.count_nonzero(meta.of_kind("baseline")[rows]))
 
 
 def _observation_results(
@@ -261,7 +259,7 @@ def _observation_results(
         for row in np.flatnonzero([bool(p) for p in partners]).tolist():
             inseparable[int(used_at[row])] = partners[row]
     # the observations the adjustment left out: their values from the adjusted coordinates
-    entries = _baseline_rows(network, baselines)
+    entries = _baseline_rows(network, meta, baselines)
     observations = network.fieldbook.observations
     for k in np.flatnonzero(~used).tolist():
         if k in entries:
@@ -314,16 +312,20 @@ def _observation_results(
 
 
 def _baseline_rows(
-    network: Network, baselines: BaselineFigures
+    network: Network, meta: ObservationMetadata, baselines: BaselineFigures
 ) -> dict[int, tuple[ObservationResult, ...]]:
     """The three entries of each baseline by its index in field book order."""
     if not baselines.entries:
         return {}
-    return {
-        k: baselines.entries[id(obs)]
-        for k, obs in enumerate(network.fieldbook.observations)
-        if id(obs) in baselines.entries
-    }
+    # only the baselines' rows: making every other observation object of the book costs more
+    # than the rest of the result (the table's row k is the book's observation k)
+    observations = network.fieldbook.observations
+    found = {}
+    for k in np.flatnonzero(meta.of_kind("baseline")).tolist():
+        entry = baselines.entries.get(id(observations[k]))
+        if entry is not None:
+            found[k] = entry
+    return found
 
 
 def _warn_uncontrolled(meta: ObservationMetadata, rows: list[int], warnings: list[str]) -> None:
@@ -383,6 +385,8 @@ def _inseparable_lines(
     )
     # each scalar row has its own line (a round's directions too)
     line_of = np.repeat(lines, components).tolist().__getitem__
+    if n_rows == n_used:  # one row per observation: its rows in turn, no look-up by index
+        return [tuple(map(line_of, partners)) if partners else () for partners in rows[:n_used]]
     return [tuple(map(line_of, rows[row])) if rows[row] else () for row in first.tolist()]
 
 
@@ -448,7 +452,7 @@ def _point_results(
     n_points = len(names)
     n_unknowns = len(network.parameters)
     # the unknown of each component of each point (−1: none)
-    row_of: dict[str | None, int] = {name: k for k, name in enumerate(names)}
+    row_of: dict[str | None, int] = dict(zip(names, range(n_points)))
     parameters = network.parameters
     component = np.fromiter(
         map(_COMPONENT.get, [p.kind for p in parameters], repeat(-1)), np.int64, n_unknowns
@@ -463,17 +467,8 @@ def _point_results(
     q_diagonal = solution.covariance_entries(np.arange(n_unknowns), np.arange(n_unknowns))
     sd_all = np.sqrt(np.maximum(variance * q_diagonal, 0.0)) * per_m
     estimated = unknown >= 0
-    absent = (math.nan,) * 3
-    adjusted = np.fromiter(
-        chain.from_iterable(map(solution.coordinates.get, names, repeat(absent))),
-        float,
-        3 * n_points,
-    ).reshape(-1, 3)
-    # a coordinate not given is None: NaN here
-    given = np.array(
-        [[p.east for p in points], [p.north for p in points], [p.height for p in points]],
-        dtype=float,
-    ).T.reshape(-1, 3)
+    adjusted = _coordinates_of(solution.coordinates, names)
+    given = _given_coordinates(points)
     has_given = ~np.isnan(given)
     coordinates = np.where(estimated, adjusted, given) * per_m
     has_coordinate = estimated | has_given
@@ -514,30 +509,51 @@ def _point_results(
     )
 
 
+def _given_coordinates(points: Sequence[NetworkPoint]) -> np.ndarray:
+    """(n, 3) given east, north and height of the points, NaN where not given (None)."""
+    nan = math.nan
+    columns = ([p.east for p in points], [p.north for p in points], [p.height for p in points])
+    # None made NaN here: NumPy's own conversion of a list holding None is slower
+    return np.column_stack(
+        [np.fromiter([nan if v is None else v for v in c], float, len(c)) for c in columns]
+    ).reshape(-1, 3)
+
+
+def _coordinates_of(
+    coordinates: dict[str, tuple[float, float, float]], names: list[str]
+) -> np.ndarray:
+    """(n, 3) adjusted coordinates of the named points, NaN for a point with none."""
+    n = len(names)
+    if len(coordinates) == n and all(map(is_, coordinates, names)):
+        # the engine keeps the points in the network's order: no look-up by name
+        values = chain.from_iterable(coordinates.values())
+    else:
+        values = chain.from_iterable(map(coordinates.get, names, repeat((math.nan,) * 3)))
+    return np.fromiter(values, float, 3 * n).reshape(-1, 3)
+
+
 #: The column of ``unknown`` of each coordinate unknown's kind.
 _COMPONENT = {"E": 0, "N": 1, "H": 2}
 
 
-def _joined_pairs(meta: ObservationMetadata) -> list[tuple[str, str]]:
+def _joined_pairs(meta: ObservationMetadata) -> tuple[np.ndarray, np.ndarray]:
     """Point pairs joined by a used observation of any kind but level and zenith, first-seen
-    order, no repeats."""
-    pairs: dict[tuple[str, str], tuple[str, str]] = {}
-    kind, at, from_point, to = meta.kind, meta.at, meta.from_point, meta.to
-    for k in meta.used_position.tolist():
-        if kind[k] == "angle":
-            station = at[k]
-            assert station is not None
-            candidates = [(station, from_point[k]), (station, to[k])]
-        elif kind[k] in _JOINING_KINDS:
-            # (the geodetic model's slope distances and baselines join marks too; a zenith
-            # angle or a level line does not fix a horizontal position between them)
-            candidates = [(from_point[k], to[k])]
-        else:
-            continue
-        for a, b in candidates:
-            # the unordered pair as its key (as a frozenset would be, made faster)
-            pairs.setdefault((a, b) if a <= b else (b, a), (a, b))
-    return list(pairs.values())
+    order and orientation, no repeats: their two ends as indices into ``meta.point_names``."""
+    used = meta.used_position
+    angle = meta.of_kind("angle")[used]
+    # (the geodetic model's slope distances and baselines join marks too; a zenith angle or
+    # a level line does not fix a horizontal position between them)
+    joining = meta.among(_JOINING_KINDS)[used]
+    at, from_point, to = meta.at_index[used], meta.from_index[used], meta.to_index[used]
+    # each observation's candidates in turn: an angle joins its station to both targets
+    first = np.column_stack([np.where(angle, at, from_point), np.where(angle, at, to)])
+    second = np.column_stack([np.where(angle, from_point, to), to])
+    present = np.column_stack([angle | joining, angle])
+    a, b = first[present], second[present]
+    # the unordered pair as its key; the first occurrence of each, in order
+    key = np.minimum(a, b) * max(len(meta.point_names), 1) + np.maximum(a, b)
+    seen = np.sort(np.unique(key, return_index=True)[1])
+    return a[seen], b[seen]
 
 
 _JOINING_KINDS = frozenset({"distance", "azimuth", "direction", "slope", "baseline"})
@@ -618,31 +634,46 @@ def _relative_results(
     pattern they are solved for).
     """
     tolerance = network.fieldbook.relative_tolerance
-    joined = _joined_pairs(meta)
+    names = meta.point_names
+    joined_a, joined_b = _joined_pairs(meta)
     # each pair's unknowns (E_a, N_a, E_b, N_b), −1 where held; signs of the difference b − a
     # (looked up only when there are pairs: a large leveling network has none)
     east: dict[str | None, int] = {}
     north: dict[str | None, int] = {}
-    if joined or requested:
+    if joined_a.size or requested:
         for k, p in enumerate(network.parameters):
             if p.kind == "E":
                 east[p.point] = k
             elif p.kind == "N":
                 north[p.point] = k
+    unknowns = np.zeros((0, 4), dtype=np.int64)
+    if joined_a.size:
+        east_of = np.fromiter(map(east.get, names, repeat(-1)), np.int64, len(names))
+        north_of = np.fromiter(map(north.get, names, repeat(-1)), np.int64, len(names))
+        unknowns = np.column_stack(
+            [east_of[joined_a], north_of[joined_a], east_of[joined_b], north_of[joined_b]]
+        )
+    from_points = [names[k] for k in joined_a.tolist()]
+    to_points = [names[k] for k in joined_b.tolist()]
     asked = {(a, b) if a <= b else (b, a) for a, b in requested}
-    pairs = []
-    seen = set()
-    for a, b in joined:
-        ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
-        key = (a, b) if a <= b else (b, a)
-        if max(ends) >= 0 or key in asked:  # else both ends held fixed
-            pairs.append((a, b, ends, key in asked))
-            seen.add(key)
-    for a, b in requested:
-        if ((a, b) if a <= b else (b, a)) not in seen:
-            ends = [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)]
-            pairs.append((a, b, ends, True))
-    unknowns = np.array([ends for _, _, ends, _ in pairs], dtype=np.int64).reshape(-1, 4)
+    is_asked = [((a, b) if a <= b else (b, a)) in asked for a, b in zip(from_points, to_points)]
+    # a joined pair is left out when both ends are held fixed, unless it is requested
+    kept = np.flatnonzero((unknowns.max(axis=1, initial=-1) >= 0) | np.array(is_asked, bool))
+    if kept.size < len(from_points):
+        unknowns = unknowns[kept]
+        from_points = [from_points[k] for k in kept.tolist()]
+        to_points = [to_points[k] for k in kept.tolist()]
+        is_asked = [is_asked[k] for k in kept.tolist()]
+    if requested:  # then the requested pairs not joined
+        seen = {(a, b) if a <= b else (b, a) for a, b in zip(from_points, to_points)}
+        extra = [(a, b) for a, b in requested if ((a, b) if a <= b else (b, a)) not in seen]
+        ends = [
+            [east.get(a, -1), north.get(a, -1), east.get(b, -1), north.get(b, -1)] for a, b in extra
+        ]
+        unknowns = np.concatenate([unknowns, np.array(ends, dtype=np.int64).reshape(-1, 4)])
+        from_points += [a for a, _ in extra]
+        to_points += [b for _, b in extra]
+        is_asked += [True] * len(extra)
     held = [bool(x) for x in np.all(unknowns < 0, axis=1).tolist()]
     sign = np.array([-1.0, -1.0, 1.0, 1.0])
     # Σ_Δ over (E, N) from the 4×4 block of the pair's unknowns, held ones contributing nothing
@@ -654,15 +685,19 @@ def _relative_results(
     block[valid] = solution.covariance_entries(rows[valid], cols[valid])
     block = block.reshape(-1, 4, 4) * (sign[:, None] * sign[None, :])
     axis_of = np.array([0, 1, 0, 1])  # E, N, E, N
-    covariances = np.zeros((len(pairs), 2, 2))
+    covariances = np.zeros((len(from_points), 2, 2))
     for s_ in range(4):
         for t_ in range(4):
             covariances[:, axis_of[s_], axis_of[t_]] += block[:, s_, t_]
     cov = variance * covariances
     major, minor, azimuth = st.standard_ellipses(cov[:, 0, 0], cov[:, 0, 1], cov[:, 1, 1])
     coordinates = solution.coordinates
-    ends_a = np.array([coordinates[a][:2] for a, _, _, _ in pairs], dtype=float).reshape(-1, 2)
-    ends_b = np.array([coordinates[b][:2] for _, b, _, _ in pairs], dtype=float).reshape(-1, 2)
+    ends_a, ends_b = (
+        np.fromiter(
+            chain.from_iterable(map(coordinates.__getitem__, ends)), float, 3 * len(ends)
+        ).reshape(-1, 3)[:, :2]
+        for ends in (from_points, to_points)
+    )
     d_east, d_north = ends_b[:, 0] - ends_a[:, 0], ends_b[:, 1] - ends_a[:, 1]
     distance_m = np.hypot(d_east, d_north)
     length = np.where(distance_m > 0.0, distance_m, 1.0)
@@ -673,14 +708,14 @@ def _relative_results(
     )
     has_allowed = ~np.array(held, dtype=bool).reshape(-1)
     if tolerance is None:
-        allowed = np.zeros(len(pairs))
+        allowed = np.zeros(len(from_points))
         has_allowed[:] = False
     else:
         allowed = (tolerance.constant + tolerance.ppm * 1e-6 * distance_m) * per_m
     semi_major = major * factor * per_m
     return RelativeColumns(
-        from_point=[a for a, _, _, _ in pairs],
-        to_point=[b for _, b, _, _ in pairs],
+        from_point=from_points,
+        to_point=to_points,
         distance=distance_m * per_m,
         semi_major=semi_major,
         semi_minor=minor * factor * per_m,
@@ -690,7 +725,7 @@ def _relative_results(
         has_allowed=has_allowed,
         passed=semi_major <= allowed,
         sd_distance=np.sqrt(np.maximum(along, 0.0)) * per_m,
-        requested=np.array([asked for _, _, _, asked in pairs], dtype=bool),
+        requested=np.array(is_asked, dtype=bool),
         held=np.array(held, dtype=bool).reshape(-1),
     )
 

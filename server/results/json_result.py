@@ -36,7 +36,7 @@ def write_result_json(result: AdjustmentResult, stream: IO[str] | None = None) -
             gc.enable()
 
 
-def result_json_chunks(result: AdjustmentResult) -> Iterator[bytes]:
+def result_json_chunks(result: AdjustmentResult) -> Iterator[bytes | memoryview]:
     """The indented JSON of ``result.to_json_dict()`` in pieces.
 
     Results that carry rows, geodetic keys or design keys are encoded whole.
@@ -74,7 +74,7 @@ def result_json_chunks(result: AdjustmentResult) -> Iterator[bytes]:
     yield tail
 
 
-def _records(columns: PointColumns | ObservationColumns) -> Iterator[bytes]:
+def _records(columns: PointColumns | ObservationColumns) -> Iterator[bytes | memoryview]:
     """A list of records at the document's second level, ``CHUNK`` records per piece."""
     yield b"[\n"
     for start in range(0, len(columns), CHUNK):
@@ -82,6 +82,8 @@ def _records(columns: PointColumns | ObservationColumns) -> Iterator[bytes]:
         chunk = FiniteRecords(columns.json_records(start, min(start + CHUNK, len(columns))))
         # encoded as the value of a one-key object, the records come out already indented for
         # the document's second level: '{\n  "": [\n    {…},\n    {…}\n  ]\n}'
-        inner = json_bytes({"": chunk})[len(_OPEN) : -len(_CLOSE)]
-        yield (b",\n  " if start else b"  ") + inner
+        encoded = json_bytes({"": chunk})
+        yield b",\n  " if start else b"  "
+        # a view: the chunk's text (tens of megabytes) is not copied to cut its ends
+        yield memoryview(encoded)[len(_OPEN) : -len(_CLOSE)]
     yield b"\n  ]"

@@ -54,7 +54,7 @@ def write_json(obj: object, stream: IO[str] | None = None) -> None:
     write_bytes([json_bytes(obj), b"\n"], stream)
 
 
-def write_bytes(pieces: Iterable[bytes], stream: IO[str] | None = None) -> None:
+def write_bytes(pieces: Iterable[bytes | memoryview], stream: IO[str] | None = None) -> None:
     """Write UTF-8 text pieces to a text stream (stdout by default).
 
     The bytes go to the stream's binary buffer when it has one (no decoding and
@@ -65,7 +65,7 @@ def write_bytes(pieces: Iterable[bytes], stream: IO[str] | None = None) -> None:
     out.flush()  # text written before stays before
     for piece in pieces:
         if buffer is None:
-            out.write(piece.decode("utf-8"))
+            out.write(str(piece, "utf-8"))
         else:
             buffer.write(piece)
     if buffer is not None:
@@ -92,12 +92,8 @@ def _check_values(values: list[Any]) -> None:
             _check_floats(values if len(kinds) == 1 else [v for v in values if type(v) is float])
         return
     if kinds <= {dict, _NONE}:
-        records = values if _NONE not in kinds else [v for v in values if v is not None]
-        keys = tuple(records[0])
-        if all(map(keys.__eq__, map(tuple, records))):
-            for key in keys:
-                _check_values(list(map(itemgetter(key), records)))
-            return
+        _check_records(values if _NONE not in kinds else [v for v in values if v is not None])
+        return
     if kinds <= {list, tuple, _NONE}:
         _check_values(list(chain.from_iterable(v for v in values if v is not None)))
         return
@@ -108,6 +104,21 @@ def _check_values(values: list[Any]) -> None:
             _check_values(list(value))
         elif isinstance(value, float):
             _check_floats([value])
+
+
+def _check_records(records: list[dict[str, Any]]) -> None:
+    """Records looked at column by column, those of each shape (key order) apart."""
+    shapes = list(map(tuple, records))
+    keys = shapes[0]
+    if all(map(keys.__eq__, shapes)):
+        groups = {keys: records}
+    else:  # records of a few shapes (some with an extra key)
+        groups = {}
+        for shape, record in zip(shapes, records):
+            groups.setdefault(shape, []).append(record)
+    for shape, members in groups.items():
+        for key in shape:
+            _check_values(list(map(itemgetter(key), members)))
 
 
 def _check_floats(floats: list[float]) -> None:

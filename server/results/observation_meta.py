@@ -36,23 +36,30 @@ class ObservationMetadata:
     ignored: np.ndarray  # bool
     #: for each row of ``network.used``, the observation's index in field book order
     used_position: np.ndarray  # int64
+    #: the marks as indices into ``point_names`` (``at``: −1 where none), for array work
+    point_names: tuple[str, ...]
+    from_index: np.ndarray  # int64
+    at_index: np.ndarray  # int64
+    to_index: np.ndarray  # int64
+    #: each observation's kind as an index into ``kind_names`` (masks without a string test)
+    kind_code: np.ndarray
+    kind_names: tuple[str, ...]
 
     @property
     def angular(self) -> np.ndarray:
         """True for the kinds whose value is an angle."""
-        return self._among(ANGULAR_KINDS)
+        return self.among(ANGULAR_KINDS)
 
     def of_kind(self, kind: str) -> np.ndarray:
         """True for the observations of ``kind``."""
-        return self._among(frozenset({kind}))
+        return self.among(frozenset({kind}))
 
-    def _among(self, kinds: frozenset[str]) -> np.ndarray:
-        present = set(self.kind)
-        if not present & kinds:
-            return np.zeros(len(self.kind), dtype=bool)
-        if present <= kinds:
-            return np.ones(len(self.kind), dtype=bool)
-        return np.array([kind in kinds for kind in self.kind], dtype=bool)
+    def among(self, kinds: frozenset[str]) -> np.ndarray:
+        """True for the observations of any of ``kinds``."""
+        codes = [code for code, name in enumerate(self.kind_names) if name in kinds]
+        if len(codes) == 1:
+            return self.kind_code == codes[0]
+        return np.isin(self.kind_code, codes)
 
 
 def observation_metadata(network: Network) -> ObservationMetadata:
@@ -92,4 +99,10 @@ def observation_metadata(network: Network) -> ObservationMetadata:
         scale=scale,
         ignored=np.array(table.ignored, dtype=bool),
         used_position=np.asarray(used_position, dtype=np.int64).reshape(-1),
+        point_names=names,
+        from_index=np.asarray(table.frm, dtype=np.int64),
+        at_index=np.asarray(table.at, dtype=np.int64),
+        to_index=np.asarray(table.to, dtype=np.int64),
+        kind_code=np.asarray(table.kind),
+        kind_names=tuple(table.kinds),
     )
