@@ -249,7 +249,8 @@ def test_inseparable_lists_match_a_dense_numpy_solution():
     assert plan.steps and plan.steps[0].line == _line_of(LOOPS_WITH_BLUNDER, "level N3 N2")
 
 
-def test_large_network_path_agrees_with_the_dense_one(monkeypatch):
+def _numpy_reference():
+    """The loops' hat product, σ, ρ, r and controlled rows, all from numpy's dense inverse."""
     result = adjust_fieldbook(LOOPS_WITH_BLUNDER)
     _used, a, p, rho, r = _dense_rho(result, LOOPS_WITH_BLUNDER)
     qxx = np.linalg.inv(a.T @ p @ a)
@@ -258,7 +259,11 @@ def test_large_network_path_agrees_with_the_dense_one(monkeypatch):
         return a @ (qxx @ (a.T @ block))
 
     sigmas = 1.0 / np.sqrt(np.diag(p))
-    candidates = np.flatnonzero(r >= 0.001)
+    return hat, sigmas, rho, r, np.flatnonzero(r >= 0.001)
+
+
+def test_large_network_path_agrees_with_the_dense_one(monkeypatch):
+    hat, sigmas, rho, r, candidates = _numpy_reference()
     exact_ones = {
         (int(i), int(j))
         for i in candidates
@@ -351,15 +356,7 @@ def test_pairs_through_the_engine_in_small_slices_match_numpy(monkeypatch, backe
 
 
 def test_capped_exact_rows_take_the_largest_w_first(monkeypatch):
-    result = adjust_fieldbook(LOOPS_WITH_BLUNDER)
-    _used, a, p, rho, r = _dense_rho(result, LOOPS_WITH_BLUNDER)
-    qxx = np.linalg.inv(a.T @ p @ a)
-
-    def hat(block):
-        return a @ (qxx @ (a.T @ block))
-
-    sigmas = 1.0 / np.sqrt(np.diag(p))
-    candidates = np.flatnonzero(r >= 0.001)
+    hat, sigmas, rho, r, candidates = _numpy_reference()
 
     def partners(i, low):
         return {int(j) for j in candidates if j != i and abs(rho[i, j]) >= low}
