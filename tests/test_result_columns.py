@@ -19,8 +19,8 @@ import pytest
 
 from server.fieldbook.parser import parse_fieldbook
 from server.pipeline import adjust_fieldbook, adjust_parsed
+from server.results import builder, json_result
 from server.results import columns as columns_module
-from server.results import json_result
 from server.results.columns import ObservationColumns, PointColumns, RelativeColumns
 from server.results.json_result import result_json_chunks
 from server.results.json_writer import json_bytes
@@ -158,3 +158,29 @@ def test_a_large_result_in_chunks_and_a_nan_in_it_refused(monkeypatch):
     )
     with pytest.raises(ValueError, match="not JSON compliant"):
         b"".join(result_json_chunks(broken))
+
+
+def _row_by_row(columns, entries):
+    """The reference: each baseline's entries in its place among the rows made one by one."""
+    return tuple(row for k, made in enumerate(columns) for row in entries.get(k, (made,)))
+
+
+@pytest.mark.parametrize("ignored", [False, True])
+def test_baseline_entries_kept_as_columns_read_as_the_rows_did(ignored, monkeypatch):
+    fieldbook = parse_fieldbook(networks.geodetic(30))
+    lines = [o.line for o in fieldbook.observations if o.kind == "baseline"]
+    assert len(lines) > 5
+    if ignored:  # ignored baselines and other ignored lines: no statistics for them
+        fieldbook = with_ignored(fieldbook, {lines[2], lines[5], fieldbook.observations[5].line})
+    result = adjust_parsed(fieldbook)
+    observations = result.observations
+    assert isinstance(observations, ObservationColumns)
+    components = [o.component for o in observations if o.kind == "baseline"]
+    assert components == ["dx", "dy", "dz"] * len(lines)
+    monkeypatch.setattr(builder, "with_entries", _row_by_row)
+    reference = adjust_parsed(fieldbook)
+    assert not isinstance(reference.observations, ObservationColumns)
+    assert tuple(observations) == reference.observations
+    assert result == reference
+    from_columns, from_rows = result.to_json_dict(), reference.to_json_dict()
+    assert json_bytes(from_columns) == json_bytes(from_rows)

@@ -21,7 +21,12 @@ from server.model.kinds import CoincidentPointsError, evaluate_one, sigma_one
 from server.model.misclosures import Misclosure
 from server.model.network import Network, NetworkPoint
 from server.results.baselines import BaselineFigures, baseline_figures
-from server.results.columns import ObservationColumns, PointColumns, RelativeColumns
+from server.results.columns import (
+    ObservationColumns,
+    PointColumns,
+    RelativeColumns,
+    with_entries,
+)
 from server.results.geodetic_points import with_geodetic_figures
 from server.results.observation_meta import ObservationMetadata, observation_metadata
 from server.results.types import (
@@ -204,8 +209,8 @@ def _observation_results(
     warnings: list[str],
     baselines: BaselineFigures,
 ) -> Sequence[ObservationResult]:
-    """Every observation's figures as columns in field book order (``ObservationColumns``);
-    with GNSS baselines, whose three entries come as rows, a tuple of rows."""
+    """Every observation's figures as columns in field book order (``ObservationColumns``),
+    a GNSS baseline's three entries in its place."""
     n = len(meta.kind)
     used_at = meta.used_position
     angular_all = meta.angular
@@ -303,12 +308,7 @@ def _observation_results(
     if entries:
         uncontrolled = uncontrolled[[k not in entries for k in uncontrolled.tolist()]]
     _warn_uncontrolled(meta, uncontrolled.tolist(), warnings)
-    if not entries:
-        return columns
-    rows: list[ObservationResult] = []
-    for k, row in enumerate(columns):
-        rows.extend(entries.get(k, (row,)))
-    return tuple(rows)
+    return with_entries(columns, entries) if entries else columns
 
 
 def _baseline_rows(

@@ -13,7 +13,8 @@ wrote is finite, so that the writer need not look at each one again.
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Sequence
+import math
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, overload
 
@@ -112,6 +113,8 @@ class ObservationColumns(_Columns):
     flagged: np.ndarray
     ignored: np.ndarray
     inseparable: list[tuple[int, ...]]
+    #: "dx", "dy" or "dz" for a baseline's three entries, None elsewhere; None: no baselines
+    component: list[str | None] | None = None
 
     def __len__(self) -> int:
         return len(self.kind)
@@ -141,7 +144,7 @@ class ObservationColumns(_Columns):
             "flagged": self.flagged[s].tolist(),
             "ignored": self.ignored[s].tolist(),
             "note": self.note[s],
-        }
+        } | ({} if self.component is None else {"component": self.component[s]})
 
     def _rows(self, start: int, stop: int) -> list[ObservationResult]:
         fields = self._fields(start, stop)
@@ -274,6 +277,76 @@ POINT_KEYS = (
     "note",
     "ellipse",
 )
+
+
+def with_entries(
+    columns: ObservationColumns, entries: Mapping[int, tuple[ObservationResult, ...]]
+) -> ObservationColumns:
+    """``columns`` with each row k of ``entries`` replaced by its rows (a baseline's three
+    component entries), still as columns: making every other row an object would cost
+    more than the rest of the result."""
+    n = len(columns)
+    counts = np.ones(n, np.int64)
+    rows = sorted(entries)
+    counts[rows] = [len(entries[k]) for k in rows]
+    source = np.repeat(np.arange(n), counts)  # the row each new row comes from
+    first = np.cumsum(counts) - counts
+    at = np.concatenate([first[k] + np.arange(len(entries[k])) for k in rows]).astype(np.int64)
+    made = [row for k in rows for row in entries[k]]
+    taken = source.tolist()
+
+    def listed(values: list[Any], field: str) -> list[Any]:
+        out = [values[k] for k in taken]
+        for position, row in zip(at.tolist(), made):
+            out[position] = getattr(row, field)
+        return out
+
+    def numbers(values: np.ndarray, field: str) -> np.ndarray:
+        out = values[source]
+        out[at] = [getattr(row, field) for row in made]
+        return out
+
+    def given(values: np.ndarray, mask: np.ndarray, field: str, first: bool = True) -> np.ndarray:
+        # a value where the row has one; the mask says where (as _nullable reads it), and a
+        # mask shared by several fields must fit each of them
+        out = values[source]
+        present = [getattr(row, field) is not None for row in made]
+        out[at] = [getattr(row, field) if ok else math.nan for row, ok in zip(made, present)]
+        if first:
+            mask[at] = present
+        elif mask[at].tolist() != present:
+            raise ValueError(f"an entry's {field} is null where the fields beside it are not")
+        return out
+
+    has_scale, has_adjusted = columns.has_scale[source], columns.has_adjusted[source]
+    used, tested = columns.used[source], columns.tested[source]
+    component = [None] * n if columns.component is None else columns.component
+    return ObservationColumns(
+        line=numbers(columns.line, "line"),
+        kind=listed(columns.kind, "kind"),
+        from_point=listed(columns.from_point, "from_point"),
+        at=listed(columns.at, "at"),
+        to=listed(columns.to, "to"),
+        note=listed(columns.note, "note"),
+        observed=numbers(columns.observed, "observed"),
+        booked=numbers(columns.booked, "booked"),
+        scale_factor=given(columns.scale_factor, has_scale, "scale_factor"),
+        has_scale=has_scale,
+        adjusted=given(columns.adjusted, has_adjusted, "adjusted"),
+        has_adjusted=has_adjusted,
+        residual=given(columns.residual, has_adjusted, "residual", first=False),
+        sd=numbers(columns.sd, "sd"),
+        redundancy=given(columns.redundancy, used, "redundancy"),
+        used=used,
+        w=given(columns.w, tested, "w"),
+        mdb=given(columns.mdb, tested, "mdb", first=False),
+        estimated_bias=given(columns.estimated_bias, tested, "estimated_bias", first=False),
+        tested=tested,
+        flagged=numbers(columns.flagged, "flagged"),
+        ignored=numbers(columns.ignored, "ignored"),
+        inseparable=listed(columns.inseparable, "inseparable"),
+        component=listed(component, "component"),
+    )
 
 
 @dataclass(frozen=True, eq=False, repr=False, slots=True, kw_only=True)

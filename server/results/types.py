@@ -486,14 +486,28 @@ def _add_geodetic_keys(result: AdjustmentResult, out: dict[str, Any]) -> None:
         )
         for entry, p in zip(out["points"], result.points, strict=True)
     ]
-    out["observations"] = [
-        entry if o.component is None else _inserted(entry, "kind", [("component", o.component)])
-        for entry, o in zip(out["observations"], result.observations, strict=True)
+    records = out["observations"]
+    inserted = [
+        entry if component is None else _inserted(entry, "kind", [("component", component)])
+        for entry, component in zip(records, _components(result.observations), strict=True)
     ]
+    # records checked finite stay so: a component is a name
+    out["observations"] = FiniteRecords(inserted) if type(records) is FiniteRecords else inserted
     tests = [t.to_dict() for t in result.baseline_tests]
     replaced = _inserted(out, "observations", [("baseline_tests", tests)])
     out.clear()
     out.update(replaced)
+
+
+def _components(observations: Sequence[ObservationResult]) -> Sequence[str | None]:
+    """Each observation's ``component``: straight from the columns when built here."""
+    from server.results.columns import ObservationColumns
+
+    if isinstance(observations, ObservationColumns):
+        if observations.component is None:
+            return [None] * len(observations)
+        return observations.component
+    return [o.component for o in observations]
 
 
 def _add_design_keys(result: AdjustmentResult, out: dict[str, Any]) -> None:
