@@ -97,6 +97,18 @@ def test_views_share_their_objects_and_compare_as_tuples():
     np.testing.assert_array_equal(network.used_table.line, book.table.line[network.used_rows])
 
 
+def test_rows_made_together_are_the_objects_made_one_at_a_time():
+    book = parse_fieldbook(networks.leveling(60))
+    table = book.table
+    early = table.observation(7)
+    rows = [3, 7, len(table) - 1, 3, 12]
+    made = table.observations_at(rows)
+    assert made[1] is early and made[0] is made[3]  # kept ones kept, a repeated row once
+    assert made == [parse_fieldbook(networks.leveling(60)).observations[k] for k in rows]
+    assert all(table.observation(k) is obs for k, obs in zip(rows, made))
+    assert table.observations_at([]) == []
+
+
 def test_a_book_built_from_objects_is_tabled_once_and_keeps_its_objects():
     parsed = parse_fieldbook(networks.leveling(60))
     objects = tuple(parsed.observations)

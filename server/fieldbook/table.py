@@ -254,6 +254,16 @@ class ObservationTable:
             self._made[row] = made
         return made
 
+    def observations_at(self, rows: Sequence[int]) -> list[Observation]:
+        """The given rows as ``Observation`` objects, those not made yet made together (one
+        at a time, each costs as much as a batch of a hundred)."""
+        made = self._made
+        missing = [k for k in dict.fromkeys(rows) if made[k] is None]
+        if missing:
+            for k, obs in zip(missing, self._make_many(missing)):
+                made[k] = obs
+        return [made[k] for k in rows]  # type: ignore[misc]  # every one made above
+
     def observations(self) -> list[Observation]:
         """Every row as an ``Observation``, made where not made yet."""
         made = self._made

@@ -55,8 +55,7 @@ def baseline_figures(
     rows = np.flatnonzero(table.is_kind("baseline")).tolist()
     if not rows:
         return BaselineFigures({}, ())
-    observations = network.fieldbook.observations
-    baselines = [observations[k] for k in rows]
+    baselines = table.observations_at(rows)
     kind = geodetic_kinds(frame.crs, frame.refraction)["baseline"]
     names = list(solution.positions)
     index = {name: k for k, name in enumerate(names)}
