@@ -46,6 +46,30 @@ class _Parser(argparse.ArgumentParser):
         self.exit(EXIT_USAGE, f"{self.prog}: error: {message}\n")
 
 
+#: Commands that run once and end; ``run`` leaves them without tearing the interpreter down.
+_ONE_SHOT = frozenset({"adjust", "import", "plan", "monitor"})
+
+
+def run() -> NoReturn:
+    """The ``stationfit`` command and ``python -m server``: ``main``, then exit.
+
+    A one-shot command's objects (millions of them for a network of a million marks) are
+    not freed one by one on the way out: the operating system takes the memory back whole.
+    Measured on leveling 100,000 marks: 0.07-0.13 s of the command. Output is flushed
+    first; files a command writes are closed before it returns. ``serve``, ``worker`` and
+    ``users`` end the ordinary way, so that their exit handlers run.
+    """
+    status = main()
+    if sys.argv[1:2] and sys.argv[1] in _ONE_SHOT:
+        try:
+            sys.stdout.flush()
+            sys.stderr.flush()
+        except OSError:  # a reader that went away (a closed pipe): Python's own status
+            status = 120
+        os._exit(status)
+    raise SystemExit(status)
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     parser = _Parser(

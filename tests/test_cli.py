@@ -225,3 +225,25 @@ def test_deferred_numpy_modules_still_work_when_used():
         [sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, check=False
     )
     assert done.stdout.strip() == "7.0", done.stderr[-800:]
+
+
+def test_one_shot_command_leaves_its_whole_output_in_a_file(tmp_path):
+    # the command exits without tearing the interpreter down: what it printed must be
+    # flushed first, to a file as to a pipe, and the exit status must survive
+    book = ROOT / "demo_projects" / "control_network.fieldbook"
+    out = tmp_path / "result.json"
+    with out.open("wb") as sink:
+        done = subprocess.run(
+            [sys.executable, "-m", "server", "adjust", str(book), "--json"],
+            cwd=ROOT,
+            stdout=sink,
+            stderr=subprocess.PIPE,
+            timeout=120,
+            check=False,
+        )
+    assert done.returncode == 0, done.stderr[-800:]
+    result = json.loads(out.read_text())
+    assert result["points"] and result["observations"]
+    bad = tmp_path / "bad.fieldbook"
+    bad.write_text("this is not a field book line\n")
+    assert run("adjust", str(bad)).returncode == 2
