@@ -11,6 +11,7 @@ sentences, never as a traceback.
 from __future__ import annotations
 
 import argparse
+import gc
 import os
 import sys
 from pathlib import Path
@@ -59,8 +60,13 @@ def run() -> NoReturn:
     first; files a command writes are closed before it returns. ``serve``, ``worker`` and
     ``users`` end the ordinary way, so that their exit handlers run.
     """
+    one_shot = sys.argv[1:2] and sys.argv[1] in _ONE_SHOT
+    if one_shot:
+        # nothing it makes outlives it: the cyclic collector would only walk the modules
+        # being imported (about 90 collections, 0.03 s) and the objects of the result
+        gc.disable()
     status = main()
-    if sys.argv[1:2] and sys.argv[1] in _ONE_SHOT:
+    if one_shot:
         try:
             sys.stdout.flush()
             sys.stderr.flush()
