@@ -263,8 +263,8 @@ def _all_pairs(
     # square, and blocks that stay in cache; each element is the same sum as in the square
     for start in range(0, m, PAIR_BLOCK):
         end = min(m, start + PAIR_BLOCK)
-        right = np.ascontiguousarray(np.asarray(design[start:end] @ inverse).T)
-        rho = np.asarray(design[:end] @ right)  # −ρ off the diagonal, rows :end
+        right = np.ascontiguousarray(np.asarray(_row_range(design, start, end) @ inverse).T)
+        rho = np.asarray(_row_range(design, 0, end) @ right)  # −ρ off the diagonal, rows :end
         np.abs(rho, out=rho)
         first, second = np.divmod(np.flatnonzero(rho >= threshold), end - start)
         second += start
@@ -272,6 +272,19 @@ def _all_pairs(
         firsts.append(first[upper])
         seconds.append(second[upper])
     return candidates[np.concatenate(firsts)], candidates[np.concatenate(seconds)]
+
+
+def _row_range(matrix: Any, start: int, end: int) -> Any:
+    """Rows start:end of a CSR matrix on views of its arrays: the same rows as
+    ``matrix[start:end]``, without the indexing machinery (half the time at this size)."""
+    import scipy.sparse
+
+    indptr = matrix.indptr
+    first, last = int(indptr[start]), int(indptr[end])
+    return scipy.sparse.csr_matrix(
+        (matrix.data[first:last], matrix.indices[first:last], indptr[start : end + 1] - first),
+        shape=(end - start, matrix.shape[1]),
+    )
 
 
 class _ExactColumns:
