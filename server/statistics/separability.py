@@ -255,7 +255,7 @@ def _all_pairs(
     design = scipy.sparse.csr_matrix(hat.design[candidates])
     row_scale = root_p[candidates] / scale[candidates]
     design.data = design.data * np.repeat(row_scale, np.diff(design.indptr))
-    # C order once: the sparse product would copy a Fortran-ordered inverse for every block
+    # C order (the engine's already is): a sparse product copies any other for every block
     inverse = np.ascontiguousarray(hat.inverse())
     m = candidates.size
     firsts, seconds = [], []
