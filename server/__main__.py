@@ -1,5 +1,5 @@
 """``python -m server``: the same command line as ``stationfit`` (see server/cli.py)."""
 
-from server.cli import main
+from server.cli import run
 
-raise SystemExit(main())
+run()

@@ -11,6 +11,7 @@ sentences, never as a traceback.
 from __future__ import annotations
 
 import argparse
+import gc
 import os
 import sys
 from pathlib import Path
@@ -44,6 +45,35 @@ class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> NoReturn:
         self.print_usage(sys.stderr)
         self.exit(EXIT_USAGE, f"{self.prog}: error: {message}\n")
+
+
+#: Commands that run once and end; ``run`` leaves them without tearing the interpreter down.
+_ONE_SHOT = frozenset({"adjust", "import", "plan", "monitor"})
+
+
+def run() -> NoReturn:
+    """The ``stationfit`` command and ``python -m server``: ``main``, then exit.
+
+    A one-shot command's objects (millions of them for a network of a million marks) are
+    not freed one by one on the way out: the operating system takes the memory back whole.
+    Measured on leveling 100,000 marks: 0.07-0.13 s of the command. Output is flushed
+    first; files a command writes are closed before it returns. ``serve``, ``worker`` and
+    ``users`` end the ordinary way, so that their exit handlers run.
+    """
+    one_shot = sys.argv[1:2] and sys.argv[1] in _ONE_SHOT
+    if one_shot:
+        # nothing it makes outlives it: the cyclic collector would only walk the modules
+        # being imported (about 90 collections, 0.03 s) and the objects of the result
+        gc.disable()
+    status = main()
+    if one_shot:
+        try:
+            sys.stdout.flush()
+            sys.stderr.flush()
+        except OSError:  # a reader that went away (a closed pipe): Python's own status
+            status = 120
+        os._exit(status)
+    raise SystemExit(status)
 
 
 def main(argv: list[str] | None = None) -> int:

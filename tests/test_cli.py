@@ -195,17 +195,55 @@ def test_version_is_the_package_version():
 
 def test_adjust_command_loads_neither_the_office_service_nor_the_web_layer():
     # start-up is part of every command's time: the accounts (argon2), the store and the
-    # web framework belong to serve, worker and users only
+    # web framework belong to serve, worker and users only; numpy's Fortran wrapper
+    # generator and test helpers, which scipy's star import would load, to nobody
     book = str(ROOT / "demo_projects" / "control_network.fieldbook")
     code = (
         "import contextlib, io, sys\n"
         "from server.cli import main\n"
         "with contextlib.redirect_stdout(io.StringIO()):\n"
         f"    status = main(['adjust', {book!r}, '--json'])\n"
-        "heavy = ('argon2', 'server.store.sqlite', 'server.store.accounts', 'fastapi')\n"
+        "heavy = ('argon2', 'server.store.sqlite', 'server.store.accounts', 'fastapi',\n"
+        "         'numpy.f2py.crackfortran', 'numpy.testing._private.utils')\n"
         "print(status, [m for m in heavy if m in sys.modules])\n"
     )
     done = subprocess.run(
         [sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, check=False
     )
     assert done.stdout.strip() == "0 []", done.stderr[-800:]
+
+
+def test_deferred_numpy_modules_still_work_when_used():
+    # they are loaded on first use, not taken away
+    code = (
+        "import server.pipeline, numpy, sys\n"
+        "assert 'numpy.testing._private.utils' not in sys.modules\n"
+        "numpy.testing.assert_allclose(1.0, 1.0)\n"
+        "print(numpy.polynomial.polynomial.polyval(2.0, [1.0, 3.0]))\n"
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, check=False
+    )
+    assert done.stdout.strip() == "7.0", done.stderr[-800:]
+
+
+def test_one_shot_command_leaves_its_whole_output_in_a_file(tmp_path):
+    # the command exits without tearing the interpreter down: what it printed must be
+    # flushed first, to a file as to a pipe, and the exit status must survive
+    book = ROOT / "demo_projects" / "control_network.fieldbook"
+    out = tmp_path / "result.json"
+    with out.open("wb") as sink:
+        done = subprocess.run(
+            [sys.executable, "-m", "server", "adjust", str(book), "--json"],
+            cwd=ROOT,
+            stdout=sink,
+            stderr=subprocess.PIPE,
+            timeout=120,
+            check=False,
+        )
+    assert done.returncode == 0, done.stderr[-800:]
+    result = json.loads(out.read_text())
+    assert result["points"] and result["observations"]
+    bad = tmp_path / "bad.fieldbook"
+    bad.write_text("this is not a field book line\n")
+    assert run("adjust", str(bad)).returncode == 2

@@ -111,7 +111,7 @@ print("served")
 
 def test_wheel_installs_the_stationfit_command(installed):
     entry_points = next(installed.glob("stationfit-*.dist-info")) / "entry_points.txt"
-    assert "stationfit = server.cli:main" in entry_points.read_text()
+    assert "stationfit = server.cli:run" in entry_points.read_text()
 
 
 def test_installed_wheel_carries_the_compiled_kernels(installed):

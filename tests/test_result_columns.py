@@ -184,3 +184,29 @@ def test_baseline_entries_kept_as_columns_read_as_the_rows_did(ignored, monkeypa
     assert result == reference
     from_columns, from_rows = result.to_json_dict(), reference.to_json_dict()
     assert json_bytes(from_columns) == json_bytes(from_rows)
+
+
+#: leveling_clean with a spur section to a new mark: a used observation no test can check
+_SPUR = "level BM-ORCHARD SPUR-1 0.4321 len=0.12km\n"
+
+
+@pytest.mark.parametrize("name", [*PLANE_DEMOS, "dam_control_3d_blunder", "spur"])
+def test_what_the_store_keeps_is_what_asdict_and_the_rows_give(name):
+    # the run's detail (plain_dict) and its flagged and untested counts are read from the
+    # columns; the reference is dataclasses.asdict and the count over the rows
+    from server.store.sqlite import _counts
+
+    if name == "spur":
+        text = (ROOT / "demo_projects" / "leveling_clean.fieldbook").read_text() + _SPUR
+        result = adjust_fieldbook(text.encode())
+        assert sum(1 for o in result.observations if o.redundancy is not None and o.w is None)
+    else:
+        result = _demo(name)
+    rows = _as_rows(result)
+    # repr: the same values (NaN too), the same container types (tuples stay tuples)
+    assert repr(result.detail_dict()) == repr(dataclasses.asdict(rows))
+    flagged = sum(1 for o in rows.observations if o.flagged)
+    untested = sum(
+        1 for o in rows.observations if not o.ignored and o.redundancy is not None and o.w is None
+    )
+    assert _counts(result.observations) == _counts(rows.observations) == (flagged, untested)

@@ -387,8 +387,11 @@ class Cofactor:
         rows = np.asarray(rows, dtype=np.int64)
         cols = np.asarray(cols, dtype=np.int64)
         a, b = self._position[rows], self._position[cols]
-        low, high = np.minimum(a, b), np.maximum(a, b)
+        low = np.minimum(a, b)
+        high = np.maximum(a, b, out=a)  # a is ours: no third array of the queries' length
         where = _kernels().lookup(self._indptr, self._indices, high, low)
+        if where.size and where.min() >= 0:  # all on the pattern (N's own pattern always is)
+            return self._z[where]
         out = np.empty(rows.shape[0])
         found = where >= 0
         out[found] = self._z[where[found]]

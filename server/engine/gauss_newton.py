@@ -72,6 +72,9 @@ DENSE_LIMIT = 60
 #: A correction this large (metres, or radians) means a negligible pivot, or start values
 #: far off; a sparse back end then examines its factor's pivots.
 IMPLAUSIBLE_CORRECTION = 1e4
+#: Columns of the identity per solve in ``HatProduct.inverse``: 64 columns of solutions
+#: stay in cache (measured 32-128 alike on the typical book; all 574 at once 20 % slower).
+INVERSE_BLOCK = 64
 
 #: ``progress(stage, step)``: stage is "start values", "iteration" (step = 1, 2, …)
 #: or "statistics"; the pipeline adds "parse", "network" and "result".
@@ -377,10 +380,19 @@ class HatProduct:
             return self.design @ self._solve(np.ascontiguousarray(self.design.T @ block))
 
     def inverse(self) -> np.ndarray:
-        """N⁻¹ in full (u × u): for small networks, where one solve of the identity is
-        cheaper than a solve for every observation."""
+        """N⁻¹ in full (u × u, C order): for small networks, where one solve of the identity
+        is cheaper than a solve for every observation.  The identity is solved
+        ``INVERSE_BLOCK`` columns at a time, so each block of solutions stays in cache
+        (574 unknowns: 4.8 ms against 5.7 for all columns in one solve, the same numbers)."""
+        n = self._n
+        inverse = np.empty((n, n))  # C order: what the sparse products with it read
         with _one_blas_thread():
-            return np.asarray(self._solve(np.eye(self._n, order="F")))
+            for start in range(0, n, INVERSE_BLOCK):
+                end = min(n, start + INVERSE_BLOCK)
+                unit = np.zeros((n, end - start), order="F")
+                unit[np.arange(start, end), np.arange(end - start)] = 1.0
+                inverse[:, start:end] = self._solve(unit)
+        return inverse
 
     def solve_rows(self, rows: np.ndarray, scale: np.ndarray) -> np.ndarray:
         """N⁻¹·Aᵀ·B, B the n × k block with B[rows[c], c] = scale[c] and zeros elsewhere."""

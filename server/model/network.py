@@ -13,7 +13,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
 from itertools import repeat
 from operator import attrgetter, contains
-from typing import NamedTuple
+from typing import TYPE_CHECKING, NamedTuple
 
 import numpy as np
 from scipy.sparse import coo_matrix
@@ -28,8 +28,10 @@ from server.fieldbook.model import (
     PointStatement,
 )
 from server.fieldbook.table import NONE, ObservationRows, ObservationTable, table_of
-from server.geodesy.crs import Crs
-from server.model.geodetic import GeodeticFrame
+
+if TYPE_CHECKING:  # the geodetic modules load only for a geodetic book (start-up time)
+    from server.geodesy.crs import Crs
+    from server.model.geodetic import GeodeticFrame
 
 #: Unknown-component labels, in parameter order within a point.
 EAST, NORTH, HEIGHT = "E", "N", "H"

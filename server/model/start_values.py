@@ -39,9 +39,9 @@ def start_coordinates(network: Network) -> np.ndarray:
         names = list(map(attrgetter("name"), points))
         given = dict(zip(names, map(tuple, coords[:, :2].tolist())))
         positions = start_positions(network, given)
-        index = dict(zip(names, range(len(names))))
-        for name, position in positions.items():
-            coords[index[name], :2] = position
+        if positions:  # one scatter rather than a row assignment per point
+            index = dict(zip(names, range(len(names))))
+            coords[list(map(index.__getitem__, positions)), :2] = list(positions.values())
     return coords
 
 

@@ -21,7 +21,6 @@ import numpy as np
 
 from server.engine.gauss_newton import Solution
 from server.fieldbook.model import Observation
-from server.model.geodetic_kinds import geodetic_kinds
 from server.model.kinds import Positions, batch_of
 from server.model.network import Network
 from server.results.types import BaselineTestResult, ObservationResult
@@ -56,6 +55,8 @@ def baseline_figures(
     if not rows:
         return BaselineFigures({}, ())
     baselines = table.observations_at(rows)
+    from server.model.geodetic_kinds import geodetic_kinds  # geodetic books only
+
     kind = geodetic_kinds(frame.crs, frame.refraction)["baseline"]
     names = list(solution.positions)
     index = {name: k for k, name in enumerate(names)}

@@ -16,7 +16,6 @@ import numpy as np
 
 from server.engine.gauss_newton import Solution
 from server.fieldbook.model import ANGULAR_KINDS, Observation
-from server.model.geodetic_kinds import geodetic_kinds
 from server.model.kinds import CoincidentPointsError, evaluate_one, sigma_one
 from server.model.misclosures import Misclosure
 from server.model.network import Network, NetworkPoint
@@ -27,7 +26,6 @@ from server.results.columns import (
     RelativeColumns,
     with_entries,
 )
-from server.results.geodetic_points import with_geodetic_figures
 from server.results.observation_meta import ObservationMetadata, observation_metadata
 from server.results.types import (
     UNCONTROLLED,
@@ -118,6 +116,8 @@ def build_result(
         network, solution, scale_variance, factor, tests.confidence, per_m
     )
     if fb.crs is not None:  # the geodetic figures are added row by row
+        from server.results.geodetic_points import with_geodetic_figures  # geodetic books only
+
         points = with_geodetic_figures(network, solution, points, per_m)
     if not solution.converged:
         warnings.append(solution.message)
@@ -419,6 +419,8 @@ def _model_of(solution: Solution) -> tuple[Any, Any, Any, Any]:
     frame = solution.network.geodetic
     if frame is None or solution.positions is None:
         return solution.coordinates, solution.orientations, None, None
+    from server.model.geodetic_kinds import geodetic_kinds  # geodetic books only
+
     kinds = geodetic_kinds(frame.crs, frame.refraction)
     return solution.positions, solution.orientations, kinds, frame.undulation
 

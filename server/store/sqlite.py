@@ -34,16 +34,19 @@ import re
 import secrets
 import uuid
 import zlib
-from collections.abc import Collection, Iterator
+from collections.abc import Collection, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import orjson
 
 from server.errors import FieldbookError, NetworkError
+from server.results.columns import ObservationColumns
+from server.results.json_writer import json_bytes
 from server.results.types import (
     AdjustmentResult,
     BaselineTestResult,
@@ -1129,11 +1132,8 @@ def _outcome(
         return "failed", None, None, None, json.dumps(error_record(error))
     contract = result.to_json_dict()
     summary = dict(contract["summary"])  # type: ignore[call-overload]
-    summary["flagged"] = sum(1 for o in result.observations if o.flagged)
     # used observations no test can check (w null): the list never shows them as a plain pass
-    summary["uncontrolled"] = sum(
-        1 for o in result.observations if not o.ignored and o.redundancy is not None and o.w is None
-    )
+    summary["flagged"], summary["uncontrolled"] = _counts(result.observations)
     return (
         "finished",
         _pack(contract),
@@ -1143,13 +1143,33 @@ def _outcome(
     )
 
 
+def _counts(observations: Sequence[ObservationResult]) -> tuple[int, int]:
+    """How many observations are flagged, and how many are used but untested (w null)."""
+    if isinstance(observations, ObservationColumns):  # from the arrays: no record is made
+        untested = ~observations.ignored & observations.used & ~observations.tested
+        return int(np.count_nonzero(observations.flagged)), int(np.count_nonzero(untested))
+    flagged = sum(1 for o in observations if o.flagged)
+    untested_count = sum(
+        1 for o in observations if not o.ignored and o.redundancy is not None and o.w is None
+    )
+    return flagged, untested_count
+
+
 def _pack(data: dict[str, Any]) -> bytes:
     """A large JSON document stored compactly: zlib-compressed UTF-8, kept as a BLOB.
 
-    Results are mostly numbers and repeated keys; compressed they take about a sixth
-    of the space (a re-run of a 360 KB field book: 12.2 MB as text, 2 MB compressed).
+    Results are mostly numbers and repeated keys; compressed they take about a fifth
+    of the space (a re-run of a 360 KB field book: 12.2 MB as text, about 2.4 MB
+    compressed). orjson and zlib's fastest level: storing the typical project's run took
+    60 ms with the standard library's encoder and level 6, three times its adjustment,
+    for blobs 15 % smaller. A value JSON cannot spell (NaN, infinity), which orjson would
+    write as null, goes through the standard library as before.
     """
-    return zlib.compress(json.dumps(data, separators=(",", ":")).encode("utf-8"), 6)
+    try:
+        text = json_bytes(data, compact=True)
+    except (ValueError, TypeError):  # non-finite numbers, or keys orjson does not write
+        text = json.dumps(data, separators=(",", ":")).encode("utf-8")
+    return zlib.compress(text, 1)
 
 
 def _loads(value: str | bytes | None) -> dict[str, Any] | None:
