@@ -431,7 +431,9 @@ def _adjust(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     progress = _TerminalProgress(sys.stderr) if sys.stderr.isatty() else None
     try:
-        result = adjust_fieldbook(data, source=str(path), progress=progress, limits=limits)
+        result = adjust_fieldbook(
+            data, source=str(path), progress=progress, limits=limits, forked=True
+        )
     except FieldbookError as exc:
         _clear(progress)
         print(str(exc), file=sys.stderr)

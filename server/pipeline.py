@@ -14,7 +14,8 @@ from server.errors import FieldbookError, Issue, NetworkError
 from server.fieldbook.lexer import MAX_ISSUES
 from server.fieldbook.model import Fieldbook
 from server.fieldbook.parser import parse_fieldbook
-from server.model.misclosures import leveling_misclosures
+from server.forked import Pending
+from server.model.misclosures import Misclosure, leveling_misclosures
 from server.model.network import Network, build_network
 from server.model.traverse import traverse_misclosures
 from server.results.result import AdjustmentResult, build_result
@@ -30,8 +31,12 @@ def adjust_fieldbook(
     source: str = "",
     progress: ProgressCallback | None = None,
     limits: WorkLimits = UNLIMITED,
+    forked: bool = False,
 ) -> AdjustmentResult:
     """Parse, check, adjust and test a field book.
+
+    ``forked``: compute the misclosures in a child process beside the adjustment
+    (``server/forked.py``), for a process that runs nothing else (the command line).
 
     ``progress``, if given, is called as ``progress(stage, step)`` as the work
     goes on: "parse", "network", "misclosures", "start values", "iteration"
@@ -50,7 +55,8 @@ def adjust_fieldbook(
     with paused_gc():
         if progress is not None:
             progress("parse", 0)
-        return adjust_parsed(parse_fieldbook(text, source=source), progress=progress, limits=limits)
+        fieldbook = parse_fieldbook(text, source=source)
+        return _adjust_parsed(fieldbook, progress, limits, forked)
 
 
 def adjust_parsed(
@@ -119,7 +125,10 @@ def check_unknown_limit(network: Network, limits: WorkLimits) -> None:
 
 
 def _adjust_parsed(
-    fieldbook: Fieldbook, progress: ProgressCallback | None, limits: WorkLimits
+    fieldbook: Fieldbook,
+    progress: ProgressCallback | None,
+    limits: WorkLimits,
+    forked: bool = False,
 ) -> AdjustmentResult:
     report = progress or _quiet
     check_observation_limit(fieldbook, limits)
@@ -130,10 +139,31 @@ def _adjust_parsed(
     warnings = [issue.format(fieldbook.source) for issue in fieldbook.warnings]
     warnings += list(network.warnings)
     report("misclosures", 0)
-    misclosures = leveling_misclosures(fieldbook) if network.vertical else ()
-    if network.horizontal:
-        misclosures += traverse_misclosures(fieldbook)
-    solution = adjust(network, progress=progress)
+
+    def misclosures_of_book() -> tuple[Misclosure, ...]:
+        found = leveling_misclosures(fieldbook) if network.vertical else ()
+        if network.horizontal:
+            found += traverse_misclosures(fieldbook)
+        return found
+
+    if not forked:
+        misclosures = misclosures_of_book()
+        solution = adjust(network, progress=progress)
+    else:  # the misclosures read only the book: on the second core, beside the engine
+        pending = Pending(misclosures_of_book)
+        try:
+            solution = adjust(network, progress=progress)
+        except Exception:
+            # an error of the misclosures came first in the plain order: it still does
+            try:
+                pending.result()
+            finally:
+                pending.close()
+            raise
+        except BaseException:  # interrupted: stop the child too
+            pending.close()
+            raise
+        misclosures = pending.result()
     report("result", 0)
     return build_result(network, solution, misclosures, warnings)
 
