@@ -207,9 +207,7 @@ def test_adjust_command_loads_neither_the_office_service_nor_the_web_layer():
         "         'numpy.f2py.crackfortran', 'numpy.testing._private.utils')\n"
         "print(status, [m for m in heavy if m in sys.modules])\n"
     )
-    done = subprocess.run(
-        [sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, check=False
-    )
+    done = _python(code)
     assert done.stdout.strip() == "0 []", done.stderr[-800:]
 
 
@@ -221,10 +219,15 @@ def test_deferred_numpy_modules_still_work_when_used():
         "numpy.testing.assert_allclose(1.0, 1.0)\n"
         "print(numpy.polynomial.polynomial.polyval(2.0, [1.0, 3.0]))\n"
     )
-    done = subprocess.run(
+    done = _python(code)
+    assert done.stdout.strip() == "7.0", done.stderr[-800:]
+
+
+def _python(code: str) -> subprocess.CompletedProcess[str]:
+    """``code`` run by a fresh interpreter in the repository (a process's start-up as is)."""
+    return subprocess.run(
         [sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, check=False
     )
-    assert done.stdout.strip() == "7.0", done.stderr[-800:]
 
 
 def test_one_shot_command_leaves_its_whole_output_in_a_file(tmp_path):
