@@ -210,3 +210,14 @@ def test_what_the_store_keeps_is_what_asdict_and_the_rows_give(name):
         1 for o in rows.observations if not o.ignored and o.redundancy is not None and o.w is None
     )
     assert _counts(result.observations) == _counts(rows.observations) == (flagged, untested)
+
+
+def test_a_stored_document_reads_back_to_the_same_values_nan_included():
+    # orjson packs what JSON can spell; a NaN (which orjson would write as null) goes
+    # through the standard library and still reads back as NaN, not as None
+    from server.store.sqlite import _loads, _pack
+
+    plain = {"a": [1, 2.5, None, "Ω"], "b": {"c": 0.1 + 0.2}}
+    assert _loads(_pack(plain)) == plain
+    back = _loads(_pack({"sd": math.nan, "w": [1.0, math.inf]}))
+    assert back is not None and math.isnan(back["sd"]) and back["w"] == [1.0, math.inf]
